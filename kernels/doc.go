@@ -1,0 +1,26 @@
+// Package kernels owns one step of each Langevin-type sampling method over a
+// batch of chains, written as an ask/tell state machine.
+//
+// A Kernel never calls the target. Next says which points it needs
+// evaluated and what to evaluate there (a Request); the caller evaluates
+// them however it likes (in-process, over gRPC, on a cluster) and hands the
+// results back with Tell (an Answer). When a Tell completes a step of every
+// chain, Positions holds the new state of all chains. There is no I/O, no
+// clock and no global randomness here: every kernel takes its random stream
+// (math/rand/v2) from the caller, and its whole state, including that
+// stream, round-trips through MarshalBinary and UnmarshalBinary, so a run
+// can be checkpointed and resumed bit for bit.
+//
+// Conventions. The target is pi(theta) ∝ exp(-f(theta)) on R^p. Answers
+// carry the gradient of log pi (the score, -∇f), never of the potential f.
+// Points and gradients are flat row-major []float64, one row per point.
+//
+// Kernels here:
+//
+//	lmc   unadjusted Langevin (Euler–Maruyama of dθ = ∇log π(θ)dt + √2 dW):
+//	      θ_{k+1} = θ_k + h·∇log π(θ_k) + √(2h)·ξ_{k+1},  ξ ~ N(0, I_p)
+//	      one gradient per chain per step.
+//
+// References: Dalalyan, JRSS B 79 (2017) 651–676; Durmus & Moulines,
+// Ann. Appl. Probab. 27 (2017); the project's THEORY.md §0.1.
+package kernels

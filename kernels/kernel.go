@@ -1,0 +1,86 @@
+package kernels
+
+import (
+	"encoding"
+	"math/rand/v2"
+)
+
+// Need is a set of quantities a kernel needs at each requested point.
+type Need uint8
+
+const (
+	// NeedGradient asks for the gradient of log π (dim values per point).
+	NeedGradient Need = 1 << iota
+	// NeedLogDensity asks for log π up to an additive constant (one value
+	// per point).
+	NeedLogDensity
+)
+
+// Has reports whether n includes q.
+func (n Need) Has(q Need) bool { return n&q == q }
+
+// Request is what a kernel needs evaluated next. Its slices belong to the
+// kernel and stay valid until the next call to Tell.
+type Request struct {
+	// Need says what to evaluate at every point.
+	Need Need
+	// Rows is the number of points.
+	Rows int
+	// Points holds Rows points, row-major, Rows×Dim values.
+	Points []float64
+	// Chain gives the chain each row belongs to.
+	Chain []int
+}
+
+// Answer holds the evaluations for one Request, in its row order.
+type Answer struct {
+	// Grad holds ∇log π at each point, Rows×Dim values, when the request
+	// asked for NeedGradient.
+	Grad []float64
+	// LogDensity holds log π at each point, Rows values, when the request
+	// asked for NeedLogDensity.
+	LogDensity []float64
+}
+
+// NewAnswer returns an Answer with room for any request of up to rows
+// points in dimension dim.
+func NewAnswer(rows, dim int) *Answer {
+	return &Answer{Grad: make([]float64, rows*dim), LogDensity: make([]float64, rows)}
+}
+
+// Kernel is one sampling method over a batch of chains, driven by ask
+// (Next) and tell (Tell). A Kernel is not safe for concurrent use.
+type Kernel interface {
+	// Dim is the dimension of each chain's state.
+	Dim() int
+	// Chains is the number of chains.
+	Chains() int
+	// Next returns the request for the current phase. Calling Next again
+	// before Tell returns the same request.
+	Next() *Request
+	// Tell gives the kernel the evaluations for the request last returned
+	// by Next. The answer must have the request's shape (the caller
+	// validates data from outside; a wrong shape here is a programming
+	// error and panics). Tell reports whether the call completed one step
+	// of every chain. The answer is not retained.
+	Tell(a *Answer) (stepDone bool)
+	// Steps is the number of completed steps per chain.
+	Steps() int
+	// Positions returns the current state of every chain, Chains×Dim
+	// values, row-major. The slice belongs to the kernel: read it before
+	// the next Tell.
+	Positions() []float64
+	// EvaluationsPerStep is the number of points evaluated per completed
+	// step over all chains.
+	EvaluationsPerStep() int
+
+	encoding.BinaryMarshaler
+	encoding.BinaryUnmarshaler
+}
+
+// NewSource returns the random stream every kernel built from seed uses.
+// Fixing this map from seed to stream is what makes a session over any
+// transport reproduce an in-process run bit for bit.
+func NewSource(seed uint64) *rand.PCG {
+	return rand.NewPCG(seed, seed^0x9e3779b97f4a7c15)
+}
