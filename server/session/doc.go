@@ -1,0 +1,14 @@
+// Package session owns one sampling session, independent of any transport:
+// it validates what the client sent, builds the kernel, asks for every
+// chain's points in one request per step (split into parts when a message
+// would be too large), validates each answer, counts evaluations exactly,
+// enforces the budget (evaluations and wall time), keeps draws after
+// burn-in with thinning, numbers them, reports progress at the cadence the
+// client asked for, and finishes with a reason.
+//
+// The engine is the one owner of concurrency in a session: Run reads the
+// client's messages from a channel and calls send for every frame from its
+// own goroutine, so a transport needs one reader goroutine and no locks.
+// Nothing here imports gRPC, protobuf or a logger; the server package
+// translates frames to and from the wire and maps errors to status codes.
+package session

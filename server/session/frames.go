@@ -1,0 +1,135 @@
+package session
+
+import (
+	"time"
+
+	"sluice/kernels"
+)
+
+// Frame is one message from the engine to the client: *Registered,
+// *Points, *Draws, *Progress or *Finished. Slices in a frame belong to the
+// engine and are valid only during the send call that carries it.
+type Frame interface{ frame() }
+
+// Registered acknowledges the registration.
+type Registered struct {
+	SessionID          string
+	Seed               uint64
+	Kernel             string
+	Step               float64
+	EvaluationsPerStep int
+	MaxMessageBytes    int64
+	Names              []string
+}
+
+// Points asks the client to evaluate rows points: part of request
+// RequestID starting at row FirstRow of TotalRows.
+type Points struct {
+	RequestID                 uint64
+	FirstRow, Rows, TotalRows int
+	Dim                       int
+	Points                    []float64 // Rows×Dim
+	Chains                    []int     // Rows
+	Need                      kernels.Need
+}
+
+// Draws carries kept draws numbered Seq, Seq+1, ..., Seq+Rows−1.
+type Draws struct {
+	Seq        uint64
+	Rows, Dim  int
+	Values     []float64 // Rows×Dim
+	Chains     []int     // Rows
+	Iterations []int64   // Rows
+}
+
+// State is where a session is.
+type State int
+
+const (
+	BurnIn State = iota + 1
+	Sampling
+	Done
+)
+
+// Progress reports the budget.
+type Progress struct {
+	State           State
+	Steps           int64
+	EvaluationsUsed int64
+	// EvaluationsLeft is −1 when there is no evaluation limit.
+	EvaluationsLeft int64
+	Elapsed         time.Duration
+	// TimeLeft is −1 when there is no time limit.
+	TimeLeft             time.Duration
+	DrawsSent            int64
+	EvaluationsPerSecond float64
+}
+
+// Reason says why a session ended.
+type Reason int
+
+const (
+	BudgetSpent Reason = iota + 1
+	TimeSpent
+	Stopped
+	DrawsCollected
+	Failed
+)
+
+func (r Reason) String() string {
+	switch r {
+	case BudgetSpent:
+		return "budget spent"
+	case TimeSpent:
+		return "time spent"
+	case Stopped:
+		return "stopped by client"
+	case DrawsCollected:
+		return "draws collected"
+	case Failed:
+		return "failed"
+	}
+	return "unknown"
+}
+
+// ParameterSummary summarises the kept draws of one parameter.
+type ParameterSummary struct {
+	Name     string
+	Mean, SD float64
+	Count    int64
+}
+
+// Finished is the last frame of a session.
+type Finished struct {
+	Reason     Reason
+	Message    string
+	Progress   Progress
+	Parameters []ParameterSummary
+}
+
+func (*Registered) frame() {}
+func (*Points) frame()     {}
+func (*Draws) frame()      {}
+func (*Progress) frame()   {}
+func (*Finished) frame()   {}
+
+// Evaluations is the client's answer to one Points frame.
+type Evaluations struct {
+	RequestID      uint64
+	FirstRow, Rows int
+	Dim            int
+	// Grad holds Rows×Dim values; LogDensity holds Rows values or is
+	// empty when not asked for.
+	Grad, LogDensity []float64
+}
+
+// Message is one thing received from the client, or the end of the
+// stream: exactly one of Evaluations, Stop or Err is set.
+type Message struct {
+	Evaluations *Evaluations
+	Stop        bool
+	StopReason  string
+	// Err ends the stream: io.EOF for a clean close, anything else for a
+	// broken one. An *Error here fails the session with that error.
+	Err error
+}

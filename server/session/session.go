@@ -1,0 +1,379 @@
+package session
+
+import (
+	"context"
+	"crypto/rand"
+	"encoding/binary"
+	"errors"
+	"fmt"
+	"io"
+	"math"
+	"time"
+
+	"sluice/kernels"
+)
+
+// Session is one validated session, ready to Run once.
+type Session struct {
+	id     string
+	spec   Spec
+	lim    Limits
+	kernel kernels.Kernel
+
+	msgBytes    int64 // negotiated message limit
+	rowsPerPart int   // rows per Points frame
+	answer      *kernels.Answer
+	answered    []bool // per part of the current request
+
+	start        time.Time
+	requestID    uint64
+	used         int64 // evaluated points
+	seq          uint64
+	kept         int64 // kept draws per chain
+	lastProgress time.Time
+
+	// Running mean and sum of squared deviations per coordinate over all
+	// kept draws (Welford).
+	count int64
+	mean  []float64
+	m2    []float64
+
+	draws      Draws // reused frame
+	drawChains []int
+	drawIters  []int64
+}
+
+// Result is what Run reports when it returns.
+type Result struct {
+	Finished Finished
+	// Kernel is the kernel after the last completed step.
+	Kernel kernels.Kernel
+}
+
+// New validates spec against the server's limits and builds the session.
+// Errors are *Error values naming the offending field.
+func New(id string, spec Spec, lim Limits) (*Session, error) {
+	lim = lim.withDefaults()
+	if err := spec.validate(lim); err != nil {
+		return nil, err
+	}
+	if spec.Seed == 0 {
+		var b [8]byte
+		_, _ = rand.Read(b[:])
+		spec.Seed = binary.LittleEndian.Uint64(b[:]) | 1
+	}
+	s := &Session{id: id, spec: spec, lim: lim}
+	s.msgBytes = lim.MaxMessageBytes
+	if c := spec.MaxMessageBytes; c == 0 && s.msgBytes > defaultMessageBytes {
+		s.msgBytes = defaultMessageBytes
+	} else if c > 0 && c < s.msgBytes {
+		s.msgBytes = c
+	}
+	// A row costs its values (points out, gradients and a log density
+	// back) plus a few bytes of varint chain index and framing.
+	const overhead = 1024
+	perRow := int64(8*(spec.Dim+1) + 16)
+	s.rowsPerPart = int((s.msgBytes - overhead) / perRow)
+	if s.rowsPerPart < 1 {
+		return nil, &Error{Kind: TooLarge, Field: "register.dim", Chain: -1, Coord: -1,
+			Reason: fmt.Sprintf("one point of dimension %d (%d bytes) does not fit the message limit of %d bytes", spec.Dim, perRow, s.msgBytes)}
+	}
+	switch spec.Kernel {
+	case "lmc":
+		s.kernel = kernels.NewLMC(spec.Dim, spec.Chains, spec.Step, spec.Start, kernels.NewSource(spec.Seed))
+	default:
+		return nil, BadField("register.kernel", "unknown kernel %q", spec.Kernel)
+	}
+	s.answer = kernels.NewAnswer(spec.Chains, spec.Dim)
+	s.mean = make([]float64, spec.Dim)
+	s.m2 = make([]float64, spec.Dim)
+	return s, nil
+}
+
+// ID is the session's identifier.
+func (s *Session) ID() string { return s.id }
+
+// Spec is the validated spec, with defaults filled in (kernel, seed,
+// names, keep_every).
+func (s *Session) Spec() Spec { return s.spec }
+
+// Run drives the session to its end. It reads the client's messages from
+// in, and calls send for every frame, always from the calling goroutine.
+// The reader feeding in must stop when ctx is done or when Run returns.
+//
+// Run returns a nil error when the session finished for a reason the
+// protocol foresees (budget, time, stop, draws collected): the Finished
+// frame has then been sent. It returns an *Error when the client sent bad
+// data or timed out (a Finished frame with reason Failed was attempted
+// first), ErrClientGone when the stream ended early, or the error of a
+// failed send.
+func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) error) (Result, error) {
+	s.start = time.Now()
+	s.lastProgress = s.start
+	maxTime := s.spec.MaxTime
+	if s.lim.MaxTime > 0 && (maxTime == 0 || s.lim.MaxTime < maxTime) {
+		maxTime = s.lim.MaxTime
+	}
+	var deadline <-chan time.Time
+	if maxTime > 0 {
+		t := time.NewTimer(maxTime)
+		defer t.Stop()
+		deadline = t.C
+	}
+	if err := send(&Registered{SessionID: s.id, Seed: s.spec.Seed, Kernel: s.spec.Kernel, Step: s.spec.Step,
+		EvaluationsPerStep: s.kernel.EvaluationsPerStep(), MaxMessageBytes: s.msgBytes, Names: s.spec.Names}); err != nil {
+		return s.result(Failed, err.Error()), err
+	}
+	answerTimer := time.NewTimer(s.lim.AnswerTimeout)
+	defer answerTimer.Stop()
+	for {
+		if maxTime > 0 && time.Since(s.start) >= maxTime {
+			return s.finish(TimeSpent, "", send)
+		}
+		req := s.kernel.Next()
+		if m := s.spec.MaxEvaluations; m > 0 && s.used+int64(req.Rows) > m {
+			return s.finish(BudgetSpent, fmt.Sprintf("the next request needs %d evaluations, %d left", req.Rows, m-s.used), send)
+		}
+		s.requestID++
+		if err := s.sendPoints(req, send); err != nil {
+			return s.result(Failed, err.Error()), err
+		}
+		answerTimer.Reset(s.lim.AnswerTimeout)
+		for pending := s.parts(req.Rows); pending > 0; {
+			var msg Message
+			select {
+			case <-ctx.Done():
+				return s.result(Failed, ErrClientGone.Error()), ErrClientGone
+			case <-deadline:
+				return s.finish(TimeSpent, "", send)
+			case <-answerTimer.C:
+				return s.fail(&Error{Kind: Timeout, Field: "evaluations", Chain: -1, Coord: -1,
+					Reason: fmt.Sprintf("no answer to request %d within %v", s.requestID, s.lim.AnswerTimeout)}, send)
+			case msg = <-in:
+			}
+			switch {
+			case msg.Err != nil:
+				if e, ok := AsError(msg.Err); ok {
+					return s.fail(e, send)
+				}
+				if errors.Is(msg.Err, io.EOF) {
+					return s.result(Failed, "client closed the stream"), ErrClientGone
+				}
+				return s.result(Failed, msg.Err.Error()), fmt.Errorf("%w: %v", ErrClientGone, msg.Err)
+			case msg.Stop:
+				return s.finish(Stopped, msg.StopReason, send)
+			case msg.Evaluations == nil:
+				return s.fail(BadField("frame", "expected evaluations or stop"), send)
+			}
+			if err := s.accept(req, msg.Evaluations); err != nil {
+				return s.fail(err, send)
+			}
+			pending--
+		}
+		s.used += int64(req.Rows)
+		if !s.kernel.Tell(s.answer) {
+			continue
+		}
+		if err := s.afterStep(send); err != nil {
+			return s.result(Failed, err.Error()), err
+		}
+		if d := s.spec.DrawsPerChain; d > 0 && s.kept >= d {
+			return s.finish(DrawsCollected, "", send)
+		}
+	}
+}
+
+// parts is the number of Points frames a request of rows rows takes.
+func (s *Session) parts(rows int) int { return (rows + s.rowsPerPart - 1) / s.rowsPerPart }
+
+func (s *Session) sendPoints(req *kernels.Request, send func(Frame) error) error {
+	n := s.parts(req.Rows)
+	if cap(s.answered) < n {
+		s.answered = make([]bool, n)
+	}
+	s.answered = s.answered[:n]
+	clear(s.answered)
+	if len(s.answer.Grad) < req.Rows*s.spec.Dim {
+		s.answer = kernels.NewAnswer(req.Rows, s.spec.Dim)
+	}
+	dim := s.spec.Dim
+	for p := range n {
+		lo := p * s.rowsPerPart
+		hi := min(lo+s.rowsPerPart, req.Rows)
+		f := &Points{RequestID: s.requestID, FirstRow: lo, Rows: hi - lo, TotalRows: req.Rows, Dim: dim,
+			Points: req.Points[lo*dim : hi*dim], Chains: req.Chain[lo:hi], Need: req.Need}
+		if err := send(f); err != nil {
+			return err
+		}
+	}
+	return nil
+}
+
+// accept validates one answer part and copies it into s.answer.
+func (s *Session) accept(req *kernels.Request, ev *Evaluations) *Error {
+	if ev.RequestID != s.requestID {
+		return BadField("evaluations.request_id", "answers request %d, but the current request is %d", ev.RequestID, s.requestID)
+	}
+	if ev.FirstRow < 0 || ev.FirstRow >= req.Rows || ev.FirstRow%s.rowsPerPart != 0 {
+		return BadField("evaluations.first_row", "%d is not the first row of a part of request %d", ev.FirstRow, s.requestID)
+	}
+	part := ev.FirstRow / s.rowsPerPart
+	if s.answered[part] {
+		return BadField("evaluations.first_row", "part starting at row %d of request %d was already answered", ev.FirstRow, s.requestID)
+	}
+	rows := min(s.rowsPerPart, req.Rows-ev.FirstRow)
+	if ev.Rows != rows {
+		return BadField("evaluations.rows", "is %d, the part has %d rows", ev.Rows, rows)
+	}
+	dim := s.spec.Dim
+	if ev.Dim != dim {
+		return BadField("evaluations.dim", "is %d, the session's dimension is %d", ev.Dim, dim)
+	}
+	if req.Need.Has(kernels.NeedGradient) {
+		if len(ev.Grad) != rows*dim {
+			return BadField("evaluations.gradients", "has %d values, want rows × dim = %d", len(ev.Grad), rows*dim)
+		}
+		for i, v := range ev.Grad {
+			if math.IsNaN(v) || math.IsInf(v, 0) {
+				return badValue("evaluations.gradients", req.Chain[ev.FirstRow+i/dim], i%dim, "value %v is not finite", v)
+			}
+		}
+		copy(s.answer.Grad[ev.FirstRow*dim:], ev.Grad)
+	} else if len(ev.Grad) != 0 {
+		return BadField("evaluations.gradients", "must be empty: gradients were not asked for")
+	}
+	if req.Need.Has(kernels.NeedLogDensity) {
+		if len(ev.LogDensity) != rows {
+			return BadField("evaluations.log_densities", "has %d values, want rows = %d", len(ev.LogDensity), rows)
+		}
+		for i, v := range ev.LogDensity {
+			if math.IsNaN(v) || math.IsInf(v, 0) {
+				return badValue("evaluations.log_densities", req.Chain[ev.FirstRow+i], -1, "value %v is not finite", v)
+			}
+		}
+		copy(s.answer.LogDensity[ev.FirstRow:], ev.LogDensity)
+	} else if len(ev.LogDensity) != 0 {
+		return BadField("evaluations.log_densities", "must be empty: log densities were not asked for")
+	}
+	s.answered[part] = true
+	return nil
+}
+
+// afterStep keeps draws and sends progress after a completed step.
+func (s *Session) afterStep(send func(Frame) error) error {
+	step := int64(s.kernel.Steps())
+	if step > s.spec.BurnIn && (step-s.spec.BurnIn)%s.spec.KeepEvery == 0 {
+		if err := s.sendDraws(step, send); err != nil {
+			return err
+		}
+	}
+	now := time.Now()
+	due := now.Sub(s.lastProgress) >= s.progressInterval()
+	if e := s.spec.ProgressEverySteps; e > 0 {
+		due = step%e == 0
+	}
+	if due {
+		s.lastProgress = now
+		p := s.progress(now)
+		return send(&p)
+	}
+	return nil
+}
+
+func (s *Session) progressInterval() time.Duration {
+	if s.spec.ProgressInterval > 0 {
+		return s.spec.ProgressInterval
+	}
+	return s.lim.ProgressInterval
+}
+
+func (s *Session) sendDraws(step int64, send func(Frame) error) error {
+	x := s.kernel.Positions()
+	dim, chains := s.spec.Dim, s.spec.Chains
+	for c := range chains {
+		s.count++
+		row := x[c*dim : (c+1)*dim]
+		for i, v := range row {
+			d := v - s.mean[i]
+			s.mean[i] += d / float64(s.count)
+			s.m2[i] += d * (v - s.mean[i])
+		}
+	}
+	s.kept++
+	if s.drawChains == nil {
+		s.drawChains = make([]int, chains)
+		s.drawIters = make([]int64, chains)
+		for c := range s.drawChains {
+			s.drawChains[c] = c
+		}
+	}
+	for c := range chains {
+		s.drawIters[c] = step
+	}
+	for lo := 0; lo < chains; lo += s.rowsPerPart {
+		hi := min(lo+s.rowsPerPart, chains)
+		s.draws = Draws{Seq: s.seq, Rows: hi - lo, Dim: dim, Values: x[lo*dim : hi*dim],
+			Chains: s.drawChains[lo:hi], Iterations: s.drawIters[lo:hi]}
+		if err := send(&s.draws); err != nil {
+			return err
+		}
+		s.seq += uint64(hi - lo)
+	}
+	return nil
+}
+
+func (s *Session) progress(now time.Time) Progress {
+	elapsed := now.Sub(s.start)
+	p := Progress{State: Sampling, Steps: int64(s.kernel.Steps()), EvaluationsUsed: s.used,
+		EvaluationsLeft: -1, Elapsed: elapsed, TimeLeft: -1, DrawsSent: int64(s.seq)}
+	if int64(s.kernel.Steps()) < s.spec.BurnIn {
+		p.State = BurnIn
+	}
+	if m := s.spec.MaxEvaluations; m > 0 {
+		p.EvaluationsLeft = m - s.used
+	}
+	maxTime := s.spec.MaxTime
+	if s.lim.MaxTime > 0 && (maxTime == 0 || s.lim.MaxTime < maxTime) {
+		maxTime = s.lim.MaxTime
+	}
+	if maxTime > 0 {
+		p.TimeLeft = max(0, maxTime-elapsed)
+	}
+	if sec := elapsed.Seconds(); sec > 0 {
+		p.EvaluationsPerSecond = float64(s.used) / sec
+	}
+	return p
+}
+
+func (s *Session) result(r Reason, msg string) Result {
+	p := s.progress(time.Now())
+	p.State = Done
+	f := Finished{Reason: r, Message: msg, Progress: p, Parameters: make([]ParameterSummary, s.spec.Dim)}
+	for i := range f.Parameters {
+		ps := ParameterSummary{Name: s.spec.Names[i], Count: s.count}
+		if s.count > 0 {
+			ps.Mean = s.mean[i]
+		}
+		if s.count > 1 {
+			ps.SD = math.Sqrt(s.m2[i] / float64(s.count-1))
+		}
+		f.Parameters[i] = ps
+	}
+	return Result{Finished: f, Kernel: s.kernel}
+}
+
+func (s *Session) finish(r Reason, msg string, send func(Frame) error) (Result, error) {
+	res := s.result(r, msg)
+	if err := send(&res.Finished); err != nil {
+		return res, err
+	}
+	return res, nil
+}
+
+// fail sends a Finished frame with reason Failed (best effort: the stream
+// may be gone) and returns the error.
+func (s *Session) fail(e *Error, send func(Frame) error) (Result, error) {
+	res := s.result(Failed, e.Error())
+	_ = send(&res.Finished) // best effort; e is what the caller reports
+	return res, e
+}
