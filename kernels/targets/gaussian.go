@@ -112,11 +112,7 @@ func (g *Gaussian) LogDensity(x []float64) float64 {
 	var quad float64
 	for i := range p {
 		row := g.q[i*p : (i+1)*p : (i+1)*p]
-		var s float64
-		for j, qij := range row {
-			s += qij * (x[j] - g.mean[j])
-		}
-		quad += (x[i] - g.mean[i]) * s
+		quad += (x[i] - g.mean[i]) * dotDiff(row, x, g.mean)
 	}
 	return -0.5*quad + g.logZ
 }
@@ -129,11 +125,7 @@ func (g *Gaussian) GradLogDensity(dst, x []float64) {
 	checkGrad(dst, x, p)
 	for i := range p {
 		row := g.q[i*p : (i+1)*p : (i+1)*p]
-		var s float64
-		for j, qij := range row {
-			s += qij * (x[j] - g.mean[j])
-		}
-		dst[i] = -s
+		dst[i] = -dotDiff(row, x, g.mean)
 	}
 }
 

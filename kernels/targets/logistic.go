@@ -82,15 +82,6 @@ func (l *Logistic) Rows() int { return l.n }
 // constructor (gonum mat.EigenSym).
 func (l *Logistic) Curvature() (m, M float64) { return l.m, l.bigM }
 
-// dot returns aᵀb for equal-length slices.
-func dot(a, b []float64) float64 {
-	var s float64
-	for j, v := range a {
-		s += v * b[j]
-	}
-	return s
-}
-
 // LogDensity returns Σ_i [y_i·x_iᵀθ − log(1+exp(x_iᵀθ))] − (α/2)‖θ‖². It
 // panics if len(theta) != Dim and allocates nothing.
 func (l *Logistic) LogDensity(theta []float64) float64 {

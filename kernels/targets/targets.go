@@ -13,7 +13,8 @@ type Target interface {
 	Dim() int
 	// LogDensity returns log π(x) up to an additive constant.
 	LogDensity(x []float64) float64
-	// GradLogDensity writes ∇log π(x) into dst (len Dim).
+	// GradLogDensity writes ∇log π(x) into dst (len Dim). dst must not
+	// overlap x.
 	GradLogDensity(dst, x []float64)
 	// Curvature returns m and M of the potential f = −log π (m may be 0).
 	Curvature() (m, M float64)
@@ -89,4 +90,40 @@ func sigmoid(z float64) float64 {
 	}
 	e := math.Exp(z)
 	return e / (1 + e)
+}
+
+// dot returns aᵀb; b must be at least as long as a. Four partial sums break
+// the floating-point add dependency chain.
+func dot(a, b []float64) float64 {
+	b = b[:len(a)]
+	var s0, s1, s2, s3 float64
+	j := 0
+	for ; j+4 <= len(a); j += 4 {
+		s0 += a[j] * b[j]
+		s1 += a[j+1] * b[j+1]
+		s2 += a[j+2] * b[j+2]
+		s3 += a[j+3] * b[j+3]
+	}
+	for ; j < len(a); j++ {
+		s0 += a[j] * b[j]
+	}
+	return (s0 + s1) + (s2 + s3)
+}
+
+// dotDiff returns aᵀ(x − mu); x and mu must be at least as long as a.
+func dotDiff(a, x, mu []float64) float64 {
+	x = x[:len(a)]
+	mu = mu[:len(a)]
+	var s0, s1, s2, s3 float64
+	j := 0
+	for ; j+4 <= len(a); j += 4 {
+		s0 += a[j] * (x[j] - mu[j])
+		s1 += a[j+1] * (x[j+1] - mu[j+1])
+		s2 += a[j+2] * (x[j+2] - mu[j+2])
+		s3 += a[j+3] * (x[j+3] - mu[j+3])
+	}
+	for ; j < len(a); j++ {
+		s0 += a[j] * (x[j] - mu[j])
+	}
+	return (s0 + s1) + (s2 + s3)
 }
