@@ -74,6 +74,7 @@ const (
 	Stopped
 	DrawsCollected
 	Failed
+	Shutdown
 )
 
 func (r Reason) String() string {
@@ -88,6 +89,8 @@ func (r Reason) String() string {
 		return "draws collected"
 	case Failed:
 		return "failed"
+	case Shutdown:
+		return "server shutting down"
 	}
 	return "unknown"
 }
@@ -129,6 +132,8 @@ type Message struct {
 	Evaluations *Evaluations
 	Stop        bool
 	StopReason  string
+	// Shutdown, with Stop, says the server (not the client) asked to stop.
+	Shutdown bool
 	// Err ends the stream: io.EOF for a clean close, anything else for a
 	// broken one. An *Error here fails the session with that error.
 	Err error

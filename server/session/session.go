@@ -90,6 +90,10 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 	return s, nil
 }
 
+// MessageLimit is the negotiated message size limit in bytes: the
+// smaller of the server's and the client's.
+func (s *Session) MessageLimit() int64 { return s.msgBytes }
+
 // ID is the session's identifier.
 func (s *Session) ID() string { return s.id }
 
@@ -160,6 +164,8 @@ func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) e
 					return s.result(Failed, "client closed the stream"), ErrClientGone
 				}
 				return s.result(Failed, msg.Err.Error()), fmt.Errorf("%w: %v", ErrClientGone, msg.Err)
+			case msg.Stop && msg.Shutdown:
+				return s.finish(Shutdown, msg.StopReason, send)
 			case msg.Stop:
 				return s.finish(Stopped, msg.StopReason, send)
 			case msg.Evaluations == nil:

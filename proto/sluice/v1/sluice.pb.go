@@ -163,6 +163,8 @@ const (
 	FinishReason_FINISH_REASON_DRAWS_COLLECTED FinishReason = 4
 	// The session failed; `message` says why.
 	FinishReason_FINISH_REASON_FAILED FinishReason = 5
+	// The server is shutting down; the session ended cleanly first.
+	FinishReason_FINISH_REASON_SHUTDOWN FinishReason = 6
 )
 
 // Enum value maps for FinishReason.
@@ -174,6 +176,7 @@ var (
 		3: "FINISH_REASON_STOPPED",
 		4: "FINISH_REASON_DRAWS_COLLECTED",
 		5: "FINISH_REASON_FAILED",
+		6: "FINISH_REASON_SHUTDOWN",
 	}
 	FinishReason_value = map[string]int32{
 		"FINISH_REASON_UNSPECIFIED":     0,
@@ -182,6 +185,7 @@ var (
 		"FINISH_REASON_STOPPED":         3,
 		"FINISH_REASON_DRAWS_COLLECTED": 4,
 		"FINISH_REASON_FAILED":          5,
+		"FINISH_REASON_SHUTDOWN":        6,
 	}
 )
 
@@ -1460,14 +1464,15 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x11STATE_UNSPECIFIED\x10\x00\x12\x11\n" +
 	"\rSTATE_BURN_IN\x10\x01\x12\x12\n" +
 	"\x0eSTATE_SAMPLING\x10\x02\x12\x12\n" +
-	"\x0eSTATE_FINISHED\x10\x03*\xc3\x01\n" +
+	"\x0eSTATE_FINISHED\x10\x03*\xdf\x01\n" +
 	"\fFinishReason\x12\x1d\n" +
 	"\x19FINISH_REASON_UNSPECIFIED\x10\x00\x12\x1e\n" +
 	"\x1aFINISH_REASON_BUDGET_SPENT\x10\x01\x12\x1c\n" +
 	"\x18FINISH_REASON_TIME_SPENT\x10\x02\x12\x19\n" +
 	"\x15FINISH_REASON_STOPPED\x10\x03\x12!\n" +
 	"\x1dFINISH_REASON_DRAWS_COLLECTED\x10\x04\x12\x18\n" +
-	"\x14FINISH_REASON_FAILED\x10\x052U\n" +
+	"\x14FINISH_REASON_FAILED\x10\x05\x12\x1a\n" +
+	"\x16FINISH_REASON_SHUTDOWN\x10\x062U\n" +
 	"\rSluiceService\x12D\n" +
 	"\aSession\x12\x19.sluice.v1.SessionRequest\x1a\x1a.sluice.v1.SessionResponse(\x010\x01B!Z\x1fsluice/proto/sluice/v1;sluicev1b\x06proto3"
 

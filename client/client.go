@@ -1,0 +1,408 @@
+package client
+
+import (
+	"context"
+	"encoding/binary"
+	"errors"
+	"fmt"
+	"io"
+	"math"
+	"time"
+
+	"google.golang.org/grpc"
+
+	sluicev1 "sluice/proto/sluice/v1"
+)
+
+// Spec describes a session; see the Register message of the wire API for
+// every field's meaning and zero value.
+type Spec struct {
+	Dim, Chains int
+	// Kernel names the method; "" means "lmc".
+	Kernel string
+	// Start holds Dim values (every chain starts there) or Chains×Dim.
+	Start []float64
+	// Step is the step size h > 0.
+	Step                             float64
+	BurnIn, KeepEvery, DrawsPerChain int64
+	MaxEvaluations                   int64
+	MaxTime                          time.Duration
+	ProgressEverySteps               int64
+	ProgressInterval                 time.Duration
+	Seed                             uint64
+	Names                            []string
+	// MaxMessageBytes is the largest message this client accepts and
+	// sends; 0 means 4 MiB.
+	MaxMessageBytes int64
+}
+
+// Batch is one set of points to evaluate. The evaluator fills Grad (and
+// LogDensity when WantLogDensity) in row order. A Batch and its slices
+// are reused between calls: copy what must outlive the call.
+type Batch struct {
+	Rows, Dim int
+	// Points holds Rows×Dim values, row-major.
+	Points []float64
+	// Chains gives the chain of each row.
+	Chains []int
+	// WantGradient and WantLogDensity say what the server asks for.
+	WantGradient, WantLogDensity bool
+	// Grad receives ∇log π, Rows×Dim values.
+	Grad []float64
+	// LogDensity receives log π (up to a constant), Rows values.
+	LogDensity []float64
+}
+
+// Point returns row r of Points.
+func (b *Batch) Point(r int) []float64 { return b.Points[r*b.Dim : (r+1)*b.Dim] }
+
+// Evaluator evaluates a batch. An error stops the session: the client
+// sends Stop, still receives the draws already made and the summary, and
+// Run returns the error.
+type Evaluator func(ctx context.Context, b *Batch) error
+
+// Registered is the server's acknowledgement.
+type Registered struct {
+	SessionID          string
+	Seed               uint64
+	Kernel             string
+	Step               float64
+	EvaluationsPerStep int64
+	MaxMessageBytes    int64
+	Names              []string
+}
+
+// Draws is a block of draws numbered Seq, Seq+1, ..., Seq+Rows−1. It is
+// reused between callbacks: copy what must outlive the call.
+type Draws struct {
+	Seq        uint64
+	Rows, Dim  int
+	Values     []float64 // Rows×Dim
+	Chains     []int
+	Iterations []int64
+}
+
+// State is where a session is.
+type State string
+
+const (
+	BurnIn   State = "burn-in"
+	Sampling State = "sampling"
+	Finished State = "finished"
+)
+
+// Progress reports the budget. EvaluationsLeft and TimeLeft are −1 when
+// unlimited.
+type Progress struct {
+	State                State
+	Steps                int64
+	EvaluationsUsed      int64
+	EvaluationsLeft      int64
+	Elapsed, TimeLeft    time.Duration
+	DrawsSent            int64
+	EvaluationsPerSecond float64
+}
+
+// Reason says why a session ended.
+type Reason string
+
+const (
+	BudgetSpent    Reason = "budget spent"
+	TimeSpent      Reason = "time spent"
+	Stopped        Reason = "stopped by client"
+	DrawsCollected Reason = "draws collected"
+	Failed         Reason = "failed"
+	Shutdown       Reason = "server shutting down"
+)
+
+// Parameter summarises one parameter's kept draws (computed by the
+// server over every kept draw).
+type Parameter struct {
+	Name     string
+	Mean, SD float64
+	Count    int64
+}
+
+// Summary is what a finished session reports.
+type Summary struct {
+	Registered    Registered
+	Reason        Reason
+	Message       string
+	Progress      Progress
+	Parameters    []Parameter
+	DrawsReceived int64
+}
+
+// Option adjusts Run.
+type Option func(*config)
+
+type config struct {
+	onRegistered func(*Registered)
+	onDraws      func(*Draws)
+	onProgress   func(*Progress)
+	callOpts     []grpc.CallOption
+}
+
+// OnRegistered calls f once the server accepted the session.
+func OnRegistered(f func(*Registered)) Option { return func(c *config) { c.onRegistered = f } }
+
+// OnDraws calls f for every block of draws, in sequence order.
+func OnDraws(f func(*Draws)) Option { return func(c *config) { c.onDraws = f } }
+
+// OnProgress calls f for every progress report.
+func OnProgress(f func(*Progress)) Option { return func(c *config) { c.onProgress = f } }
+
+// WithCallOptions adds gRPC call options to the session's stream.
+func WithCallOptions(o ...grpc.CallOption) Option {
+	return func(c *config) { c.callOpts = append(c.callOpts, o...) }
+}
+
+// ErrDrawsLost is returned when the draws' sequence numbers show a gap or
+// a repeat: it means a fault between server and client.
+var ErrDrawsLost = errors.New("client: draws lost or repeated")
+
+// Run opens a session, answers every request with eval until the server
+// finishes, and returns the summary. Callbacks run on Run's goroutine. A
+// server error (a gRPC status) is returned as it is, with the summary of
+// what was received when the server managed to send one.
+func Run(ctx context.Context, cc grpc.ClientConnInterface, spec Spec, eval Evaluator, opts ...Option) (*Summary, error) {
+	var cfg config
+	for _, o := range opts {
+		o(&cfg)
+	}
+	limit := spec.MaxMessageBytes
+	if limit <= 0 {
+		limit = 4 << 20
+	}
+	callOpts := append([]grpc.CallOption{grpc.MaxCallRecvMsgSize(int(limit)), grpc.MaxCallSendMsgSize(int(limit))}, cfg.callOpts...)
+	ctx, cancel := context.WithCancel(ctx)
+	defer cancel()
+	stream, err := sluicev1.NewSluiceServiceClient(cc).Session(ctx, callOpts...)
+	if err != nil {
+		return nil, err
+	}
+	if err := stream.Send(registerFrame(spec, limit)); err != nil {
+		return nil, recvStatus(stream, err)
+	}
+	r := runner{cfg: cfg, eval: eval, stream: stream, sum: &Summary{}}
+	return r.loop(ctx)
+}
+
+func registerFrame(spec Spec, limit int64) *sluicev1.SessionRequest {
+	startRows := int32(1)
+	if spec.Dim > 0 && len(spec.Start) == spec.Dim*spec.Chains && spec.Chains > 1 {
+		startRows = int32(spec.Chains)
+	}
+	return &sluicev1.SessionRequest{Frame: &sluicev1.SessionRequest_Register{Register: &sluicev1.Register{
+		Dim: int32(spec.Dim), Chains: int32(spec.Chains), Kernel: spec.Kernel,
+		Start: putFloats(nil, spec.Start), StartRows: startRows, Step: spec.Step,
+		BurnIn: spec.BurnIn, KeepEvery: spec.KeepEvery, DrawsPerChain: spec.DrawsPerChain,
+		MaxEvaluations: spec.MaxEvaluations, MaxSeconds: spec.MaxTime.Seconds(),
+		ProgressEverySteps: spec.ProgressEverySteps, ProgressIntervalSeconds: spec.ProgressInterval.Seconds(),
+		Seed: spec.Seed, Names: spec.Names, MaxMessageBytes: limit,
+	}}}
+}
+
+type runner struct {
+	cfg      config
+	eval     Evaluator
+	stream   grpc.BidiStreamingClient[sluicev1.SessionRequest, sluicev1.SessionResponse]
+	sum      *Summary
+	batch    Batch
+	draws    Draws
+	nextSeq  uint64
+	evalErr  error
+	finished bool
+	// sendClosed is set once Send reported the stream closed by the
+	// server.
+	sendClosed bool
+	out        []byte
+}
+
+func (r *runner) loop(ctx context.Context) (*Summary, error) {
+	for {
+		f, err := r.stream.Recv()
+		if errors.Is(err, io.EOF) {
+			if !r.finished {
+				return r.result(errors.New("client: stream ended without a finished frame"))
+			}
+			return r.result(r.evalErr)
+		}
+		if err != nil {
+			return r.result(err)
+		}
+		switch f := f.GetFrame().(type) {
+		case *sluicev1.SessionResponse_Registered:
+			g := f.Registered
+			r.sum.Registered = Registered{SessionID: g.GetSessionId(), Seed: g.GetSeed(), Kernel: g.GetKernel(), Step: g.GetStep(),
+				EvaluationsPerStep: g.GetEvaluationsPerStep(), MaxMessageBytes: g.GetMaxMessageBytes(), Names: g.GetNames()}
+			if r.cfg.onRegistered != nil {
+				r.cfg.onRegistered(&r.sum.Registered)
+			}
+		case *sluicev1.SessionResponse_Points:
+			if r.evalErr != nil || r.sendClosed {
+				continue // Stop already sent, or the server is finishing
+			}
+			err := r.answer(ctx, f.Points)
+			if errors.Is(err, io.EOF) {
+				// The server ended the stream: Recv delivers what it
+				// sent before (the Finished frame) and then its status.
+				r.sendClosed = true
+			} else if err != nil {
+				return r.result(err)
+			}
+		case *sluicev1.SessionResponse_Draws:
+			if err := r.deliver(f.Draws); err != nil {
+				return r.result(err)
+			}
+		case *sluicev1.SessionResponse_Progress:
+			if r.cfg.onProgress != nil {
+				p := progressFromWire(f.Progress)
+				r.cfg.onProgress(&p)
+			}
+		case *sluicev1.SessionResponse_Finished:
+			r.finish(f.Finished)
+		}
+	}
+}
+
+func (r *runner) result(err error) (*Summary, error) {
+	_ = r.stream.CloseSend()
+	if !r.finished {
+		return nil, err
+	}
+	return r.sum, err
+}
+
+func (r *runner) answer(ctx context.Context, p *sluicev1.Points) error {
+	b := &r.batch
+	b.Rows, b.Dim = int(p.GetRows()), int(p.GetDim())
+	n := b.Rows * b.Dim
+	if len(p.GetPoints()) != 8*n || len(p.GetChains()) != b.Rows {
+		return fmt.Errorf("client: malformed points frame: %d bytes and %d chains for %d×%d", len(p.GetPoints()), len(p.GetChains()), b.Rows, b.Dim)
+	}
+	b.Points = getFloats(b.Points[:0], p.GetPoints())
+	b.Chains = b.Chains[:0]
+	for _, c := range p.GetChains() {
+		b.Chains = append(b.Chains, int(c))
+	}
+	b.WantGradient, b.WantLogDensity = false, false
+	for _, q := range p.GetQuantities() {
+		switch q {
+		case sluicev1.Quantity_QUANTITY_GRADIENT:
+			b.WantGradient = true
+		case sluicev1.Quantity_QUANTITY_LOG_DENSITY:
+			b.WantLogDensity = true
+		}
+	}
+	b.Grad = resize(b.Grad, n)
+	b.LogDensity = resize(b.LogDensity, b.Rows)
+	ev := &sluicev1.Evaluations{RequestId: p.GetRequestId(), FirstRow: p.GetFirstRow(), Rows: p.GetRows(), Dim: p.GetDim()}
+	if err := r.eval(ctx, b); err != nil {
+		r.evalErr = err
+		return r.stream.Send(&sluicev1.SessionRequest{Frame: &sluicev1.SessionRequest_Stop{Stop: &sluicev1.Stop{Reason: "evaluator failed: " + err.Error()}}})
+	}
+	r.out = r.out[:0]
+	if b.WantGradient {
+		r.out = putFloats(r.out, b.Grad)
+		ev.Gradients = r.out
+	}
+	if b.WantLogDensity {
+		ev.LogDensities = putFloats(nil, b.LogDensity)
+	}
+	return r.stream.Send(&sluicev1.SessionRequest{Frame: &sluicev1.SessionRequest_Evaluations{Evaluations: ev}})
+}
+
+func (r *runner) deliver(w *sluicev1.Draws) error {
+	d := &r.draws
+	d.Seq, d.Rows, d.Dim = w.GetSeq(), int(w.GetRows()), int(w.GetDim())
+	if d.Seq != r.nextSeq {
+		return fmt.Errorf("%w: got sequence %d, expected %d", ErrDrawsLost, d.Seq, r.nextSeq)
+	}
+	if len(w.GetValues()) != 8*d.Rows*d.Dim || len(w.GetChains()) != d.Rows || len(w.GetIterations()) != d.Rows {
+		return fmt.Errorf("client: malformed draws frame at sequence %d", d.Seq)
+	}
+	r.nextSeq += uint64(d.Rows)
+	r.sum.DrawsReceived += int64(d.Rows)
+	if r.cfg.onDraws == nil {
+		return nil
+	}
+	d.Values = getFloats(d.Values[:0], w.GetValues())
+	d.Chains = d.Chains[:0]
+	for _, c := range w.GetChains() {
+		d.Chains = append(d.Chains, int(c))
+	}
+	d.Iterations = append(d.Iterations[:0], w.GetIterations()...)
+	r.cfg.onDraws(d)
+	return nil
+}
+
+var reasonFromWire = map[sluicev1.FinishReason]Reason{
+	sluicev1.FinishReason_FINISH_REASON_BUDGET_SPENT:    BudgetSpent,
+	sluicev1.FinishReason_FINISH_REASON_TIME_SPENT:      TimeSpent,
+	sluicev1.FinishReason_FINISH_REASON_STOPPED:         Stopped,
+	sluicev1.FinishReason_FINISH_REASON_DRAWS_COLLECTED: DrawsCollected,
+	sluicev1.FinishReason_FINISH_REASON_FAILED:          Failed,
+	sluicev1.FinishReason_FINISH_REASON_SHUTDOWN:        Shutdown,
+}
+
+func (r *runner) finish(f *sluicev1.Finished) {
+	r.finished = true
+	r.sum.Reason = reasonFromWire[f.GetReason()]
+	r.sum.Message = f.GetMessage()
+	r.sum.Progress = progressFromWire(f.GetProgress())
+	r.sum.Parameters = make([]Parameter, len(f.GetParameters()))
+	for i, p := range f.GetParameters() {
+		r.sum.Parameters[i] = Parameter{Name: p.GetName(), Mean: p.GetMean(), SD: p.GetSd(), Count: p.GetCount()}
+	}
+}
+
+var stateFromWire = map[sluicev1.State]State{
+	sluicev1.State_STATE_BURN_IN:  BurnIn,
+	sluicev1.State_STATE_SAMPLING: Sampling,
+	sluicev1.State_STATE_FINISHED: Finished,
+}
+
+func progressFromWire(p *sluicev1.Progress) Progress {
+	sec := func(s float64) time.Duration {
+		if s < 0 {
+			return -1
+		}
+		return time.Duration(s * float64(time.Second))
+	}
+	return Progress{State: stateFromWire[p.GetState()], Steps: p.GetSteps(), EvaluationsUsed: p.GetEvaluationsUsed(),
+		EvaluationsLeft: p.GetEvaluationsLeft(), Elapsed: sec(p.GetSecondsUsed()), TimeLeft: sec(p.GetSecondsLeft()),
+		DrawsSent: p.GetDrawsSent(), EvaluationsPerSecond: p.GetEvaluationsPerSecond()}
+}
+
+// recvStatus returns the stream's real status after a failed Send (gRPC
+// reports io.EOF from Send and the cause from Recv).
+func recvStatus(s grpc.BidiStreamingClient[sluicev1.SessionRequest, sluicev1.SessionResponse], err error) error {
+	if errors.Is(err, io.EOF) {
+		if _, rerr := s.Recv(); rerr != nil && !errors.Is(rerr, io.EOF) {
+			return rerr
+		}
+	}
+	return err
+}
+
+func resize(s []float64, n int) []float64 {
+	if cap(s) < n {
+		return make([]float64, n)
+	}
+	return s[:n]
+}
+
+func putFloats(dst []byte, v []float64) []byte {
+	for _, x := range v {
+		dst = binary.LittleEndian.AppendUint64(dst, math.Float64bits(x))
+	}
+	return dst
+}
+
+func getFloats(dst []float64, b []byte) []float64 {
+	for i := 0; i+8 <= len(b); i += 8 {
+		dst = append(dst, math.Float64frombits(binary.LittleEndian.Uint64(b[i:])))
+	}
+	return dst
+}

@@ -1,0 +1,145 @@
+package server
+
+import (
+	"sluice/kernels"
+	sluicev1 "sluice/proto/sluice/v1"
+	"sluice/server/session"
+)
+
+// specFromWire turns a Register frame into an engine Spec. Only decoding
+// happens here; the engine validates the values.
+func specFromWire(r *sluicev1.Register) (session.Spec, error) {
+	start, err := floats("register.start", r.GetStart())
+	if err != nil {
+		return session.Spec{}, err
+	}
+	maxTime, err := session.ParseSeconds("register.max_seconds", r.GetMaxSeconds())
+	if err != nil {
+		return session.Spec{}, err
+	}
+	interval, err := session.ParseSeconds("register.progress_interval_seconds", r.GetProgressIntervalSeconds())
+	if err != nil {
+		return session.Spec{}, err
+	}
+	return session.Spec{
+		Dim:                int(r.GetDim()),
+		Chains:             int(r.GetChains()),
+		Kernel:             r.GetKernel(),
+		Start:              start,
+		StartRows:          int(r.GetStartRows()),
+		Step:               r.GetStep(),
+		BurnIn:             r.GetBurnIn(),
+		KeepEvery:          r.GetKeepEvery(),
+		DrawsPerChain:      r.GetDrawsPerChain(),
+		MaxEvaluations:     r.GetMaxEvaluations(),
+		MaxTime:            maxTime,
+		ProgressEverySteps: r.GetProgressEverySteps(),
+		ProgressInterval:   interval,
+		Seed:               r.GetSeed(),
+		Names:              r.GetNames(),
+		MaxMessageBytes:    r.GetMaxMessageBytes(),
+	}, nil
+}
+
+// messageFromWire turns one received frame into an engine Message.
+func messageFromWire(f *sluicev1.SessionRequest) session.Message {
+	switch f := f.GetFrame().(type) {
+	case *sluicev1.SessionRequest_Evaluations:
+		e := f.Evaluations
+		grad, err := floats("evaluations.gradients", e.GetGradients())
+		if err != nil {
+			return session.Message{Err: err}
+		}
+		ld, err := floats("evaluations.log_densities", e.GetLogDensities())
+		if err != nil {
+			return session.Message{Err: err}
+		}
+		return session.Message{Evaluations: &session.Evaluations{RequestID: e.GetRequestId(), FirstRow: int(e.GetFirstRow()),
+			Rows: int(e.GetRows()), Dim: int(e.GetDim()), Grad: grad, LogDensity: ld}}
+	case *sluicev1.SessionRequest_Stop:
+		return session.Message{Stop: true, StopReason: f.Stop.GetReason()}
+	case *sluicev1.SessionRequest_Register:
+		return session.Message{Err: session.BadField("register", "sent twice: a session registers once")}
+	default:
+		return session.Message{Err: session.BadField("frame", "empty frame")}
+	}
+}
+
+// encoder turns engine frames into wire frames, reusing its buffers: a
+// frame is fully serialised by Send before the next one is built.
+type encoder struct {
+	buf []byte
+	i32 []int32
+}
+
+func (e *encoder) floats(v []float64) []byte {
+	e.buf = putFloats(e.buf[:0], v)
+	return e.buf
+}
+
+func (e *encoder) ints(v []int) []int32 {
+	e.i32 = e.i32[:0]
+	for _, x := range v {
+		e.i32 = append(e.i32, int32(x))
+	}
+	return e.i32
+}
+
+func (e *encoder) frame(f session.Frame) *sluicev1.SessionResponse {
+	switch f := f.(type) {
+	case *session.Registered:
+		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Registered{Registered: &sluicev1.Registered{
+			SessionId: f.SessionID, Seed: f.Seed, Kernel: f.Kernel, Step: f.Step,
+			EvaluationsPerStep: int64(f.EvaluationsPerStep), MaxMessageBytes: f.MaxMessageBytes, Names: f.Names}}}
+	case *session.Points:
+		var q []sluicev1.Quantity
+		if f.Need.Has(kernels.NeedGradient) {
+			q = append(q, sluicev1.Quantity_QUANTITY_GRADIENT)
+		}
+		if f.Need.Has(kernels.NeedLogDensity) {
+			q = append(q, sluicev1.Quantity_QUANTITY_LOG_DENSITY)
+		}
+		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Points{Points: &sluicev1.Points{
+			RequestId: f.RequestID, FirstRow: int32(f.FirstRow), Rows: int32(f.Rows), Dim: int32(f.Dim),
+			Points: e.floats(f.Points), Chains: e.ints(f.Chains), Quantities: q, TotalRows: int32(f.TotalRows)}}}
+	case *session.Draws:
+		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Draws{Draws: &sluicev1.Draws{
+			Seq: f.Seq, Rows: int32(f.Rows), Dim: int32(f.Dim), Values: e.floats(f.Values),
+			Chains: e.ints(f.Chains), Iterations: f.Iterations}}}
+	case *session.Progress:
+		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Progress{Progress: progressToWire(f)}}
+	case *session.Finished:
+		ps := make([]*sluicev1.ParameterSummary, len(f.Parameters))
+		for i, p := range f.Parameters {
+			ps[i] = &sluicev1.ParameterSummary{Name: p.Name, Mean: p.Mean, Sd: p.SD, Count: p.Count}
+		}
+		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Finished{Finished: &sluicev1.Finished{
+			Reason: reasonToWire[f.Reason], Message: f.Message, Progress: progressToWire(&f.Progress), Parameters: ps}}}
+	}
+	panic("server: unknown frame type")
+}
+
+var stateToWire = map[session.State]sluicev1.State{
+	session.BurnIn:   sluicev1.State_STATE_BURN_IN,
+	session.Sampling: sluicev1.State_STATE_SAMPLING,
+	session.Done:     sluicev1.State_STATE_FINISHED,
+}
+
+var reasonToWire = map[session.Reason]sluicev1.FinishReason{
+	session.BudgetSpent:    sluicev1.FinishReason_FINISH_REASON_BUDGET_SPENT,
+	session.TimeSpent:      sluicev1.FinishReason_FINISH_REASON_TIME_SPENT,
+	session.Stopped:        sluicev1.FinishReason_FINISH_REASON_STOPPED,
+	session.DrawsCollected: sluicev1.FinishReason_FINISH_REASON_DRAWS_COLLECTED,
+	session.Failed:         sluicev1.FinishReason_FINISH_REASON_FAILED,
+	session.Shutdown:       sluicev1.FinishReason_FINISH_REASON_SHUTDOWN,
+}
+
+func progressToWire(p *session.Progress) *sluicev1.Progress {
+	left := -1.0
+	if p.TimeLeft >= 0 {
+		left = p.TimeLeft.Seconds()
+	}
+	return &sluicev1.Progress{State: stateToWire[p.State], Steps: p.Steps, EvaluationsUsed: p.EvaluationsUsed,
+		EvaluationsLeft: p.EvaluationsLeft, SecondsUsed: p.Elapsed.Seconds(), SecondsLeft: left,
+		DrawsSent: p.DrawsSent, EvaluationsPerSecond: p.EvaluationsPerSecond}
+}

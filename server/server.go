@@ -1,0 +1,266 @@
+package server
+
+import (
+	"context"
+	"crypto/rand"
+	"encoding/hex"
+	"errors"
+	"fmt"
+	"io"
+	"math"
+	"net"
+	"runtime/debug"
+	"sync"
+	"sync/atomic"
+	"time"
+
+	"go.uber.org/zap"
+	"google.golang.org/grpc"
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/health"
+	healthpb "google.golang.org/grpc/health/grpc_health_v1"
+	"google.golang.org/grpc/keepalive"
+	"google.golang.org/grpc/reflection"
+	"google.golang.org/grpc/status"
+	"google.golang.org/protobuf/proto"
+
+	sluicev1 "sluice/proto/sluice/v1"
+	"sluice/server/session"
+)
+
+// Options configure a Server. The zero value is usable.
+type Options struct {
+	// Limits apply to every session (see session.Limits for defaults).
+	// Limits.MaxMessageBytes is also the gRPC receive and send limit.
+	Limits session.Limits
+	// MaxSessions caps concurrent sessions; more are refused with
+	// RESOURCE_EXHAUSTED. 0 means 64.
+	MaxSessions int
+	// Logger receives the server's log; nil means no logging.
+	Logger *zap.Logger
+	// GRPCOptions are added to the server's own options.
+	GRPCOptions []grpc.ServerOption
+}
+
+// Server serves the sluice API, health and reflection on one gRPC server.
+type Server struct {
+	sluicev1.UnimplementedSluiceServiceServer
+
+	opts   Options
+	log    *zap.Logger
+	grpc   *grpc.Server
+	health *health.Server
+	slots  chan struct{}
+	nextID atomic.Uint64
+	prefix string
+
+	mu       sync.Mutex
+	draining bool
+	active   map[string]chan<- session.Message
+}
+
+// ServiceName is the health-check name of the sampling service.
+const ServiceName = "sluice.v1.SluiceService"
+
+// New builds a Server with its gRPC server, health and reflection
+// services registered.
+func New(o Options) *Server {
+	if o.MaxSessions <= 0 {
+		o.MaxSessions = 64
+	}
+	if o.Limits.MaxMessageBytes <= 0 {
+		o.Limits.MaxMessageBytes = 4 << 20
+	}
+	if o.Logger == nil {
+		o.Logger = zap.NewNop()
+	}
+	var b [4]byte
+	_, _ = rand.Read(b[:])
+	s := &Server{opts: o, log: o.Logger, slots: make(chan struct{}, o.MaxSessions),
+		prefix: hex.EncodeToString(b[:]), active: map[string]chan<- session.Message{}}
+	// The engine sizes its frames within Limits.MaxMessageBytes, and the
+	// reader refuses larger client frames with a status naming the frame.
+	// The transport's own cap sits at four times that, as a backstop
+	// against memory exhaustion (its refusal carries no field detail).
+	size := int(min(4*o.Limits.MaxMessageBytes, math.MaxInt32))
+	gopts := append([]grpc.ServerOption{
+		grpc.MaxRecvMsgSize(size),
+		grpc.MaxSendMsgSize(size),
+		grpc.KeepaliveEnforcementPolicy(keepalive.EnforcementPolicy{MinTime: 10 * time.Second, PermitWithoutStream: true}),
+		grpc.KeepaliveParams(keepalive.ServerParameters{Time: 30 * time.Second, Timeout: 20 * time.Second}),
+		grpc.ChainUnaryInterceptor(s.recoverUnary),
+		grpc.ChainStreamInterceptor(s.recoverStream),
+	}, o.GRPCOptions...)
+	s.grpc = grpc.NewServer(gopts...)
+	sluicev1.RegisterSluiceServiceServer(s.grpc, s)
+	s.health = health.NewServer()
+	s.health.SetServingStatus("", healthpb.HealthCheckResponse_SERVING)
+	s.health.SetServingStatus(ServiceName, healthpb.HealthCheckResponse_SERVING)
+	healthpb.RegisterHealthServer(s.grpc, s.health)
+	reflection.Register(s.grpc)
+	return s
+}
+
+// Serve accepts connections on lis until Shutdown or Stop.
+func (s *Server) Serve(lis net.Listener) error { return s.grpc.Serve(lis) }
+
+// GRPCServer exposes the underlying server, for callers that register
+// more services.
+func (s *Server) GRPCServer() *grpc.Server { return s.grpc }
+
+// Shutdown stops the server gracefully: health turns NOT_SERVING, new
+// sessions are refused, every running session is asked to finish (reason
+// FINISH_REASON_SHUTDOWN, so its client still gets its Finished frame),
+// and in-flight calls drain. When ctx ends first, remaining connections
+// are closed hard.
+func (s *Server) Shutdown(ctx context.Context) {
+	s.health.Shutdown()
+	s.mu.Lock()
+	s.draining = true
+	for _, in := range s.active {
+		select {
+		case in <- session.Message{Stop: true, Shutdown: true, StopReason: "server shutting down"}:
+		default: // its queue is full; the hard stop below ends it
+		}
+	}
+	s.mu.Unlock()
+	done := make(chan struct{})
+	go func() { s.grpc.GracefulStop(); close(done) }()
+	select {
+	case <-done:
+	case <-ctx.Done():
+		s.grpc.Stop()
+		<-done
+	}
+}
+
+// Stop closes every connection at once.
+func (s *Server) Stop() { s.grpc.Stop() }
+
+// Session implements the bidirectional Session rpc. The handler's
+// goroutine runs the engine and is the only sender; one reader goroutine,
+// owned by this handler, feeds the engine and exits when the stream ends
+// or the handler returns.
+func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
+	select {
+	case s.slots <- struct{}{}:
+		defer func() { <-s.slots }()
+	default:
+		return status.Errorf(codes.ResourceExhausted, "server busy: %d sessions running", cap(s.slots))
+	}
+	first, err := stream.Recv()
+	if errors.Is(err, io.EOF) {
+		return status.Error(codes.InvalidArgument, "register: stream closed before the first frame")
+	}
+	if err != nil {
+		return toStatus(recvError("register", err))
+	}
+	reg := first.GetRegister()
+	if reg == nil {
+		return toStatus(session.BadField("register", "the first frame must be register"))
+	}
+	spec, err := specFromWire(reg)
+	if err != nil {
+		return toStatus(err)
+	}
+	id := fmt.Sprintf("%s-%d", s.prefix, s.nextID.Add(1))
+	sess, err := session.New(id, spec, s.opts.Limits)
+	if err != nil {
+		s.log.Debug("registration refused", zap.Error(err))
+		return toStatus(err)
+	}
+
+	ctx, cancel := context.WithCancel(stream.Context())
+	defer cancel()
+	in := make(chan session.Message, 16)
+	limit := sess.MessageLimit()
+	if !s.track(id, in) {
+		return status.Error(codes.Unavailable, "server shutting down")
+	}
+	defer s.untrack(id)
+	go func() { // reader: owned by this handler
+		for {
+			f, err := stream.Recv()
+			var m session.Message
+			switch {
+			case err != nil:
+				m = session.Message{Err: recvError("evaluations", err)}
+			case int64(proto.Size(f)) > limit:
+				m = session.Message{Err: &session.Error{Kind: session.TooLarge, Field: "evaluations", Chain: -1, Coord: -1,
+					Reason: fmt.Sprintf("message of %d bytes exceeds the session's limit of %d bytes", proto.Size(f), limit)}}
+			default:
+				m = messageFromWire(f)
+			}
+			select {
+			case in <- m:
+			case <-ctx.Done():
+				return
+			}
+			if m.Err != nil {
+				return
+			}
+		}
+	}()
+
+	sp := sess.Spec()
+	log := s.log.With(zap.String("session", id))
+	log.Info("session started", zap.Int("dim", sp.Dim), zap.Int("chains", sp.Chains),
+		zap.String("kernel", sp.Kernel), zap.Float64("step", sp.Step), zap.Uint64("seed", sp.Seed))
+	var enc encoder
+	res, err := sess.Run(ctx, in, func(f session.Frame) error { return stream.Send(enc.frame(f)) })
+	f := res.Finished
+	fields := []zap.Field{zap.String("reason", f.Reason.String()), zap.Int64("evaluations", f.Progress.EvaluationsUsed),
+		zap.Int64("draws", f.Progress.DrawsSent), zap.Duration("elapsed", f.Progress.Elapsed)}
+	switch {
+	case err == nil:
+		log.Info("session finished", fields...)
+	case errors.Is(err, session.ErrClientGone) || status.Code(err) == codes.Canceled || errors.Is(err, context.Canceled):
+		log.Debug("client went away", append(fields, zap.Error(err))...)
+	default:
+		if _, bad := session.AsError(err); bad {
+			log.Info("session failed on client input", append(fields, zap.Error(err))...)
+		} else {
+			log.Warn("session failed", append(fields, zap.Error(err))...)
+		}
+	}
+	return toStatus(err)
+}
+
+func (s *Server) track(id string, in chan<- session.Message) bool {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	if s.draining {
+		return false
+	}
+	s.active[id] = in
+	return true
+}
+
+func (s *Server) untrack(id string) {
+	s.mu.Lock()
+	delete(s.active, id)
+	s.mu.Unlock()
+}
+
+func (s *Server) recovered(method string, r any) error {
+	s.log.Error("panic in handler", zap.String("method", method), zap.Any("panic", r), zap.ByteString("stack", debug.Stack()))
+	return status.Errorf(codes.Internal, "internal error in %s", method)
+}
+
+func (s *Server) recoverUnary(ctx context.Context, req any, info *grpc.UnaryServerInfo, h grpc.UnaryHandler) (resp any, err error) {
+	defer func() {
+		if r := recover(); r != nil {
+			err = s.recovered(info.FullMethod, r)
+		}
+	}()
+	return h(ctx, req)
+}
+
+func (s *Server) recoverStream(srv any, ss grpc.ServerStream, info *grpc.StreamServerInfo, h grpc.StreamHandler) (err error) {
+	defer func() {
+		if r := recover(); r != nil {
+			err = s.recovered(info.FullMethod, r)
+		}
+	}()
+	return h(srv, ss)
+}

@@ -1,0 +1,386 @@
+package server_test
+
+import (
+	"context"
+	"errors"
+	"math"
+	"net"
+	"sync"
+	"testing"
+	"time"
+
+	"go.uber.org/goleak"
+	"gonum.org/v1/gonum/mat"
+	"google.golang.org/genproto/googleapis/rpc/errdetails"
+	"google.golang.org/grpc"
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/credentials/insecure"
+	healthpb "google.golang.org/grpc/health/grpc_health_v1"
+	reflectpb "google.golang.org/grpc/reflection/grpc_reflection_v1"
+	"google.golang.org/grpc/status"
+	"google.golang.org/grpc/test/bufconn"
+
+	"sluice/client"
+	"sluice/kernels"
+	"sluice/kernels/targets"
+	sluicev1 "sluice/proto/sluice/v1"
+	"sluice/server"
+	"sluice/server/session"
+)
+
+// start serves srv over an in-memory listener and returns a connection;
+// everything is torn down, and goroutine leaks checked, at cleanup.
+func start(t *testing.T, o server.Options) (*grpc.ClientConn, *server.Server) {
+	t.Helper()
+	lis := bufconn.Listen(1 << 20)
+	srv := server.New(o)
+	done := make(chan struct{})
+	go func() { _ = srv.Serve(lis); close(done) }()
+	conn, err := grpc.NewClient("passthrough:///bufnet",
+		grpc.WithContextDialer(func(ctx context.Context, _ string) (net.Conn, error) { return lis.DialContext(ctx) }),
+		grpc.WithTransportCredentials(insecure.NewCredentials()))
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() {
+		conn.Close()
+		srv.Stop()
+		<-done
+		goleak.VerifyNone(t, goleak.IgnoreCurrent())
+	})
+	return conn, srv
+}
+
+func testCtx(t *testing.T) context.Context {
+	ctx, cancel := context.WithTimeout(context.Background(), 30*time.Second)
+	t.Cleanup(cancel)
+	return ctx
+}
+
+func gaussian2D(t *testing.T) *targets.Gaussian {
+	g, err := targets.NewGaussian([]float64{1, -1}, mat.NewSymDense(2, []float64{2, .5, .5, 1}))
+	if err != nil {
+		t.Fatal(err)
+	}
+	return g
+}
+
+func evaluator(tg targets.Target) client.Evaluator {
+	return func(_ context.Context, b *client.Batch) error {
+		targets.EvalBatch(tg, b.Points, b.Rows, b.Grad, nil)
+		return nil
+	}
+}
+
+// Transport is transparent: with the same seed, the draws of a session
+// over gRPC (bufconn) are bit-identical to driving the same kernel
+// in-process with the same target, whole or split into small messages.
+func TestTransportIsTransparent(t *testing.T) {
+	conn, _ := start(t, server.Options{})
+	tg := gaussian2D(t)
+	const chains, steps = 8, 300
+	for _, limit := range []int64{0, 1024 + 3*(8*3+16)} { // default, and 3 rows per message
+		spec := client.Spec{Dim: 2, Chains: chains, Start: []float64{0, 0}, Step: 0.2, Seed: 2024,
+			BurnIn: 0, DrawsPerChain: steps, MaxMessageBytes: limit}
+		var got []float64
+		var seqs int
+		sum, err := client.Run(testCtx(t), conn, spec, evaluator(tg), client.OnDraws(func(d *client.Draws) {
+			got = append(got, d.Values...)
+			seqs++
+		}))
+		if err != nil {
+			t.Fatal(err)
+		}
+		if sum.Reason != client.DrawsCollected || sum.DrawsReceived != chains*steps {
+			t.Fatalf("limit %d: reason %v, %d draws", limit, sum.Reason, sum.DrawsReceived)
+		}
+		k := kernels.NewLMC(2, chains, 0.2, []float64{0, 0}, kernels.NewSource(2024))
+		a := kernels.NewAnswer(chains, 2)
+		var want []float64
+		for range steps {
+			req := k.Next()
+			targets.EvalBatch(tg, req.Points, req.Rows, a.Grad, nil)
+			k.Tell(a)
+			want = append(want, k.Positions()...)
+		}
+		if len(got) != len(want) {
+			t.Fatalf("limit %d: %d values over gRPC, %d in-process", limit, len(got), len(want))
+		}
+		for i := range want {
+			if math.Float64bits(got[i]) != math.Float64bits(want[i]) {
+				t.Fatalf("limit %d: value %d differs: %v over gRPC, %v in-process", limit, i, got[i], want[i])
+			}
+		}
+		if limit > 0 && seqs != steps*3 {
+			t.Fatalf("split run delivered %d draw frames, want %d", seqs, steps*3)
+		}
+	}
+}
+
+// Gradient evaluations are counted exactly (chains × steps for LMC,
+// THEORY.md §13) and a budget is never overshot.
+func TestBudgetOverGRPC(t *testing.T) {
+	conn, _ := start(t, server.Options{})
+	var rows int64
+	ev := func(ctx context.Context, b *client.Batch) error {
+		rows += int64(b.Rows)
+		return evaluator(gaussian2D(t))(ctx, b)
+	}
+	spec := client.Spec{Dim: 2, Chains: 6, Start: []float64{0, 0}, Step: 0.1, Seed: 1, MaxEvaluations: 1000}
+	sum, err := client.Run(testCtx(t), conn, spec, ev)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if sum.Reason != client.BudgetSpent || sum.Progress.EvaluationsUsed != 996 || rows != 996 || sum.Progress.Steps != 166 {
+		t.Fatalf("reason %v, used %d, evaluated %d, steps %d; want budget spent after 996 = 6 × 166",
+			sum.Reason, sum.Progress.EvaluationsUsed, rows, sum.Progress.Steps)
+	}
+}
+
+// rawSession opens a stream and registers reg, returning the stream.
+func rawSession(t *testing.T, conn *grpc.ClientConn, reg *sluicev1.Register) sluicev1.SluiceService_SessionClient {
+	t.Helper()
+	st, err := sluicev1.NewSluiceServiceClient(conn).Session(testCtx(t))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := st.Send(&sluicev1.SessionRequest{Frame: &sluicev1.SessionRequest_Register{Register: reg}}); err != nil {
+		t.Fatal(err)
+	}
+	return st
+}
+
+func floatBytes(v ...float64) []byte {
+	var b []byte
+	for _, x := range v {
+		u := math.Float64bits(x)
+		for i := range 8 {
+			b = append(b, byte(u>>(8*i)))
+		}
+	}
+	return b
+}
+
+func goodRegister() *sluicev1.Register {
+	return &sluicev1.Register{Dim: 2, Chains: 3, Start: floatBytes(0, 0), StartRows: 1, Step: 0.1, Seed: 5}
+}
+
+// badAnswer answers the first request correctly and then corrupts the
+// second with edit.
+func badAnswer(edit func(*sluicev1.Evaluations)) func(t *testing.T, st sluicev1.SluiceService_SessionClient) {
+	return func(t *testing.T, st sluicev1.SluiceService_SessionClient) {
+		n := 0
+		for {
+			f, err := st.Recv()
+			if err != nil {
+				return
+			}
+			p := f.GetPoints()
+			if p == nil {
+				continue
+			}
+			n++
+			ev := &sluicev1.Evaluations{RequestId: p.RequestId, FirstRow: p.FirstRow, Rows: p.Rows, Dim: p.Dim,
+				Gradients: make([]byte, len(p.Points))}
+			if n == 2 {
+				edit(ev)
+			}
+			if st.Send(&sluicev1.SessionRequest{Frame: &sluicev1.SessionRequest_Evaluations{Evaluations: ev}}) != nil || n == 2 {
+				return
+			}
+		}
+	}
+}
+
+// finalStatus drains the stream and returns its status and whether a
+// Finished frame with reason FAILED came first.
+func finalStatus(st sluicev1.SluiceService_SessionClient) (*status.Status, bool) {
+	failed := false
+	for {
+		f, err := st.Recv()
+		if err != nil {
+			return status.Convert(err), failed
+		}
+		if f.GetFinished().GetReason() == sluicev1.FinishReason_FINISH_REASON_FAILED {
+			failed = true
+		}
+	}
+}
+
+func fieldOf(st *status.Status) string {
+	for _, d := range st.Details() {
+		if br, ok := d.(*errdetails.BadRequest); ok && len(br.FieldViolations) > 0 {
+			return br.FieldViolations[0].Field
+		}
+	}
+	return ""
+}
+
+// Bad input over a real stream gets INVALID_ARGUMENT (or
+// RESOURCE_EXHAUSTED for size) naming the field, while a healthy session
+// on the same server keeps going; no goroutine outlives the sessions
+// (checked at cleanup).
+func TestBadInputNamesFieldAndSparesOtherSessions(t *testing.T) {
+	conn, _ := start(t, server.Options{Limits: session.Limits{MaxMessageBytes: 64 << 10}})
+
+	// A healthy session runs throughout: it pauses mid-run until every
+	// bad session below has ended, then finishes its budget.
+	healthy := make(chan error, 1)
+	running, badDone := make(chan struct{}), make(chan struct{})
+	var healthySum *client.Summary
+	go func() {
+		spec := client.Spec{Dim: 2, Chains: 4, Start: []float64{0, 0}, Step: 0.1, Seed: 3, MaxEvaluations: 4000}
+		n := 0
+		var err error
+		healthySum, err = client.Run(testCtx(t), conn, spec, func(ctx context.Context, b *client.Batch) error {
+			if n++; n == 10 {
+				close(running)
+				select {
+				case <-badDone:
+				case <-time.After(20 * time.Second):
+				}
+			}
+			return evaluator(gaussian2D(t))(ctx, b)
+		})
+		healthy <- err
+	}()
+	<-running
+
+	nan := math.NaN()
+	cases := []struct {
+		name   string
+		reg    func(*sluicev1.Register)
+		answer func(*testing.T, sluicev1.SluiceService_SessionClient)
+		code   codes.Code
+		field  string
+		failed bool // a FAILED Finished frame precedes the status
+	}{
+		{"zero chains", func(r *sluicev1.Register) { r.Chains = 0 }, nil, codes.InvalidArgument, "register.chains", false},
+		{"negative step", func(r *sluicev1.Register) { r.Step = -1 }, nil, codes.InvalidArgument, "register.step", false},
+		{"ragged start bytes", func(r *sluicev1.Register) { r.Start = r.Start[:9] }, nil, codes.InvalidArgument, "register.start", false},
+		{"wrong dimension", nil, badAnswer(func(e *sluicev1.Evaluations) { e.Dim = 3 }), codes.InvalidArgument, "evaluations.dim", true},
+		{"NaN gradient", nil, badAnswer(func(e *sluicev1.Evaluations) { e.Gradients = floatBytes(0, 0, 0, nan, 0, 0) }), codes.InvalidArgument, "evaluations.gradients", true},
+		{"Inf gradient", nil, badAnswer(func(e *sluicev1.Evaluations) { e.Gradients = floatBytes(math.Inf(1), 0, 0, 0, 0, 0) }), codes.InvalidArgument, "evaluations.gradients", true},
+		{"stale request id", nil, badAnswer(func(e *sluicev1.Evaluations) { e.RequestId-- }), codes.InvalidArgument, "evaluations.request_id", true},
+		{"oversize message", nil, badAnswer(func(e *sluicev1.Evaluations) { e.Gradients = make([]byte, 128<<10) }), codes.ResourceExhausted, "evaluations", true},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			reg := goodRegister()
+			if tc.reg != nil {
+				tc.reg(reg)
+			}
+			st := rawSession(t, conn, reg)
+			if tc.answer != nil {
+				tc.answer(t, st)
+			}
+			s, failed := finalStatus(st)
+			if s.Code() != tc.code || fieldOf(s) != tc.field {
+				t.Fatalf("status %v %q (field %q), want %v naming %q", s.Code(), s.Message(), fieldOf(s), tc.code, tc.field)
+			}
+			if failed != tc.failed {
+				t.Fatalf("failed Finished frame sent: %v, want %v", failed, tc.failed)
+			}
+		})
+	}
+	// The NaN case names the chain and coordinate in its message.
+	st := rawSession(t, conn, goodRegister())
+	badAnswer(func(e *sluicev1.Evaluations) { e.Gradients = floatBytes(0, 0, 0, nan, 0, 0) })(t, st)
+	if s, _ := finalStatus(st); s.Message() != "evaluations.gradients (chain 1, coordinate 1): value NaN is not finite" {
+		t.Fatalf("NaN message %q", s.Message())
+	}
+
+	close(badDone)
+	if err := <-healthy; err != nil {
+		t.Fatalf("healthy session: %v", err)
+	}
+	if healthySum.Reason != client.BudgetSpent || healthySum.Progress.EvaluationsUsed != 4000 {
+		t.Fatalf("healthy session ended %v after %d evaluations", healthySum.Reason, healthySum.Progress.EvaluationsUsed)
+	}
+}
+
+func TestFirstFrameMustRegister(t *testing.T) {
+	conn, _ := start(t, server.Options{})
+	st, err := sluicev1.NewSluiceServiceClient(conn).Session(testCtx(t))
+	if err != nil {
+		t.Fatal(err)
+	}
+	_ = st.Send(&sluicev1.SessionRequest{Frame: &sluicev1.SessionRequest_Stop{Stop: &sluicev1.Stop{}}})
+	if s, _ := finalStatus(st); s.Code() != codes.InvalidArgument || fieldOf(s) != "register" {
+		t.Fatalf("status %v field %q", s.Code(), fieldOf(s))
+	}
+}
+
+// An evaluator error stops the session cleanly: the summary arrives and
+// Run returns the evaluator's error.
+func TestEvaluatorErrorStopsSession(t *testing.T) {
+	conn, _ := start(t, server.Options{})
+	boom := errors.New("solver diverged")
+	n := 0
+	sum, err := client.Run(testCtx(t), conn, client.Spec{Dim: 2, Chains: 2, Start: []float64{0, 0}, Step: 0.1, Seed: 1},
+		func(ctx context.Context, b *client.Batch) error {
+			if n++; n == 10 {
+				return boom
+			}
+			return evaluator(gaussian2D(t))(ctx, b)
+		})
+	if !errors.Is(err, boom) || sum == nil || sum.Reason != client.Stopped || sum.Progress.Steps != 9 {
+		t.Fatalf("err %v, summary %+v", err, sum)
+	}
+}
+
+func TestHealthReflectionAndAdmission(t *testing.T) {
+	conn, srv := start(t, server.Options{MaxSessions: 1})
+	ctx := testCtx(t)
+	h, err := healthpb.NewHealthClient(conn).Check(ctx, &healthpb.HealthCheckRequest{Service: server.ServiceName})
+	if err != nil || h.Status != healthpb.HealthCheckResponse_SERVING {
+		t.Fatalf("health %v %v", h, err)
+	}
+	rc, err := reflectpb.NewServerReflectionClient(conn).ServerReflectionInfo(ctx)
+	if err != nil {
+		t.Fatal(err)
+	}
+	_ = rc.Send(&reflectpb.ServerReflectionRequest{MessageRequest: &reflectpb.ServerReflectionRequest_ListServices{}})
+	r, err := rc.Recv()
+	if err != nil {
+		t.Fatal(err)
+	}
+	found := false
+	for _, s := range r.GetListServicesResponse().GetService() {
+		found = found || s.Name == server.ServiceName
+	}
+	_ = rc.CloseSend()
+	if !found {
+		t.Fatalf("reflection does not list %s", server.ServiceName)
+	}
+
+	// One slot: a second concurrent session is refused; on shutdown the
+	// first finishes with reason SHUTDOWN and still gets its summary.
+	started := make(chan struct{})
+	var once sync.Once
+	done := make(chan *client.Summary, 1)
+	go func() {
+		sum, err := client.Run(ctx, conn, client.Spec{Dim: 2, Chains: 2, Start: []float64{0, 0}, Step: 0.1, Seed: 1},
+			func(ctx context.Context, b *client.Batch) error {
+				once.Do(func() { close(started) })
+				time.Sleep(time.Millisecond)
+				return evaluator(gaussian2D(t))(ctx, b)
+			})
+		if err != nil {
+			t.Errorf("session ended by shutdown: %v", err)
+		}
+		done <- sum
+	}()
+	<-started
+	_, err = client.Run(ctx, conn, client.Spec{Dim: 1, Chains: 1, Start: []float64{0}, Step: 0.1}, evaluator(gaussian2D(t)))
+	if status.Code(err) != codes.ResourceExhausted {
+		t.Fatalf("second session: %v, want RESOURCE_EXHAUSTED", err)
+	}
+	sctx, cancel := context.WithTimeout(ctx, 5*time.Second)
+	defer cancel()
+	srv.Shutdown(sctx)
+	sum := <-done
+	if sum == nil || sum.Reason != client.Shutdown {
+		t.Fatalf("summary after shutdown: %+v", sum)
+	}
+}
