@@ -1,0 +1,385 @@
+package main
+
+import (
+	"bufio"
+	"context"
+	"encoding/json"
+	"flag"
+	"fmt"
+	"io"
+	"math"
+	"math/rand/v2"
+	"net"
+	"os"
+	"sort"
+	"strconv"
+	"strings"
+	"time"
+
+	"google.golang.org/grpc"
+	"google.golang.org/grpc/credentials/insecure"
+
+	"sluice/client"
+	"sluice/kernels/diag"
+	"sluice/server"
+)
+
+// demoConfig is what the demo's flags set.
+type demoConfig struct {
+	chains        int
+	kernel        string
+	step          float64
+	burnIn        int64
+	keepEvery     int64
+	draws         int64
+	maxEvals      int64
+	maxTime       time.Duration
+	seed          uint64
+	out           string
+	json          bool
+	planTemp      float64
+	planCool      float64
+	logLevel      string
+	noProgressBar bool
+}
+
+func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
+	fs := flag.NewFlagSet("demo", flag.ContinueOnError)
+	fs.SetOutput(stderr)
+	var c demoConfig
+	fs.IntVar(&c.chains, "chains", 8, "number of chains")
+	fs.StringVar(&c.kernel, "kernel", "lmc", "sampling kernel")
+	fs.Float64Var(&c.step, "step", 0, "step size h (0: a tenth of 1/M, M the target's smoothness)")
+	fs.Int64Var(&c.burnIn, "burn-in", 1000, "steps per chain discarded before keeping draws")
+	fs.Int64Var(&c.keepEvery, "keep-every", 5, "keep every k-th step after burn-in (thinning)")
+	fs.Int64Var(&c.draws, "draws", 1000, "kept draws per chain (0: until a budget runs out)")
+	fs.Int64Var(&c.maxEvals, "max-evals", 0, "most gradient evaluations (0: no limit)")
+	fs.DurationVar(&c.maxTime, "max-time", 50*time.Second, "most wall time (0: no limit)")
+	fs.Uint64Var(&c.seed, "seed", 0, "random seed for start points and chains (0: pick one and print it)")
+	fs.StringVar(&c.out, "out", "", "write the draws to this CSV file")
+	fs.BoolVar(&c.json, "json", false, "print the summary as one JSON object")
+	fs.Float64Var(&c.planTemp, "plan-temp", 1150, "planned peak temperature in °C, for the question answered at the end")
+	fs.Float64Var(&c.planCool, "plan-cool", 8, "planned cooling rate in °C per minute")
+	fs.StringVar(&c.logLevel, "log-level", "warn", "server log level: debug, info, warn, error")
+	fs.BoolVar(&c.noProgressBar, "quiet", false, "no live progress line")
+	if err := parseFlags(fs, args); err != nil {
+		return err
+	}
+	if c.chains < 1 || c.burnIn < 0 || c.keepEvery < 1 || c.draws < 0 || c.maxEvals < 0 || c.maxTime < 0 || c.step < 0 {
+		return usagef("--chains and --keep-every must be ≥ 1; --burn-in, --draws, --max-evals, --max-time, --step ≥ 0")
+	}
+	if c.draws == 0 && c.maxEvals == 0 && c.maxTime == 0 {
+		return usagef("with --draws 0, set --max-evals or --max-time so the run ends")
+	}
+	if c.seed == 0 {
+		c.seed = rand.Uint64()>>1 | 1
+	}
+	res, err := runDemo(ctx, c, stderr)
+	if err != nil {
+		return err
+	}
+	if c.json {
+		enc := json.NewEncoder(stdout)
+		enc.SetIndent("", "  ")
+		return enc.Encode(res)
+	}
+	printDemo(stdout, res)
+	return nil
+}
+
+// demoParameter is one row of the posterior table.
+type demoParameter struct {
+	Name string  `json:"name"`
+	Mean float64 `json:"mean"`
+	SD   float64 `json:"sd"`
+	Q05  float64 `json:"q05"`
+	Q50  float64 `json:"q50"`
+	Q95  float64 `json:"q95"`
+	// ESS is the effective sample size of the split chains and MCSE the
+	// Monte Carlo standard error of the mean, sd/√ESS (THEORY.md §9).
+	ESS  float64 `json:"ess"`
+	MCSE float64 `json:"mcse_mean"`
+}
+
+// demoAnswer is the downstream question answered from the draws.
+type demoAnswer struct {
+	TempC          float64 `json:"temperature_c"`
+	CoolCPerMinute float64 `json:"cooling_c_per_minute"`
+	Mean           float64 `json:"p_crack_mean"`
+	Q05            float64 `json:"p_crack_q05"`
+	Q95            float64 `json:"p_crack_q95"`
+}
+
+type demoResult struct {
+	Scenario       string          `json:"scenario"`
+	SessionID      string          `json:"session_id"`
+	Kernel         string          `json:"kernel"`
+	Step           float64         `json:"step"`
+	Chains         int             `json:"chains"`
+	Seed           uint64          `json:"seed"`
+	Reason         string          `json:"reason"`
+	Evaluations    int64           `json:"evaluations"`
+	Seconds        float64         `json:"seconds"`
+	DrawsPerChain  int             `json:"draws_per_chain"`
+	Parameters     []demoParameter `json:"parameters"`
+	Question       *demoAnswer     `json:"question,omitempty"`
+	Out            string          `json:"out,omitempty"`
+	MinDrawsNeeded int             `json:"-"`
+}
+
+func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, error) {
+	target, err := kilnTarget(kilnData())
+	if err != nil {
+		return nil, err
+	}
+	if c.step == 0 {
+		_, bigM := target.Curvature()
+		c.step = 0.1 / bigM
+	}
+	log, err := newLogger(c.logLevel, stderr)
+	if err != nil {
+		return nil, err
+	}
+	defer func() { _ = log.Sync() }()
+
+	// A real server on a loopback port, and a client talking to it.
+	lis, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		return nil, err
+	}
+	srv := server.New(server.Options{Logger: log})
+	go func() { _ = srv.Serve(lis) }()
+	defer srv.Stop()
+	conn, err := grpc.NewClient(lis.Addr().String(), grpc.WithTransportCredentials(insecure.NewCredentials()))
+	if err != nil {
+		return nil, err
+	}
+	defer conn.Close()
+
+	// Dispersed start points, one per chain, drawn from the prior's scale.
+	r := rand.New(rand.NewPCG(c.seed, 1))
+	start := make([]float64, c.chains*3)
+	for i := range start {
+		start[i] = r.NormFloat64()
+	}
+	spec := client.Spec{Dim: 3, Chains: c.chains, Kernel: c.kernel, Start: start, Step: c.step, BurnIn: c.burnIn,
+		KeepEvery: c.keepEvery, DrawsPerChain: c.draws, MaxEvaluations: c.maxEvals, MaxTime: c.maxTime,
+		Seed: c.seed, Names: kilnNames, ProgressInterval: 200 * time.Millisecond}
+
+	chains := make([][][]float64, 3) // [param][chain][draw]
+	for i := range chains {
+		chains[i] = make([][]float64, c.chains)
+	}
+	var csv *csvWriter
+	if c.out != "" {
+		if csv, err = newCSVWriter(c.out, kilnNames); err != nil {
+			return nil, err
+		}
+	}
+	live := newLiveLine(stderr, !c.noProgressBar && !c.json, int64(c.chains)*c.draws)
+	sum, err := client.Run(ctx, conn, spec,
+		func(_ context.Context, b *client.Batch) error {
+			for row := range b.Rows {
+				target.GradLogDensity(b.Grad[row*b.Dim:(row+1)*b.Dim], b.Point(row))
+			}
+			return nil
+		},
+		client.OnDraws(func(d *client.Draws) {
+			for row := range d.Rows {
+				ch := d.Chains[row]
+				for i := range 3 {
+					chains[i][ch] = append(chains[i][ch], d.Values[row*3+i])
+				}
+				if csv != nil {
+					csv.row(d.Chains[row], d.Iterations[row], d.Values[row*3:(row+1)*3])
+				}
+			}
+		}),
+		client.OnProgress(live.update))
+	live.done()
+	if csv != nil {
+		if cerr := csv.close(); err == nil && cerr != nil {
+			err = cerr
+		}
+	}
+	if err != nil {
+		return nil, err
+	}
+	res := &demoResult{
+		Scenario:  "kiln tile cracking: Bayesian logistic regression on 300 invented firings",
+		SessionID: sum.Registered.SessionID, Kernel: sum.Registered.Kernel, Step: sum.Registered.Step,
+		Chains: c.chains, Seed: sum.Registered.Seed, Reason: string(sum.Reason),
+		Evaluations: sum.Progress.EvaluationsUsed, Seconds: sum.Progress.Elapsed.Seconds(), Out: c.out,
+	}
+	n := len(chains[0][0])
+	for _, ch := range chains[0] {
+		n = min(n, len(ch))
+	}
+	res.DrawsPerChain = n
+	if n < 4 {
+		return res, fmt.Errorf("session ended (%s) with %d draws per chain: too few to summarise", sum.Reason, n)
+	}
+	for i, name := range kilnNames {
+		for ch := range chains[i] {
+			chains[i][ch] = chains[i][ch][:n]
+		}
+		res.Parameters = append(res.Parameters, summarise(name, chains[i]))
+	}
+	// The downstream question: the chance of cracking at the planned
+	// schedule, one value per draw, summarised.
+	x := kilnFeatures(c.planTemp, c.planCool)
+	var probs []float64
+	for ch := range c.chains {
+		for t := range n {
+			theta := []float64{chains[0][ch][t], chains[1][ch][t], chains[2][ch][t]}
+			probs = append(probs, sigmoid(dot(theta, x)))
+		}
+	}
+	sort.Float64s(probs)
+	res.Question = &demoAnswer{TempC: c.planTemp, CoolCPerMinute: c.planCool, Mean: meanOf(probs),
+		Q05: quantileSorted(probs, 0.05), Q95: quantileSorted(probs, 0.95)}
+	return res, nil
+}
+
+func summarise(name string, chains [][]float64) demoParameter {
+	var all []float64
+	for _, c := range chains {
+		all = append(all, c...)
+	}
+	m := meanOf(all)
+	var ss float64
+	for _, v := range all {
+		ss += (v - m) * (v - m)
+	}
+	sd := math.Sqrt(ss / float64(len(all)-1))
+	sort.Float64s(all)
+	ess := diag.ESS(diag.SplitChains(chains))
+	return demoParameter{Name: name, Mean: m, SD: sd, Q05: quantileSorted(all, 0.05), Q50: quantileSorted(all, 0.5),
+		Q95: quantileSorted(all, 0.95), ESS: ess, MCSE: sd / math.Sqrt(ess)}
+}
+
+func meanOf(x []float64) float64 {
+	var s float64
+	for _, v := range x {
+		s += v
+	}
+	return s / float64(len(x))
+}
+
+// quantileSorted is the linear-interpolation quantile of sorted x
+// (common practice: the "type 7" definition).
+func quantileSorted(x []float64, q float64) float64 {
+	h := q * float64(len(x)-1)
+	lo := math.Floor(h)
+	i := int(lo)
+	if i+1 >= len(x) {
+		return x[len(x)-1]
+	}
+	return x[i] + (h-lo)*(x[i+1]-x[i])
+}
+
+func printDemo(w io.Writer, r *demoResult) {
+	fmt.Fprintf(w, "sluice demo: %s\n", r.Scenario)
+	fmt.Fprintf(w, "session %s: kernel %s, step %.4g, %d chains, seed %d\n", r.SessionID, r.Kernel, r.Step, r.Chains, r.Seed)
+	fmt.Fprintf(w, "finished (%s): %d gradient evaluations in %.2f s, %d draws per chain kept\n\n",
+		r.Reason, r.Evaluations, r.Seconds, r.DrawsPerChain)
+	fmt.Fprintf(w, "%-14s %9s %8s %9s %9s %9s %8s %9s\n", "parameter", "mean", "sd", "5%", "50%", "95%", "ESS", "MCSE")
+	for _, p := range r.Parameters {
+		fmt.Fprintf(w, "%-14s %9.4f %8.4f %9.4f %9.4f %9.4f %8.0f %9.5f\n", p.Name, p.Mean, p.SD, p.Q05, p.Q50, p.Q95, p.ESS, p.MCSE)
+	}
+	fmt.Fprintf(w, "(coefficients on the log-odds scale: temperature per %g °C, cooling rate per %g °C/min)\n\n", tempScale, coolScale)
+	if q := r.Question; q != nil {
+		fmt.Fprintf(w, "Planned firing at %g °C peak, cooling %g °C/min:\n", q.TempC, q.CoolCPerMinute)
+		fmt.Fprintf(w, "  chance a batch cracks: %.3f (90%% interval %.3f to %.3f)\n\n", q.Mean, q.Q05, q.Q95)
+	}
+	if r.Out != "" {
+		fmt.Fprintf(w, "draws written to %s\n", r.Out)
+	}
+	fmt.Fprintln(w, "These draws are approximate and the diagnostics cannot prove convergence; validate before relying on them.")
+}
+
+// liveLine shows one updating progress line on a terminal.
+type liveLine struct {
+	w       io.Writer
+	on      bool
+	want    int64
+	printed bool
+}
+
+func newLiveLine(w io.Writer, on bool, want int64) *liveLine {
+	if f, ok := w.(*os.File); on && ok {
+		st, err := f.Stat()
+		on = err == nil && st.Mode()&os.ModeCharDevice != 0
+	} else {
+		on = false
+	}
+	return &liveLine{w: w, on: on, want: want}
+}
+
+func (l *liveLine) update(p *client.Progress) {
+	if !l.on {
+		return
+	}
+	draws := strconv.FormatInt(p.DrawsSent, 10)
+	if l.want > 0 {
+		draws += "/" + strconv.FormatInt(l.want, 10)
+	}
+	left := ""
+	if p.TimeLeft >= 0 {
+		left = fmt.Sprintf(", %.0f s left", p.TimeLeft.Seconds())
+	}
+	fmt.Fprintf(l.w, "\r\033[K%-8s step %d, draws %s, %d evaluations, %.1f s, %.0f evaluations/s%s",
+		p.State, p.Steps, draws, p.EvaluationsUsed, p.Elapsed.Seconds(), p.EvaluationsPerSecond, left)
+	l.printed = true
+}
+
+func (l *liveLine) done() {
+	if l.printed {
+		fmt.Fprint(l.w, "\r\033[K")
+	}
+}
+
+// csvWriter writes draws as CSV: a header "chain,iteration,<names>",
+// then one row per draw.
+type csvWriter struct {
+	f   *os.File
+	w   *bufio.Writer
+	buf []byte
+	err error
+}
+
+func newCSVWriter(path string, names []string) (*csvWriter, error) {
+	f, err := os.Create(path)
+	if err != nil {
+		return nil, err
+	}
+	c := &csvWriter{f: f, w: bufio.NewWriter(f)}
+	_, c.err = c.w.WriteString("chain,iteration," + strings.Join(names, ",") + "\n")
+	return c, nil
+}
+
+func (c *csvWriter) row(chain int, iter int64, v []float64) {
+	if c.err != nil {
+		return
+	}
+	b := strconv.AppendInt(c.buf[:0], int64(chain), 10)
+	b = append(b, ',')
+	b = strconv.AppendInt(b, iter, 10)
+	for _, x := range v {
+		b = append(b, ',')
+		b = strconv.AppendFloat(b, x, 'g', -1, 64)
+	}
+	b = append(b, '\n')
+	c.buf = b
+	_, c.err = c.w.Write(b)
+}
+
+func (c *csvWriter) close() error {
+	if err := c.w.Flush(); c.err == nil {
+		c.err = err
+	}
+	if err := c.f.Close(); c.err == nil {
+		c.err = err
+	}
+	return c.err
+}

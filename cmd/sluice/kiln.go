@@ -1,0 +1,86 @@
+package main
+
+import (
+	"math"
+	"math/rand/v2"
+
+	"gonum.org/v1/gonum/mat"
+
+	"sluice/kernels/targets"
+)
+
+// The demo's scenario, invented for sluice: a workshop fires batches of
+// glazed tiles and records, for each firing, the peak kiln temperature,
+// the cooling rate, and whether the batch came out cracked. The question
+// is how both settings drive the chance of cracking, and what that chance
+// is at a planned firing schedule.
+//
+// The data are made up here from a fixed random stream (so every run sees
+// the same 300 firings) by a logistic model with the coefficients below.
+const (
+	kilnFirings = 300
+	// Standardisation of the two settings (the model's scale).
+	tempCentre, tempScale = 1160.0, 50.0 // °C
+	coolCentre, coolScale = 6.0, 3.0     // °C per minute
+	// Prior: each coefficient ~ N(0, 2²) on the standardised scale.
+	kilnPriorPrecision = 0.25
+)
+
+// kilnTruth are the coefficients the invented data were drawn from:
+// intercept, per 50 °C of peak temperature, per 3 °C/min of cooling.
+var kilnTruth = []float64{-1.2, 1.0, 0.8}
+
+var kilnNames = []string{"intercept", "temperature", "cooling_rate"}
+
+// kilnFiring is one invented firing.
+type kilnFiring struct {
+	tempC, coolCPerMin float64
+	cracked            bool
+}
+
+func kilnData() []kilnFiring {
+	r := rand.New(rand.NewPCG(1160, 6))
+	out := make([]kilnFiring, kilnFirings)
+	for i := range out {
+		t := 1080 + 160*r.Float64()
+		c := 1 + 11*r.Float64()
+		p := sigmoid(dot(kilnTruth, kilnFeatures(t, c)))
+		out[i] = kilnFiring{tempC: math.Round(t), coolCPerMin: math.Round(c*10) / 10, cracked: r.Float64() < p}
+	}
+	return out
+}
+
+// kilnFeatures is the model's row for one firing: 1, standardised
+// temperature, standardised cooling rate.
+func kilnFeatures(tempC, coolCPerMin float64) []float64 {
+	return []float64{1, (tempC - tempCentre) / tempScale, (coolCPerMin - coolCentre) / coolScale}
+}
+
+// kilnTarget is the posterior of the logistic regression on the data.
+func kilnTarget(data []kilnFiring) (*targets.Logistic, error) {
+	x := mat.NewDense(len(data), 3, nil)
+	y := make([]float64, len(data))
+	for i, f := range data {
+		x.SetRow(i, kilnFeatures(f.tempC, f.coolCPerMin))
+		if f.cracked {
+			y[i] = 1
+		}
+	}
+	return targets.NewLogistic(x, y, kilnPriorPrecision)
+}
+
+func sigmoid(z float64) float64 {
+	if z >= 0 {
+		return 1 / (1 + math.Exp(-z))
+	}
+	e := math.Exp(z)
+	return e / (1 + e)
+}
+
+func dot(a, b []float64) float64 {
+	var s float64
+	for i := range a {
+		s += a[i] * b[i]
+	}
+	return s
+}
