@@ -14,6 +14,13 @@ const (
 	// NeedLogDensity asks for log π up to an additive constant (one value
 	// per point).
 	NeedLogDensity
+	// NeedHessian asks for the Hessian of log π (dim×dim per point,
+	// symmetric, row-major).
+	NeedHessian
+	// NeedHessianVector asks for the product of the Hessian of log π at
+	// each point with that row's vector in Request.Vectors (dim values
+	// per point).
+	NeedHessianVector
 )
 
 // Has reports whether n includes q.
@@ -30,6 +37,9 @@ type Request struct {
 	Points []float64
 	// Chain gives the chain each row belongs to.
 	Chain []int
+	// Vectors holds one vector per row (Rows×Dim) when Need includes
+	// NeedHessianVector.
+	Vectors []float64
 }
 
 // Answer holds the evaluations for one Request, in its row order.
@@ -40,12 +50,39 @@ type Answer struct {
 	// LogDensity holds log π at each point, Rows values, when the request
 	// asked for NeedLogDensity.
 	LogDensity []float64
+	// Hessian holds the Hessian of log π at each point, Rows×Dim×Dim
+	// values, when the request asked for NeedHessian.
+	Hessian []float64
+	// HessVec holds the Hessian of log π at each point times the row's
+	// vector, Rows×Dim values, when the request asked for
+	// NeedHessianVector.
+	HessVec []float64
 }
 
-// NewAnswer returns an Answer with room for any request of up to rows
-// points in dimension dim.
+// NewAnswer returns an Answer with room for gradients and log densities
+// of any request of up to rows points in dimension dim. Kernels that ask
+// for Hessians document the room they need (see Answer.Reserve).
 func NewAnswer(rows, dim int) *Answer {
 	return &Answer{Grad: make([]float64, rows*dim), LogDensity: make([]float64, rows)}
+}
+
+// Reserve makes room in a for the quantities in need for rows points in
+// dimension dim, reusing its slices when large enough.
+func (a *Answer) Reserve(need Need, rows, dim int) {
+	grow := func(s []float64, n int) []float64 {
+		if cap(s) < n {
+			return make([]float64, n)
+		}
+		return s[:n]
+	}
+	a.Grad = grow(a.Grad, rows*dim)
+	a.LogDensity = grow(a.LogDensity, rows)
+	if need.Has(NeedHessian) {
+		a.Hessian = grow(a.Hessian, rows*dim*dim)
+	}
+	if need.Has(NeedHessianVector) {
+		a.HessVec = grow(a.HessVec, rows*dim)
+	}
 }
 
 // Kernel is one sampling method over a batch of chains, driven by ask
