@@ -40,6 +40,10 @@ type Options struct {
 	Logger *zap.Logger
 	// GRPCOptions are added to the server's own options.
 	GRPCOptions []grpc.ServerOption
+	// FollowRetention is how long a finished session's draws stay
+	// available to followers (default 10 minutes; negative: not kept
+	// after the session ends). Set Limits.FollowBuffer to serve followers.
+	FollowRetention time.Duration
 }
 
 // Server serves the sluice API, health and reflection on one gRPC server.
@@ -57,6 +61,15 @@ type Server struct {
 	mu       sync.Mutex
 	draining bool
 	active   map[string]chan<- session.Message
+	logs     map[string]*followed
+}
+
+// followed is a session's draw log as followers see it.
+type followed struct {
+	log      *session.DrawLog
+	dim      int
+	limit    int64     // the server's message limit, for batching rows
+	finished time.Time // zero while the session runs
 }
 
 // ServiceName is the health-check name of the sampling service.
@@ -74,10 +87,14 @@ func New(o Options) *Server {
 	if o.Logger == nil {
 		o.Logger = zap.NewNop()
 	}
+	if o.FollowRetention == 0 {
+		o.FollowRetention = 10 * time.Minute
+	}
 	var b [4]byte
 	_, _ = rand.Read(b[:])
 	s := &Server{opts: o, log: o.Logger, slots: make(chan struct{}, o.MaxSessions),
-		prefix: hex.EncodeToString(b[:]), active: map[string]chan<- session.Message{}}
+		prefix: hex.EncodeToString(b[:]), active: map[string]chan<- session.Message{},
+		logs: map[string]*followed{}}
 	// The engine sizes its frames within Limits.MaxMessageBytes, and the
 	// reader refuses larger client frames with a status naming the frame.
 	// The transport's own cap sits at four times that, as a backstop
@@ -174,7 +191,7 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 	defer cancel()
 	in := make(chan session.Message, 16)
 	limit := sess.MessageLimit()
-	if !s.track(id, in) {
+	if !s.track(id, in, sess) {
 		return status.Error(codes.Unavailable, "server shutting down")
 	}
 	defer s.untrack(id)
@@ -226,20 +243,36 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 	return toStatus(err)
 }
 
-func (s *Server) track(id string, in chan<- session.Message) bool {
+func (s *Server) track(id string, in chan<- session.Message, sess *session.Session) bool {
 	s.mu.Lock()
 	defer s.mu.Unlock()
 	if s.draining {
 		return false
 	}
 	s.active[id] = in
+	now := time.Now()
+	for k, f := range s.logs { // forget logs past their retention
+		if !f.finished.IsZero() && now.Sub(f.finished) > s.opts.FollowRetention {
+			delete(s.logs, k)
+		}
+	}
+	if l := sess.DrawLog(); l != nil {
+		s.logs[id] = &followed{log: l, dim: sess.Spec().Dim, limit: s.opts.Limits.MaxMessageBytes}
+	}
 	return true
 }
 
 func (s *Server) untrack(id string) {
 	s.mu.Lock()
+	defer s.mu.Unlock()
 	delete(s.active, id)
-	s.mu.Unlock()
+	if f, ok := s.logs[id]; ok {
+		if s.opts.FollowRetention < 0 {
+			delete(s.logs, id)
+		} else {
+			f.finished = time.Now()
+		}
+	}
 }
 
 func (s *Server) recovered(method string, r any) error {

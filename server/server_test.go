@@ -384,3 +384,11 @@ func TestHealthReflectionAndAdmission(t *testing.T) {
 		t.Fatalf("summary after shutdown: %+v", sum)
 	}
 }
+
+func float64frombytes(b []byte) float64 {
+	var u uint64
+	for i := range 8 {
+		u |= uint64(b[i]) << (8 * i)
+	}
+	return math.Float64frombits(u)
+}

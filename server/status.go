@@ -50,6 +50,17 @@ func toStatus(err error) error {
 	return status.Error(codes.Internal, err.Error())
 }
 
+// withField builds a status with code and a BadRequest detail naming
+// field.
+func withField(code codes.Code, field, format string, args ...any) error {
+	st := status.Newf(code, field+": "+format, args...)
+	if d, err := st.WithDetails(&errdetails.BadRequest{FieldViolations: []*errdetails.BadRequest_FieldViolation{
+		{Field: field, Description: st.Message()}}}); err == nil {
+		st = d
+	}
+	return st.Err()
+}
+
 // recvError turns an error from Recv into an engine message error: an
 // oversize message becomes a TooLarge error naming the frame, anything
 // else passes through (io.EOF is a clean close).

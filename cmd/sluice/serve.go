@@ -23,6 +23,8 @@ type serveFlags struct {
 	maxDim          int
 	maxTime         time.Duration
 	answerTimeout   time.Duration
+	followBuffer    int
+	followRetention time.Duration
 }
 
 func (f *serveFlags) register(fs *flag.FlagSet) {
@@ -32,20 +34,23 @@ func (f *serveFlags) register(fs *flag.FlagSet) {
 	fs.IntVar(&f.maxDim, "max-dim", 1<<20, "largest dimension one session may have")
 	fs.DurationVar(&f.maxTime, "max-session-time", 0, "wall-time cap on every session (0: none)")
 	fs.DurationVar(&f.answerTimeout, "answer-timeout", 10*time.Minute, "how long to wait for a client's answer to one request")
+	fs.IntVar(&f.followBuffer, "follow-buffer", 100000, "latest draws (rows) each session keeps for followers, at most 64 MiB (0: no following)")
+	fs.DurationVar(&f.followRetention, "follow-retention", 10*time.Minute, "how long a finished session stays followable")
 }
 
 func (f *serveFlags) options(log *zap.Logger) (server.Options, error) {
 	if f.maxMessageBytes < 64<<10 {
 		return server.Options{}, usagef("--max-message-bytes must be at least 65536")
 	}
-	if f.maxSessions < 1 || f.maxChains < 1 || f.maxDim < 1 || f.maxTime < 0 || f.answerTimeout <= 0 {
+	if f.maxSessions < 1 || f.maxChains < 1 || f.maxDim < 1 || f.maxTime < 0 || f.answerTimeout <= 0 || f.followBuffer < 0 || f.followRetention <= 0 {
 		return server.Options{}, usagef("limits must be positive")
 	}
 	return server.Options{
 		Limits: session.Limits{MaxDim: f.maxDim, MaxChains: f.maxChains, MaxMessageBytes: f.maxMessageBytes,
-			MaxTime: f.maxTime, AnswerTimeout: f.answerTimeout},
-		MaxSessions: f.maxSessions,
-		Logger:      log,
+			MaxTime: f.maxTime, AnswerTimeout: f.answerTimeout, FollowBuffer: f.followBuffer},
+		MaxSessions:     f.maxSessions,
+		Logger:          log,
+		FollowRetention: f.followRetention,
 	}, nil
 }
 

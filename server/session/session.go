@@ -38,7 +38,8 @@ type Session struct {
 	mean  []float64
 	m2    []float64
 
-	draws      Draws // reused frame
+	log        *DrawLog // nil when followers are not served
+	draws      Draws    // reused frame
 	drawChains []int
 	drawIters  []int64
 }
@@ -84,6 +85,9 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 	default:
 		return nil, BadField("register.kernel", "unknown kernel %q", spec.Kernel)
 	}
+	if lim.FollowBuffer > 0 {
+		s.log = NewDrawLog(spec.Dim, min(lim.FollowBuffer, max(1, maxFollowBytes/(8*spec.Dim))))
+	}
 	s.answer = kernels.NewAnswer(spec.Chains, spec.Dim)
 	s.mean = make([]float64, spec.Dim)
 	s.m2 = make([]float64, spec.Dim)
@@ -93,6 +97,10 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 // MessageLimit is the negotiated message size limit in bytes: the
 // smaller of the server's and the client's.
 func (s *Session) MessageLimit() int64 { return s.msgBytes }
+
+// DrawLog is the log followers read the session's draws from; nil when
+// Limits.FollowBuffer is 0.
+func (s *Session) DrawLog() *DrawLog { return s.log }
 
 // ID is the session's identifier.
 func (s *Session) ID() string { return s.id }
@@ -320,6 +328,9 @@ func (s *Session) sendDraws(step int64, send func(Frame) error) error {
 		hi := min(lo+s.rowsPerPart, chains)
 		s.draws = Draws{Seq: s.seq, Rows: hi - lo, Dim: dim, Values: x[lo*dim : hi*dim],
 			Chains: s.drawChains[lo:hi], Iterations: s.drawIters[lo:hi]}
+		if s.log != nil {
+			s.log.append(&s.draws)
+		}
 		if err := send(&s.draws); err != nil {
 			return err
 		}
@@ -364,6 +375,9 @@ func (s *Session) result(r Reason, msg string) Result {
 			ps.SD = math.Sqrt(s.m2[i] / float64(s.count-1))
 		}
 		f.Parameters[i] = ps
+	}
+	if s.log != nil {
+		s.log.close(f)
 	}
 	return Result{Finished: f, Kernel: s.kernel}
 }

@@ -62,7 +62,13 @@ type Limits struct {
 	AnswerTimeout time.Duration
 	// ProgressInterval is the default Progress cadence (default 1 s).
 	ProgressInterval time.Duration
+	// FollowBuffer is how many of its latest draws (rows) each session
+	// keeps for followers, capped at 64 MiB of values per session; 0 means
+	// followers are not served.
+	FollowBuffer int
 }
+
+const maxFollowBytes = 64 << 20
 
 const defaultMessageBytes = 4 << 20
 

@@ -216,6 +216,147 @@ func (FinishReason) EnumDescriptor() ([]byte, []int) {
 	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{2}
 }
 
+// FollowRequest names the session and where to start.
+type FollowRequest struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The session_id from Registered.
+	SessionId string `protobuf:"bytes,1,opt,name=session_id,json=sessionId,proto3" json:"session_id,omitempty"`
+	// Sequence number of the first draw wanted (0 for the beginning; after a
+	// disconnect, the last received seq + rows).
+	FromSeq       uint64 `protobuf:"varint,2,opt,name=from_seq,json=fromSeq,proto3" json:"from_seq,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *FollowRequest) Reset() {
+	*x = FollowRequest{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[0]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *FollowRequest) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*FollowRequest) ProtoMessage() {}
+
+func (x *FollowRequest) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[0]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use FollowRequest.ProtoReflect.Descriptor instead.
+func (*FollowRequest) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{0}
+}
+
+func (x *FollowRequest) GetSessionId() string {
+	if x != nil {
+		return x.SessionId
+	}
+	return ""
+}
+
+func (x *FollowRequest) GetFromSeq() uint64 {
+	if x != nil {
+		return x.FromSeq
+	}
+	return 0
+}
+
+// FollowResponse is one frame of a followed session.
+type FollowResponse struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Types that are valid to be assigned to Frame:
+	//
+	//	*FollowResponse_Draws
+	//	*FollowResponse_Finished
+	Frame         isFollowResponse_Frame `protobuf_oneof:"frame"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *FollowResponse) Reset() {
+	*x = FollowResponse{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[1]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *FollowResponse) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*FollowResponse) ProtoMessage() {}
+
+func (x *FollowResponse) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[1]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use FollowResponse.ProtoReflect.Descriptor instead.
+func (*FollowResponse) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{1}
+}
+
+func (x *FollowResponse) GetFrame() isFollowResponse_Frame {
+	if x != nil {
+		return x.Frame
+	}
+	return nil
+}
+
+func (x *FollowResponse) GetDraws() *Draws {
+	if x != nil {
+		if x, ok := x.Frame.(*FollowResponse_Draws); ok {
+			return x.Draws
+		}
+	}
+	return nil
+}
+
+func (x *FollowResponse) GetFinished() *Finished {
+	if x != nil {
+		if x, ok := x.Frame.(*FollowResponse_Finished); ok {
+			return x.Finished
+		}
+	}
+	return nil
+}
+
+type isFollowResponse_Frame interface {
+	isFollowResponse_Frame()
+}
+
+type FollowResponse_Draws struct {
+	// Draws in sequence order, starting exactly at from_seq.
+	Draws *Draws `protobuf:"bytes,1,opt,name=draws,proto3,oneof"`
+}
+
+type FollowResponse_Finished struct {
+	// The session's last frame; the stream closes after it.
+	Finished *Finished `protobuf:"bytes,2,opt,name=finished,proto3,oneof"`
+}
+
+func (*FollowResponse_Draws) isFollowResponse_Frame() {}
+
+func (*FollowResponse_Finished) isFollowResponse_Frame() {}
+
 // SessionRequest is one frame from the client.
 type SessionRequest struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -231,7 +372,7 @@ type SessionRequest struct {
 
 func (x *SessionRequest) Reset() {
 	*x = SessionRequest{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[0]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[2]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -243,7 +384,7 @@ func (x *SessionRequest) String() string {
 func (*SessionRequest) ProtoMessage() {}
 
 func (x *SessionRequest) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[0]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[2]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -256,7 +397,7 @@ func (x *SessionRequest) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SessionRequest.ProtoReflect.Descriptor instead.
 func (*SessionRequest) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{0}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{2}
 }
 
 func (x *SessionRequest) GetFrame() isSessionRequest_Frame {
@@ -336,7 +477,7 @@ type SessionResponse struct {
 
 func (x *SessionResponse) Reset() {
 	*x = SessionResponse{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[1]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[3]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -348,7 +489,7 @@ func (x *SessionResponse) String() string {
 func (*SessionResponse) ProtoMessage() {}
 
 func (x *SessionResponse) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[1]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[3]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -361,7 +502,7 @@ func (x *SessionResponse) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SessionResponse.ProtoReflect.Descriptor instead.
 func (*SessionResponse) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{1}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{3}
 }
 
 func (x *SessionResponse) GetFrame() isSessionResponse_Frame {
@@ -514,7 +655,7 @@ type Register struct {
 
 func (x *Register) Reset() {
 	*x = Register{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[2]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[4]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -526,7 +667,7 @@ func (x *Register) String() string {
 func (*Register) ProtoMessage() {}
 
 func (x *Register) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[2]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[4]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -539,7 +680,7 @@ func (x *Register) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Register.ProtoReflect.Descriptor instead.
 func (*Register) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{2}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{4}
 }
 
 func (x *Register) GetDim() int32 {
@@ -678,7 +819,7 @@ type Registered struct {
 
 func (x *Registered) Reset() {
 	*x = Registered{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[3]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[5]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -690,7 +831,7 @@ func (x *Registered) String() string {
 func (*Registered) ProtoMessage() {}
 
 func (x *Registered) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[3]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[5]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -703,7 +844,7 @@ func (x *Registered) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Registered.ProtoReflect.Descriptor instead.
 func (*Registered) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{3}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{5}
 }
 
 func (x *Registered) GetSessionId() string {
@@ -781,7 +922,7 @@ type Points struct {
 
 func (x *Points) Reset() {
 	*x = Points{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[4]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[6]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -793,7 +934,7 @@ func (x *Points) String() string {
 func (*Points) ProtoMessage() {}
 
 func (x *Points) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[4]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[6]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -806,7 +947,7 @@ func (x *Points) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Points.ProtoReflect.Descriptor instead.
 func (*Points) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{4}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{6}
 }
 
 func (x *Points) GetRequestId() uint64 {
@@ -888,7 +1029,7 @@ type Evaluations struct {
 
 func (x *Evaluations) Reset() {
 	*x = Evaluations{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[5]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -900,7 +1041,7 @@ func (x *Evaluations) String() string {
 func (*Evaluations) ProtoMessage() {}
 
 func (x *Evaluations) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[5]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -913,7 +1054,7 @@ func (x *Evaluations) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Evaluations.ProtoReflect.Descriptor instead.
 func (*Evaluations) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{5}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{7}
 }
 
 func (x *Evaluations) GetRequestId() uint64 {
@@ -969,7 +1110,7 @@ type Stop struct {
 
 func (x *Stop) Reset() {
 	*x = Stop{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[6]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -981,7 +1122,7 @@ func (x *Stop) String() string {
 func (*Stop) ProtoMessage() {}
 
 func (x *Stop) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[6]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -994,7 +1135,7 @@ func (x *Stop) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Stop.ProtoReflect.Descriptor instead.
 func (*Stop) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{6}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{8}
 }
 
 func (x *Stop) GetReason() string {
@@ -1029,7 +1170,7 @@ type Draws struct {
 
 func (x *Draws) Reset() {
 	*x = Draws{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1041,7 +1182,7 @@ func (x *Draws) String() string {
 func (*Draws) ProtoMessage() {}
 
 func (x *Draws) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1054,7 +1195,7 @@ func (x *Draws) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Draws.ProtoReflect.Descriptor instead.
 func (*Draws) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{7}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{9}
 }
 
 func (x *Draws) GetSeq() uint64 {
@@ -1123,7 +1264,7 @@ type Progress struct {
 
 func (x *Progress) Reset() {
 	*x = Progress{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1135,7 +1276,7 @@ func (x *Progress) String() string {
 func (*Progress) ProtoMessage() {}
 
 func (x *Progress) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1148,7 +1289,7 @@ func (x *Progress) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Progress.ProtoReflect.Descriptor instead.
 func (*Progress) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{8}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{10}
 }
 
 func (x *Progress) GetState() State {
@@ -1223,7 +1364,7 @@ type Finished struct {
 
 func (x *Finished) Reset() {
 	*x = Finished{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1235,7 +1376,7 @@ func (x *Finished) String() string {
 func (*Finished) ProtoMessage() {}
 
 func (x *Finished) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1248,7 +1389,7 @@ func (x *Finished) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Finished.ProtoReflect.Descriptor instead.
 func (*Finished) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{9}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{11}
 }
 
 func (x *Finished) GetReason() FinishReason {
@@ -1296,7 +1437,7 @@ type ParameterSummary struct {
 
 func (x *ParameterSummary) Reset() {
 	*x = ParameterSummary{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1308,7 +1449,7 @@ func (x *ParameterSummary) String() string {
 func (*ParameterSummary) ProtoMessage() {}
 
 func (x *ParameterSummary) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1321,7 +1462,7 @@ func (x *ParameterSummary) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ParameterSummary.ProtoReflect.Descriptor instead.
 func (*ParameterSummary) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{10}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{12}
 }
 
 func (x *ParameterSummary) GetName() string {
@@ -1356,7 +1497,15 @@ var File_sluice_v1_sluice_proto protoreflect.FileDescriptor
 
 const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\n" +
-	"\x16sluice/v1/sluice.proto\x12\tsluice.v1\"\xaf\x01\n" +
+	"\x16sluice/v1/sluice.proto\x12\tsluice.v1\"I\n" +
+	"\rFollowRequest\x12\x1d\n" +
+	"\n" +
+	"session_id\x18\x01 \x01(\tR\tsessionId\x12\x19\n" +
+	"\bfrom_seq\x18\x02 \x01(\x04R\afromSeq\"v\n" +
+	"\x0eFollowResponse\x12(\n" +
+	"\x05draws\x18\x01 \x01(\v2\x10.sluice.v1.DrawsH\x00R\x05draws\x121\n" +
+	"\bfinished\x18\x02 \x01(\v2\x13.sluice.v1.FinishedH\x00R\bfinishedB\a\n" +
+	"\x05frame\"\xaf\x01\n" +
 	"\x0eSessionRequest\x121\n" +
 	"\bregister\x18\x01 \x01(\v2\x13.sluice.v1.RegisterH\x00R\bregister\x12:\n" +
 	"\vevaluations\x18\x02 \x01(\v2\x16.sluice.v1.EvaluationsH\x00R\vevaluations\x12%\n" +
@@ -1472,9 +1621,10 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x15FINISH_REASON_STOPPED\x10\x03\x12!\n" +
 	"\x1dFINISH_REASON_DRAWS_COLLECTED\x10\x04\x12\x18\n" +
 	"\x14FINISH_REASON_FAILED\x10\x05\x12\x1a\n" +
-	"\x16FINISH_REASON_SHUTDOWN\x10\x062U\n" +
+	"\x16FINISH_REASON_SHUTDOWN\x10\x062\x96\x01\n" +
 	"\rSluiceService\x12D\n" +
-	"\aSession\x12\x19.sluice.v1.SessionRequest\x1a\x1a.sluice.v1.SessionResponse(\x010\x01B!Z\x1fsluice/proto/sluice/v1;sluicev1b\x06proto3"
+	"\aSession\x12\x19.sluice.v1.SessionRequest\x1a\x1a.sluice.v1.SessionResponse(\x010\x01\x12?\n" +
+	"\x06Follow\x12\x18.sluice.v1.FollowRequest\x1a\x19.sluice.v1.FollowResponse0\x01B!Z\x1fsluice/proto/sluice/v1;sluicev1b\x06proto3"
 
 var (
 	file_sluice_v1_sluice_proto_rawDescOnce sync.Once
@@ -1489,44 +1639,50 @@ func file_sluice_v1_sluice_proto_rawDescGZIP() []byte {
 }
 
 var file_sluice_v1_sluice_proto_enumTypes = make([]protoimpl.EnumInfo, 3)
-var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 11)
+var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 13)
 var file_sluice_v1_sluice_proto_goTypes = []any{
 	(Quantity)(0),            // 0: sluice.v1.Quantity
 	(State)(0),               // 1: sluice.v1.State
 	(FinishReason)(0),        // 2: sluice.v1.FinishReason
-	(*SessionRequest)(nil),   // 3: sluice.v1.SessionRequest
-	(*SessionResponse)(nil),  // 4: sluice.v1.SessionResponse
-	(*Register)(nil),         // 5: sluice.v1.Register
-	(*Registered)(nil),       // 6: sluice.v1.Registered
-	(*Points)(nil),           // 7: sluice.v1.Points
-	(*Evaluations)(nil),      // 8: sluice.v1.Evaluations
-	(*Stop)(nil),             // 9: sluice.v1.Stop
-	(*Draws)(nil),            // 10: sluice.v1.Draws
-	(*Progress)(nil),         // 11: sluice.v1.Progress
-	(*Finished)(nil),         // 12: sluice.v1.Finished
-	(*ParameterSummary)(nil), // 13: sluice.v1.ParameterSummary
+	(*FollowRequest)(nil),    // 3: sluice.v1.FollowRequest
+	(*FollowResponse)(nil),   // 4: sluice.v1.FollowResponse
+	(*SessionRequest)(nil),   // 5: sluice.v1.SessionRequest
+	(*SessionResponse)(nil),  // 6: sluice.v1.SessionResponse
+	(*Register)(nil),         // 7: sluice.v1.Register
+	(*Registered)(nil),       // 8: sluice.v1.Registered
+	(*Points)(nil),           // 9: sluice.v1.Points
+	(*Evaluations)(nil),      // 10: sluice.v1.Evaluations
+	(*Stop)(nil),             // 11: sluice.v1.Stop
+	(*Draws)(nil),            // 12: sluice.v1.Draws
+	(*Progress)(nil),         // 13: sluice.v1.Progress
+	(*Finished)(nil),         // 14: sluice.v1.Finished
+	(*ParameterSummary)(nil), // 15: sluice.v1.ParameterSummary
 }
 var file_sluice_v1_sluice_proto_depIdxs = []int32{
-	5,  // 0: sluice.v1.SessionRequest.register:type_name -> sluice.v1.Register
-	8,  // 1: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
-	9,  // 2: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
-	6,  // 3: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
-	7,  // 4: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
-	10, // 5: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
-	11, // 6: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
-	12, // 7: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
-	0,  // 8: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
-	1,  // 9: sluice.v1.Progress.state:type_name -> sluice.v1.State
-	2,  // 10: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
-	11, // 11: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
-	13, // 12: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
-	3,  // 13: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
-	4,  // 14: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
-	14, // [14:15] is the sub-list for method output_type
-	13, // [13:14] is the sub-list for method input_type
-	13, // [13:13] is the sub-list for extension type_name
-	13, // [13:13] is the sub-list for extension extendee
-	0,  // [0:13] is the sub-list for field type_name
+	12, // 0: sluice.v1.FollowResponse.draws:type_name -> sluice.v1.Draws
+	14, // 1: sluice.v1.FollowResponse.finished:type_name -> sluice.v1.Finished
+	7,  // 2: sluice.v1.SessionRequest.register:type_name -> sluice.v1.Register
+	10, // 3: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
+	11, // 4: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
+	8,  // 5: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
+	9,  // 6: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
+	12, // 7: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
+	13, // 8: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
+	14, // 9: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
+	0,  // 10: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
+	1,  // 11: sluice.v1.Progress.state:type_name -> sluice.v1.State
+	2,  // 12: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
+	13, // 13: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
+	15, // 14: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
+	5,  // 15: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
+	3,  // 16: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
+	6,  // 17: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
+	4,  // 18: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
+	17, // [17:19] is the sub-list for method output_type
+	15, // [15:17] is the sub-list for method input_type
+	15, // [15:15] is the sub-list for extension type_name
+	15, // [15:15] is the sub-list for extension extendee
+	0,  // [0:15] is the sub-list for field type_name
 }
 
 func init() { file_sluice_v1_sluice_proto_init() }
@@ -1534,12 +1690,16 @@ func file_sluice_v1_sluice_proto_init() {
 	if File_sluice_v1_sluice_proto != nil {
 		return
 	}
-	file_sluice_v1_sluice_proto_msgTypes[0].OneofWrappers = []any{
+	file_sluice_v1_sluice_proto_msgTypes[1].OneofWrappers = []any{
+		(*FollowResponse_Draws)(nil),
+		(*FollowResponse_Finished)(nil),
+	}
+	file_sluice_v1_sluice_proto_msgTypes[2].OneofWrappers = []any{
 		(*SessionRequest_Register)(nil),
 		(*SessionRequest_Evaluations)(nil),
 		(*SessionRequest_Stop)(nil),
 	}
-	file_sluice_v1_sluice_proto_msgTypes[1].OneofWrappers = []any{
+	file_sluice_v1_sluice_proto_msgTypes[3].OneofWrappers = []any{
 		(*SessionResponse_Registered)(nil),
 		(*SessionResponse_Points)(nil),
 		(*SessionResponse_Draws)(nil),
@@ -1552,7 +1712,7 @@ func file_sluice_v1_sluice_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_sluice_v1_sluice_proto_rawDesc), len(file_sluice_v1_sluice_proto_rawDesc)),
 			NumEnums:      3,
-			NumMessages:   11,
+			NumMessages:   13,
 			NumExtensions: 0,
 			NumServices:   1,
 		},

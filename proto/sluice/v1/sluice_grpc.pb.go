@@ -39,6 +39,7 @@ const _ = grpc.SupportPackageIsVersion9
 
 const (
 	SluiceService_Session_FullMethodName = "/sluice.v1.SluiceService/Session"
+	SluiceService_Follow_FullMethodName  = "/sluice.v1.SluiceService/Follow"
 )
 
 // SluiceServiceClient is the client API for SluiceService service.
@@ -67,6 +68,17 @@ type SluiceServiceClient interface {
 	// FINISH_REASON_FAILED is sent before the error status whenever the stream
 	// can still carry it, so no draw already computed is lost.
 	Session(ctx context.Context, opts ...grpc.CallOption) (grpc.BidiStreamingClient[SessionRequest, SessionResponse], error)
+	// Follow streams the draws of a running (or recently finished) session to
+	// a downstream consumer, from a sequence number on. It is server-streaming
+	// because the consumer only listens. The server keeps each session's
+	// latest draws in a bounded buffer (`sluice serve --follow-buffer`), so a
+	// consumer that disconnects and comes back with the next sequence number
+	// it needs gets every draw after it, with no loss and no duplicate. Rows
+	// already dropped from the buffer end the call with OUT_OF_RANGE (the
+	// message says the oldest sequence number kept), never with a silent gap;
+	// an unknown session gives NOT_FOUND. The stream ends with the session's
+	// Finished frame once every draw has been sent.
+	Follow(ctx context.Context, in *FollowRequest, opts ...grpc.CallOption) (grpc.ServerStreamingClient[FollowResponse], error)
 }
 
 type sluiceServiceClient struct {
@@ -89,6 +101,25 @@ func (c *sluiceServiceClient) Session(ctx context.Context, opts ...grpc.CallOpti
 
 // This type alias is provided for backwards compatibility with existing code that references the prior non-generic stream type by name.
 type SluiceService_SessionClient = grpc.BidiStreamingClient[SessionRequest, SessionResponse]
+
+func (c *sluiceServiceClient) Follow(ctx context.Context, in *FollowRequest, opts ...grpc.CallOption) (grpc.ServerStreamingClient[FollowResponse], error) {
+	cOpts := append([]grpc.CallOption{grpc.StaticMethod()}, opts...)
+	stream, err := c.cc.NewStream(ctx, &SluiceService_ServiceDesc.Streams[1], SluiceService_Follow_FullMethodName, cOpts...)
+	if err != nil {
+		return nil, err
+	}
+	x := &grpc.GenericClientStream[FollowRequest, FollowResponse]{ClientStream: stream}
+	if err := x.ClientStream.SendMsg(in); err != nil {
+		return nil, err
+	}
+	if err := x.ClientStream.CloseSend(); err != nil {
+		return nil, err
+	}
+	return x, nil
+}
+
+// This type alias is provided for backwards compatibility with existing code that references the prior non-generic stream type by name.
+type SluiceService_FollowClient = grpc.ServerStreamingClient[FollowResponse]
 
 // SluiceServiceServer is the server API for SluiceService service.
 // All implementations must embed UnimplementedSluiceServiceServer
@@ -116,6 +147,17 @@ type SluiceServiceServer interface {
 	// FINISH_REASON_FAILED is sent before the error status whenever the stream
 	// can still carry it, so no draw already computed is lost.
 	Session(grpc.BidiStreamingServer[SessionRequest, SessionResponse]) error
+	// Follow streams the draws of a running (or recently finished) session to
+	// a downstream consumer, from a sequence number on. It is server-streaming
+	// because the consumer only listens. The server keeps each session's
+	// latest draws in a bounded buffer (`sluice serve --follow-buffer`), so a
+	// consumer that disconnects and comes back with the next sequence number
+	// it needs gets every draw after it, with no loss and no duplicate. Rows
+	// already dropped from the buffer end the call with OUT_OF_RANGE (the
+	// message says the oldest sequence number kept), never with a silent gap;
+	// an unknown session gives NOT_FOUND. The stream ends with the session's
+	// Finished frame once every draw has been sent.
+	Follow(*FollowRequest, grpc.ServerStreamingServer[FollowResponse]) error
 	mustEmbedUnimplementedSluiceServiceServer()
 }
 
@@ -128,6 +170,9 @@ type UnimplementedSluiceServiceServer struct{}
 
 func (UnimplementedSluiceServiceServer) Session(grpc.BidiStreamingServer[SessionRequest, SessionResponse]) error {
 	return status.Error(codes.Unimplemented, "method Session not implemented")
+}
+func (UnimplementedSluiceServiceServer) Follow(*FollowRequest, grpc.ServerStreamingServer[FollowResponse]) error {
+	return status.Error(codes.Unimplemented, "method Follow not implemented")
 }
 func (UnimplementedSluiceServiceServer) mustEmbedUnimplementedSluiceServiceServer() {}
 func (UnimplementedSluiceServiceServer) testEmbeddedByValue()                       {}
@@ -157,6 +202,17 @@ func _SluiceService_Session_Handler(srv interface{}, stream grpc.ServerStream) e
 // This type alias is provided for backwards compatibility with existing code that references the prior non-generic stream type by name.
 type SluiceService_SessionServer = grpc.BidiStreamingServer[SessionRequest, SessionResponse]
 
+func _SluiceService_Follow_Handler(srv interface{}, stream grpc.ServerStream) error {
+	m := new(FollowRequest)
+	if err := stream.RecvMsg(m); err != nil {
+		return err
+	}
+	return srv.(SluiceServiceServer).Follow(m, &grpc.GenericServerStream[FollowRequest, FollowResponse]{ServerStream: stream})
+}
+
+// This type alias is provided for backwards compatibility with existing code that references the prior non-generic stream type by name.
+type SluiceService_FollowServer = grpc.ServerStreamingServer[FollowResponse]
+
 // SluiceService_ServiceDesc is the grpc.ServiceDesc for SluiceService service.
 // It's only intended for direct use with grpc.RegisterService,
 // and not to be introspected or modified (even as a copy)
@@ -170,6 +226,11 @@ var SluiceService_ServiceDesc = grpc.ServiceDesc{
 			Handler:       _SluiceService_Session_Handler,
 			ServerStreams: true,
 			ClientStreams: true,
+		},
+		{
+			StreamName:    "Follow",
+			Handler:       _SluiceService_Follow_Handler,
+			ServerStreams: true,
 		},
 	},
 	Metadata: "sluice/v1/sluice.proto",

@@ -1,0 +1,226 @@
+package server_test
+
+import (
+	"context"
+	"fmt"
+	"math"
+	"math/rand/v2"
+	"testing"
+	"time"
+
+	"gonum.org/v1/gonum/mat"
+	"google.golang.org/grpc"
+
+	"sluice/client"
+	"sluice/kernels"
+	"sluice/kernels/targets"
+	"sluice/server"
+	"sluice/server/session"
+)
+
+// A transportCase is one (dim, chains) point of BenchmarkTransport. Every
+// mode runs steps steps per run; the in-process mode, far faster, repeats
+// its run inprocReps times per iteration so that it too is long enough to
+// time. Step counts are set from the measured floor (TOOLCHAIN.md,
+// "Transport floor") so the floor runs about 0.3–0.4 s per iteration.
+type transportCase struct {
+	dim, chains int
+	steps       int
+	inprocReps  int
+}
+
+func (c transportCase) name() string { return fmt.Sprintf("dim=%d_chains=%d", c.dim, c.chains) }
+
+var transportCases = []transportCase{
+	{dim: 10, chains: 8, steps: 6000, inprocReps: 50},
+	{dim: 100, chains: 64, steps: 1200, inprocReps: 4},
+	{dim: 1000, chains: 64, steps: 300, inprocReps: 2},
+}
+
+const (
+	benchSeed = 20240601
+	benchStep = 0.1
+	// warmSteps is the length of the untimed run of every mode that opens
+	// the connections and lets the transport's flow-control windows grow.
+	warmSteps = 200
+)
+
+// diagGaussian is N(mean, diag(q)⁻¹): the density of targets.Gaussian with
+// a diagonal precision, with an O(dim) gradient. targets.Gaussian costs
+// dim² per point whatever the precision's sparsity (about 54 ms per step at
+// dim 1000, 64 chains, against a 1.2 ms transport floor), which would hide
+// the transport; this one keeps the evaluation small next to it.
+// benchTarget checks it against targets.Gaussian.
+type diagGaussian struct{ mean, q []float64 }
+
+var _ targets.Target = (*diagGaussian)(nil)
+
+func (g *diagGaussian) Dim() int { return len(g.mean) }
+
+func (g *diagGaussian) LogDensity(x []float64) float64 {
+	var s float64
+	for i, m := range g.mean {
+		d := x[i] - m
+		s += g.q[i] * d * d
+	}
+	return -0.5 * s
+}
+
+func (g *diagGaussian) GradLogDensity(dst, x []float64) {
+	x, dst = x[:len(g.mean)], dst[:len(g.mean)]
+	for i, m := range g.mean {
+		dst[i] = -(g.q[i] * (x[i] - m))
+	}
+}
+
+func (g *diagGaussian) Curvature() (m, M float64) {
+	m, M = math.Inf(1), 0
+	for _, v := range g.q {
+		m, M = min(m, v), max(M, v)
+	}
+	return m, M
+}
+
+// benchTarget builds the case's target and checks, on rows random points,
+// that its gradient equals targets.Gaussian's with the same mean and
+// precision.
+func benchTarget(b *testing.B, dim, rows int) targets.Target {
+	b.Helper()
+	g := &diagGaussian{mean: make([]float64, dim), q: make([]float64, dim)}
+	prec := mat.NewSymDense(dim, nil)
+	for i := range dim {
+		g.mean[i] = float64(i%7)/7 - 0.5
+		g.q[i] = 1 + float64(i)/float64(dim) // eigenvalues in [1, 2): h = 0.1 is stable
+		prec.SetSym(i, i, g.q[i])
+	}
+	ref, err := targets.NewGaussian(g.mean, prec)
+	if err != nil {
+		b.Fatal(err)
+	}
+	rng := rand.New(rand.NewPCG(1, 2))
+	x := make([]float64, rows*dim)
+	for i := range x {
+		x[i] = 3 * rng.NormFloat64()
+	}
+	got, want := make([]float64, rows*dim), make([]float64, rows*dim)
+	targets.EvalBatch(g, x, rows, got, nil)
+	targets.EvalBatch(ref, x, rows, want, nil)
+	for i := range want {
+		if got[i] != want[i] {
+			b.Fatalf("dim %d: gradient %d is %v, targets.Gaussian gives %v", dim, i, got[i], want[i])
+		}
+	}
+	return g
+}
+
+// runInproc drives a fresh LMC kernel for steps steps with tg's gradient
+// and returns its final positions.
+func runInproc(tg targets.Target, c transportCase, start []float64) []float64 {
+	k := kernels.NewLMC(c.dim, c.chains, benchStep, start, kernels.NewSource(benchSeed))
+	a := kernels.NewAnswer(c.chains, c.dim)
+	for range c.steps {
+		req := k.Next()
+		targets.EvalBatch(tg, req.Points, req.Rows, a.Grad[:req.Rows*c.dim], nil)
+		k.Tell(a)
+	}
+	return k.Positions()
+}
+
+// runSession runs one session of steps steps over conn, answering with
+// tg, and returns the summary and the draws of the last step.
+func runSession(ctx context.Context, conn grpc.ClientConnInterface, tg targets.Target, c transportCase, steps int, start []float64) (*client.Summary, []float64, error) {
+	spec := client.Spec{Dim: c.dim, Chains: c.chains, Kernel: "lmc", Start: start, Step: benchStep,
+		BurnIn: 0, KeepEvery: 1, DrawsPerChain: int64(steps), Seed: benchSeed, MaxMessageBytes: floorMessageBytes}
+	last := make([]float64, c.chains*c.dim)
+	eval := func(_ context.Context, bt *client.Batch) error {
+		targets.EvalBatch(tg, bt.Points, bt.Rows, bt.Grad, nil)
+		return nil
+	}
+	onDraws := client.OnDraws(func(d *client.Draws) {
+		if d.Rows > 0 && d.Iterations[0] == int64(steps) {
+			copy(last[d.Chains[0]*c.dim:], d.Values)
+		}
+	})
+	sum, err := client.Run(ctx, conn, spec, eval, onDraws)
+	return sum, last, err
+}
+
+// BenchmarkTransport measures, side by side in each iteration, the draws
+// per second of one LMC configuration (same target, kernel and seed)
+// driven three ways: in-process; as a session of a real server over
+// loopback TCP; and the bare transport floor, an engine-free ping-pong of
+// the same payload each way on the same stream type (echoService). A draw
+// is one chain's state after one step. tcp/floor is the session's time
+// per step over the floor's per round trip (TOOLCHAIN.md aims at ≤ 1.2).
+// Every session is checked to deliver chains×steps draws whose last step
+// equals the in-process run bit for bit.
+func BenchmarkTransport(b *testing.B) {
+	for _, c := range transportCases {
+		b.Run(c.name(), func(b *testing.B) {
+			tg := benchTarget(b, c.dim, c.chains)
+			start := make([]float64, c.dim)
+			payload := make([]byte, 8*c.dim*c.chains)
+
+			srv := server.New(server.Options{Limits: session.Limits{MaxMessageBytes: floorMessageBytes}})
+			tcp := serveLoopback(b, srv.Serve, srv.Stop)
+			floor := startFloor(b, c.steps, 1, payload)
+			ctx, cancel := context.WithTimeout(context.Background(), 5*time.Minute)
+			defer cancel()
+
+			warm := min(c.steps, warmSteps)
+			if _, _, err := runSession(ctx, tcp, tg, c, warm, start); err != nil {
+				b.Fatal(err)
+			}
+			if err := runFloor(ctx, floor, warm, 1, payload); err != nil {
+				b.Fatal(err)
+			}
+
+			b.ReportAllocs()
+			var inT, tcpT, floorT time.Duration
+			iters := 0
+			for b.Loop() {
+				t0 := time.Now()
+				var want []float64
+				for range c.inprocReps {
+					want = runInproc(tg, c, start)
+				}
+				inT += time.Since(t0)
+
+				t0 = time.Now()
+				sum, got, err := runSession(ctx, tcp, tg, c, c.steps, start)
+				tcpT += time.Since(t0)
+				if err != nil {
+					b.Fatal(err)
+				}
+				if sum.Reason != client.DrawsCollected || sum.DrawsReceived != int64(c.chains*c.steps) {
+					b.Fatalf("session: reason %v, %d draws received, want %d", sum.Reason, sum.DrawsReceived, c.chains*c.steps)
+				}
+				for i := range want {
+					if math.Float64bits(got[i]) != math.Float64bits(want[i]) {
+						b.Fatalf("last draw, value %d: %v over TCP, %v in-process", i, got[i], want[i])
+					}
+				}
+
+				t0 = time.Now()
+				err = runFloor(ctx, floor, c.steps, 1, payload)
+				floorT += time.Since(t0)
+				if err != nil {
+					b.Fatal(err)
+				}
+				iters++
+			}
+
+			steps := float64(c.steps * iters)
+			draws := steps * float64(c.chains)
+			inRate := draws * float64(c.inprocReps) / inT.Seconds()
+			tcpRate := draws / tcpT.Seconds()
+			b.ReportMetric(inRate, "inproc-draws/s")
+			b.ReportMetric(tcpRate, "tcp-draws/s")
+			b.ReportMetric(steps/floorT.Seconds(), "floor-steps/s")
+			b.ReportMetric(tcpRate/inRate, "tcp/inproc")
+			b.ReportMetric(tcpT.Seconds()/floorT.Seconds(), "tcp/floor")
+			b.ReportMetric(tcpT.Seconds()*1e6/steps, "us/step-tcp")
+			b.ReportMetric(floorT.Seconds()*1e6/steps, "us/rtt-floor")
+		})
+	}
+}

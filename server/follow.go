@@ -1,0 +1,48 @@
+package server
+
+import (
+	"errors"
+
+	"google.golang.org/grpc"
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
+
+	sluicev1 "sluice/proto/sluice/v1"
+	"sluice/server/session"
+)
+
+// Follow implements the Follow rpc: it streams a session's draws from its
+// draw log, in sequence order from the requested number, then the
+// session's Finished frame.
+func (s *Server) Follow(req *sluicev1.FollowRequest, stream grpc.ServerStreamingServer[sluicev1.FollowResponse]) error {
+	s.mu.Lock()
+	f, ok := s.logs[req.GetSessionId()]
+	s.mu.Unlock()
+	if !ok {
+		return withField(codes.NotFound, "session_id", "no session %q is followable here (unknown, not kept, or the server keeps no draws for followers)", req.GetSessionId())
+	}
+	from := req.GetFromSeq()
+	if _, next := f.log.Span(); from > next {
+		return withField(codes.OutOfRange, "from_seq", "%d is beyond the latest draw (next is %d)", from, next)
+	}
+	rows := max(1, int((f.limit-1024)/int64(8*f.dim+16)))
+	var enc encoder
+	for {
+		d, err := f.log.Read(stream.Context(), from, rows)
+		switch {
+		case errors.Is(err, session.ErrDrawsDropped):
+			return withField(codes.OutOfRange, "from_seq", "%v", err)
+		case errors.Is(err, session.ErrLogClosed):
+			fin, _ := f.log.Finished()
+			w := enc.frame(&fin).GetFinished()
+			return stream.Send(&sluicev1.FollowResponse{Frame: &sluicev1.FollowResponse_Finished{Finished: w}})
+		case err != nil:
+			return status.FromContextError(err).Err()
+		}
+		w := enc.frame(&d).GetDraws()
+		if err := stream.Send(&sluicev1.FollowResponse{Frame: &sluicev1.FollowResponse_Draws{Draws: w}}); err != nil {
+			return err
+		}
+		from += uint64(d.Rows)
+	}
+}

@@ -1,0 +1,130 @@
+package server_test
+
+import (
+	"context"
+	"errors"
+	"io"
+	"testing"
+
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
+
+	"sluice/client"
+	sluicev1 "sluice/proto/sluice/v1"
+	"sluice/server"
+	"sluice/server/session"
+)
+
+// followRows reads a Follow stream from seq until it has want rows more
+// (or the stream ends), returning the values, the next seq, and the
+// stream's end (nil while rows were still coming).
+func followRows(ctx context.Context, c sluicev1.SluiceServiceClient, id string, from uint64, want int) ([]float64, uint64, *sluicev1.Finished, error) {
+	st, err := c.Follow(ctx, &sluicev1.FollowRequest{SessionId: id, FromSeq: from})
+	if err != nil {
+		return nil, from, nil, err
+	}
+	var vals []float64
+	got := 0
+	for got < want {
+		f, err := st.Recv()
+		if errors.Is(err, io.EOF) {
+			return vals, from, nil, nil
+		}
+		if err != nil {
+			return vals, from, nil, err
+		}
+		if fin := f.GetFinished(); fin != nil {
+			return vals, from, fin, nil
+		}
+		d := f.GetDraws()
+		if d.Seq != from {
+			return vals, from, nil, errors.New("gap or duplicate in followed draws")
+		}
+		for i := 0; i+8 <= len(d.Values); i += 8 {
+			vals = append(vals, float64frombytes(d.Values[i:]))
+		}
+		from += uint64(d.Rows)
+		got += int(d.Rows)
+	}
+	return vals, from, nil, nil
+}
+
+// A follower that disconnects and comes back with its next sequence
+// number gets every draw exactly once, identical to what the session's
+// own client received, then the Finished frame.
+func TestFollowResumesWithoutLossOrDuplicate(t *testing.T) {
+	conn, _ := start(t, server.Options{Limits: session.Limits{FollowBuffer: 4096}})
+	ctx := testCtx(t)
+	ids := make(chan string, 1)
+	var own []float64
+	spec := client.Spec{Dim: 2, Chains: 4, Start: []float64{0, 0}, Step: 0.1, Seed: 8, DrawsPerChain: 300}
+	done := make(chan error, 1)
+	go func() {
+		_, err := client.Run(ctx, conn, spec, evaluator(gaussian2D(t)),
+			client.OnRegistered(func(r *client.Registered) { ids <- r.SessionID }),
+			client.OnDraws(func(d *client.Draws) { own = append(own, d.Values...) }))
+		done <- err
+	}()
+	id := <-ids
+	c := sluicev1.NewSluiceServiceClient(conn)
+	var got []float64
+	from := uint64(0)
+	for _, chunk := range []int{250, 333, 1 << 30} { // disconnect twice mid-stream
+		cctx, cancel := context.WithCancel(ctx)
+		vals, next, fin, err := followRows(cctx, c, id, from, chunk)
+		cancel()
+		if err != nil {
+			t.Fatal(err)
+		}
+		got = append(got, vals...)
+		from = next
+		if fin != nil {
+			if fin.Reason != sluicev1.FinishReason_FINISH_REASON_DRAWS_COLLECTED {
+				t.Fatalf("finished %v", fin.Reason)
+			}
+			break
+		}
+	}
+	if err := <-done; err != nil {
+		t.Fatal(err)
+	}
+	if from != 1200 || len(got) != len(own) {
+		t.Fatalf("followed %d values up to seq %d; the client got %d values (want 1200 rows)", len(got), from, len(own))
+	}
+	for i := range own {
+		if got[i] != own[i] {
+			t.Fatalf("value %d: followed %v, client %v", i, got[i], own[i])
+		}
+	}
+}
+
+// A consumer asking for draws that have left the bounded buffer gets
+// OUT_OF_RANGE naming from_seq, not a silent gap; an unknown session gets
+// NOT_FOUND.
+func TestFollowBehindBufferIsOutOfRange(t *testing.T) {
+	conn, _ := start(t, server.Options{Limits: session.Limits{FollowBuffer: 40}})
+	ctx := testCtx(t)
+	spec := client.Spec{Dim: 2, Chains: 4, Start: []float64{0, 0}, Step: 0.1, Seed: 8, DrawsPerChain: 100}
+	sum, err := client.Run(ctx, conn, spec, evaluator(gaussian2D(t)))
+	if err != nil {
+		t.Fatal(err)
+	}
+	c := sluicev1.NewSluiceServiceClient(conn)
+	_, _, _, err = followRows(ctx, c, sum.Registered.SessionID, 0, 10)
+	if s := status.Convert(err); s.Code() != codes.OutOfRange || fieldOf(s) != "from_seq" {
+		t.Fatalf("from 0 with 40 kept of 400: %v (field %q), want OUT_OF_RANGE on from_seq", err, fieldOf(s))
+	}
+	// The last 40 rows are still there, then the Finished frame.
+	vals, next, fin, err := followRows(ctx, c, sum.Registered.SessionID, 360, 1<<30)
+	if err != nil || len(vals) != 80 || next != 400 || fin == nil {
+		t.Fatalf("tail: %d values, next %d, finished %v, err %v", len(vals), next, fin != nil, err)
+	}
+	_, _, _, err = followRows(ctx, c, sum.Registered.SessionID, 401, 1)
+	if status.Code(err) != codes.OutOfRange {
+		t.Fatalf("beyond the end: %v", err)
+	}
+	_, _, _, err = followRows(ctx, c, "no-such-session", 0, 1)
+	if s := status.Convert(err); s.Code() != codes.NotFound || fieldOf(s) != "session_id" {
+		t.Fatalf("unknown session: %v", err)
+	}
+}
