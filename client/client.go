@@ -45,12 +45,19 @@ type Batch struct {
 	Points []float64
 	// Chains gives the chain of each row.
 	Chains []int
-	// WantGradient and WantLogDensity say what the server asks for.
-	WantGradient, WantLogDensity bool
+	// WantGradient, WantLogDensity, WantHessian and WantHessianVector say
+	// what the server asks for.
+	WantGradient, WantLogDensity, WantHessian, WantHessianVector bool
 	// Grad receives ∇log π, Rows×Dim values.
 	Grad []float64
 	// LogDensity receives log π (up to a constant), Rows values.
 	LogDensity []float64
+	// Hessian receives the Hessian of log π, Rows×Dim×Dim values (row r's
+	// matrix is the r-th block, row-major).
+	Hessian []float64
+	// Vectors holds Rows×Dim values when WantHessianVector: HessVec
+	// receives the Hessian of log π at each point times its vector.
+	Vectors, HessVec []float64
 }
 
 // Point returns row r of Points.
@@ -286,17 +293,31 @@ func (r *runner) answer(ctx context.Context, p *sluicev1.Points) error {
 	for _, c := range p.GetChains() {
 		b.Chains = append(b.Chains, int(c))
 	}
-	b.WantGradient, b.WantLogDensity = false, false
+	b.WantGradient, b.WantLogDensity, b.WantHessian, b.WantHessianVector = false, false, false, false
 	for _, q := range p.GetQuantities() {
 		switch q {
 		case sluicev1.Quantity_QUANTITY_GRADIENT:
 			b.WantGradient = true
 		case sluicev1.Quantity_QUANTITY_LOG_DENSITY:
 			b.WantLogDensity = true
+		case sluicev1.Quantity_QUANTITY_HESSIAN:
+			b.WantHessian = true
+		case sluicev1.Quantity_QUANTITY_HESSIAN_VECTOR:
+			b.WantHessianVector = true
 		}
 	}
 	b.Grad = resize(b.Grad, n)
 	b.LogDensity = resize(b.LogDensity, b.Rows)
+	if b.WantHessian {
+		b.Hessian = resize(b.Hessian, n*b.Dim)
+	}
+	if b.WantHessianVector {
+		if len(p.GetVectors()) != 8*n {
+			return fmt.Errorf("client: malformed points frame: %d bytes of vectors for %d×%d", len(p.GetVectors()), b.Rows, b.Dim)
+		}
+		b.Vectors = getFloats(b.Vectors[:0], p.GetVectors())
+		b.HessVec = resize(b.HessVec, n)
+	}
 	ev := &sluicev1.Evaluations{RequestId: p.GetRequestId(), FirstRow: p.GetFirstRow(), Rows: p.GetRows(), Dim: p.GetDim()}
 	if err := r.eval(ctx, b); err != nil {
 		r.evalErr = err
@@ -309,6 +330,12 @@ func (r *runner) answer(ctx context.Context, p *sluicev1.Points) error {
 	}
 	if b.WantLogDensity {
 		ev.LogDensities = putFloats(nil, b.LogDensity)
+	}
+	if b.WantHessian {
+		ev.Hessians = putFloats(nil, b.Hessian)
+	}
+	if b.WantHessianVector {
+		ev.HessianVectors = putFloats(nil, b.HessVec)
 	}
 	return r.stream.Send(&sluicev1.SessionRequest{Frame: &sluicev1.SessionRequest_Evaluations{Evaluations: ev}})
 }

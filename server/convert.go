@@ -54,8 +54,16 @@ func messageFromWire(f *sluicev1.SessionRequest) session.Message {
 		if err != nil {
 			return session.Message{Err: err}
 		}
+		hess, err := floats("evaluations.hessians", e.GetHessians())
+		if err != nil {
+			return session.Message{Err: err}
+		}
+		hv, err := floats("evaluations.hessian_vectors", e.GetHessianVectors())
+		if err != nil {
+			return session.Message{Err: err}
+		}
 		return session.Message{Evaluations: &session.Evaluations{RequestID: e.GetRequestId(), FirstRow: int(e.GetFirstRow()),
-			Rows: int(e.GetRows()), Dim: int(e.GetDim()), Grad: grad, LogDensity: ld}}
+			Rows: int(e.GetRows()), Dim: int(e.GetDim()), Grad: grad, LogDensity: ld, Hessian: hess, HessVec: hv}}
 	case *sluicev1.SessionRequest_Stop:
 		return session.Message{Stop: true, StopReason: f.Stop.GetReason()}
 	case *sluicev1.SessionRequest_Register:
@@ -99,9 +107,17 @@ func (e *encoder) frame(f session.Frame) *sluicev1.SessionResponse {
 		if f.Need.Has(kernels.NeedLogDensity) {
 			q = append(q, sluicev1.Quantity_QUANTITY_LOG_DENSITY)
 		}
-		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Points{Points: &sluicev1.Points{
-			RequestId: f.RequestID, FirstRow: int32(f.FirstRow), Rows: int32(f.Rows), Dim: int32(f.Dim),
-			Points: e.floats(f.Points), Chains: e.ints(f.Chains), Quantities: q, TotalRows: int32(f.TotalRows)}}}
+		if f.Need.Has(kernels.NeedHessian) {
+			q = append(q, sluicev1.Quantity_QUANTITY_HESSIAN)
+		}
+		p := &sluicev1.Points{RequestId: f.RequestID, FirstRow: int32(f.FirstRow), Rows: int32(f.Rows), Dim: int32(f.Dim),
+			Points: e.floats(f.Points), Chains: e.ints(f.Chains), TotalRows: int32(f.TotalRows)}
+		if f.Need.Has(kernels.NeedHessianVector) {
+			q = append(q, sluicev1.Quantity_QUANTITY_HESSIAN_VECTOR)
+			p.Vectors = putFloats(nil, f.Vectors)
+		}
+		p.Quantities = q
+		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Points{Points: p}}
 	case *session.Draws:
 		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Draws{Draws: &sluicev1.Draws{
 			Seq: f.Seq, Rows: int32(f.Rows), Dim: int32(f.Dim), Values: e.floats(f.Values),

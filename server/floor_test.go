@@ -6,16 +6,12 @@ import (
 	"fmt"
 	"io"
 	"net"
-	"os"
-	"sync"
 	"testing"
 	"time"
 
 	"google.golang.org/grpc"
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/credentials/insecure"
-	"google.golang.org/grpc/experimental"
-	"google.golang.org/grpc/mem"
 	"google.golang.org/grpc/status"
 
 	sluicev1 "sluice/proto/sluice/v1"
@@ -212,65 +208,5 @@ func BenchmarkSessionLoopback(b *testing.B) {
 			}
 			b.ReportMetric(total.Seconds()*1e6/float64(c.steps*iters), "us/step")
 		})
-	}
-}
-
-// TEMPORARY experiment, removed after the run.
-type dirtyPool struct {
-	tiers []sync.Pool
-	sizes []int
-}
-
-func newDirtyPool() *dirtyPool {
-	p := &dirtyPool{}
-	for e := 8; e <= 26; e++ {
-		p.sizes = append(p.sizes, 1<<e)
-	}
-	p.tiers = make([]sync.Pool, len(p.sizes))
-	return p
-}
-func (p *dirtyPool) tier(n int) int {
-	for i, s := range p.sizes {
-		if s >= n {
-			return i
-		}
-	}
-	return -1
-}
-func (p *dirtyPool) Get(n int) *[]byte {
-	i := p.tier(n)
-	if i < 0 {
-		b := make([]byte, n)
-		return &b
-	}
-	if b, ok := p.tiers[i].Get().(*[]byte); ok {
-		*b = (*b)[:n]
-		return b
-	}
-	b := make([]byte, n, p.sizes[i])
-	return &b
-}
-func (p *dirtyPool) Put(b *[]byte) {
-	c := cap(*b)
-	for i := len(p.sizes) - 1; i >= 0; i-- {
-		if c >= p.sizes[i] {
-			if c == p.sizes[i] {
-				p.tiers[i].Put(b)
-			}
-			return
-		}
-	}
-}
-
-func init() {
-	switch os.Getenv("SLUICE_POOL") {
-	case "fine":
-		pool, err := mem.NewBinaryTieredBufferPool(8, 12, 14, 15, 16, 17, 18, 19, 20, 21, 22, 23, 24, 25, 26)
-		if err != nil {
-			panic(err)
-		}
-		experimental.SetDefaultBufferPool(pool)
-	case "dirty":
-		experimental.SetDefaultBufferPool(newDirtyPool())
 	}
 }

@@ -31,6 +31,8 @@ type Points struct {
 	Points                    []float64 // Rows×Dim
 	Chains                    []int     // Rows
 	Need                      kernels.Need
+	// Vectors holds Rows×Dim values when Need has NeedHessianVector.
+	Vectors []float64
 }
 
 // Draws carries kept draws numbered Seq, Seq+1, ..., Seq+Rows−1.
@@ -121,9 +123,10 @@ type Evaluations struct {
 	RequestID      uint64
 	FirstRow, Rows int
 	Dim            int
-	// Grad holds Rows×Dim values; LogDensity holds Rows values or is
+	// Grad holds Rows×Dim values; LogDensity holds Rows values; Hessian
+	// holds Rows×Dim×Dim values; HessVec holds Rows×Dim values. Each is
 	// empty when not asked for.
-	Grad, LogDensity []float64
+	Grad, LogDensity, Hessian, HessVec []float64
 }
 
 // Message is one thing received from the client, or the end of the

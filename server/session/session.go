@@ -21,7 +21,7 @@ type Session struct {
 	kernel kernels.Kernel
 
 	msgBytes    int64 // negotiated message limit
-	rowsPerPart int   // rows per Points frame
+	rowsPerPart int   // rows per Points frame of the current request
 	answer      *kernels.Answer
 	answered    []bool // per part of the current request
 
@@ -70,20 +70,16 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 	} else if c > 0 && c < s.msgBytes {
 		s.msgBytes = c
 	}
-	// A row costs its values (points out, gradients and a log density
-	// back) plus a few bytes of varint chain index and framing.
-	const overhead = 1024
-	perRow := int64(8*(spec.Dim+1) + 16)
-	s.rowsPerPart = int((s.msgBytes - overhead) / perRow)
-	if s.rowsPerPart < 1 {
-		return nil, &Error{Kind: TooLarge, Field: "register.dim", Chain: -1, Coord: -1,
-			Reason: fmt.Sprintf("one point of dimension %d (%d bytes) does not fit the message limit of %d bytes", spec.Dim, perRow, s.msgBytes)}
-	}
 	switch spec.Kernel {
 	case "lmc":
 		s.kernel = kernels.NewLMC(spec.Dim, spec.Chains, spec.Step, spec.Start, kernels.NewSource(spec.Seed))
 	default:
 		return nil, BadField("register.kernel", "unknown kernel %q", spec.Kernel)
+	}
+	if s.partRows(s.kernel.Next().Need) < 1 {
+		return nil, &Error{Kind: TooLarge, Field: "register.dim", Chain: -1, Coord: -1,
+			Reason: fmt.Sprintf("one point of dimension %d with its answer (%d bytes for kernel %s) does not fit the message limit of %d bytes",
+				spec.Dim, rowBytes(s.kernel.Next().Need, spec.Dim), spec.Kernel, s.msgBytes)}
 	}
 	if lim.FollowBuffer > 0 {
 		s.log = NewDrawLog(spec.Dim, min(lim.FollowBuffer, max(1, maxFollowBytes/(8*spec.Dim))))
@@ -197,25 +193,52 @@ func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) e
 	}
 }
 
+// rowBytes bounds the bytes one row costs in the larger of a Points frame
+// and its answer: the values, plus a few bytes of varint chain index and
+// framing.
+func rowBytes(need kernels.Need, dim int) int64 {
+	out := int64(8 * dim) // the point
+	back := int64(8 * (dim + 1))
+	if need.Has(kernels.NeedHessian) {
+		back += int64(8 * dim * dim)
+	}
+	if need.Has(kernels.NeedHessianVector) {
+		out += int64(8 * dim)
+		back += int64(8 * dim)
+	}
+	return max(out, back) + 16
+}
+
+// partRows is how many rows fit one message for a request needing need.
+func (s *Session) partRows(need kernels.Need) int {
+	const overhead = 1024
+	return int((s.msgBytes - overhead) / rowBytes(need, s.spec.Dim))
+}
+
 // parts is the number of Points frames a request of rows rows takes.
 func (s *Session) parts(rows int) int { return (rows + s.rowsPerPart - 1) / s.rowsPerPart }
 
 func (s *Session) sendPoints(req *kernels.Request, send func(Frame) error) error {
+	s.rowsPerPart = s.partRows(req.Need)
+	if s.rowsPerPart < 1 {
+		return &Error{Kind: Internal, Field: "points", Chain: -1, Coord: -1, Reason: "one row exceeds the message limit"}
+	}
 	n := s.parts(req.Rows)
 	if cap(s.answered) < n {
 		s.answered = make([]bool, n)
 	}
 	s.answered = s.answered[:n]
 	clear(s.answered)
-	if len(s.answer.Grad) < req.Rows*s.spec.Dim {
-		s.answer = kernels.NewAnswer(req.Rows, s.spec.Dim)
-	}
+	s.answer.Reserve(req.Need, req.Rows, s.spec.Dim)
 	dim := s.spec.Dim
 	for p := range n {
 		lo := p * s.rowsPerPart
 		hi := min(lo+s.rowsPerPart, req.Rows)
 		f := &Points{RequestID: s.requestID, FirstRow: lo, Rows: hi - lo, TotalRows: req.Rows, Dim: dim,
 			Points: req.Points[lo*dim : hi*dim], Chains: req.Chain[lo:hi], Need: req.Need}
+		if req.Need.Has(kernels.NeedHessianVector) {
+			f.Vectors = req.Vectors[lo*dim : hi*dim]
+		}
 		if err := send(f); err != nil {
 			return err
 		}
@@ -269,7 +292,54 @@ func (s *Session) accept(req *kernels.Request, ev *Evaluations) *Error {
 	} else if len(ev.LogDensity) != 0 {
 		return BadField("evaluations.log_densities", "must be empty: log densities were not asked for")
 	}
+	if req.Need.Has(kernels.NeedHessian) {
+		if err := checkHessians(ev.Hessian, rows, dim, req.Chain[ev.FirstRow:]); err != nil {
+			return err
+		}
+		copy(s.answer.Hessian[ev.FirstRow*dim*dim:], ev.Hessian)
+	} else if len(ev.Hessian) != 0 {
+		return BadField("evaluations.hessians", "must be empty: Hessians were not asked for")
+	}
+	if req.Need.Has(kernels.NeedHessianVector) {
+		if len(ev.HessVec) != rows*dim {
+			return BadField("evaluations.hessian_vectors", "has %d values, want rows × dim = %d", len(ev.HessVec), rows*dim)
+		}
+		for i, v := range ev.HessVec {
+			if math.IsNaN(v) || math.IsInf(v, 0) {
+				return badValue("evaluations.hessian_vectors", req.Chain[ev.FirstRow+i/dim], i%dim, "value %v is not finite", v)
+			}
+		}
+		copy(s.answer.HessVec[ev.FirstRow*dim:], ev.HessVec)
+	} else if len(ev.HessVec) != 0 {
+		return BadField("evaluations.hessian_vectors", "must be empty: Hessian-vector products were not asked for")
+	}
 	s.answered[part] = true
+	return nil
+}
+
+// checkHessians validates rows dim×dim blocks: the count, finiteness and
+// symmetry up to rounding (|H_ij − H_ji| ≤ 1e-8·max(|H_ij|, |H_ji|, 1)).
+func checkHessians(h []float64, rows, dim int, chains []int) *Error {
+	if len(h) != rows*dim*dim {
+		return BadField("evaluations.hessians", "has %d values, want rows × dim × dim = %d", len(h), rows*dim*dim)
+	}
+	for r := range rows {
+		m := h[r*dim*dim : (r+1)*dim*dim]
+		for i := range dim {
+			for j := range dim {
+				v := m[i*dim+j]
+				if math.IsNaN(v) || math.IsInf(v, 0) {
+					return badValue("evaluations.hessians", chains[r], i, "entry (%d, %d) is %v, not finite", i, j, v)
+				}
+				if j > i {
+					w := m[j*dim+i]
+					if math.Abs(v-w) > 1e-8*max(math.Abs(v), math.Abs(w), 1) {
+						return badValue("evaluations.hessians", chains[r], i, "not symmetric: entry (%d, %d) is %v, entry (%d, %d) is %v", i, j, v, j, i, w)
+					}
+				}
+			}
+		}
+	}
 	return nil
 }
 

@@ -49,6 +49,12 @@ const (
 	Quantity_QUANTITY_GRADIENT Quantity = 1
 	// log pi up to an additive constant: one value per point.
 	Quantity_QUANTITY_LOG_DENSITY Quantity = 2
+	// The Hessian of log pi (second derivatives, symmetric): dim x dim values
+	// per point, row-major.
+	Quantity_QUANTITY_HESSIAN Quantity = 3
+	// The Hessian of log pi at the point times the row's vector in
+	// Points.vectors: dim values per point.
+	Quantity_QUANTITY_HESSIAN_VECTOR Quantity = 4
 )
 
 // Enum value maps for Quantity.
@@ -57,11 +63,15 @@ var (
 		0: "QUANTITY_UNSPECIFIED",
 		1: "QUANTITY_GRADIENT",
 		2: "QUANTITY_LOG_DENSITY",
+		3: "QUANTITY_HESSIAN",
+		4: "QUANTITY_HESSIAN_VECTOR",
 	}
 	Quantity_value = map[string]int32{
-		"QUANTITY_UNSPECIFIED": 0,
-		"QUANTITY_GRADIENT":    1,
-		"QUANTITY_LOG_DENSITY": 2,
+		"QUANTITY_UNSPECIFIED":    0,
+		"QUANTITY_GRADIENT":       1,
+		"QUANTITY_LOG_DENSITY":    2,
+		"QUANTITY_HESSIAN":        3,
+		"QUANTITY_HESSIAN_VECTOR": 4,
 	}
 )
 
@@ -915,7 +925,10 @@ type Points struct {
 	// What to evaluate at every point.
 	Quantities []Quantity `protobuf:"varint,7,rep,packed,name=quantities,proto3,enum=sluice.v1.Quantity" json:"quantities,omitempty"`
 	// Rows in the whole request, over all its parts.
-	TotalRows     int32 `protobuf:"varint,8,opt,name=total_rows,json=totalRows,proto3" json:"total_rows,omitempty"`
+	TotalRows int32 `protobuf:"varint,8,opt,name=total_rows,json=totalRows,proto3" json:"total_rows,omitempty"`
+	// One vector per point, rows x dim, row-major float64, present only when
+	// QUANTITY_HESSIAN_VECTOR is asked: answer with H(point) * vector.
+	Vectors       []byte `protobuf:"bytes,9,opt,name=vectors,proto3" json:"vectors,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -1006,6 +1019,13 @@ func (x *Points) GetTotalRows() int32 {
 	return 0
 }
 
+func (x *Points) GetVectors() []byte {
+	if x != nil {
+		return x.Vectors
+	}
+	return nil
+}
+
 // Evaluations answers one Points frame.
 type Evaluations struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -1022,9 +1042,16 @@ type Evaluations struct {
 	Gradients []byte `protobuf:"bytes,5,opt,name=gradients,proto3" json:"gradients,omitempty"`
 	// log pi at the points (rows values, float64, finite). Required when
 	// QUANTITY_LOG_DENSITY was asked; must be empty otherwise.
-	LogDensities  []byte `protobuf:"bytes,6,opt,name=log_densities,json=logDensities,proto3" json:"log_densities,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	LogDensities []byte `protobuf:"bytes,6,opt,name=log_densities,json=logDensities,proto3" json:"log_densities,omitempty"`
+	// Hessians of log pi, rows x dim x dim float64 (point r's matrix is the
+	// r-th block of dim*dim values, row-major), symmetric and finite.
+	// Required when QUANTITY_HESSIAN was asked; must be empty otherwise.
+	Hessians []byte `protobuf:"bytes,7,opt,name=hessians,proto3" json:"hessians,omitempty"`
+	// Hessian-vector products, rows x dim float64, finite. Required when
+	// QUANTITY_HESSIAN_VECTOR was asked; must be empty otherwise.
+	HessianVectors []byte `protobuf:"bytes,8,opt,name=hessian_vectors,json=hessianVectors,proto3" json:"hessian_vectors,omitempty"`
+	unknownFields  protoimpl.UnknownFields
+	sizeCache      protoimpl.SizeCache
 }
 
 func (x *Evaluations) Reset() {
@@ -1095,6 +1122,20 @@ func (x *Evaluations) GetGradients() []byte {
 func (x *Evaluations) GetLogDensities() []byte {
 	if x != nil {
 		return x.LogDensities
+	}
+	return nil
+}
+
+func (x *Evaluations) GetHessians() []byte {
+	if x != nil {
+		return x.Hessians
+	}
+	return nil
+}
+
+func (x *Evaluations) GetHessianVectors() []byte {
+	if x != nil {
+		return x.HessianVectors
 	}
 	return nil
 }
@@ -1550,7 +1591,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x04step\x18\x04 \x01(\x01R\x04step\x120\n" +
 	"\x14evaluations_per_step\x18\x05 \x01(\x03R\x12evaluationsPerStep\x12*\n" +
 	"\x11max_message_bytes\x18\x06 \x01(\x03R\x0fmaxMessageBytes\x12\x14\n" +
-	"\x05names\x18\a \x03(\tR\x05names\"\xee\x01\n" +
+	"\x05names\x18\a \x03(\tR\x05names\"\x88\x02\n" +
 	"\x06Points\x12\x1d\n" +
 	"\n" +
 	"request_id\x18\x01 \x01(\x04R\trequestId\x12\x1b\n" +
@@ -1563,7 +1604,8 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"quantities\x18\a \x03(\x0e2\x13.sluice.v1.QuantityR\n" +
 	"quantities\x12\x1d\n" +
 	"\n" +
-	"total_rows\x18\b \x01(\x05R\ttotalRows\"\xb2\x01\n" +
+	"total_rows\x18\b \x01(\x05R\ttotalRows\x12\x18\n" +
+	"\avectors\x18\t \x01(\fR\avectors\"\xf7\x01\n" +
 	"\vEvaluations\x12\x1d\n" +
 	"\n" +
 	"request_id\x18\x01 \x01(\x04R\trequestId\x12\x1b\n" +
@@ -1571,7 +1613,9 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x04rows\x18\x03 \x01(\x05R\x04rows\x12\x10\n" +
 	"\x03dim\x18\x04 \x01(\x05R\x03dim\x12\x1c\n" +
 	"\tgradients\x18\x05 \x01(\fR\tgradients\x12#\n" +
-	"\rlog_densities\x18\x06 \x01(\fR\flogDensities\"\x1e\n" +
+	"\rlog_densities\x18\x06 \x01(\fR\flogDensities\x12\x1a\n" +
+	"\bhessians\x18\a \x01(\fR\bhessians\x12'\n" +
+	"\x0fhessian_vectors\x18\b \x01(\fR\x0ehessianVectors\"\x1e\n" +
 	"\x04Stop\x12\x16\n" +
 	"\x06reason\x18\x01 \x01(\tR\x06reason\"\x8f\x01\n" +
 	"\x05Draws\x12\x10\n" +
@@ -1604,11 +1648,13 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x04name\x18\x01 \x01(\tR\x04name\x12\x12\n" +
 	"\x04mean\x18\x02 \x01(\x01R\x04mean\x12\x0e\n" +
 	"\x02sd\x18\x03 \x01(\x01R\x02sd\x12\x14\n" +
-	"\x05count\x18\x04 \x01(\x03R\x05count*U\n" +
+	"\x05count\x18\x04 \x01(\x03R\x05count*\x88\x01\n" +
 	"\bQuantity\x12\x18\n" +
 	"\x14QUANTITY_UNSPECIFIED\x10\x00\x12\x15\n" +
 	"\x11QUANTITY_GRADIENT\x10\x01\x12\x18\n" +
-	"\x14QUANTITY_LOG_DENSITY\x10\x02*Y\n" +
+	"\x14QUANTITY_LOG_DENSITY\x10\x02\x12\x14\n" +
+	"\x10QUANTITY_HESSIAN\x10\x03\x12\x1b\n" +
+	"\x17QUANTITY_HESSIAN_VECTOR\x10\x04*Y\n" +
 	"\x05State\x12\x15\n" +
 	"\x11STATE_UNSPECIFIED\x10\x00\x12\x11\n" +
 	"\rSTATE_BURN_IN\x10\x01\x12\x12\n" +
