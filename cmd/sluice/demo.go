@@ -56,7 +56,7 @@ func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs.Int64Var(&c.maxEvals, "max-evals", 0, "most gradient evaluations (0: no limit)")
 	fs.DurationVar(&c.maxTime, "max-time", 50*time.Second, "most wall time (0: no limit)")
 	fs.Uint64Var(&c.seed, "seed", 0, "random seed for start points and chains (0: pick one and print it)")
-	fs.StringVar(&c.out, "out", "", "write the draws to this CSV file")
+	fs.StringVar(&c.out, "out", "", "write the draws to this file: .csv (chain, iteration, parameters) or .npy (chains × draws × dim), with a .summary.json beside it")
 	fs.BoolVar(&c.json, "json", false, "print the summary as one JSON object")
 	fs.Float64Var(&c.planTemp, "plan-temp", 1150, "planned peak temperature in °C, for the question answered at the end")
 	fs.Float64Var(&c.planCool, "plan-cool", 8, "planned cooling rate in °C per minute")
@@ -64,6 +64,9 @@ func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs.BoolVar(&c.noProgressBar, "quiet", false, "no live progress line")
 	if err := parseFlags(fs, args); err != nil {
 		return err
+	}
+	if c.out != "" && !strings.HasSuffix(c.out, ".csv") && !strings.HasSuffix(c.out, ".npy") {
+		return usagef("--out %q: the name must end in .csv or .npy", c.out)
 	}
 	if c.chains < 1 || c.burnIn < 0 || c.keepEvery < 1 || c.draws < 0 || c.maxEvals < 0 || c.maxTime < 0 || c.step < 0 {
 		return usagef("--chains and --keep-every must be ≥ 1; --burn-in, --draws, --max-evals, --max-time, --step ≥ 0")
@@ -77,6 +80,11 @@ func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	res, err := runDemo(ctx, c, stderr)
 	if err != nil {
 		return err
+	}
+	if c.out != "" {
+		if err := writeSummaryJSON(summaryPath(c.out), res); err != nil {
+			return err
+		}
 	}
 	if c.json {
 		enc := json.NewEncoder(stdout)
@@ -171,7 +179,7 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 		chains[i] = make([][]float64, c.chains)
 	}
 	var csv *csvWriter
-	if c.out != "" {
+	if strings.HasSuffix(c.out, ".csv") {
 		if csv, err = newCSVWriter(c.out, kilnNames); err != nil {
 			return nil, err
 		}
@@ -216,6 +224,11 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 		n = min(n, len(ch))
 	}
 	res.DrawsPerChain = n
+	if strings.HasSuffix(c.out, ".npy") {
+		if err := writeNPY(c.out, c.chains, n, 3, func(ch, t, i int) float64 { return chains[i][ch][t] }); err != nil {
+			return nil, err
+		}
+	}
 	if n < 4 {
 		return res, fmt.Errorf("session ended (%s) with %d draws per chain: too few to summarise", sum.Reason, n)
 	}
@@ -293,7 +306,7 @@ func printDemo(w io.Writer, r *demoResult) {
 		fmt.Fprintf(w, "  chance a batch cracks: %.3f (90%% interval %.3f to %.3f)\n\n", q.Mean, q.Q05, q.Q95)
 	}
 	if r.Out != "" {
-		fmt.Fprintf(w, "draws written to %s\n", r.Out)
+		fmt.Fprintf(w, "draws written to %s, summary to %s\n", r.Out, summaryPath(r.Out))
 	}
 	fmt.Fprintln(w, "These draws are approximate and the diagnostics cannot prove convergence; validate before relying on them.")
 }
@@ -382,4 +395,18 @@ func (c *csvWriter) close() error {
 		c.err = err
 	}
 	return c.err
+}
+
+// summaryPath is where the JSON summary goes beside a draws file:
+// draws.csv → draws.summary.json.
+func summaryPath(out string) string {
+	return strings.TrimSuffix(strings.TrimSuffix(out, ".csv"), ".npy") + ".summary.json"
+}
+
+func writeSummaryJSON(path string, r *demoResult) error {
+	b, err := json.MarshalIndent(r, "", "  ")
+	if err != nil {
+		return err
+	}
+	return os.WriteFile(path, append(b, '\n'), 0o644)
 }
