@@ -115,6 +115,15 @@ type Kernel interface {
 	encoding.BinaryUnmarshaler
 }
 
+// Preparer is implemented by kernels that can do part of the coming Tell's
+// work while the answers are being computed elsewhere (LMC draws its noise).
+// A driver may call Prepare once between Next and Tell; the draws must be
+// the same whether or not it does, and a state marshalled after Prepare
+// must resume exactly as one marshalled before it.
+type Preparer interface {
+	Prepare()
+}
+
 // NewSource returns the random stream every kernel built from seed uses.
 // Fixing this map from seed to stream is what makes a session over any
 // transport reproduce an in-process run bit for bit.

@@ -24,6 +24,11 @@ type LMC struct {
 	req         Request
 	src         *rand.PCG
 	rng         *rand.Rand
+	// noise holds the next step's normals once Prepare has drawn them;
+	// snap is the stream's state before they were drawn.
+	noise    []float64
+	prepared bool
+	snap     rand.PCG
 }
 
 // NewLMC returns an LMC kernel for chains chains in dimension dim with step
@@ -65,6 +70,22 @@ func (k *LMC) Positions() []float64 { return k.x }
 // Next implements Kernel: the gradient at every chain's current position.
 func (k *LMC) Next() *Request { return &k.req }
 
+// Prepare implements Preparer: it draws the next step's noise, in the
+// order Tell would.
+func (k *LMC) Prepare() {
+	if k.prepared {
+		return
+	}
+	if k.noise == nil {
+		k.noise = make([]float64, len(k.x))
+	}
+	k.snap = *k.src
+	for i := range k.noise {
+		k.noise[i] = k.rng.NormFloat64()
+	}
+	k.prepared = true
+}
+
 // Tell implements Kernel. Every call completes a step.
 func (k *LMC) Tell(a *Answer) bool {
 	if len(a.Grad) < len(k.x) {
@@ -72,8 +93,15 @@ func (k *LMC) Tell(a *Answer) bool {
 	}
 	g := a.Grad[:len(k.x)]
 	h, s := k.h, k.scale
-	for i := range k.x {
-		k.x[i] += h*g[i] + s*k.rng.NormFloat64()
+	if k.prepared {
+		for i, z := range k.noise {
+			k.x[i] += h*g[i] + s*z
+		}
+		k.prepared = false
+	} else {
+		for i := range k.x {
+			k.x[i] += h*g[i] + s*k.rng.NormFloat64()
+		}
 	}
 	k.steps++
 	return true
@@ -84,7 +112,11 @@ const lmcMagic = "sluice.lmc.v1"
 // MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
 // step, completed steps, positions and the random stream's state.
 func (k *LMC) MarshalBinary() ([]byte, error) {
-	rs, err := k.src.MarshalBinary()
+	src := k.src
+	if k.prepared {
+		src = &k.snap // the noise drawn ahead is drawn again on resume
+	}
+	rs, err := src.MarshalBinary()
 	if err != nil {
 		return nil, err
 	}

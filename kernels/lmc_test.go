@@ -259,3 +259,53 @@ func BenchmarkStep(b *testing.B) {
 		}
 	}
 }
+
+// Drawing the noise ahead (Prepare) changes nothing: same draws, and a
+// state marshalled after Prepare resumes exactly.
+func TestLMCPrepareIsInvisible(t *testing.T) {
+	grad := gaussGrad([]float64{2, .5, .5, 1}, 2)
+	plain := kernels.NewLMC(2, 3, 0.05, []float64{1, -1}, kernels.NewSource(5))
+	ahead := kernels.NewLMC(2, 3, 0.05, []float64{1, -1}, kernels.NewSource(5))
+	a := kernels.NewAnswer(3, 2)
+	var state []byte
+	for step := range 40 {
+		grad(plain.Next().Points, 3, a.Grad)
+		plain.Tell(a)
+		grad(ahead.Next().Points, 3, a.Grad)
+		ahead.Prepare()
+		if step == 20 {
+			state, _ = ahead.MarshalBinary()
+		}
+		ahead.Tell(a)
+		for i, v := range plain.Positions() {
+			if ahead.Positions()[i] != v {
+				t.Fatalf("step %d: prepared kernel differs", step)
+			}
+		}
+	}
+	var r kernels.LMC
+	if err := r.UnmarshalBinary(state); err != nil {
+		t.Fatal(err)
+	}
+	// r is at step 20, before that step's Tell: replay from there.
+	ref := kernels.NewLMC(2, 3, 0.05, []float64{1, -1}, kernels.NewSource(5))
+	for range 20 {
+		grad(ref.Next().Points, 3, a.Grad)
+		ref.Tell(a)
+	}
+	for range 10 {
+		grad(ref.Next().Points, 3, a.Grad)
+		ref.Tell(a)
+		grad(r.Next().Points, 3, a.Grad)
+		r.Tell(a)
+	}
+	for i, v := range ref.Positions() {
+		if r.Positions()[i] != v {
+			t.Fatal("state marshalled after Prepare does not resume exactly")
+		}
+	}
+	allocs := testing.AllocsPerRun(100, func() { ahead.Next(); ahead.Prepare(); ahead.Tell(a) })
+	if allocs != 0 {
+		t.Fatalf("%v allocations per prepared step", allocs)
+	}
+}

@@ -12,6 +12,7 @@ import (
 	"google.golang.org/grpc"
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/credentials/insecure"
+	"google.golang.org/grpc/experimental"
 	"google.golang.org/grpc/status"
 
 	sluicev1 "sluice/proto/sluice/v1"
@@ -73,7 +74,8 @@ func serveLoopback(b *testing.B, serve func(net.Listener) error, stop func()) *g
 	}
 	done := make(chan struct{})
 	go func() { _ = serve(lis); close(done) }()
-	conn, err := grpc.NewClient(lis.Addr().String(), grpc.WithTransportCredentials(insecure.NewCredentials()))
+	conn, err := grpc.NewClient(lis.Addr().String(), grpc.WithTransportCredentials(insecure.NewCredentials()),
+		experimental.WithBufferPool(server.BufferPool()))
 	if err != nil {
 		stop()
 		<-done
@@ -91,7 +93,8 @@ func serveLoopback(b *testing.B, serve func(net.Listener) error, stop func()) *g
 // stream, payload bytes each way, down frames back per round.
 func startFloor(b *testing.B, rounds, down int, payload []byte) *grpc.ClientConn {
 	b.Helper()
-	gs := grpc.NewServer(grpc.MaxRecvMsgSize(floorMessageBytes), grpc.MaxSendMsgSize(floorMessageBytes))
+	gs := grpc.NewServer(grpc.MaxRecvMsgSize(floorMessageBytes), grpc.MaxSendMsgSize(floorMessageBytes),
+		experimental.BufferPool(server.BufferPool())) // the same buffers as the session's server
 	sluicev1.RegisterSluiceServiceServer(gs, &echoService{maxRounds: rounds, down: down, payload: payload})
 	return serveLoopback(b, gs.Serve, gs.Stop)
 }

@@ -17,9 +17,11 @@ import (
 	"go.uber.org/zap"
 	"google.golang.org/grpc"
 	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/experimental"
 	"google.golang.org/grpc/health"
 	healthpb "google.golang.org/grpc/health/grpc_health_v1"
 	"google.golang.org/grpc/keepalive"
+	"google.golang.org/grpc/mem"
 	"google.golang.org/grpc/reflection"
 	"google.golang.org/grpc/status"
 	"google.golang.org/protobuf/proto"
@@ -107,6 +109,7 @@ func New(o Options) *Server {
 		grpc.KeepaliveParams(keepalive.ServerParameters{Time: 30 * time.Second, Timeout: 20 * time.Second}),
 		grpc.ChainUnaryInterceptor(s.recoverUnary),
 		grpc.ChainStreamInterceptor(s.recoverStream),
+		experimental.BufferPool(BufferPool()),
 	}, o.GRPCOptions...)
 	s.grpc = grpc.NewServer(gopts...)
 	sluicev1.RegisterSluiceServiceServer(s.grpc, s)
@@ -117,6 +120,26 @@ func New(o Options) *Server {
 	reflection.Register(s.grpc)
 	return s
 }
+
+// BufferPool returns gRPC buffers in power-of-two sizes from 256 B to
+// 64 MiB. gRPC's default tiers jump from 32 KiB to 1 MiB and clear the whole
+// buffer they hand out, so a 51 KB message (64 chains × 100 float64) would
+// clear 1 MiB per frame; here no buffer is more than twice its message.
+// Clients dialling sluice benefit from the same pool
+// (experimental.WithBufferPool(server.BufferPool())).
+func BufferPool() mem.BufferPool { return bufferPool }
+
+var bufferPool = func() mem.BufferPool {
+	exps := make([]uint8, 0, 19)
+	for e := uint8(8); e <= 26; e++ {
+		exps = append(exps, e)
+	}
+	p, err := mem.NewBinaryTieredBufferPool(exps...)
+	if err != nil {
+		panic("server: buffer pool: " + err.Error())
+	}
+	return p
+}()
 
 // Serve accepts connections on lis until Shutdown or Stop.
 func (s *Server) Serve(lis net.Listener) error { return s.grpc.Serve(lis) }

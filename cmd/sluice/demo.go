@@ -18,6 +18,7 @@ import (
 
 	"google.golang.org/grpc"
 	"google.golang.org/grpc/credentials/insecure"
+	"google.golang.org/grpc/experimental"
 
 	"sluice/client"
 	"sluice/kernels/diag"
@@ -158,7 +159,8 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 	srv := server.New(server.Options{Logger: log})
 	go func() { _ = srv.Serve(lis) }()
 	defer srv.Stop()
-	conn, err := grpc.NewClient(lis.Addr().String(), grpc.WithTransportCredentials(insecure.NewCredentials()))
+	conn, err := grpc.NewClient(lis.Addr().String(), grpc.WithTransportCredentials(insecure.NewCredentials()),
+		experimental.WithBufferPool(server.BufferPool()))
 	if err != nil {
 		return nil, err
 	}

@@ -134,20 +134,47 @@ func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) e
 	}
 	answerTimer := time.NewTimer(s.lim.AnswerTimeout)
 	defer answerTimer.Stop()
+	prep, _ := s.kernel.(kernels.Preparer)
+	// pending is set when a completed step's draws and progress are still
+	// to be sent: they go out right after the next Points frame, so their
+	// transfer overlaps the client's evaluation instead of delaying it.
+	pending := false
+	flush := func() error {
+		if !pending {
+			return nil
+		}
+		pending = false
+		return s.afterStep(send)
+	}
+	end := func(r Reason, msg string) (Result, error) {
+		if err := flush(); err != nil {
+			return s.result(Failed, err.Error()), err
+		}
+		return s.finish(r, msg, send)
+	}
 	for {
 		if maxTime > 0 && time.Since(s.start) >= maxTime {
-			return s.finish(TimeSpent, "", send)
+			return end(TimeSpent, "")
+		}
+		if d := s.spec.DrawsPerChain; d > 0 && s.kept >= d {
+			return end(DrawsCollected, "")
 		}
 		req := s.kernel.Next()
 		if m := s.spec.MaxEvaluations; m > 0 && s.used+int64(req.Rows) > m {
-			return s.finish(BudgetSpent, fmt.Sprintf("the next request needs %d evaluations, %d left", req.Rows, m-s.used), send)
+			return end(BudgetSpent, fmt.Sprintf("the next request needs %d evaluations, %d left", req.Rows, m-s.used))
 		}
 		s.requestID++
 		if err := s.sendPoints(req, send); err != nil {
 			return s.result(Failed, err.Error()), err
 		}
+		if err := flush(); err != nil {
+			return s.result(Failed, err.Error()), err
+		}
+		if prep != nil {
+			prep.Prepare()
+		}
 		answerTimer.Reset(s.lim.AnswerTimeout)
-		for pending := s.parts(req.Rows); pending > 0; {
+		for left := s.parts(req.Rows); left > 0; {
 			var msg Message
 			select {
 			case <-ctx.Done():
@@ -178,19 +205,22 @@ func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) e
 			if err := s.accept(req, msg.Evaluations); err != nil {
 				return s.fail(err, send)
 			}
-			pending--
+			left--
 		}
 		s.used += int64(req.Rows)
-		if !s.kernel.Tell(s.answer) {
-			continue
-		}
-		if err := s.afterStep(send); err != nil {
-			return s.result(Failed, err.Error()), err
-		}
-		if d := s.spec.DrawsPerChain; d > 0 && s.kept >= d {
-			return s.finish(DrawsCollected, "", send)
+		if s.kernel.Tell(s.answer) {
+			pending = true
+			if s.keeps(int64(s.kernel.Steps())) {
+				s.kept++
+			}
 		}
 	}
+}
+
+// keeps reports whether the draws after step are kept (burn-in, then
+// every KeepEvery-th step).
+func (s *Session) keeps(step int64) bool {
+	return step > s.spec.BurnIn && (step-s.spec.BurnIn)%s.spec.KeepEvery == 0
 }
 
 // rowBytes bounds the bytes one row costs in the larger of a Points frame
@@ -346,7 +376,7 @@ func checkHessians(h []float64, rows, dim int, chains []int) *Error {
 // afterStep keeps draws and sends progress after a completed step.
 func (s *Session) afterStep(send func(Frame) error) error {
 	step := int64(s.kernel.Steps())
-	if step > s.spec.BurnIn && (step-s.spec.BurnIn)%s.spec.KeepEvery == 0 {
+	if s.keeps(step) {
 		if err := s.sendDraws(step, send); err != nil {
 			return err
 		}
@@ -383,7 +413,6 @@ func (s *Session) sendDraws(step int64, send func(Frame) error) error {
 			s.m2[i] += d * (v - s.mean[i])
 		}
 	}
-	s.kept++
 	if s.drawChains == nil {
 		s.drawChains = make([]int, chains)
 		s.drawIters = make([]int64, chains)
