@@ -40,6 +40,58 @@ const (
 	_ = protoimpl.EnforceVersion(protoimpl.MaxVersion - 20)
 )
 
+// Distance in which a guaranteed bound is stated.
+type Metric int32
+
+const (
+	Metric_METRIC_UNSPECIFIED Metric = 0
+	// Total variation distance between the chain's law and pi.
+	Metric_METRIC_TV Metric = 1
+	// 2-Wasserstein distance, in the units of theta.
+	Metric_METRIC_W2 Metric = 2
+)
+
+// Enum value maps for Metric.
+var (
+	Metric_name = map[int32]string{
+		0: "METRIC_UNSPECIFIED",
+		1: "METRIC_TV",
+		2: "METRIC_W2",
+	}
+	Metric_value = map[string]int32{
+		"METRIC_UNSPECIFIED": 0,
+		"METRIC_TV":          1,
+		"METRIC_W2":          2,
+	}
+)
+
+func (x Metric) Enum() *Metric {
+	p := new(Metric)
+	*p = x
+	return p
+}
+
+func (x Metric) String() string {
+	return protoimpl.X.EnumStringOf(x.Descriptor(), protoreflect.EnumNumber(x))
+}
+
+func (Metric) Descriptor() protoreflect.EnumDescriptor {
+	return file_sluice_v1_sluice_proto_enumTypes[0].Descriptor()
+}
+
+func (Metric) Type() protoreflect.EnumType {
+	return &file_sluice_v1_sluice_proto_enumTypes[0]
+}
+
+func (x Metric) Number() protoreflect.EnumNumber {
+	return protoreflect.EnumNumber(x)
+}
+
+// Deprecated: Use Metric.Descriptor instead.
+func (Metric) EnumDescriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{0}
+}
+
 // What to evaluate at each point of a Points frame (a bit set).
 type Quantity int32
 
@@ -86,11 +138,11 @@ func (x Quantity) String() string {
 }
 
 func (Quantity) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[0].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[1].Descriptor()
 }
 
 func (Quantity) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[0]
+	return &file_sluice_v1_sluice_proto_enumTypes[1]
 }
 
 func (x Quantity) Number() protoreflect.EnumNumber {
@@ -99,7 +151,7 @@ func (x Quantity) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use Quantity.Descriptor instead.
 func (Quantity) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{0}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{1}
 }
 
 // Where a session is.
@@ -142,11 +194,11 @@ func (x State) String() string {
 }
 
 func (State) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[1].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[2].Descriptor()
 }
 
 func (State) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[1]
+	return &file_sluice_v1_sluice_proto_enumTypes[2]
 }
 
 func (x State) Number() protoreflect.EnumNumber {
@@ -155,7 +207,60 @@ func (x State) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use State.Descriptor instead.
 func (State) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{1}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{2}
+}
+
+// Where a bound's curvature constants come from.
+type BoundSource int32
+
+const (
+	BoundSource_BOUND_SOURCE_UNSPECIFIED BoundSource = 0
+	// m and M were declared by the client: the bound holds under that
+	// declaration.
+	BoundSource_BOUND_SOURCE_DECLARED BoundSource = 1
+	// m and M were estimated from the run: estimated, not guaranteed.
+	BoundSource_BOUND_SOURCE_ESTIMATED BoundSource = 2
+)
+
+// Enum value maps for BoundSource.
+var (
+	BoundSource_name = map[int32]string{
+		0: "BOUND_SOURCE_UNSPECIFIED",
+		1: "BOUND_SOURCE_DECLARED",
+		2: "BOUND_SOURCE_ESTIMATED",
+	}
+	BoundSource_value = map[string]int32{
+		"BOUND_SOURCE_UNSPECIFIED": 0,
+		"BOUND_SOURCE_DECLARED":    1,
+		"BOUND_SOURCE_ESTIMATED":   2,
+	}
+)
+
+func (x BoundSource) Enum() *BoundSource {
+	p := new(BoundSource)
+	*p = x
+	return p
+}
+
+func (x BoundSource) String() string {
+	return protoimpl.X.EnumStringOf(x.Descriptor(), protoreflect.EnumNumber(x))
+}
+
+func (BoundSource) Descriptor() protoreflect.EnumDescriptor {
+	return file_sluice_v1_sluice_proto_enumTypes[3].Descriptor()
+}
+
+func (BoundSource) Type() protoreflect.EnumType {
+	return &file_sluice_v1_sluice_proto_enumTypes[3]
+}
+
+func (x BoundSource) Number() protoreflect.EnumNumber {
+	return protoreflect.EnumNumber(x)
+}
+
+// Deprecated: Use BoundSource.Descriptor instead.
+func (BoundSource) EnumDescriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{3}
 }
 
 // Why a session ended.
@@ -175,6 +280,8 @@ const (
 	FinishReason_FINISH_REASON_FAILED FinishReason = 5
 	// The server is shutting down; the session ended cleanly first.
 	FinishReason_FINISH_REASON_SHUTDOWN FinishReason = 6
+	// Every target in Register.wants holds.
+	FinishReason_FINISH_REASON_TARGET_MET FinishReason = 7
 )
 
 // Enum value maps for FinishReason.
@@ -187,6 +294,7 @@ var (
 		4: "FINISH_REASON_DRAWS_COLLECTED",
 		5: "FINISH_REASON_FAILED",
 		6: "FINISH_REASON_SHUTDOWN",
+		7: "FINISH_REASON_TARGET_MET",
 	}
 	FinishReason_value = map[string]int32{
 		"FINISH_REASON_UNSPECIFIED":     0,
@@ -196,6 +304,7 @@ var (
 		"FINISH_REASON_DRAWS_COLLECTED": 4,
 		"FINISH_REASON_FAILED":          5,
 		"FINISH_REASON_SHUTDOWN":        6,
+		"FINISH_REASON_TARGET_MET":      7,
 	}
 )
 
@@ -210,11 +319,11 @@ func (x FinishReason) String() string {
 }
 
 func (FinishReason) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[2].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[4].Descriptor()
 }
 
 func (FinishReason) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[2]
+	return &file_sluice_v1_sluice_proto_enumTypes[4]
 }
 
 func (x FinishReason) Number() protoreflect.EnumNumber {
@@ -223,7 +332,7 @@ func (x FinishReason) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use FinishReason.Descriptor instead.
 func (FinishReason) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{2}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{4}
 }
 
 // FollowRequest names the session and where to start.
@@ -659,8 +768,15 @@ type Register struct {
 	// splits Points frames so that neither a Points frame nor its answer
 	// exceeds the smaller of this and its own limit. 0 means 4 MiB.
 	MaxMessageBytes int64 `protobuf:"varint,16,opt,name=max_message_bytes,json=maxMessageBytes,proto3" json:"max_message_bytes,omitempty"`
-	unknownFields   protoimpl.UnknownFields
-	sizeCache       protoimpl.SizeCache
+	// What the client knows of the target's curvature, if anything. With it
+	// the server reports guaranteed error bounds; without it, bounds from
+	// estimated curvature are labelled "estimated, not guaranteed".
+	Curvature *Curvature `protobuf:"bytes,17,opt,name=curvature,proto3" json:"curvature,omitempty"`
+	// Accuracy targets: the session finishes with FINISH_REASON_TARGET_MET
+	// as soon as every target set here holds.
+	Wants         *Wants `protobuf:"bytes,18,opt,name=wants,proto3" json:"wants,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *Register) Reset() {
@@ -805,6 +921,168 @@ func (x *Register) GetMaxMessageBytes() int64 {
 	return 0
 }
 
+func (x *Register) GetCurvature() *Curvature {
+	if x != nil {
+		return x.Curvature
+	}
+	return nil
+}
+
+func (x *Register) GetWants() *Wants {
+	if x != nil {
+		return x.Wants
+	}
+	return nil
+}
+
+// Curvature declares constants of the potential f = -log pi: f is m-strongly
+// convex and M-smooth, i.e. m*I <= Hessian of f <= M*I everywhere. Units:
+// 1/theta^2.
+type Curvature struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// m >= 0. 0 means convex but not strongly convex (or unknown).
+	StrongConvexity float64 `protobuf:"fixed64,1,opt,name=strong_convexity,json=strongConvexity,proto3" json:"strong_convexity,omitempty"`
+	// M > 0, M >= m.
+	Smoothness    float64 `protobuf:"fixed64,2,opt,name=smoothness,proto3" json:"smoothness,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *Curvature) Reset() {
+	*x = Curvature{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[5]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *Curvature) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*Curvature) ProtoMessage() {}
+
+func (x *Curvature) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[5]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use Curvature.ProtoReflect.Descriptor instead.
+func (*Curvature) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{5}
+}
+
+func (x *Curvature) GetStrongConvexity() float64 {
+	if x != nil {
+		return x.StrongConvexity
+	}
+	return 0
+}
+
+func (x *Curvature) GetSmoothness() float64 {
+	if x != nil {
+		return x.Smoothness
+	}
+	return 0
+}
+
+// Wants lists accuracy targets; a zero field is not a target.
+type Wants struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Smallest bulk-ESS over all coordinates, over all chains together.
+	MinBulkEss float64 `protobuf:"fixed64,1,opt,name=min_bulk_ess,json=minBulkEss,proto3" json:"min_bulk_ess,omitempty"`
+	// Smallest tail-ESS over all coordinates.
+	MinTailEss float64 `protobuf:"fixed64,2,opt,name=min_tail_ess,json=minTailEss,proto3" json:"min_tail_ess,omitempty"`
+	// Largest R-hat over all coordinates (e.g. 1.01).
+	MaxRhat float64 `protobuf:"fixed64,3,opt,name=max_rhat,json=maxRhat,proto3" json:"max_rhat,omitempty"`
+	// Largest kernel Stein discrepancy (IMQ kernel) of the kept draws.
+	MaxKsd float64 `protobuf:"fixed64,4,opt,name=max_ksd,json=maxKsd,proto3" json:"max_ksd,omitempty"`
+	// Guaranteed error epsilon in `metric`; needs Register.curvature.
+	Eps float64 `protobuf:"fixed64,5,opt,name=eps,proto3" json:"eps,omitempty"`
+	// Metric of eps.
+	Metric        Metric `protobuf:"varint,6,opt,name=metric,proto3,enum=sluice.v1.Metric" json:"metric,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *Wants) Reset() {
+	*x = Wants{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[6]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *Wants) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*Wants) ProtoMessage() {}
+
+func (x *Wants) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[6]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use Wants.ProtoReflect.Descriptor instead.
+func (*Wants) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{6}
+}
+
+func (x *Wants) GetMinBulkEss() float64 {
+	if x != nil {
+		return x.MinBulkEss
+	}
+	return 0
+}
+
+func (x *Wants) GetMinTailEss() float64 {
+	if x != nil {
+		return x.MinTailEss
+	}
+	return 0
+}
+
+func (x *Wants) GetMaxRhat() float64 {
+	if x != nil {
+		return x.MaxRhat
+	}
+	return 0
+}
+
+func (x *Wants) GetMaxKsd() float64 {
+	if x != nil {
+		return x.MaxKsd
+	}
+	return 0
+}
+
+func (x *Wants) GetEps() float64 {
+	if x != nil {
+		return x.Eps
+	}
+	return 0
+}
+
+func (x *Wants) GetMetric() Metric {
+	if x != nil {
+		return x.Metric
+	}
+	return Metric_METRIC_UNSPECIFIED
+}
+
 // Registered acknowledges a Register frame.
 type Registered struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -829,7 +1107,7 @@ type Registered struct {
 
 func (x *Registered) Reset() {
 	*x = Registered{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[5]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -841,7 +1119,7 @@ func (x *Registered) String() string {
 func (*Registered) ProtoMessage() {}
 
 func (x *Registered) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[5]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -854,7 +1132,7 @@ func (x *Registered) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Registered.ProtoReflect.Descriptor instead.
 func (*Registered) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{5}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{7}
 }
 
 func (x *Registered) GetSessionId() string {
@@ -935,7 +1213,7 @@ type Points struct {
 
 func (x *Points) Reset() {
 	*x = Points{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[6]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -947,7 +1225,7 @@ func (x *Points) String() string {
 func (*Points) ProtoMessage() {}
 
 func (x *Points) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[6]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -960,7 +1238,7 @@ func (x *Points) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Points.ProtoReflect.Descriptor instead.
 func (*Points) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{6}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{8}
 }
 
 func (x *Points) GetRequestId() uint64 {
@@ -1056,7 +1334,7 @@ type Evaluations struct {
 
 func (x *Evaluations) Reset() {
 	*x = Evaluations{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1068,7 +1346,7 @@ func (x *Evaluations) String() string {
 func (*Evaluations) ProtoMessage() {}
 
 func (x *Evaluations) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1081,7 +1359,7 @@ func (x *Evaluations) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Evaluations.ProtoReflect.Descriptor instead.
 func (*Evaluations) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{7}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{9}
 }
 
 func (x *Evaluations) GetRequestId() uint64 {
@@ -1151,7 +1429,7 @@ type Stop struct {
 
 func (x *Stop) Reset() {
 	*x = Stop{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1163,7 +1441,7 @@ func (x *Stop) String() string {
 func (*Stop) ProtoMessage() {}
 
 func (x *Stop) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1176,7 +1454,7 @@ func (x *Stop) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Stop.ProtoReflect.Descriptor instead.
 func (*Stop) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{8}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{10}
 }
 
 func (x *Stop) GetReason() string {
@@ -1211,7 +1489,7 @@ type Draws struct {
 
 func (x *Draws) Reset() {
 	*x = Draws{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1223,7 +1501,7 @@ func (x *Draws) String() string {
 func (*Draws) ProtoMessage() {}
 
 func (x *Draws) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1236,7 +1514,7 @@ func (x *Draws) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Draws.ProtoReflect.Descriptor instead.
 func (*Draws) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{9}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{11}
 }
 
 func (x *Draws) GetSeq() uint64 {
@@ -1299,13 +1577,27 @@ type Progress struct {
 	DrawsSent int64 `protobuf:"varint,7,opt,name=draws_sent,json=drawsSent,proto3" json:"draws_sent,omitempty"`
 	// Evaluated points per second of wall time so far.
 	EvaluationsPerSecond float64 `protobuf:"fixed64,8,opt,name=evaluations_per_second,json=evaluationsPerSecond,proto3" json:"evaluations_per_second,omitempty"`
-	unknownFields        protoimpl.UnknownFields
-	sizeCache            protoimpl.SizeCache
+	// Measured accuracy per parameter, from the kept draws (on a bounded,
+	// evenly thinned window of them for long runs). Empty until enough draws.
+	Parameters []*ParameterDiagnostics `protobuf:"bytes,9,rep,name=parameters,proto3" json:"parameters,omitempty"`
+	// Kernel Stein discrepancy of the kept draws (IMQ kernel), from the
+	// gradients already evaluated at them; -1 when not available.
+	Ksd float64 `protobuf:"fixed64,10,opt,name=ksd,proto3" json:"ksd,omitempty"`
+	// Guaranteed accuracy, when curvature is declared (or estimated, and then
+	// labelled so). Absent when no bound applies.
+	Bound *Bound `protobuf:"bytes,11,opt,name=bound,proto3" json:"bound,omitempty"`
+	// One-sided curvature certificates from the gradient pairs evaluated so
+	// far.
+	Curvature *CurvatureEstimate `protobuf:"bytes,12,opt,name=curvature,proto3" json:"curvature,omitempty"`
+	// Each requested target, whether it holds, and what reaching it costs.
+	Targets       []*TargetStatus `protobuf:"bytes,13,rep,name=targets,proto3" json:"targets,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *Progress) Reset() {
 	*x = Progress{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1317,7 +1609,7 @@ func (x *Progress) String() string {
 func (*Progress) ProtoMessage() {}
 
 func (x *Progress) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1330,7 +1622,7 @@ func (x *Progress) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Progress.ProtoReflect.Descriptor instead.
 func (*Progress) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{10}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{12}
 }
 
 func (x *Progress) GetState() State {
@@ -1389,6 +1681,399 @@ func (x *Progress) GetEvaluationsPerSecond() float64 {
 	return 0
 }
 
+func (x *Progress) GetParameters() []*ParameterDiagnostics {
+	if x != nil {
+		return x.Parameters
+	}
+	return nil
+}
+
+func (x *Progress) GetKsd() float64 {
+	if x != nil {
+		return x.Ksd
+	}
+	return 0
+}
+
+func (x *Progress) GetBound() *Bound {
+	if x != nil {
+		return x.Bound
+	}
+	return nil
+}
+
+func (x *Progress) GetCurvature() *CurvatureEstimate {
+	if x != nil {
+		return x.Curvature
+	}
+	return nil
+}
+
+func (x *Progress) GetTargets() []*TargetStatus {
+	if x != nil {
+		return x.Targets
+	}
+	return nil
+}
+
+// ParameterDiagnostics is the measured accuracy of one parameter.
+type ParameterDiagnostics struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	Name  string                 `protobuf:"bytes,1,opt,name=name,proto3" json:"name,omitempty"`
+	Mean  float64                `protobuf:"fixed64,2,opt,name=mean,proto3" json:"mean,omitempty"`
+	Sd    float64                `protobuf:"fixed64,3,opt,name=sd,proto3" json:"sd,omitempty"`
+	// Reported R-hat: max of rank-normalised bulk and folded split R-hat.
+	Rhat    float64 `protobuf:"fixed64,4,opt,name=rhat,proto3" json:"rhat,omitempty"`
+	BulkEss float64 `protobuf:"fixed64,5,opt,name=bulk_ess,json=bulkEss,proto3" json:"bulk_ess,omitempty"`
+	TailEss float64 `protobuf:"fixed64,6,opt,name=tail_ess,json=tailEss,proto3" json:"tail_ess,omitempty"`
+	// Monte Carlo standard error of the mean (units of the parameter).
+	McseMean      float64 `protobuf:"fixed64,7,opt,name=mcse_mean,json=mcseMean,proto3" json:"mcse_mean,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *ParameterDiagnostics) Reset() {
+	*x = ParameterDiagnostics{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *ParameterDiagnostics) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*ParameterDiagnostics) ProtoMessage() {}
+
+func (x *ParameterDiagnostics) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use ParameterDiagnostics.ProtoReflect.Descriptor instead.
+func (*ParameterDiagnostics) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{13}
+}
+
+func (x *ParameterDiagnostics) GetName() string {
+	if x != nil {
+		return x.Name
+	}
+	return ""
+}
+
+func (x *ParameterDiagnostics) GetMean() float64 {
+	if x != nil {
+		return x.Mean
+	}
+	return 0
+}
+
+func (x *ParameterDiagnostics) GetSd() float64 {
+	if x != nil {
+		return x.Sd
+	}
+	return 0
+}
+
+func (x *ParameterDiagnostics) GetRhat() float64 {
+	if x != nil {
+		return x.Rhat
+	}
+	return 0
+}
+
+func (x *ParameterDiagnostics) GetBulkEss() float64 {
+	if x != nil {
+		return x.BulkEss
+	}
+	return 0
+}
+
+func (x *ParameterDiagnostics) GetTailEss() float64 {
+	if x != nil {
+		return x.TailEss
+	}
+	return 0
+}
+
+func (x *ParameterDiagnostics) GetMcseMean() float64 {
+	if x != nil {
+		return x.McseMean
+	}
+	return 0
+}
+
+// Bound is a theoretical bound on the distance between the law of the
+// current state of a chain and pi.
+type Bound struct {
+	state  protoimpl.MessageState `protogen:"open.v1"`
+	Metric Metric                 `protobuf:"varint,1,opt,name=metric,proto3,enum=sluice.v1.Metric" json:"metric,omitempty"`
+	// The bound itself (sum of the terms below).
+	Value  float64     `protobuf:"fixed64,2,opt,name=value,proto3" json:"value,omitempty"`
+	Source BoundSource `protobuf:"varint,3,opt,name=source,proto3,enum=sluice.v1.BoundSource" json:"source,omitempty"`
+	// Words for a person, e.g. "guaranteed under the declared m and M" or
+	// "estimated, not guaranteed".
+	Label string `protobuf:"bytes,4,opt,name=label,proto3" json:"label,omitempty"`
+	// Its terms: from the start distance (shrinks with steps), from the
+	// discretisation (shrinks with the step size), from gradient noise and
+	// from gradient bias (which no step size removes).
+	StartTerm          float64 `protobuf:"fixed64,5,opt,name=start_term,json=startTerm,proto3" json:"start_term,omitempty"`
+	DiscretisationTerm float64 `protobuf:"fixed64,6,opt,name=discretisation_term,json=discretisationTerm,proto3" json:"discretisation_term,omitempty"`
+	NoiseTerm          float64 `protobuf:"fixed64,7,opt,name=noise_term,json=noiseTerm,proto3" json:"noise_term,omitempty"`
+	BiasTerm           float64 `protobuf:"fixed64,8,opt,name=bias_term,json=biasTerm,proto3" json:"bias_term,omitempty"`
+	unknownFields      protoimpl.UnknownFields
+	sizeCache          protoimpl.SizeCache
+}
+
+func (x *Bound) Reset() {
+	*x = Bound{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *Bound) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*Bound) ProtoMessage() {}
+
+func (x *Bound) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use Bound.ProtoReflect.Descriptor instead.
+func (*Bound) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{14}
+}
+
+func (x *Bound) GetMetric() Metric {
+	if x != nil {
+		return x.Metric
+	}
+	return Metric_METRIC_UNSPECIFIED
+}
+
+func (x *Bound) GetValue() float64 {
+	if x != nil {
+		return x.Value
+	}
+	return 0
+}
+
+func (x *Bound) GetSource() BoundSource {
+	if x != nil {
+		return x.Source
+	}
+	return BoundSource_BOUND_SOURCE_UNSPECIFIED
+}
+
+func (x *Bound) GetLabel() string {
+	if x != nil {
+		return x.Label
+	}
+	return ""
+}
+
+func (x *Bound) GetStartTerm() float64 {
+	if x != nil {
+		return x.StartTerm
+	}
+	return 0
+}
+
+func (x *Bound) GetDiscretisationTerm() float64 {
+	if x != nil {
+		return x.DiscretisationTerm
+	}
+	return 0
+}
+
+func (x *Bound) GetNoiseTerm() float64 {
+	if x != nil {
+		return x.NoiseTerm
+	}
+	return 0
+}
+
+func (x *Bound) GetBiasTerm() float64 {
+	if x != nil {
+		return x.BiasTerm
+	}
+	return 0
+}
+
+// CurvatureEstimate holds certificates from observed gradient pairs: each
+// is one-sided (no finite set of pairs can bound M from above or m from
+// below).
+type CurvatureEstimate struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Pairs seen.
+	Pairs int64 `protobuf:"varint,1,opt,name=pairs,proto3" json:"pairs,omitempty"`
+	// M is at least this.
+	SmoothnessAtLeast float64 `protobuf:"fixed64,2,opt,name=smoothness_at_least,json=smoothnessAtLeast,proto3" json:"smoothness_at_least,omitempty"`
+	// m is at most this.
+	StrongConvexityAtMost float64 `protobuf:"fixed64,3,opt,name=strong_convexity_at_most,json=strongConvexityAtMost,proto3" json:"strong_convexity_at_most,omitempty"`
+	// A pair showed the potential is not convex.
+	NotConvex     bool `protobuf:"varint,4,opt,name=not_convex,json=notConvex,proto3" json:"not_convex,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *CurvatureEstimate) Reset() {
+	*x = CurvatureEstimate{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *CurvatureEstimate) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*CurvatureEstimate) ProtoMessage() {}
+
+func (x *CurvatureEstimate) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use CurvatureEstimate.ProtoReflect.Descriptor instead.
+func (*CurvatureEstimate) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{15}
+}
+
+func (x *CurvatureEstimate) GetPairs() int64 {
+	if x != nil {
+		return x.Pairs
+	}
+	return 0
+}
+
+func (x *CurvatureEstimate) GetSmoothnessAtLeast() float64 {
+	if x != nil {
+		return x.SmoothnessAtLeast
+	}
+	return 0
+}
+
+func (x *CurvatureEstimate) GetStrongConvexityAtMost() float64 {
+	if x != nil {
+		return x.StrongConvexityAtMost
+	}
+	return 0
+}
+
+func (x *CurvatureEstimate) GetNotConvex() bool {
+	if x != nil {
+		return x.NotConvex
+	}
+	return false
+}
+
+// TargetStatus reports one accuracy target.
+type TargetStatus struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Which: "min_bulk_ess", "min_tail_ess", "max_rhat", "max_ksd", "eps".
+	Name    string  `protobuf:"bytes,1,opt,name=name,proto3" json:"name,omitempty"`
+	Want    float64 `protobuf:"fixed64,2,opt,name=want,proto3" json:"want,omitempty"`
+	Current float64 `protobuf:"fixed64,3,opt,name=current,proto3" json:"current,omitempty"`
+	Met     bool    `protobuf:"varint,4,opt,name=met,proto3" json:"met,omitempty"`
+	// Evaluations still needed to meet it at the current rate; -1 when it
+	// cannot be projected.
+	ProjectedEvaluations int64 `protobuf:"varint,5,opt,name=projected_evaluations,json=projectedEvaluations,proto3" json:"projected_evaluations,omitempty"`
+	unknownFields        protoimpl.UnknownFields
+	sizeCache            protoimpl.SizeCache
+}
+
+func (x *TargetStatus) Reset() {
+	*x = TargetStatus{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *TargetStatus) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*TargetStatus) ProtoMessage() {}
+
+func (x *TargetStatus) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use TargetStatus.ProtoReflect.Descriptor instead.
+func (*TargetStatus) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{16}
+}
+
+func (x *TargetStatus) GetName() string {
+	if x != nil {
+		return x.Name
+	}
+	return ""
+}
+
+func (x *TargetStatus) GetWant() float64 {
+	if x != nil {
+		return x.Want
+	}
+	return 0
+}
+
+func (x *TargetStatus) GetCurrent() float64 {
+	if x != nil {
+		return x.Current
+	}
+	return 0
+}
+
+func (x *TargetStatus) GetMet() bool {
+	if x != nil {
+		return x.Met
+	}
+	return false
+}
+
+func (x *TargetStatus) GetProjectedEvaluations() int64 {
+	if x != nil {
+		return x.ProjectedEvaluations
+	}
+	return 0
+}
+
 // Finished is the last frame of a session.
 type Finished struct {
 	state  protoimpl.MessageState `protogen:"open.v1"`
@@ -1405,7 +2090,7 @@ type Finished struct {
 
 func (x *Finished) Reset() {
 	*x = Finished{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1417,7 +2102,7 @@ func (x *Finished) String() string {
 func (*Finished) ProtoMessage() {}
 
 func (x *Finished) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1430,7 +2115,7 @@ func (x *Finished) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Finished.ProtoReflect.Descriptor instead.
 func (*Finished) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{11}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{17}
 }
 
 func (x *Finished) GetReason() FinishReason {
@@ -1478,7 +2163,7 @@ type ParameterSummary struct {
 
 func (x *ParameterSummary) Reset() {
 	*x = ParameterSummary{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1490,7 +2175,7 @@ func (x *ParameterSummary) String() string {
 func (*ParameterSummary) ProtoMessage() {}
 
 func (x *ParameterSummary) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1503,7 +2188,7 @@ func (x *ParameterSummary) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ParameterSummary.ProtoReflect.Descriptor instead.
 func (*ParameterSummary) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{12}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{18}
 }
 
 func (x *ParameterSummary) GetName() string {
@@ -1560,7 +2245,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x05draws\x18\x03 \x01(\v2\x10.sluice.v1.DrawsH\x00R\x05draws\x121\n" +
 	"\bprogress\x18\x04 \x01(\v2\x13.sluice.v1.ProgressH\x00R\bprogress\x121\n" +
 	"\bfinished\x18\x05 \x01(\v2\x13.sluice.v1.FinishedH\x00R\bfinishedB\a\n" +
-	"\x05frame\"\x83\x04\n" +
+	"\x05frame\"\xdf\x04\n" +
 	"\bRegister\x12\x10\n" +
 	"\x03dim\x18\x01 \x01(\x05R\x03dim\x12\x16\n" +
 	"\x06chains\x18\x02 \x01(\x05R\x06chains\x12\x16\n" +
@@ -1581,7 +2266,23 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x19progress_interval_seconds\x18\r \x01(\x01R\x17progressIntervalSeconds\x12\x12\n" +
 	"\x04seed\x18\x0e \x01(\x04R\x04seed\x12\x14\n" +
 	"\x05names\x18\x0f \x03(\tR\x05names\x12*\n" +
-	"\x11max_message_bytes\x18\x10 \x01(\x03R\x0fmaxMessageBytes\"\xdf\x01\n" +
+	"\x11max_message_bytes\x18\x10 \x01(\x03R\x0fmaxMessageBytes\x122\n" +
+	"\tcurvature\x18\x11 \x01(\v2\x14.sluice.v1.CurvatureR\tcurvature\x12&\n" +
+	"\x05wants\x18\x12 \x01(\v2\x10.sluice.v1.WantsR\x05wants\"V\n" +
+	"\tCurvature\x12)\n" +
+	"\x10strong_convexity\x18\x01 \x01(\x01R\x0fstrongConvexity\x12\x1e\n" +
+	"\n" +
+	"smoothness\x18\x02 \x01(\x01R\n" +
+	"smoothness\"\xbc\x01\n" +
+	"\x05Wants\x12 \n" +
+	"\fmin_bulk_ess\x18\x01 \x01(\x01R\n" +
+	"minBulkEss\x12 \n" +
+	"\fmin_tail_ess\x18\x02 \x01(\x01R\n" +
+	"minTailEss\x12\x19\n" +
+	"\bmax_rhat\x18\x03 \x01(\x01R\amaxRhat\x12\x17\n" +
+	"\amax_ksd\x18\x04 \x01(\x01R\x06maxKsd\x12\x10\n" +
+	"\x03eps\x18\x05 \x01(\x01R\x03eps\x12)\n" +
+	"\x06metric\x18\x06 \x01(\x0e2\x11.sluice.v1.MetricR\x06metric\"\xdf\x01\n" +
 	"\n" +
 	"Registered\x12\x1d\n" +
 	"\n" +
@@ -1626,7 +2327,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x06chains\x18\x05 \x03(\x05R\x06chains\x12\x1e\n" +
 	"\n" +
 	"iterations\x18\x06 \x03(\x03R\n" +
-	"iterations\"\xb9\x02\n" +
+	"iterations\"\xa3\x04\n" +
 	"\bProgress\x12&\n" +
 	"\x05state\x18\x01 \x01(\x0e2\x10.sluice.v1.StateR\x05state\x12\x14\n" +
 	"\x05steps\x18\x02 \x01(\x03R\x05steps\x12)\n" +
@@ -1636,7 +2337,46 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\fseconds_left\x18\x06 \x01(\x01R\vsecondsLeft\x12\x1d\n" +
 	"\n" +
 	"draws_sent\x18\a \x01(\x03R\tdrawsSent\x124\n" +
-	"\x16evaluations_per_second\x18\b \x01(\x01R\x14evaluationsPerSecond\"\xc3\x01\n" +
+	"\x16evaluations_per_second\x18\b \x01(\x01R\x14evaluationsPerSecond\x12?\n" +
+	"\n" +
+	"parameters\x18\t \x03(\v2\x1f.sluice.v1.ParameterDiagnosticsR\n" +
+	"parameters\x12\x10\n" +
+	"\x03ksd\x18\n" +
+	" \x01(\x01R\x03ksd\x12&\n" +
+	"\x05bound\x18\v \x01(\v2\x10.sluice.v1.BoundR\x05bound\x12:\n" +
+	"\tcurvature\x18\f \x01(\v2\x1c.sluice.v1.CurvatureEstimateR\tcurvature\x121\n" +
+	"\atargets\x18\r \x03(\v2\x17.sluice.v1.TargetStatusR\atargets\"\xb5\x01\n" +
+	"\x14ParameterDiagnostics\x12\x12\n" +
+	"\x04name\x18\x01 \x01(\tR\x04name\x12\x12\n" +
+	"\x04mean\x18\x02 \x01(\x01R\x04mean\x12\x0e\n" +
+	"\x02sd\x18\x03 \x01(\x01R\x02sd\x12\x12\n" +
+	"\x04rhat\x18\x04 \x01(\x01R\x04rhat\x12\x19\n" +
+	"\bbulk_ess\x18\x05 \x01(\x01R\abulkEss\x12\x19\n" +
+	"\btail_ess\x18\x06 \x01(\x01R\atailEss\x12\x1b\n" +
+	"\tmcse_mean\x18\a \x01(\x01R\bmcseMean\"\x9a\x02\n" +
+	"\x05Bound\x12)\n" +
+	"\x06metric\x18\x01 \x01(\x0e2\x11.sluice.v1.MetricR\x06metric\x12\x14\n" +
+	"\x05value\x18\x02 \x01(\x01R\x05value\x12.\n" +
+	"\x06source\x18\x03 \x01(\x0e2\x16.sluice.v1.BoundSourceR\x06source\x12\x14\n" +
+	"\x05label\x18\x04 \x01(\tR\x05label\x12\x1d\n" +
+	"\n" +
+	"start_term\x18\x05 \x01(\x01R\tstartTerm\x12/\n" +
+	"\x13discretisation_term\x18\x06 \x01(\x01R\x12discretisationTerm\x12\x1d\n" +
+	"\n" +
+	"noise_term\x18\a \x01(\x01R\tnoiseTerm\x12\x1b\n" +
+	"\tbias_term\x18\b \x01(\x01R\bbiasTerm\"\xb1\x01\n" +
+	"\x11CurvatureEstimate\x12\x14\n" +
+	"\x05pairs\x18\x01 \x01(\x03R\x05pairs\x12.\n" +
+	"\x13smoothness_at_least\x18\x02 \x01(\x01R\x11smoothnessAtLeast\x127\n" +
+	"\x18strong_convexity_at_most\x18\x03 \x01(\x01R\x15strongConvexityAtMost\x12\x1d\n" +
+	"\n" +
+	"not_convex\x18\x04 \x01(\bR\tnotConvex\"\x97\x01\n" +
+	"\fTargetStatus\x12\x12\n" +
+	"\x04name\x18\x01 \x01(\tR\x04name\x12\x12\n" +
+	"\x04want\x18\x02 \x01(\x01R\x04want\x12\x18\n" +
+	"\acurrent\x18\x03 \x01(\x01R\acurrent\x12\x10\n" +
+	"\x03met\x18\x04 \x01(\bR\x03met\x123\n" +
+	"\x15projected_evaluations\x18\x05 \x01(\x03R\x14projectedEvaluations\"\xc3\x01\n" +
 	"\bFinished\x12/\n" +
 	"\x06reason\x18\x01 \x01(\x0e2\x17.sluice.v1.FinishReasonR\x06reason\x12\x18\n" +
 	"\amessage\x18\x02 \x01(\tR\amessage\x12/\n" +
@@ -1648,7 +2388,11 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x04name\x18\x01 \x01(\tR\x04name\x12\x12\n" +
 	"\x04mean\x18\x02 \x01(\x01R\x04mean\x12\x0e\n" +
 	"\x02sd\x18\x03 \x01(\x01R\x02sd\x12\x14\n" +
-	"\x05count\x18\x04 \x01(\x03R\x05count*\x88\x01\n" +
+	"\x05count\x18\x04 \x01(\x03R\x05count*>\n" +
+	"\x06Metric\x12\x16\n" +
+	"\x12METRIC_UNSPECIFIED\x10\x00\x12\r\n" +
+	"\tMETRIC_TV\x10\x01\x12\r\n" +
+	"\tMETRIC_W2\x10\x02*\x88\x01\n" +
 	"\bQuantity\x12\x18\n" +
 	"\x14QUANTITY_UNSPECIFIED\x10\x00\x12\x15\n" +
 	"\x11QUANTITY_GRADIENT\x10\x01\x12\x18\n" +
@@ -1659,7 +2403,11 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x11STATE_UNSPECIFIED\x10\x00\x12\x11\n" +
 	"\rSTATE_BURN_IN\x10\x01\x12\x12\n" +
 	"\x0eSTATE_SAMPLING\x10\x02\x12\x12\n" +
-	"\x0eSTATE_FINISHED\x10\x03*\xdf\x01\n" +
+	"\x0eSTATE_FINISHED\x10\x03*b\n" +
+	"\vBoundSource\x12\x1c\n" +
+	"\x18BOUND_SOURCE_UNSPECIFIED\x10\x00\x12\x19\n" +
+	"\x15BOUND_SOURCE_DECLARED\x10\x01\x12\x1a\n" +
+	"\x16BOUND_SOURCE_ESTIMATED\x10\x02*\xfd\x01\n" +
 	"\fFinishReason\x12\x1d\n" +
 	"\x19FINISH_REASON_UNSPECIFIED\x10\x00\x12\x1e\n" +
 	"\x1aFINISH_REASON_BUDGET_SPENT\x10\x01\x12\x1c\n" +
@@ -1667,7 +2415,8 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x15FINISH_REASON_STOPPED\x10\x03\x12!\n" +
 	"\x1dFINISH_REASON_DRAWS_COLLECTED\x10\x04\x12\x18\n" +
 	"\x14FINISH_REASON_FAILED\x10\x05\x12\x1a\n" +
-	"\x16FINISH_REASON_SHUTDOWN\x10\x062\x96\x01\n" +
+	"\x16FINISH_REASON_SHUTDOWN\x10\x06\x12\x1c\n" +
+	"\x18FINISH_REASON_TARGET_MET\x10\a2\x96\x01\n" +
 	"\rSluiceService\x12D\n" +
 	"\aSession\x12\x19.sluice.v1.SessionRequest\x1a\x1a.sluice.v1.SessionResponse(\x010\x01\x12?\n" +
 	"\x06Follow\x12\x18.sluice.v1.FollowRequest\x1a\x19.sluice.v1.FollowResponse0\x01B!Z\x1fsluice/proto/sluice/v1;sluicev1b\x06proto3"
@@ -1684,51 +2433,68 @@ func file_sluice_v1_sluice_proto_rawDescGZIP() []byte {
 	return file_sluice_v1_sluice_proto_rawDescData
 }
 
-var file_sluice_v1_sluice_proto_enumTypes = make([]protoimpl.EnumInfo, 3)
-var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 13)
+var file_sluice_v1_sluice_proto_enumTypes = make([]protoimpl.EnumInfo, 5)
+var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 19)
 var file_sluice_v1_sluice_proto_goTypes = []any{
-	(Quantity)(0),            // 0: sluice.v1.Quantity
-	(State)(0),               // 1: sluice.v1.State
-	(FinishReason)(0),        // 2: sluice.v1.FinishReason
-	(*FollowRequest)(nil),    // 3: sluice.v1.FollowRequest
-	(*FollowResponse)(nil),   // 4: sluice.v1.FollowResponse
-	(*SessionRequest)(nil),   // 5: sluice.v1.SessionRequest
-	(*SessionResponse)(nil),  // 6: sluice.v1.SessionResponse
-	(*Register)(nil),         // 7: sluice.v1.Register
-	(*Registered)(nil),       // 8: sluice.v1.Registered
-	(*Points)(nil),           // 9: sluice.v1.Points
-	(*Evaluations)(nil),      // 10: sluice.v1.Evaluations
-	(*Stop)(nil),             // 11: sluice.v1.Stop
-	(*Draws)(nil),            // 12: sluice.v1.Draws
-	(*Progress)(nil),         // 13: sluice.v1.Progress
-	(*Finished)(nil),         // 14: sluice.v1.Finished
-	(*ParameterSummary)(nil), // 15: sluice.v1.ParameterSummary
+	(Metric)(0),                  // 0: sluice.v1.Metric
+	(Quantity)(0),                // 1: sluice.v1.Quantity
+	(State)(0),                   // 2: sluice.v1.State
+	(BoundSource)(0),             // 3: sluice.v1.BoundSource
+	(FinishReason)(0),            // 4: sluice.v1.FinishReason
+	(*FollowRequest)(nil),        // 5: sluice.v1.FollowRequest
+	(*FollowResponse)(nil),       // 6: sluice.v1.FollowResponse
+	(*SessionRequest)(nil),       // 7: sluice.v1.SessionRequest
+	(*SessionResponse)(nil),      // 8: sluice.v1.SessionResponse
+	(*Register)(nil),             // 9: sluice.v1.Register
+	(*Curvature)(nil),            // 10: sluice.v1.Curvature
+	(*Wants)(nil),                // 11: sluice.v1.Wants
+	(*Registered)(nil),           // 12: sluice.v1.Registered
+	(*Points)(nil),               // 13: sluice.v1.Points
+	(*Evaluations)(nil),          // 14: sluice.v1.Evaluations
+	(*Stop)(nil),                 // 15: sluice.v1.Stop
+	(*Draws)(nil),                // 16: sluice.v1.Draws
+	(*Progress)(nil),             // 17: sluice.v1.Progress
+	(*ParameterDiagnostics)(nil), // 18: sluice.v1.ParameterDiagnostics
+	(*Bound)(nil),                // 19: sluice.v1.Bound
+	(*CurvatureEstimate)(nil),    // 20: sluice.v1.CurvatureEstimate
+	(*TargetStatus)(nil),         // 21: sluice.v1.TargetStatus
+	(*Finished)(nil),             // 22: sluice.v1.Finished
+	(*ParameterSummary)(nil),     // 23: sluice.v1.ParameterSummary
 }
 var file_sluice_v1_sluice_proto_depIdxs = []int32{
-	12, // 0: sluice.v1.FollowResponse.draws:type_name -> sluice.v1.Draws
-	14, // 1: sluice.v1.FollowResponse.finished:type_name -> sluice.v1.Finished
-	7,  // 2: sluice.v1.SessionRequest.register:type_name -> sluice.v1.Register
-	10, // 3: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
-	11, // 4: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
-	8,  // 5: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
-	9,  // 6: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
-	12, // 7: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
-	13, // 8: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
-	14, // 9: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
-	0,  // 10: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
-	1,  // 11: sluice.v1.Progress.state:type_name -> sluice.v1.State
-	2,  // 12: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
-	13, // 13: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
-	15, // 14: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
-	5,  // 15: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
-	3,  // 16: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
-	6,  // 17: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
-	4,  // 18: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
-	17, // [17:19] is the sub-list for method output_type
-	15, // [15:17] is the sub-list for method input_type
-	15, // [15:15] is the sub-list for extension type_name
-	15, // [15:15] is the sub-list for extension extendee
-	0,  // [0:15] is the sub-list for field type_name
+	16, // 0: sluice.v1.FollowResponse.draws:type_name -> sluice.v1.Draws
+	22, // 1: sluice.v1.FollowResponse.finished:type_name -> sluice.v1.Finished
+	9,  // 2: sluice.v1.SessionRequest.register:type_name -> sluice.v1.Register
+	14, // 3: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
+	15, // 4: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
+	12, // 5: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
+	13, // 6: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
+	16, // 7: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
+	17, // 8: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
+	22, // 9: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
+	10, // 10: sluice.v1.Register.curvature:type_name -> sluice.v1.Curvature
+	11, // 11: sluice.v1.Register.wants:type_name -> sluice.v1.Wants
+	0,  // 12: sluice.v1.Wants.metric:type_name -> sluice.v1.Metric
+	1,  // 13: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
+	2,  // 14: sluice.v1.Progress.state:type_name -> sluice.v1.State
+	18, // 15: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
+	19, // 16: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
+	20, // 17: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
+	21, // 18: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
+	0,  // 19: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
+	3,  // 20: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
+	4,  // 21: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
+	17, // 22: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
+	23, // 23: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
+	7,  // 24: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
+	5,  // 25: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
+	8,  // 26: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
+	6,  // 27: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
+	26, // [26:28] is the sub-list for method output_type
+	24, // [24:26] is the sub-list for method input_type
+	24, // [24:24] is the sub-list for extension type_name
+	24, // [24:24] is the sub-list for extension extendee
+	0,  // [0:24] is the sub-list for field type_name
 }
 
 func init() { file_sluice_v1_sluice_proto_init() }
@@ -1757,8 +2523,8 @@ func file_sluice_v1_sluice_proto_init() {
 		File: protoimpl.DescBuilder{
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_sluice_v1_sluice_proto_rawDesc), len(file_sluice_v1_sluice_proto_rawDesc)),
-			NumEnums:      3,
-			NumMessages:   13,
+			NumEnums:      5,
+			NumMessages:   19,
 			NumExtensions: 0,
 			NumServices:   1,
 		},
