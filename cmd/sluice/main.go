@@ -3,6 +3,8 @@
 //	sluice serve   serve the gRPC API (default 127.0.0.1:7070)
 //	sluice demo    run a server and a client in one process on an invented
 //	               kiln-firing data set, and answer a question with the draws
+//	sluice plan    step, iterations, evaluations and wall time needed for a
+//	               guaranteed accuracy, before sampling
 //
 // Run "sluice <command> -h" for a command's flags.
 package main
@@ -23,6 +25,7 @@ const usage = `sluice hands out posterior draws to simulation codes in any langu
 Usage:
   sluice serve [flags]   serve the gRPC API
   sluice demo [flags]    sample an invented kiln-firing model end to end
+  sluice plan [flags]    what a guaranteed accuracy costs, before sampling
 
 Run "sluice <command> -h" for the flags of a command.
 `
@@ -46,6 +49,8 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		err = serve(ctx, args[1:], stderr)
 	case "demo":
 		err = demo(ctx, args[1:], stdout, stderr)
+	case "plan":
+		err = plan(ctx, args[1:], stdout, stderr)
 	case "-h", "--help", "help":
 		fmt.Fprint(stdout, usage)
 		return 0

@@ -335,6 +335,261 @@ func (FinishReason) EnumDescriptor() ([]byte, []int) {
 	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{4}
 }
 
+// PlanRequest describes the target and the accuracy wanted.
+type PlanRequest struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The target's m and M (required; m = 0 is allowed for TV with
+	// second_moment).
+	Curvature *Curvature `protobuf:"bytes,1,opt,name=curvature,proto3" json:"curvature,omitempty"`
+	// Dimension p >= 1.
+	Dim int32 `protobuf:"varint,2,opt,name=dim,proto3" json:"dim,omitempty"`
+	// Target error epsilon: in (0, 1/2) for TV, > 0 for W2 (units of theta).
+	Eps    float64 `protobuf:"fixed64,3,opt,name=eps,proto3" json:"eps,omitempty"`
+	Metric Metric  `protobuf:"varint,4,opt,name=metric,proto3,enum=sluice.v1.Metric" json:"metric,omitempty"`
+	// Gradient noise sigma (W2 only): E||noise||^2 <= sigma^2 * dim.
+	NoiseSd float64 `protobuf:"fixed64,5,opt,name=noise_sd,json=noiseSd,proto3" json:"noise_sd,omitempty"`
+	// Gradient bias delta (W2 only): E||E[noise]||^2 <= delta^2 * dim.
+	Bias float64 `protobuf:"fixed64,6,opt,name=bias,proto3" json:"bias,omitempty"`
+	// Upper bound on W2 between the start and pi (W2 only); 0 means
+	// sqrt(dim/m), a start at the mode.
+	StartDistance float64 `protobuf:"fixed64,7,opt,name=start_distance,json=startDistance,proto3" json:"start_distance,omitempty"`
+	// mu_2 >= E_pi ||theta - centre||^2, needed for TV with m = 0.
+	SecondMoment float64 `protobuf:"fixed64,8,opt,name=second_moment,json=secondMoment,proto3" json:"second_moment,omitempty"`
+	// Chains the cost is for (0 means 1).
+	Chains int32 `protobuf:"varint,9,opt,name=chains,proto3" json:"chains,omitempty"`
+	// Gradient evaluations per second over all chains, to convert cost to
+	// wall time (0: unknown).
+	EvaluationsPerSecond float64 `protobuf:"fixed64,10,opt,name=evaluations_per_second,json=evaluationsPerSecond,proto3" json:"evaluations_per_second,omitempty"`
+	unknownFields        protoimpl.UnknownFields
+	sizeCache            protoimpl.SizeCache
+}
+
+func (x *PlanRequest) Reset() {
+	*x = PlanRequest{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[0]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *PlanRequest) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*PlanRequest) ProtoMessage() {}
+
+func (x *PlanRequest) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[0]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use PlanRequest.ProtoReflect.Descriptor instead.
+func (*PlanRequest) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{0}
+}
+
+func (x *PlanRequest) GetCurvature() *Curvature {
+	if x != nil {
+		return x.Curvature
+	}
+	return nil
+}
+
+func (x *PlanRequest) GetDim() int32 {
+	if x != nil {
+		return x.Dim
+	}
+	return 0
+}
+
+func (x *PlanRequest) GetEps() float64 {
+	if x != nil {
+		return x.Eps
+	}
+	return 0
+}
+
+func (x *PlanRequest) GetMetric() Metric {
+	if x != nil {
+		return x.Metric
+	}
+	return Metric_METRIC_UNSPECIFIED
+}
+
+func (x *PlanRequest) GetNoiseSd() float64 {
+	if x != nil {
+		return x.NoiseSd
+	}
+	return 0
+}
+
+func (x *PlanRequest) GetBias() float64 {
+	if x != nil {
+		return x.Bias
+	}
+	return 0
+}
+
+func (x *PlanRequest) GetStartDistance() float64 {
+	if x != nil {
+		return x.StartDistance
+	}
+	return 0
+}
+
+func (x *PlanRequest) GetSecondMoment() float64 {
+	if x != nil {
+		return x.SecondMoment
+	}
+	return 0
+}
+
+func (x *PlanRequest) GetChains() int32 {
+	if x != nil {
+		return x.Chains
+	}
+	return 0
+}
+
+func (x *PlanRequest) GetEvaluationsPerSecond() float64 {
+	if x != nil {
+		return x.EvaluationsPerSecond
+	}
+	return 0
+}
+
+// PlanResponse is the schedule and its cost.
+type PlanResponse struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Step size h.
+	Step float64 `protobuf:"fixed64,1,opt,name=step,proto3" json:"step,omitempty"`
+	// Langevin time T the rule asks for.
+	Horizon float64 `protobuf:"fixed64,2,opt,name=horizon,proto3" json:"horizon,omitempty"`
+	// Iterations K = ceil(T / h) per chain.
+	Iterations int64 `protobuf:"varint,3,opt,name=iterations,proto3" json:"iterations,omitempty"`
+	// Gradient evaluations per chain (K for LMC) and over all chains.
+	EvaluationsPerChain int64 `protobuf:"varint,4,opt,name=evaluations_per_chain,json=evaluationsPerChain,proto3" json:"evaluations_per_chain,omitempty"`
+	Evaluations         int64 `protobuf:"varint,5,opt,name=evaluations,proto3" json:"evaluations,omitempty"`
+	// Wall time at the given rate, seconds; -1 when no rate was given.
+	Seconds float64 `protobuf:"fixed64,6,opt,name=seconds,proto3" json:"seconds,omitempty"`
+	// The bound after `iterations` steps.
+	Bound *Bound `protobuf:"bytes,7,opt,name=bound,proto3" json:"bound,omitempty"`
+	// Everything the plan relies on, in words.
+	Assumptions []string `protobuf:"bytes,8,rep,name=assumptions,proto3" json:"assumptions,omitempty"`
+	// True when the bound's constants are recalled, not verified.
+	ConstantsRecalled bool `protobuf:"varint,9,opt,name=constants_recalled,json=constantsRecalled,proto3" json:"constants_recalled,omitempty"`
+	// Penalty weight lambda of the convex (m = 0) TV rule; 0 otherwise.
+	Penalty       float64 `protobuf:"fixed64,10,opt,name=penalty,proto3" json:"penalty,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *PlanResponse) Reset() {
+	*x = PlanResponse{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[1]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *PlanResponse) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*PlanResponse) ProtoMessage() {}
+
+func (x *PlanResponse) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[1]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use PlanResponse.ProtoReflect.Descriptor instead.
+func (*PlanResponse) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{1}
+}
+
+func (x *PlanResponse) GetStep() float64 {
+	if x != nil {
+		return x.Step
+	}
+	return 0
+}
+
+func (x *PlanResponse) GetHorizon() float64 {
+	if x != nil {
+		return x.Horizon
+	}
+	return 0
+}
+
+func (x *PlanResponse) GetIterations() int64 {
+	if x != nil {
+		return x.Iterations
+	}
+	return 0
+}
+
+func (x *PlanResponse) GetEvaluationsPerChain() int64 {
+	if x != nil {
+		return x.EvaluationsPerChain
+	}
+	return 0
+}
+
+func (x *PlanResponse) GetEvaluations() int64 {
+	if x != nil {
+		return x.Evaluations
+	}
+	return 0
+}
+
+func (x *PlanResponse) GetSeconds() float64 {
+	if x != nil {
+		return x.Seconds
+	}
+	return 0
+}
+
+func (x *PlanResponse) GetBound() *Bound {
+	if x != nil {
+		return x.Bound
+	}
+	return nil
+}
+
+func (x *PlanResponse) GetAssumptions() []string {
+	if x != nil {
+		return x.Assumptions
+	}
+	return nil
+}
+
+func (x *PlanResponse) GetConstantsRecalled() bool {
+	if x != nil {
+		return x.ConstantsRecalled
+	}
+	return false
+}
+
+func (x *PlanResponse) GetPenalty() float64 {
+	if x != nil {
+		return x.Penalty
+	}
+	return 0
+}
+
 // FollowRequest names the session and where to start.
 type FollowRequest struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -349,7 +604,7 @@ type FollowRequest struct {
 
 func (x *FollowRequest) Reset() {
 	*x = FollowRequest{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[0]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[2]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -361,7 +616,7 @@ func (x *FollowRequest) String() string {
 func (*FollowRequest) ProtoMessage() {}
 
 func (x *FollowRequest) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[0]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[2]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -374,7 +629,7 @@ func (x *FollowRequest) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use FollowRequest.ProtoReflect.Descriptor instead.
 func (*FollowRequest) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{0}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{2}
 }
 
 func (x *FollowRequest) GetSessionId() string {
@@ -405,7 +660,7 @@ type FollowResponse struct {
 
 func (x *FollowResponse) Reset() {
 	*x = FollowResponse{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[1]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[3]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -417,7 +672,7 @@ func (x *FollowResponse) String() string {
 func (*FollowResponse) ProtoMessage() {}
 
 func (x *FollowResponse) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[1]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[3]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -430,7 +685,7 @@ func (x *FollowResponse) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use FollowResponse.ProtoReflect.Descriptor instead.
 func (*FollowResponse) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{1}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{3}
 }
 
 func (x *FollowResponse) GetFrame() isFollowResponse_Frame {
@@ -491,7 +746,7 @@ type SessionRequest struct {
 
 func (x *SessionRequest) Reset() {
 	*x = SessionRequest{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[2]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[4]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -503,7 +758,7 @@ func (x *SessionRequest) String() string {
 func (*SessionRequest) ProtoMessage() {}
 
 func (x *SessionRequest) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[2]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[4]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -516,7 +771,7 @@ func (x *SessionRequest) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SessionRequest.ProtoReflect.Descriptor instead.
 func (*SessionRequest) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{2}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{4}
 }
 
 func (x *SessionRequest) GetFrame() isSessionRequest_Frame {
@@ -596,7 +851,7 @@ type SessionResponse struct {
 
 func (x *SessionResponse) Reset() {
 	*x = SessionResponse{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[3]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[5]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -608,7 +863,7 @@ func (x *SessionResponse) String() string {
 func (*SessionResponse) ProtoMessage() {}
 
 func (x *SessionResponse) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[3]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[5]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -621,7 +876,7 @@ func (x *SessionResponse) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SessionResponse.ProtoReflect.Descriptor instead.
 func (*SessionResponse) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{3}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{5}
 }
 
 func (x *SessionResponse) GetFrame() isSessionResponse_Frame {
@@ -781,7 +1036,7 @@ type Register struct {
 
 func (x *Register) Reset() {
 	*x = Register{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[4]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[6]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -793,7 +1048,7 @@ func (x *Register) String() string {
 func (*Register) ProtoMessage() {}
 
 func (x *Register) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[4]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[6]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -806,7 +1061,7 @@ func (x *Register) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Register.ProtoReflect.Descriptor instead.
 func (*Register) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{4}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{6}
 }
 
 func (x *Register) GetDim() int32 {
@@ -950,7 +1205,7 @@ type Curvature struct {
 
 func (x *Curvature) Reset() {
 	*x = Curvature{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[5]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -962,7 +1217,7 @@ func (x *Curvature) String() string {
 func (*Curvature) ProtoMessage() {}
 
 func (x *Curvature) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[5]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -975,7 +1230,7 @@ func (x *Curvature) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Curvature.ProtoReflect.Descriptor instead.
 func (*Curvature) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{5}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{7}
 }
 
 func (x *Curvature) GetStrongConvexity() float64 {
@@ -1013,7 +1268,7 @@ type Wants struct {
 
 func (x *Wants) Reset() {
 	*x = Wants{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[6]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1025,7 +1280,7 @@ func (x *Wants) String() string {
 func (*Wants) ProtoMessage() {}
 
 func (x *Wants) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[6]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1038,7 +1293,7 @@ func (x *Wants) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Wants.ProtoReflect.Descriptor instead.
 func (*Wants) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{6}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{8}
 }
 
 func (x *Wants) GetMinBulkEss() float64 {
@@ -1107,7 +1362,7 @@ type Registered struct {
 
 func (x *Registered) Reset() {
 	*x = Registered{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1119,7 +1374,7 @@ func (x *Registered) String() string {
 func (*Registered) ProtoMessage() {}
 
 func (x *Registered) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1132,7 +1387,7 @@ func (x *Registered) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Registered.ProtoReflect.Descriptor instead.
 func (*Registered) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{7}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{9}
 }
 
 func (x *Registered) GetSessionId() string {
@@ -1213,7 +1468,7 @@ type Points struct {
 
 func (x *Points) Reset() {
 	*x = Points{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1225,7 +1480,7 @@ func (x *Points) String() string {
 func (*Points) ProtoMessage() {}
 
 func (x *Points) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1238,7 +1493,7 @@ func (x *Points) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Points.ProtoReflect.Descriptor instead.
 func (*Points) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{8}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{10}
 }
 
 func (x *Points) GetRequestId() uint64 {
@@ -1334,7 +1589,7 @@ type Evaluations struct {
 
 func (x *Evaluations) Reset() {
 	*x = Evaluations{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1346,7 +1601,7 @@ func (x *Evaluations) String() string {
 func (*Evaluations) ProtoMessage() {}
 
 func (x *Evaluations) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1359,7 +1614,7 @@ func (x *Evaluations) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Evaluations.ProtoReflect.Descriptor instead.
 func (*Evaluations) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{9}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{11}
 }
 
 func (x *Evaluations) GetRequestId() uint64 {
@@ -1429,7 +1684,7 @@ type Stop struct {
 
 func (x *Stop) Reset() {
 	*x = Stop{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1441,7 +1696,7 @@ func (x *Stop) String() string {
 func (*Stop) ProtoMessage() {}
 
 func (x *Stop) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1454,7 +1709,7 @@ func (x *Stop) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Stop.ProtoReflect.Descriptor instead.
 func (*Stop) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{10}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{12}
 }
 
 func (x *Stop) GetReason() string {
@@ -1489,7 +1744,7 @@ type Draws struct {
 
 func (x *Draws) Reset() {
 	*x = Draws{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1501,7 +1756,7 @@ func (x *Draws) String() string {
 func (*Draws) ProtoMessage() {}
 
 func (x *Draws) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1514,7 +1769,7 @@ func (x *Draws) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Draws.ProtoReflect.Descriptor instead.
 func (*Draws) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{11}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{13}
 }
 
 func (x *Draws) GetSeq() uint64 {
@@ -1597,7 +1852,7 @@ type Progress struct {
 
 func (x *Progress) Reset() {
 	*x = Progress{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1609,7 +1864,7 @@ func (x *Progress) String() string {
 func (*Progress) ProtoMessage() {}
 
 func (x *Progress) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1622,7 +1877,7 @@ func (x *Progress) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Progress.ProtoReflect.Descriptor instead.
 func (*Progress) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{12}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{14}
 }
 
 func (x *Progress) GetState() State {
@@ -1734,7 +1989,7 @@ type ParameterDiagnostics struct {
 
 func (x *ParameterDiagnostics) Reset() {
 	*x = ParameterDiagnostics{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1746,7 +2001,7 @@ func (x *ParameterDiagnostics) String() string {
 func (*ParameterDiagnostics) ProtoMessage() {}
 
 func (x *ParameterDiagnostics) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1759,7 +2014,7 @@ func (x *ParameterDiagnostics) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ParameterDiagnostics.ProtoReflect.Descriptor instead.
 func (*ParameterDiagnostics) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{13}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{15}
 }
 
 func (x *ParameterDiagnostics) GetName() string {
@@ -1835,7 +2090,7 @@ type Bound struct {
 
 func (x *Bound) Reset() {
 	*x = Bound{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1847,7 +2102,7 @@ func (x *Bound) String() string {
 func (*Bound) ProtoMessage() {}
 
 func (x *Bound) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1860,7 +2115,7 @@ func (x *Bound) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Bound.ProtoReflect.Descriptor instead.
 func (*Bound) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{14}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{16}
 }
 
 func (x *Bound) GetMetric() Metric {
@@ -1938,7 +2193,7 @@ type CurvatureEstimate struct {
 
 func (x *CurvatureEstimate) Reset() {
 	*x = CurvatureEstimate{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1950,7 +2205,7 @@ func (x *CurvatureEstimate) String() string {
 func (*CurvatureEstimate) ProtoMessage() {}
 
 func (x *CurvatureEstimate) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1963,7 +2218,7 @@ func (x *CurvatureEstimate) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use CurvatureEstimate.ProtoReflect.Descriptor instead.
 func (*CurvatureEstimate) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{15}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{17}
 }
 
 func (x *CurvatureEstimate) GetPairs() int64 {
@@ -2011,7 +2266,7 @@ type TargetStatus struct {
 
 func (x *TargetStatus) Reset() {
 	*x = TargetStatus{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2023,7 +2278,7 @@ func (x *TargetStatus) String() string {
 func (*TargetStatus) ProtoMessage() {}
 
 func (x *TargetStatus) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2036,7 +2291,7 @@ func (x *TargetStatus) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use TargetStatus.ProtoReflect.Descriptor instead.
 func (*TargetStatus) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{16}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{18}
 }
 
 func (x *TargetStatus) GetName() string {
@@ -2090,7 +2345,7 @@ type Finished struct {
 
 func (x *Finished) Reset() {
 	*x = Finished{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2102,7 +2357,7 @@ func (x *Finished) String() string {
 func (*Finished) ProtoMessage() {}
 
 func (x *Finished) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2115,7 +2370,7 @@ func (x *Finished) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Finished.ProtoReflect.Descriptor instead.
 func (*Finished) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{17}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{19}
 }
 
 func (x *Finished) GetReason() FinishReason {
@@ -2163,7 +2418,7 @@ type ParameterSummary struct {
 
 func (x *ParameterSummary) Reset() {
 	*x = ParameterSummary{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2175,7 +2430,7 @@ func (x *ParameterSummary) String() string {
 func (*ParameterSummary) ProtoMessage() {}
 
 func (x *ParameterSummary) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2188,7 +2443,7 @@ func (x *ParameterSummary) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ParameterSummary.ProtoReflect.Descriptor instead.
 func (*ParameterSummary) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{18}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{20}
 }
 
 func (x *ParameterSummary) GetName() string {
@@ -2223,7 +2478,33 @@ var File_sluice_v1_sluice_proto protoreflect.FileDescriptor
 
 const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\n" +
-	"\x16sluice/v1/sluice.proto\x12\tsluice.v1\"I\n" +
+	"\x16sluice/v1/sluice.proto\x12\tsluice.v1\"\xd9\x02\n" +
+	"\vPlanRequest\x122\n" +
+	"\tcurvature\x18\x01 \x01(\v2\x14.sluice.v1.CurvatureR\tcurvature\x12\x10\n" +
+	"\x03dim\x18\x02 \x01(\x05R\x03dim\x12\x10\n" +
+	"\x03eps\x18\x03 \x01(\x01R\x03eps\x12)\n" +
+	"\x06metric\x18\x04 \x01(\x0e2\x11.sluice.v1.MetricR\x06metric\x12\x19\n" +
+	"\bnoise_sd\x18\x05 \x01(\x01R\anoiseSd\x12\x12\n" +
+	"\x04bias\x18\x06 \x01(\x01R\x04bias\x12%\n" +
+	"\x0estart_distance\x18\a \x01(\x01R\rstartDistance\x12#\n" +
+	"\rsecond_moment\x18\b \x01(\x01R\fsecondMoment\x12\x16\n" +
+	"\x06chains\x18\t \x01(\x05R\x06chains\x124\n" +
+	"\x16evaluations_per_second\x18\n" +
+	" \x01(\x01R\x14evaluationsPerSecond\"\xdf\x02\n" +
+	"\fPlanResponse\x12\x12\n" +
+	"\x04step\x18\x01 \x01(\x01R\x04step\x12\x18\n" +
+	"\ahorizon\x18\x02 \x01(\x01R\ahorizon\x12\x1e\n" +
+	"\n" +
+	"iterations\x18\x03 \x01(\x03R\n" +
+	"iterations\x122\n" +
+	"\x15evaluations_per_chain\x18\x04 \x01(\x03R\x13evaluationsPerChain\x12 \n" +
+	"\vevaluations\x18\x05 \x01(\x03R\vevaluations\x12\x18\n" +
+	"\aseconds\x18\x06 \x01(\x01R\aseconds\x12&\n" +
+	"\x05bound\x18\a \x01(\v2\x10.sluice.v1.BoundR\x05bound\x12 \n" +
+	"\vassumptions\x18\b \x03(\tR\vassumptions\x12-\n" +
+	"\x12constants_recalled\x18\t \x01(\bR\x11constantsRecalled\x12\x18\n" +
+	"\apenalty\x18\n" +
+	" \x01(\x01R\apenalty\"I\n" +
 	"\rFollowRequest\x12\x1d\n" +
 	"\n" +
 	"session_id\x18\x01 \x01(\tR\tsessionId\x12\x19\n" +
@@ -2416,10 +2697,11 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x1dFINISH_REASON_DRAWS_COLLECTED\x10\x04\x12\x18\n" +
 	"\x14FINISH_REASON_FAILED\x10\x05\x12\x1a\n" +
 	"\x16FINISH_REASON_SHUTDOWN\x10\x06\x12\x1c\n" +
-	"\x18FINISH_REASON_TARGET_MET\x10\a2\x96\x01\n" +
+	"\x18FINISH_REASON_TARGET_MET\x10\a2\xcf\x01\n" +
 	"\rSluiceService\x12D\n" +
 	"\aSession\x12\x19.sluice.v1.SessionRequest\x1a\x1a.sluice.v1.SessionResponse(\x010\x01\x12?\n" +
-	"\x06Follow\x12\x18.sluice.v1.FollowRequest\x1a\x19.sluice.v1.FollowResponse0\x01B!Z\x1fsluice/proto/sluice/v1;sluicev1b\x06proto3"
+	"\x06Follow\x12\x18.sluice.v1.FollowRequest\x1a\x19.sluice.v1.FollowResponse0\x01\x127\n" +
+	"\x04Plan\x12\x16.sluice.v1.PlanRequest\x1a\x17.sluice.v1.PlanResponseB!Z\x1fsluice/proto/sluice/v1;sluicev1b\x06proto3"
 
 var (
 	file_sluice_v1_sluice_proto_rawDescOnce sync.Once
@@ -2434,67 +2716,74 @@ func file_sluice_v1_sluice_proto_rawDescGZIP() []byte {
 }
 
 var file_sluice_v1_sluice_proto_enumTypes = make([]protoimpl.EnumInfo, 5)
-var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 19)
+var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 21)
 var file_sluice_v1_sluice_proto_goTypes = []any{
 	(Metric)(0),                  // 0: sluice.v1.Metric
 	(Quantity)(0),                // 1: sluice.v1.Quantity
 	(State)(0),                   // 2: sluice.v1.State
 	(BoundSource)(0),             // 3: sluice.v1.BoundSource
 	(FinishReason)(0),            // 4: sluice.v1.FinishReason
-	(*FollowRequest)(nil),        // 5: sluice.v1.FollowRequest
-	(*FollowResponse)(nil),       // 6: sluice.v1.FollowResponse
-	(*SessionRequest)(nil),       // 7: sluice.v1.SessionRequest
-	(*SessionResponse)(nil),      // 8: sluice.v1.SessionResponse
-	(*Register)(nil),             // 9: sluice.v1.Register
-	(*Curvature)(nil),            // 10: sluice.v1.Curvature
-	(*Wants)(nil),                // 11: sluice.v1.Wants
-	(*Registered)(nil),           // 12: sluice.v1.Registered
-	(*Points)(nil),               // 13: sluice.v1.Points
-	(*Evaluations)(nil),          // 14: sluice.v1.Evaluations
-	(*Stop)(nil),                 // 15: sluice.v1.Stop
-	(*Draws)(nil),                // 16: sluice.v1.Draws
-	(*Progress)(nil),             // 17: sluice.v1.Progress
-	(*ParameterDiagnostics)(nil), // 18: sluice.v1.ParameterDiagnostics
-	(*Bound)(nil),                // 19: sluice.v1.Bound
-	(*CurvatureEstimate)(nil),    // 20: sluice.v1.CurvatureEstimate
-	(*TargetStatus)(nil),         // 21: sluice.v1.TargetStatus
-	(*Finished)(nil),             // 22: sluice.v1.Finished
-	(*ParameterSummary)(nil),     // 23: sluice.v1.ParameterSummary
+	(*PlanRequest)(nil),          // 5: sluice.v1.PlanRequest
+	(*PlanResponse)(nil),         // 6: sluice.v1.PlanResponse
+	(*FollowRequest)(nil),        // 7: sluice.v1.FollowRequest
+	(*FollowResponse)(nil),       // 8: sluice.v1.FollowResponse
+	(*SessionRequest)(nil),       // 9: sluice.v1.SessionRequest
+	(*SessionResponse)(nil),      // 10: sluice.v1.SessionResponse
+	(*Register)(nil),             // 11: sluice.v1.Register
+	(*Curvature)(nil),            // 12: sluice.v1.Curvature
+	(*Wants)(nil),                // 13: sluice.v1.Wants
+	(*Registered)(nil),           // 14: sluice.v1.Registered
+	(*Points)(nil),               // 15: sluice.v1.Points
+	(*Evaluations)(nil),          // 16: sluice.v1.Evaluations
+	(*Stop)(nil),                 // 17: sluice.v1.Stop
+	(*Draws)(nil),                // 18: sluice.v1.Draws
+	(*Progress)(nil),             // 19: sluice.v1.Progress
+	(*ParameterDiagnostics)(nil), // 20: sluice.v1.ParameterDiagnostics
+	(*Bound)(nil),                // 21: sluice.v1.Bound
+	(*CurvatureEstimate)(nil),    // 22: sluice.v1.CurvatureEstimate
+	(*TargetStatus)(nil),         // 23: sluice.v1.TargetStatus
+	(*Finished)(nil),             // 24: sluice.v1.Finished
+	(*ParameterSummary)(nil),     // 25: sluice.v1.ParameterSummary
 }
 var file_sluice_v1_sluice_proto_depIdxs = []int32{
-	16, // 0: sluice.v1.FollowResponse.draws:type_name -> sluice.v1.Draws
-	22, // 1: sluice.v1.FollowResponse.finished:type_name -> sluice.v1.Finished
-	9,  // 2: sluice.v1.SessionRequest.register:type_name -> sluice.v1.Register
-	14, // 3: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
-	15, // 4: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
-	12, // 5: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
-	13, // 6: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
-	16, // 7: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
-	17, // 8: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
-	22, // 9: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
-	10, // 10: sluice.v1.Register.curvature:type_name -> sluice.v1.Curvature
-	11, // 11: sluice.v1.Register.wants:type_name -> sluice.v1.Wants
-	0,  // 12: sluice.v1.Wants.metric:type_name -> sluice.v1.Metric
-	1,  // 13: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
-	2,  // 14: sluice.v1.Progress.state:type_name -> sluice.v1.State
-	18, // 15: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
-	19, // 16: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
-	20, // 17: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
-	21, // 18: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
-	0,  // 19: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
-	3,  // 20: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
-	4,  // 21: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
-	17, // 22: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
-	23, // 23: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
-	7,  // 24: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
-	5,  // 25: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
-	8,  // 26: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
-	6,  // 27: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
-	26, // [26:28] is the sub-list for method output_type
-	24, // [24:26] is the sub-list for method input_type
-	24, // [24:24] is the sub-list for extension type_name
-	24, // [24:24] is the sub-list for extension extendee
-	0,  // [0:24] is the sub-list for field type_name
+	12, // 0: sluice.v1.PlanRequest.curvature:type_name -> sluice.v1.Curvature
+	0,  // 1: sluice.v1.PlanRequest.metric:type_name -> sluice.v1.Metric
+	21, // 2: sluice.v1.PlanResponse.bound:type_name -> sluice.v1.Bound
+	18, // 3: sluice.v1.FollowResponse.draws:type_name -> sluice.v1.Draws
+	24, // 4: sluice.v1.FollowResponse.finished:type_name -> sluice.v1.Finished
+	11, // 5: sluice.v1.SessionRequest.register:type_name -> sluice.v1.Register
+	16, // 6: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
+	17, // 7: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
+	14, // 8: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
+	15, // 9: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
+	18, // 10: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
+	19, // 11: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
+	24, // 12: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
+	12, // 13: sluice.v1.Register.curvature:type_name -> sluice.v1.Curvature
+	13, // 14: sluice.v1.Register.wants:type_name -> sluice.v1.Wants
+	0,  // 15: sluice.v1.Wants.metric:type_name -> sluice.v1.Metric
+	1,  // 16: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
+	2,  // 17: sluice.v1.Progress.state:type_name -> sluice.v1.State
+	20, // 18: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
+	21, // 19: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
+	22, // 20: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
+	23, // 21: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
+	0,  // 22: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
+	3,  // 23: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
+	4,  // 24: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
+	19, // 25: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
+	25, // 26: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
+	9,  // 27: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
+	7,  // 28: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
+	5,  // 29: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
+	10, // 30: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
+	8,  // 31: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
+	6,  // 32: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
+	30, // [30:33] is the sub-list for method output_type
+	27, // [27:30] is the sub-list for method input_type
+	27, // [27:27] is the sub-list for extension type_name
+	27, // [27:27] is the sub-list for extension extendee
+	0,  // [0:27] is the sub-list for field type_name
 }
 
 func init() { file_sluice_v1_sluice_proto_init() }
@@ -2502,16 +2791,16 @@ func file_sluice_v1_sluice_proto_init() {
 	if File_sluice_v1_sluice_proto != nil {
 		return
 	}
-	file_sluice_v1_sluice_proto_msgTypes[1].OneofWrappers = []any{
+	file_sluice_v1_sluice_proto_msgTypes[3].OneofWrappers = []any{
 		(*FollowResponse_Draws)(nil),
 		(*FollowResponse_Finished)(nil),
 	}
-	file_sluice_v1_sluice_proto_msgTypes[2].OneofWrappers = []any{
+	file_sluice_v1_sluice_proto_msgTypes[4].OneofWrappers = []any{
 		(*SessionRequest_Register)(nil),
 		(*SessionRequest_Evaluations)(nil),
 		(*SessionRequest_Stop)(nil),
 	}
-	file_sluice_v1_sluice_proto_msgTypes[3].OneofWrappers = []any{
+	file_sluice_v1_sluice_proto_msgTypes[5].OneofWrappers = []any{
 		(*SessionResponse_Registered)(nil),
 		(*SessionResponse_Points)(nil),
 		(*SessionResponse_Draws)(nil),
@@ -2524,7 +2813,7 @@ func file_sluice_v1_sluice_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_sluice_v1_sluice_proto_rawDesc), len(file_sluice_v1_sluice_proto_rawDesc)),
 			NumEnums:      5,
-			NumMessages:   19,
+			NumMessages:   21,
 			NumExtensions: 0,
 			NumServices:   1,
 		},

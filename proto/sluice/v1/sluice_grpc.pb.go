@@ -40,6 +40,7 @@ const _ = grpc.SupportPackageIsVersion9
 const (
 	SluiceService_Session_FullMethodName = "/sluice.v1.SluiceService/Session"
 	SluiceService_Follow_FullMethodName  = "/sluice.v1.SluiceService/Follow"
+	SluiceService_Plan_FullMethodName    = "/sluice.v1.SluiceService/Plan"
 )
 
 // SluiceServiceClient is the client API for SluiceService service.
@@ -79,6 +80,14 @@ type SluiceServiceClient interface {
 	// an unknown session gives NOT_FOUND. The stream ends with the session's
 	// Finished frame once every draw has been sent.
 	Follow(ctx context.Context, in *FollowRequest, opts ...grpc.CallOption) (grpc.ServerStreamingClient[FollowResponse], error)
+	// Plan answers, before any sampling, what reaching a guaranteed accuracy
+	// costs for an m-strongly convex, M-smooth target with unadjusted
+	// Langevin: step size, horizon, iterations, evaluations and wall time.
+	// Unary: it is a pure computation. Invalid inputs give INVALID_ARGUMENT
+	// naming the field. The constants behind the bounds are recalled from the
+	// literature (see `constants_recalled`): treat the figures as planning
+	// guidance, checked by the project only on Gaussian targets.
+	Plan(ctx context.Context, in *PlanRequest, opts ...grpc.CallOption) (*PlanResponse, error)
 }
 
 type sluiceServiceClient struct {
@@ -121,6 +130,16 @@ func (c *sluiceServiceClient) Follow(ctx context.Context, in *FollowRequest, opt
 // This type alias is provided for backwards compatibility with existing code that references the prior non-generic stream type by name.
 type SluiceService_FollowClient = grpc.ServerStreamingClient[FollowResponse]
 
+func (c *sluiceServiceClient) Plan(ctx context.Context, in *PlanRequest, opts ...grpc.CallOption) (*PlanResponse, error) {
+	cOpts := append([]grpc.CallOption{grpc.StaticMethod()}, opts...)
+	out := new(PlanResponse)
+	err := c.cc.Invoke(ctx, SluiceService_Plan_FullMethodName, in, out, cOpts...)
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
+}
+
 // SluiceServiceServer is the server API for SluiceService service.
 // All implementations must embed UnimplementedSluiceServiceServer
 // for forward compatibility.
@@ -158,6 +177,14 @@ type SluiceServiceServer interface {
 	// an unknown session gives NOT_FOUND. The stream ends with the session's
 	// Finished frame once every draw has been sent.
 	Follow(*FollowRequest, grpc.ServerStreamingServer[FollowResponse]) error
+	// Plan answers, before any sampling, what reaching a guaranteed accuracy
+	// costs for an m-strongly convex, M-smooth target with unadjusted
+	// Langevin: step size, horizon, iterations, evaluations and wall time.
+	// Unary: it is a pure computation. Invalid inputs give INVALID_ARGUMENT
+	// naming the field. The constants behind the bounds are recalled from the
+	// literature (see `constants_recalled`): treat the figures as planning
+	// guidance, checked by the project only on Gaussian targets.
+	Plan(context.Context, *PlanRequest) (*PlanResponse, error)
 	mustEmbedUnimplementedSluiceServiceServer()
 }
 
@@ -173,6 +200,9 @@ func (UnimplementedSluiceServiceServer) Session(grpc.BidiStreamingServer[Session
 }
 func (UnimplementedSluiceServiceServer) Follow(*FollowRequest, grpc.ServerStreamingServer[FollowResponse]) error {
 	return status.Error(codes.Unimplemented, "method Follow not implemented")
+}
+func (UnimplementedSluiceServiceServer) Plan(context.Context, *PlanRequest) (*PlanResponse, error) {
+	return nil, status.Error(codes.Unimplemented, "method Plan not implemented")
 }
 func (UnimplementedSluiceServiceServer) mustEmbedUnimplementedSluiceServiceServer() {}
 func (UnimplementedSluiceServiceServer) testEmbeddedByValue()                       {}
@@ -213,13 +243,36 @@ func _SluiceService_Follow_Handler(srv interface{}, stream grpc.ServerStream) er
 // This type alias is provided for backwards compatibility with existing code that references the prior non-generic stream type by name.
 type SluiceService_FollowServer = grpc.ServerStreamingServer[FollowResponse]
 
+func _SluiceService_Plan_Handler(srv interface{}, ctx context.Context, dec func(interface{}) error, interceptor grpc.UnaryServerInterceptor) (interface{}, error) {
+	in := new(PlanRequest)
+	if err := dec(in); err != nil {
+		return nil, err
+	}
+	if interceptor == nil {
+		return srv.(SluiceServiceServer).Plan(ctx, in)
+	}
+	info := &grpc.UnaryServerInfo{
+		Server:     srv,
+		FullMethod: SluiceService_Plan_FullMethodName,
+	}
+	handler := func(ctx context.Context, req interface{}) (interface{}, error) {
+		return srv.(SluiceServiceServer).Plan(ctx, req.(*PlanRequest))
+	}
+	return interceptor(ctx, in, info, handler)
+}
+
 // SluiceService_ServiceDesc is the grpc.ServiceDesc for SluiceService service.
 // It's only intended for direct use with grpc.RegisterService,
 // and not to be introspected or modified (even as a copy)
 var SluiceService_ServiceDesc = grpc.ServiceDesc{
 	ServiceName: "sluice.v1.SluiceService",
 	HandlerType: (*SluiceServiceServer)(nil),
-	Methods:     []grpc.MethodDesc{},
+	Methods: []grpc.MethodDesc{
+		{
+			MethodName: "Plan",
+			Handler:    _SluiceService_Plan_Handler,
+		},
+	},
 	Streams: []grpc.StreamDesc{
 		{
 			StreamName:    "Session",
