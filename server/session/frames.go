@@ -4,6 +4,7 @@ import (
 	"time"
 
 	"sluice/kernels"
+	"sluice/kernels/bound"
 )
 
 // Frame is one message from the engine to the client: *Registered,
@@ -20,6 +21,9 @@ type Registered struct {
 	EvaluationsPerStep int
 	MaxMessageBytes    int64
 	Names              []string
+	// PlannedSteps is the steps per chain the plan needs when the step
+	// was planned from Wants.Eps; 0 otherwise.
+	PlannedSteps int
 }
 
 // Points asks the client to evaluate rows points: part of request
@@ -65,6 +69,19 @@ type Progress struct {
 	TimeLeft             time.Duration
 	DrawsSent            int64
 	EvaluationsPerSecond float64
+	// Parameters holds measured accuracy per parameter (empty until
+	// enough draws).
+	Parameters []ParameterDiagnostics
+	// KSD is the kernel Stein discrepancy of the kept draws; −1 when not
+	// available.
+	KSD float64
+	// Bound is the guaranteed (or estimated, and labelled so) bound; nil
+	// when none applies.
+	Bound *bound.Bound
+	// Curvature holds certificates from gradient pairs.
+	Curvature CurvatureEstimate
+	// Targets reports each requested target.
+	Targets []TargetStatus
 }
 
 // Reason says why a session ended.
@@ -77,6 +94,7 @@ const (
 	DrawsCollected
 	Failed
 	Shutdown
+	TargetMet
 )
 
 func (r Reason) String() string {
@@ -93,6 +111,8 @@ func (r Reason) String() string {
 		return "failed"
 	case Shutdown:
 		return "server shutting down"
+	case TargetMet:
+		return "target met"
 	}
 	return "unknown"
 }

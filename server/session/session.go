@@ -11,6 +11,7 @@ import (
 	"time"
 
 	"sluice/kernels"
+	"sluice/kernels/bound"
 )
 
 // Session is one validated session, ready to Run once.
@@ -38,8 +39,10 @@ type Session struct {
 	mean  []float64
 	m2    []float64
 
-	log        *DrawLog // nil when followers are not served
-	draws      Draws    // reused frame
+	guarantee  *guarantee // nil when no bound applies
+	epsSteps   int        // steps at which the bound meets Wants.Eps; −1 if never or not asked
+	log        *DrawLog   // nil when followers are not served
+	draws      Draws      // reused frame
 	drawChains []int
 	drawIters  []int64
 }
@@ -63,7 +66,14 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 		_, _ = rand.Read(b[:])
 		spec.Seed = binary.LittleEndian.Uint64(b[:]) | 1
 	}
-	s := &Session{id: id, spec: spec, lim: lim}
+	g, err := newGuarantee(&spec)
+	if err != nil {
+		return nil, err
+	}
+	s := &Session{id: id, spec: spec, lim: lim, guarantee: g, epsSteps: -1}
+	if g != nil && spec.Wants.Eps > 0 {
+		s.epsSteps = g.stepsTo(spec.Wants.Eps, 0)
+	}
 	s.msgBytes = lim.MaxMessageBytes
 	if c := spec.MaxMessageBytes; c == 0 && s.msgBytes > defaultMessageBytes {
 		s.msgBytes = defaultMessageBytes
@@ -129,7 +139,8 @@ func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) e
 		deadline = t.C
 	}
 	if err := send(&Registered{SessionID: s.id, Seed: s.spec.Seed, Kernel: s.spec.Kernel, Step: s.spec.Step,
-		EvaluationsPerStep: s.kernel.EvaluationsPerStep(), MaxMessageBytes: s.msgBytes, Names: s.spec.Names}); err != nil {
+		EvaluationsPerStep: s.kernel.EvaluationsPerStep(), MaxMessageBytes: s.msgBytes, Names: s.spec.Names,
+		PlannedSteps: s.plannedSteps()}); err != nil {
 		return s.result(Failed, err.Error()), err
 	}
 	answerTimer := time.NewTimer(s.lim.AnswerTimeout)
@@ -158,6 +169,9 @@ func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) e
 		}
 		if d := s.spec.DrawsPerChain; d > 0 && s.kept >= d {
 			return end(DrawsCollected, "")
+		}
+		if s.targetsMet() {
+			return end(TargetMet, "")
 		}
 		req := s.kernel.Next()
 		if m := s.spec.MaxEvaluations; m > 0 && s.used+int64(req.Rows) > m {
@@ -438,6 +452,45 @@ func (s *Session) sendDraws(step int64, send func(Frame) error) error {
 	return nil
 }
 
+func (s *Session) plannedSteps() int {
+	if s.guarantee == nil {
+		return 0
+	}
+	return s.guarantee.planned
+}
+
+// targetsMet reports whether every requested target holds. Targets on
+// measured accuracy are judged at the last progress report.
+func (s *Session) targetsMet() bool {
+	w := s.spec.Wants
+	if !w.any() {
+		return false
+	}
+	if w.Eps > 0 && (s.epsSteps < 0 || s.kernel.Steps() < s.epsSteps) {
+		return false
+	}
+	return true
+}
+
+// targets reports each requested target at the current state.
+func (s *Session) targets(b *bound.Bound) []TargetStatus {
+	w := s.spec.Wants
+	var out []TargetStatus
+	if w.Eps > 0 {
+		t := TargetStatus{Name: "eps", Want: w.Eps, Current: math.Inf(1), ProjectedEvaluations: -1}
+		if b != nil {
+			t.Current = b.Total
+		}
+		k := s.kernel.Steps()
+		t.Met = s.epsSteps >= 0 && k >= s.epsSteps
+		if s.epsSteps >= 0 {
+			t.ProjectedEvaluations = int64(max(0, s.epsSteps-k)) * int64(s.kernel.EvaluationsPerStep())
+		}
+		out = append(out, t)
+	}
+	return out
+}
+
 func (s *Session) progress(now time.Time) Progress {
 	elapsed := now.Sub(s.start)
 	p := Progress{State: Sampling, Steps: int64(s.kernel.Steps()), EvaluationsUsed: s.used,
@@ -458,6 +511,13 @@ func (s *Session) progress(now time.Time) Progress {
 	if sec := elapsed.Seconds(); sec > 0 {
 		p.EvaluationsPerSecond = float64(s.used) / sec
 	}
+	p.KSD = -1
+	if s.guarantee != nil {
+		if b, err := s.guarantee.at(s.kernel.Steps()); err == nil {
+			p.Bound = &b
+		}
+	}
+	p.Targets = s.targets(p.Bound)
 	return p
 }
 

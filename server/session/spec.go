@@ -4,6 +4,8 @@ import (
 	"fmt"
 	"math"
 	"time"
+
+	"sluice/kernels/bound"
 )
 
 // Spec is a session as the client asked for it. Zero values are documented
@@ -40,6 +42,33 @@ type Spec struct {
 	Names []string
 	// MaxMessageBytes is the client's receive limit; 0 means 4 MiB.
 	MaxMessageBytes int64
+	// Curvature is what the client declares of the potential's curvature;
+	// nil when nothing is declared.
+	Curvature *Curvature
+	// Wants are accuracy targets; zero fields are not targets.
+	Wants Wants
+}
+
+// Curvature declares m·I ⪯ ∇²f ⪯ M·I for the potential f = −log π.
+type Curvature struct {
+	StrongConvexity, Smoothness float64
+	// StartDistance bounds W2(start, π); 0 means √(dim/m) (a start at
+	// the mode).
+	StartDistance float64
+}
+
+// Wants are the accuracy targets of a session.
+type Wants struct {
+	MinBulkESS, MinTailESS, MaxRhat, MaxKSD float64
+	// Eps is a guaranteed error in Metric (bound.TV or bound.W2); it needs
+	// Curvature.
+	Eps    float64
+	Metric bound.Metric
+}
+
+// any reports whether some target is set.
+func (w Wants) any() bool {
+	return w.MinBulkESS > 0 || w.MinTailESS > 0 || w.MaxRhat > 0 || w.MaxKSD > 0 || w.Eps > 0
 }
 
 // Limits are the server's caps, applied to every session. Zero values mean
@@ -136,8 +165,13 @@ func (s *Spec) validate(l Limits) error {
 			return badValue("register.start", chain, i%s.Dim, "value %v is not finite", v)
 		}
 	}
-	if !(s.Step > 0) || math.IsInf(s.Step, 0) {
-		return bad("step", "must be a finite number > 0, got %v", s.Step)
+	if err := s.validateAccuracy(); err != nil {
+		return err
+	}
+	if s.Step == 0 && s.Wants.Eps > 0 && s.Kernel == "lmc" {
+		// planned below, in New
+	} else if !(s.Step > 0) || math.IsInf(s.Step, 0) {
+		return bad("step", "must be a finite number > 0 (or 0 with curvature and wants.eps, to plan it), got %v", s.Step)
 	}
 	for _, f := range []struct {
 		name string
@@ -174,6 +208,47 @@ func (s *Spec) validate(l Limits) error {
 		s.Names = make([]string, s.Dim)
 		for i := range s.Names {
 			s.Names[i] = fmt.Sprintf("theta[%d]", i)
+		}
+	}
+	return nil
+}
+
+func (s *Spec) validateAccuracy() error {
+	finite := func(v float64) bool { return !math.IsNaN(v) && !math.IsInf(v, 0) }
+	if c := s.Curvature; c != nil {
+		switch {
+		case !finite(c.StrongConvexity) || c.StrongConvexity < 0:
+			return BadField("register.curvature.strong_convexity", "must be finite and >= 0, got %v", c.StrongConvexity)
+		case !finite(c.Smoothness) || !(c.Smoothness > 0):
+			return BadField("register.curvature.smoothness", "must be finite and > 0, got %v", c.Smoothness)
+		case c.StrongConvexity > c.Smoothness:
+			return BadField("register.curvature.strong_convexity", "m = %v exceeds M = %v", c.StrongConvexity, c.Smoothness)
+		case !finite(c.StartDistance) || c.StartDistance < 0:
+			return BadField("register.curvature.start_distance", "must be finite and >= 0, got %v", c.StartDistance)
+		}
+	}
+	w := s.Wants
+	for _, f := range []struct {
+		name string
+		v    float64
+	}{{"min_bulk_ess", w.MinBulkESS}, {"min_tail_ess", w.MinTailESS}, {"max_rhat", w.MaxRhat}, {"max_ksd", w.MaxKSD}, {"eps", w.Eps}} {
+		if !finite(f.v) || f.v < 0 {
+			return BadField("register.wants."+f.name, "must be finite and >= 0, got %v", f.v)
+		}
+	}
+	if w.MaxRhat > 0 && w.MaxRhat <= 1 {
+		return BadField("register.wants.max_rhat", "must be > 1 (R-hat is near 1 at best), got %v", w.MaxRhat)
+	}
+	if w.Eps > 0 {
+		switch {
+		case s.Curvature == nil || s.Curvature.StrongConvexity == 0:
+			return BadField("register.wants.eps", "a guaranteed error needs register.curvature with m > 0")
+		case w.Metric != bound.TV && w.Metric != bound.W2:
+			return BadField("register.wants.metric", "must be METRIC_TV or METRIC_W2 when eps is set")
+		case w.Metric == bound.TV && w.Eps >= 0.5:
+			return BadField("register.wants.eps", "a TV target must be below 0.5, got %v", w.Eps)
+		case s.Kernel != "lmc":
+			return BadField("register.wants.eps", "guaranteed bounds cover the lmc kernel only, not %q", s.Kernel)
 		}
 	}
 	return nil

@@ -1198,7 +1198,11 @@ type Curvature struct {
 	// m >= 0. 0 means convex but not strongly convex (or unknown).
 	StrongConvexity float64 `protobuf:"fixed64,1,opt,name=strong_convexity,json=strongConvexity,proto3" json:"strong_convexity,omitempty"`
 	// M > 0, M >= m.
-	Smoothness    float64 `protobuf:"fixed64,2,opt,name=smoothness,proto3" json:"smoothness,omitempty"`
+	Smoothness float64 `protobuf:"fixed64,2,opt,name=smoothness,proto3" json:"smoothness,omitempty"`
+	// Upper bound on the 2-Wasserstein distance between the start and pi
+	// (units of theta), used by W2 bounds. 0 means sqrt(dim/m), which holds
+	// for chains started at the mode.
+	StartDistance float64 `protobuf:"fixed64,3,opt,name=start_distance,json=startDistance,proto3" json:"start_distance,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -1243,6 +1247,13 @@ func (x *Curvature) GetStrongConvexity() float64 {
 func (x *Curvature) GetSmoothness() float64 {
 	if x != nil {
 		return x.Smoothness
+	}
+	return 0
+}
+
+func (x *Curvature) GetStartDistance() float64 {
+	if x != nil {
+		return x.StartDistance
 	}
 	return 0
 }
@@ -1355,7 +1366,10 @@ type Registered struct {
 	// session (the negotiated limit).
 	MaxMessageBytes int64 `protobuf:"varint,6,opt,name=max_message_bytes,json=maxMessageBytes,proto3" json:"max_message_bytes,omitempty"`
 	// Parameter names in use (dim entries).
-	Names         []string `protobuf:"bytes,7,rep,name=names,proto3" json:"names,omitempty"`
+	Names []string `protobuf:"bytes,7,rep,name=names,proto3" json:"names,omitempty"`
+	// When the step was planned from wants.eps and the declared curvature:
+	// the steps per chain the plan needs (0 otherwise).
+	PlannedSteps  int64 `protobuf:"varint,8,opt,name=planned_steps,json=plannedSteps,proto3" json:"planned_steps,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -1437,6 +1451,13 @@ func (x *Registered) GetNames() []string {
 		return x.Names
 	}
 	return nil
+}
+
+func (x *Registered) GetPlannedSteps() int64 {
+	if x != nil {
+		return x.PlannedSteps
+	}
+	return 0
 }
 
 // Points asks the client to evaluate a batch of points.
@@ -2549,12 +2570,13 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x05names\x18\x0f \x03(\tR\x05names\x12*\n" +
 	"\x11max_message_bytes\x18\x10 \x01(\x03R\x0fmaxMessageBytes\x122\n" +
 	"\tcurvature\x18\x11 \x01(\v2\x14.sluice.v1.CurvatureR\tcurvature\x12&\n" +
-	"\x05wants\x18\x12 \x01(\v2\x10.sluice.v1.WantsR\x05wants\"V\n" +
+	"\x05wants\x18\x12 \x01(\v2\x10.sluice.v1.WantsR\x05wants\"}\n" +
 	"\tCurvature\x12)\n" +
 	"\x10strong_convexity\x18\x01 \x01(\x01R\x0fstrongConvexity\x12\x1e\n" +
 	"\n" +
 	"smoothness\x18\x02 \x01(\x01R\n" +
-	"smoothness\"\xbc\x01\n" +
+	"smoothness\x12%\n" +
+	"\x0estart_distance\x18\x03 \x01(\x01R\rstartDistance\"\xbc\x01\n" +
 	"\x05Wants\x12 \n" +
 	"\fmin_bulk_ess\x18\x01 \x01(\x01R\n" +
 	"minBulkEss\x12 \n" +
@@ -2563,7 +2585,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\bmax_rhat\x18\x03 \x01(\x01R\amaxRhat\x12\x17\n" +
 	"\amax_ksd\x18\x04 \x01(\x01R\x06maxKsd\x12\x10\n" +
 	"\x03eps\x18\x05 \x01(\x01R\x03eps\x12)\n" +
-	"\x06metric\x18\x06 \x01(\x0e2\x11.sluice.v1.MetricR\x06metric\"\xdf\x01\n" +
+	"\x06metric\x18\x06 \x01(\x0e2\x11.sluice.v1.MetricR\x06metric\"\x84\x02\n" +
 	"\n" +
 	"Registered\x12\x1d\n" +
 	"\n" +
@@ -2573,7 +2595,8 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x04step\x18\x04 \x01(\x01R\x04step\x120\n" +
 	"\x14evaluations_per_step\x18\x05 \x01(\x03R\x12evaluationsPerStep\x12*\n" +
 	"\x11max_message_bytes\x18\x06 \x01(\x03R\x0fmaxMessageBytes\x12\x14\n" +
-	"\x05names\x18\a \x03(\tR\x05names\"\x88\x02\n" +
+	"\x05names\x18\a \x03(\tR\x05names\x12#\n" +
+	"\rplanned_steps\x18\b \x01(\x03R\fplannedSteps\"\x88\x02\n" +
 	"\x06Points\x12\x1d\n" +
 	"\n" +
 	"request_id\x18\x01 \x01(\x04R\trequestId\x12\x1b\n" +
