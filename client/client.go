@@ -34,6 +34,33 @@ type Spec struct {
 	// MaxMessageBytes is the largest message this client accepts and
 	// sends; 0 means 4 MiB.
 	MaxMessageBytes int64
+	// Curvature declares m and M of the potential −log π (nil: unknown).
+	Curvature *Curvature
+	// Wants are accuracy targets; the session ends with TargetMet once
+	// all hold.
+	Wants Wants
+}
+
+// Curvature declares m·I ⪯ ∇²(−log π) ⪯ M·I; StartDistance bounds
+// W2(start, π) (0: √(dim/m), a start at the mode).
+type Curvature struct {
+	StrongConvexity, Smoothness, StartDistance float64
+}
+
+// Metric names the distance of a guaranteed bound.
+type Metric string
+
+const (
+	TV Metric = "tv"
+	W2 Metric = "w2"
+)
+
+// Wants lists accuracy targets; zero fields are not targets.
+type Wants struct {
+	MinBulkESS, MinTailESS, MaxRhat, MaxKSD float64
+	// Eps is a guaranteed error in Metric; it needs Curvature.
+	Eps    float64
+	Metric Metric
 }
 
 // Batch is one set of points to evaluate. The evaluator fills Grad (and
@@ -77,6 +104,9 @@ type Registered struct {
 	EvaluationsPerStep int64
 	MaxMessageBytes    int64
 	Names              []string
+	// PlannedSteps is the steps per chain of a step planned from
+	// Wants.Eps (0 otherwise).
+	PlannedSteps int64
 }
 
 // Draws is a block of draws numbered Seq, Seq+1, ..., Seq+Rows−1. It is
@@ -98,8 +128,8 @@ const (
 	Finished State = "finished"
 )
 
-// Progress reports the budget. EvaluationsLeft and TimeLeft are −1 when
-// unlimited.
+// Progress reports the budget and the accuracy so far. EvaluationsLeft
+// and TimeLeft are −1 when unlimited.
 type Progress struct {
 	State                State
 	Steps                int64
@@ -108,6 +138,48 @@ type Progress struct {
 	Elapsed, TimeLeft    time.Duration
 	DrawsSent            int64
 	EvaluationsPerSecond float64
+	// Parameters holds the measured accuracy per parameter.
+	Parameters []Diagnostics
+	// KSD is the kernel Stein discrepancy of the kept draws (−1: not
+	// available).
+	KSD float64
+	// Bound is the theoretical bound, if any; Bound.Label says whether it
+	// is guaranteed (declared curvature) or estimated.
+	Bound *Bound
+	// Curvature holds one-sided certificates from the gradient pairs.
+	Curvature CurvatureEstimate
+	// Targets reports each requested target.
+	Targets []TargetStatus
+}
+
+// Diagnostics is the measured accuracy of one parameter.
+type Diagnostics struct {
+	Name                                   string
+	Mean, SD, Rhat, BulkESS, TailESS, MCSE float64
+}
+
+// Bound is a bound on the distance between a chain's law and π.
+type Bound struct {
+	Metric                             Metric
+	Value                              float64
+	Guaranteed                         bool
+	Label                              string
+	Start, Discretisation, Noise, Bias float64
+}
+
+// CurvatureEstimate: M ≥ SmoothnessAtLeast, m ≤ StrongConvexityAtMost.
+type CurvatureEstimate struct {
+	Pairs                                    int64
+	SmoothnessAtLeast, StrongConvexityAtMost float64
+	NotConvex                                bool
+}
+
+// TargetStatus reports one accuracy target.
+type TargetStatus struct {
+	Name                 string
+	Want, Current        float64
+	Met                  bool
+	ProjectedEvaluations int64 // −1: cannot be projected
 }
 
 // Reason says why a session ended.
@@ -120,6 +192,7 @@ const (
 	DrawsCollected Reason = "draws collected"
 	Failed         Reason = "failed"
 	Shutdown       Reason = "server shutting down"
+	TargetMet      Reason = "target met"
 )
 
 // Parameter summarises one parameter's kept draws (computed by the
@@ -207,7 +280,24 @@ func registerFrame(spec Spec, limit int64) *sluicev1.SessionRequest {
 		MaxEvaluations: spec.MaxEvaluations, MaxSeconds: spec.MaxTime.Seconds(),
 		ProgressEverySteps: spec.ProgressEverySteps, ProgressIntervalSeconds: spec.ProgressInterval.Seconds(),
 		Seed: spec.Seed, Names: spec.Names, MaxMessageBytes: limit,
+		Curvature: curvatureToWire(spec.Curvature), Wants: wantsToWire(spec.Wants),
 	}}}
+}
+
+func curvatureToWire(c *Curvature) *sluicev1.Curvature {
+	if c == nil {
+		return nil
+	}
+	return &sluicev1.Curvature{StrongConvexity: c.StrongConvexity, Smoothness: c.Smoothness, StartDistance: c.StartDistance}
+}
+
+func wantsToWire(w Wants) *sluicev1.Wants {
+	if w == (Wants{}) {
+		return nil
+	}
+	m := map[Metric]sluicev1.Metric{TV: sluicev1.Metric_METRIC_TV, W2: sluicev1.Metric_METRIC_W2}[w.Metric]
+	return &sluicev1.Wants{MinBulkEss: w.MinBulkESS, MinTailEss: w.MinTailESS, MaxRhat: w.MaxRhat, MaxKsd: w.MaxKSD,
+		Eps: w.Eps, Metric: m}
 }
 
 type runner struct {
@@ -242,7 +332,8 @@ func (r *runner) loop(ctx context.Context) (*Summary, error) {
 		case *sluicev1.SessionResponse_Registered:
 			g := f.Registered
 			r.sum.Registered = Registered{SessionID: g.GetSessionId(), Seed: g.GetSeed(), Kernel: g.GetKernel(), Step: g.GetStep(),
-				EvaluationsPerStep: g.GetEvaluationsPerStep(), MaxMessageBytes: g.GetMaxMessageBytes(), Names: g.GetNames()}
+				EvaluationsPerStep: g.GetEvaluationsPerStep(), MaxMessageBytes: g.GetMaxMessageBytes(), Names: g.GetNames(),
+				PlannedSteps: g.GetPlannedSteps()}
 			if r.cfg.onRegistered != nil {
 				r.cfg.onRegistered(&r.sum.Registered)
 			}
@@ -371,6 +462,7 @@ var reasonFromWire = map[sluicev1.FinishReason]Reason{
 	sluicev1.FinishReason_FINISH_REASON_DRAWS_COLLECTED: DrawsCollected,
 	sluicev1.FinishReason_FINISH_REASON_FAILED:          Failed,
 	sluicev1.FinishReason_FINISH_REASON_SHUTDOWN:        Shutdown,
+	sluicev1.FinishReason_FINISH_REASON_TARGET_MET:      TargetMet,
 }
 
 func (r *runner) finish(f *sluicev1.Finished) {
@@ -397,9 +489,27 @@ func progressFromWire(p *sluicev1.Progress) Progress {
 		}
 		return time.Duration(s * float64(time.Second))
 	}
-	return Progress{State: stateFromWire[p.GetState()], Steps: p.GetSteps(), EvaluationsUsed: p.GetEvaluationsUsed(),
+	out := Progress{State: stateFromWire[p.GetState()], Steps: p.GetSteps(), EvaluationsUsed: p.GetEvaluationsUsed(),
 		EvaluationsLeft: p.GetEvaluationsLeft(), Elapsed: sec(p.GetSecondsUsed()), TimeLeft: sec(p.GetSecondsLeft()),
-		DrawsSent: p.GetDrawsSent(), EvaluationsPerSecond: p.GetEvaluationsPerSecond()}
+		DrawsSent: p.GetDrawsSent(), EvaluationsPerSecond: p.GetEvaluationsPerSecond(), KSD: p.GetKsd()}
+	if c := p.GetCurvature(); c != nil {
+		out.Curvature = CurvatureEstimate{Pairs: c.GetPairs(), SmoothnessAtLeast: c.GetSmoothnessAtLeast(),
+			StrongConvexityAtMost: c.GetStrongConvexityAtMost(), NotConvex: c.GetNotConvex()}
+	}
+	if b := p.GetBound(); b != nil {
+		out.Bound = &Bound{Metric: map[sluicev1.Metric]Metric{sluicev1.Metric_METRIC_TV: TV, sluicev1.Metric_METRIC_W2: W2}[b.GetMetric()],
+			Value: b.GetValue(), Guaranteed: b.GetSource() == sluicev1.BoundSource_BOUND_SOURCE_DECLARED, Label: b.GetLabel(),
+			Start: b.GetStartTerm(), Discretisation: b.GetDiscretisationTerm(), Noise: b.GetNoiseTerm(), Bias: b.GetBiasTerm()}
+	}
+	for _, d := range p.GetParameters() {
+		out.Parameters = append(out.Parameters, Diagnostics{Name: d.GetName(), Mean: d.GetMean(), SD: d.GetSd(), Rhat: d.GetRhat(),
+			BulkESS: d.GetBulkEss(), TailESS: d.GetTailEss(), MCSE: d.GetMcseMean()})
+	}
+	for _, t := range p.GetTargets() {
+		out.Targets = append(out.Targets, TargetStatus{Name: t.GetName(), Want: t.GetWant(), Current: t.GetCurrent(), Met: t.GetMet(),
+			ProjectedEvaluations: t.GetProjectedEvaluations()})
+	}
+	return out
 }
 
 // recvStatus returns the stream's real status after a failed Send (gRPC

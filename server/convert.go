@@ -21,7 +21,16 @@ func specFromWire(r *sluicev1.Register) (session.Spec, error) {
 	if err != nil {
 		return session.Spec{}, err
 	}
+	var curv *session.Curvature
+	if c := r.GetCurvature(); c != nil {
+		curv = &session.Curvature{StrongConvexity: c.GetStrongConvexity(), Smoothness: c.GetSmoothness(), StartDistance: c.GetStartDistance()}
+	}
+	w := r.GetWants()
+	wants := session.Wants{MinBulkESS: w.GetMinBulkEss(), MinTailESS: w.GetMinTailEss(), MaxRhat: w.GetMaxRhat(),
+		MaxKSD: w.GetMaxKsd(), Eps: w.GetEps(), Metric: metricFromWire[w.GetMetric()]}
 	return session.Spec{
+		Curvature:          curv,
+		Wants:              wants,
 		Dim:                int(r.GetDim()),
 		Chains:             int(r.GetChains()),
 		Kernel:             r.GetKernel(),
@@ -98,7 +107,8 @@ func (e *encoder) frame(f session.Frame) *sluicev1.SessionResponse {
 	case *session.Registered:
 		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Registered{Registered: &sluicev1.Registered{
 			SessionId: f.SessionID, Seed: f.Seed, Kernel: f.Kernel, Step: f.Step,
-			EvaluationsPerStep: int64(f.EvaluationsPerStep), MaxMessageBytes: f.MaxMessageBytes, Names: f.Names}}}
+			EvaluationsPerStep: int64(f.EvaluationsPerStep), MaxMessageBytes: f.MaxMessageBytes, Names: f.Names,
+			PlannedSteps: int64(f.PlannedSteps)}}}
 	case *session.Points:
 		var q []sluicev1.Quantity
 		if f.Need.Has(kernels.NeedGradient) {
@@ -148,6 +158,7 @@ var reasonToWire = map[session.Reason]sluicev1.FinishReason{
 	session.DrawsCollected: sluicev1.FinishReason_FINISH_REASON_DRAWS_COLLECTED,
 	session.Failed:         sluicev1.FinishReason_FINISH_REASON_FAILED,
 	session.Shutdown:       sluicev1.FinishReason_FINISH_REASON_SHUTDOWN,
+	session.TargetMet:      sluicev1.FinishReason_FINISH_REASON_TARGET_MET,
 }
 
 func progressToWire(p *session.Progress) *sluicev1.Progress {
@@ -155,7 +166,21 @@ func progressToWire(p *session.Progress) *sluicev1.Progress {
 	if p.TimeLeft >= 0 {
 		left = p.TimeLeft.Seconds()
 	}
-	return &sluicev1.Progress{State: stateToWire[p.State], Steps: p.Steps, EvaluationsUsed: p.EvaluationsUsed,
+	w := &sluicev1.Progress{State: stateToWire[p.State], Steps: p.Steps, EvaluationsUsed: p.EvaluationsUsed,
 		EvaluationsLeft: p.EvaluationsLeft, SecondsUsed: p.Elapsed.Seconds(), SecondsLeft: left,
-		DrawsSent: p.DrawsSent, EvaluationsPerSecond: p.EvaluationsPerSecond}
+		DrawsSent: p.DrawsSent, EvaluationsPerSecond: p.EvaluationsPerSecond, Ksd: p.KSD,
+		Curvature: &sluicev1.CurvatureEstimate{Pairs: p.Curvature.Pairs, SmoothnessAtLeast: p.Curvature.SmoothnessAtLeast,
+			StrongConvexityAtMost: p.Curvature.StrongConvexityAtMost, NotConvex: p.Curvature.NotConvex}}
+	if p.Bound != nil {
+		w.Bound = boundToWire(*p.Bound)
+	}
+	for _, d := range p.Parameters {
+		w.Parameters = append(w.Parameters, &sluicev1.ParameterDiagnostics{Name: d.Name, Mean: d.Mean, Sd: d.SD,
+			Rhat: d.Rhat, BulkEss: d.BulkESS, TailEss: d.TailESS, McseMean: d.MCSE})
+	}
+	for _, t := range p.Targets {
+		w.Targets = append(w.Targets, &sluicev1.TargetStatus{Name: t.Name, Want: t.Want, Current: t.Current, Met: t.Met,
+			ProjectedEvaluations: t.ProjectedEvaluations})
+	}
+	return w
 }

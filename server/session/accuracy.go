@@ -2,8 +2,12 @@ package session
 
 import (
 	"math"
+	"slices"
+	"time"
 
+	"sluice/kernels"
 	"sluice/kernels/bound"
+	"sluice/kernels/diag"
 )
 
 // ParameterDiagnostics is the measured accuracy of one parameter.
@@ -107,4 +111,87 @@ func (g *guarantee) stepsTo(eps float64, k int) int {
 		}
 	}
 	return hi
+}
+
+// monitor measures accuracy from what the session already has: the kept
+// draws, the gradients evaluated at them (for the Stein discrepancy) and
+// consecutive evaluated points of each chain (for curvature
+// certificates). Its memory is bounded independently of the run length.
+type monitor struct {
+	dim, chains int
+	ksd         *diag.StreamKSD
+	curv        diag.CurvatureBounds
+	// last evaluated point and gradient per chain, for the pairs.
+	lastX, lastG []float64
+	haveLast     []bool
+	// keptX holds the positions of the last kept step until their scores
+	// arrive; pendingScores says it is waiting.
+	keptX         []float64
+	pendingScores bool
+	// Cost control: time spent computing diagnostics, so that they take
+	// at most a tenth of the session's wall time.
+	spent   time.Duration
+	lastKSD float64
+}
+
+func newMonitor(dim, chains int) *monitor {
+	// The U-statistic costs O(K²·dim) on K kept draws: keep K near
+	// √(5·10⁷/dim), at least two rounds of chains.
+	k := int(math.Sqrt(5e7 / float64(dim)))
+	k = max(2*chains, min(k, 2048))
+	return &monitor{dim: dim, chains: chains, ksd: diag.NewStreamKSD(diag.IMQ{}, dim, chains, k),
+		lastX: make([]float64, dim*chains), lastG: make([]float64, dim*chains), haveLast: make([]bool, chains),
+		keptX: make([]float64, dim*chains), lastKSD: -1}
+}
+
+// answered records the gradients of one completed request (before Tell).
+func (m *monitor) answered(req *kernels.Request, a *kernels.Answer) {
+	if !req.Need.Has(kernels.NeedGradient) {
+		return
+	}
+	d := m.dim
+	for r := range req.Rows {
+		c := req.Chain[r]
+		x, g := req.Points[r*d:(r+1)*d], a.Grad[r*d:(r+1)*d]
+		if m.haveLast[c] {
+			m.curv.Add(m.lastX[c*d:(c+1)*d], x, m.lastG[c*d:(c+1)*d], g)
+		}
+		copy(m.lastX[c*d:], x)
+		copy(m.lastG[c*d:], g)
+		m.haveLast[c] = true
+	}
+	// Scores of the last kept draws: the kernel asked for the gradient at
+	// exactly those positions (as LMC does at the start of each step).
+	if m.pendingScores && req.Rows == m.chains && slices.Equal(req.Points[:d*m.chains], m.keptX) {
+		m.ksd.Add(m.keptX, a.Grad[:d*m.chains])
+	}
+	m.pendingScores = false
+}
+
+// kept records the positions of a kept step; k is the kernel, which may
+// know the scores there already.
+func (m *monitor) kept(k kernels.Kernel) {
+	if sc, ok := k.(kernels.Scorer); ok {
+		m.ksd.Add(k.Positions(), sc.Scores())
+		return
+	}
+	copy(m.keptX, k.Positions())
+	m.pendingScores = true
+}
+
+// measure fills p's measured figures, unless diagnostics have already
+// taken a tenth of the elapsed time (then the last values stand).
+func (m *monitor) measure(p *Progress) {
+	p.Curvature = CurvatureEstimate{Pairs: int64(m.curv.Pairs()), SmoothnessAtLeast: m.curv.SmoothnessFloor(),
+		StrongConvexityAtMost: m.curv.ConvexityCeiling(), NotConvex: m.curv.NonConvex()}
+	p.KSD = m.lastKSD
+	if m.spent > p.Elapsed/10 {
+		return
+	}
+	t := time.Now()
+	if m.ksd.Kept() >= 2 {
+		m.lastKSD = m.ksd.Result().U()
+		p.KSD = m.lastKSD
+	}
+	m.spent += time.Since(t)
 }

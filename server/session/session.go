@@ -40,9 +40,10 @@ type Session struct {
 	m2    []float64
 
 	guarantee  *guarantee // nil when no bound applies
-	epsSteps   int        // steps at which the bound meets Wants.Eps; −1 if never or not asked
-	log        *DrawLog   // nil when followers are not served
-	draws      Draws      // reused frame
+	mon        *monitor
+	epsSteps   int      // steps at which the bound meets Wants.Eps; −1 if never or not asked
+	log        *DrawLog // nil when followers are not served
+	draws      Draws    // reused frame
 	drawChains []int
 	drawIters  []int64
 }
@@ -94,6 +95,7 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 	if lim.FollowBuffer > 0 {
 		s.log = NewDrawLog(spec.Dim, min(lim.FollowBuffer, max(1, maxFollowBytes/(8*spec.Dim))))
 	}
+	s.mon = newMonitor(spec.Dim, spec.Chains)
 	s.answer = kernels.NewAnswer(spec.Chains, spec.Dim)
 	s.mean = make([]float64, spec.Dim)
 	s.m2 = make([]float64, spec.Dim)
@@ -222,10 +224,12 @@ func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) e
 			left--
 		}
 		s.used += int64(req.Rows)
+		s.mon.answered(req, s.answer)
 		if s.kernel.Tell(s.answer) {
 			pending = true
 			if s.keeps(int64(s.kernel.Steps())) {
 				s.kept++
+				s.mon.kept(s.kernel)
 			}
 		}
 	}
@@ -511,7 +515,7 @@ func (s *Session) progress(now time.Time) Progress {
 	if sec := elapsed.Seconds(); sec > 0 {
 		p.EvaluationsPerSecond = float64(s.used) / sec
 	}
-	p.KSD = -1
+	s.mon.measure(&p)
 	if s.guarantee != nil {
 		if b, err := s.guarantee.at(s.kernel.Steps()); err == nil {
 			p.Bound = &b
