@@ -31,10 +31,15 @@ func kineticDiagGrad(lambda []float64) func(points []float64, rows int, grad []f
 // kineticRun drives k in-process with an exact gradient until it has
 // completed steps steps, answering every request, and returns per
 // coordinate and chain the draws after burnIn steps: out[coord][chain][draw]
-// with coordinates 0…p−1 the positions and p…2p−1 the velocities.
-func kineticRun(k kineticKernel, grad func([]float64, int, []float64), burnIn, steps int) [][][]float64 {
+// with coordinates 0…p−1 the positions and, for a kernel with velocities,
+// p…2p−1 the velocities.
+func kineticRun(k Kernel, grad func([]float64, int, []float64), burnIn, steps int) [][][]float64 {
 	p, c := k.Dim(), k.Chains()
-	out := make([][][]float64, 2*p)
+	kv, withV := k.(kineticKernel)
+	out := make([][][]float64, p)
+	if withV {
+		out = make([][][]float64, 2*p)
+	}
 	for i := range out {
 		out[i] = make([][]float64, c)
 		for j := range out[i] {
@@ -48,11 +53,18 @@ func kineticRun(k kineticKernel, grad func([]float64, int, []float64), burnIn, s
 		if !k.Tell(a) || k.Steps() <= burnIn {
 			continue
 		}
-		x, v := k.Positions(), k.Velocities()
+		x := k.Positions()
 		for ch := range c {
 			for i := range p {
 				out[i][ch] = append(out[i][ch], x[ch*p+i])
-				out[p+i][ch] = append(out[p+i][ch], v[ch*p+i])
+			}
+		}
+		if withV {
+			v := kv.Velocities()
+			for ch := range c {
+				for i := range p {
+					out[p+i][ch] = append(out[p+i][ch], v[ch*p+i])
+				}
 			}
 		}
 	}

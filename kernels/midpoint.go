@@ -271,3 +271,186 @@ func (k *Midpoint) UnmarshalBinary(b []byte) error {
 	*k = m
 	return nil
 }
+
+// OverdampedMidpoint is the randomised midpoint method for overdamped
+// Langevin dθ = ∇log π(θ) dt + √2 dB (RLMC; Shen & Lee, NeurIPS 2019;
+// THEORY.md §5.2) over a batch of chains. Each step draws α ~ U[0, 1) per
+// chain and, with G(·) = ∇log π(·) and z1, z2 ~ N(0, 1) per coordinate,
+//
+//	B_{αh} = √(αh)·z1,   B_h = B_{αh} + √((1 − α)h)·z2
+//	y      = θ + αh·G(θ) + √2·B_{αh}
+//	θ'     = θ + h·G(y) + √2·B_h
+//
+// (one Brownian path: the two noises are correlated). A step is two
+// requests, all chains in each: the gradient at every chain's position
+// (Tell returns false), then at every chain's midpoint y (Tell returns
+// true). Per chain the stream gives α, then z1, z2 for each coordinate in
+// turn, chain by chain, during the first Tell of the step.
+type OverdampedMidpoint struct {
+	dim, chains  int
+	h            float64
+	steps        int
+	mid          bool      // the step's first Tell is done; the midpoints are requested
+	x            []float64 // chains×dim positions at the last completed step
+	y, xnext     []float64 // within a step: midpoints and θ + √2·B_h
+	reqX, reqMid Request
+	src          *rand.PCG
+	rng          *rand.Rand
+}
+
+// NewOverdampedMidpoint returns an OverdampedMidpoint kernel for chains
+// chains in dimension dim with step h, started at start (chains×dim
+// values, or dim values shared by every chain), drawing α and the noise
+// from src. It panics on a non-positive or non-finite h or a start of the
+// wrong length.
+func NewOverdampedMidpoint(dim, chains int, h float64, start []float64, src *rand.PCG) *OverdampedMidpoint {
+	if dim < 1 || chains < 1 {
+		panic(fmt.Sprintf("kernels: OverdampedMidpoint with dim %d, chains %d", dim, chains))
+	}
+	if !kineticPositive(h) {
+		panic(fmt.Sprintf("kernels: OverdampedMidpoint step %v", h))
+	}
+	k := &OverdampedMidpoint{dim: dim, chains: chains, h: h, x: broadcastStart(start, dim, chains), src: src}
+	k.init()
+	return k
+}
+
+func (k *OverdampedMidpoint) init() {
+	n := k.dim * k.chains
+	k.rng = rand.New(k.src)
+	if k.y == nil {
+		k.y, k.xnext = make([]float64, n), make([]float64, n)
+	}
+	idx := chainIndex(k.chains)
+	k.reqX = Request{Need: NeedGradient, Rows: k.chains, Points: k.x, Chain: idx}
+	k.reqMid = Request{Need: NeedGradient, Rows: k.chains, Points: k.y, Chain: idx}
+}
+
+// Dim implements Kernel.
+func (k *OverdampedMidpoint) Dim() int { return k.dim }
+
+// Chains implements Kernel.
+func (k *OverdampedMidpoint) Chains() int { return k.chains }
+
+// Steps implements Kernel.
+func (k *OverdampedMidpoint) Steps() int { return k.steps }
+
+// Step returns the step size h.
+func (k *OverdampedMidpoint) Step() float64 { return k.h }
+
+// EvaluationsPerStep implements Kernel: two gradients per chain.
+func (k *OverdampedMidpoint) EvaluationsPerStep() int { return 2 * k.chains }
+
+// Positions implements Kernel: the positions at the last completed step
+// (also between the two requests of a step).
+func (k *OverdampedMidpoint) Positions() []float64 { return k.x }
+
+// Next implements Kernel: the gradient at every chain's position, then at
+// every chain's midpoint.
+func (k *OverdampedMidpoint) Next() *Request {
+	if k.mid {
+		return &k.reqMid
+	}
+	return &k.reqX
+}
+
+// Tell implements Kernel. The first call of a step draws α and the noise
+// and sets the midpoints; the second completes the step.
+func (k *OverdampedMidpoint) Tell(a *Answer) bool {
+	n := len(k.x)
+	if len(a.Grad) < n {
+		panic(fmt.Sprintf("kernels: OverdampedMidpoint answer has %d gradient values, want %d", len(a.Grad), n))
+	}
+	g := a.Grad[:n]
+	h := k.h
+	if k.mid {
+		xn := k.xnext[:n]
+		for i := range k.x {
+			k.x[i] = xn[i] + h*g[i]
+		}
+		k.mid = false
+		k.steps++
+		return true
+	}
+	y, xn := k.y[:n], k.xnext[:n]
+	for c := range k.chains {
+		alpha := k.rng.Float64()
+		ah := alpha * h
+		s1, s2 := math.Sqrt(ah), math.Sqrt(h-ah)
+		for i := c * k.dim; i < (c+1)*k.dim; i++ {
+			b1 := s1 * k.rng.NormFloat64()
+			bh := b1 + s2*k.rng.NormFloat64()
+			xi := k.x[i]
+			y[i] = xi + ah*g[i] + math.Sqrt2*b1
+			xn[i] = xi + math.Sqrt2*bh
+		}
+	}
+	k.mid = true
+	return false
+}
+
+const overdampedMidpointMagic = "sluice.midpoint-overdamped.v1"
+
+// MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
+// step, completed steps, the within-step phase, positions, between the two
+// requests of a step the midpoints and partial updates, and the random
+// stream's state.
+func (k *OverdampedMidpoint) MarshalBinary() ([]byte, error) {
+	rs, err := k.src.MarshalBinary()
+	if err != nil {
+		return nil, err
+	}
+	b := make([]byte, 0, len(overdampedMidpointMagic)+5*8+24*len(k.x)+len(rs))
+	b = append(b, overdampedMidpointMagic...)
+	b = binary.LittleEndian.AppendUint64(b, uint64(k.dim))
+	b = binary.LittleEndian.AppendUint64(b, uint64(k.chains))
+	b = kineticAppend(b, k.h)
+	b = binary.LittleEndian.AppendUint64(b, uint64(k.steps))
+	var phase uint64
+	if k.mid {
+		phase = 1
+	}
+	b = binary.LittleEndian.AppendUint64(b, phase)
+	b = kineticAppend(b, k.x...)
+	if k.mid {
+		b = kineticAppend(b, k.y...)
+		b = kineticAppend(b, k.xnext...)
+	}
+	return append(b, rs...), nil
+}
+
+// UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
+// whole state, including dimension, number of chains and the phase within
+// a step.
+func (k *OverdampedMidpoint) UnmarshalBinary(b []byte) error {
+	r := stateReader{b: b}
+	if !r.magic(overdampedMidpointMagic) {
+		return errors.New("kernels: not an OverdampedMidpoint state")
+	}
+	dim, chains := int(r.u64()), int(r.u64())
+	h := kineticFloat(&r)
+	steps, phase := int(r.u64()), r.u64()
+	arrays := 1
+	if phase == 1 {
+		arrays = 3
+	}
+	if r.err != nil || !kineticFits(dim, chains, arrays, len(b)) || steps < 0 || phase > 1 || !kineticPositive(h) {
+		return errors.New("kernels: corrupt OverdampedMidpoint state")
+	}
+	n := dim * chains
+	m := OverdampedMidpoint{dim: dim, chains: chains, h: h, steps: steps, mid: phase == 1}
+	m.x = r.floats(n)
+	if m.mid {
+		m.y, m.xnext = r.floats(n), r.floats(n)
+	}
+	if r.err != nil {
+		return errors.New("kernels: corrupt OverdampedMidpoint state")
+	}
+	m.src = &rand.PCG{}
+	if err := m.src.UnmarshalBinary(r.rest()); err != nil {
+		return fmt.Errorf("kernels: OverdampedMidpoint random state: %w", err)
+	}
+	m.init()
+	*k = m
+	return nil
+}

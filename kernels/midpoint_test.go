@@ -440,3 +440,183 @@ func BenchmarkMidpointStep(b *testing.B) {
 		}
 	}
 }
+
+// One overdamped midpoint step by hand for 2 chains in dimension 2: α and
+// z1, z2 per coordinate replayed from the same stream, the update typed
+// from THEORY.md §5.2 (with ∇log π = −∇f).
+func TestMidpointOverdampedStepByHand(t *testing.T) {
+	const p, chains, h = 2, 2, 0.3
+	x0 := []float64{1, -2, 0.5, 3}
+	g0 := []float64{-1, 0.5, 2, -3}
+	gm := []float64{0.7, -0.2, 1, 0.4}
+	k := NewOverdampedMidpoint(p, chains, h, x0, NewSource(31))
+	if k.Tell(&Answer{Grad: g0}) || k.Steps() != 0 || k.Positions()[3] != 3 {
+		t.Fatal("the first Tell of a step reported it complete or moved the positions")
+	}
+	ys := append([]float64(nil), k.Next().Points...)
+	if !k.Tell(&Answer{Grad: gm}) || k.Steps() != 1 {
+		t.Fatal("the second Tell did not complete the step")
+	}
+	rng := rand.New(NewSource(31))
+	for c := range chains {
+		alpha := rng.Float64()
+		for i := c * p; i < (c+1)*p; i++ {
+			z1, z2 := rng.NormFloat64(), rng.NormFloat64()
+			bA := math.Sqrt(alpha*h) * z1
+			bH := bA + math.Sqrt((1-alpha)*h)*z2
+			wantY := x0[i] + alpha*h*g0[i] + math.Sqrt2*bA
+			wantX := x0[i] + h*gm[i] + math.Sqrt2*bH
+			if !kineticClose(ys[i], wantY, 1e-12) || !kineticClose(k.Positions()[i], wantX, 1e-12) {
+				t.Fatalf("coordinate %d: (y, θ') = (%v, %v), want (%v, %v)", i, ys[i], k.Positions()[i], wantY, wantX)
+			}
+		}
+	}
+}
+
+// THEORY.md §5.2 [derived there]: on f = λθ²/2 the overdamped midpoint
+// chain is θ' = A_α θ + noise with E[A_α²] = (1−hλ)² + (1−hλ)h²λ² + h⁴λ⁴/3
+// and E[noise²] = 2h(1 − hλ + h²λ²/2), so Var θ = E_n/(1 − E_a2). The
+// closed form must give §5.2's vectors (1e-9), and the kernel's draws must
+// match it within 4 MCSE; at h = 0.5 they must also be told apart (more
+// than 4 MCSE) from ULA's 4/3 and from the target's 1.
+func TestMidpointOverdampedStationaryVariance(t *testing.T) {
+	for n, tc := range []struct {
+		lambda, h, want, ula float64
+		biased               bool
+	}{
+		{1, 0.1, 1.0001841960, 1.0526315789, false},
+		{1, 0.5, 1.0344827586, 1.3333333333, true},
+	} {
+		t.Run(fmt.Sprintf("λ=%v,h=%v", tc.lambda, tc.h), func(t *testing.T) {
+			hl := tc.h * tc.lambda
+			ea2 := (1-hl)*(1-hl) + (1-hl)*hl*hl + hl*hl*hl*hl/3
+			en := 2 * tc.h * (1 - hl + hl*hl/2)
+			if v := en / (1 - ea2); math.Abs(v-tc.want) > 1e-9 {
+				t.Fatalf("closed form %.10f, THEORY.md §5.2 gives %.10f", v, tc.want)
+			}
+			k := NewOverdampedMidpoint(1, 16, tc.h, []float64{0}, NewSource(300+uint64(n)))
+			d := kineticRun(k, kineticDiagGrad([]float64{tc.lambda}), 1000, 21000)
+			est, se := kineticMoment(d, 0, 0)
+			t.Logf("Var θ = %.5f ± %.5f (THEORY.md §5.2: %.5f)", est, se, tc.want)
+			if z := (est - tc.want) / se; math.Abs(z) > 4 {
+				t.Errorf("Var θ = %.5f, THEORY.md §5.2 %.5f, MCSE %.5f (z = %.1f)", est, tc.want, se, z)
+			}
+			if tc.biased && (math.Abs(est-tc.ula) < 4*se || math.Abs(est-1/tc.lambda) < 4*se) {
+				t.Errorf("Var θ = %.5f not told apart from ULA's %v or the target's %v (MCSE %.5f)", est, tc.ula, 1/tc.lambda, se)
+			}
+		})
+	}
+}
+
+// Evaluation accounting: two gradients per chain per step (THEORY.md §13,
+// randomised midpoint row).
+func TestMidpointOverdampedEvaluationsPerStep(t *testing.T) {
+	k := NewOverdampedMidpoint(3, 5, 0.1, make([]float64, 3), NewSource(1))
+	a := NewAnswer(5, 3)
+	var rows, tells int
+	for k.Steps() < 7 {
+		rows += k.Next().Rows
+		tells++
+		k.Tell(a)
+	}
+	if k.EvaluationsPerStep() != 10 || rows != 70 || tells != 14 {
+		t.Fatalf("evaluations per step %d, rows %d, Tells %d for 7 steps; want 10, 70, 14", k.EvaluationsPerStep(), rows, tells)
+	}
+}
+
+// A checkpointed overdamped midpoint kernel resumes bit for bit, at a step
+// boundary and between the two requests of a step.
+func TestMidpointOverdampedStateRoundTrip(t *testing.T) {
+	grad := kineticDiagGrad([]float64{2, 0.5})
+	for _, tells := range []int{20, 21} {
+		k := NewOverdampedMidpoint(2, 3, 0.05, []float64{1, -1}, NewSource(5))
+		a := NewAnswer(3, 2)
+		for range tells {
+			grad(k.Next().Points, 3, a.Grad)
+			k.Tell(a)
+		}
+		state, err := k.MarshalBinary()
+		if err != nil {
+			t.Fatal(err)
+		}
+		var r OverdampedMidpoint
+		if err := r.UnmarshalBinary(state); err != nil {
+			t.Fatal(err)
+		}
+		if r.Steps() != 10 || r.Dim() != 2 || r.Chains() != 3 || r.Step() != 0.05 || r.mid != (tells%2 == 1) {
+			t.Fatalf("restored header wrong: steps %d dim %d chains %d h %v mid %v", r.Steps(), r.Dim(), r.Chains(), r.Step(), r.mid)
+		}
+		ak, ar := NewAnswer(3, 2), NewAnswer(3, 2)
+		for n := range 31 {
+			qk, qr := k.Next(), r.Next()
+			for i := range qk.Points {
+				if math.Float64bits(qk.Points[i]) != math.Float64bits(qr.Points[i]) {
+					t.Fatalf("after %d Tells, Tell %d: requested points differ", tells, n)
+				}
+			}
+			grad(qk.Points, 3, ak.Grad)
+			grad(qr.Points, 3, ar.Grad)
+			if k.Tell(ak) != r.Tell(ar) {
+				t.Fatalf("after %d Tells, Tell %d: phases differ", tells, n)
+			}
+		}
+		sk, _ := k.MarshalBinary()
+		sr, _ := r.MarshalBinary()
+		if !bytes.Equal(sk, sr) {
+			t.Fatalf("after %d Tells: states differ after identical continuation", tells)
+		}
+		for _, bad := range [][]byte{state[:50], state[:len(state)-1], []byte(midpointMagic + "xxxxxxxx")} {
+			if err := r.UnmarshalBinary(bad); err == nil {
+				t.Fatalf("corrupt state of %d bytes accepted", len(bad))
+			}
+		}
+	}
+}
+
+func TestMidpointOverdampedAllocationsAndPanics(t *testing.T) {
+	k := NewOverdampedMidpoint(10, 8, 0.01, make([]float64, 10), NewSource(1))
+	a := NewAnswer(8, 10)
+	if allocs := testing.AllocsPerRun(100, func() {
+		k.Next()
+		k.Tell(a)
+		k.Next()
+		k.Tell(a)
+	}); allocs != 0 {
+		t.Fatalf("%v allocations per step", allocs)
+	}
+	for name, f := range map[string]func(){
+		"NaN step":        func() { NewOverdampedMidpoint(1, 1, math.NaN(), []float64{0}, NewSource(1)) },
+		"bad start":       func() { NewOverdampedMidpoint(2, 1, 0.1, []float64{0}, NewSource(1)) },
+		"short gradients": func() { NewOverdampedMidpoint(2, 1, 0.1, []float64{0, 0}, NewSource(1)).Tell(&Answer{}) },
+	} {
+		func() {
+			defer func() {
+				if recover() == nil {
+					t.Errorf("%s: no panic", name)
+				}
+			}()
+			f()
+		}()
+	}
+}
+
+// BenchmarkMidpointOverdampedStep reports the cost of one full overdamped
+// midpoint step (both requests) over all chains.
+func BenchmarkMidpointOverdampedStep(b *testing.B) {
+	for _, p := range []int{10, 100, 1000} {
+		for _, c := range []int{8, 64} {
+			b.Run(fmt.Sprintf("p=%d/chains=%d", p, c), func(b *testing.B) {
+				k := NewOverdampedMidpoint(p, c, 0.01, make([]float64, p), NewSource(1))
+				a := NewAnswer(c, p)
+				b.ReportAllocs()
+				for b.Loop() {
+					k.Next()
+					k.Tell(a)
+					k.Next()
+					k.Tell(a)
+				}
+				b.ReportMetric(float64(b.Elapsed().Nanoseconds())/float64(b.N)/float64(p*c), "ns/coord")
+			})
+		}
+	}
+}
