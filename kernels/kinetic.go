@@ -42,6 +42,8 @@ type Kinetic struct {
 	rng         *rand.Rand
 }
 
+var _ Kernel = (*Kinetic)(nil)
+
 // NewKinetic returns a Kinetic kernel for chains chains in dimension dim
 // with step h, friction gamma (γ) and inverse mass u, started at positions
 // start and velocities velocity (each chains×dim values, or dim values

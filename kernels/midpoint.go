@@ -58,6 +58,8 @@ type Midpoint struct {
 	rng                *rand.Rand
 }
 
+var _ Kernel = (*Midpoint)(nil)
+
 // NewMidpoint returns a Midpoint kernel for chains chains in dimension dim
 // with step h and inverse mass u, started at positions start and
 // velocities velocity (each chains×dim values, or dim values shared by
@@ -297,6 +299,8 @@ type OverdampedMidpoint struct {
 	src          *rand.PCG
 	rng          *rand.Rand
 }
+
+var _ Kernel = (*OverdampedMidpoint)(nil)
 
 // NewOverdampedMidpoint returns an OverdampedMidpoint kernel for chains
 // chains in dimension dim with step h, started at start (chains×dim
