@@ -1,0 +1,269 @@
+package kernels
+
+import (
+	"encoding/binary"
+	"errors"
+	"fmt"
+	"math"
+	"math/rand/v2"
+)
+
+// Kinetic is underdamped (kinetic) Langevin over a batch of chains,
+// integrated exactly over each step with the gradient frozen at the step's
+// start (Cheng, Chatterji, Bartlett & Jordan, COLT 2018; THEORY.md §4.1).
+// The diffusion is
+//
+//	dv = −γ v dt + u ∇log π(x) dt + √(2γu) dB,   dx = v dt
+//
+// whose invariant law is π(x)·N(v; 0, uI). With G = ∇log π(x_k),
+// E = e^{−γh} and c = (1 − E)/γ, one step is, per coordinate,
+//
+//	x_{k+1} = x_k + c·v_k + (u/γ)(h − c)·G + L11·z1
+//	v_{k+1} = E·v_k + u·c·G + L21·z1 + L22·z2,   z1, z2 ~ N(0, 1)
+//
+// where L is the lower Cholesky factor of the step's 2×2 noise covariance
+//
+//	Var x = (u/γ)[2h − (4/γ)(1 − E) + (1/γ)(1 − E²)]
+//	Cov   = (u/γ)(1 − E)²
+//	Var v = u(1 − E²)
+//
+// computed once. Each step asks for one gradient per chain, all chains in
+// one request. The velocities are kernel state; Positions reports x only.
+// The normals are drawn chain by chain, coordinate by coordinate, z1 then
+// z2, from the injected stream.
+type Kinetic struct {
+	dim, chains int
+	h, gamma, u float64
+	c           kineticCoef
+	steps       int
+	x, v        []float64 // chains×dim positions and velocities
+	req         Request
+	src         *rand.PCG
+	rng         *rand.Rand
+}
+
+var _ Kernel = (*Kinetic)(nil)
+
+// NewKinetic returns a Kinetic kernel for chains chains in dimension dim
+// with step h, friction gamma (γ) and inverse mass u, started at positions
+// start and velocities velocity (each chains×dim values, or dim values
+// shared by every chain), drawing its noise from src.
+//
+// A zero gamma means 2 and a zero u means 1. Cheng et al. take γ = 2 and
+// u = 1/M with M the Lipschitz constant of ∇log π; u = 1 is that choice
+// for a target whose Hessian is bounded by the identity, and a caller with
+// an estimate of M (THEORY.md §12) should pass its inverse. A nil velocity
+// starts every chain at rest (v = 0, as in the step rule of THEORY.md
+// §4.2). It panics on a non-positive or non-finite h, a negative or
+// non-finite gamma or u, or a start or velocity of the wrong length:
+// callers validate data from clients before building a kernel.
+func NewKinetic(dim, chains int, h, gamma, u float64, start, velocity []float64, src *rand.PCG) *Kinetic {
+	if dim < 1 || chains < 1 {
+		panic(fmt.Sprintf("kernels: Kinetic with dim %d, chains %d", dim, chains))
+	}
+	if gamma == 0 {
+		gamma = 2
+	}
+	if u == 0 {
+		u = 1
+	}
+	if !kineticPositive(h) || !kineticPositive(gamma) || !kineticPositive(u) {
+		panic(fmt.Sprintf("kernels: Kinetic step %v, friction %v, inverse mass %v", h, gamma, u))
+	}
+	k := &Kinetic{dim: dim, chains: chains, h: h, gamma: gamma, u: u, src: src, rng: rand.New(src)}
+	k.c = newKineticCoef(gamma, u, h)
+	k.x = broadcastStart(start, dim, chains)
+	if velocity == nil {
+		k.v = make([]float64, dim*chains)
+	} else {
+		k.v = broadcastStart(velocity, dim, chains)
+	}
+	k.req = Request{Need: NeedGradient, Rows: chains, Points: k.x, Chain: chainIndex(chains)}
+	return k
+}
+
+// Dim implements Kernel.
+func (k *Kinetic) Dim() int { return k.dim }
+
+// Chains implements Kernel.
+func (k *Kinetic) Chains() int { return k.chains }
+
+// Steps implements Kernel.
+func (k *Kinetic) Steps() int { return k.steps }
+
+// Step returns the step size h.
+func (k *Kinetic) Step() float64 { return k.h }
+
+// Friction returns γ.
+func (k *Kinetic) Friction() float64 { return k.gamma }
+
+// InverseMass returns u.
+func (k *Kinetic) InverseMass() float64 { return k.u }
+
+// EvaluationsPerStep implements Kernel: one gradient per chain.
+func (k *Kinetic) EvaluationsPerStep() int { return k.chains }
+
+// Positions implements Kernel: the positions x only.
+func (k *Kinetic) Positions() []float64 { return k.x }
+
+// Velocities returns the current velocities of every chain, Chains×Dim
+// values, row-major. The slice belongs to the kernel: read it before the
+// next Tell and do not modify it.
+func (k *Kinetic) Velocities() []float64 { return k.v }
+
+// Next implements Kernel: the gradient at every chain's current position.
+func (k *Kinetic) Next() *Request { return &k.req }
+
+// Tell implements Kernel. Every call completes a step.
+func (k *Kinetic) Tell(a *Answer) bool {
+	if len(a.Grad) < len(k.x) {
+		panic(fmt.Sprintf("kernels: Kinetic answer has %d gradient values, want %d", len(a.Grad), len(k.x)))
+	}
+	g := a.Grad[:len(k.x)]
+	v := k.v[:len(k.x)]
+	c := &k.c
+	for i, x := range k.x {
+		z1 := k.rng.NormFloat64()
+		z2 := k.rng.NormFloat64()
+		vi := v[i]
+		k.x[i] = x + c.c*vi + c.ax*g[i] + c.l11*z1
+		v[i] = c.e*vi + c.av*g[i] + c.l21*z1 + c.l22*z2
+	}
+	k.steps++
+	return true
+}
+
+const kineticMagic = "sluice.kinetic.v1"
+
+// MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
+// step, friction, inverse mass, completed steps, positions, velocities and
+// the random stream's state.
+func (k *Kinetic) MarshalBinary() ([]byte, error) {
+	rs, err := k.src.MarshalBinary()
+	if err != nil {
+		return nil, err
+	}
+	b := make([]byte, 0, len(kineticMagic)+6*8+16*len(k.x)+len(rs))
+	b = append(b, kineticMagic...)
+	b = binary.LittleEndian.AppendUint64(b, uint64(k.dim))
+	b = binary.LittleEndian.AppendUint64(b, uint64(k.chains))
+	b = kineticAppend(b, k.h, k.gamma, k.u)
+	b = binary.LittleEndian.AppendUint64(b, uint64(k.steps))
+	b = kineticAppend(b, k.x...)
+	b = kineticAppend(b, k.v...)
+	return append(b, rs...), nil
+}
+
+// UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
+// whole state, including dimension and number of chains.
+func (k *Kinetic) UnmarshalBinary(b []byte) error {
+	r := stateReader{b: b}
+	if !r.magic(kineticMagic) {
+		return errors.New("kernels: not a Kinetic state")
+	}
+	dim, chains := int(r.u64()), int(r.u64())
+	h, gamma, u := kineticFloat(&r), kineticFloat(&r), kineticFloat(&r)
+	steps := int(r.u64())
+	if r.err != nil || !kineticFits(dim, chains, 2, len(b)) || steps < 0 ||
+		!kineticPositive(h) || !kineticPositive(gamma) || !kineticPositive(u) {
+		return errors.New("kernels: corrupt Kinetic state")
+	}
+	x := r.floats(dim * chains)
+	v := r.floats(dim * chains)
+	if r.err != nil {
+		return errors.New("kernels: corrupt Kinetic state")
+	}
+	src := &rand.PCG{}
+	if err := src.UnmarshalBinary(r.rest()); err != nil {
+		return fmt.Errorf("kernels: Kinetic random state: %w", err)
+	}
+	*k = Kinetic{dim: dim, chains: chains, h: h, gamma: gamma, u: u, c: newKineticCoef(gamma, u, h),
+		steps: steps, x: x, v: v, src: src, rng: rand.New(src)}
+	k.req = Request{Need: NeedGradient, Rows: chains, Points: k.x, Chain: chainIndex(chains)}
+	return nil
+}
+
+// kineticCoef holds the coefficients of one frozen-gradient kinetic step
+// of length h (THEORY.md §4.1), with G = ∇log π:
+//
+//	x' = x + c·v + ax·G + l11·z1
+//	v' = e·v + av·G + l21·z1 + l22·z2
+//
+// and the noise covariance (varX, cov, varV) that l factors.
+type kineticCoef struct {
+	e, c, ax, av    float64
+	varX, cov, varV float64
+	l11, l21, l22   float64
+}
+
+// newKineticCoef computes the step's coefficients for friction gamma,
+// inverse mass u and duration h ≥ 0. With y = γh, the two differences that
+// lose digits to cancellation for small y,
+//
+//	ψ(y) = y − (1 − e^{−y}) = Σ_{k≥2} (−1)^k y^k/k!
+//	φ(y) = 2y − 4(1 − e^{−y}) + (1 − e^{−2y}) = Σ_{k≥3} (−1)^{k+1} (2^k − 4) y^k/k!
+//
+// are summed from their series below y = 1/8 (evaluated directly they
+// lose about 6/y² and 2/y ulps), so that ax = uψ/γ² and Var x = uφ/γ² keep nearly full
+// relative precision for any step. A zero duration gives the identity map
+// with no noise.
+func newKineticCoef(gamma, u, h float64) kineticCoef {
+	y := gamma * h
+	if y == 0 {
+		return kineticCoef{e: 1}
+	}
+	omE := -math.Expm1(-y)  // 1 − E
+	omE2 := omE * (2 - omE) // 1 − E² = (1 − E)(1 + E)
+	var psi, phi float64
+	if y < 0.125 {
+		t, t2 := y, 2*y // y^k/k!, (2y)^k/k!
+		for n := 2; n <= 16; n++ {
+			t *= y / float64(n)
+			t2 *= 2 * y / float64(n)
+			if n%2 == 0 {
+				psi += t
+				phi -= t2 - 4*t
+			} else {
+				psi -= t
+				phi += t2 - 4*t
+			}
+		}
+	} else {
+		psi = y - omE
+		phi = 2*y - 4*omE + omE2
+	}
+	g2 := gamma * gamma
+	c := kineticCoef{
+		e:    1 - omE,
+		c:    omE / gamma,
+		ax:   u * psi / g2,
+		av:   u * omE / gamma,
+		varX: u * phi / g2,
+		cov:  u / gamma * omE * omE,
+		varV: u * omE2,
+	}
+	if c.varX > 0 {
+		c.l11 = math.Sqrt(c.varX)
+		c.l21 = c.cov / c.l11
+	}
+	c.l22 = math.Sqrt(math.Max(0, c.varV-c.l21*c.l21))
+	return c
+}
+
+func kineticPositive(v float64) bool { return v > 0 && !math.IsInf(v, 1) }
+
+// fitsState reports whether dim and chains are positive and arrays
+// vectors of dim×chains float64 values fit in n bytes, without overflow.
+func kineticFits(dim, chains, arrays, n int) bool {
+	return dim >= 1 && chains >= 1 && dim <= n/(8*arrays)/chains
+}
+
+func kineticAppend(b []byte, v ...float64) []byte {
+	for _, f := range v {
+		b = binary.LittleEndian.AppendUint64(b, math.Float64bits(f))
+	}
+	return b
+}
+
+// kineticFloat reads one float64 from r.
+func kineticFloat(r *stateReader) float64 { return math.Float64frombits(r.u64()) }

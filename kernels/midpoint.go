@@ -1,0 +1,460 @@
+package kernels
+
+import (
+	"encoding/binary"
+	"errors"
+	"fmt"
+	"math"
+	"math/rand/v2"
+)
+
+// Midpoint is the randomised midpoint method for kinetic Langevin (Shen &
+// Lee, NeurIPS 2019; THEORY.md §5.1) over a batch of chains, for the
+// diffusion of Kinetic with friction γ = 2:
+//
+//	dv = −2v dt + u ∇log π(x) dt + 2√u dB,   dx = v dt.
+//
+// Each step draws α ~ U[0, 1) per chain, sets a = αh, and with
+// G(·) = ∇log π(·) moves
+//
+//	x_mid = x + ½(1 − e^{−2a}) v + (u/2)(a − ½(1 − e^{−2a})) G(x) + W1
+//	x'    = x + ½(1 − e^{−2h}) v + (uh/2)(1 − e^{−2(h−a)}) G(x_mid) + W2
+//	v'    = e^{−2h} v + uh e^{−2(h−a)} G(x_mid) + W3
+//
+// where, on one Brownian path B over [0, h],
+//
+//	W1 = √u ∫₀ᵃ (1 − e^{−2(a−s)}) dB_s
+//	W2 = √u ∫₀ʰ (1 − e^{−2(h−s)}) dB_s
+//	W3 = 2√u ∫₀ʰ e^{−2(h−s)} dB_s.
+//
+// (W1, W2, W3) are drawn from four normals per coordinate with the exact
+// joint law of THEORY.md §5.1 [derived]: (X0, V0) is the frozen-force
+// kinetic noise (Kinetic's 2×2 law) over [0, a] and (X1, V1) over [a, h],
+// independent, and
+//
+//	W1 = X0,   W2 = X0 + X1 + ½(1 − e^{−2(h−a)}) V0,   W3 = e^{−2(h−a)} V0 + V1,
+//
+// which stays well conditioned for α near 0 or 1, where the 3×3
+// covariance is nearly singular.
+//
+// A step is two requests, all chains in each: the gradient at every
+// chain's position (Tell returns false), then at every chain's midpoint
+// (Tell returns true). Per chain the stream gives α, then z1…z4 for each
+// coordinate in turn (X0, V0 from z1, z2; X1, V1 from z3, z4), chain by
+// chain, all during the first Tell of the step.
+type Midpoint struct {
+	dim, chains int
+	h, u        float64
+	e, b        float64 // e^{−2h}, ½(1 − e^{−2h})
+	steps       int
+	mid         bool      // the step's first Tell is done; the midpoints are requested
+	x, v        []float64 // chains×dim positions and velocities at the last completed step
+	// Within a step: the midpoints, the parts of x' and v' not involving
+	// G(x_mid), and per chain the coefficients of G(x_mid) in x' and v'.
+	xmid, xnext, vnext []float64
+	cx, cv             []float64
+	reqX, reqMid       Request
+	src                *rand.PCG
+	rng                *rand.Rand
+}
+
+var _ Kernel = (*Midpoint)(nil)
+
+// NewMidpoint returns a Midpoint kernel for chains chains in dimension dim
+// with step h and inverse mass u, started at positions start and
+// velocities velocity (each chains×dim values, or dim values shared by
+// every chain), drawing α and the noise from src. The friction is 2. A
+// zero u means 1 (Shen & Lee, like Cheng et al., take u = 1/M with M the
+// Lipschitz constant of ∇log π; see NewKinetic). A nil velocity starts
+// every chain at rest. It panics on a non-positive or non-finite h, a
+// negative or non-finite u, or a start or velocity of the wrong length.
+func NewMidpoint(dim, chains int, h, u float64, start, velocity []float64, src *rand.PCG) *Midpoint {
+	if dim < 1 || chains < 1 {
+		panic(fmt.Sprintf("kernels: Midpoint with dim %d, chains %d", dim, chains))
+	}
+	if u == 0 {
+		u = 1
+	}
+	if !kineticPositive(h) || !kineticPositive(u) {
+		panic(fmt.Sprintf("kernels: Midpoint step %v, inverse mass %v", h, u))
+	}
+	x := broadcastStart(start, dim, chains)
+	v := make([]float64, dim*chains)
+	if velocity != nil {
+		v = broadcastStart(velocity, dim, chains)
+	}
+	k := &Midpoint{dim: dim, chains: chains, h: h, u: u, x: x, v: v, src: src}
+	k.init()
+	return k
+}
+
+// init sets the derived fields and buffers from dim, chains, h, u, x, v
+// and src, keeping any buffers already present.
+func (k *Midpoint) init() {
+	n := k.dim * k.chains
+	k.e = math.Exp(-2 * k.h)
+	k.b = -math.Expm1(-2*k.h) / 2
+	k.rng = rand.New(k.src)
+	if k.xmid == nil {
+		k.xmid, k.xnext, k.vnext = make([]float64, n), make([]float64, n), make([]float64, n)
+		k.cx, k.cv = make([]float64, k.chains), make([]float64, k.chains)
+	}
+	idx := chainIndex(k.chains)
+	k.reqX = Request{Need: NeedGradient, Rows: k.chains, Points: k.x, Chain: idx}
+	k.reqMid = Request{Need: NeedGradient, Rows: k.chains, Points: k.xmid, Chain: idx}
+}
+
+// Dim implements Kernel.
+func (k *Midpoint) Dim() int { return k.dim }
+
+// Chains implements Kernel.
+func (k *Midpoint) Chains() int { return k.chains }
+
+// Steps implements Kernel.
+func (k *Midpoint) Steps() int { return k.steps }
+
+// Step returns the step size h.
+func (k *Midpoint) Step() float64 { return k.h }
+
+// InverseMass returns u.
+func (k *Midpoint) InverseMass() float64 { return k.u }
+
+// EvaluationsPerStep implements Kernel: two gradients per chain.
+func (k *Midpoint) EvaluationsPerStep() int { return 2 * k.chains }
+
+// Positions implements Kernel: the positions x at the last completed
+// step (also between the two requests of a step).
+func (k *Midpoint) Positions() []float64 { return k.x }
+
+// Velocities returns the velocities at the last completed step, Chains×Dim
+// values, row-major. The slice belongs to the kernel: read it before the
+// next Tell and do not modify it.
+func (k *Midpoint) Velocities() []float64 { return k.v }
+
+// Next implements Kernel: the gradient at every chain's position, then at
+// every chain's midpoint.
+func (k *Midpoint) Next() *Request {
+	if k.mid {
+		return &k.reqMid
+	}
+	return &k.reqX
+}
+
+// Tell implements Kernel. The first call of a step draws α and the noise
+// and sets the midpoints; the second completes the step.
+func (k *Midpoint) Tell(a *Answer) bool {
+	n := len(k.x)
+	if len(a.Grad) < n {
+		panic(fmt.Sprintf("kernels: Midpoint answer has %d gradient values, want %d", len(a.Grad), n))
+	}
+	g := a.Grad[:n]
+	if k.mid {
+		xn, vn := k.xnext[:n], k.vnext[:n]
+		for c := range k.chains {
+			cx, cv := k.cx[c], k.cv[c]
+			lo, hi := c*k.dim, (c+1)*k.dim
+			for i := lo; i < hi; i++ {
+				k.x[i] = xn[i] + cx*g[i]
+				k.v[i] = vn[i] + cv*g[i]
+			}
+		}
+		k.mid = false
+		k.steps++
+		return true
+	}
+	h, u, e, b := k.h, k.u, k.e, k.b
+	for c := range k.chains {
+		a := k.rng.Float64() * h
+		rest := h - a
+		s0 := newKineticCoef(2, u, a)    // [0, a]: x_mid's coefficients and (X0, V0)
+		s1 := newKineticCoef(2, u, rest) // [a, h]: (X1, V1); s1.e = e^{−2(h−a)}, s1.c = ½(1 − e^{−2(h−a)})
+		k.cx[c] = u * h * s1.c
+		k.cv[c] = u * h * s1.e
+		lo, hi := c*k.dim, (c+1)*k.dim
+		x, v := k.x[lo:hi], k.v[lo:hi]
+		xm, xn, vn, gc := k.xmid[lo:hi], k.xnext[lo:hi], k.vnext[lo:hi], g[lo:hi]
+		for i, xi := range x {
+			z1 := k.rng.NormFloat64()
+			z2 := k.rng.NormFloat64()
+			z3 := k.rng.NormFloat64()
+			z4 := k.rng.NormFloat64()
+			w1, w2, w3 := midpointNoise(&s0, &s1, z1, z2, z3, z4)
+			vi := v[i]
+			xm[i] = xi + s0.c*vi + s0.ax*gc[i] + w1
+			xn[i] = xi + b*vi + w2
+			vn[i] = e*vi + w3
+		}
+	}
+	k.mid = true
+	return false
+}
+
+// midpointNoise returns (W1, W2, W3) from four standard normals, given
+// the frozen-force kinetic steps s0 over [0, a] and s1 over [a, h] with
+// friction 2: (X0, V0) from z1, z2 by s0's factor, (X1, V1) from z3, z4 by
+// s1's, W1 = X0, W2 = X0 + X1 + s1.c·V0, W3 = s1.e·V0 + V1 (s1.c =
+// ½(1 − e^{−2(h−a)}), s1.e = e^{−2(h−a)}).
+func midpointNoise(s0, s1 *kineticCoef, z1, z2, z3, z4 float64) (w1, w2, w3 float64) {
+	x0 := s0.l11 * z1
+	v0 := s0.l21*z1 + s0.l22*z2
+	x1 := s1.l11 * z3
+	v1 := s1.l21*z3 + s1.l22*z4
+	return x0, x0 + x1 + s1.c*v0, s1.e*v0 + v1
+}
+
+const midpointMagic = "sluice.midpoint.v1"
+
+// MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
+// step, inverse mass, completed steps, the within-step phase, positions,
+// velocities, between the two requests of a step the midpoints and
+// partial updates, and the random stream's state.
+func (k *Midpoint) MarshalBinary() ([]byte, error) {
+	rs, err := k.src.MarshalBinary()
+	if err != nil {
+		return nil, err
+	}
+	n := len(k.x)
+	b := make([]byte, 0, len(midpointMagic)+6*8+8*(5*n+2*k.chains)+len(rs))
+	b = append(b, midpointMagic...)
+	b = binary.LittleEndian.AppendUint64(b, uint64(k.dim))
+	b = binary.LittleEndian.AppendUint64(b, uint64(k.chains))
+	b = kineticAppend(b, k.h, k.u)
+	b = binary.LittleEndian.AppendUint64(b, uint64(k.steps))
+	var phase uint64
+	if k.mid {
+		phase = 1
+	}
+	b = binary.LittleEndian.AppendUint64(b, phase)
+	b = kineticAppend(b, k.x...)
+	b = kineticAppend(b, k.v...)
+	if k.mid {
+		b = kineticAppend(b, k.xmid...)
+		b = kineticAppend(b, k.xnext...)
+		b = kineticAppend(b, k.vnext...)
+		b = kineticAppend(b, k.cx...)
+		b = kineticAppend(b, k.cv...)
+	}
+	return append(b, rs...), nil
+}
+
+// UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
+// whole state, including dimension, number of chains and the phase within
+// a step.
+func (k *Midpoint) UnmarshalBinary(b []byte) error {
+	r := stateReader{b: b}
+	if !r.magic(midpointMagic) {
+		return errors.New("kernels: not a Midpoint state")
+	}
+	dim, chains := int(r.u64()), int(r.u64())
+	h, u := kineticFloat(&r), kineticFloat(&r)
+	steps, phase := int(r.u64()), r.u64()
+	if r.err != nil || !kineticFits(dim, chains, 2, len(b)) || steps < 0 || phase > 1 ||
+		!kineticPositive(h) || !kineticPositive(u) {
+		return errors.New("kernels: corrupt Midpoint state")
+	}
+	n := dim * chains
+	m := Midpoint{dim: dim, chains: chains, h: h, u: u, steps: steps, mid: phase == 1}
+	m.x, m.v = r.floats(n), r.floats(n)
+	if m.mid {
+		if !kineticFits(dim, chains, 5, len(b)) {
+			return errors.New("kernels: corrupt Midpoint state")
+		}
+		m.xmid, m.xnext, m.vnext = r.floats(n), r.floats(n), r.floats(n)
+		m.cx, m.cv = r.floats(chains), r.floats(chains)
+	}
+	if r.err != nil {
+		return errors.New("kernels: corrupt Midpoint state")
+	}
+	m.src = &rand.PCG{}
+	if err := m.src.UnmarshalBinary(r.rest()); err != nil {
+		return fmt.Errorf("kernels: Midpoint random state: %w", err)
+	}
+	m.init()
+	*k = m
+	return nil
+}
+
+// OverdampedMidpoint is the randomised midpoint method for overdamped
+// Langevin dθ = ∇log π(θ) dt + √2 dB (RLMC; Shen & Lee, NeurIPS 2019;
+// THEORY.md §5.2) over a batch of chains. Each step draws α ~ U[0, 1) per
+// chain and, with G(·) = ∇log π(·) and z1, z2 ~ N(0, 1) per coordinate,
+//
+//	B_{αh} = √(αh)·z1,   B_h = B_{αh} + √((1 − α)h)·z2
+//	y      = θ + αh·G(θ) + √2·B_{αh}
+//	θ'     = θ + h·G(y) + √2·B_h
+//
+// (one Brownian path: the two noises are correlated). A step is two
+// requests, all chains in each: the gradient at every chain's position
+// (Tell returns false), then at every chain's midpoint y (Tell returns
+// true). Per chain the stream gives α, then z1, z2 for each coordinate in
+// turn, chain by chain, during the first Tell of the step.
+type OverdampedMidpoint struct {
+	dim, chains  int
+	h            float64
+	steps        int
+	mid          bool      // the step's first Tell is done; the midpoints are requested
+	x            []float64 // chains×dim positions at the last completed step
+	y, xnext     []float64 // within a step: midpoints and θ + √2·B_h
+	reqX, reqMid Request
+	src          *rand.PCG
+	rng          *rand.Rand
+}
+
+var _ Kernel = (*OverdampedMidpoint)(nil)
+
+// NewOverdampedMidpoint returns an OverdampedMidpoint kernel for chains
+// chains in dimension dim with step h, started at start (chains×dim
+// values, or dim values shared by every chain), drawing α and the noise
+// from src. It panics on a non-positive or non-finite h or a start of the
+// wrong length.
+func NewOverdampedMidpoint(dim, chains int, h float64, start []float64, src *rand.PCG) *OverdampedMidpoint {
+	if dim < 1 || chains < 1 {
+		panic(fmt.Sprintf("kernels: OverdampedMidpoint with dim %d, chains %d", dim, chains))
+	}
+	if !kineticPositive(h) {
+		panic(fmt.Sprintf("kernels: OverdampedMidpoint step %v", h))
+	}
+	k := &OverdampedMidpoint{dim: dim, chains: chains, h: h, x: broadcastStart(start, dim, chains), src: src}
+	k.init()
+	return k
+}
+
+func (k *OverdampedMidpoint) init() {
+	n := k.dim * k.chains
+	k.rng = rand.New(k.src)
+	if k.y == nil {
+		k.y, k.xnext = make([]float64, n), make([]float64, n)
+	}
+	idx := chainIndex(k.chains)
+	k.reqX = Request{Need: NeedGradient, Rows: k.chains, Points: k.x, Chain: idx}
+	k.reqMid = Request{Need: NeedGradient, Rows: k.chains, Points: k.y, Chain: idx}
+}
+
+// Dim implements Kernel.
+func (k *OverdampedMidpoint) Dim() int { return k.dim }
+
+// Chains implements Kernel.
+func (k *OverdampedMidpoint) Chains() int { return k.chains }
+
+// Steps implements Kernel.
+func (k *OverdampedMidpoint) Steps() int { return k.steps }
+
+// Step returns the step size h.
+func (k *OverdampedMidpoint) Step() float64 { return k.h }
+
+// EvaluationsPerStep implements Kernel: two gradients per chain.
+func (k *OverdampedMidpoint) EvaluationsPerStep() int { return 2 * k.chains }
+
+// Positions implements Kernel: the positions at the last completed step
+// (also between the two requests of a step).
+func (k *OverdampedMidpoint) Positions() []float64 { return k.x }
+
+// Next implements Kernel: the gradient at every chain's position, then at
+// every chain's midpoint.
+func (k *OverdampedMidpoint) Next() *Request {
+	if k.mid {
+		return &k.reqMid
+	}
+	return &k.reqX
+}
+
+// Tell implements Kernel. The first call of a step draws α and the noise
+// and sets the midpoints; the second completes the step.
+func (k *OverdampedMidpoint) Tell(a *Answer) bool {
+	n := len(k.x)
+	if len(a.Grad) < n {
+		panic(fmt.Sprintf("kernels: OverdampedMidpoint answer has %d gradient values, want %d", len(a.Grad), n))
+	}
+	g := a.Grad[:n]
+	h := k.h
+	if k.mid {
+		xn := k.xnext[:n]
+		for i := range k.x {
+			k.x[i] = xn[i] + h*g[i]
+		}
+		k.mid = false
+		k.steps++
+		return true
+	}
+	y, xn := k.y[:n], k.xnext[:n]
+	for c := range k.chains {
+		alpha := k.rng.Float64()
+		ah := alpha * h
+		s1, s2 := math.Sqrt(ah), math.Sqrt(h-ah)
+		for i := c * k.dim; i < (c+1)*k.dim; i++ {
+			b1 := s1 * k.rng.NormFloat64()
+			bh := b1 + s2*k.rng.NormFloat64()
+			xi := k.x[i]
+			y[i] = xi + ah*g[i] + math.Sqrt2*b1
+			xn[i] = xi + math.Sqrt2*bh
+		}
+	}
+	k.mid = true
+	return false
+}
+
+const overdampedMidpointMagic = "sluice.midpoint-overdamped.v1"
+
+// MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
+// step, completed steps, the within-step phase, positions, between the two
+// requests of a step the midpoints and partial updates, and the random
+// stream's state.
+func (k *OverdampedMidpoint) MarshalBinary() ([]byte, error) {
+	rs, err := k.src.MarshalBinary()
+	if err != nil {
+		return nil, err
+	}
+	b := make([]byte, 0, len(overdampedMidpointMagic)+5*8+24*len(k.x)+len(rs))
+	b = append(b, overdampedMidpointMagic...)
+	b = binary.LittleEndian.AppendUint64(b, uint64(k.dim))
+	b = binary.LittleEndian.AppendUint64(b, uint64(k.chains))
+	b = kineticAppend(b, k.h)
+	b = binary.LittleEndian.AppendUint64(b, uint64(k.steps))
+	var phase uint64
+	if k.mid {
+		phase = 1
+	}
+	b = binary.LittleEndian.AppendUint64(b, phase)
+	b = kineticAppend(b, k.x...)
+	if k.mid {
+		b = kineticAppend(b, k.y...)
+		b = kineticAppend(b, k.xnext...)
+	}
+	return append(b, rs...), nil
+}
+
+// UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
+// whole state, including dimension, number of chains and the phase within
+// a step.
+func (k *OverdampedMidpoint) UnmarshalBinary(b []byte) error {
+	r := stateReader{b: b}
+	if !r.magic(overdampedMidpointMagic) {
+		return errors.New("kernels: not an OverdampedMidpoint state")
+	}
+	dim, chains := int(r.u64()), int(r.u64())
+	h := kineticFloat(&r)
+	steps, phase := int(r.u64()), r.u64()
+	arrays := 1
+	if phase == 1 {
+		arrays = 3
+	}
+	if r.err != nil || !kineticFits(dim, chains, arrays, len(b)) || steps < 0 || phase > 1 || !kineticPositive(h) {
+		return errors.New("kernels: corrupt OverdampedMidpoint state")
+	}
+	n := dim * chains
+	m := OverdampedMidpoint{dim: dim, chains: chains, h: h, steps: steps, mid: phase == 1}
+	m.x = r.floats(n)
+	if m.mid {
+		m.y, m.xnext = r.floats(n), r.floats(n)
+	}
+	if r.err != nil {
+		return errors.New("kernels: corrupt OverdampedMidpoint state")
+	}
+	m.src = &rand.PCG{}
+	if err := m.src.UnmarshalBinary(r.rest()); err != nil {
+		return fmt.Errorf("kernels: OverdampedMidpoint random state: %w", err)
+	}
+	m.init()
+	*k = m
+	return nil
+}
