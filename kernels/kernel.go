@@ -124,6 +124,15 @@ type Preparer interface {
 	Prepare()
 }
 
+// Scorer is implemented by kernels that know ∇log π at their current
+// positions once a step completes (MALA keeps it from the accepted point).
+// Drivers use it for diagnostics that need scores at the draws; for other
+// kernels they pair draws with the gradients asked at them next.
+type Scorer interface {
+	// Scores returns Chains×Dim values, valid until the next Tell.
+	Scores() []float64
+}
+
 // NewSource returns the random stream every kernel built from seed uses.
 // Fixing this map from seed to stream is what makes a session over any
 // transport reproduce an in-process run bit for bit.

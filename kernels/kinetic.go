@@ -164,7 +164,7 @@ func (k *Kinetic) UnmarshalBinary(b []byte) error {
 	dim, chains := int(r.u64()), int(r.u64())
 	h, gamma, u := kineticFloat(&r), kineticFloat(&r), kineticFloat(&r)
 	steps := int(r.u64())
-	if r.err != nil || !kineticFits(dim, chains, 2, len(b)) || steps < 0 ||
+	if r.err != nil || !stateFits(dim, chains, 2, len(b)) || steps < 0 ||
 		!kineticPositive(h) || !kineticPositive(gamma) || !kineticPositive(u) {
 		return errors.New("kernels: corrupt Kinetic state")
 	}
@@ -254,7 +254,7 @@ func kineticPositive(v float64) bool { return v > 0 && !math.IsInf(v, 1) }
 
 // fitsState reports whether dim and chains are positive and arrays
 // vectors of dim×chains float64 values fit in n bytes, without overflow.
-func kineticFits(dim, chains, arrays, n int) bool {
+func stateFits(dim, chains, arrays, n int) bool {
 	return dim >= 1 && chains >= 1 && dim <= n/(8*arrays)/chains
 }
 

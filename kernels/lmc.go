@@ -142,7 +142,7 @@ func (k *LMC) UnmarshalBinary(b []byte) error {
 	dim, chains := int(r.u64()), int(r.u64())
 	h := math.Float64frombits(r.u64())
 	steps := int(r.u64())
-	if r.err != nil || dim < 1 || chains < 1 || dim*chains > len(b)/8 || !(h > 0) {
+	if r.err != nil || !stateFits(dim, chains, 1, len(b)) || !(h > 0) {
 		return errors.New("kernels: corrupt LMC state")
 	}
 	x := r.floats(dim * chains)

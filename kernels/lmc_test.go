@@ -309,3 +309,18 @@ func TestLMCPrepareIsInvisible(t *testing.T) {
 		t.Fatalf("%v allocations per prepared step", allocs)
 	}
 }
+
+// A corrupt state claiming a huge dimension is refused, not allocated.
+func TestLMCStateHugeDimensionRefused(t *testing.T) {
+	k := kernels.NewLMC(1, 1, 0.1, []float64{0}, kernels.NewSource(1))
+	b, _ := k.MarshalBinary()
+	head := len("sluice.lmc.v1")
+	for i := range 8 {
+		b[head+i], b[head+8+i] = 0, 0
+	}
+	b[head+4], b[head+8+4] = 1, 1 // dim = chains = 2³²
+	var r kernels.LMC
+	if err := r.UnmarshalBinary(b); err == nil {
+		t.Fatal("state with dim = chains = 2³² accepted")
+	}
+}

@@ -248,7 +248,7 @@ func (k *Midpoint) UnmarshalBinary(b []byte) error {
 	dim, chains := int(r.u64()), int(r.u64())
 	h, u := kineticFloat(&r), kineticFloat(&r)
 	steps, phase := int(r.u64()), r.u64()
-	if r.err != nil || !kineticFits(dim, chains, 2, len(b)) || steps < 0 || phase > 1 ||
+	if r.err != nil || !stateFits(dim, chains, 2, len(b)) || steps < 0 || phase > 1 ||
 		!kineticPositive(h) || !kineticPositive(u) {
 		return errors.New("kernels: corrupt Midpoint state")
 	}
@@ -256,7 +256,7 @@ func (k *Midpoint) UnmarshalBinary(b []byte) error {
 	m := Midpoint{dim: dim, chains: chains, h: h, u: u, steps: steps, mid: phase == 1}
 	m.x, m.v = r.floats(n), r.floats(n)
 	if m.mid {
-		if !kineticFits(dim, chains, 5, len(b)) {
+		if !stateFits(dim, chains, 5, len(b)) {
 			return errors.New("kernels: corrupt Midpoint state")
 		}
 		m.xmid, m.xnext, m.vnext = r.floats(n), r.floats(n), r.floats(n)
@@ -438,7 +438,7 @@ func (k *OverdampedMidpoint) UnmarshalBinary(b []byte) error {
 	if phase == 1 {
 		arrays = 3
 	}
-	if r.err != nil || !kineticFits(dim, chains, arrays, len(b)) || steps < 0 || phase > 1 || !kineticPositive(h) {
+	if r.err != nil || !stateFits(dim, chains, arrays, len(b)) || steps < 0 || phase > 1 || !kineticPositive(h) {
 		return errors.New("kernels: corrupt OverdampedMidpoint state")
 	}
 	n := dim * chains
