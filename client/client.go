@@ -39,6 +39,8 @@ type Spec struct {
 	// Wants are accuracy targets; the session ends with TargetMet once
 	// all hold.
 	Wants Wants
+	// Friction and InverseMass tune the kinetic kernels (0: defaults).
+	Friction, InverseMass float64
 }
 
 // Curvature declares m·I ⪯ ∇²(−log π) ⪯ M·I; StartDistance bounds
@@ -281,6 +283,7 @@ func registerFrame(spec Spec, limit int64) *sluicev1.SessionRequest {
 		ProgressEverySteps: spec.ProgressEverySteps, ProgressIntervalSeconds: spec.ProgressInterval.Seconds(),
 		Seed: spec.Seed, Names: spec.Names, MaxMessageBytes: limit,
 		Curvature: curvatureToWire(spec.Curvature), Wants: wantsToWire(spec.Wants),
+		Friction: spec.Friction, InverseMass: spec.InverseMass,
 	}}}
 }
 

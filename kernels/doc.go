@@ -17,9 +17,19 @@
 //
 // Kernels here:
 //
-//	lmc   unadjusted Langevin (Euler–Maruyama of dθ = ∇log π(θ)dt + √2 dW):
-//	      θ_{k+1} = θ_k + h·∇log π(θ_k) + √(2h)·ξ_{k+1},  ξ ~ N(0, I_p)
-//	      one gradient per chain per step.
+//	lmc       unadjusted Langevin (Euler–Maruyama of dθ = ∇log π(θ)dt + √2 dW):
+//	          θ_{k+1} = θ_k + h·∇log π(θ_k) + √(2h)·ξ_{k+1},  ξ ~ N(0, I_p)
+//	          one gradient per chain per step.
+//	kinetic   underdamped Langevin with the exact integration of the
+//	          frozen-gradient step (Cheng, Chatterji, Bartlett & Jordan,
+//	          COLT 2018; THEORY.md §4.1); friction γ, inverse mass u;
+//	          velocities kept in state; one gradient per chain per step.
+//	midpoint  randomised midpoint for underdamped Langevin, γ = 2 (Shen &
+//	          Lee, NeurIPS 2019; THEORY.md §5.1); two gradients per chain
+//	          per step (position, then midpoint).
+//	midpoint-overdamped
+//	          randomised midpoint for overdamped Langevin (THEORY.md §5.2);
+//	          two gradients per chain per step.
 //
 // References: Dalalyan, JRSS B 79 (2017) 651–676; Durmus & Moulines,
 // Ann. Appl. Probab. 27 (2017); the project's THEORY.md §0.1.

@@ -30,6 +30,8 @@ func specFromWire(r *sluicev1.Register) (session.Spec, error) {
 		MaxKSD: w.GetMaxKsd(), Eps: w.GetEps(), Metric: metricFromWire[w.GetMetric()]}
 	return session.Spec{
 		Curvature:          curv,
+		Friction:           r.GetFriction(),
+		InverseMass:        r.GetInverseMass(),
 		Wants:              wants,
 		Dim:                int(r.GetDim()),
 		Chains:             int(r.GetChains()),

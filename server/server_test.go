@@ -72,47 +72,79 @@ func evaluator(tg targets.Target) client.Evaluator {
 	}
 }
 
+// inProcess builds each kernel exactly as the engine does for a spec with
+// no curvature declared (friction 2, inverse mass 1).
+var inProcess = map[string]func(dim, chains int, h float64, start []float64, seed uint64) kernels.Kernel{
+	"lmc": func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
+		return kernels.NewLMC(d, c, h, x, kernels.NewSource(seed))
+	},
+	"kinetic": func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
+		return kernels.NewKinetic(d, c, h, 0, 0, x, nil, kernels.NewSource(seed))
+	},
+	"midpoint": func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
+		return kernels.NewMidpoint(d, c, h, 0, x, nil, kernels.NewSource(seed))
+	},
+	"midpoint-overdamped": func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
+		return kernels.NewOverdampedMidpoint(d, c, h, x, kernels.NewSource(seed))
+	},
+}
+
 // Transport is transparent: with the same seed, the draws of a session
 // over gRPC (bufconn) are bit-identical to driving the same kernel
-// in-process with the same target, whole or split into small messages.
+// in-process with the same target, whole or split into small messages,
+// for every kernel; and every kernel's evaluations are counted exactly
+// (THEORY.md §13: one gradient per chain per step, two for the midpoint
+// kernels).
 func TestTransportIsTransparent(t *testing.T) {
 	conn, _ := start(t, server.Options{})
 	tg := gaussian2D(t)
 	const chains, steps = 8, 300
-	for _, limit := range []int64{0, 1024 + 3*(8*3+16)} { // default, and 3 rows per message
-		spec := client.Spec{Dim: 2, Chains: chains, Start: []float64{0, 0}, Step: 0.2, Seed: 2024,
-			BurnIn: 0, DrawsPerChain: steps, MaxMessageBytes: limit}
-		var got []float64
-		var seqs int
-		sum, err := client.Run(testCtx(t), conn, spec, evaluator(tg), client.OnDraws(func(d *client.Draws) {
-			got = append(got, d.Values...)
-			seqs++
-		}))
-		if err != nil {
-			t.Fatal(err)
-		}
-		if sum.Reason != client.DrawsCollected || sum.DrawsReceived != chains*steps {
-			t.Fatalf("limit %d: reason %v, %d draws", limit, sum.Reason, sum.DrawsReceived)
-		}
-		k := kernels.NewLMC(2, chains, 0.2, []float64{0, 0}, kernels.NewSource(2024))
-		a := kernels.NewAnswer(chains, 2)
-		var want []float64
-		for range steps {
-			req := k.Next()
-			targets.EvalBatch(tg, req.Points, req.Rows, a.Grad, nil)
-			k.Tell(a)
-			want = append(want, k.Positions()...)
-		}
-		if len(got) != len(want) {
-			t.Fatalf("limit %d: %d values over gRPC, %d in-process", limit, len(got), len(want))
-		}
-		for i := range want {
-			if math.Float64bits(got[i]) != math.Float64bits(want[i]) {
-				t.Fatalf("limit %d: value %d differs: %v over gRPC, %v in-process", limit, i, got[i], want[i])
+	for name, build := range inProcess {
+		for _, limit := range []int64{0, 1024 + 3*(8*3+16)} { // default, and 3 rows per message
+			spec := client.Spec{Dim: 2, Chains: chains, Kernel: name, Start: []float64{0, 0}, Step: 0.2, Seed: 2024,
+				BurnIn: 0, DrawsPerChain: steps, MaxMessageBytes: limit}
+			var got []float64
+			var seqs int
+			var rows int64
+			ev := func(ctx context.Context, b *client.Batch) error {
+				rows += int64(b.Rows)
+				return evaluator(tg)(ctx, b)
 			}
-		}
-		if limit > 0 && seqs != steps*3 {
-			t.Fatalf("split run delivered %d draw frames, want %d", seqs, steps*3)
+			sum, err := client.Run(testCtx(t), conn, spec, ev, client.OnDraws(func(d *client.Draws) {
+				got = append(got, d.Values...)
+				seqs++
+			}))
+			if err != nil {
+				t.Fatal(err)
+			}
+			if sum.Reason != client.DrawsCollected || sum.DrawsReceived != chains*steps {
+				t.Fatalf("%s, limit %d: reason %v, %d draws", name, limit, sum.Reason, sum.DrawsReceived)
+			}
+			k := build(2, chains, 0.2, []float64{0, 0}, 2024)
+			perStep := int64(k.EvaluationsPerStep())
+			if rows != perStep*steps || sum.Progress.EvaluationsUsed != rows || sum.Registered.EvaluationsPerStep != perStep {
+				t.Fatalf("%s: evaluated %d rows, reported %d, per step %d; want %d", name, rows, sum.Progress.EvaluationsUsed, perStep, perStep*steps)
+			}
+			a := kernels.NewAnswer(chains, 2)
+			var want []float64
+			for k.Steps() < steps {
+				req := k.Next()
+				targets.EvalBatch(tg, req.Points, req.Rows, a.Grad, nil)
+				if k.Tell(a) {
+					want = append(want, k.Positions()...)
+				}
+			}
+			if len(got) != len(want) {
+				t.Fatalf("%s, limit %d: %d values over gRPC, %d in-process", name, limit, len(got), len(want))
+			}
+			for i := range want {
+				if math.Float64bits(got[i]) != math.Float64bits(want[i]) {
+					t.Fatalf("%s, limit %d: value %d differs: %v over gRPC, %v in-process", name, limit, i, got[i], want[i])
+				}
+			}
+			if limit > 0 && seqs != steps*3 {
+				t.Fatalf("%s: split run delivered %d draw frames, want %d", name, seqs, steps*3)
+			}
 		}
 	}
 }

@@ -81,9 +81,20 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 	} else if c > 0 && c < s.msgBytes {
 		s.msgBytes = c
 	}
+	src := kernels.NewSource(spec.Seed)
+	u := spec.InverseMass
+	if u == 0 && spec.Curvature != nil {
+		u = 1 / spec.Curvature.Smoothness
+	}
 	switch spec.Kernel {
 	case "lmc":
-		s.kernel = kernels.NewLMC(spec.Dim, spec.Chains, spec.Step, spec.Start, kernels.NewSource(spec.Seed))
+		s.kernel = kernels.NewLMC(spec.Dim, spec.Chains, spec.Step, spec.Start, src)
+	case "kinetic":
+		s.kernel = kernels.NewKinetic(spec.Dim, spec.Chains, spec.Step, spec.Friction, u, spec.Start, nil, src)
+	case "midpoint":
+		s.kernel = kernels.NewMidpoint(spec.Dim, spec.Chains, spec.Step, u, spec.Start, nil, src)
+	case "midpoint-overdamped":
+		s.kernel = kernels.NewOverdampedMidpoint(spec.Dim, spec.Chains, spec.Step, spec.Start, src)
 	default:
 		return nil, BadField("register.kernel", "unknown kernel %q", spec.Kernel)
 	}

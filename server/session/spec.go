@@ -47,6 +47,10 @@ type Spec struct {
 	Curvature *Curvature
 	// Wants are accuracy targets; zero fields are not targets.
 	Wants Wants
+	// Friction γ of the kinetic kernel (0: 2); InverseMass u of the
+	// kinetic and midpoint kernels (0: 1/M when Curvature is declared,
+	// else 1).
+	Friction, InverseMass float64
 }
 
 // Curvature declares m·I ⪯ ∇²f ⪯ M·I for the potential f = −log π.
@@ -124,7 +128,7 @@ func (l Limits) withDefaults() Limits {
 }
 
 // Kernels lists the kernel names a Spec may ask for.
-var Kernels = []string{"lmc"}
+var Kernels = []string{"lmc", "kinetic", "midpoint", "midpoint-overdamped"}
 
 func (s *Spec) validate(l Limits) error {
 	bad := func(field, format string, args ...any) error { return BadField("register."+field, format, args...) }
@@ -163,6 +167,14 @@ func (s *Spec) validate(l Limits) error {
 				chain = -1
 			}
 			return badValue("register.start", chain, i%s.Dim, "value %v is not finite", v)
+		}
+	}
+	for _, f := range []struct {
+		name string
+		v    float64
+	}{{"friction", s.Friction}, {"inverse_mass", s.InverseMass}} {
+		if math.IsNaN(f.v) || math.IsInf(f.v, 0) || f.v < 0 {
+			return bad(f.name, "must be finite and >= 0, got %v", f.v)
 		}
 	}
 	if err := s.validateAccuracy(); err != nil {

@@ -977,8 +977,17 @@ type Register struct {
 	Dim int32 `protobuf:"varint,1,opt,name=dim,proto3" json:"dim,omitempty"`
 	// Number of independent chains run side by side. Must be >= 1.
 	Chains int32 `protobuf:"varint,2,opt,name=chains,proto3" json:"chains,omitempty"`
-	// Sampling method. "lmc" (unadjusted Langevin, constant step) is the
-	// default when empty.
+	// Sampling method (default "lmc"):
+	//
+	//	"lmc"                 unadjusted Langevin, constant step; 1 gradient
+	//	                      per chain per step
+	//	"kinetic"             underdamped Langevin, exact integration of the
+	//	                      frozen-gradient step; 1 gradient per chain per
+	//	                      step (velocities stay on the server)
+	//	"midpoint"            randomised midpoint for underdamped Langevin;
+	//	                      2 gradients per chain per step
+	//	"midpoint-overdamped" randomised midpoint for overdamped Langevin;
+	//	                      2 gradients per chain per step
 	Kernel string `protobuf:"bytes,3,opt,name=kernel,proto3" json:"kernel,omitempty"`
 	// Start points, row-major float64 (see the array convention): either
 	// chains x dim (one row per chain) or 1 x dim (every chain starts there).
@@ -1029,7 +1038,13 @@ type Register struct {
 	Curvature *Curvature `protobuf:"bytes,17,opt,name=curvature,proto3" json:"curvature,omitempty"`
 	// Accuracy targets: the session finishes with FINISH_REASON_TARGET_MET
 	// as soon as every target set here holds.
-	Wants         *Wants `protobuf:"bytes,18,opt,name=wants,proto3" json:"wants,omitempty"`
+	Wants *Wants `protobuf:"bytes,18,opt,name=wants,proto3" json:"wants,omitempty"`
+	// Friction gamma > 0 of the kinetic kernel, in 1/time (0 means 2; the
+	// midpoint kernel uses 2 always).
+	Friction float64 `protobuf:"fixed64,19,opt,name=friction,proto3" json:"friction,omitempty"`
+	// Inverse mass u > 0 of the kinetic and midpoint kernels (0 means 1/M
+	// when curvature is declared, else 1).
+	InverseMass   float64 `protobuf:"fixed64,20,opt,name=inverse_mass,json=inverseMass,proto3" json:"inverse_mass,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -1188,6 +1203,20 @@ func (x *Register) GetWants() *Wants {
 		return x.Wants
 	}
 	return nil
+}
+
+func (x *Register) GetFriction() float64 {
+	if x != nil {
+		return x.Friction
+	}
+	return 0
+}
+
+func (x *Register) GetInverseMass() float64 {
+	if x != nil {
+		return x.InverseMass
+	}
+	return 0
 }
 
 // Curvature declares constants of the potential f = -log pi: f is m-strongly
@@ -2547,7 +2576,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x05draws\x18\x03 \x01(\v2\x10.sluice.v1.DrawsH\x00R\x05draws\x121\n" +
 	"\bprogress\x18\x04 \x01(\v2\x13.sluice.v1.ProgressH\x00R\bprogress\x121\n" +
 	"\bfinished\x18\x05 \x01(\v2\x13.sluice.v1.FinishedH\x00R\bfinishedB\a\n" +
-	"\x05frame\"\xdf\x04\n" +
+	"\x05frame\"\x9e\x05\n" +
 	"\bRegister\x12\x10\n" +
 	"\x03dim\x18\x01 \x01(\x05R\x03dim\x12\x16\n" +
 	"\x06chains\x18\x02 \x01(\x05R\x06chains\x12\x16\n" +
@@ -2570,7 +2599,9 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x05names\x18\x0f \x03(\tR\x05names\x12*\n" +
 	"\x11max_message_bytes\x18\x10 \x01(\x03R\x0fmaxMessageBytes\x122\n" +
 	"\tcurvature\x18\x11 \x01(\v2\x14.sluice.v1.CurvatureR\tcurvature\x12&\n" +
-	"\x05wants\x18\x12 \x01(\v2\x10.sluice.v1.WantsR\x05wants\"}\n" +
+	"\x05wants\x18\x12 \x01(\v2\x10.sluice.v1.WantsR\x05wants\x12\x1a\n" +
+	"\bfriction\x18\x13 \x01(\x01R\bfriction\x12!\n" +
+	"\finverse_mass\x18\x14 \x01(\x01R\vinverseMass\"}\n" +
 	"\tCurvature\x12)\n" +
 	"\x10strong_convexity\x18\x01 \x01(\x01R\x0fstrongConvexity\x12\x1e\n" +
 	"\n" +
