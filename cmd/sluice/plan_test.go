@@ -42,7 +42,9 @@ func TestPlanRPCMatchesLocalAndNamesBadFields(t *testing.T) {
 	addr := freeAddr(t)
 	done := make(chan int, 1)
 	sctx, stop := context.WithCancel(ctx)
-	go func() { done <- run(sctx, []string{"serve", "--addr", addr, "--log-level", "error"}, &strings.Builder{}, &strings.Builder{}) }()
+	go func() {
+		done <- run(sctx, []string{"serve", "--addr", addr, "--log-level", "error"}, &strings.Builder{}, &strings.Builder{})
+	}()
 	defer func() { stop(); <-done }()
 	conn, err := grpc.NewClient(addr, grpc.WithTransportCredentials(insecure.NewCredentials()))
 	if err != nil {
