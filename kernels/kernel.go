@@ -21,6 +21,11 @@ const (
 	// each point with that row's vector in Request.Vectors (dim values
 	// per point).
 	NeedHessianVector
+	// NeedFullData asks a client with stochastic (minibatch) gradients
+	// for the exact gradient over its whole data set at these points, as
+	// control-variate anchors need. Clients with exact gradients ignore
+	// it.
+	NeedFullData
 )
 
 // Has reports whether n includes q.
@@ -40,6 +45,11 @@ type Request struct {
 	// Vectors holds one vector per row (Rows×Dim) when Need includes
 	// NeedHessianVector.
 	Vectors []float64
+	// Group, when not nil, holds a minibatch group per row: rows with the
+	// same group ≥ 0 must be evaluated on the same minibatch (common
+	// random numbers), as control variates and curvature probes need;
+	// −1 means no constraint.
+	Group []int
 }
 
 // Answer holds the evaluations for one Request, in its row order.
