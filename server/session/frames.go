@@ -37,6 +37,12 @@ type Points struct {
 	Need                      kernels.Need
 	// Vectors holds Rows×Dim values when Need has NeedHessianVector.
 	Vectors []float64
+	// Groups holds a minibatch group per row, or is nil.
+	Groups []int
+	// FullData asks for exact gradients over the whole data set.
+	FullData bool
+	// Replicates is the gradient replicates per row the answer carries.
+	Replicates int
 }
 
 // Draws carries kept draws numbered Seq, Seq+1, ..., Seq+Rows−1.
@@ -82,6 +88,19 @@ type Progress struct {
 	Curvature CurvatureEstimate
 	// Targets reports each requested target.
 	Targets []TargetStatus
+	// Noise reports gradient noise (stochastic gradients only).
+	Noise *NoiseEstimate
+}
+
+// NoiseEstimate reports stochastic-gradient noise.
+type NoiseEstimate struct {
+	// Variance of one replicate's error per coordinate, and its standard
+	// error; −1 without replicates.
+	Variance, SE float64
+	Requests     int64
+	Declared     float64
+	Epochs       float64
+	Warning      string
 }
 
 // Reason says why a session ended.
@@ -143,7 +162,8 @@ type Evaluations struct {
 	RequestID      uint64
 	FirstRow, Rows int
 	Dim            int
-	// Grad holds Rows×Dim values; LogDensity holds Rows values; Hessian
+	// Grad holds Rows×Replicates×Dim values (Replicates as asked in the
+	// Points frame); LogDensity holds Rows values; Hessian
 	// holds Rows×Dim×Dim values; HessVec holds Rows×Dim values. Each is
 	// empty when not asked for.
 	Grad, LogDensity, Hessian, HessVec []float64

@@ -129,7 +129,7 @@ func TestBadHessiansNameTheField(t *testing.T) {
 // A row's size counts its dense Hessian: 8·(dim + 1 + dim²) bytes back
 // plus framing.
 func TestRowBytesCountsTheHessian(t *testing.T) {
-	if got := rowBytes(kernels.NeedGradient|kernels.NeedHessian, 1000); got != 8*(1000+1+1000*1000)+16 {
+	if got := rowBytes(kernels.NeedGradient|kernels.NeedHessian, 1000, 1); got != 8*(1000+1+1000*1000)+16 {
 		t.Fatalf("rowBytes %d", got)
 	}
 }

@@ -41,6 +41,7 @@ type Session struct {
 
 	guarantee  *guarantee // nil when no bound applies
 	mon        *monitor
+	noise      noiseMeter
 	epsSteps   int      // steps at which the bound meets Wants.Eps; −1 if never or not asked
 	log        *DrawLog // nil when followers are not served
 	draws      Draws    // reused frame
@@ -101,7 +102,7 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 	if s.partRows(s.kernel.Next().Need) < 1 {
 		return nil, &Error{Kind: TooLarge, Field: "register.dim", Chain: -1, Coord: -1,
 			Reason: fmt.Sprintf("one point of dimension %d with its answer (%d bytes for kernel %s) does not fit the message limit of %d bytes",
-				spec.Dim, rowBytes(s.kernel.Next().Need, spec.Dim), spec.Kernel, s.msgBytes)}
+				spec.Dim, rowBytes(s.kernel.Next().Need, spec.Dim, s.replicates(s.kernel.Next().Need)), spec.Kernel, s.msgBytes)}
 	}
 	if lim.FollowBuffer > 0 {
 		s.log = NewDrawLog(spec.Dim, min(lim.FollowBuffer, max(1, maxFollowBytes/(8*spec.Dim))))
@@ -187,8 +188,8 @@ func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) e
 			return end(TargetMet, "")
 		}
 		req := s.kernel.Next()
-		if m := s.spec.MaxEvaluations; m > 0 && s.used+int64(req.Rows) > m {
-			return end(BudgetSpent, fmt.Sprintf("the next request needs %d evaluations, %d left", req.Rows, m-s.used))
+		if m := s.spec.MaxEvaluations; m > 0 && s.used+s.cost(req.Need, req.Rows) > m {
+			return end(BudgetSpent, fmt.Sprintf("the next request needs %d evaluations, %d left", s.cost(req.Need, req.Rows), m-s.used))
 		}
 		s.requestID++
 		if err := s.sendPoints(req, send); err != nil {
@@ -234,7 +235,8 @@ func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) e
 			}
 			left--
 		}
-		s.used += int64(req.Rows)
+		s.used += s.cost(req.Need, req.Rows)
+		s.noise.request(req, s.spec.Noise)
 		s.mon.answered(req, s.answer)
 		if s.kernel.Tell(s.answer) {
 			pending = true
@@ -255,9 +257,9 @@ func (s *Session) keeps(step int64) bool {
 // rowBytes bounds the bytes one row costs in the larger of a Points frame
 // and its answer: the values, plus a few bytes of varint chain index and
 // framing.
-func rowBytes(need kernels.Need, dim int) int64 {
+func rowBytes(need kernels.Need, dim, reps int) int64 {
 	out := int64(8 * dim) // the point
-	back := int64(8 * (dim + 1))
+	back := int64(8 * (dim*reps + 1))
 	if need.Has(kernels.NeedHessian) {
 		back += int64(8 * dim * dim)
 	}
@@ -268,10 +270,29 @@ func rowBytes(need kernels.Need, dim int) int64 {
 	return max(out, back) + 16
 }
 
+// replicates is the gradient replicates per row a request needing need
+// gets back: the registered number, except for full-data requests.
+func (s *Session) replicates(need kernels.Need) int {
+	if need.Has(kernels.NeedFullData) || !s.spec.Noise.Stochastic {
+		return 1
+	}
+	return s.spec.Noise.Replicates
+}
+
+// cost is the evaluations a request of rows rows costs: each replicate
+// counts, and a full-data point counts N/n when both are declared.
+func (s *Session) cost(need kernels.Need, rows int) int64 {
+	n := s.spec.Noise
+	if need.Has(kernels.NeedFullData) && n.Stochastic && n.DataSize > 0 && n.MinibatchSize > 0 {
+		return int64(rows) * ((n.DataSize + n.MinibatchSize - 1) / n.MinibatchSize)
+	}
+	return int64(rows) * int64(s.replicates(need))
+}
+
 // partRows is how many rows fit one message for a request needing need.
 func (s *Session) partRows(need kernels.Need) int {
 	const overhead = 1024
-	return int((s.msgBytes - overhead) / rowBytes(need, s.spec.Dim))
+	return int((s.msgBytes - overhead) / rowBytes(need, s.spec.Dim, s.replicates(need)))
 }
 
 // parts is the number of Points frames a request of rows rows takes.
@@ -298,6 +319,11 @@ func (s *Session) sendPoints(req *kernels.Request, send func(Frame) error) error
 		if req.Need.Has(kernels.NeedHessianVector) {
 			f.Vectors = req.Vectors[lo*dim : hi*dim]
 		}
+		if req.Group != nil {
+			f.Groups = req.Group[lo:hi]
+		}
+		f.FullData = req.Need.Has(kernels.NeedFullData)
+		f.Replicates = s.replicates(req.Need)
 		if err := send(f); err != nil {
 			return err
 		}
@@ -326,15 +352,20 @@ func (s *Session) accept(req *kernels.Request, ev *Evaluations) *Error {
 		return BadField("evaluations.dim", "is %d, the session's dimension is %d", ev.Dim, dim)
 	}
 	if req.Need.Has(kernels.NeedGradient) {
-		if len(ev.Grad) != rows*dim {
-			return BadField("evaluations.gradients", "has %d values, want rows × dim = %d", len(ev.Grad), rows*dim)
+		reps := s.replicates(req.Need)
+		if len(ev.Grad) != rows*reps*dim {
+			return BadField("evaluations.gradients", "has %d values, want rows × replicates × dim = %d", len(ev.Grad), rows*reps*dim)
 		}
 		for i, v := range ev.Grad {
 			if math.IsNaN(v) || math.IsInf(v, 0) {
-				return badValue("evaluations.gradients", req.Chain[ev.FirstRow+i/dim], i%dim, "value %v is not finite", v)
+				return badValue("evaluations.gradients", req.Chain[ev.FirstRow+i/(dim*reps)], i%dim, "value %v is not finite", v)
 			}
 		}
-		copy(s.answer.Grad[ev.FirstRow*dim:], ev.Grad)
+		if reps == 1 {
+			copy(s.answer.Grad[ev.FirstRow*dim:], ev.Grad)
+		} else {
+			s.noise.replicates(s.answer.Grad[ev.FirstRow*dim:(ev.FirstRow+rows)*dim], ev.Grad, rows, reps, dim)
+		}
 	} else if len(ev.Grad) != 0 {
 		return BadField("evaluations.gradients", "must be empty: gradients were not asked for")
 	}
@@ -527,6 +558,11 @@ func (s *Session) progress(now time.Time) Progress {
 		p.EvaluationsPerSecond = float64(s.used) / sec
 	}
 	s.mon.measure(&p)
+	if s.spec.Noise.Stochastic {
+		n := s.noise.estimate(s.spec.Noise)
+		p.Noise = &n
+		s.updateNoise(n)
+	}
 	if s.guarantee != nil {
 		if b, err := s.guarantee.at(s.kernel.Steps()); err == nil {
 			p.Bound = &b

@@ -51,7 +51,24 @@ type Spec struct {
 	// kinetic and midpoint kernels (0: 1/M when Curvature is declared,
 	// else 1).
 	Friction, InverseMass float64
+	// Noise describes the client's gradients; the zero value means exact.
+	Noise Noise
 }
+
+// Noise describes stochastic gradients.
+type Noise struct {
+	Stochastic bool
+	// Variance is the declared σ² of one replicate's error per
+	// coordinate (0: not declared); Bias the declared δ.
+	Variance, Bias float64
+	// DataSize N and MinibatchSize n, for epochs (0: not given).
+	DataSize, MinibatchSize int64
+	// Replicates per point, ≥ 1 (0 means 1).
+	Replicates int
+}
+
+// exactOnly lists kernels whose correctness needs exact gradients.
+var exactOnly = map[string]bool{"mala": true, "ozaki": true}
 
 // Curvature declares m·I ⪯ ∇²f ⪯ M·I for the potential f = −log π.
 type Curvature struct {
@@ -177,6 +194,9 @@ func (s *Spec) validate(l Limits) error {
 			return bad(f.name, "must be finite and >= 0, got %v", f.v)
 		}
 	}
+	if err := s.validateNoise(); err != nil {
+		return err
+	}
 	if err := s.validateAccuracy(); err != nil {
 		return err
 	}
@@ -221,6 +241,36 @@ func (s *Spec) validate(l Limits) error {
 		for i := range s.Names {
 			s.Names[i] = fmt.Sprintf("theta[%d]", i)
 		}
+	}
+	return nil
+}
+
+func (s *Spec) validateNoise() error {
+	n := &s.Noise
+	finite := func(v float64) bool { return !math.IsNaN(v) && !math.IsInf(v, 0) }
+	switch {
+	case !finite(n.Variance) || n.Variance < 0:
+		return BadField("register.noise.variance", "must be finite and >= 0, got %v", n.Variance)
+	case !finite(n.Bias) || n.Bias < 0:
+		return BadField("register.noise.bias", "must be finite and >= 0, got %v", n.Bias)
+	case n.DataSize < 0:
+		return BadField("register.noise.data_size", "must be >= 0, got %d", n.DataSize)
+	case n.MinibatchSize < 0 || (n.DataSize > 0 && n.MinibatchSize > n.DataSize):
+		return BadField("register.noise.minibatch_size", "must be between 0 and data_size (%d), got %d", n.DataSize, n.MinibatchSize)
+	case n.Replicates < 0 || n.Replicates > 64:
+		return BadField("register.noise.replicates", "must be between 0 and 64, got %d", n.Replicates)
+	}
+	if n.Replicates == 0 {
+		n.Replicates = 1
+	}
+	if !n.Stochastic {
+		if n.Variance > 0 || n.Bias > 0 || n.Replicates > 1 {
+			return BadField("register.noise.kind", "variance, bias and replicates describe stochastic gradients: set kind to stochastic")
+		}
+		return nil
+	}
+	if exactOnly[s.Kernel] {
+		return BadField("register.noise.kind", "kernel %s needs exact gradients: its accept/reject step (or Hessian step) is wrong with noisy ones", s.Kernel)
 	}
 	return nil
 }

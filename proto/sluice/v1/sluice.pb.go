@@ -40,6 +40,58 @@ const (
 	_ = protoimpl.EnforceVersion(protoimpl.MaxVersion - 20)
 )
 
+// Whether gradients are exact.
+type GradientKind int32
+
+const (
+	// Same as GRADIENT_KIND_EXACT.
+	GradientKind_GRADIENT_KIND_UNSPECIFIED GradientKind = 0
+	GradientKind_GRADIENT_KIND_EXACT       GradientKind = 1
+	// Unbiased (or declared-bias) estimates of the gradient.
+	GradientKind_GRADIENT_KIND_STOCHASTIC GradientKind = 2
+)
+
+// Enum value maps for GradientKind.
+var (
+	GradientKind_name = map[int32]string{
+		0: "GRADIENT_KIND_UNSPECIFIED",
+		1: "GRADIENT_KIND_EXACT",
+		2: "GRADIENT_KIND_STOCHASTIC",
+	}
+	GradientKind_value = map[string]int32{
+		"GRADIENT_KIND_UNSPECIFIED": 0,
+		"GRADIENT_KIND_EXACT":       1,
+		"GRADIENT_KIND_STOCHASTIC":  2,
+	}
+)
+
+func (x GradientKind) Enum() *GradientKind {
+	p := new(GradientKind)
+	*p = x
+	return p
+}
+
+func (x GradientKind) String() string {
+	return protoimpl.X.EnumStringOf(x.Descriptor(), protoreflect.EnumNumber(x))
+}
+
+func (GradientKind) Descriptor() protoreflect.EnumDescriptor {
+	return file_sluice_v1_sluice_proto_enumTypes[0].Descriptor()
+}
+
+func (GradientKind) Type() protoreflect.EnumType {
+	return &file_sluice_v1_sluice_proto_enumTypes[0]
+}
+
+func (x GradientKind) Number() protoreflect.EnumNumber {
+	return protoreflect.EnumNumber(x)
+}
+
+// Deprecated: Use GradientKind.Descriptor instead.
+func (GradientKind) EnumDescriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{0}
+}
+
 // Distance in which a guaranteed bound is stated.
 type Metric int32
 
@@ -76,11 +128,11 @@ func (x Metric) String() string {
 }
 
 func (Metric) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[0].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[1].Descriptor()
 }
 
 func (Metric) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[0]
+	return &file_sluice_v1_sluice_proto_enumTypes[1]
 }
 
 func (x Metric) Number() protoreflect.EnumNumber {
@@ -89,7 +141,7 @@ func (x Metric) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use Metric.Descriptor instead.
 func (Metric) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{0}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{1}
 }
 
 // What to evaluate at each point of a Points frame (a bit set).
@@ -138,11 +190,11 @@ func (x Quantity) String() string {
 }
 
 func (Quantity) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[1].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[2].Descriptor()
 }
 
 func (Quantity) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[1]
+	return &file_sluice_v1_sluice_proto_enumTypes[2]
 }
 
 func (x Quantity) Number() protoreflect.EnumNumber {
@@ -151,7 +203,7 @@ func (x Quantity) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use Quantity.Descriptor instead.
 func (Quantity) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{1}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{2}
 }
 
 // Where a session is.
@@ -194,11 +246,11 @@ func (x State) String() string {
 }
 
 func (State) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[2].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[3].Descriptor()
 }
 
 func (State) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[2]
+	return &file_sluice_v1_sluice_proto_enumTypes[3]
 }
 
 func (x State) Number() protoreflect.EnumNumber {
@@ -207,7 +259,7 @@ func (x State) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use State.Descriptor instead.
 func (State) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{2}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{3}
 }
 
 // Where a bound's curvature constants come from.
@@ -247,11 +299,11 @@ func (x BoundSource) String() string {
 }
 
 func (BoundSource) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[3].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[4].Descriptor()
 }
 
 func (BoundSource) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[3]
+	return &file_sluice_v1_sluice_proto_enumTypes[4]
 }
 
 func (x BoundSource) Number() protoreflect.EnumNumber {
@@ -260,7 +312,7 @@ func (x BoundSource) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use BoundSource.Descriptor instead.
 func (BoundSource) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{3}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{4}
 }
 
 // Why a session ended.
@@ -319,11 +371,11 @@ func (x FinishReason) String() string {
 }
 
 func (FinishReason) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[4].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[5].Descriptor()
 }
 
 func (FinishReason) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[4]
+	return &file_sluice_v1_sluice_proto_enumTypes[5]
 }
 
 func (x FinishReason) Number() protoreflect.EnumNumber {
@@ -332,7 +384,7 @@ func (x FinishReason) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use FinishReason.Descriptor instead.
 func (FinishReason) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{4}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{5}
 }
 
 // PlanRequest describes the target and the accuracy wanted.
@@ -1044,7 +1096,10 @@ type Register struct {
 	Friction float64 `protobuf:"fixed64,19,opt,name=friction,proto3" json:"friction,omitempty"`
 	// Inverse mass u > 0 of the kinetic and midpoint kernels (0 means 1/M
 	// when curvature is declared, else 1).
-	InverseMass   float64 `protobuf:"fixed64,20,opt,name=inverse_mass,json=inverseMass,proto3" json:"inverse_mass,omitempty"`
+	InverseMass float64 `protobuf:"fixed64,20,opt,name=inverse_mass,json=inverseMass,proto3" json:"inverse_mass,omitempty"`
+	// How the client's gradients are made: exact (the default) or
+	// stochastic (minibatches, Monte Carlo estimates, noisy simulators).
+	Noise         *GradientNoise `protobuf:"bytes,21,opt,name=noise,proto3" json:"noise,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -1219,6 +1274,110 @@ func (x *Register) GetInverseMass() float64 {
 	return 0
 }
 
+func (x *Register) GetNoise() *GradientNoise {
+	if x != nil {
+		return x.Noise
+	}
+	return nil
+}
+
+// GradientNoise describes stochastic gradients. With replicates >= 2 the
+// server measures the noise variance from the replicates' spread at every
+// step and reports it; the kernel is given their mean.
+type GradientNoise struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	Kind  GradientKind           `protobuf:"varint,1,opt,name=kind,proto3,enum=sluice.v1.GradientKind" json:"kind,omitempty"`
+	// Declared variance s^2 of one replicate's error per coordinate, in
+	// (units of the gradient)^2: E||g_hat - grad log pi||^2 = s^2 * dim.
+	// 0 means not declared.
+	Variance float64 `protobuf:"fixed64,2,opt,name=variance,proto3" json:"variance,omitempty"`
+	// Declared bias delta: ||E g_hat - grad log pi||^2 <= delta^2 * dim. No
+	// step size removes its effect; it is reported as its own bound term.
+	Bias float64 `protobuf:"fixed64,3,opt,name=bias,proto3" json:"bias,omitempty"`
+	// Data set size N and minibatch size n, for epoch accounting (0: not
+	// given). A full-data point then costs N/n evaluations.
+	DataSize      int64 `protobuf:"varint,4,opt,name=data_size,json=dataSize,proto3" json:"data_size,omitempty"`
+	MinibatchSize int64 `protobuf:"varint,5,opt,name=minibatch_size,json=minibatchSize,proto3" json:"minibatch_size,omitempty"`
+	// Independent gradient replicates the client returns per point (for
+	// example two minibatch gradients); 0 means 1. Each replicate counts as
+	// one evaluation in the budget.
+	Replicates    int32 `protobuf:"varint,6,opt,name=replicates,proto3" json:"replicates,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *GradientNoise) Reset() {
+	*x = GradientNoise{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *GradientNoise) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*GradientNoise) ProtoMessage() {}
+
+func (x *GradientNoise) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use GradientNoise.ProtoReflect.Descriptor instead.
+func (*GradientNoise) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{7}
+}
+
+func (x *GradientNoise) GetKind() GradientKind {
+	if x != nil {
+		return x.Kind
+	}
+	return GradientKind_GRADIENT_KIND_UNSPECIFIED
+}
+
+func (x *GradientNoise) GetVariance() float64 {
+	if x != nil {
+		return x.Variance
+	}
+	return 0
+}
+
+func (x *GradientNoise) GetBias() float64 {
+	if x != nil {
+		return x.Bias
+	}
+	return 0
+}
+
+func (x *GradientNoise) GetDataSize() int64 {
+	if x != nil {
+		return x.DataSize
+	}
+	return 0
+}
+
+func (x *GradientNoise) GetMinibatchSize() int64 {
+	if x != nil {
+		return x.MinibatchSize
+	}
+	return 0
+}
+
+func (x *GradientNoise) GetReplicates() int32 {
+	if x != nil {
+		return x.Replicates
+	}
+	return 0
+}
+
 // Curvature declares constants of the potential f = -log pi: f is m-strongly
 // convex and M-smooth, i.e. m*I <= Hessian of f <= M*I everywhere. Units:
 // 1/theta^2.
@@ -1238,7 +1397,7 @@ type Curvature struct {
 
 func (x *Curvature) Reset() {
 	*x = Curvature{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1250,7 +1409,7 @@ func (x *Curvature) String() string {
 func (*Curvature) ProtoMessage() {}
 
 func (x *Curvature) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1263,7 +1422,7 @@ func (x *Curvature) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Curvature.ProtoReflect.Descriptor instead.
 func (*Curvature) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{7}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{8}
 }
 
 func (x *Curvature) GetStrongConvexity() float64 {
@@ -1308,7 +1467,7 @@ type Wants struct {
 
 func (x *Wants) Reset() {
 	*x = Wants{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1320,7 +1479,7 @@ func (x *Wants) String() string {
 func (*Wants) ProtoMessage() {}
 
 func (x *Wants) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1333,7 +1492,7 @@ func (x *Wants) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Wants.ProtoReflect.Descriptor instead.
 func (*Wants) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{8}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{9}
 }
 
 func (x *Wants) GetMinBulkEss() float64 {
@@ -1405,7 +1564,7 @@ type Registered struct {
 
 func (x *Registered) Reset() {
 	*x = Registered{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1417,7 +1576,7 @@ func (x *Registered) String() string {
 func (*Registered) ProtoMessage() {}
 
 func (x *Registered) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1430,7 +1589,7 @@ func (x *Registered) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Registered.ProtoReflect.Descriptor instead.
 func (*Registered) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{9}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{10}
 }
 
 func (x *Registered) GetSessionId() string {
@@ -1511,14 +1670,24 @@ type Points struct {
 	TotalRows int32 `protobuf:"varint,8,opt,name=total_rows,json=totalRows,proto3" json:"total_rows,omitempty"`
 	// One vector per point, rows x dim, row-major float64, present only when
 	// QUANTITY_HESSIAN_VECTOR is asked: answer with H(point) * vector.
-	Vectors       []byte `protobuf:"bytes,9,opt,name=vectors,proto3" json:"vectors,omitempty"`
+	Vectors []byte `protobuf:"bytes,9,opt,name=vectors,proto3" json:"vectors,omitempty"`
+	// Minibatch group of each row (rows entries) or empty: rows with the same
+	// group >= 0 must be evaluated on the same minibatch (common random
+	// numbers); -1 means no constraint.
+	MinibatchGroups []int32 `protobuf:"varint,10,rep,packed,name=minibatch_groups,json=minibatchGroups,proto3" json:"minibatch_groups,omitempty"`
+	// Evaluate these points with the whole data set (exact gradients), as a
+	// control variate's anchor needs. Answer with one replicate.
+	FullData bool `protobuf:"varint,11,opt,name=full_data,json=fullData,proto3" json:"full_data,omitempty"`
+	// Gradient replicates per row the answer must carry (1 unless the client
+	// registered replicates >= 2 and full_data is false).
+	Replicates    int32 `protobuf:"varint,12,opt,name=replicates,proto3" json:"replicates,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
 
 func (x *Points) Reset() {
 	*x = Points{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1530,7 +1699,7 @@ func (x *Points) String() string {
 func (*Points) ProtoMessage() {}
 
 func (x *Points) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1543,7 +1712,7 @@ func (x *Points) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Points.ProtoReflect.Descriptor instead.
 func (*Points) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{10}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{11}
 }
 
 func (x *Points) GetRequestId() uint64 {
@@ -1609,6 +1778,27 @@ func (x *Points) GetVectors() []byte {
 	return nil
 }
 
+func (x *Points) GetMinibatchGroups() []int32 {
+	if x != nil {
+		return x.MinibatchGroups
+	}
+	return nil
+}
+
+func (x *Points) GetFullData() bool {
+	if x != nil {
+		return x.FullData
+	}
+	return false
+}
+
+func (x *Points) GetReplicates() int32 {
+	if x != nil {
+		return x.Replicates
+	}
+	return 0
+}
+
 // Evaluations answers one Points frame.
 type Evaluations struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -1620,8 +1810,9 @@ type Evaluations struct {
 	Rows int32 `protobuf:"varint,3,opt,name=rows,proto3" json:"rows,omitempty"`
 	// Columns per row: must equal dim.
 	Dim int32 `protobuf:"varint,4,opt,name=dim,proto3" json:"dim,omitempty"`
-	// Gradients of log pi at the points, rows x dim, row-major float64, all
-	// finite. Required when QUANTITY_GRADIENT was asked.
+	// Gradients of log pi at the points, rows x replicates x dim, row-major
+	// float64 (row r's replicate j is the (r*replicates + j)-th block of dim
+	// values), all finite. Required when QUANTITY_GRADIENT was asked.
 	Gradients []byte `protobuf:"bytes,5,opt,name=gradients,proto3" json:"gradients,omitempty"`
 	// log pi at the points (rows values, float64, finite). Required when
 	// QUANTITY_LOG_DENSITY was asked; must be empty otherwise.
@@ -1639,7 +1830,7 @@ type Evaluations struct {
 
 func (x *Evaluations) Reset() {
 	*x = Evaluations{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1651,7 +1842,7 @@ func (x *Evaluations) String() string {
 func (*Evaluations) ProtoMessage() {}
 
 func (x *Evaluations) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1664,7 +1855,7 @@ func (x *Evaluations) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Evaluations.ProtoReflect.Descriptor instead.
 func (*Evaluations) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{11}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{12}
 }
 
 func (x *Evaluations) GetRequestId() uint64 {
@@ -1734,7 +1925,7 @@ type Stop struct {
 
 func (x *Stop) Reset() {
 	*x = Stop{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1746,7 +1937,7 @@ func (x *Stop) String() string {
 func (*Stop) ProtoMessage() {}
 
 func (x *Stop) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1759,7 +1950,7 @@ func (x *Stop) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Stop.ProtoReflect.Descriptor instead.
 func (*Stop) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{12}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{13}
 }
 
 func (x *Stop) GetReason() string {
@@ -1794,7 +1985,7 @@ type Draws struct {
 
 func (x *Draws) Reset() {
 	*x = Draws{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1806,7 +1997,7 @@ func (x *Draws) String() string {
 func (*Draws) ProtoMessage() {}
 
 func (x *Draws) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1819,7 +2010,7 @@ func (x *Draws) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Draws.ProtoReflect.Descriptor instead.
 func (*Draws) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{13}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{14}
 }
 
 func (x *Draws) GetSeq() uint64 {
@@ -1895,14 +2086,16 @@ type Progress struct {
 	// far.
 	Curvature *CurvatureEstimate `protobuf:"bytes,12,opt,name=curvature,proto3" json:"curvature,omitempty"`
 	// Each requested target, whether it holds, and what reaching it costs.
-	Targets       []*TargetStatus `protobuf:"bytes,13,rep,name=targets,proto3" json:"targets,omitempty"`
+	Targets []*TargetStatus `protobuf:"bytes,13,rep,name=targets,proto3" json:"targets,omitempty"`
+	// Gradient noise, for stochastic gradients.
+	Noise         *NoiseEstimate `protobuf:"bytes,14,opt,name=noise,proto3" json:"noise,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
 
 func (x *Progress) Reset() {
 	*x = Progress{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1914,7 +2107,7 @@ func (x *Progress) String() string {
 func (*Progress) ProtoMessage() {}
 
 func (x *Progress) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1927,7 +2120,7 @@ func (x *Progress) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Progress.ProtoReflect.Descriptor instead.
 func (*Progress) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{14}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{15}
 }
 
 func (x *Progress) GetState() State {
@@ -2021,6 +2214,107 @@ func (x *Progress) GetTargets() []*TargetStatus {
 	return nil
 }
 
+func (x *Progress) GetNoise() *NoiseEstimate {
+	if x != nil {
+		return x.Noise
+	}
+	return nil
+}
+
+// NoiseEstimate reports stochastic-gradient noise.
+type NoiseEstimate struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Measured variance of one replicate's error per coordinate (unbiased,
+	// from the replicates' spread), and its standard error; -1 without
+	// replicates.
+	Variance   float64 `protobuf:"fixed64,1,opt,name=variance,proto3" json:"variance,omitempty"`
+	VarianceSe float64 `protobuf:"fixed64,2,opt,name=variance_se,json=varianceSe,proto3" json:"variance_se,omitempty"`
+	// Requests the measurement is built on.
+	Requests int64 `protobuf:"varint,3,opt,name=requests,proto3" json:"requests,omitempty"`
+	// The declared variance (0: none).
+	Declared float64 `protobuf:"fixed64,4,opt,name=declared,proto3" json:"declared,omitempty"`
+	// Passes over the data set so far (needs data_size and minibatch_size).
+	Epochs float64 `protobuf:"fixed64,5,opt,name=epochs,proto3" json:"epochs,omitempty"`
+	// Non-empty when the measured and declared variances disagree by more
+	// than four standard errors, or when the declared bias makes a floor
+	// under every bound.
+	Warning       string `protobuf:"bytes,6,opt,name=warning,proto3" json:"warning,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *NoiseEstimate) Reset() {
+	*x = NoiseEstimate{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *NoiseEstimate) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*NoiseEstimate) ProtoMessage() {}
+
+func (x *NoiseEstimate) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use NoiseEstimate.ProtoReflect.Descriptor instead.
+func (*NoiseEstimate) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{16}
+}
+
+func (x *NoiseEstimate) GetVariance() float64 {
+	if x != nil {
+		return x.Variance
+	}
+	return 0
+}
+
+func (x *NoiseEstimate) GetVarianceSe() float64 {
+	if x != nil {
+		return x.VarianceSe
+	}
+	return 0
+}
+
+func (x *NoiseEstimate) GetRequests() int64 {
+	if x != nil {
+		return x.Requests
+	}
+	return 0
+}
+
+func (x *NoiseEstimate) GetDeclared() float64 {
+	if x != nil {
+		return x.Declared
+	}
+	return 0
+}
+
+func (x *NoiseEstimate) GetEpochs() float64 {
+	if x != nil {
+		return x.Epochs
+	}
+	return 0
+}
+
+func (x *NoiseEstimate) GetWarning() string {
+	if x != nil {
+		return x.Warning
+	}
+	return ""
+}
+
 // ParameterDiagnostics is the measured accuracy of one parameter.
 type ParameterDiagnostics struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -2039,7 +2333,7 @@ type ParameterDiagnostics struct {
 
 func (x *ParameterDiagnostics) Reset() {
 	*x = ParameterDiagnostics{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2051,7 +2345,7 @@ func (x *ParameterDiagnostics) String() string {
 func (*ParameterDiagnostics) ProtoMessage() {}
 
 func (x *ParameterDiagnostics) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2064,7 +2358,7 @@ func (x *ParameterDiagnostics) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ParameterDiagnostics.ProtoReflect.Descriptor instead.
 func (*ParameterDiagnostics) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{15}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{17}
 }
 
 func (x *ParameterDiagnostics) GetName() string {
@@ -2140,7 +2434,7 @@ type Bound struct {
 
 func (x *Bound) Reset() {
 	*x = Bound{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2152,7 +2446,7 @@ func (x *Bound) String() string {
 func (*Bound) ProtoMessage() {}
 
 func (x *Bound) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2165,7 +2459,7 @@ func (x *Bound) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Bound.ProtoReflect.Descriptor instead.
 func (*Bound) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{16}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{18}
 }
 
 func (x *Bound) GetMetric() Metric {
@@ -2243,7 +2537,7 @@ type CurvatureEstimate struct {
 
 func (x *CurvatureEstimate) Reset() {
 	*x = CurvatureEstimate{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2255,7 +2549,7 @@ func (x *CurvatureEstimate) String() string {
 func (*CurvatureEstimate) ProtoMessage() {}
 
 func (x *CurvatureEstimate) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2268,7 +2562,7 @@ func (x *CurvatureEstimate) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use CurvatureEstimate.ProtoReflect.Descriptor instead.
 func (*CurvatureEstimate) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{17}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{19}
 }
 
 func (x *CurvatureEstimate) GetPairs() int64 {
@@ -2316,7 +2610,7 @@ type TargetStatus struct {
 
 func (x *TargetStatus) Reset() {
 	*x = TargetStatus{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2328,7 +2622,7 @@ func (x *TargetStatus) String() string {
 func (*TargetStatus) ProtoMessage() {}
 
 func (x *TargetStatus) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2341,7 +2635,7 @@ func (x *TargetStatus) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use TargetStatus.ProtoReflect.Descriptor instead.
 func (*TargetStatus) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{18}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{20}
 }
 
 func (x *TargetStatus) GetName() string {
@@ -2395,7 +2689,7 @@ type Finished struct {
 
 func (x *Finished) Reset() {
 	*x = Finished{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2407,7 +2701,7 @@ func (x *Finished) String() string {
 func (*Finished) ProtoMessage() {}
 
 func (x *Finished) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2420,7 +2714,7 @@ func (x *Finished) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Finished.ProtoReflect.Descriptor instead.
 func (*Finished) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{19}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{21}
 }
 
 func (x *Finished) GetReason() FinishReason {
@@ -2468,7 +2762,7 @@ type ParameterSummary struct {
 
 func (x *ParameterSummary) Reset() {
 	*x = ParameterSummary{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2480,7 +2774,7 @@ func (x *ParameterSummary) String() string {
 func (*ParameterSummary) ProtoMessage() {}
 
 func (x *ParameterSummary) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2493,7 +2787,7 @@ func (x *ParameterSummary) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ParameterSummary.ProtoReflect.Descriptor instead.
 func (*ParameterSummary) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{20}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{22}
 }
 
 func (x *ParameterSummary) GetName() string {
@@ -2576,7 +2870,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x05draws\x18\x03 \x01(\v2\x10.sluice.v1.DrawsH\x00R\x05draws\x121\n" +
 	"\bprogress\x18\x04 \x01(\v2\x13.sluice.v1.ProgressH\x00R\bprogress\x121\n" +
 	"\bfinished\x18\x05 \x01(\v2\x13.sluice.v1.FinishedH\x00R\bfinishedB\a\n" +
-	"\x05frame\"\x9e\x05\n" +
+	"\x05frame\"\xce\x05\n" +
 	"\bRegister\x12\x10\n" +
 	"\x03dim\x18\x01 \x01(\x05R\x03dim\x12\x16\n" +
 	"\x06chains\x18\x02 \x01(\x05R\x06chains\x12\x16\n" +
@@ -2601,7 +2895,17 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\tcurvature\x18\x11 \x01(\v2\x14.sluice.v1.CurvatureR\tcurvature\x12&\n" +
 	"\x05wants\x18\x12 \x01(\v2\x10.sluice.v1.WantsR\x05wants\x12\x1a\n" +
 	"\bfriction\x18\x13 \x01(\x01R\bfriction\x12!\n" +
-	"\finverse_mass\x18\x14 \x01(\x01R\vinverseMass\"}\n" +
+	"\finverse_mass\x18\x14 \x01(\x01R\vinverseMass\x12.\n" +
+	"\x05noise\x18\x15 \x01(\v2\x18.sluice.v1.GradientNoiseR\x05noise\"\xd0\x01\n" +
+	"\rGradientNoise\x12+\n" +
+	"\x04kind\x18\x01 \x01(\x0e2\x17.sluice.v1.GradientKindR\x04kind\x12\x1a\n" +
+	"\bvariance\x18\x02 \x01(\x01R\bvariance\x12\x12\n" +
+	"\x04bias\x18\x03 \x01(\x01R\x04bias\x12\x1b\n" +
+	"\tdata_size\x18\x04 \x01(\x03R\bdataSize\x12%\n" +
+	"\x0eminibatch_size\x18\x05 \x01(\x03R\rminibatchSize\x12\x1e\n" +
+	"\n" +
+	"replicates\x18\x06 \x01(\x05R\n" +
+	"replicates\"}\n" +
 	"\tCurvature\x12)\n" +
 	"\x10strong_convexity\x18\x01 \x01(\x01R\x0fstrongConvexity\x12\x1e\n" +
 	"\n" +
@@ -2627,7 +2931,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x14evaluations_per_step\x18\x05 \x01(\x03R\x12evaluationsPerStep\x12*\n" +
 	"\x11max_message_bytes\x18\x06 \x01(\x03R\x0fmaxMessageBytes\x12\x14\n" +
 	"\x05names\x18\a \x03(\tR\x05names\x12#\n" +
-	"\rplanned_steps\x18\b \x01(\x03R\fplannedSteps\"\x88\x02\n" +
+	"\rplanned_steps\x18\b \x01(\x03R\fplannedSteps\"\xf0\x02\n" +
 	"\x06Points\x12\x1d\n" +
 	"\n" +
 	"request_id\x18\x01 \x01(\x04R\trequestId\x12\x1b\n" +
@@ -2641,7 +2945,13 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"quantities\x12\x1d\n" +
 	"\n" +
 	"total_rows\x18\b \x01(\x05R\ttotalRows\x12\x18\n" +
-	"\avectors\x18\t \x01(\fR\avectors\"\xf7\x01\n" +
+	"\avectors\x18\t \x01(\fR\avectors\x12)\n" +
+	"\x10minibatch_groups\x18\n" +
+	" \x03(\x05R\x0fminibatchGroups\x12\x1b\n" +
+	"\tfull_data\x18\v \x01(\bR\bfullData\x12\x1e\n" +
+	"\n" +
+	"replicates\x18\f \x01(\x05R\n" +
+	"replicates\"\xf7\x01\n" +
 	"\vEvaluations\x12\x1d\n" +
 	"\n" +
 	"request_id\x18\x01 \x01(\x04R\trequestId\x12\x1b\n" +
@@ -2662,7 +2972,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x06chains\x18\x05 \x03(\x05R\x06chains\x12\x1e\n" +
 	"\n" +
 	"iterations\x18\x06 \x03(\x03R\n" +
-	"iterations\"\xa3\x04\n" +
+	"iterations\"\xd3\x04\n" +
 	"\bProgress\x12&\n" +
 	"\x05state\x18\x01 \x01(\x0e2\x10.sluice.v1.StateR\x05state\x12\x14\n" +
 	"\x05steps\x18\x02 \x01(\x03R\x05steps\x12)\n" +
@@ -2680,7 +2990,16 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	" \x01(\x01R\x03ksd\x12&\n" +
 	"\x05bound\x18\v \x01(\v2\x10.sluice.v1.BoundR\x05bound\x12:\n" +
 	"\tcurvature\x18\f \x01(\v2\x1c.sluice.v1.CurvatureEstimateR\tcurvature\x121\n" +
-	"\atargets\x18\r \x03(\v2\x17.sluice.v1.TargetStatusR\atargets\"\xb5\x01\n" +
+	"\atargets\x18\r \x03(\v2\x17.sluice.v1.TargetStatusR\atargets\x12.\n" +
+	"\x05noise\x18\x0e \x01(\v2\x18.sluice.v1.NoiseEstimateR\x05noise\"\xb6\x01\n" +
+	"\rNoiseEstimate\x12\x1a\n" +
+	"\bvariance\x18\x01 \x01(\x01R\bvariance\x12\x1f\n" +
+	"\vvariance_se\x18\x02 \x01(\x01R\n" +
+	"varianceSe\x12\x1a\n" +
+	"\brequests\x18\x03 \x01(\x03R\brequests\x12\x1a\n" +
+	"\bdeclared\x18\x04 \x01(\x01R\bdeclared\x12\x16\n" +
+	"\x06epochs\x18\x05 \x01(\x01R\x06epochs\x12\x18\n" +
+	"\awarning\x18\x06 \x01(\tR\awarning\"\xb5\x01\n" +
 	"\x14ParameterDiagnostics\x12\x12\n" +
 	"\x04name\x18\x01 \x01(\tR\x04name\x12\x12\n" +
 	"\x04mean\x18\x02 \x01(\x01R\x04mean\x12\x0e\n" +
@@ -2723,7 +3042,11 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x04name\x18\x01 \x01(\tR\x04name\x12\x12\n" +
 	"\x04mean\x18\x02 \x01(\x01R\x04mean\x12\x0e\n" +
 	"\x02sd\x18\x03 \x01(\x01R\x02sd\x12\x14\n" +
-	"\x05count\x18\x04 \x01(\x03R\x05count*>\n" +
+	"\x05count\x18\x04 \x01(\x03R\x05count*d\n" +
+	"\fGradientKind\x12\x1d\n" +
+	"\x19GRADIENT_KIND_UNSPECIFIED\x10\x00\x12\x17\n" +
+	"\x13GRADIENT_KIND_EXACT\x10\x01\x12\x1c\n" +
+	"\x18GRADIENT_KIND_STOCHASTIC\x10\x02*>\n" +
 	"\x06Metric\x12\x16\n" +
 	"\x12METRIC_UNSPECIFIED\x10\x00\x12\r\n" +
 	"\tMETRIC_TV\x10\x01\x12\r\n" +
@@ -2769,75 +3092,81 @@ func file_sluice_v1_sluice_proto_rawDescGZIP() []byte {
 	return file_sluice_v1_sluice_proto_rawDescData
 }
 
-var file_sluice_v1_sluice_proto_enumTypes = make([]protoimpl.EnumInfo, 5)
-var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 21)
+var file_sluice_v1_sluice_proto_enumTypes = make([]protoimpl.EnumInfo, 6)
+var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 23)
 var file_sluice_v1_sluice_proto_goTypes = []any{
-	(Metric)(0),                  // 0: sluice.v1.Metric
-	(Quantity)(0),                // 1: sluice.v1.Quantity
-	(State)(0),                   // 2: sluice.v1.State
-	(BoundSource)(0),             // 3: sluice.v1.BoundSource
-	(FinishReason)(0),            // 4: sluice.v1.FinishReason
-	(*PlanRequest)(nil),          // 5: sluice.v1.PlanRequest
-	(*PlanResponse)(nil),         // 6: sluice.v1.PlanResponse
-	(*FollowRequest)(nil),        // 7: sluice.v1.FollowRequest
-	(*FollowResponse)(nil),       // 8: sluice.v1.FollowResponse
-	(*SessionRequest)(nil),       // 9: sluice.v1.SessionRequest
-	(*SessionResponse)(nil),      // 10: sluice.v1.SessionResponse
-	(*Register)(nil),             // 11: sluice.v1.Register
-	(*Curvature)(nil),            // 12: sluice.v1.Curvature
-	(*Wants)(nil),                // 13: sluice.v1.Wants
-	(*Registered)(nil),           // 14: sluice.v1.Registered
-	(*Points)(nil),               // 15: sluice.v1.Points
-	(*Evaluations)(nil),          // 16: sluice.v1.Evaluations
-	(*Stop)(nil),                 // 17: sluice.v1.Stop
-	(*Draws)(nil),                // 18: sluice.v1.Draws
-	(*Progress)(nil),             // 19: sluice.v1.Progress
-	(*ParameterDiagnostics)(nil), // 20: sluice.v1.ParameterDiagnostics
-	(*Bound)(nil),                // 21: sluice.v1.Bound
-	(*CurvatureEstimate)(nil),    // 22: sluice.v1.CurvatureEstimate
-	(*TargetStatus)(nil),         // 23: sluice.v1.TargetStatus
-	(*Finished)(nil),             // 24: sluice.v1.Finished
-	(*ParameterSummary)(nil),     // 25: sluice.v1.ParameterSummary
+	(GradientKind)(0),            // 0: sluice.v1.GradientKind
+	(Metric)(0),                  // 1: sluice.v1.Metric
+	(Quantity)(0),                // 2: sluice.v1.Quantity
+	(State)(0),                   // 3: sluice.v1.State
+	(BoundSource)(0),             // 4: sluice.v1.BoundSource
+	(FinishReason)(0),            // 5: sluice.v1.FinishReason
+	(*PlanRequest)(nil),          // 6: sluice.v1.PlanRequest
+	(*PlanResponse)(nil),         // 7: sluice.v1.PlanResponse
+	(*FollowRequest)(nil),        // 8: sluice.v1.FollowRequest
+	(*FollowResponse)(nil),       // 9: sluice.v1.FollowResponse
+	(*SessionRequest)(nil),       // 10: sluice.v1.SessionRequest
+	(*SessionResponse)(nil),      // 11: sluice.v1.SessionResponse
+	(*Register)(nil),             // 12: sluice.v1.Register
+	(*GradientNoise)(nil),        // 13: sluice.v1.GradientNoise
+	(*Curvature)(nil),            // 14: sluice.v1.Curvature
+	(*Wants)(nil),                // 15: sluice.v1.Wants
+	(*Registered)(nil),           // 16: sluice.v1.Registered
+	(*Points)(nil),               // 17: sluice.v1.Points
+	(*Evaluations)(nil),          // 18: sluice.v1.Evaluations
+	(*Stop)(nil),                 // 19: sluice.v1.Stop
+	(*Draws)(nil),                // 20: sluice.v1.Draws
+	(*Progress)(nil),             // 21: sluice.v1.Progress
+	(*NoiseEstimate)(nil),        // 22: sluice.v1.NoiseEstimate
+	(*ParameterDiagnostics)(nil), // 23: sluice.v1.ParameterDiagnostics
+	(*Bound)(nil),                // 24: sluice.v1.Bound
+	(*CurvatureEstimate)(nil),    // 25: sluice.v1.CurvatureEstimate
+	(*TargetStatus)(nil),         // 26: sluice.v1.TargetStatus
+	(*Finished)(nil),             // 27: sluice.v1.Finished
+	(*ParameterSummary)(nil),     // 28: sluice.v1.ParameterSummary
 }
 var file_sluice_v1_sluice_proto_depIdxs = []int32{
-	12, // 0: sluice.v1.PlanRequest.curvature:type_name -> sluice.v1.Curvature
-	0,  // 1: sluice.v1.PlanRequest.metric:type_name -> sluice.v1.Metric
-	21, // 2: sluice.v1.PlanResponse.bound:type_name -> sluice.v1.Bound
-	18, // 3: sluice.v1.FollowResponse.draws:type_name -> sluice.v1.Draws
-	24, // 4: sluice.v1.FollowResponse.finished:type_name -> sluice.v1.Finished
-	11, // 5: sluice.v1.SessionRequest.register:type_name -> sluice.v1.Register
-	16, // 6: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
-	17, // 7: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
-	14, // 8: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
-	15, // 9: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
-	18, // 10: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
-	19, // 11: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
-	24, // 12: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
-	12, // 13: sluice.v1.Register.curvature:type_name -> sluice.v1.Curvature
-	13, // 14: sluice.v1.Register.wants:type_name -> sluice.v1.Wants
-	0,  // 15: sluice.v1.Wants.metric:type_name -> sluice.v1.Metric
-	1,  // 16: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
-	2,  // 17: sluice.v1.Progress.state:type_name -> sluice.v1.State
-	20, // 18: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
-	21, // 19: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
-	22, // 20: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
-	23, // 21: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
-	0,  // 22: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
-	3,  // 23: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
-	4,  // 24: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
-	19, // 25: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
-	25, // 26: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
-	9,  // 27: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
-	7,  // 28: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
-	5,  // 29: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
-	10, // 30: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
-	8,  // 31: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
-	6,  // 32: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
-	30, // [30:33] is the sub-list for method output_type
-	27, // [27:30] is the sub-list for method input_type
-	27, // [27:27] is the sub-list for extension type_name
-	27, // [27:27] is the sub-list for extension extendee
-	0,  // [0:27] is the sub-list for field type_name
+	14, // 0: sluice.v1.PlanRequest.curvature:type_name -> sluice.v1.Curvature
+	1,  // 1: sluice.v1.PlanRequest.metric:type_name -> sluice.v1.Metric
+	24, // 2: sluice.v1.PlanResponse.bound:type_name -> sluice.v1.Bound
+	20, // 3: sluice.v1.FollowResponse.draws:type_name -> sluice.v1.Draws
+	27, // 4: sluice.v1.FollowResponse.finished:type_name -> sluice.v1.Finished
+	12, // 5: sluice.v1.SessionRequest.register:type_name -> sluice.v1.Register
+	18, // 6: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
+	19, // 7: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
+	16, // 8: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
+	17, // 9: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
+	20, // 10: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
+	21, // 11: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
+	27, // 12: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
+	14, // 13: sluice.v1.Register.curvature:type_name -> sluice.v1.Curvature
+	15, // 14: sluice.v1.Register.wants:type_name -> sluice.v1.Wants
+	13, // 15: sluice.v1.Register.noise:type_name -> sluice.v1.GradientNoise
+	0,  // 16: sluice.v1.GradientNoise.kind:type_name -> sluice.v1.GradientKind
+	1,  // 17: sluice.v1.Wants.metric:type_name -> sluice.v1.Metric
+	2,  // 18: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
+	3,  // 19: sluice.v1.Progress.state:type_name -> sluice.v1.State
+	23, // 20: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
+	24, // 21: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
+	25, // 22: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
+	26, // 23: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
+	22, // 24: sluice.v1.Progress.noise:type_name -> sluice.v1.NoiseEstimate
+	1,  // 25: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
+	4,  // 26: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
+	5,  // 27: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
+	21, // 28: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
+	28, // 29: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
+	10, // 30: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
+	8,  // 31: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
+	6,  // 32: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
+	11, // 33: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
+	9,  // 34: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
+	7,  // 35: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
+	33, // [33:36] is the sub-list for method output_type
+	30, // [30:33] is the sub-list for method input_type
+	30, // [30:30] is the sub-list for extension type_name
+	30, // [30:30] is the sub-list for extension extendee
+	0,  // [0:30] is the sub-list for field type_name
 }
 
 func init() { file_sluice_v1_sluice_proto_init() }
@@ -2866,8 +3195,8 @@ func file_sluice_v1_sluice_proto_init() {
 		File: protoimpl.DescBuilder{
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_sluice_v1_sluice_proto_rawDesc), len(file_sluice_v1_sluice_proto_rawDesc)),
-			NumEnums:      5,
-			NumMessages:   21,
+			NumEnums:      6,
+			NumMessages:   23,
 			NumExtensions: 0,
 			NumServices:   1,
 		},
