@@ -235,15 +235,15 @@ func (k *MALA) MarshalBinary() ([]byte, error) {
 	u(uint64(k.burnIn))
 	u(uint64(k.steps))
 	u(math.Float64bits(k.h))
-	u(boolBit(k.ready))
+	u(stateBit(k.ready))
 	u(uint64(k.proposed))
 	for _, a := range k.accepted {
 		u(uint64(a))
 	}
-	b = appendFloats(b, k.x)
-	b = appendFloats(b, k.lpx)
-	b = appendFloats(b, k.gx)
-	b = appendFloats(b, k.y)
+	b = appendStateFloats(b, k.x)
+	b = appendStateFloats(b, k.lpx)
+	b = appendStateFloats(b, k.gx)
+	b = appendStateFloats(b, k.y)
 	return append(b, rs...), nil
 }
 

@@ -227,7 +227,7 @@ func (k *Ozaki) MarshalBinary() ([]byte, error) {
 	b = binary.LittleEndian.AppendUint64(b, uint64(k.chains))
 	b = binary.LittleEndian.AppendUint64(b, math.Float64bits(k.h))
 	b = binary.LittleEndian.AppendUint64(b, uint64(k.steps))
-	b = appendFloats(b, k.x)
+	b = appendStateFloats(b, k.x)
 	return append(b, rs...), nil
 }
 
@@ -258,7 +258,7 @@ func (k *Ozaki) UnmarshalBinary(b []byte) error {
 	return nil
 }
 
-func appendFloats(b []byte, v []float64) []byte {
+func appendStateFloats(b []byte, v []float64) []byte {
 	for _, f := range v {
 		b = binary.LittleEndian.AppendUint64(b, math.Float64bits(f))
 	}
@@ -684,25 +684,25 @@ func (k *OzakiKrylov) MarshalBinary() ([]byte, error) {
 	f(k.tol)
 	u(uint64(k.maxIter))
 	u(uint64(k.steps))
-	u(boolBit(k.first))
+	u(stateBit(k.first))
 	u(uint64(k.rows))
 	u(uint64(k.last.MaxIterations))
 	f(k.last.MaxEstimate)
 	u(uint64(k.last.Unconverged))
 	u(uint64(k.last.Rows))
-	b = appendFloats(b, k.x)
-	b = appendFloats(b, k.xi)
+	b = appendStateFloats(b, k.x)
+	b = appendStateFloats(b, k.xi)
 	for i := range k.procs {
 		l := &k.procs[i]
 		u(uint64(l.m))
-		u(boolBit(l.done))
+		u(stateBit(l.done))
 		f(l.norm)
 		f(l.est)
 		f(l.d)
-		b = appendFloats(b, l.alpha[:l.m])
-		b = appendFloats(b, l.beta[:l.m])
-		b = appendFloats(b, l.y[:l.m])
-		b = appendFloats(b, l.basis[:max(l.stored(), 1)*k.dim])
+		b = appendStateFloats(b, l.alpha[:l.m])
+		b = appendStateFloats(b, l.beta[:l.m])
+		b = appendStateFloats(b, l.y[:l.m])
+		b = appendStateFloats(b, l.basis[:max(l.stored(), 1)*k.dim])
 	}
 	return append(b, rs...), nil
 }
@@ -716,7 +716,7 @@ func (l *ozakiLanczos) stored() int {
 	return l.m + 1
 }
 
-func boolBit(v bool) uint64 {
+func stateBit(v bool) uint64 {
 	if v {
 		return 1
 	}
