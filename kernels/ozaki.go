@@ -107,14 +107,14 @@ func (w *ozakiWork) factor(hess []float64, p int, h float64) {
 // x − V diag(φ₁)Vᵀg + V diag(√φ₂)ξ with g = −s.
 func (w *ozakiWork) move(x, s, xi []float64, p int) {
 	v := blas64.General{Rows: p, Cols: p, Stride: p, Data: w.v}
-	blas64.Gemv(blas.Trans, 1, v, vec(s), 0, vec(w.t))
+	blas64.Gemv(blas.Trans, 1, v, ozakiVec(s), 0, ozakiVec(w.t))
 	for j := range w.t {
 		w.t[j] = w.phi1[j]*w.t[j] + w.sphi2[j]*xi[j]
 	}
-	blas64.Gemv(blas.NoTrans, 1, v, vec(w.t), 1, vec(x))
+	blas64.Gemv(blas.NoTrans, 1, v, ozakiVec(w.t), 1, ozakiVec(x))
 }
 
-func vec(s []float64) blas64.Vector { return blas64.Vector{N: len(s), Inc: 1, Data: s} }
+func ozakiVec(s []float64) blas64.Vector { return blas64.Vector{N: len(s), Inc: 1, Data: s} }
 
 // ozakiSeries is the bound on |hλ| below which φ₁ and φ₂ use their Taylor
 // series (THEORY.md §1.3).
