@@ -1,0 +1,295 @@
+package kernels
+
+import (
+	"encoding/binary"
+	"errors"
+	"fmt"
+	"math"
+	"math/rand/v2"
+)
+
+// MALA is the Metropolis-adjusted Langevin algorithm over a batch of chains
+// (THEORY.md §6). From x it proposes the LMC move
+//
+//	y = x + h·∇log π(x) + √(2h)·ξ,   ξ ~ N(0, I_p),   q(y | x) = N(y; x + h∇log π(x), 2h·I)
+//	log q(y | x) = −‖y − x − h∇log π(x)‖² / (4h)   (+ const)
+//
+// and accepts it with probability min{1, e^A},
+//
+//	A = [log π(y) + log q(x | y)] − [log π(x) + log q(y | x)],
+//
+// tested in log space (accept when log u < A, u ~ U[0, 1)), so the chains
+// leave π exactly invariant. A log density of −∞ or NaN at the proposal
+// rejects it.
+//
+// Requests. The first request asks for the log density and the gradient
+// at every chain's start (Need = NeedGradient|NeedLogDensity, Rows =
+// chains) and completes no step; every later request asks for them at
+// every chain's proposal and completes one step. So a run of n steps
+// evaluates chains·(n + 1) points: one per chain per step
+// (EvaluationsPerStep) plus the start. The value and gradient at the
+// current point are kept, never asked for again.
+//
+// Step adaptation. One step size h is shared by all chains (they target the
+// same π). During the first burnIn steps it is adapted toward the
+// acceptance rate 0.574 (the optimal rate for MALA, Roberts & Rosenthal
+// 1998, THEORY.md §6) by a Robbins–Monro update on log h after every step
+// t = 1, 2, …:
+//
+//	log h ← log h + t^{−0.6}·(ᾱ_t − 0.574)
+//
+// where ᾱ_t is the mean over chains of the step's acceptance probabilities
+// min{1, e^A} (common practice). After burnIn steps h is frozen, so the
+// draws after burn-in come from a fixed π-invariant kernel; callers should
+// discard the first burnIn steps.
+//
+// Randomness. Each step draws first one uniform per chain for the
+// acceptance tests, in chain order, then the next proposals' normals chain
+// by chain (p per chain, with the adapted h); the first proposals' normals
+// are drawn when the start's answer arrives.
+type MALA struct {
+	dim, chains int
+	h           float64
+	burnIn      int
+	steps       int
+	ready       bool      // the start has been evaluated
+	x           []float64 // chains×dim current positions
+	lpx         []float64 // log π at x
+	gx          []float64 // ∇log π at x, chains×dim
+	y           []float64 // chains×dim proposals
+	accepted    []int     // acceptances per chain in the current phase
+	proposed    int       // steps in the current phase
+	req         Request
+	src         *rand.PCG
+	rng         *rand.Rand
+}
+
+// malaTarget is the acceptance rate the step adaptation aims at
+// (THEORY.md §6).
+const malaTarget = 0.574
+
+// NewMALA returns a MALA kernel for chains chains in dimension dim with
+// initial step h, adapted during the first burnIn steps and frozen after
+// (burnIn = 0: never adapted), started at start (chains×dim values, or dim
+// values shared by every chain), drawing its randomness from src. It
+// panics on a non-positive or non-finite step, a negative burnIn or a
+// start of the wrong length.
+func NewMALA(dim, chains int, h float64, burnIn int, start []float64, src *rand.PCG) *MALA {
+	if dim < 1 || chains < 1 {
+		panic(fmt.Sprintf("kernels: MALA with dim %d, chains %d", dim, chains))
+	}
+	if !(h > 0) || math.IsInf(h, 0) {
+		panic(fmt.Sprintf("kernels: MALA step %v", h))
+	}
+	if burnIn < 0 {
+		panic(fmt.Sprintf("kernels: MALA burn-in %d", burnIn))
+	}
+	k := &MALA{dim: dim, chains: chains, h: h, burnIn: burnIn, src: src, rng: rand.New(src)}
+	k.x = broadcastStart(start, dim, chains)
+	k.alloc()
+	k.buildRequest()
+	return k
+}
+
+func (k *MALA) alloc() {
+	n := k.dim * k.chains
+	k.lpx, k.gx, k.y = make([]float64, k.chains), make([]float64, n), make([]float64, n)
+	k.accepted = make([]int, k.chains)
+}
+
+func (k *MALA) buildRequest() {
+	pts := k.y
+	if !k.ready {
+		pts = k.x
+	}
+	k.req = Request{Need: NeedGradient | NeedLogDensity, Rows: k.chains, Points: pts, Chain: chainIndex(k.chains)}
+}
+
+// Dim implements Kernel.
+func (k *MALA) Dim() int { return k.dim }
+
+// Chains implements Kernel.
+func (k *MALA) Chains() int { return k.chains }
+
+// Steps implements Kernel: completed accept/reject steps per chain.
+func (k *MALA) Steps() int { return k.steps }
+
+// Step returns the current step size h (frozen once Adapting is false).
+func (k *MALA) Step() float64 { return k.h }
+
+// BurnIn returns the number of steps during which h is adapted.
+func (k *MALA) BurnIn() int { return k.burnIn }
+
+// Adapting reports whether the step size is still being adapted, that is
+// whether fewer than BurnIn steps have been completed.
+func (k *MALA) Adapting() bool { return k.steps < k.burnIn }
+
+// AcceptanceRates returns, per chain, the fraction of accepted proposals
+// in the current phase: the burn-in steps so far while Adapting, the steps
+// since burn-in after. It is NaN for a phase with no step yet.
+func (k *MALA) AcceptanceRates() []float64 {
+	out := make([]float64, k.chains)
+	for c, a := range k.accepted {
+		out[c] = float64(a) / float64(k.proposed)
+	}
+	return out
+}
+
+// EvaluationsPerStep implements Kernel: one point (log density and
+// gradient) per chain; the start costs one more point per chain, once.
+func (k *MALA) EvaluationsPerStep() int { return k.chains }
+
+// Positions implements Kernel.
+func (k *MALA) Positions() []float64 { return k.x }
+
+// Next implements Kernel: the log density and gradient at every chain's
+// start, then at every chain's proposal.
+func (k *MALA) Next() *Request { return &k.req }
+
+// Tell implements Kernel. The first call takes the values at the start and
+// completes no step; every later call completes one. It panics if the
+// answer lacks gradients or log densities.
+func (k *MALA) Tell(a *Answer) bool {
+	n := len(k.x)
+	if len(a.Grad) < n || len(a.LogDensity) < k.chains {
+		panic(fmt.Sprintf("kernels: MALA answer has %d gradient and %d log-density values, want %d and %d",
+			len(a.Grad), len(a.LogDensity), n, k.chains))
+	}
+	if !k.ready {
+		copy(k.gx, a.Grad[:n])
+		copy(k.lpx, a.LogDensity[:k.chains])
+		k.ready = true
+		k.propose()
+		k.buildRequest()
+		return false
+	}
+	p := k.dim
+	var sumAlpha float64
+	for c := range k.chains {
+		lo, hi := c*p, (c+1)*p
+		la := malaLogAccept(k.x[lo:hi], k.y[lo:hi], k.lpx[c], a.LogDensity[c], k.gx[lo:hi], a.Grad[lo:hi], k.h)
+		if la >= 0 {
+			sumAlpha++
+		} else if la > math.Inf(-1) { // NaN and −∞ count as 0
+			sumAlpha += math.Exp(la)
+		}
+		if u := k.rng.Float64(); math.Log(u) < la {
+			copy(k.x[lo:hi], k.y[lo:hi])
+			copy(k.gx[lo:hi], a.Grad[lo:hi])
+			k.lpx[c] = a.LogDensity[c]
+			k.accepted[c]++
+		}
+	}
+	k.steps++
+	k.proposed++
+	if k.steps <= k.burnIn {
+		k.h *= math.Exp(math.Pow(float64(k.steps), -0.6) * (sumAlpha/float64(k.chains) - malaTarget))
+		if k.steps == k.burnIn {
+			k.proposed = 0
+			for c := range k.accepted {
+				k.accepted[c] = 0
+			}
+		}
+	}
+	k.propose()
+	return true
+}
+
+// propose draws y = x + h·∇log π(x) + √(2h)·ξ for every chain.
+func (k *MALA) propose() {
+	s := math.Sqrt(2 * k.h)
+	for i := range k.y {
+		k.y[i] = k.x[i] + k.h*k.gx[i] + s*k.rng.NormFloat64()
+	}
+}
+
+// malaLogAccept returns the log acceptance ratio A of THEORY.md §6 for a
+// move from x to y given log π and ∇log π at both.
+func malaLogAccept(x, y []float64, lpx, lpy float64, gx, gy []float64, h float64) float64 {
+	var fwd, bwd float64 // ‖y − x − h gx‖², ‖x − y − h gy‖²
+	for i := range x {
+		f := y[i] - x[i] - h*gx[i]
+		b := x[i] - y[i] - h*gy[i]
+		fwd += f * f
+		bwd += b * b
+	}
+	return (lpy - bwd/(4*h)) - (lpx - fwd/(4*h))
+}
+
+const malaMagic = "sluice.mala.v1"
+
+// MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
+// burn-in, completed steps, step size, the phase's acceptance counts, the
+// positions with their log densities and gradients, the pending proposals
+// and the random stream's state.
+func (k *MALA) MarshalBinary() ([]byte, error) {
+	rs, err := k.src.MarshalBinary()
+	if err != nil {
+		return nil, err
+	}
+	b := make([]byte, 0, len(malaMagic)+8*(7+2*k.chains+3*len(k.x))+len(rs))
+	b = append(b, malaMagic...)
+	u := func(v uint64) { b = binary.LittleEndian.AppendUint64(b, v) }
+	u(uint64(k.dim))
+	u(uint64(k.chains))
+	u(uint64(k.burnIn))
+	u(uint64(k.steps))
+	u(math.Float64bits(k.h))
+	u(stateBit(k.ready))
+	u(uint64(k.proposed))
+	for _, a := range k.accepted {
+		u(uint64(a))
+	}
+	b = appendStateFloats(b, k.x)
+	b = appendStateFloats(b, k.lpx)
+	b = appendStateFloats(b, k.gx)
+	b = appendStateFloats(b, k.y)
+	return append(b, rs...), nil
+}
+
+// UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
+// whole state, including dimension and number of chains.
+func (k *MALA) UnmarshalBinary(b []byte) error {
+	bad := errors.New("kernels: corrupt MALA state")
+	r := stateReader{b: b}
+	if !r.magic(malaMagic) {
+		return errors.New("kernels: not a MALA state")
+	}
+	n := &MALA{}
+	n.dim, n.chains = int(r.u64()), int(r.u64())
+	n.burnIn, n.steps = int(r.u64()), int(r.u64())
+	n.h = math.Float64frombits(r.u64())
+	ready := r.u64()
+	n.ready = ready == 1
+	n.proposed = int(r.u64())
+	lim := len(b) / 8
+	if r.err != nil || n.dim < 1 || n.chains < 1 || n.dim > lim || n.chains > lim || n.dim*n.chains > lim ||
+		n.burnIn < 0 || n.steps < 0 || n.proposed < 0 || n.proposed > n.steps || ready > 1 ||
+		!(n.h > 0) || math.IsInf(n.h, 0) {
+		return bad
+	}
+	n.alloc()
+	for c := range n.accepted {
+		n.accepted[c] = int(r.u64())
+		if n.accepted[c] < 0 || n.accepted[c] > n.proposed {
+			return bad
+		}
+	}
+	n.x = r.floats(n.dim * n.chains)
+	for _, dst := range [][]float64{n.lpx, n.gx, n.y} {
+		if v := r.floats(len(dst)); r.err == nil {
+			copy(dst, v)
+		}
+	}
+	if r.err != nil {
+		return bad
+	}
+	n.src = &rand.PCG{}
+	if err := n.src.UnmarshalBinary(r.rest()); err != nil {
+		return fmt.Errorf("kernels: MALA random state: %w", err)
+	}
+	n.rng = rand.New(n.src)
+	n.buildRequest()
+	*k = *n
+	return nil
+}
