@@ -3,6 +3,8 @@ package diag
 import (
 	"fmt"
 	"math"
+
+	"gonum.org/v1/gonum/dsp/fourier"
 )
 
 // SplitChains cuts every chain into its first and last ⌊N/2⌋ draws,
@@ -10,16 +12,21 @@ import (
 // lists all first halves, then all second halves; it shares memory with
 // the input.
 func SplitChains(chains [][]float64) [][]float64 {
+	return splitInto(nil, chains)
+}
+
+// splitInto is SplitChains appending to dst[:0].
+func splitInto(dst, chains [][]float64) [][]float64 {
 	n := checkChains(chains)
 	half := n / 2
-	out := make([][]float64, 0, 2*len(chains))
+	dst = dst[:0]
 	for _, c := range chains {
-		out = append(out, c[:half])
+		dst = append(dst, c[:half])
 	}
 	for _, c := range chains {
-		out = append(out, c[n-half:])
+		dst = append(dst, c[n-half:])
 	}
-	return out
+	return dst
 }
 
 // ESS returns the effective sample size of the chains as they are (not
@@ -31,8 +38,26 @@ func ESS(chains [][]float64) float64 {
 	if n < 4 {
 		panic(fmt.Sprintf("diag: ESS needs at least 4 draws per chain, have %d", n))
 	}
+	var s acovScratch
+	return geyerESS(chains, &s, nil)
+}
+
+// geyerTrace records the intermediate sequences of one ESS computation,
+// for tests: rho[t] = ρ̂_t for every lag computed, pairs[k] = P̂_k after the
+// monotone step for every k included in τ̂.
+type geyerTrace struct {
+	rho   []float64
+	pairs []float64
+	tau   float64
+}
+
+// geyerESS is THEORY.md §9 step 5 on an M×N array (N ≥ 4, checked by the
+// caller). s holds reusable scratch; tr, when not nil, receives the trace.
+func geyerESS(chains [][]float64, s *acovScratch, tr *geyerTrace) float64 {
+	n := len(chains[0])
 	m := len(chains)
-	means := make([]float64, m)
+	s.means = growFloats(s.means, m)
+	means := s.means
 	var w float64
 	for j, c := range chains {
 		means[j] = mean(c)
@@ -43,16 +68,23 @@ func ESS(chains [][]float64) float64 {
 	if m > 1 {
 		varPlus += variance(means, mean(means)) // B/N = var of chain means
 	}
-	if !(varPlus > 0) {
+	if !(varPlus > 0) || math.IsInf(varPlus, 0) {
 		return math.NaN()
 	}
+	s.reset(chains)
 	rho := func(t int) float64 {
-		var g float64
-		for j, c := range chains {
-			g += autocov(c, means[j], t)
+		r := 1 - (w-s.at(t))/varPlus
+		if tr != nil {
+			for len(tr.rho) <= t {
+				tr.rho = append(tr.rho, math.NaN())
+			}
+			tr.rho[t] = r
 		}
-		g /= float64(m)
-		return 1 - (w-g)/varPlus
+		return r
+	}
+	if tr != nil {
+		tr.rho = append(tr.rho[:0], 1)
+		tr.pairs = tr.pairs[:0]
 	}
 	tau := -1.0
 	prev := math.Inf(1)
@@ -69,8 +101,112 @@ func ESS(chains [][]float64) float64 {
 		p = math.Min(p, prev)
 		prev = p
 		tau += 2 * p
+		if tr != nil {
+			tr.pairs = append(tr.pairs, p)
+		}
+	}
+	if tr != nil {
+		tr.tau = tau
 	}
 	return float64(n*m) / tau
+}
+
+// directLags is the number of lags computed directly, at O(M·N) each,
+// before the autocovariances of all lags are computed at once by FFT
+// (O(M·N·log N)). Geyer's sequence usually stops within a few
+// autocorrelation times, so well-mixed chains never reach the FFT. The
+// value is the measured cost ratio (BenchmarkAutocov: for 8 chains of
+// 10⁴ draws one FFT of all lags costs about 100 direct lags), which keeps
+// any chain within twice the cheaper of the two ways.
+const directLags = 96
+
+// acovScratch evaluates mean_m γ̂_{t,m} (divisor N) lag by lag and keeps
+// its buffers between calls.
+type acovScratch struct {
+	chains [][]float64
+	means  []float64
+	full   []float64 // all lags, valid when haveFull
+	have   bool
+	fft    *fourier.FFT
+	buf    []float64
+	coef   []complex128
+	power  []complex128
+}
+
+// reset points s at new chains whose means are already in s.means.
+func (s *acovScratch) reset(chains [][]float64) {
+	s.chains, s.have = chains, false
+}
+
+// at returns the chain-averaged autocovariance at lag t.
+func (s *acovScratch) at(t int) float64 {
+	if !s.have && t < directLags {
+		var g float64
+		for j, c := range s.chains {
+			g += autocov(c, s.means[j], t)
+		}
+		return g / float64(len(s.chains))
+	}
+	if !s.have {
+		s.allLags()
+	}
+	return s.full[t]
+}
+
+// allLags fills s.full with the chain-averaged autocovariance at every lag
+// 0..N−1 through the Wiener–Khinchin identity on zero-padded chains (the
+// padding to at least 2N removes the circular wrap-around): the power
+// spectra of the chains are summed and transformed back once.
+func (s *acovScratch) allLags() {
+	n := len(s.chains[0])
+	size := fftSize(2 * n)
+	if s.fft == nil || s.fft.Len() != size {
+		s.fft = fourier.NewFFT(size)
+		s.buf = make([]float64, size)
+		s.coef = make([]complex128, size/2+1)
+		s.power = make([]complex128, size/2+1)
+	}
+	clear(s.power)
+	for j, c := range s.chains {
+		mu := s.means[j]
+		for i, v := range c {
+			s.buf[i] = v - mu
+		}
+		clear(s.buf[n:])
+		s.fft.Coefficients(s.coef, s.buf)
+		for i, z := range s.coef {
+			s.power[i] += complex(real(z)*real(z)+imag(z)*imag(z), 0)
+		}
+	}
+	s.fft.Sequence(s.buf, s.power)
+	s.full = growFloats(s.full, n)
+	scale := 1 / (float64(size) * float64(n) * float64(len(s.chains)))
+	for t := range s.full {
+		s.full[t] = s.buf[t] * scale
+	}
+	s.have = true
+}
+
+// fftSize is the smallest 2^i·3^j·5^k ≥ n (sizes the FFT factorises well).
+func fftSize(n int) int {
+	best := math.MaxInt
+	for p2 := 1; p2 < best; p2 *= 2 {
+		for p3 := p2; p3 < best; p3 *= 3 {
+			p5 := p3
+			for p5 < n {
+				p5 *= 5
+			}
+			best = min(best, p5)
+		}
+	}
+	return best
+}
+
+func growFloats(x []float64, n int) []float64 {
+	if cap(x) < n {
+		return make([]float64, n)
+	}
+	return x[:n]
 }
 
 func checkChains(chains [][]float64) int {

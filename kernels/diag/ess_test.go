@@ -62,3 +62,120 @@ func TestESSOfAR1(t *testing.T) {
 		}
 	}
 }
+
+// checkAbs fails the test if |got − want| > tol; src names the reference.
+func checkAbs(t *testing.T, name string, got, want, tol float64, src string) {
+	t.Helper()
+	if !(math.Abs(got-want) <= tol) {
+		t.Errorf("%s = %.12g, want %.12g ± %.3g (%s)", name, got, want, tol, src)
+	}
+}
+
+// The FFT path of the autocovariance must equal the definition
+// γ̂_t = (1/N)Σ(x_n − x̄)(x_{n+t} − x̄) at every lag (reference: the direct
+// sum, autocov). Lengths cover even, odd and prime N.
+func TestAutocovFFTMatchesDirect(t *testing.T) {
+	r := rand.New(rand.NewPCG(3, 4))
+	for _, n := range []int{4, 5, 97, 100, 1000} {
+		chains := make([][]float64, 3)
+		for m := range chains {
+			chains[m] = make([]float64, n)
+			x := 0.0
+			for i := range chains[m] {
+				x = 0.8*x + r.NormFloat64()
+				chains[m][i] = x + float64(m)
+			}
+		}
+		var s acovScratch
+		s.means = make([]float64, len(chains))
+		for m, c := range chains {
+			s.means[m] = mean(c)
+		}
+		s.reset(chains)
+		s.allLags()
+		for lag := range n {
+			var want float64
+			for m, c := range chains {
+				want += autocov(c, s.means[m], lag)
+			}
+			want /= float64(len(chains))
+			checkAbs(t, "FFT autocovariance", s.full[lag], want, 1e-12*(1+math.Abs(want)), "direct sum")
+		}
+	}
+}
+
+// A chain that needs more than directLags lags (a random walk: Geyer's
+// sequence stays positive far out) goes through the FFT; its ESS must
+// equal the direct computation of §9 step 5 (reference: the step written
+// out with the direct sum at every lag).
+func TestESSThroughFFTMatchesDirect(t *testing.T) {
+	r := rand.New(rand.NewPCG(5, 6))
+	chains := make([][]float64, 4)
+	for m := range chains {
+		chains[m] = make([]float64, 500)
+		x := 0.0
+		for i := range chains[m] {
+			x += r.NormFloat64()
+			chains[m][i] = x
+		}
+	}
+	var tr geyerTrace
+	var s acovScratch
+	got := geyerESS(chains, &s, &tr)
+	if len(tr.rho) <= directLags {
+		t.Fatalf("Geyer stopped at lag %d, the test needs the FFT path (> %d)", len(tr.rho), directLags)
+	}
+	// Direct: ρ̂_t from the definition, summed as in §9 step 5.
+	n, mm := 500, 4
+	means := make([]float64, mm)
+	var w float64
+	for m, c := range chains {
+		means[m] = mean(c)
+		w += variance(c, means[m])
+	}
+	w /= float64(mm)
+	vp := w*float64(n-1)/float64(n) + variance(means, mean(means))
+	rho := func(lag int) float64 {
+		var g float64
+		for m, c := range chains {
+			g += autocov(c, means[m], lag)
+		}
+		return 1 - (w-g/float64(mm))/vp
+	}
+	tau, prev := -1.0, math.Inf(1)
+	for k := 0; 2*k+1 <= n-1; k++ {
+		p := rho(2*k) + rho(2*k+1)
+		if k == 0 {
+			p = 1 + rho(1)
+		}
+		if p < 0 {
+			break
+		}
+		p = math.Min(p, prev)
+		prev = p
+		tau += 2 * p
+	}
+	want := float64(n*mm) / tau
+	checkAbs(t, "ESS of random walks", got, want, 1e-9*want, "direct §9 step 5")
+}
+
+func TestFFTSize(t *testing.T) {
+	// Smallest 2^i·3^j·5^k ≥ n, by enumeration (reference: the definition).
+	smooth := func(k int) bool {
+		for _, p := range []int{2, 3, 5} {
+			for k%p == 0 {
+				k /= p
+			}
+		}
+		return k == 1
+	}
+	for n := 1; n <= 3000; n++ {
+		want := n
+		for !smooth(want) {
+			want++
+		}
+		if got := fftSize(n); got != want {
+			t.Fatalf("fftSize(%d) = %d, want %d", n, got, want)
+		}
+	}
+}

@@ -1,0 +1,262 @@
+package diag
+
+import (
+	"fmt"
+	"math"
+)
+
+// History follows a run of several chains one step at a time in memory
+// that does not grow with the number of steps. It keeps two things:
+//
+// Thinned draws. At most capacity draws per chain, taken every interval-th
+// step from the start of the run. When the buffer is full, every second
+// kept draw is dropped and the interval doubles, so the kept draws are
+// always the draws at steps 0, k, 2k, ... of the whole run (k = Interval),
+// between capacity/2 and capacity of them per chain. Summarize computes
+// the THEORY.md §9 figures on them.
+//
+// Batch sums. Per chain and coordinate, the sums of consecutive batches of
+// b draws, b a power of two kept at about √n after n steps (THEORY.md §10
+// default b = ⌊√n⌋), at most capacity batches per chain (beyond n ≈
+// capacity²/4 the batches grow faster than √n). RunMeans estimates from
+// them the Monte Carlo error of the mean of the whole run, with running
+// means and variances of every draw.
+//
+// What the ESS of the thinned draws says about the whole run. The kept
+// draws form a chain whose autocorrelation at lag 1 is the full chain's at
+// lag k. For an AR(1) chain with coefficient ρ (THEORY.md §11d), n steps
+// and n/k kept draws,
+//
+//	ESS_full = n·(1−ρ)/(1+ρ),  ESS_kept ≈ (n/k)·(1−ρᵏ)/(1+ρᵏ).
+//
+// When k is well below the autocorrelation time τ (k(1−ρ) ≪ 1) the two
+// agree: thinning then discards only redundant draws and ESS_kept is an
+// estimate of ESS_full, with no rescaling. When k is comparable to τ or
+// above it, the kept draws are nearly independent and ESS_kept saturates
+// at about the number of kept draws, chains × Kept, while ESS_full keeps
+// growing as n/τ: ESS_kept is then a lower bound of ESS_full (for chains
+// whose autocorrelations are positive), never an estimate. R̂ and the
+// quantiles are unaffected in kind (they are figures of the kept draws'
+// distribution), but their MCSEs are those of the kept draws.
+//
+// RunMeans has no such saturation, but batch means need b ≫ τ: with
+// b ≈ √n they overstate the ESS of a chain whose τ is not well below √n
+// (an AR(1) with τ = 1999 after 10⁶ steps, b = 512: about 4.6 times). The
+// two are complementary, and the kept draws tell which applies: their own
+// autocorrelation time, chains·Kept/ESS_kept, near 1 means k ≳ τ, so the
+// thinned ESS is saturated and, when Batch is several times Interval,
+// RunMeans is the estimate to use; well above 1 means k ≪ τ, and the
+// thinned ESS estimates the whole run's.
+//
+// The zero value is not usable; call NewHistory. Add does not allocate. A
+// History is not safe for concurrent use.
+type History struct {
+	chains, dim, capacity int
+	row                   int // chains·dim values per step
+
+	steps    int
+	interval int
+	kept     int
+	buf      []float64 // capacity rows, time-major: buf[(t·chains + c)·dim + j]
+
+	batch   int       // current batch size b
+	batches int       // complete batches per chain
+	sums    []float64 // capacity rows of batch sums, same layout as buf
+	cur     []float64 // one row: sums of the batch being filled
+	curN    int
+	mu, m2  []float64 // one row each: running mean and sum of squared deviations (Welford)
+
+	ws     workspace
+	gather []float64
+	views  [][]float64
+}
+
+// minCapacity is the least capacity NewHistory accepts: after a
+// compaction at least 8 draws per chain remain, what Summarize needs.
+const minCapacity = 16
+
+// NewHistory returns a History for the given number of chains and
+// coordinates keeping at most capacity draws and capacity batch sums per
+// chain (an odd capacity is rounded up; at least 16). Its memory is about
+// 2·capacity·chains·dim float64 values, plus the scratch of Summarize
+// (about 8·capacity·chains values once called).
+func NewHistory(chains, dim, capacity int) *History {
+	if chains < 1 || dim < 1 || capacity < minCapacity {
+		panic(fmt.Sprintf("diag: NewHistory(%d, %d, %d) needs chains, dim ≥ 1 and capacity ≥ %d", chains, dim, capacity, minCapacity))
+	}
+	capacity += capacity % 2
+	row := chains * dim
+	return &History{
+		chains: chains, dim: dim, capacity: capacity, row: row,
+		interval: 1, batch: 1,
+		buf:  make([]float64, capacity*row),
+		sums: make([]float64, capacity*row),
+		cur:  make([]float64, row),
+		mu:   make([]float64, row),
+		m2:   make([]float64, row),
+	}
+}
+
+// Add records one step of every chain: step[c·dim + j] is coordinate j of
+// chain c. It panics if len(step) ≠ chains·dim.
+func (h *History) Add(step []float64) {
+	if len(step) != h.row {
+		panic(fmt.Sprintf("diag: History.Add got %d values, want chains·dim = %d", len(step), h.row))
+	}
+	if h.steps%h.interval == 0 {
+		if h.kept == h.capacity {
+			for i := 1; i < h.capacity/2; i++ {
+				copy(h.buf[i*h.row:(i+1)*h.row], h.buf[2*i*h.row:(2*i+1)*h.row])
+			}
+			h.kept = h.capacity / 2
+			h.interval *= 2
+		}
+		// The step is a multiple of the doubled interval too: the full
+		// buffer ended at step (capacity−1)·k and capacity is even.
+		copy(h.buf[h.kept*h.row:], step)
+		h.kept++
+	}
+	h.steps++
+	n := float64(h.steps)
+	for i, x := range step {
+		d := x - h.mu[i]
+		h.mu[i] += d / n
+		h.m2[i] += d * (x - h.mu[i])
+		h.cur[i] += x
+	}
+	h.curN++
+	if h.curN < h.batch {
+		return
+	}
+	copy(h.sums[h.batches*h.row:], h.cur)
+	clear(h.cur)
+	h.curN = 0
+	h.batches++
+	if h.batches == h.capacity || 4*h.batch*h.batch <= h.steps {
+		h.mergeBatches()
+	}
+}
+
+// mergeBatches adds adjacent pairs of batch sums, doubling b. An unpaired
+// last batch becomes the start of the batch being filled.
+func (h *History) mergeBatches() {
+	r := h.row
+	half := h.batches / 2
+	for i := range half {
+		dst, a, b := h.sums[i*r:(i+1)*r], h.sums[2*i*r:(2*i+1)*r], h.sums[(2*i+1)*r:(2*i+2)*r]
+		for j := range dst {
+			dst[j] = a[j] + b[j]
+		}
+	}
+	if h.batches%2 == 1 {
+		copy(h.cur, h.sums[(h.batches-1)*r:h.batches*r])
+		h.curN = h.batch
+	}
+	h.batches = half
+	h.batch *= 2
+}
+
+// Steps is the number of steps added so far.
+func (h *History) Steps() int { return h.steps }
+
+// Interval is the number of steps between kept draws.
+func (h *History) Interval() int { return h.interval }
+
+// Kept is the number of draws kept per chain.
+func (h *History) Kept() int { return h.kept }
+
+// Summarize returns the THEORY.md §9 figures of every coordinate computed
+// on the kept draws (see the type's comment for what their ESS means), or
+// nil while fewer than 8 draws per chain are kept.
+func (h *History) Summarize() []Summary {
+	if h.kept < 2*minHalf {
+		return nil
+	}
+	h.gather = growFloats(h.gather, h.chains*h.kept)
+	h.views = h.views[:0]
+	for c := range h.chains {
+		h.views = append(h.views, h.gather[c*h.kept:(c+1)*h.kept])
+	}
+	out := make([]Summary, h.dim)
+	for j := range out {
+		for c, v := range h.views {
+			for t := range v {
+				v[t] = h.buf[(t*h.chains+c)*h.dim+j]
+			}
+		}
+		out[j] = h.ws.summary(h.views)
+	}
+	return out
+}
+
+// RunMean holds figures of the mean of one coordinate over every draw of
+// every chain added so far (S = chains × Steps draws).
+type RunMean struct {
+	Mean float64 // mean of all S draws
+	SD   float64 // their standard deviation, divisor S − 1
+	// ESS = S·SD²/σ̂², with σ̂² the batch-means estimate of the asymptotic
+	// variance pooled over chains about the mean of all batch means:
+	// σ̂² = (b/(a·M − 1))·Σ_{m,k} (Ȳ_{m,k} − Ȳ)², a complete batches of b
+	// draws per chain (the draws of an incomplete last batch are left out
+	// of σ̂² only).
+	ESS     float64
+	MCSE    float64 // √(σ̂²/S) = SD/√ESS
+	Batches int     // a·M, the number of batch means behind σ̂²
+	Batch   int     // b
+}
+
+// RunMeans returns the RunMean of every coordinate. Every figure is NaN
+// before the first step; ESS and MCSE are NaN while fewer than two batches
+// are complete or when a coordinate is constant. The relative standard error of σ̂² is about √(2/(a·M − 1))
+// and its relative bias about −(Σ_{t≠0}|t|ρ_t)/(τ·b) (common practice for
+// batch means), small when b ≫ τ.
+func (h *History) RunMeans() []RunMean {
+	out := make([]RunMean, h.dim)
+	n := float64(h.steps)
+	tot := n * float64(h.chains)
+	nb := h.batches * h.chains
+	if h.steps == 0 {
+		nan := math.NaN()
+		for j := range out {
+			out[j] = RunMean{nan, nan, nan, nan, 0, h.batch}
+		}
+		return out
+	}
+	for j := range out {
+		var mu float64
+		for c := range h.chains {
+			mu += h.mu[c*h.dim+j]
+		}
+		mu /= float64(h.chains)
+		var ss float64
+		for c := range h.chains {
+			d := h.mu[c*h.dim+j] - mu
+			ss += h.m2[c*h.dim+j] + n*d*d
+		}
+		r := RunMean{Mean: mu, SD: math.Sqrt(ss / (tot - 1)), Batches: nb, Batch: h.batch, ESS: math.NaN(), MCSE: math.NaN()}
+		if nb >= 2 {
+			b := float64(h.batch)
+			var ybar float64
+			for k := range h.batches {
+				for c := range h.chains {
+					ybar += h.sums[(k*h.chains+c)*h.dim+j] / b
+				}
+			}
+			ybar /= float64(nb)
+			var q float64
+			for k := range h.batches {
+				for c := range h.chains {
+					d := h.sums[(k*h.chains+c)*h.dim+j]/b - ybar
+					q += d * d
+				}
+			}
+			sig2 := b * q / float64(nb-1)
+			if sig2 > 0 {
+				r.ESS = tot * r.SD * r.SD / sig2
+				r.MCSE = math.Sqrt(sig2 / tot)
+			}
+		}
+		out[j] = r
+	}
+	return out
+}
