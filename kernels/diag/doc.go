@@ -44,6 +44,28 @@
 // on it) and batch sums with b ≈ √n (the ESS and MCSE of the whole run's
 // mean); its comment says what the thinned ESS does and does not estimate.
 //
+// Kernel Stein discrepancy (THEORY.md §8; Liu, Lee and Jordan, ICML 2016;
+// Gorham and Mackey, ICML 2017) measures how far draws x_i are from π using
+// only their scores s_i = ∇log π(x_i), the gradients the session already
+// has. With the IMQ base kernel k = (c² + ‖x−y‖²)^β (default c = 1, β = −½),
+// r = x − y, S = c² + ‖r‖²:
+//
+//	k₀(x,y) = s(x)ᵀs(y)S^β + 2βS^{β−1}rᵀ(s(y) − s(x)) − 2βd·S^{β−1} − 4β(β−1)‖r‖²S^{β−2}
+//	KSD²_V = (1/n²)Σ_{i,j} k₀(x_i,x_j),   KSD²_U = (1/(n(n−1)))Σ_{i≠j} k₀(x_i,x_j)
+//
+// StreamKSD keeps an evenly thinned, bounded subsample of a long run
+// (stride doubling) and computes the U-statistic on it when asked.
+//
+// Curvature from gradient pairs (THEORY.md §12): with f = −log π,
+// s = x − y, y_g = ∇f(x) − ∇f(y),
+//
+//	r_in = ⟨y_g,s⟩/‖s‖²  ≤  r_norm = ‖y_g‖/‖s‖  ≤  r_coc = ‖y_g‖²/⟨y_g,s⟩,  all in [m, M]
+//
+// so pairs certify M ≥ max r_coc and m ≤ min r_in (r_in < 0: not convex).
+// CurvatureProbe estimates M (and m, via σI − ∇²f) by power iteration with
+// Hessian-vector products (∇f(θ+εv) − ∇f(θ))/ε, as an ask/tell machine
+// costing one extra gradient per iteration.
+//
 // Shapes that do not fit (ragged chains, too few draws, bad levels) are
 // programmer errors and panic; figures that the data leave undefined
 // (a constant quantity, a NaN draw, a singular covariance) are NaN.
