@@ -41,6 +41,21 @@ type Spec struct {
 	Wants Wants
 	// Friction and InverseMass tune the kinetic kernels (0: defaults).
 	Friction, InverseMass float64
+	// KrylovTolerance and KrylovMaxIterations tune ozaki-krylov (0:
+	// defaults).
+	KrylovTolerance     float64
+	KrylovMaxIterations int
+	// Noise describes stochastic gradients (nil: exact).
+	Noise *Noise
+}
+
+// Noise describes stochastic gradients: declared variance of one
+// replicate's error per coordinate and bias (0: not declared), data and
+// minibatch sizes (for epochs), and replicates per point (0: 1).
+type Noise struct {
+	Variance, Bias          float64
+	DataSize, MinibatchSize int64
+	Replicates              int
 }
 
 // Curvature declares m·I ⪯ ∇²(−log π) ⪯ M·I; StartDistance bounds
@@ -87,6 +102,15 @@ type Batch struct {
 	// Vectors holds Rows×Dim values when WantHessianVector: HessVec
 	// receives the Hessian of log π at each point times its vector.
 	Vectors, HessVec []float64
+	// Groups, when not nil, gives each row's minibatch group: rows with
+	// the same group ≥ 0 must be evaluated on the same minibatch.
+	Groups []int
+	// FullData asks for exact gradients over the whole data set.
+	FullData bool
+	// Replicates is the number of independent gradient estimates to
+	// return per row: Grad then holds Rows×Replicates×Dim values, row r's
+	// replicate j at offset (r·Replicates + j)·Dim.
+	Replicates int
 }
 
 // Point returns row r of Points.
@@ -152,6 +176,34 @@ type Progress struct {
 	Curvature CurvatureEstimate
 	// Targets reports each requested target.
 	Targets []TargetStatus
+	// Noise reports stochastic-gradient noise (nil for exact gradients).
+	Noise *NoiseEstimate
+	// Kernel is what the kernel reports of itself.
+	Kernel KernelReport
+}
+
+// NoiseEstimate: measured variance of one replicate's error per
+// coordinate (−1 without replicates) and its standard error, requests it
+// rests on, the declared variance, epochs, and a warning when they
+// disagree.
+type NoiseEstimate struct {
+	Variance, SE float64
+	Requests     int64
+	Declared     float64
+	Epochs       float64
+	Warning      string
+}
+
+// KernelReport: the step in use, whether it is still adapting, per-chain
+// acceptance rates (MALA), and the last step's Lanczos figures
+// (ozaki-krylov).
+type KernelReport struct {
+	Step                float64
+	Adapting            bool
+	AcceptanceRates     []float64
+	KrylovIterations    int
+	KrylovErrorEstimate float64
+	KrylovUnconverged   int
 }
 
 // Diagnostics is the measured accuracy of one parameter.
@@ -284,7 +336,17 @@ func registerFrame(spec Spec, limit int64) *sluicev1.SessionRequest {
 		Seed: spec.Seed, Names: spec.Names, MaxMessageBytes: limit,
 		Curvature: curvatureToWire(spec.Curvature), Wants: wantsToWire(spec.Wants),
 		Friction: spec.Friction, InverseMass: spec.InverseMass,
+		KrylovTolerance: spec.KrylovTolerance, KrylovMaxIterations: int32(spec.KrylovMaxIterations),
+		Noise: noiseToWire(spec.Noise),
 	}}}
+}
+
+func noiseToWire(n *Noise) *sluicev1.GradientNoise {
+	if n == nil {
+		return nil
+	}
+	return &sluicev1.GradientNoise{Kind: sluicev1.GradientKind_GRADIENT_KIND_STOCHASTIC, Variance: n.Variance, Bias: n.Bias,
+		DataSize: n.DataSize, MinibatchSize: n.MinibatchSize, Replicates: int32(n.Replicates)}
 }
 
 func curvatureToWire(c *Curvature) *sluicev1.Curvature {
@@ -400,7 +462,16 @@ func (r *runner) answer(ctx context.Context, p *sluicev1.Points) error {
 			b.WantHessianVector = true
 		}
 	}
-	b.Grad = resize(b.Grad, n)
+	b.Replicates = max(1, int(p.GetReplicates()))
+	b.FullData = p.GetFullData()
+	b.Groups = b.Groups[:0]
+	for _, g := range p.GetMinibatchGroups() {
+		b.Groups = append(b.Groups, int(g))
+	}
+	if len(p.GetMinibatchGroups()) == 0 {
+		b.Groups = nil
+	}
+	b.Grad = resize(b.Grad, n*b.Replicates)
 	b.LogDensity = resize(b.LogDensity, b.Rows)
 	if b.WantHessian {
 		b.Hessian = resize(b.Hessian, n*b.Dim)
@@ -507,6 +578,15 @@ func progressFromWire(p *sluicev1.Progress) Progress {
 	for _, d := range p.GetParameters() {
 		out.Parameters = append(out.Parameters, Diagnostics{Name: d.GetName(), Mean: d.GetMean(), SD: d.GetSd(), Rhat: d.GetRhat(),
 			BulkESS: d.GetBulkEss(), TailESS: d.GetTailEss(), MCSE: d.GetMcseMean()})
+	}
+	if n := p.GetNoise(); n != nil {
+		out.Noise = &NoiseEstimate{Variance: n.GetVariance(), SE: n.GetVarianceSe(), Requests: n.GetRequests(),
+			Declared: n.GetDeclared(), Epochs: n.GetEpochs(), Warning: n.GetWarning()}
+	}
+	if k := p.GetKernel(); k != nil {
+		out.Kernel = KernelReport{Step: k.GetStep(), Adapting: k.GetAdapting(), AcceptanceRates: k.GetAcceptanceRates(),
+			KrylovIterations: int(k.GetKrylovIterations()), KrylovErrorEstimate: k.GetKrylovErrorEstimate(),
+			KrylovUnconverged: int(k.GetKrylovUnconverged())}
 	}
 	for _, t := range p.GetTargets() {
 		out.Targets = append(out.Targets, TargetStatus{Name: t.GetName(), Want: t.GetWant(), Current: t.GetCurrent(), Met: t.GetMet(),

@@ -117,6 +117,10 @@ func (k *MALA) Steps() int { return k.steps }
 // Step returns the current step size h (frozen once Adapting is false).
 func (k *MALA) Step() float64 { return k.h }
 
+// Scores implements Scorer: ∇log π at the current positions, kept from
+// the accepted points.
+func (k *MALA) Scores() []float64 { return k.gx }
+
 // BurnIn returns the number of steps during which h is adapted.
 func (k *MALA) BurnIn() int { return k.burnIn }
 

@@ -29,8 +29,13 @@ func specFromWire(r *sluicev1.Register) (session.Spec, error) {
 	wants := session.Wants{MinBulkESS: w.GetMinBulkEss(), MinTailESS: w.GetMinTailEss(), MaxRhat: w.GetMaxRhat(),
 		MaxKSD: w.GetMaxKsd(), Eps: w.GetEps(), Metric: metricFromWire[w.GetMetric()]}
 	return session.Spec{
-		Curvature:          curv,
-		Friction:           r.GetFriction(),
+		Curvature:           curv,
+		Friction:            r.GetFriction(),
+		KrylovTolerance:     r.GetKrylovTolerance(),
+		KrylovMaxIterations: int(r.GetKrylovMaxIterations()),
+		Noise: session.Noise{Stochastic: r.GetNoise().GetKind() == sluicev1.GradientKind_GRADIENT_KIND_STOCHASTIC,
+			Variance: r.GetNoise().GetVariance(), Bias: r.GetNoise().GetBias(), DataSize: r.GetNoise().GetDataSize(),
+			MinibatchSize: r.GetNoise().GetMinibatchSize(), Replicates: int(r.GetNoise().GetReplicates())},
 		InverseMass:        r.GetInverseMass(),
 		Wants:              wants,
 		Dim:                int(r.GetDim()),
@@ -128,6 +133,13 @@ func (e *encoder) frame(f session.Frame) *sluicev1.SessionResponse {
 			q = append(q, sluicev1.Quantity_QUANTITY_HESSIAN_VECTOR)
 			p.Vectors = putFloats(nil, f.Vectors)
 		}
+		if f.Groups != nil {
+			p.MinibatchGroups = make([]int32, len(f.Groups))
+			for i, g := range f.Groups {
+				p.MinibatchGroups[i] = int32(g)
+			}
+		}
+		p.FullData, p.Replicates = f.FullData, int32(f.Replicates)
 		p.Quantities = q
 		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Points{Points: p}}
 	case *session.Draws:
@@ -179,6 +191,13 @@ func progressToWire(p *session.Progress) *sluicev1.Progress {
 	for _, d := range p.Parameters {
 		w.Parameters = append(w.Parameters, &sluicev1.ParameterDiagnostics{Name: d.Name, Mean: d.Mean, Sd: d.SD,
 			Rhat: d.Rhat, BulkEss: d.BulkESS, TailEss: d.TailESS, McseMean: d.MCSE})
+	}
+	k := p.Kernel
+	w.Kernel = &sluicev1.KernelReport{Step: k.Step, Adapting: k.Adapting, AcceptanceRates: k.AcceptanceRates,
+		KrylovIterations: int32(k.Krylov.MaxIterations), KrylovErrorEstimate: k.Krylov.MaxEstimate, KrylovUnconverged: int32(k.Krylov.Unconverged)}
+	if n := p.Noise; n != nil {
+		w.Noise = &sluicev1.NoiseEstimate{Variance: n.Variance, VarianceSe: n.SE, Requests: n.Requests, Declared: n.Declared,
+			Epochs: n.Epochs, Warning: n.Warning}
 	}
 	for _, t := range p.Targets {
 		w.Targets = append(w.Targets, &sluicev1.TargetStatus{Name: t.Name, Want: t.Want, Current: t.Current, Met: t.Met,

@@ -119,6 +119,8 @@ func (g *guarantee) stepsTo(eps float64, k int) int {
 // certificates). Its memory is bounded independently of the run length.
 type monitor struct {
 	dim, chains int
+	names       []string
+	hist        *diag.History
 	ksd         *diag.StreamKSD
 	curv        diag.CurvatureBounds
 	// last evaluated point and gradient per chain, for the pairs.
@@ -132,14 +134,21 @@ type monitor struct {
 	// at most a tenth of the session's wall time.
 	spent   time.Duration
 	lastKSD float64
+	// The last measured figures, for the targets.
+	params   []ParameterDiagnostics
+	measured bool
 }
 
-func newMonitor(dim, chains int) *monitor {
+func newMonitor(dim, chains int, names []string) *monitor {
 	// The U-statistic costs O(K²·dim) on K kept draws: keep K near
 	// √(5·10⁷/dim), at least two rounds of chains.
 	k := int(math.Sqrt(5e7 / float64(dim)))
 	k = max(2*chains, min(k, 2048))
-	return &monitor{dim: dim, chains: chains, ksd: diag.NewStreamKSD(diag.IMQ{}, dim, chains, k),
+	// The §9 figures sort every coordinate's kept draws: keep about 4·10⁶
+	// values in all, between 16 and 4096 draws per chain.
+	h := max(16, min(4096, (4<<20)/(chains*dim)))
+	return &monitor{dim: dim, chains: chains, names: names, hist: diag.NewHistory(chains, dim, h),
+		ksd:   diag.NewStreamKSD(diag.IMQ{}, dim, chains, k),
 		lastX: make([]float64, dim*chains), lastG: make([]float64, dim*chains), haveLast: make([]bool, chains),
 		keptX: make([]float64, dim*chains), lastKSD: -1}
 }
@@ -171,6 +180,7 @@ func (m *monitor) answered(req *kernels.Request, a *kernels.Answer) {
 // kept records the positions of a kept step; k is the kernel, which may
 // know the scores there already.
 func (m *monitor) kept(k kernels.Kernel) {
+	m.hist.Add(k.Positions())
 	if sc, ok := k.(kernels.Scorer); ok {
 		m.ksd.Add(k.Positions(), sc.Scores())
 		return
@@ -193,5 +203,50 @@ func (m *monitor) measure(p *Progress) {
 		m.lastKSD = m.ksd.Result().U()
 		p.KSD = m.lastKSD
 	}
+	if sum := m.hist.Summarize(); sum != nil {
+		m.params = m.params[:0]
+		for j, d := range sum {
+			m.params = append(m.params, ParameterDiagnostics{Name: m.names[j], Mean: d.Mean, SD: d.SD,
+				Rhat: d.Rhat.Reported, BulkESS: d.BulkESS, TailESS: d.TailESS, MCSE: d.MeanMCSE})
+		}
+		m.measured = true
+	}
 	m.spent += time.Since(t)
+	p.Parameters = m.params
+}
+
+// worst returns the smallest bulk-ESS, the smallest tail-ESS and the
+// largest R-hat over the parameters of the last measurement (NaN counts
+// as failing: it gives −Inf for the ESSs and +Inf for R-hat).
+func (m *monitor) worst() (bulk, tail, rhat float64) {
+	bulk, tail, rhat = math.Inf(1), math.Inf(1), math.Inf(-1)
+	for _, p := range m.params {
+		bulk = math.Min(bulk, nanTo(p.BulkESS, math.Inf(-1)))
+		tail = math.Min(tail, nanTo(p.TailESS, math.Inf(-1)))
+		rhat = math.Max(rhat, nanTo(p.Rhat, math.Inf(1)))
+	}
+	return bulk, tail, rhat
+}
+
+func nanTo(v, w float64) float64 {
+	if math.IsNaN(v) {
+		return w
+	}
+	return v
+}
+
+// kernelReport collects what a kernel says of itself.
+func kernelReport(k kernels.Kernel) KernelReport {
+	var r KernelReport
+	if s, ok := k.(interface{ Step() float64 }); ok {
+		r.Step = s.Step()
+	}
+	if m, ok := k.(*kernels.MALA); ok {
+		r.Adapting = m.Adapting()
+		r.AcceptanceRates = m.AcceptanceRates()
+	}
+	if o, ok := k.(*kernels.OzakiKrylov); ok {
+		r.Krylov = o.LastStep()
+	}
+	return r
 }

@@ -90,6 +90,16 @@ type Progress struct {
 	Targets []TargetStatus
 	// Noise reports gradient noise (stochastic gradients only).
 	Noise *NoiseEstimate
+	// Kernel is what the kernel reports of itself.
+	Kernel KernelReport
+}
+
+// KernelReport holds a kernel's own figures (zero when it has none).
+type KernelReport struct {
+	Step            float64
+	Adapting        bool
+	AcceptanceRates []float64
+	Krylov          kernels.KrylovStats
 }
 
 // NoiseEstimate reports stochastic-gradient noise.

@@ -96,6 +96,20 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 		s.kernel = kernels.NewMidpoint(spec.Dim, spec.Chains, spec.Step, u, spec.Start, nil, src)
 	case "midpoint-overdamped":
 		s.kernel = kernels.NewOverdampedMidpoint(spec.Dim, spec.Chains, spec.Step, spec.Start, src)
+	case "mala":
+		// Adaptation ends with burn-in, so no kept draw comes from it.
+		s.kernel = kernels.NewMALA(spec.Dim, spec.Chains, spec.Step, int(min(spec.BurnIn, math.MaxInt32)), spec.Start, src)
+	case "ozaki":
+		s.kernel = kernels.NewOzaki(spec.Dim, spec.Chains, spec.Step, spec.Start, src)
+	case "ozaki-krylov":
+		tol, iters := spec.KrylovTolerance, spec.KrylovMaxIterations
+		if tol == 0 {
+			tol = 1e-8
+		}
+		if iters == 0 {
+			iters = min(spec.Dim, 64)
+		}
+		s.kernel = kernels.NewOzakiKrylov(spec.Dim, spec.Chains, spec.Step, spec.Start, tol, iters, src)
 	default:
 		return nil, BadField("register.kernel", "unknown kernel %q", spec.Kernel)
 	}
@@ -107,7 +121,7 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 	if lim.FollowBuffer > 0 {
 		s.log = NewDrawLog(spec.Dim, min(lim.FollowBuffer, max(1, maxFollowBytes/(8*spec.Dim))))
 	}
-	s.mon = newMonitor(spec.Dim, spec.Chains)
+	s.mon = newMonitor(spec.Dim, spec.Chains, spec.Names)
 	s.answer = kernels.NewAnswer(spec.Chains, spec.Dim)
 	s.mean = make([]float64, spec.Dim)
 	s.m2 = make([]float64, spec.Dim)
@@ -483,8 +497,10 @@ func (s *Session) sendDraws(step int64, send func(Frame) error) error {
 	for c := range chains {
 		s.drawIters[c] = step
 	}
-	for lo := 0; lo < chains; lo += s.rowsPerPart {
-		hi := min(lo+s.rowsPerPart, chains)
+	// A draw row costs its values plus varint chain and iteration.
+	per := max(1, int((s.msgBytes-1024)/int64(8*dim+24)))
+	for lo := 0; lo < chains; lo += per {
+		hi := min(lo+per, chains)
 		s.draws = Draws{Seq: s.seq, Rows: hi - lo, Dim: dim, Values: x[lo*dim : hi*dim],
 			Chains: s.drawChains[lo:hi], Iterations: s.drawIters[lo:hi]}
 		if s.log != nil {
@@ -515,6 +531,19 @@ func (s *Session) targetsMet() bool {
 	if w.Eps > 0 && (s.epsSteps < 0 || s.kernel.Steps() < s.epsSteps) {
 		return false
 	}
+	if w.MinBulkESS > 0 || w.MinTailESS > 0 || w.MaxRhat > 0 {
+		if !s.mon.measured {
+			return false
+		}
+		bulk, tail, rhat := s.mon.worst()
+		if (w.MinBulkESS > 0 && !(bulk >= w.MinBulkESS)) || (w.MinTailESS > 0 && !(tail >= w.MinTailESS)) ||
+			(w.MaxRhat > 0 && !(rhat <= w.MaxRhat)) {
+			return false
+		}
+	}
+	if w.MaxKSD > 0 && !(s.mon.lastKSD >= 0 && s.mon.lastKSD <= w.MaxKSD) {
+		return false
+	}
 	return true
 }
 
@@ -534,7 +563,42 @@ func (s *Session) targets(b *bound.Bound) []TargetStatus {
 		}
 		out = append(out, t)
 	}
+	if !w.any() {
+		return out
+	}
+	bulk, tail, rhat := s.mon.worst()
+	// Effective sample sizes grow in proportion to the evaluations spent
+	// after burn-in: project at that rate.
+	since := s.used - s.burnInCost()
+	grow := func(name string, want, cur float64) {
+		t := TargetStatus{Name: name, Want: want, Current: cur, Met: cur >= want, ProjectedEvaluations: -1}
+		if t.Met {
+			t.ProjectedEvaluations = 0
+		} else if cur > 0 && since > 0 && !math.IsInf(cur, 0) {
+			t.ProjectedEvaluations = int64(math.Ceil((want/cur - 1) * float64(since)))
+		}
+		out = append(out, t)
+	}
+	if w.MinBulkESS > 0 {
+		grow("min_bulk_ess", w.MinBulkESS, bulk)
+	}
+	if w.MinTailESS > 0 {
+		grow("min_tail_ess", w.MinTailESS, tail)
+	}
+	if w.MaxRhat > 0 {
+		out = append(out, TargetStatus{Name: "max_rhat", Want: w.MaxRhat, Current: rhat, Met: rhat <= w.MaxRhat, ProjectedEvaluations: -1})
+	}
+	if w.MaxKSD > 0 {
+		k := s.mon.lastKSD
+		out = append(out, TargetStatus{Name: "max_ksd", Want: w.MaxKSD, Current: k, Met: k >= 0 && k <= w.MaxKSD, ProjectedEvaluations: -1})
+	}
 	return out
+}
+
+// burnInCost is the evaluations the burn-in steps took (per-step cost
+// times burn-in, capped at what was used).
+func (s *Session) burnInCost() int64 {
+	return min(s.used, s.spec.BurnIn*int64(s.kernel.EvaluationsPerStep()))
 }
 
 func (s *Session) progress(now time.Time) Progress {
@@ -558,6 +622,7 @@ func (s *Session) progress(now time.Time) Progress {
 		p.EvaluationsPerSecond = float64(s.used) / sec
 	}
 	s.mon.measure(&p)
+	p.Kernel = kernelReport(s.kernel)
 	if s.spec.Noise.Stochastic {
 		n := s.noise.estimate(s.spec.Noise)
 		p.Noise = &n

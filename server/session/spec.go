@@ -53,6 +53,10 @@ type Spec struct {
 	Friction, InverseMass float64
 	// Noise describes the client's gradients; the zero value means exact.
 	Noise Noise
+	// KrylovTolerance (0: 1e-8) and KrylovMaxIterations (0: min(dim, 64))
+	// tune the ozaki-krylov kernel.
+	KrylovTolerance     float64
+	KrylovMaxIterations int
 }
 
 // Noise describes stochastic gradients.
@@ -68,7 +72,7 @@ type Noise struct {
 }
 
 // exactOnly lists kernels whose correctness needs exact gradients.
-var exactOnly = map[string]bool{"mala": true, "ozaki": true}
+var exactOnly = map[string]bool{"mala": true, "ozaki": true, "ozaki-krylov": true}
 
 // Curvature declares m·I ⪯ ∇²f ⪯ M·I for the potential f = −log π.
 type Curvature struct {
@@ -145,7 +149,7 @@ func (l Limits) withDefaults() Limits {
 }
 
 // Kernels lists the kernel names a Spec may ask for.
-var Kernels = []string{"lmc", "kinetic", "midpoint", "midpoint-overdamped"}
+var Kernels = []string{"lmc", "kinetic", "midpoint", "midpoint-overdamped", "mala", "ozaki", "ozaki-krylov"}
 
 func (s *Spec) validate(l Limits) error {
 	bad := func(field, format string, args ...any) error { return BadField("register."+field, format, args...) }
@@ -193,6 +197,12 @@ func (s *Spec) validate(l Limits) error {
 		if math.IsNaN(f.v) || math.IsInf(f.v, 0) || f.v < 0 {
 			return bad(f.name, "must be finite and >= 0, got %v", f.v)
 		}
+	}
+	if t := s.KrylovTolerance; math.IsNaN(t) || t < 0 || t >= 1 {
+		return bad("krylov_tolerance", "must be in [0, 1), got %v", t)
+	}
+	if s.KrylovMaxIterations < 0 {
+		return bad("krylov_max_iterations", "must be >= 0, got %d", s.KrylovMaxIterations)
 	}
 	if err := s.validateNoise(); err != nil {
 		return err

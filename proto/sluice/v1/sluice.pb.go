@@ -1040,6 +1040,17 @@ type Register struct {
 	//	                      2 gradients per chain per step
 	//	"midpoint-overdamped" randomised midpoint for overdamped Langevin;
 	//	                      2 gradients per chain per step
+	//	"mala"                Metropolis-adjusted Langevin; asks log density
+	//	                      and gradient at 1 proposal per chain per step
+	//	                      (plus the start points once); the step adapts
+	//	                      toward 0.574 acceptance during burn-in only;
+	//	                      exact gradients only
+	//	"ozaki"               local linear (Ozaki) discretisation; asks
+	//	                      gradient and dense Hessian per chain per step;
+	//	                      exact for Gaussian targets; exact gradients only
+	//	"ozaki-krylov"        the same with Hessian-vector products and a
+	//	                      Lanczos approximation, for large dim; several
+	//	                      requests per step
 	Kernel string `protobuf:"bytes,3,opt,name=kernel,proto3" json:"kernel,omitempty"`
 	// Start points, row-major float64 (see the array convention): either
 	// chains x dim (one row per chain) or 1 x dim (every chain starts there).
@@ -1097,6 +1108,11 @@ type Register struct {
 	// Inverse mass u > 0 of the kinetic and midpoint kernels (0 means 1/M
 	// when curvature is declared, else 1).
 	InverseMass float64 `protobuf:"fixed64,20,opt,name=inverse_mass,json=inverseMass,proto3" json:"inverse_mass,omitempty"`
+	// Accuracy of the "ozaki-krylov" kernel: relative tolerance of its
+	// Lanczos approximations (0 means 1e-8) and the most Lanczos iterations
+	// per vector (0 means min(dim, 64)).
+	KrylovTolerance     float64 `protobuf:"fixed64,22,opt,name=krylov_tolerance,json=krylovTolerance,proto3" json:"krylov_tolerance,omitempty"`
+	KrylovMaxIterations int32   `protobuf:"varint,23,opt,name=krylov_max_iterations,json=krylovMaxIterations,proto3" json:"krylov_max_iterations,omitempty"`
 	// How the client's gradients are made: exact (the default) or
 	// stochastic (minibatches, Monte Carlo estimates, noisy simulators).
 	Noise         *GradientNoise `protobuf:"bytes,21,opt,name=noise,proto3" json:"noise,omitempty"`
@@ -1270,6 +1286,20 @@ func (x *Register) GetFriction() float64 {
 func (x *Register) GetInverseMass() float64 {
 	if x != nil {
 		return x.InverseMass
+	}
+	return 0
+}
+
+func (x *Register) GetKrylovTolerance() float64 {
+	if x != nil {
+		return x.KrylovTolerance
+	}
+	return 0
+}
+
+func (x *Register) GetKrylovMaxIterations() int32 {
+	if x != nil {
+		return x.KrylovMaxIterations
 	}
 	return 0
 }
@@ -2088,7 +2118,9 @@ type Progress struct {
 	// Each requested target, whether it holds, and what reaching it costs.
 	Targets []*TargetStatus `protobuf:"bytes,13,rep,name=targets,proto3" json:"targets,omitempty"`
 	// Gradient noise, for stochastic gradients.
-	Noise         *NoiseEstimate `protobuf:"bytes,14,opt,name=noise,proto3" json:"noise,omitempty"`
+	Noise *NoiseEstimate `protobuf:"bytes,14,opt,name=noise,proto3" json:"noise,omitempty"`
+	// What the kernel reports of itself.
+	Kernel        *KernelReport `protobuf:"bytes,15,opt,name=kernel,proto3" json:"kernel,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -2221,6 +2253,105 @@ func (x *Progress) GetNoise() *NoiseEstimate {
 	return nil
 }
 
+func (x *Progress) GetKernel() *KernelReport {
+	if x != nil {
+		return x.Kernel
+	}
+	return nil
+}
+
+// KernelReport holds a kernel's own figures.
+type KernelReport struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The step size in use.
+	Step float64 `protobuf:"fixed64,1,opt,name=step,proto3" json:"step,omitempty"`
+	// True while the step is being adapted (MALA, during burn-in only).
+	Adapting bool `protobuf:"varint,2,opt,name=adapting,proto3" json:"adapting,omitempty"`
+	// Fraction of accepted proposals per chain in the current phase
+	// (burn-in, then sampling); empty for kernels without a rejection step.
+	AcceptanceRates []float64 `protobuf:"fixed64,3,rep,packed,name=acceptance_rates,json=acceptanceRates,proto3" json:"acceptance_rates,omitempty"`
+	// Lanczos figures of the last step (ozaki-krylov): the most iterations a
+	// vector needed, the largest relative error estimate, and how many
+	// vectors stopped at the iteration cap before reaching the tolerance.
+	KrylovIterations    int32   `protobuf:"varint,4,opt,name=krylov_iterations,json=krylovIterations,proto3" json:"krylov_iterations,omitempty"`
+	KrylovErrorEstimate float64 `protobuf:"fixed64,5,opt,name=krylov_error_estimate,json=krylovErrorEstimate,proto3" json:"krylov_error_estimate,omitempty"`
+	KrylovUnconverged   int32   `protobuf:"varint,6,opt,name=krylov_unconverged,json=krylovUnconverged,proto3" json:"krylov_unconverged,omitempty"`
+	unknownFields       protoimpl.UnknownFields
+	sizeCache           protoimpl.SizeCache
+}
+
+func (x *KernelReport) Reset() {
+	*x = KernelReport{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *KernelReport) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*KernelReport) ProtoMessage() {}
+
+func (x *KernelReport) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use KernelReport.ProtoReflect.Descriptor instead.
+func (*KernelReport) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{16}
+}
+
+func (x *KernelReport) GetStep() float64 {
+	if x != nil {
+		return x.Step
+	}
+	return 0
+}
+
+func (x *KernelReport) GetAdapting() bool {
+	if x != nil {
+		return x.Adapting
+	}
+	return false
+}
+
+func (x *KernelReport) GetAcceptanceRates() []float64 {
+	if x != nil {
+		return x.AcceptanceRates
+	}
+	return nil
+}
+
+func (x *KernelReport) GetKrylovIterations() int32 {
+	if x != nil {
+		return x.KrylovIterations
+	}
+	return 0
+}
+
+func (x *KernelReport) GetKrylovErrorEstimate() float64 {
+	if x != nil {
+		return x.KrylovErrorEstimate
+	}
+	return 0
+}
+
+func (x *KernelReport) GetKrylovUnconverged() int32 {
+	if x != nil {
+		return x.KrylovUnconverged
+	}
+	return 0
+}
+
 // NoiseEstimate reports stochastic-gradient noise.
 type NoiseEstimate struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -2245,7 +2376,7 @@ type NoiseEstimate struct {
 
 func (x *NoiseEstimate) Reset() {
 	*x = NoiseEstimate{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2257,7 +2388,7 @@ func (x *NoiseEstimate) String() string {
 func (*NoiseEstimate) ProtoMessage() {}
 
 func (x *NoiseEstimate) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2270,7 +2401,7 @@ func (x *NoiseEstimate) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use NoiseEstimate.ProtoReflect.Descriptor instead.
 func (*NoiseEstimate) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{16}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{17}
 }
 
 func (x *NoiseEstimate) GetVariance() float64 {
@@ -2333,7 +2464,7 @@ type ParameterDiagnostics struct {
 
 func (x *ParameterDiagnostics) Reset() {
 	*x = ParameterDiagnostics{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2345,7 +2476,7 @@ func (x *ParameterDiagnostics) String() string {
 func (*ParameterDiagnostics) ProtoMessage() {}
 
 func (x *ParameterDiagnostics) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2358,7 +2489,7 @@ func (x *ParameterDiagnostics) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ParameterDiagnostics.ProtoReflect.Descriptor instead.
 func (*ParameterDiagnostics) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{17}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{18}
 }
 
 func (x *ParameterDiagnostics) GetName() string {
@@ -2434,7 +2565,7 @@ type Bound struct {
 
 func (x *Bound) Reset() {
 	*x = Bound{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2446,7 +2577,7 @@ func (x *Bound) String() string {
 func (*Bound) ProtoMessage() {}
 
 func (x *Bound) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2459,7 +2590,7 @@ func (x *Bound) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Bound.ProtoReflect.Descriptor instead.
 func (*Bound) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{18}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{19}
 }
 
 func (x *Bound) GetMetric() Metric {
@@ -2537,7 +2668,7 @@ type CurvatureEstimate struct {
 
 func (x *CurvatureEstimate) Reset() {
 	*x = CurvatureEstimate{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2549,7 +2680,7 @@ func (x *CurvatureEstimate) String() string {
 func (*CurvatureEstimate) ProtoMessage() {}
 
 func (x *CurvatureEstimate) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2562,7 +2693,7 @@ func (x *CurvatureEstimate) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use CurvatureEstimate.ProtoReflect.Descriptor instead.
 func (*CurvatureEstimate) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{19}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{20}
 }
 
 func (x *CurvatureEstimate) GetPairs() int64 {
@@ -2610,7 +2741,7 @@ type TargetStatus struct {
 
 func (x *TargetStatus) Reset() {
 	*x = TargetStatus{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2622,7 +2753,7 @@ func (x *TargetStatus) String() string {
 func (*TargetStatus) ProtoMessage() {}
 
 func (x *TargetStatus) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2635,7 +2766,7 @@ func (x *TargetStatus) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use TargetStatus.ProtoReflect.Descriptor instead.
 func (*TargetStatus) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{20}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{21}
 }
 
 func (x *TargetStatus) GetName() string {
@@ -2689,7 +2820,7 @@ type Finished struct {
 
 func (x *Finished) Reset() {
 	*x = Finished{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2701,7 +2832,7 @@ func (x *Finished) String() string {
 func (*Finished) ProtoMessage() {}
 
 func (x *Finished) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2714,7 +2845,7 @@ func (x *Finished) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Finished.ProtoReflect.Descriptor instead.
 func (*Finished) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{21}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{22}
 }
 
 func (x *Finished) GetReason() FinishReason {
@@ -2762,7 +2893,7 @@ type ParameterSummary struct {
 
 func (x *ParameterSummary) Reset() {
 	*x = ParameterSummary{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2774,7 +2905,7 @@ func (x *ParameterSummary) String() string {
 func (*ParameterSummary) ProtoMessage() {}
 
 func (x *ParameterSummary) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2787,7 +2918,7 @@ func (x *ParameterSummary) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ParameterSummary.ProtoReflect.Descriptor instead.
 func (*ParameterSummary) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{22}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{23}
 }
 
 func (x *ParameterSummary) GetName() string {
@@ -2870,7 +3001,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x05draws\x18\x03 \x01(\v2\x10.sluice.v1.DrawsH\x00R\x05draws\x121\n" +
 	"\bprogress\x18\x04 \x01(\v2\x13.sluice.v1.ProgressH\x00R\bprogress\x121\n" +
 	"\bfinished\x18\x05 \x01(\v2\x13.sluice.v1.FinishedH\x00R\bfinishedB\a\n" +
-	"\x05frame\"\xce\x05\n" +
+	"\x05frame\"\xad\x06\n" +
 	"\bRegister\x12\x10\n" +
 	"\x03dim\x18\x01 \x01(\x05R\x03dim\x12\x16\n" +
 	"\x06chains\x18\x02 \x01(\x05R\x06chains\x12\x16\n" +
@@ -2895,7 +3026,9 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\tcurvature\x18\x11 \x01(\v2\x14.sluice.v1.CurvatureR\tcurvature\x12&\n" +
 	"\x05wants\x18\x12 \x01(\v2\x10.sluice.v1.WantsR\x05wants\x12\x1a\n" +
 	"\bfriction\x18\x13 \x01(\x01R\bfriction\x12!\n" +
-	"\finverse_mass\x18\x14 \x01(\x01R\vinverseMass\x12.\n" +
+	"\finverse_mass\x18\x14 \x01(\x01R\vinverseMass\x12)\n" +
+	"\x10krylov_tolerance\x18\x16 \x01(\x01R\x0fkrylovTolerance\x122\n" +
+	"\x15krylov_max_iterations\x18\x17 \x01(\x05R\x13krylovMaxIterations\x12.\n" +
 	"\x05noise\x18\x15 \x01(\v2\x18.sluice.v1.GradientNoiseR\x05noise\"\xd0\x01\n" +
 	"\rGradientNoise\x12+\n" +
 	"\x04kind\x18\x01 \x01(\x0e2\x17.sluice.v1.GradientKindR\x04kind\x12\x1a\n" +
@@ -2972,7 +3105,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x06chains\x18\x05 \x03(\x05R\x06chains\x12\x1e\n" +
 	"\n" +
 	"iterations\x18\x06 \x03(\x03R\n" +
-	"iterations\"\xd3\x04\n" +
+	"iterations\"\x84\x05\n" +
 	"\bProgress\x12&\n" +
 	"\x05state\x18\x01 \x01(\x0e2\x10.sluice.v1.StateR\x05state\x12\x14\n" +
 	"\x05steps\x18\x02 \x01(\x03R\x05steps\x12)\n" +
@@ -2991,7 +3124,15 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x05bound\x18\v \x01(\v2\x10.sluice.v1.BoundR\x05bound\x12:\n" +
 	"\tcurvature\x18\f \x01(\v2\x1c.sluice.v1.CurvatureEstimateR\tcurvature\x121\n" +
 	"\atargets\x18\r \x03(\v2\x17.sluice.v1.TargetStatusR\atargets\x12.\n" +
-	"\x05noise\x18\x0e \x01(\v2\x18.sluice.v1.NoiseEstimateR\x05noise\"\xb6\x01\n" +
+	"\x05noise\x18\x0e \x01(\v2\x18.sluice.v1.NoiseEstimateR\x05noise\x12/\n" +
+	"\x06kernel\x18\x0f \x01(\v2\x17.sluice.v1.KernelReportR\x06kernel\"\xf9\x01\n" +
+	"\fKernelReport\x12\x12\n" +
+	"\x04step\x18\x01 \x01(\x01R\x04step\x12\x1a\n" +
+	"\badapting\x18\x02 \x01(\bR\badapting\x12)\n" +
+	"\x10acceptance_rates\x18\x03 \x03(\x01R\x0facceptanceRates\x12+\n" +
+	"\x11krylov_iterations\x18\x04 \x01(\x05R\x10krylovIterations\x122\n" +
+	"\x15krylov_error_estimate\x18\x05 \x01(\x01R\x13krylovErrorEstimate\x12-\n" +
+	"\x12krylov_unconverged\x18\x06 \x01(\x05R\x11krylovUnconverged\"\xb6\x01\n" +
 	"\rNoiseEstimate\x12\x1a\n" +
 	"\bvariance\x18\x01 \x01(\x01R\bvariance\x12\x1f\n" +
 	"\vvariance_se\x18\x02 \x01(\x01R\n" +
@@ -3093,7 +3234,7 @@ func file_sluice_v1_sluice_proto_rawDescGZIP() []byte {
 }
 
 var file_sluice_v1_sluice_proto_enumTypes = make([]protoimpl.EnumInfo, 6)
-var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 23)
+var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 24)
 var file_sluice_v1_sluice_proto_goTypes = []any{
 	(GradientKind)(0),            // 0: sluice.v1.GradientKind
 	(Metric)(0),                  // 1: sluice.v1.Metric
@@ -3117,20 +3258,21 @@ var file_sluice_v1_sluice_proto_goTypes = []any{
 	(*Stop)(nil),                 // 19: sluice.v1.Stop
 	(*Draws)(nil),                // 20: sluice.v1.Draws
 	(*Progress)(nil),             // 21: sluice.v1.Progress
-	(*NoiseEstimate)(nil),        // 22: sluice.v1.NoiseEstimate
-	(*ParameterDiagnostics)(nil), // 23: sluice.v1.ParameterDiagnostics
-	(*Bound)(nil),                // 24: sluice.v1.Bound
-	(*CurvatureEstimate)(nil),    // 25: sluice.v1.CurvatureEstimate
-	(*TargetStatus)(nil),         // 26: sluice.v1.TargetStatus
-	(*Finished)(nil),             // 27: sluice.v1.Finished
-	(*ParameterSummary)(nil),     // 28: sluice.v1.ParameterSummary
+	(*KernelReport)(nil),         // 22: sluice.v1.KernelReport
+	(*NoiseEstimate)(nil),        // 23: sluice.v1.NoiseEstimate
+	(*ParameterDiagnostics)(nil), // 24: sluice.v1.ParameterDiagnostics
+	(*Bound)(nil),                // 25: sluice.v1.Bound
+	(*CurvatureEstimate)(nil),    // 26: sluice.v1.CurvatureEstimate
+	(*TargetStatus)(nil),         // 27: sluice.v1.TargetStatus
+	(*Finished)(nil),             // 28: sluice.v1.Finished
+	(*ParameterSummary)(nil),     // 29: sluice.v1.ParameterSummary
 }
 var file_sluice_v1_sluice_proto_depIdxs = []int32{
 	14, // 0: sluice.v1.PlanRequest.curvature:type_name -> sluice.v1.Curvature
 	1,  // 1: sluice.v1.PlanRequest.metric:type_name -> sluice.v1.Metric
-	24, // 2: sluice.v1.PlanResponse.bound:type_name -> sluice.v1.Bound
+	25, // 2: sluice.v1.PlanResponse.bound:type_name -> sluice.v1.Bound
 	20, // 3: sluice.v1.FollowResponse.draws:type_name -> sluice.v1.Draws
-	27, // 4: sluice.v1.FollowResponse.finished:type_name -> sluice.v1.Finished
+	28, // 4: sluice.v1.FollowResponse.finished:type_name -> sluice.v1.Finished
 	12, // 5: sluice.v1.SessionRequest.register:type_name -> sluice.v1.Register
 	18, // 6: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
 	19, // 7: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
@@ -3138,7 +3280,7 @@ var file_sluice_v1_sluice_proto_depIdxs = []int32{
 	17, // 9: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
 	20, // 10: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
 	21, // 11: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
-	27, // 12: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
+	28, // 12: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
 	14, // 13: sluice.v1.Register.curvature:type_name -> sluice.v1.Curvature
 	15, // 14: sluice.v1.Register.wants:type_name -> sluice.v1.Wants
 	13, // 15: sluice.v1.Register.noise:type_name -> sluice.v1.GradientNoise
@@ -3146,27 +3288,28 @@ var file_sluice_v1_sluice_proto_depIdxs = []int32{
 	1,  // 17: sluice.v1.Wants.metric:type_name -> sluice.v1.Metric
 	2,  // 18: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
 	3,  // 19: sluice.v1.Progress.state:type_name -> sluice.v1.State
-	23, // 20: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
-	24, // 21: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
-	25, // 22: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
-	26, // 23: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
-	22, // 24: sluice.v1.Progress.noise:type_name -> sluice.v1.NoiseEstimate
-	1,  // 25: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
-	4,  // 26: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
-	5,  // 27: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
-	21, // 28: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
-	28, // 29: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
-	10, // 30: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
-	8,  // 31: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
-	6,  // 32: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
-	11, // 33: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
-	9,  // 34: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
-	7,  // 35: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
-	33, // [33:36] is the sub-list for method output_type
-	30, // [30:33] is the sub-list for method input_type
-	30, // [30:30] is the sub-list for extension type_name
-	30, // [30:30] is the sub-list for extension extendee
-	0,  // [0:30] is the sub-list for field type_name
+	24, // 20: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
+	25, // 21: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
+	26, // 22: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
+	27, // 23: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
+	23, // 24: sluice.v1.Progress.noise:type_name -> sluice.v1.NoiseEstimate
+	22, // 25: sluice.v1.Progress.kernel:type_name -> sluice.v1.KernelReport
+	1,  // 26: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
+	4,  // 27: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
+	5,  // 28: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
+	21, // 29: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
+	29, // 30: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
+	10, // 31: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
+	8,  // 32: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
+	6,  // 33: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
+	11, // 34: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
+	9,  // 35: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
+	7,  // 36: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
+	34, // [34:37] is the sub-list for method output_type
+	31, // [31:34] is the sub-list for method input_type
+	31, // [31:31] is the sub-list for extension type_name
+	31, // [31:31] is the sub-list for extension extendee
+	0,  // [0:31] is the sub-list for field type_name
 }
 
 func init() { file_sluice_v1_sluice_proto_init() }
@@ -3196,7 +3339,7 @@ func file_sluice_v1_sluice_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_sluice_v1_sluice_proto_rawDesc), len(file_sluice_v1_sluice_proto_rawDesc)),
 			NumEnums:      6,
-			NumMessages:   23,
+			NumMessages:   24,
 			NumExtensions: 0,
 			NumServices:   1,
 		},
