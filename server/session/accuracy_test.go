@@ -1,0 +1,189 @@
+package session
+
+import (
+	"math"
+	"math/rand/v2"
+	"strings"
+	"testing"
+
+	"sluice/kernels/bound"
+)
+
+// A target on bulk- and tail-ESS ends the session with reason "target met"
+// once the reported figures reach it (Vehtari et al. figures from
+// kernels/diag, THEORY.md §9), and R-hat is reported near 1 for chains on
+// the same Gaussian.
+func TestESSTargetMet(t *testing.T) {
+	spec := baseSpec()
+	spec.Chains, spec.BurnIn, spec.ProgressEverySteps = 4, 100, 50
+	spec.Wants = Wants{MinBulkESS: 400, MinTailESS: 200, MaxRhat: 1.05}
+	spec.MaxEvaluations = 4 * 100000
+	tr, res, err := drive(t, mustNew(t, spec, Limits{}), gaussian(1))
+	if err != nil || res.Finished.Reason != TargetMet {
+		t.Fatalf("reason %v err %v", res.Finished.Reason, err)
+	}
+	last := tr.progress[len(tr.progress)-1]
+	if len(last.Parameters) != 2 || last.Parameters[0].Name != "theta[0]" {
+		t.Fatalf("parameters %+v", last.Parameters)
+	}
+	for _, p := range last.Parameters {
+		if p.BulkESS < 400 || p.TailESS < 200 || p.Rhat > 1.05 || !(p.MCSE > 0) {
+			t.Fatalf("target met with %+v", p)
+		}
+	}
+	for _, ts := range last.Targets {
+		if !ts.Met || ts.ProjectedEvaluations != 0 && ts.Name != "max_rhat" {
+			t.Fatalf("target %+v", ts)
+		}
+	}
+	// Before the end, some target was projected with a positive cost.
+	projected := false
+	for _, p := range tr.progress[:len(tr.progress)-1] {
+		for _, ts := range p.Targets {
+			projected = projected || (!ts.Met && ts.ProjectedEvaluations > 0)
+		}
+	}
+	if !projected {
+		t.Fatal("no unmet target was ever projected")
+	}
+}
+
+// With declared m, M and wants.eps in W2, the step is planned by the §2.1
+// rule (kernels/bound), the session runs exactly the planned steps, and
+// the reported bound is labelled guaranteed and within eps. On this
+// Gaussian the bound is checked against the exact W2 in kernels/bound.
+func TestPlannedStepAndGuaranteedBound(t *testing.T) {
+	spec := baseSpec()
+	spec.Step = 0
+	spec.Chains = 2
+	spec.Curvature = &Curvature{StrongConvexity: 1, Smoothness: 1}
+	spec.Wants = Wants{Eps: 0.5, Metric: bound.W2}
+	spec.ProgressEverySteps = 100
+	s := mustNew(t, spec, Limits{})
+	plan, err := bound.NewPlan(bound.Spec{Setting: bound.Setting{Convexity: 1, Smoothness: 1, Dim: 2, Source: bound.Declared},
+		Metric: bound.W2, Eps: 0.5, Chains: 2})
+	if err != nil {
+		t.Fatal(err)
+	}
+	tr, res, err := drive(t, s, gaussian(1))
+	if err != nil || res.Finished.Reason != TargetMet {
+		t.Fatalf("reason %v err %v", res.Finished.Reason, err)
+	}
+	if tr.registered.Step != plan.Step || tr.registered.PlannedSteps != plan.Iterations {
+		t.Fatalf("registered step %v planned %d; plan %v, %d", tr.registered.Step, tr.registered.PlannedSteps, plan.Step, plan.Iterations)
+	}
+	if int(res.Finished.Progress.Steps) != plan.Iterations || res.Finished.Progress.EvaluationsUsed != int64(2*plan.Iterations) {
+		t.Fatalf("ran %d steps, %d evaluations; plan %d steps", res.Finished.Progress.Steps, res.Finished.Progress.EvaluationsUsed, plan.Iterations)
+	}
+	b := res.Finished.Progress.Bound
+	if b == nil || b.Total > 0.5 || b.Source != bound.Declared || b.Metric != bound.W2 {
+		t.Fatalf("final bound %+v", b)
+	}
+	first := tr.progress[0]
+	if first.Targets[0].ProjectedEvaluations != int64(2*(plan.Iterations-100)) {
+		t.Fatalf("projection at step 100: %+v (plan %d steps)", first.Targets[0], plan.Iterations)
+	}
+}
+
+// Curvature certificates from LMC's consecutive gradient pairs bracket the
+// truth one-sidedly (THEORY.md §12): M ≥ what is reported as its lower
+// bound, m ≤ its reported upper bound. The Stein discrepancy is reported,
+// and is larger for the larger step (THEORY.md §8): along the stiff
+// direction (λ = 4) LMC's stationary variance is 1/(1 − hλ/2) times the
+// target's (THEORY.md §11a), 5× at h = 0.4 against 1.1× at h = 0.05, so a
+// factor of two in the discrepancy is a loose requirement.
+func TestCurvatureCertificatesAndKSD(t *testing.T) {
+	ksd := map[float64]float64{}
+	for _, h := range []float64{0.05, 0.4} {
+		spec := baseSpec()
+		spec.Step, spec.Chains, spec.BurnIn, spec.DrawsPerChain, spec.KeepEvery = h, 8, 200, 200, int64(math.Ceil(1.6/h))
+		q := func(p *Points, ev *Evaluations) { // Q = diag(1, 4): m = 1, M = 4
+			ev.Grad = make([]float64, len(p.Points))
+			for i, x := range p.Points {
+				ev.Grad[i] = -x * []float64{1, 4}[i%2]
+			}
+		}
+		_, res, err := drive(t, mustNew(t, spec, Limits{}), q)
+		if err != nil {
+			t.Fatal(err)
+		}
+		p := res.Finished.Progress
+		if p.Curvature.Pairs == 0 || p.Curvature.SmoothnessAtLeast > 4+1e-9 || p.Curvature.StrongConvexityAtMost < 1-1e-9 || p.Curvature.NotConvex {
+			t.Fatalf("h %v: certificates %+v for m = 1, M = 4", h, p.Curvature)
+		}
+		if !(p.KSD > 0) {
+			t.Fatalf("h %v: KSD %v", h, p.KSD)
+		}
+		ksd[h] = p.KSD
+	}
+	if !(ksd[0.4] > 2*ksd[0.05]) {
+		t.Fatalf("KSD does not rank the steps: %v", ksd)
+	}
+}
+
+// With two replicates per point the server measures the per-coordinate
+// noise variance (the unbiased sample variance of two replicates has mean
+// σ², common practice) within four standard errors, counts each replicate
+// in the budget, reports epochs, and warns when the declared variance is
+// far off.
+func TestNoiseMeasuredFromReplicates(t *testing.T) {
+	const s2 = 0.09
+	for _, declared := range []float64{s2, 4 * s2} {
+		spec := baseSpec()
+		spec.Noise = Noise{Stochastic: true, Replicates: 2, Variance: declared, DataSize: 1000, MinibatchSize: 50}
+		spec.MaxEvaluations, spec.ProgressEverySteps = 2*4*400, 400
+		r := rand.New(rand.NewPCG(3, 4))
+		noisy := func(p *Points, ev *Evaluations) {
+			if p.Replicates != 2 {
+				t.Fatalf("asked %d replicates", p.Replicates)
+			}
+			ev.Grad = make([]float64, 2*len(p.Points))
+			for row := range p.Rows {
+				for j := range 2 {
+					for i := range p.Dim {
+						ev.Grad[(row*2+j)*p.Dim+i] = -p.Points[row*p.Dim+i] + math.Sqrt(s2)*r.NormFloat64()
+					}
+				}
+			}
+		}
+		_, res, err := drive(t, mustNew(t, spec, Limits{}), noisy)
+		if err != nil || res.Finished.Reason != BudgetSpent {
+			t.Fatalf("reason %v err %v", res.Finished.Reason, err)
+		}
+		p := res.Finished.Progress
+		n := p.Noise
+		if n == nil || p.Steps != 400 || p.EvaluationsUsed != 3200 {
+			t.Fatalf("steps %d, evaluations %d, noise %+v", p.Steps, p.EvaluationsUsed, n)
+		}
+		if z := (n.Variance - s2) / n.SE; math.Abs(z) > 4 || n.Requests != 400 {
+			t.Fatalf("measured %v ± %v over %d requests, true %v", n.Variance, n.SE, n.Requests, s2)
+		}
+		if want := 3200.0 * 50 / 1000; math.Abs(n.Epochs-want) > 1e-9 {
+			t.Fatalf("epochs %v, want %v", n.Epochs, want)
+		}
+		if (declared != s2) != strings.Contains(n.Warning, "disagrees") {
+			t.Fatalf("declared %v: warning %q", declared, n.Warning)
+		}
+	}
+}
+
+func TestExactOnlyKernelsRefuseStochasticGradients(t *testing.T) {
+	for _, k := range []string{"mala", "ozaki", "ozaki-krylov"} {
+		spec := baseSpec()
+		spec.Kernel, spec.Noise = k, Noise{Stochastic: true}
+		_, err := New("x", spec, Limits{})
+		if e, ok := AsError(err); !ok || e.Field != "register.noise.kind" {
+			t.Errorf("%s with stochastic gradients: %v", k, err)
+		}
+	}
+	spec := baseSpec()
+	spec.Noise = Noise{Replicates: 2}
+	if _, err := New("x", spec, Limits{}); err == nil {
+		t.Error("replicates with exact gradients accepted")
+	}
+	spec = baseSpec()
+	spec.Wants = Wants{Eps: 0.1, Metric: bound.W2}
+	if _, err := New("x", spec, Limits{}); err == nil {
+		t.Error("eps without curvature accepted")
+	}
+}
