@@ -1,0 +1,68 @@
+"""Python client of sluice: samples a target whose gradient lives in your
+numpy code.
+
+The sluice server runs Langevin chains and asks this process for the
+gradient of log pi at one batch of points per step (all chains at once);
+this package answers those requests with your function, and hands you the
+draws, progress reports and a final summary. The wire API is
+proto/sluice/v1/sluice.proto; arrays cross it as little-endian float64
+bytes, decoded with ``np.frombuffer`` and encoded with ``tobytes``.
+
+::
+
+    import numpy as np
+    import sluice_client as sc
+
+    Q = np.array([[2.0, 0.5], [0.5, 1.0]])           # precision of N(0, Q^-1)
+    spec = sc.Spec(dim=2, chains=8, start=np.zeros(2), step=0.1,
+                   burn_in=200, draws_per_chain=1000, seed=7)
+    draws = []
+    summary = sc.run("127.0.0.1:7070", spec, lambda x: -x @ Q,
+                     on_draws=lambda d: draws.append(d.values.copy()))
+    print(summary.reason, summary.mean, summary.sd)
+
+``Session`` is the iterator form of the same loop. Server errors raise
+:class:`SessionError` (gRPC status code, message, and the offending field
+from the status's bad-request detail).
+"""
+
+from ._errors import DrawsLostError, ProtocolError, SessionError, SluiceError
+from ._session import SESSION_METHOD, Event, GradFn, LogDensityFn, Session, connect, run
+from ._types import (
+    DEFAULT_MAX_MESSAGE_BYTES,
+    Draws,
+    FinishReason,
+    ParameterSummary,
+    Progress,
+    Registered,
+    Spec,
+    State,
+    Summary,
+    from_wire,
+    to_wire,
+)
+
+__all__ = [
+    "DEFAULT_MAX_MESSAGE_BYTES",
+    "SESSION_METHOD",
+    "Draws",
+    "DrawsLostError",
+    "Event",
+    "FinishReason",
+    "GradFn",
+    "LogDensityFn",
+    "ParameterSummary",
+    "Progress",
+    "ProtocolError",
+    "Registered",
+    "Session",
+    "SessionError",
+    "SluiceError",
+    "Spec",
+    "State",
+    "Summary",
+    "connect",
+    "from_wire",
+    "run",
+    "to_wire",
+]

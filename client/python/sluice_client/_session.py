@@ -1,0 +1,293 @@
+"""The session loop: opens the Session stream, answers every Points frame
+with the caller's functions in lock step, checks the draws' sequence
+numbers, and ends with the Finished frame's summary."""
+
+from __future__ import annotations
+
+import queue
+import threading
+from typing import Callable, Iterator, Optional, Sequence, Tuple, Union
+
+import grpc
+import numpy as np
+import numpy.typing as npt
+
+from ._errors import DrawsLostError, ProtocolError, SessionError
+from ._proto.sluice.v1 import sluice_pb2 as pb
+from ._types import (
+    DEFAULT_MAX_MESSAGE_BYTES,
+    Draws,
+    Progress,
+    Registered,
+    Spec,
+    Summary,
+    from_wire,
+    to_wire,
+)
+
+#: Full method name of the Session rpc.
+SESSION_METHOD = "/sluice.v1.SluiceService/Session"
+
+#: ``grad(points) -> gradients``: points is a read-only rows x dim float64
+#: array, the result must have shape (rows, dim): the gradient of log pi
+#: (not of -log pi) at each row.
+GradFn = Callable[[np.ndarray], npt.ArrayLike]
+
+#: ``log_density(points) -> values``: shape (rows,), log pi up to a constant.
+LogDensityFn = Callable[[np.ndarray], npt.ArrayLike]
+
+#: What iterating a Session yields.
+Event = Union[Draws, Progress]
+
+
+def connect(
+    target: str,
+    max_message_bytes: int = DEFAULT_MAX_MESSAGE_BYTES,
+    options: Sequence[Tuple[str, object]] = (),
+) -> grpc.Channel:
+    """Opens an insecure (plain-text) channel to ``target`` ("host:port")
+    whose send and receive limits are both ``max_message_bytes``, set on
+    purpose rather than left at gRPC's default. Use it on loopback or a
+    trusted network; for TLS build your own channel with the same two
+    options (grpc.max_send_message_length, grpc.max_receive_message_length).
+    """
+    opts = [
+        ("grpc.max_send_message_length", int(max_message_bytes)),
+        ("grpc.max_receive_message_length", int(max_message_bytes)),
+    ]
+    opts.extend(options)
+    return grpc.insecure_channel(target, options=opts)
+
+
+def _request(**frame: object) -> pb.SessionRequest:
+    return pb.SessionRequest(**frame)  # type: ignore[arg-type]
+
+
+class Session:
+    """One sampling session, driven by iterating it.
+
+    ::
+
+        session = Session("127.0.0.1:7070", spec, grad)
+        for event in session:          # Draws and Progress, in stream order
+            if isinstance(event, Draws):
+                keep(event.values.copy())
+        print(session.summary)
+
+    The server drives: for every Points frame the session calls ``grad`` (and
+    ``log_density`` when the server asks for log pi) on the iterating thread
+    and sends the answer before reading on. ``channel_or_target`` is a
+    ``grpc.Channel`` (its message limits must allow
+    ``spec.max_message_bytes``; see :func:`connect`) or a "host:port" target,
+    for which the session opens and closes its own channel with exactly that
+    limit. ``timeout`` is the whole session's gRPC deadline in seconds (None:
+    none). ``on_registered`` is called with the server's acknowledgement as
+    soon as it arrives.
+
+    Errors: an exception from ``grad`` or ``log_density``, or a gradient of
+    the wrong shape (ValueError), makes the session send Stop, receive the
+    draws already made and the summary (which iteration still yields and
+    ``summary`` holds), and then re-raises it. A server error status raises
+    :class:`SessionError`; a gap or repeat in the draws' sequence numbers
+    raises :class:`DrawsLostError` at once. Leaving the loop early (break)
+    cancels the call.
+    """
+
+    def __init__(
+        self,
+        channel_or_target: Union[grpc.Channel, str],
+        spec: Spec,
+        grad: GradFn,
+        log_density: Optional[LogDensityFn] = None,
+        *,
+        timeout: Optional[float] = None,
+        on_registered: Optional[Callable[[Registered], None]] = None,
+    ) -> None:
+        self._spec = spec
+        self._on_registered = on_registered
+        self._register = spec.to_register()  # shapes start; raises ValueError early
+        self._grad = grad
+        self._log_density = log_density
+        self._timeout = timeout
+        # A channel of our own is opened when iteration starts, so that a
+        # Session never iterated holds no connection.
+        self._target = channel_or_target if isinstance(channel_or_target, str) else None
+        self._channel: Optional[grpc.Channel] = None if self._target is not None else channel_or_target
+        #: The server's acknowledgement, once received.
+        self.registered: Optional[Registered] = None
+        #: The summary, once the Finished frame arrived (also when the
+        #: session then raised).
+        self.summary: Optional[Summary] = None
+        #: Draws received so far.
+        self.draws_received = 0
+        self._next_seq = 0
+        self._started = False
+        self._lock = threading.Lock()
+        self._outbox: "queue.SimpleQueue[Optional[pb.SessionRequest]]" = queue.SimpleQueue()
+        self._outbox.put(_request(register=self._register))
+        self._stopped = False
+        self._closed = False
+        self._call: Optional[grpc.Call] = None
+
+    def __iter__(self) -> Iterator[Event]:
+        if self._started:
+            raise RuntimeError("sluice_client: a Session is iterated once")
+        self._started = True
+        return self._events()
+
+    def __enter__(self) -> "Session":
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def stop(self, reason: str = "stopped by client") -> None:
+        """Asks the server to finish now (reason STOPPED). Keep iterating to
+        receive the draws already made and the summary. Safe to call from
+        any thread; later Points frames are not answered."""
+        with self._lock:
+            if self._stopped or self._closed:
+                return
+            self._stopped = True
+            self._outbox.put(_request(stop=pb.Stop(reason=reason)))
+
+    def close(self) -> None:
+        """Cancels the call if it still runs and closes the channel the
+        session opened itself. Idempotent."""
+        with self._lock:
+            if self._closed:
+                return
+            self._closed = True
+            self._outbox.put(None)  # ends the request stream
+        if self._call is not None:
+            self._call.cancel()
+        if self._target is not None and self._channel is not None:
+            self._channel.close()
+
+    def _send(self, frame: pb.SessionRequest) -> None:
+        with self._lock:
+            if not (self._stopped or self._closed):
+                self._outbox.put(frame)
+
+    def _events(self) -> Iterator[Event]:
+        eval_error: Optional[BaseException] = None
+        try:
+            if self._channel is None:
+                assert self._target is not None
+                self._channel = connect(self._target, self._spec.message_limit())
+            rpc = self._channel.stream_stream(
+                SESSION_METHOD,
+                request_serializer=pb.SessionRequest.SerializeToString,
+                response_deserializer=pb.SessionResponse.FromString,
+            )
+            call = rpc(iter(self._outbox.get, None), timeout=self._timeout)
+            self._call = call
+            try:
+                for frame in call:
+                    kind = frame.WhichOneof("frame")
+                    if kind == "points":
+                        if eval_error is None and not self._stopped:
+                            eval_error = self._answer(frame.points)
+                    elif kind == "draws":
+                        yield self._deliver(frame.draws)
+                    elif kind == "progress":
+                        yield Progress.from_wire(frame.progress)
+                    elif kind == "registered":
+                        self.registered = Registered.from_wire(frame.registered)
+                        if self._on_registered is not None:
+                            self._on_registered(self.registered)
+                    elif kind == "finished":
+                        self.summary = Summary.from_wire(frame.finished, self.registered, self.draws_received)
+            except grpc.RpcError as err:
+                serr = SessionError.from_rpc_error(err, self.summary)
+                if eval_error is not None:
+                    eval_error.add_note(f"sluice_client: the session then ended with {serr}")
+                    raise eval_error from None
+                raise serr from None
+            if eval_error is not None:
+                raise eval_error
+            if self.summary is None:
+                raise ProtocolError("sluice_client: stream ended without a finished frame")
+        finally:
+            self.close()
+
+    def _answer(self, p: pb.Points) -> Optional[BaseException]:
+        """Evaluates one Points frame and sends the answer; on an error of
+        the caller's functions sends Stop instead and returns the error."""
+        rows, dim = p.rows, p.dim
+        if len(p.points) != 8 * rows * dim or len(p.chains) != rows:
+            raise ProtocolError(
+                f"sluice_client: malformed points frame: {len(p.points)} bytes and "
+                f"{len(p.chains)} chains for {rows} x {dim}"
+            )
+        points = from_wire(p.points, rows, dim)
+        ev = pb.Evaluations(request_id=p.request_id, first_row=p.first_row, rows=rows, dim=dim)
+        try:
+            if pb.QUANTITY_GRADIENT in p.quantities:
+                g = np.asarray(self._grad(points))
+                if g.shape != (rows, dim):
+                    raise ValueError(
+                        f"sluice_client: grad returned an array of shape {g.shape}; want (rows, dim) = {(rows, dim)}"
+                    )
+                ev.gradients = to_wire(g)
+            if pb.QUANTITY_LOG_DENSITY in p.quantities:
+                if self._log_density is None:
+                    raise ValueError("sluice_client: the server asks for log densities, but no log_density was given")
+                ld = np.asarray(self._log_density(points))
+                if ld.shape != (rows,):
+                    raise ValueError(
+                        f"sluice_client: log_density returned an array of shape {ld.shape}; want (rows,) = {(rows,)}"
+                    )
+                ev.log_densities = to_wire(ld)
+        except Exception as err:  # the caller's code failed: stop, drain, re-raise
+            self.stop(f"evaluator failed: {err!r}")
+            return err
+        self._send(_request(evaluations=ev))
+        return None
+
+    def _deliver(self, w: pb.Draws) -> Draws:
+        if w.seq != self._next_seq:
+            raise DrawsLostError(self._next_seq, w.seq)
+        rows, dim = w.rows, w.dim
+        if len(w.values) != 8 * rows * dim or len(w.chains) != rows or len(w.iterations) != rows:
+            raise ProtocolError(f"sluice_client: malformed draws frame at sequence {w.seq}")
+        self._next_seq += rows
+        self.draws_received += rows
+        return Draws(
+            seq=w.seq,
+            values=from_wire(w.values, rows, dim),
+            chains=np.array(w.chains, dtype=np.int32),
+            iterations=np.array(w.iterations, dtype=np.int64),
+        )
+
+
+def run(
+    channel_or_target: Union[grpc.Channel, str],
+    spec: Spec,
+    grad: GradFn,
+    log_density: Optional[LogDensityFn] = None,
+    on_draws: Optional[Callable[[Draws], None]] = None,
+    on_progress: Optional[Callable[[Progress], None]] = None,
+    *,
+    on_registered: Optional[Callable[[Registered], None]] = None,
+    timeout: Optional[float] = None,
+) -> Summary:
+    """Runs one session to its end and returns the summary.
+
+    ``grad(points)`` gets a read-only rows x dim float64 array and returns the
+    gradients of log pi, shape (rows, dim); ``log_density`` is needed only by
+    kernels that ask for log pi. ``on_draws`` gets every block of draws in
+    sequence order, ``on_progress`` every progress report, ``on_registered``
+    the server's acknowledgement; all run on the calling thread. Errors as
+    for :class:`Session`.
+    """
+    session = Session(channel_or_target, spec, grad, log_density, timeout=timeout, on_registered=on_registered)
+    with session:
+        for event in session:
+            if isinstance(event, Draws):
+                if on_draws is not None:
+                    on_draws(event)
+            elif on_progress is not None:
+                on_progress(event)
+    assert session.summary is not None  # _events raises otherwise
+    return session.summary
