@@ -4,21 +4,75 @@ from google.protobuf import descriptor as _descriptor
 from google.protobuf import message as _message
 from typing import ClassVar as _ClassVar, Iterable as _Iterable, Mapping as _Mapping, Optional as _Optional, Union as _Union
 
+BOUND_SOURCE_DECLARED: BoundSource
+BOUND_SOURCE_ESTIMATED: BoundSource
+BOUND_SOURCE_UNSPECIFIED: BoundSource
 DESCRIPTOR: _descriptor.FileDescriptor
 FINISH_REASON_BUDGET_SPENT: FinishReason
 FINISH_REASON_DRAWS_COLLECTED: FinishReason
 FINISH_REASON_FAILED: FinishReason
 FINISH_REASON_SHUTDOWN: FinishReason
 FINISH_REASON_STOPPED: FinishReason
+FINISH_REASON_TARGET_MET: FinishReason
 FINISH_REASON_TIME_SPENT: FinishReason
 FINISH_REASON_UNSPECIFIED: FinishReason
+GRADIENT_KIND_EXACT: GradientKind
+GRADIENT_KIND_STOCHASTIC: GradientKind
+GRADIENT_KIND_UNSPECIFIED: GradientKind
+METRIC_TV: Metric
+METRIC_UNSPECIFIED: Metric
+METRIC_W2: Metric
 QUANTITY_GRADIENT: Quantity
+QUANTITY_HESSIAN: Quantity
+QUANTITY_HESSIAN_VECTOR: Quantity
 QUANTITY_LOG_DENSITY: Quantity
 QUANTITY_UNSPECIFIED: Quantity
 STATE_BURN_IN: State
 STATE_FINISHED: State
 STATE_SAMPLING: State
 STATE_UNSPECIFIED: State
+
+class Bound(_message.Message):
+    __slots__ = ["bias_term", "discretisation_term", "label", "metric", "noise_term", "source", "start_term", "value"]
+    BIAS_TERM_FIELD_NUMBER: _ClassVar[int]
+    DISCRETISATION_TERM_FIELD_NUMBER: _ClassVar[int]
+    LABEL_FIELD_NUMBER: _ClassVar[int]
+    METRIC_FIELD_NUMBER: _ClassVar[int]
+    NOISE_TERM_FIELD_NUMBER: _ClassVar[int]
+    SOURCE_FIELD_NUMBER: _ClassVar[int]
+    START_TERM_FIELD_NUMBER: _ClassVar[int]
+    VALUE_FIELD_NUMBER: _ClassVar[int]
+    bias_term: float
+    discretisation_term: float
+    label: str
+    metric: Metric
+    noise_term: float
+    source: BoundSource
+    start_term: float
+    value: float
+    def __init__(self, metric: _Optional[_Union[Metric, str]] = ..., value: _Optional[float] = ..., source: _Optional[_Union[BoundSource, str]] = ..., label: _Optional[str] = ..., start_term: _Optional[float] = ..., discretisation_term: _Optional[float] = ..., noise_term: _Optional[float] = ..., bias_term: _Optional[float] = ...) -> None: ...
+
+class Curvature(_message.Message):
+    __slots__ = ["smoothness", "start_distance", "strong_convexity"]
+    SMOOTHNESS_FIELD_NUMBER: _ClassVar[int]
+    START_DISTANCE_FIELD_NUMBER: _ClassVar[int]
+    STRONG_CONVEXITY_FIELD_NUMBER: _ClassVar[int]
+    smoothness: float
+    start_distance: float
+    strong_convexity: float
+    def __init__(self, strong_convexity: _Optional[float] = ..., smoothness: _Optional[float] = ..., start_distance: _Optional[float] = ...) -> None: ...
+
+class CurvatureEstimate(_message.Message):
+    __slots__ = ["not_convex", "pairs", "smoothness_at_least", "strong_convexity_at_most"]
+    NOT_CONVEX_FIELD_NUMBER: _ClassVar[int]
+    PAIRS_FIELD_NUMBER: _ClassVar[int]
+    SMOOTHNESS_AT_LEAST_FIELD_NUMBER: _ClassVar[int]
+    STRONG_CONVEXITY_AT_MOST_FIELD_NUMBER: _ClassVar[int]
+    not_convex: bool
+    pairs: int
+    smoothness_at_least: float
+    strong_convexity_at_most: float
+    def __init__(self, pairs: _Optional[int] = ..., smoothness_at_least: _Optional[float] = ..., strong_convexity_at_most: _Optional[float] = ..., not_convex: bool = ...) -> None: ...
 
 class Draws(_message.Message):
     __slots__ = ["chains", "dim", "iterations", "rows", "seq", "values"]
@@ -37,20 +91,24 @@ class Draws(_message.Message):
     def __init__(self, seq: _Optional[int] = ..., rows: _Optional[int] = ..., dim: _Optional[int] = ..., values: _Optional[bytes] = ..., chains: _Optional[_Iterable[int]] = ..., iterations: _Optional[_Iterable[int]] = ...) -> None: ...
 
 class Evaluations(_message.Message):
-    __slots__ = ["dim", "first_row", "gradients", "log_densities", "request_id", "rows"]
+    __slots__ = ["dim", "first_row", "gradients", "hessian_vectors", "hessians", "log_densities", "request_id", "rows"]
     DIM_FIELD_NUMBER: _ClassVar[int]
     FIRST_ROW_FIELD_NUMBER: _ClassVar[int]
     GRADIENTS_FIELD_NUMBER: _ClassVar[int]
+    HESSIANS_FIELD_NUMBER: _ClassVar[int]
+    HESSIAN_VECTORS_FIELD_NUMBER: _ClassVar[int]
     LOG_DENSITIES_FIELD_NUMBER: _ClassVar[int]
     REQUEST_ID_FIELD_NUMBER: _ClassVar[int]
     ROWS_FIELD_NUMBER: _ClassVar[int]
     dim: int
     first_row: int
     gradients: bytes
+    hessian_vectors: bytes
+    hessians: bytes
     log_densities: bytes
     request_id: int
     rows: int
-    def __init__(self, request_id: _Optional[int] = ..., first_row: _Optional[int] = ..., rows: _Optional[int] = ..., dim: _Optional[int] = ..., gradients: _Optional[bytes] = ..., log_densities: _Optional[bytes] = ...) -> None: ...
+    def __init__(self, request_id: _Optional[int] = ..., first_row: _Optional[int] = ..., rows: _Optional[int] = ..., dim: _Optional[int] = ..., gradients: _Optional[bytes] = ..., log_densities: _Optional[bytes] = ..., hessians: _Optional[bytes] = ..., hessian_vectors: _Optional[bytes] = ...) -> None: ...
 
 class Finished(_message.Message):
     __slots__ = ["message", "parameters", "progress", "reason"]
@@ -64,6 +122,88 @@ class Finished(_message.Message):
     reason: FinishReason
     def __init__(self, reason: _Optional[_Union[FinishReason, str]] = ..., message: _Optional[str] = ..., progress: _Optional[_Union[Progress, _Mapping]] = ..., parameters: _Optional[_Iterable[_Union[ParameterSummary, _Mapping]]] = ...) -> None: ...
 
+class FollowRequest(_message.Message):
+    __slots__ = ["from_seq", "session_id"]
+    FROM_SEQ_FIELD_NUMBER: _ClassVar[int]
+    SESSION_ID_FIELD_NUMBER: _ClassVar[int]
+    from_seq: int
+    session_id: str
+    def __init__(self, session_id: _Optional[str] = ..., from_seq: _Optional[int] = ...) -> None: ...
+
+class FollowResponse(_message.Message):
+    __slots__ = ["draws", "finished"]
+    DRAWS_FIELD_NUMBER: _ClassVar[int]
+    FINISHED_FIELD_NUMBER: _ClassVar[int]
+    draws: Draws
+    finished: Finished
+    def __init__(self, draws: _Optional[_Union[Draws, _Mapping]] = ..., finished: _Optional[_Union[Finished, _Mapping]] = ...) -> None: ...
+
+class GradientNoise(_message.Message):
+    __slots__ = ["bias", "data_size", "kind", "minibatch_size", "replicates", "variance"]
+    BIAS_FIELD_NUMBER: _ClassVar[int]
+    DATA_SIZE_FIELD_NUMBER: _ClassVar[int]
+    KIND_FIELD_NUMBER: _ClassVar[int]
+    MINIBATCH_SIZE_FIELD_NUMBER: _ClassVar[int]
+    REPLICATES_FIELD_NUMBER: _ClassVar[int]
+    VARIANCE_FIELD_NUMBER: _ClassVar[int]
+    bias: float
+    data_size: int
+    kind: GradientKind
+    minibatch_size: int
+    replicates: int
+    variance: float
+    def __init__(self, kind: _Optional[_Union[GradientKind, str]] = ..., variance: _Optional[float] = ..., bias: _Optional[float] = ..., data_size: _Optional[int] = ..., minibatch_size: _Optional[int] = ..., replicates: _Optional[int] = ...) -> None: ...
+
+class KernelReport(_message.Message):
+    __slots__ = ["acceptance_rates", "adapting", "krylov_error_estimate", "krylov_iterations", "krylov_unconverged", "step"]
+    ACCEPTANCE_RATES_FIELD_NUMBER: _ClassVar[int]
+    ADAPTING_FIELD_NUMBER: _ClassVar[int]
+    KRYLOV_ERROR_ESTIMATE_FIELD_NUMBER: _ClassVar[int]
+    KRYLOV_ITERATIONS_FIELD_NUMBER: _ClassVar[int]
+    KRYLOV_UNCONVERGED_FIELD_NUMBER: _ClassVar[int]
+    STEP_FIELD_NUMBER: _ClassVar[int]
+    acceptance_rates: _containers.RepeatedScalarFieldContainer[float]
+    adapting: bool
+    krylov_error_estimate: float
+    krylov_iterations: int
+    krylov_unconverged: int
+    step: float
+    def __init__(self, step: _Optional[float] = ..., adapting: bool = ..., acceptance_rates: _Optional[_Iterable[float]] = ..., krylov_iterations: _Optional[int] = ..., krylov_error_estimate: _Optional[float] = ..., krylov_unconverged: _Optional[int] = ...) -> None: ...
+
+class NoiseEstimate(_message.Message):
+    __slots__ = ["declared", "epochs", "requests", "variance", "variance_se", "warning"]
+    DECLARED_FIELD_NUMBER: _ClassVar[int]
+    EPOCHS_FIELD_NUMBER: _ClassVar[int]
+    REQUESTS_FIELD_NUMBER: _ClassVar[int]
+    VARIANCE_FIELD_NUMBER: _ClassVar[int]
+    VARIANCE_SE_FIELD_NUMBER: _ClassVar[int]
+    WARNING_FIELD_NUMBER: _ClassVar[int]
+    declared: float
+    epochs: float
+    requests: int
+    variance: float
+    variance_se: float
+    warning: str
+    def __init__(self, variance: _Optional[float] = ..., variance_se: _Optional[float] = ..., requests: _Optional[int] = ..., declared: _Optional[float] = ..., epochs: _Optional[float] = ..., warning: _Optional[str] = ...) -> None: ...
+
+class ParameterDiagnostics(_message.Message):
+    __slots__ = ["bulk_ess", "mcse_mean", "mean", "name", "rhat", "sd", "tail_ess"]
+    BULK_ESS_FIELD_NUMBER: _ClassVar[int]
+    MCSE_MEAN_FIELD_NUMBER: _ClassVar[int]
+    MEAN_FIELD_NUMBER: _ClassVar[int]
+    NAME_FIELD_NUMBER: _ClassVar[int]
+    RHAT_FIELD_NUMBER: _ClassVar[int]
+    SD_FIELD_NUMBER: _ClassVar[int]
+    TAIL_ESS_FIELD_NUMBER: _ClassVar[int]
+    bulk_ess: float
+    mcse_mean: float
+    mean: float
+    name: str
+    rhat: float
+    sd: float
+    tail_ess: float
+    def __init__(self, name: _Optional[str] = ..., mean: _Optional[float] = ..., sd: _Optional[float] = ..., rhat: _Optional[float] = ..., bulk_ess: _Optional[float] = ..., tail_ess: _Optional[float] = ..., mcse_mean: _Optional[float] = ...) -> None: ...
+
 class ParameterSummary(_message.Message):
     __slots__ = ["count", "mean", "name", "sd"]
     COUNT_FIELD_NUMBER: _ClassVar[int]
@@ -76,88 +216,173 @@ class ParameterSummary(_message.Message):
     sd: float
     def __init__(self, name: _Optional[str] = ..., mean: _Optional[float] = ..., sd: _Optional[float] = ..., count: _Optional[int] = ...) -> None: ...
 
+class PlanRequest(_message.Message):
+    __slots__ = ["bias", "chains", "curvature", "dim", "eps", "evaluations_per_second", "metric", "noise_sd", "second_moment", "start_distance"]
+    BIAS_FIELD_NUMBER: _ClassVar[int]
+    CHAINS_FIELD_NUMBER: _ClassVar[int]
+    CURVATURE_FIELD_NUMBER: _ClassVar[int]
+    DIM_FIELD_NUMBER: _ClassVar[int]
+    EPS_FIELD_NUMBER: _ClassVar[int]
+    EVALUATIONS_PER_SECOND_FIELD_NUMBER: _ClassVar[int]
+    METRIC_FIELD_NUMBER: _ClassVar[int]
+    NOISE_SD_FIELD_NUMBER: _ClassVar[int]
+    SECOND_MOMENT_FIELD_NUMBER: _ClassVar[int]
+    START_DISTANCE_FIELD_NUMBER: _ClassVar[int]
+    bias: float
+    chains: int
+    curvature: Curvature
+    dim: int
+    eps: float
+    evaluations_per_second: float
+    metric: Metric
+    noise_sd: float
+    second_moment: float
+    start_distance: float
+    def __init__(self, curvature: _Optional[_Union[Curvature, _Mapping]] = ..., dim: _Optional[int] = ..., eps: _Optional[float] = ..., metric: _Optional[_Union[Metric, str]] = ..., noise_sd: _Optional[float] = ..., bias: _Optional[float] = ..., start_distance: _Optional[float] = ..., second_moment: _Optional[float] = ..., chains: _Optional[int] = ..., evaluations_per_second: _Optional[float] = ...) -> None: ...
+
+class PlanResponse(_message.Message):
+    __slots__ = ["assumptions", "bound", "constants_recalled", "evaluations", "evaluations_per_chain", "horizon", "iterations", "penalty", "seconds", "step"]
+    ASSUMPTIONS_FIELD_NUMBER: _ClassVar[int]
+    BOUND_FIELD_NUMBER: _ClassVar[int]
+    CONSTANTS_RECALLED_FIELD_NUMBER: _ClassVar[int]
+    EVALUATIONS_FIELD_NUMBER: _ClassVar[int]
+    EVALUATIONS_PER_CHAIN_FIELD_NUMBER: _ClassVar[int]
+    HORIZON_FIELD_NUMBER: _ClassVar[int]
+    ITERATIONS_FIELD_NUMBER: _ClassVar[int]
+    PENALTY_FIELD_NUMBER: _ClassVar[int]
+    SECONDS_FIELD_NUMBER: _ClassVar[int]
+    STEP_FIELD_NUMBER: _ClassVar[int]
+    assumptions: _containers.RepeatedScalarFieldContainer[str]
+    bound: Bound
+    constants_recalled: bool
+    evaluations: int
+    evaluations_per_chain: int
+    horizon: float
+    iterations: int
+    penalty: float
+    seconds: float
+    step: float
+    def __init__(self, step: _Optional[float] = ..., horizon: _Optional[float] = ..., iterations: _Optional[int] = ..., evaluations_per_chain: _Optional[int] = ..., evaluations: _Optional[int] = ..., seconds: _Optional[float] = ..., bound: _Optional[_Union[Bound, _Mapping]] = ..., assumptions: _Optional[_Iterable[str]] = ..., constants_recalled: bool = ..., penalty: _Optional[float] = ...) -> None: ...
+
 class Points(_message.Message):
-    __slots__ = ["chains", "dim", "first_row", "points", "quantities", "request_id", "rows", "total_rows"]
+    __slots__ = ["chains", "dim", "first_row", "full_data", "minibatch_groups", "points", "quantities", "replicates", "request_id", "rows", "total_rows", "vectors"]
     CHAINS_FIELD_NUMBER: _ClassVar[int]
     DIM_FIELD_NUMBER: _ClassVar[int]
     FIRST_ROW_FIELD_NUMBER: _ClassVar[int]
+    FULL_DATA_FIELD_NUMBER: _ClassVar[int]
+    MINIBATCH_GROUPS_FIELD_NUMBER: _ClassVar[int]
     POINTS_FIELD_NUMBER: _ClassVar[int]
     QUANTITIES_FIELD_NUMBER: _ClassVar[int]
+    REPLICATES_FIELD_NUMBER: _ClassVar[int]
     REQUEST_ID_FIELD_NUMBER: _ClassVar[int]
     ROWS_FIELD_NUMBER: _ClassVar[int]
     TOTAL_ROWS_FIELD_NUMBER: _ClassVar[int]
+    VECTORS_FIELD_NUMBER: _ClassVar[int]
     chains: _containers.RepeatedScalarFieldContainer[int]
     dim: int
     first_row: int
+    full_data: bool
+    minibatch_groups: _containers.RepeatedScalarFieldContainer[int]
     points: bytes
     quantities: _containers.RepeatedScalarFieldContainer[Quantity]
+    replicates: int
     request_id: int
     rows: int
     total_rows: int
-    def __init__(self, request_id: _Optional[int] = ..., first_row: _Optional[int] = ..., rows: _Optional[int] = ..., dim: _Optional[int] = ..., points: _Optional[bytes] = ..., chains: _Optional[_Iterable[int]] = ..., quantities: _Optional[_Iterable[_Union[Quantity, str]]] = ..., total_rows: _Optional[int] = ...) -> None: ...
+    vectors: bytes
+    def __init__(self, request_id: _Optional[int] = ..., first_row: _Optional[int] = ..., rows: _Optional[int] = ..., dim: _Optional[int] = ..., points: _Optional[bytes] = ..., chains: _Optional[_Iterable[int]] = ..., quantities: _Optional[_Iterable[_Union[Quantity, str]]] = ..., total_rows: _Optional[int] = ..., vectors: _Optional[bytes] = ..., minibatch_groups: _Optional[_Iterable[int]] = ..., full_data: bool = ..., replicates: _Optional[int] = ...) -> None: ...
 
 class Progress(_message.Message):
-    __slots__ = ["draws_sent", "evaluations_left", "evaluations_per_second", "evaluations_used", "seconds_left", "seconds_used", "state", "steps"]
+    __slots__ = ["bound", "curvature", "draws_sent", "evaluations_left", "evaluations_per_second", "evaluations_used", "kernel", "ksd", "noise", "parameters", "seconds_left", "seconds_used", "state", "steps", "targets"]
+    BOUND_FIELD_NUMBER: _ClassVar[int]
+    CURVATURE_FIELD_NUMBER: _ClassVar[int]
     DRAWS_SENT_FIELD_NUMBER: _ClassVar[int]
     EVALUATIONS_LEFT_FIELD_NUMBER: _ClassVar[int]
     EVALUATIONS_PER_SECOND_FIELD_NUMBER: _ClassVar[int]
     EVALUATIONS_USED_FIELD_NUMBER: _ClassVar[int]
+    KERNEL_FIELD_NUMBER: _ClassVar[int]
+    KSD_FIELD_NUMBER: _ClassVar[int]
+    NOISE_FIELD_NUMBER: _ClassVar[int]
+    PARAMETERS_FIELD_NUMBER: _ClassVar[int]
     SECONDS_LEFT_FIELD_NUMBER: _ClassVar[int]
     SECONDS_USED_FIELD_NUMBER: _ClassVar[int]
     STATE_FIELD_NUMBER: _ClassVar[int]
     STEPS_FIELD_NUMBER: _ClassVar[int]
+    TARGETS_FIELD_NUMBER: _ClassVar[int]
+    bound: Bound
+    curvature: CurvatureEstimate
     draws_sent: int
     evaluations_left: int
     evaluations_per_second: float
     evaluations_used: int
+    kernel: KernelReport
+    ksd: float
+    noise: NoiseEstimate
+    parameters: _containers.RepeatedCompositeFieldContainer[ParameterDiagnostics]
     seconds_left: float
     seconds_used: float
     state: State
     steps: int
-    def __init__(self, state: _Optional[_Union[State, str]] = ..., steps: _Optional[int] = ..., evaluations_used: _Optional[int] = ..., evaluations_left: _Optional[int] = ..., seconds_used: _Optional[float] = ..., seconds_left: _Optional[float] = ..., draws_sent: _Optional[int] = ..., evaluations_per_second: _Optional[float] = ...) -> None: ...
+    targets: _containers.RepeatedCompositeFieldContainer[TargetStatus]
+    def __init__(self, state: _Optional[_Union[State, str]] = ..., steps: _Optional[int] = ..., evaluations_used: _Optional[int] = ..., evaluations_left: _Optional[int] = ..., seconds_used: _Optional[float] = ..., seconds_left: _Optional[float] = ..., draws_sent: _Optional[int] = ..., evaluations_per_second: _Optional[float] = ..., parameters: _Optional[_Iterable[_Union[ParameterDiagnostics, _Mapping]]] = ..., ksd: _Optional[float] = ..., bound: _Optional[_Union[Bound, _Mapping]] = ..., curvature: _Optional[_Union[CurvatureEstimate, _Mapping]] = ..., targets: _Optional[_Iterable[_Union[TargetStatus, _Mapping]]] = ..., noise: _Optional[_Union[NoiseEstimate, _Mapping]] = ..., kernel: _Optional[_Union[KernelReport, _Mapping]] = ...) -> None: ...
 
 class Register(_message.Message):
-    __slots__ = ["burn_in", "chains", "dim", "draws_per_chain", "keep_every", "kernel", "max_evaluations", "max_message_bytes", "max_seconds", "names", "progress_every_steps", "progress_interval_seconds", "seed", "start", "start_rows", "step"]
+    __slots__ = ["burn_in", "chains", "curvature", "dim", "draws_per_chain", "friction", "inverse_mass", "keep_every", "kernel", "krylov_max_iterations", "krylov_tolerance", "max_evaluations", "max_message_bytes", "max_seconds", "names", "noise", "progress_every_steps", "progress_interval_seconds", "seed", "start", "start_rows", "step", "wants"]
     BURN_IN_FIELD_NUMBER: _ClassVar[int]
     CHAINS_FIELD_NUMBER: _ClassVar[int]
+    CURVATURE_FIELD_NUMBER: _ClassVar[int]
     DIM_FIELD_NUMBER: _ClassVar[int]
     DRAWS_PER_CHAIN_FIELD_NUMBER: _ClassVar[int]
+    FRICTION_FIELD_NUMBER: _ClassVar[int]
+    INVERSE_MASS_FIELD_NUMBER: _ClassVar[int]
     KEEP_EVERY_FIELD_NUMBER: _ClassVar[int]
     KERNEL_FIELD_NUMBER: _ClassVar[int]
+    KRYLOV_MAX_ITERATIONS_FIELD_NUMBER: _ClassVar[int]
+    KRYLOV_TOLERANCE_FIELD_NUMBER: _ClassVar[int]
     MAX_EVALUATIONS_FIELD_NUMBER: _ClassVar[int]
     MAX_MESSAGE_BYTES_FIELD_NUMBER: _ClassVar[int]
     MAX_SECONDS_FIELD_NUMBER: _ClassVar[int]
     NAMES_FIELD_NUMBER: _ClassVar[int]
+    NOISE_FIELD_NUMBER: _ClassVar[int]
     PROGRESS_EVERY_STEPS_FIELD_NUMBER: _ClassVar[int]
     PROGRESS_INTERVAL_SECONDS_FIELD_NUMBER: _ClassVar[int]
     SEED_FIELD_NUMBER: _ClassVar[int]
     START_FIELD_NUMBER: _ClassVar[int]
     START_ROWS_FIELD_NUMBER: _ClassVar[int]
     STEP_FIELD_NUMBER: _ClassVar[int]
+    WANTS_FIELD_NUMBER: _ClassVar[int]
     burn_in: int
     chains: int
+    curvature: Curvature
     dim: int
     draws_per_chain: int
+    friction: float
+    inverse_mass: float
     keep_every: int
     kernel: str
+    krylov_max_iterations: int
+    krylov_tolerance: float
     max_evaluations: int
     max_message_bytes: int
     max_seconds: float
     names: _containers.RepeatedScalarFieldContainer[str]
+    noise: GradientNoise
     progress_every_steps: int
     progress_interval_seconds: float
     seed: int
     start: bytes
     start_rows: int
     step: float
-    def __init__(self, dim: _Optional[int] = ..., chains: _Optional[int] = ..., kernel: _Optional[str] = ..., start: _Optional[bytes] = ..., start_rows: _Optional[int] = ..., step: _Optional[float] = ..., burn_in: _Optional[int] = ..., keep_every: _Optional[int] = ..., draws_per_chain: _Optional[int] = ..., max_evaluations: _Optional[int] = ..., max_seconds: _Optional[float] = ..., progress_every_steps: _Optional[int] = ..., progress_interval_seconds: _Optional[float] = ..., seed: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., max_message_bytes: _Optional[int] = ...) -> None: ...
+    wants: Wants
+    def __init__(self, dim: _Optional[int] = ..., chains: _Optional[int] = ..., kernel: _Optional[str] = ..., start: _Optional[bytes] = ..., start_rows: _Optional[int] = ..., step: _Optional[float] = ..., burn_in: _Optional[int] = ..., keep_every: _Optional[int] = ..., draws_per_chain: _Optional[int] = ..., max_evaluations: _Optional[int] = ..., max_seconds: _Optional[float] = ..., progress_every_steps: _Optional[int] = ..., progress_interval_seconds: _Optional[float] = ..., seed: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., max_message_bytes: _Optional[int] = ..., curvature: _Optional[_Union[Curvature, _Mapping]] = ..., wants: _Optional[_Union[Wants, _Mapping]] = ..., friction: _Optional[float] = ..., inverse_mass: _Optional[float] = ..., krylov_tolerance: _Optional[float] = ..., krylov_max_iterations: _Optional[int] = ..., noise: _Optional[_Union[GradientNoise, _Mapping]] = ...) -> None: ...
 
 class Registered(_message.Message):
-    __slots__ = ["evaluations_per_step", "kernel", "max_message_bytes", "names", "seed", "session_id", "step"]
+    __slots__ = ["evaluations_per_step", "kernel", "max_message_bytes", "names", "planned_steps", "seed", "session_id", "step"]
     EVALUATIONS_PER_STEP_FIELD_NUMBER: _ClassVar[int]
     KERNEL_FIELD_NUMBER: _ClassVar[int]
     MAX_MESSAGE_BYTES_FIELD_NUMBER: _ClassVar[int]
     NAMES_FIELD_NUMBER: _ClassVar[int]
+    PLANNED_STEPS_FIELD_NUMBER: _ClassVar[int]
     SEED_FIELD_NUMBER: _ClassVar[int]
     SESSION_ID_FIELD_NUMBER: _ClassVar[int]
     STEP_FIELD_NUMBER: _ClassVar[int]
@@ -165,10 +390,11 @@ class Registered(_message.Message):
     kernel: str
     max_message_bytes: int
     names: _containers.RepeatedScalarFieldContainer[str]
+    planned_steps: int
     seed: int
     session_id: str
     step: float
-    def __init__(self, session_id: _Optional[str] = ..., seed: _Optional[int] = ..., kernel: _Optional[str] = ..., step: _Optional[float] = ..., evaluations_per_step: _Optional[int] = ..., max_message_bytes: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ...) -> None: ...
+    def __init__(self, session_id: _Optional[str] = ..., seed: _Optional[int] = ..., kernel: _Optional[str] = ..., step: _Optional[float] = ..., evaluations_per_step: _Optional[int] = ..., max_message_bytes: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., planned_steps: _Optional[int] = ...) -> None: ...
 
 class SessionRequest(_message.Message):
     __slots__ = ["evaluations", "register", "stop"]
@@ -200,10 +426,49 @@ class Stop(_message.Message):
     reason: str
     def __init__(self, reason: _Optional[str] = ...) -> None: ...
 
+class TargetStatus(_message.Message):
+    __slots__ = ["current", "met", "name", "projected_evaluations", "want"]
+    CURRENT_FIELD_NUMBER: _ClassVar[int]
+    MET_FIELD_NUMBER: _ClassVar[int]
+    NAME_FIELD_NUMBER: _ClassVar[int]
+    PROJECTED_EVALUATIONS_FIELD_NUMBER: _ClassVar[int]
+    WANT_FIELD_NUMBER: _ClassVar[int]
+    current: float
+    met: bool
+    name: str
+    projected_evaluations: int
+    want: float
+    def __init__(self, name: _Optional[str] = ..., want: _Optional[float] = ..., current: _Optional[float] = ..., met: bool = ..., projected_evaluations: _Optional[int] = ...) -> None: ...
+
+class Wants(_message.Message):
+    __slots__ = ["eps", "max_ksd", "max_rhat", "metric", "min_bulk_ess", "min_tail_ess"]
+    EPS_FIELD_NUMBER: _ClassVar[int]
+    MAX_KSD_FIELD_NUMBER: _ClassVar[int]
+    MAX_RHAT_FIELD_NUMBER: _ClassVar[int]
+    METRIC_FIELD_NUMBER: _ClassVar[int]
+    MIN_BULK_ESS_FIELD_NUMBER: _ClassVar[int]
+    MIN_TAIL_ESS_FIELD_NUMBER: _ClassVar[int]
+    eps: float
+    max_ksd: float
+    max_rhat: float
+    metric: Metric
+    min_bulk_ess: float
+    min_tail_ess: float
+    def __init__(self, min_bulk_ess: _Optional[float] = ..., min_tail_ess: _Optional[float] = ..., max_rhat: _Optional[float] = ..., max_ksd: _Optional[float] = ..., eps: _Optional[float] = ..., metric: _Optional[_Union[Metric, str]] = ...) -> None: ...
+
+class GradientKind(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+    __slots__ = []
+
+class Metric(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+    __slots__ = []
+
 class Quantity(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = []
 
 class State(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+    __slots__ = []
+
+class BoundSource(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = []
 
 class FinishReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
