@@ -128,8 +128,10 @@ func runInproc(tg targets.Target, c transportCase, start []float64) []float64 {
 }
 
 // runSession runs one session of steps steps over conn, answering with
-// tg, and returns the summary and the draws of the last step.
-func runSession(ctx context.Context, conn grpc.ClientConnInterface, tg targets.Target, c transportCase, steps int, start []float64) (*client.Summary, []float64, error) {
+// tg, and returns the summary, the draws of the last step, and the time
+// from opening the session to the arrival of its last draw (the rest, the
+// final summary with its diagnostics, is computed once per session).
+func runSession(ctx context.Context, conn grpc.ClientConnInterface, tg targets.Target, c transportCase, steps int, start []float64) (*client.Summary, []float64, time.Duration, error) {
 	spec := client.Spec{Dim: c.dim, Chains: c.chains, Kernel: "lmc", Start: start, Step: benchStep,
 		BurnIn: 0, KeepEvery: 1, DrawsPerChain: int64(steps), Seed: benchSeed, MaxMessageBytes: floorMessageBytes}
 	last := make([]float64, c.chains*c.dim)
@@ -137,13 +139,16 @@ func runSession(ctx context.Context, conn grpc.ClientConnInterface, tg targets.T
 		targets.EvalBatch(tg, bt.Points, bt.Rows, bt.Grad, nil)
 		return nil
 	}
+	t0 := time.Now()
+	var toLast time.Duration
 	onDraws := client.OnDraws(func(d *client.Draws) {
 		if d.Rows > 0 && d.Iterations[0] == int64(steps) {
 			copy(last[d.Chains[0]*c.dim:], d.Values)
+			toLast = time.Since(t0)
 		}
 	})
 	sum, err := client.Run(ctx, conn, spec, eval, onDraws)
-	return sum, last, err
+	return sum, last, toLast, err
 }
 
 // BenchmarkTransport measures, side by side in each iteration, the draws
@@ -169,7 +174,7 @@ func BenchmarkTransport(b *testing.B) {
 			defer cancel()
 
 			warm := min(c.steps, warmSteps)
-			if _, _, err := runSession(ctx, tcp, tg, c, warm, start); err != nil {
+			if _, _, _, err := runSession(ctx, tcp, tg, c, warm, start); err != nil {
 				b.Fatal(err)
 			}
 			if err := runFloor(ctx, floor, warm, 1, payload); err != nil {
@@ -177,7 +182,7 @@ func BenchmarkTransport(b *testing.B) {
 			}
 
 			b.ReportAllocs()
-			var inT, tcpT, floorT time.Duration
+			var inT, tcpT, floorT, summaryT time.Duration
 			iters := 0
 			for b.Loop() {
 				t0 := time.Now()
@@ -188,8 +193,9 @@ func BenchmarkTransport(b *testing.B) {
 				inT += time.Since(t0)
 
 				t0 = time.Now()
-				sum, got, err := runSession(ctx, tcp, tg, c, c.steps, start)
-				tcpT += time.Since(t0)
+				sum, got, toLast, err := runSession(ctx, tcp, tg, c, c.steps, start)
+				tcpT += toLast
+				summaryT += time.Since(t0) - toLast
 				if err != nil {
 					b.Fatal(err)
 				}
@@ -222,6 +228,7 @@ func BenchmarkTransport(b *testing.B) {
 			b.ReportMetric(tcpT.Seconds()/floorT.Seconds(), "tcp/floor")
 			b.ReportMetric(tcpT.Seconds()*1e6/steps, "us/step-tcp")
 			b.ReportMetric(floorT.Seconds()*1e6/steps, "us/rtt-floor")
+			b.ReportMetric(summaryT.Seconds()*1e3/float64(iters), "ms-summary/session")
 		})
 	}
 }

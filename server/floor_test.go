@@ -191,7 +191,7 @@ func BenchmarkSessionLoopback(b *testing.B) {
 			conn := serveLoopback(b, srv.Serve, srv.Stop)
 			ctx, cancel := context.WithTimeout(context.Background(), 5*time.Minute)
 			defer cancel()
-			if _, _, err := runSession(ctx, conn, tg, c, min(c.steps, warmSteps), start); err != nil {
+			if _, _, _, err := runSession(ctx, conn, tg, c, min(c.steps, warmSteps), start); err != nil {
 				b.Fatal(err)
 			}
 			b.ReportAllocs()
@@ -199,7 +199,7 @@ func BenchmarkSessionLoopback(b *testing.B) {
 			iters := 0
 			for b.Loop() {
 				t0 := time.Now()
-				sum, _, err := runSession(ctx, conn, tg, c, c.steps, start)
+				sum, _, _, err := runSession(ctx, conn, tg, c, c.steps, start)
 				total += time.Since(t0)
 				if err != nil {
 					b.Fatal(err)

@@ -132,8 +132,8 @@ type monitor struct {
 	pendingScores bool
 	// Cost control: time spent computing diagnostics, so that they take
 	// at most a tenth of the session's wall time.
-	spent   time.Duration
-	lastKSD float64
+	spent, lastCost time.Duration
+	lastKSD         float64
 	// The last measured figures, for the targets.
 	params   []ParameterDiagnostics
 	measured bool
@@ -144,9 +144,10 @@ func newMonitor(dim, chains int, names []string) *monitor {
 	// √(5·10⁷/dim), at least two rounds of chains.
 	k := int(math.Sqrt(5e7 / float64(dim)))
 	k = max(2*chains, min(k, 2048))
-	// The §9 figures sort every coordinate's kept draws: keep about 4·10⁶
-	// values in all, between 16 and 4096 draws per chain.
-	h := max(16, min(4096, (4<<20)/(chains*dim)))
+	// The §9 figures sort every coordinate's kept draws: keep about 10⁶
+	// values in all (about 0.3 s to summarise), between 16 and 4096 draws
+	// per chain.
+	h := max(16, min(4096, (1<<20)/(chains*dim)))
 	return &monitor{dim: dim, chains: chains, names: names, hist: diag.NewHistory(chains, dim, h),
 		ksd:   diag.NewStreamKSD(diag.IMQ{}, dim, chains, k),
 		lastX: make([]float64, dim*chains), lastG: make([]float64, dim*chains), haveLast: make([]bool, chains),
@@ -189,13 +190,22 @@ func (m *monitor) kept(k kernels.Kernel) {
 	m.pendingScores = true
 }
 
-// measure fills p's measured figures, unless diagnostics have already
-// taken a tenth of the elapsed time (then the last values stand).
-func (m *monitor) measure(p *Progress) {
+// measure fills p's measured figures. Diagnostics cost O(N log N) per
+// coordinate on the kept window, so they are refreshed only while their
+// total cost stays within a tenth of the session's wall time: a report is
+// skipped (the last values stand) when the expected cost of one more —
+// the last one's, or 100 ns per kept value before the first — would
+// exceed that share. The final report always refreshes them.
+func (m *monitor) measure(p *Progress, final bool) {
 	p.Curvature = CurvatureEstimate{Pairs: int64(m.curv.Pairs()), SmoothnessAtLeast: m.curv.SmoothnessFloor(),
 		StrongConvexityAtMost: m.curv.ConvexityCeiling(), NotConvex: m.curv.NonConvex()}
 	p.KSD = m.lastKSD
-	if m.spent > p.Elapsed/10 {
+	p.Parameters = m.params
+	expect := m.lastCost
+	if expect == 0 {
+		expect = time.Duration(100 * m.hist.Kept() * m.chains * m.dim)
+	}
+	if !final && m.spent+expect > p.Elapsed/10 {
 		return
 	}
 	t := time.Now()
@@ -211,7 +221,8 @@ func (m *monitor) measure(p *Progress) {
 		}
 		m.measured = true
 	}
-	m.spent += time.Since(t)
+	m.lastCost = time.Since(t)
+	m.spent += m.lastCost
 	p.Parameters = m.params
 }
 

@@ -45,6 +45,8 @@ type Session struct {
 	epsSteps   int      // steps at which the bound meets Wants.Eps; −1 if never or not asked
 	log        *DrawLog // nil when followers are not served
 	draws      Draws    // reused frame
+	stepMean   []float64
+	stepM2     []float64
 	drawChains []int
 	drawIters  []int64
 }
@@ -462,7 +464,7 @@ func (s *Session) afterStep(send func(Frame) error) error {
 	}
 	if due {
 		s.lastProgress = now
-		p := s.progress(now)
+		p := s.progress(now, false)
 		return send(&p)
 	}
 	return nil
@@ -478,15 +480,7 @@ func (s *Session) progressInterval() time.Duration {
 func (s *Session) sendDraws(step int64, send func(Frame) error) error {
 	x := s.kernel.Positions()
 	dim, chains := s.spec.Dim, s.spec.Chains
-	for c := range chains {
-		s.count++
-		row := x[c*dim : (c+1)*dim]
-		for i, v := range row {
-			d := v - s.mean[i]
-			s.mean[i] += d / float64(s.count)
-			s.m2[i] += d * (v - s.mean[i])
-		}
-	}
+	s.accumulate(x, dim, chains)
 	if s.drawChains == nil {
 		s.drawChains = make([]int, chains)
 		s.drawIters = make([]int64, chains)
@@ -601,7 +595,46 @@ func (s *Session) burnInCost() int64 {
 	return min(s.used, s.spec.BurnIn*int64(s.kernel.EvaluationsPerStep()))
 }
 
-func (s *Session) progress(now time.Time) Progress {
+// accumulate folds one step's rows into the running per-coordinate mean
+// and sum of squared deviations: the step's own mean and deviations
+// first, then the pairwise update of Chan, Golub & LeVeque (1979), so the
+// inner loops have no division.
+func (s *Session) accumulate(x []float64, dim, chains int) {
+	if cap(s.stepMean) < dim {
+		s.stepMean, s.stepM2 = make([]float64, dim), make([]float64, dim)
+	}
+	sm, s2 := s.stepMean[:dim], s.stepM2[:dim]
+	clear(sm)
+	clear(s2)
+	for c := range chains {
+		row := x[c*dim : (c+1)*dim]
+		for i, v := range row {
+			sm[i] += v
+		}
+	}
+	inv := 1 / float64(chains)
+	for i := range sm {
+		sm[i] *= inv
+	}
+	for c := range chains {
+		row := x[c*dim : (c+1)*dim]
+		for i, v := range row {
+			d := v - sm[i]
+			s2[i] += d * d
+		}
+	}
+	na, nb := float64(s.count), float64(chains)
+	n := na + nb
+	wb, wab := nb/n, na*nb/n
+	for i := range sm {
+		d := sm[i] - s.mean[i]
+		s.mean[i] += d * wb
+		s.m2[i] += s2[i] + d*d*wab
+	}
+	s.count += int64(chains)
+}
+
+func (s *Session) progress(now time.Time, final bool) Progress {
 	elapsed := now.Sub(s.start)
 	p := Progress{State: Sampling, Steps: int64(s.kernel.Steps()), EvaluationsUsed: s.used,
 		EvaluationsLeft: -1, Elapsed: elapsed, TimeLeft: -1, DrawsSent: int64(s.seq)}
@@ -621,7 +654,7 @@ func (s *Session) progress(now time.Time) Progress {
 	if sec := elapsed.Seconds(); sec > 0 {
 		p.EvaluationsPerSecond = float64(s.used) / sec
 	}
-	s.mon.measure(&p)
+	s.mon.measure(&p, final)
 	p.Kernel = kernelReport(s.kernel)
 	if s.spec.Noise.Stochastic {
 		n := s.noise.estimate(s.spec.Noise)
@@ -638,7 +671,7 @@ func (s *Session) progress(now time.Time) Progress {
 }
 
 func (s *Session) result(r Reason, msg string) Result {
-	p := s.progress(time.Now())
+	p := s.progress(time.Now(), true)
 	p.State = Done
 	f := Finished{Reason: r, Message: msg, Progress: p, Parameters: make([]ParameterSummary, s.spec.Dim)}
 	for i := range f.Parameters {
