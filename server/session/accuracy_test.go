@@ -187,3 +187,27 @@ func TestExactOnlyKernelsRefuseStochasticGradients(t *testing.T) {
 		t.Error("eps without curvature accepted")
 	}
 }
+
+// Without declared curvature, an lmc session's bound comes from the
+// certificates and is labelled estimated, never guaranteed (issue 4 item
+// 6); with declared curvature it is labelled declared.
+func TestEstimatedBoundIsLabelled(t *testing.T) {
+	spec := baseSpec()
+	spec.DrawsPerChain = 200
+	_, res, err := drive(t, mustNew(t, spec, Limits{}), gaussian(2))
+	if err != nil {
+		t.Fatal(err)
+	}
+	b := res.Finished.Progress.Bound
+	if b == nil || b.Source != bound.Estimated || b.Source.String() != "estimated, not guaranteed" {
+		t.Fatalf("bound without declared curvature: %+v", b)
+	}
+	spec.Curvature = &Curvature{StrongConvexity: 2, Smoothness: 2}
+	_, res, err = drive(t, mustNew(t, spec, Limits{}), gaussian(2))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if b := res.Finished.Progress.Bound; b == nil || b.Source != bound.Declared {
+		t.Fatalf("bound with declared curvature: %+v", b)
+	}
+}

@@ -595,6 +595,30 @@ func (s *Session) burnInCost() int64 {
 	return min(s.used, s.spec.BurnIn*int64(s.kernel.EvaluationsPerStep()))
 }
 
+// estimatedBound is the W2 bound of an lmc session that declared no
+// curvature, computed from the certificates as if they were m and M. The
+// certificates are one-sided the wrong way for a guarantee (m ≤ the upper
+// bound used, M ≥ the lower bound used), so the figure is optimistic:
+// it is labelled "estimated, not guaranteed" (bound.Estimated).
+func (s *Session) estimatedBound(c CurvatureEstimate) (bound.Bound, bool) {
+	if s.spec.Kernel != "lmc" || s.spec.Curvature != nil || c.Pairs < int64(2*s.spec.Dim) || c.NotConvex {
+		return bound.Bound{}, false
+	}
+	m, bigM := c.StrongConvexityAtMost, c.SmoothnessAtLeast
+	if !(m > 0) || !(bigM >= m) || math.IsInf(bigM, 0) {
+		return bound.Bound{}, false
+	}
+	set := bound.Setting{Convexity: m, Smoothness: bigM, Dim: s.spec.Dim, Source: bound.Estimated}
+	if s.spec.Noise.Stochastic {
+		if e := s.noise.estimate(s.spec.Noise); e.Variance > 0 {
+			set.Noise = math.Sqrt(e.Variance / float64(s.spec.Noise.Replicates))
+		}
+		set.Bias = s.spec.Noise.Bias
+	}
+	b, err := bound.W2Bound(set, s.spec.Step, s.kernel.Steps())
+	return b, err == nil
+}
+
 // accumulate folds one step's rows into the running per-coordinate mean
 // and sum of squared deviations: the step's own mean and deviations
 // first, then the pairwise update of Chan, Golub & LeVeque (1979), so the
@@ -665,6 +689,8 @@ func (s *Session) progress(now time.Time, final bool) Progress {
 		if b, err := s.guarantee.at(s.kernel.Steps()); err == nil {
 			p.Bound = &b
 		}
+	} else if b, ok := s.estimatedBound(p.Curvature); ok {
+		p.Bound = &b
 	}
 	p.Targets = s.targets(p.Bound)
 	return p
