@@ -21,7 +21,6 @@ import (
 	"google.golang.org/grpc/experimental"
 
 	"sluice/client"
-	"sluice/kernels/diag"
 	"sluice/server"
 )
 
@@ -42,6 +41,9 @@ type demoConfig struct {
 	planCool      float64
 	logLevel      string
 	noProgressBar bool
+	wantESS       float64
+	wantRhat      float64
+	wantKSD       float64
 }
 
 func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
@@ -52,7 +54,7 @@ func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs.StringVar(&c.kernel, "kernel", "lmc", "sampling kernel")
 	fs.Float64Var(&c.step, "step", 0, "step size h (0: a tenth of 1/M, M the target's smoothness)")
 	fs.Int64Var(&c.burnIn, "burn-in", 1000, "steps per chain discarded before keeping draws")
-	fs.Int64Var(&c.keepEvery, "keep-every", 5, "keep every k-th step after burn-in (thinning)")
+	fs.Int64Var(&c.keepEvery, "keep-every", 10, "keep every k-th step after burn-in (thinning)")
 	fs.Int64Var(&c.draws, "draws", 1000, "kept draws per chain (0: until a budget runs out)")
 	fs.Int64Var(&c.maxEvals, "max-evals", 0, "most gradient evaluations (0: no limit)")
 	fs.DurationVar(&c.maxTime, "max-time", 50*time.Second, "most wall time (0: no limit)")
@@ -63,6 +65,9 @@ func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs.Float64Var(&c.planCool, "plan-cool", 8, "planned cooling rate in °C per minute")
 	fs.StringVar(&c.logLevel, "log-level", "warn", "server log level: debug, info, warn, error")
 	fs.BoolVar(&c.noProgressBar, "quiet", false, "no live progress line")
+	fs.Float64Var(&c.wantESS, "want-ess", 0, "finish once every parameter's bulk- and tail-ESS reach this (0: no target)")
+	fs.Float64Var(&c.wantRhat, "want-rhat", 0, "finish once every parameter's R-hat is below this, e.g. 1.01 (0: no target)")
+	fs.Float64Var(&c.wantKSD, "want-ksd", 0, "finish once the kernel Stein discrepancy is below this (0: no target)")
 	if err := parseFlags(fs, args); err != nil {
 		return err
 	}
@@ -71,6 +76,9 @@ func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	}
 	if c.chains < 1 || c.burnIn < 0 || c.keepEvery < 1 || c.draws < 0 || c.maxEvals < 0 || c.maxTime < 0 || c.step < 0 {
 		return usagef("--chains and --keep-every must be ≥ 1; --burn-in, --draws, --max-evals, --max-time, --step ≥ 0")
+	}
+	if c.wantESS < 0 || c.wantKSD < 0 || (c.wantRhat != 0 && c.wantRhat <= 1) {
+		return usagef("--want-ess and --want-ksd must be ≥ 0, --want-rhat > 1")
 	}
 	if c.draws == 0 && c.maxEvals == 0 && c.maxTime == 0 {
 		return usagef("with --draws 0, set --max-evals or --max-time so the run ends")
@@ -104,10 +112,28 @@ type demoParameter struct {
 	Q05  float64 `json:"q05"`
 	Q50  float64 `json:"q50"`
 	Q95  float64 `json:"q95"`
-	// ESS is the effective sample size of the split chains and MCSE the
-	// Monte Carlo standard error of the mean, sd/√ESS (THEORY.md §9).
-	ESS  float64 `json:"ess"`
-	MCSE float64 `json:"mcse_mean"`
+	// R-hat, bulk- and tail-ESS and the MCSE of the mean, as the server
+	// measured them (THEORY.md §9).
+	Rhat    float64 `json:"rhat"`
+	BulkESS float64 `json:"bulk_ess"`
+	TailESS float64 `json:"tail_ess"`
+	MCSE    float64 `json:"mcse_mean"`
+}
+
+// demoAccuracy is the server's accuracy report at the end: measured
+// (Stein discrepancy, curvature seen) and guaranteed (the bound, with its
+// label), kept apart.
+type demoAccuracy struct {
+	KSD             float64 `json:"ksd"`
+	SmoothnessSeen  float64 `json:"smoothness_at_least"`
+	ConvexitySeen   float64 `json:"strong_convexity_at_most"`
+	DeclaredM       float64 `json:"declared_m"`
+	DeclaredBigM    float64 `json:"declared_M"`
+	BoundMetric     string  `json:"bound_metric,omitempty"`
+	Bound           float64 `json:"bound,omitempty"`
+	BoundLabel      string  `json:"bound_label,omitempty"`
+	BoundStart      float64 `json:"bound_start_term,omitempty"`
+	BoundDiscretise float64 `json:"bound_discretisation_term,omitempty"`
 }
 
 // demoAnswer is the downstream question answered from the draws.
@@ -131,6 +157,7 @@ type demoResult struct {
 	Seconds        float64         `json:"seconds"`
 	DrawsPerChain  int             `json:"draws_per_chain"`
 	Parameters     []demoParameter `json:"parameters"`
+	Accuracy       demoAccuracy    `json:"accuracy"`
 	Question       *demoAnswer     `json:"question,omitempty"`
 	Out            string          `json:"out,omitempty"`
 	MinDrawsNeeded int             `json:"-"`
@@ -172,9 +199,29 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 	for i := range start {
 		start[i] = r.NormFloat64()
 	}
+	// The model's curvature is known: m is the prior precision and M adds
+	// a quarter of λ_max(XᵀX). A chain started at x is within
+	// ‖x − θ*‖ + √(p/m) of π in W2 (THEORY.md §2.1), which the demo can
+	// declare because it knows the mode θ*.
+	m, bigM := target.Curvature()
+	mode, err := target.Mode(1e-10, 100)
+	if err != nil {
+		return nil, err
+	}
+	w0 := 0.0
+	for ch := range c.chains {
+		var d2 float64
+		for i := range 3 {
+			d := start[ch*3+i] - mode[i]
+			d2 += d * d
+		}
+		w0 = math.Max(w0, math.Sqrt(d2)+math.Sqrt(3/m))
+	}
 	spec := client.Spec{Dim: 3, Chains: c.chains, Kernel: c.kernel, Start: start, Step: c.step, BurnIn: c.burnIn,
 		KeepEvery: c.keepEvery, DrawsPerChain: c.draws, MaxEvaluations: c.maxEvals, MaxTime: c.maxTime,
-		Seed: c.seed, Names: kilnNames, ProgressInterval: 200 * time.Millisecond}
+		Seed: c.seed, Names: kilnNames, ProgressInterval: 200 * time.Millisecond,
+		Curvature: &client.Curvature{StrongConvexity: m, Smoothness: bigM, StartDistance: w0},
+		Wants:     client.Wants{MinBulkESS: c.wantESS, MinTailESS: c.wantESS, MaxRhat: c.wantRhat, MaxKSD: c.wantKSD}}
 
 	chains := make([][][]float64, 3) // [param][chain][draw]
 	for i := range chains {
@@ -238,7 +285,20 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 		for ch := range chains[i] {
 			chains[i][ch] = chains[i][ch][:n]
 		}
-		res.Parameters = append(res.Parameters, summarise(name, chains[i]))
+		p := summarise(name, chains[i])
+		for _, d := range sum.Progress.Parameters {
+			if d.Name == name {
+				p.Rhat, p.BulkESS, p.TailESS, p.MCSE = d.Rhat, d.BulkESS, d.TailESS, d.MCSE
+			}
+		}
+		res.Parameters = append(res.Parameters, p)
+	}
+	fp := sum.Progress
+	res.Accuracy = demoAccuracy{KSD: fp.KSD, SmoothnessSeen: fp.Curvature.SmoothnessAtLeast,
+		ConvexitySeen: fp.Curvature.StrongConvexityAtMost, DeclaredM: m, DeclaredBigM: bigM}
+	if b := fp.Bound; b != nil {
+		res.Accuracy.BoundMetric, res.Accuracy.Bound, res.Accuracy.BoundLabel = string(b.Metric), b.Value, b.Label
+		res.Accuracy.BoundStart, res.Accuracy.BoundDiscretise = b.Start, b.Discretisation
 	}
 	// The downstream question: the chance of cracking at the planned
 	// schedule, one value per draw, summarised.
@@ -268,9 +328,8 @@ func summarise(name string, chains [][]float64) demoParameter {
 	}
 	sd := math.Sqrt(ss / float64(len(all)-1))
 	sort.Float64s(all)
-	ess := diag.ESS(diag.SplitChains(chains))
 	return demoParameter{Name: name, Mean: m, SD: sd, Q05: quantileSorted(all, 0.05), Q50: quantileSorted(all, 0.5),
-		Q95: quantileSorted(all, 0.95), ESS: ess, MCSE: sd / math.Sqrt(ess)}
+		Q95: quantileSorted(all, 0.95), Rhat: math.NaN(), BulkESS: math.NaN(), TailESS: math.NaN(), MCSE: math.NaN()}
 }
 
 func meanOf(x []float64) float64 {
@@ -298,11 +357,22 @@ func printDemo(w io.Writer, r *demoResult) {
 	fmt.Fprintf(w, "session %s: kernel %s, step %.4g, %d chains, seed %d\n", r.SessionID, r.Kernel, r.Step, r.Chains, r.Seed)
 	fmt.Fprintf(w, "finished (%s): %d gradient evaluations in %.2f s, %d draws per chain kept\n\n",
 		r.Reason, r.Evaluations, r.Seconds, r.DrawsPerChain)
-	fmt.Fprintf(w, "%-14s %9s %8s %9s %9s %9s %8s %9s\n", "parameter", "mean", "sd", "5%", "50%", "95%", "ESS", "MCSE")
+	fmt.Fprintf(w, "%-14s %9s %8s %9s %9s %9s %7s %8s %8s %9s\n", "parameter", "mean", "sd", "5%", "50%", "95%", "R-hat", "bulk-ESS", "tail-ESS", "MCSE")
 	for _, p := range r.Parameters {
-		fmt.Fprintf(w, "%-14s %9.4f %8.4f %9.4f %9.4f %9.4f %8.0f %9.5f\n", p.Name, p.Mean, p.SD, p.Q05, p.Q50, p.Q95, p.ESS, p.MCSE)
+		fmt.Fprintf(w, "%-14s %9.4f %8.4f %9.4f %9.4f %9.4f %7.3f %8.0f %8.0f %9.5f\n", p.Name, p.Mean, p.SD, p.Q05, p.Q50, p.Q95,
+			p.Rhat, p.BulkESS, p.TailESS, p.MCSE)
 	}
 	fmt.Fprintf(w, "(coefficients on the log-odds scale: temperature per %g °C, cooling rate per %g °C/min)\n\n", tempScale, coolScale)
+	a := r.Accuracy
+	fmt.Fprintf(w, "measured:   Stein discrepancy %.4g; curvature seen along the chains M ≥ %.4g, m ≤ %.4g\n", a.KSD, a.SmoothnessSeen, a.ConvexitySeen)
+	if a.BoundLabel != "" {
+		fmt.Fprintf(w, "guaranteed: %s ≤ %.4g after the last step (%s; m = %.3g, M = %.3g declared)\n",
+			strings.ToUpper(a.BoundMetric), a.Bound, a.BoundLabel, a.DeclaredM, a.DeclaredBigM)
+		fmt.Fprintf(w, "            of which %.3g from the start and %.3g from the step size: the worst case for condition number %.0f\n\n",
+			a.BoundStart, a.BoundDiscretise, a.DeclaredBigM/a.DeclaredM)
+	} else {
+		fmt.Fprintln(w)
+	}
 	if q := r.Question; q != nil {
 		fmt.Fprintf(w, "Planned firing at %g °C peak, cooling %g °C/min:\n", q.TempC, q.CoolCPerMinute)
 		fmt.Fprintf(w, "  chance a batch cracks: %.3f (90%% interval %.3f to %.3f)\n\n", q.Mean, q.Q05, q.Q95)
