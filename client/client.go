@@ -62,6 +62,11 @@ type Noise struct {
 // W2(start, π) (0: √(dim/m), a start at the mode).
 type Curvature struct {
 	StrongConvexity, Smoothness, StartDistance float64
+	// SecondMoment μ₂ ≥ E_π‖θ − centre‖² turns on the penalised target
+	// for m = 0 with a TV target; PenaltyCentre (Dim values, nil: the
+	// mean of the start points) is its centre.
+	SecondMoment  float64
+	PenaltyCentre []float64
 }
 
 // Metric names the distance of a guaranteed bound.
@@ -353,7 +358,8 @@ func curvatureToWire(c *Curvature) *sluicev1.Curvature {
 	if c == nil {
 		return nil
 	}
-	return &sluicev1.Curvature{StrongConvexity: c.StrongConvexity, Smoothness: c.Smoothness, StartDistance: c.StartDistance}
+	return &sluicev1.Curvature{StrongConvexity: c.StrongConvexity, Smoothness: c.Smoothness, StartDistance: c.StartDistance,
+		SecondMoment: c.SecondMoment, PenaltyCentre: putFloats(nil, c.PenaltyCentre)}
 }
 
 func wantsToWire(w Wants) *sluicev1.Wants {

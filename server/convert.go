@@ -23,7 +23,12 @@ func specFromWire(r *sluicev1.Register) (session.Spec, error) {
 	}
 	var curv *session.Curvature
 	if c := r.GetCurvature(); c != nil {
-		curv = &session.Curvature{StrongConvexity: c.GetStrongConvexity(), Smoothness: c.GetSmoothness(), StartDistance: c.GetStartDistance()}
+		centre, err := floats("register.curvature.penalty_centre", c.GetPenaltyCentre())
+		if err != nil {
+			return session.Spec{}, err
+		}
+		curv = &session.Curvature{StrongConvexity: c.GetStrongConvexity(), Smoothness: c.GetSmoothness(),
+			StartDistance: c.GetStartDistance(), SecondMoment: c.GetSecondMoment(), PenaltyCentre: centre}
 	}
 	w := r.GetWants()
 	wants := session.Wants{MinBulkESS: w.GetMinBulkEss(), MinTailESS: w.GetMinTailEss(), MaxRhat: w.GetMaxRhat(),

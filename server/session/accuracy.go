@@ -42,29 +42,50 @@ type guarantee struct {
 	metric  bound.Metric
 	h       float64
 	planned int // steps the plan asked for; 0 when the step was given
+	// penalty λ > 0 when the chains sample π_λ ∝ π·exp(−λ‖θ − centre‖²/2)
+	// (m = 0, THEORY.md §1.2); the engine adds it to every answer.
+	penalty float64
+	centre  []float64
 }
 
 // newGuarantee returns nil when no bound applies: no curvature declared,
 // another kernel, m = 0, or a step outside the theorem's range.
 func newGuarantee(spec *Spec) (*guarantee, error) {
 	c := spec.Curvature
-	if c == nil || spec.Kernel != "lmc" || c.StrongConvexity == 0 {
+	if c == nil || spec.Kernel != "lmc" || (c.StrongConvexity == 0 && spec.Wants.Eps == 0) {
 		return nil, nil
 	}
 	g := &guarantee{setting: bound.Setting{Convexity: c.StrongConvexity, Smoothness: c.Smoothness, Dim: spec.Dim,
-		StartDistance: c.StartDistance, Source: bound.Declared}, metric: spec.Wants.Metric}
+		StartDistance: c.StartDistance, SecondMoment: c.SecondMoment, Source: bound.Declared}, metric: spec.Wants.Metric}
 	if g.metric == 0 {
 		g.metric = bound.W2
 	}
 	if g.metric == bound.TV {
 		g.setting.StartDistance = 0 // TV's theorem fixes its own start law
 	}
-	if spec.Step == 0 { // plan it (validate allowed this only with wants.eps)
+	if c.StrongConvexity == 0 || spec.Step == 0 { // plan it (validate allowed this only with wants.eps)
 		p, err := bound.NewPlan(bound.Spec{Setting: g.setting, Metric: g.metric, Eps: spec.Wants.Eps, Chains: spec.Chains})
 		if err != nil {
 			return nil, BadField("register.wants.eps", "cannot plan a step: %v", err)
 		}
-		spec.Step, g.planned = p.Step, p.Iterations
+		g.penalty = p.Penalty
+		if spec.Step == 0 || spec.Step > p.Step {
+			// The penalised target's rule fixes the largest step its bound
+			// covers; a larger step given by the client is brought down.
+			spec.Step = p.Step
+		}
+		g.planned = p.Iterations
+	}
+	if g.penalty > 0 {
+		g.centre = c.PenaltyCentre
+		if g.centre == nil {
+			g.centre = make([]float64, spec.Dim)
+			for r := range spec.StartRows {
+				for i := range spec.Dim {
+					g.centre[i] += spec.Start[r*spec.Dim+i] / float64(spec.StartRows)
+				}
+			}
+		}
 	}
 	g.h = spec.Step
 	if _, err := g.at(0); err != nil {
@@ -78,7 +99,7 @@ func newGuarantee(spec *Spec) (*guarantee, error) {
 
 func (g *guarantee) at(k int) (bound.Bound, error) {
 	if g.metric == bound.TV {
-		return bound.TVBound(g.setting, 0, g.h, k)
+		return bound.TVBound(g.setting, g.penalty, g.h, k)
 	}
 	return bound.W2Bound(g.setting, g.h, k)
 }
@@ -260,4 +281,27 @@ func kernelReport(k kernels.Kernel) KernelReport {
 		r.Krylov = o.LastStep()
 	}
 	return r
+}
+
+// penalise adds the penalty of π_λ to the answers of one request:
+// ∇log π_λ(θ) = ∇log π(θ) − λ(θ − centre) and log π_λ = log π −
+// λ‖θ − centre‖²/2 (THEORY.md §1.2).
+func (g *guarantee) penalise(req *kernels.Request, a *kernels.Answer, dim int) {
+	if g == nil || g.penalty == 0 {
+		return
+	}
+	for r := range req.Rows {
+		x := req.Points[r*dim : (r+1)*dim]
+		var sq float64
+		for i, v := range x {
+			d := v - g.centre[i]
+			sq += d * d
+			if req.Need.Has(kernels.NeedGradient) {
+				a.Grad[r*dim+i] -= g.penalty * d
+			}
+		}
+		if req.Need.Has(kernels.NeedLogDensity) {
+			a.LogDensity[r] -= g.penalty * sq / 2
+		}
+	}
 }

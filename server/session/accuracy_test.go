@@ -6,6 +6,7 @@ import (
 	"strings"
 	"testing"
 
+	"sluice/kernels"
 	"sluice/kernels/bound"
 )
 
@@ -209,5 +210,54 @@ func TestEstimatedBoundIsLabelled(t *testing.T) {
 	}
 	if b := res.Finished.Progress.Bound; b == nil || b.Source != bound.Declared {
 		t.Fatalf("bound with declared curvature: %+v", b)
+	}
+}
+
+// A convex target that is not strongly convex (m = 0) with a TV target
+// and a second-moment bound is sampled through the penalised target π_λ
+// of THEORY.md §1.2: λ and the step come from kernels/bound's composed
+// rule, every gradient gets −λ(θ − centre), and the bias λμ₂/2 is the
+// bound's own term. The draws equal an in-process LMC on the penalised
+// gradient, bit for bit.
+func TestPenalisedTargetForConvexPotential(t *testing.T) {
+	// f(θ) = log cosh θ: convex, M = 1, m = 0; π ∝ sech θ has
+	// E θ² = π²/4 ≈ 2.467 (a closed form, from memory), so about the
+	// centre 0.5 (the start) E(θ − 0.5)² ≈ 2.717 and μ₂ = 2.75 bounds it.
+	spec := Spec{Dim: 1, Chains: 2, Start: []float64{0.5}, StartRows: 1, Seed: 9, MaxEvaluations: 2 * 300,
+		Curvature: &Curvature{Smoothness: 1, SecondMoment: 2.75}, Wants: Wants{Eps: 0.3, Metric: bound.TV}}
+	plan, err := bound.NewPlan(bound.Spec{Setting: bound.Setting{Smoothness: 1, Dim: 1, SecondMoment: 2.75, Source: bound.Declared},
+		Metric: bound.TV, Eps: 0.3, Chains: 2})
+	if err != nil {
+		t.Fatal(err)
+	}
+	tanh := func(p *Points, ev *Evaluations) {
+		ev.Grad = make([]float64, len(p.Points))
+		for i, x := range p.Points {
+			ev.Grad[i] = -math.Tanh(x)
+		}
+	}
+	tr, res, err := drive(t, mustNew(t, spec, Limits{}), tanh)
+	if err != nil || res.Finished.Reason != BudgetSpent {
+		t.Fatalf("reason %v err %v", res.Finished.Reason, err)
+	}
+	if tr.registered.Step != plan.Step || tr.registered.PlannedSteps != plan.Iterations || plan.Penalty != 0.3/2.75 {
+		t.Fatalf("registered step %v planned %d; plan %+v", tr.registered.Step, tr.registered.PlannedSteps, plan.Schedule)
+	}
+	b := res.Finished.Progress.Bound
+	if b == nil || math.Abs(b.Bias-plan.Penalty*2.75/2) > 1e-15 || b.Metric != bound.TV {
+		t.Fatalf("bound %+v, want bias term λμ₂/2 = %v", b, plan.Penalty*2.75/2)
+	}
+	k := kernelsLMC(1, 2, plan.Step, []float64{0.5}, 9)
+	g := make([]float64, 2)
+	for _, d := range tr.draws {
+		for i, x := range k.Next().Points {
+			g[i] = -math.Tanh(x) - plan.Penalty*(x-0.5)
+		}
+		k.Tell(&kernels.Answer{Grad: g})
+		for i, v := range k.Positions() {
+			if d.Values[i] != v {
+				t.Fatalf("draw %d: %v, in-process penalised LMC %v", d.Seq, d.Values[i], v)
+			}
+		}
 	}
 }

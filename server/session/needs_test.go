@@ -133,3 +133,7 @@ func TestRowBytesCountsTheHessian(t *testing.T) {
 		t.Fatalf("rowBytes %d", got)
 	}
 }
+
+func kernelsLMC(dim, chains int, h float64, start []float64, seed uint64) *kernels.LMC {
+	return kernels.NewLMC(dim, chains, h, start, kernels.NewSource(seed))
+}

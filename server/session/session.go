@@ -253,6 +253,7 @@ func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) e
 		}
 		s.used += s.cost(req.Need, req.Rows)
 		s.noise.request(req, s.spec.Noise)
+		s.guarantee.penalise(req, s.answer, s.spec.Dim)
 		s.mon.answered(req, s.answer)
 		if s.kernel.Tell(s.answer) {
 			pending = true

@@ -80,6 +80,12 @@ type Curvature struct {
 	// StartDistance bounds W2(start, π); 0 means √(dim/m) (a start at
 	// the mode).
 	StartDistance float64
+	// SecondMoment μ₂ ≥ E_π‖θ − centre‖², for m = 0 with a TV target:
+	// the engine then samples the penalised π_λ (THEORY.md §1.2).
+	SecondMoment float64
+	// PenaltyCentre (Dim values) is the penalty's centre; nil means the
+	// mean of the start points.
+	PenaltyCentre []float64
 }
 
 // Wants are the accuracy targets of a session.
@@ -297,6 +303,15 @@ func (s *Spec) validateAccuracy() error {
 			return BadField("register.curvature.strong_convexity", "m = %v exceeds M = %v", c.StrongConvexity, c.Smoothness)
 		case !finite(c.StartDistance) || c.StartDistance < 0:
 			return BadField("register.curvature.start_distance", "must be finite and >= 0, got %v", c.StartDistance)
+		case !finite(c.SecondMoment) || c.SecondMoment < 0:
+			return BadField("register.curvature.second_moment", "must be finite and >= 0, got %v", c.SecondMoment)
+		case len(c.PenaltyCentre) != 0 && len(c.PenaltyCentre) != s.Dim:
+			return BadField("register.curvature.penalty_centre", "has %d values, want 0 or dim = %d", len(c.PenaltyCentre), s.Dim)
+		}
+		for i, v := range c.PenaltyCentre {
+			if !finite(v) {
+				return badValue("register.curvature.penalty_centre", -1, i, "value %v is not finite", v)
+			}
 		}
 	}
 	w := s.Wants
@@ -313,8 +328,10 @@ func (s *Spec) validateAccuracy() error {
 	}
 	if w.Eps > 0 {
 		switch {
-		case s.Curvature == nil || s.Curvature.StrongConvexity == 0:
-			return BadField("register.wants.eps", "a guaranteed error needs register.curvature with m > 0")
+		case s.Curvature == nil:
+			return BadField("register.wants.eps", "a guaranteed error needs register.curvature")
+		case s.Curvature.StrongConvexity == 0 && (w.Metric != bound.TV || s.Curvature.SecondMoment == 0):
+			return BadField("register.wants.eps", "with m = 0 a guaranteed error needs metric TV and curvature.second_moment (the penalised target of THEORY.md §1.2)")
 		case w.Metric != bound.TV && w.Metric != bound.W2:
 			return BadField("register.wants.metric", "must be METRIC_TV or METRIC_W2 when eps is set")
 		case w.Metric == bound.TV && w.Eps >= 0.5:

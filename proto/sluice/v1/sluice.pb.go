@@ -1421,6 +1421,17 @@ type Curvature struct {
 	// (units of theta), used by W2 bounds. 0 means sqrt(dim/m), which holds
 	// for chains started at the mode.
 	StartDistance float64 `protobuf:"fixed64,3,opt,name=start_distance,json=startDistance,proto3" json:"start_distance,omitempty"`
+	// For a convex but not strongly convex potential (m = 0) with a TV
+	// target: an upper bound mu_2 >= E_pi ||theta - centre||^2 (units of
+	// theta^2). The server then samples pi_lambda, proportional to
+	// pi * exp(-lambda ||theta - centre||^2 / 2), with lambda = eps / mu_2
+	// chosen from wants.eps, adds the penalty to every gradient (and log
+	// density) the client returns, and reports the bias lambda * mu_2 / 2
+	// as the bound's bias term.
+	SecondMoment float64 `protobuf:"fixed64,4,opt,name=second_moment,json=secondMoment,proto3" json:"second_moment,omitempty"`
+	// The penalty's centre, dim float64 values (see the array convention);
+	// empty means the mean of the start points.
+	PenaltyCentre []byte `protobuf:"bytes,5,opt,name=penalty_centre,json=penaltyCentre,proto3" json:"penalty_centre,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -1474,6 +1485,20 @@ func (x *Curvature) GetStartDistance() float64 {
 		return x.StartDistance
 	}
 	return 0
+}
+
+func (x *Curvature) GetSecondMoment() float64 {
+	if x != nil {
+		return x.SecondMoment
+	}
+	return 0
+}
+
+func (x *Curvature) GetPenaltyCentre() []byte {
+	if x != nil {
+		return x.PenaltyCentre
+	}
+	return nil
 }
 
 // Wants lists accuracy targets; a zero field is not a target.
@@ -3038,13 +3063,15 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x0eminibatch_size\x18\x05 \x01(\x03R\rminibatchSize\x12\x1e\n" +
 	"\n" +
 	"replicates\x18\x06 \x01(\x05R\n" +
-	"replicates\"}\n" +
+	"replicates\"\xc9\x01\n" +
 	"\tCurvature\x12)\n" +
 	"\x10strong_convexity\x18\x01 \x01(\x01R\x0fstrongConvexity\x12\x1e\n" +
 	"\n" +
 	"smoothness\x18\x02 \x01(\x01R\n" +
 	"smoothness\x12%\n" +
-	"\x0estart_distance\x18\x03 \x01(\x01R\rstartDistance\"\xbc\x01\n" +
+	"\x0estart_distance\x18\x03 \x01(\x01R\rstartDistance\x12#\n" +
+	"\rsecond_moment\x18\x04 \x01(\x01R\fsecondMoment\x12%\n" +
+	"\x0epenalty_centre\x18\x05 \x01(\fR\rpenaltyCentre\"\xbc\x01\n" +
 	"\x05Wants\x12 \n" +
 	"\fmin_bulk_ess\x18\x01 \x01(\x01R\n" +
 	"minBulkEss\x12 \n" +

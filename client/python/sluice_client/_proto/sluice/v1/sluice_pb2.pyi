@@ -53,14 +53,18 @@ class Bound(_message.Message):
     def __init__(self, metric: _Optional[_Union[Metric, str]] = ..., value: _Optional[float] = ..., source: _Optional[_Union[BoundSource, str]] = ..., label: _Optional[str] = ..., start_term: _Optional[float] = ..., discretisation_term: _Optional[float] = ..., noise_term: _Optional[float] = ..., bias_term: _Optional[float] = ...) -> None: ...
 
 class Curvature(_message.Message):
-    __slots__ = ["smoothness", "start_distance", "strong_convexity"]
+    __slots__ = ["penalty_centre", "second_moment", "smoothness", "start_distance", "strong_convexity"]
+    PENALTY_CENTRE_FIELD_NUMBER: _ClassVar[int]
+    SECOND_MOMENT_FIELD_NUMBER: _ClassVar[int]
     SMOOTHNESS_FIELD_NUMBER: _ClassVar[int]
     START_DISTANCE_FIELD_NUMBER: _ClassVar[int]
     STRONG_CONVEXITY_FIELD_NUMBER: _ClassVar[int]
+    penalty_centre: bytes
+    second_moment: float
     smoothness: float
     start_distance: float
     strong_convexity: float
-    def __init__(self, strong_convexity: _Optional[float] = ..., smoothness: _Optional[float] = ..., start_distance: _Optional[float] = ...) -> None: ...
+    def __init__(self, strong_convexity: _Optional[float] = ..., smoothness: _Optional[float] = ..., start_distance: _Optional[float] = ..., second_moment: _Optional[float] = ..., penalty_centre: _Optional[bytes] = ...) -> None: ...
 
 class CurvatureEstimate(_message.Message):
     __slots__ = ["not_convex", "pairs", "smoothness_at_least", "strong_convexity_at_most"]
