@@ -192,6 +192,7 @@ func progressToWire(p *session.Progress) *sluicev1.Progress {
 			StrongConvexityAtMost: p.Curvature.StrongConvexityAtMost, NotConvex: p.Curvature.NotConvex}}
 	if p.Bound != nil {
 		w.Bound = boundToWire(*p.Bound)
+		w.Bound.Label = p.BoundLabel
 	}
 	for _, d := range p.Parameters {
 		w.Parameters = append(w.Parameters, &sluicev1.ParameterDiagnostics{Name: d.Name, Mean: d.Mean, Sd: d.SD,

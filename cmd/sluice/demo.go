@@ -21,6 +21,7 @@ import (
 	"google.golang.org/grpc/experimental"
 
 	"sluice/client"
+	sluicev1 "sluice/proto/sluice/v1"
 	"sluice/server"
 )
 
@@ -44,6 +45,8 @@ type demoConfig struct {
 	wantESS       float64
 	wantRhat      float64
 	wantKSD       float64
+	minibatch     int
+	eps           float64
 }
 
 func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
@@ -68,6 +71,8 @@ func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs.Float64Var(&c.wantESS, "want-ess", 0, "finish once every parameter's bulk- and tail-ESS reach this (0: no target)")
 	fs.Float64Var(&c.wantRhat, "want-rhat", 0, "finish once every parameter's R-hat is below this, e.g. 1.01 (0: no target)")
 	fs.Float64Var(&c.wantKSD, "want-ksd", 0, "finish once the kernel Stein discrepancy is below this (0: no target)")
+	fs.IntVar(&c.minibatch, "minibatch", 0, "answer with stochastic gradients from minibatches of this many firings, two replicates per point (0: exact gradients)")
+	fs.Float64Var(&c.eps, "eps", 0.5, "with --minibatch: the W2 accuracy to plan for with the measured noise")
 	if err := parseFlags(fs, args); err != nil {
 		return err
 	}
@@ -76,6 +81,9 @@ func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	}
 	if c.chains < 1 || c.burnIn < 0 || c.keepEvery < 1 || c.draws < 0 || c.maxEvals < 0 || c.maxTime < 0 || c.step < 0 {
 		return usagef("--chains and --keep-every must be ≥ 1; --burn-in, --draws, --max-evals, --max-time, --step ≥ 0")
+	}
+	if c.minibatch < 0 || c.minibatch > kilnFirings || !(c.eps > 0) {
+		return usagef("--minibatch must be between 0 and %d, --eps > 0", kilnFirings)
 	}
 	if c.wantESS < 0 || c.wantKSD < 0 || (c.wantRhat != 0 && c.wantRhat <= 1) {
 		return usagef("--want-ess and --want-ksd must be ≥ 0, --want-rhat > 1")
@@ -120,6 +128,19 @@ type demoParameter struct {
 	MCSE    float64 `json:"mcse_mean"`
 }
 
+// demoNoise is what the server measured of minibatch gradients, and what
+// a guaranteed W2 accuracy would cost with that noise (sluice plan).
+type demoNoise struct {
+	Minibatch     int     `json:"minibatch"`
+	Variance      float64 `json:"variance"`
+	VarianceSE    float64 `json:"variance_se"`
+	Epochs        float64 `json:"epochs"`
+	Eps           float64 `json:"eps"`
+	PlanStep      float64 `json:"plan_step"`
+	PlanEvals     int64   `json:"plan_evaluations"`
+	PlanNoiseTerm float64 `json:"plan_noise_term"`
+}
+
 // demoAccuracy is the server's accuracy report at the end: measured
 // (Stein discrepancy, curvature seen) and guaranteed (the bound, with its
 // label), kept apart.
@@ -134,6 +155,7 @@ type demoAccuracy struct {
 	BoundLabel      string  `json:"bound_label,omitempty"`
 	BoundStart      float64 `json:"bound_start_term,omitempty"`
 	BoundDiscretise float64 `json:"bound_discretisation_term,omitempty"`
+	BoundNoise      float64 `json:"bound_noise_term,omitempty"`
 }
 
 // demoAnswer is the downstream question answered from the draws.
@@ -158,6 +180,7 @@ type demoResult struct {
 	DrawsPerChain  int             `json:"draws_per_chain"`
 	Parameters     []demoParameter `json:"parameters"`
 	Accuracy       demoAccuracy    `json:"accuracy"`
+	Noise          *demoNoise      `json:"noise,omitempty"`
 	Question       *demoAnswer     `json:"question,omitempty"`
 	Out            string          `json:"out,omitempty"`
 	MinDrawsNeeded int             `json:"-"`
@@ -234,13 +257,17 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 		}
 	}
 	live := newLiveLine(stderr, !c.noProgressBar && !c.json, int64(c.chains)*c.draws)
-	sum, err := client.Run(ctx, conn, spec,
-		func(_ context.Context, b *client.Batch) error {
-			for row := range b.Rows {
-				target.GradLogDensity(b.Grad[row*b.Dim:(row+1)*b.Dim], b.Point(row))
-			}
-			return nil
-		},
+	eval := func(_ context.Context, b *client.Batch) error {
+		for row := range b.Rows {
+			target.GradLogDensity(b.Grad[row*b.Dim:(row+1)*b.Dim], b.Point(row))
+		}
+		return nil
+	}
+	if c.minibatch > 0 {
+		spec.Noise = &client.Noise{Replicates: 2, DataSize: kilnFirings, MinibatchSize: int64(c.minibatch)}
+		eval = kilnMinibatch(kilnData(), c.minibatch, c.seed)
+	}
+	sum, err := client.Run(ctx, conn, spec, eval,
 		client.OnDraws(func(d *client.Draws) {
 			for row := range d.Rows {
 				ch := d.Chains[row]
@@ -294,11 +321,22 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 		res.Parameters = append(res.Parameters, p)
 	}
 	fp := sum.Progress
+	if n := fp.Noise; n != nil && c.minibatch > 0 {
+		res.Noise = &demoNoise{Minibatch: c.minibatch, Variance: n.Variance, VarianceSE: n.SE, Epochs: n.Epochs, Eps: c.eps}
+		// What a guaranteed W2 ≤ eps would cost with this noise: the noise
+		// term's σ is the replicate mean's, √(s²/2).
+		plan, perr := server.MakePlan(&sluicev1.PlanRequest{Curvature: &sluicev1.Curvature{StrongConvexity: m, Smoothness: bigM},
+			Dim: 3, Eps: c.eps, Metric: sluicev1.Metric_METRIC_W2, NoiseSd: math.Sqrt(math.Max(n.Variance, 0) / 2),
+			StartDistance: w0, Chains: int32(c.chains)})
+		if perr == nil {
+			res.Noise.PlanStep, res.Noise.PlanEvals, res.Noise.PlanNoiseTerm = plan.Step, plan.Evaluations, plan.Bound.NoiseTerm
+		}
+	}
 	res.Accuracy = demoAccuracy{KSD: fp.KSD, SmoothnessSeen: fp.Curvature.SmoothnessAtLeast,
 		ConvexitySeen: fp.Curvature.StrongConvexityAtMost, DeclaredM: m, DeclaredBigM: bigM}
 	if b := fp.Bound; b != nil {
 		res.Accuracy.BoundMetric, res.Accuracy.Bound, res.Accuracy.BoundLabel = string(b.Metric), b.Value, b.Label
-		res.Accuracy.BoundStart, res.Accuracy.BoundDiscretise = b.Start, b.Discretisation
+		res.Accuracy.BoundStart, res.Accuracy.BoundDiscretise, res.Accuracy.BoundNoise = b.Start, b.Discretisation, b.Noise
 	}
 	// The downstream question: the chance of cracking at the planned
 	// schedule, one value per draw, summarised.
@@ -364,14 +402,31 @@ func printDemo(w io.Writer, r *demoResult) {
 	}
 	fmt.Fprintf(w, "(coefficients on the log-odds scale: temperature per %g °C, cooling rate per %g °C/min)\n\n", tempScale, coolScale)
 	a := r.Accuracy
-	fmt.Fprintf(w, "measured:   Stein discrepancy %.4g; curvature seen along the chains M ≥ %.4g, m ≤ %.4g\n", a.KSD, a.SmoothnessSeen, a.ConvexitySeen)
+	if a.KSD >= 0 {
+		fmt.Fprintf(w, "measured:   Stein discrepancy %.4g; curvature seen along the chains M ≥ %.4g, m ≤ %.4g\n", a.KSD, a.SmoothnessSeen, a.ConvexitySeen)
+	} else {
+		fmt.Fprintln(w, "measured:   no Stein discrepancy or curvature certificates: they need exact gradients")
+	}
 	if a.BoundLabel != "" {
 		fmt.Fprintf(w, "guaranteed: %s ≤ %.4g after the last step (%s; m = %.3g, M = %.3g declared)\n",
 			strings.ToUpper(a.BoundMetric), a.Bound, a.BoundLabel, a.DeclaredM, a.DeclaredBigM)
-		fmt.Fprintf(w, "            of which %.3g from the start and %.3g from the step size: the worst case for condition number %.0f\n\n",
-			a.BoundStart, a.BoundDiscretise, a.DeclaredBigM/a.DeclaredM)
+		fmt.Fprintf(w, "            of which %.3g from the start, %.3g from the step size", a.BoundStart, a.BoundDiscretise)
+		if a.BoundNoise > 0 {
+			fmt.Fprintf(w, ", %.3g from gradient noise", a.BoundNoise)
+		}
+		fmt.Fprintf(w, ": the worst case for condition number %.0f\n\n", a.DeclaredBigM/a.DeclaredM)
 	} else {
 		fmt.Fprintln(w)
+	}
+	if n := r.Noise; n != nil {
+		fmt.Fprintf(w, "noise:      minibatches of %d firings, two per point; measured variance per coordinate %.4g ± %.2g, %.1f passes over the data\n",
+			n.Minibatch, n.Variance, n.VarianceSE, n.Epochs)
+		fmt.Fprintf(w, "            it inflates the draws' variance by about h·s²/(2·2) = %.1f%% (THEORY.md §11b)\n", 100*r.Step*n.Variance/4)
+		if n.PlanStep > 0 {
+			fmt.Fprintf(w, "            to guarantee W2 ≤ %g with this noise: step %.3g, %d evaluations (noise term %.3g)\n\n", n.Eps, n.PlanStep, n.PlanEvals, n.PlanNoiseTerm)
+		} else {
+			fmt.Fprintln(w)
+		}
 	}
 	if q := r.Question; q != nil {
 		fmt.Fprintf(w, "Planned firing at %g °C peak, cooling %g °C/min:\n", q.TempC, q.CoolCPerMinute)

@@ -1,11 +1,13 @@
 package main
 
 import (
+	"context"
 	"math"
 	"math/rand/v2"
 
 	"gonum.org/v1/gonum/mat"
 
+	"sluice/client"
 	"sluice/kernels/targets"
 )
 
@@ -83,4 +85,54 @@ func dot(a, b []float64) float64 {
 		s += a[i] * b[i]
 	}
 	return s
+}
+
+// kilnMinibatch answers with stochastic gradients of log π: for each
+// point and replicate, the prior's gradient plus N/n times the sum of the
+// per-firing gradients over n firings drawn uniformly with replacement
+// (an unbiased estimate, THEORY.md §7.1). The stream is seeded, so a run
+// is reproducible.
+func kilnMinibatch(data []kilnFiring, n int, seed uint64) client.Evaluator {
+	r := rand.New(rand.NewPCG(seed, 7))
+	rows := make([][]float64, len(data))
+	ys := make([]float64, len(data))
+	for i, f := range data {
+		rows[i] = kilnFeatures(f.tempC, f.coolCPerMin)
+		if f.cracked {
+			ys[i] = 1
+		}
+	}
+	scale := float64(len(data)) / float64(n)
+	return func(_ context.Context, b *client.Batch) error {
+		reps := b.Replicates
+		for row := range b.Rows {
+			theta := b.Point(row)
+			for j := range reps {
+				g := b.Grad[(row*reps+j)*b.Dim : (row*reps+j+1)*b.Dim]
+				for i := range g {
+					g[i] = -kilnPriorPrecision * theta[i]
+				}
+				if b.FullData {
+					for k, x := range rows {
+						addDatum(g, x, ys[k], theta, 1)
+					}
+					continue
+				}
+				for range n {
+					k := r.IntN(len(data))
+					addDatum(g, rows[k], ys[k], theta, scale)
+				}
+			}
+		}
+		return nil
+	}
+}
+
+// addDatum adds w·x·(y − σ(xᵀθ)), one firing's gradient of its
+// log-likelihood, to g.
+func addDatum(g, x []float64, y float64, theta []float64, w float64) {
+	d := w * (y - sigmoid(dot(x, theta)))
+	for i := range g {
+		g[i] += d * x[i]
+	}
 }

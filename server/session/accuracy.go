@@ -140,6 +140,7 @@ func (g *guarantee) stepsTo(eps float64, k int) int {
 // certificates). Its memory is bounded independently of the run length.
 type monitor struct {
 	dim, chains int
+	stochastic  bool // gradients are noisy: no scores, no certificates
 	names       []string
 	hist        *diag.History
 	ksd         *diag.StreamKSD
@@ -176,8 +177,15 @@ func newMonitor(dim, chains int, names []string) *monitor {
 }
 
 // answered records the gradients of one completed request (before Tell).
+// Pairs of independently noisy gradients make meaningless curvature
+// ratios (THEORY.md §12: the noise inflates ‖y_g‖² by 2p·s²), so a
+// stochastic session takes no certificates.
 func (m *monitor) answered(req *kernels.Request, a *kernels.Answer) {
 	if !req.Need.Has(kernels.NeedGradient) {
+		return
+	}
+	if m.stochastic {
+		m.pendingScores = false
 		return
 	}
 	d := m.dim

@@ -82,8 +82,9 @@ type Progress struct {
 	// available.
 	KSD float64
 	// Bound is the guaranteed (or estimated, and labelled so) bound; nil
-	// when none applies.
-	Bound *bound.Bound
+	// when none applies. BoundLabel says, in words, what it rests on.
+	Bound      *bound.Bound
+	BoundLabel string
 	// Curvature holds certificates from gradient pairs.
 	Curvature CurvatureEstimate
 	// Targets reports each requested target.

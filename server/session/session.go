@@ -124,6 +124,7 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 		s.log = NewDrawLog(spec.Dim, min(lim.FollowBuffer, max(1, maxFollowBytes/(8*spec.Dim))))
 	}
 	s.mon = newMonitor(spec.Dim, spec.Chains, spec.Names)
+	s.mon.stochastic = spec.Noise.Stochastic
 	s.answer = kernels.NewAnswer(spec.Chains, spec.Dim)
 	s.mean = make([]float64, spec.Dim)
 	s.m2 = make([]float64, spec.Dim)
@@ -689,9 +690,14 @@ func (s *Session) progress(now time.Time, final bool) Progress {
 	if s.guarantee != nil {
 		if b, err := s.guarantee.at(s.kernel.Steps()); err == nil {
 			p.Bound = &b
+			p.BoundLabel = b.Source.String()
+			if s.spec.Noise.Stochastic && s.spec.Noise.Variance == 0 && s.guarantee.setting.Noise > 0 {
+				p.BoundLabel += "; gradient noise measured, not declared"
+			}
 		}
 	} else if b, ok := s.estimatedBound(p.Curvature); ok {
 		p.Bound = &b
+		p.BoundLabel = b.Source.String()
 	}
 	p.Targets = s.targets(p.Bound)
 	return p
