@@ -309,7 +309,8 @@ const sgldcvMagic = "sluice.sgldcv.v1"
 // MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
 // step, search options, completed steps, phase, search steps taken,
 // whether the search converged, ‖g_0‖ and the best gradient norm, the
-// positions, the search iterates and gradients (current, previous, best),
+// positions, the search's next iterate, its last evaluated iterate and
+// gradient, the best point and its gradient (θ̂ and g(θ̂) once sampling),
 // and the random stream's state (before any noise drawn ahead by Prepare).
 func (k *SGLDCV) MarshalBinary() ([]byte, error) {
 	rs, err := k.noise.marshal()
