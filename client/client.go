@@ -47,7 +47,18 @@ type Spec struct {
 	KrylovMaxIterations int
 	// Noise describes stochastic gradients (nil: exact).
 	Noise *Noise
+	// Schedule gives sgld a decreasing step ε_t = A(B + t)^(−Gamma),
+	// h_t = ε_t/2 (Step must be 0); nil: constant step.
+	Schedule *Schedule
+	// AnchorEvery (svrg), FixedPointTolerance and FixedPointIterations
+	// (sgld-cv); 0: defaults.
+	AnchorEvery          int
+	FixedPointTolerance  float64
+	FixedPointIterations int
 }
+
+// Schedule is a decreasing step for sgld.
+type Schedule struct{ A, B, Gamma float64 }
 
 // Noise describes stochastic gradients: declared variance of one
 // replicate's error per coordinate and bias (0: not declared), data and
@@ -342,8 +353,16 @@ func registerFrame(spec Spec, limit int64) *sluicev1.SessionRequest {
 		Curvature: curvatureToWire(spec.Curvature), Wants: wantsToWire(spec.Wants),
 		Friction: spec.Friction, InverseMass: spec.InverseMass,
 		KrylovTolerance: spec.KrylovTolerance, KrylovMaxIterations: int32(spec.KrylovMaxIterations),
-		Noise: noiseToWire(spec.Noise),
+		Noise: noiseToWire(spec.Noise), Schedule: scheduleToWire(spec.Schedule), AnchorEvery: int32(spec.AnchorEvery),
+		FixedPointTolerance: spec.FixedPointTolerance, FixedPointIterations: int32(spec.FixedPointIterations),
 	}}}
+}
+
+func scheduleToWire(s *Schedule) *sluicev1.StepSchedule {
+	if s == nil {
+		return nil
+	}
+	return &sluicev1.StepSchedule{A: s.A, B: s.B, Gamma: s.Gamma}
 }
 
 func noiseToWire(n *Noise) *sluicev1.GradientNoise {

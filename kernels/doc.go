@@ -30,6 +30,27 @@
 //	midpoint-overdamped
 //	          randomised midpoint for overdamped Langevin (THEORY.md §5.2);
 //	          two gradients per chain per step.
+//	mala      Metropolis-adjusted Langevin (THEORY.md §6): proposal
+//	          y = x + h∇log π(x) + √(2h)ξ, accepted with the exact
+//	          Metropolis–Hastings ratio; log density and gradient at one
+//	          proposal per chain per step, plus the start once; h adapted
+//	          toward 0.574 acceptance during burn-in only.
+//	ozaki     local linear (Ozaki) discretisation (THEORY.md §1.3):
+//	          θ' = θ − H⁻¹(I − e^{−hH})g + Σ^{1/2}ξ, Σ = H⁻¹(I − e^{−2hH}),
+//	          H = −∇²log π; gradient and dense Hessian per chain per step.
+//	ozaki-krylov
+//	          the same with φ-functions applied by Lanczos from
+//	          Hessian-vector products, accuracy controlled and reported.
+//	sgld      stochastic-gradient Langevin (Welling & Teh, ICML 2011;
+//	          THEORY.md §7.1): θ ← θ + h_t·ĝ_S + √(2h_t)ξ, h_t constant or
+//	          ε_t/2 with ε_t = a(b+t)^(−γ); one gradient per chain per step.
+//	sgld-cv   SGLD with a control variate (Baker et al. 2019; THEORY.md
+//	          §7.2): a Barzilai–Borwein search for θ̂ with full-data
+//	          gradients, then ĝ = g(θ̂) + ĝ_S(θ) − ĝ_S(θ̂); two rows per
+//	          chain per step on one minibatch.
+//	svrg      SVRG Langevin (Dubey et al. 2016; THEORY.md §7.3): full-data
+//	          anchors every τ steps, ĝ = g̃ + ĝ_S(θ) − ĝ_S(θ̃); two rows per
+//	          chain per step plus one full-data row per chain every τ steps.
 //
 // References: Dalalyan, JRSS B 79 (2017) 651–676; Durmus & Moulines,
 // Ann. Appl. Probab. 27 (2017); the project's THEORY.md §0.1.

@@ -34,10 +34,14 @@ func specFromWire(r *sluicev1.Register) (session.Spec, error) {
 	wants := session.Wants{MinBulkESS: w.GetMinBulkEss(), MinTailESS: w.GetMinTailEss(), MaxRhat: w.GetMaxRhat(),
 		MaxKSD: w.GetMaxKsd(), Eps: w.GetEps(), Metric: metricFromWire[w.GetMetric()]}
 	return session.Spec{
-		Curvature:           curv,
-		Friction:            r.GetFriction(),
-		KrylovTolerance:     r.GetKrylovTolerance(),
-		KrylovMaxIterations: int(r.GetKrylovMaxIterations()),
+		Curvature:            curv,
+		Friction:             r.GetFriction(),
+		KrylovTolerance:      r.GetKrylovTolerance(),
+		Schedule:             scheduleFromWire(r.GetSchedule()),
+		AnchorEvery:          int(r.GetAnchorEvery()),
+		FixedPointTolerance:  r.GetFixedPointTolerance(),
+		FixedPointIterations: int(r.GetFixedPointIterations()),
+		KrylovMaxIterations:  int(r.GetKrylovMaxIterations()),
 		Noise: session.Noise{Stochastic: r.GetNoise().GetKind() == sluicev1.GradientKind_GRADIENT_KIND_STOCHASTIC,
 			Variance: r.GetNoise().GetVariance(), Bias: r.GetNoise().GetBias(), DataSize: r.GetNoise().GetDataSize(),
 			MinibatchSize: r.GetNoise().GetMinibatchSize(), Replicates: int(r.GetNoise().GetReplicates())},
@@ -60,6 +64,13 @@ func specFromWire(r *sluicev1.Register) (session.Spec, error) {
 		Names:              r.GetNames(),
 		MaxMessageBytes:    r.GetMaxMessageBytes(),
 	}, nil
+}
+
+func scheduleFromWire(s *sluicev1.StepSchedule) *kernels.SGLDSchedule {
+	if s == nil {
+		return nil
+	}
+	return &kernels.SGLDSchedule{A: s.GetA(), B: s.GetB(), Gamma: s.GetGamma()}
 }
 
 // messageFromWire turns one received frame into an engine Message.

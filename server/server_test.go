@@ -130,6 +130,15 @@ var inProcess = map[string]func(dim, chains int, h float64, start []float64, see
 	"ozaki-krylov": func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
 		return kernels.NewOzakiKrylov(d, c, h, x, 1e-8, 2, kernels.NewSource(seed))
 	},
+	"sgld": func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
+		return kernels.NewSGLD(d, c, h, kernels.SGLDSchedule{}, x, kernels.NewSource(seed))
+	},
+	"sgld-cv": func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
+		return kernels.NewSGLDCV(d, c, h, kernels.SGLDCVOptions{}, x, kernels.NewSource(seed))
+	},
+	"svrg": func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
+		return kernels.NewSVRG(d, c, h, 10, x, kernels.NewSource(seed))
+	},
 }
 
 // Transport is transparent: with the same seed, the draws of a session
@@ -169,8 +178,10 @@ func TestTransportIsTransparent(t *testing.T) {
 			switch name {
 			case "mala": // plus the start points, once (THEORY.md §13)
 				wantRows += chains
-			case "ozaki-krylov": // Lanczos requests vary per step
+			case "ozaki-krylov", "sgld-cv": // Lanczos requests vary per step; the fixed-point search
 				wantRows = sum.Progress.EvaluationsUsed
+			case "svrg": // plus one full-data anchor per chain every 10 steps
+				wantRows += chains * steps / 10
 			}
 			if rows != wantRows || sum.Progress.EvaluationsUsed != rows {
 				t.Fatalf("%s: evaluated %d rows, reported %d, per step %d; want %d", name, rows, sum.Progress.EvaluationsUsed, perStep, wantRows)

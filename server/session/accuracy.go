@@ -140,7 +140,8 @@ func (g *guarantee) stepsTo(eps float64, k int) int {
 // certificates). Its memory is bounded independently of the run length.
 type monitor struct {
 	dim, chains int
-	stochastic  bool // gradients are noisy: no scores, no certificates
+	stochastic  bool    // gradients are noisy: no scores, no certificates
+	share       float64 // Limits.DiagnosticsShare
 	names       []string
 	hist        *diag.History
 	ksd         *diag.StreamKSD
@@ -221,7 +222,8 @@ func (m *monitor) kept(k kernels.Kernel) {
 
 // measure fills p's measured figures. Diagnostics cost O(N log N) per
 // coordinate on the kept window, so they are refreshed only while their
-// total cost stays within a tenth of the session's wall time: a report is
+// total cost stays within Limits.DiagnosticsShare (a tenth) of the
+// session's wall time: a report is
 // skipped (the last values stand) when the expected cost of one more —
 // the last one's, or 100 ns per kept value before the first — would
 // exceed that share. The final report always refreshes them.
@@ -234,7 +236,7 @@ func (m *monitor) measure(p *Progress, final bool) {
 	if expect == 0 {
 		expect = time.Duration(100 * m.hist.Kept() * m.chains * m.dim)
 	}
-	if !final && m.spent+expect > p.Elapsed/10 {
+	if !final && m.share >= 0 && float64(m.spent+expect) > m.share*float64(p.Elapsed) {
 		return
 	}
 	t := time.Now()

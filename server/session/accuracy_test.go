@@ -19,7 +19,9 @@ func TestESSTargetMet(t *testing.T) {
 	spec.Chains, spec.BurnIn, spec.ProgressEverySteps = 4, 100, 50
 	spec.Wants = Wants{MinBulkESS: 400, MinTailESS: 200, MaxRhat: 1.05}
 	spec.MaxEvaluations = 4 * 100000
-	tr, res, err := drive(t, mustNew(t, spec, Limits{}), gaussian(1))
+	// Every report measured (no wall-time cap), so the run does not
+	// depend on the machine's speed.
+	tr, res, err := drive(t, mustNew(t, spec, Limits{DiagnosticsShare: -1}), gaussian(1))
 	if err != nil || res.Finished.Reason != TargetMet {
 		t.Fatalf("reason %v err %v", res.Finished.Reason, err)
 	}
@@ -259,5 +261,43 @@ func TestPenalisedTargetForConvexPotential(t *testing.T) {
 				t.Fatalf("draw %d: %v, in-process penalised LMC %v", d.Seq, d.Values[i], v)
 			}
 		}
+	}
+}
+
+// svrg's anchors are full-data requests, each point costing N/n
+// evaluations when N and n are declared; its sampling rows come in pairs
+// on one minibatch group per chain (THEORY.md §7.3, §13).
+func TestFullDataCostAndMinibatchGroups(t *testing.T) {
+	spec := baseSpec()
+	spec.Kernel, spec.Chains, spec.AnchorEvery, spec.DrawsPerChain = "svrg", 3, 5, 10
+	spec.Noise = Noise{Stochastic: true, DataSize: 100, MinibatchSize: 10}
+	var full, grouped int
+	o := func(p *Points, ev *Evaluations) {
+		gaussian(1)(p, ev)
+		if p.FullData {
+			full += p.Rows
+			return
+		}
+		if len(p.Groups) != p.Rows {
+			t.Fatalf("sampling request without groups: %+v", p.Groups)
+		}
+		for r := range p.Rows {
+			if p.Groups[r] != p.Chains[r] {
+				t.Fatalf("row %d of chain %d in group %d", r, p.Chains[r], p.Groups[r])
+			}
+		}
+		grouped += p.Rows
+	}
+	_, res, err := drive(t, mustNew(t, spec, Limits{}), o)
+	if err != nil || res.Finished.Reason != DrawsCollected {
+		t.Fatalf("reason %v err %v", res.Finished.Reason, err)
+	}
+	// 10 steps: anchors at steps 0 and 5 (3 full-data points each, 10
+	// evaluations apiece), and 2 rows per chain per step.
+	if full != 6 || grouped != 60 || res.Finished.Progress.EvaluationsUsed != 6*10+60 {
+		t.Fatalf("full-data rows %d, grouped rows %d, evaluations %d; want 6, 60, 120", full, grouped, res.Finished.Progress.EvaluationsUsed)
+	}
+	if e := res.Finished.Progress.Noise.Epochs; math.Abs(e-(6*100+60*10)/100.0) > 1e-12 {
+		t.Fatalf("epochs %v, want 12", e)
 	}
 }

@@ -112,6 +112,21 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 			iters = min(spec.Dim, 64)
 		}
 		s.kernel = kernels.NewOzakiKrylov(spec.Dim, spec.Chains, spec.Step, spec.Start, tol, iters, src)
+	case "sgld":
+		var sched kernels.SGLDSchedule
+		if spec.Schedule != nil {
+			sched = *spec.Schedule
+		}
+		s.kernel = kernels.NewSGLD(spec.Dim, spec.Chains, spec.Step, sched, spec.Start, src)
+	case "sgld-cv":
+		s.kernel = kernels.NewSGLDCV(spec.Dim, spec.Chains, spec.Step,
+			kernels.SGLDCVOptions{Tol: spec.FixedPointTolerance, MaxIter: spec.FixedPointIterations}, spec.Start, src)
+	case "svrg":
+		every := spec.AnchorEvery
+		if every == 0 {
+			every = 10
+		}
+		s.kernel = kernels.NewSVRG(spec.Dim, spec.Chains, spec.Step, every, spec.Start, src)
 	default:
 		return nil, BadField("register.kernel", "unknown kernel %q", spec.Kernel)
 	}
@@ -125,6 +140,7 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 	}
 	s.mon = newMonitor(spec.Dim, spec.Chains, spec.Names)
 	s.mon.stochastic = spec.Noise.Stochastic
+	s.mon.share = lim.DiagnosticsShare
 	s.answer = kernels.NewAnswer(spec.Chains, spec.Dim)
 	s.mean = make([]float64, spec.Dim)
 	s.m2 = make([]float64, spec.Dim)

@@ -5,6 +5,7 @@ import (
 	"math"
 	"time"
 
+	"sluice/kernels"
 	"sluice/kernels/bound"
 )
 
@@ -57,6 +58,14 @@ type Spec struct {
 	// tune the ozaki-krylov kernel.
 	KrylovTolerance     float64
 	KrylovMaxIterations int
+	// Schedule, when set, gives sgld a decreasing step (Step must be 0).
+	Schedule *kernels.SGLDSchedule
+	// AnchorEvery is svrg's anchor period (0: 10).
+	AnchorEvery int
+	// FixedPointTolerance and FixedPointIterations tune sgld-cv's search
+	// (0: 1e-6 and 100).
+	FixedPointTolerance  float64
+	FixedPointIterations int
 }
 
 // Noise describes stochastic gradients.
@@ -122,6 +131,10 @@ type Limits struct {
 	AnswerTimeout time.Duration
 	// ProgressInterval is the default Progress cadence (default 1 s).
 	ProgressInterval time.Duration
+	// DiagnosticsShare is the largest share of a session's wall time its
+	// measured diagnostics may take (default 0.1); negative means no cap
+	// (tests that need every report measured).
+	DiagnosticsShare float64
 	// FollowBuffer is how many of its latest draws (rows) each session
 	// keeps for followers, capped at 64 MiB of values per session; 0 means
 	// followers are not served.
@@ -151,11 +164,14 @@ func (l Limits) withDefaults() Limits {
 	if l.ProgressInterval <= 0 {
 		l.ProgressInterval = time.Second
 	}
+	if l.DiagnosticsShare == 0 {
+		l.DiagnosticsShare = 0.1
+	}
 	return l
 }
 
 // Kernels lists the kernel names a Spec may ask for.
-var Kernels = []string{"lmc", "kinetic", "midpoint", "midpoint-overdamped", "mala", "ozaki", "ozaki-krylov"}
+var Kernels = []string{"lmc", "kinetic", "midpoint", "midpoint-overdamped", "mala", "ozaki", "ozaki-krylov", "sgld", "sgld-cv", "svrg"}
 
 func (s *Spec) validate(l Limits) error {
 	bad := func(field, format string, args ...any) error { return BadField("register."+field, format, args...) }
@@ -216,7 +232,26 @@ func (s *Spec) validate(l Limits) error {
 	if err := s.validateAccuracy(); err != nil {
 		return err
 	}
-	if s.Step == 0 && s.Wants.Eps > 0 && s.Kernel == "lmc" {
+	if sc := s.Schedule; sc != nil {
+		switch {
+		case s.Kernel != "sgld":
+			return bad("schedule", "only the sgld kernel takes a step schedule, not %q", s.Kernel)
+		case !(sc.A > 0) || math.IsInf(sc.A, 0):
+			return bad("schedule.a", "must be finite and > 0, got %v", sc.A)
+		case !(sc.B > 0) || math.IsInf(sc.B, 0):
+			return bad("schedule.b", "must be finite and > 0, got %v", sc.B)
+		case !(sc.Gamma > 0.5 && sc.Gamma <= 1):
+			return bad("schedule.gamma", "must be in (0.5, 1], got %v", sc.Gamma)
+		case s.Step != 0:
+			return bad("step", "must be 0 with a schedule (the schedule gives the step), got %v", s.Step)
+		}
+	}
+	if s.AnchorEvery < 0 || s.FixedPointIterations < 0 || math.IsNaN(s.FixedPointTolerance) || s.FixedPointTolerance < 0 || s.FixedPointTolerance >= 1 {
+		return bad("anchor_every", "anchor_every and fixed_point_iterations must be >= 0, fixed_point_tolerance in [0, 1)")
+	}
+	if s.Schedule != nil {
+		// the schedule gives the step
+	} else if s.Step == 0 && s.Wants.Eps > 0 && s.Kernel == "lmc" {
 		// planned below, in New
 	} else if !(s.Step > 0) || math.IsInf(s.Step, 0) {
 		return bad("step", "must be a finite number > 0 (or 0 with curvature and wants.eps, to plan it), got %v", s.Step)

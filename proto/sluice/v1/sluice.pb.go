@@ -1051,6 +1051,15 @@ type Register struct {
 	//	"ozaki-krylov"        the same with Hessian-vector products and a
 	//	                      Lanczos approximation, for large dim; several
 	//	                      requests per step
+	//	"sgld"                stochastic-gradient Langevin, constant or
+	//	                      decreasing step (schedule); 1 gradient per
+	//	                      chain per step
+	//	"sgld-cv"             SGLD with a control variate at a fixed point
+	//	                      found first by full-data gradient steps; 2
+	//	                      rows per chain per step on one minibatch
+	//	"svrg"                SVRG Langevin: full-data anchors every
+	//	                      anchor_every steps; 2 rows per chain per step
+	//	                      on one minibatch
 	Kernel string `protobuf:"bytes,3,opt,name=kernel,proto3" json:"kernel,omitempty"`
 	// Start points, row-major float64 (see the array convention): either
 	// chains x dim (one row per chain) or 1 x dim (every chain starts there).
@@ -1113,6 +1122,18 @@ type Register struct {
 	// per vector (0 means min(dim, 64)).
 	KrylovTolerance     float64 `protobuf:"fixed64,22,opt,name=krylov_tolerance,json=krylovTolerance,proto3" json:"krylov_tolerance,omitempty"`
 	KrylovMaxIterations int32   `protobuf:"varint,23,opt,name=krylov_max_iterations,json=krylovMaxIterations,proto3" json:"krylov_max_iterations,omitempty"`
+	// Decreasing step of the "sgld" kernel: epsilon_t = a (b + t)^(-gamma),
+	// step h_t = epsilon_t / 2, with a, b > 0 and gamma in (0.5, 1]; step
+	// must then be 0. Absent: constant step.
+	Schedule *StepSchedule `protobuf:"bytes,24,opt,name=schedule,proto3" json:"schedule,omitempty"`
+	// "svrg": steps between anchors (each anchor costs one full-data
+	// gradient per chain); 0 means 10.
+	AnchorEvery int32 `protobuf:"varint,25,opt,name=anchor_every,json=anchorEvery,proto3" json:"anchor_every,omitempty"`
+	// "sgld-cv": the search for the fixed point stops when the full-data
+	// gradient norm falls below this fraction of its start (0 means 1e-6)
+	// or after fixed_point_iterations (0 means 100).
+	FixedPointTolerance  float64 `protobuf:"fixed64,26,opt,name=fixed_point_tolerance,json=fixedPointTolerance,proto3" json:"fixed_point_tolerance,omitempty"`
+	FixedPointIterations int32   `protobuf:"varint,27,opt,name=fixed_point_iterations,json=fixedPointIterations,proto3" json:"fixed_point_iterations,omitempty"`
 	// How the client's gradients are made: exact (the default) or
 	// stochastic (minibatches, Monte Carlo estimates, noisy simulators).
 	Noise         *GradientNoise `protobuf:"bytes,21,opt,name=noise,proto3" json:"noise,omitempty"`
@@ -1304,11 +1325,100 @@ func (x *Register) GetKrylovMaxIterations() int32 {
 	return 0
 }
 
+func (x *Register) GetSchedule() *StepSchedule {
+	if x != nil {
+		return x.Schedule
+	}
+	return nil
+}
+
+func (x *Register) GetAnchorEvery() int32 {
+	if x != nil {
+		return x.AnchorEvery
+	}
+	return 0
+}
+
+func (x *Register) GetFixedPointTolerance() float64 {
+	if x != nil {
+		return x.FixedPointTolerance
+	}
+	return 0
+}
+
+func (x *Register) GetFixedPointIterations() int32 {
+	if x != nil {
+		return x.FixedPointIterations
+	}
+	return 0
+}
+
 func (x *Register) GetNoise() *GradientNoise {
 	if x != nil {
 		return x.Noise
 	}
 	return nil
+}
+
+// StepSchedule is epsilon_t = a (b + t)^(-gamma); the step is epsilon_t/2.
+type StepSchedule struct {
+	state         protoimpl.MessageState `protogen:"open.v1"`
+	A             float64                `protobuf:"fixed64,1,opt,name=a,proto3" json:"a,omitempty"`
+	B             float64                `protobuf:"fixed64,2,opt,name=b,proto3" json:"b,omitempty"`
+	Gamma         float64                `protobuf:"fixed64,3,opt,name=gamma,proto3" json:"gamma,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *StepSchedule) Reset() {
+	*x = StepSchedule{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *StepSchedule) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*StepSchedule) ProtoMessage() {}
+
+func (x *StepSchedule) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use StepSchedule.ProtoReflect.Descriptor instead.
+func (*StepSchedule) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{7}
+}
+
+func (x *StepSchedule) GetA() float64 {
+	if x != nil {
+		return x.A
+	}
+	return 0
+}
+
+func (x *StepSchedule) GetB() float64 {
+	if x != nil {
+		return x.B
+	}
+	return 0
+}
+
+func (x *StepSchedule) GetGamma() float64 {
+	if x != nil {
+		return x.Gamma
+	}
+	return 0
 }
 
 // GradientNoise describes stochastic gradients. With replicates >= 2 the
@@ -1338,7 +1448,7 @@ type GradientNoise struct {
 
 func (x *GradientNoise) Reset() {
 	*x = GradientNoise{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1350,7 +1460,7 @@ func (x *GradientNoise) String() string {
 func (*GradientNoise) ProtoMessage() {}
 
 func (x *GradientNoise) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1363,7 +1473,7 @@ func (x *GradientNoise) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use GradientNoise.ProtoReflect.Descriptor instead.
 func (*GradientNoise) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{7}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{8}
 }
 
 func (x *GradientNoise) GetKind() GradientKind {
@@ -1438,7 +1548,7 @@ type Curvature struct {
 
 func (x *Curvature) Reset() {
 	*x = Curvature{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1450,7 +1560,7 @@ func (x *Curvature) String() string {
 func (*Curvature) ProtoMessage() {}
 
 func (x *Curvature) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1463,7 +1573,7 @@ func (x *Curvature) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Curvature.ProtoReflect.Descriptor instead.
 func (*Curvature) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{8}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{9}
 }
 
 func (x *Curvature) GetStrongConvexity() float64 {
@@ -1522,7 +1632,7 @@ type Wants struct {
 
 func (x *Wants) Reset() {
 	*x = Wants{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1534,7 +1644,7 @@ func (x *Wants) String() string {
 func (*Wants) ProtoMessage() {}
 
 func (x *Wants) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1547,7 +1657,7 @@ func (x *Wants) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Wants.ProtoReflect.Descriptor instead.
 func (*Wants) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{9}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{10}
 }
 
 func (x *Wants) GetMinBulkEss() float64 {
@@ -1619,7 +1729,7 @@ type Registered struct {
 
 func (x *Registered) Reset() {
 	*x = Registered{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1631,7 +1741,7 @@ func (x *Registered) String() string {
 func (*Registered) ProtoMessage() {}
 
 func (x *Registered) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1644,7 +1754,7 @@ func (x *Registered) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Registered.ProtoReflect.Descriptor instead.
 func (*Registered) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{10}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{11}
 }
 
 func (x *Registered) GetSessionId() string {
@@ -1742,7 +1852,7 @@ type Points struct {
 
 func (x *Points) Reset() {
 	*x = Points{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1754,7 +1864,7 @@ func (x *Points) String() string {
 func (*Points) ProtoMessage() {}
 
 func (x *Points) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1767,7 +1877,7 @@ func (x *Points) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Points.ProtoReflect.Descriptor instead.
 func (*Points) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{11}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{12}
 }
 
 func (x *Points) GetRequestId() uint64 {
@@ -1885,7 +1995,7 @@ type Evaluations struct {
 
 func (x *Evaluations) Reset() {
 	*x = Evaluations{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1897,7 +2007,7 @@ func (x *Evaluations) String() string {
 func (*Evaluations) ProtoMessage() {}
 
 func (x *Evaluations) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1910,7 +2020,7 @@ func (x *Evaluations) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Evaluations.ProtoReflect.Descriptor instead.
 func (*Evaluations) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{12}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{13}
 }
 
 func (x *Evaluations) GetRequestId() uint64 {
@@ -1980,7 +2090,7 @@ type Stop struct {
 
 func (x *Stop) Reset() {
 	*x = Stop{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1992,7 +2102,7 @@ func (x *Stop) String() string {
 func (*Stop) ProtoMessage() {}
 
 func (x *Stop) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2005,7 +2115,7 @@ func (x *Stop) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Stop.ProtoReflect.Descriptor instead.
 func (*Stop) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{13}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{14}
 }
 
 func (x *Stop) GetReason() string {
@@ -2040,7 +2150,7 @@ type Draws struct {
 
 func (x *Draws) Reset() {
 	*x = Draws{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2052,7 +2162,7 @@ func (x *Draws) String() string {
 func (*Draws) ProtoMessage() {}
 
 func (x *Draws) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2065,7 +2175,7 @@ func (x *Draws) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Draws.ProtoReflect.Descriptor instead.
 func (*Draws) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{14}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{15}
 }
 
 func (x *Draws) GetSeq() uint64 {
@@ -2152,7 +2262,7 @@ type Progress struct {
 
 func (x *Progress) Reset() {
 	*x = Progress{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2164,7 +2274,7 @@ func (x *Progress) String() string {
 func (*Progress) ProtoMessage() {}
 
 func (x *Progress) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2177,7 +2287,7 @@ func (x *Progress) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Progress.ProtoReflect.Descriptor instead.
 func (*Progress) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{15}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{16}
 }
 
 func (x *Progress) GetState() State {
@@ -2307,7 +2417,7 @@ type KernelReport struct {
 
 func (x *KernelReport) Reset() {
 	*x = KernelReport{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2319,7 +2429,7 @@ func (x *KernelReport) String() string {
 func (*KernelReport) ProtoMessage() {}
 
 func (x *KernelReport) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2332,7 +2442,7 @@ func (x *KernelReport) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use KernelReport.ProtoReflect.Descriptor instead.
 func (*KernelReport) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{16}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{17}
 }
 
 func (x *KernelReport) GetStep() float64 {
@@ -2401,7 +2511,7 @@ type NoiseEstimate struct {
 
 func (x *NoiseEstimate) Reset() {
 	*x = NoiseEstimate{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2413,7 +2523,7 @@ func (x *NoiseEstimate) String() string {
 func (*NoiseEstimate) ProtoMessage() {}
 
 func (x *NoiseEstimate) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2426,7 +2536,7 @@ func (x *NoiseEstimate) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use NoiseEstimate.ProtoReflect.Descriptor instead.
 func (*NoiseEstimate) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{17}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{18}
 }
 
 func (x *NoiseEstimate) GetVariance() float64 {
@@ -2489,7 +2599,7 @@ type ParameterDiagnostics struct {
 
 func (x *ParameterDiagnostics) Reset() {
 	*x = ParameterDiagnostics{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2501,7 +2611,7 @@ func (x *ParameterDiagnostics) String() string {
 func (*ParameterDiagnostics) ProtoMessage() {}
 
 func (x *ParameterDiagnostics) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2514,7 +2624,7 @@ func (x *ParameterDiagnostics) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ParameterDiagnostics.ProtoReflect.Descriptor instead.
 func (*ParameterDiagnostics) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{18}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{19}
 }
 
 func (x *ParameterDiagnostics) GetName() string {
@@ -2590,7 +2700,7 @@ type Bound struct {
 
 func (x *Bound) Reset() {
 	*x = Bound{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2602,7 +2712,7 @@ func (x *Bound) String() string {
 func (*Bound) ProtoMessage() {}
 
 func (x *Bound) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2615,7 +2725,7 @@ func (x *Bound) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Bound.ProtoReflect.Descriptor instead.
 func (*Bound) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{19}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{20}
 }
 
 func (x *Bound) GetMetric() Metric {
@@ -2693,7 +2803,7 @@ type CurvatureEstimate struct {
 
 func (x *CurvatureEstimate) Reset() {
 	*x = CurvatureEstimate{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2705,7 +2815,7 @@ func (x *CurvatureEstimate) String() string {
 func (*CurvatureEstimate) ProtoMessage() {}
 
 func (x *CurvatureEstimate) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2718,7 +2828,7 @@ func (x *CurvatureEstimate) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use CurvatureEstimate.ProtoReflect.Descriptor instead.
 func (*CurvatureEstimate) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{20}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{21}
 }
 
 func (x *CurvatureEstimate) GetPairs() int64 {
@@ -2766,7 +2876,7 @@ type TargetStatus struct {
 
 func (x *TargetStatus) Reset() {
 	*x = TargetStatus{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2778,7 +2888,7 @@ func (x *TargetStatus) String() string {
 func (*TargetStatus) ProtoMessage() {}
 
 func (x *TargetStatus) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2791,7 +2901,7 @@ func (x *TargetStatus) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use TargetStatus.ProtoReflect.Descriptor instead.
 func (*TargetStatus) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{21}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{22}
 }
 
 func (x *TargetStatus) GetName() string {
@@ -2845,7 +2955,7 @@ type Finished struct {
 
 func (x *Finished) Reset() {
 	*x = Finished{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2857,7 +2967,7 @@ func (x *Finished) String() string {
 func (*Finished) ProtoMessage() {}
 
 func (x *Finished) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2870,7 +2980,7 @@ func (x *Finished) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Finished.ProtoReflect.Descriptor instead.
 func (*Finished) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{22}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{23}
 }
 
 func (x *Finished) GetReason() FinishReason {
@@ -2918,7 +3028,7 @@ type ParameterSummary struct {
 
 func (x *ParameterSummary) Reset() {
 	*x = ParameterSummary{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[24]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2930,7 +3040,7 @@ func (x *ParameterSummary) String() string {
 func (*ParameterSummary) ProtoMessage() {}
 
 func (x *ParameterSummary) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[24]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2943,7 +3053,7 @@ func (x *ParameterSummary) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ParameterSummary.ProtoReflect.Descriptor instead.
 func (*ParameterSummary) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{23}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{24}
 }
 
 func (x *ParameterSummary) GetName() string {
@@ -3026,7 +3136,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x05draws\x18\x03 \x01(\v2\x10.sluice.v1.DrawsH\x00R\x05draws\x121\n" +
 	"\bprogress\x18\x04 \x01(\v2\x13.sluice.v1.ProgressH\x00R\bprogress\x121\n" +
 	"\bfinished\x18\x05 \x01(\v2\x13.sluice.v1.FinishedH\x00R\bfinishedB\a\n" +
-	"\x05frame\"\xad\x06\n" +
+	"\x05frame\"\xef\a\n" +
 	"\bRegister\x12\x10\n" +
 	"\x03dim\x18\x01 \x01(\x05R\x03dim\x12\x16\n" +
 	"\x06chains\x18\x02 \x01(\x05R\x06chains\x12\x16\n" +
@@ -3053,8 +3163,16 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\bfriction\x18\x13 \x01(\x01R\bfriction\x12!\n" +
 	"\finverse_mass\x18\x14 \x01(\x01R\vinverseMass\x12)\n" +
 	"\x10krylov_tolerance\x18\x16 \x01(\x01R\x0fkrylovTolerance\x122\n" +
-	"\x15krylov_max_iterations\x18\x17 \x01(\x05R\x13krylovMaxIterations\x12.\n" +
-	"\x05noise\x18\x15 \x01(\v2\x18.sluice.v1.GradientNoiseR\x05noise\"\xd0\x01\n" +
+	"\x15krylov_max_iterations\x18\x17 \x01(\x05R\x13krylovMaxIterations\x123\n" +
+	"\bschedule\x18\x18 \x01(\v2\x17.sluice.v1.StepScheduleR\bschedule\x12!\n" +
+	"\fanchor_every\x18\x19 \x01(\x05R\vanchorEvery\x122\n" +
+	"\x15fixed_point_tolerance\x18\x1a \x01(\x01R\x13fixedPointTolerance\x124\n" +
+	"\x16fixed_point_iterations\x18\x1b \x01(\x05R\x14fixedPointIterations\x12.\n" +
+	"\x05noise\x18\x15 \x01(\v2\x18.sluice.v1.GradientNoiseR\x05noise\"@\n" +
+	"\fStepSchedule\x12\f\n" +
+	"\x01a\x18\x01 \x01(\x01R\x01a\x12\f\n" +
+	"\x01b\x18\x02 \x01(\x01R\x01b\x12\x14\n" +
+	"\x05gamma\x18\x03 \x01(\x01R\x05gamma\"\xd0\x01\n" +
 	"\rGradientNoise\x12+\n" +
 	"\x04kind\x18\x01 \x01(\x0e2\x17.sluice.v1.GradientKindR\x04kind\x12\x1a\n" +
 	"\bvariance\x18\x02 \x01(\x01R\bvariance\x12\x12\n" +
@@ -3261,7 +3379,7 @@ func file_sluice_v1_sluice_proto_rawDescGZIP() []byte {
 }
 
 var file_sluice_v1_sluice_proto_enumTypes = make([]protoimpl.EnumInfo, 6)
-var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 24)
+var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 25)
 var file_sluice_v1_sluice_proto_goTypes = []any{
 	(GradientKind)(0),            // 0: sluice.v1.GradientKind
 	(Metric)(0),                  // 1: sluice.v1.Metric
@@ -3276,67 +3394,69 @@ var file_sluice_v1_sluice_proto_goTypes = []any{
 	(*SessionRequest)(nil),       // 10: sluice.v1.SessionRequest
 	(*SessionResponse)(nil),      // 11: sluice.v1.SessionResponse
 	(*Register)(nil),             // 12: sluice.v1.Register
-	(*GradientNoise)(nil),        // 13: sluice.v1.GradientNoise
-	(*Curvature)(nil),            // 14: sluice.v1.Curvature
-	(*Wants)(nil),                // 15: sluice.v1.Wants
-	(*Registered)(nil),           // 16: sluice.v1.Registered
-	(*Points)(nil),               // 17: sluice.v1.Points
-	(*Evaluations)(nil),          // 18: sluice.v1.Evaluations
-	(*Stop)(nil),                 // 19: sluice.v1.Stop
-	(*Draws)(nil),                // 20: sluice.v1.Draws
-	(*Progress)(nil),             // 21: sluice.v1.Progress
-	(*KernelReport)(nil),         // 22: sluice.v1.KernelReport
-	(*NoiseEstimate)(nil),        // 23: sluice.v1.NoiseEstimate
-	(*ParameterDiagnostics)(nil), // 24: sluice.v1.ParameterDiagnostics
-	(*Bound)(nil),                // 25: sluice.v1.Bound
-	(*CurvatureEstimate)(nil),    // 26: sluice.v1.CurvatureEstimate
-	(*TargetStatus)(nil),         // 27: sluice.v1.TargetStatus
-	(*Finished)(nil),             // 28: sluice.v1.Finished
-	(*ParameterSummary)(nil),     // 29: sluice.v1.ParameterSummary
+	(*StepSchedule)(nil),         // 13: sluice.v1.StepSchedule
+	(*GradientNoise)(nil),        // 14: sluice.v1.GradientNoise
+	(*Curvature)(nil),            // 15: sluice.v1.Curvature
+	(*Wants)(nil),                // 16: sluice.v1.Wants
+	(*Registered)(nil),           // 17: sluice.v1.Registered
+	(*Points)(nil),               // 18: sluice.v1.Points
+	(*Evaluations)(nil),          // 19: sluice.v1.Evaluations
+	(*Stop)(nil),                 // 20: sluice.v1.Stop
+	(*Draws)(nil),                // 21: sluice.v1.Draws
+	(*Progress)(nil),             // 22: sluice.v1.Progress
+	(*KernelReport)(nil),         // 23: sluice.v1.KernelReport
+	(*NoiseEstimate)(nil),        // 24: sluice.v1.NoiseEstimate
+	(*ParameterDiagnostics)(nil), // 25: sluice.v1.ParameterDiagnostics
+	(*Bound)(nil),                // 26: sluice.v1.Bound
+	(*CurvatureEstimate)(nil),    // 27: sluice.v1.CurvatureEstimate
+	(*TargetStatus)(nil),         // 28: sluice.v1.TargetStatus
+	(*Finished)(nil),             // 29: sluice.v1.Finished
+	(*ParameterSummary)(nil),     // 30: sluice.v1.ParameterSummary
 }
 var file_sluice_v1_sluice_proto_depIdxs = []int32{
-	14, // 0: sluice.v1.PlanRequest.curvature:type_name -> sluice.v1.Curvature
+	15, // 0: sluice.v1.PlanRequest.curvature:type_name -> sluice.v1.Curvature
 	1,  // 1: sluice.v1.PlanRequest.metric:type_name -> sluice.v1.Metric
-	25, // 2: sluice.v1.PlanResponse.bound:type_name -> sluice.v1.Bound
-	20, // 3: sluice.v1.FollowResponse.draws:type_name -> sluice.v1.Draws
-	28, // 4: sluice.v1.FollowResponse.finished:type_name -> sluice.v1.Finished
+	26, // 2: sluice.v1.PlanResponse.bound:type_name -> sluice.v1.Bound
+	21, // 3: sluice.v1.FollowResponse.draws:type_name -> sluice.v1.Draws
+	29, // 4: sluice.v1.FollowResponse.finished:type_name -> sluice.v1.Finished
 	12, // 5: sluice.v1.SessionRequest.register:type_name -> sluice.v1.Register
-	18, // 6: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
-	19, // 7: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
-	16, // 8: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
-	17, // 9: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
-	20, // 10: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
-	21, // 11: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
-	28, // 12: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
-	14, // 13: sluice.v1.Register.curvature:type_name -> sluice.v1.Curvature
-	15, // 14: sluice.v1.Register.wants:type_name -> sluice.v1.Wants
-	13, // 15: sluice.v1.Register.noise:type_name -> sluice.v1.GradientNoise
-	0,  // 16: sluice.v1.GradientNoise.kind:type_name -> sluice.v1.GradientKind
-	1,  // 17: sluice.v1.Wants.metric:type_name -> sluice.v1.Metric
-	2,  // 18: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
-	3,  // 19: sluice.v1.Progress.state:type_name -> sluice.v1.State
-	24, // 20: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
-	25, // 21: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
-	26, // 22: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
-	27, // 23: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
-	23, // 24: sluice.v1.Progress.noise:type_name -> sluice.v1.NoiseEstimate
-	22, // 25: sluice.v1.Progress.kernel:type_name -> sluice.v1.KernelReport
-	1,  // 26: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
-	4,  // 27: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
-	5,  // 28: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
-	21, // 29: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
-	29, // 30: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
-	10, // 31: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
-	8,  // 32: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
-	6,  // 33: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
-	11, // 34: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
-	9,  // 35: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
-	7,  // 36: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
-	34, // [34:37] is the sub-list for method output_type
-	31, // [31:34] is the sub-list for method input_type
-	31, // [31:31] is the sub-list for extension type_name
-	31, // [31:31] is the sub-list for extension extendee
-	0,  // [0:31] is the sub-list for field type_name
+	19, // 6: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
+	20, // 7: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
+	17, // 8: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
+	18, // 9: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
+	21, // 10: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
+	22, // 11: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
+	29, // 12: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
+	15, // 13: sluice.v1.Register.curvature:type_name -> sluice.v1.Curvature
+	16, // 14: sluice.v1.Register.wants:type_name -> sluice.v1.Wants
+	13, // 15: sluice.v1.Register.schedule:type_name -> sluice.v1.StepSchedule
+	14, // 16: sluice.v1.Register.noise:type_name -> sluice.v1.GradientNoise
+	0,  // 17: sluice.v1.GradientNoise.kind:type_name -> sluice.v1.GradientKind
+	1,  // 18: sluice.v1.Wants.metric:type_name -> sluice.v1.Metric
+	2,  // 19: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
+	3,  // 20: sluice.v1.Progress.state:type_name -> sluice.v1.State
+	25, // 21: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
+	26, // 22: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
+	27, // 23: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
+	28, // 24: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
+	24, // 25: sluice.v1.Progress.noise:type_name -> sluice.v1.NoiseEstimate
+	23, // 26: sluice.v1.Progress.kernel:type_name -> sluice.v1.KernelReport
+	1,  // 27: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
+	4,  // 28: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
+	5,  // 29: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
+	22, // 30: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
+	30, // 31: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
+	10, // 32: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
+	8,  // 33: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
+	6,  // 34: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
+	11, // 35: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
+	9,  // 36: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
+	7,  // 37: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
+	35, // [35:38] is the sub-list for method output_type
+	32, // [32:35] is the sub-list for method input_type
+	32, // [32:32] is the sub-list for extension type_name
+	32, // [32:32] is the sub-list for extension extendee
+	0,  // [0:32] is the sub-list for field type_name
 }
 
 func init() { file_sluice_v1_sluice_proto_init() }
@@ -3366,7 +3486,7 @@ func file_sluice_v1_sluice_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_sluice_v1_sluice_proto_rawDesc), len(file_sluice_v1_sluice_proto_rawDesc)),
 			NumEnums:      6,
-			NumMessages:   24,
+			NumMessages:   25,
 			NumExtensions: 0,
 			NumServices:   1,
 		},

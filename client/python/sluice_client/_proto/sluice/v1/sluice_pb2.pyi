@@ -331,12 +331,15 @@ class Progress(_message.Message):
     def __init__(self, state: _Optional[_Union[State, str]] = ..., steps: _Optional[int] = ..., evaluations_used: _Optional[int] = ..., evaluations_left: _Optional[int] = ..., seconds_used: _Optional[float] = ..., seconds_left: _Optional[float] = ..., draws_sent: _Optional[int] = ..., evaluations_per_second: _Optional[float] = ..., parameters: _Optional[_Iterable[_Union[ParameterDiagnostics, _Mapping]]] = ..., ksd: _Optional[float] = ..., bound: _Optional[_Union[Bound, _Mapping]] = ..., curvature: _Optional[_Union[CurvatureEstimate, _Mapping]] = ..., targets: _Optional[_Iterable[_Union[TargetStatus, _Mapping]]] = ..., noise: _Optional[_Union[NoiseEstimate, _Mapping]] = ..., kernel: _Optional[_Union[KernelReport, _Mapping]] = ...) -> None: ...
 
 class Register(_message.Message):
-    __slots__ = ["burn_in", "chains", "curvature", "dim", "draws_per_chain", "friction", "inverse_mass", "keep_every", "kernel", "krylov_max_iterations", "krylov_tolerance", "max_evaluations", "max_message_bytes", "max_seconds", "names", "noise", "progress_every_steps", "progress_interval_seconds", "seed", "start", "start_rows", "step", "wants"]
+    __slots__ = ["anchor_every", "burn_in", "chains", "curvature", "dim", "draws_per_chain", "fixed_point_iterations", "fixed_point_tolerance", "friction", "inverse_mass", "keep_every", "kernel", "krylov_max_iterations", "krylov_tolerance", "max_evaluations", "max_message_bytes", "max_seconds", "names", "noise", "progress_every_steps", "progress_interval_seconds", "schedule", "seed", "start", "start_rows", "step", "wants"]
+    ANCHOR_EVERY_FIELD_NUMBER: _ClassVar[int]
     BURN_IN_FIELD_NUMBER: _ClassVar[int]
     CHAINS_FIELD_NUMBER: _ClassVar[int]
     CURVATURE_FIELD_NUMBER: _ClassVar[int]
     DIM_FIELD_NUMBER: _ClassVar[int]
     DRAWS_PER_CHAIN_FIELD_NUMBER: _ClassVar[int]
+    FIXED_POINT_ITERATIONS_FIELD_NUMBER: _ClassVar[int]
+    FIXED_POINT_TOLERANCE_FIELD_NUMBER: _ClassVar[int]
     FRICTION_FIELD_NUMBER: _ClassVar[int]
     INVERSE_MASS_FIELD_NUMBER: _ClassVar[int]
     KEEP_EVERY_FIELD_NUMBER: _ClassVar[int]
@@ -350,16 +353,20 @@ class Register(_message.Message):
     NOISE_FIELD_NUMBER: _ClassVar[int]
     PROGRESS_EVERY_STEPS_FIELD_NUMBER: _ClassVar[int]
     PROGRESS_INTERVAL_SECONDS_FIELD_NUMBER: _ClassVar[int]
+    SCHEDULE_FIELD_NUMBER: _ClassVar[int]
     SEED_FIELD_NUMBER: _ClassVar[int]
     START_FIELD_NUMBER: _ClassVar[int]
     START_ROWS_FIELD_NUMBER: _ClassVar[int]
     STEP_FIELD_NUMBER: _ClassVar[int]
     WANTS_FIELD_NUMBER: _ClassVar[int]
+    anchor_every: int
     burn_in: int
     chains: int
     curvature: Curvature
     dim: int
     draws_per_chain: int
+    fixed_point_iterations: int
+    fixed_point_tolerance: float
     friction: float
     inverse_mass: float
     keep_every: int
@@ -373,12 +380,13 @@ class Register(_message.Message):
     noise: GradientNoise
     progress_every_steps: int
     progress_interval_seconds: float
+    schedule: StepSchedule
     seed: int
     start: bytes
     start_rows: int
     step: float
     wants: Wants
-    def __init__(self, dim: _Optional[int] = ..., chains: _Optional[int] = ..., kernel: _Optional[str] = ..., start: _Optional[bytes] = ..., start_rows: _Optional[int] = ..., step: _Optional[float] = ..., burn_in: _Optional[int] = ..., keep_every: _Optional[int] = ..., draws_per_chain: _Optional[int] = ..., max_evaluations: _Optional[int] = ..., max_seconds: _Optional[float] = ..., progress_every_steps: _Optional[int] = ..., progress_interval_seconds: _Optional[float] = ..., seed: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., max_message_bytes: _Optional[int] = ..., curvature: _Optional[_Union[Curvature, _Mapping]] = ..., wants: _Optional[_Union[Wants, _Mapping]] = ..., friction: _Optional[float] = ..., inverse_mass: _Optional[float] = ..., krylov_tolerance: _Optional[float] = ..., krylov_max_iterations: _Optional[int] = ..., noise: _Optional[_Union[GradientNoise, _Mapping]] = ...) -> None: ...
+    def __init__(self, dim: _Optional[int] = ..., chains: _Optional[int] = ..., kernel: _Optional[str] = ..., start: _Optional[bytes] = ..., start_rows: _Optional[int] = ..., step: _Optional[float] = ..., burn_in: _Optional[int] = ..., keep_every: _Optional[int] = ..., draws_per_chain: _Optional[int] = ..., max_evaluations: _Optional[int] = ..., max_seconds: _Optional[float] = ..., progress_every_steps: _Optional[int] = ..., progress_interval_seconds: _Optional[float] = ..., seed: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., max_message_bytes: _Optional[int] = ..., curvature: _Optional[_Union[Curvature, _Mapping]] = ..., wants: _Optional[_Union[Wants, _Mapping]] = ..., friction: _Optional[float] = ..., inverse_mass: _Optional[float] = ..., krylov_tolerance: _Optional[float] = ..., krylov_max_iterations: _Optional[int] = ..., schedule: _Optional[_Union[StepSchedule, _Mapping]] = ..., anchor_every: _Optional[int] = ..., fixed_point_tolerance: _Optional[float] = ..., fixed_point_iterations: _Optional[int] = ..., noise: _Optional[_Union[GradientNoise, _Mapping]] = ...) -> None: ...
 
 class Registered(_message.Message):
     __slots__ = ["evaluations_per_step", "kernel", "max_message_bytes", "names", "planned_steps", "seed", "session_id", "step"]
@@ -423,6 +431,16 @@ class SessionResponse(_message.Message):
     progress: Progress
     registered: Registered
     def __init__(self, registered: _Optional[_Union[Registered, _Mapping]] = ..., points: _Optional[_Union[Points, _Mapping]] = ..., draws: _Optional[_Union[Draws, _Mapping]] = ..., progress: _Optional[_Union[Progress, _Mapping]] = ..., finished: _Optional[_Union[Finished, _Mapping]] = ...) -> None: ...
+
+class StepSchedule(_message.Message):
+    __slots__ = ["a", "b", "gamma"]
+    A_FIELD_NUMBER: _ClassVar[int]
+    B_FIELD_NUMBER: _ClassVar[int]
+    GAMMA_FIELD_NUMBER: _ClassVar[int]
+    a: float
+    b: float
+    gamma: float
+    def __init__(self, a: _Optional[float] = ..., b: _Optional[float] = ..., gamma: _Optional[float] = ...) -> None: ...
 
 class Stop(_message.Message):
     __slots__ = ["reason"]
