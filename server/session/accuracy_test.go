@@ -301,3 +301,23 @@ func TestFullDataCostAndMinibatchGroups(t *testing.T) {
 		t.Fatalf("epochs %v, want 12", e)
 	}
 }
+
+// A schedule reaches the sgld kernel: after t steps the step in use is
+// ε_t/2 with ε_t = a(b + t)^(−γ) (THEORY.md §7.1 vector: a = 0.01,
+// b = 10, γ = 0.55 gives ε_100 = 7.537616249866717e-04).
+func TestScheduleReachesSGLD(t *testing.T) {
+	spec := baseSpec()
+	spec.Kernel, spec.Step, spec.DrawsPerChain = "sgld", 0, 100
+	spec.Schedule = &kernels.SGLDSchedule{A: 0.01, B: 10, Gamma: 0.55}
+	_, res, err := drive(t, mustNew(t, spec, Limits{}), gaussian(1))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if got, want := res.Finished.Progress.Kernel.Step, 7.537616249866717e-04/2; math.Abs(got-want) > 1e-12*want {
+		t.Fatalf("step after 100 steps %v, want ε_100/2 = %v", got, want)
+	}
+	spec.Step = 0.1
+	if _, err := New("x", spec, Limits{}); err == nil {
+		t.Fatal("a schedule with a step accepted")
+	}
+}
