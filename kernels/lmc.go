@@ -61,6 +61,17 @@ func (k *LMC) Steps() int { return k.steps }
 // Step returns the step size h.
 func (k *LMC) Step() float64 { return k.h }
 
+// SetStep changes the step size for the steps to come (a driver re-plans
+// it, for example once the gradient noise is measured). Noise already
+// drawn by Prepare is standard normal and stays valid. It panics on a
+// non-positive or non-finite step.
+func (k *LMC) SetStep(h float64) {
+	if !(h > 0) || math.IsInf(h, 0) {
+		panic(fmt.Sprintf("kernels: LMC step %v", h))
+	}
+	k.h, k.scale = h, math.Sqrt(2*h)
+}
+
 // EvaluationsPerStep implements Kernel: one gradient per chain.
 func (k *LMC) EvaluationsPerStep() int { return k.chains }
 

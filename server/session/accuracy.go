@@ -46,6 +46,16 @@ type guarantee struct {
 	// (m = 0, THEORY.md §1.2); the engine adds it to every answer.
 	penalty float64
 	centre  []float64
+	// replan is set when the step was planned and the gradient noise is
+	// to be measured: the step is planned again, once, with the measured
+	// noise, during burn-in. k0 is the step count at which the current
+	// step took effect: the bound counts only the steps since, from the
+	// declared start distance, which can only overstate it (the chains'
+	// distance to π contracts during the earlier steps too).
+	replan bool
+	k0     int
+	eps    float64
+	chains int
 }
 
 // newGuarantee returns nil when no bound applies: no curvature declared,
@@ -56,7 +66,14 @@ func newGuarantee(spec *Spec) (*guarantee, error) {
 		return nil, nil
 	}
 	g := &guarantee{setting: bound.Setting{Convexity: c.StrongConvexity, Smoothness: c.Smoothness, Dim: spec.Dim,
-		StartDistance: c.StartDistance, SecondMoment: c.SecondMoment, Source: bound.Declared}, metric: spec.Wants.Metric}
+		StartDistance: c.StartDistance, SecondMoment: c.SecondMoment, Source: bound.Declared}, metric: spec.Wants.Metric,
+		eps: spec.Wants.Eps, chains: spec.Chains}
+	if n := spec.Noise; n.Stochastic {
+		// The kernel sees the mean of r replicates: error variance σ²/r.
+		g.setting.Noise = math.Sqrt(n.Variance / float64(n.Replicates))
+		g.setting.Bias = n.Bias
+		g.replan = spec.Step == 0 && n.Variance == 0
+	}
 	if g.metric == 0 {
 		g.metric = bound.W2
 	}
@@ -98,6 +115,7 @@ func newGuarantee(spec *Spec) (*guarantee, error) {
 }
 
 func (g *guarantee) at(k int) (bound.Bound, error) {
+	k = max(0, k-g.k0)
 	if g.metric == bound.TV {
 		return bound.TVBound(g.setting, g.penalty, g.h, k)
 	}
@@ -115,7 +133,7 @@ func (g *guarantee) stepsTo(eps float64, k int) int {
 	if ok(k) {
 		return k
 	}
-	hi := max(2*k, 16)
+	hi := max(2*k, g.k0+16)
 	for !ok(hi) {
 		if hi > math.MaxInt32 {
 			return -1

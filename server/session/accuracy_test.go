@@ -321,3 +321,52 @@ func TestScheduleReachesSGLD(t *testing.T) {
 		t.Fatal("a schedule with a step accepted")
 	}
 }
+
+// With declared m, M, wants.eps and stochastic gradients of undeclared
+// variance, the engine plans the step, measures the noise during burn-in
+// and plans again with it (the bias-aware step, THEORY.md §2.2): the step
+// shrinks to what kernels/bound's rule gives for the measured noise, and
+// the bound carries a noise term and says the noise was measured.
+func TestStepReplannedWithMeasuredNoise(t *testing.T) {
+	const s2 = 4.0
+	spec := baseSpec()
+	spec.Step, spec.Chains, spec.BurnIn, spec.ProgressEverySteps = 0, 4, 40, 1
+	spec.Curvature = &Curvature{StrongConvexity: 1, Smoothness: 1}
+	spec.Wants = Wants{Eps: 1, Metric: bound.W2}
+	spec.Noise = Noise{Stochastic: true, Replicates: 2}
+	r := rand.New(rand.NewPCG(5, 6))
+	noisy := func(p *Points, ev *Evaluations) {
+		ev.Grad = make([]float64, 2*len(p.Points))
+		for row := range p.Rows {
+			for j := range 2 {
+				for i := range p.Dim {
+					ev.Grad[(row*2+j)*p.Dim+i] = -p.Points[row*p.Dim+i] + math.Sqrt(s2)*r.NormFloat64()
+				}
+			}
+		}
+	}
+	tr, res, err := drive(t, mustNew(t, spec, Limits{}), noisy)
+	if err != nil || res.Finished.Reason != TargetMet {
+		t.Fatalf("reason %v err %v", res.Finished.Reason, err)
+	}
+	first, final := tr.registered.Step, res.Finished.Progress.Kernel.Step
+	var measured float64 // the re-plan happens at the first report resting on ≥ 10 requests
+	for _, p := range tr.progress {
+		if p.Noise.Requests >= 10 {
+			measured = p.Noise.Variance
+			break
+		}
+	}
+	want, err := bound.NewPlan(bound.Spec{Setting: bound.Setting{Convexity: 1, Smoothness: 1, Dim: 2,
+		Noise: math.Sqrt(measured / 2), Source: bound.Declared}, Metric: bound.W2, Eps: 1, Chains: 4})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !(final < first) || math.Abs(final-want.Step) > 1e-12*want.Step {
+		t.Fatalf("step %v at registration, %v at the end; the rule with the measured noise gives %v", first, final, want.Step)
+	}
+	b := res.Finished.Progress.Bound
+	if b == nil || !(b.Noise > 0) || b.Total > 1 || !strings.Contains(res.Finished.Progress.BoundLabel, "measured") {
+		t.Fatalf("bound %+v label %q", b, res.Finished.Progress.BoundLabel)
+	}
+}

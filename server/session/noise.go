@@ -5,6 +5,7 @@ import (
 	"math"
 
 	"sluice/kernels"
+	"sluice/kernels/bound"
 )
 
 // noiseMeter measures stochastic-gradient noise from replicates: for
@@ -104,11 +105,23 @@ func (s *Session) updateNoise(e NoiseEstimate) {
 		v = e.Variance
 	}
 	sd := math.Sqrt(v / float64(s.spec.Noise.Replicates))
-	if sd == s.guarantee.setting.Noise {
+	g := s.guarantee
+	if sd == g.setting.Noise {
 		return
 	}
-	s.guarantee.setting.Noise = sd
+	g.setting.Noise = sd
+	k := s.kernel.Steps()
+	if lmc, ok := s.kernel.(*kernels.LMC); ok && g.replan && e.Requests >= 10 && int64(k) < s.spec.BurnIn {
+		// Plan the step again with the measured noise, once, in burn-in:
+		// the bias-aware step of THEORY.md §2.2.
+		g.replan = false
+		p, err := bound.NewPlan(bound.Spec{Setting: g.setting, Metric: g.metric, Eps: g.eps, Chains: g.chains})
+		if err == nil && p.Step < g.h {
+			lmc.SetStep(p.Step)
+			g.h, g.k0, g.planned = p.Step, k, k+p.Iterations
+		}
+	}
 	if s.spec.Wants.Eps > 0 {
-		s.epsSteps = s.guarantee.stepsTo(s.spec.Wants.Eps, 0)
+		s.epsSteps = g.stepsTo(s.spec.Wants.Eps, k)
 	}
 }
