@@ -55,6 +55,9 @@ type Spec struct {
 	AnchorEvery          int
 	FixedPointTolerance  float64
 	FixedPointIterations int
+	// CurvatureProbe asks for that many power iterations each way (M and
+	// m) at chain 0's start before sampling, counted in the budget.
+	CurvatureProbe int
 }
 
 // Schedule is a decreasing step for sgld.
@@ -237,11 +240,16 @@ type Bound struct {
 	Start, Discretisation, Noise, Bias float64
 }
 
-// CurvatureEstimate: M ≥ SmoothnessAtLeast, m ≤ StrongConvexityAtMost.
+// CurvatureEstimate: M ≥ SmoothnessAtLeast, m ≤ StrongConvexityAtMost
+// (certificates from gradient pairs); ProbedSmoothness and
+// ProbedConvexity are the opt-in probe's estimates (0: no probe), which
+// cost ProbeEvaluations.
 type CurvatureEstimate struct {
 	Pairs                                    int64
 	SmoothnessAtLeast, StrongConvexityAtMost float64
 	NotConvex                                bool
+	ProbedSmoothness, ProbedConvexity        float64
+	ProbeEvaluations                         int64
 }
 
 // TargetStatus reports one accuracy target.
@@ -355,6 +363,7 @@ func registerFrame(spec Spec, limit int64) *sluicev1.SessionRequest {
 		KrylovTolerance: spec.KrylovTolerance, KrylovMaxIterations: int32(spec.KrylovMaxIterations),
 		Noise: noiseToWire(spec.Noise), Schedule: scheduleToWire(spec.Schedule), AnchorEvery: int32(spec.AnchorEvery),
 		FixedPointTolerance: spec.FixedPointTolerance, FixedPointIterations: int32(spec.FixedPointIterations),
+		CurvatureProbeIterations: int32(spec.CurvatureProbe),
 	}}}
 }
 
@@ -593,7 +602,8 @@ func progressFromWire(p *sluicev1.Progress) Progress {
 		DrawsSent: p.GetDrawsSent(), EvaluationsPerSecond: p.GetEvaluationsPerSecond(), KSD: p.GetKsd()}
 	if c := p.GetCurvature(); c != nil {
 		out.Curvature = CurvatureEstimate{Pairs: c.GetPairs(), SmoothnessAtLeast: c.GetSmoothnessAtLeast(),
-			StrongConvexityAtMost: c.GetStrongConvexityAtMost(), NotConvex: c.GetNotConvex()}
+			StrongConvexityAtMost: c.GetStrongConvexityAtMost(), NotConvex: c.GetNotConvex(),
+			ProbedSmoothness: c.GetProbedSmoothness(), ProbedConvexity: c.GetProbedStrongConvexity(), ProbeEvaluations: c.GetProbeEvaluations()}
 	}
 	if b := p.GetBound(); b != nil {
 		out.Bound = &Bound{Metric: map[sluicev1.Metric]Metric{sluicev1.Metric_METRIC_TV: TV, sluicev1.Metric_METRIC_W2: W2}[b.GetMetric()],

@@ -39,6 +39,7 @@ func specFromWire(r *sluicev1.Register) (session.Spec, error) {
 		KrylovTolerance:      r.GetKrylovTolerance(),
 		Schedule:             scheduleFromWire(r.GetSchedule()),
 		AnchorEvery:          int(r.GetAnchorEvery()),
+		CurvatureProbe:       int(r.GetCurvatureProbeIterations()),
 		FixedPointTolerance:  r.GetFixedPointTolerance(),
 		FixedPointIterations: int(r.GetFixedPointIterations()),
 		KrylovMaxIterations:  int(r.GetKrylovMaxIterations()),
@@ -200,7 +201,9 @@ func progressToWire(p *session.Progress) *sluicev1.Progress {
 		EvaluationsLeft: p.EvaluationsLeft, SecondsUsed: p.Elapsed.Seconds(), SecondsLeft: left,
 		DrawsSent: p.DrawsSent, EvaluationsPerSecond: p.EvaluationsPerSecond, Ksd: p.KSD,
 		Curvature: &sluicev1.CurvatureEstimate{Pairs: p.Curvature.Pairs, SmoothnessAtLeast: p.Curvature.SmoothnessAtLeast,
-			StrongConvexityAtMost: p.Curvature.StrongConvexityAtMost, NotConvex: p.Curvature.NotConvex}}
+			StrongConvexityAtMost: p.Curvature.StrongConvexityAtMost, NotConvex: p.Curvature.NotConvex,
+			ProbedSmoothness: p.Curvature.ProbedSmoothness, ProbedStrongConvexity: p.Curvature.ProbedConvexity,
+			ProbeEvaluations: p.Curvature.ProbeEvaluations}}
 	if p.Bound != nil {
 		w.Bound = boundToWire(*p.Bound)
 		w.Bound.Label = p.BoundLabel

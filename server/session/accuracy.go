@@ -23,6 +23,10 @@ type CurvatureEstimate struct {
 	// upper bound on m.
 	SmoothnessAtLeast, StrongConvexityAtMost float64
 	NotConvex                                bool
+	// The opt-in probe's estimates of M and m (0 when none ran) and the
+	// evaluations it cost.
+	ProbedSmoothness, ProbedConvexity float64
+	ProbeEvaluations                  int64
 }
 
 // TargetStatus reports one accuracy target.

@@ -370,3 +370,38 @@ func TestStepReplannedWithMeasuredNoise(t *testing.T) {
 		t.Fatalf("bound %+v label %q", b, res.Finished.Progress.BoundLabel)
 	}
 }
+
+// The opt-in probe reproduces THEORY.md §12's power iteration (H =
+// diag(1, …, 10), θ = 0, v₀ = (1, …, 1)/√10, ε = 1e-4: 9.9977816035 after
+// 30 iterations), estimates m = 1 from the shifted operator, counts its
+// evaluations in the budget, and then sampling proceeds unchanged.
+func TestCurvatureProbe(t *testing.T) {
+	spec := Spec{Dim: 10, Chains: 2, Start: make([]float64, 10), StartRows: 1, Step: 0.05, Seed: 3, DrawsPerChain: 20,
+		CurvatureProbe: 30}
+	diagH := func(p *Points, ev *Evaluations) {
+		ev.Grad = make([]float64, len(p.Points))
+		for i, x := range p.Points {
+			ev.Grad[i] = -float64(i%10+1) * x
+		}
+	}
+	tr, res, err := drive(t, mustNew(t, spec, Limits{}), diagH)
+	if err != nil {
+		t.Fatal(err)
+	}
+	c := res.Finished.Progress.Curvature
+	if math.Abs(c.ProbedSmoothness-9.9977816035) > 1e-8 {
+		t.Fatalf("probed M %.10f, want 9.9977816035", c.ProbedSmoothness)
+	}
+	if math.Abs(c.ProbedConvexity-1) > 0.05 || !(c.ProbedConvexity >= 1-1e-6) {
+		t.Fatalf("probed m %v, want about 1 (a Rayleigh quotient of H: never below λ_min)", c.ProbedConvexity)
+	}
+	if c.ProbeEvaluations != 62 || res.Finished.Progress.EvaluationsUsed != 62+2*20 {
+		t.Fatalf("probe cost %d, evaluations %d; want 62 and 102", c.ProbeEvaluations, res.Finished.Progress.EvaluationsUsed)
+	}
+	if len(tr.draws) != 20 || tr.draws[0].Iterations[0] != 1 {
+		t.Fatalf("sampling after the probe: %d draw frames, first iteration %d", len(tr.draws), tr.draws[0].Iterations[0])
+	}
+	if b := res.Finished.Progress.Bound; b == nil || b.Source != bound.Estimated {
+		t.Fatalf("estimated bound from the probe: %+v", b)
+	}
+}

@@ -41,6 +41,7 @@ type Session struct {
 
 	guarantee  *guarantee // nil when no bound applies
 	mon        *monitor
+	probe      *probing // the opt-in curvature probe, nil when not asked
 	noise      noiseMeter
 	epsSteps   int      // steps at which the bound meets Wants.Eps; −1 if never or not asked
 	log        *DrawLog // nil when followers are not served
@@ -192,7 +193,10 @@ func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) e
 	}
 	answerTimer := time.NewTimer(s.lim.AnswerTimeout)
 	defer answerTimer.Stop()
-	prep, _ := s.kernel.(kernels.Preparer)
+	if s.spec.CurvatureProbe > 0 {
+		s.probe = newProbing(s.kernel, s.spec.CurvatureProbe)
+		s.kernel = s.probe
+	}
 	// pending is set when a completed step's draws and progress are still
 	// to be sent: they go out right after the next Points frame, so their
 	// transfer overlaps the client's evaluation instead of delaying it.
@@ -231,7 +235,7 @@ func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) e
 		if err := flush(); err != nil {
 			return s.result(Failed, err.Error()), err
 		}
-		if prep != nil {
+		if prep, ok := s.kernel.(kernels.Preparer); ok {
 			prep.Prepare()
 		}
 		answerTimer.Reset(s.lim.AnswerTimeout)
@@ -272,6 +276,13 @@ func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) e
 		s.noise.request(req, s.spec.Noise)
 		s.guarantee.penalise(req, s.answer, s.spec.Dim)
 		s.mon.answered(req, s.answer)
+		if s.probe != nil && s.kernel == kernels.Kernel(s.probe) {
+			s.probe.Tell(s.answer)
+			if s.probe.done {
+				s.kernel = s.probe.inner
+			}
+			continue
+		}
 		if s.kernel.Tell(s.answer) {
 			pending = true
 			if s.keeps(int64(s.kernel.Steps())) {
@@ -619,10 +630,18 @@ func (s *Session) burnInCost() int64 {
 // bound used, M ≥ the lower bound used), so the figure is optimistic:
 // it is labelled "estimated, not guaranteed" (bound.Estimated).
 func (s *Session) estimatedBound(c CurvatureEstimate) (bound.Bound, bool) {
-	if s.spec.Kernel != "lmc" || s.spec.Curvature != nil || c.Pairs < int64(2*s.spec.Dim) || c.NotConvex {
+	if s.spec.Kernel != "lmc" || s.spec.Curvature != nil || (c.Pairs < int64(2*s.spec.Dim) && c.ProbedSmoothness == 0) || c.NotConvex {
 		return bound.Bound{}, false
 	}
 	m, bigM := c.StrongConvexityAtMost, c.SmoothnessAtLeast
+	if c.ProbedSmoothness > 0 {
+		// THEORY.md §12's recipe: a safety factor on the larger of the
+		// probe and the certificates for M; the smaller for m.
+		bigM = 1.1 * math.Max(bigM, c.ProbedSmoothness)
+		if c.ProbedConvexity > 0 {
+			m = math.Min(m, c.ProbedConvexity)
+		}
+	}
 	if !(m > 0) || !(bigM >= m) || math.IsInf(bigM, 0) {
 		return bound.Bound{}, false
 	}
@@ -697,6 +716,10 @@ func (s *Session) progress(now time.Time, final bool) Progress {
 		p.EvaluationsPerSecond = float64(s.used) / sec
 	}
 	s.mon.measure(&p, final)
+	if s.probe != nil {
+		p.Curvature.ProbedSmoothness, p.Curvature.ProbedConvexity = s.probe.bigM, s.probe.m
+		p.Curvature.ProbeEvaluations = int64(s.probe.evaluations)
+	}
 	p.Kernel = kernelReport(s.kernel)
 	if s.spec.Noise.Stochastic {
 		n := s.noise.estimate(s.spec.Noise)

@@ -66,6 +66,9 @@ type Spec struct {
 	// (0: 1e-6 and 100).
 	FixedPointTolerance  float64
 	FixedPointIterations int
+	// CurvatureProbe asks for that many power iterations (each way, for
+	// M and m) at chain 0's start before sampling; 0: none.
+	CurvatureProbe int
 }
 
 // Noise describes stochastic gradients.
@@ -228,6 +231,12 @@ func (s *Spec) validate(l Limits) error {
 	}
 	if err := s.validateNoise(); err != nil {
 		return err
+	}
+	if s.CurvatureProbe < 0 || s.CurvatureProbe > 10000 {
+		return bad("curvature_probe_iterations", "must be between 0 and 10000, got %d", s.CurvatureProbe)
+	}
+	if s.CurvatureProbe > 0 && s.Noise.Stochastic {
+		return bad("curvature_probe_iterations", "the probe's finite differences need exact gradients (or pairs on one minibatch, not offered yet)")
 	}
 	if err := s.validateAccuracy(); err != nil {
 		return err

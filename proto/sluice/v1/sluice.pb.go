@@ -1134,6 +1134,13 @@ type Register struct {
 	// or after fixed_point_iterations (0 means 100).
 	FixedPointTolerance  float64 `protobuf:"fixed64,26,opt,name=fixed_point_tolerance,json=fixedPointTolerance,proto3" json:"fixed_point_tolerance,omitempty"`
 	FixedPointIterations int32   `protobuf:"varint,27,opt,name=fixed_point_iterations,json=fixedPointIterations,proto3" json:"fixed_point_iterations,omitempty"`
+	// Opt-in curvature probe: before sampling, this many power iterations
+	// with finite-difference Hessian-vector products at chain 0's start
+	// estimate M, and as many again estimate m (THEORY.md section 12). Each
+	// iteration costs one gradient evaluation, counted in the budget; the
+	// estimates are reported in Progress.curvature and feed the estimated
+	// bound. 0: no probe. Needs exact gradients.
+	CurvatureProbeIterations int32 `protobuf:"varint,28,opt,name=curvature_probe_iterations,json=curvatureProbeIterations,proto3" json:"curvature_probe_iterations,omitempty"`
 	// How the client's gradients are made: exact (the default) or
 	// stochastic (minibatches, Monte Carlo estimates, noisy simulators).
 	Noise         *GradientNoise `protobuf:"bytes,21,opt,name=noise,proto3" json:"noise,omitempty"`
@@ -1349,6 +1356,13 @@ func (x *Register) GetFixedPointTolerance() float64 {
 func (x *Register) GetFixedPointIterations() int32 {
 	if x != nil {
 		return x.FixedPointIterations
+	}
+	return 0
+}
+
+func (x *Register) GetCurvatureProbeIterations() int32 {
+	if x != nil {
+		return x.CurvatureProbeIterations
 	}
 	return 0
 }
@@ -2796,9 +2810,14 @@ type CurvatureEstimate struct {
 	// m is at most this.
 	StrongConvexityAtMost float64 `protobuf:"fixed64,3,opt,name=strong_convexity_at_most,json=strongConvexityAtMost,proto3" json:"strong_convexity_at_most,omitempty"`
 	// A pair showed the potential is not convex.
-	NotConvex     bool `protobuf:"varint,4,opt,name=not_convex,json=notConvex,proto3" json:"not_convex,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	NotConvex bool `protobuf:"varint,4,opt,name=not_convex,json=notConvex,proto3" json:"not_convex,omitempty"`
+	// The opt-in probe's power-iteration estimates of M and m at chain 0's
+	// start (0 when no probe ran), and the evaluations it cost.
+	ProbedSmoothness      float64 `protobuf:"fixed64,5,opt,name=probed_smoothness,json=probedSmoothness,proto3" json:"probed_smoothness,omitempty"`
+	ProbedStrongConvexity float64 `protobuf:"fixed64,6,opt,name=probed_strong_convexity,json=probedStrongConvexity,proto3" json:"probed_strong_convexity,omitempty"`
+	ProbeEvaluations      int64   `protobuf:"varint,7,opt,name=probe_evaluations,json=probeEvaluations,proto3" json:"probe_evaluations,omitempty"`
+	unknownFields         protoimpl.UnknownFields
+	sizeCache             protoimpl.SizeCache
 }
 
 func (x *CurvatureEstimate) Reset() {
@@ -2857,6 +2876,27 @@ func (x *CurvatureEstimate) GetNotConvex() bool {
 		return x.NotConvex
 	}
 	return false
+}
+
+func (x *CurvatureEstimate) GetProbedSmoothness() float64 {
+	if x != nil {
+		return x.ProbedSmoothness
+	}
+	return 0
+}
+
+func (x *CurvatureEstimate) GetProbedStrongConvexity() float64 {
+	if x != nil {
+		return x.ProbedStrongConvexity
+	}
+	return 0
+}
+
+func (x *CurvatureEstimate) GetProbeEvaluations() int64 {
+	if x != nil {
+		return x.ProbeEvaluations
+	}
+	return 0
 }
 
 // TargetStatus reports one accuracy target.
@@ -3136,7 +3176,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x05draws\x18\x03 \x01(\v2\x10.sluice.v1.DrawsH\x00R\x05draws\x121\n" +
 	"\bprogress\x18\x04 \x01(\v2\x13.sluice.v1.ProgressH\x00R\bprogress\x121\n" +
 	"\bfinished\x18\x05 \x01(\v2\x13.sluice.v1.FinishedH\x00R\bfinishedB\a\n" +
-	"\x05frame\"\xef\a\n" +
+	"\x05frame\"\xad\b\n" +
 	"\bRegister\x12\x10\n" +
 	"\x03dim\x18\x01 \x01(\x05R\x03dim\x12\x16\n" +
 	"\x06chains\x18\x02 \x01(\x05R\x06chains\x12\x16\n" +
@@ -3167,7 +3207,8 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\bschedule\x18\x18 \x01(\v2\x17.sluice.v1.StepScheduleR\bschedule\x12!\n" +
 	"\fanchor_every\x18\x19 \x01(\x05R\vanchorEvery\x122\n" +
 	"\x15fixed_point_tolerance\x18\x1a \x01(\x01R\x13fixedPointTolerance\x124\n" +
-	"\x16fixed_point_iterations\x18\x1b \x01(\x05R\x14fixedPointIterations\x12.\n" +
+	"\x16fixed_point_iterations\x18\x1b \x01(\x05R\x14fixedPointIterations\x12<\n" +
+	"\x1acurvature_probe_iterations\x18\x1c \x01(\x05R\x18curvatureProbeIterations\x12.\n" +
 	"\x05noise\x18\x15 \x01(\v2\x18.sluice.v1.GradientNoiseR\x05noise\"@\n" +
 	"\fStepSchedule\x12\f\n" +
 	"\x01a\x18\x01 \x01(\x01R\x01a\x12\f\n" +
@@ -3304,13 +3345,16 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x13discretisation_term\x18\x06 \x01(\x01R\x12discretisationTerm\x12\x1d\n" +
 	"\n" +
 	"noise_term\x18\a \x01(\x01R\tnoiseTerm\x12\x1b\n" +
-	"\tbias_term\x18\b \x01(\x01R\bbiasTerm\"\xb1\x01\n" +
+	"\tbias_term\x18\b \x01(\x01R\bbiasTerm\"\xc3\x02\n" +
 	"\x11CurvatureEstimate\x12\x14\n" +
 	"\x05pairs\x18\x01 \x01(\x03R\x05pairs\x12.\n" +
 	"\x13smoothness_at_least\x18\x02 \x01(\x01R\x11smoothnessAtLeast\x127\n" +
 	"\x18strong_convexity_at_most\x18\x03 \x01(\x01R\x15strongConvexityAtMost\x12\x1d\n" +
 	"\n" +
-	"not_convex\x18\x04 \x01(\bR\tnotConvex\"\x97\x01\n" +
+	"not_convex\x18\x04 \x01(\bR\tnotConvex\x12+\n" +
+	"\x11probed_smoothness\x18\x05 \x01(\x01R\x10probedSmoothness\x126\n" +
+	"\x17probed_strong_convexity\x18\x06 \x01(\x01R\x15probedStrongConvexity\x12+\n" +
+	"\x11probe_evaluations\x18\a \x01(\x03R\x10probeEvaluations\"\x97\x01\n" +
 	"\fTargetStatus\x12\x12\n" +
 	"\x04name\x18\x01 \x01(\tR\x04name\x12\x12\n" +
 	"\x04want\x18\x02 \x01(\x01R\x04want\x12\x18\n" +

@@ -67,16 +67,22 @@ class Curvature(_message.Message):
     def __init__(self, strong_convexity: _Optional[float] = ..., smoothness: _Optional[float] = ..., start_distance: _Optional[float] = ..., second_moment: _Optional[float] = ..., penalty_centre: _Optional[bytes] = ...) -> None: ...
 
 class CurvatureEstimate(_message.Message):
-    __slots__ = ["not_convex", "pairs", "smoothness_at_least", "strong_convexity_at_most"]
+    __slots__ = ["not_convex", "pairs", "probe_evaluations", "probed_smoothness", "probed_strong_convexity", "smoothness_at_least", "strong_convexity_at_most"]
     NOT_CONVEX_FIELD_NUMBER: _ClassVar[int]
     PAIRS_FIELD_NUMBER: _ClassVar[int]
+    PROBED_SMOOTHNESS_FIELD_NUMBER: _ClassVar[int]
+    PROBED_STRONG_CONVEXITY_FIELD_NUMBER: _ClassVar[int]
+    PROBE_EVALUATIONS_FIELD_NUMBER: _ClassVar[int]
     SMOOTHNESS_AT_LEAST_FIELD_NUMBER: _ClassVar[int]
     STRONG_CONVEXITY_AT_MOST_FIELD_NUMBER: _ClassVar[int]
     not_convex: bool
     pairs: int
+    probe_evaluations: int
+    probed_smoothness: float
+    probed_strong_convexity: float
     smoothness_at_least: float
     strong_convexity_at_most: float
-    def __init__(self, pairs: _Optional[int] = ..., smoothness_at_least: _Optional[float] = ..., strong_convexity_at_most: _Optional[float] = ..., not_convex: bool = ...) -> None: ...
+    def __init__(self, pairs: _Optional[int] = ..., smoothness_at_least: _Optional[float] = ..., strong_convexity_at_most: _Optional[float] = ..., not_convex: bool = ..., probed_smoothness: _Optional[float] = ..., probed_strong_convexity: _Optional[float] = ..., probe_evaluations: _Optional[int] = ...) -> None: ...
 
 class Draws(_message.Message):
     __slots__ = ["chains", "dim", "iterations", "rows", "seq", "values"]
@@ -331,11 +337,12 @@ class Progress(_message.Message):
     def __init__(self, state: _Optional[_Union[State, str]] = ..., steps: _Optional[int] = ..., evaluations_used: _Optional[int] = ..., evaluations_left: _Optional[int] = ..., seconds_used: _Optional[float] = ..., seconds_left: _Optional[float] = ..., draws_sent: _Optional[int] = ..., evaluations_per_second: _Optional[float] = ..., parameters: _Optional[_Iterable[_Union[ParameterDiagnostics, _Mapping]]] = ..., ksd: _Optional[float] = ..., bound: _Optional[_Union[Bound, _Mapping]] = ..., curvature: _Optional[_Union[CurvatureEstimate, _Mapping]] = ..., targets: _Optional[_Iterable[_Union[TargetStatus, _Mapping]]] = ..., noise: _Optional[_Union[NoiseEstimate, _Mapping]] = ..., kernel: _Optional[_Union[KernelReport, _Mapping]] = ...) -> None: ...
 
 class Register(_message.Message):
-    __slots__ = ["anchor_every", "burn_in", "chains", "curvature", "dim", "draws_per_chain", "fixed_point_iterations", "fixed_point_tolerance", "friction", "inverse_mass", "keep_every", "kernel", "krylov_max_iterations", "krylov_tolerance", "max_evaluations", "max_message_bytes", "max_seconds", "names", "noise", "progress_every_steps", "progress_interval_seconds", "schedule", "seed", "start", "start_rows", "step", "wants"]
+    __slots__ = ["anchor_every", "burn_in", "chains", "curvature", "curvature_probe_iterations", "dim", "draws_per_chain", "fixed_point_iterations", "fixed_point_tolerance", "friction", "inverse_mass", "keep_every", "kernel", "krylov_max_iterations", "krylov_tolerance", "max_evaluations", "max_message_bytes", "max_seconds", "names", "noise", "progress_every_steps", "progress_interval_seconds", "schedule", "seed", "start", "start_rows", "step", "wants"]
     ANCHOR_EVERY_FIELD_NUMBER: _ClassVar[int]
     BURN_IN_FIELD_NUMBER: _ClassVar[int]
     CHAINS_FIELD_NUMBER: _ClassVar[int]
     CURVATURE_FIELD_NUMBER: _ClassVar[int]
+    CURVATURE_PROBE_ITERATIONS_FIELD_NUMBER: _ClassVar[int]
     DIM_FIELD_NUMBER: _ClassVar[int]
     DRAWS_PER_CHAIN_FIELD_NUMBER: _ClassVar[int]
     FIXED_POINT_ITERATIONS_FIELD_NUMBER: _ClassVar[int]
@@ -363,6 +370,7 @@ class Register(_message.Message):
     burn_in: int
     chains: int
     curvature: Curvature
+    curvature_probe_iterations: int
     dim: int
     draws_per_chain: int
     fixed_point_iterations: int
@@ -386,7 +394,7 @@ class Register(_message.Message):
     start_rows: int
     step: float
     wants: Wants
-    def __init__(self, dim: _Optional[int] = ..., chains: _Optional[int] = ..., kernel: _Optional[str] = ..., start: _Optional[bytes] = ..., start_rows: _Optional[int] = ..., step: _Optional[float] = ..., burn_in: _Optional[int] = ..., keep_every: _Optional[int] = ..., draws_per_chain: _Optional[int] = ..., max_evaluations: _Optional[int] = ..., max_seconds: _Optional[float] = ..., progress_every_steps: _Optional[int] = ..., progress_interval_seconds: _Optional[float] = ..., seed: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., max_message_bytes: _Optional[int] = ..., curvature: _Optional[_Union[Curvature, _Mapping]] = ..., wants: _Optional[_Union[Wants, _Mapping]] = ..., friction: _Optional[float] = ..., inverse_mass: _Optional[float] = ..., krylov_tolerance: _Optional[float] = ..., krylov_max_iterations: _Optional[int] = ..., schedule: _Optional[_Union[StepSchedule, _Mapping]] = ..., anchor_every: _Optional[int] = ..., fixed_point_tolerance: _Optional[float] = ..., fixed_point_iterations: _Optional[int] = ..., noise: _Optional[_Union[GradientNoise, _Mapping]] = ...) -> None: ...
+    def __init__(self, dim: _Optional[int] = ..., chains: _Optional[int] = ..., kernel: _Optional[str] = ..., start: _Optional[bytes] = ..., start_rows: _Optional[int] = ..., step: _Optional[float] = ..., burn_in: _Optional[int] = ..., keep_every: _Optional[int] = ..., draws_per_chain: _Optional[int] = ..., max_evaluations: _Optional[int] = ..., max_seconds: _Optional[float] = ..., progress_every_steps: _Optional[int] = ..., progress_interval_seconds: _Optional[float] = ..., seed: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., max_message_bytes: _Optional[int] = ..., curvature: _Optional[_Union[Curvature, _Mapping]] = ..., wants: _Optional[_Union[Wants, _Mapping]] = ..., friction: _Optional[float] = ..., inverse_mass: _Optional[float] = ..., krylov_tolerance: _Optional[float] = ..., krylov_max_iterations: _Optional[int] = ..., schedule: _Optional[_Union[StepSchedule, _Mapping]] = ..., anchor_every: _Optional[int] = ..., fixed_point_tolerance: _Optional[float] = ..., fixed_point_iterations: _Optional[int] = ..., curvature_probe_iterations: _Optional[int] = ..., noise: _Optional[_Union[GradientNoise, _Mapping]] = ...) -> None: ...
 
 class Registered(_message.Message):
     __slots__ = ["evaluations_per_step", "kernel", "max_message_bytes", "names", "planned_steps", "seed", "session_id", "step"]
