@@ -137,3 +137,18 @@ func TestRowBytesCountsTheHessian(t *testing.T) {
 func kernelsLMC(dim, chains int, h float64, start []float64, seed uint64) *kernels.LMC {
 	return kernels.NewLMC(dim, chains, h, start, kernels.NewSource(seed))
 }
+
+// A kernel whose one row cannot fit the message limit (ozaki's dense
+// Hessian at dim 1000 is 8 MB against 4 MiB) is refused at registration,
+// naming the dimension; ozaki-krylov, which needs no dense Hessian, fits.
+func TestOzakiDenseTooLargeForMessage(t *testing.T) {
+	spec := Spec{Dim: 1000, Chains: 2, Kernel: "ozaki", Start: make([]float64, 1000), StartRows: 1, Step: 0.1}
+	_, err := New("x", spec, Limits{})
+	if e, ok := AsError(err); !ok || e.Kind != TooLarge || e.Field != "register.dim" || !strings.Contains(e.Reason, "ozaki") {
+		t.Fatalf("got %v, want a too-large error on register.dim naming the kernel", err)
+	}
+	spec.Kernel = "ozaki-krylov"
+	if _, err := New("x", spec, Limits{}); err != nil {
+		t.Fatalf("ozaki-krylov at dim 1000: %v", err)
+	}
+}
