@@ -55,7 +55,7 @@ func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	var c demoConfig
 	fs.IntVar(&c.chains, "chains", 8, "number of chains")
 	fs.StringVar(&c.kernel, "kernel", "lmc", "sampling kernel")
-	fs.Float64Var(&c.step, "step", 0, "step size h (0: a tenth of 1/M, M the target's smoothness)")
+	fs.Float64Var(&c.step, "step", 0, "step size h (0: a tenth of 1/M, M the target's smoothness; 0.25 for kinetic and midpoint)")
 	fs.Int64Var(&c.burnIn, "burn-in", 1000, "steps per chain discarded before keeping draws")
 	fs.Int64Var(&c.keepEvery, "keep-every", 10, "keep every k-th step after burn-in (thinning)")
 	fs.Int64Var(&c.draws, "draws", 1000, "kept draws per chain (0: until a budget runs out)")
@@ -193,7 +193,15 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 	}
 	if c.step == 0 {
 		_, bigM := target.Curvature()
-		c.step = 0.1 / bigM
+		switch c.kernel {
+		case "kinetic", "midpoint":
+			// With inverse mass u = 1/M (the server's default when M is
+			// declared) the underdamped dynamics' frequencies are at most
+			// 1: a step of a quarter of that time unit.
+			c.step = 0.25
+		default:
+			c.step = 0.1 / bigM
+		}
 	}
 	log, err := newLogger(c.logLevel, stderr)
 	if err != nil {
@@ -257,12 +265,7 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 		}
 	}
 	live := newLiveLine(stderr, !c.noProgressBar && !c.json, int64(c.chains)*c.draws)
-	eval := func(_ context.Context, b *client.Batch) error {
-		for row := range b.Rows {
-			target.GradLogDensity(b.Grad[row*b.Dim:(row+1)*b.Dim], b.Point(row))
-		}
-		return nil
-	}
+	eval := kilnExact(target)
 	if c.minibatch > 0 {
 		spec.Noise = &client.Noise{Replicates: 2, DataSize: kilnFirings, MinibatchSize: int64(c.minibatch)}
 		eval = kilnMinibatch(kilnData(), c.minibatch, c.seed)

@@ -136,3 +136,37 @@ func addDatum(g, x []float64, y float64, theta []float64, w float64) {
 		g[i] += d * x[i]
 	}
 }
+
+// kilnExact answers whatever a kernel asks of the exact posterior:
+// gradients, log densities, Hessians and Hessian-vector products.
+func kilnExact(target *targets.Logistic) client.Evaluator {
+	d := target.Dim()
+	h := mat.NewSymDense(d, nil)
+	return func(_ context.Context, b *client.Batch) error {
+		for row := range b.Rows {
+			x := b.Point(row)
+			target.GradLogDensity(b.Grad[row*d:(row+1)*d], x)
+			if b.WantLogDensity {
+				b.LogDensity[row] = target.LogDensity(x)
+			}
+			if b.WantHessian || b.WantHessianVector {
+				target.Hessian(h, x)
+				for i := range d {
+					var s float64
+					for j := range d {
+						if b.WantHessian {
+							b.Hessian[row*d*d+i*d+j] = h.At(i, j)
+						}
+						if b.WantHessianVector {
+							s += h.At(i, j) * b.Vectors[row*d+j]
+						}
+					}
+					if b.WantHessianVector {
+						b.HessVec[row*d+i] = s
+					}
+				}
+			}
+		}
+		return nil
+	}
+}

@@ -197,3 +197,18 @@ func freeAddr(t *testing.T) string {
 	defer l.Close()
 	return l.Addr().String()
 }
+
+// The demo's client answers whatever each kernel asks (gradients, log
+// densities, Hessians, Hessian-vector products, full-data requests), so
+// every kernel runs end to end.
+func TestDemoRunsEveryKernel(t *testing.T) {
+	ctx, cancel := context.WithTimeout(context.Background(), 120*time.Second)
+	defer cancel()
+	for _, k := range []string{"lmc", "kinetic", "midpoint", "midpoint-overdamped", "mala", "ozaki", "ozaki-krylov", "sgld", "sgld-cv", "svrg"} {
+		code, stdout, stderr := runCmd(t, ctx, "demo", "--kernel", k, "--seed", "2", "--chains", "2", "--draws", "30", "--burn-in", "20", "--json")
+		var res demoResult
+		if code != 0 || json.Unmarshal([]byte(stdout), &res) != nil || res.Reason != "draws collected" || res.DrawsPerChain != 30 {
+			t.Errorf("%s: exit %d, reason %q, %d draws per chain: %s", k, code, res.Reason, res.DrawsPerChain, stderr)
+		}
+	}
+}
