@@ -18,8 +18,9 @@ import (
 //	x' = x + t'·d,  t' drawn by one slice-sampling update of g from t = 0
 //
 // The slice update is stepping-out and shrinkage (Neal 2003, "Slice
-// sampling", Annals of Statistics 31(3), 705–767, Figs. 3 and 5), with
-// initial width w and at most m − 1 expansions, m = MaxExpansions + 1:
+// sampling", Annals of Statistics 31(3), Figs. 3 and 5; figure and section
+// numbers from memory), with initial width w and at most m − 1
+// expansions, m = MaxExpansions + 1:
 //
 //	y = g(0) − e,  e ~ Exp(1)                       (the slice's level)
 //	L = −w·U,  R = L + w,  U ~ U[0, 1)

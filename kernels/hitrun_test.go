@@ -2,7 +2,7 @@ package kernels
 
 // Internal tests of the hit-and-run kernel. References: the slice update of
 // Neal (2003), "Slice sampling", Ann. Statist. 31(3), Figs. 3 and 5
-// (replayed by hand); closed-form Gaussian moments; the standard Gumbel
+// (figure numbers from memory; replayed by hand); closed-form Gaussian moments; the standard Gumbel
 // distribution's closed-form CDF; posterior moments of a logistic
 // regression by quadrature (gonum integrate.Simpsons).
 
