@@ -242,10 +242,11 @@ func (k *HitAndRun) Next() *Request { return &k.req }
 
 // Tell implements Kernel. The first call takes the log densities at the
 // start and completes no step; a later call completes a step when every
-// chain has accepted its proposal. A NaN answer counts as outside the
-// slice. It panics if the answer has fewer log densities than the request
-// has rows, or if a start's log density is not finite (the caller rejects
-// non-finite values from clients).
+// chain has accepted its proposal. Callers reject non-finite values from
+// clients (the engine does); should one arrive anyway, NaN and −∞ count as
+// outside the slice, while +∞ anywhere, or a start's value that is not
+// finite, panics, as does an answer with fewer log densities than the
+// request has rows.
 func (k *HitAndRun) Tell(a *Answer) bool {
 	rows := k.req.Rows
 	if len(a.LogDensity) < rows {
@@ -269,6 +270,9 @@ func (k *HitAndRun) Tell(a *Answer) bool {
 	p := k.dim
 	for r, f := range lp {
 		c := k.rowChain[r]
+		if math.IsInf(f, 1) {
+			panic(fmt.Sprintf("kernels: hit-and-run chain %d has log density +Inf", c))
+		}
 		in := k.level[c] < f // false for NaN
 		switch k.rowKind[r] {
 		case hitrunLeft:

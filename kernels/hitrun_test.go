@@ -572,6 +572,11 @@ func TestHitRunPanicsOnProgrammerErrors(t *testing.T) {
 		"infinite start": func() {
 			NewHitAndRun(1, 1, []float64{0}, HitAndRunOptions{}, src()).Tell(&Answer{LogDensity: []float64{math.Inf(1)}})
 		},
+		"infinite value": func() {
+			k := NewHitAndRun(1, 1, []float64{0}, HitAndRunOptions{}, src())
+			k.Tell(&Answer{LogDensity: []float64{0, 0}})
+			k.Tell(&Answer{LogDensity: []float64{math.Inf(1), 0}})
+		},
 		"NaN start value": func() {
 			NewHitAndRun(1, 1, []float64{0}, HitAndRunOptions{}, src()).Tell(&Answer{LogDensity: []float64{math.NaN()}})
 		},
@@ -589,7 +594,8 @@ func TestHitRunPanicsOnProgrammerErrors(t *testing.T) {
 
 // BenchmarkHitRunStep reports one complete step (all its rounds) over all
 // chains on N(0, I_p), the log density computed in the loop; evals/step is
-// the mean number of points per step over all chains.
+// the mean number of points per step over all chains, requests/step the
+// mean number of ask/tell rounds (the round trips a remote client sees).
 func BenchmarkHitRunStep(b *testing.B) {
 	for _, p := range []int{2, 4} {
 		for _, c := range []int{8, 64} {
@@ -610,13 +616,16 @@ func BenchmarkHitRunStep(b *testing.B) {
 					for eval(); !k.Tell(a); eval() {
 					}
 				}
-				e0, s0 := k.stepEvals, k.steps
+				e0, s0, rounds := k.stepEvals, k.steps, 0
 				b.ReportAllocs()
 				for b.Loop() {
 					for eval(); !k.Tell(a); eval() {
+						rounds++
 					}
+					rounds++
 				}
 				b.ReportMetric(float64(k.stepEvals-e0)/float64(k.steps-s0), "evals/step")
+				b.ReportMetric(float64(rounds)/float64(k.steps-s0), "requests/step")
 			})
 		}
 	}
