@@ -58,6 +58,18 @@ type Spec struct {
 	// CurvatureProbe asks for that many power iterations each way (M and
 	// m) at chain 0's start before sampling, counted in the budget.
 	CurvatureProbe int
+	// SliceWidth and SliceMaxExpansions tune hit-and-run (0: defaults).
+	SliceWidth         float64
+	SliceMaxExpansions int
+	// Envelope is rejection's Gaussian envelope N(Mean, Scale²I) with the
+	// declared bound π̃ ≤ exp(LogBound)·q.
+	Envelope *Envelope
+}
+
+// Envelope is rejection's Gaussian envelope and declared bound.
+type Envelope struct {
+	Mean            []float64
+	Scale, LogBound float64
 }
 
 // Schedule is a decreasing step for sgld.
@@ -214,15 +226,18 @@ type NoiseEstimate struct {
 }
 
 // KernelReport: the step in use, whether it is still adapting, per-chain
-// acceptance rates (MALA), and the last step's Lanczos figures
-// (ozaki-krylov).
+// acceptance rates (MALA), the last step's Lanczos figures
+// (ozaki-krylov), the mean cost of a step and the acceptance rate
+// (hit-and-run, rejection).
 type KernelReport struct {
-	Step                float64
-	Adapting            bool
-	AcceptanceRates     []float64
-	KrylovIterations    int
-	KrylovErrorEstimate float64
-	KrylovUnconverged   int
+	Step                   float64
+	Adapting               bool
+	AcceptanceRates        []float64
+	KrylovIterations       int
+	KrylovErrorEstimate    float64
+	KrylovUnconverged      int
+	EvaluationsPerStepMean float64
+	AcceptanceRate         float64
 }
 
 // Diagnostics is the measured accuracy of one parameter.
@@ -364,7 +379,15 @@ func registerFrame(spec Spec, limit int64) *sluicev1.SessionRequest {
 		Noise: noiseToWire(spec.Noise), Schedule: scheduleToWire(spec.Schedule), AnchorEvery: int32(spec.AnchorEvery),
 		FixedPointTolerance: spec.FixedPointTolerance, FixedPointIterations: int32(spec.FixedPointIterations),
 		CurvatureProbeIterations: int32(spec.CurvatureProbe),
+		SliceWidth:               spec.SliceWidth, SliceMaxExpansions: int32(spec.SliceMaxExpansions), Envelope: envelopeToWire(spec.Envelope),
 	}}}
+}
+
+func envelopeToWire(e *Envelope) *sluicev1.Envelope {
+	if e == nil {
+		return nil
+	}
+	return &sluicev1.Envelope{Mean: putFloats(nil, e.Mean), Scale: e.Scale, LogBound: e.LogBound}
 }
 
 func scheduleToWire(s *Schedule) *sluicev1.StepSchedule {
@@ -621,7 +644,8 @@ func progressFromWire(p *sluicev1.Progress) Progress {
 	if k := p.GetKernel(); k != nil {
 		out.Kernel = KernelReport{Step: k.GetStep(), Adapting: k.GetAdapting(), AcceptanceRates: k.GetAcceptanceRates(),
 			KrylovIterations: int(k.GetKrylovIterations()), KrylovErrorEstimate: k.GetKrylovErrorEstimate(),
-			KrylovUnconverged: int(k.GetKrylovUnconverged())}
+			KrylovUnconverged: int(k.GetKrylovUnconverged()), EvaluationsPerStepMean: k.GetEvaluationsPerStepMean(),
+			AcceptanceRate: k.GetAcceptanceRate()}
 	}
 	for _, t := range p.GetTargets() {
 		out.Targets = append(out.Targets, TargetStatus{Name: t.GetName(), Want: t.GetWant(), Current: t.GetCurrent(), Met: t.GetMet(),

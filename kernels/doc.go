@@ -51,6 +51,15 @@
 //	svrg      SVRG Langevin (Dubey et al. 2016; THEORY.md §7.3): full-data
 //	          anchors every τ steps, ĝ = g̃ + ĝ_S(θ) − ĝ_S(θ̃); two rows per
 //	          chain per step plus one full-data row per chain every τ steps.
+//	hit-and-run
+//	          density-only reference sampler: a uniform direction, then a
+//	          slice-sampling update on the line (stepping-out and
+//	          shrinkage, Neal 2003), which leaves the line's conditional
+//	          law invariant exactly; log densities only, a random number of
+//	          points per step, batched across chains.
+//	rejection exact i.i.d. draws by rejection from a Gaussian envelope with
+//	          a declared bound, dim ≤ 4; a bound violated by an observed
+//	          ratio is recorded (Violation) and fails the session.
 //
 // References: Dalalyan, JRSS B 79 (2017) 651–676; Durmus & Moulines,
 // Ann. Appl. Probab. 27 (2017); the project's THEORY.md §0.1.

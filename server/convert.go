@@ -33,13 +33,24 @@ func specFromWire(r *sluicev1.Register) (session.Spec, error) {
 	w := r.GetWants()
 	wants := session.Wants{MinBulkESS: w.GetMinBulkEss(), MinTailESS: w.GetMinTailEss(), MaxRhat: w.GetMaxRhat(),
 		MaxKSD: w.GetMaxKsd(), Eps: w.GetEps(), Metric: metricFromWire[w.GetMetric()]}
+	var env *session.Envelope
+	if e := r.GetEnvelope(); e != nil {
+		mean, err := floats("register.envelope.mean", e.GetMean())
+		if err != nil {
+			return session.Spec{}, err
+		}
+		env = &session.Envelope{Mean: mean, Scale: e.GetScale(), LogBound: e.GetLogBound()}
+	}
 	return session.Spec{
+		Envelope:             env,
 		Curvature:            curv,
 		Friction:             r.GetFriction(),
 		KrylovTolerance:      r.GetKrylovTolerance(),
 		Schedule:             scheduleFromWire(r.GetSchedule()),
 		AnchorEvery:          int(r.GetAnchorEvery()),
 		CurvatureProbe:       int(r.GetCurvatureProbeIterations()),
+		SliceWidth:           r.GetSliceWidth(),
+		SliceMaxExpansions:   int(r.GetSliceMaxExpansions()),
 		FixedPointTolerance:  r.GetFixedPointTolerance(),
 		FixedPointIterations: int(r.GetFixedPointIterations()),
 		KrylovMaxIterations:  int(r.GetKrylovMaxIterations()),
@@ -214,7 +225,8 @@ func progressToWire(p *session.Progress) *sluicev1.Progress {
 	}
 	k := p.Kernel
 	w.Kernel = &sluicev1.KernelReport{Step: k.Step, Adapting: k.Adapting, AcceptanceRates: k.AcceptanceRates,
-		KrylovIterations: int32(k.Krylov.MaxIterations), KrylovErrorEstimate: k.Krylov.MaxEstimate, KrylovUnconverged: int32(k.Krylov.Unconverged)}
+		KrylovIterations: int32(k.Krylov.MaxIterations), KrylovErrorEstimate: k.Krylov.MaxEstimate, KrylovUnconverged: int32(k.Krylov.Unconverged),
+		EvaluationsPerStepMean: k.EvaluationsPerStepMean, AcceptanceRate: k.AcceptanceRate}
 	if n := p.Noise; n != nil {
 		w.Noise = &sluicev1.NoiseEstimate{Variance: n.Variance, VarianceSe: n.SE, Requests: n.Requests, Declared: n.Declared,
 			Epochs: n.Epochs, Warning: n.Warning}

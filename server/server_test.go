@@ -139,7 +139,19 @@ var inProcess = map[string]func(dim, chains int, h float64, start []float64, see
 	"svrg": func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
 		return kernels.NewSVRG(d, c, h, 10, x, kernels.NewSource(seed))
 	},
+	"hit-and-run": func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
+		return kernels.NewHitAndRun(d, c, x, kernels.HitAndRunOptions{}, kernels.NewSource(seed))
+	},
+	"rejection": func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
+		return kernels.NewRejection(d, c, testEnvelope.Mean, testEnvelope.Scale, testEnvelope.LogBound, kernels.NewSource(seed))
+	},
 }
+
+// testEnvelope covers gaussian2D (mean (1, −1), precision [[2, .5], [.5, 1]],
+// normalised): with scale² ≥ 1/λ_min(Q) the ratio π/q peaks at the mean,
+// where log π − log q = ½ log det Q + p log scale (derived; det Q = 1.75),
+// plus a little slack.
+var testEnvelope = client.Envelope{Mean: []float64{1, -1}, Scale: 1.5, LogBound: 0.5*math.Log(1.75) + 2*math.Log(1.5) + 0.01}
 
 // Transport is transparent: with the same seed, the draws of a session
 // over gRPC (bufconn) are bit-identical to driving the same kernel
@@ -155,6 +167,12 @@ func TestTransportIsTransparent(t *testing.T) {
 		for _, limit := range []int64{0, 1024 + 3*(8*(2*2+2+1)+16)} { // default, and 3 rows per message even with Hessians
 			spec := client.Spec{Dim: 2, Chains: chains, Kernel: name, Start: []float64{0, 0}, Step: 0.2, Seed: 2024,
 				BurnIn: 0, DrawsPerChain: steps, MaxMessageBytes: limit}
+			switch name {
+			case "rejection":
+				spec.Envelope, spec.Step = &testEnvelope, 0
+			case "hit-and-run":
+				spec.Step = 0
+			}
 			var got []float64
 			var seqs int
 			var rows int64
@@ -178,7 +196,7 @@ func TestTransportIsTransparent(t *testing.T) {
 			switch name {
 			case "mala": // plus the start points, once (THEORY.md §13)
 				wantRows += chains
-			case "ozaki-krylov", "sgld-cv": // Lanczos requests vary per step; the fixed-point search
+			case "ozaki-krylov", "sgld-cv", "hit-and-run", "rejection": // random or searched costs
 				wantRows = sum.Progress.EvaluationsUsed
 			case "svrg": // plus one full-data anchor per chain every 10 steps
 				wantRows += chains * steps / 10

@@ -312,6 +312,12 @@ func kernelReport(k kernels.Kernel) KernelReport {
 	if o, ok := k.(*kernels.OzakiKrylov); ok {
 		r.Krylov = o.LastStep()
 	}
+	if m, ok := k.(interface{ MeanEvaluationsPerStep() float64 }); ok {
+		r.EvaluationsPerStepMean = m.MeanEvaluationsPerStep()
+	}
+	if rj, ok := k.(*kernels.Rejection); ok {
+		r.AcceptanceRate = rj.AcceptanceRate()
+	}
 	return r
 }
 

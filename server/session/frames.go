@@ -101,6 +101,9 @@ type KernelReport struct {
 	Adapting        bool
 	AcceptanceRates []float64
 	Krylov          kernels.KrylovStats
+	// EvaluationsPerStepMean is the average cost of a step for kernels
+	// whose cost is random; AcceptanceRate is rejection's.
+	EvaluationsPerStepMean, AcceptanceRate float64
 }
 
 // NoiseEstimate reports stochastic-gradient noise.

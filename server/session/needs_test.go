@@ -152,3 +152,40 @@ func TestOzakiDenseTooLargeForMessage(t *testing.T) {
 		t.Fatalf("ozaki-krylov at dim 1000: %v", err)
 	}
 }
+
+// The rejection kernel refuses dim > 4 and a missing envelope at
+// registration, and fails the session naming envelope.log_bound when an
+// observed ratio shows the declared bound is wrong.
+func TestRejectionEnvelopeChecks(t *testing.T) {
+	spec := Spec{Dim: 5, Chains: 2, Kernel: "rejection", Start: make([]float64, 5), StartRows: 1,
+		Envelope: &Envelope{Mean: make([]float64, 5), Scale: 1, LogBound: 0}}
+	if _, err := New("x", spec, Limits{}); err == nil || !strings.Contains(err.Error(), "register.dim") {
+		t.Fatalf("dim 5: %v", err)
+	}
+	spec = Spec{Dim: 1, Chains: 2, Kernel: "rejection", Start: []float64{0}, StartRows: 1}
+	if _, err := New("x", spec, Limits{}); err == nil || !strings.Contains(err.Error(), "register.envelope") {
+		t.Fatalf("no envelope: %v", err)
+	}
+	// N(0, 1) under the envelope N(0, 1.5²): the tight log bound is
+	// log 1.5 (derived: the ratio peaks at 0); declaring 0 is too small.
+	spec.Envelope = &Envelope{Mean: []float64{0}, Scale: 1.5, LogBound: 0}
+	spec.DrawsPerChain = 200
+	stdNormal := func(p *Points, ev *Evaluations) {
+		ev.LogDensity = make([]float64, p.Rows)
+		for i, x := range p.Points {
+			ev.LogDensity[i] = -x*x/2 - 0.5*math.Log(2*math.Pi)
+		}
+	}
+	_, res, err := drive(t, mustNew(t, spec, Limits{}), stdNormal)
+	if e, ok := AsError(err); !ok || e.Field != "register.envelope.log_bound" || res.Finished.Reason != Failed {
+		t.Fatalf("too small a bound: %v (%v)", err, res.Finished.Reason)
+	}
+	spec.Envelope.LogBound = math.Log(1.5)
+	_, res, err = drive(t, mustNew(t, spec, Limits{}), stdNormal)
+	if err != nil || res.Finished.Reason != DrawsCollected {
+		t.Fatalf("tight bound: %v (%v)", err, res.Finished.Reason)
+	}
+	if a := res.Finished.Progress.Kernel.AcceptanceRate; math.Abs(a-1/1.5) > 4*math.Sqrt((1/1.5)*(1-1/1.5)/float64(res.Finished.Progress.EvaluationsUsed)) {
+		t.Fatalf("acceptance %v, exact 1/1.5 (1/M for a normalised target)", a)
+	}
+}

@@ -113,6 +113,12 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 			iters = min(spec.Dim, 64)
 		}
 		s.kernel = kernels.NewOzakiKrylov(spec.Dim, spec.Chains, spec.Step, spec.Start, tol, iters, src)
+	case "hit-and-run":
+		s.kernel = kernels.NewHitAndRun(spec.Dim, spec.Chains, spec.Start,
+			kernels.HitAndRunOptions{Width: spec.SliceWidth, MaxExpansions: spec.SliceMaxExpansions}, src)
+	case "rejection":
+		e := spec.Envelope
+		s.kernel = kernels.NewRejection(spec.Dim, spec.Chains, e.Mean, e.Scale, e.LogBound, src)
 	case "sgld":
 		var sched kernels.SGLDSchedule
 		if spec.Schedule != nil {
@@ -283,7 +289,11 @@ func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) e
 			}
 			continue
 		}
-		if s.kernel.Tell(s.answer) {
+		done := s.kernel.Tell(s.answer)
+		if r, ok := s.kernel.(*kernels.Rejection); ok && r.Violation() != nil {
+			return s.fail(BadField("register.envelope.log_bound", "the declared envelope bound is violated: %v", r.Violation()), send)
+		}
+		if done {
 			pending = true
 			if s.keeps(int64(s.kernel.Steps())) {
 				s.kept++

@@ -69,6 +69,17 @@ type Spec struct {
 	// CurvatureProbe asks for that many power iterations (each way, for
 	// M and m) at chain 0's start before sampling; 0: none.
 	CurvatureProbe int
+	// SliceWidth and SliceMaxExpansions tune hit-and-run (0: defaults).
+	SliceWidth         float64
+	SliceMaxExpansions int
+	// Envelope is rejection's Gaussian envelope and declared bound.
+	Envelope *Envelope
+}
+
+// Envelope is q = N(Mean, Scale²I) with π̃ ≤ exp(LogBound)·q.
+type Envelope struct {
+	Mean            []float64
+	Scale, LogBound float64
 }
 
 // Noise describes stochastic gradients.
@@ -84,7 +95,7 @@ type Noise struct {
 }
 
 // exactOnly lists kernels whose correctness needs exact gradients.
-var exactOnly = map[string]bool{"mala": true, "ozaki": true, "ozaki-krylov": true}
+var exactOnly = map[string]bool{"mala": true, "ozaki": true, "ozaki-krylov": true, "hit-and-run": true, "rejection": true}
 
 // Curvature declares m·I ⪯ ∇²f ⪯ M·I for the potential f = −log π.
 type Curvature struct {
@@ -174,7 +185,11 @@ func (l Limits) withDefaults() Limits {
 }
 
 // Kernels lists the kernel names a Spec may ask for.
-var Kernels = []string{"lmc", "kinetic", "midpoint", "midpoint-overdamped", "mala", "ozaki", "ozaki-krylov", "sgld", "sgld-cv", "svrg"}
+var Kernels = []string{"lmc", "kinetic", "midpoint", "midpoint-overdamped", "mala", "ozaki", "ozaki-krylov", "sgld", "sgld-cv", "svrg",
+	"hit-and-run", "rejection"}
+
+// densityOnly lists kernels that need no step size and no gradients.
+var densityOnly = map[string]bool{"hit-and-run": true, "rejection": true}
 
 func (s *Spec) validate(l Limits) error {
 	bad := func(field, format string, args ...any) error { return BadField("register."+field, format, args...) }
@@ -258,8 +273,11 @@ func (s *Spec) validate(l Limits) error {
 	if s.AnchorEvery < 0 || s.FixedPointIterations < 0 || math.IsNaN(s.FixedPointTolerance) || s.FixedPointTolerance < 0 || s.FixedPointTolerance >= 1 {
 		return bad("anchor_every", "anchor_every and fixed_point_iterations must be >= 0, fixed_point_tolerance in [0, 1)")
 	}
-	if s.Schedule != nil {
-		// the schedule gives the step
+	if err := s.validateDensityOnly(); err != nil {
+		return err
+	}
+	if s.Schedule != nil || densityOnly[s.Kernel] {
+		// the schedule gives the step; density-only kernels have none
 	} else if s.Step == 0 && s.Wants.Eps > 0 && s.Kernel == "lmc" {
 		// planned below, in New
 	} else if !(s.Step > 0) || math.IsInf(s.Step, 0) {
@@ -300,6 +318,38 @@ func (s *Spec) validate(l Limits) error {
 		s.Names = make([]string, s.Dim)
 		for i := range s.Names {
 			s.Names[i] = fmt.Sprintf("theta[%d]", i)
+		}
+	}
+	return nil
+}
+
+func (s *Spec) validateDensityOnly() error {
+	finite := func(v float64) bool { return !math.IsNaN(v) && !math.IsInf(v, 0) }
+	if !finite(s.SliceWidth) || s.SliceWidth < 0 || s.SliceMaxExpansions < 0 {
+		return BadField("register.slice_width", "slice_width must be finite and >= 0, slice_max_expansions >= 0")
+	}
+	if s.Kernel != "rejection" {
+		if s.Envelope != nil {
+			return BadField("register.envelope", "only the rejection kernel takes an envelope, not %q", s.Kernel)
+		}
+		return nil
+	}
+	e := s.Envelope
+	switch {
+	case s.Dim > kernels.RejectionMaxDim:
+		return BadField("register.dim", "the rejection kernel is for dim <= %d, got %d: its acceptance falls geometrically with dimension", kernels.RejectionMaxDim, s.Dim)
+	case e == nil:
+		return BadField("register.envelope", "the rejection kernel needs an envelope (mean, scale, log_bound)")
+	case len(e.Mean) != s.Dim:
+		return BadField("register.envelope.mean", "has %d values, want dim = %d", len(e.Mean), s.Dim)
+	case !finite(e.Scale) || !(e.Scale > 0):
+		return BadField("register.envelope.scale", "must be finite and > 0, got %v", e.Scale)
+	case !finite(e.LogBound):
+		return BadField("register.envelope.log_bound", "must be finite, got %v", e.LogBound)
+	}
+	for i, v := range e.Mean {
+		if !finite(v) {
+			return badValue("register.envelope.mean", -1, i, "value %v is not finite", v)
 		}
 	}
 	return nil

@@ -1060,6 +1060,14 @@ type Register struct {
 	//	"svrg"                SVRG Langevin: full-data anchors every
 	//	                      anchor_every steps; 2 rows per chain per step
 	//	                      on one minibatch
+	//	"hit-and-run"         density-only reference sampler: a random
+	//	                      direction, then a slice-sampling update on the
+	//	                      line; asks log densities only, up to 2 rows
+	//	                      per chain per request, a random number of
+	//	                      requests per step (plus the start once)
+	//	"rejection"           exact i.i.d. draws by rejection from a
+	//	                      Gaussian envelope (dim <= 4); asks log
+	//	                      densities at one proposal per waiting chain
 	Kernel string `protobuf:"bytes,3,opt,name=kernel,proto3" json:"kernel,omitempty"`
 	// Start points, row-major float64 (see the array convention): either
 	// chains x dim (one row per chain) or 1 x dim (every chain starts there).
@@ -1141,6 +1149,14 @@ type Register struct {
 	// estimates are reported in Progress.curvature and feed the estimated
 	// bound. 0: no probe. Needs exact gradients.
 	CurvatureProbeIterations int32 `protobuf:"varint,28,opt,name=curvature_probe_iterations,json=curvatureProbeIterations,proto3" json:"curvature_probe_iterations,omitempty"`
+	// "hit-and-run": initial width of the slice interval on each line, in
+	// units of theta (0 means 1), and the most stepping-out expansions per
+	// step (0 means 64).
+	SliceWidth         float64 `protobuf:"fixed64,29,opt,name=slice_width,json=sliceWidth,proto3" json:"slice_width,omitempty"`
+	SliceMaxExpansions int32   `protobuf:"varint,30,opt,name=slice_max_expansions,json=sliceMaxExpansions,proto3" json:"slice_max_expansions,omitempty"`
+	// "rejection": the Gaussian envelope and its declared bound (required
+	// for that kernel, dim <= 4).
+	Envelope *Envelope `protobuf:"bytes,31,opt,name=envelope,proto3" json:"envelope,omitempty"`
 	// How the client's gradients are made: exact (the default) or
 	// stochastic (minibatches, Monte Carlo estimates, noisy simulators).
 	Noise         *GradientNoise `protobuf:"bytes,21,opt,name=noise,proto3" json:"noise,omitempty"`
@@ -1367,11 +1383,100 @@ func (x *Register) GetCurvatureProbeIterations() int32 {
 	return 0
 }
 
+func (x *Register) GetSliceWidth() float64 {
+	if x != nil {
+		return x.SliceWidth
+	}
+	return 0
+}
+
+func (x *Register) GetSliceMaxExpansions() int32 {
+	if x != nil {
+		return x.SliceMaxExpansions
+	}
+	return 0
+}
+
+func (x *Register) GetEnvelope() *Envelope {
+	if x != nil {
+		return x.Envelope
+	}
+	return nil
+}
+
 func (x *Register) GetNoise() *GradientNoise {
 	if x != nil {
 		return x.Noise
 	}
 	return nil
+}
+
+// Envelope is q = N(mean, scale^2 I) with the declared bound
+// pi_tilde(x) <= exp(log_bound) * q(x) for the client's unnormalised
+// density pi_tilde = exp(log density it returns). A proposal y is accepted
+// with probability pi_tilde(y) / (exp(log_bound) q(y)); an observed ratio
+// above 1 means the bound is wrong, and the session fails naming
+// envelope.log_bound.
+type Envelope struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// dim float64 values (see the array convention).
+	Mean []byte `protobuf:"bytes,1,opt,name=mean,proto3" json:"mean,omitempty"`
+	// scale > 0, units of theta.
+	Scale         float64 `protobuf:"fixed64,2,opt,name=scale,proto3" json:"scale,omitempty"`
+	LogBound      float64 `protobuf:"fixed64,3,opt,name=log_bound,json=logBound,proto3" json:"log_bound,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *Envelope) Reset() {
+	*x = Envelope{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *Envelope) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*Envelope) ProtoMessage() {}
+
+func (x *Envelope) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use Envelope.ProtoReflect.Descriptor instead.
+func (*Envelope) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{7}
+}
+
+func (x *Envelope) GetMean() []byte {
+	if x != nil {
+		return x.Mean
+	}
+	return nil
+}
+
+func (x *Envelope) GetScale() float64 {
+	if x != nil {
+		return x.Scale
+	}
+	return 0
+}
+
+func (x *Envelope) GetLogBound() float64 {
+	if x != nil {
+		return x.LogBound
+	}
+	return 0
 }
 
 // StepSchedule is epsilon_t = a (b + t)^(-gamma); the step is epsilon_t/2.
@@ -1386,7 +1491,7 @@ type StepSchedule struct {
 
 func (x *StepSchedule) Reset() {
 	*x = StepSchedule{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1398,7 +1503,7 @@ func (x *StepSchedule) String() string {
 func (*StepSchedule) ProtoMessage() {}
 
 func (x *StepSchedule) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1411,7 +1516,7 @@ func (x *StepSchedule) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use StepSchedule.ProtoReflect.Descriptor instead.
 func (*StepSchedule) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{7}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{8}
 }
 
 func (x *StepSchedule) GetA() float64 {
@@ -1462,7 +1567,7 @@ type GradientNoise struct {
 
 func (x *GradientNoise) Reset() {
 	*x = GradientNoise{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1474,7 +1579,7 @@ func (x *GradientNoise) String() string {
 func (*GradientNoise) ProtoMessage() {}
 
 func (x *GradientNoise) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1487,7 +1592,7 @@ func (x *GradientNoise) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use GradientNoise.ProtoReflect.Descriptor instead.
 func (*GradientNoise) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{8}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{9}
 }
 
 func (x *GradientNoise) GetKind() GradientKind {
@@ -1562,7 +1667,7 @@ type Curvature struct {
 
 func (x *Curvature) Reset() {
 	*x = Curvature{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1574,7 +1679,7 @@ func (x *Curvature) String() string {
 func (*Curvature) ProtoMessage() {}
 
 func (x *Curvature) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1587,7 +1692,7 @@ func (x *Curvature) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Curvature.ProtoReflect.Descriptor instead.
 func (*Curvature) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{9}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{10}
 }
 
 func (x *Curvature) GetStrongConvexity() float64 {
@@ -1646,7 +1751,7 @@ type Wants struct {
 
 func (x *Wants) Reset() {
 	*x = Wants{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1658,7 +1763,7 @@ func (x *Wants) String() string {
 func (*Wants) ProtoMessage() {}
 
 func (x *Wants) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1671,7 +1776,7 @@ func (x *Wants) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Wants.ProtoReflect.Descriptor instead.
 func (*Wants) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{10}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{11}
 }
 
 func (x *Wants) GetMinBulkEss() float64 {
@@ -1743,7 +1848,7 @@ type Registered struct {
 
 func (x *Registered) Reset() {
 	*x = Registered{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1755,7 +1860,7 @@ func (x *Registered) String() string {
 func (*Registered) ProtoMessage() {}
 
 func (x *Registered) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1768,7 +1873,7 @@ func (x *Registered) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Registered.ProtoReflect.Descriptor instead.
 func (*Registered) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{11}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{12}
 }
 
 func (x *Registered) GetSessionId() string {
@@ -1866,7 +1971,7 @@ type Points struct {
 
 func (x *Points) Reset() {
 	*x = Points{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1878,7 +1983,7 @@ func (x *Points) String() string {
 func (*Points) ProtoMessage() {}
 
 func (x *Points) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1891,7 +1996,7 @@ func (x *Points) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Points.ProtoReflect.Descriptor instead.
 func (*Points) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{12}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{13}
 }
 
 func (x *Points) GetRequestId() uint64 {
@@ -2009,7 +2114,7 @@ type Evaluations struct {
 
 func (x *Evaluations) Reset() {
 	*x = Evaluations{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2021,7 +2126,7 @@ func (x *Evaluations) String() string {
 func (*Evaluations) ProtoMessage() {}
 
 func (x *Evaluations) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2034,7 +2139,7 @@ func (x *Evaluations) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Evaluations.ProtoReflect.Descriptor instead.
 func (*Evaluations) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{13}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{14}
 }
 
 func (x *Evaluations) GetRequestId() uint64 {
@@ -2104,7 +2209,7 @@ type Stop struct {
 
 func (x *Stop) Reset() {
 	*x = Stop{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2116,7 +2221,7 @@ func (x *Stop) String() string {
 func (*Stop) ProtoMessage() {}
 
 func (x *Stop) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2129,7 +2234,7 @@ func (x *Stop) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Stop.ProtoReflect.Descriptor instead.
 func (*Stop) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{14}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{15}
 }
 
 func (x *Stop) GetReason() string {
@@ -2164,7 +2269,7 @@ type Draws struct {
 
 func (x *Draws) Reset() {
 	*x = Draws{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2176,7 +2281,7 @@ func (x *Draws) String() string {
 func (*Draws) ProtoMessage() {}
 
 func (x *Draws) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2189,7 +2294,7 @@ func (x *Draws) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Draws.ProtoReflect.Descriptor instead.
 func (*Draws) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{15}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{16}
 }
 
 func (x *Draws) GetSeq() uint64 {
@@ -2276,7 +2381,7 @@ type Progress struct {
 
 func (x *Progress) Reset() {
 	*x = Progress{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2288,7 +2393,7 @@ func (x *Progress) String() string {
 func (*Progress) ProtoMessage() {}
 
 func (x *Progress) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2301,7 +2406,7 @@ func (x *Progress) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Progress.ProtoReflect.Descriptor instead.
 func (*Progress) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{16}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{17}
 }
 
 func (x *Progress) GetState() State {
@@ -2425,13 +2530,18 @@ type KernelReport struct {
 	KrylovIterations    int32   `protobuf:"varint,4,opt,name=krylov_iterations,json=krylovIterations,proto3" json:"krylov_iterations,omitempty"`
 	KrylovErrorEstimate float64 `protobuf:"fixed64,5,opt,name=krylov_error_estimate,json=krylovErrorEstimate,proto3" json:"krylov_error_estimate,omitempty"`
 	KrylovUnconverged   int32   `protobuf:"varint,6,opt,name=krylov_unconverged,json=krylovUnconverged,proto3" json:"krylov_unconverged,omitempty"`
-	unknownFields       protoimpl.UnknownFields
-	sizeCache           protoimpl.SizeCache
+	// Points evaluated per completed step, on average so far (kernels whose
+	// cost per step is random: hit-and-run, rejection).
+	EvaluationsPerStepMean float64 `protobuf:"fixed64,7,opt,name=evaluations_per_step_mean,json=evaluationsPerStepMean,proto3" json:"evaluations_per_step_mean,omitempty"`
+	// Accepted over proposed, all chains together (rejection).
+	AcceptanceRate float64 `protobuf:"fixed64,8,opt,name=acceptance_rate,json=acceptanceRate,proto3" json:"acceptance_rate,omitempty"`
+	unknownFields  protoimpl.UnknownFields
+	sizeCache      protoimpl.SizeCache
 }
 
 func (x *KernelReport) Reset() {
 	*x = KernelReport{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2443,7 +2553,7 @@ func (x *KernelReport) String() string {
 func (*KernelReport) ProtoMessage() {}
 
 func (x *KernelReport) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2456,7 +2566,7 @@ func (x *KernelReport) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use KernelReport.ProtoReflect.Descriptor instead.
 func (*KernelReport) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{17}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{18}
 }
 
 func (x *KernelReport) GetStep() float64 {
@@ -2501,6 +2611,20 @@ func (x *KernelReport) GetKrylovUnconverged() int32 {
 	return 0
 }
 
+func (x *KernelReport) GetEvaluationsPerStepMean() float64 {
+	if x != nil {
+		return x.EvaluationsPerStepMean
+	}
+	return 0
+}
+
+func (x *KernelReport) GetAcceptanceRate() float64 {
+	if x != nil {
+		return x.AcceptanceRate
+	}
+	return 0
+}
+
 // NoiseEstimate reports stochastic-gradient noise.
 type NoiseEstimate struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -2525,7 +2649,7 @@ type NoiseEstimate struct {
 
 func (x *NoiseEstimate) Reset() {
 	*x = NoiseEstimate{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2537,7 +2661,7 @@ func (x *NoiseEstimate) String() string {
 func (*NoiseEstimate) ProtoMessage() {}
 
 func (x *NoiseEstimate) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2550,7 +2674,7 @@ func (x *NoiseEstimate) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use NoiseEstimate.ProtoReflect.Descriptor instead.
 func (*NoiseEstimate) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{18}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{19}
 }
 
 func (x *NoiseEstimate) GetVariance() float64 {
@@ -2613,7 +2737,7 @@ type ParameterDiagnostics struct {
 
 func (x *ParameterDiagnostics) Reset() {
 	*x = ParameterDiagnostics{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2625,7 +2749,7 @@ func (x *ParameterDiagnostics) String() string {
 func (*ParameterDiagnostics) ProtoMessage() {}
 
 func (x *ParameterDiagnostics) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2638,7 +2762,7 @@ func (x *ParameterDiagnostics) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ParameterDiagnostics.ProtoReflect.Descriptor instead.
 func (*ParameterDiagnostics) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{19}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{20}
 }
 
 func (x *ParameterDiagnostics) GetName() string {
@@ -2714,7 +2838,7 @@ type Bound struct {
 
 func (x *Bound) Reset() {
 	*x = Bound{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2726,7 +2850,7 @@ func (x *Bound) String() string {
 func (*Bound) ProtoMessage() {}
 
 func (x *Bound) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2739,7 +2863,7 @@ func (x *Bound) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Bound.ProtoReflect.Descriptor instead.
 func (*Bound) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{20}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{21}
 }
 
 func (x *Bound) GetMetric() Metric {
@@ -2822,7 +2946,7 @@ type CurvatureEstimate struct {
 
 func (x *CurvatureEstimate) Reset() {
 	*x = CurvatureEstimate{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2834,7 +2958,7 @@ func (x *CurvatureEstimate) String() string {
 func (*CurvatureEstimate) ProtoMessage() {}
 
 func (x *CurvatureEstimate) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2847,7 +2971,7 @@ func (x *CurvatureEstimate) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use CurvatureEstimate.ProtoReflect.Descriptor instead.
 func (*CurvatureEstimate) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{21}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{22}
 }
 
 func (x *CurvatureEstimate) GetPairs() int64 {
@@ -2916,7 +3040,7 @@ type TargetStatus struct {
 
 func (x *TargetStatus) Reset() {
 	*x = TargetStatus{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2928,7 +3052,7 @@ func (x *TargetStatus) String() string {
 func (*TargetStatus) ProtoMessage() {}
 
 func (x *TargetStatus) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2941,7 +3065,7 @@ func (x *TargetStatus) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use TargetStatus.ProtoReflect.Descriptor instead.
 func (*TargetStatus) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{22}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{23}
 }
 
 func (x *TargetStatus) GetName() string {
@@ -2995,7 +3119,7 @@ type Finished struct {
 
 func (x *Finished) Reset() {
 	*x = Finished{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[24]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3007,7 +3131,7 @@ func (x *Finished) String() string {
 func (*Finished) ProtoMessage() {}
 
 func (x *Finished) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[24]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3020,7 +3144,7 @@ func (x *Finished) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Finished.ProtoReflect.Descriptor instead.
 func (*Finished) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{23}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{24}
 }
 
 func (x *Finished) GetReason() FinishReason {
@@ -3068,7 +3192,7 @@ type ParameterSummary struct {
 
 func (x *ParameterSummary) Reset() {
 	*x = ParameterSummary{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[24]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[25]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3080,7 +3204,7 @@ func (x *ParameterSummary) String() string {
 func (*ParameterSummary) ProtoMessage() {}
 
 func (x *ParameterSummary) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[24]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[25]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3093,7 +3217,7 @@ func (x *ParameterSummary) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ParameterSummary.ProtoReflect.Descriptor instead.
 func (*ParameterSummary) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{24}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{25}
 }
 
 func (x *ParameterSummary) GetName() string {
@@ -3176,7 +3300,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x05draws\x18\x03 \x01(\v2\x10.sluice.v1.DrawsH\x00R\x05draws\x121\n" +
 	"\bprogress\x18\x04 \x01(\v2\x13.sluice.v1.ProgressH\x00R\bprogress\x121\n" +
 	"\bfinished\x18\x05 \x01(\v2\x13.sluice.v1.FinishedH\x00R\bfinishedB\a\n" +
-	"\x05frame\"\xad\b\n" +
+	"\x05frame\"\xb1\t\n" +
 	"\bRegister\x12\x10\n" +
 	"\x03dim\x18\x01 \x01(\x05R\x03dim\x12\x16\n" +
 	"\x06chains\x18\x02 \x01(\x05R\x06chains\x12\x16\n" +
@@ -3208,8 +3332,16 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\fanchor_every\x18\x19 \x01(\x05R\vanchorEvery\x122\n" +
 	"\x15fixed_point_tolerance\x18\x1a \x01(\x01R\x13fixedPointTolerance\x124\n" +
 	"\x16fixed_point_iterations\x18\x1b \x01(\x05R\x14fixedPointIterations\x12<\n" +
-	"\x1acurvature_probe_iterations\x18\x1c \x01(\x05R\x18curvatureProbeIterations\x12.\n" +
-	"\x05noise\x18\x15 \x01(\v2\x18.sluice.v1.GradientNoiseR\x05noise\"@\n" +
+	"\x1acurvature_probe_iterations\x18\x1c \x01(\x05R\x18curvatureProbeIterations\x12\x1f\n" +
+	"\vslice_width\x18\x1d \x01(\x01R\n" +
+	"sliceWidth\x120\n" +
+	"\x14slice_max_expansions\x18\x1e \x01(\x05R\x12sliceMaxExpansions\x12/\n" +
+	"\benvelope\x18\x1f \x01(\v2\x13.sluice.v1.EnvelopeR\benvelope\x12.\n" +
+	"\x05noise\x18\x15 \x01(\v2\x18.sluice.v1.GradientNoiseR\x05noise\"Q\n" +
+	"\bEnvelope\x12\x12\n" +
+	"\x04mean\x18\x01 \x01(\fR\x04mean\x12\x14\n" +
+	"\x05scale\x18\x02 \x01(\x01R\x05scale\x12\x1b\n" +
+	"\tlog_bound\x18\x03 \x01(\x01R\blogBound\"@\n" +
 	"\fStepSchedule\x12\f\n" +
 	"\x01a\x18\x01 \x01(\x01R\x01a\x12\f\n" +
 	"\x01b\x18\x02 \x01(\x01R\x01b\x12\x14\n" +
@@ -3311,14 +3443,16 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\tcurvature\x18\f \x01(\v2\x1c.sluice.v1.CurvatureEstimateR\tcurvature\x121\n" +
 	"\atargets\x18\r \x03(\v2\x17.sluice.v1.TargetStatusR\atargets\x12.\n" +
 	"\x05noise\x18\x0e \x01(\v2\x18.sluice.v1.NoiseEstimateR\x05noise\x12/\n" +
-	"\x06kernel\x18\x0f \x01(\v2\x17.sluice.v1.KernelReportR\x06kernel\"\xf9\x01\n" +
+	"\x06kernel\x18\x0f \x01(\v2\x17.sluice.v1.KernelReportR\x06kernel\"\xdd\x02\n" +
 	"\fKernelReport\x12\x12\n" +
 	"\x04step\x18\x01 \x01(\x01R\x04step\x12\x1a\n" +
 	"\badapting\x18\x02 \x01(\bR\badapting\x12)\n" +
 	"\x10acceptance_rates\x18\x03 \x03(\x01R\x0facceptanceRates\x12+\n" +
 	"\x11krylov_iterations\x18\x04 \x01(\x05R\x10krylovIterations\x122\n" +
 	"\x15krylov_error_estimate\x18\x05 \x01(\x01R\x13krylovErrorEstimate\x12-\n" +
-	"\x12krylov_unconverged\x18\x06 \x01(\x05R\x11krylovUnconverged\"\xb6\x01\n" +
+	"\x12krylov_unconverged\x18\x06 \x01(\x05R\x11krylovUnconverged\x129\n" +
+	"\x19evaluations_per_step_mean\x18\a \x01(\x01R\x16evaluationsPerStepMean\x12'\n" +
+	"\x0facceptance_rate\x18\b \x01(\x01R\x0eacceptanceRate\"\xb6\x01\n" +
 	"\rNoiseEstimate\x12\x1a\n" +
 	"\bvariance\x18\x01 \x01(\x01R\bvariance\x12\x1f\n" +
 	"\vvariance_se\x18\x02 \x01(\x01R\n" +
@@ -3423,7 +3557,7 @@ func file_sluice_v1_sluice_proto_rawDescGZIP() []byte {
 }
 
 var file_sluice_v1_sluice_proto_enumTypes = make([]protoimpl.EnumInfo, 6)
-var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 25)
+var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 26)
 var file_sluice_v1_sluice_proto_goTypes = []any{
 	(GradientKind)(0),            // 0: sluice.v1.GradientKind
 	(Metric)(0),                  // 1: sluice.v1.Metric
@@ -3438,69 +3572,71 @@ var file_sluice_v1_sluice_proto_goTypes = []any{
 	(*SessionRequest)(nil),       // 10: sluice.v1.SessionRequest
 	(*SessionResponse)(nil),      // 11: sluice.v1.SessionResponse
 	(*Register)(nil),             // 12: sluice.v1.Register
-	(*StepSchedule)(nil),         // 13: sluice.v1.StepSchedule
-	(*GradientNoise)(nil),        // 14: sluice.v1.GradientNoise
-	(*Curvature)(nil),            // 15: sluice.v1.Curvature
-	(*Wants)(nil),                // 16: sluice.v1.Wants
-	(*Registered)(nil),           // 17: sluice.v1.Registered
-	(*Points)(nil),               // 18: sluice.v1.Points
-	(*Evaluations)(nil),          // 19: sluice.v1.Evaluations
-	(*Stop)(nil),                 // 20: sluice.v1.Stop
-	(*Draws)(nil),                // 21: sluice.v1.Draws
-	(*Progress)(nil),             // 22: sluice.v1.Progress
-	(*KernelReport)(nil),         // 23: sluice.v1.KernelReport
-	(*NoiseEstimate)(nil),        // 24: sluice.v1.NoiseEstimate
-	(*ParameterDiagnostics)(nil), // 25: sluice.v1.ParameterDiagnostics
-	(*Bound)(nil),                // 26: sluice.v1.Bound
-	(*CurvatureEstimate)(nil),    // 27: sluice.v1.CurvatureEstimate
-	(*TargetStatus)(nil),         // 28: sluice.v1.TargetStatus
-	(*Finished)(nil),             // 29: sluice.v1.Finished
-	(*ParameterSummary)(nil),     // 30: sluice.v1.ParameterSummary
+	(*Envelope)(nil),             // 13: sluice.v1.Envelope
+	(*StepSchedule)(nil),         // 14: sluice.v1.StepSchedule
+	(*GradientNoise)(nil),        // 15: sluice.v1.GradientNoise
+	(*Curvature)(nil),            // 16: sluice.v1.Curvature
+	(*Wants)(nil),                // 17: sluice.v1.Wants
+	(*Registered)(nil),           // 18: sluice.v1.Registered
+	(*Points)(nil),               // 19: sluice.v1.Points
+	(*Evaluations)(nil),          // 20: sluice.v1.Evaluations
+	(*Stop)(nil),                 // 21: sluice.v1.Stop
+	(*Draws)(nil),                // 22: sluice.v1.Draws
+	(*Progress)(nil),             // 23: sluice.v1.Progress
+	(*KernelReport)(nil),         // 24: sluice.v1.KernelReport
+	(*NoiseEstimate)(nil),        // 25: sluice.v1.NoiseEstimate
+	(*ParameterDiagnostics)(nil), // 26: sluice.v1.ParameterDiagnostics
+	(*Bound)(nil),                // 27: sluice.v1.Bound
+	(*CurvatureEstimate)(nil),    // 28: sluice.v1.CurvatureEstimate
+	(*TargetStatus)(nil),         // 29: sluice.v1.TargetStatus
+	(*Finished)(nil),             // 30: sluice.v1.Finished
+	(*ParameterSummary)(nil),     // 31: sluice.v1.ParameterSummary
 }
 var file_sluice_v1_sluice_proto_depIdxs = []int32{
-	15, // 0: sluice.v1.PlanRequest.curvature:type_name -> sluice.v1.Curvature
+	16, // 0: sluice.v1.PlanRequest.curvature:type_name -> sluice.v1.Curvature
 	1,  // 1: sluice.v1.PlanRequest.metric:type_name -> sluice.v1.Metric
-	26, // 2: sluice.v1.PlanResponse.bound:type_name -> sluice.v1.Bound
-	21, // 3: sluice.v1.FollowResponse.draws:type_name -> sluice.v1.Draws
-	29, // 4: sluice.v1.FollowResponse.finished:type_name -> sluice.v1.Finished
+	27, // 2: sluice.v1.PlanResponse.bound:type_name -> sluice.v1.Bound
+	22, // 3: sluice.v1.FollowResponse.draws:type_name -> sluice.v1.Draws
+	30, // 4: sluice.v1.FollowResponse.finished:type_name -> sluice.v1.Finished
 	12, // 5: sluice.v1.SessionRequest.register:type_name -> sluice.v1.Register
-	19, // 6: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
-	20, // 7: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
-	17, // 8: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
-	18, // 9: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
-	21, // 10: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
-	22, // 11: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
-	29, // 12: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
-	15, // 13: sluice.v1.Register.curvature:type_name -> sluice.v1.Curvature
-	16, // 14: sluice.v1.Register.wants:type_name -> sluice.v1.Wants
-	13, // 15: sluice.v1.Register.schedule:type_name -> sluice.v1.StepSchedule
-	14, // 16: sluice.v1.Register.noise:type_name -> sluice.v1.GradientNoise
-	0,  // 17: sluice.v1.GradientNoise.kind:type_name -> sluice.v1.GradientKind
-	1,  // 18: sluice.v1.Wants.metric:type_name -> sluice.v1.Metric
-	2,  // 19: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
-	3,  // 20: sluice.v1.Progress.state:type_name -> sluice.v1.State
-	25, // 21: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
-	26, // 22: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
-	27, // 23: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
-	28, // 24: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
-	24, // 25: sluice.v1.Progress.noise:type_name -> sluice.v1.NoiseEstimate
-	23, // 26: sluice.v1.Progress.kernel:type_name -> sluice.v1.KernelReport
-	1,  // 27: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
-	4,  // 28: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
-	5,  // 29: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
-	22, // 30: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
-	30, // 31: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
-	10, // 32: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
-	8,  // 33: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
-	6,  // 34: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
-	11, // 35: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
-	9,  // 36: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
-	7,  // 37: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
-	35, // [35:38] is the sub-list for method output_type
-	32, // [32:35] is the sub-list for method input_type
-	32, // [32:32] is the sub-list for extension type_name
-	32, // [32:32] is the sub-list for extension extendee
-	0,  // [0:32] is the sub-list for field type_name
+	20, // 6: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
+	21, // 7: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
+	18, // 8: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
+	19, // 9: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
+	22, // 10: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
+	23, // 11: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
+	30, // 12: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
+	16, // 13: sluice.v1.Register.curvature:type_name -> sluice.v1.Curvature
+	17, // 14: sluice.v1.Register.wants:type_name -> sluice.v1.Wants
+	14, // 15: sluice.v1.Register.schedule:type_name -> sluice.v1.StepSchedule
+	13, // 16: sluice.v1.Register.envelope:type_name -> sluice.v1.Envelope
+	15, // 17: sluice.v1.Register.noise:type_name -> sluice.v1.GradientNoise
+	0,  // 18: sluice.v1.GradientNoise.kind:type_name -> sluice.v1.GradientKind
+	1,  // 19: sluice.v1.Wants.metric:type_name -> sluice.v1.Metric
+	2,  // 20: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
+	3,  // 21: sluice.v1.Progress.state:type_name -> sluice.v1.State
+	26, // 22: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
+	27, // 23: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
+	28, // 24: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
+	29, // 25: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
+	25, // 26: sluice.v1.Progress.noise:type_name -> sluice.v1.NoiseEstimate
+	24, // 27: sluice.v1.Progress.kernel:type_name -> sluice.v1.KernelReport
+	1,  // 28: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
+	4,  // 29: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
+	5,  // 30: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
+	23, // 31: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
+	31, // 32: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
+	10, // 33: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
+	8,  // 34: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
+	6,  // 35: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
+	11, // 36: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
+	9,  // 37: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
+	7,  // 38: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
+	36, // [36:39] is the sub-list for method output_type
+	33, // [33:36] is the sub-list for method input_type
+	33, // [33:33] is the sub-list for extension type_name
+	33, // [33:33] is the sub-list for extension extendee
+	0,  // [0:33] is the sub-list for field type_name
 }
 
 func init() { file_sluice_v1_sluice_proto_init() }
@@ -3530,7 +3666,7 @@ func file_sluice_v1_sluice_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_sluice_v1_sluice_proto_rawDesc), len(file_sluice_v1_sluice_proto_rawDesc)),
 			NumEnums:      6,
-			NumMessages:   25,
+			NumMessages:   26,
 			NumExtensions: 0,
 			NumServices:   1,
 		},

@@ -100,6 +100,16 @@ class Draws(_message.Message):
     values: bytes
     def __init__(self, seq: _Optional[int] = ..., rows: _Optional[int] = ..., dim: _Optional[int] = ..., values: _Optional[bytes] = ..., chains: _Optional[_Iterable[int]] = ..., iterations: _Optional[_Iterable[int]] = ...) -> None: ...
 
+class Envelope(_message.Message):
+    __slots__ = ["log_bound", "mean", "scale"]
+    LOG_BOUND_FIELD_NUMBER: _ClassVar[int]
+    MEAN_FIELD_NUMBER: _ClassVar[int]
+    SCALE_FIELD_NUMBER: _ClassVar[int]
+    log_bound: float
+    mean: bytes
+    scale: float
+    def __init__(self, mean: _Optional[bytes] = ..., scale: _Optional[float] = ..., log_bound: _Optional[float] = ...) -> None: ...
+
 class Evaluations(_message.Message):
     __slots__ = ["dim", "first_row", "gradients", "hessian_vectors", "hessians", "log_densities", "request_id", "rows"]
     DIM_FIELD_NUMBER: _ClassVar[int]
@@ -165,20 +175,24 @@ class GradientNoise(_message.Message):
     def __init__(self, kind: _Optional[_Union[GradientKind, str]] = ..., variance: _Optional[float] = ..., bias: _Optional[float] = ..., data_size: _Optional[int] = ..., minibatch_size: _Optional[int] = ..., replicates: _Optional[int] = ...) -> None: ...
 
 class KernelReport(_message.Message):
-    __slots__ = ["acceptance_rates", "adapting", "krylov_error_estimate", "krylov_iterations", "krylov_unconverged", "step"]
+    __slots__ = ["acceptance_rate", "acceptance_rates", "adapting", "evaluations_per_step_mean", "krylov_error_estimate", "krylov_iterations", "krylov_unconverged", "step"]
     ACCEPTANCE_RATES_FIELD_NUMBER: _ClassVar[int]
+    ACCEPTANCE_RATE_FIELD_NUMBER: _ClassVar[int]
     ADAPTING_FIELD_NUMBER: _ClassVar[int]
+    EVALUATIONS_PER_STEP_MEAN_FIELD_NUMBER: _ClassVar[int]
     KRYLOV_ERROR_ESTIMATE_FIELD_NUMBER: _ClassVar[int]
     KRYLOV_ITERATIONS_FIELD_NUMBER: _ClassVar[int]
     KRYLOV_UNCONVERGED_FIELD_NUMBER: _ClassVar[int]
     STEP_FIELD_NUMBER: _ClassVar[int]
+    acceptance_rate: float
     acceptance_rates: _containers.RepeatedScalarFieldContainer[float]
     adapting: bool
+    evaluations_per_step_mean: float
     krylov_error_estimate: float
     krylov_iterations: int
     krylov_unconverged: int
     step: float
-    def __init__(self, step: _Optional[float] = ..., adapting: bool = ..., acceptance_rates: _Optional[_Iterable[float]] = ..., krylov_iterations: _Optional[int] = ..., krylov_error_estimate: _Optional[float] = ..., krylov_unconverged: _Optional[int] = ...) -> None: ...
+    def __init__(self, step: _Optional[float] = ..., adapting: bool = ..., acceptance_rates: _Optional[_Iterable[float]] = ..., krylov_iterations: _Optional[int] = ..., krylov_error_estimate: _Optional[float] = ..., krylov_unconverged: _Optional[int] = ..., evaluations_per_step_mean: _Optional[float] = ..., acceptance_rate: _Optional[float] = ...) -> None: ...
 
 class NoiseEstimate(_message.Message):
     __slots__ = ["declared", "epochs", "requests", "variance", "variance_se", "warning"]
@@ -337,7 +351,7 @@ class Progress(_message.Message):
     def __init__(self, state: _Optional[_Union[State, str]] = ..., steps: _Optional[int] = ..., evaluations_used: _Optional[int] = ..., evaluations_left: _Optional[int] = ..., seconds_used: _Optional[float] = ..., seconds_left: _Optional[float] = ..., draws_sent: _Optional[int] = ..., evaluations_per_second: _Optional[float] = ..., parameters: _Optional[_Iterable[_Union[ParameterDiagnostics, _Mapping]]] = ..., ksd: _Optional[float] = ..., bound: _Optional[_Union[Bound, _Mapping]] = ..., curvature: _Optional[_Union[CurvatureEstimate, _Mapping]] = ..., targets: _Optional[_Iterable[_Union[TargetStatus, _Mapping]]] = ..., noise: _Optional[_Union[NoiseEstimate, _Mapping]] = ..., kernel: _Optional[_Union[KernelReport, _Mapping]] = ...) -> None: ...
 
 class Register(_message.Message):
-    __slots__ = ["anchor_every", "burn_in", "chains", "curvature", "curvature_probe_iterations", "dim", "draws_per_chain", "fixed_point_iterations", "fixed_point_tolerance", "friction", "inverse_mass", "keep_every", "kernel", "krylov_max_iterations", "krylov_tolerance", "max_evaluations", "max_message_bytes", "max_seconds", "names", "noise", "progress_every_steps", "progress_interval_seconds", "schedule", "seed", "start", "start_rows", "step", "wants"]
+    __slots__ = ["anchor_every", "burn_in", "chains", "curvature", "curvature_probe_iterations", "dim", "draws_per_chain", "envelope", "fixed_point_iterations", "fixed_point_tolerance", "friction", "inverse_mass", "keep_every", "kernel", "krylov_max_iterations", "krylov_tolerance", "max_evaluations", "max_message_bytes", "max_seconds", "names", "noise", "progress_every_steps", "progress_interval_seconds", "schedule", "seed", "slice_max_expansions", "slice_width", "start", "start_rows", "step", "wants"]
     ANCHOR_EVERY_FIELD_NUMBER: _ClassVar[int]
     BURN_IN_FIELD_NUMBER: _ClassVar[int]
     CHAINS_FIELD_NUMBER: _ClassVar[int]
@@ -345,6 +359,7 @@ class Register(_message.Message):
     CURVATURE_PROBE_ITERATIONS_FIELD_NUMBER: _ClassVar[int]
     DIM_FIELD_NUMBER: _ClassVar[int]
     DRAWS_PER_CHAIN_FIELD_NUMBER: _ClassVar[int]
+    ENVELOPE_FIELD_NUMBER: _ClassVar[int]
     FIXED_POINT_ITERATIONS_FIELD_NUMBER: _ClassVar[int]
     FIXED_POINT_TOLERANCE_FIELD_NUMBER: _ClassVar[int]
     FRICTION_FIELD_NUMBER: _ClassVar[int]
@@ -362,6 +377,8 @@ class Register(_message.Message):
     PROGRESS_INTERVAL_SECONDS_FIELD_NUMBER: _ClassVar[int]
     SCHEDULE_FIELD_NUMBER: _ClassVar[int]
     SEED_FIELD_NUMBER: _ClassVar[int]
+    SLICE_MAX_EXPANSIONS_FIELD_NUMBER: _ClassVar[int]
+    SLICE_WIDTH_FIELD_NUMBER: _ClassVar[int]
     START_FIELD_NUMBER: _ClassVar[int]
     START_ROWS_FIELD_NUMBER: _ClassVar[int]
     STEP_FIELD_NUMBER: _ClassVar[int]
@@ -373,6 +390,7 @@ class Register(_message.Message):
     curvature_probe_iterations: int
     dim: int
     draws_per_chain: int
+    envelope: Envelope
     fixed_point_iterations: int
     fixed_point_tolerance: float
     friction: float
@@ -390,11 +408,13 @@ class Register(_message.Message):
     progress_interval_seconds: float
     schedule: StepSchedule
     seed: int
+    slice_max_expansions: int
+    slice_width: float
     start: bytes
     start_rows: int
     step: float
     wants: Wants
-    def __init__(self, dim: _Optional[int] = ..., chains: _Optional[int] = ..., kernel: _Optional[str] = ..., start: _Optional[bytes] = ..., start_rows: _Optional[int] = ..., step: _Optional[float] = ..., burn_in: _Optional[int] = ..., keep_every: _Optional[int] = ..., draws_per_chain: _Optional[int] = ..., max_evaluations: _Optional[int] = ..., max_seconds: _Optional[float] = ..., progress_every_steps: _Optional[int] = ..., progress_interval_seconds: _Optional[float] = ..., seed: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., max_message_bytes: _Optional[int] = ..., curvature: _Optional[_Union[Curvature, _Mapping]] = ..., wants: _Optional[_Union[Wants, _Mapping]] = ..., friction: _Optional[float] = ..., inverse_mass: _Optional[float] = ..., krylov_tolerance: _Optional[float] = ..., krylov_max_iterations: _Optional[int] = ..., schedule: _Optional[_Union[StepSchedule, _Mapping]] = ..., anchor_every: _Optional[int] = ..., fixed_point_tolerance: _Optional[float] = ..., fixed_point_iterations: _Optional[int] = ..., curvature_probe_iterations: _Optional[int] = ..., noise: _Optional[_Union[GradientNoise, _Mapping]] = ...) -> None: ...
+    def __init__(self, dim: _Optional[int] = ..., chains: _Optional[int] = ..., kernel: _Optional[str] = ..., start: _Optional[bytes] = ..., start_rows: _Optional[int] = ..., step: _Optional[float] = ..., burn_in: _Optional[int] = ..., keep_every: _Optional[int] = ..., draws_per_chain: _Optional[int] = ..., max_evaluations: _Optional[int] = ..., max_seconds: _Optional[float] = ..., progress_every_steps: _Optional[int] = ..., progress_interval_seconds: _Optional[float] = ..., seed: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., max_message_bytes: _Optional[int] = ..., curvature: _Optional[_Union[Curvature, _Mapping]] = ..., wants: _Optional[_Union[Wants, _Mapping]] = ..., friction: _Optional[float] = ..., inverse_mass: _Optional[float] = ..., krylov_tolerance: _Optional[float] = ..., krylov_max_iterations: _Optional[int] = ..., schedule: _Optional[_Union[StepSchedule, _Mapping]] = ..., anchor_every: _Optional[int] = ..., fixed_point_tolerance: _Optional[float] = ..., fixed_point_iterations: _Optional[int] = ..., curvature_probe_iterations: _Optional[int] = ..., slice_width: _Optional[float] = ..., slice_max_expansions: _Optional[int] = ..., envelope: _Optional[_Union[Envelope, _Mapping]] = ..., noise: _Optional[_Union[GradientNoise, _Mapping]] = ...) -> None: ...
 
 class Registered(_message.Message):
     __slots__ = ["evaluations_per_step", "kernel", "max_message_bytes", "names", "planned_steps", "seed", "session_id", "step"]
