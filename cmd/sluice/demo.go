@@ -82,6 +82,9 @@ func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	if c.chains < 1 || c.burnIn < 0 || c.keepEvery < 1 || c.draws < 0 || c.maxEvals < 0 || c.maxTime < 0 || c.step < 0 {
 		return usagef("--chains and --keep-every must be ≥ 1; --burn-in, --draws, --max-evals, --max-time, --step ≥ 0")
 	}
+	if c.kernel == "rejection" {
+		return usagef("--kernel rejection needs a Gaussian envelope with a proven bound; for this posterior the bound one can prove (scale 1/√m) accepts about 1 proposal in 1400: use hit-and-run as the density-only reference")
+	}
 	if c.minibatch < 0 || c.minibatch > kilnFirings || !(c.eps > 0) {
 		return usagef("--minibatch must be between 0 and %d, --eps > 0", kilnFirings)
 	}

@@ -204,7 +204,7 @@ func freeAddr(t *testing.T) string {
 func TestDemoRunsEveryKernel(t *testing.T) {
 	ctx, cancel := context.WithTimeout(context.Background(), 120*time.Second)
 	defer cancel()
-	for _, k := range []string{"lmc", "kinetic", "midpoint", "midpoint-overdamped", "mala", "ozaki", "ozaki-krylov", "sgld", "sgld-cv", "svrg"} {
+	for _, k := range []string{"lmc", "kinetic", "midpoint", "midpoint-overdamped", "mala", "ozaki", "ozaki-krylov", "sgld", "sgld-cv", "svrg", "hit-and-run"} {
 		code, stdout, stderr := runCmd(t, ctx, "demo", "--kernel", k, "--seed", "2", "--chains", "2", "--draws", "30", "--burn-in", "20", "--json")
 		var res demoResult
 		if code != 0 || json.Unmarshal([]byte(stdout), &res) != nil || res.Reason != "draws collected" || res.DrawsPerChain != 30 {
