@@ -125,10 +125,10 @@ type demoParameter struct {
 	Q95  float64 `json:"q95"`
 	// R-hat, bulk- and tail-ESS and the MCSE of the mean, as the server
 	// measured them (THEORY.md §9).
-	Rhat    float64 `json:"rhat"`
-	BulkESS float64 `json:"bulk_ess"`
-	TailESS float64 `json:"tail_ess"`
-	MCSE    float64 `json:"mcse_mean"`
+	Rhat    num `json:"rhat"`
+	BulkESS num `json:"bulk_ess"`
+	TailESS num `json:"tail_ess"`
+	MCSE    num `json:"mcse_mean"`
 }
 
 // demoNoise is what the server measured of minibatch gradients, and what
@@ -148,9 +148,9 @@ type demoNoise struct {
 // (Stein discrepancy, curvature seen) and guaranteed (the bound, with its
 // label), kept apart.
 type demoAccuracy struct {
-	KSD             float64 `json:"ksd"`
-	SmoothnessSeen  float64 `json:"smoothness_at_least"`
-	ConvexitySeen   float64 `json:"strong_convexity_at_most"`
+	KSD             num     `json:"ksd"`
+	SmoothnessSeen  num     `json:"smoothness_at_least"`
+	ConvexitySeen   num     `json:"strong_convexity_at_most"`
 	DeclaredM       float64 `json:"declared_m"`
 	DeclaredBigM    float64 `json:"declared_M"`
 	BoundMetric     string  `json:"bound_metric,omitempty"`
@@ -321,7 +321,7 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 		p := summarise(name, chains[i])
 		for _, d := range sum.Progress.Parameters {
 			if d.Name == name {
-				p.Rhat, p.BulkESS, p.TailESS, p.MCSE = d.Rhat, d.BulkESS, d.TailESS, d.MCSE
+				p.Rhat, p.BulkESS, p.TailESS, p.MCSE = num(d.Rhat), num(d.BulkESS), num(d.TailESS), num(d.MCSE)
 			}
 		}
 		res.Parameters = append(res.Parameters, p)
@@ -338,8 +338,8 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 			res.Noise.PlanStep, res.Noise.PlanEvals, res.Noise.PlanNoiseTerm = plan.Step, plan.Evaluations, plan.Bound.NoiseTerm
 		}
 	}
-	res.Accuracy = demoAccuracy{KSD: fp.KSD, SmoothnessSeen: fp.Curvature.SmoothnessAtLeast,
-		ConvexitySeen: fp.Curvature.StrongConvexityAtMost, DeclaredM: m, DeclaredBigM: bigM}
+	res.Accuracy = demoAccuracy{KSD: num(fp.KSD), SmoothnessSeen: num(fp.Curvature.SmoothnessAtLeast),
+		ConvexitySeen: num(fp.Curvature.StrongConvexityAtMost), DeclaredM: m, DeclaredBigM: bigM}
 	if b := fp.Bound; b != nil {
 		res.Accuracy.BoundMetric, res.Accuracy.Bound, res.Accuracy.BoundLabel = string(b.Metric), b.Value, b.Label
 		res.Accuracy.BoundStart, res.Accuracy.BoundDiscretise, res.Accuracy.BoundNoise = b.Start, b.Discretisation, b.Noise
@@ -373,7 +373,7 @@ func summarise(name string, chains [][]float64) demoParameter {
 	sd := math.Sqrt(ss / float64(len(all)-1))
 	sort.Float64s(all)
 	return demoParameter{Name: name, Mean: m, SD: sd, Q05: quantileSorted(all, 0.05), Q50: quantileSorted(all, 0.5),
-		Q95: quantileSorted(all, 0.95), Rhat: math.NaN(), BulkESS: math.NaN(), TailESS: math.NaN(), MCSE: math.NaN()}
+		Q95: quantileSorted(all, 0.95), Rhat: num(math.NaN()), BulkESS: num(math.NaN()), TailESS: num(math.NaN()), MCSE: num(math.NaN())}
 }
 
 func meanOf(x []float64) float64 {
@@ -404,14 +404,15 @@ func printDemo(w io.Writer, r *demoResult) {
 	fmt.Fprintf(w, "%-14s %9s %8s %9s %9s %9s %7s %8s %8s %9s\n", "parameter", "mean", "sd", "5%", "50%", "95%", "R-hat", "bulk-ESS", "tail-ESS", "MCSE")
 	for _, p := range r.Parameters {
 		fmt.Fprintf(w, "%-14s %9.4f %8.4f %9.4f %9.4f %9.4f %7.3f %8.0f %8.0f %9.5f\n", p.Name, p.Mean, p.SD, p.Q05, p.Q50, p.Q95,
-			p.Rhat, p.BulkESS, p.TailESS, p.MCSE)
+			float64(p.Rhat), float64(p.BulkESS), float64(p.TailESS), float64(p.MCSE))
 	}
 	fmt.Fprintf(w, "(coefficients on the log-odds scale: temperature per %g °C, cooling rate per %g °C/min)\n\n", tempScale, coolScale)
 	a := r.Accuracy
 	if a.KSD >= 0 {
-		fmt.Fprintf(w, "measured:   Stein discrepancy %.4g; curvature seen along the chains M ≥ %.4g, m ≤ %.4g\n", a.KSD, a.SmoothnessSeen, a.ConvexitySeen)
+		fmt.Fprintf(w, "measured:   Stein discrepancy %.4g; curvature seen along the chains M ≥ %.4g, m ≤ %.4g\n",
+			float64(a.KSD), float64(a.SmoothnessSeen), float64(a.ConvexitySeen))
 	} else {
-		fmt.Fprintln(w, "measured:   no Stein discrepancy or curvature certificates: they need exact gradients")
+		fmt.Fprintln(w, "measured:   no Stein discrepancy or curvature certificates: they need exact gradients of every draw")
 	}
 	if a.BoundLabel != "" {
 		fmt.Fprintf(w, "guaranteed: %s ≤ %.4g after the last step (%s; m = %.3g, M = %.3g declared)\n",
@@ -542,4 +543,27 @@ func writeSummaryJSON(path string, r *demoResult) error {
 		return err
 	}
 	return os.WriteFile(path, append(b, '\n'), 0o644)
+}
+
+// num is a float64 that encodes as JSON null when not finite (NaN, ±Inf
+// mean "not available" here, and JSON has no such numbers).
+type num float64
+
+func (n num) MarshalJSON() ([]byte, error) {
+	f := float64(n)
+	if math.IsNaN(f) || math.IsInf(f, 0) {
+		return []byte("null"), nil
+	}
+	return json.Marshal(f)
+}
+
+func (n *num) UnmarshalJSON(b []byte) error {
+	if string(b) == "null" {
+		*n = num(math.NaN())
+		return nil
+	}
+	var f float64
+	err := json.Unmarshal(b, &f)
+	*n = num(f)
+	return err
 }
