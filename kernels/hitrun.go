@@ -459,18 +459,15 @@ func (k *HitAndRun) UnmarshalBinary(b []byte) error {
 	if n.ready && n.done == n.chains {
 		return bad // a finished step would have started the next
 	}
-	for _, dst := range [][]float64{n.x, n.xn, n.d, n.lpx, n.lpn, n.level, n.lo, n.hi, n.t} {
-		if v := r.floats(len(dst)); r.err == nil {
-			copy(dst, v)
-		}
-	}
+	r.fill(n.x, n.xn, n.d, n.lpx, n.lpn, n.level, n.lo, n.hi, n.t)
 	if r.err != nil {
 		return bad
 	}
-	n.src = &rand.PCG{}
-	if err := n.src.UnmarshalBinary(r.rest()); err != nil {
-		return fmt.Errorf("kernels: hit-and-run random state: %w", err)
+	src, err := r.stream("hit-and-run")
+	if err != nil {
+		return err
 	}
+	n.src = src
 	n.rng = rand.New(n.src)
 	n.buildRequest()
 	*k = *n

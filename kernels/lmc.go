@@ -233,3 +233,22 @@ func (r *stateReader) floats(n int) []float64 {
 }
 
 func (r *stateReader) rest() []byte { return r.b }
+
+// fill reads len(dst) floats into each dst in turn.
+func (r *stateReader) fill(dsts ...[]float64) {
+	for _, dst := range dsts {
+		if v := r.floats(len(dst)); r.err == nil {
+			copy(dst, v)
+		}
+	}
+}
+
+// stream restores the random stream from the rest of the state; kind
+// names the kernel in the error.
+func (r *stateReader) stream(kind string) (*rand.PCG, error) {
+	src := &rand.PCG{}
+	if err := src.UnmarshalBinary(r.rest()); err != nil {
+		return nil, fmt.Errorf("kernels: %s random state: %w", kind, err)
+	}
+	return src, nil
+}

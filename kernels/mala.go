@@ -280,18 +280,15 @@ func (k *MALA) UnmarshalBinary(b []byte) error {
 		}
 	}
 	n.x = r.floats(n.dim * n.chains)
-	for _, dst := range [][]float64{n.lpx, n.gx, n.y} {
-		if v := r.floats(len(dst)); r.err == nil {
-			copy(dst, v)
-		}
-	}
+	r.fill(n.lpx, n.gx, n.y)
 	if r.err != nil {
 		return bad
 	}
-	n.src = &rand.PCG{}
-	if err := n.src.UnmarshalBinary(r.rest()); err != nil {
-		return fmt.Errorf("kernels: MALA random state: %w", err)
+	src, err := r.stream("MALA")
+	if err != nil {
+		return err
 	}
+	n.src = src
 	n.rng = rand.New(n.src)
 	n.buildRequest()
 	*k = *n

@@ -265,10 +265,11 @@ func (k *Midpoint) UnmarshalBinary(b []byte) error {
 	if r.err != nil {
 		return errors.New("kernels: corrupt Midpoint state")
 	}
-	m.src = &rand.PCG{}
-	if err := m.src.UnmarshalBinary(r.rest()); err != nil {
-		return fmt.Errorf("kernels: Midpoint random state: %w", err)
+	src, err := r.stream("Midpoint")
+	if err != nil {
+		return err
 	}
+	m.src = src
 	m.init()
 	*k = m
 	return nil
@@ -450,10 +451,11 @@ func (k *OverdampedMidpoint) UnmarshalBinary(b []byte) error {
 	if r.err != nil {
 		return errors.New("kernels: corrupt OverdampedMidpoint state")
 	}
-	m.src = &rand.PCG{}
-	if err := m.src.UnmarshalBinary(r.rest()); err != nil {
-		return fmt.Errorf("kernels: OverdampedMidpoint random state: %w", err)
+	src, err := r.stream("OverdampedMidpoint")
+	if err != nil {
+		return err
 	}
+	m.src = src
 	m.init()
 	*k = m
 	return nil

@@ -771,10 +771,11 @@ func (k *OzakiKrylov) UnmarshalBinary(b []byte) error {
 	if r.err != nil {
 		return bad
 	}
-	n.src = &rand.PCG{}
-	if err := n.src.UnmarshalBinary(r.rest()); err != nil {
-		return fmt.Errorf("kernels: OzakiKrylov random state: %w", err)
+	src, err := r.stream("OzakiKrylov")
+	if err != nil {
+		return err
 	}
+	n.src = src
 	n.rng = rand.New(n.src)
 	n.buildRequest()
 	*k = *n

@@ -352,18 +352,15 @@ func (k *Rejection) UnmarshalBinary(b []byte) error {
 	}
 	n.mean = r.floats(n.dim)
 	n.x = r.floats(n.dim * n.chains)
-	for _, dst := range [][]float64{n.xn, n.y} {
-		if v := r.floats(len(dst)); r.err == nil {
-			copy(dst, v)
-		}
-	}
+	r.fill(n.xn, n.y)
 	if r.err != nil {
 		return bad
 	}
-	n.src = &rand.PCG{}
-	if err := n.src.UnmarshalBinary(r.rest()); err != nil {
-		return fmt.Errorf("kernels: rejection random state: %w", err)
+	src, err := r.stream("rejection")
+	if err != nil {
+		return err
 	}
+	n.src = src
 	n.rng = rand.New(n.src)
 	rows := 0
 	for c, w := range n.waiting {
