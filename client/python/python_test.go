@@ -93,7 +93,10 @@ func startServer(t testing.TB, root string) *server {
 	}
 
 	s := &server{done: make(chan struct{})}
-	s.cmd = exec.Command(bin, "serve", "--addr", "127.0.0.1:0", "--log-level", "info", "--grace", "5s")
+	// The Follow tests need draws kept for followers: --follow-buffer is
+	// given explicitly (its default, 100000 rows, is on too).
+	s.cmd = exec.Command(bin, "serve", "--addr", "127.0.0.1:0", "--log-level", "info", "--grace", "5s",
+		"--follow-buffer", "100000")
 	stderr, err := s.cmd.StderrPipe()
 	if err != nil {
 		t.Fatal(err)

@@ -21,48 +21,92 @@ bytes, decoded with ``np.frombuffer`` and encoded with ``tobytes``.
                      on_draws=lambda d: draws.append(d.values.copy()))
     print(summary.reason, summary.mean, summary.sd)
 
-``Session`` is the iterator form of the same loop. Server errors raise
-:class:`SessionError` (gRPC status code, message, and the offending field
-from the status's bad-request detail).
+``Session`` is the iterator form of the same loop. Kernels that need more
+than gradients and log densities (Hessians for "ozaki", Hessian-vector
+products for "ozaki-krylov", several gradient replicates per point with
+``Noise(replicates=2)``) are answered with ``batch=``, a function of a
+:class:`Batch` returning an :class:`Answer`. :func:`plan` asks what a
+guaranteed accuracy costs before sampling; :func:`follow` streams another
+session's draws. Server errors raise :class:`SessionError` (gRPC status
+code, message, and the offending field from the status's bad-request
+detail).
 """
 
 from ._errors import DrawsLostError, ProtocolError, SessionError, SluiceError
-from ._session import SESSION_METHOD, Event, GradFn, LogDensityFn, Session, connect, run
+from ._follow import FOLLOW_MAX_MESSAGE_BYTES, FOLLOW_METHOD, FollowEvent, Follower, follow
+from ._plan import PLAN_METHOD, plan
+from ._session import SESSION_METHOD, BatchFn, Event, GradFn, LogDensityFn, Session, connect, run
 from ._types import (
     DEFAULT_MAX_MESSAGE_BYTES,
+    METRICS,
+    Answer,
+    Batch,
+    Bound,
+    Curvature,
+    CurvatureEstimate,
     Draws,
     FinishReason,
+    KernelReport,
+    Noise,
+    NoiseEstimate,
+    ParameterDiagnostics,
     ParameterSummary,
+    PlanResult,
     Progress,
     Registered,
+    Schedule,
     Spec,
     State,
     Summary,
+    TargetStatus,
+    Wants,
     from_wire,
     to_wire,
 )
 
 __all__ = [
     "DEFAULT_MAX_MESSAGE_BYTES",
+    "FOLLOW_MAX_MESSAGE_BYTES",
+    "FOLLOW_METHOD",
+    "METRICS",
+    "PLAN_METHOD",
     "SESSION_METHOD",
+    "Answer",
+    "Batch",
+    "BatchFn",
+    "Bound",
+    "Curvature",
+    "CurvatureEstimate",
     "Draws",
     "DrawsLostError",
     "Event",
     "FinishReason",
+    "FollowEvent",
+    "Follower",
     "GradFn",
+    "KernelReport",
     "LogDensityFn",
+    "Noise",
+    "NoiseEstimate",
+    "ParameterDiagnostics",
     "ParameterSummary",
+    "PlanResult",
     "Progress",
     "ProtocolError",
     "Registered",
+    "Schedule",
     "Session",
     "SessionError",
     "SluiceError",
     "Spec",
     "State",
     "Summary",
+    "TargetStatus",
+    "Wants",
     "connect",
+    "follow",
     "from_wire",
+    "plan",
     "run",
     "to_wire",
 ]

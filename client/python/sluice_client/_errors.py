@@ -25,11 +25,13 @@ class SluiceError(Exception):
 
 
 class SessionError(SluiceError):
-    """The server ended the session with an error status.
+    """The server ended the session (or a Follow or Plan call) with an error
+    status.
 
     ``code`` is the gRPC status code (for bad input
     ``grpc.StatusCode.INVALID_ARGUMENT``, for an oversize message
-    ``RESOURCE_EXHAUSTED``), ``message`` the status message, ``field`` and
+    ``RESOURCE_EXHAUSTED``; Follow also gives ``OUT_OF_RANGE`` and
+    ``NOT_FOUND``), ``message`` the status message, ``field`` and
     ``description`` the first field violation of the status's bad-request
     detail ("" when there is none), ``violations`` every (field,
     description) pair. ``summary`` is the summary the server sent before the
@@ -42,6 +44,7 @@ class SessionError(SluiceError):
         message: str,
         violations: Sequence[Tuple[str, str]] = (),
         summary: Optional[Summary] = None,
+        call: str = "session",
     ) -> None:
         self.code = code
         self.message = message
@@ -49,16 +52,19 @@ class SessionError(SluiceError):
         self.field = self.violations[0][0] if self.violations else ""
         self.description = self.violations[0][1] if self.violations else ""
         self.summary = summary
-        super().__init__(f"sluice session failed: {code.name}: {message}")
+        super().__init__(f"sluice {call} failed: {code.name}: {message}")
 
     @classmethod
-    def from_rpc_error(cls, err: grpc.RpcError, summary: Optional[Summary] = None) -> "SessionError":
+    def from_rpc_error(
+        cls, err: grpc.RpcError, summary: Optional[Summary] = None, call: str = "session"
+    ) -> "SessionError":
         """Builds a SessionError from the error a gRPC call raised (which is
-        also a grpc.Call: code, details, trailing metadata)."""
+        also a grpc.Call: code, details, trailing metadata); ``call`` names
+        the rpc in the exception's text ("session", "follow", "plan")."""
         code = err.code() if hasattr(err, "code") else grpc.StatusCode.UNKNOWN
         message = err.details() if hasattr(err, "details") else str(err)
         trailing = err.trailing_metadata() if hasattr(err, "trailing_metadata") else None
-        return cls(code or grpc.StatusCode.UNKNOWN, message or "", field_violations(trailing), summary)
+        return cls(code or grpc.StatusCode.UNKNOWN, message or "", field_violations(trailing), summary, call)
 
 
 class ProtocolError(SluiceError):

@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import queue
 import threading
+from dataclasses import dataclass
 from typing import Callable, Iterator, Optional, Sequence, Tuple, Union
 
 import grpc
@@ -16,6 +17,8 @@ from ._errors import DrawsLostError, ProtocolError, SessionError
 from ._proto.sluice.v1 import sluice_pb2 as pb
 from ._types import (
     DEFAULT_MAX_MESSAGE_BYTES,
+    Answer,
+    Batch,
     Draws,
     Progress,
     Registered,
@@ -35,6 +38,12 @@ GradFn = Callable[[np.ndarray], npt.ArrayLike]
 
 #: ``log_density(points) -> values``: shape (rows,), log pi up to a constant.
 LogDensityFn = Callable[[np.ndarray], npt.ArrayLike]
+
+#: ``batch(b) -> Answer``: answers one :class:`Batch` (one Points frame)
+#: with every quantity it asks for; the richer alternative to ``grad`` and
+#: ``log_density`` that Hessians, Hessian-vector products, gradient
+#: replicates and minibatch groups need.
+BatchFn = Callable[[Batch], Answer]
 
 #: What iterating a Session yields.
 Event = Union[Draws, Progress]
@@ -76,7 +85,13 @@ class Session:
 
     The server drives: for every Points frame the session calls ``grad`` (and
     ``log_density`` when the server asks for log pi) on the iterating thread
-    and sends the answer before reading on. ``channel_or_target`` is a
+    and sends the answer before reading on. Alternatively ``batch`` (a
+    :data:`BatchFn`, keyword only, in place of ``grad`` and ``log_density``)
+    gets each frame as a :class:`Batch` and returns an :class:`Answer`: it
+    can give what ``grad`` cannot (Hessians for "ozaki", Hessian-vector
+    products for "ozaki-krylov", several gradient replicates per point for
+    ``Noise(replicates=...)``) and sees the chains, minibatch groups and
+    full-data flag of every row. ``channel_or_target`` is a
     ``grpc.Channel`` (its message limits must allow
     ``spec.max_message_bytes``; see :func:`connect`) or a "host:port" target,
     for which the session opens and closes its own channel with exactly that
@@ -84,11 +99,14 @@ class Session:
     none). ``on_registered`` is called with the server's acknowledgement as
     soon as it arrives.
 
-    Errors: an exception from ``grad`` or ``log_density``, or a gradient of
-    the wrong shape (ValueError), makes the session send Stop, receive the
-    draws already made and the summary (which iteration still yields and
-    ``summary`` holds), and then re-raises it. A server error status raises
-    :class:`SessionError`; a gap or repeat in the draws' sequence numbers
+    Errors: an exception from ``grad``, ``log_density`` or ``batch``, an
+    answer of the wrong shape or missing a quantity asked for (ValueError),
+    or a request that ``grad`` and ``log_density`` cannot answer (a Hessian,
+    a Hessian-vector product, or more than one gradient replicate:
+    ValueError, raised before anything is sent) makes the session send Stop,
+    receive the draws already made and the summary (which iteration still
+    yields and ``summary`` holds), and then re-raises it. A server error
+    status raises :class:`SessionError`; a gap or repeat in the draws' sequence numbers
     raises :class:`DrawsLostError` at once. Leaving the loop early (break)
     cancels the call.
     """
@@ -97,17 +115,23 @@ class Session:
         self,
         channel_or_target: Union[grpc.Channel, str],
         spec: Spec,
-        grad: GradFn,
+        grad: Optional[GradFn] = None,
         log_density: Optional[LogDensityFn] = None,
         *,
+        batch: Optional[BatchFn] = None,
         timeout: Optional[float] = None,
         on_registered: Optional[Callable[[Registered], None]] = None,
     ) -> None:
+        if (grad is None) == (batch is None):
+            raise TypeError("sluice_client: give either grad (with log_density if needed) or batch")
+        if batch is not None and log_density is not None:
+            raise TypeError("sluice_client: batch answers log densities itself; log_density goes with grad only")
         self._spec = spec
         self._on_registered = on_registered
         self._register = spec.to_register()  # shapes start; raises ValueError early
         self._grad = grad
         self._log_density = log_density
+        self._batch = batch
         self._timeout = timeout
         # A channel of our own is opened when iteration starts, so that a
         # Session never iterated holds no connection.
@@ -220,55 +244,157 @@ class Session:
                 f"sluice_client: malformed points frame: {len(p.points)} bytes and "
                 f"{len(p.chains)} chains for {rows} x {dim}"
             )
+        quantities = set(p.quantities)
+        want = _Wanted(
+            gradient=pb.QUANTITY_GRADIENT in quantities,
+            log_density=pb.QUANTITY_LOG_DENSITY in quantities,
+            hessian=pb.QUANTITY_HESSIAN in quantities,
+            hessian_vector=pb.QUANTITY_HESSIAN_VECTOR in quantities,
+            replicates=max(1, p.replicates),
+        )
+        if want.hessian_vector and len(p.vectors) != 8 * rows * dim:
+            raise ProtocolError(
+                f"sluice_client: malformed points frame: {len(p.vectors)} bytes of vectors for {rows} x {dim}"
+            )
+        if len(p.minibatch_groups) not in (0, rows):
+            raise ProtocolError(
+                f"sluice_client: malformed points frame: {len(p.minibatch_groups)} minibatch groups for {rows} rows"
+            )
         points = from_wire(p.points, rows, dim)
         ev = pb.Evaluations(request_id=p.request_id, first_row=p.first_row, rows=rows, dim=dim)
         try:
-            if pb.QUANTITY_GRADIENT in p.quantities:
-                g = np.asarray(self._grad(points))
-                if g.shape != (rows, dim):
-                    raise ValueError(
-                        f"sluice_client: grad returned an array of shape {g.shape}; want (rows, dim) = {(rows, dim)}"
-                    )
-                ev.gradients = to_wire(g)
-            if pb.QUANTITY_LOG_DENSITY in p.quantities:
-                if self._log_density is None:
-                    raise ValueError("sluice_client: the server asks for log densities, but no log_density was given")
-                ld = np.asarray(self._log_density(points))
-                if ld.shape != (rows,):
-                    raise ValueError(
-                        f"sluice_client: log_density returned an array of shape {ld.shape}; want (rows,) = {(rows,)}"
-                    )
-                ev.log_densities = to_wire(ld)
+            if self._batch is not None:
+                b = Batch(
+                    points=points,
+                    chains=np.array(p.chains, dtype=np.int32),
+                    want_gradient=want.gradient,
+                    want_log_density=want.log_density,
+                    want_hessian=want.hessian,
+                    want_hessian_vector=want.hessian_vector,
+                    vectors=from_wire(p.vectors, rows, dim) if want.hessian_vector else None,
+                    minibatch_groups=np.array(p.minibatch_groups, dtype=np.int32) if len(p.minibatch_groups) else None,
+                    full_data=p.full_data,
+                    replicates=want.replicates,
+                    request_id=p.request_id,
+                    first_row=p.first_row,
+                )
+                ans = self._batch(b)
+                if not isinstance(ans, Answer):
+                    raise TypeError(f"sluice_client: batch returned {type(ans).__name__}; want sluice_client.Answer")
+            else:
+                ans = self._simple(points, want)
+            _encode(ev, ans, want, rows, dim)
         except Exception as err:  # the caller's code failed: stop, drain, re-raise
             self.stop(f"evaluator failed: {err!r}")
             return err
         self._send(_request(evaluations=ev))
         return None
 
+    def _simple(self, points: np.ndarray, want: "_Wanted") -> Answer:
+        """Answers with grad and log_density, checking their shapes."""
+        rows, dim = points.shape
+        if want.hessian or want.hessian_vector:
+            what = "Hessians" if want.hessian else "Hessian-vector products"
+            raise ValueError(
+                f"sluice_client: the server asks for {what} (kernel {self._spec.kernel!r}), which grad and "
+                "log_density cannot give: pass batch= (a function of a sluice_client.Batch returning an Answer)"
+            )
+        if want.replicates > 1:
+            raise ValueError(
+                f"sluice_client: the server asks for {want.replicates} gradient replicates per point "
+                "(noise.replicates), which grad cannot give: pass batch= (a function of a sluice_client.Batch "
+                "returning an Answer with gradients of shape (rows, replicates, dim))"
+            )
+        ans = Answer()
+        if want.gradient:
+            assert self._grad is not None
+            g = np.asarray(self._grad(points))
+            if g.shape != (rows, dim):
+                raise ValueError(
+                    f"sluice_client: grad returned an array of shape {g.shape}; want (rows, dim) = {(rows, dim)}"
+                )
+            ans.gradients = g
+        if want.log_density:
+            if self._log_density is None:
+                raise ValueError("sluice_client: the server asks for log densities, but no log_density was given")
+            ld = np.asarray(self._log_density(points))
+            if ld.shape != (rows,):
+                raise ValueError(
+                    f"sluice_client: log_density returned an array of shape {ld.shape}; want (rows,) = {(rows,)}"
+                )
+            ans.log_densities = ld
+        return ans
+
     def _deliver(self, w: pb.Draws) -> Draws:
-        if w.seq != self._next_seq:
-            raise DrawsLostError(self._next_seq, w.seq)
-        rows, dim = w.rows, w.dim
-        if len(w.values) != 8 * rows * dim or len(w.chains) != rows or len(w.iterations) != rows:
-            raise ProtocolError(f"sluice_client: malformed draws frame at sequence {w.seq}")
-        self._next_seq += rows
-        self.draws_received += rows
-        return Draws(
-            seq=w.seq,
-            values=from_wire(w.values, rows, dim),
-            chains=np.array(w.chains, dtype=np.int32),
-            iterations=np.array(w.iterations, dtype=np.int64),
-        )
+        d = decode_draws(w, self._next_seq)
+        self._next_seq += d.rows
+        self.draws_received += d.rows
+        return d
+
+
+@dataclass(frozen=True)
+class _Wanted:
+    """What one Points frame asks for."""
+
+    gradient: bool
+    log_density: bool
+    hessian: bool
+    hessian_vector: bool
+    replicates: int
+
+
+def _encode(ev: pb.Evaluations, ans: Answer, want: _Wanted, rows: int, dim: int) -> None:
+    """Fills ev with the quantities asked for, checking that each is present
+    and has its shape (sluice.proto, message Evaluations); quantities not
+    asked for are left out."""
+
+    def shaped(name: str, value: Optional[npt.ArrayLike], *shapes: Tuple[int, ...]) -> np.ndarray:
+        if value is None:
+            raise ValueError(f"sluice_client: the server asks for {name}, but the answer has none")
+        a = np.asarray(value)
+        if a.shape not in shapes:
+            want_text = " or ".join(str(sh) for sh in shapes)
+            raise ValueError(f"sluice_client: the answer's {name} have shape {a.shape}; want {want_text}")
+        return a
+
+    reps = want.replicates
+    if want.gradient:
+        shapes = [(rows, reps, dim)] if reps > 1 else [(rows, dim), (rows, 1, dim)]
+        ev.gradients = to_wire(shaped("gradients", ans.gradients, *shapes))
+    if want.log_density:
+        ev.log_densities = to_wire(shaped("log_densities", ans.log_densities, (rows,)))
+    if want.hessian:
+        ev.hessians = to_wire(shaped("hessians", ans.hessians, (rows, dim, dim)))
+    if want.hessian_vector:
+        ev.hessian_vectors = to_wire(shaped("hessian_vectors", ans.hessian_vectors, (rows, dim)))
+
+
+def decode_draws(w: pb.Draws, expected_seq: int) -> Draws:
+    """Returns a Draws frame as :class:`Draws`, or raises DrawsLostError
+    when it does not start at expected_seq and ProtocolError when it is
+    malformed."""
+    if w.seq != expected_seq:
+        raise DrawsLostError(expected_seq, w.seq)
+    rows, dim = w.rows, w.dim
+    if len(w.values) != 8 * rows * dim or len(w.chains) != rows or len(w.iterations) != rows:
+        raise ProtocolError(f"sluice_client: malformed draws frame at sequence {w.seq}")
+    return Draws(
+        seq=w.seq,
+        values=from_wire(w.values, rows, dim),
+        chains=np.array(w.chains, dtype=np.int32),
+        iterations=np.array(w.iterations, dtype=np.int64),
+    )
 
 
 def run(
     channel_or_target: Union[grpc.Channel, str],
     spec: Spec,
-    grad: GradFn,
+    grad: Optional[GradFn] = None,
     log_density: Optional[LogDensityFn] = None,
     on_draws: Optional[Callable[[Draws], None]] = None,
     on_progress: Optional[Callable[[Progress], None]] = None,
     *,
+    batch: Optional[BatchFn] = None,
     on_registered: Optional[Callable[[Registered], None]] = None,
     timeout: Optional[float] = None,
 ) -> Summary:
@@ -276,12 +402,16 @@ def run(
 
     ``grad(points)`` gets a read-only rows x dim float64 array and returns the
     gradients of log pi, shape (rows, dim); ``log_density`` is needed only by
-    kernels that ask for log pi. ``on_draws`` gets every block of draws in
-    sequence order, ``on_progress`` every progress report, ``on_registered``
-    the server's acknowledgement; all run on the calling thread. Errors as
-    for :class:`Session`.
+    kernels that ask for log pi. ``batch`` replaces both: it gets every
+    request as a :class:`Batch` and returns an :class:`Answer` (see
+    :class:`Session`). ``on_draws`` gets every block of draws in sequence
+    order, ``on_progress`` every progress report, ``on_registered`` the
+    server's acknowledgement; all run on the calling thread. Errors as for
+    :class:`Session`.
     """
-    session = Session(channel_or_target, spec, grad, log_density, timeout=timeout, on_registered=on_registered)
+    session = Session(
+        channel_or_target, spec, grad, log_density, batch=batch, timeout=timeout, on_registered=on_registered
+    )
     with session:
         for event in session:
             if isinstance(event, Draws):

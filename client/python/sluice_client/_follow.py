@@ -1,0 +1,158 @@
+"""Following a session from another process: the Follow rpc streams a
+running (or recently finished) session's draws from a sequence number on,
+then its Finished frame."""
+
+from __future__ import annotations
+
+import threading
+from typing import Iterator, Optional, Union
+
+import grpc
+
+from ._errors import ProtocolError, SessionError
+from ._proto.sluice.v1 import sluice_pb2 as pb
+from ._session import connect, decode_draws
+from ._types import Draws, Summary
+
+#: Full method name of the Follow rpc.
+FOLLOW_METHOD = "/sluice.v1.SluiceService/Follow"
+
+#: Receive limit of a channel a Follower opens from a target. A Follow frame
+#: can be as large as the server's own message limit (`sluice serve
+#: --max-message-bytes`, 16 MiB by default), not the session's, and the
+#: server keeps at most 64 MiB of draws per session for followers.
+FOLLOW_MAX_MESSAGE_BYTES = 64 << 20
+
+#: What iterating a Follower yields: Draws, then the session's Summary last.
+FollowEvent = Union[Draws, Summary]
+
+
+class Follower:
+    """The draws of one session, as a downstream consumer sees them.
+
+    ::
+
+        follower = follow("127.0.0.1:7070", session_id)
+        for event in follower:          # Draws in sequence order, then the Summary
+            if isinstance(event, Draws):
+                keep(event.values.copy())
+        print(follower.summary.reason)
+
+    Iteration yields :class:`Draws` numbered from ``from_seq`` on, exactly
+    once each, and finally the session's :class:`Summary` (its
+    ``registered`` is None and ``draws_received`` counts this follower's
+    rows). Leaving the loop early (break) disconnects; ``next_seq`` is then
+    the sequence number to resume from with a new Follower, which gets every
+    draw after it with no loss and no duplicate while the server still
+    keeps it.
+
+    ``channel_or_target`` is a ``grpc.Channel`` or a "host:port" target, for
+    which the follower opens its own channel with receive limit
+    ``max_message_bytes``. ``timeout`` is the call's gRPC deadline in
+    seconds (None: none).
+
+    Errors raise :class:`SessionError`: ``NOT_FOUND`` (field "session_id")
+    for a session the server does not know or keeps no draws of;
+    ``OUT_OF_RANGE`` (field "from_seq") when the rows asked for have left the
+    server's bounded buffer (the message says the oldest kept) or lie beyond
+    the latest draw. A gap or repeat in the sequence numbers raises
+    :class:`DrawsLostError`.
+    """
+
+    def __init__(
+        self,
+        channel_or_target: Union[grpc.Channel, str],
+        session_id: str,
+        from_seq: int = 0,
+        *,
+        timeout: Optional[float] = None,
+        max_message_bytes: int = FOLLOW_MAX_MESSAGE_BYTES,
+    ) -> None:
+        if from_seq < 0:
+            raise ValueError(f"sluice_client: from_seq {from_seq} is negative")
+        self.session_id = session_id
+        self._target = channel_or_target if isinstance(channel_or_target, str) else None
+        self._channel: Optional[grpc.Channel] = None if self._target is not None else channel_or_target
+        self._limit = max_message_bytes
+        self._timeout = timeout
+        self._from_seq = from_seq
+        #: Sequence number of the next draw expected (where to resume).
+        self.next_seq = from_seq
+        #: The session's summary, once its Finished frame arrived.
+        self.summary: Optional[Summary] = None
+        #: Draws received by this follower.
+        self.draws_received = 0
+        self._started = False
+        self._lock = threading.Lock()
+        self._closed = False
+        self._call: Optional[grpc.Call] = None
+
+    def __iter__(self) -> Iterator[FollowEvent]:
+        if self._started:
+            raise RuntimeError("sluice_client: a Follower is iterated once; resume with a new one from next_seq")
+        self._started = True
+        return self._events()
+
+    def __enter__(self) -> "Follower":
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def close(self) -> None:
+        """Cancels the call if it still runs (disconnects) and closes the
+        channel the follower opened itself. Idempotent; safe from any
+        thread."""
+        with self._lock:
+            if self._closed:
+                return
+            self._closed = True
+        if self._call is not None:
+            self._call.cancel()
+        if self._target is not None and self._channel is not None:
+            self._channel.close()
+
+    def _events(self) -> Iterator[FollowEvent]:
+        try:
+            if self._channel is None:
+                assert self._target is not None
+                self._channel = connect(self._target, self._limit)
+            rpc = self._channel.unary_stream(
+                FOLLOW_METHOD,
+                request_serializer=pb.FollowRequest.SerializeToString,
+                response_deserializer=pb.FollowResponse.FromString,
+            )
+            call = rpc(pb.FollowRequest(session_id=self.session_id, from_seq=self._from_seq), timeout=self._timeout)
+            self._call = call
+            try:
+                for frame in call:
+                    kind = frame.WhichOneof("frame")
+                    if kind == "draws":
+                        d = decode_draws(frame.draws, self.next_seq)
+                        self.next_seq += d.rows
+                        self.draws_received += d.rows
+                        yield d
+                    elif kind == "finished":
+                        self.summary = Summary.from_wire(frame.finished, None, self.draws_received)
+                        yield self.summary
+            except grpc.RpcError as err:
+                raise SessionError.from_rpc_error(err, self.summary, call="follow") from None
+            if self.summary is None:
+                raise ProtocolError("sluice_client: follow stream ended without a finished frame")
+        finally:
+            self.close()
+
+
+def follow(
+    channel_or_target: Union[grpc.Channel, str],
+    session_id: str,
+    from_seq: int = 0,
+    *,
+    timeout: Optional[float] = None,
+    max_message_bytes: int = FOLLOW_MAX_MESSAGE_BYTES,
+) -> Follower:
+    """Follows session ``session_id`` (``Registered.session_id``) from draw
+    ``from_seq`` on: iterate the result for its Draws and then its Summary
+    (see :class:`Follower`). The server must keep draws for followers
+    (`sluice serve --follow-buffer`, on by default)."""
+    return Follower(channel_or_target, session_id, from_seq, timeout=timeout, max_message_bytes=max_message_bytes)
