@@ -283,6 +283,9 @@ func (m *monitor) measure(p *Progress, final bool) {
 // largest R-hat over the parameters of the last measurement (NaN counts
 // as failing: it gives −Inf for the ESSs and +Inf for R-hat).
 func (m *monitor) worst() (bulk, tail, rhat float64) {
+	if len(m.params) == 0 { // nothing measured yet: no target can hold
+		return math.NaN(), math.NaN(), math.NaN()
+	}
 	bulk, tail, rhat = math.Inf(1), math.Inf(1), math.Inf(-1)
 	for _, p := range m.params {
 		bulk = math.Min(bulk, nanTo(p.BulkESS, math.Inf(-1)))

@@ -39,11 +39,15 @@ func TestESSTargetMet(t *testing.T) {
 			t.Fatalf("target %+v", ts)
 		}
 	}
-	// Before the end, some target was projected with a positive cost.
+	// Before the end, some target was projected with a positive cost,
+	// and no target is reported met before anything was measured.
 	projected := false
 	for _, p := range tr.progress[:len(tr.progress)-1] {
 		for _, ts := range p.Targets {
 			projected = projected || (!ts.Met && ts.ProjectedEvaluations > 0)
+			if len(p.Parameters) == 0 && ts.Met {
+				t.Fatalf("target %s reported met before any measurement", ts.Name)
+			}
 		}
 	}
 	if !projected {
