@@ -117,10 +117,10 @@ func (h *History) Add(step []float64) {
 		h.kept++
 	}
 	h.steps++
-	n := float64(h.steps)
+	inv := 1 / float64(h.steps) // one division per step, not per value
 	for i, x := range step {
 		d := x - h.mu[i]
-		h.mu[i] += d / n
+		h.mu[i] += d * inv
 		h.m2[i] += d * (x - h.mu[i])
 		h.cur[i] += x
 	}

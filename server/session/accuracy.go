@@ -175,6 +175,7 @@ type monitor struct {
 	// arrive; pendingScores says it is waiting.
 	keptX         []float64
 	pendingScores bool
+	requests int // requests seen, for the pair cadence
 	// Cost control: time spent computing diagnostics, so that they take
 	// at most a tenth of the session's wall time.
 	spent, lastCost time.Duration
@@ -211,16 +212,23 @@ func (m *monitor) answered(req *kernels.Request, a *kernels.Answer) {
 		m.pendingScores = false
 		return
 	}
+	// Pairs are taken from two consecutive requests out of every period
+	// (one request when the state is small), so that certificates cost a
+	// bounded share of a step however many chains × dim values it has.
 	d := m.dim
-	for r := range req.Rows {
-		c := req.Chain[r]
-		x, g := req.Points[r*d:(r+1)*d], a.Grad[r*d:(r+1)*d]
-		if m.haveLast[c] {
-			m.curv.Add(m.lastX[c*d:(c+1)*d], x, m.lastG[c*d:(c+1)*d], g)
+	m.requests++
+	phase := m.requests % m.pairPeriod()
+	if phase <= 1 {
+		for r := range req.Rows {
+			c := req.Chain[r]
+			x, g := req.Points[r*d:(r+1)*d], a.Grad[r*d:(r+1)*d]
+			if m.haveLast[c] && phase == 1%m.pairPeriod() {
+				m.curv.Add(m.lastX[c*d:(c+1)*d], x, m.lastG[c*d:(c+1)*d], g)
+			}
+			copy(m.lastX[c*d:], x)
+			copy(m.lastG[c*d:], g)
+			m.haveLast[c] = true
 		}
-		copy(m.lastX[c*d:], x)
-		copy(m.lastG[c*d:], g)
-		m.haveLast[c] = true
 	}
 	// Scores of the last kept draws: the kernel asked for the gradient at
 	// exactly those positions (as LMC does at the start of each step).
@@ -229,6 +237,10 @@ func (m *monitor) answered(req *kernels.Request, a *kernels.Answer) {
 	}
 	m.pendingScores = false
 }
+
+// pairPeriod is how many requests apart certificate pairs are taken: 1
+// up to 8192 values per request, then proportionally rarer.
+func (m *monitor) pairPeriod() int { return max(1, m.chains*m.dim/8192) }
 
 // kept records the positions of a kept step; k is the kernel, which may
 // know the scores there already.
