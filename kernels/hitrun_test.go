@@ -17,7 +17,6 @@ import (
 	"gonum.org/v1/gonum/mat"
 	"gonum.org/v1/gonum/stat/distuv"
 
-	"sluice/kernels/diag"
 	"sluice/kernels/targets"
 )
 
@@ -54,56 +53,6 @@ func (f hitrunFunc) Curvature() (m, M float64) { return 0, math.Inf(1) }
 var hitrunGumbel = hitrunFunc{1, func(x []float64) float64 { return -x[0] - math.Exp(-x[0]) }}
 
 func hitrunGumbelCDF(x float64) float64 { return math.Exp(-math.Exp(-x)) }
-
-// hitrunDrive runs k until steps completed steps and returns the draws of
-// the steps after burnIn, out[coord][chain][draw].
-func hitrunDrive(k Kernel, eval func(*Request, *Answer), burnIn, steps int) [][][]float64 {
-	p, c := k.Dim(), k.Chains()
-	out := make([][][]float64, p)
-	for i := range out {
-		out[i] = make([][]float64, c)
-	}
-	a := &Answer{}
-	for k.Steps() < steps {
-		eval(k.Next(), a)
-		if !k.Tell(a) || k.Steps() <= burnIn {
-			continue
-		}
-		x := k.Positions()
-		for ch := range c {
-			for i := range p {
-				out[i][ch] = append(out[i][ch], x[ch*p+i])
-			}
-		}
-	}
-	return out
-}
-
-// hitrunStat returns the mean over chains and draws of f(draw) and its
-// Monte Carlo standard error sd/√ESS, ESS of the split chains from diag
-// (THEORY.md §9).
-func hitrunStat(d [][][]float64, f func(x []float64) float64) (est, mcse float64) {
-	p, c, n := len(d), len(d[0]), len(d[0][0])
-	series := make([][]float64, c)
-	x := make([]float64, p)
-	var s, s2 float64
-	for ch := range c {
-		series[ch] = make([]float64, n)
-		for t := range n {
-			for i := range p {
-				x[i] = d[i][ch][t]
-			}
-			v := f(x)
-			series[ch][t] = v
-			s += v
-			s2 += v * v
-		}
-	}
-	m := float64(c * n)
-	est = s / m
-	sd := math.Sqrt((s2 - m*est*est) / (m - 1))
-	return est, sd / math.Sqrt(diag.ESS(diag.SplitChains(series)))
-}
 
 // hitrunChi2 bins the values into equiprobable bins of the continuous
 // distribution with CDF cdf and returns Pearson's statistic and the
@@ -305,7 +254,7 @@ func TestHitRunLineStepExact(t *testing.T) {
 			}
 			k := NewHitAndRun(1, tc.chains, start, tc.opt, NewSource(7))
 			init := append([]float64(nil), k.Positions()...)
-			hitrunDrive(k, hitrunEval(hitrunGumbel), tc.steps, tc.steps)
+			driveKernel(k, hitrunEval(hitrunGumbel), tc.steps, tc.steps)
 			moved := 0
 			for i, v := range k.Positions() {
 				if v != init[i] {
@@ -333,14 +282,14 @@ func TestHitRunGaussian(t *testing.T) {
 	target := hitrunGaussian(t, mu, []float64{2, .5, .5, 1})
 	cov := target.Covariance()
 	k := NewHitAndRun(2, 16, []float64{-2, 2}, HitAndRunOptions{}, NewSource(37))
-	d := hitrunDrive(k, hitrunEval(target), 200, 4200)
+	d := driveKernel(k, hitrunEval(target), 200, 4200)
 	for i := range 2 {
-		est, se := hitrunStat(d, func(x []float64) float64 { return x[i] })
+		est, se := statOf(d, func(x []float64) float64 { return x[i] })
 		if z := (est - mu[i]) / se; math.Abs(z) > 4 {
 			t.Errorf("mean[%d] = %.5f, exact %v, MCSE %.5f (z = %.1f)", i, est, mu[i], se, z)
 		}
 		for j := i; j < 2; j++ {
-			est, se := hitrunStat(d, func(x []float64) float64 { return (x[i] - mu[i]) * (x[j] - mu[j]) })
+			est, se := statOf(d, func(x []float64) float64 { return (x[i] - mu[i]) * (x[j] - mu[j]) })
 			if z := (est - cov.At(i, j)) / se; math.Abs(z) > 4 {
 				t.Errorf("Σ[%d][%d] = %.5f, exact %.5f, MCSE %.5f (z = %.1f)", i, j, est, cov.At(i, j), se, z)
 			}
@@ -446,14 +395,14 @@ func TestHitRunLogisticPosterior(t *testing.T) {
 	}
 	t.Logf("posterior mean %v, covariance %v", mean, cov)
 	k := NewHitAndRun(2, 16, []float64{0, 0}, HitAndRunOptions{Width: 0.5}, NewSource(53))
-	d := hitrunDrive(k, hitrunEval(l), 100, 1200)
+	d := driveKernel(k, hitrunEval(l), 100, 1200)
 	for i := range 2 {
-		est, se := hitrunStat(d, func(x []float64) float64 { return x[i] })
+		est, se := statOf(d, func(x []float64) float64 { return x[i] })
 		if z := (est - mean[i]) / se; math.Abs(z) > 4 {
 			t.Errorf("mean[%d] = %.5f, quadrature %.5f, MCSE %.5f (z = %.1f)", i, est, mean[i], se, z)
 		}
 		for j := i; j < 2; j++ {
-			est, se := hitrunStat(d, func(x []float64) float64 { return (x[i] - mean[i]) * (x[j] - mean[j]) })
+			est, se := statOf(d, func(x []float64) float64 { return (x[i] - mean[i]) * (x[j] - mean[j]) })
 			if z := (est - cov[i][j]) / se; math.Abs(z) > 4 {
 				t.Errorf("cov[%d][%d] = %.5f, quadrature %.5f, MCSE %.5f (z = %.1f)", i, j, est, cov[i][j], se, z)
 			}
@@ -543,7 +492,7 @@ func TestHitRunStepAllocatesNothing(t *testing.T) {
 	eval := hitrunEval(target)
 	k := NewHitAndRun(3, 8, make([]float64, 3), HitAndRunOptions{}, NewSource(1))
 	a := &Answer{LogDensity: make([]float64, 16)}
-	hitrunDrive(k, eval, 5, 5)
+	driveKernel(k, eval, 5, 5)
 	if n := testing.AllocsPerRun(100, func() {
 		for {
 			eval(k.Next(), a)

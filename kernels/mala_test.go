@@ -183,14 +183,14 @@ func TestMALAGaussianUnbiased(t *testing.T) {
 		t.Fatal(err)
 	}
 	k := NewMALA(2, 16, h, 0, []float64{2, -2}, NewSource(31))
-	d := ozakiDrive(k, malaEval(target), 200, 10200)
+	d := driveKernel(k, malaEval(target), 200, 10200)
 	for i := range 2 {
-		est, se := ozakiStat(d, func(x []float64) float64 { return x[i] })
+		est, se := statOf(d, func(x []float64) float64 { return x[i] })
 		if z := est / se; math.Abs(z) > 4 {
 			t.Errorf("mean[%d] = %.5f, exact 0, MCSE %.5f (z = %.1f)", i, est, se, z)
 		}
 		for j := i; j < 2; j++ {
-			est, se := ozakiStat(d, func(x []float64) float64 { return x[i] * x[j] })
+			est, se := statOf(d, func(x []float64) float64 { return x[i] * x[j] })
 			if z := (est - cov.At(i, j)) / se; math.Abs(z) > 4 {
 				t.Errorf("Σ[%d][%d] = %.5f, exact %.5f, MCSE %.5f (z = %.1f)", i, j, est, cov.At(i, j), se, z)
 			}
@@ -281,7 +281,7 @@ func TestMALAAdaptation(t *testing.T) {
 				t.Fatalf("acceptance rates not restarted at burn-in: %v", r)
 			}
 			h := k.Step()
-			d := ozakiDrive(k, eval, burnIn, burnIn+4000)
+			d := driveKernel(k, eval, burnIn, burnIn+4000)
 			if k.Step() != h {
 				t.Fatalf("step moved from %v to %v after burn-in", h, k.Step())
 			}
@@ -421,15 +421,15 @@ func TestMALALogisticPosterior(t *testing.T) {
 	t.Logf("posterior mean %v, covariance %v", mean, cov)
 	const burnIn = 1000
 	k := NewMALA(2, 16, 0.05, burnIn, []float64{0, 0}, NewSource(51))
-	d := ozakiDrive(k, malaEval(l), burnIn, burnIn+6000)
+	d := driveKernel(k, malaEval(l), burnIn, burnIn+6000)
 	t.Logf("adapted step %.4f, acceptance rates %.3f", k.Step(), k.AcceptanceRates()[:4])
 	for i := range 2 {
-		est, se := ozakiStat(d, func(x []float64) float64 { return x[i] })
+		est, se := statOf(d, func(x []float64) float64 { return x[i] })
 		if z := (est - mean[i]) / se; math.Abs(z) > 4 {
 			t.Errorf("mean[%d] = %.5f, quadrature %.5f, MCSE %.5f (z = %.1f)", i, est, mean[i], se, z)
 		}
 		for j := i; j < 2; j++ {
-			est, se := ozakiStat(d, func(x []float64) float64 { return (x[i] - mean[i]) * (x[j] - mean[j]) })
+			est, se := statOf(d, func(x []float64) float64 { return (x[i] - mean[i]) * (x[j] - mean[j]) })
 			if z := (est - cov[i][j]) / se; math.Abs(z) > 4 {
 				t.Errorf("cov[%d][%d] = %.5f, quadrature %.5f, MCSE %.5f (z = %.1f)", i, j, est, cov[i][j], se, z)
 			}
@@ -461,8 +461,8 @@ func TestMALAStateRoundTrip(t *testing.T) {
 			if r.Steps() != k.Steps() || r.Step() != k.Step() || r.Adapting() != k.Adapting() || r.BurnIn() != 20 {
 				t.Fatalf("restored header wrong: steps %d h %v", r.Steps(), r.Step())
 			}
-			want := ozakiDrive(k, eval, 0, k.Steps()+30)
-			got := ozakiDrive(&r, eval, 0, r.Steps()+30)
+			want := driveKernel(k, eval, 0, k.Steps()+30)
+			got := driveKernel(&r, eval, 0, r.Steps()+30)
 			for i := range want {
 				for c := range want[i] {
 					for s := range want[i][c] {

@@ -11,8 +11,6 @@ import (
 	"testing"
 
 	"gonum.org/v1/gonum/mat"
-
-	"sluice/kernels/diag"
 )
 
 // ozakiEval answers any request for π = N(0, Q⁻¹) with a dense precision q
@@ -43,56 +41,6 @@ func ozakiEval(q []float64, p int) func(*Request, *Answer) {
 			}
 		}
 	}
-}
-
-// ozakiDrive runs k for steps completed steps, answering with eval, and
-// returns the draws after burnIn steps: out[coord][chain][draw].
-func ozakiDrive(k Kernel, eval func(*Request, *Answer), burnIn, steps int) [][][]float64 {
-	p, c := k.Dim(), k.Chains()
-	out := make([][][]float64, p)
-	for i := range out {
-		out[i] = make([][]float64, c)
-	}
-	a := &Answer{}
-	for k.Steps() < steps {
-		eval(k.Next(), a)
-		if !k.Tell(a) || k.Steps() <= burnIn {
-			continue
-		}
-		x := k.Positions()
-		for ch := range c {
-			for i := range p {
-				out[i][ch] = append(out[i][ch], x[ch*p+i])
-			}
-		}
-	}
-	return out
-}
-
-// ozakiStat returns the mean over all chains and draws of the series
-// f(draw) and its Monte Carlo standard error sd/√ESS, with the ESS of the
-// split chains from diag (THEORY.md §9 step 5).
-func ozakiStat(d [][][]float64, f func(x []float64) float64) (est, mcse float64) {
-	p, c, n := len(d), len(d[0]), len(d[0][0])
-	series := make([][]float64, c)
-	x := make([]float64, p)
-	var s, s2 float64
-	for ch := range c {
-		series[ch] = make([]float64, n)
-		for t := range n {
-			for i := range p {
-				x[i] = d[i][ch][t]
-			}
-			v := f(x)
-			series[ch][t] = v
-			s += v
-			s2 += v * v
-		}
-	}
-	m := float64(c * n)
-	est = s / m
-	sd := math.Sqrt((s2 - m*est*est) / (m - 1))
-	return est, sd / math.Sqrt(diag.ESS(diag.SplitChains(series)))
 }
 
 func ozakiClose(t *testing.T, what string, got, want, tol float64) {
@@ -366,14 +314,14 @@ func TestOzakiGaussianStationary(t *testing.T) {
 	q := []float64{2, .5, .5, 1}
 	cov := [2][2]float64{{0.5714285714285714, -0.2857142857142857}, {-0.2857142857142857, 1.1428571428571428}}
 	k := NewOzaki(2, 16, 2.0, []float64{3, -3}, NewSource(4))
-	d := ozakiDrive(k, ozakiEval(q, 2), 100, 4100)
+	d := driveKernel(k, ozakiEval(q, 2), 100, 4100)
 	for i := range 2 {
-		est, se := ozakiStat(d, func(x []float64) float64 { return x[i] })
+		est, se := statOf(d, func(x []float64) float64 { return x[i] })
 		if z := est / se; math.Abs(z) > 4 {
 			t.Errorf("mean[%d] = %.5f, exact 0, MCSE %.5f (z = %.1f)", i, est, se, z)
 		}
 		for j := i; j < 2; j++ {
-			est, se := ozakiStat(d, func(x []float64) float64 { return x[i] * x[j] })
+			est, se := statOf(d, func(x []float64) float64 { return x[i] * x[j] })
 			if z := (est - cov[i][j]) / se; math.Abs(z) > 4 {
 				t.Errorf("Σ[%d][%d] = %.5f, exact %.5f, MCSE %.5f (z = %.1f)", i, j, est, cov[i][j], se, z)
 			}
@@ -512,13 +460,13 @@ func TestOzakiKrylovGaussianStationary(t *testing.T) {
 	es.VectorsTo(&v)
 	lam := es.Values(nil)
 	k := NewOzakiKrylov(p, 4, 1.0, make([]float64, p), 1e-8, p, NewSource(13))
-	d := ozakiDrive(k, ozakiEval(q, p), 50, 450)
+	d := driveKernel(k, ozakiEval(q, p), 50, 450)
 	if it := k.LastStep().MaxIterations; it >= p {
 		t.Fatalf("Lanczos used %d iterations: the Krylov space was exhausted, not approximated", it)
 	} else {
 		t.Logf("Lanczos iterations per vector ≤ %d of %d", it, p)
 	}
-	est, se := ozakiStat(d, func(x []float64) float64 {
+	est, se := statOf(d, func(x []float64) float64 {
 		var s float64
 		for i := range p {
 			for j := range p {
@@ -531,7 +479,7 @@ func TestOzakiKrylovGaussianStationary(t *testing.T) {
 		t.Errorf("E[xᵀQx] = %.3f, exact %d, MCSE %.3f (z = %.1f)", est, p, se, z)
 	}
 	for _, col := range []int{0, p - 1} {
-		est, se := ozakiStat(d, func(x []float64) float64 {
+		est, se := statOf(d, func(x []float64) float64 {
 			var s float64
 			for i := range p {
 				s += v.At(i, col) * x[i]
@@ -640,8 +588,8 @@ func TestOzakiStateRoundTrip(t *testing.T) {
 			if tc.name == "krylov" && tc.k.Next().Rows == 3 && tc.k.Next().Need.Has(NeedGradient) {
 				t.Fatal("state taken at a step boundary; the test wants one mid-step")
 			}
-			want := ozakiDrive(tc.k, eval, 0, tc.k.Steps()+20)
-			got := ozakiDrive(r, eval, 0, r.Steps()+20)
+			want := driveKernel(tc.k, eval, 0, tc.k.Steps()+20)
+			got := driveKernel(r, eval, 0, r.Steps()+20)
 			for i := range want {
 				for c := range want[i] {
 					for s := range want[i][c] {
