@@ -175,7 +175,7 @@ type monitor struct {
 	// arrive; pendingScores says it is waiting.
 	keptX         []float64
 	pendingScores bool
-	requests int // requests seen, for the pair cadence
+	requests      int // requests seen, for the pair cadence
 	// Cost control: time spent computing diagnostics, so that they take
 	// at most a tenth of the session's wall time.
 	spent, lastCost time.Duration
