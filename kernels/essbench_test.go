@@ -60,6 +60,11 @@ func BenchmarkESSPerEvaluation(b *testing.B) {
 		{"ozaki", []float64{2, 8}, 20, 200, func(h float64, x []float64, s uint64) kernels.Kernel {
 			return kernels.NewOzaki(p, chains, h, x, kernels.NewSource(s))
 		}},
+		{"hit-and-run", []float64{0}, 200, 3000, func(h float64, x []float64, s uint64) kernels.Kernel {
+			// density-only: no step; the slice's initial width is the
+			// softest direction's sd
+			return kernels.NewHitAndRun(p, chains, x, kernels.HitAndRunOptions{Width: 1}, kernels.NewSource(s))
+		}},
 		{"ozaki-krylov", []float64{8}, 10, 100, func(h float64, x []float64, s uint64) kernels.Kernel {
 			return kernels.NewOzakiKrylov(p, chains, h, x, 1e-6, 40, kernels.NewSource(s))
 		}},

@@ -546,7 +546,7 @@ func TestHitRunPanicsOnProgrammerErrors(t *testing.T) {
 // the mean number of points per step over all chains, requests/step the
 // mean number of ask/tell rounds (the round trips a remote client sees).
 func BenchmarkHitRunStep(b *testing.B) {
-	for _, p := range []int{2, 4} {
+	for _, p := range []int{2, 10, 100, 1000} {
 		for _, c := range []int{8, 64} {
 			b.Run(fmt.Sprintf("hit-and-run/p=%d/chains=%d", p, c), func(b *testing.B) {
 				k := NewHitAndRun(p, c, make([]float64, p), HitAndRunOptions{}, NewSource(1))
