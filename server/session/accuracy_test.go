@@ -409,3 +409,16 @@ func TestCurvatureProbe(t *testing.T) {
 		t.Fatalf("estimated bound from the probe: %+v", b)
 	}
 }
+
+// A step far beyond LMC's stability limit (h > 2/λ, THEORY.md §11a) makes
+// the chains diverge; the session fails naming the step and the chain,
+// not the client's (then non-finite) gradients.
+func TestDivergenceNamesTheStep(t *testing.T) {
+	spec := baseSpec()
+	spec.Step, spec.DrawsPerChain = 5, 10000 // λ = 1: stable only below 2
+	_, res, err := drive(t, mustNew(t, spec, Limits{}), gaussian(1))
+	e, ok := AsError(err)
+	if !ok || e.Field != "register.step" || e.Chain < 0 || !strings.Contains(e.Reason, "diverged") || res.Finished.Reason != Failed {
+		t.Fatalf("got %v (%v)", err, res.Finished.Reason)
+	}
+}

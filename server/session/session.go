@@ -290,6 +290,11 @@ func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) e
 			continue
 		}
 		done := s.kernel.Tell(s.answer)
+		if done {
+			if err := s.diverged(); err != nil {
+				return s.fail(err, send)
+			}
+		}
 		if r, ok := s.kernel.(*kernels.Rejection); ok && r.Violation() != nil {
 			return s.fail(BadField("register.envelope.log_bound", "the declared envelope bound is violated: %v", r.Violation()), send)
 		}
@@ -301,6 +306,21 @@ func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) e
 			}
 		}
 	}
+}
+
+// diverged reports a chain whose position stopped being finite: the step
+// is too large for the target (LMC is stable only below 2/M, THEORY.md
+// §11a), and going on would only send the client points it cannot
+// evaluate.
+func (s *Session) diverged() *Error {
+	x, d := s.kernel.Positions(), s.spec.Dim
+	for i, v := range x {
+		if math.IsNaN(v) || math.IsInf(v, 0) {
+			return badValue("register.step", i/d, i%d, "the chain diverged at step %d (position %v): the step %v is too large for this target",
+				s.kernel.Steps(), v, s.spec.Step)
+		}
+	}
+	return nil
 }
 
 // keeps reports whether the draws after step are kept (burn-in, then
