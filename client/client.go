@@ -298,12 +298,15 @@ type Parameter struct {
 
 // Summary is what a finished session reports.
 type Summary struct {
-	Registered    Registered
-	Reason        Reason
-	Message       string
-	Progress      Progress
-	Parameters    []Parameter
-	DrawsReceived int64
+	Registered Registered
+	Reason     Reason
+	Message    string
+	Progress   Progress
+	Parameters []Parameter
+	// ParametersOmitted counts parameters left out of Parameters so the
+	// final frame fits the message limit (the first ones are kept).
+	ParametersOmitted int
+	DrawsReceived     int64
 }
 
 // Option adjusts Run.
@@ -601,6 +604,7 @@ func (r *runner) finish(f *sluicev1.Finished) {
 	r.sum.Reason = reasonFromWire[f.GetReason()]
 	r.sum.Message = f.GetMessage()
 	r.sum.Progress = progressFromWire(f.GetProgress())
+	r.sum.ParametersOmitted = int(f.GetParametersOmitted())
 	r.sum.Parameters = make([]Parameter, len(f.GetParameters()))
 	for i, p := range f.GetParameters() {
 		r.sum.Parameters[i] = Parameter{Name: p.GetName(), Mean: p.GetMean(), SD: p.GetSd(), Count: p.GetCount()}

@@ -122,7 +122,15 @@ func messageFromWire(f *sluicev1.SessionRequest) session.Message {
 type encoder struct {
 	buf []byte
 	i32 []int32
+	// maxParams is how many per-parameter entries a Progress or Finished
+	// frame may carry within the message limit (0: no cap).
+	maxParams int
 }
+
+// paramCap returns how many per-parameter entries fit in half of a
+// message of limit bytes: an entry with a name of up to 64 bytes and its
+// numbers takes at most 128.
+func paramCap(limit int64) int { return int(max(1, limit/2/128)) }
 
 func (e *encoder) floats(v []float64) []byte {
 	e.buf = putFloats(e.buf[:0], v)
@@ -175,14 +183,19 @@ func (e *encoder) frame(f session.Frame) *sluicev1.SessionResponse {
 			Seq: f.Seq, Rows: int32(f.Rows), Dim: int32(f.Dim), Values: e.floats(f.Values),
 			Chains: e.ints(f.Chains), Iterations: f.Iterations}}}
 	case *session.Progress:
-		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Progress{Progress: progressToWire(f)}}
+		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Progress{Progress: e.progress(f)}}
 	case *session.Finished:
-		ps := make([]*sluicev1.ParameterSummary, len(f.Parameters))
-		for i, p := range f.Parameters {
+		params, omitted := f.Parameters, 0
+		if e.maxParams > 0 && len(params) > e.maxParams {
+			params, omitted = params[:e.maxParams], len(params)-e.maxParams
+		}
+		ps := make([]*sluicev1.ParameterSummary, len(params))
+		for i, p := range params {
 			ps[i] = &sluicev1.ParameterSummary{Name: p.Name, Mean: p.Mean, Sd: p.SD, Count: p.Count}
 		}
 		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Finished{Finished: &sluicev1.Finished{
-			Reason: reasonToWire[f.Reason], Message: f.Message, Progress: progressToWire(&f.Progress), Parameters: ps}}}
+			Reason: reasonToWire[f.Reason], Message: f.Message, Progress: e.progress(&f.Progress), Parameters: ps,
+			ParametersOmitted: int32(omitted)}}}
 	}
 	panic("server: unknown frame type")
 }
@@ -201,6 +214,18 @@ var reasonToWire = map[session.Reason]sluicev1.FinishReason{
 	session.Failed:         sluicev1.FinishReason_FINISH_REASON_FAILED,
 	session.Shutdown:       sluicev1.FinishReason_FINISH_REASON_SHUTDOWN,
 	session.TargetMet:      sluicev1.FinishReason_FINISH_REASON_TARGET_MET,
+}
+
+// progress converts p, keeping the per-parameter list within the cap.
+func (e *encoder) progress(p *session.Progress) *sluicev1.Progress {
+	if e.maxParams > 0 && len(p.Parameters) > e.maxParams {
+		q := *p
+		q.Parameters = p.Parameters[:e.maxParams]
+		w := progressToWire(&q)
+		w.ParametersOmitted = int32(len(p.Parameters) - e.maxParams)
+		return w
+	}
+	return progressToWire(p)
 }
 
 func progressToWire(p *session.Progress) *sluicev1.Progress {

@@ -26,7 +26,7 @@ func (s *Server) Follow(req *sluicev1.FollowRequest, stream grpc.ServerStreaming
 		return withField(codes.OutOfRange, "from_seq", "%d is beyond the latest draw (next is %d)", from, next)
 	}
 	rows := max(1, int((f.limit-1024)/int64(8*f.dim+16)))
-	var enc encoder
+	enc := encoder{maxParams: paramCap(f.limit)}
 	for {
 		d, err := f.log.Read(stream.Context(), from, rows)
 		switch {

@@ -505,3 +505,26 @@ func float64frombytes(b []byte) float64 {
 	}
 	return math.Float64frombits(u)
 }
+
+// With more parameters than one message can summarise, Progress and
+// Finished carry the first ones and say how many were left out, instead
+// of failing the send.
+func TestManyParametersFitTheMessageLimit(t *testing.T) {
+	conn, _ := start(t, server.Options{})
+	const dim = 20000
+	spec := client.Spec{Dim: dim, Chains: 1, Start: make([]float64, dim), Step: 0.1, Seed: 1, DrawsPerChain: 20,
+		MaxMessageBytes: 1 << 20, ProgressEverySteps: 10}
+	sum, err := client.Run(testCtx(t), conn, spec, func(_ context.Context, b *client.Batch) error {
+		for i, x := range b.Points {
+			b.Grad[i] = -x
+		}
+		return nil
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	kept := len(sum.Parameters)
+	if sum.Reason != client.DrawsCollected || kept == 0 || kept+sum.ParametersOmitted != dim || sum.Parameters[0].Name != "theta[0]" {
+		t.Fatalf("reason %v, %d parameters kept, %d omitted", sum.Reason, kept, sum.ParametersOmitted)
+	}
+}

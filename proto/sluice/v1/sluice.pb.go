@@ -2374,9 +2374,12 @@ type Progress struct {
 	// Gradient noise, for stochastic gradients.
 	Noise *NoiseEstimate `protobuf:"bytes,14,opt,name=noise,proto3" json:"noise,omitempty"`
 	// What the kernel reports of itself.
-	Kernel        *KernelReport `protobuf:"bytes,15,opt,name=kernel,proto3" json:"kernel,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	Kernel *KernelReport `protobuf:"bytes,15,opt,name=kernel,proto3" json:"kernel,omitempty"`
+	// Parameters left out of `parameters` so that the frame fits the message
+	// limit (the first ones are sent); 0 normally.
+	ParametersOmitted int32 `protobuf:"varint,16,opt,name=parameters_omitted,json=parametersOmitted,proto3" json:"parameters_omitted,omitempty"`
+	unknownFields     protoimpl.UnknownFields
+	sizeCache         protoimpl.SizeCache
 }
 
 func (x *Progress) Reset() {
@@ -2512,6 +2515,13 @@ func (x *Progress) GetKernel() *KernelReport {
 		return x.Kernel
 	}
 	return nil
+}
+
+func (x *Progress) GetParametersOmitted() int32 {
+	if x != nil {
+		return x.ParametersOmitted
+	}
+	return 0
 }
 
 // KernelReport holds a kernel's own figures.
@@ -3111,10 +3121,13 @@ type Finished struct {
 	Message string `protobuf:"bytes,2,opt,name=message,proto3" json:"message,omitempty"`
 	// Final budget figures.
 	Progress *Progress `protobuf:"bytes,3,opt,name=progress,proto3" json:"progress,omitempty"`
-	// Summary of all kept draws, per parameter.
-	Parameters    []*ParameterSummary `protobuf:"bytes,4,rep,name=parameters,proto3" json:"parameters,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	// Summary of all kept draws, per parameter (the first ones, when there
+	// are too many for one message: see parameters_omitted).
+	Parameters []*ParameterSummary `protobuf:"bytes,4,rep,name=parameters,proto3" json:"parameters,omitempty"`
+	// Parameters left out of `parameters` to fit the message limit.
+	ParametersOmitted int32 `protobuf:"varint,5,opt,name=parameters_omitted,json=parametersOmitted,proto3" json:"parameters_omitted,omitempty"`
+	unknownFields     protoimpl.UnknownFields
+	sizeCache         protoimpl.SizeCache
 }
 
 func (x *Finished) Reset() {
@@ -3173,6 +3186,13 @@ func (x *Finished) GetParameters() []*ParameterSummary {
 		return x.Parameters
 	}
 	return nil
+}
+
+func (x *Finished) GetParametersOmitted() int32 {
+	if x != nil {
+		return x.ParametersOmitted
+	}
+	return 0
 }
 
 // ParameterSummary summarises the kept draws of one parameter over all
@@ -3423,7 +3443,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x06chains\x18\x05 \x03(\x05R\x06chains\x12\x1e\n" +
 	"\n" +
 	"iterations\x18\x06 \x03(\x03R\n" +
-	"iterations\"\x84\x05\n" +
+	"iterations\"\xb3\x05\n" +
 	"\bProgress\x12&\n" +
 	"\x05state\x18\x01 \x01(\x0e2\x10.sluice.v1.StateR\x05state\x12\x14\n" +
 	"\x05steps\x18\x02 \x01(\x03R\x05steps\x12)\n" +
@@ -3443,7 +3463,8 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\tcurvature\x18\f \x01(\v2\x1c.sluice.v1.CurvatureEstimateR\tcurvature\x121\n" +
 	"\atargets\x18\r \x03(\v2\x17.sluice.v1.TargetStatusR\atargets\x12.\n" +
 	"\x05noise\x18\x0e \x01(\v2\x18.sluice.v1.NoiseEstimateR\x05noise\x12/\n" +
-	"\x06kernel\x18\x0f \x01(\v2\x17.sluice.v1.KernelReportR\x06kernel\"\xdd\x02\n" +
+	"\x06kernel\x18\x0f \x01(\v2\x17.sluice.v1.KernelReportR\x06kernel\x12-\n" +
+	"\x12parameters_omitted\x18\x10 \x01(\x05R\x11parametersOmitted\"\xdd\x02\n" +
 	"\fKernelReport\x12\x12\n" +
 	"\x04step\x18\x01 \x01(\x01R\x04step\x12\x1a\n" +
 	"\badapting\x18\x02 \x01(\bR\badapting\x12)\n" +
@@ -3494,14 +3515,15 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x04want\x18\x02 \x01(\x01R\x04want\x12\x18\n" +
 	"\acurrent\x18\x03 \x01(\x01R\acurrent\x12\x10\n" +
 	"\x03met\x18\x04 \x01(\bR\x03met\x123\n" +
-	"\x15projected_evaluations\x18\x05 \x01(\x03R\x14projectedEvaluations\"\xc3\x01\n" +
+	"\x15projected_evaluations\x18\x05 \x01(\x03R\x14projectedEvaluations\"\xf2\x01\n" +
 	"\bFinished\x12/\n" +
 	"\x06reason\x18\x01 \x01(\x0e2\x17.sluice.v1.FinishReasonR\x06reason\x12\x18\n" +
 	"\amessage\x18\x02 \x01(\tR\amessage\x12/\n" +
 	"\bprogress\x18\x03 \x01(\v2\x13.sluice.v1.ProgressR\bprogress\x12;\n" +
 	"\n" +
 	"parameters\x18\x04 \x03(\v2\x1b.sluice.v1.ParameterSummaryR\n" +
-	"parameters\"`\n" +
+	"parameters\x12-\n" +
+	"\x12parameters_omitted\x18\x05 \x01(\x05R\x11parametersOmitted\"`\n" +
 	"\x10ParameterSummary\x12\x12\n" +
 	"\x04name\x18\x01 \x01(\tR\x04name\x12\x12\n" +
 	"\x04mean\x18\x02 \x01(\x01R\x04mean\x12\x0e\n" +

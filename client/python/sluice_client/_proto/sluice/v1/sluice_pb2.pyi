@@ -131,16 +131,18 @@ class Evaluations(_message.Message):
     def __init__(self, request_id: _Optional[int] = ..., first_row: _Optional[int] = ..., rows: _Optional[int] = ..., dim: _Optional[int] = ..., gradients: _Optional[bytes] = ..., log_densities: _Optional[bytes] = ..., hessians: _Optional[bytes] = ..., hessian_vectors: _Optional[bytes] = ...) -> None: ...
 
 class Finished(_message.Message):
-    __slots__ = ["message", "parameters", "progress", "reason"]
+    __slots__ = ["message", "parameters", "parameters_omitted", "progress", "reason"]
     MESSAGE_FIELD_NUMBER: _ClassVar[int]
     PARAMETERS_FIELD_NUMBER: _ClassVar[int]
+    PARAMETERS_OMITTED_FIELD_NUMBER: _ClassVar[int]
     PROGRESS_FIELD_NUMBER: _ClassVar[int]
     REASON_FIELD_NUMBER: _ClassVar[int]
     message: str
     parameters: _containers.RepeatedCompositeFieldContainer[ParameterSummary]
+    parameters_omitted: int
     progress: Progress
     reason: FinishReason
-    def __init__(self, reason: _Optional[_Union[FinishReason, str]] = ..., message: _Optional[str] = ..., progress: _Optional[_Union[Progress, _Mapping]] = ..., parameters: _Optional[_Iterable[_Union[ParameterSummary, _Mapping]]] = ...) -> None: ...
+    def __init__(self, reason: _Optional[_Union[FinishReason, str]] = ..., message: _Optional[str] = ..., progress: _Optional[_Union[Progress, _Mapping]] = ..., parameters: _Optional[_Iterable[_Union[ParameterSummary, _Mapping]]] = ..., parameters_omitted: _Optional[int] = ...) -> None: ...
 
 class FollowRequest(_message.Message):
     __slots__ = ["from_seq", "session_id"]
@@ -317,7 +319,7 @@ class Points(_message.Message):
     def __init__(self, request_id: _Optional[int] = ..., first_row: _Optional[int] = ..., rows: _Optional[int] = ..., dim: _Optional[int] = ..., points: _Optional[bytes] = ..., chains: _Optional[_Iterable[int]] = ..., quantities: _Optional[_Iterable[_Union[Quantity, str]]] = ..., total_rows: _Optional[int] = ..., vectors: _Optional[bytes] = ..., minibatch_groups: _Optional[_Iterable[int]] = ..., full_data: bool = ..., replicates: _Optional[int] = ...) -> None: ...
 
 class Progress(_message.Message):
-    __slots__ = ["bound", "curvature", "draws_sent", "evaluations_left", "evaluations_per_second", "evaluations_used", "kernel", "ksd", "noise", "parameters", "seconds_left", "seconds_used", "state", "steps", "targets"]
+    __slots__ = ["bound", "curvature", "draws_sent", "evaluations_left", "evaluations_per_second", "evaluations_used", "kernel", "ksd", "noise", "parameters", "parameters_omitted", "seconds_left", "seconds_used", "state", "steps", "targets"]
     BOUND_FIELD_NUMBER: _ClassVar[int]
     CURVATURE_FIELD_NUMBER: _ClassVar[int]
     DRAWS_SENT_FIELD_NUMBER: _ClassVar[int]
@@ -328,6 +330,7 @@ class Progress(_message.Message):
     KSD_FIELD_NUMBER: _ClassVar[int]
     NOISE_FIELD_NUMBER: _ClassVar[int]
     PARAMETERS_FIELD_NUMBER: _ClassVar[int]
+    PARAMETERS_OMITTED_FIELD_NUMBER: _ClassVar[int]
     SECONDS_LEFT_FIELD_NUMBER: _ClassVar[int]
     SECONDS_USED_FIELD_NUMBER: _ClassVar[int]
     STATE_FIELD_NUMBER: _ClassVar[int]
@@ -343,12 +346,13 @@ class Progress(_message.Message):
     ksd: float
     noise: NoiseEstimate
     parameters: _containers.RepeatedCompositeFieldContainer[ParameterDiagnostics]
+    parameters_omitted: int
     seconds_left: float
     seconds_used: float
     state: State
     steps: int
     targets: _containers.RepeatedCompositeFieldContainer[TargetStatus]
-    def __init__(self, state: _Optional[_Union[State, str]] = ..., steps: _Optional[int] = ..., evaluations_used: _Optional[int] = ..., evaluations_left: _Optional[int] = ..., seconds_used: _Optional[float] = ..., seconds_left: _Optional[float] = ..., draws_sent: _Optional[int] = ..., evaluations_per_second: _Optional[float] = ..., parameters: _Optional[_Iterable[_Union[ParameterDiagnostics, _Mapping]]] = ..., ksd: _Optional[float] = ..., bound: _Optional[_Union[Bound, _Mapping]] = ..., curvature: _Optional[_Union[CurvatureEstimate, _Mapping]] = ..., targets: _Optional[_Iterable[_Union[TargetStatus, _Mapping]]] = ..., noise: _Optional[_Union[NoiseEstimate, _Mapping]] = ..., kernel: _Optional[_Union[KernelReport, _Mapping]] = ...) -> None: ...
+    def __init__(self, state: _Optional[_Union[State, str]] = ..., steps: _Optional[int] = ..., evaluations_used: _Optional[int] = ..., evaluations_left: _Optional[int] = ..., seconds_used: _Optional[float] = ..., seconds_left: _Optional[float] = ..., draws_sent: _Optional[int] = ..., evaluations_per_second: _Optional[float] = ..., parameters: _Optional[_Iterable[_Union[ParameterDiagnostics, _Mapping]]] = ..., ksd: _Optional[float] = ..., bound: _Optional[_Union[Bound, _Mapping]] = ..., curvature: _Optional[_Union[CurvatureEstimate, _Mapping]] = ..., targets: _Optional[_Iterable[_Union[TargetStatus, _Mapping]]] = ..., noise: _Optional[_Union[NoiseEstimate, _Mapping]] = ..., kernel: _Optional[_Union[KernelReport, _Mapping]] = ..., parameters_omitted: _Optional[int] = ...) -> None: ...
 
 class Register(_message.Message):
     __slots__ = ["anchor_every", "burn_in", "chains", "curvature", "curvature_probe_iterations", "dim", "draws_per_chain", "envelope", "fixed_point_iterations", "fixed_point_tolerance", "friction", "inverse_mass", "keep_every", "kernel", "krylov_max_iterations", "krylov_tolerance", "max_evaluations", "max_message_bytes", "max_seconds", "names", "noise", "progress_every_steps", "progress_interval_seconds", "schedule", "seed", "slice_max_expansions", "slice_width", "start", "start_rows", "step", "wants"]
