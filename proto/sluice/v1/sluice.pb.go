@@ -1087,9 +1087,12 @@ type Register struct {
 	// Stop with FINISH_REASON_DRAWS_COLLECTED once every chain has this many
 	// kept draws. 0 means no limit.
 	DrawsPerChain int64 `protobuf:"varint,9,opt,name=draws_per_chain,json=drawsPerChain,proto3" json:"draws_per_chain,omitempty"`
-	// Budget: the maximum number of evaluated points (one point = one row of
-	// one Points frame, whatever it asks for). Never exceeded; the session
-	// finishes with FINISH_REASON_BUDGET_SPENT instead. 0 means no limit.
+	// Budget: the maximum number of evaluations. One evaluation is one row of
+	// one Points frame, whatever it asks for; with stochastic gradients each
+	// replicate counts, and a full-data row counts data_size /
+	// minibatch_size (rounded up) when both are declared. Never exceeded:
+	// the session finishes with FINISH_REASON_BUDGET_SPENT before a request
+	// that would exceed it. 0 means no limit.
 	MaxEvaluations int64 `protobuf:"varint,10,opt,name=max_evaluations,json=maxEvaluations,proto3" json:"max_evaluations,omitempty"`
 	// Budget: maximum wall time of the session in seconds, measured by the
 	// server from the Register frame. 0 means no limit (the server may impose
@@ -1832,7 +1835,8 @@ type Registered struct {
 	Kernel string `protobuf:"bytes,3,opt,name=kernel,proto3" json:"kernel,omitempty"`
 	// The step size actually used.
 	Step float64 `protobuf:"fixed64,4,opt,name=step,proto3" json:"step,omitempty"`
-	// Points evaluated per completed step over all chains.
+	// Evaluations per completed step over all chains (for kernels whose cost
+	// varies, an estimate: see Progress.kernel).
 	EvaluationsPerStep int64 `protobuf:"varint,5,opt,name=evaluations_per_step,json=evaluationsPerStep,proto3" json:"evaluations_per_step,omitempty"`
 	// The largest message in bytes the server sends or accepts on this
 	// session (the negotiated limit).
@@ -1946,7 +1950,10 @@ type Points struct {
 	Dim int32 `protobuf:"varint,4,opt,name=dim,proto3" json:"dim,omitempty"`
 	// The points, rows x dim, row-major float64.
 	Points []byte `protobuf:"bytes,5,opt,name=points,proto3" json:"points,omitempty"`
-	// Chain index of each row (rows entries).
+	// Chain index of each row (rows entries). Usually one row per chain; a
+	// kernel may ask several points of one chain in a request (hit-and-run's
+	// two interval ends, sgld-cv's point and anchor), and then a chain
+	// appears more than once.
 	Chains []int32 `protobuf:"varint,6,rep,packed,name=chains,proto3" json:"chains,omitempty"`
 	// What to evaluate at every point.
 	Quantities []Quantity `protobuf:"varint,7,rep,packed,name=quantities,proto3,enum=sluice.v1.Quantity" json:"quantities,omitempty"`
@@ -2345,7 +2352,8 @@ type Progress struct {
 	State State                  `protobuf:"varint,1,opt,name=state,proto3,enum=sluice.v1.State" json:"state,omitempty"`
 	// Completed steps per chain.
 	Steps int64 `protobuf:"varint,2,opt,name=steps,proto3" json:"steps,omitempty"`
-	// Points evaluated so far (the budget's unit).
+	// Evaluations so far, in the budget's unit (see
+	// Register.max_evaluations).
 	EvaluationsUsed int64 `protobuf:"varint,3,opt,name=evaluations_used,json=evaluationsUsed,proto3" json:"evaluations_used,omitempty"`
 	// Points left in the budget; -1 when max_evaluations is 0 (no limit).
 	EvaluationsLeft int64 `protobuf:"varint,4,opt,name=evaluations_left,json=evaluationsLeft,proto3" json:"evaluations_left,omitempty"`
