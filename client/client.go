@@ -7,6 +7,7 @@ import (
 	"fmt"
 	"io"
 	"math"
+	"slices"
 	"time"
 
 	"google.golang.org/grpc"
@@ -676,16 +677,24 @@ func resize(s []float64, n int) []float64 {
 	return s[:n]
 }
 
+// putFloats appends v to dst as little-endian float64 bytes.
 func putFloats(dst []byte, v []float64) []byte {
-	for _, x := range v {
-		dst = binary.LittleEndian.AppendUint64(dst, math.Float64bits(x))
+	n := len(dst)
+	dst = slices.Grow(dst, 8*len(v))[:n+8*len(v)]
+	b := dst[n:]
+	for i, x := range v {
+		binary.LittleEndian.PutUint64(b[8*i:], math.Float64bits(x))
 	}
 	return dst
 }
 
+// getFloats appends the little-endian float64 values of b to dst.
 func getFloats(dst []float64, b []byte) []float64 {
-	for i := 0; i+8 <= len(b); i += 8 {
-		dst = append(dst, math.Float64frombits(binary.LittleEndian.Uint64(b[i:])))
+	n, m := len(dst), len(b)/8
+	dst = slices.Grow(dst, m)[:n+m]
+	out := dst[n:]
+	for i := range out {
+		out[i] = math.Float64frombits(binary.LittleEndian.Uint64(b[8*i:]))
 	}
 	return dst
 }

@@ -19,6 +19,23 @@ func putFloats(dst []byte, v []float64) []byte {
 	return dst
 }
 
+// floatsInto decodes a wire array into dst's storage (grown when too
+// small); field names it in the error. An empty array gives dst[:0].
+func floatsInto(dst []float64, field string, b []byte) ([]float64, error) {
+	if len(b)%8 != 0 {
+		return nil, session.BadField(field, "has %d bytes, not a whole number of float64 values", len(b))
+	}
+	n := len(b) / 8
+	if cap(dst) < n {
+		dst = make([]float64, n)
+	}
+	dst = dst[:n]
+	for i := range dst {
+		dst[i] = math.Float64frombits(binary.LittleEndian.Uint64(b[8*i:]))
+	}
+	return dst, nil
+}
+
 // floats decodes a wire array; field names it in the error.
 func floats(field string, b []byte) ([]float64, error) {
 	if len(b)%8 != 0 {

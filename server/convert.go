@@ -86,14 +86,17 @@ func scheduleFromWire(s *sluicev1.StepSchedule) *kernels.SGLDSchedule {
 }
 
 // messageFromWire turns one received frame into an engine Message.
-func messageFromWire(f *sluicev1.SessionRequest) session.Message {
+// Gradients are decoded into *gradBuf (grown as needed), which the caller
+// owns and must not reuse while the engine may still read the message.
+func messageFromWire(f *sluicev1.SessionRequest, gradBuf *[]float64) session.Message {
 	switch f := f.GetFrame().(type) {
 	case *sluicev1.SessionRequest_Evaluations:
 		e := f.Evaluations
-		grad, err := floats("evaluations.gradients", e.GetGradients())
+		grad, err := floatsInto((*gradBuf)[:0], "evaluations.gradients", e.GetGradients())
 		if err != nil {
 			return session.Message{Err: err}
 		}
+		*gradBuf = grad
 		ld, err := floats("evaluations.log_densities", e.GetLogDensities())
 		if err != nil {
 			return session.Message{Err: err}

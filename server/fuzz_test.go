@@ -49,7 +49,8 @@ func FuzzEvaluations(f *testing.F) {
 		if proto.Unmarshal(b, &req) != nil {
 			return
 		}
-		m := messageFromWire(&req)
+		var buf []float64
+		m := messageFromWire(&req, &buf)
 		if m.Err != nil {
 			if _, ok := session.AsError(m.Err); !ok {
 				t.Fatalf("decode error is not a field error: %v", m.Err)

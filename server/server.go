@@ -75,6 +75,9 @@ type followed struct {
 	finished time.Time // zero while the session runs
 }
 
+// inboxSize is the capacity of a session's queue of received messages.
+const inboxSize = 16
+
 // ServiceName is the health-check name of the sampling service.
 const ServiceName = "sluice.v1.SluiceService"
 
@@ -253,14 +256,20 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 
 	ctx, cancel := context.WithCancel(stream.Context())
 	defer cancel()
-	in := make(chan session.Message, 16)
+	in := make(chan session.Message, inboxSize)
 	limit := sess.MessageLimit()
 	if !s.track(id, in, sess) {
 		return status.Error(codes.Unavailable, "server shutting down")
 	}
 	defer s.untrack(id)
 	go func() { // reader: owned by this handler
-		for {
+		// Gradients are decoded into a ring of reused buffers. The engine
+		// takes messages in order and has finished with message j (copied
+		// its values) before it takes j+1; the reader is at most inboxSize
+		// messages ahead of it, plus the one in hand, so a ring of
+		// inboxSize+2 buffers is never overwritten while in use.
+		var ring [inboxSize + 2][]float64
+		for n := 0; ; n++ {
 			f, err := stream.Recv()
 			var m session.Message
 			switch {
@@ -270,7 +279,7 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 				m = session.Message{Err: &session.Error{Kind: session.TooLarge, Field: "evaluations", Chain: -1, Coord: -1,
 					Reason: fmt.Sprintf("message of %d bytes exceeds the session's limit of %d bytes", proto.Size(f), limit)}}
 			default:
-				m = messageFromWire(f)
+				m = messageFromWire(f, &ring[n%len(ring)])
 			}
 			select {
 			case in <- m:

@@ -259,7 +259,7 @@ func (m *monitor) kept(k kernels.Kernel) {
 // total cost stays within Limits.DiagnosticsShare (a tenth) of the
 // session's wall time: a report is
 // skipped (the last values stand) when the expected cost of one more —
-// the last one's, or 100 ns per kept value before the first — would
+// the last one's, or 0.5 µs per kept value before the first — would
 // exceed that share. The final report always refreshes them.
 func (m *monitor) measure(p *Progress, final bool) {
 	p.Curvature = CurvatureEstimate{Pairs: int64(m.curv.Pairs()), SmoothnessAtLeast: m.curv.SmoothnessFloor(),
@@ -268,7 +268,7 @@ func (m *monitor) measure(p *Progress, final bool) {
 	p.Parameters = m.params
 	expect := m.lastCost
 	if expect == 0 {
-		expect = time.Duration(100 * m.hist.Kept() * m.chains * m.dim)
+		expect = time.Duration(500 * m.hist.Kept() * m.chains * m.dim) // measured: ~0.5 µs per kept value
 	}
 	if !final && m.share >= 0 && float64(m.spent+expect) > m.share*float64(p.Elapsed) {
 		return

@@ -431,14 +431,22 @@ func (s *Session) accept(req *kernels.Request, ev *Evaluations) *Error {
 		if len(ev.Grad) != rows*reps*dim {
 			return BadField("evaluations.gradients", "has %d values, want rows × replicates × dim = %d", len(ev.Grad), rows*reps*dim)
 		}
-		for i, v := range ev.Grad {
-			if math.IsNaN(v) || math.IsInf(v, 0) {
-				return badValue("evaluations.gradients", req.Chain[ev.FirstRow+i/(dim*reps)], i%dim, "value %v is not finite", v)
-			}
-		}
 		if reps == 1 {
-			copy(s.answer.Grad[ev.FirstRow*dim:], ev.Grad)
+			// Check and copy in one pass; on a bad value the session fails,
+			// so a partial copy does not matter.
+			dst := s.answer.Grad[ev.FirstRow*dim : (ev.FirstRow+rows)*dim]
+			for i, v := range ev.Grad {
+				if math.IsNaN(v) || math.IsInf(v, 0) {
+					return badValue("evaluations.gradients", req.Chain[ev.FirstRow+i/dim], i%dim, "value %v is not finite", v)
+				}
+				dst[i] = v
+			}
 		} else {
+			for i, v := range ev.Grad {
+				if math.IsNaN(v) || math.IsInf(v, 0) {
+					return badValue("evaluations.gradients", req.Chain[ev.FirstRow+i/(dim*reps)], i%dim, "value %v is not finite", v)
+				}
+			}
 			s.noise.replicates(s.answer.Grad[ev.FirstRow*dim:(ev.FirstRow+rows)*dim], ev.Grad, rows, reps, dim)
 		}
 	} else if len(ev.Grad) != 0 {
