@@ -19,7 +19,7 @@ const python3 = "/usr/bin/python3"
 // JSON summary sits beside each file.
 func TestNPYMatchesCSVReadByNumpy(t *testing.T) {
 	dir := t.TempDir()
-	ctx, cancel := context.WithTimeout(context.Background(), 60*time.Second)
+	ctx, cancel := context.WithTimeout(context.Background(), 5*time.Minute)
 	defer cancel()
 	for _, name := range []string{"d.csv", "d.npy"} {
 		args := []string{"demo", "--seed", "21", "--chains", "3", "--draws", "40", "--burn-in", "20", "--keep-every", "2", "--quiet", "--out", filepath.Join(dir, name)}
