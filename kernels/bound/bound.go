@@ -9,9 +9,9 @@ import (
 type Metric int
 
 const (
-	// TV is the total variation distance (THEORY.md §1).
+	// TV is the total variation distance.
 	TV Metric = iota + 1
-	// W2 is the 2-Wasserstein distance (THEORY.md §2).
+	// W2 is the 2-Wasserstein distance.
 	W2
 )
 
@@ -33,8 +33,9 @@ func (m Metric) String() string {
 type Source int
 
 const (
-	// Estimated: m and M were estimated from gradients (THEORY.md §12);
-	// the bound is an estimate, not a guarantee.
+	// Estimated: m and M were estimated from gradients (curvature
+	// certificates and probes, docs/methods.md); the bound is an
+	// estimate, not a guarantee.
 	Estimated Source = iota
 	// Declared: the client declared m and M; the bound holds under the
 	// declared assumptions.
@@ -66,16 +67,16 @@ type Setting struct {
 	// Dim is the dimension p ≥ 1.
 	Dim int
 	// SecondMoment is μ₂ ≥ E_π‖θ − θ̄‖² about the penalty centre θ̄. TV
-	// with m = 0 only (THEORY.md §1.2), where it is required.
+	// with m = 0 only (the penalised target), where it is required.
 	SecondMoment float64
 	// StartDistance is W0 ≥ W2(ν₀, π), W2 only. Zero means √(p/m), the
-	// bound for a point start at the minimiser θ* (THEORY.md §2.1).
+	// bound for a point start at the minimiser θ* (E_π‖θ − θ*‖² ≤ p/m).
 	StartDistance float64
 	// Bias is δ ≥ 0 with E‖E[ζ_k | θ_k, past]‖² ≤ δ²·p for the gradient
-	// error ζ_k, W2 only (THEORY.md §2.2).
+	// error ζ_k, W2 only (Dalalyan and Karagulyan 2019).
 	Bias float64
 	// Noise is σ ≥ 0 with E‖ζ_k − E[ζ_k | θ_k, past]‖² ≤ σ²·p, W2 only
-	// (THEORY.md §2.2). For unbiased minibatch gradients σ²·p is the
+	// (Dalalyan and Karagulyan 2019). For unbiased minibatch gradients σ²·p is the
 	// expected squared norm of the minibatch error.
 	Noise float64
 	// Source says whether m and M were declared or estimated.
@@ -92,7 +93,7 @@ type Schedule struct {
 	// Iterations is K = ⌈T/h⌉, the number of LMC steps.
 	Iterations int
 	// Penalty is λ > 0 when the chain must run on the penalised target
-	// π_λ ∝ π·exp(−λ‖θ−θ̄‖²/2) (TV with m = 0, THEORY.md §1.2): the
+	// π_λ ∝ π·exp(−λ‖θ−θ̄‖²/2) (TV with m = 0, derived here): the
 	// engine adds λ(θ − θ̄) to ∇f. Zero otherwise.
 	Penalty float64
 }
@@ -110,18 +111,19 @@ type Bound struct {
 	// Discretisation is the error of the Euler step with exact gradients.
 	Discretisation float64
 	// Bias is the W2 term δ√p/m of biased gradients, or the TV term
-	// λμ₂/2 of the penalty (THEORY.md §1.2). Neither shrinks with h.
+	// λμ₂/2 of the penalty. Neither shrinks with h.
 	Bias float64
 	// Noise is the W2 term of zero-mean gradient noise.
 	Noise float64
 	// Total is the sum of the terms: the bound. A TV total above 1 says
 	// nothing (TV ≤ 1 always); it is reported as the theorem gives it.
 	Total float64
-	// LargeStep is true when the W2 bound is branch (b) of THEORY.md
-	// §2.1, 2/(m+M) < h < 2/M.
+	// LargeStep is true when the W2 bound is the large-step branch of
+	// Dalalyan and Karagulyan (2019), 2/(m+M) < h < 2/M.
 	LargeStep bool
-	// Recalled is true when the constants are [MEM] in THEORY.md:
-	// recalled, unverified. It is true for every bound here.
+	// Recalled is true when the bound's constants are recalled from the
+	// paper it cites rather than checked against its text (checked here
+	// only on Gaussian targets). It is true for every bound here.
 	Recalled bool
 	// Source says whether m and M were declared or estimated.
 	Source Source

@@ -3,18 +3,19 @@
 //
 // Everything here is for unadjusted Langevin (LMC, the kernels package's
 // lmc) on π(θ) ∝ exp(−f(θ)) on R^p, with m·I ⪯ ∇²f ⪯ M·I (m the strong
-// convexity, M the smoothness, κ = M/m; THEORY.md §0.1). Nothing here runs
+// convexity, M the smoothness, κ = M/m). Nothing here runs
 // a chain: the functions turn declared (or estimated) constants into a
 // schedule, and a step h and a step count k into the bound the theory gives.
 //
-// Status of the formulas (THEORY.md §0). Every bound below with a numeric
-// constant in it is labelled [MEM] in THEORY.md: recalled from the paper,
-// not verified against its text. Plans and bounds built on them say so
-// (Plan.Recalled), and the tests pair each one with an exact check on a
-// Gaussian target, where the true distance is computable and the bound
-// must dominate it.
+// Status of the formulas. Every bound below with a numeric constant in it
+// is recalled from the paper it cites, not checked against the paper's
+// text. Plans and bounds built on them say so (Plan.Recalled), and the
+// tests pair each one with an exact check on a Gaussian target, where the
+// true distance is computable and the bound must dominate it.
+// docs/methods.md states each result with its source and derivations.
 //
-// Total variation, Gaussian start (THEORY.md §1.1, Dalalyan 2017) [MEM]:
+// Total variation, Gaussian start (Dalalyan (2017), JRSS B 79(3), the TV
+// theorem for LMC and its corollary; from memory):
 // for h ≤ 1/M, ν₀ = N(θ*, M⁻¹I), T = K·h,
 //
 //	TV(ν_K, π) ≤ ½·exp{(p/4)·log(M/m) − m·T/2} + (p·M²·h·T/4)^{1/2}
@@ -26,14 +27,16 @@
 // makes each term ε/2 at horizon T (and the sum stays ≤ ε at K·h ≥ T,
 // see TVRule).
 //
-// Convex, not strongly convex (THEORY.md §1.2) [DER]: with the penalised
+// Convex, not strongly convex (derived here, docs/methods.md): with the penalised
 // target π_λ ∝ π·exp(−λ‖θ−θ̄‖²/2) and μ₂ ≥ E_π‖θ−θ̄‖²,
 //
 //	TV(π, π_λ) ≤ λ·μ₂/2,   λ = ε/μ₂,
 //
-// then the §1.1 rule on π_λ with (m, M, ε) → (λ, M+λ, ε/2).
+// then the TV rule above on π_λ with (m, M, ε) → (λ, M+λ, ε/2).
 //
-// Wasserstein-2 (THEORY.md §2.1–2.2, Dalalyan & Karagulyan 2019) [MEM]: for
+// Wasserstein-2 (Dalalyan and Karagulyan (2019), Stoch. Proc. Appl.
+// 129(12), the constant-step theorems with exact and inaccurate gradients;
+// the constant 1.65 and the δ, σ terms from memory): for
 // any start with W2(ν₀, π) ≤ W0 and gradients Y = ∇f + ζ with bias
 // E‖E[ζ|past]‖² ≤ δ²p and noise E‖ζ − E[ζ|past]‖² ≤ σ²p, if h ≤ 2/(m+M)
 //
@@ -43,12 +46,12 @@
 //
 //	W2(ν_K, π) ≤ (M·h − 1)^K·W0 + 1.65·(M·h/(2 − M·h))·(h·p)^{1/2}.
 //
-// The W2 rule (THEORY.md §2.1 [DER], extended here to δ, σ) takes the
+// The W2 rule (derived here from the first branch, with δ and σ) takes the
 // largest h ≤ 2/(m+M) with the h-dependent terms and the bias within ε/2,
 // and K = ⌈log(2·W0/ε)/(m·h)⌉ so the start term is within ε/2; W0 defaults
-// to √(p/m), the distance from a point start at θ* (THEORY.md §2.1 [DER]).
+// to √(p/m), the distance from a point start at θ* (E_π‖θ − θ*‖² ≤ p/m).
 //
-// Cost (THEORY.md §13): LMC asks one gradient per chain per step, so a plan
+// Cost: LMC asks one gradient per chain per step, so a plan
 // of K iterations costs K evaluations per chain.
 //
 // Source. A plan or bound computed from m and M declared by the client is

@@ -1,9 +1,9 @@
 package bound
 
 // Exact distances for LMC on a Gaussian target with diagonal precision, the
-// references the [MEM] bounds are checked against (THEORY.md §0: "for
+// references the bounds recalled from memory are checked against: for
 // Gaussian targets the true TV or W2 is computable, and the bound must
-// dominate it").
+// dominate it.
 
 import (
 	"errors"
@@ -38,7 +38,8 @@ type gaussLaw struct{ mean, v float64 }
 //
 //	mean' = (1 − h·lam)·mean − h·b,   v' = (1 − h·lam)²·v + 2h + h²·s2
 //
-// (THEORY.md §2.3 and §11(a), (b)). It runs the recursion step by step.
+// (derived here: the step is linear in x and η, ξ are independent and
+// Gaussian; docs/methods.md, section 4). It runs the recursion step by step.
 func lmcLaw(lam, h float64, k int, x0, v0, b, s2 float64) gaussLaw {
 	a := 1 - h*lam
 	g := gaussLaw{x0, v0}
@@ -51,15 +52,16 @@ func lmcLaw(lam, h float64, k int, x0, v0, b, s2 float64) gaussLaw {
 
 // lmcVarClosed is the closed form of the variance recursion of lmcLaw with
 // no noise, v_k = v∞ + a^{2k}(v₀ − v∞), v∞ = 1/(lam·(1 − h·lam/2))
-// (THEORY.md §11(a)).
+// (derived here: v_k − v∞ is multiplied by a² each step).
 func lmcVarClosed(lam, h float64, k int, v0 float64) float64 {
 	vinf := 1 / (lam * (1 - h*lam/2))
 	a := 1 - h*lam
 	return vinf + math.Pow(a*a, float64(k))*(v0-vinf)
 }
 
-// w2Diag is W2 between N(μ, diag(v)) and N(0, diag(w)): THEORY.md §0.1's
-// formula with commuting covariances, where (S₂^{1/2}S₁S₂^{1/2})^{1/2} =
+// w2Diag is W2 between N(μ, diag(v)) and N(0, diag(w)): the Gaussian W2
+// formula ‖μ₁−μ₂‖² + tr(S₁ + S₂ − 2(S₂^{1/2}S₁S₂^{1/2})^{1/2}) (Givens and
+// Shortt 1984) with commuting covariances, where (S₂^{1/2}S₁S₂^{1/2})^{1/2} =
 // diag(√(v·w)), so W2² = Σ μ_i² + (√v_i − √w_i)².
 func w2Diag(laws []gaussLaw, w []float64) float64 {
 	var s float64
@@ -190,10 +192,11 @@ func TestTVCentredGrid(t *testing.T) {
 }
 
 // TestLMCLawClosedForm checks the variance recursion against its closed
-// form (THEORY.md §11(a)) and its stationary value against THEORY.md
-// §11(a)'s test vectors (λ = 1, h = 0.1 → 1.0526315789473684; σ² = 0.25,
-// h = 0.1 → 0.3125) and §11(b)'s noisy one (λ = 1, h = 0.1, s² = 4 →
-// 1.263157894736842).
+// form and its stationary value against the closed form
+// v∞ = (2 + h·s²)/(λ(2 − h·λ)) (derived here, docs/methods.md section 4),
+// evaluated independently: λ = 1, h = 0.1 → 1/0.95 = 1.0526315789473684;
+// λ = 4, h = 0.1 → 1/3.2 = 0.3125; λ = 1, h = 0.1, s² = 4 → 2.4/1.9 =
+// 1.263157894736842; λ = 4, h = 0.1, s² = 1 → 2.1/6.4 = 0.328125.
 func TestLMCLawClosedForm(t *testing.T) {
 	for _, c := range []struct {
 		lam, h float64
@@ -210,7 +213,7 @@ func TestLMCLawClosedForm(t *testing.T) {
 		{1, 0.1, 0, 1.0526315789473684}, {4, 0.1, 0, 0.3125}, {1, 0.1, 4, 1.263157894736842}, {4, 0.1, 1, 0.328125},
 	} {
 		if got := lmcLaw(c.lam, c.h, 5000, 0, 0, 0, c.s2).v; math.Abs(got-c.want) > 1e-9*c.want {
-			t.Errorf("stationary variance λ = %v, h = %v, s² = %v: %.17g, THEORY.md §11 %.17g", c.lam, c.h, c.s2, got, c.want)
+			t.Errorf("stationary variance λ = %v, h = %v, s² = %v: %.17g, closed form %.17g", c.lam, c.h, c.s2, got, c.want)
 		}
 	}
 }

@@ -31,7 +31,7 @@ type Plan struct {
 	// Chains is the number of chains the cost is for.
 	Chains int
 	// EvaluationsPerChain is K: LMC asks one gradient per chain per step
-	// (THEORY.md §13). The search for θ* (the start of a TV plan, the
+	// per step. The search for θ* (the start of a TV plan, the
 	// default W0 of a W2 plan) is not counted.
 	EvaluationsPerChain int
 	// Evaluations is EvaluationsPerChain·Chains.
@@ -43,10 +43,12 @@ type Plan struct {
 	// (to rounding: see TVRule and W2Rule).
 	Final Bound
 	// Assumptions lists, in words, everything the plan relies on,
-	// including the THEORY.md sections and their status labels.
+	// including the published source of each bound and whether its
+	// constants are recalled or derived here.
 	Assumptions []string
-	// Recalled is true when the constants are [MEM] in THEORY.md:
-	// recalled from the paper, unverified. Every plan here is.
+	// Recalled is true when the bound's constants are recalled from the
+	// paper it cites rather than checked against its text (checked here
+	// only on Gaussian targets). Every plan here is.
 	Recalled bool
 	// Source says whether m and M were declared or estimated.
 	Source Source
@@ -144,8 +146,8 @@ func assumptions(metric Metric, s Setting) []string {
 			"every chain starts from N(θ*_λ, I/(M+λ)), θ*_λ the minimiser of f + λ‖θ − θ̄‖²/2",
 			"exact gradients",
 			"step h ≤ 1/(M+λ)",
-			"penalty bias TV(π, π_λ) ≤ λμ₂/2: THEORY.md §1.2 [DER]",
-			"TV bound and rule on π_λ: THEORY.md §1.1, Dalalyan (2017) [MEM: recalled, unverified]",
+			"penalty bias TV(π, π_λ) ≤ λμ₂/2: "+derivedPenalty,
+			"TV bound and rule on π_λ: "+tvSource,
 		)
 	} else {
 		a = append(a, fmt.Sprintf("f is m-strongly convex and M-smooth, m = %v, M = %v (%s)", m, M, src))
@@ -154,13 +156,13 @@ func assumptions(metric Metric, s Setting) []string {
 				"every chain starts from N(θ*, I/M), θ* the minimiser of f",
 				"exact gradients",
 				"step h ≤ 1/M",
-				"TV bound and rule: THEORY.md §1.1, Dalalyan (2017) [MEM: recalled, unverified]",
+				"TV bound and rule: "+tvSource,
 			)
 		} else {
 			if s.StartDistance > 0 {
 				a = append(a, fmt.Sprintf("W2(ν₀, π) ≤ W0 = %v", s.StartDistance))
 			} else {
-				a = append(a, fmt.Sprintf("every chain starts at θ*, the minimiser of f: W2(δ_θ*, π) ≤ √(p/m) = %v (THEORY.md §2.1 [DER])",
+				a = append(a, fmt.Sprintf("every chain starts at θ*, the minimiser of f: W2(δ_θ*, π) ≤ √(p/m) = %v (E_π‖θ − θ*‖² ≤ p/m for m-strongly convex f)",
 					math.Sqrt(float64(s.Dim)/m)))
 			}
 			if s.Bias == 0 && s.Noise == 0 {
@@ -170,10 +172,20 @@ func assumptions(metric Metric, s Setting) []string {
 			}
 			a = append(a,
 				"step h ≤ 2/(m+M)",
-				"W2 bound: THEORY.md §2.1–2.2, Dalalyan & Karagulyan (2019), constant 1.65 and the δ, σ terms [MEM: recalled, unverified]",
-				"step and iteration rule derived from it: THEORY.md §2.1 [DER]",
+				"W2 bound: "+w2Source,
+				"step and iteration rule: "+derivedW2Rule,
 			)
 		}
 	}
-	return append(a, "one gradient per chain per step (LMC, THEORY.md §13)")
+	return append(a, "one gradient per chain per step (LMC)")
 }
+
+// The sources the assumptions name, in the words a user reads.
+const (
+	tvSource = "Dalalyan (2017), JRSS B 79(3), the total-variation theorem for LMC from a Gaussian start and its corollary; " +
+		"constants recalled from the paper, checked here only on Gaussian targets"
+	w2Source = "Dalalyan and Karagulyan (2019), Stoch. Proc. Appl. 129(12), constant-step theorems with exact and inaccurate gradients; " +
+		"the constant 1.65 and the δ, σ terms recalled from the paper, checked here only on Gaussian targets"
+	derivedPenalty = "derived for sluice, E_π[1 − exp(−λ‖θ − θ̄‖²/2)] ≤ λμ₂/2 (docs/methods.md, section 2.2)"
+	derivedW2Rule  = "derived for sluice from that bound: the start term and the rest each within ε/2 (docs/methods.md, section 2.3)"
+)

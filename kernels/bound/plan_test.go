@@ -7,9 +7,9 @@ import (
 	"testing"
 )
 
-// TestPlanTVVector: a TV plan for THEORY.md §1.1's vector (m = 1, M = 4,
+// TestPlanTVVector: a TV plan for the worked example of Dalalyan's (2017) rule (m = 1, M = 4,
 // p = 2, ε = 0.1) has its step and iterations, and the cost is K
-// evaluations per chain (THEORY.md §13: one gradient per chain per step).
+// evaluations per chain (LMC asks one gradient per chain per step).
 func TestPlanTVVector(t *testing.T) {
 	p, err := NewPlan(Spec{
 		Setting: Setting{Convexity: 1, Smoothness: 4, Dim: 2, Source: Declared},
@@ -19,7 +19,7 @@ func TestPlanTVVector(t *testing.T) {
 		t.Fatal(err)
 	}
 	if !relClose(p.Step, 5.215753135864595e-05, 1e-12) || !relClose(p.Horizon, 5.991464547107983, 1e-12) || p.Iterations != 114873 {
-		t.Errorf("plan h = %.17g, T = %.17g, K = %d; THEORY.md §1.1 5.215753135864595e-05, 5.991464547107983, 114873",
+		t.Errorf("plan h = %.17g, T = %.17g, K = %d; reference 5.215753135864595e-05, 5.991464547107983, 114873",
 			p.Step, p.Horizon, p.Iterations)
 	}
 	if p.EvaluationsPerChain != 114873 || p.Evaluations != 4*114873 || p.Chains != 4 {
@@ -34,10 +34,11 @@ func TestPlanTVVector(t *testing.T) {
 	if got := p.Bound(1000); got.Steps != 1000 || !(got.Total > p.Final.Total) {
 		t.Errorf("bound after 1000 steps %+v, final %v", got, p.Final.Total)
 	}
-	wantAssumptions(t, p, "§1.1", "[MEM", "N(θ*, I/M)", "exact gradients", "h ≤ 1/M", "(declared)", "§13")
+	wantAssumptions(t, p, "Dalalyan (2017)", "recalled from the paper, checked here only on Gaussian targets",
+		"N(θ*, I/M)", "exact gradients", "h ≤ 1/M", "(declared)", "one gradient per chain per step")
 }
 
-// TestPlanConvexVector: m = 0 gives the composed rule of THEORY.md §1.2
+// TestPlanConvexVector: m = 0 gives the composed rule derived here
 // (λ = 0.01, h = 6.485863342871117e-08, K ≈ 1.848e10), the penalty bias
 // ε/2 in the final bound, and no wall time without a rate.
 func TestPlanConvexVector(t *testing.T) {
@@ -55,10 +56,10 @@ func TestPlanConvexVector(t *testing.T) {
 	if p.Source != Estimated || p.Final.Source != Estimated {
 		t.Errorf("source %v, want the zero value Estimated", p.Source)
 	}
-	wantAssumptions(t, p, "§1.2 [DER]", "§1.1", "[MEM", "π_λ", "(estimated)")
+	wantAssumptions(t, p, "derived for sluice", "Dalalyan (2017)", "recalled from the paper", "π_λ", "(estimated)")
 }
 
-// TestPlanW2Vector: a W2 plan for THEORY.md §2.3's rule row (ε = 0.5 from
+// TestPlanW2Vector: a W2 plan for the W2 rule's worked example (ε = 0.5 from
 // θ*) has h = 7.174012855831038e-04, K = 2416 and final bound 0.499751.
 func TestPlanW2Vector(t *testing.T) {
 	p, err := NewPlan(Spec{Setting: Setting{Convexity: 1, Smoothness: 4, Dim: 2, Source: Declared}, Metric: W2, Eps: 0.5, Rate: 2416})
@@ -68,7 +69,7 @@ func TestPlanW2Vector(t *testing.T) {
 	if !relClose(p.Step, 7.174012855831038e-04, 1e-12) || p.Iterations != 2416 || !roundsTo(p.Final.Total, 0.499751, 5e-7) || p.Seconds != 1 {
 		t.Errorf("plan %+v", p)
 	}
-	wantAssumptions(t, p, "§2.1", "[MEM", "[DER]", "θ*", "exact gradients", "2/(m+M)")
+	wantAssumptions(t, p, "Dalalyan and Karagulyan (2019)", "recalled from the paper", "derived for sluice", "θ*", "exact gradients", "2/(m+M)")
 
 	noisy, err := NewPlan(Spec{Setting: Setting{Convexity: 1, Smoothness: 4, Dim: 2, Bias: 0.1, Noise: 2, StartDistance: 3}, Metric: W2, Eps: 1})
 	if err != nil {
@@ -77,12 +78,17 @@ func TestPlanW2Vector(t *testing.T) {
 	if !(noisy.Final.Noise > 0) || !(noisy.Final.Bias > 0) || !(noisy.Final.Total <= 1*(1+1e-12)) {
 		t.Errorf("noisy final bound %+v", noisy.Final)
 	}
-	wantAssumptions(t, noisy, "δ = 0.1", "σ = 2", "W0 = 3", "§2.1–2.2")
+	wantAssumptions(t, noisy, "δ = 0.1", "σ = 2", "W0 = 3", "inaccurate gradients")
 }
 
 func wantAssumptions(t *testing.T, p Plan, subs ...string) {
 	t.Helper()
 	all := strings.Join(p.Assumptions, "\n")
+	// Users read these: sources in words, no bracketed status tags and no
+	// section signs (U+00A7) pointing at documents they do not have.
+	if strings.ContainsAny(all, "[\u00a7") {
+		t.Errorf("assumptions carry a bracketed tag or a section sign:\n%s", all)
+	}
 	for _, s := range subs {
 		if !strings.Contains(all, s) {
 			t.Errorf("assumptions do not mention %q:\n%s", s, all)
@@ -135,8 +141,9 @@ func TestPlanErrors(t *testing.T) {
 	}
 }
 
-// TestSourceAndMetricStrings: the labels of DESIGN.md's "Accuracy and
-// budget" (item 6 of the issue) and the metric names.
+// TestSourceAndMetricStrings: the labels shown beside every plan and bound
+// (the wording the README and the wire API documentation use) and the
+// metric names.
 func TestSourceAndMetricStrings(t *testing.T) {
 	for _, c := range []struct{ got, want string }{
 		{Declared.String(), "guaranteed under the declared assumptions"},

@@ -3,12 +3,13 @@ package bound
 import "math"
 
 // TVRule returns the step, horizon and iterations that make the total
-// variation bound of THEORY.md §1.1 at most eps, for eps ∈ (0, 1/2).
+// variation bound of Dalalyan (2017) at most eps, for eps ∈ (0, 1/2).
 //
 // Assumptions: f is m-strongly convex and M-smooth; the gradients are
 // exact; every chain starts from N(θ*, M⁻¹I), θ* the minimiser of f. The
-// theorem and the rule are [MEM] in THEORY.md §1.1 (Dalalyan 2017):
-// recalled, unverified. With m > 0,
+// theorem and the rule are those of Dalalyan (2017), "Theoretical
+// guarantees for approximate sampling from smooth and log-concave
+// densities", JRSS B 79(3), recalled from memory. With m > 0,
 //
 //	T = (4·log(1/ε) + p·log(M/m)) / (2m),   h = min{ε²/(M²·p·T), 1/M},   K = ⌈T/h⌉,
 //
@@ -22,14 +23,14 @@ import "math"
 // sum ≤ 2 + Δ·(−m/2 + m²Δ/8 + 1/(2T)) < 2, since Δ < h ≤ 1/m and
 // T ≥ 2·log 2/m, so the bracket is < m·(−1/2 + 1/8 + 1/(4·log 2)) < 0.
 //
-// With m = 0 (convex, not strongly convex) it is the composed rule of
-// THEORY.md §1.2 [DER; the §1.1 part MEM]: λ = ε/μ₂ (so the penalty bias
+// With m = 0 (convex, not strongly convex) it is a composed rule derived
+// here (docs/methods.md), on top of the recalled one: λ = ε/μ₂ (so the penalty bias
 // λμ₂/2 is ε/2), then the rule above on π_λ with (m, M, ε) → (λ, M+λ, ε/2);
 // Schedule.Penalty is λ, the chain must run on π_λ (gradient ∇f + λ(θ−θ̄))
 // from N(θ*_λ, (M+λ)⁻¹I), θ*_λ the minimiser of f + λ‖θ−θ̄‖²/2, and it
 // needs SecondMoment μ₂ ≥ E_π‖θ − θ̄‖².
 //
-// Each iteration asks one gradient per chain (THEORY.md §13): K
+// Each iteration asks one gradient per chain: K
 // evaluations per chain, not counting the search for θ*.
 func TVRule(s Setting, eps float64) (Schedule, error) {
 	if err := checkTV(s); err != nil {
@@ -48,7 +49,7 @@ func TVRule(s Setting, eps float64) (Schedule, error) {
 	return sc, err
 }
 
-// tvRule is the rule of THEORY.md §1.1 for m > 0 and target error eps;
+// tvRule is Dalalyan's (2017) rule for m > 0 and target error eps;
 // errors name the user's epsilon userEps.
 func tvRule(m, M, p, eps, userEps float64) (Schedule, error) {
 	T := (4*math.Log(1/eps) + p*math.Log(M/m)) / (2 * m)
@@ -61,7 +62,7 @@ func tvRule(m, M, p, eps, userEps float64) (Schedule, error) {
 }
 
 // PenaltyWeight returns λ = ε/μ₂, the penalty weight whose bias bound
-// λμ₂/2 is ε/2 (THEORY.md §1.2 [DER]). It panics unless eps and mu2 are
+// λμ₂/2 is ε/2 (see PenaltyBias). It panics unless eps and mu2 are
 // finite and positive (callers validate data first).
 func PenaltyWeight(eps, mu2 float64) float64 {
 	if !finite(eps) || !finite(mu2) || !(eps > 0) || !(mu2 > 0) {
@@ -71,8 +72,8 @@ func PenaltyWeight(eps, mu2 float64) float64 {
 }
 
 // PenaltyBias returns λμ₂/2, the bound on TV(π, π_λ) for the penalised
-// target π_λ ∝ π·exp(−λ‖θ−θ̄‖²/2) when μ₂ ≥ E_π‖θ − θ̄‖² (THEORY.md §1.2
-// [DER]: π_λ/π = e^{−λr²/2}/c with c ≤ 1, so TV ≤ E_π[1 − e^{−λr²/2}] ≤
+// target π_λ ∝ π·exp(−λ‖θ−θ̄‖²/2) when μ₂ ≥ E_π‖θ − θ̄‖² (derived
+// here: π_λ/π = e^{−λr²/2}/c with c ≤ 1, so TV ≤ E_π[1 − e^{−λr²/2}] ≤
 // λμ₂/2). It holds for any convex f; it panics on negative or non-finite
 // inputs.
 func PenaltyBias(lambda, mu2 float64) float64 {
@@ -82,9 +83,9 @@ func PenaltyBias(lambda, mu2 float64) float64 {
 	return lambda * mu2 / 2
 }
 
-// TVBound returns the total variation bound of THEORY.md §1.1 after k
-// steps of size h (the theorem's right-hand side, [MEM]: recalled,
-// unverified), with T = k·h:
+// TVBound returns the total variation bound of Dalalyan (2017) after k
+// steps of size h (the theorem's right-hand side, recalled from memory),
+// with T = k·h:
 //
 //	Start          = ½·exp{(p/4)·log(M/m) − m·T/2}
 //	Discretisation = (p·M²·h·T/4)^{1/2}
@@ -93,7 +94,7 @@ func PenaltyBias(lambda, mu2 float64) float64 {
 // gradients, start N(θ*, M⁻¹I), and h ≤ 1/M (an error otherwise).
 //
 // With lambda > 0 the chain is taken to run on the penalised target π_λ
-// (THEORY.md §1.2): the terms above use (m+λ, M+λ) and Bias is the penalty
+// (see TVRule): the terms above use (m+λ, M+λ) and Bias is the penalty
 // bias λμ₂/2, which needs SecondMoment μ₂. With m = 0, lambda must be > 0.
 func TVBound(s Setting, lambda, h float64, k int) (Bound, error) {
 	if err := checkTV(s); err != nil {
@@ -139,9 +140,9 @@ func checkTV(s Setting) error {
 	}
 	switch {
 	case s.Bias != 0:
-		return inputErr("delta", s.Bias, "the TV bound (THEORY.md §1.1) assumes exact gradients; use W2 for biased gradients")
+		return inputErr("delta", s.Bias, "the TV bound (Dalalyan 2017) assumes exact gradients; use W2 for biased gradients")
 	case s.Noise != 0:
-		return inputErr("sigma", s.Noise, "the TV bound (THEORY.md §1.1) assumes exact gradients; use W2 for noisy gradients")
+		return inputErr("sigma", s.Noise, "the TV bound (Dalalyan 2017) assumes exact gradients; use W2 for noisy gradients")
 	case s.StartDistance != 0:
 		return inputErr("w0", s.StartDistance, "the TV bound assumes the start N(θ*, I/M); a start distance is for W2")
 	case !finite(s.SecondMoment) || s.SecondMoment < 0:

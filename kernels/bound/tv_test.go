@@ -12,9 +12,10 @@ func relClose(got, want, tol float64) bool { return math.Abs(got-want) <= tol*ma
 // absolute half unit in the last place, half), gives want.
 func roundsTo(got, want, half float64) bool { return math.Abs(got-want) <= half }
 
-// TestTVRuleVector reproduces the test vector of THEORY.md §1.1 (m = 1,
-// M = 4, p = 2, ε = 0.1). The theorem and rule are [MEM] (from memory);
-// TestTVBoundDominatesExact is the paired exact check.
+// TestTVRuleVector reproduces the worked example of Dalalyan's (2017)
+// rule (m = 1, M = 4, p = 2, ε = 0.1; the figures computed for this
+// project with NumPy, docs/methods.md). The theorem and rule are from
+// memory; TestTVBoundDominatesExact is the paired exact check.
 func TestTVRuleVector(t *testing.T) {
 	s := Setting{Convexity: 1, Smoothness: 4, Dim: 2}
 	sc, err := TVRule(s, 0.1)
@@ -30,22 +31,22 @@ func TestTVRuleVector(t *testing.T) {
 		{"T/h", sc.Horizon / sc.Step, 114872.47174160594},
 	} {
 		if !relClose(c.got, c.want, 1e-12) {
-			t.Errorf("%s = %.17g, THEORY.md §1.1 %.17g", c.name, c.got, c.want)
+			t.Errorf("%s = %.17g, reference %.17g", c.name, c.got, c.want)
 		}
 	}
 	if sc.Iterations != 114873 || sc.Penalty != 0 {
-		t.Errorf("K = %d, penalty %v; THEORY.md §1.1 K = 114873, no penalty", sc.Iterations, sc.Penalty)
+		t.Errorf("K = %d, penalty %v; reference K = 114873, no penalty", sc.Iterations, sc.Penalty)
 	}
 	if !(sc.Step <= 1.0/4) {
 		t.Errorf("h = %v > 1/M", sc.Step)
 	}
-	// Each term is ε/2 at horizon T (THEORY.md §1.1: "first term = 0.05,
-	// second term = 0.05"): the bound's terms at T, from the formula.
+	// Each term is ε/2 = 0.05 at horizon T (the rule is built so): the
+	// bound's terms at T, from the formula.
 	p, m, M, T, h := 2.0, 1.0, 4.0, sc.Horizon, sc.Step
 	first := 0.5 * math.Exp(p/4*math.Log(M/m)-m*T/2)
 	second := math.Sqrt(p * M * M * h * T / 4)
 	if !relClose(first, 0.05, 1e-12) || !relClose(second, 0.05, 1e-12) {
-		t.Errorf("terms at T: %.17g, %.17g; THEORY.md §1.1 0.05, 0.05", first, second)
+		t.Errorf("terms at T: %.17g, %.17g; want 0.05, 0.05", first, second)
 	}
 	// TVBound at K·h ≥ T: the same terms with T replaced by K·h.
 	b, err := TVBound(s, 0, h, sc.Iterations)
@@ -95,14 +96,15 @@ func TestTVRuleAtK(t *testing.T) {
 	}
 }
 
-// TestTVBoundDominatesExact is the exact check paired with the [MEM] TV
-// bound (THEORY.md §1.1, "Gaussian sanity check"): π = N(0, diag(1, 1/4))
+// TestTVBoundDominatesExact is the exact check paired with the TV bound
+// recalled from memory (Dalalyan 2017): π = N(0, diag(1, 1/4))
 // (m = 1, M = 4, p = 2), ν₀ = N(0, I/4) = N(θ*, M⁻¹I). LMC on a Gaussian
 // keeps the law Gaussian and centred, with the variance recursion of
 // lmcLaw, so TV(ν_K, π) is the TV between two centred product Gaussians
-// (tvCentred2). At the §1.1 rule's (h, K) the final variances are
-// (1.00002139, 0.25002608) and TV = 2.60e-05 (THEORY.md §1.1, digits
-// given); at every (h, K) the bound must dominate the exact TV.
+// (tvCentred2). At the rule's (h, K) the final variances are
+// (1.00002139, 0.25002608) and TV = 2.60e-05 (computed for this project
+// with NumPy by grid integration, digits given); at every (h, K) the
+// bound must dominate the exact TV.
 func TestTVBoundDominatesExact(t *testing.T) {
 	s := Setting{Convexity: 1, Smoothness: 4, Dim: 2}
 	lam := [2]float64{1, 4}
@@ -117,11 +119,11 @@ func TestTVBoundDominatesExact(t *testing.T) {
 	}
 	v := law(sc.Step, sc.Iterations)
 	if !roundsTo(v[0], 1.00002139, 5e-9) || !roundsTo(v[1], 0.25002608, 5e-9) {
-		t.Errorf("final variances %.10f, %.10f; THEORY.md §1.1 (1.00002139, 0.25002608)", v[0], v[1])
+		t.Errorf("final variances %.10f, %.10f; reference (1.00002139, 0.25002608)", v[0], v[1])
 	}
 	tv := tvCentred2(v, target, 2048)
 	if !roundsTo(tv, 2.60e-05, 0.005e-05) {
-		t.Errorf("TV(ν_K, π) = %.4e, THEORY.md §1.1 2.60e-05", tv)
+		t.Errorf("TV(ν_K, π) = %.4e, reference 2.60e-05", tv)
 	}
 	b, err := TVBound(s, 0, sc.Step, sc.Iterations)
 	if err != nil {
@@ -154,10 +156,10 @@ func TestTVBoundDominatesExact(t *testing.T) {
 	}
 }
 
-// TestTVRuleMeetsExact runs the §1.1 rule on other Gaussian targets
+// TestTVRuleMeetsExact runs the TV rule on other Gaussian targets
 // N(0, diag(1/m, 1/M)) from N(0, I/M) and checks that the exact TV after K
-// steps is below ε, which the [MEM] rule promises (exact check; the
-// variances by the closed form of THEORY.md §11(a), checked against the
+// steps is below ε, which the rule recalled from memory promises (exact
+// check; the variances by the closed form derived in lmcVarClosed, checked against the
 // recursion in TestLMCLawClosedForm).
 func TestTVRuleMeetsExact(t *testing.T) {
 	for _, c := range []struct{ m, M, eps float64 }{
@@ -179,10 +181,11 @@ func TestTVRuleMeetsExact(t *testing.T) {
 	}
 }
 
-// TestConvexTVRuleVector reproduces THEORY.md §1.2's test vector (M = 4,
+// TestConvexTVRuleVector reproduces the convex rule's worked example (M = 4,
 // p = 2, ε = 0.1, μ₂ = 10: λ = 0.01, T = 1198.542597441455,
-// h = 6.485863342871117e-08, K ≈ 1.848e10). The penalty part is [DER], the
-// rule applied to π_λ is §1.1's [MEM] one (from memory).
+// h = 6.485863342871117e-08, K ≈ 1.848e10; computed for this project with
+// NumPy). The penalty part is derived here (PenaltyBias), the rule applied
+// to π_λ is Dalalyan's (2017), from memory.
 func TestConvexTVRuleVector(t *testing.T) {
 	s := Setting{Smoothness: 4, Dim: 2, SecondMoment: 10}
 	sc, err := TVRule(s, 0.1)
@@ -194,15 +197,15 @@ func TestConvexTVRuleVector(t *testing.T) {
 		t.Errorf("λ = %.17g, T = %.17g, h = %.17g", sc.Penalty, sc.Horizon, sc.Step)
 	}
 	if math.Abs(float64(sc.Iterations)/1.848e10-1) > 0.0005/1.848 {
-		t.Errorf("K = %d, THEORY.md §1.2 ≈ 1.848e10", sc.Iterations)
+		t.Errorf("K = %d, reference ≈ 1.848e10", sc.Iterations)
 	}
-	// The composition: the rule of §1.1 on (λ, M+λ, ε/2).
+	// The composition: the strongly convex rule on (λ, M+λ, ε/2).
 	inner, err := TVRule(Setting{Convexity: sc.Penalty, Smoothness: 4 + sc.Penalty, Dim: 2}, 0.05)
 	if err != nil {
 		t.Fatal(err)
 	}
 	if inner.Step != sc.Step || inner.Horizon != sc.Horizon || inner.Iterations != sc.Iterations {
-		t.Errorf("convex rule %+v, §1.1 rule on π_λ %+v", sc, inner)
+		t.Errorf("convex rule %+v, strongly convex rule on π_λ %+v", sc, inner)
 	}
 	b, err := TVBound(s, sc.Penalty, sc.Step, sc.Iterations)
 	if err != nil {
@@ -213,8 +216,8 @@ func TestConvexTVRuleVector(t *testing.T) {
 	}
 }
 
-// TestPenaltyBiasExact is the exact check of THEORY.md §1.2's penalty bias
-// (derived there): for π = N(0, diag(v)) and θ̄ = 0, π_λ = N(0,
+// TestPenaltyBiasExact is the exact check of the penalty bias bound
+// (derived here, PenaltyBias): for π = N(0, diag(v)) and θ̄ = 0, π_λ = N(0,
 // diag(v/(1+λv))), μ₂ = Σ v_i, and the exact TV(π, π_λ) (tvCentred2) must
 // be at most λμ₂/2 = PenaltyBias. For p = 1 the intermediate bound
 // E_π[1 − e^{−λθ²/2}] = 1 − (1+λv)^{−1/2} is checked too.

@@ -2,18 +2,21 @@ package bound
 
 import "math"
 
-// dk19 is the constant 1.65 of the Wasserstein bounds of Dalalyan &
-// Karagulyan (2019), THEORY.md §2.1–2.2 [MEM]: recalled, unverified.
+// dk19 is the constant 1.65 of the Wasserstein bounds of Dalalyan and
+// Karagulyan (2019), "User-friendly guarantees for the Langevin Monte
+// Carlo with inaccurate gradient", Stoch. Proc. Appl. 129(12): recalled
+// from memory, checked here only on Gaussian targets.
 const dk19 = 1.65
 
 // W2Rule returns the step, horizon and iterations that make the W2 bound
-// of THEORY.md §2.1–2.2 at most eps.
+// of Dalalyan and Karagulyan (2019) at most eps.
 //
 // Assumptions: f is m-strongly convex (m > 0) and M-smooth; W2(ν₀, π) ≤ W0
-// (StartDistance; zero means √(p/m), a point start at θ*, THEORY.md §2.1
-// [DER]); gradient error with bias δ and noise σ as in Setting (both zero:
-// exact gradients). The bound is [MEM] (constant 1.65 and the δ, σ terms
-// recalled, unverified); the rule is derived from branch (a) [DER].
+// (StartDistance; zero means √(p/m), a point start at θ*, since
+// E_π‖θ − θ*‖² ≤ p/m); gradient error with bias δ and noise σ as in
+// Setting (both zero: exact gradients). The bound is recalled from memory
+// (the constant 1.65 and the δ, σ terms); the rule is derived here from
+// its first branch, h ≤ 2/(m+M).
 //
 // Derivation. With h ≤ 2/(m+M), the bound is S + D(h) + B + N(h) with
 // S = (1−mh)^K·W0, B = δ√p/m and
@@ -27,7 +30,7 @@ const dk19 = 1.65
 //
 //	h = min{ ((ε/2 − B)/c)²/p, 2/(m+M) },
 //
-// which for δ = σ = 0 is THEORY.md §2.1's h = min{ε²/(4·1.65²·κ²·p),
+// which for δ = σ = 0 is h = min{ε²/(4·1.65²·κ²·p),
 // 2/(m+M)}. Then (1−mh)^K ≤ e^{−mhK} ≤ ε/(2W0) for
 //
 //	K = ⌈T/h⌉,   T = log(2·W0/ε)/m   (K = 0 when W0 ≤ ε/2).
@@ -35,7 +38,7 @@ const dk19 = 1.65
 // The noise thus takes the share N/(D+N) = (c − 1.65κ)/c of the ε/2 − B
 // left by the bias; Bound reports each term.
 //
-// Each iteration asks one gradient per chain (THEORY.md §13): K
+// Each iteration asks one gradient per chain: K
 // evaluations per chain.
 func W2Rule(s Setting, eps float64) (Schedule, error) {
 	if err := checkW2(s); err != nil {
@@ -61,7 +64,8 @@ func W2Rule(s Setting, eps float64) (Schedule, error) {
 }
 
 // NoiseStep returns the largest step h ≤ 2/(m+M) for which the noise term
-// of THEORY.md §2.2 [MEM], σ²(h·p)^{1/2}/(1.65·M + σ·√m), is at most
+// of Dalalyan and Karagulyan (2019) (from memory),
+// σ²(h·p)^{1/2}/(1.65·M + σ·√m), is at most
 // budget (for instance a share of the target error): solving the
 // inequality exactly,
 //
@@ -84,8 +88,8 @@ func NoiseStep(s Setting, budget float64) (float64, error) {
 	return math.Min(math.Pow(budget/noiseFactor(s), 2)/p, hmax), nil
 }
 
-// W2Bound returns the W2 bound of THEORY.md §2.1–2.2 [MEM: recalled,
-// unverified] after k steps of size h, term by term. For h ≤ 2/(m+M)
+// W2Bound returns the W2 bound of Dalalyan and Karagulyan (2019)
+// (recalled from memory) after k steps of size h, term by term. For h ≤ 2/(m+M)
 // (branch (a)),
 //
 //	Start          = (1 − m·h)^k·W0
@@ -114,7 +118,7 @@ func W2Bound(s Setting, h float64, k int) (Bound, error) {
 	}
 	small := h <= 2/(m+M)
 	if !small && (s.Bias != 0 || s.Noise != 0) {
-		return Bound{}, inputErr("h", h, "with inexact gradients the W2 bound (THEORY.md §2.2) needs h ≤ 2/(m+M) = %v", 2/(m+M))
+		return Bound{}, inputErr("h", h, "with inexact gradients the W2 bound (Dalalyan and Karagulyan 2019) needs h ≤ 2/(m+M) = %v", 2/(m+M))
 	}
 	sq := math.Sqrt(h * p)
 	b := Bound{Metric: W2, Step: h, Steps: k, Recalled: true, Source: s.Source, LargeStep: !small}

@@ -5,14 +5,20 @@ import (
 	"testing"
 )
 
-// The setting of THEORY.md §2.3: target N(0, diag(1, 1/4)), precisions
-// (1, 4), so m = 1, M = 4, p = 2.
+// The Gaussian test target of the W2 checks: N(0, diag(1, 1/4)),
+// precisions (1, 4), so m = 1, M = 4, p = 2.
+//
+// Its reference figures (bound and exact W2 for several (h, K), the rule's
+// step and count) were computed for this project with NumPy and SciPy in
+// double precision, the bound from the formula of Dalalyan and Karagulyan
+// (2019) as recalled from memory, the exact W2 from the chain's Gaussian
+// law; docs/methods.md lists them.
 var (
 	w2Prec   = []float64{1, 4}
 	w2Target = []float64{1, 0.25}
 )
 
-// exactW2 is the exact W2(ν_K, π) of LMC on the §2.3 target from the point
+// exactW2 is the exact W2(ν_K, π) of LMC on the W2 test target from the point
 // x0 (the same in both coordinates), with gradient bias b per coordinate
 // and Gaussian gradient noise of variance s2 per coordinate (lmcLaw,
 // w2Diag).
@@ -28,15 +34,15 @@ func exactW2(h float64, k int, x0 float64, b []float64, s2 float64) float64 {
 	return w2Diag(laws, w2Target)
 }
 
-// TestW2TableVectors reproduces every row of THEORY.md §2.3 (start δ at
-// (1, 1), W2(ν₀, π) = 1.8027756377): the DK19 bound (from memory, [MEM])
-// to the digits given, the exact W2 of the chain's Gaussian law (computed
-// here in closed form; it must match the table's "exact" column), and
-// bound ≥ exact in every row.
+// TestW2TableVectors reproduces the reference table (start δ at (1, 1),
+// W2(ν₀, π)² = 1 + 1 + 1 + 1/4, W2 = 1.8027756377): the bound of Dalalyan and
+// Karagulyan (2019) (from memory) to the digits given, the exact W2 of the
+// chain's Gaussian law (computed here in closed form; it must match the
+// table's "exact" column), and bound ≥ exact in every row.
 func TestW2TableVectors(t *testing.T) {
 	w0 := w2Diag([]gaussLaw{{1, 0}, {1, 0}}, w2Target)
 	if !relClose(w0, 1.8027756377, 1e-10) {
-		t.Fatalf("W2(δ_(1,1), π) = %.12f, THEORY.md §2.3 1.8027756377", w0)
+		t.Fatalf("W2(δ_(1,1), π) = %.12f, reference 1.8027756377", w0)
 	}
 	exactGrad := Setting{Convexity: 1, Smoothness: 4, Dim: 2, StartDistance: w0}
 	noisy := exactGrad
@@ -67,10 +73,10 @@ func TestW2TableVectors(t *testing.T) {
 		}
 		ex := exactW2(c.h, c.k, 1, b, s2)
 		if !roundsTo(bd.Total, c.want, 5e-7) || bd.LargeStep != c.large {
-			t.Errorf("h = %v, K = %d: bound %.7f (branch b %v), THEORY.md §2.3 %.6f", c.h, c.k, bd.Total, bd.LargeStep, c.want)
+			t.Errorf("h = %v, K = %d: bound %.7f (branch b %v), reference %.6f", c.h, c.k, bd.Total, bd.LargeStep, c.want)
 		}
 		if !roundsTo(ex, c.exact, 5e-7) {
-			t.Errorf("h = %v, K = %d: exact W2 %.7f, THEORY.md §2.3 %.6f", c.h, c.k, ex, c.exact)
+			t.Errorf("h = %v, K = %d: exact W2 %.7f, reference %.6f", c.h, c.k, ex, c.exact)
 		}
 		if !(bd.Total >= ex) {
 			t.Errorf("h = %v, K = %d: bound %v < exact %v", c.h, c.k, bd.Total, ex)
@@ -81,8 +87,9 @@ func TestW2TableVectors(t *testing.T) {
 	}
 }
 
-// TestW2TermsFormula checks each term of W2Bound against THEORY.md §2.2's
-// formula written out here for the noisy §2.3 row (h = 0.05, K = 200):
+// TestW2TermsFormula checks each term of W2Bound against the inaccurate-
+// gradient bound of Dalalyan and Karagulyan (2019) (from memory), written
+// out here for the noisy reference row (h = 0.05, K = 200):
 // (1−mh)^K·W0, 1.65·κ·√(hp), δ√p/m, σ²√(hp)/(1.65M + σ√m).
 func TestW2TermsFormula(t *testing.T) {
 	s := Setting{Convexity: 1, Smoothness: 4, Dim: 2, StartDistance: 1.8, Bias: 0.1, Noise: 2}
@@ -106,8 +113,8 @@ func TestW2TermsFormula(t *testing.T) {
 	}
 }
 
-// TestW2RuleVector reproduces THEORY.md §2.3's rule row (§2.1's derived
-// rule [DER] on the [MEM] bound, ε = 0.5 from θ*, W0 = √2): h =
+// TestW2RuleVector reproduces the rule's reference row (the rule derived
+// here on the bound recalled from memory, ε = 0.5 from θ*, W0 = √2): h =
 // 7.174012855831038e-04, K = 2416, exact W2 = 0.015545 (computed here from
 // the chain's Gaussian law, start at 0), bound 0.499751, bound ≥ exact.
 func TestW2RuleVector(t *testing.T) {
@@ -117,13 +124,13 @@ func TestW2RuleVector(t *testing.T) {
 		t.Fatal(err)
 	}
 	if !relClose(sc.Step, 7.174012855831038e-04, 1e-12) || sc.Iterations != 2416 {
-		t.Errorf("h = %.17g, K = %d; THEORY.md §2.3 7.174012855831038e-04, 2416", sc.Step, sc.Iterations)
+		t.Errorf("h = %.17g, K = %d; reference 7.174012855831038e-04, 2416", sc.Step, sc.Iterations)
 	}
-	// THEORY.md §2.1's rule as written: h = min{ε²/(4·1.65²·κ²·p), 2/(m+M)},
+	// The rule as derived (docs/methods.md): h = min{ε²/(4·1.65²·κ²·p), 2/(m+M)},
 	// K = ⌈log(2·W0/ε)/(m·h)⌉.
 	h := math.Min(0.25/(4*1.65*1.65*16*2), 0.4)
 	if !relClose(sc.Step, h, 1e-14) || sc.Iterations != int(math.Ceil(math.Log(2*math.Sqrt2/0.5)/h)) {
-		t.Errorf("rule %+v, §2.1 h = %v", sc, h)
+		t.Errorf("rule %+v, derived h = %v", sc, h)
 	}
 	b, err := W2Bound(s, sc.Step, sc.Iterations)
 	if err != nil {
@@ -131,7 +138,7 @@ func TestW2RuleVector(t *testing.T) {
 	}
 	ex := exactW2(sc.Step, sc.Iterations, 0, nil, 0)
 	if !roundsTo(b.Total, 0.499751, 5e-7) || !roundsTo(ex, 0.015545, 5e-7) || !(b.Total >= ex) || !(b.Total <= 0.5) {
-		t.Errorf("bound %.7f (THEORY.md §2.3 0.499751), exact %.7f (0.015545)", b.Total, ex)
+		t.Errorf("bound %.7f (reference 0.499751), exact %.7f (0.015545)", b.Total, ex)
 	}
 	if !relClose(b.Discretisation, 0.25, 1e-12) || !(b.Start <= 0.25) {
 		t.Errorf("terms %+v: discretisation must be ε/2, start ≤ ε/2", b)
@@ -139,8 +146,8 @@ func TestW2RuleVector(t *testing.T) {
 }
 
 // TestW2BoundDominatesExact sweeps steps over the whole range (0, 2/M) of
-// the [MEM] bound, both branches, and step counts, from several starts, on
-// the §2.3 target: the bound must dominate the exact W2 of the chain
+// the bound recalled from memory, both branches, and step counts, from
+// several starts, on the W2 test target: the bound must dominate the exact W2 of the chain
 // (exact check paired with the from-memory bound). With bias and Gaussian
 // noise, over h ≤ 2/(m+M).
 func TestW2BoundDominatesExact(t *testing.T) {
@@ -176,7 +183,7 @@ func TestW2BoundDominatesExact(t *testing.T) {
 	}
 }
 
-// TestW2BranchesMeet: at h = 2/(m+M) the two branches of THEORY.md §2.1
+// TestW2BranchesMeet: at h = 2/(m+M) the two branches of the bound
 // give the same bound ((M−m)/(m+M) contraction, κ factor), so the bound is
 // continuous across them (derived here).
 func TestW2BranchesMeet(t *testing.T) {
@@ -200,7 +207,7 @@ func TestW2BranchesMeet(t *testing.T) {
 // TestW2RuleNoisy checks the rule with bias and noise (derived in
 // W2Rule's doc): when the cap 2/(m+M) does not bind, the h-dependent terms
 // and the bias fill exactly ε/2; the start term is ≤ ε/2 at K; the bound at
-// K is ≤ ε; and on the §2.3 target with b = (δ, −δ) and Gaussian noise of
+// K is ≤ ε; and on the W2 test target with b = (δ, −δ) and Gaussian noise of
 // standard deviation σ, the exact W2 from θ* is below the bound.
 func TestW2RuleNoisy(t *testing.T) {
 	for _, c := range []struct {
@@ -248,7 +255,7 @@ func TestW2RuleNoisy(t *testing.T) {
 	}
 }
 
-// TestNoiseStep: the returned step puts the noise term of THEORY.md §2.2
+// TestNoiseStep: the returned step puts the noise term of the bound
 // exactly at the budget (the inequality solved in closed form), unless the
 // cap 2/(m+M) binds; with σ = 0 it is the cap.
 func TestNoiseStep(t *testing.T) {
