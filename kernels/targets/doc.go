@@ -13,7 +13,7 @@
 //
 //	m·I ⪯ ∇²f(θ) ⪯ M·I   for all θ
 //
-// (THEORY.md §0.1). Points are []float64 of length Dim; batches are flat
+// (docs/methods.md, section 1). Points are []float64 of length Dim; batches are flat
 // row-major, one row per point (EvalBatch).
 //
 // Targets here:

@@ -14,7 +14,8 @@ import (
 	"gonum.org/v1/gonum/stat/distmv"
 )
 
-// q2 is the 2×2 precision of THEORY.md §11(a): Q = [[2, .5], [.5, 1]].
+// q2 is a 2×2 test precision, Q = [[2, .5], [.5, 1]], with closed-form
+// eigenvalues (3 ∓ √2)/2 and inverse [[1, −.5], [−.5, 2]]/1.75.
 func q2() *mat.SymDense { return mat.NewSymDense(2, []float64{2, 0.5, 0.5, 1}) }
 
 // randomSPD returns Q = AAᵀ/p + I with A having i.i.d. N(0,1) entries: dense,
@@ -99,7 +100,7 @@ func TestGaussianLogDensityMatchesDistmv(t *testing.T) {
 			}
 		}
 	}
-	// Closed form at the mean of the §11(a) target: −log 2π + ½·log det Q,
+	// Closed form at the mean of the q2 target: −log 2π + ½·log det Q,
 	// det Q = 2·1 − 0.5² = 1.75.
 	g, _ := NewGaussian([]float64{0, 0}, q2())
 	want := -math.Log(2*math.Pi) + 0.5*math.Log(1.75)
@@ -141,20 +142,22 @@ func TestGaussianCurvatureAndCovariance(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	// Reference: THEORY.md §11(a): eigenvalues of Q = [[2,.5],[.5,1]] are
-	// (0.7928932188, 2.2071067812), i.e. (3 ∓ √2)/2 in closed form.
+	// Reference: closed form, the roots of λ² − 3λ + 1.75 = 0: the
+	// eigenvalues of Q = [[2,.5],[.5,1]] are (3 ∓ √2)/2 =
+	// (0.7928932188, 2.2071067812).
 	m, M := g.Curvature()
 	if math.Abs(m-0.7928932188) > 1e-9 || math.Abs(M-2.2071067812) > 1e-9 {
-		t.Errorf("Curvature = (%.12g, %.12g), THEORY.md §11(a) (0.7928932188, 2.2071067812)", m, M)
+		t.Errorf("Curvature = (%.12g, %.12g), closed form (0.7928932188, 2.2071067812)", m, M)
 	}
-	// Reference: THEORY.md §11(a): Q⁻¹ = [[0.5714285714, −0.2857142857],
-	// [−0.2857142857, 1.1428571429]] (= [[1, −.5], [−.5, 2]]/1.75).
+	// Reference: closed form, the adjugate over the determinant:
+	// Q⁻¹ = [[1, −.5], [−.5, 2]]/1.75 = [[0.5714285714, −0.2857142857],
+	// [−0.2857142857, 1.1428571429]].
 	want := [][]float64{{0.5714285714, -0.2857142857}, {-0.2857142857, 1.1428571429}}
 	cov := g.Covariance()
 	for i := range 2 {
 		for j := range 2 {
 			if math.Abs(cov.At(i, j)-want[i][j]) > 1e-9 {
-				t.Errorf("Covariance(%d,%d) = %.12g, THEORY.md §11(a) %.10g", i, j, cov.At(i, j), want[i][j])
+				t.Errorf("Covariance(%d,%d) = %.12g, closed form %.10g", i, j, cov.At(i, j), want[i][j])
 			}
 		}
 	}
@@ -281,7 +284,7 @@ func TestLogisticCurvature(t *testing.T) {
 	if m != alpha {
 		t.Errorf("m = %v, want α = %v exactly", m, alpha)
 	}
-	// Reference: M = α + ¼·λ_max(XᵀX) (THEORY.md §0.1 definition of M with
+	// Reference: M = α + ¼·λ_max(XᵀX) (M bounds the Hessian's largest eigenvalue, with
 	// σ(1−σ) ≤ ¼), λ_max computed independently: XᵀX by mat.Dense.Mul, then
 	// gonum mat.EigenSym.
 	var xtx mat.Dense

@@ -534,7 +534,10 @@ type PlanResponse struct {
 	Bound *Bound `protobuf:"bytes,7,opt,name=bound,proto3" json:"bound,omitempty"`
 	// Everything the plan relies on, in words.
 	Assumptions []string `protobuf:"bytes,8,rep,name=assumptions,proto3" json:"assumptions,omitempty"`
-	// True when the bound's constants are recalled, not verified.
+	// True when the bound's constants are recalled from the paper it cites
+	// (Dalalyan 2017 for TV, Dalalyan and Karagulyan 2019 for W2) rather
+	// than checked against its text; the project checks them only on
+	// Gaussian targets, where the exact distance is known.
 	ConstantsRecalled bool `protobuf:"varint,9,opt,name=constants_recalled,json=constantsRecalled,proto3" json:"constants_recalled,omitempty"`
 	// Penalty weight lambda of the convex (m = 0) TV rule; 0 otherwise.
 	Penalty       float64 `protobuf:"fixed64,10,opt,name=penalty,proto3" json:"penalty,omitempty"`
@@ -1147,7 +1150,8 @@ type Register struct {
 	FixedPointIterations int32   `protobuf:"varint,27,opt,name=fixed_point_iterations,json=fixedPointIterations,proto3" json:"fixed_point_iterations,omitempty"`
 	// Opt-in curvature probe: before sampling, this many power iterations
 	// with finite-difference Hessian-vector products at chain 0's start
-	// estimate M, and as many again estimate m (THEORY.md section 12). Each
+	// estimate M, and as many again estimate m (on M*I - H; see
+	// docs/methods.md, "Curvature certificates from gradient pairs"). Each
 	// iteration costs one gradient evaluation, counted in the budget; the
 	// estimates are reported in Progress.curvature and feed the estimated
 	// bound. 0: no probe. Needs exact gradients.
