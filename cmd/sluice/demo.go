@@ -47,6 +47,7 @@ type demoConfig struct {
 	wantKSD       float64
 	minibatch     int
 	eps           float64
+	interval      float64
 }
 
 func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
@@ -62,7 +63,7 @@ func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs.Int64Var(&c.maxEvals, "max-evals", 0, "most gradient evaluations (0: no limit)")
 	fs.DurationVar(&c.maxTime, "max-time", 50*time.Second, "most wall time (0: no limit)")
 	fs.Uint64Var(&c.seed, "seed", 0, "random seed for start points and chains (0: pick one and print it)")
-	fs.StringVar(&c.out, "out", "", "write the draws to this file: .csv (chain, iteration, parameters) or .npy (chains × draws × dim), with a .summary.json beside it")
+	fs.StringVar(&c.out, "out", "", "write the draws to this file: .csv (chain, iteration, parameters) or .npy (chains × draws × parameters), and the summary to the same name plus .summary.json")
 	fs.BoolVar(&c.json, "json", false, "print the summary as one JSON object")
 	fs.Float64Var(&c.planTemp, "plan-temp", 1150, "planned peak temperature in °C, for the question answered at the end")
 	fs.Float64Var(&c.planCool, "plan-cool", 8, "planned cooling rate in °C per minute")
@@ -73,8 +74,33 @@ func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs.Float64Var(&c.wantKSD, "want-ksd", 0, "finish once the kernel Stein discrepancy is below this (0: no target)")
 	fs.IntVar(&c.minibatch, "minibatch", 0, "answer with stochastic gradients from minibatches of this many firings, two replicates per point (0: exact gradients)")
 	fs.Float64Var(&c.eps, "eps", 0.5, "with --minibatch: the W2 accuracy to plan for with the measured noise")
+	fs.Float64Var(&c.interval, "interval", 0.9, "level of the central interval shown for each parameter and for the answer, in (0, 1)")
+	setHelp(fs, help{
+		usage: "sluice demo [flags]",
+		about: "Runs a sluice server and a client in one process, on loopback, and samples an invented model end to end: " +
+			"a Bayesian logistic regression of whether a batch of glazed tiles cracks in a kiln, against peak firing " +
+			"temperature and cooling rate, on 300 firings invented for this demo. It prints, for each coefficient, the " +
+			"mean with its Monte Carlo error, the spread (standard deviation), the median, a central interval at " +
+			"--interval, R-hat and the bulk and tail ESS; then the measured accuracy (Stein discrepancy, curvature seen " +
+			"along the chains) and, apart, the guaranteed bound for the declared curvature; then the chance that a batch " +
+			"cracks at a planned schedule (--plan-temp, --plan-cool). With --minibatch it answers with minibatch gradients " +
+			"and shows the measured noise and what a guarantee would cost with it. --json prints the same summary as JSON " +
+			"(its layout: README, \"The demo's summary\").",
+		examples: []string{
+			"sluice demo",
+			"sluice demo --kernel mala --chains 4 --draws 2000 --interval 0.95",
+			"sluice demo --want-ess 400 --want-rhat 1.01 --draws 0 --max-time 30s",
+			"sluice demo --minibatch 30 --eps 0.5",
+			"sluice demo --seed 11 --out draws.npy   # also writes draws.npy.summary.json",
+			"sluice demo --json --quiet > summary.json",
+		},
+		kernels: "Kernels (--kernel): any but rejection, which needs a Gaussian envelope with a proven bound:",
+	})
 	if err := parseFlags(fs, args); err != nil {
 		return err
+	}
+	if !(c.interval > 0 && c.interval < 1) {
+		return usagef("--interval %v: the level must be in (0, 1), e.g. 0.9 for a 90%% interval", c.interval)
 	}
 	if c.out != "" && !strings.HasSuffix(c.out, ".csv") && !strings.HasSuffix(c.out, ".npy") {
 		return usagef("--out %q: the name must end in .csv or .npy", c.out)
@@ -115,20 +141,40 @@ func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	return nil
 }
 
-// demoParameter is one row of the posterior table.
+// demoParameter is one row of the posterior table (its JSON form is
+// documented in the README, "The demo's summary").
 type demoParameter struct {
-	Name string  `json:"name"`
-	Mean float64 `json:"mean"`
-	SD   float64 `json:"sd"`
-	Q05  float64 `json:"q05"`
-	Q50  float64 `json:"q50"`
-	Q95  float64 `json:"q95"`
-	// R-hat, bulk- and tail-ESS and the MCSE of the mean, as the server
-	// measured them (THEORY.md §9).
+	Name string `json:"name"`
+	// Mean of the pooled kept draws, and the server's Monte Carlo error
+	// of that mean (sd/√ESS; null when the server had not measured it).
+	Mean      float64 `json:"mean"`
+	MeanError num     `json:"mean_error"`
+	// Spread is the standard deviation of the pooled draws.
+	Spread float64 `json:"spread"`
+	Median float64 `json:"median"`
+	// Interval is the central interval of the pooled draws at the
+	// requested level.
+	Interval interval `json:"interval"`
+	// Mixing is how well the chains mixed, as the server measured it
+	// (Vehtari et al. 2021; docs/methods.md, section 6).
+	Mixing mixing `json:"mixing"`
+}
+
+// interval is a central interval: a share Level of the draws lies
+// between Low and High, (1 − Level)/2 below and as many above.
+type interval struct {
+	Level float64 `json:"level"`
+	Low   float64 `json:"low"`
+	High  float64 `json:"high"`
+}
+
+// mixing holds the server's convergence figures for one parameter: R-hat
+// (the larger of the rank-normalised and folded split R-hat) and the
+// effective sample sizes for the bulk and the tails.
+type mixing struct {
 	Rhat    num `json:"rhat"`
-	BulkESS num `json:"bulk_ess"`
-	TailESS num `json:"tail_ess"`
-	MCSE    num `json:"mcse_mean"`
+	ESSBulk num `json:"ess_bulk"`
+	ESSTail num `json:"ess_tail"`
 }
 
 // demoNoise is what the server measured of minibatch gradients, and what
@@ -161,13 +207,31 @@ type demoAccuracy struct {
 	BoundNoise      float64 `json:"bound_noise_term,omitempty"`
 }
 
-// demoAnswer is the downstream question answered from the draws.
+// demoAnswer is the downstream question answered from the draws: the
+// chance that a batch cracks at the planned schedule, averaged over the
+// draws, and the central interval of its values over the draws.
 type demoAnswer struct {
-	TempC          float64 `json:"temperature_c"`
-	CoolCPerMinute float64 `json:"cooling_c_per_minute"`
-	Mean           float64 `json:"p_crack_mean"`
-	Q05            float64 `json:"p_crack_q05"`
-	Q95            float64 `json:"p_crack_q95"`
+	TempC          float64  `json:"temperature_c"`
+	CoolCPerMinute float64  `json:"cooling_c_per_minute"`
+	Chance         float64  `json:"chance_of_cracking"`
+	Interval       interval `json:"interval"`
+}
+
+// drawsFile describes the file --out wrote, so that the summary beside it
+// says how to read it (a .npy array has no room for parameter names).
+type drawsFile struct {
+	Path   string `json:"path"`
+	Format string `json:"format"` // "csv" or "npy"
+	// Layout says where each value is: for csv, a header row then one row
+	// per draw; for npy, the axes of the array.
+	Layout string `json:"layout"`
+	// Shape is [chains, draws, parameters] for npy.
+	Shape []int `json:"shape,omitempty"`
+	// ParameterNames are the names of the parameter axis (npy) or of the
+	// columns after chain and iteration (csv), in order.
+	ParameterNames []string `json:"parameter_names"`
+	// Summary is the path of the summary file written beside it.
+	Summary string `json:"summary"`
 }
 
 type demoResult struct {
@@ -185,7 +249,7 @@ type demoResult struct {
 	Accuracy       demoAccuracy    `json:"accuracy"`
 	Noise          *demoNoise      `json:"noise,omitempty"`
 	Question       *demoAnswer     `json:"question,omitempty"`
-	Out            string          `json:"out,omitempty"`
+	DrawsFile      *drawsFile      `json:"draws_file,omitempty"`
 	MinDrawsNeeded int             `json:"-"`
 }
 
@@ -235,8 +299,9 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 	}
 	// The model's curvature is known: m is the prior precision and M adds
 	// a quarter of λ_max(XᵀX). A chain started at x is within
-	// ‖x − θ*‖ + √(p/m) of π in W2 (THEORY.md §2.1), which the demo can
-	// declare because it knows the mode θ*.
+	// ‖x − θ*‖ + √(p/m) of π in W2 (triangle inequality and
+	// E_π‖θ − θ*‖² ≤ p/m; docs/methods.md, section 2.3), which the demo
+	// can declare because it knows the mode θ*.
 	m, bigM := target.Curvature()
 	mode, err := target.Mode(1e-10, 100)
 	if err != nil {
@@ -299,17 +364,25 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 		Scenario:  "kiln tile cracking: Bayesian logistic regression on 300 invented firings",
 		SessionID: sum.Registered.SessionID, Kernel: sum.Registered.Kernel, Step: sum.Registered.Step,
 		Chains: c.chains, Seed: sum.Registered.Seed, Reason: string(sum.Reason),
-		Evaluations: sum.Progress.EvaluationsUsed, Seconds: sum.Progress.Elapsed.Seconds(), Out: c.out,
+		Evaluations: sum.Progress.EvaluationsUsed, Seconds: sum.Progress.Elapsed.Seconds(),
 	}
 	n := len(chains[0][0])
 	for _, ch := range chains[0] {
 		n = min(n, len(ch))
 	}
 	res.DrawsPerChain = n
-	if strings.HasSuffix(c.out, ".npy") {
+	switch {
+	case strings.HasSuffix(c.out, ".npy"):
 		if err := writeNPY(c.out, c.chains, n, 3, func(ch, t, i int) float64 { return chains[i][ch][t] }); err != nil {
 			return nil, err
 		}
+		res.DrawsFile = &drawsFile{Path: c.out, Format: "npy", Shape: []int{c.chains, n, 3},
+			Layout:         "float64 array, axes (chain, draw, parameter); draw t of a chain is its t-th kept draw",
+			ParameterNames: kilnNames, Summary: summaryPath(c.out)}
+	case c.out != "":
+		res.DrawsFile = &drawsFile{Path: c.out, Format: "csv",
+			Layout:         "header row, then one row per kept draw: chain, iteration, then one column per parameter",
+			ParameterNames: kilnNames, Summary: summaryPath(c.out)}
 	}
 	if n < 4 {
 		return res, fmt.Errorf("session ended (%s) with %d draws per chain: too few to summarise", sum.Reason, n)
@@ -318,10 +391,11 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 		for ch := range chains[i] {
 			chains[i][ch] = chains[i][ch][:n]
 		}
-		p := summarise(name, chains[i])
+		p := summarise(name, chains[i], c.interval)
 		for _, d := range sum.Progress.Parameters {
 			if d.Name == name {
-				p.Rhat, p.BulkESS, p.TailESS, p.MCSE = num(d.Rhat), num(d.BulkESS), num(d.TailESS), num(d.MCSE)
+				p.MeanError = num(d.MCSE)
+				p.Mixing = mixing{Rhat: num(d.Rhat), ESSBulk: num(d.BulkESS), ESSTail: num(d.TailESS)}
 			}
 		}
 		res.Parameters = append(res.Parameters, p)
@@ -355,12 +429,15 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 		}
 	}
 	sort.Float64s(probs)
-	res.Question = &demoAnswer{TempC: c.planTemp, CoolCPerMinute: c.planCool, Mean: meanOf(probs),
-		Q05: quantileSorted(probs, 0.05), Q95: quantileSorted(probs, 0.95)}
+	res.Question = &demoAnswer{TempC: c.planTemp, CoolCPerMinute: c.planCool, Chance: meanOf(probs),
+		Interval: centralInterval(probs, c.interval)}
 	return res, nil
 }
 
-func summarise(name string, chains [][]float64) demoParameter {
+// summarise pools a parameter's chains: mean, spread (standard deviation,
+// divisor n − 1), median and the central interval at level. The server's
+// figures (mean error, mixing) start as not available.
+func summarise(name string, chains [][]float64, level float64) demoParameter {
 	var all []float64
 	for _, c := range chains {
 		all = append(all, c...)
@@ -372,8 +449,15 @@ func summarise(name string, chains [][]float64) demoParameter {
 	}
 	sd := math.Sqrt(ss / float64(len(all)-1))
 	sort.Float64s(all)
-	return demoParameter{Name: name, Mean: m, SD: sd, Q05: quantileSorted(all, 0.05), Q50: quantileSorted(all, 0.5),
-		Q95: quantileSorted(all, 0.95), Rhat: num(math.NaN()), BulkESS: num(math.NaN()), TailESS: num(math.NaN()), MCSE: num(math.NaN())}
+	na := num(math.NaN())
+	return demoParameter{Name: name, Mean: m, MeanError: na, Spread: sd, Median: quantileSorted(all, 0.5),
+		Interval: centralInterval(all, level), Mixing: mixing{Rhat: na, ESSBulk: na, ESSTail: na}}
+}
+
+// centralInterval is the interval from the (1 − level)/2 to the
+// (1 + level)/2 quantile of sorted x.
+func centralInterval(sorted []float64, level float64) interval {
+	return interval{Level: level, Low: quantileSorted(sorted, (1-level)/2), High: quantileSorted(sorted, (1+level)/2)}
 }
 
 func meanOf(x []float64) float64 {
@@ -401,11 +485,7 @@ func printDemo(w io.Writer, r *demoResult) {
 	fmt.Fprintf(w, "session %s: kernel %s, step %.4g, %d chains, seed %d\n", r.SessionID, r.Kernel, r.Step, r.Chains, r.Seed)
 	fmt.Fprintf(w, "finished (%s): %d gradient evaluations in %.2f s, %d draws per chain kept\n\n",
 		r.Reason, r.Evaluations, r.Seconds, r.DrawsPerChain)
-	fmt.Fprintf(w, "%-14s %9s %8s %9s %9s %9s %7s %8s %8s %9s\n", "parameter", "mean", "sd", "5%", "50%", "95%", "R-hat", "bulk-ESS", "tail-ESS", "MCSE")
-	for _, p := range r.Parameters {
-		fmt.Fprintf(w, "%-14s %9.4f %8.4f %9.4f %9.4f %9.4f %7.3f %8.0f %8.0f %9.5f\n", p.Name, p.Mean, p.SD, p.Q05, p.Q50, p.Q95,
-			float64(p.Rhat), float64(p.BulkESS), float64(p.TailESS), float64(p.MCSE))
-	}
+	printParameters(w, r.Parameters)
 	fmt.Fprintf(w, "(coefficients on the log-odds scale: temperature per %g °C, cooling rate per %g °C/min)\n\n", tempScale, coolScale)
 	a := r.Accuracy
 	if a.KSD >= 0 {
@@ -428,7 +508,8 @@ func printDemo(w io.Writer, r *demoResult) {
 	if n := r.Noise; n != nil {
 		fmt.Fprintf(w, "noise:      minibatches of %d firings, two per point; measured variance per coordinate %.4g ± %.2g, %.1f passes over the data\n",
 			n.Minibatch, n.Variance, n.VarianceSE, n.Epochs)
-		fmt.Fprintf(w, "            it inflates the draws' variance by about h·s²/(2·2) = %.1f%% (THEORY.md §11b)\n", 100*r.Step*n.Variance/4)
+		fmt.Fprintf(w, "            with two replicates averaged it inflates the draws' variance by about h·s²/4 = %.1f%%\n"+
+			"            (exact for a Gaussian target: docs/methods.md, section 4)\n", 100*r.Step*n.Variance/4)
 		if n.PlanStep > 0 {
 			fmt.Fprintf(w, "            to guarantee W2 ≤ %g with this noise: step %.3g, %d evaluations (noise term %.3g)\n\n", n.Eps, n.PlanStep, n.PlanEvals, n.PlanNoiseTerm)
 		} else {
@@ -437,10 +518,11 @@ func printDemo(w io.Writer, r *demoResult) {
 	}
 	if q := r.Question; q != nil {
 		fmt.Fprintf(w, "Planned firing at %g °C peak, cooling %g °C/min:\n", q.TempC, q.CoolCPerMinute)
-		fmt.Fprintf(w, "  chance a batch cracks: %.3f (90%% interval %.3f to %.3f)\n\n", q.Mean, q.Q05, q.Q95)
+		fmt.Fprintf(w, "  chance a batch cracks: %.3f (%s interval %.3f to %.3f over the draws)\n\n", q.Chance,
+			levelPercent(q.Interval.Level), q.Interval.Low, q.Interval.High)
 	}
-	if r.Out != "" {
-		fmt.Fprintf(w, "draws written to %s, summary to %s\n", r.Out, summaryPath(r.Out))
+	if f := r.DrawsFile; f != nil {
+		fmt.Fprintf(w, "draws written to %s (%s), summary to %s\n", f.Path, f.Format, f.Summary)
 	}
 	fmt.Fprintln(w, "These draws are approximate and the diagnostics cannot prove convergence; validate before relying on them.")
 }
@@ -531,11 +613,11 @@ func (c *csvWriter) close() error {
 	return c.err
 }
 
-// summaryPath is where the JSON summary goes beside a draws file:
-// draws.csv → draws.summary.json.
-func summaryPath(out string) string {
-	return strings.TrimSuffix(strings.TrimSuffix(out, ".csv"), ".npy") + ".summary.json"
-}
+// summaryPath is where the JSON summary goes beside a draws file: the
+// file's whole name plus ".summary.json" (draws.csv → draws.csv.summary.json,
+// draws.npy → draws.npy.summary.json), so a CSV and an NPY run of the same
+// stem keep their own summaries.
+func summaryPath(out string) string { return out + ".summary.json" }
 
 func writeSummaryJSON(path string, r *demoResult) error {
 	b, err := json.MarshalIndent(r, "", "  ")
@@ -566,4 +648,45 @@ func (n *num) UnmarshalJSON(b []byte) error {
 	err := json.Unmarshal(b, &f)
 	*n = num(f)
 	return err
+}
+
+// printParameters prints the posterior table:
+//
+//	parameter        mean ± MC error     spread     median   90% interval          R-hat  ESS bulk  ESS tail
+//	intercept     -1.2345 ± 0.0031       0.2113    -1.2301   [-1.5812, -0.8911]    1.002      1843      2011
+//
+// "n/a" stands for a figure the server had not measured.
+func printParameters(w io.Writer, ps []demoParameter) {
+	level := 0.9
+	if len(ps) > 0 {
+		level = ps[0].Interval.Level
+	}
+	fmt.Fprintf(w, "%-14s %21s %9s %10s   %-21s %6s %9s %9s\n", "parameter", "mean ± MC error", "spread", "median",
+		levelPercent(level)+" interval", "R-hat", "ESS bulk", "ESS tail")
+	for _, p := range ps {
+		fmt.Fprintf(w, "%-14s %21s %9.4f %10.4f   %-21s %6s %9s %9s\n", p.Name, meanWithError(p.Mean, p.MeanError), p.Spread, p.Median,
+			fmt.Sprintf("[%.4f, %.4f]", p.Interval.Low, p.Interval.High), fmtNum(p.Mixing.Rhat, "%.3f"),
+			fmtNum(p.Mixing.ESSBulk, "%.0f"), fmtNum(p.Mixing.ESSTail, "%.0f"))
+	}
+	fmt.Fprintln(w, "(mean ± its Monte Carlo error; spread: standard deviation of the draws; interval: central, of the pooled draws;")
+	fmt.Fprintln(w, " R-hat and ESS as the server measured them, docs/methods.md section 6)")
+}
+
+// meanWithError writes "0.4120 ± 0.0030", or "0.4120 ± n/a".
+func meanWithError(mean float64, err num) string {
+	return fmt.Sprintf("%.4f ± %s", mean, fmtNum(err, "%.4f"))
+}
+
+// fmtNum formats a figure, or "n/a" when it is not available.
+func fmtNum(n num, format string) string {
+	f := float64(n)
+	if math.IsNaN(f) || math.IsInf(f, 0) {
+		return "n/a"
+	}
+	return fmt.Sprintf(format, f)
+}
+
+// levelPercent writes a level as a percentage: 0.9 → "90%", 0.995 → "99.5%".
+func levelPercent(level float64) string {
+	return strconv.FormatFloat(math.Round(level*100*1e6)/1e6, 'f', -1, 64) + "%"
 }

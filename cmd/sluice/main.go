@@ -1,12 +1,13 @@
 // Command sluice runs the sluice sampling service and its demonstration.
 //
-//	sluice serve   serve the gRPC API (default 127.0.0.1:7070)
-//	sluice demo    run a server and a client in one process on an invented
-//	               kiln-firing data set, and answer a question with the draws
-//	sluice plan    step, iterations, evaluations and wall time needed for a
-//	               guaranteed accuracy, before sampling
+//	sluice serve     serve the gRPC API (default 127.0.0.1:7070)
+//	sluice demo      run a server and a client in one process on an invented
+//	                 kiln-firing data set, and answer a question with the draws
+//	sluice plan      step, iterations, evaluations and wall time needed for a
+//	                 guaranteed accuracy, before sampling
+//	sluice version   the version, Go version and module build information
 //
-// Run "sluice <command> -h" for a command's flags.
+// Run "sluice <command> -h" for a command's description, examples and flags.
 package main
 
 import (
@@ -17,6 +18,7 @@ import (
 	"io"
 	"os"
 	"os/signal"
+	"strings"
 	"syscall"
 )
 
@@ -26,8 +28,9 @@ Usage:
   sluice serve [flags]   serve the gRPC API
   sluice demo [flags]    sample an invented kiln-firing model end to end
   sluice plan [flags]    what a guaranteed accuracy costs, before sampling
+  sluice version         version, Go version and build information
 
-Run "sluice <command> -h" for the flags of a command.
+Run "sluice <command> -h" for a command's description, examples and flags.
 `
 
 func main() {
@@ -51,6 +54,8 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		err = demo(ctx, args[1:], stdout, stderr)
 	case "plan":
 		err = plan(ctx, args[1:], stdout, stderr)
+	case "version", "-version", "--version":
+		err = version(args[1:], stdout, stderr)
 	case "-h", "--help", "help":
 		fmt.Fprint(stdout, usage)
 		return 0
@@ -64,16 +69,18 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 	case errors.Is(err, flag.ErrHelp):
 		return 0
 	case errors.As(err, new(usageError)):
-		fmt.Fprintf(stderr, "sluice %s: %v\n", args[0], err)
+		fmt.Fprintf(stderr, "sluice %s: %s\n", args[0], describeError(err))
 		return 2
 	default:
-		fmt.Fprintf(stderr, "sluice %s: %v\n", args[0], err)
+		fmt.Fprintf(stderr, "sluice %s: %s\n", args[0], describeError(err))
 		return 1
 	}
 }
 
 // usageError marks a bad flag or argument.
 type usageError struct{ error }
+
+func (e usageError) Unwrap() error { return e.error }
 
 func usagef(format string, a ...any) error { return usageError{fmt.Errorf(format, a...)} }
 
@@ -89,4 +96,54 @@ func parseFlags(fs *flag.FlagSet, args []string) error {
 		return usagef("unexpected argument %q", fs.Arg(0))
 	}
 	return nil
+}
+
+// help is what "sluice <command> -h" prints above the flags.
+type help struct {
+	usage    string   // the synopsis, e.g. "sluice plan [flags]"
+	about    string   // one paragraph on what the command does
+	examples []string // command lines, one per line
+	kernels  string   // a sentence introducing the kernel names
+}
+
+// setHelp makes fs print h, the flags and the kernel names on -h (and
+// after a flag error), on fs's output.
+func setHelp(fs *flag.FlagSet, h help) {
+	fs.Usage = func() {
+		w := fs.Output()
+		fmt.Fprintf(w, "Usage: %s\n\n%s\n\nExamples:\n", h.usage, wrap(h.about, 76))
+		for _, e := range h.examples {
+			fmt.Fprintf(w, "  %s\n", e)
+		}
+		if h.kernels != "" {
+			fmt.Fprintf(w, "\n%s\n", wrap(h.kernels+" "+strings.Join(kernelNames(), ", ")+".", 76))
+		}
+		has := false
+		fs.VisitAll(func(*flag.Flag) { has = true })
+		if has {
+			fmt.Fprintln(w, "\nFlags:")
+			fs.PrintDefaults()
+		}
+	}
+}
+
+// wrap breaks s into lines of at most width runes at spaces.
+func wrap(s string, width int) string {
+	var b strings.Builder
+	n := 0
+	for i, word := range strings.Fields(s) {
+		l := len([]rune(word))
+		if i > 0 {
+			if n+1+l > width {
+				b.WriteByte('\n')
+				n = 0
+			} else {
+				b.WriteByte(' ')
+				n++
+			}
+		}
+		b.WriteString(word)
+		n += l
+	}
+	return b.String()
 }

@@ -53,20 +53,26 @@ func TestDemoMeansNearNewtonModeAndOutputs(t *testing.T) {
 	if res.Reason != "draws collected" || res.DrawsPerChain != 500 || res.Seed != 11 || len(res.Parameters) != 3 {
 		t.Fatalf("summary %+v", res)
 	}
-	// LMC: one gradient per chain per step (THEORY.md §13).
+	// LMC: one gradient per chain per step.
 	if want := int64(4 * (1000 + 10*500)); res.Evaluations != want {
 		t.Fatalf("%d evaluations, want %d", res.Evaluations, want)
 	}
 	for i, p := range res.Parameters {
-		if math.Abs(p.Mean-mode[i]) > p.SD {
-			t.Errorf("%s: posterior mean %.4f vs Newton mode %.4f, sd %.4f", p.Name, p.Mean, mode[i], p.SD)
+		if math.Abs(p.Mean-mode[i]) > p.Spread {
+			t.Errorf("%s: posterior mean %.4f vs Newton mode %.4f, spread %.4f", p.Name, p.Mean, mode[i], p.Spread)
 		}
-		if !(p.Q05 < p.Q50 && p.Q50 < p.Q95) || !(p.BulkESS > 0) || !(p.TailESS > 0) || !(p.Rhat > 0.9 && p.Rhat < 1.1) {
-			t.Errorf("%s: quantiles or ESS out of order: %+v", p.Name, p)
+		iv, mx := p.Interval, p.Mixing
+		if iv.Level != 0.9 || !(iv.Low < p.Median && p.Median < iv.High) || !(mx.ESSBulk > 0) || !(mx.ESSTail > 0) ||
+			!(mx.Rhat > 0.9 && mx.Rhat < 1.1) || !(p.MeanError > 0) {
+			t.Errorf("%s: interval, median or mixing out of order: %+v", p.Name, p)
 		}
 	}
-	if q := res.Question; q == nil || !(q.Q05 < q.Mean && q.Mean < q.Q95 && q.Q05 > 0 && q.Q95 < 1) {
+	if q := res.Question; q == nil || !(q.Interval.Low < q.Chance && q.Chance < q.Interval.High && q.Interval.Low > 0 && q.Interval.High < 1) {
 		t.Fatalf("question %+v", res.Question)
+	}
+	if f := res.DrawsFile; f == nil || f.Format != "csv" || f.Path != out || f.Summary != out+".summary.json" ||
+		strings.Join(f.ParameterNames, ",") != "intercept,temperature,cooling_rate" {
+		t.Fatalf("draws file %+v", res.DrawsFile)
 	}
 
 	f, err := os.Open(out)

@@ -35,8 +35,28 @@ func plan(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	rate := fs.Float64("rate", 0, "gradient evaluations per second over all chains, for the wall time (0: unknown)")
 	addr := fs.String("addr", "", "ask the sluice server at this address instead of computing locally")
 	asJSON := fs.Bool("json", false, "print the plan as one JSON object")
+	setHelp(fs, help{
+		usage: "sluice plan --m M --M M --dim P --eps E [--metric tv|w2] [flags]",
+		about: "Answers, before any sampling, what a guaranteed accuracy costs with unadjusted Langevin (the lmc kernel) " +
+			"on a target whose potential −log π is m-strongly convex and M-smooth: the step size, the Langevin time, " +
+			"the iterations per chain, the gradient evaluations and, given a rate, the wall time, with the bound reached " +
+			"term by term and everything the promise rests on. TV uses the theorem of Dalalyan (2017), W2 that of " +
+			"Dalalyan and Karagulyan (2019), which also covers gradient noise and bias; their constants are recalled " +
+			"from the papers and checked by sluice only on Gaussian targets (docs/methods.md), so treat the figures as " +
+			"planning guidance. With --addr the same computation runs on a server (the Plan rpc).",
+		examples: []string{
+			"sluice plan --m 1 --M 4 --dim 2 --eps 0.1 --metric tv",
+			"sluice plan --m 1 --M 4 --dim 2 --eps 0.5 --metric w2 --noise-sd 2 --chains 8 --rate 1e6",
+			"sluice plan --m 0 --M 4 --dim 2 --eps 0.1 --second-moment 10   # convex only: a penalised target",
+			"sluice plan --m 1 --M 4 --dim 2 --eps 0.1 --json --addr 127.0.0.1:7070",
+		},
+		kernels: "Plans are for the lmc kernel; a session can run any of",
+	})
 	if err := parseFlags(fs, args); err != nil {
 		return err
+	}
+	if missing := missingPlanFlags(fs, *metric); len(missing) > 0 {
+		return usagef("missing %s (see sluice plan -h)", strings.Join(missing, ", "))
 	}
 	met, ok := map[string]sluicev1.Metric{"tv": sluicev1.Metric_METRIC_TV, "w2": sluicev1.Metric_METRIC_W2}[strings.ToLower(*metric)]
 	if !ok {
@@ -60,8 +80,8 @@ func plan(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		resp, err = server.MakePlan(req)
 	}
 	if err != nil {
-		if st, ok := status.FromError(err); ok {
-			return usagef("%s", st.Message())
+		if _, ok := status.FromError(err); ok {
+			return usageError{err} // bad input: describeError shows the field
 		}
 		return err
 	}
@@ -94,7 +114,12 @@ func plan(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		fmt.Fprintf(stdout, "  - %s\n", a)
 	}
 	if resp.ConstantsRecalled {
-		fmt.Fprintln(stdout, "The constants of this bound are recalled from the literature, not verified: use it as planning guidance.")
+		src := "Dalalyan (2017)"
+		if met == sluicev1.Metric_METRIC_W2 {
+			src = "Dalalyan and Karagulyan (2019)"
+		}
+		fmt.Fprintf(stdout, "The bound's constants are recalled from %s and checked by sluice only on Gaussian targets\n"+
+			"(where the exact distance is known): use the plan as guidance. Sources and derivations: docs/methods.md.\n", src)
 	}
 	return nil
 }
@@ -122,4 +147,22 @@ type planBoundJSON struct {
 	Discretisation float64 `json:"discretisation_term"`
 	Noise          float64 `json:"noise_term"`
 	Bias           float64 `json:"bias_term"`
+}
+
+// missingPlanFlags names the flags a plan cannot do without that were not
+// given: --M, --dim and --eps always; --m unless a convex TV plan gives
+// --second-moment instead.
+func missingPlanFlags(fs *flag.FlagSet, metric string) []string {
+	set := map[string]bool{}
+	fs.Visit(func(f *flag.Flag) { set[f.Name] = true })
+	var missing []string
+	if !set["m"] && !(strings.EqualFold(metric, "tv") && set["second-moment"]) {
+		missing = append(missing, "--m")
+	}
+	for _, name := range []string{"M", "dim", "eps"} {
+		if !set[name] {
+			missing = append(missing, "--"+name)
+		}
+	}
+	return missing
 }

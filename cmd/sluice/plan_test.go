@@ -16,7 +16,9 @@ import (
 )
 
 // `sluice plan --m 1 --M 4 --dim 2 --eps 0.1 --metric tv --json` reports
-// THEORY.md §1.1's vector: h = 5.215753135864595e-05, K = 114873.
+// the worked example of Dalalyan's (2017) TV rule (computed for this
+// project with NumPy; docs/methods.md): h = 5.215753135864595e-05,
+// K = 114873.
 func TestPlanReproducesTheTVVector(t *testing.T) {
 	code, stdout, stderr := runCmd(t, context.Background(), "plan", "--m", "1", "--M", "4", "--dim", "2", "--eps", "0.1", "--metric", "tv", "--json")
 	if code != 0 {

@@ -73,6 +73,22 @@ func serve(ctx context.Context, args []string, stderr io.Writer) error {
 	grace := fs.Duration("grace", 15*time.Second, "on SIGINT/SIGTERM, how long running sessions get to finish")
 	var sf serveFlags
 	sf.register(fs)
+	setHelp(fs, help{
+		usage: "sluice serve [flags]",
+		about: "Serves the sluice gRPC API (sluice.v1.SluiceService: the Session stream, Follow and Plan) on --addr, " +
+			"with the standard health service and server reflection, so any gRPC tool can list and call it. A client " +
+			"registers a target on a Session stream; the server runs the chains, asks the client for gradients in one " +
+			"batch per step, and streams back draws, progress and a summary. The flags below set the server's limits; " +
+			"a session asking for more is refused with a message naming the field. Logs are JSON lines on standard " +
+			"error. SIGINT or SIGTERM stops it gracefully: running sessions get --grace to finish and still deliver " +
+			"their last draws and summary.",
+		examples: []string{
+			"sluice serve",
+			"sluice serve --addr 127.0.0.1:7070 --log-level info",
+			"sluice serve --addr 0.0.0.0:7070 --max-sessions 8 --max-message-bytes 67108864 --answer-timeout 2m",
+		},
+		kernels: "Kernels a session may ask for (Register.kernel):",
+	})
 	if err := parseFlags(fs, args); err != nil {
 		return err
 	}
