@@ -90,7 +90,8 @@ func dot(a, b []float64) float64 {
 // kilnMinibatch answers with stochastic gradients of log π: for each
 // point and replicate, the prior's gradient plus N/n times the sum of the
 // per-firing gradients over n firings drawn uniformly with replacement
-// (an unbiased estimate, THEORY.md §7.1). The stream is seeded, so a run
+// (an unbiased estimate, as in Welling and Teh (2011), "Bayesian learning
+// via stochastic gradient Langevin dynamics"). The stream is seeded, so a run
 // is reproducible.
 func kilnMinibatch(data []kilnFiring, n int, seed uint64) client.Evaluator {
 	r := rand.New(rand.NewPCG(seed, 7))

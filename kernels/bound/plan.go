@@ -183,9 +183,9 @@ func assumptions(metric Metric, s Setting) []string {
 // The sources the assumptions name, in the words a user reads.
 const (
 	tvSource = "Dalalyan (2017), JRSS B 79(3), the total-variation theorem for LMC from a Gaussian start and its corollary; " +
-		"constants recalled from the paper, checked here only on Gaussian targets"
+		"constants recalled from the paper, checked by sluice only on Gaussian targets"
 	w2Source = "Dalalyan and Karagulyan (2019), Stoch. Proc. Appl. 129(12), constant-step theorems with exact and inaccurate gradients; " +
-		"the constant 1.65 and the δ, σ terms recalled from the paper, checked here only on Gaussian targets"
+		"the constant 1.65 and the δ, σ terms recalled from the paper, checked by sluice only on Gaussian targets"
 	derivedPenalty = "derived for sluice, E_π[1 − exp(−λ‖θ − θ̄‖²/2)] ≤ λμ₂/2 (docs/methods.md, section 2.2)"
 	derivedW2Rule  = "derived for sluice from that bound: the start term and the rest each within ε/2 (docs/methods.md, section 2.3)"
 )

@@ -35,7 +35,7 @@ func TestPlanTVVector(t *testing.T) {
 	if got := p.Bound(1000); got.Steps != 1000 || !(got.Total > p.Final.Total) {
 		t.Errorf("bound after 1000 steps %+v, final %v", got, p.Final.Total)
 	}
-	wantAssumptions(t, p, "Dalalyan (2017)", "recalled from the paper, checked here only on Gaussian targets",
+	wantAssumptions(t, p, "Dalalyan (2017)", "recalled from the paper, checked by sluice only on Gaussian targets",
 		"N(θ*, I/M)", "exact gradients", "h ≤ 1/M", "(declared)", "one gradient per chain per step")
 }
 
