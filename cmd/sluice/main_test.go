@@ -138,6 +138,7 @@ func TestDemoBudgetAndBadFlags(t *testing.T) {
 		{"demo", "--step", "-1"},
 		{"demo", "--draws", "0", "--max-time", "0"},
 		{"demo", "--nonsense"},
+		{"demo", "--kernel", "rejection"},
 		{"serve", "--log-level", "loud"},
 		{"bogus"},
 		{},
@@ -210,7 +211,10 @@ func freeAddr(t *testing.T) string {
 func TestDemoRunsEveryKernel(t *testing.T) {
 	ctx, cancel := context.WithTimeout(context.Background(), 5*time.Minute)
 	defer cancel()
-	for _, k := range []string{"lmc", "kinetic", "midpoint", "midpoint-overdamped", "mala", "ozaki", "ozaki-krylov", "sgld", "sgld-cv", "svrg", "hit-and-run"} {
+	for _, k := range kernelNames() {
+		if k == "rejection" {
+			continue // refused by the demo: see TestDemoBudgetAndBadFlags
+		}
 		code, stdout, stderr := runCmd(t, ctx, "demo", "--kernel", k, "--seed", "2", "--chains", "2", "--draws", "30", "--burn-in", "20", "--json")
 		var res demoResult
 		if code != 0 || json.Unmarshal([]byte(stdout), &res) != nil || res.Reason != "draws collected" || res.DrawsPerChain != 30 {

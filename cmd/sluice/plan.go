@@ -96,8 +96,12 @@ func plan(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		enc.SetIndent("", "  ")
 		return enc.Encode(out)
 	}
-	fmt.Fprintf(stdout, "plan for %s ≤ %g with unadjusted Langevin (m = %g, M = %g, dim %d, %d chains)\n",
-		strings.ToUpper(*metric), *eps, *m, *bigM, *dim, *chains)
+	chainWord := "chains"
+	if *chains == 1 {
+		chainWord = "chain"
+	}
+	fmt.Fprintf(stdout, "plan for %s ≤ %g with unadjusted Langevin (m = %g, M = %g, dim %d, %d %s)\n",
+		strings.ToUpper(*metric), *eps, *m, *bigM, *dim, *chains, chainWord)
 	fmt.Fprintf(stdout, "  step h          %.6g\n  horizon T       %.6g\n  iterations K    %d per chain\n  evaluations     %d\n",
 		resp.Step, resp.Horizon, resp.Iterations, resp.Evaluations)
 	if resp.Seconds >= 0 {
