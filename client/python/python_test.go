@@ -42,9 +42,13 @@ func checkPython(t testing.TB) {
 	if _, err := os.Stat(python); err != nil {
 		t.Fatalf("%s: %v (apt-get install python3 python3-grpcio python3-protobuf python3-numpy)", python, err)
 	}
-	out, err := exec.Command(python, "-c", "import grpc, google.protobuf, numpy, pytest, pip, setuptools").CombinedOutput()
+	// pip and setuptools are looked up, not imported: importing both into
+	// one interpreter trips setuptools' distutils shim. ensurepip comes with
+	// python3-venv, which the install test's virtual environment needs.
+	out, err := exec.Command(python, "-c", "import grpc, google.protobuf, numpy, pytest, ensurepip\n"+
+		"import importlib.util as u\nassert u.find_spec('pip') and u.find_spec('setuptools')").CombinedOutput()
 	if err != nil {
-		t.Fatalf("%s cannot import grpc, google.protobuf, numpy, pytest, pip, setuptools: %v\n%s"+
+		t.Fatalf("%s lacks grpc, google.protobuf, numpy, pytest, ensurepip, pip or setuptools: %v\n%s"+
 			"(apt-get install python3-grpcio python3-protobuf python3-numpy python3-pytest python3-pip python3-setuptools python3-venv)", python, err, out)
 	}
 }
