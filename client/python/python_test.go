@@ -191,7 +191,7 @@ func TestPythonClient(t *testing.T) {
 
 	t.Run("pytest", func(t *testing.T) {
 		// -p no:cacheprovider: leave no .pytest_cache in the source tree.
-		out, err := runPython(t, dir, srv.addr, 5*time.Minute, "-m", "pytest", "-p", "no:cacheprovider", "-v", "-rs", "tests")
+		out, err := runPython(t, dir, srv.addr, 15*time.Minute, "-m", "pytest", "-p", "no:cacheprovider", "-v", "-rs", "tests")
 		if err != nil || !pytestPassed.MatchString(out) {
 			t.Fatalf("python -m pytest: %v\n%s\nserver log:\n%s", err, out, srv.logText())
 		}
