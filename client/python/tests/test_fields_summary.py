@@ -88,12 +88,19 @@ def parent_of(msg: Message, path: Path_) -> Message:
     return msg
 
 
-def set_leaf(msg: Message, path: Path_) -> None:
+def candidates(f: FieldDescriptor) -> List[Any]:
+    """The distinctive value of a field, or every non-zero enum value."""
+    if f.type == FieldDescriptor.TYPE_ENUM:
+        return [v.number for v in f.enum_type.values if v.number != 0]
+    return [distinctive(f)]
+
+
+def set_leaf(msg: Message, path: Path_, value: Any) -> None:
     parent, f = parent_of(msg, path), path[-1]
     if f.label == FieldDescriptor.LABEL_REPEATED:
-        getattr(parent, f.name).append(distinctive(f))
+        getattr(parent, f.name).append(value)
     else:
-        setattr(parent, f.name, distinctive(f))
+        setattr(parent, f.name, value)
 
 
 def is_set(msg: Message, path: Path_) -> bool:
@@ -122,15 +129,19 @@ def flatten(x: Any) -> Any:
 
 
 def check_every_leaf_read(desc: Descriptor, convert: Any) -> List[str]:
-    """The leaves of desc whose value does not change convert(message)."""
+    """The leaves of desc whose value does not change convert(message); an
+    enum leaf is read when any of its non-zero values changes it."""
     missing = []
     for path in leaf_paths(desc):
         base = desc._concrete_class()
         parent_of(base, path)
-        full = desc._concrete_class()
-        full.CopyFrom(base)
-        set_leaf(full, path)
-        if flatten(convert(base)) == flatten(convert(full)):
+        changed = False
+        for value in candidates(path[-1]):
+            full = desc._concrete_class()
+            full.CopyFrom(base)
+            set_leaf(full, path, value)
+            changed = changed or flatten(convert(base)) != flatten(convert(full))
+        if not changed:
             missing.append(dotted(path))
     return missing
 
@@ -325,3 +336,50 @@ def test_live_summary_interval_matches_ula_stationary_law() -> None:
     assert by_chain.shape == (chains, n, 1)
     assert math.isfinite(st.rhat) and math.isfinite(st.ess_bulk) and math.isfinite(st.mean_error)
     assert "x" in str(s) and "interval (90 %)" in str(s)
+
+
+def test_live_curvature_probe() -> None:
+    # Target N(0, diag(1, 1/4)): the potential's Hessian is diag(1, 4), so
+    # M = 4 and m = 1. The probe's power iterations on finite-difference
+    # Hessian-vector products are exact on a quadratic up to rounding, and
+    # converge like (1/4)^k: 30 iterations leave ~1e-18.
+    Q = np.diag([1.0, 4.0])
+    iters, chains, n = 30, 2, 10
+    spec = sc.Spec(dim=2, chains=chains, start=np.array([0.3, -0.2]), step=0.1, draws_per_chain=n,
+                   curvature_probe_iterations=iters, seed=1)
+    s = sc.run(require_target(), spec, lambda x: -x @ Q, timeout=DEADLINE_SECONDS)
+    c = s.progress.curvature
+    assert math.isclose(c.probed_smoothness, 4.0, rel_tol=1e-6), c
+    assert math.isclose(c.probed_strong_convexity, 1.0, rel_tol=1e-6), c
+    # One gradient per iteration each way (sluice.proto, Register.
+    # curvature_probe_iterations), all counted in the budget.
+    assert c.probe_evaluations >= 2 * iters
+    assert s.progress.evaluations_used == c.probe_evaluations + chains * n
+
+
+def test_live_rejection_gives_exact_draws() -> None:
+    # Target pi_tilde(x) = exp(-x^2 / 2), i.e. N(0, 1) up to a constant;
+    # envelope q = N(0, s^2) with s = 1.5. pi_tilde / q =
+    # s sqrt(2 pi) exp(-x^2 (1 - 1/s^2) / 2) <= s sqrt(2 pi), so
+    # log_bound = log(s sqrt(2 pi)) holds, and a proposal is accepted with
+    # probability integral(pi_tilde) / (s sqrt(2 pi)) = 1 / s (von Neumann's
+    # rejection method). The draws are i.i.d. N(0, 1): the mean has
+    # standard error 1 / sqrt(N), the sample variance sqrt(2 / N).
+    s_env, chains, n = 1.5, 4, 1000
+    spec = sc.Spec(dim=1, chains=chains, kernel="rejection", start=np.zeros(1), step=0.0, draws_per_chain=n,
+                   seed=2, names=["x"],
+                   envelope=sc.Envelope(mean=np.zeros(1), scale=s_env,
+                                        log_bound=float(np.log(s_env * np.sqrt(2 * np.pi)))))
+    s = sc.run(require_target(), spec, lambda x: -x, log_density=lambda x: -0.5 * x[:, 0] ** 2,
+               timeout=DEADLINE_SECONDS)
+    assert s.reason == sc.FinishReason.DRAWS_COLLECTED and s.draws is not None
+    x = s.draws[:, 0]
+    N = x.size
+    assert N == chains * n
+    assert abs(x.mean()) * math.sqrt(N) < Z_MAX
+    assert abs(x.var(ddof=1) - 1.0) / math.sqrt(2.0 / N) < Z_MAX
+    # Acceptance over every proposal: each proposal is one evaluation.
+    proposals = s.progress.evaluations_used
+    rate = s.progress.kernel.acceptance_rate
+    assert abs(rate - 1.0 / s_env) / math.sqrt(rate * (1 - rate) / proposals) < Z_MAX
+    assert s.progress.kernel.evaluations_per_step_mean >= 1.0
