@@ -692,6 +692,14 @@ class LiveFollowTests(unittest.TestCase):
         self.assertEqual(fsum.draws_received, chains * n - resume)
         self.assertIsNone(fsum.registered)
         self.assertEqual(fsum.parameters, own_summary.parameters)
+        # The summaries keep the draws received (keep_draws defaults to
+        # True): the session's all of them, the resumed follower's from
+        # `resume` on, the same bytes as the blocks delivered.
+        assert own_summary.draws is not None and fsum.draws is not None
+        own_values = np.concatenate([d.values for d in own])
+        self.assertEqual(own_summary.draws.tobytes(), own_values.tobytes())
+        self.assertEqual(fsum.draws.tobytes(), own_values[resume:].tobytes())
+        self.assertEqual(fsum.draw_chains.tobytes(), np.concatenate([d.chains for d in own])[resume:].tobytes())
 
         # From exactly the end: no draws, only the summary. Beyond it:
         # OUT_OF_RANGE naming from_seq.
