@@ -21,6 +21,7 @@ from ._types import (
     Batch,
     Draws,
     DrawStore,
+    FinishReason,
     Progress,
     Registered,
     Spec,
@@ -110,7 +111,9 @@ class Session:
     ValueError, raised before anything is sent) makes the session send Stop,
     receive the draws already made and the summary (which iteration still
     yields and ``summary`` holds), and then re-raises it. A server error
-    status raises :class:`SessionError`; a gap or repeat in the draws' sequence numbers
+    status raises :class:`SessionError`, whose ``received`` holds what
+    arrived before it (see :meth:`received`: the draws and the last progress
+    even when the server could send no Finished frame); a gap or repeat in the draws' sequence numbers
     raises :class:`DrawsLostError` at once. Leaving the loop early (break)
     cancels the call.
     """
@@ -150,6 +153,7 @@ class Session:
         #: Draws received so far.
         self.draws_received = 0
         self._store: Optional[DrawStore] = DrawStore(spec.dim) if keep_draws else None
+        self._last_progress: Optional[Progress] = None
         self._next_seq = 0
         self._started = False
         self._lock = threading.Lock()
@@ -194,6 +198,25 @@ class Session:
         if self._target is not None and self._channel is not None:
             self._channel.close()
 
+    def received(self) -> Summary:
+        """What arrived so far, as a Summary: the server's once its Finished
+        frame arrived; before that (a session that failed without one) a
+        Summary with reason UNSPECIFIED, the acknowledgement, the last
+        progress report, no per-parameter summary, and the draws received
+        (with keep_draws)."""
+        if self.summary is not None:
+            return self.summary
+        return Summary(
+            self.registered,
+            FinishReason.UNSPECIFIED,
+            "",
+            self._last_progress if self._last_progress is not None else Progress.from_wire(pb.Progress()),
+            (),
+            self.draws_received,
+            0,
+            *(self._store.arrays() if self._store is not None else (None, None, None)),
+        )
+
     def _send(self, frame: pb.SessionRequest) -> None:
         with self._lock:
             if not (self._stopped or self._closed):
@@ -221,7 +244,8 @@ class Session:
                     elif kind == "draws":
                         yield self._deliver(frame.draws)
                     elif kind == "progress":
-                        yield Progress.from_wire(frame.progress)
+                        self._last_progress = Progress.from_wire(frame.progress)
+                        yield self._last_progress
                     elif kind == "registered":
                         self.registered = Registered.from_wire(frame.registered)
                         if self._on_registered is not None:
@@ -235,6 +259,7 @@ class Session:
                         )
             except grpc.RpcError as err:
                 serr = SessionError.from_rpc_error(err, self.summary)
+                serr.received = self.summary if self.summary is not None else self.received()
                 if eval_error is not None:
                     eval_error.add_note(f"sluice_client: the session then ended with {serr}")
                     raise eval_error from None

@@ -27,6 +27,7 @@ import typing
 from pathlib import Path
 from typing import Any, Iterator, List, Tuple
 
+import grpc
 import numpy as np
 import pytest
 from google.protobuf.descriptor import Descriptor, FieldDescriptor
@@ -383,3 +384,64 @@ def test_live_rejection_gives_exact_draws() -> None:
     rate = s.progress.kernel.acceptance_rate
     assert abs(rate - 1.0 / s_env) / math.sqrt(rate * (1 - rate) / proposals) < Z_MAX
     assert s.progress.kernel.evaluations_per_step_mean >= 1.0
+
+
+class _Broken(grpc.RpcError):
+    """The error a call raises when the connection drops mid-stream."""
+
+    def code(self) -> grpc.StatusCode:
+        return grpc.StatusCode.UNAVAILABLE
+
+    def details(self) -> str:
+        return "connection dropped"
+
+    def trailing_metadata(self) -> tuple:
+        return ()
+
+
+class _BrokenChannel:
+    """Plays frames on the Session rpc, then fails without a Finished frame."""
+
+    def __init__(self, frames: List[pb.SessionResponse]) -> None:
+        self.frames = frames
+
+    def stream_stream(self, method: str, request_serializer: object, response_deserializer: object) -> object:
+        frames = self.frames
+
+        class Call:
+            def __init__(self, requests: Iterator[pb.SessionRequest]) -> None:
+                self.requests = requests
+
+            def __iter__(self) -> Iterator[pb.SessionResponse]:
+                next(self.requests)  # Register
+                yield from frames
+                raise _Broken()
+
+            def cancel(self) -> bool:
+                return True
+
+        return lambda requests, timeout=None: Call(requests)
+
+
+def test_session_error_keeps_what_was_received() -> None:
+    # A session that fails with no Finished frame still hands back the
+    # draws and the last progress that arrived (SessionError.received).
+    vals = np.arange(6.0).reshape(3, 2)
+    frames = [
+        pb.SessionResponse(registered=pb.Registered(session_id="s9", names=["a", "b"])),
+        pb.SessionResponse(draws=pb.Draws(seq=0, rows=3, dim=2, values=sc.to_wire(vals), chains=[0, 1, 0],
+                                          iterations=[1, 1, 2])),
+        pb.SessionResponse(progress=pb.Progress(steps=4, evaluations_used=8)),
+    ]
+    spec = sc.Spec(dim=2, chains=2, start=np.zeros(2), step=0.1)
+    with pytest.raises(sc.SessionError) as info:
+        sc.run(_BrokenChannel(frames), spec, lambda x: -x)  # type: ignore[arg-type]
+    err = info.value
+    assert err.code == grpc.StatusCode.UNAVAILABLE and err.summary is None
+    got = err.received
+    assert got is not None and got.reason == sc.FinishReason.UNSPECIFIED
+    assert got.registered is not None and got.registered.session_id == "s9"
+    assert (got.progress.steps, got.progress.evaluations_used, got.draws_received) == (4, 8, 3)
+    assert got.draws is not None
+    np.testing.assert_array_equal(got.draws, vals)
+    assert got.draw_chains is not None and got.draw_chains.tolist() == [0, 1, 0]
