@@ -212,6 +212,9 @@ type Progress struct {
 	Noise *NoiseEstimate
 	// Kernel is what the kernel reports of itself.
 	Kernel KernelReport
+	// ParametersOmitted counts parameters left out of Parameters so that
+	// the frame fits the message limit (the first ones are sent).
+	ParametersOmitted int
 }
 
 // NoiseEstimate: measured variance of one replicate's error per
@@ -297,7 +300,10 @@ type Parameter struct {
 	Count    int64
 }
 
-// Summary is what a finished session reports.
+// Summary is what a finished session reports. When a session fails
+// before the server's final frame, Run still returns a Summary with what
+// was received (Registered, the last Progress, DrawsReceived, and Draws
+// with KeepDraws) and Reason "".
 type Summary struct {
 	Registered Registered
 	Reason     Reason
@@ -308,6 +314,12 @@ type Summary struct {
 	// final frame fits the message limit (the first ones are kept).
 	ParametersOmitted int
 	DrawsReceived     int64
+	// Draws holds every draw received when Run was given KeepDraws (nil
+	// otherwise).
+	Draws *DrawSet
+	// NextSeq is the sequence number after the last draw received: where
+	// a follower resumes.
+	NextSeq uint64
 }
 
 // Option adjusts Run.
@@ -318,6 +330,7 @@ type config struct {
 	onDraws      func(*Draws)
 	onProgress   func(*Progress)
 	callOpts     []grpc.CallOption
+	keepDraws    bool
 }
 
 // OnRegistered calls f once the server accepted the session.
@@ -340,8 +353,9 @@ var ErrDrawsLost = errors.New("client: draws lost or repeated")
 
 // Run opens a session, answers every request with eval until the server
 // finishes, and returns the summary. Callbacks run on Run's goroutine. A
-// server error (a gRPC status) is returned as it is, with the summary of
-// what was received when the server managed to send one.
+// server error (a gRPC status) is returned as it is, together with the
+// summary: the server's when it managed to send one, else what was
+// received before the failure (Reason "").
 func Run(ctx context.Context, cc grpc.ClientConnInterface, spec Spec, eval Evaluator, opts ...Option) (*Summary, error) {
 	var cfg config
 	for _, o := range opts {
@@ -362,6 +376,9 @@ func Run(ctx context.Context, cc grpc.ClientConnInterface, spec Spec, eval Evalu
 		return nil, recvStatus(stream, err)
 	}
 	r := runner{cfg: cfg, eval: eval, stream: stream, sum: &Summary{}}
+	if cfg.keepDraws {
+		r.sum.Draws = &DrawSet{Dim: spec.Dim}
+	}
 	return r.loop(ctx)
 }
 
@@ -480,8 +497,9 @@ func (r *runner) loop(ctx context.Context) (*Summary, error) {
 				return r.result(err)
 			}
 		case *sluicev1.SessionResponse_Progress:
+			r.sum.Progress = progressFromWire(f.Progress)
 			if r.cfg.onProgress != nil {
-				p := progressFromWire(f.Progress)
+				p := r.sum.Progress
 				r.cfg.onProgress(&p)
 			}
 		case *sluicev1.SessionResponse_Finished:
@@ -492,9 +510,6 @@ func (r *runner) loop(ctx context.Context) (*Summary, error) {
 
 func (r *runner) result(err error) (*Summary, error) {
 	_ = r.stream.CloseSend()
-	if !r.finished {
-		return nil, err
-	}
 	return r.sum, err
 }
 
@@ -576,8 +591,9 @@ func (r *runner) deliver(w *sluicev1.Draws) error {
 		return fmt.Errorf("client: malformed draws frame at sequence %d", d.Seq)
 	}
 	r.nextSeq += uint64(d.Rows)
+	r.sum.NextSeq = r.nextSeq
 	r.sum.DrawsReceived += int64(d.Rows)
-	if r.cfg.onDraws == nil {
+	if r.cfg.onDraws == nil && r.sum.Draws == nil {
 		return nil
 	}
 	d.Values = getFloats(d.Values[:0], w.GetValues())
@@ -586,7 +602,10 @@ func (r *runner) deliver(w *sluicev1.Draws) error {
 		d.Chains = append(d.Chains, int(c))
 	}
 	d.Iterations = append(d.Iterations[:0], w.GetIterations()...)
-	r.cfg.onDraws(d)
+	r.sum.Draws.add(d)
+	if r.cfg.onDraws != nil {
+		r.cfg.onDraws(d)
+	}
 	return nil
 }
 
@@ -652,6 +671,7 @@ func progressFromWire(p *sluicev1.Progress) Progress {
 			KrylovUnconverged: int(k.GetKrylovUnconverged()), EvaluationsPerStepMean: k.GetEvaluationsPerStepMean(),
 			AcceptanceRate: k.GetAcceptanceRate()}
 	}
+	out.ParametersOmitted = int(p.GetParametersOmitted())
 	for _, t := range p.GetTargets() {
 		out.Targets = append(out.Targets, TargetStatus{Name: t.GetName(), Want: t.GetWant(), Current: t.GetCurrent(), Met: t.GetMet(),
 			ProjectedEvaluations: t.GetProjectedEvaluations()})

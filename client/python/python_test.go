@@ -1,7 +1,7 @@
 package python_test
 
-// This file runs the Python client's tests (client/python/tests) and its
-// example against a real server: it builds the sluice command, starts
+// This file runs the Python client's tests (client/python/tests, with
+// pytest) and its example against a real server: it builds the sluice command, starts
 // `sluice serve` on a free loopback port, and runs /usr/bin/python3 with
 // the server's address in SLUICE_TARGET. Missing Python modules fail the
 // test (scripts/test installs them); they are never a reason to skip.
@@ -42,9 +42,14 @@ func checkPython(t testing.TB) {
 	if _, err := os.Stat(python); err != nil {
 		t.Fatalf("%s: %v (apt-get install python3 python3-grpcio python3-protobuf python3-numpy)", python, err)
 	}
-	out, err := exec.Command(python, "-c", "import grpc, google.protobuf, numpy").CombinedOutput()
+	// pip and setuptools are looked up, not imported: importing both into
+	// one interpreter trips setuptools' distutils shim. ensurepip comes with
+	// python3-venv, which the install test's virtual environment needs.
+	out, err := exec.Command(python, "-c", "import grpc, google.protobuf, numpy, pytest, ensurepip\n"+
+		"import importlib.util as u\nassert u.find_spec('pip') and u.find_spec('setuptools')").CombinedOutput()
 	if err != nil {
-		t.Fatalf("%s cannot import grpc, google.protobuf, numpy: %v\n%s(apt-get install python3-grpcio python3-protobuf python3-numpy)", python, err, out)
+		t.Fatalf("%s lacks grpc, google.protobuf, numpy, pytest, ensurepip, pip or setuptools: %v\n%s"+
+			"(apt-get install python3-grpcio python3-protobuf python3-numpy python3-pytest python3-pip python3-setuptools python3-venv)", python, err, out)
 	}
 }
 
@@ -174,7 +179,9 @@ func runPython(t testing.TB, dir, addr string, timeout time.Duration, args ...st
 	return string(out), err
 }
 
-var ranTests = regexp.MustCompile(`(?m)^Ran ([1-9][0-9]*) tests? in`)
+// pytestPassed matches pytest's closing line when every test passed (and
+// at least one ran): "===== 42 passed in 3.1s =====".
+var pytestPassed = regexp.MustCompile(`(?m)^=+ ([1-9][0-9]*) passed(, [0-9]+ warnings?)? in [0-9.]+s`)
 
 func TestPythonClient(t *testing.T) {
 	checkPython(t)
@@ -182,10 +189,11 @@ func TestPythonClient(t *testing.T) {
 	dir := filepath.Join(root, "client", "python")
 	srv := startServer(t, root)
 
-	t.Run("unittest", func(t *testing.T) {
-		out, err := runPython(t, dir, srv.addr, 3*time.Minute, "-m", "unittest", "discover", "-s", "tests", "-t", "tests", "-v")
-		if err != nil || !ranTests.MatchString(out) || !strings.Contains(out, "\nOK") {
-			t.Fatalf("python -m unittest: %v\n%s\nserver log:\n%s", err, out, srv.logText())
+	t.Run("pytest", func(t *testing.T) {
+		// -p no:cacheprovider: leave no .pytest_cache in the source tree.
+		out, err := runPython(t, dir, srv.addr, 15*time.Minute, "-m", "pytest", "-p", "no:cacheprovider", "-v", "-rs", "tests")
+		if err != nil || !pytestPassed.MatchString(out) {
+			t.Fatalf("python -m pytest: %v\n%s\nserver log:\n%s", err, out, srv.logText())
 		}
 		t.Logf("%s", out)
 	})

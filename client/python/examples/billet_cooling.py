@@ -257,7 +257,8 @@ def main() -> int:
     if len(z) < 2:
         return 1
     # LMC's stationary variance along a direction of curvature lam is
-    # 1 / (lam (1 - h lam / 2)) (THEORY.md §11a); in z the curvature is
+    # 1 / (lam (1 - h lam / 2)) (derived here: the update is the AR(1)
+    # recursion x' = (1 - h lam) x + sqrt(2h) xi); in z the curvature is
     # about 1, so the draws' spread is inflated by about this factor.
     print(f"note: step {args.step} inflates posterior sds by about "
           f"{100 * (1 / np.sqrt(1 - args.step / 2) - 1):.1f}% (unadjusted Langevin); use a smaller --step to shrink it")

@@ -19,7 +19,8 @@ bytes, decoded with ``np.frombuffer`` and encoded with ``tobytes``.
     draws = []
     summary = sc.run("127.0.0.1:7070", spec, lambda x: -x @ Q,
                      on_draws=lambda d: draws.append(d.values.copy()))
-    print(summary.reason, summary.mean, summary.sd)
+    print(summary)                 # a table: mean ± error, sd, interval, R-hat, ESS
+    summary.save("draws.csv")      # or .npy (chains x draws x dim), .npz
 
 ``Session`` is the iterator form of the same loop. Kernels that need more
 than gradients and log densities (Hessians for "ozaki", Hessian-vector
@@ -36,6 +37,7 @@ from ._errors import DrawsLostError, ProtocolError, SessionError, SluiceError
 from ._follow import FOLLOW_MAX_MESSAGE_BYTES, FOLLOW_METHOD, FollowEvent, Follower, follow
 from ._plan import PLAN_METHOD, plan
 from ._session import SESSION_METHOD, BatchFn, Event, GradFn, LogDensityFn, Session, connect, run
+from ._summary import DEFAULT_INTERVAL_LEVEL, ParameterStats
 from ._types import (
     DEFAULT_MAX_MESSAGE_BYTES,
     METRICS,
@@ -45,6 +47,7 @@ from ._types import (
     Curvature,
     CurvatureEstimate,
     Draws,
+    Envelope,
     FinishReason,
     KernelReport,
     Noise,
@@ -65,6 +68,7 @@ from ._types import (
 )
 
 __all__ = [
+    "DEFAULT_INTERVAL_LEVEL",
     "DEFAULT_MAX_MESSAGE_BYTES",
     "FOLLOW_MAX_MESSAGE_BYTES",
     "FOLLOW_METHOD",
@@ -79,6 +83,7 @@ __all__ = [
     "CurvatureEstimate",
     "Draws",
     "DrawsLostError",
+    "Envelope",
     "Event",
     "FinishReason",
     "FollowEvent",
@@ -89,6 +94,7 @@ __all__ = [
     "Noise",
     "NoiseEstimate",
     "ParameterDiagnostics",
+    "ParameterStats",
     "ParameterSummary",
     "PlanResult",
     "Progress",

@@ -35,7 +35,11 @@ class SessionError(SluiceError):
     ``description`` the first field violation of the status's bad-request
     detail ("" when there is none), ``violations`` every (field,
     description) pair. ``summary`` is the summary the server sent before the
-    error (a Finished frame with reason FAILED), or None.
+    error (a Finished frame with reason FAILED), or None. ``received`` (a
+    session's error only; else the same as ``summary``) is what the client
+    received before the error: the server's summary when there is one, else
+    a Summary with reason UNSPECIFIED holding the draws and the last
+    progress that arrived.
     """
 
     def __init__(
@@ -52,6 +56,7 @@ class SessionError(SluiceError):
         self.field = self.violations[0][0] if self.violations else ""
         self.description = self.violations[0][1] if self.violations else ""
         self.summary = summary
+        self.received: Optional[Summary] = summary
         super().__init__(f"sluice {call} failed: {code.name}: {message}")
 
     @classmethod

@@ -12,7 +12,7 @@ import grpc
 from ._errors import ProtocolError, SessionError
 from ._proto.sluice.v1 import sluice_pb2 as pb
 from ._session import connect, decode_draws
-from ._types import Draws, Summary
+from ._types import Draws, DrawStore, Summary
 
 #: Full method name of the Follow rpc.
 FOLLOW_METHOD = "/sluice.v1.SluiceService/Follow"
@@ -40,8 +40,8 @@ class Follower:
 
     Iteration yields :class:`Draws` numbered from ``from_seq`` on, exactly
     once each, and finally the session's :class:`Summary` (its
-    ``registered`` is None and ``draws_received`` counts this follower's
-    rows). Leaving the loop early (break) disconnects; ``next_seq`` is then
+    ``registered`` is None, ``draws_received`` counts this follower's rows
+    and, with ``keep_draws`` (the default), ``draws`` holds them). Leaving the loop early (break) disconnects; ``next_seq`` is then
     the sequence number to resume from with a new Follower, which gets every
     draw after it with no loss and no duplicate while the server still
     keeps it.
@@ -67,6 +67,7 @@ class Follower:
         *,
         timeout: Optional[float] = None,
         max_message_bytes: int = FOLLOW_MAX_MESSAGE_BYTES,
+        keep_draws: bool = True,
     ) -> None:
         if from_seq < 0:
             raise ValueError(f"sluice_client: from_seq {from_seq} is negative")
@@ -82,6 +83,7 @@ class Follower:
         self.summary: Optional[Summary] = None
         #: Draws received by this follower.
         self.draws_received = 0
+        self._store: Optional[DrawStore] = DrawStore() if keep_draws else None
         self._started = False
         self._lock = threading.Lock()
         self._closed = False
@@ -131,9 +133,16 @@ class Follower:
                         d = decode_draws(frame.draws, self.next_seq)
                         self.next_seq += d.rows
                         self.draws_received += d.rows
+                        if self._store is not None:
+                            self._store.add(d)
                         yield d
                     elif kind == "finished":
-                        self.summary = Summary.from_wire(frame.finished, None, self.draws_received)
+                        self.summary = Summary.from_wire(
+                            frame.finished,
+                            None,
+                            self.draws_received,
+                            self._store.arrays() if self._store is not None else None,
+                        )
                         yield self.summary
             except grpc.RpcError as err:
                 raise SessionError.from_rpc_error(err, self.summary, call="follow") from None
@@ -150,9 +159,17 @@ def follow(
     *,
     timeout: Optional[float] = None,
     max_message_bytes: int = FOLLOW_MAX_MESSAGE_BYTES,
+    keep_draws: bool = True,
 ) -> Follower:
     """Follows session ``session_id`` (``Registered.session_id``) from draw
     ``from_seq`` on: iterate the result for its Draws and then its Summary
     (see :class:`Follower`). The server must keep draws for followers
     (`sluice serve --follow-buffer`, on by default)."""
-    return Follower(channel_or_target, session_id, from_seq, timeout=timeout, max_message_bytes=max_message_bytes)
+    return Follower(
+        channel_or_target,
+        session_id,
+        from_seq,
+        timeout=timeout,
+        max_message_bytes=max_message_bytes,
+        keep_draws=keep_draws,
+    )

@@ -20,6 +20,8 @@ from ._types import (
     Answer,
     Batch,
     Draws,
+    DrawStore,
+    FinishReason,
     Progress,
     Registered,
     Spec,
@@ -97,7 +99,10 @@ class Session:
     for which the session opens and closes its own channel with exactly that
     limit. ``timeout`` is the whole session's gRPC deadline in seconds (None:
     none). ``on_registered`` is called with the server's acknowledgement as
-    soon as it arrives.
+    soon as it arrives. With ``keep_draws`` (the default) the session keeps
+    every draw it receives and hands them over in the summary
+    (``summary.draws``, ``summary.save(path)``, the summary's intervals);
+    pass False when the draws are consumed as they come and memory matters.
 
     Errors: an exception from ``grad``, ``log_density`` or ``batch``, an
     answer of the wrong shape or missing a quantity asked for (ValueError),
@@ -106,7 +111,9 @@ class Session:
     ValueError, raised before anything is sent) makes the session send Stop,
     receive the draws already made and the summary (which iteration still
     yields and ``summary`` holds), and then re-raises it. A server error
-    status raises :class:`SessionError`; a gap or repeat in the draws' sequence numbers
+    status raises :class:`SessionError`, whose ``received`` holds what
+    arrived before it (see :meth:`received`: the draws and the last progress
+    even when the server could send no Finished frame); a gap or repeat in the draws' sequence numbers
     raises :class:`DrawsLostError` at once. Leaving the loop early (break)
     cancels the call.
     """
@@ -121,6 +128,7 @@ class Session:
         batch: Optional[BatchFn] = None,
         timeout: Optional[float] = None,
         on_registered: Optional[Callable[[Registered], None]] = None,
+        keep_draws: bool = True,
     ) -> None:
         if (grad is None) == (batch is None):
             raise TypeError("sluice_client: give either grad (with log_density if needed) or batch")
@@ -144,6 +152,8 @@ class Session:
         self.summary: Optional[Summary] = None
         #: Draws received so far.
         self.draws_received = 0
+        self._store: Optional[DrawStore] = DrawStore(spec.dim) if keep_draws else None
+        self._last_progress: Optional[Progress] = None
         self._next_seq = 0
         self._started = False
         self._lock = threading.Lock()
@@ -188,6 +198,25 @@ class Session:
         if self._target is not None and self._channel is not None:
             self._channel.close()
 
+    def received(self) -> Summary:
+        """What arrived so far, as a Summary: the server's once its Finished
+        frame arrived; before that (a session that failed without one) a
+        Summary with reason UNSPECIFIED, the acknowledgement, the last
+        progress report, no per-parameter summary, and the draws received
+        (with keep_draws)."""
+        if self.summary is not None:
+            return self.summary
+        return Summary(
+            self.registered,
+            FinishReason.UNSPECIFIED,
+            "",
+            self._last_progress if self._last_progress is not None else Progress.from_wire(pb.Progress()),
+            (),
+            self.draws_received,
+            0,
+            *(self._store.arrays() if self._store is not None else (None, None, None)),
+        )
+
     def _send(self, frame: pb.SessionRequest) -> None:
         with self._lock:
             if not (self._stopped or self._closed):
@@ -215,15 +244,22 @@ class Session:
                     elif kind == "draws":
                         yield self._deliver(frame.draws)
                     elif kind == "progress":
-                        yield Progress.from_wire(frame.progress)
+                        self._last_progress = Progress.from_wire(frame.progress)
+                        yield self._last_progress
                     elif kind == "registered":
                         self.registered = Registered.from_wire(frame.registered)
                         if self._on_registered is not None:
                             self._on_registered(self.registered)
                     elif kind == "finished":
-                        self.summary = Summary.from_wire(frame.finished, self.registered, self.draws_received)
+                        self.summary = Summary.from_wire(
+                            frame.finished,
+                            self.registered,
+                            self.draws_received,
+                            self._store.arrays() if self._store is not None else None,
+                        )
             except grpc.RpcError as err:
                 serr = SessionError.from_rpc_error(err, self.summary)
+                serr.received = self.summary if self.summary is not None else self.received()
                 if eval_error is not None:
                     eval_error.add_note(f"sluice_client: the session then ended with {serr}")
                     raise eval_error from None
@@ -329,6 +365,8 @@ class Session:
         d = decode_draws(w, self._next_seq)
         self._next_seq += d.rows
         self.draws_received += d.rows
+        if self._store is not None:
+            self._store.add(d)
         return d
 
 
@@ -397,6 +435,7 @@ def run(
     batch: Optional[BatchFn] = None,
     on_registered: Optional[Callable[[Registered], None]] = None,
     timeout: Optional[float] = None,
+    keep_draws: bool = True,
 ) -> Summary:
     """Runs one session to its end and returns the summary.
 
@@ -406,11 +445,20 @@ def run(
     request as a :class:`Batch` and returns an :class:`Answer` (see
     :class:`Session`). ``on_draws`` gets every block of draws in sequence
     order, ``on_progress`` every progress report, ``on_registered`` the
-    server's acknowledgement; all run on the calling thread. Errors as for
+    server's acknowledgement; all run on the calling thread. With
+    ``keep_draws`` (the default) the summary holds every draw received
+    (``summary.draws``, ``summary.save(path)``). Errors as for
     :class:`Session`.
     """
     session = Session(
-        channel_or_target, spec, grad, log_density, batch=batch, timeout=timeout, on_registered=on_registered
+        channel_or_target,
+        spec,
+        grad,
+        log_density,
+        batch=batch,
+        timeout=timeout,
+        on_registered=on_registered,
+        keep_draws=keep_draws,
     )
     with session:
         for event in session:

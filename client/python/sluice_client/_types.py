@@ -8,13 +8,18 @@ answered (:class:`Answer`), and what the server reports
 from __future__ import annotations
 
 import enum
+import os
 from dataclasses import dataclass, field
-from typing import Dict, Optional, Sequence, Tuple
+from pathlib import Path
+from typing import TYPE_CHECKING, Dict, List, Optional, Sequence, Tuple, Union
 
 import numpy as np
 import numpy.typing as npt
 
 from ._proto.sluice.v1 import sluice_pb2 as pb
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ._summary import ParameterStats
 
 #: The message limit used when a Spec leaves max_message_bytes at 0 (the
 #: wire API's default, and gRPC's).
@@ -147,8 +152,9 @@ class Noise:
 @dataclass(frozen=True)
 class Schedule:
     """Decreasing step of the "sgld" kernel: epsilon_t = a (b + t)^(-gamma),
-    step h_t = epsilon_t / 2, with a, b > 0 and gamma in (0.5, 1]
-    (THEORY.md §7.1); Spec.step must then be 0."""
+    step h_t = epsilon_t / 2, with a, b > 0 and gamma in (0.5, 1] (the
+    schedule of Welling and Teh (2011), with the step-size conditions they
+    take from Robbins and Monro); Spec.step must then be 0."""
 
     a: float
     b: float
@@ -156,6 +162,25 @@ class Schedule:
 
     def to_wire(self) -> pb.StepSchedule:
         return pb.StepSchedule(a=self.a, b=self.b, gamma=self.gamma)
+
+
+@dataclass(frozen=True, kw_only=True)
+class Envelope:
+    """The Gaussian envelope q = N(mean, scale^2 I) of the "rejection"
+    kernel, with the declared bound pi_tilde(x) <= exp(log_bound) q(x) for
+    the unnormalised density exp(log density returned). A proposal y is
+    accepted with probability pi_tilde(y) / (exp(log_bound) q(y)); an
+    observed ratio above 1 fails the session naming envelope.log_bound
+    (sluice.proto, message Envelope)."""
+
+    #: Centre of the envelope, dim values.
+    mean: npt.ArrayLike
+    #: scale > 0, units of theta.
+    scale: float
+    log_bound: float
+
+    def to_wire(self) -> pb.Envelope:
+        return pb.Envelope(mean=to_wire(np.ravel(self.mean)), scale=self.scale, log_bound=self.log_bound)
 
 
 @dataclass(kw_only=True)
@@ -176,7 +201,9 @@ class Spec:
     #: Sampling method: "lmc" (unadjusted Langevin), "kinetic", "midpoint",
     #: "midpoint-overdamped", "mala" (needs log densities), "ozaki" (needs
     #: Hessians), "ozaki-krylov" (needs Hessian-vector products), "sgld",
-    #: "sgld-cv", "svrg" (sluice.proto, Register.kernel).
+    #: "sgld-cv", "svrg", "hit-and-run" (needs log densities only),
+    #: "rejection" (needs log densities and an envelope; dim <= 4)
+    #: (sluice.proto, Register.kernel).
     kernel: str = "lmc"
     start: npt.ArrayLike
     #: Step size h > 0 (the Langevin time increment of one step).
@@ -226,6 +253,19 @@ class Spec:
     #: (0 means 100).
     fixed_point_tolerance: float = 0.0
     fixed_point_iterations: int = 0
+    #: Opt-in curvature probe: this many power iterations with
+    #: finite-difference Hessian-vector products at chain 0's start estimate
+    #: M, and as many again m, before sampling (one gradient each, counted in
+    #: the budget; reported in Progress.curvature). 0: no probe. Exact
+    #: gradients only.
+    curvature_probe_iterations: int = 0
+    #: "hit-and-run": initial slice width on each line in units of theta (0
+    #: means 1) and the most stepping-out expansions per step (0 means 64).
+    slice_width: float = 0.0
+    slice_max_expansions: int = 0
+    #: "rejection": the Gaussian envelope and its declared bound (required
+    #: for that kernel).
+    envelope: Optional[Envelope] = None
 
     def message_limit(self) -> int:
         """The message limit in bytes this spec asks for (0 means 4 MiB)."""
@@ -271,6 +311,9 @@ class Spec:
             anchor_every=self.anchor_every,
             fixed_point_tolerance=self.fixed_point_tolerance,
             fixed_point_iterations=self.fixed_point_iterations,
+            curvature_probe_iterations=self.curvature_probe_iterations,
+            slice_width=self.slice_width,
+            slice_max_expansions=self.slice_max_expansions,
         )
         if self.curvature is not None:
             reg.curvature.CopyFrom(self.curvature.to_wire())
@@ -280,6 +323,8 @@ class Spec:
             reg.noise.CopyFrom(self.noise.to_wire())
         if self.schedule is not None:
             reg.schedule.CopyFrom(self.schedule.to_wire())
+        if self.envelope is not None:
+            reg.envelope.CopyFrom(self.envelope.to_wire())
         return reg
 
 
@@ -469,16 +514,31 @@ class Bound:
 class CurvatureEstimate:
     """One-sided certificates from the gradient pairs seen: M is at least
     ``smoothness_at_least``, m at most ``strong_convexity_at_most``;
-    ``not_convex`` when a pair showed the potential is not convex."""
+    ``not_convex`` when a pair showed the potential is not convex. With
+    ``Spec.curvature_probe_iterations``, ``probed_smoothness`` and
+    ``probed_strong_convexity`` are the probe's power-iteration estimates of
+    M and m at chain 0's start (0 when no probe ran) and
+    ``probe_evaluations`` what the probe cost."""
 
     pairs: int = 0
     smoothness_at_least: float = 0.0
     strong_convexity_at_most: float = 0.0
     not_convex: bool = False
+    probed_smoothness: float = 0.0
+    probed_strong_convexity: float = 0.0
+    probe_evaluations: int = 0
 
     @classmethod
     def from_wire(cls, m: pb.CurvatureEstimate) -> "CurvatureEstimate":
-        return cls(m.pairs, m.smoothness_at_least, m.strong_convexity_at_most, m.not_convex)
+        return cls(
+            m.pairs,
+            m.smoothness_at_least,
+            m.strong_convexity_at_most,
+            m.not_convex,
+            m.probed_smoothness,
+            m.probed_strong_convexity,
+            m.probe_evaluations,
+        )
 
 
 @dataclass(frozen=True)
@@ -522,8 +582,11 @@ class NoiseEstimate:
 class KernelReport:
     """What the kernel reports of itself: the step in use, whether it is
     still adapting (MALA in burn-in), per-chain acceptance rates in the
-    current phase (float64 array; empty without a rejection step), and the
-    last step's Lanczos figures (ozaki-krylov)."""
+    current phase (float64 array; empty without a rejection step), the
+    last step's Lanczos figures (ozaki-krylov), the mean number of points
+    evaluated per completed step (kernels whose cost per step is random:
+    hit-and-run, rejection) and the accepted fraction of all proposals
+    (rejection)."""
 
     step: float = 0.0
     adapting: bool = False
@@ -531,6 +594,8 @@ class KernelReport:
     krylov_iterations: int = 0
     krylov_error_estimate: float = 0.0
     krylov_unconverged: int = 0
+    evaluations_per_step_mean: float = 0.0
+    acceptance_rate: float = 0.0
 
     @classmethod
     def from_wire(cls, m: pb.KernelReport) -> "KernelReport":
@@ -541,6 +606,8 @@ class KernelReport:
             m.krylov_iterations,
             m.krylov_error_estimate,
             m.krylov_unconverged,
+            m.evaluations_per_step_mean,
+            m.acceptance_rate,
         )
 
 
@@ -549,7 +616,9 @@ class Progress:
     """Where the budget stands, and the accuracy so far.
     ``evaluations_left`` and ``seconds_left`` are -1 when unlimited; ``ksd``
     is -1 when not available; ``bound`` and ``noise`` are None when they do
-    not apply; ``parameters`` is empty until there are enough draws."""
+    not apply; ``parameters`` is empty until there are enough draws, and
+    ``parameters_omitted`` counts the parameters left out of it so that the
+    frame fits the message limit (the first ones are sent)."""
 
     state: State
     steps: int
@@ -568,6 +637,7 @@ class Progress:
     targets: Tuple[TargetStatus, ...] = ()
     noise: Optional[NoiseEstimate] = None
     kernel: KernelReport = KernelReport()
+    parameters_omitted: int = 0
 
     @classmethod
     def from_wire(cls, m: pb.Progress) -> "Progress":
@@ -587,6 +657,7 @@ class Progress:
             tuple(TargetStatus.from_wire(t) for t in m.targets),
             NoiseEstimate.from_wire(m.noise) if m.HasField("noise") else None,
             KernelReport.from_wire(m.kernel),
+            m.parameters_omitted,
         )
 
 
@@ -625,9 +696,13 @@ class ParameterSummary:
     count: int
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Summary:
-    """What a finished session reports."""
+    """What a finished session reports, and the draws this client received.
+
+    ``str(summary)`` is a table, one row per parameter (see :meth:`table`);
+    :meth:`stats` gives the same figures as values; :meth:`save` writes the
+    draws to a .csv, .npy or .npz file."""
 
     #: The acknowledgement (None for a follower, which never sees it).
     registered: Optional[Registered]
@@ -638,6 +713,15 @@ class Summary:
     parameters: Tuple[ParameterSummary, ...]
     #: Draws the client received (rows of every Draws frame).
     draws_received: int = 0
+    #: Parameters left out of ``parameters`` so that the final frame fits
+    #: the message limit (the first ones are sent).
+    parameters_omitted: int = 0
+    #: The draws received, rows x dim float64 in sequence order, with the
+    #: chain and step count of each row; None when the session or follower
+    #: ran with keep_draws=False.
+    draws: Optional[np.ndarray] = None
+    draw_chains: Optional[np.ndarray] = None
+    draw_iterations: Optional[np.ndarray] = None
 
     @property
     def names(self) -> Tuple[str, ...]:
@@ -654,9 +738,75 @@ class Summary:
         """Per-parameter standard deviations, in order."""
         return np.array([p.sd for p in self.parameters], dtype=np.float64)
 
+    def draw_names(self) -> Tuple[str, ...]:
+        """Names of the draws' columns: the registered names, else the
+        summary's, else theta[0], theta[1], ..."""
+        dim = self.draws.shape[1] if self.draws is not None else len(self.parameters)
+        if self.registered is not None and len(self.registered.names) == dim:
+            return self.registered.names
+        if len(self.parameters) == dim:
+            return self.names
+        return tuple(f"theta[{i}]" for i in range(dim))
+
+    def draws_by_chain(self) -> np.ndarray:
+        """The draws as one chains x draws x dim array (chains in increasing
+        order, each chain's draws in step order). Raises ValueError when no
+        draws were kept or the chains hold different numbers of draws."""
+        if self.draws is None or self.draw_chains is None:
+            raise ValueError("sluice_client: no draws kept (the session ran with keep_draws=False)")
+        ids, counts = np.unique(self.draw_chains, return_counts=True)
+        if ids.size == 0:
+            return np.zeros((0, 0, self.draws.shape[1]))
+        if np.any(counts != counts[0]):
+            raise ValueError(
+                f"sluice_client: chains hold different numbers of draws ({counts.min()} to {counts.max()}); "
+                "use the flat draws (or a .csv or .npz file)"
+            )
+        order = np.argsort(self.draw_chains, kind="stable")
+        return self.draws[order].reshape(ids.size, int(counts[0]), self.draws.shape[1])
+
+    def stats(self, level: float = 0.90) -> "Tuple[ParameterStats, ...]":
+        """Per-parameter statistics: mean and sd (the server's, over all
+        kept draws), mean_error (Monte Carlo standard error of the mean),
+        R-hat, bulk and tail ESS (the server's last diagnostics), and the
+        median and an equal-tailed interval of probability ``level`` from
+        the draws received (NaN when none were kept)."""
+        from ._summary import parameter_stats
+
+        return parameter_stats(self, level)
+
+    def table(self, level: float = 0.90) -> str:
+        """The summary as text: a heading, then per parameter the columns
+        parameter, mean ± error, sd, interval (level), R-hat and ESS
+        bulk/tail."""
+        from ._summary import render_table
+
+        return render_table(self, level)
+
+    def __str__(self) -> str:
+        return self.table()
+
+    def save(self, path: "Union[str, os.PathLike[str]]") -> "Path":
+        """Writes the draws received to ``path``: .csv (header
+        ``chain,iteration,<names>``), .npy (chains x draws x dim) or .npz
+        (``values``, ``chain``, ``iteration``, ``names``). Returns the
+        path."""
+        from ._summary import save_draws
+
+        return save_draws(self, path)
+
     @classmethod
-    def from_wire(cls, m: pb.Finished, registered: Optional[Registered], draws_received: int) -> "Summary":
+    def from_wire(
+        cls,
+        m: pb.Finished,
+        registered: Optional[Registered],
+        draws_received: int,
+        draws: "Optional[Tuple[np.ndarray, np.ndarray, np.ndarray]]" = None,
+    ) -> "Summary":
+        """Builds the summary of a Finished frame; ``draws`` is (values,
+        chains, iterations) of the draws received, or None."""
         params = tuple(ParameterSummary(p.name, p.mean, p.sd, p.count) for p in m.parameters)
+        values, chains, iterations = draws if draws is not None else (None, None, None)
         return cls(
             registered,
             _REASON_FROM_WIRE.get(m.reason, FinishReason.UNSPECIFIED),
@@ -664,7 +814,33 @@ class Summary:
             Progress.from_wire(m.progress),
             params,
             draws_received,
+            m.parameters_omitted,
+            values,
+            chains,
+            iterations,
         )
+
+
+class DrawStore:
+    """Collects the blocks of draws a session or follower receives."""
+
+    def __init__(self, dim: int = 0) -> None:
+        self._values: List[np.ndarray] = []
+        self._chains: List[np.ndarray] = []
+        self._iterations: List[np.ndarray] = []
+        self._dim = dim
+
+    def add(self, d: Draws) -> None:
+        self._dim = d.dim
+        self._values.append(d.values)
+        self._chains.append(d.chains)
+        self._iterations.append(d.iterations)
+
+    def arrays(self) -> Tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(values rows x dim, chains, iterations), copied into new arrays."""
+        if not self._values:
+            return np.zeros((0, self._dim)), np.zeros(0, dtype=np.int32), np.zeros(0, dtype=np.int64)
+        return np.concatenate(self._values), np.concatenate(self._chains), np.concatenate(self._iterations)
 
 
 @dataclass(frozen=True)

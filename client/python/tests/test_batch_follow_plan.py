@@ -276,7 +276,7 @@ class LiveBatchTests(unittest.TestCase):
 
     def test_mala_matches_the_gaussian_exactly(self) -> None:
         # MALA's accept/reject step makes pi exactly invariant (detailed
-        # balance; Roberts & Tweedie 1996, THEORY.md §6), and the step is
+        # balance; Roberts and Tweedie 1996), and the step is
         # frozen after burn-in, so the kept draws of N(MU, Q^-1) have mean
         # MU and covariance Q^-1 with no discretisation bias. Checked entry
         # by entry by z-scores with batch-means MCSEs; 9 checks at
@@ -309,12 +309,12 @@ class LiveBatchTests(unittest.TestCase):
         )
         self.assertEqual(summary.reason, sc.FinishReason.DRAWS_COLLECTED)
         # MALA asks log density and gradient, at the starts once and then at
-        # one proposal per chain per step (sluice.proto Register.kernel;
-        # THEORY.md §13).
+        # one proposal per chain per step (sluice.proto Register.kernel).
         self.assertEqual(asks, {(True, True, False, False)})
         self.assertEqual(summary.progress.evaluations_used, chains * (burn_in + n + 1))
         self.assertEqual(sum(rows), chains * (burn_in + n + 1))
-        # The step adapts during burn-in only (toward acceptance 0.574, THEORY.md §6).
+        # The step adapts during burn-in only (toward acceptance 0.574, the optimal rate of
+        # Roberts and Rosenthal 1998).
         after = [p for p in progress if p.steps > burn_in]
         self.assertTrue(after and not any(p.kernel.adapting for p in after))
         h = after[-1].kernel.step
@@ -334,7 +334,8 @@ class LiveBatchTests(unittest.TestCase):
         self.assertLess(max(abs(v) for v in z), Z_MAX, f"z-scores against Q^-1: {np.round(z, 2)}")
         # The same check has the power to see the bias the correction
         # removes: unadjusted Langevin at MALA's step would leave
-        # Sigma_h = [Q (I - h Q / 2)]^-1 invariant (THEORY.md §11a), which
+        # Sigma_h = [Q (I - h Q / 2)]^-1 invariant (derived here: a Gaussian
+        # AR(1) recursion and its Lyapunov equation), which
         # the draws reject.
         self.assertLess(h * np.linalg.eigvalsh(Q).max(), 2.0)
         sigma_h = np.linalg.inv(Q @ (np.eye(dim) - h * Q / 2))
@@ -348,8 +349,9 @@ class LiveBatchTests(unittest.TestCase):
         # Langevin diffusion over time h: x' | x ~ N(MU + e^{-hQ}(x - MU),
         # Q^-1 (I - e^{-2hQ})), so the stationary covariance is Q^-1 for
         # every h > 0 and the lag-one covariance is e^{-hQ} Q^-1
-        # (THEORY.md §11c, §1.3). The step h = 1 is beyond LMC's stability
-        # limit 2 / lambda_max = 0.833 (THEORY.md §11a). 18 checks at
+        # (derived here: the Ozaki step of Dalalyan 2017 solves the linear
+        # Langevin equation exactly). The step h = 1 is beyond LMC's stability
+        # limit 2 / lambda_max = 0.833 (|1 - h lambda| < 1). 18 checks at
         # |z| < Z_MAX: family-wise false-alarm rate below 1.3e-4.
         chains, dim, burn_in, n, h = 16, 3, 30, 1600, 1.0
         lam = np.linalg.eigvalsh(Q)
@@ -367,13 +369,13 @@ class LiveBatchTests(unittest.TestCase):
         blocks: List[sc.Draws] = []
         summary = sc.run(self.target, spec, batch=batch, on_draws=blocks.append, timeout=DEADLINE_SECONDS)
         self.assertEqual(summary.reason, sc.FinishReason.DRAWS_COLLECTED)
-        self.assertEqual(asks, {(True, False, True, False)})  # gradient and Hessian (THEORY.md §13)
+        self.assertEqual(asks, {(True, False, True, False)})  # gradient and Hessian (sluice.proto Register.kernel)
         self.assertEqual(summary.progress.evaluations_used, chains * (burn_in + n))
         assert summary.registered is not None
         self.assertEqual(summary.registered.step, h)
 
         # Each eigen-direction is AR(1) with rho = e^{-h lambda}; the slowest
-        # has tau = (1 + rho)/(1 - rho) = 3.74 (THEORY.md §11d), and products
+        # has tau = (1 + rho)/(1 - rho) = 3.74 (AR(1), derived here), and products
         # mix faster (Isserlis), so batches of 100 draws are about 27 tau.
         # Burn-in shrinks the start's distance by rho^30 < 1e-7.
         rho = np.exp(-h * lam.min())
@@ -501,8 +503,8 @@ class LiveTargetAndPlanTests(unittest.TestCase):
         self.assertEqual(summary.progress.state, sc.State.FINISHED)
 
     def test_plan_matches_the_tv_test_vector(self) -> None:
-        # THEORY.md §1.1 test vector (the TV rule is recalled from Dalalyan
-        # 2017: from memory): m = 1, M = 4, p = 2, eps = 0.1 gives
+        # The TV rule of Dalalyan (2017), total-variation theorem with a
+        # Gaussian start and its corollary (from memory): m = 1, M = 4, p = 2, eps = 0.1 gives
         # T = 5.991464547107983, h = 5.215753135864595e-05, K = 114873, each
         # term of the bound eps/2.
         res = sc.plan(self.target, sc.Curvature(strong_convexity=1.0, smoothness=4.0), 2, 0.1, "tv", timeout=DEADLINE_SECONDS)
@@ -516,12 +518,12 @@ class LiveTargetAndPlanTests(unittest.TestCase):
         self.assertLessEqual(res.bound.value, 0.1)
         self.assertAlmostEqual(res.bound.start_term, 0.05, delta=1e-6)
         self.assertAlmostEqual(res.bound.discretisation_term, 0.05, delta=1e-6)
-        # Paired exact check (THEORY.md §1.1 Gaussian sanity check, exact
-        # recursion of THEORY.md §11a): ULA on N(0, diag(1, 1/4)) from
+        # Paired exact check (derived here: the exact variance recursion of
+        # ULA on a Gaussian): ULA on N(0, diag(1, 1/4)) from
         # N(0, I/4) run K steps of size h has per-coordinate variance
         # v_K = v_inf + (1 - h lam)^(2K) (v_0 - v_inf), v_inf = 1/(lam (1 - h lam/2)):
         # (1.00002139, 0.25002608), and TV to pi 2.60e-05 <= eps (grid
-        # integration, as THEORY.md).
+        # integration, computed for this check).
         lam = np.array([1.0, 4.0])
         v_inf = 1.0 / (lam * (1.0 - res.step * lam / 2.0))
         v = v_inf + (1.0 - res.step * lam) ** (2 * res.iterations) * (0.25 - v_inf)
@@ -539,7 +541,7 @@ class LiveTargetAndPlanTests(unittest.TestCase):
     def test_eps_target_plans_the_step_and_reports_the_bound(self) -> None:
         # With declared m = 1, M = 4 on a 2-D target, wants eps = 0.1 in TV
         # and step 0, the server plans the step and the steps per chain by
-        # the rule of THEORY.md §1.1 (from memory; paired with the exact
+        # the rule of Dalalyan (2017) (from memory; paired with the exact
         # Gaussian check of test_plan_matches_the_tv_test_vector): the test
         # vector's h = 5.215753135864595e-05 and K = 114873. Every progress
         # report then carries the declared bound after k steps,
@@ -587,7 +589,7 @@ class LiveTargetAndPlanTests(unittest.TestCase):
             self.assertIsNone(p.noise)  # exact gradients
 
     def test_plan_names_a_bad_eps(self) -> None:
-        # The TV rule needs eps in (0, 1/2) (THEORY.md §1.1; sluice.proto,
+        # The TV rule needs eps in (0, 1/2) (Dalalyan 2017, from memory; sluice.proto,
         # rpc Plan: INVALID_ARGUMENT naming the field).
         with self.assertRaises(sc.SessionError) as cm:
             sc.plan(self.target, sc.Curvature(strong_convexity=1.0, smoothness=4.0), 2, 0.7, "tv", timeout=DEADLINE_SECONDS)
@@ -690,6 +692,14 @@ class LiveFollowTests(unittest.TestCase):
         self.assertEqual(fsum.draws_received, chains * n - resume)
         self.assertIsNone(fsum.registered)
         self.assertEqual(fsum.parameters, own_summary.parameters)
+        # The summaries keep the draws received (keep_draws defaults to
+        # True): the session's all of them, the resumed follower's from
+        # `resume` on, the same bytes as the blocks delivered.
+        assert own_summary.draws is not None and fsum.draws is not None
+        own_values = np.concatenate([d.values for d in own])
+        self.assertEqual(own_summary.draws.tobytes(), own_values.tobytes())
+        self.assertEqual(fsum.draws.tobytes(), own_values[resume:].tobytes())
+        self.assertEqual(fsum.draw_chains.tobytes(), np.concatenate([d.chains for d in own])[resume:].tobytes())
 
         # From exactly the end: no draws, only the summary. Beyond it:
         # OUT_OF_RANGE naming from_seq.

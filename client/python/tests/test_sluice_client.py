@@ -238,7 +238,8 @@ class LiveServerTests(unittest.TestCase):
     def test_gaussian_draws_match_ula_stationary_law(self) -> None:
         # Target N(mu, Q^-1) with a correlated precision Q. Unadjusted
         # Langevin with step h leaves N(mu, Sigma_h) invariant, with
-        # Sigma_h = [Q (I - h Q / 2)]^-1 (THEORY.md §11a), not Q^-1; the mean
+        # Sigma_h = [Q (I - h Q / 2)]^-1 (derived here: the Lyapunov equation of
+        # the Gaussian AR(1) recursion), not Q^-1; the mean
         # is exact. Draws are compared with that closed form, entry by
         # entry, by z-scores with batch-means MCSEs.
         Q = np.array([[2.0, 0.6, 0.3], [0.6, 1.5, -0.4], [0.3, -0.4, 1.0]])
@@ -246,10 +247,10 @@ class LiveServerTests(unittest.TestCase):
         h = 0.25
         dim, chains = 3, 16
         lam = np.linalg.eigvalsh(Q)
-        self.assertLess(h * lam.max(), 2.0)  # stability, THEORY.md §11a
+        self.assertLess(h * lam.max(), 2.0)  # stability: |1 - h lam| < 1
         sigma_h = np.linalg.inv(Q @ (np.eye(dim) - h * Q / 2))
         # Along each eigenvector of Q the chain is AR(1) with rho = 1 - h*lam,
-        # tau = (2 - h lam) / (h lam) (THEORY.md §11d): 13.6 at the slowest.
+        # tau = (2 - h lam) / (h lam) (AR(1), derived here): 13.6 at the slowest.
         # Products of two coordinates mix products of these AR(1) terms
         # (Isserlis), whose autocorrelations rho_a^k rho_b^k decay faster, so
         # tau_max bounds every series checked here. Batches of 400 draws are
@@ -287,7 +288,7 @@ class LiveServerTests(unittest.TestCase):
         )
         # Bookkeeping against the request (sluice.proto: Register, Draws,
         # Finished) and the LMC cost of one gradient per chain per step
-        # (THEORY.md §13).
+        # (sluice.proto, Register.kernel).
         self.assertEqual(summary.reason, sc.FinishReason.DRAWS_COLLECTED)
         self.assertEqual(summary.draws_received, chains * draws_per_chain)
         self.assertEqual(summary.progress.evaluations_used, chains * (burn_in + draws_per_chain))

@@ -1,0 +1,188 @@
+package client
+
+import (
+	"context"
+	"errors"
+	"slices"
+	"testing"
+	"time"
+
+	"google.golang.org/grpc"
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
+
+	sluicev1 "sluice/proto/sluice/v1"
+)
+
+// testCtx bounds a test's calls (a safety net in minutes, not a timing).
+func testCtx(t *testing.T) context.Context {
+	ctx, cancel := context.WithTimeout(context.Background(), 2*time.Minute)
+	t.Cleanup(cancel)
+	return ctx
+}
+
+func TestDialPlainTextOnlyToLoopback(t *testing.T) {
+	for target, local := range map[string]bool{
+		"127.0.0.1:7070": true, "127.3.4.5:1": true, "[::1]:7070": true, "localhost:7070": true,
+		"dns:///127.0.0.1:7070": true, "unix:///tmp/sluice.sock": true, "passthrough:///localhost:1": true,
+		"10.0.0.8:7070": false, "sluice.example:7070": false, "[2001:db8::1]:7070": false, "0.0.0.0:7070": false,
+	} {
+		if isLocal(target) != local {
+			t.Errorf("isLocal(%q) = %v, want %v", target, !local, local)
+		}
+		cc, err := Dial(target)
+		if (err == nil) != local {
+			t.Errorf("Dial(%q): err %v, want refused = %v", target, err, !local)
+		}
+		if cc != nil {
+			_ = cc.Close()
+		}
+	}
+	for _, opt := range []DialOption{WithInsecure(), WithTLS(nil)} {
+		cc, err := Dial("sluice.example:7070", opt)
+		if err != nil {
+			t.Fatal(err)
+		}
+		_ = cc.Close()
+	}
+	if _, err := Dial("127.0.0.1:7070", WithMaxMessageBytes(0)); err == nil {
+		t.Error("a zero message limit was accepted")
+	}
+}
+
+// drawsFrame returns rows draws of dim 1 whose values are their sequence
+// numbers, chain seq%2 and iteration seq/2+1.
+func drawsFrame(seq uint64, rows int) *sluicev1.Draws {
+	v := make([]float64, rows)
+	ch := make([]int32, rows)
+	it := make([]int64, rows)
+	for i := range rows {
+		v[i] = float64(seq) + float64(i)
+		ch[i] = int32((seq + uint64(i)) % 2)
+		it[i] = int64((seq+uint64(i))/2 + 1)
+	}
+	return &sluicev1.Draws{Seq: seq, Rows: int32(rows), Dim: 1, Values: putFloats(nil, v), Chains: ch, Iterations: it}
+}
+
+// A session that fails before the server's final frame still hands back
+// what arrived: the acknowledgement, the draws (with KeepDraws), the last
+// progress, and the error status as the server sent it.
+func TestRunFailureReturnsPartialResults(t *testing.T) {
+	cc := startFake(t, &fakeServer{session: func(s grpc.BidiStreamingServer[sluicev1.SessionRequest, sluicev1.SessionResponse]) error {
+		if _, err := s.Recv(); err != nil {
+			return err
+		}
+		for _, f := range []*sluicev1.SessionResponse{
+			{Frame: &sluicev1.SessionResponse_Registered{Registered: &sluicev1.Registered{SessionId: "s1", Names: []string{"x"}}}},
+			{Frame: &sluicev1.SessionResponse_Draws{Draws: drawsFrame(0, 3)}},
+			{Frame: &sluicev1.SessionResponse_Progress{Progress: &sluicev1.Progress{Steps: 7, EvaluationsUsed: 14}}},
+			{Frame: &sluicev1.SessionResponse_Draws{Draws: drawsFrame(3, 2)}},
+		} {
+			if err := s.Send(f); err != nil {
+				return err
+			}
+		}
+		return status.Error(codes.Internal, "lost the engine")
+	}})
+	var blocks int
+	sum, err := Run(testCtx(t), cc, Spec{Dim: 1, Chains: 2, Start: []float64{0}, Step: 0.1},
+		func(context.Context, *Batch) error { return nil }, KeepDraws(), OnDraws(func(*Draws) { blocks++ }))
+	if status.Code(err) != codes.Internal {
+		t.Fatalf("error %v, want the server's INTERNAL status", err)
+	}
+	if sum == nil || sum.Reason != "" || sum.Registered.SessionID != "s1" || sum.Progress.Steps != 7 ||
+		sum.Progress.EvaluationsUsed != 14 || sum.DrawsReceived != 5 || sum.NextSeq != 5 || blocks != 2 {
+		t.Fatalf("partial summary %+v after %d blocks", sum, blocks)
+	}
+	if d := sum.Draws; d == nil || d.Rows() != 5 || !slices.Equal(d.Values, []float64{0, 1, 2, 3, 4}) ||
+		!slices.Equal(d.Chains, []int{0, 1, 0, 1, 0}) || !slices.Equal(d.Iterations, []int64{1, 1, 2, 2, 3}) || d.Row(4)[0] != 4 {
+		t.Fatalf("kept draws %+v", sum.Draws)
+	}
+}
+
+// followLog serves a session of n draws of dim 1 in blocks of 3 from the
+// requested sequence number; when cut > 0 the first call ends with
+// UNAVAILABLE once it has sent the rows before cut.
+func followLog(n, cut uint64) *fakeServer {
+	calls := 0
+	return &fakeServer{follow: func(r *sluicev1.FollowRequest, s grpc.ServerStreamingServer[sluicev1.FollowResponse]) error {
+		calls++
+		if r.GetSessionId() != "s1" {
+			return status.Error(codes.NotFound, "no such session")
+		}
+		for seq := r.GetFromSeq(); seq < n; seq += 3 {
+			if calls == 1 && cut > 0 && seq >= cut {
+				return status.Error(codes.Unavailable, "connection dropped")
+			}
+			if err := s.Send(&sluicev1.FollowResponse{Frame: &sluicev1.FollowResponse_Draws{Draws: drawsFrame(seq, int(min(3, n-seq)))}}); err != nil {
+				return err
+			}
+		}
+		return s.Send(&sluicev1.FollowResponse{Frame: &sluicev1.FollowResponse_Finished{Finished: &sluicev1.Finished{
+			Reason:     sluicev1.FinishReason_FINISH_REASON_DRAWS_COLLECTED,
+			Parameters: []*sluicev1.ParameterSummary{{Name: "x", Mean: float64(n-1) / 2, Count: int64(n)}}}}})
+	}}
+}
+
+// A follower that loses its connection resumes from NextSeq and gets
+// every later draw exactly once (the Follow rpc's contract in the wire
+// API).
+func TestFollowResumesWithoutLossOrDuplicate(t *testing.T) {
+	cc := startFake(t, followLog(10, 6))
+	first, err := Follow(testCtx(t), cc, "s1", 0, KeepDraws())
+	if status.Code(err) != codes.Unavailable || first == nil || first.NextSeq != 6 || first.Reason != "" {
+		t.Fatalf("first follow: %v, %+v", err, first)
+	}
+	rest, err := Follow(testCtx(t), cc, "s1", first.NextSeq, KeepDraws())
+	if err != nil || rest.Reason != DrawsCollected || rest.NextSeq != 10 || rest.DrawsReceived != 4 {
+		t.Fatalf("resumed follow: %v, %+v", err, rest)
+	}
+	all := append(slices.Clone(first.Draws.Values), rest.Draws.Values...)
+	if !slices.Equal(all, []float64{0, 1, 2, 3, 4, 5, 6, 7, 8, 9}) {
+		t.Fatalf("draws %v", all)
+	}
+	if len(rest.Parameters) != 1 || rest.Parameters[0].Mean != 4.5 {
+		t.Fatalf("summary parameters %+v", rest.Parameters)
+	}
+	if _, err := Follow(testCtx(t), cc, "nope", 0); status.Code(err) != codes.NotFound {
+		t.Fatalf("unknown session: %v", err)
+	}
+}
+
+// A repeated or skipped sequence number is a fault, never silently
+// accepted.
+func TestFollowDetectsGaps(t *testing.T) {
+	cc := startFake(t, &fakeServer{follow: func(r *sluicev1.FollowRequest, s grpc.ServerStreamingServer[sluicev1.FollowResponse]) error {
+		for _, seq := range []uint64{r.GetFromSeq(), r.GetFromSeq() + 4} {
+			if err := s.Send(&sluicev1.FollowResponse{Frame: &sluicev1.FollowResponse_Draws{Draws: drawsFrame(seq, 3)}}); err != nil {
+				return err
+			}
+		}
+		return nil
+	}})
+	sum, err := Follow(testCtx(t), cc, "s1", 2)
+	if !errors.Is(err, ErrDrawsLost) || sum.NextSeq != 5 || sum.DrawsReceived != 3 {
+		t.Fatalf("gap: %v, %+v", err, sum)
+	}
+}
+
+func TestPlanDecodesTheAnswer(t *testing.T) {
+	cc := startFake(t, &fakeServer{plan: func(_ context.Context, r *sluicev1.PlanRequest) (*sluicev1.PlanResponse, error) {
+		if r.GetEps() <= 0 {
+			return nil, status.Error(codes.InvalidArgument, "eps must be > 0")
+		}
+		return &sluicev1.PlanResponse{Step: 0.01, Iterations: 600, Evaluations: 1200, Seconds: -1,
+			Bound:       &sluicev1.Bound{Metric: sluicev1.Metric_METRIC_W2, Value: r.GetEps(), Source: sluicev1.BoundSource_BOUND_SOURCE_DECLARED},
+			Assumptions: []string{"m-strongly convex"}, ConstantsRecalled: true}, nil
+	}})
+	spec := PlanSpec{Curvature: Curvature{StrongConvexity: 1, Smoothness: 4}, Dim: 2, Eps: 0.1, Metric: W2, Chains: 2}
+	p, err := Plan(testCtx(t), cc, spec)
+	if err != nil || p.Step != 0.01 || p.Iterations != 600 || p.Evaluations != 1200 || p.Seconds != -1 ||
+		p.Bound.Metric != W2 || p.Bound.Value != 0.1 || !p.Bound.Guaranteed || !p.ConstantsRecalled || len(p.Assumptions) != 1 {
+		t.Fatalf("plan %+v, %v", p, err)
+	}
+	spec.Eps = 0
+	if _, err := Plan(testCtx(t), cc, spec); status.Code(err) != codes.InvalidArgument {
+		t.Fatalf("bad eps: %v", err)
+	}
+}
