@@ -124,6 +124,13 @@ func writePEM(t *testing.T, dir, name, kind string, der []byte) string {
 // returns its address; it is stopped at cleanup.
 func serveTCP(t *testing.T, opts ...grpc.ServerOption) string {
 	t.Helper()
+	_, addr := serveTCPServer(t, opts...)
+	return addr
+}
+
+// serveTCPServer is serveTCP returning the server too.
+func serveTCPServer(t *testing.T, opts ...grpc.ServerOption) (*server.Server, string) {
+	t.Helper()
 	lis, err := net.Listen("tcp", "127.0.0.1:0")
 	if err != nil {
 		t.Fatal(err)
@@ -132,7 +139,7 @@ func serveTCP(t *testing.T, opts ...grpc.ServerOption) string {
 	done := make(chan struct{})
 	go func() { _ = srv.Serve(lis); close(done) }()
 	t.Cleanup(func() { srv.Stop(); <-done })
-	return lis.Addr().String()
+	return srv, lis.Addr().String()
 }
 
 func dialTCP(t *testing.T, addr string, opts ...grpc.DialOption) *grpc.ClientConn {
