@@ -81,7 +81,7 @@ func CheckListenSecurity(addr string, tls, insecure bool) error {
 	if tls || insecure || isLoopback(host) {
 		return nil
 	}
-	return fmt.Errorf("refusing %s: %w (give a certificate and key, or consent to plaintext explicitly)", addr, ErrInsecureListen)
+	return fmt.Errorf("%w: %s", ErrInsecureListen, addr)
 }
 
 func isLoopback(host string) bool {

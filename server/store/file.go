@@ -11,6 +11,7 @@ import (
 	"time"
 
 	bolt "go.etcd.io/bbolt"
+	bolterrors "go.etcd.io/bbolt/errors"
 )
 
 // FileName is the name of the database file inside the state directory.
@@ -37,7 +38,7 @@ func OpenFile(dir string) (*File, error) {
 	path := filepath.Join(dir, FileName)
 	db, err := bolt.Open(path, 0o600, &bolt.Options{Timeout: time.Second})
 	if err != nil {
-		if errors.Is(err, bolt.ErrTimeout) {
+		if errors.Is(err, bolterrors.ErrTimeout) {
 			return nil, fmt.Errorf("store: %s is in use by another process", path)
 		}
 		return nil, fmt.Errorf("store: open %s: %w", path, err)
