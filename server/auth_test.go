@@ -429,3 +429,29 @@ func hexDecode(s string) ([]byte, error) { return hex.DecodeString(s) }
 func metadataCtx(ctx context.Context, kv ...string) context.Context {
 	return metadata.AppendToOutgoingContext(ctx, kv...)
 }
+
+// TLS and tokens together: the token travels inside TLS with
+// client.WithToken (no plaintext consent needed).
+func TestTLSWithToken(t *testing.T) {
+	p := newPKI(t)
+	ctx := secCtx(t)
+	opt, err := server.TLSFiles{CertFile: p.serverCert, KeyFile: p.serverKey}.ServerOption()
+	if err != nil {
+		t.Fatal(err)
+	}
+	tokens, err := server.ParseTokens(strings.NewReader(goodToken))
+	if err != nil {
+		t.Fatal(err)
+	}
+	addr := serveTCP(t, append([]grpc.ServerOption{opt}, tokens.ServerOptions()...)...)
+	creds, err := client.WithTLS(p.caCert, "", "")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if c := plan(ctx, dialTCP(t, addr, creds, client.WithToken(goodToken))); c != codes.InvalidArgument {
+		t.Errorf("TLS with the token: %v, want the handler's InvalidArgument", c)
+	}
+	if c := plan(ctx, dialTCP(t, addr, creds)); c != codes.Unauthenticated {
+		t.Errorf("TLS without a token: %v, want Unauthenticated", c)
+	}
+}
