@@ -93,3 +93,8 @@ func mayReplace(cur, next Record, now time.Time) bool {
 	}
 	return cur.Owner == next.Owner || cur.LeaseUntil.IsZero() || !cur.LeaseUntil.After(now)
 }
+
+var (
+	_ Store = (*File)(nil)
+	_ Store = (*Postgres)(nil)
+)
