@@ -56,6 +56,7 @@ var kernelForbid = []string{
 //	cmd/sluice ───────────────▶ server, client, kernels/...
 //	server (gRPC adapter) ────▶ server/session, proto, kernels/...     (grpc, zap)
 //	server/session (engine) ──▶ kernels, kernels/diag, kernels/bound   (no grpc, no proto, no zap)
+//	server/store ─────────────▶ std, bbolt, pgx                         (no grpc, no proto, no zap)
 //	kernels/diag, kernels/bound, kernels/targets ─▶ std, gonum
 //	kernels ──────────────────▶ std, gonum
 //	client ───────────────────▶ proto                                   (grpc; never server or kernels)
@@ -77,6 +78,17 @@ var layerRules = []layerRule{
 		forbid: []string{
 			"google.golang.org/grpc/...", "google.golang.org/protobuf/...", "go.uber.org/zap/...",
 			"sluice/proto/...", "sluice/server", "sluice/client/...", "sluice/cmd/...",
+		},
+	},
+	{
+		// The checkpoint store: the standard library and its two
+		// databases' drivers, nothing of the transport.
+		pkgs:          "sluice/server/store/...",
+		allowProject:  []string{"sluice/server/store/..."},
+		allowExternal: []string{"go.etcd.io/bbolt/...", "github.com/jackc/pgx/v5/..."},
+		forbid: []string{
+			"google.golang.org/grpc/...", "google.golang.org/protobuf/...", "go.uber.org/zap/...",
+			"sluice/proto/...", "sluice/server", "sluice/server/session/...", "sluice/client/...", "sluice/cmd/...",
 		},
 	},
 	{
@@ -327,6 +339,8 @@ func TestDepsRuleMatching(t *testing.T) {
 		"sluice/kernels/targets":                    gonum,
 		"sluice/proto/sluice/v1":                    {"google.golang.org/grpc", "google.golang.org/protobuf/proto"},
 		"sluice/server/session":                     {"sluice/kernels", "sluice/kernels/diag"},
+		"sluice/server/store":                       {"go.etcd.io/bbolt"},
+		"go.etcd.io/bbolt":                          nil,
 		"sluice/server":                             {"sluice/server/session", "sluice/proto/sluice/v1", "google.golang.org/grpc", "go.uber.org/zap"},
 		"sluice/client":                             {"sluice/proto/sluice/v1", "google.golang.org/grpc"},
 		"sluice/cmd/sluice":                         {"sluice/server", "sluice/client", "sluice/kernels", "sluice/kernels/targets"},
@@ -351,6 +365,21 @@ func TestDepsRuleMatching(t *testing.T) {
 		{name: "layout as designed, targets", pkg: "sluice/kernels/targets", g: base},
 		{name: "layout as designed, session", pkg: "sluice/server/session", g: base},
 		{name: "layout as designed, server", pkg: "sluice/server", g: base},
+		{name: "layout as designed, store", pkg: "sluice/server/store", g: base},
+		{
+			name: "store imports grpc", pkg: "sluice/server/store", g: with("sluice/server/store", "go.etcd.io/bbolt", "google.golang.org/grpc"),
+			want: []string{
+				"sluice/server/store imports google.golang.org/grpc",
+				"sluice/server/store is built from google.golang.org/grpc",
+			},
+		},
+		{
+			name: "store imports the engine", pkg: "sluice/server/store", g: with("sluice/server/store", "sluice/server/session"),
+			want: []string{
+				"sluice/server/store imports sluice/server/session",
+				"sluice/server/store is built from sluice/server/session",
+			},
+		},
 		{name: "layout as designed, client", pkg: "sluice/client", g: base},
 		{name: "layout as designed, proto", pkg: "sluice/proto/sluice/v1", g: base},
 		{name: "layout as designed, cmd", pkg: "sluice/cmd/sluice", g: base},

@@ -2,16 +2,20 @@ package main
 
 import (
 	"context"
+	"errors"
 	"flag"
 	"fmt"
 	"io"
 	"net"
+	"net/http"
 	"time"
 
 	"go.uber.org/zap"
 	"go.uber.org/zap/zapcore"
+	"google.golang.org/grpc"
 
 	"sluice/server"
+	"sluice/server/metrics"
 	"sluice/server/session"
 )
 
@@ -73,6 +77,8 @@ func serve(ctx context.Context, args []string, stderr io.Writer) error {
 	grace := fs.Duration("grace", 15*time.Second, "on SIGINT/SIGTERM, how long running sessions get to finish")
 	var sf serveFlags
 	sf.register(fs)
+	var sec securityFlags
+	sec.register(fs)
 	setHelp(fs, help{
 		usage: "sluice serve [flags]",
 		about: "Serves the sluice gRPC API (sluice.v1.SluiceService: the Session stream, Follow and Plan) on --addr, " +
@@ -85,7 +91,8 @@ func serve(ctx context.Context, args []string, stderr io.Writer) error {
 		examples: []string{
 			"sluice serve",
 			"sluice serve --addr 127.0.0.1:7070 --log-level info",
-			"sluice serve --addr 0.0.0.0:7070 --max-sessions 8 --max-message-bytes 67108864 --answer-timeout 2m",
+			"sluice serve --addr 0.0.0.0:7070 --tls-cert server.pem --tls-key server-key.pem --token-file tokens.txt",
+			"sluice serve --max-sessions 8 --max-message-bytes 67108864 --answer-timeout 2m --metrics-addr 127.0.0.1:9090",
 		},
 		kernels: "Kernels a session may ask for (Register.kernel):",
 	})
@@ -101,24 +108,110 @@ func serve(ctx context.Context, args []string, stderr io.Writer) error {
 	if err != nil {
 		return err
 	}
+	m, secOpts, err := sec.options(*addr)
+	if err != nil {
+		return err
+	}
+	opts.GRPCOptions = append(opts.GRPCOptions, secOpts...)
 	lis, err := net.Listen("tcp", *addr)
 	if err != nil {
 		return err
 	}
+	var mlis net.Listener
+	if sec.metricsAddr != "" {
+		if mlis, err = net.Listen("tcp", sec.metricsAddr); err != nil {
+			_ = lis.Close()
+			return fmt.Errorf("--metrics-addr: %w", err)
+		}
+	}
 	srv := server.New(opts)
-	log.Info("serving", zap.String("addr", lis.Addr().String()), zap.Int64("max_message_bytes", sf.maxMessageBytes))
-	errc := make(chan error, 1)
+	log.Info("serving", zap.String("addr", lis.Addr().String()), zap.Int64("max_message_bytes", sf.maxMessageBytes),
+		zap.Bool("tls", sec.tls.Enabled()), zap.Bool("mutual_tls", sec.tls.ClientCAFile != ""), zap.Bool("tokens", sec.tokenFile != ""))
+	errc := make(chan error, 2)
 	go func() { errc <- srv.Serve(lis) }()
+	var hsrv *http.Server
+	if mlis != nil {
+		hsrv = &http.Server{Handler: m.Handler(sec.pprof), ReadHeaderTimeout: 30 * time.Second}
+		log.Info("metrics", zap.String("addr", mlis.Addr().String()), zap.Bool("pprof", sec.pprof))
+		go func() {
+			if err := hsrv.Serve(mlis); !errors.Is(err, http.ErrServerClosed) {
+				errc <- fmt.Errorf("metrics: %w", err)
+			}
+		}()
+	}
+	var failed error
 	select {
 	case err := <-errc:
-		return fmt.Errorf("serve: %w", err)
+		failed = fmt.Errorf("serve: %w", err)
 	case <-ctx.Done():
+		log.Info("shutting down", zap.Duration("grace", *grace))
 	}
-	log.Info("shutting down", zap.Duration("grace", *grace))
 	sctx, cancel := context.WithTimeout(context.Background(), *grace)
 	defer cancel()
 	srv.Shutdown(sctx)
-	<-errc
+	if hsrv != nil {
+		_ = hsrv.Shutdown(sctx)
+	}
+	if failed != nil {
+		return failed
+	}
 	log.Info("stopped")
 	return nil
+}
+
+// securityFlags are serve's transport security, authentication and
+// observability settings.
+type securityFlags struct {
+	tls         server.TLSFiles
+	tokenFile   string
+	insecure    bool
+	metricsAddr string
+	pprof       bool
+}
+
+func (f *securityFlags) register(fs *flag.FlagSet) {
+	fs.StringVar(&f.tls.CertFile, "tls-cert", "", "PEM file of the server's TLS certificate chain (with --tls-key)")
+	fs.StringVar(&f.tls.KeyFile, "tls-key", "", "PEM file of the key of --tls-cert")
+	fs.StringVar(&f.tls.ClientCAFile, "client-ca", "", "PEM file of the authorities whose client certificates are accepted; makes client certificates required (mutual TLS)")
+	fs.StringVar(&f.tokenFile, "token-file", "", "file of accepted bearer tokens, one per line (# comments), each at least 16 characters; every call but health checks must send one as \"authorization: Bearer <token>\"")
+	fs.BoolVar(&f.insecure, "insecure", false, "allow plaintext on addresses other than loopback (for --addr and --metrics-addr)")
+	fs.StringVar(&f.metricsAddr, "metrics-addr", "", "serve Prometheus metrics over HTTP at /metrics on this address (empty: off)")
+	fs.BoolVar(&f.pprof, "pprof", false, "also serve the Go runtime's profiles under /debug/pprof/ on --metrics-addr")
+}
+
+// options checks the settings against the listen address and returns the
+// metrics (nil when off) and the gRPC options installing them: metrics
+// first, so that authentication refusals are counted, then TLS and
+// tokens.
+func (f *securityFlags) options(addr string) (*metrics.Metrics, []grpc.ServerOption, error) {
+	var opts []grpc.ServerOption
+	if err := server.CheckListenSecurity(addr, f.tls.Enabled(), f.insecure); err != nil {
+		return nil, nil, usagef("--addr: %v; give --tls-cert and --tls-key, or --insecure", err)
+	}
+	if f.pprof && f.metricsAddr == "" {
+		return nil, nil, usagef("--pprof needs --metrics-addr")
+	}
+	var m *metrics.Metrics
+	if f.metricsAddr != "" {
+		if err := server.CheckListenSecurity(f.metricsAddr, false, f.insecure); err != nil {
+			return nil, nil, usagef("--metrics-addr: %v (metrics are served over plain HTTP); keep them on loopback, or give --insecure", err)
+		}
+		m = metrics.New()
+		opts = append(opts, server.MetricsOptions(m)...)
+	}
+	if f.tls.Enabled() {
+		o, err := f.tls.ServerOption()
+		if err != nil {
+			return nil, nil, usagef("%v", err)
+		}
+		opts = append(opts, o)
+	}
+	if f.tokenFile != "" {
+		t, err := server.LoadTokens(f.tokenFile)
+		if err != nil {
+			return nil, nil, usagef("--token-file: %v", err)
+		}
+		opts = append(opts, t.ServerOptions()...)
+	}
+	return m, opts, nil
 }
