@@ -64,9 +64,9 @@ type guarantee struct {
 
 // newGuarantee returns nil when no bound applies: no curvature declared,
 // another kernel, m = 0, or a step outside the theorem's range.
-func newGuarantee(spec *Spec) (*guarantee, error) {
+func newGuarantee(spec *Spec, k *kernelEntry) (*guarantee, error) {
 	c := spec.Curvature
-	if c == nil || spec.Kernel != "lmc" || (c.StrongConvexity == 0 && spec.Wants.Eps == 0) {
+	if c == nil || !k.guaranteed || (c.StrongConvexity == 0 && spec.Wants.Eps == 0) {
 		return nil, nil
 	}
 	g := &guarantee{setting: bound.Setting{Convexity: c.StrongConvexity, Smoothness: c.Smoothness, Dim: spec.Dim,
@@ -317,21 +317,16 @@ func nanTo(v, w float64) float64 {
 // kernelReport collects what a kernel says of itself.
 func kernelReport(k kernels.Kernel) KernelReport {
 	var r KernelReport
-	if s, ok := k.(interface{ Step() float64 }); ok {
+	if s, ok := k.(kernels.Stepper); ok {
 		r.Step = s.Step()
 	}
-	if m, ok := k.(*kernels.MALA); ok {
-		r.Adapting = m.Adapting()
-		r.AcceptanceRates = m.AcceptanceRates()
-	}
-	if o, ok := k.(*kernels.OzakiKrylov); ok {
-		r.Krylov = o.LastStep()
-	}
-	if m, ok := k.(interface{ MeanEvaluationsPerStep() float64 }); ok {
+	if m, ok := k.(kernels.CostMeter); ok {
 		r.EvaluationsPerStepMean = m.MeanEvaluationsPerStep()
 	}
-	if rj, ok := k.(*kernels.Rejection); ok {
-		r.AcceptanceRate = rj.AcceptanceRate()
+	if rep, ok := k.(kernels.Reporter); ok {
+		var kr kernels.Report
+		rep.Report(&kr)
+		r.Adapting, r.AcceptanceRates, r.Krylov, r.AcceptanceRate = kr.Adapting, kr.AcceptanceRates, kr.Krylov, kr.AcceptanceRate
 	}
 	return r
 }
