@@ -240,7 +240,9 @@ type outcome struct {
 func failed(e *Error) outcome { return outcome{reason: Failed, msg: e.Error(), err: e} }
 
 // broken is the outcome of a failed send: nothing more is sent.
-func broken(err error) outcome { return outcome{reason: Failed, msg: err.Error(), err: err, quiet: true} }
+func broken(err error) outcome {
+	return outcome{reason: Failed, msg: err.Error(), err: err, quiet: true}
+}
 
 func (s *Session) begin(ctx context.Context, in <-chan Message, send func(Frame) error) *run {
 	s.start = time.Now()
