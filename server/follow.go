@@ -7,6 +7,7 @@ import (
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
 
+	"sluice/internal/wire"
 	sluicev1 "sluice/proto/sluice/v1"
 	"sluice/server/session"
 )
@@ -25,7 +26,7 @@ func (s *Server) Follow(req *sluicev1.FollowRequest, stream grpc.ServerStreaming
 	if _, next := f.log.Span(); from > next {
 		return withField(codes.OutOfRange, "from_seq", "%d is beyond the latest draw (next is %d)", from, next)
 	}
-	rows := max(1, int((f.limit-1024)/int64(8*f.dim+16)))
+	rows := max(1, wire.RowsPerMessage(f.limit, f.dim))
 	enc := encoder{maxParams: paramCap(f.limit)}
 	for {
 		d, err := f.log.Read(stream.Context(), from, rows)

@@ -11,6 +11,7 @@ import (
 	"slices"
 	"time"
 
+	"sluice/internal/wire"
 	"sluice/kernels"
 	"sluice/kernels/bound"
 )
@@ -448,19 +449,24 @@ func (s *Session) rowBytes(need kernels.Need) int64 {
 }
 
 // rowBytes bounds the bytes one row costs in the larger of a Points frame
-// and its answer: the values, plus a few bytes of varint chain index and
-// framing.
+// and its answer, with reps gradient replicates.
 func rowBytes(need kernels.Need, dim, reps int) int64 {
-	out := int64(8 * dim) // the point
-	back := int64(8 * (dim*reps + 1))
+	return wire.RowBytes(rowValues(need, dim, reps))
+}
+
+// rowValues is the float64 values one row carries in the larger of a
+// Points frame (the point, and its vector for Hessian-vector products)
+// and its answer (reps gradients, a log density, a Hessian, a product).
+func rowValues(need kernels.Need, dim, reps int) int {
+	out, back := dim, dim*reps+1
 	if need.Has(kernels.NeedHessian) {
-		back += int64(8 * dim * dim)
+		back += dim * dim
 	}
 	if need.Has(kernels.NeedHessianVector) {
-		out += int64(8 * dim)
-		back += int64(8 * dim)
+		out += dim
+		back += dim
 	}
-	return max(out, back) + 16
+	return max(out, back)
 }
 
 // replicates is the gradient replicates per row a request needing need
@@ -484,8 +490,7 @@ func (s *Session) cost(need kernels.Need, rows int) int64 {
 
 // partRows is how many rows fit one message for a request needing need.
 func (s *Session) partRows(need kernels.Need) int {
-	const overhead = 1024
-	return int((s.msgBytes - overhead) / rowBytes(need, s.spec.Dim, s.replicates(need)))
+	return wire.RowsPerMessage(s.msgBytes, rowValues(need, s.spec.Dim, s.replicates(need)))
 }
 
 // parts is the number of Points frames a request of rows rows takes.
@@ -676,8 +681,7 @@ func (s *Session) sendDraws(step int64, send func(Frame) error) error {
 	for c := range chains {
 		s.drawIters[c] = step
 	}
-	// A draw row costs its values plus varint chain and iteration.
-	per := max(1, int((s.msgBytes-1024)/int64(8*dim+24)))
+	per := max(1, wire.RowsPerMessage(s.msgBytes, dim))
 	for lo := 0; lo < chains; lo += per {
 		hi := min(lo+per, chains)
 		s.draws = Draws{Seq: s.seq, Rows: hi - lo, Dim: dim, Values: x[lo*dim : hi*dim],
