@@ -113,7 +113,8 @@ func (s *Session) updateNoise(e NoiseEstimate) {
 	k := s.kernel.Steps()
 	if st, ok := s.kernel.(kernels.StepSetter); ok && g.replan && e.Requests >= 10 && int64(k) < s.spec.BurnIn {
 		// Plan the step again with the measured noise, once, in burn-in:
-		// the bias-aware step of THEORY.md §2.2.
+		// the step of Dalalyan and Karagulyan (2019) for inaccurate
+		// gradients.
 		g.replan = false
 		p, err := bound.NewPlan(bound.Spec{Setting: g.setting, Metric: g.metric, Eps: g.eps, Chains: g.chains})
 		if err == nil && p.Step < g.h {

@@ -197,6 +197,9 @@ func (s *Session) loop(r *run) outcome {
 				msg: fmt.Sprintf("the next request needs %d evaluations, %d left", s.cost(req.Need, req.Rows), m-s.used)}
 		}
 		if err := s.request(r, req); err != nil {
+			if e, ok := err.(*Error); ok {
+				return failed(e) // refused before anything was sent
+			}
 			return broken(err)
 		}
 		if o, stop := s.await(r, req); stop {
@@ -422,9 +425,10 @@ func (s *Session) complete(r *run, req *kernels.Request) *Error {
 }
 
 // diverged reports a chain whose position stopped being finite: the step
-// is too large for the target (LMC is stable only below 2/M, THEORY.md
-// §11a), and going on would only send the client points it cannot
-// evaluate.
+// is too large for the target (on a Gaussian with largest precision
+// eigenvalue M, LMC's recursion multiplies by 1 − hM, so it is stable only
+// below h = 2/M; derived here), and going on would only send the client
+// points it cannot evaluate.
 func (s *Session) diverged() *Error {
 	x, d := s.kernel.Positions(), s.spec.Dim
 	for i, v := range x {
@@ -499,7 +503,11 @@ func (s *Session) parts(rows int) int { return (rows + s.rowsPerPart - 1) / s.ro
 func (s *Session) sendPoints(req *kernels.Request, send func(Frame) error) error {
 	s.rowsPerPart = s.partRows(req.Need)
 	if s.rowsPerPart < 1 {
-		return &Error{Kind: Internal, Field: "points", Chain: -1, Coord: -1, Reason: "one row exceeds the message limit"}
+		// Registration sized every request the registry declares, so this
+		// is a request the registry left out; the client can still get
+		// past it with a larger limit.
+		return &Error{Kind: TooLarge, Field: "register.max_message_bytes", Chain: -1, Coord: -1,
+			Reason: fmt.Sprintf("one row of this request (%d bytes) does not fit the session's message limit of %d bytes", s.rowBytes(req.Need), s.msgBytes)}
 	}
 	n := s.parts(req.Rows)
 	if cap(s.answered) < n {
@@ -784,7 +792,8 @@ func (s *Session) burnInCost() int64 {
 	return min(s.used, s.spec.BurnIn*int64(s.kernel.EvaluationsPerStep()))
 }
 
-// estimatedBound is the W2 bound of an lmc session that declared no
+// estimatedBound is the W2 bound of a session whose kernel the bounds
+// cover (kernelEntry.guaranteed) that declared no
 // curvature, computed from the certificates as if they were m and M. The
 // certificates are one-sided the wrong way for a guarantee (m ≤ the upper
 // bound used, M ≥ the lower bound used), so the figure is optimistic:
@@ -795,8 +804,9 @@ func (s *Session) estimatedBound(c CurvatureEstimate) (bound.Bound, bool) {
 	}
 	m, bigM := c.StrongConvexityAtMost, c.SmoothnessAtLeast
 	if c.ProbedSmoothness > 0 {
-		// THEORY.md §12's recipe: a safety factor on the larger of the
-		// probe and the certificates for M; the smaller for m.
+		// A safety factor of 1.1 on the larger of the probe and the
+		// certificates for M, the smaller of the two for m (derived here:
+		// each is a one-sided estimate, so the safer one is taken).
 		bigM = 1.1 * math.Max(bigM, c.ProbedSmoothness)
 		if c.ProbedConvexity > 0 {
 			m = math.Min(m, c.ProbedConvexity)

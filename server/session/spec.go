@@ -13,7 +13,8 @@ import (
 // per field; New validates everything.
 type Spec struct {
 	Dim, Chains int
-	// Kernel names the method; "" means "lmc".
+	// Kernel names the method (see KernelNames); "" means the default,
+	// unadjusted Langevin.
 	Kernel string
 	// Start holds StartRows×Dim values; StartRows is 1 (shared by every
 	// chain) or Chains.
@@ -101,7 +102,8 @@ type Curvature struct {
 	// the mode).
 	StartDistance float64
 	// SecondMoment μ₂ ≥ E_π‖θ − centre‖², for m = 0 with a TV target:
-	// the engine then samples the penalised π_λ (THEORY.md §1.2).
+	// the engine then samples the penalised π_λ ∝ π·exp(−λ‖θ − centre‖²/2),
+	// whose TV distance to π is at most λμ₂/2 (derived here).
 	SecondMoment float64
 	// PenaltyCentre (Dim values) is the penalty's centre; nil means the
 	// mean of the start points.
@@ -420,7 +422,7 @@ func (s *Spec) validateAccuracy(k *kernelEntry) error {
 		case s.Curvature == nil:
 			return BadField("register.wants.eps", "a guaranteed error needs register.curvature")
 		case s.Curvature.StrongConvexity == 0 && (w.Metric != bound.TV || s.Curvature.SecondMoment == 0):
-			return BadField("register.wants.eps", "with m = 0 a guaranteed error needs metric TV and curvature.second_moment (the penalised target of THEORY.md §1.2)")
+			return BadField("register.wants.eps", "with m = 0 a guaranteed error needs metric TV and curvature.second_moment (the engine samples a penalised target whose distance to π it bounds with them)")
 		case w.Metric != bound.TV && w.Metric != bound.W2:
 			return BadField("register.wants.metric", "must be METRIC_TV or METRIC_W2 when eps is set")
 		case w.Metric == bound.TV && w.Eps >= 0.5:
