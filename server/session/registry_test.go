@@ -2,6 +2,8 @@ package session
 
 import (
 	"math"
+	"os"
+	"regexp"
 	"slices"
 	"strings"
 	"testing"
@@ -189,5 +191,51 @@ func TestUnsizedRequestIsTooLarge(t *testing.T) {
 	e, ok := AsError(err)
 	if !ok || e.Kind != TooLarge || e.Field != "register.max_message_bytes" || !strings.Contains(e.Reason, "message limit") {
 		t.Fatalf("got %v, want a too-large error on register.max_message_bytes", err)
+	}
+}
+
+// The user-facing docs list exactly the registered kernels: the README's
+// kernel table and the proto's Register.kernel comment, and the README's
+// list of kernels that refuse stochastic gradients matches the registry.
+func TestDocsListRegisteredKernels(t *testing.T) {
+	readme, err := os.ReadFile("../../README.md")
+	if err != nil {
+		t.Fatal(err)
+	}
+	proto, err := os.ReadFile("../../proto/sluice/v1/sluice.proto")
+	if err != nil {
+		t.Fatal(err)
+	}
+	tableRow := regexp.MustCompile("(?m)^\\s*\\| `([a-z-]+)` \\|")
+	var table []string
+	for _, m := range tableRow.FindAllStringSubmatch(string(readme), -1) {
+		table = append(table, m[1])
+	}
+	if !slices.Equal(table, KernelNames()) {
+		t.Errorf("README kernel table lists %v, the registry %v", table, KernelNames())
+	}
+	comment := string(proto)
+	start := strings.Index(comment, "message Register")
+	end := strings.Index(comment[start:], "string kernel = ")
+	if start < 0 || end < 0 {
+		t.Fatal("no Register.kernel field in sluice.proto")
+	}
+	listed := regexp.MustCompile(`(?m)^\s*//\s+"([a-z-]+)"\s`).FindAllStringSubmatch(comment[start:start+end], -1)
+	var names []string
+	for _, m := range listed {
+		names = append(names, m[1])
+	}
+	if !slices.Equal(names, KernelNames()) {
+		t.Errorf("sluice.proto's Register.kernel comment lists %v, the registry %v", names, KernelNames())
+	}
+	var exact []string
+	for _, e := range registry {
+		if e.exactGradients {
+			exact = append(exact, "`"+e.name+"`")
+		}
+	}
+	sentence := strings.Join(exact[:len(exact)-1], ", ") + " and " + exact[len(exact)-1] + " refuse stochastic gradients"
+	if !strings.Contains(strings.Join(strings.Fields(string(readme)), " "), sentence) {
+		t.Errorf("README does not say %q", sentence)
 	}
 }

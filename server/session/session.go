@@ -926,19 +926,3 @@ func (s *Session) result(r Reason, msg string) Result {
 	}
 	return Result{Finished: f, Kernel: s.kernel}
 }
-
-func (s *Session) finish(r Reason, msg string, send func(Frame) error) (Result, error) {
-	res := s.result(r, msg)
-	if err := send(&res.Finished); err != nil {
-		return res, err
-	}
-	return res, nil
-}
-
-// fail sends a Finished frame with reason Failed (best effort: the stream
-// may be gone) and returns the error.
-func (s *Session) fail(e *Error, send func(Frame) error) (Result, error) {
-	res := s.result(Failed, e.Error())
-	_ = send(&res.Finished) // best effort; e is what the caller reports
-	return res, e
-}
