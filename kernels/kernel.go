@@ -119,9 +119,9 @@ type Kernel interface {
 	Positions() []float64
 	// EvaluationsPerStep is the number of points evaluated per completed
 	// step over all chains. It is exact for kernels whose cost is fixed.
-	// For kernels whose cost is random or found by a search (those that
-	// implement CostMeter) it is a ceiling or an estimate; CostMeter gives
-	// the measured mean.
+	// For kernels whose cost is random or found by a search it is a
+	// ceiling or an estimate, as each kernel documents; those that measure
+	// their mean cost implement CostMeter.
 	EvaluationsPerStep() int
 }
 
@@ -154,8 +154,9 @@ type StepSetter interface {
 	SetStep(h float64)
 }
 
-// CostMeter is implemented by kernels whose cost per step is random or
-// searched, so that EvaluationsPerStep is only a ceiling or an estimate.
+// CostMeter is implemented by kernels whose cost per step is random and
+// measured as they run; their EvaluationsPerStep is only a ceiling or an
+// estimate.
 type CostMeter interface {
 	// MeanEvaluationsPerStep returns the points evaluated per completed
 	// step over all chains, averaged over the steps so far.

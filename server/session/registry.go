@@ -40,8 +40,8 @@ type kernelEntry struct {
 	// and Spec.Envelope.
 	schedule, envelope bool
 	// randomCost is set when EvaluationsPerStep is a ceiling or an
-	// estimate (the cost is random or found by a search); such kernels
-	// implement kernels.CostMeter.
+	// estimate (the cost is random or found by a search); those that
+	// measure their mean cost implement kernels.CostMeter.
 	randomCost bool
 	// setupRows is the evaluations per chain a kernel spends once, before
 	// its first step (MALA evaluates its start points).

@@ -192,9 +192,8 @@ func (s *Session) loop(r *run) outcome {
 			return o
 		}
 		req := s.next()
-		if m := s.spec.MaxEvaluations; m > 0 && s.used+s.cost(req.Need, req.Rows) > m {
-			return outcome{reason: BudgetSpent,
-				msg: fmt.Sprintf("the next request needs %d evaluations, %d left", s.cost(req.Need, req.Rows), m-s.used)}
+		if o, stop := s.overBudget(req); stop {
+			return o
 		}
 		if err := s.request(r, req); err != nil {
 			if e, ok := err.(*Error); ok {
@@ -318,6 +317,15 @@ func (s *Session) shouldStop(r *run) (outcome, bool) {
 		return outcome{reason: DrawsCollected}, true
 	case s.targetsMet():
 		return outcome{reason: TargetMet}, true
+	}
+	return outcome{}, false
+}
+
+// overBudget decides whether req would overshoot the evaluation budget.
+func (s *Session) overBudget(req *kernels.Request) (outcome, bool) {
+	m, c := s.spec.MaxEvaluations, s.cost(req.Need, req.Rows)
+	if m > 0 && s.used+c > m {
+		return outcome{reason: BudgetSpent, msg: fmt.Sprintf("the next request needs %d evaluations, %d left", c, m-s.used)}, true
 	}
 	return outcome{}, false
 }
