@@ -54,12 +54,13 @@ var kernelForbid = []string{
 // layerRules encodes DESIGN.md, "Layers and who may import whom":
 //
 //	cmd/sluice ───────────────▶ server, client, kernels/...
-//	server (gRPC adapter) ────▶ server/session, proto, kernels/...     (grpc, zap)
-//	server/session (engine) ──▶ kernels, kernels/diag, kernels/bound   (no grpc, no proto, no zap)
-//	server/store ─────────────▶ std, bbolt, pgx                         (no grpc, no proto, no zap)
+//	server (gRPC adapter) ────▶ server/session, proto, kernels/..., internal/wire   (grpc, zap)
+//	server/session (engine) ──▶ kernels, kernels/diag, kernels/bound, internal/wire (no grpc, no proto, no zap)
+//	server/store ─────────────▶ std, bbolt, pgx                                  (no grpc, no proto, no zap)
 //	kernels/diag, kernels/bound, kernels/targets ─▶ std, gonum
 //	kernels ──────────────────▶ std, gonum
-//	client ───────────────────▶ proto                                   (grpc; never server or kernels)
+//	client ───────────────────▶ proto, internal/wire                (grpc; never server or kernels)
+//	internal/wire ────────────▶ std                                 (the wire's array layout and frame sizing)
 //
 // and the rule of STYLE.md that nothing imports grpc's internal packages.
 // The proto package is the wire API alone: it imports no other package of
@@ -72,8 +73,13 @@ var layerRules = []layerRule{
 		forbid:        kernelForbid,
 	},
 	{
+		// shared by client, adapter and engine: the standard library only
+		pkgs:   "sluice/internal/wire",
+		forbid: []string{"..."},
+	},
+	{
 		pkgs:          "sluice/server/session/...",
-		allowProject:  []string{"sluice/server/session/...", "sluice/kernels/..."},
+		allowProject:  []string{"sluice/server/session/...", "sluice/kernels/...", "sluice/internal/wire"},
 		allowExternal: []string{"..."},
 		forbid: []string{
 			"google.golang.org/grpc/...", "google.golang.org/protobuf/...", "go.uber.org/zap/...",
@@ -93,13 +99,13 @@ var layerRules = []layerRule{
 	},
 	{
 		pkgs:          "sluice/server",
-		allowProject:  []string{"sluice/server/...", "sluice/proto/...", "sluice/kernels/..."},
+		allowProject:  []string{"sluice/server/...", "sluice/proto/...", "sluice/kernels/...", "sluice/internal/wire"},
 		allowExternal: []string{"..."},
 		forbid:        []string{"sluice/client/...", "sluice/cmd/..."},
 	},
 	{
 		pkgs:          "sluice/client/...",
-		allowProject:  []string{"sluice/client/...", "sluice/proto/..."},
+		allowProject:  []string{"sluice/client/...", "sluice/proto/...", "sluice/internal/wire"},
 		allowExternal: []string{"..."},
 		forbid:        []string{"sluice/server/...", "sluice/kernels/...", "sluice/cmd/..."},
 	},
@@ -342,7 +348,8 @@ func TestDepsRuleMatching(t *testing.T) {
 		"sluice/server/store":                       {"go.etcd.io/bbolt"},
 		"go.etcd.io/bbolt":                          nil,
 		"sluice/server":                             {"sluice/server/session", "sluice/proto/sluice/v1", "google.golang.org/grpc", "go.uber.org/zap"},
-		"sluice/client":                             {"sluice/proto/sluice/v1", "google.golang.org/grpc"},
+		"sluice/client":                             {"sluice/proto/sluice/v1", "sluice/internal/wire", "google.golang.org/grpc"},
+		"sluice/internal/wire":                      nil,
 		"sluice/cmd/sluice":                         {"sluice/server", "sluice/client", "sluice/kernels", "sluice/kernels/targets"},
 	}
 	with := func(pkg string, imports ...string) depGraph {
@@ -383,6 +390,18 @@ func TestDepsRuleMatching(t *testing.T) {
 		{name: "layout as designed, client", pkg: "sluice/client", g: base},
 		{name: "layout as designed, proto", pkg: "sluice/proto/sluice/v1", g: base},
 		{name: "layout as designed, cmd", pkg: "sluice/cmd/sluice", g: base},
+		{name: "layout as designed, wire", pkg: "sluice/internal/wire", g: base},
+		{
+			name: "wire imports gonum", pkg: "sluice/internal/wire", g: with("sluice/internal/wire", "gonum.org/v1/gonum/mat"),
+			want: []string{
+				"sluice/internal/wire imports gonum.org/v1/gonum/mat",
+				"sluice/internal/wire is built from gonum.org/v1/gonum/mat",
+			},
+		},
+		{
+			name: "kernels imports wire", pkg: "sluice/kernels", g: with("sluice/kernels", "sluice/internal/wire"),
+			want: []string{"sluice/kernels imports sluice/internal/wire"},
+		},
 		{name: "std only", pkg: "sluice/kernels/diag", g: with("sluice/kernels/diag")},
 		{name: "session tests may use targets", pkg: "sluice/server/session", g: base, testImports: []string{"sluice/kernels/targets"}},
 		{

@@ -2,16 +2,14 @@ package client
 
 import (
 	"context"
-	"encoding/binary"
 	"errors"
 	"fmt"
 	"io"
-	"math"
-	"slices"
 	"time"
 
 	"google.golang.org/grpc"
 
+	"sluice/internal/wire"
 	sluicev1 "sluice/proto/sluice/v1"
 )
 
@@ -697,24 +695,12 @@ func resize(s []float64, n int) []float64 {
 	return s[:n]
 }
 
-// putFloats appends v to dst as little-endian float64 bytes.
-func putFloats(dst []byte, v []float64) []byte {
-	n := len(dst)
-	dst = slices.Grow(dst, 8*len(v))[:n+8*len(v)]
-	b := dst[n:]
-	for i, x := range v {
-		binary.LittleEndian.PutUint64(b[8*i:], math.Float64bits(x))
-	}
-	return dst
-}
+// putFloats appends v to dst in the wire's array layout.
+func putFloats(dst []byte, v []float64) []byte { return wire.AppendFloats(dst, v) }
 
-// getFloats appends the little-endian float64 values of b to dst.
+// getFloats appends the float64 values of the wire array b to dst; a
+// trailing partial value is ignored.
 func getFloats(dst []float64, b []byte) []float64 {
-	n, m := len(dst), len(b)/8
-	dst = slices.Grow(dst, m)[:n+m]
-	out := dst[n:]
-	for i := range out {
-		out[i] = math.Float64frombits(binary.LittleEndian.Uint64(b[8*i:]))
-	}
-	return dst
+	out, _ := wire.DecodeFloats(dst, b[:len(b)/8*8])
+	return out
 }

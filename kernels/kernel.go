@@ -118,18 +118,85 @@ type Kernel interface {
 	// the next Tell.
 	Positions() []float64
 	// EvaluationsPerStep is the number of points evaluated per completed
-	// step over all chains.
+	// step over all chains. It is exact for kernels whose cost is fixed.
+	// For kernels whose cost is random or found by a search it is a
+	// ceiling or an estimate, as each kernel documents; those that measure
+	// their mean cost implement CostMeter.
 	EvaluationsPerStep() int
+}
 
+// The interfaces below are optional: a kernel implements those that apply
+// to it, and a driver finds them with a type assertion on the interface
+// (never on a concrete kernel type), as database/sql does with its
+// drivers' optional interfaces.
+
+// Checkpointer is implemented by kernels whose whole state, random stream
+// included, can be saved and restored, so that a run resumes bit for bit.
+// UnmarshalBinary must reject a state of another kernel, size or version
+// with an error, never a panic.
+type Checkpointer interface {
 	encoding.BinaryMarshaler
 	encoding.BinaryUnmarshaler
+}
+
+// Stepper is implemented by kernels that have a step size.
+type Stepper interface {
+	// Step returns the step size of the coming step.
+	Step() float64
+}
+
+// StepSetter is implemented by kernels whose step size a driver may change
+// between steps (a tuning hook: the engine plans the step again once it
+// has measured the gradient noise). SetStep panics on a step that is not
+// finite and positive; the driver checks first.
+type StepSetter interface {
+	Stepper
+	SetStep(h float64)
+}
+
+// CostMeter is implemented by kernels whose cost per step is random and
+// measured as they run; their EvaluationsPerStep is only a ceiling or an
+// estimate.
+type CostMeter interface {
+	// MeanEvaluationsPerStep returns the points evaluated per completed
+	// step over all chains, averaged over the steps so far.
+	MeanEvaluationsPerStep() float64
+}
+
+// Faulter is implemented by kernels that can find out, from the answers,
+// that an assumption declared when they were built does not hold (the
+// rejection kernel's envelope bound). Once Fault returns an error, the
+// draws are no longer exact and the driver must stop.
+type Faulter interface {
+	Fault() error
+}
+
+// Report holds what a kernel says of itself beyond its positions; the
+// zero value means "nothing to report" except where a field says so.
+type Report struct {
+	// Adapting is set while the kernel still tunes itself (MALA during
+	// burn-in).
+	Adapting bool
+	// AcceptanceRates holds one acceptance rate per chain (MALA).
+	AcceptanceRates []float64
+	// AcceptanceRate is the acceptance rate over all chains (rejection);
+	// NaN before anything was proposed.
+	AcceptanceRate float64
+	// Krylov describes the last step's Lanczos iterations (ozaki-krylov).
+	Krylov KrylovStats
+}
+
+// Reporter is implemented by kernels that have figures of their own to
+// report. Report fills the fields that apply and leaves the others alone.
+type Reporter interface {
+	Report(r *Report)
 }
 
 // Preparer is implemented by kernels that can do part of the coming Tell's
 // work while the answers are being computed elsewhere (LMC draws its noise).
 // A driver may call Prepare once between Next and Tell; the draws must be
-// the same whether or not it does, and a state marshalled after Prepare
-// must resume exactly as one marshalled before it.
+// the same whether or not it does, and a state checkpointed after Prepare
+// must resume exactly as one checkpointed before it.
 type Preparer interface {
 	Prepare()
 }

@@ -561,8 +561,11 @@ func TestOzakiStateRoundTrip(t *testing.T) {
 	eval := ozakiEval(q, 3)
 	cases := []struct {
 		name     string
-		k, blank Kernel
-		tells    int
+		k, blank interface {
+			Kernel
+			Checkpointer
+		}
+		tells int
 	}{
 		{"dense", NewOzaki(3, 3, 0.3, []float64{1, -1, 0.5}, NewSource(5)), &Ozaki{}, 10},
 		{"krylov", NewOzakiKrylov(3, 3, 0.3, []float64{1, -1, 0.5}, 1e-6, 2, NewSource(5)), &OzakiKrylov{}, 7},

@@ -368,7 +368,10 @@ func TestSGLDEvaluationsPerStep(t *testing.T) {
 // sgldSameRun continues k and r, each with its own oracle from mk, for
 // steps steps and fails unless every recorded position is bit-identical
 // and the final states marshal to the same bytes.
-func sgldSameRun(t *testing.T, k, r Kernel, mk func() sgldOracle, steps int) {
+func sgldSameRun(t *testing.T, k, r interface {
+	Kernel
+	Checkpointer
+}, mk func() sgldOracle, steps int) {
 	t.Helper()
 	a, _ := sgldRun(k, mk(), 0, k.Steps()+steps, 1)
 	b, _ := sgldRun(r, mk(), 0, r.Steps()+steps, 1)

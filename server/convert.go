@@ -1,6 +1,7 @@
 package server
 
 import (
+	"sluice/internal/wire"
 	"sluice/kernels"
 	sluicev1 "sluice/proto/sluice/v1"
 	"sluice/server/session"
@@ -136,7 +137,7 @@ type encoder struct {
 func paramCap(limit int64) int { return int(max(1, limit/2/128)) }
 
 func (e *encoder) floats(v []float64) []byte {
-	e.buf = putFloats(e.buf[:0], v)
+	e.buf = wire.AppendFloats(e.buf[:0], v)
 	return e.buf
 }
 
@@ -170,7 +171,7 @@ func (e *encoder) frame(f session.Frame) *sluicev1.SessionResponse {
 			Points: e.floats(f.Points), Chains: e.ints(f.Chains), TotalRows: int32(f.TotalRows)}
 		if f.Need.Has(kernels.NeedHessianVector) {
 			q = append(q, sluicev1.Quantity_QUANTITY_HESSIAN_VECTOR)
-			p.Vectors = putFloats(nil, f.Vectors)
+			p.Vectors = wire.AppendFloats(nil, f.Vectors)
 		}
 		if f.Groups != nil {
 			p.MinibatchGroups = make([]int32, len(f.Groups))

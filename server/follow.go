@@ -4,9 +4,8 @@ import (
 	"errors"
 
 	"google.golang.org/grpc"
-	"google.golang.org/grpc/codes"
-	"google.golang.org/grpc/status"
 
+	"sluice/internal/wire"
 	sluicev1 "sluice/proto/sluice/v1"
 	"sluice/server/session"
 )
@@ -19,25 +18,25 @@ func (s *Server) Follow(req *sluicev1.FollowRequest, stream grpc.ServerStreaming
 	f, ok := s.logs[req.GetSessionId()]
 	s.mu.Unlock()
 	if !ok {
-		return withField(codes.NotFound, "session_id", "no session %q is followable here (unknown, not kept, or the server keeps no draws for followers)", req.GetSessionId())
+		return problem(unknownSession, "session_id", "no session %q is followable here (unknown, not kept, or the server keeps no draws for followers)", req.GetSessionId())
 	}
 	from := req.GetFromSeq()
 	if _, next := f.log.Span(); from > next {
-		return withField(codes.OutOfRange, "from_seq", "%d is beyond the latest draw (next is %d)", from, next)
+		return problem(outsideLog, "from_seq", "%d is beyond the latest draw (next is %d)", from, next)
 	}
-	rows := max(1, int((f.limit-1024)/int64(8*f.dim+16)))
+	rows := max(1, wire.RowsPerMessage(f.limit, f.dim))
 	enc := encoder{maxParams: paramCap(f.limit)}
 	for {
 		d, err := f.log.Read(stream.Context(), from, rows)
 		switch {
 		case errors.Is(err, session.ErrDrawsDropped):
-			return withField(codes.OutOfRange, "from_seq", "%v", err)
+			return problem(outsideLog, "from_seq", "%v", err)
 		case errors.Is(err, session.ErrLogClosed):
 			fin, _ := f.log.Finished()
 			w := enc.frame(&fin).GetFinished()
 			return stream.Send(&sluicev1.FollowResponse{Frame: &sluicev1.FollowResponse_Finished{Finished: w}})
 		case err != nil:
-			return status.FromContextError(err).Err()
+			return toStatus(err)
 		}
 		w := enc.frame(&d).GetDraws()
 		if err := stream.Send(&sluicev1.FollowResponse{Frame: &sluicev1.FollowResponse_Draws{Draws: w}}); err != nil {

@@ -4,8 +4,6 @@ import (
 	"context"
 	"errors"
 
-	"google.golang.org/grpc/codes"
-
 	"sluice/kernels/bound"
 	sluicev1 "sluice/proto/sluice/v1"
 )
@@ -31,7 +29,7 @@ func (s *Server) Plan(_ context.Context, req *sluicev1.PlanRequest) (*sluicev1.P
 // so `sluice plan` and the rpc give the same answer.
 func MakePlan(req *sluicev1.PlanRequest) (*sluicev1.PlanResponse, error) {
 	if req.GetCurvature() == nil {
-		return nil, withField(codes.InvalidArgument, "curvature", "m and M are required")
+		return nil, problem(badInput, "curvature", "m and M are required")
 	}
 	spec := bound.Spec{
 		Setting: bound.Setting{
@@ -48,10 +46,10 @@ func MakePlan(req *sluicev1.PlanRequest) (*sluicev1.PlanResponse, error) {
 		if !ok {
 			f = ie.Input
 		}
-		return nil, withField(codes.InvalidArgument, f, "%s", ie.Error())
+		return nil, problem(badInput, f, "%s", ie.Error())
 	}
 	if err != nil {
-		return nil, withField(codes.InvalidArgument, "plan", "%v", err)
+		return nil, problem(badInput, "plan", "%v", err)
 	}
 	secs := -1.0
 	if spec.Rate > 0 {

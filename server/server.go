@@ -17,14 +17,12 @@ import (
 
 	"go.uber.org/zap"
 	"google.golang.org/grpc"
-	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/experimental"
 	"google.golang.org/grpc/health"
 	healthpb "google.golang.org/grpc/health/grpc_health_v1"
 	"google.golang.org/grpc/keepalive"
 	"google.golang.org/grpc/mem"
 	"google.golang.org/grpc/reflection"
-	"google.golang.org/grpc/status"
 	"google.golang.org/protobuf/proto"
 
 	sluicev1 "sluice/proto/sluice/v1"
@@ -230,11 +228,11 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 	case s.slots <- struct{}{}:
 		defer func() { <-s.slots }()
 	default:
-		return status.Errorf(codes.ResourceExhausted, "server busy: %d sessions running", cap(s.slots))
+		return problem(busy, "", "server busy: %d sessions running", cap(s.slots))
 	}
 	first, err := stream.Recv()
 	if errors.Is(err, io.EOF) {
-		return status.Error(codes.InvalidArgument, "register: stream closed before the first frame")
+		return problem(badInput, "register", "stream closed before the first frame")
 	}
 	if err != nil {
 		return toStatus(recvError("register", err))
@@ -259,7 +257,7 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 	in := make(chan session.Message, inboxSize)
 	limit := sess.MessageLimit()
 	if !s.track(id, in, sess) {
-		return status.Error(codes.Unavailable, "server shutting down")
+		return problem(draining, "", "server shutting down")
 	}
 	defer s.untrack(id)
 	go func() { // reader: owned by this handler
@@ -304,7 +302,7 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 	switch {
 	case err == nil:
 		log.Info("session finished", fields...)
-	case errors.Is(err, session.ErrClientGone) || status.Code(err) == codes.Canceled || errors.Is(err, context.Canceled):
+	case canceled(err):
 		log.Debug("client went away", append(fields, zap.Error(err))...)
 	default:
 		if _, bad := session.AsError(err); bad {
@@ -350,7 +348,7 @@ func (s *Server) untrack(id string) {
 
 func (s *Server) recovered(method string, r any) error {
 	s.log.Error("panic in handler", zap.String("method", method), zap.Any("panic", r), zap.ByteString("stack", debug.Stack()))
-	return status.Errorf(codes.Internal, "internal error in %s", method)
+	return problem(serverFault, "", "internal error in %s", method)
 }
 
 func (s *Server) recoverUnary(ctx context.Context, req any, info *grpc.UnaryServerInfo, h grpc.UnaryHandler) (resp any, err error) {

@@ -157,8 +157,9 @@ var testEnvelope = client.Envelope{Mean: []float64{1, -1}, Scale: 1.5, LogBound:
 // over gRPC (bufconn) are bit-identical to driving the same kernel
 // in-process with the same target, whole or split into small messages,
 // for every kernel; and every kernel's evaluations are counted exactly
-// (THEORY.md §13: one gradient per chain per step, two for the midpoint
-// kernels).
+// (the project's own cost accounting: one gradient per chain per step,
+// two for the midpoint kernels, plus the start and periodic costs the
+// kernel registry declares).
 func TestTransportIsTransparent(t *testing.T) {
 	conn, _ := start(t, server.Options{})
 	tg := gaussian2D(t)
@@ -192,14 +193,20 @@ func TestTransportIsTransparent(t *testing.T) {
 			}
 			k := build(2, chains, 0.2, []float64{0, 0}, 2024)
 			perStep := int64(k.EvaluationsPerStep())
-			wantRows := perStep * steps
-			switch name {
-			case "mala": // plus the start points, once (THEORY.md §13)
-				wantRows += chains
-			case "ozaki-krylov", "sgld-cv", "hit-and-run", "rejection": // random or searched costs
+			// The registry's accounting: per-step cost, plus a start cost
+			// and a periodic cost per chain (MALA's start points, svrg's
+			// full-data anchors); kernels with random or searched costs
+			// are checked against what the server reported.
+			cost, ok := session.CostOf(name)
+			if !ok {
+				t.Fatalf("no registry entry for %s", name)
+			}
+			wantRows := perStep*steps + int64(cost.SetupPerChain*chains)
+			if cost.Periodic != nil {
+				wantRows += int64(cost.Periodic(&session.Spec{AnchorEvery: 10}, steps) * chains)
+			}
+			if cost.Random {
 				wantRows = sum.Progress.EvaluationsUsed
-			case "svrg": // plus one full-data anchor per chain every 10 steps
-				wantRows += chains * steps / 10
 			}
 			if rows != wantRows || sum.Progress.EvaluationsUsed != rows {
 				t.Fatalf("%s: evaluated %d rows, reported %d, per step %d; want %d", name, rows, sum.Progress.EvaluationsUsed, perStep, wantRows)
@@ -230,8 +237,8 @@ func TestTransportIsTransparent(t *testing.T) {
 	}
 }
 
-// Gradient evaluations are counted exactly (chains × steps for LMC,
-// THEORY.md §13) and a budget is never overshot.
+// Gradient evaluations are counted exactly (chains × steps for LMC, by
+// the project's own cost accounting) and a budget is never overshot.
 func TestBudgetOverGRPC(t *testing.T) {
 	conn, _ := start(t, server.Options{})
 	var rows int64

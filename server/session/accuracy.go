@@ -39,15 +39,18 @@ type TargetStatus struct {
 	ProjectedEvaluations int64
 }
 
-// guarantee computes the running theoretical bound of an lmc session whose
-// client declared the curvature (package bound, THEORY.md §1.1, §2.1).
+// guarantee computes the running theoretical bound of a session whose kernel
+// the bounds cover (kernelEntry.guaranteed) and whose
+// client declared the curvature (package bound: Dalalyan (2017) in TV,
+// Dalalyan and Karagulyan (2019) in W2).
 type guarantee struct {
 	setting bound.Setting
 	metric  bound.Metric
 	h       float64
 	planned int // steps the plan asked for; 0 when the step was given
 	// penalty λ > 0 when the chains sample π_λ ∝ π·exp(−λ‖θ − centre‖²/2)
-	// (m = 0, THEORY.md §1.2); the engine adds it to every answer.
+	// (m = 0; derived here: TV(π, π_λ) ≤ λμ₂/2); the engine adds it to
+	// every answer.
 	penalty float64
 	centre  []float64
 	// replan is set when the step was planned and the gradient noise is
@@ -64,9 +67,9 @@ type guarantee struct {
 
 // newGuarantee returns nil when no bound applies: no curvature declared,
 // another kernel, m = 0, or a step outside the theorem's range.
-func newGuarantee(spec *Spec) (*guarantee, error) {
+func newGuarantee(spec *Spec, k *kernelEntry) (*guarantee, error) {
 	c := spec.Curvature
-	if c == nil || spec.Kernel != "lmc" || (c.StrongConvexity == 0 && spec.Wants.Eps == 0) {
+	if c == nil || !k.guaranteed || (c.StrongConvexity == 0 && spec.Wants.Eps == 0) {
 		return nil, nil
 	}
 	g := &guarantee{setting: bound.Setting{Convexity: c.StrongConvexity, Smoothness: c.Smoothness, Dim: spec.Dim,
@@ -190,7 +193,8 @@ func newMonitor(dim, chains int, names []string) *monitor {
 	// √(5·10⁷/dim), at least two rounds of chains.
 	k := int(math.Sqrt(5e7 / float64(dim)))
 	k = max(2*chains, min(k, 2048))
-	// The §9 figures sort every coordinate's kept draws: keep about 10⁶
+	// The rank-normalised figures of Vehtari et al. (2021) sort every
+	// coordinate's kept draws: keep about 10⁶
 	// values in all (about 0.3 s to summarise), between 16 and 4096 draws
 	// per chain.
 	h := max(16, min(4096, (1<<20)/(chains*dim)))
@@ -202,7 +206,8 @@ func newMonitor(dim, chains int, names []string) *monitor {
 
 // answered records the gradients of one completed request (before Tell).
 // Pairs of independently noisy gradients make meaningless curvature
-// ratios (THEORY.md §12: the noise inflates ‖y_g‖² by 2p·s²), so a
+// ratios (derived here: independent noise of variance s² per coordinate
+// on each gradient inflates E‖y_g‖² by 2p·s²), so a
 // stochastic session takes no certificates.
 func (m *monitor) answered(req *kernels.Request, a *kernels.Answer) {
 	if !req.Need.Has(kernels.NeedGradient) {
@@ -317,28 +322,23 @@ func nanTo(v, w float64) float64 {
 // kernelReport collects what a kernel says of itself.
 func kernelReport(k kernels.Kernel) KernelReport {
 	var r KernelReport
-	if s, ok := k.(interface{ Step() float64 }); ok {
+	if s, ok := k.(kernels.Stepper); ok {
 		r.Step = s.Step()
 	}
-	if m, ok := k.(*kernels.MALA); ok {
-		r.Adapting = m.Adapting()
-		r.AcceptanceRates = m.AcceptanceRates()
-	}
-	if o, ok := k.(*kernels.OzakiKrylov); ok {
-		r.Krylov = o.LastStep()
-	}
-	if m, ok := k.(interface{ MeanEvaluationsPerStep() float64 }); ok {
+	if m, ok := k.(kernels.CostMeter); ok {
 		r.EvaluationsPerStepMean = m.MeanEvaluationsPerStep()
 	}
-	if rj, ok := k.(*kernels.Rejection); ok {
-		r.AcceptanceRate = rj.AcceptanceRate()
+	if rep, ok := k.(kernels.Reporter); ok {
+		var kr kernels.Report
+		rep.Report(&kr)
+		r.Adapting, r.AcceptanceRates, r.Krylov, r.AcceptanceRate = kr.Adapting, kr.AcceptanceRates, kr.Krylov, kr.AcceptanceRate
 	}
 	return r
 }
 
 // penalise adds the penalty of π_λ to the answers of one request:
 // ∇log π_λ(θ) = ∇log π(θ) − λ(θ − centre) and log π_λ = log π −
-// λ‖θ − centre‖²/2 (THEORY.md §1.2).
+// λ‖θ − centre‖²/2 (derived here, from the definition of π_λ).
 func (g *guarantee) penalise(req *kernels.Request, a *kernels.Answer, dim int) {
 	if g == nil || g.penalty == 0 {
 		return

@@ -11,8 +11,9 @@ import (
 )
 
 // A target on bulk- and tail-ESS ends the session with reason "target met"
-// once the reported figures reach it (Vehtari et al. figures from
-// kernels/diag, THEORY.md §9), and R-hat is reported near 1 for chains on
+// once the reported figures reach it (the figures of Vehtari, Gelman,
+// Simpson, Carpenter and Bürkner (2021), from kernels/diag), and R-hat is
+// reported near 1 for chains on
 // the same Gaussian.
 func TestESSTargetMet(t *testing.T) {
 	spec := baseSpec()
@@ -55,8 +56,9 @@ func TestESSTargetMet(t *testing.T) {
 	}
 }
 
-// With declared m, M and wants.eps in W2, the step is planned by the §2.1
-// rule (kernels/bound), the session runs exactly the planned steps, and
+// With declared m, M and wants.eps in W2, the step is planned by the rule
+// of Dalalyan and Karagulyan (2019) for exact gradients and a constant
+// step (kernels/bound), the session runs exactly the planned steps, and
 // the reported bound is labelled guaranteed and within eps. On this
 // Gaussian the bound is checked against the exact W2 in kernels/bound.
 func TestPlannedStepAndGuaranteedBound(t *testing.T) {
@@ -93,11 +95,15 @@ func TestPlannedStepAndGuaranteedBound(t *testing.T) {
 }
 
 // Curvature certificates from LMC's consecutive gradient pairs bracket the
-// truth one-sidedly (THEORY.md §12): M ≥ what is reported as its lower
+// truth one-sidedly (standard convex analysis: a gradient pair's secant
+// ratios lie in [m, M], derived here): M ≥ what is reported as its lower
 // bound, m ≤ its reported upper bound. The Stein discrepancy is reported,
-// and is larger for the larger step (THEORY.md §8): along the stiff
+// and is larger for the larger step (the Stein discrepancy of Liu, Lee and
+// Jordan (2016) and Gorham and Mackey (2017)): along the stiff
 // direction (λ = 4) LMC's stationary variance is 1/(1 − hλ/2) times the
-// target's (THEORY.md §11a), 5× at h = 0.4 against 1.1× at h = 0.05, so a
+// target's (derived here: the AR(1) recursion θ' = (1 − hλ)θ + √(2h)ξ has
+// stationary variance 2h/(1 − (1 − hλ)²)), 5× at h = 0.4 against 1.1× at
+// h = 0.05, so a
 // factor of two in the discrepancy is a loose requirement.
 func TestCurvatureCertificatesAndKSD(t *testing.T) {
 	ksd := map[float64]float64{}
@@ -221,7 +227,8 @@ func TestEstimatedBoundIsLabelled(t *testing.T) {
 
 // A convex target that is not strongly convex (m = 0) with a TV target
 // and a second-moment bound is sampled through the penalised target π_λ
-// of THEORY.md §1.2: λ and the step come from kernels/bound's composed
+// (derived here: TV(π, π_λ) ≤ λμ₂/2, the extension of Dalalyan (2017) to
+// m = 0): λ and the step come from kernels/bound's composed
 // rule, every gradient gets −λ(θ − centre), and the bias λμ₂/2 is the
 // bound's own term. The draws equal an in-process LMC on the penalised
 // gradient, bit for bit.
@@ -270,7 +277,8 @@ func TestPenalisedTargetForConvexPotential(t *testing.T) {
 
 // svrg's anchors are full-data requests, each point costing N/n
 // evaluations when N and n are declared; its sampling rows come in pairs
-// on one minibatch group per chain (THEORY.md §7.3, §13).
+// on one minibatch group per chain (SVRG-LD of Dubey, Reddi, Póczos,
+// Smola, Xing and Williamson (2016); the project's own cost accounting).
 func TestFullDataCostAndMinibatchGroups(t *testing.T) {
 	spec := baseSpec()
 	spec.Kernel, spec.Chains, spec.AnchorEvery, spec.DrawsPerChain = "svrg", 3, 5, 10
@@ -307,8 +315,9 @@ func TestFullDataCostAndMinibatchGroups(t *testing.T) {
 }
 
 // A schedule reaches the sgld kernel: after t steps the step in use is
-// ε_t/2 with ε_t = a(b + t)^(−γ) (THEORY.md §7.1 vector: a = 0.01,
-// b = 10, γ = 0.55 gives ε_100 = 7.537616249866717e-04).
+// ε_t/2 with ε_t = a(b + t)^(−γ) (the schedule of Welling and Teh (2011);
+// closed form: a = 0.01, b = 10, γ = 0.55 gives ε_100 = 0.01·110^(−0.55)
+// = 7.537616249866717e-04).
 func TestScheduleReachesSGLD(t *testing.T) {
 	spec := baseSpec()
 	spec.Kernel, spec.Step, spec.DrawsPerChain = "sgld", 0, 100
@@ -328,7 +337,8 @@ func TestScheduleReachesSGLD(t *testing.T) {
 
 // With declared m, M, wants.eps and stochastic gradients of undeclared
 // variance, the engine plans the step, measures the noise during burn-in
-// and plans again with it (the bias-aware step, THEORY.md §2.2): the step
+// and plans again with it (the step of Dalalyan and Karagulyan (2019) for
+// inaccurate gradients): the step
 // shrinks to what kernels/bound's rule gives for the measured noise, and
 // the bound carries a noise term and says the noise was measured.
 func TestStepReplannedWithMeasuredNoise(t *testing.T) {
@@ -375,7 +385,8 @@ func TestStepReplannedWithMeasuredNoise(t *testing.T) {
 	}
 }
 
-// The opt-in probe reproduces THEORY.md §12's power iteration (H =
+// The opt-in probe reproduces a worked power iteration (derived here,
+// forward-difference Hessian-vector products; H =
 // diag(1, …, 10), θ = 0, v₀ = (1, …, 1)/√10, ε = 1e-4: 9.9977816035 after
 // 30 iterations), estimates m = 1 from the shifted operator, counts its
 // evaluations in the budget, and then sampling proceeds unchanged.
@@ -410,7 +421,8 @@ func TestCurvatureProbe(t *testing.T) {
 	}
 }
 
-// A step far beyond LMC's stability limit (h > 2/λ, THEORY.md §11a) makes
+// A step far beyond LMC's stability limit (h > 2/λ: on a Gaussian the
+// recursion's factor 1 − hλ leaves [−1, 1], derived here) makes
 // the chains diverge; the session fails naming the step and the chain,
 // not the client's (then non-finite) gradients.
 func TestDivergenceNamesTheStep(t *testing.T) {

@@ -1,5 +1,7 @@
 // Package session owns one sampling session, independent of any transport:
-// it validates what the client sent, builds the kernel, asks for every
+// it validates what the client sent, builds the kernel from its entry in
+// the kernel registry (registry.go, the only place kernels are named),
+// runs the phases that come before sampling (phase.go), asks for every
 // chain's points in one request per step (split into parts when a message
 // would be too large), validates each answer, counts evaluations exactly,
 // enforces the budget (evaluations and wall time), keeps draws after

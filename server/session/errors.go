@@ -15,7 +15,8 @@ const (
 	TooLarge
 	// Timeout: the client did not answer in time.
 	Timeout
-	// Internal: a fault of the server.
+	// Internal: a fault of the server itself, never of what the client
+	// sent.
 	Internal
 )
 
@@ -54,6 +55,8 @@ func (e *Error) Error() string {
 		loc = fmt.Sprintf(" (chain %d, coordinate %d)", e.Chain, e.Coord)
 	case e.Chain >= 0:
 		loc = fmt.Sprintf(" (chain %d)", e.Chain)
+	case e.Coord >= 0:
+		loc = fmt.Sprintf(" (coordinate %d)", e.Coord)
 	}
 	return fmt.Sprintf("%s%s: %s", e.Field, loc, e.Reason)
 }

@@ -111,13 +111,14 @@ func (s *Session) updateNoise(e NoiseEstimate) {
 	}
 	g.setting.Noise = sd
 	k := s.kernel.Steps()
-	if lmc, ok := s.kernel.(*kernels.LMC); ok && g.replan && e.Requests >= 10 && int64(k) < s.spec.BurnIn {
+	if st, ok := s.kernel.(kernels.StepSetter); ok && g.replan && e.Requests >= 10 && int64(k) < s.spec.BurnIn {
 		// Plan the step again with the measured noise, once, in burn-in:
-		// the bias-aware step of THEORY.md §2.2.
+		// the step of Dalalyan and Karagulyan (2019) for inaccurate
+		// gradients.
 		g.replan = false
 		p, err := bound.NewPlan(bound.Spec{Setting: g.setting, Metric: g.metric, Eps: g.eps, Chains: g.chains})
 		if err == nil && p.Step < g.h {
-			lmc.SetStep(p.Step)
+			st.SetStep(p.Step)
 			g.h, g.k0, g.planned = p.Step, k, k+p.Iterations
 		}
 	}

@@ -8,8 +8,10 @@ import (
 	"fmt"
 	"io"
 	"math"
+	"slices"
 	"time"
 
+	"sluice/internal/wire"
 	"sluice/kernels"
 	"sluice/kernels/bound"
 )
@@ -19,7 +21,10 @@ type Session struct {
 	id     string
 	spec   Spec
 	lim    Limits
+	entry  *kernelEntry // the kernel's registry entry
 	kernel kernels.Kernel
+	phases []Phase // run in order before sampling
+	phase  int     // index of the running phase; len(phases) once sampling
 
 	msgBytes    int64 // negotiated message limit
 	rowsPerPart int   // rows per Points frame of the current request
@@ -41,7 +46,6 @@ type Session struct {
 
 	guarantee  *guarantee // nil when no bound applies
 	mon        *monitor
-	probe      *probing // the opt-in curvature probe, nil when not asked
 	noise      noiseMeter
 	epsSteps   int      // steps at which the bound meets Wants.Eps; −1 if never or not asked
 	log        *DrawLog // nil when followers are not served
@@ -59,99 +63,89 @@ type Result struct {
 	Kernel kernels.Kernel
 }
 
-// New validates spec against the server's limits and builds the session.
-// Errors are *Error values naming the offending field.
+// New validates spec against the server's limits and builds the session:
+// validation, seeding, planning, construction, sizing. Errors are *Error
+// values naming the offending field.
 func New(id string, spec Spec, lim Limits) (*Session, error) {
 	lim = lim.withDefaults()
-	if err := spec.validate(lim); err != nil {
-		return nil, err
-	}
-	if spec.Seed == 0 {
-		var b [8]byte
-		_, _ = rand.Read(b[:])
-		spec.Seed = binary.LittleEndian.Uint64(b[:]) | 1
-	}
-	g, err := newGuarantee(&spec)
+	entry, err := spec.validate(lim)
 	if err != nil {
 		return nil, err
 	}
-	s := &Session{id: id, spec: spec, lim: lim, guarantee: g, epsSteps: -1}
+	spec.seed()
+	g, err := newGuarantee(&spec, entry)
+	if err != nil {
+		return nil, err
+	}
+	s := &Session{id: id, spec: spec, lim: lim, entry: entry, guarantee: g, epsSteps: -1,
+		msgBytes: negotiate(lim.MaxMessageBytes, spec.MaxMessageBytes)}
 	if g != nil && spec.Wants.Eps > 0 {
 		s.epsSteps = g.stepsTo(spec.Wants.Eps, 0)
 	}
-	s.msgBytes = lim.MaxMessageBytes
-	if c := spec.MaxMessageBytes; c == 0 && s.msgBytes > defaultMessageBytes {
-		s.msgBytes = defaultMessageBytes
-	} else if c > 0 && c < s.msgBytes {
-		s.msgBytes = c
+	s.kernel = entry.build(&s.spec, kernels.NewSource(s.spec.Seed))
+	if err := s.size(); err != nil {
+		return nil, err
 	}
-	src := kernels.NewSource(spec.Seed)
-	u := spec.InverseMass
-	if u == 0 && spec.Curvature != nil {
-		u = 1 / spec.Curvature.Smoothness
+	s.alloc()
+	return s, nil
+}
+
+// seed draws a seed when the client left it to the server.
+func (s *Spec) seed() {
+	if s.Seed == 0 {
+		var b [8]byte
+		_, _ = rand.Read(b[:])
+		s.Seed = binary.LittleEndian.Uint64(b[:]) | 1
 	}
-	switch spec.Kernel {
-	case "lmc":
-		s.kernel = kernels.NewLMC(spec.Dim, spec.Chains, spec.Step, spec.Start, src)
-	case "kinetic":
-		s.kernel = kernels.NewKinetic(spec.Dim, spec.Chains, spec.Step, spec.Friction, u, spec.Start, nil, src)
-	case "midpoint":
-		s.kernel = kernels.NewMidpoint(spec.Dim, spec.Chains, spec.Step, u, spec.Start, nil, src)
-	case "midpoint-overdamped":
-		s.kernel = kernels.NewOverdampedMidpoint(spec.Dim, spec.Chains, spec.Step, spec.Start, src)
-	case "mala":
-		// Adaptation ends with burn-in, so no kept draw comes from it.
-		s.kernel = kernels.NewMALA(spec.Dim, spec.Chains, spec.Step, int(min(spec.BurnIn, math.MaxInt32)), spec.Start, src)
-	case "ozaki":
-		s.kernel = kernels.NewOzaki(spec.Dim, spec.Chains, spec.Step, spec.Start, src)
-	case "ozaki-krylov":
-		tol, iters := spec.KrylovTolerance, spec.KrylovMaxIterations
-		if tol == 0 {
-			tol = 1e-8
-		}
-		if iters == 0 {
-			iters = min(spec.Dim, 64)
-		}
-		s.kernel = kernels.NewOzakiKrylov(spec.Dim, spec.Chains, spec.Step, spec.Start, tol, iters, src)
-	case "hit-and-run":
-		s.kernel = kernels.NewHitAndRun(spec.Dim, spec.Chains, spec.Start,
-			kernels.HitAndRunOptions{Width: spec.SliceWidth, MaxExpansions: spec.SliceMaxExpansions}, src)
-	case "rejection":
-		e := spec.Envelope
-		s.kernel = kernels.NewRejection(spec.Dim, spec.Chains, e.Mean, e.Scale, e.LogBound, src)
-	case "sgld":
-		var sched kernels.SGLDSchedule
-		if spec.Schedule != nil {
-			sched = *spec.Schedule
-		}
-		s.kernel = kernels.NewSGLD(spec.Dim, spec.Chains, spec.Step, sched, spec.Start, src)
-	case "sgld-cv":
-		s.kernel = kernels.NewSGLDCV(spec.Dim, spec.Chains, spec.Step,
-			kernels.SGLDCVOptions{Tol: spec.FixedPointTolerance, MaxIter: spec.FixedPointIterations}, spec.Start, src)
-	case "svrg":
-		every := spec.AnchorEvery
-		if every == 0 {
-			every = 10
-		}
-		s.kernel = kernels.NewSVRG(spec.Dim, spec.Chains, spec.Step, every, spec.Start, src)
-	default:
-		return nil, BadField("register.kernel", "unknown kernel %q", spec.Kernel)
+}
+
+// negotiate returns the message limit of a session: the smaller of the
+// server's and the client's, where a client that names none gets the
+// default.
+func negotiate(server, client int64) int64 {
+	switch {
+	case client == 0 && server > defaultMessageBytes:
+		return defaultMessageBytes
+	case client > 0 && client < server:
+		return client
 	}
-	if s.partRows(s.kernel.Next().Need) < 1 {
-		return nil, &Error{Kind: TooLarge, Field: "register.dim", Chain: -1, Coord: -1,
-			Reason: fmt.Sprintf("one point of dimension %d with its answer (%d bytes for kernel %s) does not fit the message limit of %d bytes",
-				spec.Dim, rowBytes(s.kernel.Next().Need, spec.Dim, s.replicates(s.kernel.Next().Need)), spec.Kernel, s.msgBytes)}
+	return server
+}
+
+// shapes lists every kind of request the session may send: its phases'
+// and its kernel's.
+func (s *Session) shapes() []requestShape {
+	if s.spec.CurvatureProbe > 0 {
+		return append(slices.Clip(probeShapes), s.entry.requests...)
 	}
-	if lim.FollowBuffer > 0 {
-		s.log = NewDrawLog(spec.Dim, min(lim.FollowBuffer, max(1, maxFollowBytes/(8*spec.Dim))))
+	return s.entry.requests
+}
+
+// size checks that one row of every kind of request the session may send
+// fits a message with its answer.
+func (s *Session) size() error {
+	for _, r := range s.shapes() {
+		if s.partRows(r.need) < 1 {
+			return &Error{Kind: TooLarge, Field: "register.dim", Chain: -1, Coord: -1,
+				Reason: fmt.Sprintf("one point of dimension %d with its answer (%d bytes for kernel %s) does not fit the message limit of %d bytes",
+					s.spec.Dim, s.rowBytes(r.need), s.spec.Kernel, s.msgBytes)}
+		}
+	}
+	return nil
+}
+
+// alloc makes the session's buffers.
+func (s *Session) alloc() {
+	spec := s.spec
+	if s.lim.FollowBuffer > 0 {
+		s.log = NewDrawLog(spec.Dim, min(s.lim.FollowBuffer, max(1, maxFollowBytes/(8*spec.Dim))))
 	}
 	s.mon = newMonitor(spec.Dim, spec.Chains, spec.Names)
 	s.mon.stochastic = spec.Noise.Stochastic
-	s.mon.share = lim.DiagnosticsShare
+	s.mon.share = s.lim.DiagnosticsShare
 	s.answer = kernels.NewAnswer(spec.Chains, spec.Dim)
 	s.mean = make([]float64, spec.Dim)
 	s.m2 = make([]float64, spec.Dim)
-	return s, nil
 }
 
 // MessageLimit is the negotiated message size limit in bytes: the
@@ -180,138 +174,269 @@ func (s *Session) Spec() Spec { return s.spec }
 // first), ErrClientGone when the stream ended early, or the error of a
 // failed send.
 func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) error) (Result, error) {
-	s.start = time.Now()
-	s.lastProgress = s.start
-	maxTime := s.spec.MaxTime
-	if s.lim.MaxTime > 0 && (maxTime == 0 || s.lim.MaxTime < maxTime) {
-		maxTime = s.lim.MaxTime
-	}
-	var deadline <-chan time.Time
-	if maxTime > 0 {
-		t := time.NewTimer(maxTime)
-		defer t.Stop()
-		deadline = t.C
-	}
-	if err := send(&Registered{SessionID: s.id, Seed: s.spec.Seed, Kernel: s.spec.Kernel, Step: s.spec.Step,
+	r := s.begin(ctx, in, send)
+	defer r.stop()
+	return s.end(r, s.loop(r))
+}
+
+// loop is the session's life: registration, then requests until one of
+// the parts decides the session ends.
+func (s *Session) loop(r *run) outcome {
+	if err := r.send(&Registered{SessionID: s.id, Seed: s.spec.Seed, Kernel: s.spec.Kernel, Step: s.spec.Step,
 		EvaluationsPerStep: s.kernel.EvaluationsPerStep(), MaxMessageBytes: s.msgBytes, Names: s.spec.Names,
 		PlannedSteps: s.plannedSteps()}); err != nil {
-		return s.result(Failed, err.Error()), err
-	}
-	answerTimer := time.NewTimer(s.lim.AnswerTimeout)
-	defer answerTimer.Stop()
-	if s.spec.CurvatureProbe > 0 {
-		s.probe = newProbing(s.kernel, s.spec.CurvatureProbe)
-		s.kernel = s.probe
-	}
-	// pending is set when a completed step's draws and progress are still
-	// to be sent: they go out right after the next Points frame, so their
-	// transfer overlaps the client's evaluation instead of delaying it.
-	pending := false
-	flush := func() error {
-		if !pending {
-			return nil
-		}
-		pending = false
-		return s.afterStep(send)
-	}
-	end := func(r Reason, msg string) (Result, error) {
-		if err := flush(); err != nil {
-			return s.result(Failed, err.Error()), err
-		}
-		return s.finish(r, msg, send)
+		return broken(err)
 	}
 	for {
-		if maxTime > 0 && time.Since(s.start) >= maxTime {
-			return end(TimeSpent, "")
+		if o, stop := s.shouldStop(r); stop {
+			return o
 		}
-		if d := s.spec.DrawsPerChain; d > 0 && s.kept >= d {
-			return end(DrawsCollected, "")
+		req := s.next()
+		if o, stop := s.overBudget(req); stop {
+			return o
 		}
-		if s.targetsMet() {
-			return end(TargetMet, "")
-		}
-		req := s.kernel.Next()
-		if m := s.spec.MaxEvaluations; m > 0 && s.used+s.cost(req.Need, req.Rows) > m {
-			return end(BudgetSpent, fmt.Sprintf("the next request needs %d evaluations, %d left", s.cost(req.Need, req.Rows), m-s.used))
-		}
-		s.requestID++
-		if err := s.sendPoints(req, send); err != nil {
-			return s.result(Failed, err.Error()), err
-		}
-		if err := flush(); err != nil {
-			return s.result(Failed, err.Error()), err
-		}
-		if prep, ok := s.kernel.(kernels.Preparer); ok {
-			prep.Prepare()
-		}
-		answerTimer.Reset(s.lim.AnswerTimeout)
-		for left := s.parts(req.Rows); left > 0; {
-			var msg Message
-			select {
-			case <-ctx.Done():
-				return s.result(Failed, ErrClientGone.Error()), ErrClientGone
-			case <-deadline:
-				return s.finish(TimeSpent, "", send)
-			case <-answerTimer.C:
-				return s.fail(&Error{Kind: Timeout, Field: "evaluations", Chain: -1, Coord: -1,
-					Reason: fmt.Sprintf("no answer to request %d within %v", s.requestID, s.lim.AnswerTimeout)}, send)
-			case msg = <-in:
+		if err := s.request(r, req); err != nil {
+			if e, ok := err.(*Error); ok {
+				return failed(e) // refused before anything was sent
 			}
-			switch {
-			case msg.Err != nil:
-				if e, ok := AsError(msg.Err); ok {
-					return s.fail(e, send)
-				}
-				if errors.Is(msg.Err, io.EOF) {
-					return s.result(Failed, "client closed the stream"), ErrClientGone
-				}
-				return s.result(Failed, msg.Err.Error()), fmt.Errorf("%w: %v", ErrClientGone, msg.Err)
-			case msg.Stop && msg.Shutdown:
-				return s.finish(Shutdown, msg.StopReason, send)
-			case msg.Stop:
-				return s.finish(Stopped, msg.StopReason, send)
-			case msg.Evaluations == nil:
-				return s.fail(BadField("frame", "expected evaluations or stop"), send)
-			}
-			if err := s.accept(req, msg.Evaluations); err != nil {
-				return s.fail(err, send)
-			}
-			left--
+			return broken(err)
 		}
-		s.used += s.cost(req.Need, req.Rows)
-		s.noise.request(req, s.spec.Noise)
-		s.guarantee.penalise(req, s.answer, s.spec.Dim)
-		s.mon.answered(req, s.answer)
-		if s.probe != nil && s.kernel == kernels.Kernel(s.probe) {
-			s.probe.Tell(s.answer)
-			if s.probe.done {
-				s.kernel = s.probe.inner
-			}
-			continue
+		if o, stop := s.await(r, req); stop {
+			return o
 		}
-		done := s.kernel.Tell(s.answer)
-		if done {
-			if err := s.diverged(); err != nil {
-				return s.fail(err, send)
-			}
-		}
-		if r, ok := s.kernel.(*kernels.Rejection); ok && r.Violation() != nil {
-			return s.fail(BadField("register.envelope.log_bound", "the declared envelope bound is violated: %v", r.Violation()), send)
-		}
-		if done {
-			pending = true
-			if s.keeps(int64(s.kernel.Steps())) {
-				s.kept++
-				s.mon.kept(s.kernel)
-			}
+		if err := s.complete(r, req); err != nil {
+			return failed(err)
 		}
 	}
 }
 
+// run is the state of one call to Run.
+type run struct {
+	ctx     context.Context
+	in      <-chan Message
+	send    func(Frame) error
+	maxTime time.Duration
+	// deadline fires at maxTime (nil when there is none).
+	deadline    <-chan time.Time
+	timer       *time.Timer // the session's wall-time limit, nil when none
+	answerTimer *time.Timer
+	// pending is set when a completed step's draws and progress are still
+	// to be sent: they go out right after the next Points frame, so their
+	// transfer overlaps the client's evaluation instead of delaying it.
+	pending bool
+}
+
+// outcome is how a session ends.
+type outcome struct {
+	reason Reason
+	msg    string
+	// err is nil for an ending the protocol foresees; otherwise what Run
+	// returns.
+	err error
+	// quiet is set when the stream is gone or broken: nothing more is
+	// sent.
+	quiet bool
+}
+
+// failed is the outcome of a client's bad data or silence: a Finished
+// frame with reason Failed is attempted, and e returned.
+func failed(e *Error) outcome { return outcome{reason: Failed, msg: e.Error(), err: e} }
+
+// broken is the outcome of a failed send: nothing more is sent.
+func broken(err error) outcome {
+	return outcome{reason: Failed, msg: err.Error(), err: err, quiet: true}
+}
+
+func (s *Session) begin(ctx context.Context, in <-chan Message, send func(Frame) error) *run {
+	s.start = time.Now()
+	s.lastProgress = s.start
+	r := &run{ctx: ctx, in: in, send: send, maxTime: s.maxTime(), answerTimer: time.NewTimer(s.lim.AnswerTimeout)}
+	if r.maxTime > 0 {
+		r.timer = time.NewTimer(r.maxTime)
+		r.deadline = r.timer.C
+	}
+	s.phases = s.phases[:0]
+	if s.spec.CurvatureProbe > 0 {
+		s.phases = append(s.phases, newCurvatureProbe(s.kernel.Positions(), s.spec.Dim, s.spec.CurvatureProbe))
+	}
+	s.phase = 0
+	return r
+}
+
+func (r *run) stop() {
+	r.answerTimer.Stop()
+	if r.timer != nil {
+		r.timer.Stop()
+	}
+}
+
+// end is Run's one exit: it sends what is pending and the Finished frame
+// (unless the stream is gone) and reports.
+func (s *Session) end(r *run, o outcome) (Result, error) {
+	if !o.quiet {
+		if err := s.flush(r); err != nil {
+			o = broken(err)
+		}
+	}
+	res := s.result(o.reason, o.msg)
+	if o.quiet {
+		return res, o.err
+	}
+	if err := r.send(&res.Finished); err != nil && o.err == nil {
+		return res, err // a failed session reports its own error, not the send's
+	}
+	return res, o.err
+}
+
+// flush sends the draws and progress of the last completed step, if they
+// are still pending.
+func (s *Session) flush(r *run) error {
+	if !r.pending {
+		return nil
+	}
+	r.pending = false
+	return s.afterStep(r.send)
+}
+
+// maxTime is the session's wall-time limit: the smaller of the client's
+// and the server's; 0 when neither set one.
+func (s *Session) maxTime() time.Duration {
+	t := s.spec.MaxTime
+	if s.lim.MaxTime > 0 && (t == 0 || s.lim.MaxTime < t) {
+		t = s.lim.MaxTime
+	}
+	return t
+}
+
+// shouldStop decides, between requests, whether the session is over.
+func (s *Session) shouldStop(r *run) (outcome, bool) {
+	switch {
+	case r.maxTime > 0 && time.Since(s.start) >= r.maxTime:
+		return outcome{reason: TimeSpent}, true
+	case s.spec.DrawsPerChain > 0 && s.kept >= s.spec.DrawsPerChain:
+		return outcome{reason: DrawsCollected}, true
+	case s.targetsMet():
+		return outcome{reason: TargetMet}, true
+	}
+	return outcome{}, false
+}
+
+// overBudget decides whether req would overshoot the evaluation budget.
+func (s *Session) overBudget(req *kernels.Request) (outcome, bool) {
+	m, c := s.spec.MaxEvaluations, s.cost(req.Need, req.Rows)
+	if m > 0 && s.used+c > m {
+		return outcome{reason: BudgetSpent, msg: fmt.Sprintf("the next request needs %d evaluations, %d left", c, m-s.used)}, true
+	}
+	return outcome{}, false
+}
+
+// next is the request of the running phase, or of the kernel once every
+// phase is complete.
+func (s *Session) next() *kernels.Request {
+	if s.phase < len(s.phases) {
+		return s.phases[s.phase].Next()
+	}
+	return s.kernel.Next()
+}
+
+// request sends req, then what the last step left pending, and lets the
+// kernel work while the client evaluates.
+func (s *Session) request(r *run, req *kernels.Request) error {
+	s.requestID++
+	if err := s.sendPoints(req, r.send); err != nil {
+		return err
+	}
+	if err := s.flush(r); err != nil {
+		return err
+	}
+	if prep, ok := s.kernel.(kernels.Preparer); ok && s.phase == len(s.phases) {
+		prep.Prepare()
+	}
+	r.answerTimer.Reset(s.lim.AnswerTimeout)
+	return nil
+}
+
+// await collects every part of the answer to req; it reports an outcome
+// when the session ends while waiting.
+func (s *Session) await(r *run, req *kernels.Request) (outcome, bool) {
+	for left := s.parts(req.Rows); left > 0; left-- {
+		var msg Message
+		select {
+		case <-r.ctx.Done():
+			return outcome{reason: Failed, msg: ErrClientGone.Error(), err: ErrClientGone, quiet: true}, true
+		case <-r.deadline:
+			return outcome{reason: TimeSpent}, true
+		case <-r.answerTimer.C:
+			return failed(&Error{Kind: Timeout, Field: "evaluations", Chain: -1, Coord: -1,
+				Reason: fmt.Sprintf("no answer to request %d within %v", s.requestID, s.lim.AnswerTimeout)}), true
+		case msg = <-r.in:
+		}
+		switch {
+		case msg.Err != nil:
+			if e, ok := AsError(msg.Err); ok {
+				return failed(e), true
+			}
+			if errors.Is(msg.Err, io.EOF) {
+				return outcome{reason: Failed, msg: "client closed the stream", err: ErrClientGone, quiet: true}, true
+			}
+			return outcome{reason: Failed, msg: msg.Err.Error(), err: fmt.Errorf("%w: %v", ErrClientGone, msg.Err), quiet: true}, true
+		case msg.Stop && msg.Shutdown:
+			return outcome{reason: Shutdown, msg: msg.StopReason}, true
+		case msg.Stop:
+			return outcome{reason: Stopped, msg: msg.StopReason}, true
+		case msg.Evaluations == nil:
+			return failed(BadField("frame", "expected evaluations or stop")), true
+		}
+		if err := s.accept(req, msg.Evaluations); err != nil {
+			return failed(err), true
+		}
+	}
+	return outcome{}, false
+}
+
+// complete accounts for the answered request and hands the answer to the
+// running phase or the kernel; a completed step's draws become pending.
+func (s *Session) complete(r *run, req *kernels.Request) *Error {
+	s.used += s.cost(req.Need, req.Rows)
+	s.noise.request(req, s.spec.Noise)
+	s.guarantee.penalise(req, s.answer, s.spec.Dim)
+	s.mon.answered(req, s.answer)
+	if s.phase < len(s.phases) {
+		if s.phases[s.phase].Tell(s.answer) {
+			s.phase++
+		}
+		return nil
+	}
+	done := s.kernel.Tell(s.answer)
+	if done {
+		if err := s.diverged(); err != nil {
+			return err
+		}
+	}
+	if f, ok := s.kernel.(kernels.Faulter); ok {
+		if err := f.Fault(); err != nil {
+			field := s.entry.faultField
+			if field == "" {
+				field = "register.kernel"
+			}
+			return BadField(field, "a declared assumption does not hold: %v", err)
+		}
+	}
+	if done {
+		r.pending = true
+		if s.keeps(int64(s.kernel.Steps())) {
+			s.kept++
+			s.mon.kept(s.kernel)
+		}
+	}
+	return nil
+}
+
 // diverged reports a chain whose position stopped being finite: the step
-// is too large for the target (LMC is stable only below 2/M, THEORY.md
-// §11a), and going on would only send the client points it cannot
-// evaluate.
+// is too large for the target (on a Gaussian with largest precision
+// eigenvalue M, LMC's recursion multiplies by 1 − hM, so it is stable only
+// below h = 2/M; derived here), and going on would only send the client
+// points it cannot evaluate.
 func (s *Session) diverged() *Error {
 	x, d := s.kernel.Positions(), s.spec.Dim
 	for i, v := range x {
@@ -329,20 +454,31 @@ func (s *Session) keeps(step int64) bool {
 	return step > s.spec.BurnIn && (step-s.spec.BurnIn)%s.spec.KeepEvery == 0
 }
 
+// rowBytes bounds the bytes one row of a request needing need costs in
+// the larger of a Points frame and its answer.
+func (s *Session) rowBytes(need kernels.Need) int64 {
+	return rowBytes(need, s.spec.Dim, s.replicates(need))
+}
+
 // rowBytes bounds the bytes one row costs in the larger of a Points frame
-// and its answer: the values, plus a few bytes of varint chain index and
-// framing.
+// and its answer, with reps gradient replicates.
 func rowBytes(need kernels.Need, dim, reps int) int64 {
-	out := int64(8 * dim) // the point
-	back := int64(8 * (dim*reps + 1))
+	return wire.RowBytes(rowValues(need, dim, reps))
+}
+
+// rowValues is the float64 values one row carries in the larger of a
+// Points frame (the point, and its vector for Hessian-vector products)
+// and its answer (reps gradients, a log density, a Hessian, a product).
+func rowValues(need kernels.Need, dim, reps int) int {
+	out, back := dim, dim*reps+1
 	if need.Has(kernels.NeedHessian) {
-		back += int64(8 * dim * dim)
+		back += dim * dim
 	}
 	if need.Has(kernels.NeedHessianVector) {
-		out += int64(8 * dim)
-		back += int64(8 * dim)
+		out += dim
+		back += dim
 	}
-	return max(out, back) + 16
+	return max(out, back)
 }
 
 // replicates is the gradient replicates per row a request needing need
@@ -366,8 +502,7 @@ func (s *Session) cost(need kernels.Need, rows int) int64 {
 
 // partRows is how many rows fit one message for a request needing need.
 func (s *Session) partRows(need kernels.Need) int {
-	const overhead = 1024
-	return int((s.msgBytes - overhead) / rowBytes(need, s.spec.Dim, s.replicates(need)))
+	return wire.RowsPerMessage(s.msgBytes, rowValues(need, s.spec.Dim, s.replicates(need)))
 }
 
 // parts is the number of Points frames a request of rows rows takes.
@@ -376,7 +511,11 @@ func (s *Session) parts(rows int) int { return (rows + s.rowsPerPart - 1) / s.ro
 func (s *Session) sendPoints(req *kernels.Request, send func(Frame) error) error {
 	s.rowsPerPart = s.partRows(req.Need)
 	if s.rowsPerPart < 1 {
-		return &Error{Kind: Internal, Field: "points", Chain: -1, Coord: -1, Reason: "one row exceeds the message limit"}
+		// Registration sized every request the registry declares, so this
+		// is a request the registry left out; the client can still get
+		// past it with a larger limit.
+		return &Error{Kind: TooLarge, Field: "register.max_message_bytes", Chain: -1, Coord: -1,
+			Reason: fmt.Sprintf("one row of this request (%d bytes) does not fit the session's message limit of %d bytes", s.rowBytes(req.Need), s.msgBytes)}
 	}
 	n := s.parts(req.Rows)
 	if cap(s.answered) < n {
@@ -558,8 +697,7 @@ func (s *Session) sendDraws(step int64, send func(Frame) error) error {
 	for c := range chains {
 		s.drawIters[c] = step
 	}
-	// A draw row costs its values plus varint chain and iteration.
-	per := max(1, int((s.msgBytes-1024)/int64(8*dim+24)))
+	per := max(1, wire.RowsPerMessage(s.msgBytes, dim))
 	for lo := 0; lo < chains; lo += per {
 		hi := min(lo+per, chains)
 		s.draws = Draws{Seq: s.seq, Rows: hi - lo, Dim: dim, Values: x[lo*dim : hi*dim],
@@ -662,19 +800,21 @@ func (s *Session) burnInCost() int64 {
 	return min(s.used, s.spec.BurnIn*int64(s.kernel.EvaluationsPerStep()))
 }
 
-// estimatedBound is the W2 bound of an lmc session that declared no
+// estimatedBound is the W2 bound of a session whose kernel the bounds
+// cover (kernelEntry.guaranteed) that declared no
 // curvature, computed from the certificates as if they were m and M. The
 // certificates are one-sided the wrong way for a guarantee (m ≤ the upper
 // bound used, M ≥ the lower bound used), so the figure is optimistic:
 // it is labelled "estimated, not guaranteed" (bound.Estimated).
 func (s *Session) estimatedBound(c CurvatureEstimate) (bound.Bound, bool) {
-	if s.spec.Kernel != "lmc" || s.spec.Curvature != nil || (c.Pairs < int64(2*s.spec.Dim) && c.ProbedSmoothness == 0) || c.NotConvex {
+	if !s.entry.guaranteed || s.spec.Curvature != nil || (c.Pairs < int64(2*s.spec.Dim) && c.ProbedSmoothness == 0) || c.NotConvex {
 		return bound.Bound{}, false
 	}
 	m, bigM := c.StrongConvexityAtMost, c.SmoothnessAtLeast
 	if c.ProbedSmoothness > 0 {
-		// THEORY.md §12's recipe: a safety factor on the larger of the
-		// probe and the certificates for M; the smaller for m.
+		// A safety factor of 1.1 on the larger of the probe and the
+		// certificates for M, the smaller of the two for m (derived here:
+		// each is a one-sided estimate, so the safer one is taken).
 		bigM = 1.1 * math.Max(bigM, c.ProbedSmoothness)
 		if c.ProbedConvexity > 0 {
 			m = math.Min(m, c.ProbedConvexity)
@@ -743,20 +883,15 @@ func (s *Session) progress(now time.Time, final bool) Progress {
 	if m := s.spec.MaxEvaluations; m > 0 {
 		p.EvaluationsLeft = m - s.used
 	}
-	maxTime := s.spec.MaxTime
-	if s.lim.MaxTime > 0 && (maxTime == 0 || s.lim.MaxTime < maxTime) {
-		maxTime = s.lim.MaxTime
-	}
-	if maxTime > 0 {
+	if maxTime := s.maxTime(); maxTime > 0 {
 		p.TimeLeft = max(0, maxTime-elapsed)
 	}
 	if sec := elapsed.Seconds(); sec > 0 {
 		p.EvaluationsPerSecond = float64(s.used) / sec
 	}
 	s.mon.measure(&p, final)
-	if s.probe != nil {
-		p.Curvature.ProbedSmoothness, p.Curvature.ProbedConvexity = s.probe.bigM, s.probe.m
-		p.Curvature.ProbeEvaluations = int64(s.probe.evaluations)
+	for _, ph := range s.phases {
+		ph.Report(&p)
 	}
 	p.Kernel = kernelReport(s.kernel)
 	if s.spec.Noise.Stochastic {
@@ -798,20 +933,4 @@ func (s *Session) result(r Reason, msg string) Result {
 		s.log.close(f)
 	}
 	return Result{Finished: f, Kernel: s.kernel}
-}
-
-func (s *Session) finish(r Reason, msg string, send func(Frame) error) (Result, error) {
-	res := s.result(r, msg)
-	if err := send(&res.Finished); err != nil {
-		return res, err
-	}
-	return res, nil
-}
-
-// fail sends a Finished frame with reason Failed (best effort: the stream
-// may be gone) and returns the error.
-func (s *Session) fail(e *Error, send func(Frame) error) (Result, error) {
-	res := s.result(Failed, e.Error())
-	_ = send(&res.Finished) // best effort; e is what the caller reports
-	return res, e
 }

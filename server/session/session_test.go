@@ -87,7 +87,8 @@ func mustNew(t *testing.T, spec Spec, lim Limits) *Session {
 	return s
 }
 
-// LMC evaluates one gradient per chain per step (THEORY.md §13), so a
+// LMC evaluates one gradient per chain per step (the project's own cost
+// accounting), so a
 // budget of E evaluations allows ⌊E/chains⌋ steps, and the session must
 // stop before a request would overshoot.
 func TestEvaluationsCountedExactlyAndBudgetNeverOvershoots(t *testing.T) {

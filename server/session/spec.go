@@ -13,7 +13,8 @@ import (
 // per field; New validates everything.
 type Spec struct {
 	Dim, Chains int
-	// Kernel names the method; "" means "lmc".
+	// Kernel names the method (see KernelNames); "" means the default,
+	// unadjusted Langevin.
 	Kernel string
 	// Start holds StartRows×Dim values; StartRows is 1 (shared by every
 	// chain) or Chains.
@@ -94,9 +95,6 @@ type Noise struct {
 	Replicates int
 }
 
-// exactOnly lists kernels whose correctness needs exact gradients.
-var exactOnly = map[string]bool{"mala": true, "ozaki": true, "ozaki-krylov": true, "hit-and-run": true, "rejection": true}
-
 // Curvature declares m·I ⪯ ∇²f ⪯ M·I for the potential f = −log π.
 type Curvature struct {
 	StrongConvexity, Smoothness float64
@@ -104,7 +102,8 @@ type Curvature struct {
 	// the mode).
 	StartDistance float64
 	// SecondMoment μ₂ ≥ E_π‖θ − centre‖², for m = 0 with a TV target:
-	// the engine then samples the penalised π_λ (THEORY.md §1.2).
+	// the engine then samples the penalised π_λ ∝ π·exp(−λ‖θ − centre‖²/2),
+	// whose TV distance to π is at most λμ₂/2 (derived here).
 	SecondMoment float64
 	// PenaltyCentre (Dim values) is the penalty's centre; nil means the
 	// mean of the start points.
@@ -184,14 +183,32 @@ func (l Limits) withDefaults() Limits {
 	return l
 }
 
-// Kernels lists the kernel names a Spec may ask for.
-var Kernels = []string{"lmc", "kinetic", "midpoint", "midpoint-overdamped", "mala", "ozaki", "ozaki-krylov", "sgld", "sgld-cv", "svrg",
-	"hit-and-run", "rejection"}
+// validate checks s against the server's limits and fills in defaults
+// (the kernel's tuning defaults included); it returns the registry entry
+// of the kernel s names.
+func (s *Spec) validate(l Limits) (*kernelEntry, error) {
+	if err := s.validateSize(l); err != nil {
+		return nil, err
+	}
+	if s.Kernel == "" {
+		s.Kernel = defaultKernel
+	}
+	k, known := lookupKernel(s.Kernel)
+	if !known {
+		return nil, BadField("register.kernel", "unknown kernel %q (known: %v)", s.Kernel, KernelNames())
+	}
+	if err := s.validateFields(k); err != nil {
+		return nil, err
+	}
+	if k.tune != nil {
+		k.tune(s)
+	}
+	return k, nil
+}
 
-// densityOnly lists kernels that need no step size and no gradients.
-var densityOnly = map[string]bool{"hit-and-run": true, "rejection": true}
-
-func (s *Spec) validate(l Limits) error {
+// validateSize checks the dimension and chains against the server's
+// limits.
+func (s *Spec) validateSize(l Limits) error {
 	bad := func(field, format string, args ...any) error { return BadField("register."+field, format, args...) }
 	switch {
 	case s.Dim < 1:
@@ -205,16 +222,12 @@ func (s *Spec) validate(l Limits) error {
 	case s.Dim*s.Chains > l.MaxValues:
 		return &Error{Kind: TooLarge, Field: "register.chains", Chain: -1, Coord: -1, Reason: fmt.Sprintf("chains × dim = %d exceeds the server's limit of %d values", s.Dim*s.Chains, l.MaxValues)}
 	}
-	if s.Kernel == "" {
-		s.Kernel = "lmc"
-	}
-	known := false
-	for _, k := range Kernels {
-		known = known || k == s.Kernel
-	}
-	if !known {
-		return bad("kernel", "unknown kernel %q (known: %v)", s.Kernel, Kernels)
-	}
+	return nil
+}
+
+// validateFields checks every other field, for kernel k.
+func (s *Spec) validateFields(k *kernelEntry) error {
+	bad := func(field, format string, args ...any) error { return BadField("register."+field, format, args...) }
 	if s.StartRows != 1 && s.StartRows != s.Chains {
 		return bad("start_rows", "must be 1 or chains (%d), got %d", s.Chains, s.StartRows)
 	}
@@ -244,7 +257,7 @@ func (s *Spec) validate(l Limits) error {
 	if s.KrylovMaxIterations < 0 {
 		return bad("krylov_max_iterations", "must be >= 0, got %d", s.KrylovMaxIterations)
 	}
-	if err := s.validateNoise(); err != nil {
+	if err := s.validateNoise(k); err != nil {
 		return err
 	}
 	if s.CurvatureProbe < 0 || s.CurvatureProbe > 10000 {
@@ -253,13 +266,13 @@ func (s *Spec) validate(l Limits) error {
 	if s.CurvatureProbe > 0 && s.Noise.Stochastic {
 		return bad("curvature_probe_iterations", "the probe's finite differences need exact gradients (or pairs on one minibatch, not offered yet)")
 	}
-	if err := s.validateAccuracy(); err != nil {
+	if err := s.validateAccuracy(k); err != nil {
 		return err
 	}
 	if sc := s.Schedule; sc != nil {
 		switch {
-		case s.Kernel != "sgld":
-			return bad("schedule", "only the sgld kernel takes a step schedule, not %q", s.Kernel)
+		case !k.schedule:
+			return bad("schedule", "kernel %q takes no step schedule", s.Kernel)
 		case !(sc.A > 0) || math.IsInf(sc.A, 0):
 			return bad("schedule.a", "must be finite and > 0, got %v", sc.A)
 		case !(sc.B > 0) || math.IsInf(sc.B, 0):
@@ -273,12 +286,12 @@ func (s *Spec) validate(l Limits) error {
 	if s.AnchorEvery < 0 || s.FixedPointIterations < 0 || math.IsNaN(s.FixedPointTolerance) || s.FixedPointTolerance < 0 || s.FixedPointTolerance >= 1 {
 		return bad("anchor_every", "anchor_every and fixed_point_iterations must be >= 0, fixed_point_tolerance in [0, 1)")
 	}
-	if err := s.validateDensityOnly(); err != nil {
+	if err := s.validateKernelFields(k); err != nil {
 		return err
 	}
-	if s.Schedule != nil || densityOnly[s.Kernel] {
+	if s.Schedule != nil || k.noStep {
 		// the schedule gives the step; density-only kernels have none
-	} else if s.Step == 0 && s.Wants.Eps > 0 && s.Kernel == "lmc" {
+	} else if s.Step == 0 && s.Wants.Eps > 0 && k.guaranteed {
 		// planned below, in New
 	} else if !(s.Step > 0) || math.IsInf(s.Step, 0) {
 		return bad("step", "must be a finite number > 0 (or 0 with curvature and wants.eps, to plan it), got %v", s.Step)
@@ -323,39 +336,23 @@ func (s *Spec) validate(l Limits) error {
 	return nil
 }
 
-func (s *Spec) validateDensityOnly() error {
+// validateKernelFields checks the fields only some kernels take, then
+// the kernel's own checks.
+func (s *Spec) validateKernelFields(k *kernelEntry) error {
 	finite := func(v float64) bool { return !math.IsNaN(v) && !math.IsInf(v, 0) }
 	if !finite(s.SliceWidth) || s.SliceWidth < 0 || s.SliceMaxExpansions < 0 {
 		return BadField("register.slice_width", "slice_width must be finite and >= 0, slice_max_expansions >= 0")
 	}
-	if s.Kernel != "rejection" {
-		if s.Envelope != nil {
-			return BadField("register.envelope", "only the rejection kernel takes an envelope, not %q", s.Kernel)
-		}
-		return nil
+	if !k.envelope && s.Envelope != nil {
+		return BadField("register.envelope", "kernel %q takes no envelope", s.Kernel)
 	}
-	e := s.Envelope
-	switch {
-	case s.Dim > kernels.RejectionMaxDim:
-		return BadField("register.dim", "the rejection kernel is for dim <= %d, got %d: its acceptance falls geometrically with dimension", kernels.RejectionMaxDim, s.Dim)
-	case e == nil:
-		return BadField("register.envelope", "the rejection kernel needs an envelope (mean, scale, log_bound)")
-	case len(e.Mean) != s.Dim:
-		return BadField("register.envelope.mean", "has %d values, want dim = %d", len(e.Mean), s.Dim)
-	case !finite(e.Scale) || !(e.Scale > 0):
-		return BadField("register.envelope.scale", "must be finite and > 0, got %v", e.Scale)
-	case !finite(e.LogBound):
-		return BadField("register.envelope.log_bound", "must be finite, got %v", e.LogBound)
-	}
-	for i, v := range e.Mean {
-		if !finite(v) {
-			return badValue("register.envelope.mean", -1, i, "value %v is not finite", v)
-		}
+	if k.check != nil {
+		return k.check(s)
 	}
 	return nil
 }
 
-func (s *Spec) validateNoise() error {
+func (s *Spec) validateNoise(k *kernelEntry) error {
 	n := &s.Noise
 	finite := func(v float64) bool { return !math.IsNaN(v) && !math.IsInf(v, 0) }
 	switch {
@@ -379,13 +376,13 @@ func (s *Spec) validateNoise() error {
 		}
 		return nil
 	}
-	if exactOnly[s.Kernel] {
+	if !k.takesReplicates() {
 		return BadField("register.noise.kind", "kernel %s needs exact gradients: its accept/reject step (or Hessian step) is wrong with noisy ones", s.Kernel)
 	}
 	return nil
 }
 
-func (s *Spec) validateAccuracy() error {
+func (s *Spec) validateAccuracy(k *kernelEntry) error {
 	finite := func(v float64) bool { return !math.IsNaN(v) && !math.IsInf(v, 0) }
 	if c := s.Curvature; c != nil {
 		switch {
@@ -425,13 +422,13 @@ func (s *Spec) validateAccuracy() error {
 		case s.Curvature == nil:
 			return BadField("register.wants.eps", "a guaranteed error needs register.curvature")
 		case s.Curvature.StrongConvexity == 0 && (w.Metric != bound.TV || s.Curvature.SecondMoment == 0):
-			return BadField("register.wants.eps", "with m = 0 a guaranteed error needs metric TV and curvature.second_moment (the penalised target of THEORY.md §1.2)")
+			return BadField("register.wants.eps", "with m = 0 a guaranteed error needs metric TV and curvature.second_moment (the engine samples a penalised target whose distance to π it bounds with them)")
 		case w.Metric != bound.TV && w.Metric != bound.W2:
 			return BadField("register.wants.metric", "must be METRIC_TV or METRIC_W2 when eps is set")
 		case w.Metric == bound.TV && w.Eps >= 0.5:
 			return BadField("register.wants.eps", "a TV target must be below 0.5, got %v", w.Eps)
-		case s.Kernel != "lmc":
-			return BadField("register.wants.eps", "guaranteed bounds cover the lmc kernel only, not %q", s.Kernel)
+		case !k.guaranteed:
+			return BadField("register.wants.eps", "guaranteed bounds do not cover kernel %q", s.Kernel)
 		}
 	}
 	return nil
