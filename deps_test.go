@@ -59,6 +59,7 @@ var kernelForbid = []string{
 //	kernels/diag, kernels/bound, kernels/targets ─▶ std, gonum
 //	kernels ──────────────────▶ std, gonum
 //	client ───────────────────▶ proto                                   (grpc; never server or kernels)
+//	deploy ───────────────────▶ nothing of ours                         (Kubernetes API types, yaml)
 //
 // and the rule of STYLE.md that nothing imports grpc's internal packages.
 // The proto package is the wire API alone: it imports no other package of
@@ -90,6 +91,11 @@ var layerRules = []layerRule{
 		allowProject:  []string{"sluice/client/...", "sluice/proto/..."},
 		allowExternal: []string{"..."},
 		forbid:        []string{"sluice/server/...", "sluice/kernels/...", "sluice/cmd/..."},
+	},
+	{
+		// Deployment manifests; only their tests have code.
+		pkgs:          "sluice/deploy/...",
+		allowExternal: []string{"k8s.io/api/...", "k8s.io/apimachinery/...", "sigs.k8s.io/yaml/..."},
 	},
 	{
 		pkgs:          "sluice/proto/...",
