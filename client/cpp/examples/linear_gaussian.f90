@@ -168,6 +168,7 @@ program linear_gaussian
   character(kind=c_char, len=16), target :: kernel
   character(kind=c_char, len=64), target :: names
   character(len=256) :: target
+  character(len=:), allocatable :: layout_message
   type(c_ptr) :: s
   integer(c_int) :: rc
   real(c_double), pointer :: mean(:), sd(:), ess(:)
@@ -181,6 +182,10 @@ program linear_gaussian
     stop 2
   end if
   call get_command_argument(1, target)
+  if (.not. sluice_layout_ok(layout_message)) then
+    write (*, '(a, a)') "linear_gaussian: the Fortran types do not match the library: ", layout_message
+    stop 1
+  end if
   call make_data(model)
 
   kernel = "ozaki" // c_null_char

@@ -42,6 +42,9 @@ module sluice
     integer(c_int32_t) :: want_metric, krylov_max_iterations
     real(c_double) :: friction, inverse_mass, krylov_tolerance, slice_width
     integer(c_int32_t) :: slice_max_expansions, curvature_probe_iterations
+    integer(c_int32_t) :: noise_declared, noise_replicates
+    real(c_double) :: noise_variance, noise_bias
+    integer(c_int64_t) :: noise_data_size, noise_minibatch_size
   end type sluice_spec
 
   type, bind(c), public :: sluice_batch
@@ -79,7 +82,7 @@ module sluice
   public :: sluice_spec_defaults, sluice_session_new, sluice_session_on_draws, sluice_session_on_progress, &
     sluice_session_run, sluice_session_summary, sluice_session_error_message, sluice_session_error_field, &
     sluice_session_error_description, sluice_session_grpc_code, sluice_session_free, sluice_error_name, &
-    sluice_reason_name, sluice_string
+    sluice_reason_name, sluice_string, sluice_layout_ok
 
   interface
     subroutine sluice_spec_defaults(spec) bind(c, name="sluice_spec_defaults")
@@ -157,6 +160,13 @@ module sluice
       integer(c_int), value :: reason
     end function sluice_reason_name
 
+    integer(c_int) function sluice_check_layout(spec, batch, draws, progress, summary, message) &
+      bind(c, name="sluice_check_layout")
+      import :: c_int, c_int64_t, c_ptr
+      integer(c_int64_t), value :: spec, batch, draws, progress, summary
+      type(c_ptr), intent(out) :: message
+    end function sluice_check_layout
+
     integer(c_size_t) function c_strlen(s) bind(c, name="strlen")
       import :: c_ptr, c_size_t
       type(c_ptr), value :: s
@@ -164,6 +174,23 @@ module sluice
   end interface
 
 contains
+
+  ! sluice_layout_ok checks that the types above have the sizes of the C
+  ! structs the library was built with; on a mismatch it returns .false.
+  ! and says which in message.
+  logical function sluice_layout_ok(message)
+    character(len=:), allocatable, intent(out) :: message
+    type(sluice_spec) :: spec
+    type(sluice_batch) :: batch
+    type(sluice_draws) :: draws
+    type(sluice_progress) :: progress
+    type(sluice_summary) :: summary
+    type(c_ptr) :: msg
+    sluice_layout_ok = sluice_check_layout(int(c_sizeof(spec), c_int64_t), int(c_sizeof(batch), c_int64_t), &
+      int(c_sizeof(draws), c_int64_t), int(c_sizeof(progress), c_int64_t), int(c_sizeof(summary), c_int64_t), &
+      msg) == SLUICE_OK
+    message = sluice_string(msg)
+  end function sluice_layout_ok
 
   ! sluice_string copies a NUL-terminated C string into a Fortran string.
   function sluice_string(p) result(s)

@@ -140,6 +140,16 @@ typedef struct sluice_spec {
   double slice_width;
   int32_t slice_max_expansions;
   int32_t curvature_probe_iterations;
+  /* Stochastic gradients (noise_declared non-zero): declared variance of
+   * one replicate's error per coordinate and bias (0: not declared), data
+   * and minibatch sizes (for epochs), and gradient replicates per point
+   * (0: 1; with 2 or more the server measures the noise). */
+  int32_t noise_declared;
+  int32_t noise_replicates;
+  double noise_variance;
+  double noise_bias;
+  int64_t noise_data_size;
+  int64_t noise_minibatch_size;
 } sluice_spec;
 
 /* sluice_batch is one set of points to evaluate, given to the callback.
@@ -267,6 +277,12 @@ const char *sluice_session_id(const sluice_session *s);
 
 /* Frees the handle and everything it owns; NULL is allowed. */
 void sluice_session_free(sluice_session *s);
+
+/* Checks that a binding's copies of the structs have the sizes this
+ * library was built with (the Fortran module calls it): returns SLUICE_OK,
+ * or SLUICE_ERR_USAGE with the first mismatch in *message. */
+int sluice_check_layout(int64_t spec, int64_t batch, int64_t draws, int64_t progress, int64_t summary,
+                        const char **message);
 
 /* A constant name for a sluice_code, e.g. "SLUICE_ERR_INVALID_ARGUMENT". */
 const char *sluice_error_name(int code);

@@ -170,6 +170,15 @@ sluice_session* sluice_session_new(const sluice_spec* in, sluice_evaluate_fn eva
     sp.slice_width = in->slice_width;
     sp.slice_max_expansions = in->slice_max_expansions;
     sp.curvature_probe_iterations = in->curvature_probe_iterations;
+    if (in->noise_declared != 0) {
+      sluice::Noise n;
+      n.variance = in->noise_variance;
+      n.bias = in->noise_bias;
+      n.data_size = in->noise_data_size;
+      n.minibatch_size = in->noise_minibatch_size;
+      n.replicates = in->noise_replicates;
+      sp.noise = n;
+    }
     return s;
   } catch (...) {
     return nullptr;
@@ -311,6 +320,28 @@ int sluice_session_grpc_code(const sluice_session* s) { return s == nullptr ? 0 
 const char* sluice_session_id(const sluice_session* s) { return s == nullptr ? "" : s->session_id.c_str(); }
 
 void sluice_session_free(sluice_session* s) { delete s; }
+
+int sluice_check_layout(int64_t spec, int64_t batch, int64_t draws, int64_t progress, int64_t summary,
+                        const char** message) {
+  struct {
+    const char* what;
+    int64_t got, want;
+  } const sizes[] = {
+      {"sluice_spec size differs from the library's", spec, sizeof(sluice_spec)},
+      {"sluice_batch size differs from the library's", batch, sizeof(sluice_batch)},
+      {"sluice_draws size differs from the library's", draws, sizeof(sluice_draws)},
+      {"sluice_progress size differs from the library's", progress, sizeof(sluice_progress)},
+      {"sluice_summary size differs from the library's", summary, sizeof(sluice_summary)},
+  };
+  for (const auto& c : sizes) {
+    if (c.got != c.want) {
+      if (message != nullptr) *message = c.what;
+      return SLUICE_ERR_USAGE;
+    }
+  }
+  if (message != nullptr) *message = "";
+  return SLUICE_OK;
+}
 
 const char* sluice_error_name(int code) {
   switch (code) {
