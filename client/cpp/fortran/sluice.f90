@@ -45,6 +45,11 @@ module sluice
     integer(c_int32_t) :: noise_declared, noise_replicates
     real(c_double) :: noise_variance, noise_bias
     integer(c_int64_t) :: noise_data_size, noise_minibatch_size
+    integer(c_int32_t) :: schedule_declared, anchor_every
+    real(c_double) :: schedule_a, schedule_b, schedule_gamma, fixed_point_tolerance
+    integer(c_int32_t) :: fixed_point_iterations, envelope_declared
+    type(c_ptr) :: envelope_mean
+    real(c_double) :: envelope_scale, envelope_log_bound
   end type sluice_spec
 
   type, bind(c), public :: sluice_batch

@@ -150,6 +150,22 @@ typedef struct sluice_spec {
   double noise_bias;
   int64_t noise_data_size;
   int64_t noise_minibatch_size;
+  /* "sgld" decreasing step (schedule_declared non-zero; step must be 0):
+   * epsilon_t = a (b + t)^(-gamma), step epsilon_t / 2. */
+  int32_t schedule_declared;
+  int32_t anchor_every; /* "svrg" */
+  double schedule_a;
+  double schedule_b;
+  double schedule_gamma;
+  double fixed_point_tolerance; /* "sgld-cv" */
+  int32_t fixed_point_iterations; /* "sgld-cv" */
+  /* "rejection" (envelope_declared non-zero): the Gaussian envelope
+   * N(envelope_mean, envelope_scale^2 I), dim values, with the declared
+   * bound pi_tilde <= exp(envelope_log_bound) q. */
+  int32_t envelope_declared;
+  const double *envelope_mean;
+  double envelope_scale;
+  double envelope_log_bound;
 } sluice_spec;
 
 /* sluice_batch is one set of points to evaluate, given to the callback.

@@ -134,6 +134,21 @@ void register_frame(const Spec& spec, std::int64_t limit, pb::Register* r) {
   r->set_curvature_probe_iterations(spec.curvature_probe_iterations);
   r->set_slice_width(spec.slice_width);
   r->set_slice_max_expansions(spec.slice_max_expansions);
+  if (spec.schedule) {
+    auto* sc = r->mutable_schedule();
+    sc->set_a(spec.schedule->a);
+    sc->set_b(spec.schedule->b);
+    sc->set_gamma(spec.schedule->gamma);
+  }
+  r->set_anchor_every(spec.anchor_every);
+  r->set_fixed_point_tolerance(spec.fixed_point_tolerance);
+  r->set_fixed_point_iterations(spec.fixed_point_iterations);
+  if (spec.envelope) {
+    auto* e = r->mutable_envelope();
+    e->set_mean(floats_bytes(spec.envelope->mean));
+    e->set_scale(spec.envelope->scale);
+    e->set_log_bound(spec.envelope->log_bound);
+  }
 }
 
 Reason reason_from_wire(pb::FinishReason r) {

@@ -179,6 +179,21 @@ sluice_session* sluice_session_new(const sluice_spec* in, sluice_evaluate_fn eva
       n.replicates = in->noise_replicates;
       sp.noise = n;
     }
+    if (in->schedule_declared != 0) sp.schedule = sluice::Schedule{in->schedule_a, in->schedule_b, in->schedule_gamma};
+    sp.anchor_every = in->anchor_every;
+    sp.fixed_point_tolerance = in->fixed_point_tolerance;
+    sp.fixed_point_iterations = in->fixed_point_iterations;
+    if (in->envelope_declared != 0) {
+      sluice::Envelope e;
+      if (in->envelope_mean == nullptr) {
+        if (s->usage_error.empty()) s->usage_error = "sluice_session_new: spec.envelope_mean is NULL (give dim values)";
+      } else if (in->dim >= 1) {
+        e.mean.assign(in->envelope_mean, in->envelope_mean + in->dim);
+      }
+      e.scale = in->envelope_scale;
+      e.log_bound = in->envelope_log_bound;
+      sp.envelope = e;
+    }
     return s;
   } catch (...) {
     return nullptr;

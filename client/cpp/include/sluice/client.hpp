@@ -63,6 +63,18 @@ struct Noise {
   int replicates = 0;
 };
 
+// Decreasing step of "sgld": epsilon_t = a (b + t)^(-gamma), h_t = epsilon_t / 2.
+struct Schedule {
+  double a = 0, b = 0, gamma = 0;
+};
+
+// Gaussian envelope N(mean, scale^2 I) of "rejection", with the declared
+// bound pi_tilde <= exp(log_bound) q.
+struct Envelope {
+  std::vector<double> mean;  // dim values
+  double scale = 0, log_bound = 0;
+};
+
 // Spec describes a session; see the Register message of the wire API for
 // each field's meaning. 0 (or empty) takes the server's default.
 struct Spec {
@@ -90,6 +102,11 @@ struct Spec {
   int curvature_probe_iterations = 0;
   double slice_width = 0;
   int slice_max_expansions = 0;
+  std::optional<Schedule> schedule;  // "sgld" with a decreasing step (step 0)
+  int anchor_every = 0;              // "svrg"
+  double fixed_point_tolerance = 0;  // "sgld-cv"
+  int fixed_point_iterations = 0;    // "sgld-cv"
+  std::optional<Envelope> envelope;  // "rejection"
 };
 
 // Batch is one set of points the server asks for. The evaluator fills the
