@@ -61,6 +61,8 @@ var kernelForbid = []string{
 //	kernels ──────────────────▶ std, gonum
 //	client ───────────────────▶ proto, internal/wire                (grpc; never server or kernels)
 //	internal/wire ────────────▶ std                                 (the wire's array layout and frame sizing)
+//	client ───────────────────▶ proto                                   (grpc; never server or kernels)
+//	deploy ───────────────────▶ nothing of ours                         (Kubernetes API types, yaml)
 //
 // and the rule of STYLE.md that nothing imports grpc's internal packages.
 // The proto package is the wire API alone: it imports no other package of
@@ -108,6 +110,11 @@ var layerRules = []layerRule{
 		allowProject:  []string{"sluice/client/...", "sluice/proto/...", "sluice/internal/wire"},
 		allowExternal: []string{"..."},
 		forbid:        []string{"sluice/server/...", "sluice/kernels/...", "sluice/cmd/..."},
+	},
+	{
+		// Deployment manifests; only their tests have code.
+		pkgs:          "sluice/deploy/...",
+		allowExternal: []string{"k8s.io/api/...", "k8s.io/apimachinery/...", "sigs.k8s.io/yaml/..."},
 	},
 	{
 		pkgs:          "sluice/proto/...",
