@@ -1,8 +1,6 @@
 package kernels
 
 import (
-	"encoding/binary"
-	"errors"
 	"fmt"
 	"math"
 	"math/rand/v2"
@@ -67,7 +65,7 @@ func NewKinetic(dim, chains int, h, gamma, u float64, start, velocity []float64,
 	if u == 0 {
 		u = 1
 	}
-	if !kineticPositive(h) || !kineticPositive(gamma) || !kineticPositive(u) {
+	if !positive(h) || !positive(gamma) || !positive(u) {
 		panic(fmt.Sprintf("kernels: Kinetic step %v, friction %v, inverse mass %v", h, gamma, u))
 	}
 	k := &Kinetic{dim: dim, chains: chains, h: h, gamma: gamma, u: u, src: src, rng: rand.New(src)}
@@ -133,49 +131,37 @@ func (k *Kinetic) Tell(a *Answer) bool {
 	return true
 }
 
-const kineticMagic = "sluice.kinetic.v1"
-
 // MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
 // step, friction, inverse mass, completed steps, positions, velocities and
 // the random stream's state.
 func (k *Kinetic) MarshalBinary() ([]byte, error) {
-	rs, err := k.src.MarshalBinary()
-	if err != nil {
-		return nil, err
-	}
-	b := make([]byte, 0, len(kineticMagic)+6*8+16*len(k.x)+len(rs))
-	b = append(b, kineticMagic...)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.dim))
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.chains))
-	b = kineticAppend(b, k.h, k.gamma, k.u)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.steps))
-	b = kineticAppend(b, k.x...)
-	b = kineticAppend(b, k.v...)
-	return append(b, rs...), nil
+	w := newStateWriter("Kinetic")
+	w.ints("dim", k.dim)
+	w.ints("chains", k.chains)
+	w.floats("h", k.h)
+	w.floats("gamma", k.gamma)
+	w.floats("u", k.u)
+	w.ints("steps", k.steps)
+	w.floats("x", k.x...)
+	w.floats("v", k.v...)
+	w.stream("rng", k.src)
+	return w.bytes()
 }
 
 // UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
 // whole state, including dimension and number of chains.
 func (k *Kinetic) UnmarshalBinary(b []byte) error {
-	r := stateReader{b: b}
-	if !r.magic(kineticMagic) {
-		return errors.New("kernels: not a Kinetic state")
+	r, err := readState(b, "Kinetic")
+	if err != nil {
+		return err
 	}
-	dim, chains := int(r.u64()), int(r.u64())
-	h, gamma, u := kineticFloat(&r), kineticFloat(&r), kineticFloat(&r)
-	steps := int(r.u64())
-	if r.err != nil || !stateFits(dim, chains, 2, len(b)) || steps < 0 ||
-		!kineticPositive(h) || !kineticPositive(gamma) || !kineticPositive(u) {
-		return errors.New("kernels: corrupt Kinetic state")
-	}
-	x := r.floats(dim * chains)
-	v := r.floats(dim * chains)
-	if r.err != nil {
-		return errors.New("kernels: corrupt Kinetic state")
-	}
-	src := &rand.PCG{}
-	if err := src.UnmarshalBinary(r.rest()); err != nil {
-		return fmt.Errorf("kernels: Kinetic random state: %w", err)
+	dim, chains := r.shape()
+	h, gamma, u := r.float("h"), r.float("gamma"), r.float("u")
+	steps := r.integer("steps")
+	x, v := r.floats("x", dim*chains), r.floats("v", dim*chains)
+	src := r.stream("rng")
+	if err := r.check(steps >= 0 && positive(h) && positive(gamma) && positive(u), "step, friction, inverse mass or step count"); err != nil {
+		return err
 	}
 	*k = Kinetic{dim: dim, chains: chains, h: h, gamma: gamma, u: u, c: newKineticCoef(gamma, u, h),
 		steps: steps, x: x, v: v, src: src, rng: rand.New(src)}
@@ -249,21 +235,3 @@ func newKineticCoef(gamma, u, h float64) kineticCoef {
 	c.l22 = math.Sqrt(math.Max(0, c.varV-c.l21*c.l21))
 	return c
 }
-
-func kineticPositive(v float64) bool { return v > 0 && !math.IsInf(v, 1) }
-
-// fitsState reports whether dim and chains are positive and arrays
-// vectors of dim×chains float64 values fit in n bytes, without overflow.
-func stateFits(dim, chains, arrays, n int) bool {
-	return dim >= 1 && chains >= 1 && dim <= n/(8*arrays)/chains
-}
-
-func kineticAppend(b []byte, v ...float64) []byte {
-	for _, f := range v {
-		b = binary.LittleEndian.AppendUint64(b, math.Float64bits(f))
-	}
-	return b
-}
-
-// kineticFloat reads one float64 from r.
-func kineticFloat(r *stateReader) float64 { return math.Float64frombits(r.u64()) }

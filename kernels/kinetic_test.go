@@ -2,7 +2,6 @@ package kernels
 
 import (
 	"bytes"
-	"encoding/binary"
 	"fmt"
 	"math"
 	"testing"
@@ -417,15 +416,13 @@ func TestKineticStateRoundTrip(t *testing.T) {
 	if !bytes.Equal(again, now) {
 		t.Fatal("states differ after identical continuation")
 	}
-	for _, bad := range [][]byte{state[:40], state[:len(state)-1], []byte("nonsense"), []byte(lmcMagic + "xxxxxxxx")} {
+	for _, bad := range [][]byte{state[:40], state[:len(state)-1], []byte("nonsense"), editState(t, state, "Kinetic", "h", 1)} {
 		if err := r.UnmarshalBinary(bad); err == nil {
 			t.Fatalf("corrupt state of %d bytes accepted", len(bad))
 		}
 	}
-	for _, dims := range [][2]uint64{{math.MaxUint64, 1}, {1 << 40, 1 << 24}, {0, 3}} {
-		huge := append([]byte(kineticMagic), make([]byte, 200)...)
-		binary.LittleEndian.PutUint64(huge[len(kineticMagic):], dims[0])
-		binary.LittleEndian.PutUint64(huge[len(kineticMagic)+8:], dims[1])
+	for _, dims := range [][2]int{{math.MaxInt64, 1}, {1 << 40, 1 << 24}, {0, 3}} {
+		huge := editState(t, editState(t, state, "Kinetic", "dim", dims[0]), "Kinetic", "chains", dims[1])
 		if err := r.UnmarshalBinary(huge); err == nil {
 			t.Fatalf("state with dim %d, chains %d accepted", dims[0], dims[1])
 		}

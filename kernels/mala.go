@@ -1,8 +1,6 @@
 package kernels
 
 import (
-	"encoding/binary"
-	"errors"
 	"fmt"
 	"math"
 	"math/rand/v2"
@@ -220,75 +218,61 @@ func malaLogAccept(x, y []float64, lpx, lpy float64, gx, gy []float64, h float64
 	return (lpy - bwd/(4*h)) - (lpx - fwd/(4*h))
 }
 
-const malaMagic = "sluice.mala.v1"
-
 // MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
 // burn-in, completed steps, step size, the phase's acceptance counts, the
 // positions with their log densities and gradients, the pending proposals
 // and the random stream's state.
 func (k *MALA) MarshalBinary() ([]byte, error) {
-	rs, err := k.src.MarshalBinary()
-	if err != nil {
-		return nil, err
-	}
-	b := make([]byte, 0, len(malaMagic)+8*(7+2*k.chains+3*len(k.x))+len(rs))
-	b = append(b, malaMagic...)
-	u := func(v uint64) { b = binary.LittleEndian.AppendUint64(b, v) }
-	u(uint64(k.dim))
-	u(uint64(k.chains))
-	u(uint64(k.burnIn))
-	u(uint64(k.steps))
-	u(math.Float64bits(k.h))
-	u(stateBit(k.ready))
-	u(uint64(k.proposed))
-	for _, a := range k.accepted {
-		u(uint64(a))
-	}
-	b = appendStateFloats(b, k.x)
-	b = appendStateFloats(b, k.lpx)
-	b = appendStateFloats(b, k.gx)
-	b = appendStateFloats(b, k.y)
-	return append(b, rs...), nil
+	w := newStateWriter("MALA")
+	w.ints("dim", k.dim)
+	w.ints("chains", k.chains)
+	w.ints("burnin", k.burnIn)
+	w.ints("steps", k.steps)
+	w.floats("h", k.h)
+	w.flag("ready", k.ready)
+	w.ints("proposed", k.proposed)
+	w.ints("accepted", k.accepted...)
+	w.floats("x", k.x...)
+	w.floats("logpi", k.lpx...)
+	w.floats("grad", k.gx...)
+	w.floats("y", k.y...)
+	w.stream("rng", k.src)
+	return w.bytes()
 }
 
 // UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
 // whole state, including dimension and number of chains.
 func (k *MALA) UnmarshalBinary(b []byte) error {
-	bad := errors.New("kernels: corrupt MALA state")
-	r := stateReader{b: b}
-	if !r.magic(malaMagic) {
-		return errors.New("kernels: not a MALA state")
-	}
-	n := &MALA{}
-	n.dim, n.chains = int(r.u64()), int(r.u64())
-	n.burnIn, n.steps = int(r.u64()), int(r.u64())
-	n.h = math.Float64frombits(r.u64())
-	ready := r.u64()
-	n.ready = ready == 1
-	n.proposed = int(r.u64())
-	lim := len(b) / 8
-	if r.err != nil || n.dim < 1 || n.chains < 1 || n.dim > lim || n.chains > lim || n.dim*n.chains > lim ||
-		n.burnIn < 0 || n.steps < 0 || n.proposed < 0 || n.proposed > n.steps || ready > 1 ||
-		!(n.h > 0) || math.IsInf(n.h, 0) {
-		return bad
-	}
-	n.alloc()
-	for c := range n.accepted {
-		n.accepted[c] = int(r.u64())
-		if n.accepted[c] < 0 || n.accepted[c] > n.proposed {
-			return bad
-		}
-	}
-	n.x = r.floats(n.dim * n.chains)
-	r.fill(n.lpx, n.gx, n.y)
-	if r.err != nil {
-		return bad
-	}
-	src, err := r.stream("MALA")
+	r, err := readState(b, "MALA")
 	if err != nil {
 		return err
 	}
-	n.src = src
+	n := &MALA{}
+	n.dim, n.chains = r.shape()
+	n.burnIn, n.steps = r.integer("burnin"), r.integer("steps")
+	n.h = r.float("h")
+	n.ready = r.flag("ready")
+	n.proposed = r.integer("proposed")
+	if err := r.check(n.burnIn >= 0 && n.steps >= 0 && n.proposed >= 0 && n.proposed <= n.steps && positive(n.h),
+		"burn-in, step counts or step size"); err != nil {
+		return err
+	}
+	n.alloc()
+	acc := r.ints("accepted", n.chains)
+	for c := range acc {
+		n.accepted[c] = acc[c]
+		if acc[c] < 0 || acc[c] > n.proposed {
+			r.fail("acceptance count %d of %d", acc[c], n.proposed)
+		}
+	}
+	n.x = r.floats("x", n.dim*n.chains)
+	r.fill("logpi", n.lpx)
+	r.fill("grad", n.gx)
+	r.fill("y", n.y)
+	n.src = r.stream("rng")
+	if r.err != nil {
+		return r.err
+	}
 	n.rng = rand.New(n.src)
 	n.buildRequest()
 	*k = *n

@@ -1,8 +1,6 @@
 package kernels
 
 import (
-	"encoding/binary"
-	"errors"
 	"fmt"
 	"math"
 	"math/rand/v2"
@@ -75,7 +73,7 @@ func NewMidpoint(dim, chains int, h, u float64, start, velocity []float64, src *
 	if u == 0 {
 		u = 1
 	}
-	if !kineticPositive(h) || !kineticPositive(u) {
+	if !positive(h) || !positive(u) {
 		panic(fmt.Sprintf("kernels: Midpoint step %v, inverse mass %v", h, u))
 	}
 	x := broadcastStart(start, dim, chains)
@@ -202,74 +200,51 @@ func midpointNoise(s0, s1 *kineticCoef, z1, z2, z3, z4 float64) (w1, w2, w3 floa
 	return x0, x0 + x1 + s1.c*v0, s1.e*v0 + v1
 }
 
-const midpointMagic = "sluice.midpoint.v1"
-
 // MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
 // step, inverse mass, completed steps, the within-step phase, positions,
 // velocities, between the two requests of a step the midpoints and
 // partial updates, and the random stream's state.
 func (k *Midpoint) MarshalBinary() ([]byte, error) {
-	rs, err := k.src.MarshalBinary()
-	if err != nil {
-		return nil, err
-	}
-	n := len(k.x)
-	b := make([]byte, 0, len(midpointMagic)+6*8+8*(5*n+2*k.chains)+len(rs))
-	b = append(b, midpointMagic...)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.dim))
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.chains))
-	b = kineticAppend(b, k.h, k.u)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.steps))
-	var phase uint64
+	w := newStateWriter("Midpoint")
+	w.ints("dim", k.dim)
+	w.ints("chains", k.chains)
+	w.floats("h", k.h)
+	w.floats("u", k.u)
+	w.ints("steps", k.steps)
+	w.flag("mid", k.mid)
+	w.floats("x", k.x...)
+	w.floats("v", k.v...)
 	if k.mid {
-		phase = 1
+		w.floats("xmid", k.xmid...)
+		w.floats("xnext", k.xnext...)
+		w.floats("vnext", k.vnext...)
+		w.floats("cx", k.cx...)
+		w.floats("cv", k.cv...)
 	}
-	b = binary.LittleEndian.AppendUint64(b, phase)
-	b = kineticAppend(b, k.x...)
-	b = kineticAppend(b, k.v...)
-	if k.mid {
-		b = kineticAppend(b, k.xmid...)
-		b = kineticAppend(b, k.xnext...)
-		b = kineticAppend(b, k.vnext...)
-		b = kineticAppend(b, k.cx...)
-		b = kineticAppend(b, k.cv...)
-	}
-	return append(b, rs...), nil
+	w.stream("rng", k.src)
+	return w.bytes()
 }
 
 // UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
 // whole state, including dimension, number of chains and the phase within
 // a step.
 func (k *Midpoint) UnmarshalBinary(b []byte) error {
-	r := stateReader{b: b}
-	if !r.magic(midpointMagic) {
-		return errors.New("kernels: not a Midpoint state")
-	}
-	dim, chains := int(r.u64()), int(r.u64())
-	h, u := kineticFloat(&r), kineticFloat(&r)
-	steps, phase := int(r.u64()), r.u64()
-	if r.err != nil || !stateFits(dim, chains, 2, len(b)) || steps < 0 || phase > 1 ||
-		!kineticPositive(h) || !kineticPositive(u) {
-		return errors.New("kernels: corrupt Midpoint state")
-	}
-	n := dim * chains
-	m := Midpoint{dim: dim, chains: chains, h: h, u: u, steps: steps, mid: phase == 1}
-	m.x, m.v = r.floats(n), r.floats(n)
-	if m.mid {
-		if !stateFits(dim, chains, 5, len(b)) {
-			return errors.New("kernels: corrupt Midpoint state")
-		}
-		m.xmid, m.xnext, m.vnext = r.floats(n), r.floats(n), r.floats(n)
-		m.cx, m.cv = r.floats(chains), r.floats(chains)
-	}
-	if r.err != nil {
-		return errors.New("kernels: corrupt Midpoint state")
-	}
-	src, err := r.stream("Midpoint")
+	r, err := readState(b, "Midpoint")
 	if err != nil {
 		return err
 	}
-	m.src = src
+	dim, chains := r.shape()
+	n := dim * chains
+	m := Midpoint{dim: dim, chains: chains, h: r.float("h"), u: r.float("u"), steps: r.integer("steps"), mid: r.flag("mid")}
+	m.x, m.v = r.floats("x", n), r.floats("v", n)
+	if m.mid {
+		m.xmid, m.xnext, m.vnext = r.floats("xmid", n), r.floats("xnext", n), r.floats("vnext", n)
+		m.cx, m.cv = r.floats("cx", chains), r.floats("cv", chains)
+	}
+	m.src = r.stream("rng")
+	if err := r.check(m.steps >= 0 && positive(m.h) && positive(m.u), "step, inverse mass or step count"); err != nil {
+		return err
+	}
 	m.init()
 	*k = m
 	return nil
@@ -312,7 +287,7 @@ func NewOverdampedMidpoint(dim, chains int, h float64, start []float64, src *ran
 	if dim < 1 || chains < 1 {
 		panic(fmt.Sprintf("kernels: OverdampedMidpoint with dim %d, chains %d", dim, chains))
 	}
-	if !kineticPositive(h) {
+	if !positive(h) {
 		panic(fmt.Sprintf("kernels: OverdampedMidpoint step %v", h))
 	}
 	k := &OverdampedMidpoint{dim: dim, chains: chains, h: h, x: broadcastStart(start, dim, chains), src: src}
@@ -394,68 +369,45 @@ func (k *OverdampedMidpoint) Tell(a *Answer) bool {
 	return false
 }
 
-const overdampedMidpointMagic = "sluice.midpoint-overdamped.v1"
-
 // MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
 // step, completed steps, the within-step phase, positions, between the two
 // requests of a step the midpoints and partial updates, and the random
 // stream's state.
 func (k *OverdampedMidpoint) MarshalBinary() ([]byte, error) {
-	rs, err := k.src.MarshalBinary()
-	if err != nil {
-		return nil, err
-	}
-	b := make([]byte, 0, len(overdampedMidpointMagic)+5*8+24*len(k.x)+len(rs))
-	b = append(b, overdampedMidpointMagic...)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.dim))
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.chains))
-	b = kineticAppend(b, k.h)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.steps))
-	var phase uint64
+	w := newStateWriter("OverdampedMidpoint")
+	w.ints("dim", k.dim)
+	w.ints("chains", k.chains)
+	w.floats("h", k.h)
+	w.ints("steps", k.steps)
+	w.flag("mid", k.mid)
+	w.floats("x", k.x...)
 	if k.mid {
-		phase = 1
+		w.floats("y", k.y...)
+		w.floats("xnext", k.xnext...)
 	}
-	b = binary.LittleEndian.AppendUint64(b, phase)
-	b = kineticAppend(b, k.x...)
-	if k.mid {
-		b = kineticAppend(b, k.y...)
-		b = kineticAppend(b, k.xnext...)
-	}
-	return append(b, rs...), nil
+	w.stream("rng", k.src)
+	return w.bytes()
 }
 
 // UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
 // whole state, including dimension, number of chains and the phase within
 // a step.
 func (k *OverdampedMidpoint) UnmarshalBinary(b []byte) error {
-	r := stateReader{b: b}
-	if !r.magic(overdampedMidpointMagic) {
-		return errors.New("kernels: not an OverdampedMidpoint state")
-	}
-	dim, chains := int(r.u64()), int(r.u64())
-	h := kineticFloat(&r)
-	steps, phase := int(r.u64()), r.u64()
-	arrays := 1
-	if phase == 1 {
-		arrays = 3
-	}
-	if r.err != nil || !stateFits(dim, chains, arrays, len(b)) || steps < 0 || phase > 1 || !kineticPositive(h) {
-		return errors.New("kernels: corrupt OverdampedMidpoint state")
-	}
-	n := dim * chains
-	m := OverdampedMidpoint{dim: dim, chains: chains, h: h, steps: steps, mid: phase == 1}
-	m.x = r.floats(n)
-	if m.mid {
-		m.y, m.xnext = r.floats(n), r.floats(n)
-	}
-	if r.err != nil {
-		return errors.New("kernels: corrupt OverdampedMidpoint state")
-	}
-	src, err := r.stream("OverdampedMidpoint")
+	r, err := readState(b, "OverdampedMidpoint")
 	if err != nil {
 		return err
 	}
-	m.src = src
+	dim, chains := r.shape()
+	n := dim * chains
+	m := OverdampedMidpoint{dim: dim, chains: chains, h: r.float("h"), steps: r.integer("steps"), mid: r.flag("mid")}
+	m.x = r.floats("x", n)
+	if m.mid {
+		m.y, m.xnext = r.floats("y", n), r.floats("xnext", n)
+	}
+	m.src = r.stream("rng")
+	if err := r.check(m.steps >= 0 && positive(m.h), "step or step count"); err != nil {
+		return err
+	}
 	m.init()
 	*k = m
 	return nil

@@ -2,7 +2,6 @@ package kernels
 
 import (
 	"bytes"
-	"encoding/binary"
 	"fmt"
 	"math"
 	"math/rand/v2"
@@ -370,13 +369,12 @@ func TestMidpointStateRoundTrip(t *testing.T) {
 					r.Steps(), r.Dim(), r.Chains(), r.Step(), r.InverseMass(), r.mid)
 			}
 			midpointSame(t, k, &r, 31)
-			for _, bad := range [][]byte{state[:60], state[:len(state)-1], []byte("nonsense"), []byte(kineticMagic + "xxxxxxxx")} {
+			for _, bad := range [][]byte{state[:60], state[:len(state)-1], []byte("nonsense"), editState(t, state, "Midpoint", "u", 1)} {
 				if err := r.UnmarshalBinary(bad); err == nil {
 					t.Fatalf("corrupt state of %d bytes accepted", len(bad))
 				}
 			}
-			bad := append([]byte(nil), state...)
-			binary.LittleEndian.PutUint64(bad[len(midpointMagic)+5*8:], 2) // phase
+			bad := editState(t, state, "Midpoint", "mid", 2) // phase
 			if err := r.UnmarshalBinary(bad); err == nil {
 				t.Fatal("state with phase 2 accepted")
 			}
@@ -565,7 +563,7 @@ func TestMidpointOverdampedStateRoundTrip(t *testing.T) {
 		if !bytes.Equal(sk, sr) {
 			t.Fatalf("after %d Tells: states differ after identical continuation", tells)
 		}
-		for _, bad := range [][]byte{state[:50], state[:len(state)-1], []byte(midpointMagic + "xxxxxxxx")} {
+		for _, bad := range [][]byte{state[:50], state[:len(state)-1], editState(t, state, "OverdampedMidpoint", "x", 0)} {
 			if err := r.UnmarshalBinary(bad); err == nil {
 				t.Fatalf("corrupt state of %d bytes accepted", len(bad))
 			}

@@ -1,8 +1,6 @@
 package kernels
 
 import (
-	"encoding/binary"
-	"errors"
 	"fmt"
 	"math"
 	"math/rand/v2"
@@ -54,7 +52,7 @@ func (s SGLDSchedule) IsZero() bool { return s == SGLDSchedule{} }
 
 // valid reports whether s is a usable schedule.
 func (s SGLDSchedule) valid() bool {
-	return kineticPositive(s.A) && kineticPositive(s.B) && s.Gamma > 0.5 && s.Gamma <= 1
+	return positive(s.A) && positive(s.B) && s.Gamma > 0.5 && s.Gamma <= 1
 }
 
 // NewSGLD returns an SGLD kernel for chains chains in dimension dim,
@@ -68,7 +66,7 @@ func NewSGLD(dim, chains int, h float64, sched SGLDSchedule, start []float64, sr
 		panic(fmt.Sprintf("kernels: SGLD with dim %d, chains %d", dim, chains))
 	}
 	switch {
-	case sched.IsZero() && !kineticPositive(h):
+	case sched.IsZero() && !positive(h):
 		panic(fmt.Sprintf("kernels: SGLD step %v", h))
 	case !sched.IsZero() && (h != 0 || !sched.valid()):
 		panic(fmt.Sprintf("kernels: SGLD schedule %+v with constant step %v (want a valid schedule and step 0)", sched, h))
@@ -132,48 +130,40 @@ func sgldStepAt(h float64, s SGLDSchedule, t int) float64 {
 	return s.A * math.Pow(s.B+float64(t), -s.Gamma) / 2
 }
 
-const sgldMagic = "sluice.sgld.v1"
-
 // MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
 // constant step, schedule, completed steps, positions and the random
 // stream's state (before any noise drawn ahead by Prepare).
 func (k *SGLD) MarshalBinary() ([]byte, error) {
-	rs, err := k.noise.marshal()
-	if err != nil {
-		return nil, err
-	}
-	b := make([]byte, 0, len(sgldMagic)+7*8+8*len(k.x)+len(rs))
-	b = append(b, sgldMagic...)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.dim))
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.chains))
-	b = kineticAppend(b, k.h, k.sched.A, k.sched.B, k.sched.Gamma)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.steps))
-	b = kineticAppend(b, k.x...)
-	return append(b, rs...), nil
+	w := newStateWriter("SGLD")
+	w.ints("dim", k.dim)
+	w.ints("chains", k.chains)
+	w.floats("h", k.h)
+	w.floats("schedule", k.sched.A, k.sched.B, k.sched.Gamma)
+	w.ints("steps", k.steps)
+	w.floats("x", k.x...)
+	w.stream("rng", k.noise.saved())
+	return w.bytes()
 }
 
 // UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
 // whole state, including dimension, number of chains and schedule.
 func (k *SGLD) UnmarshalBinary(b []byte) error {
-	r := stateReader{b: b}
-	if !r.magic(sgldMagic) {
-		return errors.New("kernels: not an SGLD state")
+	r, err := readState(b, "SGLD")
+	if err != nil {
+		return err
 	}
-	dim, chains := int(r.u64()), int(r.u64())
-	h := kineticFloat(&r)
-	sched := SGLDSchedule{kineticFloat(&r), kineticFloat(&r), kineticFloat(&r)}
-	steps := int(r.u64())
-	okStep := (sched.IsZero() && kineticPositive(h)) || (h == 0 && sched.valid())
-	if r.err != nil || !stateFits(dim, chains, 1, len(b)) || steps < 0 || !okStep {
-		return errors.New("kernels: corrupt SGLD state")
+	dim, chains := r.shape()
+	h := r.float("h")
+	var sched SGLDSchedule
+	if v := r.floats("schedule", 3); v != nil {
+		sched = SGLDSchedule{v[0], v[1], v[2]}
 	}
-	x := r.floats(dim * chains)
-	if r.err != nil {
-		return errors.New("kernels: corrupt SGLD state")
-	}
-	src := &rand.PCG{}
-	if err := src.UnmarshalBinary(r.rest()); err != nil {
-		return fmt.Errorf("kernels: SGLD random state: %w", err)
+	steps := r.integer("steps")
+	x := r.floats("x", dim*chains)
+	src := r.stream("rng")
+	okStep := (sched.IsZero() && positive(h)) || (h == 0 && sched.valid())
+	if err := r.check(steps >= 0 && okStep, "step, schedule or step count"); err != nil {
+		return err
 	}
 	*k = SGLD{dim: dim, chains: chains, h: h, sched: sched, steps: steps, x: x}
 	k.noise.init(src, len(x))
@@ -217,11 +207,10 @@ func (s *sgldNoise) draw() []float64 {
 	return s.z
 }
 
-// marshal returns the stream's state as it was before any draws made
-// ahead.
-func (s *sgldNoise) marshal() ([]byte, error) {
+// saved returns the stream as it was before any draws made ahead.
+func (s *sgldNoise) saved() *rand.PCG {
 	if s.prepared {
-		return s.snap.MarshalBinary()
+		return &s.snap
 	}
-	return s.src.MarshalBinary()
+	return s.src
 }

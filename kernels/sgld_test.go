@@ -459,11 +459,7 @@ func TestSGLDPrepareIsInvisible(t *testing.T) {
 func TestSGLDStateHugeDimensionRefused(t *testing.T) {
 	k := NewSGLD(1, 1, 0.1, SGLDSchedule{}, []float64{0}, NewSource(1))
 	b, _ := k.MarshalBinary()
-	head := len(sgldMagic)
-	for i := range 8 {
-		b[head+i], b[head+8+i] = 0, 0
-	}
-	b[head+4], b[head+8+4] = 1, 1 // dim = chains = 2³²
+	b = editState(t, editState(t, b, "SGLD", "dim", 1<<32), "SGLD", "chains", 1<<32)
 	var r SGLD
 	if err := r.UnmarshalBinary(b); err == nil {
 		t.Fatal("state with dim = chains = 2³² accepted")
