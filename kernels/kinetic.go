@@ -38,9 +38,28 @@ type Kinetic struct {
 	req         Request
 	src         *rand.PCG
 	rng         *rand.Rand
+	pc          precond
 }
 
-var _ Kernel = (*Kinetic)(nil)
+var (
+	_ Kernel     = (*Kinetic)(nil)
+	_ MetricUser = (*Kinetic)(nil)
+)
+
+// SetMetric implements MetricUser: from the next Tell the inverse mass is
+// u·C. With C = L·Lᵀ this is the kernel above run on y = L⁻¹x (velocity
+// L⁻¹v), whose target π(Ly) has score Lᵀ∇log π; mapped back, one step is
+//
+//	x' = x + c·v + ax·C·G + L·(l11·z1)
+//	v' = e·v + av·C·G + L·(l21·z1 + l22·z2)
+//
+// with the same scalar coefficients, z1 and z2 drawn per coordinate as
+// before, and invariant law π(x)·N(v; 0, u·C) (derived here by that change
+// of variables; the same one Roberts and Stramer (2002) use for MALA).
+func (k *Kinetic) SetMetric(m *Metric) { k.pc.set("Kinetic", m, k.dim, 3*k.dim) }
+
+// Metric implements MetricUser.
+func (k *Kinetic) Metric() *Metric { return orIdentity(k.pc.metric, k.dim) }
 
 // NewKinetic returns a Kinetic kernel for chains chains in dimension dim
 // with step h, friction gamma (γ) and inverse mass u, started at positions
@@ -120,6 +139,30 @@ func (k *Kinetic) Tell(a *Answer) bool {
 	g := a.Grad[:len(k.x)]
 	v := k.v[:len(k.x)]
 	c := &k.c
+	if m := k.pc.metric; m != nil {
+		p := k.dim
+		w1, w2, cg := k.pc.tmp[:p], k.pc.tmp[p:2*p], k.pc.tmp[2*p:3*p]
+		for ch := range k.chains {
+			lo, hi := ch*p, (ch+1)*p
+			for i := range w1 {
+				z1 := k.rng.NormFloat64()
+				z2 := k.rng.NormFloat64()
+				w1[i] = c.l11 * z1
+				w2[i] = c.l21*z1 + c.l22*z2
+			}
+			m.ApplyFactor(w1, w1)
+			m.ApplyFactor(w2, w2)
+			m.Apply(cg, g[lo:hi])
+			x, vc := k.x[lo:hi], v[lo:hi]
+			for i, xi := range x {
+				vi := vc[i]
+				x[i] = xi + c.c*vi + c.ax*cg[i] + w1[i]
+				vc[i] = c.e*vi + c.av*cg[i] + w2[i]
+			}
+		}
+		k.steps++
+		return true
+	}
 	for i, x := range k.x {
 		z1 := k.rng.NormFloat64()
 		z2 := k.rng.NormFloat64()
@@ -144,6 +187,7 @@ func (k *Kinetic) MarshalBinary() ([]byte, error) {
 	w.ints("steps", k.steps)
 	w.floats("x", k.x...)
 	w.floats("v", k.v...)
+	writeMetric(w, "metric", k.pc.metric)
 	w.stream("rng", k.src)
 	return w.bytes()
 }
@@ -159,12 +203,14 @@ func (k *Kinetic) UnmarshalBinary(b []byte) error {
 	h, gamma, u := r.float("h"), r.float("gamma"), r.float("u")
 	steps := r.integer("steps")
 	x, v := r.floats("x", dim*chains), r.floats("v", dim*chains)
+	metric := readMetric(r, "metric", dim)
 	src := r.stream("rng")
 	if err := r.check(steps >= 0 && positive(h) && positive(gamma) && positive(u), "step, friction, inverse mass or step count"); err != nil {
 		return err
 	}
 	*k = Kinetic{dim: dim, chains: chains, h: h, gamma: gamma, u: u, c: newKineticCoef(gamma, u, h),
 		steps: steps, x: x, v: v, src: src, rng: rand.New(src)}
+	k.SetMetric(metric)
 	k.req = Request{Need: NeedGradient, Rows: chains, Points: k.x, Chain: chainIndex(chains)}
 	return nil
 }

@@ -27,7 +27,28 @@ type LMC struct {
 	noise    []float64
 	prepared bool
 	snap     rand.PCG
+	metric   *Metric   // nil: the identity
+	tmp      []float64 // 2·dim scratch for a metric
 }
+
+var (
+	_ Kernel     = (*LMC)(nil)
+	_ Preparer   = (*LMC)(nil)
+	_ MetricUser = (*LMC)(nil)
+)
+
+// SetMetric implements MetricUser: from the next Tell every chain moves
+// by x ← x + h·C·∇log π(x) + √(2h)·L·ξ with C = L·Lᵀ (noise already drawn
+// by Prepare is standard normal and stays valid).
+func (k *LMC) SetMetric(m *Metric) {
+	k.metric = checkMetric("LMC", m, k.dim)
+	if k.metric != nil && k.tmp == nil {
+		k.tmp = make([]float64, 2*k.dim)
+	}
+}
+
+// Metric implements MetricUser.
+func (k *LMC) Metric() *Metric { return orIdentity(k.metric, k.dim) }
 
 // NewLMC returns an LMC kernel for chains chains in dimension dim with step
 // h, started at start (chains×dim values, or dim values shared by every
@@ -102,6 +123,17 @@ func (k *LMC) Tell(a *Answer) bool {
 	}
 	g := a.Grad[:len(k.x)]
 	h, s := k.h, k.scale
+	if k.metric != nil {
+		k.Prepare()
+		p := k.dim
+		for c := range k.chains {
+			lo, hi := c*p, (c+1)*p
+			k.metric.move(k.x[lo:hi], g[lo:hi], k.noise[lo:hi], h, s, k.tmp)
+		}
+		k.prepared = false
+		k.steps++
+		return true
+	}
 	if k.prepared {
 		for i, z := range k.noise {
 			k.x[i] += h*g[i] + s*z
@@ -129,6 +161,7 @@ func (k *LMC) MarshalBinary() ([]byte, error) {
 	w.floats("h", k.h)
 	w.ints("steps", k.steps)
 	w.floats("x", k.x...)
+	writeMetric(w, "metric", k.metric)
 	w.stream("rng", src)
 	return w.bytes()
 }
@@ -143,11 +176,13 @@ func (k *LMC) UnmarshalBinary(b []byte) error {
 	dim, chains := r.shape()
 	h, steps := r.float("h"), r.integer("steps")
 	x := r.floats("x", dim*chains)
+	metric := readMetric(r, "metric", dim)
 	src := r.stream("rng")
 	if err := r.check(positive(h) && steps >= 0, "step or step count"); err != nil {
 		return err
 	}
 	*k = LMC{dim: dim, chains: chains, h: h, scale: math.Sqrt(2 * h), steps: steps, x: x, src: src, rng: rand.New(src)}
+	k.SetMetric(metric)
 	k.req = Request{Need: NeedGradient, Rows: chains, Points: k.x, Chain: chainIndex(chains)}
 	return nil
 }

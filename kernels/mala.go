@@ -60,6 +60,48 @@ type MALA struct {
 	req         Request
 	src         *rand.PCG
 	rng         *rand.Rand
+	metric      *Metric   // of the pending proposals; nil: the identity
+	pending     *Metric   // set by SetMetric, used from the next proposal
+	pendingSet  bool
+	tmp         []float64 // 2·dim scratch for a metric
+}
+
+var (
+	_ Kernel     = (*MALA)(nil)
+	_ Scorer     = (*MALA)(nil)
+	_ MetricUser = (*MALA)(nil)
+)
+
+// SetMetric implements MetricUser. With C = L·Lᵀ the proposal becomes
+//
+//	y = x + h·C·∇log π(x) + √(2h)·L·ξ,   q(y | x) = N(y; x + hC∇log π(x), 2h·C),
+//	log q(y | x) = −‖L⁻¹(y − x − hC∇log π(x))‖² / (4h)   (+ a constant free of x, y),
+//
+// and the acceptance uses that ratio, so the chains leave π exactly
+// invariant for any fixed C (Roberts and Stramer, Methodology and
+// Computing in Applied Probability 4 (2002)). The proposals already drawn
+// for the pending request keep the old metric, and so does the density
+// ratio that accepts or rejects them; the new metric applies from the
+// next proposal. Set it only while h is frozen if the chains' law after
+// burn-in must be exact: a metric changed during burn-in is like a step
+// size adapted then.
+func (k *MALA) SetMetric(m *Metric) {
+	k.pending = checkMetric("MALA", m, k.dim)
+	k.pendingSet = true
+	if k.pending != nil && k.tmp == nil {
+		k.tmp = make([]float64, 2*k.dim)
+	}
+	if !k.ready {
+		k.metric, k.pendingSet = k.pending, false
+	}
+}
+
+// Metric implements MetricUser: the metric of the next proposal.
+func (k *MALA) Metric() *Metric {
+	if k.pendingSet {
+		return orIdentity(k.pending, k.dim)
+	}
+	return orIdentity(k.metric, k.dim)
 }
 
 // malaTarget is the acceptance rate the step adaptation aims at
@@ -169,7 +211,12 @@ func (k *MALA) Tell(a *Answer) bool {
 	var sumAlpha float64
 	for c := range k.chains {
 		lo, hi := c*p, (c+1)*p
-		la := malaLogAccept(k.x[lo:hi], k.y[lo:hi], k.lpx[c], a.LogDensity[c], k.gx[lo:hi], a.Grad[lo:hi], k.h)
+		var la float64
+		if k.metric == nil {
+			la = malaLogAccept(k.x[lo:hi], k.y[lo:hi], k.lpx[c], a.LogDensity[c], k.gx[lo:hi], a.Grad[lo:hi], k.h)
+		} else {
+			la = malaLogAcceptMetric(k.x[lo:hi], k.y[lo:hi], k.lpx[c], a.LogDensity[c], k.gx[lo:hi], a.Grad[lo:hi], k.h, k.metric, k.tmp)
+		}
 		if la >= 0 {
 			sumAlpha++
 		} else if la > math.Inf(-1) { // NaN and −∞ count as 0
@@ -197,12 +244,57 @@ func (k *MALA) Tell(a *Answer) bool {
 	return true
 }
 
-// propose draws y = x + h·∇log π(x) + √(2h)·ξ for every chain.
+// propose draws y = x + h·∇log π(x) + √(2h)·ξ for every chain (with a
+// metric, y = x + h·C·∇log π(x) + √(2h)·L·ξ), taking up a metric set since
+// the last proposal.
 func (k *MALA) propose() {
-	s := math.Sqrt(2 * k.h)
-	for i := range k.y {
-		k.y[i] = k.x[i] + k.h*k.gx[i] + s*k.rng.NormFloat64()
+	if k.pendingSet {
+		k.metric, k.pending, k.pendingSet = k.pending, nil, false
 	}
+	s := math.Sqrt(2 * k.h)
+	if k.metric == nil {
+		for i := range k.y {
+			k.y[i] = k.x[i] + k.h*k.gx[i] + s*k.rng.NormFloat64()
+		}
+		return
+	}
+	p := k.dim
+	xi, lz := k.tmp[:p], k.tmp[p:2*p]
+	for c := range k.chains {
+		lo, hi := c*p, (c+1)*p
+		for i := range xi {
+			xi[i] = k.rng.NormFloat64()
+		}
+		k.metric.ApplyFactor(lz, xi)
+		k.metric.Apply(xi, k.gx[lo:hi])
+		y, x := k.y[lo:hi], k.x[lo:hi]
+		for i := range y {
+			y[i] = x[i] + k.h*xi[i] + s*lz[i]
+		}
+	}
+}
+
+// malaLogAcceptMetric is malaLogAccept for the proposal N(x + hC∇log π(x),
+// 2hC): the squared norms are ‖L⁻¹r‖² of the residuals r, with tmp (2p
+// values) as scratch.
+func malaLogAcceptMetric(x, y []float64, lpx, lpy float64, gx, gy []float64, h float64, m *Metric, tmp []float64) float64 {
+	p := len(x)
+	cg, r := tmp[:p], tmp[p:2*p]
+	sq := func(from, to, g []float64) float64 {
+		m.Apply(cg, g)
+		for i := range r {
+			r[i] = to[i] - from[i] - h*cg[i]
+		}
+		m.SolveFactor(r, r)
+		var s float64
+		for _, v := range r {
+			s += v * v
+		}
+		return s
+	}
+	fwd := sq(x, y, gx) // ‖L⁻¹(y − x − hC gx)‖²
+	bwd := sq(y, x, gy) // ‖L⁻¹(x − y − hC gy)‖²
+	return (lpy - bwd/(4*h)) - (lpx - fwd/(4*h))
 }
 
 // malaLogAccept returns the log acceptance ratio A of THEORY.md §6 for a
@@ -236,6 +328,9 @@ func (k *MALA) MarshalBinary() ([]byte, error) {
 	w.floats("logpi", k.lpx...)
 	w.floats("grad", k.gx...)
 	w.floats("y", k.y...)
+	writeMetric(w, "metric", k.metric)
+	w.flag("pending", k.pendingSet)
+	writeMetric(w, "pendingmetric", k.pending)
 	w.stream("rng", k.src)
 	return w.bytes()
 }
@@ -269,6 +364,12 @@ func (k *MALA) UnmarshalBinary(b []byte) error {
 	r.fill("logpi", n.lpx)
 	r.fill("grad", n.gx)
 	r.fill("y", n.y)
+	n.metric = readMetric(r, "metric", n.dim)
+	n.pendingSet = r.flag("pending")
+	n.pending = readMetric(r, "pendingmetric", n.dim)
+	if n.metric != nil || n.pending != nil {
+		n.tmp = make([]float64, 2*n.dim)
+	}
 	n.src = r.stream("rng")
 	if r.err != nil {
 		return r.err

@@ -54,9 +54,39 @@ type Midpoint struct {
 	reqX, reqMid       Request
 	src                *rand.PCG
 	rng                *rand.Rand
+	pc                 precond
+	pending            *Metric // set between the two requests of a step
+	pendingSet         bool
 }
 
-var _ Kernel = (*Midpoint)(nil)
+var (
+	_ Kernel     = (*Midpoint)(nil)
+	_ MetricUser = (*Midpoint)(nil)
+)
+
+// SetMetric implements MetricUser: the inverse mass becomes u·C, C = L·Lᵀ,
+// from the next step (a metric set between the two requests of a step
+// waits for the step to complete). As for Kinetic this is the method run
+// on y = L⁻¹x: G(·) becomes C·G(·) in both updates and (W1, W2, W3)
+// become L·(W1, W2, W3), the normals drawn in the same order (derived
+// here by that change of variables); the invariant law is
+// π(x)·N(v; 0, u·C).
+func (k *Midpoint) SetMetric(m *Metric) {
+	m = checkMetric("Midpoint", m, k.dim)
+	if k.mid {
+		k.pending, k.pendingSet = m, true
+		return
+	}
+	k.pc.set("Midpoint", m, k.dim, 4*k.dim)
+}
+
+// Metric implements MetricUser: the metric of the next step.
+func (k *Midpoint) Metric() *Metric {
+	if k.pendingSet {
+		return orIdentity(k.pending, k.dim)
+	}
+	return orIdentity(k.pc.metric, k.dim)
+}
 
 // NewMidpoint returns a Midpoint kernel for chains chains in dimension dim
 // with step h and inverse mass u, started at positions start and
@@ -151,6 +181,15 @@ func (k *Midpoint) Tell(a *Answer) bool {
 		for c := range k.chains {
 			cx, cv := k.cx[c], k.cv[c]
 			lo, hi := c*k.dim, (c+1)*k.dim
+			if m := k.pc.metric; m != nil {
+				cg := k.pc.tmp[3*k.dim : 4*k.dim] // C·G(x_mid)
+				m.Apply(cg, g[lo:hi])
+				for i := lo; i < hi; i++ {
+					k.x[i] = xn[i] + cx*cg[i-lo]
+					k.v[i] = vn[i] + cv*cg[i-lo]
+				}
+				continue
+			}
 			for i := lo; i < hi; i++ {
 				k.x[i] = xn[i] + cx*g[i]
 				k.v[i] = vn[i] + cv*g[i]
@@ -158,7 +197,17 @@ func (k *Midpoint) Tell(a *Answer) bool {
 		}
 		k.mid = false
 		k.steps++
+		if k.pendingSet {
+			k.pendingSet = false
+			k.pc.set("Midpoint", k.pending, k.dim, 4*k.dim)
+			k.pending = nil
+		}
 		return true
+	}
+	if k.pc.metric != nil {
+		k.firstMetric(g)
+		k.mid = true
+		return false
 	}
 	h, u, e, b := k.h, k.u, k.e, k.b
 	for c := range k.chains {
@@ -185,6 +234,42 @@ func (k *Midpoint) Tell(a *Answer) bool {
 	}
 	k.mid = true
 	return false
+}
+
+// firstMetric is the first Tell of a step with a metric: the step of the
+// plain method with G(x) replaced by C·G(x) and the noises by L·(W1, W2,
+// W3), the normals drawn in the plain order.
+func (k *Midpoint) firstMetric(g []float64) {
+	m, p := k.pc.metric, k.dim
+	w1, w2, w3, cg := k.pc.tmp[:p], k.pc.tmp[p:2*p], k.pc.tmp[2*p:3*p], k.pc.tmp[3*p:4*p]
+	h, u, e, b := k.h, k.u, k.e, k.b
+	for c := range k.chains {
+		a := k.rng.Float64() * h
+		s0 := newKineticCoef(2, u, a)
+		s1 := newKineticCoef(2, u, h-a)
+		k.cx[c] = u * h * s1.c
+		k.cv[c] = u * h * s1.e
+		for i := range w1 {
+			z1 := k.rng.NormFloat64()
+			z2 := k.rng.NormFloat64()
+			z3 := k.rng.NormFloat64()
+			z4 := k.rng.NormFloat64()
+			w1[i], w2[i], w3[i] = midpointNoise(&s0, &s1, z1, z2, z3, z4)
+		}
+		m.ApplyFactor(w1, w1)
+		m.ApplyFactor(w2, w2)
+		m.ApplyFactor(w3, w3)
+		lo, hi := c*p, (c+1)*p
+		m.Apply(cg, g[lo:hi])
+		x, v := k.x[lo:hi], k.v[lo:hi]
+		xm, xn, vn := k.xmid[lo:hi], k.xnext[lo:hi], k.vnext[lo:hi]
+		for i, xi := range x {
+			vi := v[i]
+			xm[i] = xi + s0.c*vi + s0.ax*cg[i] + w1[i]
+			xn[i] = xi + b*vi + w2[i]
+			vn[i] = e*vi + w3[i]
+		}
+	}
 }
 
 // midpointNoise returns (W1, W2, W3) from four standard normals, given
@@ -221,6 +306,9 @@ func (k *Midpoint) MarshalBinary() ([]byte, error) {
 		w.floats("cx", k.cx...)
 		w.floats("cv", k.cv...)
 	}
+	writeMetric(w, "metric", k.pc.metric)
+	w.flag("pending", k.pendingSet)
+	writeMetric(w, "pendingmetric", k.pending)
 	w.stream("rng", k.src)
 	return w.bytes()
 }
@@ -241,10 +329,14 @@ func (k *Midpoint) UnmarshalBinary(b []byte) error {
 		m.xmid, m.xnext, m.vnext = r.floats("xmid", n), r.floats("xnext", n), r.floats("vnext", n)
 		m.cx, m.cv = r.floats("cx", chains), r.floats("cv", chains)
 	}
+	metric := readMetric(r, "metric", dim)
+	m.pendingSet = r.flag("pending")
+	m.pending = readMetric(r, "pendingmetric", dim)
 	m.src = r.stream("rng")
-	if err := r.check(m.steps >= 0 && positive(m.h) && positive(m.u), "step, inverse mass or step count"); err != nil {
+	if err := r.check(m.steps >= 0 && positive(m.h) && positive(m.u) && (m.mid || !m.pendingSet), "step, inverse mass, step count or phase"); err != nil {
 		return err
 	}
+	m.pc.set("Midpoint", metric, dim, 4*dim)
 	m.init()
 	*k = m
 	return nil
@@ -274,9 +366,40 @@ type OverdampedMidpoint struct {
 	reqX, reqMid Request
 	src          *rand.PCG
 	rng          *rand.Rand
+	pc           precond
+	pending      *Metric // set between the two requests of a step
+	pendingSet   bool
 }
 
-var _ Kernel = (*OverdampedMidpoint)(nil)
+var (
+	_ Kernel     = (*OverdampedMidpoint)(nil)
+	_ MetricUser = (*OverdampedMidpoint)(nil)
+)
+
+// SetMetric implements MetricUser: from the next step (a metric set
+// between the two requests of a step waits for the step to complete),
+// with C = L·Lᵀ,
+//
+//	y  = θ + αh·C·G(θ) + √2·L·B_{αh}
+//	θ' = θ + h·C·G(y) + √2·L·B_h,
+//
+// the method run on L⁻¹θ (derived here by that change of variables).
+func (k *OverdampedMidpoint) SetMetric(m *Metric) {
+	m = checkMetric("OverdampedMidpoint", m, k.dim)
+	if k.mid {
+		k.pending, k.pendingSet = m, true
+		return
+	}
+	k.pc.set("OverdampedMidpoint", m, k.dim, 3*k.dim)
+}
+
+// Metric implements MetricUser: the metric of the next step.
+func (k *OverdampedMidpoint) Metric() *Metric {
+	if k.pendingSet {
+		return orIdentity(k.pending, k.dim)
+	}
+	return orIdentity(k.pc.metric, k.dim)
+}
 
 // NewOverdampedMidpoint returns an OverdampedMidpoint kernel for chains
 // chains in dimension dim with step h, started at start (chains×dim
@@ -345,14 +468,55 @@ func (k *OverdampedMidpoint) Tell(a *Answer) bool {
 	h := k.h
 	if k.mid {
 		xn := k.xnext[:n]
-		for i := range k.x {
-			k.x[i] = xn[i] + h*g[i]
+		if m := k.pc.metric; m != nil {
+			p := k.dim
+			cg := k.pc.tmp[2*p : 3*p]
+			for c := range k.chains {
+				lo := c * p
+				m.Apply(cg, g[lo:lo+p])
+				for i := range cg {
+					k.x[lo+i] = xn[lo+i] + h*cg[i]
+				}
+			}
+		} else {
+			for i := range k.x {
+				k.x[i] = xn[i] + h*g[i]
+			}
 		}
 		k.mid = false
 		k.steps++
+		if k.pendingSet {
+			k.pendingSet = false
+			k.pc.set("OverdampedMidpoint", k.pending, k.dim, 3*k.dim)
+			k.pending = nil
+		}
 		return true
 	}
 	y, xn := k.y[:n], k.xnext[:n]
+	if m := k.pc.metric; m != nil {
+		p := k.dim
+		b1, bh, cg := k.pc.tmp[:p], k.pc.tmp[p:2*p], k.pc.tmp[2*p:3*p]
+		for c := range k.chains {
+			alpha := k.rng.Float64()
+			ah := alpha * h
+			s1, s2 := math.Sqrt(ah), math.Sqrt(h-ah)
+			for i := range b1 {
+				b1[i] = s1 * k.rng.NormFloat64()
+				bh[i] = b1[i] + s2*k.rng.NormFloat64()
+			}
+			m.ApplyFactor(b1, b1)
+			m.ApplyFactor(bh, bh)
+			lo := c * p
+			m.Apply(cg, g[lo:lo+p])
+			for i := range cg {
+				xi := k.x[lo+i]
+				y[lo+i] = xi + ah*cg[i] + math.Sqrt2*b1[i]
+				xn[lo+i] = xi + math.Sqrt2*bh[i]
+			}
+		}
+		k.mid = true
+		return false
+	}
 	for c := range k.chains {
 		alpha := k.rng.Float64()
 		ah := alpha * h
@@ -385,6 +549,9 @@ func (k *OverdampedMidpoint) MarshalBinary() ([]byte, error) {
 		w.floats("y", k.y...)
 		w.floats("xnext", k.xnext...)
 	}
+	writeMetric(w, "metric", k.pc.metric)
+	w.flag("pending", k.pendingSet)
+	writeMetric(w, "pendingmetric", k.pending)
 	w.stream("rng", k.src)
 	return w.bytes()
 }
@@ -404,10 +571,14 @@ func (k *OverdampedMidpoint) UnmarshalBinary(b []byte) error {
 	if m.mid {
 		m.y, m.xnext = r.floats("y", n), r.floats("xnext", n)
 	}
+	metric := readMetric(r, "metric", dim)
+	m.pendingSet = r.flag("pending")
+	m.pending = readMetric(r, "pendingmetric", dim)
 	m.src = r.stream("rng")
-	if err := r.check(m.steps >= 0 && positive(m.h), "step or step count"); err != nil {
+	if err := r.check(m.steps >= 0 && positive(m.h) && (m.mid || !m.pendingSet), "step, step count or phase"); err != nil {
 		return err
 	}
+	m.pc.set("OverdampedMidpoint", metric, dim, 3*dim)
 	m.init()
 	*k = m
 	return nil

@@ -30,12 +30,22 @@ type SGLD struct {
 	x           []float64 // chains×dim current positions
 	req         Request
 	noise       sgldNoise
+	pc          precond
 }
 
 var (
-	_ Kernel   = (*SGLD)(nil)
-	_ Preparer = (*SGLD)(nil)
+	_ Kernel     = (*SGLD)(nil)
+	_ Preparer   = (*SGLD)(nil)
+	_ MetricUser = (*SGLD)(nil)
 )
+
+// SetMetric implements MetricUser: from the next Tell every chain moves by
+// θ ← θ + h_t·C·ĝ_S(θ) + √(2h_t)·L·ξ (noise already drawn by Prepare is
+// standard normal and stays valid).
+func (k *SGLD) SetMetric(m *Metric) { k.pc.set("SGLD", m, k.dim, 2*k.dim) }
+
+// Metric implements MetricUser.
+func (k *SGLD) Metric() *Metric { return orIdentity(k.pc.metric, k.dim) }
 
 // SGLDSchedule is the decreasing step of Welling & Teh (THEORY.md §7.1):
 //
@@ -114,6 +124,14 @@ func (k *SGLD) Tell(a *Answer) bool {
 	h := k.Step()
 	s := math.Sqrt(2 * h)
 	g, z := a.Grad[:n], k.noise.draw()
+	if m := k.pc.metric; m != nil {
+		for c := range k.chains {
+			lo, hi := c*k.dim, (c+1)*k.dim
+			m.move(k.x[lo:hi], g[lo:hi], z[lo:hi], h, s, k.pc.tmp)
+		}
+		k.steps++
+		return true
+	}
 	for i := range k.x {
 		k.x[i] += h*g[i] + s*z[i]
 	}
@@ -141,6 +159,7 @@ func (k *SGLD) MarshalBinary() ([]byte, error) {
 	w.floats("schedule", k.sched.A, k.sched.B, k.sched.Gamma)
 	w.ints("steps", k.steps)
 	w.floats("x", k.x...)
+	writeMetric(w, "metric", k.pc.metric)
 	w.stream("rng", k.noise.saved())
 	return w.bytes()
 }
@@ -160,12 +179,14 @@ func (k *SGLD) UnmarshalBinary(b []byte) error {
 	}
 	steps := r.integer("steps")
 	x := r.floats("x", dim*chains)
+	metric := readMetric(r, "metric", dim)
 	src := r.stream("rng")
 	okStep := (sched.IsZero() && positive(h)) || (h == 0 && sched.valid())
 	if err := r.check(steps >= 0 && okStep, "step, schedule or step count"); err != nil {
 		return err
 	}
 	*k = SGLD{dim: dim, chains: chains, h: h, sched: sched, steps: steps, x: x}
+	k.SetMetric(metric)
 	k.noise.init(src, len(x))
 	k.req = Request{Need: NeedGradient, Rows: chains, Points: k.x, Chain: chainIndex(chains)}
 	return nil

@@ -66,12 +66,22 @@ type SGLDCV struct {
 	g0Norm, bestNorm     float64
 	reqSearch, reqSample Request
 	noise                sgldNoise
+	pc                   precond
 }
 
 var (
-	_ Kernel   = (*SGLDCV)(nil)
-	_ Preparer = (*SGLDCV)(nil)
+	_ Kernel     = (*SGLDCV)(nil)
+	_ Preparer   = (*SGLDCV)(nil)
+	_ MetricUser = (*SGLDCV)(nil)
 )
+
+// SetMetric implements MetricUser: from the next sampling step every
+// chain moves by θ ← θ + h·C·ĝ_CV(θ) + √(2h)·L·ξ. The fixed-point search
+// is not preconditioned.
+func (k *SGLDCV) SetMetric(m *Metric) { k.pc.set("SGLDCV", m, k.dim, 3*k.dim) }
+
+// Metric implements MetricUser.
+func (k *SGLDCV) Metric() *Metric { return orIdentity(k.pc.metric, k.dim) }
 
 // SGLDCVOptions are the settings of the fixed-point search. The zero value
 // gives the defaults.
@@ -228,6 +238,14 @@ func (k *SGLDCV) Tell(a *Answer) bool {
 	for c := range k.chains {
 		lo, hi := c*k.dim, (c+1)*k.dim
 		x, gc, gh, zc := k.x[lo:hi], g[lo:hi], gHat[lo:hi], z[lo:hi]
+		if m := k.pc.metric; m != nil {
+			est := k.pc.tmp[2*k.dim : 3*k.dim]
+			for j := range est {
+				est[j] = sgldcvEstimate(k.bestG[j], gc[j], gh[j])
+			}
+			m.move(x, est, zc, h, s, k.pc.tmp)
+			continue
+		}
 		for j := range x {
 			x[j] += h*sgldcvEstimate(k.bestG[j], gc[j], gh[j]) + s*zc[j]
 		}
@@ -326,6 +344,7 @@ func (k *SGLDCV) MarshalBinary() ([]byte, error) {
 	w.floats("prevgrad", k.prevG...)
 	w.floats("best", k.best...)
 	w.floats("bestgrad", k.bestG...)
+	writeMetric(w, "metric", k.pc.metric)
 	w.stream("rng", k.noise.saved())
 	return w.bytes()
 }
@@ -354,11 +373,13 @@ func (k *SGLDCV) UnmarshalBinary(b []byte) error {
 	r.fill("prevgrad", m.prevG)
 	r.fill("best", m.best)
 	r.fill("bestgrad", m.bestG)
+	metric := readMetric(r, "metric", dim)
 	src := r.stream("rng")
 	if r.err != nil {
 		return r.err
 	}
 	m.noise.init(src, len(m.x))
+	m.SetMetric(metric)
 	m.requests()
 	if m.sampling {
 		m.startSampling()

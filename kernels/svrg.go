@@ -43,12 +43,21 @@ type SVRG struct {
 	anchorG              []float64 // chains×dim full-data gradients at the anchors
 	reqAnchor, reqSample Request
 	noise                sgldNoise
+	pc                   precond
 }
 
 var (
-	_ Kernel   = (*SVRG)(nil)
-	_ Preparer = (*SVRG)(nil)
+	_ Kernel     = (*SVRG)(nil)
+	_ Preparer   = (*SVRG)(nil)
+	_ MetricUser = (*SVRG)(nil)
 )
+
+// SetMetric implements MetricUser: from the next sampling step every
+// chain moves by θ ← θ + h·C·ĝ(θ) + √(2h)·L·ξ.
+func (k *SVRG) SetMetric(m *Metric) { k.pc.set("SVRG", m, k.dim, 3*k.dim) }
+
+// Metric implements MetricUser.
+func (k *SVRG) Metric() *Metric { return orIdentity(k.pc.metric, k.dim) }
 
 // NewSVRG returns an SVRG kernel for chains chains in dimension dim with
 // constant step h, refreshing the anchors every every steps (τ ≥ 1),
@@ -153,6 +162,20 @@ func (k *SVRG) Tell(a *Answer) bool {
 	h := k.h
 	s := math.Sqrt(2 * h)
 	g, ga, z := a.Grad[:n], a.Grad[n:2*n], k.noise.draw()
+	if m := k.pc.metric; m != nil {
+		p := k.dim
+		est := k.pc.tmp[2*p : 3*p]
+		for c := range k.chains {
+			lo, hi := c*p, (c+1)*p
+			for j := range est {
+				est[j] = sgldcvEstimate(k.anchorG[lo+j], g[lo+j], ga[lo+j])
+			}
+			m.move(k.x[lo:hi], est, z[lo:hi], h, s, k.pc.tmp)
+		}
+		k.since++
+		k.steps++
+		return true
+	}
 	for i := range k.x {
 		k.x[i] += h*sgldcvEstimate(k.anchorG[i], g[i], ga[i]) + s*z[i]
 	}
@@ -176,6 +199,7 @@ func (k *SVRG) MarshalBinary() ([]byte, error) {
 	w.floats("x", k.x...)
 	w.floats("anchor", k.anchor...)
 	w.floats("anchorgrad", k.anchorG...)
+	writeMetric(w, "metric", k.pc.metric)
 	w.stream("rng", k.noise.saved())
 	return w.bytes()
 }
@@ -197,11 +221,13 @@ func (k *SVRG) UnmarshalBinary(b []byte) error {
 	r.fill("x", m.x)
 	r.fill("anchor", m.anchor)
 	r.fill("anchorgrad", m.anchorG)
+	metric := readMetric(r, "metric", dim)
 	src := r.stream("rng")
 	if r.err != nil {
 		return r.err
 	}
 	m.noise.init(src, len(m.x))
+	m.SetMetric(metric)
 	*k = m
 	return nil
 }
