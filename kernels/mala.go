@@ -60,8 +60,8 @@ type MALA struct {
 	req         Request
 	src         *rand.PCG
 	rng         *rand.Rand
-	metric      *Metric   // of the pending proposals; nil: the identity
-	pending     *Metric   // set by SetMetric, used from the next proposal
+	metric      *Metric // of the pending proposals; nil: the identity
+	pending     *Metric // set by SetMetric, used from the next proposal
 	pendingSet  bool
 	tmp         []float64 // 2·dim scratch for a metric
 }
