@@ -239,7 +239,7 @@ func TestStateRoundTripEveryKernel(t *testing.T) {
 				if err != nil {
 					t.Fatal(err)
 				}
-				r := reflect.New(reflect.TypeOf(k).Elem()).Interface().(Kernel)
+				r := newLike(k)
 				if err := r.UnmarshalBinary(b); err != nil {
 					t.Fatalf("after %d Tells: %v", tells, err)
 				}
@@ -263,3 +263,6 @@ func TestStateRoundTripEveryKernel(t *testing.T) {
 		})
 	}
 }
+
+// newLike returns a zero kernel of k's type.
+func newLike(k Kernel) Kernel { return reflect.New(reflect.TypeOf(k).Elem()).Interface().(Kernel) }
