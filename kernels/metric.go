@@ -196,7 +196,8 @@ func (m *Metric) Apply(dst, v []float64) {
 		}
 	default:
 		p := m.dim
-		blas64.Symv(1, blas64.Symmetric{N: p, Stride: p, Data: m.c, Uplo: blas.Lower},
+		// C is stored whole, so a general product reads contiguous rows.
+		blas64.Gemv(blas.NoTrans, 1, blas64.General{Rows: p, Cols: p, Stride: p, Data: m.c},
 			blas64.Vector{N: p, Inc: 1, Data: v}, 0, blas64.Vector{N: p, Inc: 1, Data: dst})
 	}
 }

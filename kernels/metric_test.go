@@ -504,3 +504,40 @@ func kineticDrive(k *Kinetic, eval func(*Request, *Answer), burnIn, steps int) [
 	}
 	return out
 }
+
+// BenchmarkMetricStep times one LMC step of one chain with the identity,
+// a diagonal and a dense metric at p = 100 and p = 1000, side by side
+// (the dense step adds two p×p products, C·g and L·ξ).
+func BenchmarkMetricStep(b *testing.B) {
+	for _, p := range []int{100, 1000} {
+		rng := rand.New(rand.NewPCG(uint64(p), 1))
+		d := make([]float64, p)
+		for i := range d {
+			d[i] = 0.5 + rng.Float64()
+		}
+		diagM, _ := NewDiagonalMetric(d)
+		c := make([]float64, p*p)
+		for i := range p {
+			for j := range p {
+				c[i*p+j] = 0.3 / (1 + math.Abs(float64(i-j)))
+			}
+			c[i*p+i] = 1
+		}
+		denseM := metricDense(b, p, c)
+		for _, m := range []*Metric{NewIdentityMetric(p), diagM, denseM} {
+			b.Run(fmt.Sprintf("p=%d/%v", p, m.Kind()), func(b *testing.B) {
+				k := NewLMC(p, 1, 1e-3, make([]float64, p), NewSource(1))
+				k.SetMetric(m)
+				a := NewAnswer(1, p)
+				for i := range a.Grad {
+					a.Grad[i] = rng.NormFloat64()
+				}
+				b.ReportAllocs()
+				for b.Loop() {
+					k.Next()
+					k.Tell(a)
+				}
+			})
+		}
+	}
+}
