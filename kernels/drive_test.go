@@ -32,7 +32,7 @@ func driveKernel(k Kernel, eval func(*Request, *Answer), burnIn, steps int) [][]
 
 // statOf returns the mean over all chains and draws of the series
 // f(draw) and its Monte Carlo standard error sd/√ESS, with the ESS of the
-// split chains from diag (THEORY.md §9 step 5).
+// split chains from diag (Vehtari, Gelman, Simpson, Carpenter and Bürkner 2021).
 func statOf(d [][][]float64, f func(x []float64) float64) (est, mcse float64) {
 	p, c, n := len(d), len(d[0]), len(d[0][0])
 	series := make([][]float64, c)

@@ -29,8 +29,8 @@ import (
 //	         accept t' if y < g(t'); else L ← t' if t' < 0, R ← t' if not
 //
 // Exactness. The update leaves the restriction of π to the line invariant
-// (it is reversible with respect to exp g: Neal 2003, §4.1 for stepping-out
-// with a capped, randomly split expansion budget, §4.2 for shrinkage), and
+// (it is reversible with respect to exp g: Neal 2003, Section 4.1 for stepping-out
+// with a capped, randomly split expansion budget, Section 4.2 for shrinkage), and
 // the direction is drawn independently of x with d and −d equally likely,
 // so every step is an exact π-invariant transition (hit-and-run with an
 // exact-invariance line move; no discretisation bias). The "exact 1-D

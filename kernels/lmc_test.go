@@ -61,7 +61,7 @@ func run(k kernels.Kernel, grad func([]float64, int, []float64), burnIn, steps i
 
 // moment returns, for the product of coordinates i and j of the draws
 // (mean zero known), the sample mean and its Monte Carlo standard error
-// sd/√ESS with ESS from diag (THEORY.md §9 step 5 on split chains).
+// sd/√ESS with ESS from diag (Vehtari, Gelman, Simpson, Carpenter and Bürkner 2021, on split chains).
 func moment(d [][][]float64, i, j int) (est, mcse float64) {
 	prod := make([][]float64, len(d[i]))
 	var s, s2 float64
@@ -82,7 +82,7 @@ func moment(d [][][]float64, i, j int) (est, mcse float64) {
 }
 
 // ULA on N(0, σ²) has the exact stationary variance σ²/(1 − h/(2σ²))
-// (THEORY.md §11a, derived: solve v = (1 − h/σ²)²v + 2h). The draws'
+// (derived here: solve v = (1 − h/σ²)²v + 2h). The draws'
 // second moment must match it within 4 MCSE, and for the larger steps it
 // must be distinguishable from σ² (more than 4 MCSE away).
 func TestLMCStationaryVariance1D(t *testing.T) {
@@ -90,7 +90,7 @@ func TestLMCStationaryVariance1D(t *testing.T) {
 		sigma2, h, want float64
 		biased          bool // bias larger than 4 MCSE expected
 	}{
-		{1, 0.1, 1.0526315789473684, true}, // THEORY.md §11a vectors
+		{1, 0.1, 1.0526315789473684, true}, // derived values
 		{2, 0.5, 2.2857142857142856, true},
 		{0.25, 0.1, 0.3125, true},
 		{1, 0.01, 1 / (1 - 0.005), false},
@@ -110,7 +110,7 @@ func TestLMCStationaryVariance1D(t *testing.T) {
 	}
 }
 
-// THEORY.md §11a: Q = [[2, .5], [.5, 1]], h = 0.2 gives the stationary
+// Derived here (discrete Lyapunov equation): Q = [[2, .5], [.5, 1]], h = 0.2 gives the stationary
 // covariance Σ_h = [Q(I − hQ/2)]⁻¹ = [[0.6968641115, −0.2787456446],
 // [−0.2787456446, 1.2543554007]]; every entry within 4 MCSE.
 func TestLMCStationaryCovariance2D(t *testing.T) {
@@ -134,7 +134,7 @@ func TestLMCStationaryCovariance2D(t *testing.T) {
 }
 
 // One exact update by hand: θ' = θ + h·g + √(2h)·ξ with ξ from the same
-// stream (THEORY.md §0.1).
+// stream (the package conventions, doc.go).
 func TestLMCUpdateByHand(t *testing.T) {
 	k := kernels.NewLMC(2, 2, 0.1, []float64{1, 2, 3, 4}, kernels.NewSource(9))
 	ref := kernels.RandNormals(9, 4)
@@ -154,7 +154,7 @@ func TestLMCUpdateByHand(t *testing.T) {
 	}
 }
 
-// Evaluation accounting: one gradient per chain per step (THEORY.md §13).
+// Evaluation accounting: one gradient per chain per step (by the method's definition).
 func TestLMCEvaluationsPerStep(t *testing.T) {
 	k := kernels.NewLMC(3, 5, 0.1, make([]float64, 3), kernels.NewSource(1))
 	if k.EvaluationsPerStep() != 5 {

@@ -7,7 +7,7 @@ import (
 )
 
 // MALA is the Metropolis-adjusted Langevin algorithm over a batch of chains
-// (THEORY.md §6). From x it proposes the LMC move
+// (Roberts & Tweedie, Bernoulli 2 (1996)). From x it proposes the LMC move
 //
 //	y = x + h·∇log π(x) + √(2h)·ξ,   ξ ~ N(0, I_p),   q(y | x) = N(y; x + h∇log π(x), 2h·I)
 //	log q(y | x) = −‖y − x − h∇log π(x)‖² / (4h)   (+ const)
@@ -31,7 +31,7 @@ import (
 // Step adaptation. One step size h is shared by all chains (they target the
 // same π). During the first burnIn steps it is adapted toward the
 // acceptance rate 0.574 (the optimal rate for MALA, Roberts & Rosenthal
-// 1998, THEORY.md §6) by a Robbins–Monro update on log h after every step
+// 1998) by a Robbins–Monro update on log h after every step
 // t = 1, 2, …:
 //
 //	log h ← log h + t^{−0.6}·(ᾱ_t − 0.574)
@@ -105,7 +105,7 @@ func (k *MALA) Metric() *Metric {
 }
 
 // malaTarget is the acceptance rate the step adaptation aims at
-// (THEORY.md §6).
+// (Roberts & Rosenthal 1998).
 const malaTarget = 0.574
 
 // NewMALA returns a MALA kernel for chains chains in dimension dim with
@@ -297,7 +297,7 @@ func malaLogAcceptMetric(x, y []float64, lpx, lpy float64, gx, gy []float64, h f
 	return (lpy - bwd/(4*h)) - (lpx - fwd/(4*h))
 }
 
-// malaLogAccept returns the log acceptance ratio A of THEORY.md §6 for a
+// malaLogAccept returns the log acceptance ratio A above for a
 // move from x to y given log π and ∇log π at both.
 func malaLogAccept(x, y []float64, lpx, lpy float64, gx, gy []float64, h float64) float64 {
 	var fwd, bwd float64 // ‖y − x − h gx‖², ‖x − y − h gy‖²

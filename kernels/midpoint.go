@@ -7,7 +7,7 @@ import (
 )
 
 // Midpoint is the randomised midpoint method for kinetic Langevin (Shen &
-// Lee, NeurIPS 2019; THEORY.md §5.1) over a batch of chains, for the
+// Lee, NeurIPS 2019) over a batch of chains, for the
 // diffusion of Kinetic with friction γ = 2:
 //
 //	dv = −2v dt + u ∇log π(x) dt + 2√u dB,   dx = v dt.
@@ -26,7 +26,7 @@ import (
 //	W3 = 2√u ∫₀ʰ e^{−2(h−s)} dB_s.
 //
 // (W1, W2, W3) are drawn from four normals per coordinate with the exact
-// joint law of THEORY.md §5.1 [derived]: (X0, V0) is the frozen-force
+// joint law derived here: (X0, V0) is the frozen-force
 // kinetic noise (Kinetic's 2×2 law) over [0, a] and (X1, V1) over [a, h],
 // independent, and
 //
@@ -344,7 +344,7 @@ func (k *Midpoint) UnmarshalBinary(b []byte) error {
 
 // OverdampedMidpoint is the randomised midpoint method for overdamped
 // Langevin dθ = ∇log π(θ) dt + √2 dB (RLMC; Shen & Lee, NeurIPS 2019;
-// THEORY.md §5.2) over a batch of chains. Each step draws α ~ U[0, 1) per
+// the Brownian coupling derived here) over a batch of chains. Each step draws α ~ U[0, 1) per
 // chain and, with G(·) = ∇log π(·) and z1, z2 ~ N(0, 1) per coordinate,
 //
 //	B_{αh} = √(αh)·z1,   B_h = B_{αh} + √((1 − α)h)·z2

@@ -13,7 +13,8 @@ import (
 )
 
 // Ozaki is Langevin Monte Carlo with the Ozaki (local linear)
-// discretisation over a batch of chains (THEORY.md §1.3). At θ_k it freezes
+// discretisation over a batch of chains (Ozaki 1992; Dalalyan,
+// JRSS B 79 (2017), the LMCO scheme). At θ_k it freezes
 // the linearisation of the drift, with g_k = ∇f(θ_k) = −∇log π(θ_k) and
 // H_k = ∇²f(θ_k) = −∇²log π(θ_k), and moves by the exact transition of the
 // resulting Ornstein–Uhlenbeck process over time h:
@@ -25,7 +26,8 @@ import (
 // covariance Σ_k = H_k⁻¹(I − e^{−2hH_k}) = V diag(φ₂) Vᵀ. The noise uses
 // the symmetric square root V diag(√φ₂) (the eigenvectors are already at
 // hand), not a Cholesky factor; both give the same Gaussian law. For a
-// Gaussian target the step is exact for every h (THEORY.md §11c). φ₁ and φ₂
+// Gaussian target the step is exact for every h (derived here: the
+// linearised SDE is then the SDE itself). φ₁ and φ₂
 // stay positive for λ ≤ 0, so indefinite Hessians are allowed (the step
 // then expands along those directions).
 //
@@ -115,7 +117,7 @@ func (w *ozakiWork) move(x, s, xi []float64, p int) {
 func ozakiVec(s []float64) blas64.Vector { return blas64.Vector{N: len(s), Inc: 1, Data: s} }
 
 // ozakiSeries is the bound on |hλ| below which φ₁ and φ₂ use their Taylor
-// series (THEORY.md §1.3).
+// series (derived here).
 const ozakiSeries = 1e-6
 
 // ozakiPhi1 is φ₁(λ) = (1 − e^{−hλ})/λ, computed as −expm1(−hλ)/λ, with the
@@ -242,7 +244,7 @@ func (k *Ozaki) UnmarshalBinary(b []byte) error {
 	return nil
 }
 
-// OzakiKrylov takes the step of Ozaki (THEORY.md §1.3) for large p, built
+// OzakiKrylov takes the step of Ozaki (Ozaki 1992) for large p, built
 // from Hessian-vector products instead of whole Hessians. Per chain
 // it needs two matrix functions of H = −∇²log π applied to one vector each,
 //

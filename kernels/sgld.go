@@ -6,8 +6,7 @@ import (
 	"math/rand/v2"
 )
 
-// SGLD is stochastic-gradient Langevin dynamics (Welling & Teh, ICML 2011;
-// THEORY.md §7.1) over a batch of chains. The client answers each request
+// SGLD is stochastic-gradient Langevin dynamics (Welling & Teh, ICML 2011) over a batch of chains. The client answers each request
 // with a minibatch estimate of the score,
 //
 //	ĝ_S(θ) = −[∇f₀(θ) + (N/n) Σ_{i∈S} ∇f_i(θ)]   (f₀ = −log prior, f_i = −log-likelihood of datum i)
@@ -47,7 +46,7 @@ func (k *SGLD) SetMetric(m *Metric) { k.pc.set("SGLD", m, k.dim, 2*k.dim) }
 // Metric implements MetricUser.
 func (k *SGLD) Metric() *Metric { return orIdentity(k.pc.metric, k.dim) }
 
-// SGLDSchedule is the decreasing step of Welling & Teh (THEORY.md §7.1):
+// SGLDSchedule is the decreasing step of Welling & Teh (2011):
 //
 //	ε_t = A·(B + t)^(−Gamma),   h_t = ε_t/2,   t = 0, 1, 2, ...
 //

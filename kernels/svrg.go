@@ -7,8 +7,7 @@ import (
 )
 
 // SVRG is SVRG-LD, Langevin dynamics with stochastic variance-reduced
-// gradients (Dubey, Reddi, Póczos, Smola, Xing & Williamson, NeurIPS 2016;
-// THEORY.md §7.3), over a batch of chains with a constant step h.
+// gradients (Dubey, Reddi, Póczos, Smola, Xing & Williamson, NeurIPS 2016), over a batch of chains with a constant step h.
 //
 // Every τ steps (before steps 0, τ, 2τ, ...) each chain sets its anchor
 // θ̃_c = θ_c and the kernel asks for the exact full-data gradient there:

@@ -8,7 +8,7 @@ import (
 	"gonum.org/v1/gonum/mat"
 )
 
-// THEORY.md §7 test vectors through the SVRG kernel, anchor θ̃ = 0.5 and
+// The project's logistic test vectors through the SVRG kernel, anchor θ̃ = 0.5 and
 // θ = 0.9: 36 chains start at 0.5, where the first (full-data) request
 // sets their anchors; the first sampling step is answered so that every
 // chain lands on 0.9 (to rounding: the answer is chosen from the step's
@@ -68,7 +68,7 @@ func TestSVRGTheoryVectors(t *testing.T) {
 }
 
 // Anchors refresh every τ steps at the current positions, and the
-// accounting is exact (THEORY.md §13): over T steps 2·chains·T minibatch
+// accounting is exact (by the method's definition): over T steps 2·chains·T minibatch
 // rows and chains·⌈T/τ⌉ full-data rows, one full-data request per anchor.
 func TestSVRGAnchorsAndEvaluations(t *testing.T) {
 	for _, tc := range []struct{ tau, steps int }{{1, 5}, {3, 7}, {3, 9}, {50, 7}} {
