@@ -7,15 +7,7 @@ import (
 	"testing"
 
 	"gonum.org/v1/gonum/mat"
-
-	"sluice/kernels/diag"
 )
-
-// kineticKernel is a kernel that carries velocities.
-type kineticKernel interface {
-	Kernel
-	Velocities() []float64
-}
 
 // kineticDiagGrad returns ∇log π for π = N(0, diag(1/λ)), row by row.
 func kineticDiagGrad(lambda []float64) func(points []float64, rows int, grad []float64) {
@@ -25,71 +17,6 @@ func kineticDiagGrad(lambda []float64) func(points []float64, rows int, grad []f
 			grad[i] = -lambda[i%p] * points[i]
 		}
 	}
-}
-
-// kineticRun drives k in-process with an exact gradient until it has
-// completed steps steps, answering every request, and returns per
-// coordinate and chain the draws after burnIn steps: out[coord][chain][draw]
-// with coordinates 0…p−1 the positions and, for a kernel with velocities,
-// p…2p−1 the velocities.
-func kineticRun(k Kernel, grad func([]float64, int, []float64), burnIn, steps int) [][][]float64 {
-	p, c := k.Dim(), k.Chains()
-	kv, withV := k.(kineticKernel)
-	out := make([][][]float64, p)
-	if withV {
-		out = make([][][]float64, 2*p)
-	}
-	for i := range out {
-		out[i] = make([][]float64, c)
-		for j := range out[i] {
-			out[i][j] = make([]float64, 0, max(steps-burnIn, 0))
-		}
-	}
-	a := NewAnswer(c, p)
-	for k.Steps() < steps {
-		req := k.Next()
-		grad(req.Points, req.Rows, a.Grad)
-		if !k.Tell(a) || k.Steps() <= burnIn {
-			continue
-		}
-		x := k.Positions()
-		for ch := range c {
-			for i := range p {
-				out[i][ch] = append(out[i][ch], x[ch*p+i])
-			}
-		}
-		if withV {
-			v := kv.Velocities()
-			for ch := range c {
-				for i := range p {
-					out[p+i][ch] = append(out[p+i][ch], v[ch*p+i])
-				}
-			}
-		}
-	}
-	return out
-}
-
-// kineticMoment returns, for the product of coordinates i and j of the
-// draws (mean zero known), the sample mean and its Monte Carlo standard
-// error sd/√ESS with ESS from diag on split chains (Vehtari, Gelman, Simpson, Carpenter and Bürkner 2021).
-func kineticMoment(d [][][]float64, i, j int) (est, mcse float64) {
-	prod := make([][]float64, len(d[i]))
-	var s, s2 float64
-	var n int
-	for ch := range d[i] {
-		prod[ch] = make([]float64, len(d[i][ch]))
-		for t := range prod[ch] {
-			v := d[i][ch][t] * d[j][ch][t]
-			prod[ch][t] = v
-			s += v
-			s2 += v * v
-			n++
-		}
-	}
-	est = s / float64(n)
-	sd := math.Sqrt((s2 - float64(n)*est*est) / float64(n-1))
-	return est, sd / math.Sqrt(diag.ESS(diag.SplitChains(prod)))
 }
 
 // kineticClose reports whether got is within rel·|want| (or rel when want
@@ -322,11 +249,11 @@ func TestKineticStationaryCovariance(t *testing.T) {
 	for n, tc := range kineticStationaryCases {
 		t.Run(fmt.Sprintf("λ=%v,u=%v,h=%v", tc.lambda, tc.u, tc.h), func(t *testing.T) {
 			k := NewKinetic(1, 16, tc.h, 2, tc.u, []float64{0}, nil, NewSource(100+uint64(n)))
-			d := kineticRun(k, kineticDiagGrad([]float64{tc.lambda}), 1000, 21000)
+			d := driveKernel(k, gradEval(kineticDiagGrad([]float64{tc.lambda})), 1000, 21000)
 			target := [2]float64{1 / tc.lambda, tc.u}
 			for i := range 2 {
 				for j := i; j < 2; j++ {
-					est, se := kineticMoment(d, i, j)
+					est, se := moment(d, i, j, 0, 0)
 					t.Logf("Σ[%d][%d] = %.5f ± %.5f (derived: %.5f)", i, j, est, se, tc.want[i][j])
 					if z := (est - tc.want[i][j]) / se; math.Abs(z) > 4 {
 						t.Errorf("Σ[%d][%d] = %.5f, derived %.5f, MCSE %.5f (z = %.1f)", i, j, est, tc.want[i][j], se, z)
@@ -384,7 +311,7 @@ func TestKineticDefaults(t *testing.T) {
 func TestKineticStateRoundTrip(t *testing.T) {
 	grad := kineticDiagGrad([]float64{2, 0.5})
 	k := NewKinetic(2, 3, 0.05, 1.5, 0.8, []float64{1, -1}, []float64{0.3, 0.1}, NewSource(5))
-	kineticRun(k, grad, 0, 10)
+	driveKernel(k, gradEval(grad), 0, 10)
 	state, err := k.MarshalBinary()
 	if err != nil {
 		t.Fatal(err)
@@ -397,8 +324,8 @@ func TestKineticStateRoundTrip(t *testing.T) {
 		t.Fatalf("restored header wrong: steps %d dim %d chains %d h %v γ %v u %v",
 			r.Steps(), r.Dim(), r.Chains(), r.Step(), r.Friction(), r.InverseMass())
 	}
-	a := kineticRun(k, grad, 10, 35)
-	b := kineticRun(&r, grad, 10, 35)
+	a := driveKernel(k, gradEval(grad), 10, 35)
+	b := driveKernel(&r, gradEval(grad), 10, 35)
 	for i := range a {
 		for c := range a[i] {
 			for s := range a[i][c] {

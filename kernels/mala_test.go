@@ -1,8 +1,7 @@
 package kernels
 
 // Internal tests: the MALA test vectors (computed for the project) need the unexported acceptance
-// ratio. The drivers and Monte Carlo error helpers (ozakiDrive, ozakiStat)
-// are in ozaki_test.go.
+// ratio. The driver and Monte Carlo error helpers are in drive_test.go.
 
 import (
 	"bytes"
@@ -14,7 +13,6 @@ import (
 	"gonum.org/v1/gonum/integrate"
 	"gonum.org/v1/gonum/mat"
 
-	"sluice/kernels/diag"
 	"sluice/kernels/targets"
 )
 
@@ -299,14 +297,7 @@ func TestMALAAdaptation(t *testing.T) {
 				}
 				rate += r / 16
 			}
-			var s, s2, n float64
-			for _, c := range acc {
-				for _, v := range c {
-					s, s2, n = s+v, s2+v*v, n+1
-				}
-			}
-			m := s / n
-			se := math.Sqrt((s2/n-m*m)*n/(n-1)) / math.Sqrt(diag.ESS(diag.SplitChains(acc)))
+			_, se := seriesMean(acc)
 			want, wse := malaExpectedAcceptance(t, target, h, 100000, seed+100)
 			t.Logf("h0 %v → h %.4f: acceptance %.4f ± %.4f, E_π[α(h)] = %.4f ± %.4f", h0, h, rate, se, want, wse)
 			if z := (rate - want) / math.Hypot(se, wse); math.Abs(z) > 4 {

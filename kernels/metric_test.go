@@ -443,7 +443,7 @@ func TestKineticMetricStationary(t *testing.T) {
 		k := NewKinetic(p, 16, h, 2, u, zero, nil, NewSource(31))
 		k.SetMetric(metricDense(t, p, metricSigma))
 		s := kineticScalarStationary(1, u, h)
-		d := kineticDrive(k, eval, 200, 20200)
+		d := driveKernel(k, eval, 200, 20200)
 		want := mat.NewDense(2*p, 2*p, nil)
 		for i := range p {
 			for j := range p {
@@ -475,34 +475,9 @@ func TestKineticMetricStationary(t *testing.T) {
 			want.Set(p+i, i, cd[i]*s[1][0])
 			want.Set(p+i, p+i, cd[i]*s[1][1])
 		}
-		d := kineticDrive(k, eval, 200, 20200)
+		d := driveKernel(k, eval, 200, 20200)
 		metricCheckMoments(t, d, make([]float64, 2*p), want)
 	})
-}
-
-// kineticDrive is driveKernel recording positions and then velocities as
-// coordinates 0…p−1 and p…2p−1.
-func kineticDrive(k *Kinetic, eval func(*Request, *Answer), burnIn, steps int) [][][]float64 {
-	p, c := k.Dim(), k.Chains()
-	out := make([][][]float64, 2*p)
-	for i := range out {
-		out[i] = make([][]float64, c)
-	}
-	a := &Answer{}
-	for k.Steps() < steps {
-		eval(k.Next(), a)
-		if !k.Tell(a) || k.Steps() <= burnIn {
-			continue
-		}
-		x, v := k.Positions(), k.Velocities()
-		for ch := range c {
-			for i := range p {
-				out[i][ch] = append(out[i][ch], x[ch*p+i])
-				out[p+i][ch] = append(out[p+i][ch], v[ch*p+i])
-			}
-		}
-	}
-	return out
 }
 
 // BenchmarkMetricStep times one LMC step of one chain with the identity,

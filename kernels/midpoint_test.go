@@ -266,10 +266,10 @@ func TestMidpointStationaryCovariance(t *testing.T) {
 	for n, tc := range midpointStationaryCases {
 		t.Run(fmt.Sprintf("λ=%v,u=%v,h=%v", tc.lambda, tc.u, tc.h), func(t *testing.T) {
 			k := NewMidpoint(1, 16, tc.h, tc.u, []float64{0}, nil, NewSource(200+uint64(n)))
-			d := kineticRun(k, kineticDiagGrad([]float64{tc.lambda}), 1000, 21000)
+			d := driveKernel(k, gradEval(kineticDiagGrad([]float64{tc.lambda})), 1000, 21000)
 			for i := range 2 {
 				for j := i; j < 2; j++ {
-					est, se := kineticMoment(d, i, j)
+					est, se := moment(d, i, j, 0, 0)
 					t.Logf("Σ[%d][%d] = %.5f ± %.5f (derived: %.5f)", i, j, est, se, tc.want[i][j])
 					if z := (est - tc.want[i][j]) / se; math.Abs(z) > 4 {
 						t.Errorf("Σ[%d][%d] = %.5f, derived %.5f, MCSE %.5f (z = %.1f)", i, j, est, tc.want[i][j], se, z)
@@ -277,7 +277,7 @@ func TestMidpointStationaryCovariance(t *testing.T) {
 				}
 			}
 			if tc.frozen != 0 {
-				if est, se := kineticMoment(d, 0, 0); math.Abs(est-tc.frozen) < 4*se {
+				if est, se := moment(d, 0, 0, 0, 0); math.Abs(est-tc.frozen) < 4*se {
 					t.Errorf("Var x = %.5f indistinguishable from the frozen scheme's %v (MCSE %.5f)", est, tc.frozen, se)
 				}
 			}
@@ -493,8 +493,8 @@ func TestMidpointOverdampedStationaryVariance(t *testing.T) {
 				t.Fatalf("closed form %.10f, derivation gives %.10f", v, tc.want)
 			}
 			k := NewOverdampedMidpoint(1, 16, tc.h, []float64{0}, NewSource(300+uint64(n)))
-			d := kineticRun(k, kineticDiagGrad([]float64{tc.lambda}), 1000, 21000)
-			est, se := kineticMoment(d, 0, 0)
+			d := driveKernel(k, gradEval(kineticDiagGrad([]float64{tc.lambda})), 1000, 21000)
+			est, se := moment(d, 0, 0, 0, 0)
 			t.Logf("Var θ = %.5f ± %.5f (derived: %.5f)", est, se, tc.want)
 			if z := (est - tc.want) / se; math.Abs(z) > 4 {
 				t.Errorf("Var θ = %.5f, derived %.5f, MCSE %.5f (z = %.1f)", est, tc.want, se, z)

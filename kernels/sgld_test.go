@@ -12,8 +12,6 @@ import (
 
 	"gonum.org/v1/gonum/floats"
 	"gonum.org/v1/gonum/mat"
-
-	"sluice/kernels/diag"
 )
 
 // This file holds the helpers shared by the tests of the three
@@ -24,80 +22,6 @@ import (
 
 // sgldOracle answers one request into a (a.Grad has room for the rows).
 type sgldOracle func(req *Request, a *Answer)
-
-// sgldCount tallies what a driver asked of its oracle.
-type sgldCount struct {
-	requests, rows, fullRows, fullRequests int
-}
-
-// sgldRun drives k until it has completed steps steps, answering every
-// request with answer, and records the positions after every completed
-// step s > burnIn with s % thin == 0: out[coord][chain][draw]. It counts
-// requests and rows, full-data ones apart.
-func sgldRun(k Kernel, answer sgldOracle, burnIn, steps, thin int) ([][][]float64, sgldCount) {
-	p, c := k.Dim(), k.Chains()
-	out := make([][][]float64, p)
-	for i := range out {
-		out[i] = make([][]float64, c)
-		for j := range out[i] {
-			out[i][j] = make([]float64, 0, max(steps-burnIn, 0)/thin+1)
-		}
-	}
-	var n sgldCount
-	a := NewAnswer(2*c, p)
-	for k.Steps() < steps {
-		req := k.Next()
-		n.requests++
-		n.rows += req.Rows
-		if req.Need.Has(NeedFullData) {
-			n.fullRequests++
-			n.fullRows += req.Rows
-		}
-		answer(req, a)
-		if !k.Tell(a) || k.Steps() <= burnIn || k.Steps()%thin != 0 {
-			continue
-		}
-		x := k.Positions()
-		for ch := range c {
-			for i := range p {
-				out[i][ch] = append(out[i][ch], x[ch*p+i])
-			}
-		}
-	}
-	return out, n
-}
-
-// sgldMoment returns the sample mean of (x_i − mi)(x_j − mj) over the
-// draws d and its Monte Carlo standard error sd/√ESS, ESS from diag on
-// split chains (Vehtari, Gelman, Simpson, Carpenter and Bürkner 2021).
-func sgldMoment(d [][][]float64, i, j int, mi, mj float64) (est, mcse float64) {
-	prod := make([][]float64, len(d[i]))
-	for ch := range d[i] {
-		prod[ch] = make([]float64, len(d[i][ch]))
-		for t := range prod[ch] {
-			prod[ch][t] = (d[i][ch][t] - mi) * (d[j][ch][t] - mj)
-		}
-	}
-	return sgldSeriesMean(prod)
-}
-
-// sgldMean returns the sample mean of coordinate i and its MCSE.
-func sgldMean(d [][][]float64, i int) (est, mcse float64) { return sgldSeriesMean(d[i]) }
-
-func sgldSeriesMean(x [][]float64) (est, mcse float64) {
-	var s, s2 float64
-	var n int
-	for _, c := range x {
-		for _, v := range c {
-			s += v
-			s2 += v * v
-			n++
-		}
-	}
-	est = s / float64(n)
-	sd := math.Sqrt((s2 - float64(n)*est*est) / float64(n-1))
-	return est, sd / math.Sqrt(diag.ESS(diag.SplitChains(x)))
-}
 
 // The project's 1-D logistic regression test problem: prior N(0, 1), so
 // f₀ = θ²/2, and f_i = log(1 + e^{θx_i}) − y_iθx_i, N = 6.
@@ -307,8 +231,8 @@ func TestSGLDNoisyGradientVariance1D(t *testing.T) {
 			}
 			k := NewSGLD(1, 16, tc.h, SGLDSchedule{}, []float64{0}, NewSource(42))
 			orc := sgldNoisyGauss([]float64{tc.lambda}, []float64{math.Sqrt(tc.s2)}, 1, 7)
-			d, _ := sgldRun(k, orc, 2000, 22000, 1)
-			est, se := sgldMoment(d, 0, 0, 0, 0)
+			d, _ := drive(k, orc, 2000, 22000, 1)
+			est, se := moment(d, 0, 0, 0, 0)
 			if z := (est - tc.want) / se; math.Abs(z) > 4 {
 				t.Errorf("variance %.5f, exact %.5f, MCSE %.5f (z = %.1f)", est, tc.want, se, z)
 			}
@@ -329,10 +253,10 @@ func TestSGLDNoisyGradientCovariance2D(t *testing.T) {
 	l := []float64{1, 0, l21, math.Sqrt(2 - l21*l21)} // Cholesky factor of C
 	want := [2][2]float64{{0.7670238643, -0.3001249096}, {-0.3001249096, 1.4880284005}}
 	k := NewSGLD(2, 16, 0.2, SGLDSchedule{}, []float64{0, 0}, NewSource(3))
-	d, _ := sgldRun(k, sgldNoisyGauss(q, l, 2, 5), 1000, 21000, 1)
+	d, _ := drive(k, sgldNoisyGauss(q, l, 2, 5), 1000, 21000, 1)
 	for i := range 2 {
 		for j := i; j < 2; j++ {
-			est, se := sgldMoment(d, i, j, 0, 0)
+			est, se := moment(d, i, j, 0, 0)
 			if z := (est - want[i][j]) / se; math.Abs(z) > 4 {
 				t.Errorf("Σ[%d][%d] = %.5f, exact %.5f, MCSE %.5f (z = %.1f)", i, j, est, want[i][j], se, z)
 			}
@@ -340,7 +264,7 @@ func TestSGLDNoisyGradientCovariance2D(t *testing.T) {
 	}
 	// Without the h²C term (exact-gradient ULA, the exact-gradient ULA covariance (derived here)) Σ[1][1]
 	// would be 1.2543554007: the test sees the noise.
-	if est, se := sgldMoment(d, 1, 1, 0, 0); math.Abs(est-1.2543554007) < 4*se {
+	if est, se := moment(d, 1, 1, 0, 0); math.Abs(est-1.2543554007) < 4*se {
 		t.Errorf("Σ[1][1] = %.5f indistinguishable from noiseless ULA (MCSE %.5f)", est, se)
 	}
 }
@@ -358,7 +282,7 @@ func TestSGLDEvaluationsPerStep(t *testing.T) {
 			t.Fatalf("row %d attributed to chain %d", i, c)
 		}
 	}
-	_, n := sgldRun(k, func(req *Request, a *Answer) {}, 0, 7, 1)
+	_, n := drive(k, func(req *Request, a *Answer) {}, 0, 7, 1)
 	if k.EvaluationsPerStep() != 5 || n.rows != 35 || n.requests != 7 || n.fullRows != 0 || k.Steps() != 7 {
 		t.Fatalf("evaluations per step %d, rows %d in %d requests, full-data %d, steps %d",
 			k.EvaluationsPerStep(), n.rows, n.requests, n.fullRows, k.Steps())
@@ -370,8 +294,8 @@ func TestSGLDEvaluationsPerStep(t *testing.T) {
 // and the final states marshal to the same bytes.
 func sgldSameRun(t *testing.T, k, r Kernel, mk func() sgldOracle, steps int) {
 	t.Helper()
-	a, _ := sgldRun(k, mk(), 0, k.Steps()+steps, 1)
-	b, _ := sgldRun(r, mk(), 0, r.Steps()+steps, 1)
+	a, _ := drive(k, mk(), 0, k.Steps()+steps, 1)
+	b, _ := drive(r, mk(), 0, r.Steps()+steps, 1)
 	for i := range a {
 		for c := range a[i] {
 			if len(a[i][c]) != steps || len(b[i][c]) != steps {
@@ -404,7 +328,7 @@ func TestSGLDStateRoundTrip(t *testing.T) {
 			}
 			for _, prepared := range []bool{false, true} {
 				k := NewSGLD(2, 3, h, sched, []float64{1, -1}, NewSource(5))
-				sgldRun(k, mk(), 0, 10, 1)
+				drive(k, mk(), 0, 10, 1)
 				k.Next()
 				if prepared {
 					k.Prepare()
@@ -956,14 +880,14 @@ func sgldCheckRegression(t *testing.T, d [][][]float64, reg *sgldRegression, wan
 	t.Helper()
 	p := reg.p
 	for i := range p {
-		est, se := sgldMean(d, i)
+		est, se := seriesMean(d[i])
 		if z := (est - reg.mu[i]) / se; math.Abs(z) > zMean {
 			t.Errorf("mean of %s %.5f, exact posterior %.5f, MCSE %.5f (z = %.1f)", sgldDiabetesColumns[i], est, reg.mu[i], se, z)
 		}
 	}
 	for i := range p {
 		for j := i; j < p; j++ {
-			est, se := sgldMoment(d, i, j, reg.mu[i], reg.mu[j])
+			est, se := moment(d, i, j, reg.mu[i], reg.mu[j])
 			if z := (est - want.At(i, j)) / se; math.Abs(z) > 4 {
 				t.Errorf("Σ[%d][%d] = %.6g, predicted %.6g, MCSE %.2g (z = %.1f)", i, j, est, want.At(i, j), se, z)
 			}
@@ -979,7 +903,7 @@ func sgldCheckRegression(t *testing.T, d [][][]float64, reg *sgldRegression, wan
 			}
 		}
 	}
-	est, se := sgldSeriesMean(tr)
+	est, se := seriesMean(tr)
 	if z := (est - mat.Trace(want)) / se; math.Abs(z) > 4 {
 		t.Errorf("trace %.6g, predicted %.6g, MCSE %.2g (z = %.1f)", est, mat.Trace(want), se, z)
 	}
@@ -1026,7 +950,7 @@ func TestSGLDDiabetesRegression(t *testing.T) {
 	exact, approx := pr.sgld()
 	k := NewSGLD(reg.p, sgldRegChains, sgldRegStep, SGLDSchedule{}, make([]float64, reg.p), NewSource(21))
 	o := sgldNewMinibatch(reg, sgldRegBatch, 22)
-	d, n := sgldRun(k, o.answer, sgldRegBurnIn, sgldRegSteps, sgldRegThin)
+	d, n := drive(k, o.answer, sgldRegBurnIn, sgldRegSteps, sgldRegThin)
 	if n.fullRows != 0 || n.rows != sgldRegChains*sgldRegSteps {
 		t.Fatalf("%d rows, %d full-data", n.rows, n.fullRows)
 	}

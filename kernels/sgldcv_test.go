@@ -201,7 +201,7 @@ func TestSGLDCVTheoryVectors(t *testing.T) {
 // once, then 2·chains minibatch rows per step.
 func TestSGLDCVEvaluationsPerStep(t *testing.T) {
 	k := NewSGLDCV(1, 5, 0.1, SGLDCVOptions{}, []float64{0.3}, NewSource(1))
-	_, n := sgldRun(k, sgldPairOracle(t), 0, 7, 1)
+	_, n := drive(k, sgldPairOracle(t), 0, 7, 1)
 	if k.EvaluationsPerStep() != 10 || n.fullRows != k.Iterations()+1 || n.fullRequests != n.fullRows ||
 		n.rows != n.fullRows+70 || n.requests != n.fullRequests+7 {
 		t.Fatalf("evaluations per step %d, iterations %d, counts %+v", k.EvaluationsPerStep(), k.Iterations(), n)
@@ -266,7 +266,7 @@ func TestSGLDCVDiabetesRegression(t *testing.T) {
 	pr := sgldNewPrediction(reg, sgldRegStep, sgldRegBatch)
 	k := NewSGLDCV(reg.p, sgldRegChains, sgldRegStep, SGLDCVOptions{}, make([]float64, reg.p), NewSource(31))
 	o := sgldNewMinibatch(reg, sgldRegBatch, 32)
-	d, n := sgldRun(k, o.answer, sgldRegBurnIn, sgldRegSteps, sgldRegThin)
+	d, n := drive(k, o.answer, sgldRegBurnIn, sgldRegSteps, sgldRegThin)
 	th, _ := k.FixedPoint()
 	var eig mat.EigenSym
 	if !eig.Factorize(reg.q, false) {

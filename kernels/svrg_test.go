@@ -103,7 +103,7 @@ func TestSVRGAnchorsAndEvaluations(t *testing.T) {
 			}
 		}
 		k2 := NewSVRG(1, 4, 0.1, tc.tau, []float64{0.1, 0.2, 0.3, 0.4}, NewSource(2))
-		_, n := sgldRun(k2, sgldPairOracle(t), 0, tc.steps, 1)
+		_, n := drive(k2, sgldPairOracle(t), 0, tc.steps, 1)
 		wantAnchors := (tc.steps + tc.tau - 1) / tc.tau
 		if anchors != wantAnchors || n.fullRequests != wantAnchors || n.fullRows != 4*wantAnchors ||
 			n.rows != n.fullRows+2*4*tc.steps || k2.EvaluationsPerStep() != 8 || k2.AnchorEvery() != tc.tau {
@@ -175,7 +175,7 @@ func TestSVRGDiabetesRegression(t *testing.T) {
 	want.Scale(1/float64(kept), want)
 	k := NewSVRG(reg.p, sgldRegChains, sgldRegStep, tau, make([]float64, reg.p), NewSource(41))
 	o := sgldNewMinibatch(reg, sgldRegBatch, 42)
-	d, n := sgldRun(k, o.answer, sgldRegBurnIn, sgldRegSteps, sgldRegThin)
+	d, n := drive(k, o.answer, sgldRegBurnIn, sgldRegSteps, sgldRegThin)
 	anchors := (sgldRegSteps + tau - 1) / tau
 	if n.fullRows != sgldRegChains*anchors || n.rows != n.fullRows+2*sgldRegChains*sgldRegSteps {
 		t.Fatalf("counts %+v", n)
