@@ -111,10 +111,31 @@ func (k *Kinetic) Steps() int { return k.steps }
 // Step returns the step size h.
 func (k *Kinetic) Step() float64 { return k.h }
 
+// SetStep changes the step size h from the next Tell. It panics on a
+// non-positive or non-finite h.
+func (k *Kinetic) SetStep(h float64) { k.setCoef(h, k.gamma, k.u) }
+
+// SetFriction changes the friction γ from the next Tell. It panics on a
+// non-positive or non-finite γ.
+func (k *Kinetic) SetFriction(gamma float64) { k.setCoef(k.h, gamma, k.u) }
+
+// SetInverseMass changes the scalar inverse mass u from the next Tell
+// (with a metric C the inverse mass is u·C). It panics on a non-positive
+// or non-finite u.
+func (k *Kinetic) SetInverseMass(u float64) { k.setCoef(k.h, k.gamma, u) }
+
+func (k *Kinetic) setCoef(h, gamma, u float64) {
+	if !positive(h) || !positive(gamma) || !positive(u) {
+		panic(fmt.Sprintf("kernels: Kinetic step %v, friction %v, inverse mass %v", h, gamma, u))
+	}
+	k.h, k.gamma, k.u, k.c = h, gamma, u, newKineticCoef(gamma, u, h)
+}
+
 // Friction returns γ.
 func (k *Kinetic) Friction() float64 { return k.gamma }
 
-// InverseMass returns u.
+// InverseMass returns the scalar inverse mass u (the inverse mass is
+// u·C with a metric C).
 func (k *Kinetic) InverseMass() float64 { return k.u }
 
 // EvaluationsPerStep implements Kernel: one gradient per chain.

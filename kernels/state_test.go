@@ -156,6 +156,15 @@ func FuzzStateRecord(f *testing.F) {
 		b, _ := k.MarshalBinary()
 		f.Add(b)
 	}
+	dense, _ := NewDenseMetric(3, metricSigma)
+	for _, k := range metricKernels() {
+		k.(MetricUser).SetMetric(dense)
+		a := &Answer{}
+		stateTestEval(k.Next(), a)
+		k.Tell(a)
+		b, _ := k.MarshalBinary()
+		f.Add(b)
+	}
 	f.Fuzz(func(t *testing.T, b []byte) {
 		r, err := readState(b, "Sample")
 		if err == nil {
