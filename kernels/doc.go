@@ -22,11 +22,11 @@
 //	          one gradient per chain per step.
 //	kinetic   underdamped Langevin with the exact integration of the
 //	          frozen-gradient step (Cheng, Chatterji, Bartlett & Jordan,
-//	          COLT 2018); friction γ, inverse mass u;
-//	          velocities kept in state; one gradient per chain per step.
+//	          COLT 2018); friction γ, inverse mass u; velocities kept in
+//	          state; one gradient per chain per step.
 //	midpoint  randomised midpoint for underdamped Langevin, γ = 2 (Shen &
-//	          Lee, NeurIPS 2019); two gradients per chain
-//	          per step (position, then midpoint).
+//	          Lee, NeurIPS 2019); two gradients per chain per step
+//	          (position, then midpoint).
 //	midpoint-overdamped
 //	          randomised midpoint for overdamped Langevin (Shen & Lee 2019);
 //	          two gradients per chain per step.
@@ -41,10 +41,11 @@
 //	ozaki-krylov
 //	          the same with φ-functions applied by Lanczos from
 //	          Hessian-vector products, accuracy controlled and reported.
-//	sgld      stochastic-gradient Langevin (Welling & Teh, ICML 2011): θ ← θ + h_t·ĝ_S + √(2h_t)ξ, h_t constant or
-//	          ε_t/2 with ε_t = a(b+t)^(−γ); one gradient per chain per step.
-//	sgld-cv   SGLD with a control variate (Baker et al.
-//	          2019): a Barzilai–Borwein search for θ̂ with full-data
+//	sgld      stochastic-gradient Langevin (Welling & Teh, ICML 2011):
+//	          θ ← θ + h_t·ĝ_S + √(2h_t)ξ, h_t constant or ε_t/2 with
+//	          ε_t = a(b+t)^(−γ); one gradient per chain per step.
+//	sgld-cv   SGLD with a control variate (Baker et al. 2019): a
+//	          Barzilai–Borwein search for θ̂ with full-data
 //	          gradients, then ĝ = g(θ̂) + ĝ_S(θ) − ĝ_S(θ̂); two rows per
 //	          chain per step on one minibatch.
 //	svrg      SVRG Langevin (Dubey et al. 2016): full-data
