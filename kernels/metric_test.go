@@ -584,3 +584,44 @@ func TestMidpointMetricStationary(t *testing.T) {
 		metricCheckMoments(t, driveKernel(k, eval, 200, 20200), zero, want)
 	})
 }
+
+// With exact gradients the stochastic-gradient kernels are LMC (Welling
+// and Teh 2011 with no minibatch noise; the control variates of Baker et
+// al. 2019 and Dubey et al. 2016 then cancel to rounding), and they draw
+// their noise in LMC's order, so with the same dense metric and seed
+// their draws must equal LMC's: bit for bit for SGLD (same arithmetic),
+// to 1e-12 relative for SGLD-CV and SVRG over 20 steps. SGLD-CV's search
+// draws nothing and leaves the chains at their start.
+func TestStochasticGradientMetricMatchesLMC(t *testing.T) {
+	p, c, h := 3, 2, 0.05
+	x0 := []float64{0.5, -0.25, 1, 0.1, 0.2, -0.3}
+	dense := metricDense(t, p, metricSigma)
+	eval, _ := metricGaussianEval(t, metricMu, metricSigma)
+	for _, k := range []Kernel{
+		NewSGLD(p, c, h, SGLDSchedule{}, x0, NewSource(9)),
+		NewSGLDCV(p, c, h, SGLDCVOptions{}, x0, NewSource(9)),
+		NewSVRG(p, c, h, 4, x0, NewSource(9)),
+	} {
+		t.Run(fmt.Sprintf("%T", k), func(t *testing.T) {
+			ref := NewLMC(p, c, h, x0, NewSource(9))
+			ref.SetMetric(dense)
+			k.(MetricUser).SetMetric(dense)
+			a, ar := &Answer{}, &Answer{}
+			for k.Steps() < 20 {
+				eval(k.Next(), a)
+				if !k.Tell(a) {
+					continue
+				}
+				eval(ref.Next(), ar)
+				ref.Tell(ar)
+				if _, plain := k.(*SGLD); plain {
+					if !hitrunEqualBits(k.Positions(), ref.Positions()) {
+						t.Fatalf("step %d: SGLD differs from LMC", k.Steps())
+					}
+					continue
+				}
+				metricClose(t, fmt.Sprintf("step %d", k.Steps()), k.Positions(), ref.Positions(), 1e-12)
+			}
+		})
+	}
+}
