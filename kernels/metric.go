@@ -270,10 +270,11 @@ func (m *Metric) move(x, g, z []float64, h, s float64, tmp []float64) {
 
 // MetricUser is implemented by the kernels that accept a preconditioner
 // (lmc, kinetic, midpoint, midpoint-overdamped, mala, sgld, sgld-cv and
-// svrg). SetMetric takes effect at the next step: a step already begun
-// (a request out, or noise drawn ahead by Prepare) finishes with the old
-// metric's arithmetic only where the kernel says so; in every kernel here
-// the new metric is used from the next Tell that starts a step. A nil
+// svrg). SetMetric takes effect at the next step: the single-request
+// kernels use it from the next Tell; the midpoint kernels, given it
+// between the two requests of a step, finish that step with the old one;
+// MALA keeps the old one for the proposals already out (and their
+// acceptance ratio) and uses the new one from the next proposal. A nil
 // metric means the identity, whose draws are bit for bit those of the
 // kernel without a metric. The metric is part of the kernel's
 // checkpointed state. A driver that changes the metric should re-choose
