@@ -22,33 +22,33 @@
 //	          one gradient per chain per step.
 //	kinetic   underdamped Langevin with the exact integration of the
 //	          frozen-gradient step (Cheng, Chatterji, Bartlett & Jordan,
-//	          COLT 2018; THEORY.md §4.1); friction γ, inverse mass u;
-//	          velocities kept in state; one gradient per chain per step.
+//	          COLT 2018); friction γ, inverse mass u; velocities kept in
+//	          state; one gradient per chain per step.
 //	midpoint  randomised midpoint for underdamped Langevin, γ = 2 (Shen &
-//	          Lee, NeurIPS 2019; THEORY.md §5.1); two gradients per chain
-//	          per step (position, then midpoint).
+//	          Lee, NeurIPS 2019); two gradients per chain per step
+//	          (position, then midpoint).
 //	midpoint-overdamped
-//	          randomised midpoint for overdamped Langevin (THEORY.md §5.2);
+//	          randomised midpoint for overdamped Langevin (Shen & Lee 2019);
 //	          two gradients per chain per step.
-//	mala      Metropolis-adjusted Langevin (THEORY.md §6): proposal
+//	mala      Metropolis-adjusted Langevin (Roberts & Tweedie 1996): proposal
 //	          y = x + h∇log π(x) + √(2h)ξ, accepted with the exact
 //	          Metropolis–Hastings ratio; log density and gradient at one
 //	          proposal per chain per step, plus the start once; h adapted
 //	          toward 0.574 acceptance during burn-in only.
-//	ozaki     local linear (Ozaki) discretisation (THEORY.md §1.3):
+//	ozaki     local linear (Ozaki) discretisation (Ozaki 1992; Dalalyan 2017):
 //	          θ' = θ − H⁻¹(I − e^{−hH})g + Σ^{1/2}ξ, Σ = H⁻¹(I − e^{−2hH}),
 //	          H = −∇²log π; gradient and dense Hessian per chain per step.
 //	ozaki-krylov
 //	          the same with φ-functions applied by Lanczos from
 //	          Hessian-vector products, accuracy controlled and reported.
-//	sgld      stochastic-gradient Langevin (Welling & Teh, ICML 2011;
-//	          THEORY.md §7.1): θ ← θ + h_t·ĝ_S + √(2h_t)ξ, h_t constant or
-//	          ε_t/2 with ε_t = a(b+t)^(−γ); one gradient per chain per step.
-//	sgld-cv   SGLD with a control variate (Baker et al. 2019; THEORY.md
-//	          §7.2): a Barzilai–Borwein search for θ̂ with full-data
+//	sgld      stochastic-gradient Langevin (Welling & Teh, ICML 2011):
+//	          θ ← θ + h_t·ĝ_S + √(2h_t)ξ, h_t constant or ε_t/2 with
+//	          ε_t = a(b+t)^(−γ); one gradient per chain per step.
+//	sgld-cv   SGLD with a control variate (Baker et al. 2019): a
+//	          Barzilai–Borwein search for θ̂ with full-data
 //	          gradients, then ĝ = g(θ̂) + ĝ_S(θ) − ĝ_S(θ̂); two rows per
 //	          chain per step on one minibatch.
-//	svrg      SVRG Langevin (Dubey et al. 2016; THEORY.md §7.3): full-data
+//	svrg      SVRG Langevin (Dubey et al. 2016): full-data
 //	          anchors every τ steps, ĝ = g̃ + ĝ_S(θ) − ĝ_S(θ̃); two rows per
 //	          chain per step plus one full-data row per chain every τ steps.
 //	hit-and-run
@@ -62,5 +62,11 @@
 //	          ratio is recorded (Violation) and fails the session.
 //
 // References: Dalalyan, JRSS B 79 (2017) 651–676; Durmus & Moulines,
-// Ann. Appl. Probab. 27 (2017); the project's THEORY.md §0.1.
+// Ann. Appl. Probab. 27 (2017).
+//
+// Preconditioning: lmc, kinetic, midpoint, midpoint-overdamped, mala, sgld,
+// sgld-cv and svrg take an optional Metric C (MetricUser), with which they
+// sample the same π (Roberts & Stramer 2002 for MALA; a change of variables
+// y = L⁻¹x, C = LLᵀ, for the others). Every kernel's state goes through one
+// codec (a versioned record of named fields).
 package kernels

@@ -24,7 +24,7 @@ type essCase struct {
 // BenchmarkESSPerEvaluation prints one table: for every kernel at its
 // best stable step on a p = 100 Gaussian with condition number 100
 // (precision diag(λ), λ log-spaced from 1 to 100), the smallest ESS of
-// the mean over the coordinates (THEORY.md §9 step 7 on split chains)
+// the mean over the coordinates (Vehtari et al. 2021 on split chains)
 // per point evaluated, and the largest relative error of the stationary
 // variances at that step (the discretisation bias the ESS does not see;
 // exact variances 1/λ; the figure includes Monte Carlo error, about

@@ -15,3 +15,10 @@ func randNormals(seed uint64, n int) []float64 {
 
 // RandNormals exposes randNormals to the external test package.
 var RandNormals = randNormals
+
+// The shared test driver and moment helper, for the external test package.
+var (
+	DriveKernel = driveKernel
+	GradEval    = gradEval
+	Moment      = moment
+)

@@ -1,8 +1,6 @@
 package kernels
 
 import (
-	"encoding/binary"
-	"errors"
 	"fmt"
 	"math"
 	"math/rand/v2"
@@ -31,8 +29,8 @@ import (
 //	         accept t' if y < g(t'); else L ← t' if t' < 0, R ← t' if not
 //
 // Exactness. The update leaves the restriction of π to the line invariant
-// (it is reversible with respect to exp g: Neal 2003, §4.1 for stepping-out
-// with a capped, randomly split expansion budget, §4.2 for shrinkage), and
+// (it is reversible with respect to exp g: Neal 2003, Section 4.1 for stepping-out
+// with a capped, randomly split expansion budget, Section 4.2 for shrinkage), and
 // the direction is drawn independently of x with d and −d equally likely,
 // so every step is an exact π-invariant transition (hit-and-run with an
 // exact-invariance line move; no discretisation bias). The "exact 1-D
@@ -378,105 +376,101 @@ func (k *HitAndRun) propose(c int) {
 	k.t[c] = k.lo[c] + k.rng.Float64()*(k.hi[c]-k.lo[c])
 }
 
-const hitrunMagic = "sluice.hitrun.v1"
-
 // MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
 // width, expansion cap, completed steps, evaluation counts, every chain's
 // stage, expansion budget, position, log density, direction, level,
 // interval, pending proposal and accepted point, and the random stream's
 // state. A state taken in the middle of a step resumes it exactly.
 func (k *HitAndRun) MarshalBinary() ([]byte, error) {
-	rs, err := k.src.MarshalBinary()
-	if err != nil {
-		return nil, err
+	w := newStateWriter("HitAndRun")
+	w.ints("dim", k.dim)
+	w.ints("chains", k.chains)
+	w.floats("width", k.w)
+	w.ints("m", k.m)
+	w.ints("steps", k.steps)
+	w.flag("ready", k.ready)
+	w.ints("evals", k.evals, k.stepEvals, k.curEvals)
+	stage := make([]int, k.chains)
+	for i, s := range k.stage {
+		stage[i] = int(s)
 	}
-	c, n := k.chains, len(k.x)
-	b := make([]byte, 0, len(hitrunMagic)+8*(9+3*c+4*n+6*c)+len(rs))
-	b = append(b, hitrunMagic...)
-	u := func(v uint64) { b = binary.LittleEndian.AppendUint64(b, v) }
-	u(uint64(k.dim))
-	u(uint64(c))
-	u(math.Float64bits(k.w))
-	u(uint64(k.m))
-	u(uint64(k.steps))
-	u(hitrunBit(k.ready))
-	u(uint64(k.evals))
-	u(uint64(k.stepEvals))
-	u(uint64(k.curEvals))
-	for i := range c {
-		u(uint64(k.stage[i]))
-		u(uint64(k.left[i]))
-		u(uint64(k.right[i]))
-	}
-	for _, v := range [][]float64{k.x, k.xn, k.d, k.lpx, k.lpn, k.level, k.lo, k.hi, k.t} {
-		for _, f := range v {
-			u(math.Float64bits(f))
-		}
-	}
-	return append(b, rs...), nil
+	w.ints("stage", stage...)
+	w.ints("left", k.left...)
+	w.ints("right", k.right...)
+	w.floats("x", k.x...)
+	w.floats("xnext", k.xn...)
+	w.floats("dir", k.d...)
+	w.floats("logpi", k.lpx...)
+	w.floats("logpinext", k.lpn...)
+	w.floats("level", k.level...)
+	w.floats("lo", k.lo...)
+	w.floats("hi", k.hi...)
+	w.floats("t", k.t...)
+	w.stream("rng", k.src)
+	return w.bytes()
 }
 
 // UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
 // whole state, including dimension and number of chains.
 func (k *HitAndRun) UnmarshalBinary(b []byte) error {
-	bad := errors.New("kernels: corrupt hit-and-run state")
-	r := stateReader{b: b}
-	if !r.magic(hitrunMagic) {
-		return errors.New("kernels: not a hit-and-run state")
-	}
-	n := &HitAndRun{}
-	n.dim, n.chains = int(r.u64()), int(r.u64())
-	n.w = math.Float64frombits(r.u64())
-	n.m, n.steps = int(r.u64()), int(r.u64())
-	ready := r.u64()
-	n.ready = ready == 1
-	n.evals, n.stepEvals, n.curEvals = int(r.u64()), int(r.u64()), int(r.u64())
-	if r.err != nil || !stateFits(n.dim, n.chains, 3, len(b)) || !(n.w > 0) || math.IsInf(n.w, 0) ||
-		n.m < 1 || n.m > len(b) || n.steps < 0 || ready > 1 ||
-		n.evals < 0 || n.stepEvals < 0 || n.curEvals < 0 || n.stepEvals+n.curEvals > n.evals {
-		return bad
-	}
-	n.alloc()
-	for i := range n.chains {
-		s, j, kk := r.u64(), r.u64(), r.u64()
-		if r.err != nil || j > uint64(n.m) || kk > uint64(n.m) || int(j+kk) > n.m-1 {
-			return bad
-		}
-		switch {
-		case !n.ready && s != 0:
-			return bad // no step has begun before the start's answer
-		case !n.ready:
-		case s == uint64(hitrunDone):
-			n.done++
-		case s != uint64(hitrunLeft) && s != uint64(hitrunRight) && s != uint64(hitrunLeft|hitrunRight) &&
-			s != uint64(hitrunShrink):
-			return bad // 0 is transient: the end of stepping-out starts shrinkage
-		case s&uint64(hitrunLeft) != 0 && j == 0, s&uint64(hitrunRight) != 0 && kk == 0:
-			return bad // a side expands only with budget left
-		}
-		n.stage[i], n.left[i], n.right[i] = uint8(s), int(j), int(kk)
-	}
-	if n.ready && n.done == n.chains {
-		return bad // a finished step would have started the next
-	}
-	r.fill(n.x, n.xn, n.d, n.lpx, n.lpn, n.level, n.lo, n.hi, n.t)
-	if r.err != nil {
-		return bad
-	}
-	src, err := r.stream("hit-and-run")
+	r, err := readState(b, "HitAndRun")
 	if err != nil {
 		return err
 	}
-	n.src = src
+	n := &HitAndRun{}
+	n.dim, n.chains = r.shape()
+	n.w = r.float("width")
+	n.m, n.steps = r.integer("m"), r.integer("steps")
+	n.ready = r.flag("ready")
+	if ev := r.ints("evals", 3); ev != nil {
+		n.evals, n.stepEvals, n.curEvals = ev[0], ev[1], ev[2]
+	}
+	if err := r.check(positive(n.w) && n.m >= 1 && n.m <= len(b) && n.steps >= 0 &&
+		n.evals >= 0 && n.stepEvals >= 0 && n.curEvals >= 0 && n.stepEvals <= n.evals-n.curEvals,
+		"width, expansion cap or counts"); err != nil {
+		return err
+	}
+	n.alloc()
+	stage, left, right := r.ints("stage", n.chains), r.ints("left", n.chains), r.ints("right", n.chains)
+	for i := 0; r.err == nil && i < n.chains; i++ {
+		s, j, kk := stage[i], left[i], right[i]
+		ok := j >= 0 && kk >= 0 && j <= n.m && kk <= n.m && j+kk <= n.m-1
+		switch {
+		case !ok:
+		case !n.ready:
+			ok = s == 0 // no step has begun before the start's answer
+		case s == int(hitrunDone):
+			n.done++
+		case s != int(hitrunLeft) && s != int(hitrunRight) && s != int(hitrunLeft|hitrunRight) &&
+			s != int(hitrunShrink):
+			ok = false // 0 is transient: the end of stepping-out starts shrinkage
+		case s&int(hitrunLeft) != 0 && j == 0, s&int(hitrunRight) != 0 && kk == 0:
+			ok = false // a side expands only with budget left
+		}
+		if !ok {
+			r.fail("chain %d stage %d with expansions %d, %d", i, s, j, kk)
+			break
+		}
+		n.stage[i], n.left[i], n.right[i] = uint8(s), j, kk
+	}
+	if n.ready && n.done == n.chains {
+		r.fail("every chain's step finished") // a finished step would have started the next
+	}
+	r.fill("x", n.x)
+	r.fill("xnext", n.xn)
+	r.fill("dir", n.d)
+	r.fill("logpi", n.lpx)
+	r.fill("logpinext", n.lpn)
+	r.fill("level", n.level)
+	r.fill("lo", n.lo)
+	r.fill("hi", n.hi)
+	r.fill("t", n.t)
+	n.src = r.stream("rng")
+	if r.err != nil {
+		return r.err
+	}
 	n.rng = rand.New(n.src)
 	n.buildRequest()
 	*k = *n
 	return nil
-}
-
-func hitrunBit(v bool) uint64 {
-	if v {
-		return 1
-	}
-	return 0
 }

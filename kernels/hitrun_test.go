@@ -220,7 +220,7 @@ func TestHitRunEvaluations(t *testing.T) {
 	t.Logf("%.2f evaluations per step of %d chains (%.2f per chain)", mean, chains, mean/chains)
 }
 
-// The line move is exact (Neal 2003, §4): started from exact draws of the
+// The line move is exact (Neal 2003, Section 4): started from exact draws of the
 // standard Gumbel (inverse CDF x = −log(−log u)), the chains are still
 // Gumbel-distributed after four steps, with widths and caps that make
 // most intervals smaller than the slice; there, only the random split

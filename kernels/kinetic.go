@@ -1,8 +1,6 @@
 package kernels
 
 import (
-	"encoding/binary"
-	"errors"
 	"fmt"
 	"math"
 	"math/rand/v2"
@@ -10,7 +8,7 @@ import (
 
 // Kinetic is underdamped (kinetic) Langevin over a batch of chains,
 // integrated exactly over each step with the gradient frozen at the step's
-// start (Cheng, Chatterji, Bartlett & Jordan, COLT 2018; THEORY.md §4.1).
+// start (Cheng, Chatterji, Bartlett & Jordan, COLT 2018).
 // The diffusion is
 //
 //	dv = −γ v dt + u ∇log π(x) dt + √(2γu) dB,   dx = v dt
@@ -40,9 +38,28 @@ type Kinetic struct {
 	req         Request
 	src         *rand.PCG
 	rng         *rand.Rand
+	pc          precond
 }
 
-var _ Kernel = (*Kinetic)(nil)
+var (
+	_ Kernel     = (*Kinetic)(nil)
+	_ MetricUser = (*Kinetic)(nil)
+)
+
+// SetMetric implements MetricUser: from the next Tell the inverse mass is
+// u·C. With C = L·Lᵀ this is the kernel above run on y = L⁻¹x (velocity
+// L⁻¹v), whose target π(Ly) has score Lᵀ∇log π; mapped back, one step is
+//
+//	x' = x + c·v + ax·C·G + L·(l11·z1)
+//	v' = e·v + av·C·G + L·(l21·z1 + l22·z2)
+//
+// with the same scalar coefficients, z1 and z2 drawn per coordinate as
+// before, and invariant law π(x)·N(v; 0, u·C) (derived here by that change
+// of variables; the same one Roberts and Stramer (2002) use for MALA).
+func (k *Kinetic) SetMetric(m *Metric) { k.pc.set("Kinetic", m, k.dim, 3*k.dim) }
+
+// Metric implements MetricUser.
+func (k *Kinetic) Metric() *Metric { return orIdentity(k.pc.metric, k.dim) }
 
 // NewKinetic returns a Kinetic kernel for chains chains in dimension dim
 // with step h, friction gamma (γ) and inverse mass u, started at positions
@@ -52,9 +69,9 @@ var _ Kernel = (*Kinetic)(nil)
 // A zero gamma means 2 and a zero u means 1. Cheng et al. take γ = 2 and
 // u = 1/M with M the Lipschitz constant of ∇log π; u = 1 is that choice
 // for a target whose Hessian is bounded by the identity, and a caller with
-// an estimate of M (THEORY.md §12) should pass its inverse. A nil velocity
-// starts every chain at rest (v = 0, as in the step rule of THEORY.md
-// §4.2). It panics on a non-positive or non-finite h, a negative or
+// an estimate of M (from gradient pairs, for example) should pass its inverse. A nil velocity
+// starts every chain at rest (v = 0, as in the analysis of Cheng et al.
+// 2018, Theorem 1). It panics on a non-positive or non-finite h, a negative or
 // non-finite gamma or u, or a start or velocity of the wrong length:
 // callers validate data from clients before building a kernel.
 func NewKinetic(dim, chains int, h, gamma, u float64, start, velocity []float64, src *rand.PCG) *Kinetic {
@@ -67,7 +84,7 @@ func NewKinetic(dim, chains int, h, gamma, u float64, start, velocity []float64,
 	if u == 0 {
 		u = 1
 	}
-	if !kineticPositive(h) || !kineticPositive(gamma) || !kineticPositive(u) {
+	if !positive(h) || !positive(gamma) || !positive(u) {
 		panic(fmt.Sprintf("kernels: Kinetic step %v, friction %v, inverse mass %v", h, gamma, u))
 	}
 	k := &Kinetic{dim: dim, chains: chains, h: h, gamma: gamma, u: u, src: src, rng: rand.New(src)}
@@ -94,10 +111,31 @@ func (k *Kinetic) Steps() int { return k.steps }
 // Step returns the step size h.
 func (k *Kinetic) Step() float64 { return k.h }
 
+// SetStep changes the step size h from the next Tell. It panics on a
+// non-positive or non-finite h.
+func (k *Kinetic) SetStep(h float64) { k.setCoef(h, k.gamma, k.u) }
+
+// SetFriction changes the friction γ from the next Tell. It panics on a
+// non-positive or non-finite γ.
+func (k *Kinetic) SetFriction(gamma float64) { k.setCoef(k.h, gamma, k.u) }
+
+// SetInverseMass changes the scalar inverse mass u from the next Tell
+// (with a metric C the inverse mass is u·C). It panics on a non-positive
+// or non-finite u.
+func (k *Kinetic) SetInverseMass(u float64) { k.setCoef(k.h, k.gamma, u) }
+
+func (k *Kinetic) setCoef(h, gamma, u float64) {
+	if !positive(h) || !positive(gamma) || !positive(u) {
+		panic(fmt.Sprintf("kernels: Kinetic step %v, friction %v, inverse mass %v", h, gamma, u))
+	}
+	k.h, k.gamma, k.u, k.c = h, gamma, u, newKineticCoef(gamma, u, h)
+}
+
 // Friction returns γ.
 func (k *Kinetic) Friction() float64 { return k.gamma }
 
-// InverseMass returns u.
+// InverseMass returns the scalar inverse mass u (the inverse mass is
+// u·C with a metric C).
 func (k *Kinetic) InverseMass() float64 { return k.u }
 
 // EvaluationsPerStep implements Kernel: one gradient per chain.
@@ -122,6 +160,30 @@ func (k *Kinetic) Tell(a *Answer) bool {
 	g := a.Grad[:len(k.x)]
 	v := k.v[:len(k.x)]
 	c := &k.c
+	if m := k.pc.metric; m != nil {
+		p := k.dim
+		w1, w2, cg := k.pc.tmp[:p], k.pc.tmp[p:2*p], k.pc.tmp[2*p:3*p]
+		for ch := range k.chains {
+			lo, hi := ch*p, (ch+1)*p
+			for i := range w1 {
+				z1 := k.rng.NormFloat64()
+				z2 := k.rng.NormFloat64()
+				w1[i] = c.l11 * z1
+				w2[i] = c.l21*z1 + c.l22*z2
+			}
+			m.ApplyFactor(w1, w1)
+			m.ApplyFactor(w2, w2)
+			m.Apply(cg, g[lo:hi])
+			x, vc := k.x[lo:hi], v[lo:hi]
+			for i, xi := range x {
+				vi := vc[i]
+				x[i] = xi + c.c*vi + c.ax*cg[i] + w1[i]
+				vc[i] = c.e*vi + c.av*cg[i] + w2[i]
+			}
+		}
+		k.steps++
+		return true
+	}
 	for i, x := range k.x {
 		z1 := k.rng.NormFloat64()
 		z2 := k.rng.NormFloat64()
@@ -133,58 +195,50 @@ func (k *Kinetic) Tell(a *Answer) bool {
 	return true
 }
 
-const kineticMagic = "sluice.kinetic.v1"
-
 // MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
 // step, friction, inverse mass, completed steps, positions, velocities and
 // the random stream's state.
 func (k *Kinetic) MarshalBinary() ([]byte, error) {
-	rs, err := k.src.MarshalBinary()
-	if err != nil {
-		return nil, err
-	}
-	b := make([]byte, 0, len(kineticMagic)+6*8+16*len(k.x)+len(rs))
-	b = append(b, kineticMagic...)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.dim))
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.chains))
-	b = kineticAppend(b, k.h, k.gamma, k.u)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.steps))
-	b = kineticAppend(b, k.x...)
-	b = kineticAppend(b, k.v...)
-	return append(b, rs...), nil
+	w := newStateWriter("Kinetic")
+	w.ints("dim", k.dim)
+	w.ints("chains", k.chains)
+	w.floats("h", k.h)
+	w.floats("gamma", k.gamma)
+	w.floats("u", k.u)
+	w.ints("steps", k.steps)
+	w.floats("x", k.x...)
+	w.floats("v", k.v...)
+	writeMetric(w, "metric", k.pc.metric)
+	w.stream("rng", k.src)
+	return w.bytes()
 }
 
 // UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
 // whole state, including dimension and number of chains.
 func (k *Kinetic) UnmarshalBinary(b []byte) error {
-	r := stateReader{b: b}
-	if !r.magic(kineticMagic) {
-		return errors.New("kernels: not a Kinetic state")
+	r, err := readState(b, "Kinetic")
+	if err != nil {
+		return err
 	}
-	dim, chains := int(r.u64()), int(r.u64())
-	h, gamma, u := kineticFloat(&r), kineticFloat(&r), kineticFloat(&r)
-	steps := int(r.u64())
-	if r.err != nil || !stateFits(dim, chains, 2, len(b)) || steps < 0 ||
-		!kineticPositive(h) || !kineticPositive(gamma) || !kineticPositive(u) {
-		return errors.New("kernels: corrupt Kinetic state")
-	}
-	x := r.floats(dim * chains)
-	v := r.floats(dim * chains)
-	if r.err != nil {
-		return errors.New("kernels: corrupt Kinetic state")
-	}
-	src := &rand.PCG{}
-	if err := src.UnmarshalBinary(r.rest()); err != nil {
-		return fmt.Errorf("kernels: Kinetic random state: %w", err)
+	dim, chains := r.shape()
+	h, gamma, u := r.float("h"), r.float("gamma"), r.float("u")
+	steps := r.integer("steps")
+	x, v := r.floats("x", dim*chains), r.floats("v", dim*chains)
+	metric := readMetric(r, "metric", dim)
+	src := r.stream("rng")
+	if err := r.check(steps >= 0 && positive(h) && positive(gamma) && positive(u), "step, friction, inverse mass or step count"); err != nil {
+		return err
 	}
 	*k = Kinetic{dim: dim, chains: chains, h: h, gamma: gamma, u: u, c: newKineticCoef(gamma, u, h),
 		steps: steps, x: x, v: v, src: src, rng: rand.New(src)}
+	k.SetMetric(metric)
 	k.req = Request{Need: NeedGradient, Rows: chains, Points: k.x, Chain: chainIndex(chains)}
 	return nil
 }
 
 // kineticCoef holds the coefficients of one frozen-gradient kinetic step
-// of length h (THEORY.md §4.1), with G = ∇log π:
+// of length h (Cheng et al. 2018; the Gaussian step derived here by
+// integrating the linear SDE with G frozen), with G = ∇log π:
 //
 //	x' = x + c·v + ax·G + l11·z1
 //	v' = e·v + av·G + l21·z1 + l22·z2
@@ -249,21 +303,3 @@ func newKineticCoef(gamma, u, h float64) kineticCoef {
 	c.l22 = math.Sqrt(math.Max(0, c.varV-c.l21*c.l21))
 	return c
 }
-
-func kineticPositive(v float64) bool { return v > 0 && !math.IsInf(v, 1) }
-
-// fitsState reports whether dim and chains are positive and arrays
-// vectors of dim×chains float64 values fit in n bytes, without overflow.
-func stateFits(dim, chains, arrays, n int) bool {
-	return dim >= 1 && chains >= 1 && dim <= n/(8*arrays)/chains
-}
-
-func kineticAppend(b []byte, v ...float64) []byte {
-	for _, f := range v {
-		b = binary.LittleEndian.AppendUint64(b, math.Float64bits(f))
-	}
-	return b
-}
-
-// kineticFloat reads one float64 from r.
-func kineticFloat(r *stateReader) float64 { return math.Float64frombits(r.u64()) }

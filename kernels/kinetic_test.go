@@ -2,21 +2,12 @@ package kernels
 
 import (
 	"bytes"
-	"encoding/binary"
 	"fmt"
 	"math"
 	"testing"
 
 	"gonum.org/v1/gonum/mat"
-
-	"sluice/kernels/diag"
 )
-
-// kineticKernel is a kernel that carries velocities.
-type kineticKernel interface {
-	Kernel
-	Velocities() []float64
-}
 
 // kineticDiagGrad returns ∇log π for π = N(0, diag(1/λ)), row by row.
 func kineticDiagGrad(lambda []float64) func(points []float64, rows int, grad []float64) {
@@ -28,80 +19,15 @@ func kineticDiagGrad(lambda []float64) func(points []float64, rows int, grad []f
 	}
 }
 
-// kineticRun drives k in-process with an exact gradient until it has
-// completed steps steps, answering every request, and returns per
-// coordinate and chain the draws after burnIn steps: out[coord][chain][draw]
-// with coordinates 0…p−1 the positions and, for a kernel with velocities,
-// p…2p−1 the velocities.
-func kineticRun(k Kernel, grad func([]float64, int, []float64), burnIn, steps int) [][][]float64 {
-	p, c := k.Dim(), k.Chains()
-	kv, withV := k.(kineticKernel)
-	out := make([][][]float64, p)
-	if withV {
-		out = make([][][]float64, 2*p)
-	}
-	for i := range out {
-		out[i] = make([][]float64, c)
-		for j := range out[i] {
-			out[i][j] = make([]float64, 0, max(steps-burnIn, 0))
-		}
-	}
-	a := NewAnswer(c, p)
-	for k.Steps() < steps {
-		req := k.Next()
-		grad(req.Points, req.Rows, a.Grad)
-		if !k.Tell(a) || k.Steps() <= burnIn {
-			continue
-		}
-		x := k.Positions()
-		for ch := range c {
-			for i := range p {
-				out[i][ch] = append(out[i][ch], x[ch*p+i])
-			}
-		}
-		if withV {
-			v := kv.Velocities()
-			for ch := range c {
-				for i := range p {
-					out[p+i][ch] = append(out[p+i][ch], v[ch*p+i])
-				}
-			}
-		}
-	}
-	return out
-}
-
-// kineticMoment returns, for the product of coordinates i and j of the
-// draws (mean zero known), the sample mean and its Monte Carlo standard
-// error sd/√ESS with ESS from diag on split chains (THEORY.md §9 step 5).
-func kineticMoment(d [][][]float64, i, j int) (est, mcse float64) {
-	prod := make([][]float64, len(d[i]))
-	var s, s2 float64
-	var n int
-	for ch := range d[i] {
-		prod[ch] = make([]float64, len(d[i][ch]))
-		for t := range prod[ch] {
-			v := d[i][ch][t] * d[j][ch][t]
-			prod[ch][t] = v
-			s += v
-			s2 += v * v
-			n++
-		}
-	}
-	est = s / float64(n)
-	sd := math.Sqrt((s2 - float64(n)*est*est) / float64(n-1))
-	return est, sd / math.Sqrt(diag.ESS(diag.SplitChains(prod)))
-}
-
 // kineticClose reports whether got is within rel·|want| (or rel when want
 // is zero) of want.
 func kineticClose(got, want, rel float64) bool {
 	return math.Abs(got-want) <= rel*math.Max(math.Abs(want), 1e-300) || got == want
 }
 
-// THEORY.md §4.1 test vector (confirmed there by matrix exponential and
-// quadrature): x = 1, v = 0.5, ∇f = 2 (so ∇log π = −2), h = 0.1, γ = 2,
-// u = 0.25. Tolerance: relative 1e-9, THEORY.md's for closed forms.
+// Test vector for the step of Cheng, Chatterji, Bartlett and Jordan
+// (2018), computed for the project by matrix exponential and by quadrature: x = 1, v = 0.5, ∇f = 2 (so ∇log π = −2), h = 0.1, γ = 2,
+// u = 0.25. Tolerance: relative 1e-9, the project's for closed forms.
 func TestKineticCoefficientsTheoryVector(t *testing.T) {
 	c := newKineticCoef(2, 0.25, 0.1)
 	x, v, g := 1.0, 0.5, -2.0
@@ -123,7 +49,7 @@ func TestKineticCoefficientsTheoryVector(t *testing.T) {
 		{"v' at z = (0.3, −0.7)", meanV + c.l21*0.3 + c.l22*(-0.7), 0.32875168965069457},
 	} {
 		if !kineticClose(tc.got, tc.want, 1e-9) {
-			t.Errorf("%s = %.17g, THEORY.md §4.1 gives %.17g", tc.name, tc.got, tc.want)
+			t.Errorf("%s = %.17g, the closed form gives %.17g", tc.name, tc.got, tc.want)
 		}
 	}
 }
@@ -149,9 +75,9 @@ func kineticVanLoan(a, q [2][2]float64, h float64) [2][2]float64 {
 }
 
 // The covariance helper against an exact computation outside it. First the
-// Van Loan reference is itself checked on THEORY.md §11(e) (the exact
+// Van Loan reference is itself checked on the exact kinetic Gaussian step (derived here, Van Loan's method) (the exact
 // kinetic step on f = λx²/2, values to 10 decimals, so absolute 1e-9).
-// Then, with λ = 0, the frozen-gradient step of §4.1 is the exact kinetic
+// Then, with λ = 0, the frozen-gradient step of Cheng et al. (2018) is the exact kinetic
 // transition under the constant force u·G, so its noise covariance is
 // Σ_h of A = [[0, 1], [0, −γ]], q = diag(0, 2γu), its linear part e^{hA} =
 // [[1, (1 − e^{−γh})/γ], [0, e^{−γh}]] and its drift ∫₀ʰ e^{sA}ds·(0, u)ᵀ
@@ -174,7 +100,7 @@ func TestKineticCoefficientsMatchMatrixExponential(t *testing.T) {
 		for i := range 2 {
 			for j := range 2 {
 				if math.Abs(got[i][j]-tc.want[i][j]) > 1e-9 {
-					t.Errorf("reference Σ_h[%d][%d] = %.10f, THEORY.md §11(e) gives %.10f", i, j, got[i][j], tc.want[i][j])
+					t.Errorf("reference Σ_h[%d][%d] = %.10f, the exact kinetic Gaussian step (derived here, Van Loan's method) gives %.10f", i, j, got[i][j], tc.want[i][j])
 				}
 			}
 		}
@@ -213,8 +139,8 @@ func TestKineticCoefficientsMatchMatrixExponential(t *testing.T) {
 	}
 }
 
-// One step by hand through the kernel, with the §4.1 vector's coefficients
-// and the normals the kernel's stream gives (THEORY.md §4.1).
+// One step by hand through the kernel, with the Cheng et al. (2018) vector's coefficients
+// and the normals the kernel's stream gives (Cheng et al. 2018).
 func TestKineticStepTheoryVector(t *testing.T) {
 	k := NewKinetic(1, 1, 0.1, 2, 0.25, []float64{1}, []float64{0.5}, NewSource(7))
 	z := randNormals(7, 2)
@@ -222,12 +148,12 @@ func TestKineticStepTheoryVector(t *testing.T) {
 	wantX := 1.0429759675957568 + 0.01696129099650158*z[0]
 	wantV := 0.3640480648084864 + 0.2421583053911768*z[0] + 0.15420552396449275*z[1]
 	if x, v := k.Positions()[0], k.Velocities()[0]; !kineticClose(x, wantX, 1e-9) || !kineticClose(v, wantV, 1e-9) {
-		t.Fatalf("(x', v') = (%.17g, %.17g), THEORY.md §4.1 gives (%.17g, %.17g) at z = %v", x, v, wantX, wantV, z)
+		t.Fatalf("(x', v') = (%.17g, %.17g), the closed form gives (%.17g, %.17g) at z = %v", x, v, wantX, wantV, z)
 	}
 }
 
 // Draw order and layout: chain by chain, coordinate by coordinate, z1 then
-// z2, every chain using its own row of gradients (THEORY.md §4.1 update).
+// z2, every chain using its own row of gradients (the update of Cheng et al. 2018).
 func TestKineticStepByHand(t *testing.T) {
 	const p, chains = 3, 2
 	x0 := []float64{1, -2, 0.5, 3, 0, -1}
@@ -278,7 +204,7 @@ func kineticLyapunov(m, q [2][2]float64) [2][2]float64 {
 	return s
 }
 
-// kineticStationaryCases are THEORY.md §4.3's stationary covariances of
+// kineticStationaryCases are the stationary covariances (derived here) of
 // (x, v) for the frozen-gradient scheme (γ = 2) on f = λx²/2.
 var kineticStationaryCases = []struct {
 	lambda, u, h float64
@@ -292,7 +218,7 @@ var kineticStationaryCases = []struct {
 
 // The scheme is linear on a Gaussian: z' = Mz + L·ξ with
 // M = [[1 − λ·ax, c], [−λ·av, e]]. Its discrete Lyapunov solution must be
-// THEORY.md §4.3's [derived there], to the 10 decimals given (absolute
+// the one derived here, to the 10 decimals given (absolute
 // 1e-9; the off-diagonal entries are given to 5 significant digits, so
 // relative 1e-4 there).
 func TestKineticStationaryCovarianceLyapunov(t *testing.T) {
@@ -307,7 +233,7 @@ func TestKineticStationaryCovarianceLyapunov(t *testing.T) {
 					tol = 1e-4 * math.Abs(tc.want[i][j])
 				}
 				if math.Abs(s[i][j]-tc.want[i][j]) > tol {
-					t.Errorf("λ=%v u=%v h=%v: Σ[%d][%d] = %.10g, THEORY.md §4.3 gives %.10g",
+					t.Errorf("λ=%v u=%v h=%v: Σ[%d][%d] = %.10g, derived value %.10g",
 						tc.lambda, tc.u, tc.h, i, j, s[i][j], tc.want[i][j])
 				}
 			}
@@ -315,7 +241,7 @@ func TestKineticStationaryCovarianceLyapunov(t *testing.T) {
 	}
 }
 
-// The kernel's draws on f = λx²/2 have THEORY.md §4.3's stationary
+// The kernel's draws on f = λx²/2 have the derived stationary
 // covariance of (x, v): every entry within 4 MCSE. For h = 0.5 the bias
 // must also be visible: Var x and Var v more than 4 MCSE from the target's
 // 1/λ and u.
@@ -323,14 +249,14 @@ func TestKineticStationaryCovariance(t *testing.T) {
 	for n, tc := range kineticStationaryCases {
 		t.Run(fmt.Sprintf("λ=%v,u=%v,h=%v", tc.lambda, tc.u, tc.h), func(t *testing.T) {
 			k := NewKinetic(1, 16, tc.h, 2, tc.u, []float64{0}, nil, NewSource(100+uint64(n)))
-			d := kineticRun(k, kineticDiagGrad([]float64{tc.lambda}), 1000, 21000)
+			d := driveKernel(k, gradEval(kineticDiagGrad([]float64{tc.lambda})), 1000, 21000)
 			target := [2]float64{1 / tc.lambda, tc.u}
 			for i := range 2 {
 				for j := i; j < 2; j++ {
-					est, se := kineticMoment(d, i, j)
-					t.Logf("Σ[%d][%d] = %.5f ± %.5f (THEORY.md §4.3: %.5f)", i, j, est, se, tc.want[i][j])
+					est, se := moment(d, i, j, 0, 0)
+					t.Logf("Σ[%d][%d] = %.5f ± %.5f (derived: %.5f)", i, j, est, se, tc.want[i][j])
 					if z := (est - tc.want[i][j]) / se; math.Abs(z) > 4 {
-						t.Errorf("Σ[%d][%d] = %.5f, THEORY.md §4.3 %.5f, MCSE %.5f (z = %.1f)", i, j, est, tc.want[i][j], se, z)
+						t.Errorf("Σ[%d][%d] = %.5f, derived %.5f, MCSE %.5f (z = %.1f)", i, j, est, tc.want[i][j], se, z)
 					}
 					if i == j && tc.biased {
 						if z := (est - target[i]) / se; math.Abs(z) < 4 {
@@ -343,7 +269,7 @@ func TestKineticStationaryCovariance(t *testing.T) {
 	}
 }
 
-// Evaluation accounting: one gradient per chain per step (THEORY.md §13,
+// Evaluation accounting: one gradient per chain per step (by the method's definition,
 // KLMC row).
 func TestKineticEvaluationsPerStep(t *testing.T) {
 	k := NewKinetic(3, 5, 0.1, 0, 0, make([]float64, 3), nil, NewSource(1))
@@ -385,7 +311,7 @@ func TestKineticDefaults(t *testing.T) {
 func TestKineticStateRoundTrip(t *testing.T) {
 	grad := kineticDiagGrad([]float64{2, 0.5})
 	k := NewKinetic(2, 3, 0.05, 1.5, 0.8, []float64{1, -1}, []float64{0.3, 0.1}, NewSource(5))
-	kineticRun(k, grad, 0, 10)
+	driveKernel(k, gradEval(grad), 0, 10)
 	state, err := k.MarshalBinary()
 	if err != nil {
 		t.Fatal(err)
@@ -398,8 +324,8 @@ func TestKineticStateRoundTrip(t *testing.T) {
 		t.Fatalf("restored header wrong: steps %d dim %d chains %d h %v γ %v u %v",
 			r.Steps(), r.Dim(), r.Chains(), r.Step(), r.Friction(), r.InverseMass())
 	}
-	a := kineticRun(k, grad, 10, 35)
-	b := kineticRun(&r, grad, 10, 35)
+	a := driveKernel(k, gradEval(grad), 10, 35)
+	b := driveKernel(&r, gradEval(grad), 10, 35)
 	for i := range a {
 		for c := range a[i] {
 			for s := range a[i][c] {
@@ -417,15 +343,13 @@ func TestKineticStateRoundTrip(t *testing.T) {
 	if !bytes.Equal(again, now) {
 		t.Fatal("states differ after identical continuation")
 	}
-	for _, bad := range [][]byte{state[:40], state[:len(state)-1], []byte("nonsense"), []byte(lmcMagic + "xxxxxxxx")} {
+	for _, bad := range [][]byte{state[:40], state[:len(state)-1], []byte("nonsense"), editState(t, state, "Kinetic", "h", 1)} {
 		if err := r.UnmarshalBinary(bad); err == nil {
 			t.Fatalf("corrupt state of %d bytes accepted", len(bad))
 		}
 	}
-	for _, dims := range [][2]uint64{{math.MaxUint64, 1}, {1 << 40, 1 << 24}, {0, 3}} {
-		huge := append([]byte(kineticMagic), make([]byte, 200)...)
-		binary.LittleEndian.PutUint64(huge[len(kineticMagic):], dims[0])
-		binary.LittleEndian.PutUint64(huge[len(kineticMagic)+8:], dims[1])
+	for _, dims := range [][2]int{{math.MaxInt64, 1}, {1 << 40, 1 << 24}, {0, 3}} {
+		huge := editState(t, editState(t, state, "Kinetic", "dim", dims[0]), "Kinetic", "chains", dims[1])
 		if err := r.UnmarshalBinary(huge); err == nil {
 			t.Fatalf("state with dim %d, chains %d accepted", dims[0], dims[1])
 		}

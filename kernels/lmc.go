@@ -1,8 +1,6 @@
 package kernels
 
 import (
-	"encoding/binary"
-	"errors"
 	"fmt"
 	"math"
 	"math/rand/v2"
@@ -29,7 +27,28 @@ type LMC struct {
 	noise    []float64
 	prepared bool
 	snap     rand.PCG
+	metric   *Metric   // nil: the identity
+	tmp      []float64 // 2·dim scratch for a metric
 }
+
+var (
+	_ Kernel     = (*LMC)(nil)
+	_ Preparer   = (*LMC)(nil)
+	_ MetricUser = (*LMC)(nil)
+)
+
+// SetMetric implements MetricUser: from the next Tell every chain moves
+// by x ← x + h·C·∇log π(x) + √(2h)·L·ξ with C = L·Lᵀ (noise already drawn
+// by Prepare is standard normal and stays valid).
+func (k *LMC) SetMetric(m *Metric) {
+	k.metric = checkMetric("LMC", m, k.dim)
+	if k.metric != nil && k.tmp == nil {
+		k.tmp = make([]float64, 2*k.dim)
+	}
+}
+
+// Metric implements MetricUser.
+func (k *LMC) Metric() *Metric { return orIdentity(k.metric, k.dim) }
 
 // NewLMC returns an LMC kernel for chains chains in dimension dim with step
 // h, started at start (chains×dim values, or dim values shared by every
@@ -104,6 +123,17 @@ func (k *LMC) Tell(a *Answer) bool {
 	}
 	g := a.Grad[:len(k.x)]
 	h, s := k.h, k.scale
+	if k.metric != nil {
+		k.Prepare()
+		p := k.dim
+		for c := range k.chains {
+			lo, hi := c*p, (c+1)*p
+			k.metric.move(k.x[lo:hi], g[lo:hi], k.noise[lo:hi], h, s, k.tmp)
+		}
+		k.prepared = false
+		k.steps++
+		return true
+	}
 	if k.prepared {
 		for i, z := range k.noise {
 			k.x[i] += h*g[i] + s*z
@@ -118,8 +148,6 @@ func (k *LMC) Tell(a *Answer) bool {
 	return true
 }
 
-const lmcMagic = "sluice.lmc.v1"
-
 // MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
 // step, completed steps, positions and the random stream's state.
 func (k *LMC) MarshalBinary() ([]byte, error) {
@@ -127,44 +155,34 @@ func (k *LMC) MarshalBinary() ([]byte, error) {
 	if k.prepared {
 		src = &k.snap // the noise drawn ahead is drawn again on resume
 	}
-	rs, err := src.MarshalBinary()
-	if err != nil {
-		return nil, err
-	}
-	b := make([]byte, 0, len(lmcMagic)+4*8+8*len(k.x)+len(rs))
-	b = append(b, lmcMagic...)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.dim))
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.chains))
-	b = binary.LittleEndian.AppendUint64(b, math.Float64bits(k.h))
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.steps))
-	for _, v := range k.x {
-		b = binary.LittleEndian.AppendUint64(b, math.Float64bits(v))
-	}
-	return append(b, rs...), nil
+	w := newStateWriter("LMC")
+	w.ints("dim", k.dim)
+	w.ints("chains", k.chains)
+	w.floats("h", k.h)
+	w.ints("steps", k.steps)
+	w.floats("x", k.x...)
+	writeMetric(w, "metric", k.metric)
+	w.stream("rng", src)
+	return w.bytes()
 }
 
 // UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
 // whole state, including dimension and number of chains.
 func (k *LMC) UnmarshalBinary(b []byte) error {
-	r := stateReader{b: b}
-	if !r.magic(lmcMagic) {
-		return errors.New("kernels: not an LMC state")
+	r, err := readState(b, "LMC")
+	if err != nil {
+		return err
 	}
-	dim, chains := int(r.u64()), int(r.u64())
-	h := math.Float64frombits(r.u64())
-	steps := int(r.u64())
-	if r.err != nil || !stateFits(dim, chains, 1, len(b)) || !(h > 0) {
-		return errors.New("kernels: corrupt LMC state")
-	}
-	x := r.floats(dim * chains)
-	src := &rand.PCG{}
-	if r.err != nil {
-		return errors.New("kernels: corrupt LMC state")
-	}
-	if err := src.UnmarshalBinary(r.rest()); err != nil {
-		return fmt.Errorf("kernels: LMC random state: %w", err)
+	dim, chains := r.shape()
+	h, steps := r.float("h"), r.integer("steps")
+	x := r.floats("x", dim*chains)
+	metric := readMetric(r, "metric", dim)
+	src := r.stream("rng")
+	if err := r.check(positive(h) && steps >= 0, "step or step count"); err != nil {
+		return err
 	}
 	*k = LMC{dim: dim, chains: chains, h: h, scale: math.Sqrt(2 * h), steps: steps, x: x, src: src, rng: rand.New(src)}
+	k.SetMetric(metric)
 	k.req = Request{Need: NeedGradient, Rows: chains, Points: k.x, Chain: chainIndex(chains)}
 	return nil
 }
@@ -192,63 +210,4 @@ func chainIndex(chains int) []int {
 		c[i] = i
 	}
 	return c
-}
-
-// stateReader reads the little-endian state layout written by the
-// kernels' MarshalBinary methods, remembering the first error.
-type stateReader struct {
-	b   []byte
-	err error
-}
-
-func (r *stateReader) magic(m string) bool {
-	if len(r.b) < len(m) || string(r.b[:len(m)]) != m {
-		return false
-	}
-	r.b = r.b[len(m):]
-	return true
-}
-
-func (r *stateReader) u64() uint64 {
-	if r.err != nil || len(r.b) < 8 {
-		r.err = errors.New("short state")
-		return 0
-	}
-	v := binary.LittleEndian.Uint64(r.b)
-	r.b = r.b[8:]
-	return v
-}
-
-func (r *stateReader) floats(n int) []float64 {
-	if r.err != nil || len(r.b) < 8*n {
-		r.err = errors.New("short state")
-		return nil
-	}
-	out := make([]float64, n)
-	for i := range out {
-		out[i] = math.Float64frombits(binary.LittleEndian.Uint64(r.b[8*i:]))
-	}
-	r.b = r.b[8*n:]
-	return out
-}
-
-func (r *stateReader) rest() []byte { return r.b }
-
-// fill reads len(dst) floats into each dst in turn.
-func (r *stateReader) fill(dsts ...[]float64) {
-	for _, dst := range dsts {
-		if v := r.floats(len(dst)); r.err == nil {
-			copy(dst, v)
-		}
-	}
-}
-
-// stream restores the random stream from the rest of the state; kind
-// names the kernel in the error.
-func (r *stateReader) stream(kind string) (*rand.PCG, error) {
-	src := &rand.PCG{}
-	if err := src.UnmarshalBinary(r.rest()); err != nil {
-		return nil, fmt.Errorf("kernels: %s random state: %w", kind, err)
-	}
-	return src, nil
 }

@@ -7,7 +7,6 @@ import (
 	"testing"
 
 	"sluice/kernels"
-	"sluice/kernels/diag"
 )
 
 // gaussGrad returns ∇log π for π = N(0, Q⁻¹) with a dense precision q
@@ -27,62 +26,8 @@ func gaussGrad(q []float64, p int) func(points []float64, rows int, grad []float
 	}
 }
 
-// run drives k in-process for steps steps with an exact gradient and
-// returns, per chain and coordinate, the draws after burnIn steps:
-// out[coord][chain][draw].
-func run(k kernels.Kernel, grad func([]float64, int, []float64), burnIn, steps int) [][][]float64 {
-	p, c := k.Dim(), k.Chains()
-	out := make([][][]float64, p)
-	for i := range out {
-		out[i] = make([][]float64, c)
-		for j := range out[i] {
-			out[i][j] = make([]float64, 0, steps-burnIn)
-		}
-	}
-	a := kernels.NewAnswer(c, p)
-	for range steps {
-		req := k.Next()
-		grad(req.Points, req.Rows, a.Grad)
-		if !k.Tell(a) {
-			continue
-		}
-		if k.Steps() <= burnIn {
-			continue
-		}
-		x := k.Positions()
-		for ch := range c {
-			for i := range p {
-				out[i][ch] = append(out[i][ch], x[ch*p+i])
-			}
-		}
-	}
-	return out
-}
-
-// moment returns, for the product of coordinates i and j of the draws
-// (mean zero known), the sample mean and its Monte Carlo standard error
-// sd/√ESS with ESS from diag (THEORY.md §9 step 5 on split chains).
-func moment(d [][][]float64, i, j int) (est, mcse float64) {
-	prod := make([][]float64, len(d[i]))
-	var s, s2 float64
-	var n int
-	for ch := range d[i] {
-		prod[ch] = make([]float64, len(d[i][ch]))
-		for t := range prod[ch] {
-			v := d[i][ch][t] * d[j][ch][t]
-			prod[ch][t] = v
-			s += v
-			s2 += v * v
-			n++
-		}
-	}
-	est = s / float64(n)
-	sd := math.Sqrt((s2 - float64(n)*est*est) / float64(n-1))
-	return est, sd / math.Sqrt(diag.ESS(diag.SplitChains(prod)))
-}
-
 // ULA on N(0, σ²) has the exact stationary variance σ²/(1 − h/(2σ²))
-// (THEORY.md §11a, derived: solve v = (1 − h/σ²)²v + 2h). The draws'
+// (derived here: solve v = (1 − h/σ²)²v + 2h). The draws'
 // second moment must match it within 4 MCSE, and for the larger steps it
 // must be distinguishable from σ² (more than 4 MCSE away).
 func TestLMCStationaryVariance1D(t *testing.T) {
@@ -90,7 +35,7 @@ func TestLMCStationaryVariance1D(t *testing.T) {
 		sigma2, h, want float64
 		biased          bool // bias larger than 4 MCSE expected
 	}{
-		{1, 0.1, 1.0526315789473684, true}, // THEORY.md §11a vectors
+		{1, 0.1, 1.0526315789473684, true}, // derived values
 		{2, 0.5, 2.2857142857142856, true},
 		{0.25, 0.1, 0.3125, true},
 		{1, 0.01, 1 / (1 - 0.005), false},
@@ -98,8 +43,8 @@ func TestLMCStationaryVariance1D(t *testing.T) {
 	for _, tc := range cases {
 		t.Run(fmt.Sprintf("s2=%v,h=%v", tc.sigma2, tc.h), func(t *testing.T) {
 			k := kernels.NewLMC(1, 16, tc.h, []float64{0}, kernels.NewSource(42))
-			d := run(k, gaussGrad([]float64{1 / tc.sigma2}, 1), 2000, 22000)
-			est, se := moment(d, 0, 0)
+			d := kernels.DriveKernel(k, kernels.GradEval(gaussGrad([]float64{1 / tc.sigma2}, 1)), 2000, 22000)
+			est, se := kernels.Moment(d, 0, 0, 0, 0)
 			if z := (est - tc.want) / se; math.Abs(z) > 4 {
 				t.Errorf("variance %.5f, exact %.5f, MCSE %.5f (z = %.1f)", est, tc.want, se, z)
 			}
@@ -110,17 +55,17 @@ func TestLMCStationaryVariance1D(t *testing.T) {
 	}
 }
 
-// THEORY.md §11a: Q = [[2, .5], [.5, 1]], h = 0.2 gives the stationary
+// Derived here (discrete Lyapunov equation): Q = [[2, .5], [.5, 1]], h = 0.2 gives the stationary
 // covariance Σ_h = [Q(I − hQ/2)]⁻¹ = [[0.6968641115, −0.2787456446],
 // [−0.2787456446, 1.2543554007]]; every entry within 4 MCSE.
 func TestLMCStationaryCovariance2D(t *testing.T) {
 	q := []float64{2, .5, .5, 1}
 	want := [2][2]float64{{0.6968641115, -0.2787456446}, {-0.2787456446, 1.2543554007}}
 	k := kernels.NewLMC(2, 16, 0.2, []float64{0, 0}, kernels.NewSource(3))
-	d := run(k, gaussGrad(q, 2), 1000, 21000)
+	d := kernels.DriveKernel(k, kernels.GradEval(gaussGrad(q, 2)), 1000, 21000)
 	for i := range 2 {
 		for j := i; j < 2; j++ {
-			est, se := moment(d, i, j)
+			est, se := kernels.Moment(d, i, j, 0, 0)
 			if z := (est - want[i][j]) / se; math.Abs(z) > 4 {
 				t.Errorf("Σ[%d][%d] = %.5f, exact %.5f, MCSE %.5f (z = %.1f)", i, j, est, want[i][j], se, z)
 			}
@@ -128,13 +73,13 @@ func TestLMCStationaryCovariance2D(t *testing.T) {
 	}
 	// The target's own covariance Q⁻¹[0][0] = 0.5714 is far from Σ_h[0][0]:
 	// the test can tell the discretisation bias apart.
-	if est, se := moment(d, 0, 0); math.Abs(est-0.5714285714) < 4*se {
+	if est, se := kernels.Moment(d, 0, 0, 0, 0); math.Abs(est-0.5714285714) < 4*se {
 		t.Errorf("Σ[0][0] = %.5f indistinguishable from Q⁻¹ (MCSE %.5f)", est, se)
 	}
 }
 
 // One exact update by hand: θ' = θ + h·g + √(2h)·ξ with ξ from the same
-// stream (THEORY.md §0.1).
+// stream (the package conventions, doc.go).
 func TestLMCUpdateByHand(t *testing.T) {
 	k := kernels.NewLMC(2, 2, 0.1, []float64{1, 2, 3, 4}, kernels.NewSource(9))
 	ref := kernels.RandNormals(9, 4)
@@ -154,7 +99,7 @@ func TestLMCUpdateByHand(t *testing.T) {
 	}
 }
 
-// Evaluation accounting: one gradient per chain per step (THEORY.md §13).
+// Evaluation accounting: one gradient per chain per step (by the method's definition).
 func TestLMCEvaluationsPerStep(t *testing.T) {
 	k := kernels.NewLMC(3, 5, 0.1, make([]float64, 3), kernels.NewSource(1))
 	if k.EvaluationsPerStep() != 5 {
@@ -175,7 +120,7 @@ func TestLMCEvaluationsPerStep(t *testing.T) {
 func TestLMCStateRoundTrip(t *testing.T) {
 	grad := gaussGrad([]float64{2, .5, .5, 1}, 2)
 	k := kernels.NewLMC(2, 3, 0.05, []float64{1, -1}, kernels.NewSource(5))
-	run(k, grad, 0, 10)
+	kernels.DriveKernel(k, kernels.GradEval(grad), 0, 10)
 	state, err := k.MarshalBinary()
 	if err != nil {
 		t.Fatal(err)
@@ -187,8 +132,8 @@ func TestLMCStateRoundTrip(t *testing.T) {
 	if r.Steps() != 10 || r.Dim() != 2 || r.Chains() != 3 || r.Step() != 0.05 {
 		t.Fatalf("restored header wrong: steps %d dim %d chains %d h %v", r.Steps(), r.Dim(), r.Chains(), r.Step())
 	}
-	a := run(k, grad, 0, 25)
-	b := run(&r, grad, 0, 25)
+	a := kernels.DriveKernel(k, kernels.GradEval(grad), 0, 25)
+	b := kernels.DriveKernel(&r, kernels.GradEval(grad), 0, 25)
 	for i := range a {
 		for c := range a[i] {
 			for s := range a[i][c] {

@@ -1,15 +1,13 @@
 package kernels
 
 import (
-	"encoding/binary"
-	"errors"
 	"fmt"
 	"math"
 	"math/rand/v2"
 )
 
 // MALA is the Metropolis-adjusted Langevin algorithm over a batch of chains
-// (THEORY.md §6). From x it proposes the LMC move
+// (Roberts & Tweedie, Bernoulli 2 (1996)). From x it proposes the LMC move
 //
 //	y = x + h·∇log π(x) + √(2h)·ξ,   ξ ~ N(0, I_p),   q(y | x) = N(y; x + h∇log π(x), 2h·I)
 //	log q(y | x) = −‖y − x − h∇log π(x)‖² / (4h)   (+ const)
@@ -33,7 +31,7 @@ import (
 // Step adaptation. One step size h is shared by all chains (they target the
 // same π). During the first burnIn steps it is adapted toward the
 // acceptance rate 0.574 (the optimal rate for MALA, Roberts & Rosenthal
-// 1998, THEORY.md §6) by a Robbins–Monro update on log h after every step
+// 1998) by a Robbins–Monro update on log h after every step
 // t = 1, 2, …:
 //
 //	log h ← log h + t^{−0.6}·(ᾱ_t − 0.574)
@@ -62,10 +60,52 @@ type MALA struct {
 	req         Request
 	src         *rand.PCG
 	rng         *rand.Rand
+	metric      *Metric // of the pending proposals; nil: the identity
+	pending     *Metric // set by SetMetric, used from the next proposal
+	pendingSet  bool
+	tmp         []float64 // 2·dim scratch for a metric
+}
+
+var (
+	_ Kernel     = (*MALA)(nil)
+	_ Scorer     = (*MALA)(nil)
+	_ MetricUser = (*MALA)(nil)
+)
+
+// SetMetric implements MetricUser. With C = L·Lᵀ the proposal becomes
+//
+//	y = x + h·C·∇log π(x) + √(2h)·L·ξ,   q(y | x) = N(y; x + hC∇log π(x), 2h·C),
+//	log q(y | x) = −‖L⁻¹(y − x − hC∇log π(x))‖² / (4h)   (+ a constant free of x, y),
+//
+// and the acceptance uses that ratio, so the chains leave π exactly
+// invariant for any fixed C (Roberts and Stramer, Methodology and
+// Computing in Applied Probability 4 (2002)). The proposals already drawn
+// for the pending request keep the old metric, and so does the density
+// ratio that accepts or rejects them; the new metric applies from the
+// next proposal. Set it only while h is frozen if the chains' law after
+// burn-in must be exact: a metric changed during burn-in is like a step
+// size adapted then.
+func (k *MALA) SetMetric(m *Metric) {
+	k.pending = checkMetric("MALA", m, k.dim)
+	k.pendingSet = true
+	if k.pending != nil && k.tmp == nil {
+		k.tmp = make([]float64, 2*k.dim)
+	}
+	if !k.ready {
+		k.metric, k.pendingSet = k.pending, false
+	}
+}
+
+// Metric implements MetricUser: the metric of the next proposal.
+func (k *MALA) Metric() *Metric {
+	if k.pendingSet {
+		return orIdentity(k.pending, k.dim)
+	}
+	return orIdentity(k.metric, k.dim)
 }
 
 // malaTarget is the acceptance rate the step adaptation aims at
-// (THEORY.md §6).
+// (Roberts & Rosenthal 1998).
 const malaTarget = 0.574
 
 // NewMALA returns a MALA kernel for chains chains in dimension dim with
@@ -171,7 +211,12 @@ func (k *MALA) Tell(a *Answer) bool {
 	var sumAlpha float64
 	for c := range k.chains {
 		lo, hi := c*p, (c+1)*p
-		la := malaLogAccept(k.x[lo:hi], k.y[lo:hi], k.lpx[c], a.LogDensity[c], k.gx[lo:hi], a.Grad[lo:hi], k.h)
+		var la float64
+		if k.metric == nil {
+			la = malaLogAccept(k.x[lo:hi], k.y[lo:hi], k.lpx[c], a.LogDensity[c], k.gx[lo:hi], a.Grad[lo:hi], k.h)
+		} else {
+			la = malaLogAcceptMetric(k.x[lo:hi], k.y[lo:hi], k.lpx[c], a.LogDensity[c], k.gx[lo:hi], a.Grad[lo:hi], k.h, k.metric, k.tmp)
+		}
 		if la >= 0 {
 			sumAlpha++
 		} else if la > math.Inf(-1) { // NaN and −∞ count as 0
@@ -199,15 +244,60 @@ func (k *MALA) Tell(a *Answer) bool {
 	return true
 }
 
-// propose draws y = x + h·∇log π(x) + √(2h)·ξ for every chain.
+// propose draws y = x + h·∇log π(x) + √(2h)·ξ for every chain (with a
+// metric, y = x + h·C·∇log π(x) + √(2h)·L·ξ), taking up a metric set since
+// the last proposal.
 func (k *MALA) propose() {
+	if k.pendingSet {
+		k.metric, k.pending, k.pendingSet = k.pending, nil, false
+	}
 	s := math.Sqrt(2 * k.h)
-	for i := range k.y {
-		k.y[i] = k.x[i] + k.h*k.gx[i] + s*k.rng.NormFloat64()
+	if k.metric == nil {
+		for i := range k.y {
+			k.y[i] = k.x[i] + k.h*k.gx[i] + s*k.rng.NormFloat64()
+		}
+		return
+	}
+	p := k.dim
+	xi, lz := k.tmp[:p], k.tmp[p:2*p]
+	for c := range k.chains {
+		lo, hi := c*p, (c+1)*p
+		for i := range xi {
+			xi[i] = k.rng.NormFloat64()
+		}
+		k.metric.ApplyFactor(lz, xi)
+		k.metric.Apply(xi, k.gx[lo:hi])
+		y, x := k.y[lo:hi], k.x[lo:hi]
+		for i := range y {
+			y[i] = x[i] + k.h*xi[i] + s*lz[i]
+		}
 	}
 }
 
-// malaLogAccept returns the log acceptance ratio A of THEORY.md §6 for a
+// malaLogAcceptMetric is malaLogAccept for the proposal N(x + hC∇log π(x),
+// 2hC): the squared norms are ‖L⁻¹r‖² of the residuals r, with tmp (2p
+// values) as scratch.
+func malaLogAcceptMetric(x, y []float64, lpx, lpy float64, gx, gy []float64, h float64, m *Metric, tmp []float64) float64 {
+	p := len(x)
+	cg, r := tmp[:p], tmp[p:2*p]
+	sq := func(from, to, g []float64) float64 {
+		m.Apply(cg, g)
+		for i := range r {
+			r[i] = to[i] - from[i] - h*cg[i]
+		}
+		m.SolveFactor(r, r)
+		var s float64
+		for _, v := range r {
+			s += v * v
+		}
+		return s
+	}
+	fwd := sq(x, y, gx) // ‖L⁻¹(y − x − hC gx)‖²
+	bwd := sq(y, x, gy) // ‖L⁻¹(x − y − hC gy)‖²
+	return (lpy - bwd/(4*h)) - (lpx - fwd/(4*h))
+}
+
+// malaLogAccept returns the log acceptance ratio A above for a
 // move from x to y given log π and ∇log π at both.
 func malaLogAccept(x, y []float64, lpx, lpy float64, gx, gy []float64, h float64) float64 {
 	var fwd, bwd float64 // ‖y − x − h gx‖², ‖x − y − h gy‖²
@@ -220,75 +310,70 @@ func malaLogAccept(x, y []float64, lpx, lpy float64, gx, gy []float64, h float64
 	return (lpy - bwd/(4*h)) - (lpx - fwd/(4*h))
 }
 
-const malaMagic = "sluice.mala.v1"
-
 // MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
 // burn-in, completed steps, step size, the phase's acceptance counts, the
 // positions with their log densities and gradients, the pending proposals
 // and the random stream's state.
 func (k *MALA) MarshalBinary() ([]byte, error) {
-	rs, err := k.src.MarshalBinary()
-	if err != nil {
-		return nil, err
-	}
-	b := make([]byte, 0, len(malaMagic)+8*(7+2*k.chains+3*len(k.x))+len(rs))
-	b = append(b, malaMagic...)
-	u := func(v uint64) { b = binary.LittleEndian.AppendUint64(b, v) }
-	u(uint64(k.dim))
-	u(uint64(k.chains))
-	u(uint64(k.burnIn))
-	u(uint64(k.steps))
-	u(math.Float64bits(k.h))
-	u(stateBit(k.ready))
-	u(uint64(k.proposed))
-	for _, a := range k.accepted {
-		u(uint64(a))
-	}
-	b = appendStateFloats(b, k.x)
-	b = appendStateFloats(b, k.lpx)
-	b = appendStateFloats(b, k.gx)
-	b = appendStateFloats(b, k.y)
-	return append(b, rs...), nil
+	w := newStateWriter("MALA")
+	w.ints("dim", k.dim)
+	w.ints("chains", k.chains)
+	w.ints("burnin", k.burnIn)
+	w.ints("steps", k.steps)
+	w.floats("h", k.h)
+	w.flag("ready", k.ready)
+	w.ints("proposed", k.proposed)
+	w.ints("accepted", k.accepted...)
+	w.floats("x", k.x...)
+	w.floats("logpi", k.lpx...)
+	w.floats("grad", k.gx...)
+	w.floats("y", k.y...)
+	writeMetric(w, "metric", k.metric)
+	w.flag("pending", k.pendingSet)
+	writeMetric(w, "pendingmetric", k.pending)
+	w.stream("rng", k.src)
+	return w.bytes()
 }
 
 // UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
 // whole state, including dimension and number of chains.
 func (k *MALA) UnmarshalBinary(b []byte) error {
-	bad := errors.New("kernels: corrupt MALA state")
-	r := stateReader{b: b}
-	if !r.magic(malaMagic) {
-		return errors.New("kernels: not a MALA state")
-	}
-	n := &MALA{}
-	n.dim, n.chains = int(r.u64()), int(r.u64())
-	n.burnIn, n.steps = int(r.u64()), int(r.u64())
-	n.h = math.Float64frombits(r.u64())
-	ready := r.u64()
-	n.ready = ready == 1
-	n.proposed = int(r.u64())
-	lim := len(b) / 8
-	if r.err != nil || n.dim < 1 || n.chains < 1 || n.dim > lim || n.chains > lim || n.dim*n.chains > lim ||
-		n.burnIn < 0 || n.steps < 0 || n.proposed < 0 || n.proposed > n.steps || ready > 1 ||
-		!(n.h > 0) || math.IsInf(n.h, 0) {
-		return bad
-	}
-	n.alloc()
-	for c := range n.accepted {
-		n.accepted[c] = int(r.u64())
-		if n.accepted[c] < 0 || n.accepted[c] > n.proposed {
-			return bad
-		}
-	}
-	n.x = r.floats(n.dim * n.chains)
-	r.fill(n.lpx, n.gx, n.y)
-	if r.err != nil {
-		return bad
-	}
-	src, err := r.stream("MALA")
+	r, err := readState(b, "MALA")
 	if err != nil {
 		return err
 	}
-	n.src = src
+	n := &MALA{}
+	n.dim, n.chains = r.shape()
+	n.burnIn, n.steps = r.integer("burnin"), r.integer("steps")
+	n.h = r.float("h")
+	n.ready = r.flag("ready")
+	n.proposed = r.integer("proposed")
+	if err := r.check(n.burnIn >= 0 && n.steps >= 0 && n.proposed >= 0 && n.proposed <= n.steps && positive(n.h),
+		"burn-in, step counts or step size"); err != nil {
+		return err
+	}
+	n.alloc()
+	acc := r.ints("accepted", n.chains)
+	for c := range acc {
+		n.accepted[c] = acc[c]
+		if acc[c] < 0 || acc[c] > n.proposed {
+			r.fail("acceptance count %d of %d", acc[c], n.proposed)
+		}
+	}
+	n.x = r.floats("x", n.dim*n.chains)
+	r.fill("logpi", n.lpx)
+	r.fill("grad", n.gx)
+	r.fill("y", n.y)
+	n.metric = readMetric(r, "metric", n.dim)
+	n.pendingSet = r.flag("pending")
+	n.pending = readMetric(r, "pendingmetric", n.dim)
+	if n.metric != nil || n.pending != nil {
+		n.tmp = make([]float64, 2*n.dim)
+	}
+	n.src = r.stream("rng")
+	if r.err != nil {
+		return r.err
+	}
 	n.rng = rand.New(n.src)
 	n.buildRequest()
 	*k = *n

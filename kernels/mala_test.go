@@ -1,8 +1,7 @@
 package kernels
 
-// Internal tests: the THEORY.md §6 vectors need the unexported acceptance
-// ratio. The drivers and Monte Carlo error helpers (ozakiDrive, ozakiStat)
-// are in ozaki_test.go.
+// Internal tests: the MALA test vectors (computed for the project) need the unexported acceptance
+// ratio. The driver and Monte Carlo error helpers are in drive_test.go.
 
 import (
 	"bytes"
@@ -14,7 +13,6 @@ import (
 	"gonum.org/v1/gonum/integrate"
 	"gonum.org/v1/gonum/mat"
 
-	"sluice/kernels/diag"
 	"sluice/kernels/targets"
 )
 
@@ -57,7 +55,7 @@ func malaAccepts(d [][][]float64) [][]float64 {
 	return out
 }
 
-// THEORY.md §6 vectors (standard normal target, log π = −‖x‖²/2,
+// MALA test vectors computed for the project (standard normal target, log π = −‖x‖²/2,
 // ∇log π = −x): A exactly and α = min{1, e^A}.
 func TestMALAAcceptanceVectors(t *testing.T) {
 	for _, tc := range []struct {
@@ -94,7 +92,7 @@ func TestMALAAcceptanceVectors(t *testing.T) {
 
 // Two steps by hand, replaying the documented use of the stream: the
 // start's answer draws the first proposals' normals chain by chain; a step
-// draws one uniform per chain, then the next normals (THEORY.md §6).
+// draws one uniform per chain, then the next normals (Roberts and Tweedie 1996).
 func TestMALAStepByHand(t *testing.T) {
 	const seed, h = 17, 0.3
 	target := malaGaussian(t, []float64{1, 0, 0, 1})
@@ -139,7 +137,7 @@ func TestMALAStepByHand(t *testing.T) {
 	}
 }
 
-// Evaluation accounting (THEORY.md §13, "1 (+ f at proposal)"): one point
+// Evaluation accounting (by the method's definition: one point per proposal): one point
 // with log density and gradient per chain per step, plus one per chain at
 // the start.
 func TestMALAEvaluationsPerStep(t *testing.T) {
@@ -164,9 +162,9 @@ func TestMALAEvaluationsPerStep(t *testing.T) {
 	}
 }
 
-// MALA leaves π invariant at any step (THEORY.md §6). On N(0, Q⁻¹) with
+// MALA leaves π invariant at any step (Roberts and Tweedie 1996). On N(0, Q⁻¹) with
 // Q = [[2, .5], [.5, 1]] and a fixed h = 0.5, where ULA's stationary
-// covariance is [Q(I − hQ/2)]⁻¹ (THEORY.md §11a) with entries about twice
+// covariance is [Q(I − hQ/2)]⁻¹ (derived here, discrete Lyapunov equation) with entries about twice
 // those of Q⁻¹, the means and every covariance entry must lie within
 // 4 MCSE of 0 and Q⁻¹, and the variances more than 4 MCSE from ULA's.
 func TestMALAGaussianUnbiased(t *testing.T) {
@@ -208,7 +206,7 @@ func TestMALAGaussianUnbiased(t *testing.T) {
 // h from n exact independent draws x = L⁻ᵀz (Q = LLᵀ, gonum Cholesky and
 // inverse) and fresh proposals, with its standard error. It shares no code
 // with the kernel's chains beyond malaLogAccept, checked against
-// THEORY.md §6.
+// Roberts and Rosenthal (1998).
 func malaExpectedAcceptance(t *testing.T, target *targets.Gaussian, h float64, n int, seed uint64) (mean, se float64) {
 	var ch mat.Cholesky
 	if !ch.Factorize(target.Precision()) {
@@ -258,7 +256,7 @@ func malaExpectedAcceptance(t *testing.T, target *targets.Gaussian, h float64, n
 // last bound is a design tolerance of the Robbins–Monro rule: at t = 1500
 // its gain is 0.012 and the mean acceptance of 16 chains has sd ≈ 0.12, so
 // log h fluctuates by about √(0.012·0.12²/2) ≈ 0.01 and α by less than
-// 0.01 (common practice; the rule is not a THEORY.md result).
+// 0.01 (common practice; the rule is not from a published result).
 func TestMALAAdaptation(t *testing.T) {
 	target := malaGaussian(t, []float64{2, .5, .5, 1})
 	for seed, h0 := range map[uint64]float64{41: 0.005, 42: 5} {
@@ -299,14 +297,7 @@ func TestMALAAdaptation(t *testing.T) {
 				}
 				rate += r / 16
 			}
-			var s, s2, n float64
-			for _, c := range acc {
-				for _, v := range c {
-					s, s2, n = s+v, s2+v*v, n+1
-				}
-			}
-			m := s / n
-			se := math.Sqrt((s2/n-m*m)*n/(n-1)) / math.Sqrt(diag.ESS(diag.SplitChains(acc)))
+			_, se := seriesMean(acc)
 			want, wse := malaExpectedAcceptance(t, target, h, 100000, seed+100)
 			t.Logf("h0 %v → h %.4f: acceptance %.4f ± %.4f, E_π[α(h)] = %.4f ± %.4f", h0, h, rate, se, want, wse)
 			if z := (rate - want) / math.Hypot(se, wse); math.Abs(z) > 4 {

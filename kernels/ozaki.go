@@ -1,8 +1,6 @@
 package kernels
 
 import (
-	"encoding/binary"
-	"errors"
 	"fmt"
 	"math"
 	"math/rand/v2"
@@ -15,7 +13,8 @@ import (
 )
 
 // Ozaki is Langevin Monte Carlo with the Ozaki (local linear)
-// discretisation over a batch of chains (THEORY.md §1.3). At θ_k it freezes
+// discretisation over a batch of chains (Ozaki 1992; Dalalyan,
+// JRSS B 79 (2017), the LMCO scheme). At θ_k it freezes
 // the linearisation of the drift, with g_k = ∇f(θ_k) = −∇log π(θ_k) and
 // H_k = ∇²f(θ_k) = −∇²log π(θ_k), and moves by the exact transition of the
 // resulting Ornstein–Uhlenbeck process over time h:
@@ -27,7 +26,8 @@ import (
 // covariance Σ_k = H_k⁻¹(I − e^{−2hH_k}) = V diag(φ₂) Vᵀ. The noise uses
 // the symmetric square root V diag(√φ₂) (the eigenvectors are already at
 // hand), not a Cholesky factor; both give the same Gaussian law. For a
-// Gaussian target the step is exact for every h (THEORY.md §11c). φ₁ and φ₂
+// Gaussian target the step is exact for every h (derived here: the
+// linearised SDE is then the SDE itself). φ₁ and φ₂
 // stay positive for λ ≤ 0, so indefinite Hessians are allowed (the step
 // then expands along those directions).
 //
@@ -117,7 +117,7 @@ func (w *ozakiWork) move(x, s, xi []float64, p int) {
 func ozakiVec(s []float64) blas64.Vector { return blas64.Vector{N: len(s), Inc: 1, Data: s} }
 
 // ozakiSeries is the bound on |hλ| below which φ₁ and φ₂ use their Taylor
-// series (THEORY.md §1.3).
+// series (derived here).
 const ozakiSeries = 1e-6
 
 // ozakiPhi1 is φ₁(λ) = (1 − e^{−hλ})/λ, computed as −expm1(−hλ)/λ, with the
@@ -212,60 +212,39 @@ func (k *Ozaki) Tell(a *Answer) bool {
 	return true
 }
 
-const ozakiMagic = "sluice.ozaki.v1"
-
 // MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
 // step, completed steps, positions and the random stream's state.
 func (k *Ozaki) MarshalBinary() ([]byte, error) {
-	rs, err := k.src.MarshalBinary()
-	if err != nil {
-		return nil, err
-	}
-	b := make([]byte, 0, len(ozakiMagic)+4*8+8*len(k.x)+len(rs))
-	b = append(b, ozakiMagic...)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.dim))
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.chains))
-	b = binary.LittleEndian.AppendUint64(b, math.Float64bits(k.h))
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.steps))
-	b = appendStateFloats(b, k.x)
-	return append(b, rs...), nil
+	w := newStateWriter("Ozaki")
+	w.ints("dim", k.dim)
+	w.ints("chains", k.chains)
+	w.floats("h", k.h)
+	w.ints("steps", k.steps)
+	w.floats("x", k.x...)
+	w.stream("rng", k.src)
+	return w.bytes()
 }
 
 // UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
 // whole state, including dimension and number of chains.
 func (k *Ozaki) UnmarshalBinary(b []byte) error {
-	r := stateReader{b: b}
-	if !r.magic(ozakiMagic) {
-		return errors.New("kernels: not an Ozaki state")
+	r, err := readState(b, "Ozaki")
+	if err != nil {
+		return err
 	}
-	dim, chains := int(r.u64()), int(r.u64())
-	h := math.Float64frombits(r.u64())
-	steps := int(r.u64())
-	if r.err != nil || dim < 1 || chains < 1 || dim > len(b)/8 || chains > len(b)/8 || dim*chains > len(b)/8 ||
-		!(h > 0) || math.IsInf(h, 0) || steps < 0 {
-		return errors.New("kernels: corrupt Ozaki state")
-	}
-	x := r.floats(dim * chains)
-	if r.err != nil {
-		return errors.New("kernels: corrupt Ozaki state")
-	}
-	src := &rand.PCG{}
-	if err := src.UnmarshalBinary(r.rest()); err != nil {
-		return fmt.Errorf("kernels: Ozaki random state: %w", err)
+	dim, chains := r.shape()
+	h, steps := r.float("h"), r.integer("steps")
+	x := r.floats("x", dim*chains)
+	src := r.stream("rng")
+	if err := r.check(positive(h) && steps >= 0, "step or step count"); err != nil {
+		return err
 	}
 	*k = Ozaki{dim: dim, chains: chains, h: h, steps: steps, x: x, src: src, rng: rand.New(src)}
 	k.init()
 	return nil
 }
 
-func appendStateFloats(b []byte, v []float64) []byte {
-	for _, f := range v {
-		b = binary.LittleEndian.AppendUint64(b, math.Float64bits(f))
-	}
-	return b
-}
-
-// OzakiKrylov takes the step of Ozaki (THEORY.md §1.3) for large p, built
+// OzakiKrylov takes the step of Ozaki (Ozaki 1992) for large p, built
 // from Hessian-vector products instead of whole Hessians. Per chain
 // it needs two matrix functions of H = −∇²log π applied to one vector each,
 //
@@ -664,47 +643,87 @@ func (k *OzakiKrylov) finish() {
 	k.buildRequest()
 }
 
-const ozakiKrylovMagic = "sluice.ozakikrylov.v1"
-
 // MarshalBinary implements encoding.BinaryMarshaler: the settings, the
 // positions, the current step's normals and Lanczos processes (so a state
 // taken between two requests of a step resumes it), the last step's
 // statistics and the random stream's state.
 func (k *OzakiKrylov) MarshalBinary() ([]byte, error) {
-	rs, err := k.src.MarshalBinary()
-	if err != nil {
-		return nil, err
-	}
-	b := append([]byte(nil), ozakiKrylovMagic...)
-	u := func(v uint64) { b = binary.LittleEndian.AppendUint64(b, v) }
-	f := func(v float64) { u(math.Float64bits(v)) }
-	u(uint64(k.dim))
-	u(uint64(k.chains))
-	f(k.h)
-	f(k.tol)
-	u(uint64(k.maxIter))
-	u(uint64(k.steps))
-	u(stateBit(k.first))
-	u(uint64(k.rows))
-	u(uint64(k.last.MaxIterations))
-	f(k.last.MaxEstimate)
-	u(uint64(k.last.Unconverged))
-	u(uint64(k.last.Rows))
-	b = appendStateFloats(b, k.x)
-	b = appendStateFloats(b, k.xi)
+	w := newStateWriter("OzakiKrylov")
+	w.ints("dim", k.dim)
+	w.ints("chains", k.chains)
+	w.floats("h", k.h)
+	w.floats("tol", k.tol)
+	w.ints("maxiter", k.maxIter)
+	w.ints("steps", k.steps)
+	w.flag("first", k.first)
+	w.ints("rows", k.rows)
+	w.ints("laststats", k.last.MaxIterations, k.last.Unconverged, k.last.Rows)
+	w.floats("lastestimate", k.last.MaxEstimate)
+	w.floats("x", k.x...)
+	w.floats("xi", k.xi...)
 	for i := range k.procs {
 		l := &k.procs[i]
-		u(uint64(l.m))
-		u(stateBit(l.done))
-		f(l.norm)
-		f(l.est)
-		f(l.d)
-		b = appendStateFloats(b, l.alpha[:l.m])
-		b = appendStateFloats(b, l.beta[:l.m])
-		b = appendStateFloats(b, l.y[:l.m])
-		b = appendStateFloats(b, l.basis[:max(l.stored(), 1)*k.dim])
+		p := fmt.Sprintf("proc%d.", i)
+		w.ints(p+"m", l.m)
+		w.flag(p+"done", l.done)
+		w.floats(p+"scalars", l.norm, l.est, l.d)
+		w.floats(p+"alpha", l.alpha[:l.m]...)
+		w.floats(p+"beta", l.beta[:l.m]...)
+		w.floats(p+"y", l.y[:l.m]...)
+		w.floats(p+"basis", l.basis[:max(l.stored(), 1)*k.dim]...)
 	}
-	return append(b, rs...), nil
+	w.stream("rng", k.src)
+	return w.bytes()
+}
+
+// UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
+// whole state, including a step in progress.
+func (k *OzakiKrylov) UnmarshalBinary(b []byte) error {
+	r, err := readState(b, "OzakiKrylov")
+	if err != nil {
+		return err
+	}
+	n := &OzakiKrylov{}
+	n.dim, n.chains = r.shape()
+	n.h, n.tol = r.float("h"), r.float("tol")
+	n.maxIter, n.steps = r.integer("maxiter"), r.integer("steps")
+	n.first = r.flag("first")
+	n.rows = r.integer("rows")
+	if s := r.ints("laststats", 3); s != nil {
+		n.last = KrylovStats{MaxIterations: s[0], Unconverged: s[1], Rows: s[2], MaxEstimate: r.float("lastestimate")}
+	}
+	if err := r.check(n.maxIter >= 1 && n.maxIter <= n.dim && positive(n.h) && n.tol > 0 && n.tol < 1 && n.steps >= 0,
+		"step, tolerance, iteration limit or step count"); err != nil {
+		return err
+	}
+	n.alloc()
+	n.x = r.floats("x", n.dim*n.chains)
+	r.fill("xi", n.xi)
+	for i := range n.procs {
+		l := &n.procs[i]
+		p := fmt.Sprintf("proc%d.", i)
+		l.m = r.integer(p + "m")
+		l.done = r.flag(p + "done")
+		if v := r.floats(p+"scalars", 3); v != nil {
+			l.norm, l.est, l.d = v[0], v[1], v[2]
+		}
+		if r.check(l.m >= 0 && l.m <= n.maxIter && (l.done || l.m < n.maxIter), "Lanczos process") != nil {
+			break
+		}
+		l.growBasis(max(l.stored(), 1), n.dim)
+		r.fill(p+"alpha", l.alpha[:l.m])
+		r.fill(p+"beta", l.beta[:l.m])
+		r.fill(p+"y", l.y[:l.m])
+		r.fill(p+"basis", l.basis)
+	}
+	n.src = r.stream("rng")
+	if r.err != nil {
+		return r.err
+	}
+	n.rng = rand.New(n.src)
+	n.buildRequest()
+	*k = *n
+	return nil
 }
 
 // stored is the number of basis vectors in use: v_1 … v_{m+1} while the
@@ -714,70 +733,4 @@ func (l *ozakiLanczos) stored() int {
 		return l.m
 	}
 	return l.m + 1
-}
-
-func stateBit(v bool) uint64 {
-	if v {
-		return 1
-	}
-	return 0
-}
-
-// UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
-// whole state, including a step in progress.
-func (k *OzakiKrylov) UnmarshalBinary(b []byte) error {
-	bad := errors.New("kernels: corrupt OzakiKrylov state")
-	r := stateReader{b: b}
-	if !r.magic(ozakiKrylovMagic) {
-		return errors.New("kernels: not an OzakiKrylov state")
-	}
-	n := &OzakiKrylov{}
-	n.dim, n.chains = int(r.u64()), int(r.u64())
-	n.h, n.tol = math.Float64frombits(r.u64()), math.Float64frombits(r.u64())
-	n.maxIter, n.steps = int(r.u64()), int(r.u64())
-	first := r.u64()
-	n.first = first == 1
-	n.rows = int(r.u64())
-	n.last = KrylovStats{MaxIterations: int(r.u64()), MaxEstimate: math.Float64frombits(r.u64()),
-		Unconverged: int(r.u64()), Rows: int(r.u64())}
-	lim := len(b) / 8
-	if r.err != nil || n.dim < 1 || n.chains < 1 || n.dim > lim || n.chains > lim || n.dim*n.chains > lim ||
-		n.maxIter < 1 || n.maxIter > n.dim || !(n.h > 0) || math.IsInf(n.h, 0) || !(n.tol > 0 && n.tol < 1) || n.steps < 0 || first > 1 {
-		return bad
-	}
-	n.alloc()
-	n.x = r.floats(n.dim * n.chains)
-	if x := r.floats(n.dim * n.chains); r.err == nil {
-		copy(n.xi, x)
-	}
-	for i := range n.procs {
-		l := &n.procs[i]
-		l.m = int(r.u64())
-		done := r.u64()
-		l.done = done == 1
-		l.norm = math.Float64frombits(r.u64())
-		l.est = math.Float64frombits(r.u64())
-		l.d = math.Float64frombits(r.u64())
-		if r.err != nil || l.m < 0 || l.m > n.maxIter || done > 1 || (!l.done && l.m == n.maxIter) {
-			return bad
-		}
-		l.growBasis(max(l.stored(), 1), n.dim)
-		for _, dst := range [][]float64{l.alpha[:l.m], l.beta[:l.m], l.y[:l.m], l.basis} {
-			if v := r.floats(len(dst)); r.err == nil {
-				copy(dst, v)
-			}
-		}
-	}
-	if r.err != nil {
-		return bad
-	}
-	src, err := r.stream("OzakiKrylov")
-	if err != nil {
-		return err
-	}
-	n.src = src
-	n.rng = rand.New(n.src)
-	n.buildRequest()
-	*k = *n
-	return nil
 }

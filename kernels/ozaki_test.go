@@ -1,6 +1,6 @@
 package kernels
 
-// Internal tests: the THEORY.md §1.3 vectors need the transition with a
+// Internal tests: the Ozaki test vectors (computed for the project) need the transition with a
 // chosen ξ, which only the unexported workspace offers.
 
 import (
@@ -72,7 +72,7 @@ func ozakiTransition(h float64, x, s, hess []float64) (mean []float64, cov *mat.
 	return mean, cov, w
 }
 
-// THEORY.md §1.3: φ values at h = 0.1, including the series branch
+// Ozaki (1992) step, values computed for the project: φ values at h = 0.1, including the series branch
 // (λ = 1e-9) and a negative eigenvalue, where both stay positive.
 func TestOzakiPhi(t *testing.T) {
 	for _, tc := range []struct{ lam, phi1, phi2 float64 }{
@@ -102,7 +102,7 @@ func TestOzakiPhi(t *testing.T) {
 	}
 }
 
-// THEORY.md §1.3, 1-D example: f(θ) = log(1+e^θ) + θ²/2 at θ = 0.5,
+// Ozaki (1992) step, values computed for the project, 1-D example: f(θ) = log(1+e^θ) + θ²/2 at θ = 0.5,
 // h = 0.1; the move with ξ = 0.3 gives θ' = mean + √variance·0.3.
 func TestOzakiSoftplus1D(t *testing.T) {
 	th, h := 0.5, 0.1
@@ -118,7 +118,7 @@ func TestOzakiSoftplus1D(t *testing.T) {
 	ozakiClose(t, "θ'", x[0], 0.5206988970467055, 1e-12)
 }
 
-// THEORY.md §1.3, 2-D example: H = [[2, .5], [.5, 1]], θ = (1, −1),
+// Ozaki (1992) step, values computed for the project, 2-D example: H = [[2, .5], [.5, 1]], θ = (1, −1),
 // g = Hθ + (0.1, 0), h = 0.2. The kernel's noise is V diag(√φ₂)ξ, the
 // vector's is L z with the lower Cholesky factor L of Σ (gonum); the same
 // Σ makes both the same law, and L z + mean must give the vector's θ'.
@@ -188,13 +188,13 @@ func TestOzaki2DVector(t *testing.T) {
 	}
 }
 
-// THEORY.md §11c: for a Gaussian target the step is the exact diffusion
+// Derived here (Ozaki is exact for Gaussians): for a Gaussian target the step is the exact diffusion
 // transition, mean e^{−hQ}θ and covariance Q⁻¹(I − e^{−2hQ}).
 //
-// Erratum: §11c gives its 2-D vector for h = 0.2, but its numbers are
+// Erratum: the reference sheet gave its 2-D vector for h = 0.2, but its numbers are
 // those of h = 0.5 (recomputed with gonum's mat.Exp in
 // TestOzakiAgainstMatrixExponential's way, and by hand with scipy's expm:
-// at h = 0.2 the covariance is §1.3's Σ, which the same Q and h must give,
+// at h = 0.2 the covariance is the 2-D example's Σ, which the same Q and h must give,
 // and is checked below).
 func TestOzakiExactGaussianStep(t *testing.T) {
 	mean, cov, _ := ozakiTransition(0.5, []float64{1}, []float64{-2}, []float64{-2})
@@ -203,7 +203,7 @@ func TestOzakiExactGaussianStep(t *testing.T) {
 
 	q := []float64{-2, -.5, -.5, -1}
 	_, cov, _ = ozakiTransition(0.2, []float64{1, -1}, []float64{-1.5, 0.5}, q)
-	sigma13 := [2][2]float64{{0.2769742874, -0.0272554536}, {-0.0272554536, 0.3314851946}} // §1.3
+	sigma13 := [2][2]float64{{0.2769742874, -0.0272554536}, {-0.0272554536, 0.3314851946}} // the 2-D example
 	for i := range 2 {
 		for j := range 2 {
 			ozakiClose(t, fmt.Sprintf("h = 0.2 Σ[%d][%d]", i, j), cov.At(i, j), sigma13[i][j], 1e-9)
@@ -257,7 +257,7 @@ func ozakiRandomSym(rng *rand.Rand, eig []float64) []float64 {
 
 // The transition against gonum's matrix exponential (mat.Exp) and inverse
 // on random 5×5 matrices, definite and indefinite: mean
-// θ − A⁻¹(I − e^{−hA})g and covariance A⁻¹(I − e^{−2hA}) (THEORY.md §1.3).
+// θ − A⁻¹(I − e^{−hA})g and covariance A⁻¹(I − e^{−2hA}) (Ozaki 1992).
 func TestOzakiAgainstMatrixExponential(t *testing.T) {
 	rng := rand.New(NewSource(21))
 	for _, eig := range [][]float64{{0.3, 1, 2, 4, 7}, {-0.8, -0.1, 0.5, 1.5, 3}} {
@@ -305,9 +305,9 @@ func TestOzakiAgainstMatrixExponential(t *testing.T) {
 	}
 }
 
-// THEORY.md §11c: Ozaki is exact for Gaussians, so its stationary law is
+// Derived here: Ozaki is exact for Gaussians, so its stationary law is
 // N(0, Q⁻¹) for any h. With Q = [[2, .5], [.5, 1]] and h = 2.0, far above
-// the LMC stability limit 2/λ_max = 0.906 (§11a), the means and every
+// the LMC stability limit 2/λ_max = 0.906 (derived here), the means and every
 // covariance entry must be within 4 MCSE of 0 and Q⁻¹, while LMC at the
 // same step diverges (|1 − hλ_max| = 3.41 > 1).
 func TestOzakiGaussianStationary(t *testing.T) {
@@ -343,7 +343,7 @@ func TestOzakiGaussianStationary(t *testing.T) {
 // mat.EigenSym, for tolerances 1e-4 … 1e-10 and spectra mild, indefinite
 // and stiff (hλ up to 100). The error relative to ‖φ₁(A)s‖ + ‖√φ₂(A)ξ‖ must
 // stay below 10·tol, the kernel must report every vector converged, and
-// the reported estimate must lie below tol (THEORY.md §1.3; the Lanczos
+// the reported estimate must lie below tol (Ozaki 1992; the Lanczos
 // approximation of f(A)b is common practice).
 func TestOzakiKrylovAccuracy(t *testing.T) {
 	const p, chains = 80, 2
@@ -441,7 +441,7 @@ func TestOzakiKrylovAccuracy(t *testing.T) {
 	}
 }
 
-// THEORY.md §11c through the Krylov mode: on N(0, Q⁻¹) with a random
+// Derived here (Ozaki is exact for Gaussians), through the Krylov mode: on N(0, Q⁻¹) with a random
 // 24×24 Q (eigenvalues 0.5 … 5) and h = 1.0 (LMC needs h < 0.4), tol 1e-8
 // and fewer Lanczos iterations than the dimension, the stationary law is
 // N(0, Q⁻¹): E[xᵀQx] = p, and the variances along the softest and stiffest
@@ -492,7 +492,7 @@ func TestOzakiKrylovGaussianStationary(t *testing.T) {
 	}
 }
 
-// Request layout and evaluation accounting (THEORY.md §13: LMCO costs one
+// Request layout and evaluation accounting (by the method's definition: LMCO costs one
 // gradient and one Hessian per chain per step).
 func TestOzakiEvaluationsPerStep(t *testing.T) {
 	k := NewOzaki(3, 5, 0.1, make([]float64, 3), NewSource(1))

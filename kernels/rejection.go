@@ -1,8 +1,6 @@
 package kernels
 
 import (
-	"encoding/binary"
-	"errors"
 	"fmt"
 	"math"
 	"math/rand/v2"
@@ -256,111 +254,85 @@ func (k *Rejection) Tell(a *Answer) bool {
 	return done
 }
 
-const rejectionMagic = "sluice.rejection.v1"
-
 // MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
 // envelope and bound, counts, the first violation if any, which chains
 // wait, the draws, the accepted draws and pending proposals, and the
 // random stream's state. A state taken in the middle of a step resumes it
 // exactly.
 func (k *Rejection) MarshalBinary() ([]byte, error) {
-	rs, err := k.src.MarshalBinary()
-	if err != nil {
-		return nil, err
-	}
-	n := len(k.x)
-	b := make([]byte, 0, len(rejectionMagic)+8*(12+2*k.dim+k.chains+3*n)+len(rs))
-	b = append(b, rejectionMagic...)
-	u := func(v uint64) { b = binary.LittleEndian.AppendUint64(b, v) }
-	f := func(v float64) { u(math.Float64bits(v)) }
-	u(uint64(k.dim))
-	u(uint64(k.chains))
-	f(k.scale)
-	f(k.logBound)
-	u(uint64(k.steps))
-	u(uint64(k.proposed))
-	u(uint64(k.accepted))
-	u(uint64(k.stepProposed))
+	w := newStateWriter("Rejection")
+	w.ints("dim", k.dim)
+	w.ints("chains", k.chains)
+	w.floats("scale", k.scale)
+	w.floats("logbound", k.logBound)
+	w.ints("counts", k.steps, k.proposed, k.accepted, k.stepProposed)
 	if v := k.viol; v != nil {
-		u(1)
-		u(uint64(v.Chain))
-		f(v.LogRatio)
-		for _, e := range v.Point {
-			f(e)
-		}
-	} else {
-		u(0)
-		u(0)
-		f(0)
-		for range k.dim {
-			f(0)
+		w.ints("violchain", v.Chain)
+		w.floats("violratio", v.LogRatio)
+		w.floats("violpoint", v.Point...)
+	}
+	waiting := make([]int, k.chains)
+	for c, b := range k.waiting {
+		if b {
+			waiting[c] = 1
 		}
 	}
-	for _, w := range k.waiting {
-		if w {
-			u(1)
-		} else {
-			u(0)
-		}
-	}
-	for _, v := range [][]float64{k.mean, k.x, k.xn, k.y} {
-		for _, e := range v {
-			f(e)
-		}
-	}
-	return append(b, rs...), nil
+	w.ints("waiting", waiting...)
+	w.floats("mean", k.mean...)
+	w.floats("x", k.x...)
+	w.floats("xnext", k.xn...)
+	w.floats("y", k.y...)
+	w.stream("rng", k.src)
+	return w.bytes()
 }
 
 // UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
 // whole state, including dimension and number of chains.
 func (k *Rejection) UnmarshalBinary(b []byte) error {
-	bad := errors.New("kernels: corrupt rejection state")
-	r := stateReader{b: b}
-	if !r.magic(rejectionMagic) {
-		return errors.New("kernels: not a rejection state")
+	r, err := readState(b, "Rejection")
+	if err != nil {
+		return err
 	}
 	n := &Rejection{}
-	n.dim, n.chains = int(r.u64()), int(r.u64())
-	n.scale, n.logBound = math.Float64frombits(r.u64()), math.Float64frombits(r.u64())
-	n.steps, n.proposed, n.accepted, n.stepProposed = int(r.u64()), int(r.u64()), int(r.u64()), int(r.u64())
-	hasViol, violChain := r.u64(), int(r.u64())
-	violLR := math.Float64frombits(r.u64())
-	if r.err != nil || n.dim > RejectionMaxDim || !stateFits(n.dim, n.chains, 3, len(b)) ||
-		!(n.scale > 0) || math.IsInf(n.scale, 0) || math.IsNaN(n.logBound) || math.IsInf(n.logBound, 0) ||
-		n.steps < 0 || n.proposed < 0 || n.accepted < 0 || n.accepted > n.proposed ||
-		n.stepProposed < 0 || n.stepProposed > n.proposed || n.steps*n.chains > n.accepted ||
-		hasViol > 1 || violChain < 0 || violChain >= n.chains {
-		return bad
+	n.dim, n.chains = r.shape()
+	n.scale, n.logBound = r.float("scale"), r.float("logbound")
+	if c := r.ints("counts", 4); c != nil {
+		n.steps, n.proposed, n.accepted, n.stepProposed = c[0], c[1], c[2], c[3]
 	}
-	violPoint := r.floats(n.dim)
-	if hasViol == 1 {
-		n.viol = &BoundViolation{LogRatio: violLR, LogBound: n.logBound, Chain: violChain, Point: violPoint}
+	if err := r.check(n.dim <= RejectionMaxDim && positive(n.scale) && !math.IsNaN(n.logBound) && !math.IsInf(n.logBound, 0) &&
+		n.steps >= 0 && n.proposed >= 0 && n.accepted >= 0 && n.accepted <= n.proposed &&
+		n.stepProposed >= 0 && n.stepProposed <= n.proposed && n.steps <= n.accepted/n.chains,
+		"envelope, bound or counts"); err != nil {
+		return err
+	}
+	if r.has("violchain") {
+		c, lr, pt := r.integer("violchain"), r.float("violratio"), r.floats("violpoint", n.dim)
+		if r.check(c >= 0 && c < n.chains, "violation chain") == nil {
+			n.viol = &BoundViolation{LogRatio: lr, LogBound: n.logBound, Chain: c, Point: pt}
+		}
 	}
 	n.init()
-	for c := range n.waiting {
-		w := r.u64()
-		if w > 1 {
-			return bad
+	for c, w := range r.ints("waiting", n.chains) {
+		if w != 0 && w != 1 {
+			r.fail("waiting flag %d", w)
+			break
 		}
 		n.waiting[c] = w == 1
 		if n.waiting[c] {
 			n.left++
 		}
 	}
-	if r.err != nil || n.left == 0 || n.accepted != n.steps*n.chains+n.chains-n.left {
-		return bad
-	}
-	n.mean = r.floats(n.dim)
-	n.x = r.floats(n.dim * n.chains)
-	r.fill(n.xn, n.y)
-	if r.err != nil {
-		return bad
-	}
-	src, err := r.stream("rejection")
-	if err != nil {
+	if err := r.check(n.left > 0 && n.accepted == n.steps*n.chains+n.chains-n.left, "waiting chains or counts"); err != nil {
 		return err
 	}
-	n.src = src
+	n.mean = r.floats("mean", n.dim)
+	n.x = r.floats("x", n.dim*n.chains)
+	r.fill("xnext", n.xn)
+	r.fill("y", n.y)
+	n.src = r.stream("rng")
+	if r.err != nil {
+		return r.err
+	}
 	n.rng = rand.New(n.src)
 	rows := 0
 	for c, w := range n.waiting {

@@ -1,15 +1,12 @@
 package kernels
 
 import (
-	"encoding/binary"
-	"errors"
 	"fmt"
 	"math"
 	"math/rand/v2"
 )
 
-// SGLD is stochastic-gradient Langevin dynamics (Welling & Teh, ICML 2011;
-// THEORY.md §7.1) over a batch of chains. The client answers each request
+// SGLD is stochastic-gradient Langevin dynamics (Welling & Teh, ICML 2011) over a batch of chains. The client answers each request
 // with a minibatch estimate of the score,
 //
 //	ĝ_S(θ) = −[∇f₀(θ) + (N/n) Σ_{i∈S} ∇f_i(θ)]   (f₀ = −log prior, f_i = −log-likelihood of datum i)
@@ -32,14 +29,24 @@ type SGLD struct {
 	x           []float64 // chains×dim current positions
 	req         Request
 	noise       sgldNoise
+	pc          precond
 }
 
 var (
-	_ Kernel   = (*SGLD)(nil)
-	_ Preparer = (*SGLD)(nil)
+	_ Kernel     = (*SGLD)(nil)
+	_ Preparer   = (*SGLD)(nil)
+	_ MetricUser = (*SGLD)(nil)
 )
 
-// SGLDSchedule is the decreasing step of Welling & Teh (THEORY.md §7.1):
+// SetMetric implements MetricUser: from the next Tell every chain moves by
+// θ ← θ + h_t·C·ĝ_S(θ) + √(2h_t)·L·ξ (noise already drawn by Prepare is
+// standard normal and stays valid).
+func (k *SGLD) SetMetric(m *Metric) { k.pc.set("SGLD", m, k.dim, 2*k.dim) }
+
+// Metric implements MetricUser.
+func (k *SGLD) Metric() *Metric { return orIdentity(k.pc.metric, k.dim) }
+
+// SGLDSchedule is the decreasing step of Welling & Teh (2011):
 //
 //	ε_t = A·(B + t)^(−Gamma),   h_t = ε_t/2,   t = 0, 1, 2, ...
 //
@@ -54,7 +61,7 @@ func (s SGLDSchedule) IsZero() bool { return s == SGLDSchedule{} }
 
 // valid reports whether s is a usable schedule.
 func (s SGLDSchedule) valid() bool {
-	return kineticPositive(s.A) && kineticPositive(s.B) && s.Gamma > 0.5 && s.Gamma <= 1
+	return positive(s.A) && positive(s.B) && s.Gamma > 0.5 && s.Gamma <= 1
 }
 
 // NewSGLD returns an SGLD kernel for chains chains in dimension dim,
@@ -68,7 +75,7 @@ func NewSGLD(dim, chains int, h float64, sched SGLDSchedule, start []float64, sr
 		panic(fmt.Sprintf("kernels: SGLD with dim %d, chains %d", dim, chains))
 	}
 	switch {
-	case sched.IsZero() && !kineticPositive(h):
+	case sched.IsZero() && !positive(h):
 		panic(fmt.Sprintf("kernels: SGLD step %v", h))
 	case !sched.IsZero() && (h != 0 || !sched.valid()):
 		panic(fmt.Sprintf("kernels: SGLD schedule %+v with constant step %v (want a valid schedule and step 0)", sched, h))
@@ -116,6 +123,14 @@ func (k *SGLD) Tell(a *Answer) bool {
 	h := k.Step()
 	s := math.Sqrt(2 * h)
 	g, z := a.Grad[:n], k.noise.draw()
+	if m := k.pc.metric; m != nil {
+		for c := range k.chains {
+			lo, hi := c*k.dim, (c+1)*k.dim
+			m.move(k.x[lo:hi], g[lo:hi], z[lo:hi], h, s, k.pc.tmp)
+		}
+		k.steps++
+		return true
+	}
 	for i := range k.x {
 		k.x[i] += h*g[i] + s*z[i]
 	}
@@ -132,50 +147,45 @@ func sgldStepAt(h float64, s SGLDSchedule, t int) float64 {
 	return s.A * math.Pow(s.B+float64(t), -s.Gamma) / 2
 }
 
-const sgldMagic = "sluice.sgld.v1"
-
 // MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
 // constant step, schedule, completed steps, positions and the random
 // stream's state (before any noise drawn ahead by Prepare).
 func (k *SGLD) MarshalBinary() ([]byte, error) {
-	rs, err := k.noise.marshal()
-	if err != nil {
-		return nil, err
-	}
-	b := make([]byte, 0, len(sgldMagic)+7*8+8*len(k.x)+len(rs))
-	b = append(b, sgldMagic...)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.dim))
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.chains))
-	b = kineticAppend(b, k.h, k.sched.A, k.sched.B, k.sched.Gamma)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.steps))
-	b = kineticAppend(b, k.x...)
-	return append(b, rs...), nil
+	w := newStateWriter("SGLD")
+	w.ints("dim", k.dim)
+	w.ints("chains", k.chains)
+	w.floats("h", k.h)
+	w.floats("schedule", k.sched.A, k.sched.B, k.sched.Gamma)
+	w.ints("steps", k.steps)
+	w.floats("x", k.x...)
+	writeMetric(w, "metric", k.pc.metric)
+	w.stream("rng", k.noise.saved())
+	return w.bytes()
 }
 
 // UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
 // whole state, including dimension, number of chains and schedule.
 func (k *SGLD) UnmarshalBinary(b []byte) error {
-	r := stateReader{b: b}
-	if !r.magic(sgldMagic) {
-		return errors.New("kernels: not an SGLD state")
+	r, err := readState(b, "SGLD")
+	if err != nil {
+		return err
 	}
-	dim, chains := int(r.u64()), int(r.u64())
-	h := kineticFloat(&r)
-	sched := SGLDSchedule{kineticFloat(&r), kineticFloat(&r), kineticFloat(&r)}
-	steps := int(r.u64())
-	okStep := (sched.IsZero() && kineticPositive(h)) || (h == 0 && sched.valid())
-	if r.err != nil || !stateFits(dim, chains, 1, len(b)) || steps < 0 || !okStep {
-		return errors.New("kernels: corrupt SGLD state")
+	dim, chains := r.shape()
+	h := r.float("h")
+	var sched SGLDSchedule
+	if v := r.floats("schedule", 3); v != nil {
+		sched = SGLDSchedule{v[0], v[1], v[2]}
 	}
-	x := r.floats(dim * chains)
-	if r.err != nil {
-		return errors.New("kernels: corrupt SGLD state")
-	}
-	src := &rand.PCG{}
-	if err := src.UnmarshalBinary(r.rest()); err != nil {
-		return fmt.Errorf("kernels: SGLD random state: %w", err)
+	steps := r.integer("steps")
+	x := r.floats("x", dim*chains)
+	metric := readMetric(r, "metric", dim)
+	src := r.stream("rng")
+	okStep := (sched.IsZero() && positive(h)) || (h == 0 && sched.valid())
+	if err := r.check(steps >= 0 && okStep, "step, schedule or step count"); err != nil {
+		return err
 	}
 	*k = SGLD{dim: dim, chains: chains, h: h, sched: sched, steps: steps, x: x}
+	k.SetMetric(metric)
 	k.noise.init(src, len(x))
 	k.req = Request{Need: NeedGradient, Rows: chains, Points: k.x, Chain: chainIndex(chains)}
 	return nil
@@ -217,11 +227,10 @@ func (s *sgldNoise) draw() []float64 {
 	return s.z
 }
 
-// marshal returns the stream's state as it was before any draws made
-// ahead.
-func (s *sgldNoise) marshal() ([]byte, error) {
+// saved returns the stream as it was before any draws made ahead.
+func (s *sgldNoise) saved() *rand.PCG {
 	if s.prepared {
-		return s.snap.MarshalBinary()
+		return &s.snap
 	}
-	return s.src.MarshalBinary()
+	return s.src
 }

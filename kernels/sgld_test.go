@@ -12,94 +12,18 @@ import (
 
 	"gonum.org/v1/gonum/floats"
 	"gonum.org/v1/gonum/mat"
-
-	"sluice/kernels/diag"
 )
 
 // This file holds the helpers shared by the tests of the three
 // stochastic-gradient kernels (sgld_test.go, sgldcv_test.go,
 // svrg_test.go): a driver that answers any request with an oracle and
-// counts rows, the 1-D logistic regression of THEORY.md §7, and the
+// counts rows, the project's 1-D logistic regression, and the
 // moment and MCSE helper.
 
 // sgldOracle answers one request into a (a.Grad has room for the rows).
 type sgldOracle func(req *Request, a *Answer)
 
-// sgldCount tallies what a driver asked of its oracle.
-type sgldCount struct {
-	requests, rows, fullRows, fullRequests int
-}
-
-// sgldRun drives k until it has completed steps steps, answering every
-// request with answer, and records the positions after every completed
-// step s > burnIn with s % thin == 0: out[coord][chain][draw]. It counts
-// requests and rows, full-data ones apart.
-func sgldRun(k Kernel, answer sgldOracle, burnIn, steps, thin int) ([][][]float64, sgldCount) {
-	p, c := k.Dim(), k.Chains()
-	out := make([][][]float64, p)
-	for i := range out {
-		out[i] = make([][]float64, c)
-		for j := range out[i] {
-			out[i][j] = make([]float64, 0, max(steps-burnIn, 0)/thin+1)
-		}
-	}
-	var n sgldCount
-	a := NewAnswer(2*c, p)
-	for k.Steps() < steps {
-		req := k.Next()
-		n.requests++
-		n.rows += req.Rows
-		if req.Need.Has(NeedFullData) {
-			n.fullRequests++
-			n.fullRows += req.Rows
-		}
-		answer(req, a)
-		if !k.Tell(a) || k.Steps() <= burnIn || k.Steps()%thin != 0 {
-			continue
-		}
-		x := k.Positions()
-		for ch := range c {
-			for i := range p {
-				out[i][ch] = append(out[i][ch], x[ch*p+i])
-			}
-		}
-	}
-	return out, n
-}
-
-// sgldMoment returns the sample mean of (x_i − mi)(x_j − mj) over the
-// draws d and its Monte Carlo standard error sd/√ESS, ESS from diag on
-// split chains (THEORY.md §9 step 5).
-func sgldMoment(d [][][]float64, i, j int, mi, mj float64) (est, mcse float64) {
-	prod := make([][]float64, len(d[i]))
-	for ch := range d[i] {
-		prod[ch] = make([]float64, len(d[i][ch]))
-		for t := range prod[ch] {
-			prod[ch][t] = (d[i][ch][t] - mi) * (d[j][ch][t] - mj)
-		}
-	}
-	return sgldSeriesMean(prod)
-}
-
-// sgldMean returns the sample mean of coordinate i and its MCSE.
-func sgldMean(d [][][]float64, i int) (est, mcse float64) { return sgldSeriesMean(d[i]) }
-
-func sgldSeriesMean(x [][]float64) (est, mcse float64) {
-	var s, s2 float64
-	var n int
-	for _, c := range x {
-		for _, v := range c {
-			s += v
-			s2 += v * v
-			n++
-		}
-	}
-	est = s / float64(n)
-	sd := math.Sqrt((s2 - float64(n)*est*est) / float64(n-1))
-	return est, sd / math.Sqrt(diag.ESS(diag.SplitChains(x)))
-}
-
-// The 1-D logistic regression of THEORY.md §7: prior N(0, 1), so
+// The project's 1-D logistic regression test problem: prior N(0, 1), so
 // f₀ = θ²/2, and f_i = log(1 + e^{θx_i}) − y_iθx_i, N = 6.
 var (
 	sgldLogX = []float64{0.5, -1.2, 2.0, 0.3, -0.7, 1.5}
@@ -155,19 +79,19 @@ func sgldPairOracle(t *testing.T) sgldOracle {
 }
 
 // sgldCheckPairs checks 36 estimates of ∇log π at θ = 0.9, one per ordered
-// pair (index 6a + b for S = {x_a, x_b}), against THEORY.md §7: the
-// estimate for S = {x₀, x₃} is −est03 (THEORY.md writes ∇f; the wire
+// pair (index 6a + b for S = {x_a, x_b}), against values computed for the project: the
+// estimate for S = {x₀, x₃} is −est03 (the values are of ∇f; the wire
 // carries ∇log π = −∇f), the mean over the 36 equally likely pairs is
 // the full gradient (unbiasedness, by enumeration) and the variance is
 // vr, all to 1e-9.
 func sgldCheckPairs(t *testing.T, g []float64, est03, vr float64) {
 	t.Helper()
-	const fullF = -0.2645247955 // THEORY.md §7: ∇f(0.9)
+	const fullF = -0.2645247955 // computed for the project: ∇f(0.9)
 	if d := -sgldLogScore(0.9) - fullF; math.Abs(d) > 1e-10 {
-		t.Fatalf("oracle's full ∇f(0.9) off the THEORY.md §7 vector by %g", d)
+		t.Fatalf("oracle's full ∇f(0.9) off the computed vector by %g", d)
 	}
 	if got := -g[0*6+3]; math.Abs(got-est03) > 1e-9 {
-		t.Errorf("estimate with S = {x0, x3}: %.10f, THEORY.md §7 %.10f", got, est03)
+		t.Errorf("estimate with S = {x0, x3}: %.10f, computed %.10f", got, est03)
 	}
 	var mean float64
 	for _, v := range g {
@@ -178,10 +102,10 @@ func sgldCheckPairs(t *testing.T, g []float64, est03, vr float64) {
 		variance += (-v - mean) * (-v - mean) / 36
 	}
 	if math.Abs(mean-fullF) > 1e-9 || math.Abs(mean+sgldLogScore(0.9)) > 1e-12 {
-		t.Errorf("mean over the 36 pairs %.12f, full ∇f %.12f (THEORY.md §7 %.10f)", mean, -sgldLogScore(0.9), fullF)
+		t.Errorf("mean over the 36 pairs %.12f, full ∇f %.12f (computed %.10f)", mean, -sgldLogScore(0.9), fullF)
 	}
 	if math.Abs(variance-vr) > 1e-9 {
-		t.Errorf("variance over the 36 pairs %.10f, THEORY.md §7 %.10f", variance, vr)
+		t.Errorf("variance over the 36 pairs %.10f, computed %.10f", variance, vr)
 	}
 }
 
@@ -195,7 +119,7 @@ func sgldRecover(before, after, xi []float64, h float64) []float64 {
 	return g
 }
 
-// THEORY.md §7 test vectors through the SGLD kernel: 36 chains at
+// The project's logistic test vectors through the SGLD kernel: 36 chains at
 // θ = 0.9, chain m answered on pair m. The kernel moves each chain by
 // h·ĝ_S + √(2h)ξ; recovering ĝ_S from the step (ξ from the same stream)
 // must give the SGLD estimate 0.8263424654 for S = {x₀, x₃}, mean
@@ -213,7 +137,7 @@ func TestSGLDTheoryVectors(t *testing.T) {
 	sgldCheckPairs(t, g, 0.8263424654, 0.5051646974)
 }
 
-// THEORY.md §7.1 schedule vectors (a = 0.01, b = 10, γ = 0.55): the step
+// Welling and Teh (2011) schedule, vectors computed for the project (a = 0.01, b = 10, γ = 0.55): the step
 // the kernel reports before step t is ε_t/2, to 1e-12 relative.
 func TestSGLDScheduleTheoryVectors(t *testing.T) {
 	want := map[int]float64{
@@ -231,7 +155,7 @@ func TestSGLDScheduleTheoryVectors(t *testing.T) {
 		if eps, ok := want[t0]; ok {
 			seen++
 			if got := 2 * k.Step(); math.Abs(got-eps) > 1e-12*eps {
-				t.Errorf("ε_%d = %.15e, THEORY.md §7.1 %.15e", t0, got, eps)
+				t.Errorf("ε_%d = %.15e, computed %.15e", t0, got, eps)
 			}
 		}
 		a.Grad[0] = -k.Positions()[0]
@@ -243,7 +167,7 @@ func TestSGLDScheduleTheoryVectors(t *testing.T) {
 }
 
 // One scheduled update by hand: θ' = θ + h_t·g + √(2h_t)·ξ with h_t from
-// the schedule and ξ from the same stream (THEORY.md §7.1).
+// the schedule and ξ from the same stream (Welling and Teh 2011).
 func TestSGLDScheduledUpdateByHand(t *testing.T) {
 	sched := SGLDSchedule{A: 0.2, B: 3, Gamma: 0.75}
 	k := NewSGLD(2, 2, 0, sched, []float64{1, 2, 3, 4}, NewSource(9))
@@ -289,15 +213,15 @@ func sgldNoisyGauss(q, l []float64, p int, seed uint64) sgldOracle {
 	}
 }
 
-// THEORY.md §11(b): ULA/SGLD with additive zero-mean gradient noise of
+// Derived here: ULA/SGLD with additive zero-mean gradient noise of
 // variance s² on N(0, 1/λ) has the stationary variance
 // (2 + h s²)/(λ(2 − hλ)) [derived there]. The constant-step SGLD kernel
 // driven by a noisy oracle must match it within 4 MCSE, and be
 // distinguishable from the noiseless ULA variance 1/(λ(1 − hλ/2))
-// (THEORY.md §11a).
+// (derived here, discrete Lyapunov equation).
 func TestSGLDNoisyGradientVariance1D(t *testing.T) {
 	cases := []struct{ lambda, h, s2, want float64 }{
-		{1, 0.1, 4, 1.263157894736842}, // THEORY.md §11(b) vectors
+		{1, 0.1, 4, 1.263157894736842}, // derived values
 		{4, 0.1, 1, 0.328125},
 	}
 	for _, tc := range cases {
@@ -307,8 +231,8 @@ func TestSGLDNoisyGradientVariance1D(t *testing.T) {
 			}
 			k := NewSGLD(1, 16, tc.h, SGLDSchedule{}, []float64{0}, NewSource(42))
 			orc := sgldNoisyGauss([]float64{tc.lambda}, []float64{math.Sqrt(tc.s2)}, 1, 7)
-			d, _ := sgldRun(k, orc, 2000, 22000, 1)
-			est, se := sgldMoment(d, 0, 0, 0, 0)
+			d, _ := drive(k, orc, 2000, 22000, 1)
+			est, se := moment(d, 0, 0, 0, 0)
 			if z := (est - tc.want) / se; math.Abs(z) > 4 {
 				t.Errorf("variance %.5f, exact %.5f, MCSE %.5f (z = %.1f)", est, tc.want, se, z)
 			}
@@ -319,7 +243,7 @@ func TestSGLDNoisyGradientVariance1D(t *testing.T) {
 	}
 }
 
-// THEORY.md §11(b), 2-D: Q = [[2, .5], [.5, 1]], h = 0.2, noise
+// Derived here (ULA with additive gradient noise), 2-D: Q = [[2, .5], [.5, 1]], h = 0.2, noise
 // covariance C = [[1, .3], [.3, 2]] gives Σ = [[0.7670238643,
 // −0.3001249096], [−0.3001249096, 1.4880284005]], the solution of
 // Σ = (I − hQ)Σ(I − hQ) + 2hI + h²C. Every entry within 4 MCSE.
@@ -329,24 +253,24 @@ func TestSGLDNoisyGradientCovariance2D(t *testing.T) {
 	l := []float64{1, 0, l21, math.Sqrt(2 - l21*l21)} // Cholesky factor of C
 	want := [2][2]float64{{0.7670238643, -0.3001249096}, {-0.3001249096, 1.4880284005}}
 	k := NewSGLD(2, 16, 0.2, SGLDSchedule{}, []float64{0, 0}, NewSource(3))
-	d, _ := sgldRun(k, sgldNoisyGauss(q, l, 2, 5), 1000, 21000, 1)
+	d, _ := drive(k, sgldNoisyGauss(q, l, 2, 5), 1000, 21000, 1)
 	for i := range 2 {
 		for j := i; j < 2; j++ {
-			est, se := sgldMoment(d, i, j, 0, 0)
+			est, se := moment(d, i, j, 0, 0)
 			if z := (est - want[i][j]) / se; math.Abs(z) > 4 {
 				t.Errorf("Σ[%d][%d] = %.5f, exact %.5f, MCSE %.5f (z = %.1f)", i, j, est, want[i][j], se, z)
 			}
 		}
 	}
-	// Without the h²C term (exact-gradient ULA, THEORY.md §11a) Σ[1][1]
+	// Without the h²C term (exact-gradient ULA, the exact-gradient ULA covariance (derived here)) Σ[1][1]
 	// would be 1.2543554007: the test sees the noise.
-	if est, se := sgldMoment(d, 1, 1, 0, 0); math.Abs(est-1.2543554007) < 4*se {
+	if est, se := moment(d, 1, 1, 0, 0); math.Abs(est-1.2543554007) < 4*se {
 		t.Errorf("Σ[1][1] = %.5f indistinguishable from noiseless ULA (MCSE %.5f)", est, se)
 	}
 }
 
 // Request layout and evaluation accounting: one row per chain, gradient
-// only, no groups; chains rows per step (THEORY.md §13).
+// only, no groups; chains rows per step (by the method's definition).
 func TestSGLDEvaluationsPerStep(t *testing.T) {
 	k := NewSGLD(3, 5, 0.1, SGLDSchedule{}, make([]float64, 3), NewSource(1))
 	req := k.Next()
@@ -358,7 +282,7 @@ func TestSGLDEvaluationsPerStep(t *testing.T) {
 			t.Fatalf("row %d attributed to chain %d", i, c)
 		}
 	}
-	_, n := sgldRun(k, func(req *Request, a *Answer) {}, 0, 7, 1)
+	_, n := drive(k, func(req *Request, a *Answer) {}, 0, 7, 1)
 	if k.EvaluationsPerStep() != 5 || n.rows != 35 || n.requests != 7 || n.fullRows != 0 || k.Steps() != 7 {
 		t.Fatalf("evaluations per step %d, rows %d in %d requests, full-data %d, steps %d",
 			k.EvaluationsPerStep(), n.rows, n.requests, n.fullRows, k.Steps())
@@ -373,8 +297,8 @@ func sgldSameRun(t *testing.T, k, r interface {
 	Checkpointer
 }, mk func() sgldOracle, steps int) {
 	t.Helper()
-	a, _ := sgldRun(k, mk(), 0, k.Steps()+steps, 1)
-	b, _ := sgldRun(r, mk(), 0, r.Steps()+steps, 1)
+	a, _ := drive(k, mk(), 0, k.Steps()+steps, 1)
+	b, _ := drive(r, mk(), 0, r.Steps()+steps, 1)
 	for i := range a {
 		for c := range a[i] {
 			if len(a[i][c]) != steps || len(b[i][c]) != steps {
@@ -407,7 +331,7 @@ func TestSGLDStateRoundTrip(t *testing.T) {
 			}
 			for _, prepared := range []bool{false, true} {
 				k := NewSGLD(2, 3, h, sched, []float64{1, -1}, NewSource(5))
-				sgldRun(k, mk(), 0, 10, 1)
+				drive(k, mk(), 0, 10, 1)
 				k.Next()
 				if prepared {
 					k.Prepare()
@@ -462,11 +386,7 @@ func TestSGLDPrepareIsInvisible(t *testing.T) {
 func TestSGLDStateHugeDimensionRefused(t *testing.T) {
 	k := NewSGLD(1, 1, 0.1, SGLDSchedule{}, []float64{0}, NewSource(1))
 	b, _ := k.MarshalBinary()
-	head := len(sgldMagic)
-	for i := range 8 {
-		b[head+i], b[head+8+i] = 0, 0
-	}
-	b[head+4], b[head+8+4] = 1, 1 // dim = chains = 2³²
+	b = editState(t, editState(t, b, "SGLD", "dim", 1<<32), "SGLD", "chains", 1<<32)
 	var r SGLD
 	if err := r.UnmarshalBinary(b); err == nil {
 		t.Fatal("state with dim = chains = 2³² accepted")
@@ -746,7 +666,7 @@ func (o *sgldMinibatch) answer(req *Request, a *Answer) {
 }
 
 // Stationary covariance of a constant-step stochastic-gradient chain on
-// this regression [derived here from THEORY.md §11(b) and the §7.1
+// this regression [derived here from the noisy-ULA equation and the Welling–Teh
 // covariance formula]. ∇f(β) = Q(β − μ) and every ∇f_i(β) = A_iβ + b_i is
 // affine (A_i = x_i x_iᵀ/σ²), so with ζ = (estimate of ∇f) − ∇f the chain is
 //
@@ -756,7 +676,7 @@ func (o *sgldMinibatch) answer(req *Request, a *Answer) {
 //
 //	Σ = (I − hQ)Σ(I − hQ) + 2hI + h²E[C(β)],
 //
-// C(β) the estimator's conditional covariance. By THEORY.md §7.1 (without
+// C(β) the estimator's conditional covariance. By Welling and Teh (2011) (without
 // replacement) C = w·(1/N)Σ_i (u_i − ū)(u_i − ū)ᵀ, w = (N²/n)(N − n)/(N − 1),
 // for the summands u_i of the estimator: u_i = ∇f_i(β) for SGLD,
 // u_i = A_i(β − θ̂) for the control variate, u_i = A_i(β − θ̃) for SVRG.
@@ -776,7 +696,7 @@ type sgldPrediction struct {
 	m     *mat.Dense // I − hQ
 	mm, k *mat.Dense // (I − hQ)⊗(I − hQ), K
 	ed    *mat.Dense // (1/N)Σ_i d_i d_iᵀ
-	ula   *mat.Dense // Σ_h = [Q(I − hQ/2)]⁻¹ (THEORY.md §11a), exact gradients
+	ula   *mat.Dense // Σ_h = [Q(I − hQ/2)]⁻¹ (derived here, discrete Lyapunov equation), exact gradients
 	pp    int
 	e     *mat.Dense // I
 }
@@ -874,7 +794,7 @@ func (pr *sgldPrediction) solve(extra *mat.Dense) *mat.Dense {
 // sgld returns the stationary covariance of constant-step SGLD, and
 // (approx) the one with the noise covariance frozen at its value at the
 // posterior mean, w·(1/N)Σ_i d_i d_iᵀ, the constant-C reading of
-// THEORY.md §11(b).
+// derived here (ULA with additive gradient noise).
 func (pr *sgldPrediction) sgld() (exact, approx *mat.Dense) {
 	exact = pr.solve(pr.ed)
 	var lhs mat.Dense
@@ -963,14 +883,14 @@ func sgldCheckRegression(t *testing.T, d [][][]float64, reg *sgldRegression, wan
 	t.Helper()
 	p := reg.p
 	for i := range p {
-		est, se := sgldMean(d, i)
+		est, se := seriesMean(d[i])
 		if z := (est - reg.mu[i]) / se; math.Abs(z) > zMean {
 			t.Errorf("mean of %s %.5f, exact posterior %.5f, MCSE %.5f (z = %.1f)", sgldDiabetesColumns[i], est, reg.mu[i], se, z)
 		}
 	}
 	for i := range p {
 		for j := i; j < p; j++ {
-			est, se := sgldMoment(d, i, j, reg.mu[i], reg.mu[j])
+			est, se := moment(d, i, j, reg.mu[i], reg.mu[j])
 			if z := (est - want.At(i, j)) / se; math.Abs(z) > 4 {
 				t.Errorf("Σ[%d][%d] = %.6g, predicted %.6g, MCSE %.2g (z = %.1f)", i, j, est, want.At(i, j), se, z)
 			}
@@ -986,7 +906,7 @@ func sgldCheckRegression(t *testing.T, d [][][]float64, reg *sgldRegression, wan
 			}
 		}
 	}
-	est, se := sgldSeriesMean(tr)
+	est, se := seriesMean(tr)
 	if z := (est - mat.Trace(want)) / se; math.Abs(z) > 4 {
 		t.Errorf("trace %.6g, predicted %.6g, MCSE %.2g (z = %.1f)", est, mat.Trace(want), se, z)
 	}
@@ -1020,8 +940,8 @@ const (
 )
 
 // Constant-step SGLD on the diabetes regression: mean exactly μ and
-// covariance the exact solution of the §11(b)-type equation above with
-// the minibatch noise of §7.1 (about 7× the exact-gradient ULA variance
+// covariance the exact solution of the noisy-ULA (derived here)-type equation above with
+// the minibatch noise of Welling and Teh (2011) (about 7× the exact-gradient ULA variance
 // here). The constant-noise reading (C frozen at μ) is logged for
 // comparison; it misses the θ-dependent part of C. The means are checked
 // at 4 MCSE, the level of every other check of this test (about 6e-5 per
@@ -1033,7 +953,7 @@ func TestSGLDDiabetesRegression(t *testing.T) {
 	exact, approx := pr.sgld()
 	k := NewSGLD(reg.p, sgldRegChains, sgldRegStep, SGLDSchedule{}, make([]float64, reg.p), NewSource(21))
 	o := sgldNewMinibatch(reg, sgldRegBatch, 22)
-	d, n := sgldRun(k, o.answer, sgldRegBurnIn, sgldRegSteps, sgldRegThin)
+	d, n := drive(k, o.answer, sgldRegBurnIn, sgldRegSteps, sgldRegThin)
 	if n.fullRows != 0 || n.rows != sgldRegChains*sgldRegSteps {
 		t.Fatalf("%d rows, %d full-data", n.rows, n.fullRows)
 	}

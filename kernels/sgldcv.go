@@ -1,15 +1,13 @@
 package kernels
 
 import (
-	"encoding/binary"
-	"errors"
 	"fmt"
 	"math"
 	"math/rand/v2"
 )
 
 // SGLDCV is SGLD with a control variate at a fixed point θ̂ (Baker,
-// Fearnhead, Fox & Nemeth, Statistics and Computing 2019; THEORY.md §7.2)
+// Fearnhead, Fox & Nemeth, Statistics and Computing 2019)
 // over a batch of chains, with a constant step h. It runs in two phases.
 //
 // Search. Starting from the mean of the chains' start points, gradient
@@ -21,7 +19,7 @@ import (
 //	θ_{k+1} = θ_k + α_k·g_k
 //	α_0 = h,   α_k = ‖s‖²/⟨s, y⟩  (BB1; s = θ_k − θ_{k−1}, y = ∇f(θ_k) − ∇f(θ_{k−1}) = g_{k−1} − g_k)
 //
-// (Barzilai & Borwein 1988; THEORY.md §12: 1/α_k is the Rayleigh quotient
+// (Barzilai & Borwein 1988; derived here: 1/α_k is the Rayleigh quotient
 // r_in of the averaged Hessian of f along s, so α_k is a curvature-matched
 // step). The first step is the sampling step h: the chains are only stable
 // if h < 2/M with M the largest curvature of f, and for such h a gradient
@@ -68,12 +66,22 @@ type SGLDCV struct {
 	g0Norm, bestNorm     float64
 	reqSearch, reqSample Request
 	noise                sgldNoise
+	pc                   precond
 }
 
 var (
-	_ Kernel   = (*SGLDCV)(nil)
-	_ Preparer = (*SGLDCV)(nil)
+	_ Kernel     = (*SGLDCV)(nil)
+	_ Preparer   = (*SGLDCV)(nil)
+	_ MetricUser = (*SGLDCV)(nil)
 )
+
+// SetMetric implements MetricUser: from the next sampling step every
+// chain moves by θ ← θ + h·C·ĝ_CV(θ) + √(2h)·L·ξ. The fixed-point search
+// is not preconditioned.
+func (k *SGLDCV) SetMetric(m *Metric) { k.pc.set("SGLDCV", m, k.dim, 3*k.dim) }
+
+// Metric implements MetricUser.
+func (k *SGLDCV) Metric() *Metric { return orIdentity(k.pc.metric, k.dim) }
 
 // SGLDCVOptions are the settings of the fixed-point search. The zero value
 // gives the defaults.
@@ -109,7 +117,7 @@ func NewSGLDCV(dim, chains int, h float64, opt SGLDCVOptions, start []float64, s
 	if opt.MaxIter == 0 {
 		opt.MaxIter = sgldcvDefaultMaxIter
 	}
-	if !kineticPositive(h) || !kineticPositive(opt.Tol) || opt.MaxIter < 0 {
+	if !positive(h) || !positive(opt.Tol) || opt.MaxIter < 0 {
 		panic(fmt.Sprintf("kernels: SGLDCV step %v, options %+v", h, opt))
 	}
 	k := &SGLDCV{dim: dim, chains: chains, h: h, tol: opt.Tol, maxIter: opt.MaxIter}
@@ -230,6 +238,14 @@ func (k *SGLDCV) Tell(a *Answer) bool {
 	for c := range k.chains {
 		lo, hi := c*k.dim, (c+1)*k.dim
 		x, gc, gh, zc := k.x[lo:hi], g[lo:hi], gHat[lo:hi], z[lo:hi]
+		if m := k.pc.metric; m != nil {
+			est := k.pc.tmp[2*k.dim : 3*k.dim]
+			for j := range est {
+				est[j] = sgldcvEstimate(k.bestG[j], gc[j], gh[j])
+			}
+			m.move(x, est, zc, h, s, k.pc.tmp)
+			continue
+		}
 		for j := range x {
 			x[j] += h*sgldcvEstimate(k.bestG[j], gc[j], gh[j]) + s*zc[j]
 		}
@@ -239,7 +255,7 @@ func (k *SGLDCV) Tell(a *Answer) bool {
 }
 
 // sgldcvEstimate is one coordinate of the control-variate score estimate
-// ĝ_CV(θ) = g(θ̂) + ĝ_S(θ) − ĝ_S(θ̂) (THEORY.md §7.2 written for ∇log π)
+// ĝ_CV(θ) = g(θ̂) + ĝ_S(θ) − ĝ_S(θ̂) (Baker et al. 2019, written for ∇log π)
 // from the exact gradient at the fixed point and the two minibatch
 // estimates on the same minibatch. SVRG uses it with its anchors.
 func sgldcvEstimate(full, atTheta, atFixed float64) float64 {
@@ -304,8 +320,6 @@ func sgldNorm(v []float64) float64 {
 	return math.Sqrt(s)
 }
 
-const sgldcvMagic = "sluice.sgldcv.v1"
-
 // MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
 // step, search options, completed steps, phase, search steps taken,
 // whether the search converged, ‖g_0‖ and the best gradient norm, the
@@ -313,68 +327,59 @@ const sgldcvMagic = "sluice.sgldcv.v1"
 // gradient, the best point and its gradient (θ̂ and g(θ̂) once sampling),
 // and the random stream's state (before any noise drawn ahead by Prepare).
 func (k *SGLDCV) MarshalBinary() ([]byte, error) {
-	rs, err := k.noise.marshal()
-	if err != nil {
-		return nil, err
-	}
-	b := make([]byte, 0, len(sgldcvMagic)+11*8+8*(len(k.x)+5*k.dim)+len(rs))
-	b = append(b, sgldcvMagic...)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.dim))
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.chains))
-	b = kineticAppend(b, k.h, k.tol)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.maxIter))
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.steps))
-	var flags uint64
-	if k.sampling {
-		flags |= 1
-	}
-	if k.converged {
-		flags |= 2
-	}
-	b = binary.LittleEndian.AppendUint64(b, flags)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.iter))
-	b = kineticAppend(b, k.g0Norm, k.bestNorm)
-	b = kineticAppend(b, k.x...)
-	for _, v := range [][]float64{k.theta, k.prev, k.prevG, k.best, k.bestG} {
-		b = kineticAppend(b, v...)
-	}
-	return append(b, rs...), nil
+	w := newStateWriter("SGLDCV")
+	w.ints("dim", k.dim)
+	w.ints("chains", k.chains)
+	w.floats("h", k.h)
+	w.floats("tol", k.tol)
+	w.ints("maxiter", k.maxIter)
+	w.ints("steps", k.steps)
+	w.flag("sampling", k.sampling)
+	w.flag("converged", k.converged)
+	w.ints("iter", k.iter)
+	w.floats("norms", k.g0Norm, k.bestNorm)
+	w.floats("x", k.x...)
+	w.floats("theta", k.theta...)
+	w.floats("prev", k.prev...)
+	w.floats("prevgrad", k.prevG...)
+	w.floats("best", k.best...)
+	w.floats("bestgrad", k.bestG...)
+	writeMetric(w, "metric", k.pc.metric)
+	w.stream("rng", k.noise.saved())
+	return w.bytes()
 }
 
 // UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
 // whole state, including dimension, number of chains and phase.
 func (k *SGLDCV) UnmarshalBinary(b []byte) error {
-	r := stateReader{b: b}
-	if !r.magic(sgldcvMagic) {
-		return errors.New("kernels: not an SGLDCV state")
+	r, err := readState(b, "SGLDCV")
+	if err != nil {
+		return err
 	}
-	dim, chains := int(r.u64()), int(r.u64())
-	h, tol := kineticFloat(&r), kineticFloat(&r)
-	maxIter, steps := int(r.u64()), int(r.u64())
-	flags, iter := r.u64(), int(r.u64())
-	g0Norm, bestNorm := kineticFloat(&r), kineticFloat(&r)
-	if r.err != nil || !stateFits(dim, chains, 1, len(b)) || !stateFits(dim, 5, 1, len(b)) ||
-		!kineticPositive(h) || !kineticPositive(tol) || maxIter < 0 || steps < 0 || flags > 3 ||
-		iter < 0 || iter > maxIter || (flags&1 == 0 && steps != 0) {
-		return errors.New("kernels: corrupt SGLDCV state")
+	dim, chains := r.shape()
+	m := SGLDCV{dim: dim, chains: chains, h: r.float("h"), tol: r.float("tol"), maxIter: r.integer("maxiter"),
+		steps: r.integer("steps"), sampling: r.flag("sampling"), converged: r.flag("converged"), iter: r.integer("iter")}
+	if v := r.floats("norms", 2); v != nil {
+		m.g0Norm, m.bestNorm = v[0], v[1]
 	}
-	m := SGLDCV{dim: dim, chains: chains, h: h, tol: tol, maxIter: maxIter, steps: steps,
-		sampling: flags&1 != 0, converged: flags&2 != 0, iter: iter, g0Norm: g0Norm, bestNorm: bestNorm}
+	if err := r.check(positive(m.h) && positive(m.tol) && m.maxIter >= 0 && m.steps >= 0 &&
+		m.iter >= 0 && m.iter <= m.maxIter && (m.sampling || m.steps == 0), "step, options, counts or phase"); err != nil {
+		return err
+	}
 	m.alloc()
-	x := r.floats(dim * chains)
-	vs := [][]float64{m.theta, m.prev, m.prevG, m.best, m.bestG}
-	for _, v := range vs {
-		copy(v, r.floats(dim))
-	}
+	r.fill("x", m.x)
+	r.fill("theta", m.theta)
+	r.fill("prev", m.prev)
+	r.fill("prevgrad", m.prevG)
+	r.fill("best", m.best)
+	r.fill("bestgrad", m.bestG)
+	metric := readMetric(r, "metric", dim)
+	src := r.stream("rng")
 	if r.err != nil {
-		return errors.New("kernels: corrupt SGLDCV state")
-	}
-	copy(m.x, x)
-	src := &rand.PCG{}
-	if err := src.UnmarshalBinary(r.rest()); err != nil {
-		return fmt.Errorf("kernels: SGLDCV random state: %w", err)
+		return r.err
 	}
 	m.noise.init(src, len(m.x))
+	m.SetMetric(metric)
 	m.requests()
 	if m.sampling {
 		m.startSampling()

@@ -9,7 +9,7 @@ import (
 	"gonum.org/v1/gonum/mat"
 )
 
-// sgldcvNewtonMode returns the mode of the THEORY.md §7 logistic posterior
+// sgldcvNewtonMode returns the mode of the project's 1-D logistic test posterior
 // by Newton's method on f'(θ) = θ + Σ_i x_i(σ(θx_i) − y_i) with
 // f”(θ) = 1 + Σ_i x_i² σ(1 − σ), from 0 until the step is below 1e-15.
 func sgldcvNewtonMode() float64 {
@@ -29,7 +29,7 @@ func sgldcvNewtonMode() float64 {
 	return th
 }
 
-// sgldcvSearch answers k's search requests exactly on the §7 logistic
+// sgldcvSearch answers k's search requests exactly on the 1-D logistic test
 // problem until it samples, checking every search request's shape and
 // that no step completes; it returns the number of full-data rows asked.
 func sgldcvSearch(t *testing.T, k *SGLDCV) int {
@@ -63,15 +63,15 @@ func sgldcvSearch(t *testing.T, k *SGLDCV) int {
 	return rows
 }
 
-// The search finds the mode of the THEORY.md §7 logistic posterior
+// The search finds the mode of the project's 1-D logistic test posterior
 // (1.0175815334 by Newton there) through the ask/tell protocol: our own
-// Newton iteration reproduces the THEORY.md value to 1e-9, and θ̂ is
+// Newton iteration reproduces the computed value to 1e-9, and θ̂ is
 // within 1e-8 of it. The search costs exactly Iterations()+1 full-data
 // rows, one point per request, none of which completes a step.
 func TestSGLDCVFindsTheoryMode(t *testing.T) {
 	newton := sgldcvNewtonMode()
 	if math.Abs(newton-1.0175815334) > 1e-9 {
-		t.Fatalf("Newton mode %.12f, THEORY.md §7 1.0175815334", newton)
+		t.Fatalf("Newton mode %.12f, computed value 1.0175815334", newton)
 	}
 	k := NewSGLDCV(1, 4, 0.3, SGLDCVOptions{Tol: 1e-9}, []float64{0.2, 1.4, -0.5, 0.9}, NewSource(1))
 	if k.Sampling() || k.Iterations() != 0 {
@@ -102,7 +102,7 @@ func TestSGLDCVFindsTheoryMode(t *testing.T) {
 }
 
 // The search's steps by hand: α_0 = h, then the BB1 step
-// α_1 = ‖s‖²/⟨s, y⟩ on ∇f (THEORY.md §12: 1/α is the secant Rayleigh
+// α_1 = ‖s‖²/⟨s, y⟩ on ∇f (derived here: 1/α is the secant Rayleigh
 // quotient r_in), ascent θ_{k+1} = θ_k + α_k·∇log π(θ_k).
 func TestSGLDCVSearchStepsByHand(t *testing.T) {
 	const h = 0.3
@@ -165,7 +165,7 @@ func TestSGLDCVSearchLimits(t *testing.T) {
 	}
 }
 
-// THEORY.md §7 test vectors through the SGLD-CV kernel: 36 chains at
+// The project's logistic test vectors through the SGLD-CV kernel: 36 chains at
 // θ = 0.9 (so the search starts there), search to the mode, then one
 // sampling step with chain m's two rows (θ_m and θ̂, same group m)
 // answered on pair m. Recovering ĝ_CV from the step must give the CV
@@ -197,11 +197,11 @@ func TestSGLDCVTheoryVectors(t *testing.T) {
 	sgldCheckPairs(t, g, -0.1461817608, 0.0060765906)
 }
 
-// Evaluation accounting (THEORY.md §13): Iterations()+1 full-data rows
+// Evaluation accounting (by the method's definition): Iterations()+1 full-data rows
 // once, then 2·chains minibatch rows per step.
 func TestSGLDCVEvaluationsPerStep(t *testing.T) {
 	k := NewSGLDCV(1, 5, 0.1, SGLDCVOptions{}, []float64{0.3}, NewSource(1))
-	_, n := sgldRun(k, sgldPairOracle(t), 0, 7, 1)
+	_, n := drive(k, sgldPairOracle(t), 0, 7, 1)
 	if k.EvaluationsPerStep() != 10 || n.fullRows != k.Iterations()+1 || n.fullRequests != n.fullRows ||
 		n.rows != n.fullRows+70 || n.requests != n.fullRequests+7 {
 		t.Fatalf("evaluations per step %d, iterations %d, counts %+v", k.EvaluationsPerStep(), k.Iterations(), n)
@@ -266,7 +266,7 @@ func TestSGLDCVDiabetesRegression(t *testing.T) {
 	pr := sgldNewPrediction(reg, sgldRegStep, sgldRegBatch)
 	k := NewSGLDCV(reg.p, sgldRegChains, sgldRegStep, SGLDCVOptions{}, make([]float64, reg.p), NewSource(31))
 	o := sgldNewMinibatch(reg, sgldRegBatch, 32)
-	d, n := sgldRun(k, o.answer, sgldRegBurnIn, sgldRegSteps, sgldRegThin)
+	d, n := drive(k, o.answer, sgldRegBurnIn, sgldRegSteps, sgldRegThin)
 	th, _ := k.FixedPoint()
 	var eig mat.EigenSym
 	if !eig.Factorize(reg.q, false) {

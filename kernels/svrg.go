@@ -1,16 +1,13 @@
 package kernels
 
 import (
-	"encoding/binary"
-	"errors"
 	"fmt"
 	"math"
 	"math/rand/v2"
 )
 
 // SVRG is SVRG-LD, Langevin dynamics with stochastic variance-reduced
-// gradients (Dubey, Reddi, Póczos, Smola, Xing & Williamson, NeurIPS 2016;
-// THEORY.md §7.3), over a batch of chains with a constant step h.
+// gradients (Dubey, Reddi, Póczos, Smola, Xing & Williamson, NeurIPS 2016), over a batch of chains with a constant step h.
 //
 // Every τ steps (before steps 0, τ, 2τ, ...) each chain sets its anchor
 // θ̃_c = θ_c and the kernel asks for the exact full-data gradient there:
@@ -45,12 +42,21 @@ type SVRG struct {
 	anchorG              []float64 // chains×dim full-data gradients at the anchors
 	reqAnchor, reqSample Request
 	noise                sgldNoise
+	pc                   precond
 }
 
 var (
-	_ Kernel   = (*SVRG)(nil)
-	_ Preparer = (*SVRG)(nil)
+	_ Kernel     = (*SVRG)(nil)
+	_ Preparer   = (*SVRG)(nil)
+	_ MetricUser = (*SVRG)(nil)
 )
+
+// SetMetric implements MetricUser: from the next sampling step every
+// chain moves by θ ← θ + h·C·ĝ(θ) + √(2h)·L·ξ.
+func (k *SVRG) SetMetric(m *Metric) { k.pc.set("SVRG", m, k.dim, 3*k.dim) }
+
+// Metric implements MetricUser.
+func (k *SVRG) Metric() *Metric { return orIdentity(k.pc.metric, k.dim) }
 
 // NewSVRG returns an SVRG kernel for chains chains in dimension dim with
 // constant step h, refreshing the anchors every every steps (τ ≥ 1),
@@ -62,7 +68,7 @@ func NewSVRG(dim, chains int, h float64, every int, start []float64, src *rand.P
 	if dim < 1 || chains < 1 {
 		panic(fmt.Sprintf("kernels: SVRG with dim %d, chains %d", dim, chains))
 	}
-	if !kineticPositive(h) || every < 1 {
+	if !positive(h) || every < 1 {
 		panic(fmt.Sprintf("kernels: SVRG step %v, anchor every %d steps", h, every))
 	}
 	k := &SVRG{dim: dim, chains: chains, h: h, every: every, since: every}
@@ -155,6 +161,20 @@ func (k *SVRG) Tell(a *Answer) bool {
 	h := k.h
 	s := math.Sqrt(2 * h)
 	g, ga, z := a.Grad[:n], a.Grad[n:2*n], k.noise.draw()
+	if m := k.pc.metric; m != nil {
+		p := k.dim
+		est := k.pc.tmp[2*p : 3*p]
+		for c := range k.chains {
+			lo, hi := c*p, (c+1)*p
+			for j := range est {
+				est[j] = sgldcvEstimate(k.anchorG[lo+j], g[lo+j], ga[lo+j])
+			}
+			m.move(k.x[lo:hi], est, z[lo:hi], h, s, k.pc.tmp)
+		}
+		k.since++
+		k.steps++
+		return true
+	}
 	for i := range k.x {
 		k.x[i] += h*sgldcvEstimate(k.anchorG[i], g[i], ga[i]) + s*z[i]
 	}
@@ -163,58 +183,50 @@ func (k *SVRG) Tell(a *Answer) bool {
 	return true
 }
 
-const svrgMagic = "sluice.svrg.v1"
-
 // MarshalBinary implements encoding.BinaryMarshaler: dimension, chains,
 // step, τ, completed steps, steps since the last anchor, positions,
 // anchors, the full-data gradients at the anchors and the random stream's
 // state (before any noise drawn ahead by Prepare).
 func (k *SVRG) MarshalBinary() ([]byte, error) {
-	rs, err := k.noise.marshal()
-	if err != nil {
-		return nil, err
-	}
-	b := make([]byte, 0, len(svrgMagic)+6*8+8*3*len(k.x)+len(rs))
-	b = append(b, svrgMagic...)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.dim))
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.chains))
-	b = kineticAppend(b, k.h)
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.every))
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.steps))
-	b = binary.LittleEndian.AppendUint64(b, uint64(k.since))
-	b = kineticAppend(b, k.pts...)
-	b = kineticAppend(b, k.anchorG...)
-	return append(b, rs...), nil
+	w := newStateWriter("SVRG")
+	w.ints("dim", k.dim)
+	w.ints("chains", k.chains)
+	w.floats("h", k.h)
+	w.ints("every", k.every)
+	w.ints("steps", k.steps)
+	w.ints("since", k.since)
+	w.floats("x", k.x...)
+	w.floats("anchor", k.anchor...)
+	w.floats("anchorgrad", k.anchorG...)
+	writeMetric(w, "metric", k.pc.metric)
+	w.stream("rng", k.noise.saved())
+	return w.bytes()
 }
 
 // UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
 // whole state, including dimension, number of chains and phase.
 func (k *SVRG) UnmarshalBinary(b []byte) error {
-	r := stateReader{b: b}
-	if !r.magic(svrgMagic) {
-		return errors.New("kernels: not an SVRG state")
+	r, err := readState(b, "SVRG")
+	if err != nil {
+		return err
 	}
-	dim, chains := int(r.u64()), int(r.u64())
-	h := kineticFloat(&r)
-	every, steps, since := int(r.u64()), int(r.u64()), int(r.u64())
-	if r.err != nil || !stateFits(dim, chains, 3, len(b)) || !kineticPositive(h) ||
-		every < 1 || steps < 0 || since < 0 || since > every {
-		return errors.New("kernels: corrupt SVRG state")
+	dim, chains := r.shape()
+	m := SVRG{dim: dim, chains: chains, h: r.float("h"), every: r.integer("every"), steps: r.integer("steps"), since: r.integer("since")}
+	if err := r.check(positive(m.h) && m.every >= 1 && m.steps >= 0 && m.since >= 0 && m.since <= m.every,
+		"step, anchor interval or counts"); err != nil {
+		return err
 	}
-	m := SVRG{dim: dim, chains: chains, h: h, every: every, steps: steps, since: since}
 	m.alloc()
-	n := dim * chains
-	pts, g := r.floats(2*n), r.floats(n)
+	r.fill("x", m.x)
+	r.fill("anchor", m.anchor)
+	r.fill("anchorgrad", m.anchorG)
+	metric := readMetric(r, "metric", dim)
+	src := r.stream("rng")
 	if r.err != nil {
-		return errors.New("kernels: corrupt SVRG state")
+		return r.err
 	}
-	copy(m.pts, pts)
-	copy(m.anchorG, g)
-	src := &rand.PCG{}
-	if err := src.UnmarshalBinary(r.rest()); err != nil {
-		return fmt.Errorf("kernels: SVRG random state: %w", err)
-	}
-	m.noise.init(src, n)
+	m.noise.init(src, len(m.x))
+	m.SetMetric(metric)
 	*k = m
 	return nil
 }

@@ -8,7 +8,7 @@ import (
 	"gonum.org/v1/gonum/mat"
 )
 
-// THEORY.md §7 test vectors through the SVRG kernel, anchor θ̃ = 0.5 and
+// The project's logistic test vectors through the SVRG kernel, anchor θ̃ = 0.5 and
 // θ = 0.9: 36 chains start at 0.5, where the first (full-data) request
 // sets their anchors; the first sampling step is answered so that every
 // chain lands on 0.9 (to rounding: the answer is chosen from the step's
@@ -68,7 +68,7 @@ func TestSVRGTheoryVectors(t *testing.T) {
 }
 
 // Anchors refresh every τ steps at the current positions, and the
-// accounting is exact (THEORY.md §13): over T steps 2·chains·T minibatch
+// accounting is exact (by the method's definition): over T steps 2·chains·T minibatch
 // rows and chains·⌈T/τ⌉ full-data rows, one full-data request per anchor.
 func TestSVRGAnchorsAndEvaluations(t *testing.T) {
 	for _, tc := range []struct{ tau, steps int }{{1, 5}, {3, 7}, {3, 9}, {50, 7}} {
@@ -103,7 +103,7 @@ func TestSVRGAnchorsAndEvaluations(t *testing.T) {
 			}
 		}
 		k2 := NewSVRG(1, 4, 0.1, tc.tau, []float64{0.1, 0.2, 0.3, 0.4}, NewSource(2))
-		_, n := sgldRun(k2, sgldPairOracle(t), 0, tc.steps, 1)
+		_, n := drive(k2, sgldPairOracle(t), 0, tc.steps, 1)
 		wantAnchors := (tc.steps + tc.tau - 1) / tc.tau
 		if anchors != wantAnchors || n.fullRequests != wantAnchors || n.fullRows != 4*wantAnchors ||
 			n.rows != n.fullRows+2*4*tc.steps || k2.EvaluationsPerStep() != 8 || k2.AnchorEvery() != tc.tau {
@@ -175,7 +175,7 @@ func TestSVRGDiabetesRegression(t *testing.T) {
 	want.Scale(1/float64(kept), want)
 	k := NewSVRG(reg.p, sgldRegChains, sgldRegStep, tau, make([]float64, reg.p), NewSource(41))
 	o := sgldNewMinibatch(reg, sgldRegBatch, 42)
-	d, n := sgldRun(k, o.answer, sgldRegBurnIn, sgldRegSteps, sgldRegThin)
+	d, n := drive(k, o.answer, sgldRegBurnIn, sgldRegSteps, sgldRegThin)
 	anchors := (sgldRegSteps + tau - 1) / tau
 	if n.fullRows != sgldRegChains*anchors || n.rows != n.fullRows+2*sgldRegChains*sgldRegSteps {
 		t.Fatalf("counts %+v", n)
