@@ -219,12 +219,12 @@ func TestMetricStateRoundTrip(t *testing.T) {
 					if change {
 						k.(MetricUser).SetMetric(other)
 					}
-					b, err := k.MarshalBinary()
+					b, err := k.(Checkpointer).MarshalBinary()
 					if err != nil {
 						t.Fatal(err)
 					}
 					r := newLike(k)
-					if err := r.UnmarshalBinary(b); err != nil {
+					if err := r.(Checkpointer).UnmarshalBinary(b); err != nil {
 						t.Fatalf("after %d Tells: %v", tells, err)
 					}
 					if got, want := r.(MetricUser).Metric().Kind(), k.(MetricUser).Metric().Kind(); got != want {

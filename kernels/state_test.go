@@ -153,7 +153,7 @@ func FuzzStateRecord(f *testing.F) {
 	f.Add([]byte(stateMagic))
 	f.Add([]byte{})
 	for _, k := range fuzzKernels() {
-		b, _ := k.MarshalBinary()
+		b, _ := k.(Checkpointer).MarshalBinary()
 		f.Add(b)
 	}
 	dense, _ := NewDenseMetric(3, metricSigma)
@@ -162,7 +162,7 @@ func FuzzStateRecord(f *testing.F) {
 		a := &Answer{}
 		stateTestEval(k.Next(), a)
 		k.Tell(a)
-		b, _ := k.MarshalBinary()
+		b, _ := k.(Checkpointer).MarshalBinary()
 		f.Add(b)
 	}
 	f.Fuzz(func(t *testing.T, b []byte) {
@@ -175,8 +175,8 @@ func FuzzStateRecord(f *testing.F) {
 		// Every kernel refuses the input or accepts it without panicking,
 		// and an accepted state marshals again.
 		for _, k := range fuzzKernels() {
-			if k.UnmarshalBinary(b) == nil {
-				if _, err := k.MarshalBinary(); err != nil {
+			if k.(Checkpointer).UnmarshalBinary(b) == nil {
+				if _, err := k.(Checkpointer).MarshalBinary(); err != nil {
 					t.Fatalf("%T: accepted state does not marshal: %v", k, err)
 				}
 			}
@@ -244,12 +244,12 @@ func TestStateRoundTripEveryKernel(t *testing.T) {
 					stateTestEval(k.Next(), a)
 					k.Tell(a)
 				}
-				b, err := k.MarshalBinary()
+				b, err := k.(Checkpointer).MarshalBinary()
 				if err != nil {
 					t.Fatal(err)
 				}
 				r := newLike(k)
-				if err := r.UnmarshalBinary(b); err != nil {
+				if err := r.(Checkpointer).UnmarshalBinary(b); err != nil {
 					t.Fatalf("after %d Tells: %v", tells, err)
 				}
 				ar := &Answer{}
@@ -263,8 +263,8 @@ func TestStateRoundTripEveryKernel(t *testing.T) {
 						t.Fatalf("after %d Tells, Tell %d: positions or steps differ", tells, n)
 					}
 				}
-				sk, _ := k.MarshalBinary()
-				sr, _ := r.MarshalBinary()
+				sk, _ := k.(Checkpointer).MarshalBinary()
+				sr, _ := r.(Checkpointer).MarshalBinary()
 				if !bytes.Equal(sk, sr) {
 					t.Fatalf("after %d Tells: states differ after identical continuation", tells)
 				}
