@@ -179,3 +179,120 @@ func TestFFTSize(t *testing.T) {
 		}
 	}
 }
+
+// Antithetic chains: an AR(1) with ρ < 0 has τ = (1+ρ)/(1−ρ) < 1, so its
+// ESS exceeds the number of draws S. Vehtari, Gelman, Simpson, Carpenter
+// and Bürkner (2021) floor τ̂ at 1/log₁₀ S, capping ESS at S·log₁₀ S.
+// ρ = −0.5 (τ = 1/3, ESS = 3S, below the cap 3.9S for S = 8000) must
+// match the closed form within 4 standard errors (Bartlett's formula as
+// in TestESSOfAR1); ρ = −0.9 (τ = 1/19, ESS = 19S) must be capped exactly.
+func TestESSOfAntitheticChainsIsCapped(t *testing.T) {
+	r := rand.New(rand.NewPCG(17, 19))
+	const m, n = 4, 2000
+	s := float64(m * n)
+	limit := s * math.Log10(s)
+	got := ESS(SplitChains(ar1Chains(r, m, n, -0.5)))
+	want := s * 1.5 / 0.5 // S·(1−ρ)/(1+ρ)
+	tol := 4 * want * math.Sqrt(2*(2*40+1)/s)
+	if want >= limit || math.Abs(got-want) > tol {
+		t.Errorf("ρ = −0.5: ESS = %.1f, want %.1f ± %.1f (AR(1) closed form, below the cap %.1f)", got, want, tol, limit)
+	}
+	for name, e := range map[string]float64{
+		"ESS":      ESS(SplitChains(ar1Chains(r, m, n, -0.9))),
+		"mean ESS": MeanESS(ar1Chains(r, m, n, -0.9)),
+	} {
+		if math.Abs(e-limit) > 1e-9*limit {
+			t.Errorf("ρ = −0.9, %s = %.3f, want the cap S·log₁₀ S = %.3f (closed form 19S = %.0f)", name, e, limit, 19*s)
+		}
+	}
+}
+
+// An alternating chain 1, −1, 1, … has ρ̂₁ < −1 in the multi-chain
+// autocorrelation, so Geyer's first pair P̂₀ = 1 + ρ̂₁ is already negative
+// and the unfloored τ̂ = −1 gave ESS = −S. With the floor it is S·log₁₀ S
+// (here 100·2 = 200).
+func TestESSOfAlternatingChainIsNotNegative(t *testing.T) {
+	c := make([]float64, 100)
+	for i := range c {
+		c[i] = float64(1 - 2*(i%2))
+	}
+	if got := ESS([][]float64{c}); math.Abs(got-200) > 1e-9 {
+		t.Errorf("ESS of an alternating chain = %v, want 200 = S·log₁₀ S", got)
+	}
+}
+
+// A diverged run, draws growing geometrically to about 1e200 (squares
+// overflow float64), gives finite, positive effective sample sizes from
+// every figure, none above S·log₁₀ S, and a small bulk-ESS (below 1 % of
+// the 4000 draws: the ranks rise steadily along every chain). The MCSE of
+// the mean is finite (and huge).
+func TestESSOfDivergedRun(t *testing.T) {
+	r := rand.New(rand.NewPCG(23, 29))
+	const m, n = 4, 1000
+	growth := math.Pow(1e200, 1.0/n)
+	chains := make([][]float64, m)
+	for j := range chains {
+		chains[j] = make([]float64, n)
+		x := 1.0
+		for i := range chains[j] {
+			x *= growth
+			chains[j][i] = x * (1 + 0.1*r.NormFloat64())
+		}
+	}
+	s := Summarize(flatten(chains), m, 1)[0]
+	limit := m * n * math.Log10(m*n)
+	for name, e := range map[string]float64{
+		"ESS":          ESS(SplitChains(chains)),
+		"bulk-ESS":     BulkESS(chains),
+		"tail-ESS":     TailESS(chains),
+		"mean ESS":     MeanESS(chains),
+		"Summary bulk": s.BulkESS,
+		"Summary tail": s.TailESS,
+		"Summary mean": s.MeanESS,
+	} {
+		t.Logf("%s = %.3f", name, e)
+		if !(e > 0) || e > limit {
+			t.Errorf("diverged run: %s = %v, want finite, positive, at most %v", name, e, limit)
+		}
+	}
+	if b := BulkESS(chains); b > 0.01*m*n {
+		t.Errorf("diverged run: bulk-ESS = %v, want below %v", b, 0.01*m*n)
+	}
+	if mc := MeanMCSE(chains); !(mc > 0) || math.IsInf(mc, 0) {
+		t.Errorf("diverged run: MCSE of the mean = %v, want finite and positive", mc)
+	}
+}
+
+// flatten lays chains[c][t] out as Summarize's chains × draws × 1 array.
+func flatten(chains [][]float64) []float64 {
+	var out []float64
+	for _, c := range chains {
+		out = append(out, c...)
+	}
+	return out
+}
+
+// Whatever the chains, 0 < ESS ≤ S·log₁₀ S (the floor of Vehtari et al.
+// 2021): random short chains of white noise, AR(1) with ρ from −0.99 to
+// 0.99, random walks and alternating patterns.
+func TestESSBounds(t *testing.T) {
+	r := rand.New(rand.NewPCG(31, 37))
+	for trial := range 300 {
+		m, n := 1+r.IntN(4), 8+r.IntN(200)
+		rho := -0.99 + 1.98*r.Float64()
+		chains := ar1Chains(r, m, n, rho)
+		if trial%3 == 0 {
+			for _, c := range chains {
+				for i := range c {
+					c[i] = float64(i%(2+trial%5)) + 1e-3*r.NormFloat64()
+				}
+			}
+		}
+		s := float64(m * n / 2 * 2)
+		for name, e := range map[string]float64{"bulk": BulkESS(chains), "tail": TailESS(chains), "mean": MeanESS(chains)} {
+			if !(e > 0) || e > s*math.Log10(s)*(1+1e-12) {
+				t.Fatalf("trial %d (%d×%d, ρ %.3f): %s-ESS = %v outside (0, %v]", trial, m, n, rho, name, e, s*math.Log10(s))
+			}
+		}
+	}
+}

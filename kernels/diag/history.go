@@ -252,8 +252,8 @@ func (h *History) RunMeans() []RunMean {
 			}
 			sig2 := b * q / float64(nb-1)
 			if sig2 > 0 {
-				r.ESS = tot * r.SD * r.SD / sig2
-				r.MCSE = math.Sqrt(sig2 / tot)
+				r.ESS = capESS(tot*r.SD*r.SD/sig2, int(tot))
+				r.MCSE = r.SD / math.Sqrt(r.ESS)
 			}
 		}
 		out[j] = r

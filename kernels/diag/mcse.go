@@ -50,7 +50,7 @@ func MeanMCSE(chains [][]float64) float64 {
 	if !ws.load(chains, minHalf) {
 		return math.NaN()
 	}
-	return math.Sqrt(variance(ws.pool, mean(ws.pool)) / geyerESS(ws.split, &ws.acov, nil))
+	return stdDev(ws.pool, mean(ws.pool)) / math.Sqrt(geyerESS(ws.split, &ws.acov, nil))
 }
 
 // QuantileMCSE is the Monte Carlo standard error of the α-quantile of the
@@ -168,7 +168,7 @@ func (ws *workspace) summary(chains [][]float64) Summary {
 	}
 	var s Summary
 	s.Mean = mean(ws.pool)
-	s.SD = math.Sqrt(variance(ws.pool, s.Mean))
+	s.SD = stdDev(ws.pool, s.Mean)
 	s.MeanESS = geyerESS(ws.split, &ws.acov, nil)
 	s.MeanMCSE = s.SD / math.Sqrt(s.MeanESS)
 	s.BulkESS = geyerESS(ws.chainsOf(ws.z), &ws.acov, nil)

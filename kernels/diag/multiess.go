@@ -42,7 +42,7 @@ func MultiESS(draws [][]float64, batch int) float64 {
 	if n/batch < 2 {
 		panic(fmt.Sprintf("diag: MultiESS with %d draws and batch size %d has fewer than 2 batches", n, batch))
 	}
-	return float64(n) * detRatio(sampleCov(y), batchMeansCov(y, batch))
+	return capESS(float64(n)*detRatio(sampleCov(y), batchMeansCov(y, batch)), n)
 }
 
 // sampleCov is Λ̂, divisor n − 1.
