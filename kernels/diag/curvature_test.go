@@ -105,6 +105,11 @@ func TestCurvatureBoundsCertificate(t *testing.T) {
 	if f, g := c.SmoothnessFloor(), c.ConvexityCeiling(); !(f <= 10 && f > 1 && g >= 1 && g < 10) || c.NonConvex() || c.Pairs() != 200 {
 		t.Errorf("random pairs: floor %v (want ≤ M = 10), ceiling %v (want ≥ m = 1), non-convex %v, pairs %d", f, g, c.NonConvex(), c.Pairs())
 	}
+	// Convex: the floor is the co-coercivity ratio, at least r_norm
+	// (Cauchy–Schwarz), and both stay below M.
+	if f, l := c.SmoothnessFloor(), c.LipschitzFloor(); !(l <= f && f <= 10) {
+		t.Errorf("random pairs: co-coercivity floor %v, Lipschitz floor %v, want r_norm ≤ r_coc ≤ 10", f, l)
+	}
 	e := func(i int, a float64) []float64 { v := make([]float64, 10); v[i] = a; return v }
 	c.Add(e(9, 1.5), e(9, -0.5), score(e(9, 1.5)), score(e(9, -0.5)))
 	c.Add(e(0, 2), e(0, 0), score(e(0, 2)), score(e(0, 0)))
@@ -118,7 +123,9 @@ func TestCurvatureBoundsCertificate(t *testing.T) {
 	var nc CurvatureBounds
 	ind := quadScore([]float64{1, -1})
 	got := nc.Add([]float64{0, 1}, []float64{0, 0}, ind([]float64{0, 1}), ind([]float64{0, 0}))
-	if got.In != -1 || !math.IsNaN(got.Coc) || !nc.NonConvex() || nc.ConvexityCeiling() != -1 || !math.IsNaN(nc.SmoothnessFloor()) {
+	// Non-convex: the floor is the largest r_norm, here ‖y_g‖/‖s‖ = 1, the
+	// Lipschitz constant of this gradient.
+	if got.In != -1 || !math.IsNaN(got.Coc) || !nc.NonConvex() || nc.ConvexityCeiling() != -1 || nc.SmoothnessFloor() != 1 || nc.LipschitzFloor() != 1 {
 		t.Errorf("indefinite pair: %+v, non-convex %v, ceiling %v, floor %v", got, nc.NonConvex(), nc.ConvexityCeiling(), nc.SmoothnessFloor())
 	}
 	if nan := nc.Add([]float64{0, 1}, []float64{0, 0}, []float64{math.NaN(), 0}, []float64{0, 0}); !math.IsNaN(nan.In) || nc.Skipped() != 1 || nc.Pairs() != 1 {
@@ -406,5 +413,82 @@ func BenchmarkCurvatureProbeTell(b *testing.B) {
 		if err := pr.Tell(g); err != nil {
 			b.Fatal(err)
 		}
+	}
+}
+
+// mixtureScore is ∇log π for the equal mixture of N(a, I) and N(−a, I):
+// log π(x) = −‖x‖²/2 + log cosh(aᵀx) + const, so
+//
+//	∇log π(x) = −x + a·tanh(aᵀx),   ∇²(−log π)(x) = I − a aᵀ·sech²(aᵀx).
+//
+// The Hessian of the potential has eigenvalue 1 on a's orthogonal
+// complement and 1 − ‖a‖²·sech²(aᵀx) ∈ [1 − ‖a‖², 1] along a (sech² takes
+// every value in (0, 1], 1 at aᵀx = 0), so the gradient's Lipschitz
+// constant is max(1, ‖a‖² − 1) (derived here): 15 for a = 2·1 in 4-D.
+func mixtureScore(a []float64) func(x []float64) []float64 {
+	return func(x []float64) []float64 {
+		th := math.Tanh(dot(a, x))
+		g := make([]float64, len(x))
+		for i := range x {
+			g[i] = -x[i] + a[i]*th
+		}
+		return g
+	}
+}
+
+// On a non-convex target, the equal mixture of N(±2·1, I) in 4-D, pairs of
+// nearby points (x from the mixture, y = x + N(0, 0.5²I)) and of
+// independent mixture draws show non-convexity, and the reported floor on
+// M never exceeds the true Lipschitz constant 15 (see mixtureScore), while
+// the co-coercivity ratio of some pairs with ⟨y_g, s⟩ > 0 does (the
+// certificate the floor used to report).
+func TestCurvatureBoundsNonConvexMixture(t *testing.T) {
+	const p, lip = 4, 15.0
+	a := []float64{2, 2, 2, 2}
+	score := mixtureScore(a)
+	r := rand.New(rand.NewPCG(61, 67))
+	draw := func() []float64 {
+		x := make([]float64, p)
+		sign := 1.0
+		if r.IntN(2) == 0 {
+			sign = -1
+		}
+		for i := range x {
+			x[i] = sign*a[i] + r.NormFloat64()
+		}
+		return x
+	}
+	var c CurvatureBounds
+	var worstCoc float64
+	for i := range 4000 {
+		x := draw()
+		var y []float64
+		if i%2 == 0 {
+			y = make([]float64, p)
+			for j := range y {
+				y[j] = x[j] + 0.5*r.NormFloat64()
+			}
+		} else {
+			y = draw()
+		}
+		sec := c.Add(x, y, score(x), score(y))
+		if sec.In > 0 {
+			worstCoc = math.Max(worstCoc, sec.Coc)
+		}
+		// Every ratio a pair can certify is at most the Lipschitz
+		// constant; rounding of ‖y_g‖/‖s‖ aside.
+		if sec.Norm > lip*(1+1e-12) {
+			t.Fatalf("pair %d: r_norm = %v above the Lipschitz constant %v", i, sec.Norm, lip)
+		}
+	}
+	t.Logf("floor %.4f, largest r_coc with r_in > 0 %.2f, ceiling %.3f", c.SmoothnessFloor(), worstCoc, c.ConvexityCeiling())
+	if !c.NonConvex() || !(c.ConvexityCeiling() < 0) {
+		t.Errorf("mixture: non-convex %v, ceiling %v; want non-convexity seen", c.NonConvex(), c.ConvexityCeiling())
+	}
+	if f := c.SmoothnessFloor(); !(f <= lip*(1+1e-12)) || f != c.LipschitzFloor() {
+		t.Errorf("mixture: floor on M = %v (Lipschitz floor %v), want the largest r_norm, at most %v", f, c.LipschitzFloor(), lip)
+	}
+	if !(worstCoc > lip) {
+		t.Errorf("mixture: largest co-coercivity ratio %v; the test needs a pair above %v to show the floor does not use it", worstCoc, lip)
 	}
 }
