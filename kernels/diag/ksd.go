@@ -167,6 +167,11 @@ func steinShape(dim int, draws, scores []float64) int {
 // of x (scores s), each unordered pair evaluated once.
 func steinSums(kern IMQ, dim int, x, s []float64) (off, on float64) {
 	c2, beta := kern.params()
+	return steinSumsC(c2, beta, dim, x, s)
+}
+
+// steinSumsC is steinSums with the kernel's parameters given.
+func steinSumsC(c2, beta float64, dim int, x, s []float64) (off, on float64) {
 	d := float64(dim)
 	n := len(x) / dim
 	for i := range n {
