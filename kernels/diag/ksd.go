@@ -115,6 +115,12 @@ type KSD struct {
 func (d KSD) V() float64 { return math.Sqrt(d.V2) }
 
 // U returns the discrepancy √max(KSD²_U, 0).
+//
+// Deprecated: a negative KSD²_U, which for draws of the target law happens
+// more often than not, is shown as a bare 0 with no uncertainty, and a
+// target on it is met by noise. Use AssessStein (or StreamKSD.Assess),
+// whose SteinResult carries the estimate with its standard error, an upper
+// 95 % bound, a test of KSD = 0 and SteinResult.Below for targets.
 func (d KSD) U() float64 { return math.Sqrt(math.Max(d.U2, 0)) }
 
 // SteinDiscrepancy returns the V- and U-statistic kernel Stein discrepancy
@@ -283,7 +289,9 @@ func (st *StreamKSD) Add(draws, scores []float64) {
 	st.kept++
 }
 
-// Result returns the kernel Stein discrepancy of the kept draws (N = Kept).
+// Result returns the kernel Stein discrepancy of the kept draws (N = Kept)
+// on the kernel's own scale, without uncertainty: for figures shown to a
+// user or compared with a target, call Assess.
 func (st *StreamKSD) Result() KSD {
 	if st.cacheRounds != st.kept {
 		k := st.kept * st.rows * st.dim
