@@ -7,15 +7,18 @@ import (
 )
 
 // Secant holds the three curvature ratios of one pair of points x ≠ y
-// (THEORY.md §12, derived there; standard convex analysis). With the
+// (standard convex analysis, derived here). With the
 // potential f = −log π, s = x − y and y_g = ∇f(x) − ∇f(y):
 //
 //	r_in   = ⟨y_g, s⟩ / ‖s‖²
 //	r_norm = ‖y_g‖ / ‖s‖
 //	r_coc  = ‖y_g‖² / ⟨y_g, s⟩          (only when ⟨y_g, s⟩ > 0)
 //
-// If m·I ⪯ ∇²f ⪯ M·I on the segment [x, y], all three lie in [m, M] and
-// r_in ≤ r_norm ≤ r_coc. A negative r_in proves f is not convex there.
+// With H̄ the mean Hessian of f on the segment [x, y] (y_g = H̄s): if
+// m·I ⪯ H̄ ⪯ M·I, then r_in ∈ [m, M] and |r_norm| ≤ max(|m|, |M|) for any
+// f, and r_coc ∈ [m, M] only when m ≥ 0 (H̄ positive semi-definite); in
+// that case r_in ≤ r_norm ≤ r_coc. A negative r_in proves f is not convex
+// there.
 type Secant struct {
 	In   float64 // r_in; NaN when x = y
 	Norm float64 // r_norm; NaN when x = y
@@ -164,7 +167,7 @@ func (c *CurvatureBounds) NonConvex() bool { return c.nonConvex }
 // CurvatureProbe runs power iteration for an extreme eigenvalue of the
 // Hessian H = ∇²f of the potential f = −log π at a fixed point θ, with
 // forward-difference Hessian-vector products from gradients only
-// (THEORY.md §12):
+// (standard convex analysis, derived here):
 //
 //	Hv ≈ (∇f(θ + εv) − ∇f(θ)) / ε,   ‖v‖ = 1
 //	estimate_k = vᵀHv,   then v ← Av/‖Av‖

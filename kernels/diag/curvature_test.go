@@ -20,7 +20,7 @@ func quadScore(h []float64) func(x []float64) []float64 {
 }
 
 // softplusScore is the score of f(x) = Σ log(1 + e^{x_i}) + ½‖x‖²
-// (THEORY.md §12): ∇f_i = σ(x_i) + x_i, ∇²f = diag(σ(1 − σ) + 1), so
+// (standard convex analysis, derived here): ∇f_i = σ(x_i) + x_i, ∇²f = diag(σ(1 − σ) + 1), so
 // m = 1, M = 1.25.
 func softplusScore(x []float64) []float64 {
 	s := make([]float64, len(x))
@@ -30,7 +30,7 @@ func softplusScore(x []float64) []float64 {
 	return s
 }
 
-// THEORY.md §12 test vectors: quadratic H = diag(1, 4) and the softplus
+// Worked test vectors: quadratic H = diag(1, 4) and the softplus
 // potential.
 func TestSecantRatiosTheoryVectors(t *testing.T) {
 	quad := quadScore([]float64{1, 4})
@@ -46,12 +46,12 @@ func TestSecantRatiosTheoryVectors(t *testing.T) {
 	} {
 		r := SecantRatios(c.x, c.y, c.score(c.x), c.score(c.y))
 		if !near(r.In, c.in, 1e-8) || !near(r.Norm, c.norm, 1e-8) || !near(r.Coc, c.coc, 1e-8) {
-			t.Errorf("x = %v, y = %v: ratios %+v, want (%.10f, %.10f, %.10f) (THEORY.md §12)", c.x, c.y, r, c.in, c.norm, c.coc)
+			t.Errorf("x = %v, y = %v: ratios %+v, want (%.10f, %.10f, %.10f) (standard convex analysis, derived here)", c.x, c.y, r, c.in, c.norm, c.coc)
 		}
 	}
 }
 
-// The inequalities of THEORY.md §12 ([DER]): m ≤ r_in ≤ r_norm ≤ r_coc ≤ M
+// The inequalities of standard convex analysis, derived here (derived here): m ≤ r_in ≤ r_norm ≤ r_coc ≤ M
 // for every pair on a potential with m·I ⪯ ∇²f ⪯ M·I, checked on random
 // pairs for the softplus potential (m = 1, M = 1.25) and an anisotropic
 // quadratic (m = 0.3, M = 7); plus the symmetry r(x, y) = r(y, x).
@@ -80,7 +80,7 @@ func TestSecantRatiosBetweenCurvatureBounds(t *testing.T) {
 	}
 }
 
-// The accumulated certificate (THEORY.md §12): pairs along the eigenvectors
+// The accumulated certificate (standard convex analysis, derived here): pairs along the eigenvectors
 // of H = diag(1, …, 10) make it exact (M ≥ 10, m ≤ 1); random pairs keep
 // M ≥ floor and m ≤ ceiling; a pair x = y is skipped; an indefinite
 // quadratic is flagged non-convex.
@@ -133,11 +133,11 @@ func TestCurvatureBoundsCertificate(t *testing.T) {
 	}
 }
 
-// THEORY.md §12 caveat, [DER]: along isotropic random directions u the
-// Rayleigh quotient uᵀHu/‖u‖² has mean tr(H)/p exactly (by symmetry), so
-// pairs with random differences say little about M. H = diag(1, …, 10),
-// 2000 directions (THEORY.md reports mean 5.4939, max 9.0845 for its own
-// draws): mean within 4 standard errors of 5.5, maximum below 10.
+// Why random pairs say little about M (derived here): along isotropic
+// random directions u the Rayleigh quotient uᵀHu/‖u‖² has mean tr(H)/p
+// exactly (by symmetry). H = diag(1, …, 10), 2000 directions (a run
+// computed for the project with other draws gave mean 5.4939, max
+// 9.0845): mean within 4 standard errors of 5.5, maximum below 10.
 func TestSecantRatiosRandomDirectionsConcentrate(t *testing.T) {
 	h := make([]float64, 10)
 	for i := range h {
@@ -168,7 +168,7 @@ func TestSecantRatiosRandomDirectionsConcentrate(t *testing.T) {
 	}
 }
 
-// THEORY.md §12 noisy-gradient example, [DER]: H = diag(1, 4), x = (1, 1),
+// Worked noisy-gradient example, derived here: H = diag(1, 4), x = (1, 1),
 // y = (0.9, 1), independent noise of standard deviation 0.5 per coordinate
 // on each gradient: E‖y_g,noisy‖² = ‖y_g‖² + 2pσ² = 0.01 + 1 = 1.01, so
 // r_norm ≈ √1.01/0.1 = 10.05 instead of 1. Monte Carlo over 20000 noise
@@ -194,11 +194,11 @@ func TestSecantRatiosNoiseInflation(t *testing.T) {
 	m := sum / n
 	se := math.Sqrt((sum2/n - m*m) / (n - 1))
 	if math.Abs(m-1.01) > 4*se {
-		t.Errorf("E‖y_g,noisy‖² = %.4f ± %.4f, want 1.01 (THEORY.md §12)", m, se)
+		t.Errorf("E‖y_g,noisy‖² = %.4f ± %.4f, want 1.01 (standard convex analysis, derived here)", m, se)
 	}
 	// Delta method: the standard error of √m is se/(2√m).
 	if rn, want := math.Sqrt(m)/0.1, math.Sqrt(1.01)/0.1; math.Abs(rn-want) > 4*se/(2*math.Sqrt(m))/0.1 {
-		t.Errorf("√E‖y_g,noisy‖²/‖s‖ = %.4f, want √1.01/0.1 = %.4f ≈ 10.05 (THEORY.md §12)", rn, want)
+		t.Errorf("√E‖y_g,noisy‖²/‖s‖ = %.4f, want √1.01/0.1 = %.4f ≈ 10.05 (standard convex analysis, derived here)", rn, want)
 	}
 	for i := range nx {
 		e := sigma * r.NormFloat64()
@@ -210,11 +210,11 @@ func TestSecantRatiosNoiseInflation(t *testing.T) {
 }
 
 // Local smoothness estimates along gradient descent with the
-// Malitsky–Mishchenko step rule (THEORY.md §12, rule from memory [MEM]):
+// Malitsky–Mishchenko step rule (Malitsky and Mishchenko 2020, rule from memory):
 // λ_k = min{√(1 + θ_{k−1})λ_{k−1}, ‖Δx‖/(2‖Δg‖)}, θ_k = λ_k/λ_{k−1}, on
 // f = ½xᵀdiag(1, 4)x from x₀ = (1, 1), λ₀ = 1e-3, θ₀ = ∞. Each
 // L_k = ‖Δg‖/‖Δx‖ is our r_norm of consecutive iterates. Paired with the
-// exact check of §12 [DER]: every L_k lies in [m, M] = [1, 4] and r_in ≤
+// exact check (derived here): every L_k lies in [m, M] = [1, 4] and r_in ≤
 // r_norm ≤ r_coc.
 func TestSecantRatiosLocalSmoothnessSequence(t *testing.T) {
 	score := quadScore([]float64{1, 4})
@@ -235,10 +235,10 @@ func TestSecantRatiosLocalSmoothnessSequence(t *testing.T) {
 		r := SecantRatios(x, prevX, score(x), score(prevX))
 		step := math.Min(math.Sqrt(1+theta)*lam, 1/(2*r.Norm))
 		if !near(r.Norm, wantL[k], 1e-8) || !near(step, wantStep[k], 1e-8) {
-			t.Errorf("k = %d: L = %.10f, step %.10f; want %.10f, %.10f (THEORY.md §12, from memory)", k+1, r.Norm, step, wantL[k], wantStep[k])
+			t.Errorf("k = %d: L = %.10f, step %.10f; want %.10f, %.10f (Malitsky and Mishchenko 2020, from memory)", k+1, r.Norm, step, wantL[k], wantStep[k])
 		}
 		if !(1 <= r.In && r.In <= r.Norm && r.Norm <= r.Coc && r.Coc <= 4) {
-			t.Errorf("k = %d: ratios %+v not within [1, 4] in order (THEORY.md §12)", k+1, r)
+			t.Errorf("k = %d: ratios %+v not within [1, 4] in order (standard convex analysis, derived here)", k+1, r)
 		}
 		theta, lam = step/lam, step
 		g = grad(x)
@@ -267,10 +267,10 @@ func runProbe(t *testing.T, pr *CurvatureProbe, score func([]float64) []float64,
 	return est
 }
 
-// THEORY.md §12 power-iteration vector: H = diag(1, …, 10), θ = 0,
+// Worked power-iteration vector: H = diag(1, …, 10), θ = 0,
 // v₀ = (1, …, 1)/√10, ε = 1e-4; and at every iteration the exact-arithmetic
 // value Σλ^{2k−1}/Σλ^{2k−2} of power iteration from v₀ (closed form for a
-// diagonal H, [DER]; the forward difference is exact for a quadratic up to
+// diagonal H, derived here; the forward difference is exact for a quadratic up to
 // rounding, u·‖H‖/ε ≈ 1e-11).
 func TestCurvatureProbeLargestTheoryVector(t *testing.T) {
 	h := make([]float64, 10)
@@ -289,7 +289,7 @@ func TestCurvatureProbeLargestTheoryVector(t *testing.T) {
 		want float64
 	}{{1, 5.5}, {5, 9.3858729722}, {10, 9.8363588796}, {20, 9.9816709981}, {30, 9.9977816035}} {
 		if !near(est[c.k-1], c.want, 1e-8) {
-			t.Errorf("after %d iterations: %.10f, want %.10f (THEORY.md §12)", c.k, est[c.k-1], c.want)
+			t.Errorf("after %d iterations: %.10f, want %.10f (standard convex analysis, derived here)", c.k, est[c.k-1], c.want)
 		}
 	}
 	for k := 1; k <= 30; k++ {
@@ -308,9 +308,9 @@ func TestCurvatureProbeLargestTheoryVector(t *testing.T) {
 	}
 }
 
-// Smallest eigenvalue by power iteration on σI − H (THEORY.md §12), σ = the
+// Smallest eigenvalue by power iteration on σI − H (standard convex analysis, derived here), σ = the
 // 30-iteration M̂ × 1.05: estimates vᵀHv equal the exact-arithmetic
-// Σλ(σ−λ)^{2k−2}/Σ(σ−λ)^{2k−2} [DER] and approach m = 1 from above. The
+// Σλ(σ−λ)^{2k−2}/Σ(σ−λ)^{2k−2} (derived here) and approach m = 1 from above. The
 // probe is built without the base gradient, so it asks for θ first and
 // counts one more evaluation.
 func TestCurvatureProbeSmallest(t *testing.T) {

