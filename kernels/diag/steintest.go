@@ -137,8 +137,8 @@ const (
 // when the draws do not have the target law; the usual estimate of its
 // variance is 4·var(ĥ)/N, SE = 2·sd(ĥ)/√N. Two refinements, derived here:
 // the scale term of ψ is the delta-method effect of estimating σ from the
-// same draws (σ̂_j/σ_j − 1 ≈ mean_i((z_ij − z̄_j)² − 1)/2; D_j by a forward
-// difference, one more pass over the pairs per coordinate), and the q̄
+// same draws (σ̂_j/σ_j − 1 ≈ mean_i((z_ij − z̄_j)² − 1)/2; D_j in closed
+// form, accumulated in the same pass over the pairs), and the q̄
 // term removes the noise of ĥ_i about h₁(z_i) from var(ψ) and puts back
 // the second-order variance 2ζ₂/(N(N−1)) of the U-statistic. For chains
 // the SE is multiplied by √τ̂, τ̂ the autocorrelation time of ψ along the
@@ -194,8 +194,8 @@ func AssessStein(dim int, draws, scores []float64, opt SteinOptions, rng *rand.R
 	}
 	z, sz, scale := standardise(dim, draws, scores)
 	out.Scale = scale
-	k, h, q := steinMatrix(c2, beta, dim, z, sz)
-	u, psi := steinInfluence(c2, beta, dim, z, sz, h)
+	k, h, q, dlog := steinMatrix(c2, beta, dim, z, sz)
+	u, psi := steinInfluence(dim, z, h, dlog)
 	se := steinSE(psi, q)
 	h = psi
 	block := 1.0
@@ -271,29 +271,77 @@ func standardise(dim int, x, s []float64) (z, sz, scale []float64) {
 }
 
 // steinMatrix returns the N×N matrix of k₀ off the diagonal (zero on it),
-// the row means ĥ_i = (1/(N−1))·Σ_{j≠i} k₀(z_i, z_j) and the within-row
-// variances q_i = (1/(N−1))·Σ_{j≠i} k₀(z_i, z_j)² − ĥ_i².
-func steinMatrix(c2, beta float64, dim int, z, sz []float64) (k *mat.SymDense, h, q []float64) {
+// the row means ĥ_i = (1/(N−1))·Σ_{j≠i} k₀(z_i, z_j), the within-row
+// variances q_i = (1/(N−1))·Σ_{j≠i} k₀(z_i, z_j)² − ĥ_i², and
+// D_l = ∂U/∂log σ_l for every coordinate l (see steinScaleDerivative).
+func steinMatrix(c2, beta float64, dim int, z, sz []float64) (k *mat.SymDense, h, q, dlog []float64) {
 	n := len(z) / dim
 	d := float64(dim)
 	k = mat.NewSymDense(n, nil)
-	h, q = make([]float64, n), make([]float64, n)
+	h, q, dlog = make([]float64, n), make([]float64, n), make([]float64, dim)
 	for i := range n {
 		zi, si := z[i*dim:(i+1)*dim], sz[i*dim:(i+1)*dim]
 		for j := i + 1; j < n; j++ {
-			v := steinPair(c2, beta, d, zi, si, z[j*dim:(j+1)*dim], sz[j*dim:(j+1)*dim])
+			zj, sj := z[j*dim:(j+1)*dim], sz[j*dim:(j+1)*dim]
+			qq, a, b := pairSums(zi, si, zj, sj)
+			v := steinValue(c2, beta, d, qq, a, b)
 			k.SetSym(i, j, v)
 			h[i] += v
 			h[j] += v
 			q[i] += v * v
 			q[j] += v * v
+			dq, da := steinPartials(c2, beta, d, qq, a, b)
+			for l := range dlog {
+				r := zi[l] - zj[l]
+				dlog[l] += -2*r*r*dq + 2*si[l]*sj[l]*da
+			}
 		}
 	}
 	for i := range h {
 		h[i] /= float64(n - 1)
 		q[i] = q[i]/float64(n-1) - h[i]*h[i]
 	}
-	return k, h, q
+	for l := range dlog {
+		dlog[l] *= 2 / (float64(n) * float64(n-1))
+	}
+	return k, h, q, dlog
+}
+
+// steinPartials returns ∂k₀/∂q and ∂k₀/∂a of steinValue's
+// k₀ = S^β·(a + 2β(b − d)/S − 4β(β−1)q/S²), S = c² + q (derived here by
+// differentiating it). Scaling coordinate l of z by e^{−t} and of the
+// scores by e^{t} changes q by −2r_l²·t, a by 2·s_l(x)s_l(y)·t and leaves
+// b unchanged, which gives D_l.
+func steinPartials(c2, beta, d, q, a, b float64) (dq, da float64) {
+	s := c2 + q
+	sb := math.Pow(s, beta)
+	g := a + 2*beta*(b-d)/s - 4*beta*(beta-1)*q/(s*s)
+	dg := -2*beta*(b-d)/(s*s) - 4*beta*(beta-1)*(1/(s*s)-2*q/(s*s*s))
+	return beta*sb/s*g + sb*dg, sb
+}
+
+// steinInfluence returns U and the estimated influence ψ_i of every draw
+// on it, U − KSD² ≈ (1/N)·Σ_i (ψ_i − mean ψ) (see AssessStein):
+//
+//	ψ_i = 2·ĥ_i + Σ_l D_l·(z_il − z̄_l)²/2,   D_l = ∂U/∂log σ_l.
+func steinInfluence(dim int, z, h, dlog []float64) (u float64, psi []float64) {
+	n := len(z) / dim
+	u = mean(h)
+	psi = make([]float64, n)
+	for i, v := range h {
+		psi[i] = 2 * v
+	}
+	col := make([]float64, n)
+	for l := range dim {
+		for i := range n {
+			col[i] = z[i*dim+l]
+		}
+		zbar := mean(col)
+		for i, v := range col {
+			psi[i] += dlog[l] * (v - zbar) * (v - zbar) / 2
+		}
+	}
+	return u, psi
 }
 
 // steinSE is the standard error of U from the influences ψ and the
@@ -310,43 +358,6 @@ func steinSE(psi, q []float64) float64 {
 		v = sd * sd / n
 	}
 	return math.Sqrt(v)
-}
-
-// scaleStep is the relative step of the forward difference of U in the
-// scale of each coordinate.
-const scaleStep = 1e-5
-
-// steinInfluence returns U and the estimated influence ψ_i of every draw
-// on it, U − KSD² ≈ (1/N)·Σ_i (ψ_i − mean ψ) (see AssessStein):
-//
-//	ψ_i = 2·ĥ_i + Σ_j D_j·(z_ij − z̄_j)²/2,   D_j = ∂U/∂log σ_j,
-//
-// D_j by a forward difference in the scale of coordinate j.
-func steinInfluence(c2, beta float64, dim int, z, sz, h []float64) (u float64, psi []float64) {
-	n := len(z) / dim
-	u = mean(h)
-	psi = make([]float64, n)
-	for i, v := range h {
-		psi[i] = 2 * v
-	}
-	zj, szj := make([]float64, len(z)), make([]float64, len(z))
-	col := make([]float64, n)
-	for j := range dim {
-		copy(zj, z)
-		copy(szj, sz)
-		for i := range n {
-			zj[i*dim+j] /= 1 + scaleStep
-			szj[i*dim+j] *= 1 + scaleStep
-			col[i] = z[i*dim+j]
-		}
-		off, _ := steinSumsC(c2, beta, dim, zj, szj)
-		dj := (off/(float64(n)*float64(n-1)) - u) / math.Log1p(scaleStep)
-		zbar := mean(col)
-		for i, v := range col {
-			psi[i] += dj * (v - zbar) * (v - zbar) / 2
-		}
-	}
-	return u, psi
 }
 
 // steinMoments returns U = mean(ĥ) (the U-statistic: every ordered pair
