@@ -278,6 +278,7 @@ func steinMatrix(c2, beta float64, dim int, z, sz []float64) (k *mat.SymDense, h
 	n := len(z) / dim
 	d := float64(dim)
 	k = mat.NewSymDense(n, nil)
+	raw := k.RawSymmetric()
 	h, q, dlog = make([]float64, n), make([]float64, n), make([]float64, dim)
 	for i := range n {
 		zi, si := z[i*dim:(i+1)*dim], sz[i*dim:(i+1)*dim]
@@ -285,7 +286,7 @@ func steinMatrix(c2, beta float64, dim int, z, sz []float64) (k *mat.SymDense, h
 			zj, sj := z[j*dim:(j+1)*dim], sz[j*dim:(j+1)*dim]
 			qq, a, b := pairSums(zi, si, zj, sj)
 			v := steinValue(c2, beta, d, qq, a, b)
-			k.SetSym(i, j, v)
+			raw.Data[i*raw.Stride+j] = v // upper triangle, as SymDense stores it
 			h[i] += v
 			h[j] += v
 			q[i] += v * v
@@ -420,12 +421,16 @@ func wildBootstrapP(k *mat.SymDense, u float64, chains int, block float64, reps 
 	var kw mat.Dense
 	kw.Mul(k, w)
 	norm := float64(n) * float64(n-1)
-	exceed := 0
-	for b := range reps {
-		var s float64
-		for i := range n {
-			s += w.At(i, b) * kw.At(i, b)
+	sums := make([]float64, reps)
+	kwRaw := kw.RawMatrix()
+	for i := range n {
+		wi, ki := raw.Data[i*raw.Stride:i*raw.Stride+reps], kwRaw.Data[i*kwRaw.Stride:i*kwRaw.Stride+reps]
+		for b, v := range wi {
+			sums[b] += v * ki[b]
 		}
+	}
+	exceed := 0
+	for _, s := range sums {
 		if s/norm >= u {
 			exceed++
 		}
