@@ -165,7 +165,13 @@ const (
 // the bootstrap needs (derived here: the multiplier's lag-k correlation
 // is about e^{−2k/ℓ}, 0.6 at k = τ̂_max). The p-value is
 // (1 + #{b : U*_b ≥ U})/(B + 1); State is SteinSignificant when it is at
-// most 0.05, else SteinIndistinguishable.
+// most 0.05, else SteinIndistinguishable. Measured level: for exact
+// independent draws (N = 500, dimension 2 and 10) the test rejected in
+// 4 % and 6 % of 200 seeds; for 4 chains of 100 steps of an AR(1) with
+// ρ = 0.5 (τ = 3) whose every draw has the target law, in 9.5 % (and in
+// 39 % if the same draws are taken as independent). For chains the level
+// is therefore only roughly 5 %; thinning the draws well beyond the
+// autocorrelation time, as StreamKSD does on long runs, brings it back.
 //
 // Cost: N(N−1)/2 kernel evaluations of O(dim) and an N×N by N×B matrix
 // product for the bootstrap; memory N² + 2·N·B float64 values.
