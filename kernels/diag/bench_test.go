@@ -6,7 +6,7 @@ import (
 	"testing"
 )
 
-// 4 chains × 20000 draws, one coordinate: every §9 figure.
+// 4 chains × 20000 draws, one coordinate: every figure of Vehtari et al. (2021).
 func BenchmarkSummarize4x20000(b *testing.B) {
 	for _, rho := range []float64{0.5, 0.99} {
 		b.Run(map[float64]string{0.5: "ar0.5", 0.99: "ar0.99"}[rho], func(b *testing.B) {

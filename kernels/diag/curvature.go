@@ -7,15 +7,18 @@ import (
 )
 
 // Secant holds the three curvature ratios of one pair of points x ≠ y
-// (THEORY.md §12, derived there; standard convex analysis). With the
+// (standard convex analysis, derived here). With the
 // potential f = −log π, s = x − y and y_g = ∇f(x) − ∇f(y):
 //
 //	r_in   = ⟨y_g, s⟩ / ‖s‖²
 //	r_norm = ‖y_g‖ / ‖s‖
 //	r_coc  = ‖y_g‖² / ⟨y_g, s⟩          (only when ⟨y_g, s⟩ > 0)
 //
-// If m·I ⪯ ∇²f ⪯ M·I on the segment [x, y], all three lie in [m, M] and
-// r_in ≤ r_norm ≤ r_coc. A negative r_in proves f is not convex there.
+// With H̄ the mean Hessian of f on the segment [x, y] (y_g = H̄s): if
+// m·I ⪯ H̄ ⪯ M·I, then r_in ∈ [m, M] and |r_norm| ≤ max(|m|, |M|) for any
+// f, and r_coc ∈ [m, M] only when m ≥ 0 (H̄ positive semi-definite); in
+// that case r_in ≤ r_norm ≤ r_coc. A negative r_in proves f is not convex
+// there.
 type Secant struct {
 	In   float64 // r_in; NaN when x = y
 	Norm float64 // r_norm; NaN when x = y
@@ -51,19 +54,29 @@ func SecantRatios(x, y, scoreX, scoreY []float64) Secant {
 }
 
 // CurvatureBounds accumulates the one-sided curvature certificates of the
-// pairs of points a session has already evaluated (THEORY.md §12). Over all
-// pairs added,
+// pairs of points a session has already evaluated (standard convex
+// analysis, derived here; see Secant). Over all pairs added,
 //
-//	M ≥ SmoothnessFloor  = max r_coc      (co-coercivity; convex M-smooth f)
+//	M ≥ LipschitzFloor   = max r_norm     (any f: ‖H̄s‖ ≤ ‖H̄‖·‖s‖)
+//	M ≥ max r_coc                          (only where H̄ ⪰ 0 on the segment)
 //	m ≤ ConvexityCeiling = min r_in       (Rayleigh quotient of the mean Hessian)
 //
-// and any r_in < 0 sets NonConvex. No finite set of pairs can bound M from
-// above or m from below. Gradients must be exact, or taken on the same
-// minibatch at both points: independent noise of variance σ² per
-// coordinate on each gradient adds 2pσ² to E‖y_g‖² and inflates every ratio;
-// so do pairs closer together than the gradients' own precision resolves.
-// Pairs of consecutive Langevin iterates probe mostly random directions,
-// whose ratios concentrate near tr(∇²f)/p: use CurvatureProbe for M.
+// with M the Lipschitz constant of ∇f (the largest |eigenvalue| of ∇²f)
+// and H̄ = ∫₀¹ ∇²f(y + t(x − y)) dt the segment's mean Hessian, so that
+// y_g = H̄s. The co-coercivity ratio is a floor on M only when H̄ is
+// positive semi-definite (then H̄² ⪯ ‖H̄‖·H̄, so ‖H̄s‖² ≤ M·sᵀH̄s); on a
+// non-convex potential a segment whose H̄ is indefinite can have
+// sᵀH̄s > 0 but tiny and an r_coc far above M (an equal mixture of
+// N(±2·1, I) in 4-D gives ratios above 40 where M = 15). A pair with
+// r_in < 0 proves non-convexity; from then on SmoothnessFloor reports the
+// largest r_norm seen over all pairs, never r_coc. No finite set of pairs
+// can bound M from above or m from below. Gradients must be exact, or
+// taken on the same minibatch at both points: independent noise of
+// variance σ² per coordinate on each gradient adds 2pσ² to E‖y_g‖² and
+// inflates every ratio; so do pairs closer together than the gradients'
+// own precision resolves. Pairs of consecutive Langevin iterates probe
+// mostly random directions, whose ratios concentrate near tr(∇²f)/p: use
+// CurvatureProbe for M.
 //
 // The zero value is ready to use. A CurvatureBounds is not safe for
 // concurrent use.
@@ -71,6 +84,7 @@ type CurvatureBounds struct {
 	pairs, skipped int
 	cocPairs       int
 	maxCoc, minIn  float64
+	maxNorm        float64
 	nonConvex      bool
 }
 
@@ -87,6 +101,7 @@ func (c *CurvatureBounds) Add(x, y, scoreX, scoreY []float64) Secant {
 	if c.pairs == 0 || r.In < c.minIn {
 		c.minIn = r.In
 	}
+	c.maxNorm = math.Max(c.maxNorm, r.Norm)
 	c.pairs++
 	if r.In < 0 {
 		c.nonConvex = true
@@ -106,14 +121,31 @@ func (c *CurvatureBounds) Pairs() int { return c.pairs }
 // Skipped returns the number of pairs left out (x = y or non-finite).
 func (c *CurvatureBounds) Skipped() int { return c.skipped }
 
-// SmoothnessFloor returns the largest r_coc seen, a lower bound on the
-// smoothness constant M of a convex potential; NaN until a pair with
-// ⟨y_g, s⟩ > 0 has been added.
+// SmoothnessFloor returns the best lower bound on M the pairs give: the
+// largest r_coc seen while every pair has been consistent with a convex
+// potential (a floor on M if the potential is convex), and the largest
+// r_norm seen (LipschitzFloor, a floor on M in any case) as soon as a
+// pair has shown non-convexity. NaN until a pair has been used (or, for
+// the convex case, until a pair with ⟨y_g, s⟩ > 0 has been added).
+// Callers that cannot assume convexity call LipschitzFloor.
 func (c *CurvatureBounds) SmoothnessFloor() float64 {
+	if c.nonConvex {
+		return c.LipschitzFloor()
+	}
 	if c.cocPairs == 0 {
 		return math.NaN()
 	}
 	return c.maxCoc
+}
+
+// LipschitzFloor returns the largest r_norm = ‖y_g‖/‖s‖ seen: a lower
+// bound on the Lipschitz constant of ∇log π whatever the shape of π,
+// since ‖y_g‖ = ‖H̄s‖ ≤ sup‖∇²f‖·‖s‖. NaN until a pair has been used.
+func (c *CurvatureBounds) LipschitzFloor() float64 {
+	if c.pairs == 0 {
+		return math.NaN()
+	}
+	return c.maxNorm
 }
 
 // ConvexityCeiling returns the smallest r_in seen, an upper bound on the
@@ -127,13 +159,15 @@ func (c *CurvatureBounds) ConvexityCeiling() float64 {
 }
 
 // NonConvex reports whether some pair had r_in < 0, which proves that the
-// potential −log π is not convex.
+// potential −log π is not convex. Bounds that assume convexity (step
+// sizes or error bounds from an estimated m or M) should be withheld once
+// it is true.
 func (c *CurvatureBounds) NonConvex() bool { return c.nonConvex }
 
 // CurvatureProbe runs power iteration for an extreme eigenvalue of the
 // Hessian H = ∇²f of the potential f = −log π at a fixed point θ, with
 // forward-difference Hessian-vector products from gradients only
-// (THEORY.md §12):
+// (standard convex analysis, derived here):
 //
 //	Hv ≈ (∇f(θ + εv) − ∇f(θ)) / ε,   ‖v‖ = 1
 //	estimate_k = vᵀHv,   then v ← Av/‖Av‖

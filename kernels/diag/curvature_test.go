@@ -20,7 +20,7 @@ func quadScore(h []float64) func(x []float64) []float64 {
 }
 
 // softplusScore is the score of f(x) = Σ log(1 + e^{x_i}) + ½‖x‖²
-// (THEORY.md §12): ∇f_i = σ(x_i) + x_i, ∇²f = diag(σ(1 − σ) + 1), so
+// (standard convex analysis, derived here): ∇f_i = σ(x_i) + x_i, ∇²f = diag(σ(1 − σ) + 1), so
 // m = 1, M = 1.25.
 func softplusScore(x []float64) []float64 {
 	s := make([]float64, len(x))
@@ -30,7 +30,7 @@ func softplusScore(x []float64) []float64 {
 	return s
 }
 
-// THEORY.md §12 test vectors: quadratic H = diag(1, 4) and the softplus
+// Worked test vectors: quadratic H = diag(1, 4) and the softplus
 // potential.
 func TestSecantRatiosTheoryVectors(t *testing.T) {
 	quad := quadScore([]float64{1, 4})
@@ -46,12 +46,12 @@ func TestSecantRatiosTheoryVectors(t *testing.T) {
 	} {
 		r := SecantRatios(c.x, c.y, c.score(c.x), c.score(c.y))
 		if !near(r.In, c.in, 1e-8) || !near(r.Norm, c.norm, 1e-8) || !near(r.Coc, c.coc, 1e-8) {
-			t.Errorf("x = %v, y = %v: ratios %+v, want (%.10f, %.10f, %.10f) (THEORY.md §12)", c.x, c.y, r, c.in, c.norm, c.coc)
+			t.Errorf("x = %v, y = %v: ratios %+v, want (%.10f, %.10f, %.10f) (standard convex analysis, derived here)", c.x, c.y, r, c.in, c.norm, c.coc)
 		}
 	}
 }
 
-// The inequalities of THEORY.md §12 ([DER]): m ≤ r_in ≤ r_norm ≤ r_coc ≤ M
+// The inequalities of standard convex analysis, derived here (derived here): m ≤ r_in ≤ r_norm ≤ r_coc ≤ M
 // for every pair on a potential with m·I ⪯ ∇²f ⪯ M·I, checked on random
 // pairs for the softplus potential (m = 1, M = 1.25) and an anisotropic
 // quadratic (m = 0.3, M = 7); plus the symmetry r(x, y) = r(y, x).
@@ -80,7 +80,7 @@ func TestSecantRatiosBetweenCurvatureBounds(t *testing.T) {
 	}
 }
 
-// The accumulated certificate (THEORY.md §12): pairs along the eigenvectors
+// The accumulated certificate (standard convex analysis, derived here): pairs along the eigenvectors
 // of H = diag(1, …, 10) make it exact (M ≥ 10, m ≤ 1); random pairs keep
 // M ≥ floor and m ≤ ceiling; a pair x = y is skipped; an indefinite
 // quadratic is flagged non-convex.
@@ -105,6 +105,11 @@ func TestCurvatureBoundsCertificate(t *testing.T) {
 	if f, g := c.SmoothnessFloor(), c.ConvexityCeiling(); !(f <= 10 && f > 1 && g >= 1 && g < 10) || c.NonConvex() || c.Pairs() != 200 {
 		t.Errorf("random pairs: floor %v (want ≤ M = 10), ceiling %v (want ≥ m = 1), non-convex %v, pairs %d", f, g, c.NonConvex(), c.Pairs())
 	}
+	// Convex: the floor is the co-coercivity ratio, at least r_norm
+	// (Cauchy–Schwarz), and both stay below M.
+	if f, l := c.SmoothnessFloor(), c.LipschitzFloor(); !(l <= f && f <= 10) {
+		t.Errorf("random pairs: co-coercivity floor %v, Lipschitz floor %v, want r_norm ≤ r_coc ≤ 10", f, l)
+	}
 	e := func(i int, a float64) []float64 { v := make([]float64, 10); v[i] = a; return v }
 	c.Add(e(9, 1.5), e(9, -0.5), score(e(9, 1.5)), score(e(9, -0.5)))
 	c.Add(e(0, 2), e(0, 0), score(e(0, 2)), score(e(0, 0)))
@@ -118,7 +123,9 @@ func TestCurvatureBoundsCertificate(t *testing.T) {
 	var nc CurvatureBounds
 	ind := quadScore([]float64{1, -1})
 	got := nc.Add([]float64{0, 1}, []float64{0, 0}, ind([]float64{0, 1}), ind([]float64{0, 0}))
-	if got.In != -1 || !math.IsNaN(got.Coc) || !nc.NonConvex() || nc.ConvexityCeiling() != -1 || !math.IsNaN(nc.SmoothnessFloor()) {
+	// Non-convex: the floor is the largest r_norm, here ‖y_g‖/‖s‖ = 1, the
+	// Lipschitz constant of this gradient.
+	if got.In != -1 || !math.IsNaN(got.Coc) || !nc.NonConvex() || nc.ConvexityCeiling() != -1 || nc.SmoothnessFloor() != 1 || nc.LipschitzFloor() != 1 {
 		t.Errorf("indefinite pair: %+v, non-convex %v, ceiling %v, floor %v", got, nc.NonConvex(), nc.ConvexityCeiling(), nc.SmoothnessFloor())
 	}
 	if nan := nc.Add([]float64{0, 1}, []float64{0, 0}, []float64{math.NaN(), 0}, []float64{0, 0}); !math.IsNaN(nan.In) || nc.Skipped() != 1 || nc.Pairs() != 1 {
@@ -126,11 +133,11 @@ func TestCurvatureBoundsCertificate(t *testing.T) {
 	}
 }
 
-// THEORY.md §12 caveat, [DER]: along isotropic random directions u the
-// Rayleigh quotient uᵀHu/‖u‖² has mean tr(H)/p exactly (by symmetry), so
-// pairs with random differences say little about M. H = diag(1, …, 10),
-// 2000 directions (THEORY.md reports mean 5.4939, max 9.0845 for its own
-// draws): mean within 4 standard errors of 5.5, maximum below 10.
+// Why random pairs say little about M (derived here): along isotropic
+// random directions u the Rayleigh quotient uᵀHu/‖u‖² has mean tr(H)/p
+// exactly (by symmetry). H = diag(1, …, 10), 2000 directions (a run
+// computed for the project with other draws gave mean 5.4939, max
+// 9.0845): mean within 4 standard errors of 5.5, maximum below 10.
 func TestSecantRatiosRandomDirectionsConcentrate(t *testing.T) {
 	h := make([]float64, 10)
 	for i := range h {
@@ -161,7 +168,7 @@ func TestSecantRatiosRandomDirectionsConcentrate(t *testing.T) {
 	}
 }
 
-// THEORY.md §12 noisy-gradient example, [DER]: H = diag(1, 4), x = (1, 1),
+// Worked noisy-gradient example, derived here: H = diag(1, 4), x = (1, 1),
 // y = (0.9, 1), independent noise of standard deviation 0.5 per coordinate
 // on each gradient: E‖y_g,noisy‖² = ‖y_g‖² + 2pσ² = 0.01 + 1 = 1.01, so
 // r_norm ≈ √1.01/0.1 = 10.05 instead of 1. Monte Carlo over 20000 noise
@@ -187,11 +194,11 @@ func TestSecantRatiosNoiseInflation(t *testing.T) {
 	m := sum / n
 	se := math.Sqrt((sum2/n - m*m) / (n - 1))
 	if math.Abs(m-1.01) > 4*se {
-		t.Errorf("E‖y_g,noisy‖² = %.4f ± %.4f, want 1.01 (THEORY.md §12)", m, se)
+		t.Errorf("E‖y_g,noisy‖² = %.4f ± %.4f, want 1.01 (standard convex analysis, derived here)", m, se)
 	}
 	// Delta method: the standard error of √m is se/(2√m).
 	if rn, want := math.Sqrt(m)/0.1, math.Sqrt(1.01)/0.1; math.Abs(rn-want) > 4*se/(2*math.Sqrt(m))/0.1 {
-		t.Errorf("√E‖y_g,noisy‖²/‖s‖ = %.4f, want √1.01/0.1 = %.4f ≈ 10.05 (THEORY.md §12)", rn, want)
+		t.Errorf("√E‖y_g,noisy‖²/‖s‖ = %.4f, want √1.01/0.1 = %.4f ≈ 10.05 (standard convex analysis, derived here)", rn, want)
 	}
 	for i := range nx {
 		e := sigma * r.NormFloat64()
@@ -203,11 +210,11 @@ func TestSecantRatiosNoiseInflation(t *testing.T) {
 }
 
 // Local smoothness estimates along gradient descent with the
-// Malitsky–Mishchenko step rule (THEORY.md §12, rule from memory [MEM]):
+// Malitsky–Mishchenko step rule (Malitsky and Mishchenko 2020, rule from memory):
 // λ_k = min{√(1 + θ_{k−1})λ_{k−1}, ‖Δx‖/(2‖Δg‖)}, θ_k = λ_k/λ_{k−1}, on
 // f = ½xᵀdiag(1, 4)x from x₀ = (1, 1), λ₀ = 1e-3, θ₀ = ∞. Each
 // L_k = ‖Δg‖/‖Δx‖ is our r_norm of consecutive iterates. Paired with the
-// exact check of §12 [DER]: every L_k lies in [m, M] = [1, 4] and r_in ≤
+// exact check (derived here): every L_k lies in [m, M] = [1, 4] and r_in ≤
 // r_norm ≤ r_coc.
 func TestSecantRatiosLocalSmoothnessSequence(t *testing.T) {
 	score := quadScore([]float64{1, 4})
@@ -228,10 +235,10 @@ func TestSecantRatiosLocalSmoothnessSequence(t *testing.T) {
 		r := SecantRatios(x, prevX, score(x), score(prevX))
 		step := math.Min(math.Sqrt(1+theta)*lam, 1/(2*r.Norm))
 		if !near(r.Norm, wantL[k], 1e-8) || !near(step, wantStep[k], 1e-8) {
-			t.Errorf("k = %d: L = %.10f, step %.10f; want %.10f, %.10f (THEORY.md §12, from memory)", k+1, r.Norm, step, wantL[k], wantStep[k])
+			t.Errorf("k = %d: L = %.10f, step %.10f; want %.10f, %.10f (Malitsky and Mishchenko 2020, from memory)", k+1, r.Norm, step, wantL[k], wantStep[k])
 		}
 		if !(1 <= r.In && r.In <= r.Norm && r.Norm <= r.Coc && r.Coc <= 4) {
-			t.Errorf("k = %d: ratios %+v not within [1, 4] in order (THEORY.md §12)", k+1, r)
+			t.Errorf("k = %d: ratios %+v not within [1, 4] in order (standard convex analysis, derived here)", k+1, r)
 		}
 		theta, lam = step/lam, step
 		g = grad(x)
@@ -260,10 +267,10 @@ func runProbe(t *testing.T, pr *CurvatureProbe, score func([]float64) []float64,
 	return est
 }
 
-// THEORY.md §12 power-iteration vector: H = diag(1, …, 10), θ = 0,
+// Worked power-iteration vector: H = diag(1, …, 10), θ = 0,
 // v₀ = (1, …, 1)/√10, ε = 1e-4; and at every iteration the exact-arithmetic
 // value Σλ^{2k−1}/Σλ^{2k−2} of power iteration from v₀ (closed form for a
-// diagonal H, [DER]; the forward difference is exact for a quadratic up to
+// diagonal H, derived here; the forward difference is exact for a quadratic up to
 // rounding, u·‖H‖/ε ≈ 1e-11).
 func TestCurvatureProbeLargestTheoryVector(t *testing.T) {
 	h := make([]float64, 10)
@@ -282,7 +289,7 @@ func TestCurvatureProbeLargestTheoryVector(t *testing.T) {
 		want float64
 	}{{1, 5.5}, {5, 9.3858729722}, {10, 9.8363588796}, {20, 9.9816709981}, {30, 9.9977816035}} {
 		if !near(est[c.k-1], c.want, 1e-8) {
-			t.Errorf("after %d iterations: %.10f, want %.10f (THEORY.md §12)", c.k, est[c.k-1], c.want)
+			t.Errorf("after %d iterations: %.10f, want %.10f (standard convex analysis, derived here)", c.k, est[c.k-1], c.want)
 		}
 	}
 	for k := 1; k <= 30; k++ {
@@ -301,9 +308,9 @@ func TestCurvatureProbeLargestTheoryVector(t *testing.T) {
 	}
 }
 
-// Smallest eigenvalue by power iteration on σI − H (THEORY.md §12), σ = the
+// Smallest eigenvalue by power iteration on σI − H (standard convex analysis, derived here), σ = the
 // 30-iteration M̂ × 1.05: estimates vᵀHv equal the exact-arithmetic
-// Σλ(σ−λ)^{2k−2}/Σ(σ−λ)^{2k−2} [DER] and approach m = 1 from above. The
+// Σλ(σ−λ)^{2k−2}/Σ(σ−λ)^{2k−2} (derived here) and approach m = 1 from above. The
 // probe is built without the base gradient, so it asks for θ first and
 // counts one more evaluation.
 func TestCurvatureProbeSmallest(t *testing.T) {
@@ -406,5 +413,82 @@ func BenchmarkCurvatureProbeTell(b *testing.B) {
 		if err := pr.Tell(g); err != nil {
 			b.Fatal(err)
 		}
+	}
+}
+
+// mixtureScore is ∇log π for the equal mixture of N(a, I) and N(−a, I):
+// log π(x) = −‖x‖²/2 + log cosh(aᵀx) + const, so
+//
+//	∇log π(x) = −x + a·tanh(aᵀx),   ∇²(−log π)(x) = I − a aᵀ·sech²(aᵀx).
+//
+// The Hessian of the potential has eigenvalue 1 on a's orthogonal
+// complement and 1 − ‖a‖²·sech²(aᵀx) ∈ [1 − ‖a‖², 1] along a (sech² takes
+// every value in (0, 1], 1 at aᵀx = 0), so the gradient's Lipschitz
+// constant is max(1, ‖a‖² − 1) (derived here): 15 for a = 2·1 in 4-D.
+func mixtureScore(a []float64) func(x []float64) []float64 {
+	return func(x []float64) []float64 {
+		th := math.Tanh(dot(a, x))
+		g := make([]float64, len(x))
+		for i := range x {
+			g[i] = -x[i] + a[i]*th
+		}
+		return g
+	}
+}
+
+// On a non-convex target, the equal mixture of N(±2·1, I) in 4-D, pairs of
+// nearby points (x from the mixture, y = x + N(0, 0.5²I)) and of
+// independent mixture draws show non-convexity, and the reported floor on
+// M never exceeds the true Lipschitz constant 15 (see mixtureScore), while
+// the co-coercivity ratio of some pairs with ⟨y_g, s⟩ > 0 does (the
+// certificate the floor used to report).
+func TestCurvatureBoundsNonConvexMixture(t *testing.T) {
+	const p, lip = 4, 15.0
+	a := []float64{2, 2, 2, 2}
+	score := mixtureScore(a)
+	r := rand.New(rand.NewPCG(61, 67))
+	draw := func() []float64 {
+		x := make([]float64, p)
+		sign := 1.0
+		if r.IntN(2) == 0 {
+			sign = -1
+		}
+		for i := range x {
+			x[i] = sign*a[i] + r.NormFloat64()
+		}
+		return x
+	}
+	var c CurvatureBounds
+	var worstCoc float64
+	for i := range 4000 {
+		x := draw()
+		var y []float64
+		if i%2 == 0 {
+			y = make([]float64, p)
+			for j := range y {
+				y[j] = x[j] + 0.5*r.NormFloat64()
+			}
+		} else {
+			y = draw()
+		}
+		sec := c.Add(x, y, score(x), score(y))
+		if sec.In > 0 {
+			worstCoc = math.Max(worstCoc, sec.Coc)
+		}
+		// Every ratio a pair can certify is at most the Lipschitz
+		// constant; rounding of ‖y_g‖/‖s‖ aside.
+		if sec.Norm > lip*(1+1e-12) {
+			t.Fatalf("pair %d: r_norm = %v above the Lipschitz constant %v", i, sec.Norm, lip)
+		}
+	}
+	t.Logf("floor %.4f, largest r_coc with r_in > 0 %.2f, ceiling %.3f", c.SmoothnessFloor(), worstCoc, c.ConvexityCeiling())
+	if !c.NonConvex() || !(c.ConvexityCeiling() < 0) {
+		t.Errorf("mixture: non-convex %v, ceiling %v; want non-convexity seen", c.NonConvex(), c.ConvexityCeiling())
+	}
+	if f := c.SmoothnessFloor(); !(f <= lip*(1+1e-12)) || f != c.LipschitzFloor() {
+		t.Errorf("mixture: floor on M = %v (Lipschitz floor %v), want the largest r_norm, at most %v", f, c.LipschitzFloor(), lip)
+	}
+	if !(worstCoc > lip) {
+		t.Errorf("mixture: largest co-coercivity ratio %v; the test needs a pair above %v to show the floor does not use it", worstCoc, lip)
 	}
 }

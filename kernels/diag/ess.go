@@ -8,7 +8,7 @@ import (
 )
 
 // SplitChains cuts every chain into its first and last ⌊N/2⌋ draws,
-// dropping the middle draw when N is odd (THEORY.md §9 step 1). The result
+// dropping the middle draw when N is odd (Vehtari et al. 2021). The result
 // lists all first halves, then all second halves; it shares memory with
 // the input.
 func SplitChains(chains [][]float64) [][]float64 {
@@ -30,9 +30,11 @@ func splitInto(dst, chains [][]float64) [][]float64 {
 }
 
 // ESS returns the effective sample size of the chains as they are (not
-// split), by Geyer's initial positive and monotone sequence over the
-// multi-chain autocorrelation (THEORY.md §9 step 5). Chains must all have
-// the same length N ≥ 4. A constant input has no defined ESS and gives NaN.
+// split), by Geyer's (1992) initial positive and monotone sequence over the
+// multi-chain autocorrelation of Vehtari et al. (2021), with τ̂ floored at
+// 1/log₁₀ S (S = all draws), so 0 < ESS ≤ S·log₁₀ S. Chains must all have
+// the same length N ≥ 4. A constant input, or one with a value that is not
+// finite, has no defined ESS and gives NaN.
 func ESS(chains [][]float64) float64 {
 	n := checkChains(chains)
 	if n < 4 {
@@ -51,11 +53,39 @@ type geyerTrace struct {
 	tau   float64
 }
 
-// geyerESS is THEORY.md §9 step 5 on an M×N array (N ≥ 4, checked by the
-// caller). s holds reusable scratch; tr, when not nil, receives the trace.
+// geyerESS is the effective sample size of an M×N array (N ≥ 4, checked by
+// the caller) by the multi-chain autocorrelation of Vehtari, Gelman,
+// Simpson, Carpenter and Bürkner (2021) and Geyer's (1992) initial positive
+// and monotone sequence, with τ̂ floored at 1/log₁₀(N·M) as in Vehtari et
+// al. (2021). s holds reusable scratch; tr, when not nil, receives the
+// trace. A draw that is not finite gives NaN. Draws of magnitude beyond
+// 1e100 (a diverged run) or all below 1e-100 are rescaled by their largest
+// magnitude first, which leaves the ESS unchanged and keeps their squares
+// finite.
 func geyerESS(chains [][]float64, s *acovScratch, tr *geyerTrace) float64 {
 	n := len(chains[0])
 	m := len(chains)
+	var big float64
+	for _, c := range chains {
+		for _, v := range c {
+			big = math.Max(big, math.Abs(v))
+		}
+	}
+	if math.IsNaN(big) || math.IsInf(big, 0) {
+		return math.NaN()
+	}
+	if big > 1e100 || (big > 0 && big < 1e-100) {
+		s.scaled = growFloats(s.scaled, n*m)
+		s.scaledViews = s.scaledViews[:0]
+		for j, c := range chains {
+			row := s.scaled[j*n : (j+1)*n]
+			for i, v := range c {
+				row[i] = v / big
+			}
+			s.scaledViews = append(s.scaledViews, row)
+		}
+		chains = s.scaledViews
+	}
 	s.means = growFloats(s.means, m)
 	means := s.means
 	var w float64
@@ -105,10 +135,30 @@ func geyerESS(chains [][]float64, s *acovScratch, tr *geyerTrace) float64 {
 			tr.pairs = append(tr.pairs, p)
 		}
 	}
+	tau = math.Max(tau, tauFloor(n*m))
 	if tr != nil {
 		tr.tau = tau
 	}
 	return float64(n*m) / tau
+}
+
+// tauFloor is the least autocorrelation time credited to s draws,
+// 1/log₁₀ s (Vehtari, Gelman, Simpson, Carpenter and Bürkner 2021): after
+// Geyer's truncation τ̂ = −1 + 2·Σ_k P̂_k can be near zero or negative
+// (an antithetic or diverged chain), which would make S/τ̂ huge or
+// negative. With the floor, 0 < ESS ≤ s·log₁₀ s. For s < 10 the floor
+// exceeds 1, so such tiny samples never claim more than s/τ_floor < s.
+func tauFloor(s int) float64 { return 1 / math.Log10(float64(s)) }
+
+// capESS applies the same limit to an effective sample size estimated
+// another way (batch means, multivariate): ESS ≤ s·log₁₀ s, and NaN stays
+// NaN. Derived here by analogy with tauFloor, so that every ESS the
+// package reports obeys one bound.
+func capESS(ess float64, s int) float64 {
+	if math.IsNaN(ess) {
+		return ess
+	}
+	return math.Min(ess, float64(s)/tauFloor(s))
 }
 
 // directLags is the number of lags computed directly, at O(M·N) each,
@@ -123,14 +173,16 @@ const directLags = 96
 // acovScratch evaluates mean_m γ̂_{t,m} (divisor N) lag by lag and keeps
 // its buffers between calls.
 type acovScratch struct {
-	chains [][]float64
-	means  []float64
-	full   []float64 // all lags, valid when haveFull
-	have   bool
-	fft    *fourier.FFT
-	buf    []float64
-	coef   []complex128
-	power  []complex128
+	chains      [][]float64
+	means       []float64
+	full        []float64 // all lags, valid when have
+	scaled      []float64 // rescaled copy of huge or tiny chains
+	scaledViews [][]float64
+	have        bool
+	fft         *fourier.FFT
+	buf         []float64
+	coef        []complex128
+	power       []complex128
 }
 
 // reset points s at new chains whose means are already in s.means.
@@ -238,6 +290,25 @@ func variance(x []float64, mu float64) float64 {
 		s += d * d
 	}
 	return s / float64(len(x)-1)
+}
+
+// stdDev is √variance(x, mu), computed on x/max|x − mu| when the
+// deviations are so large (a diverged run) or so small that their squares
+// would overflow or underflow.
+func stdDev(x []float64, mu float64) float64 {
+	var big float64
+	for _, v := range x {
+		big = math.Max(big, math.Abs(v-mu))
+	}
+	if !(big > 1e100 || (big > 0 && big < 1e-100)) || math.IsInf(big, 0) {
+		return math.Sqrt(variance(x, mu))
+	}
+	var s float64
+	for _, v := range x {
+		d := (v - mu) / big
+		s += d * d
+	}
+	return big * math.Sqrt(s/float64(len(x)-1))
 }
 
 // autocov at lag t with divisor n.

@@ -13,10 +13,10 @@ import (
 // kept draw is dropped and the interval doubles, so the kept draws are
 // always the draws at steps 0, k, 2k, ... of the whole run (k = Interval),
 // between capacity/2 and capacity of them per chain. Summarize computes
-// the THEORY.md §9 figures on them.
+// the Vehtari et al. (2021) figures on them.
 //
 // Batch sums. Per chain and coordinate, the sums of consecutive batches of
-// b draws, b a power of two kept at about √n after n steps (THEORY.md §10
+// b draws, b a power of two kept at about √n after n steps (Vats, Flegal and Jones 2019
 // default b = ⌊√n⌋), at most capacity batches per chain (beyond n ≈
 // capacity²/4 the batches grow faster than √n). RunMeans estimates from
 // them the Monte Carlo error of the mean of the whole run, with running
@@ -24,7 +24,7 @@ import (
 //
 // What the ESS of the thinned draws says about the whole run. The kept
 // draws form a chain whose autocorrelation at lag 1 is the full chain's at
-// lag k. For an AR(1) chain with coefficient ρ (THEORY.md §11d), n steps
+// lag k. For an AR(1) chain with coefficient ρ (AR(1) closed form, derived here), n steps
 // and n/k kept draws,
 //
 //	ESS_full = n·(1−ρ)/(1+ρ),  ESS_kept ≈ (n/k)·(1−ρᵏ)/(1+ρᵏ).
@@ -165,7 +165,7 @@ func (h *History) Interval() int { return h.interval }
 // Kept is the number of draws kept per chain.
 func (h *History) Kept() int { return h.kept }
 
-// Summarize returns the THEORY.md §9 figures of every coordinate computed
+// Summarize returns the Vehtari et al. (2021) figures of every coordinate computed
 // on the kept draws (see the type's comment for what their ESS means), or
 // nil while fewer than 8 draws per chain are kept.
 func (h *History) Summarize() []Summary {
@@ -194,13 +194,13 @@ func (h *History) Summarize() []Summary {
 type RunMean struct {
 	Mean float64 // mean of all S draws
 	SD   float64 // their standard deviation, divisor S − 1
-	// ESS = S·SD²/σ̂², with σ̂² the batch-means estimate of the asymptotic
+	// ESS = min(S·SD²/σ̂², S·log₁₀ S), with σ̂² the batch-means estimate of the asymptotic
 	// variance pooled over chains about the mean of all batch means:
 	// σ̂² = (b/(a·M − 1))·Σ_{m,k} (Ȳ_{m,k} − Ȳ)², a complete batches of b
 	// draws per chain (the draws of an incomplete last batch are left out
 	// of σ̂² only).
 	ESS     float64
-	MCSE    float64 // √(σ̂²/S) = SD/√ESS
+	MCSE    float64 // SD/√ESS (= √(σ̂²/S) unless the cap S·log₁₀ S on ESS applies)
 	Batches int     // a·M, the number of batch means behind σ̂²
 	Batch   int     // b
 }
@@ -252,8 +252,8 @@ func (h *History) RunMeans() []RunMean {
 			}
 			sig2 := b * q / float64(nb-1)
 			if sig2 > 0 {
-				r.ESS = tot * r.SD * r.SD / sig2
-				r.MCSE = math.Sqrt(sig2 / tot)
+				r.ESS = capESS(tot*r.SD*r.SD/sig2, int(tot))
+				r.MCSE = r.SD / math.Sqrt(r.ESS)
 			}
 		}
 		out[j] = r

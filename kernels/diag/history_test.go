@@ -40,7 +40,7 @@ func TestHistoryKeepsEvenlyThinnedDraws(t *testing.T) {
 
 // Batch sums are the sums of consecutive batches of b draws from the
 // start (reference: direct sums over the stored draws), b a power of two
-// with b² ≤ n < 4b² + b once the capacity does not bind (THEORY.md §10
+// with b² ≤ n < 4b² + b once the capacity does not bind (Vats, Flegal and Jones 2019
 // default b ≈ √n), and at most capacity batches when it does.
 func TestHistoryBatchSums(t *testing.T) {
 	for _, capacity := range []int{1024, 16} {
@@ -195,7 +195,7 @@ func TestHistoryAddDoesNotAllocate(t *testing.T) {
 
 // 10⁶ steps of 4 chains of three independent AR(1) coordinates,
 // ρ = (0.5, 0.9, 0.999), capacity 8192, so the kept draws are every
-// k = 128th (THEORY.md §11d gives the references: τ = (1+ρ)/(1−ρ), and a
+// k = 128th (AR(1) closed form, derived here gives the references: τ = (1+ρ)/(1−ρ), and a
 // thinned AR(1) is AR(1) with coefficient ρᵏ).
 //
 // Memory: the history's heap stays what NewHistory allocated (about
@@ -261,7 +261,7 @@ func TestHistoryMillionSteps(t *testing.T) {
 		if rho < 0.99 {
 			b := float64(run[j].Batch)
 			tol := 4*math.Sqrt(2/float64(run[j].Batches-1)) + 2*rho/(b*(1-rho*rho))
-			checkAbs(t, "whole-run ESS/target", run[j].ESS/full, 1, tol, "THEORY.md §11d, batch means")
+			checkAbs(t, "whole-run ESS/target", run[j].ESS/full, 1, tol, "AR(1) closed form, batch means")
 		}
 		rk := math.Pow(rho, k)
 		want := kept * (1 - rk) / (1 + rk)
@@ -285,7 +285,7 @@ func TestHistoryMillionSteps(t *testing.T) {
 			checkAbs(t, e.name+" (Summarize vs traced)", e.fromSumm, got, 1e-9*got, "same computation")
 			lags := len(tr.rho) - 1
 			tol := 4 * math.Sqrt(2*float64(2*lags+1)/kept)
-			checkAbs(t, e.name+"/thinned target", got/want, 1, tol, "THEORY.md §11d, thinned AR(1), Bartlett")
+			checkAbs(t, e.name+"/thinned target", got/want, 1, tol, "AR(1) closed form, thinned, Bartlett")
 			t.Logf("ρ = %v: %s / thinned target = %.4f ± %.4f (L = %d)", rho, e.name, got/want, tol, lags)
 		}
 		t.Logf("ρ = %v: whole run ESS %.0f (batch means %.0f, %d batches of %d); kept-draw ESS %.0f, bulk %.0f (thinned target %.0f, kept %v)",

@@ -6,7 +6,7 @@ import (
 )
 
 // IMQ is the inverse multiquadric base kernel of the kernel Stein
-// discrepancy (THEORY.md §8.1; Gorham and Mackey, ICML 2017):
+// discrepancy (Gorham and Mackey, ICML 2017):
 //
 //	k(x, y) = (c² + ‖x − y‖²)^β,   c > 0, −1 < β < 0.
 //
@@ -36,7 +36,7 @@ func (k IMQ) params() (c2, beta float64) {
 
 // Stein returns the Langevin–Stein kernel k₀(x, y) built on the IMQ base
 // kernel from two points and their scores sx = ∇log π(x), sy = ∇log π(y)
-// (THEORY.md §8.1, derived there): with r = x − y, S = c² + ‖r‖² and d the
+// (derived here from the definition of Liu, Lee and Jordan 2016): with r = x − y, S = c² + ‖r‖² and d the
 // dimension,
 //
 //	k₀(x, y) = sxᵀsy·S^β + 2β·S^{β−1}·rᵀ(sy − sx) − 2β·d·S^{β−1} − 4β(β−1)·‖r‖²·S^{β−2}.
@@ -90,7 +90,7 @@ func steinValue(c2, beta, d, q, a, b float64) float64 {
 }
 
 // KSD holds the kernel Stein discrepancy estimates of one set of N draws
-// with equal weights (THEORY.md §8.2; Liu, Lee and Jordan, ICML 2016;
+// with equal weights (Liu, Lee and Jordan, ICML 2016;
 // Gorham and Mackey, ICML 2017):
 //
 //	KSD²_V = (1/N²) Σ_{i,j} k₀(x_i, x_j)            (≥ 0, biased upward by O(1/N))
@@ -115,6 +115,12 @@ type KSD struct {
 func (d KSD) V() float64 { return math.Sqrt(d.V2) }
 
 // U returns the discrepancy √max(KSD²_U, 0).
+//
+// Deprecated: a negative KSD²_U, which for draws of the target law happens
+// more often than not, is shown as a bare 0 with no uncertainty, and a
+// target on it is met by noise. Use AssessStein (or StreamKSD.Assess),
+// whose SteinResult carries the estimate with its standard error, an upper
+// 95 % bound, a test of KSD = 0 and SteinResult.Below for targets.
 func (d KSD) U() float64 { return math.Sqrt(math.Max(d.U2, 0)) }
 
 // SteinDiscrepancy returns the V- and U-statistic kernel Stein discrepancy
@@ -133,7 +139,7 @@ func SteinDiscrepancy(kern IMQ, dim int, draws, scores []float64) KSD {
 //
 //	KSD²_L = (1/⌊N/2⌋) Σ_{i=1}^{⌊N/2⌋} k₀(x_{2i−1}, x_{2i})
 //
-// over consecutive pairs of rows (THEORY.md §8.2): unbiased for independent
+// over consecutive pairs of rows (Liu, Lee and Jordan 2016): unbiased for independent
 // draws and O(N·dim) work, but noisier: for exact draws its variance is
 // 2·E[k₀(X, X′)²]/N against the U-statistic's 2·E[k₀(X, X′)²]/(N(N−1)).
 // Consecutive Markov chain draws are correlated; order the rows so that
@@ -167,6 +173,11 @@ func steinShape(dim int, draws, scores []float64) int {
 // of x (scores s), each unordered pair evaluated once.
 func steinSums(kern IMQ, dim int, x, s []float64) (off, on float64) {
 	c2, beta := kern.params()
+	return steinSumsC(c2, beta, dim, x, s)
+}
+
+// steinSumsC is steinSums with the kernel's parameters given.
+func steinSumsC(c2, beta float64, dim int, x, s []float64) (off, on float64) {
 	d := float64(dim)
 	n := len(x) / dim
 	for i := range n {
@@ -278,7 +289,9 @@ func (st *StreamKSD) Add(draws, scores []float64) {
 	st.kept++
 }
 
-// Result returns the kernel Stein discrepancy of the kept draws (N = Kept).
+// Result returns the kernel Stein discrepancy of the kept draws (N = Kept)
+// on the kernel's own scale, without uncertainty: for figures shown to a
+// user or compared with a target, call Assess.
 func (st *StreamKSD) Result() KSD {
 	if st.cacheRounds != st.kept {
 		k := st.kept * st.rows * st.dim

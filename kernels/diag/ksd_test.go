@@ -24,7 +24,7 @@ func stdNormalScores(x []float64) []float64 {
 
 func near(got, want, tol float64) bool { return math.Abs(got-want) <= tol }
 
-// THEORY.md §8.1: closed-form k₀ at one pair of points, two kernels.
+// Closed-form k₀ (derived here) at one pair of points, two kernels.
 func TestSteinKernelTheoryValues(t *testing.T) {
 	x := []float64{0.3, -1.2, 0.7}
 	y := []float64{1.0, 0.4, -0.5}
@@ -39,7 +39,7 @@ func TestSteinKernelTheoryValues(t *testing.T) {
 		{IMQ{C: 2, Beta: -0.3}, -0.20705119336182165},
 	} {
 		if got := c.k.Stein(x, sx, y, sy); !near(got, c.want, 1e-12) {
-			t.Errorf("%+v: k₀ = %.17g, want %.17g (THEORY.md §8.1)", c.k, got, c.want)
+			t.Errorf("%+v: k₀ = %.17g, want %.17g (closed form derived here)", c.k, got, c.want)
 		}
 		if a, b := c.k.Stein(x, sx, y, sy), c.k.Stein(y, sy, x, sx); a != b && !near(a, b, 1e-15) {
 			t.Errorf("%+v: k₀ not symmetric: %v vs %v", c.k, a, b)
@@ -47,14 +47,15 @@ func TestSteinKernelTheoryValues(t *testing.T) {
 	}
 }
 
-// The closed form against the definition of THEORY.md §8.1,
+// The closed form against the definition of the Langevin Stein kernel
+// (Liu, Lee and Jordan 2016),
 //
 //	k₀ = s(x)ᵀs(y)k + s(x)ᵀ∇_y k + s(y)ᵀ∇_x k + Σ_j ∂²k/∂x_j∂y_j,
 //
 // with the derivatives of the base kernel by central differences (step
 // h = 1e-4: truncation O(h²) ≈ 1e-8 and rounding O(u/h²) ≈ 1e-8, so 1e-6
-// leaves a factor 100). THEORY.md lists this check as the one the closed
-// form was derived with.
+// leaves a factor 100). This is the check the closed form was derived
+// with.
 func TestSteinKernelFiniteDifferences(t *testing.T) {
 	r := rand.New(rand.NewPCG(3, 5))
 	for _, k := range []IMQ{{}, {C: 2, Beta: -0.3}, {C: 0.7, Beta: -0.8}} {
@@ -102,7 +103,7 @@ func dot(a, b []float64) float64 {
 	return s
 }
 
-// THEORY.md §8.1 diagonal: k₀(x, x) = ‖s(x)‖²c^{2β} − 2βd·c^{2(β−1)}.
+// the closed-form diagonal, derived here: k₀(x, x) = ‖s(x)‖²c^{2β} − 2βd·c^{2(β−1)}.
 func TestSteinKernelDiagonal(t *testing.T) {
 	x := []float64{0.3, -1.2, 0.7, 2}
 	s := []float64{0.2, 1.0, -0.3, -4}
@@ -110,12 +111,12 @@ func TestSteinKernelDiagonal(t *testing.T) {
 		c2, beta := k.params()
 		want := dot(s, s)*math.Pow(c2, beta) - 2*beta*4*math.Pow(c2, beta-1)
 		if got := k.Stein(x, s, x, s); !near(got, want, 1e-12) {
-			t.Errorf("%+v: k₀(x, x) = %.15g, want %.15g (THEORY.md §8.1)", k, got, want)
+			t.Errorf("%+v: k₀(x, x) = %.15g, want %.15g (closed form derived here)", k, got, want)
 		}
 	}
 }
 
-// THEORY.md §8.3, 1D points (−1, 0, 0.5, 2) for N(0, 1), IMQ c = 1, β = −½.
+// Worked example computed for the project, 1D points (−1, 0, 0.5, 2) for N(0, 1), IMQ c = 1, β = −½.
 func TestKSDTheoryVectors1D(t *testing.T) {
 	x := []float64{-1, 0, 0.5, 2}
 	s := stdNormalScores(x)
@@ -129,35 +130,35 @@ func TestKSDTheoryVectors1D(t *testing.T) {
 	for i := range 4 {
 		for j := range 4 {
 			if got := k.Stein(x[i:i+1], s[i:i+1], x[j:j+1], s[j:j+1]); !near(got, want[i][j], 1e-8) {
-				t.Errorf("k₀(x%d, x%d) = %.10f, want %.10f (THEORY.md §8.3)", i+1, j+1, got, want[i][j])
+				t.Errorf("k₀(x%d, x%d) = %.10f, want %.10f (worked example computed for the project)", i+1, j+1, got, want[i][j])
 			}
 		}
 	}
 	d := SteinDiscrepancy(k, 1, x, s)
 	if d.N != 4 || !near(d.V2, 0.2362353701, 1e-8) || !near(d.V(), 0.4860405025, 1e-8) || !near(d.U2, -0.4558528399, 1e-8) || d.U() != 0 {
-		t.Errorf("KSD = %+v (V %.10f), want V² 0.2362353701, V 0.4860405025, U² −0.4558528399, U clipped to 0 (THEORY.md §8.3)", d, d.V())
+		t.Errorf("KSD = %+v (V %.10f), want V² 0.2362353701, V 0.4860405025, U² −0.4558528399, U clipped to 0 (worked example computed for the project)", d, d.V())
 	}
 	if got := LinearSteinDiscrepancy(k, 1, x, s); !near(got, -0.2717295423, 1e-8) {
-		t.Errorf("KSD²_L = %.10f, want −0.2717295423 (THEORY.md §8.3)", got)
+		t.Errorf("KSD²_L = %.10f, want −0.2717295423 (worked example computed for the project)", got)
 	}
 }
 
-// THEORY.md §8.3, 2D points for N(0, I).
+// Worked example computed for the project, 2D points for N(0, I).
 func TestKSDTheoryVectors2D(t *testing.T) {
 	x := []float64{0, 0, 1, 0, 0, 1, -1, -1, 0.5, 0.5, 2, -1}
 	s := stdNormalScores(x)
 	var k IMQ
 	d := SteinDiscrepancy(k, 2, x, s)
 	if d.N != 6 || !near(d.V2, 0.4350857008, 1e-8) || !near(d.V(), 0.6596102643, 1e-8) || !near(d.U2, -0.1945638257, 1e-8) {
-		t.Errorf("KSD = %+v (V %.10f), want V² 0.4350857008, V 0.6596102643, U² −0.1945638257 (THEORY.md §8.3)", d, d.V())
+		t.Errorf("KSD = %+v (V %.10f), want V² 0.4350857008, V 0.6596102643, U² −0.1945638257 (worked example computed for the project)", d, d.V())
 	}
 	if got := LinearSteinDiscrepancy(k, 2, x, s); !near(got, -0.3767218521, 1e-8) {
-		t.Errorf("KSD²_L = %.10f, want −0.3767218521 (THEORY.md §8.3)", got)
+		t.Errorf("KSD²_L = %.10f, want −0.3767218521 (worked example computed for the project)", got)
 	}
 	for i, want := range []float64{2, 3, 3, 4, 2.5, 7} {
 		r := x[2*i : 2*i+2]
 		if got := k.Stein(r, s[2*i:2*i+2], r, s[2*i:2*i+2]); !near(got, want, 1e-12) {
-			t.Errorf("k₀(x%d, x%d) = %v, want %v (THEORY.md §8.3)", i+1, i+1, got, want)
+			t.Errorf("k₀(x%d, x%d) = %v, want %v (worked example computed for the project)", i+1, i+1, got, want)
 		}
 	}
 	// Dropping the last row of an odd sample: the linear estimate uses
@@ -167,7 +168,7 @@ func TestKSDTheoryVectors2D(t *testing.T) {
 	}
 }
 
-// THEORY.md §8.3 sensitivity check: Φ⁻¹((i − 0.5)/20), i = 1..20, shifted
+// Worked sensitivity check computed for the project: Φ⁻¹((i − 0.5)/20), i = 1..20, shifted
 // by c, scored against N(0, 1). Φ⁻¹ from gonum's distuv.
 func TestKSDSensitivityToShift(t *testing.T) {
 	for _, c := range []struct{ shift, want float64 }{{0, 0.0332352311}, {0.5, 0.4224686776}, {1, 0.8429741350}} {
@@ -176,7 +177,7 @@ func TestKSDSensitivityToShift(t *testing.T) {
 			x[i] = distuv.UnitNormal.Quantile((float64(i)+0.5)/20) + c.shift
 		}
 		if got := SteinDiscrepancy(IMQ{}, 1, x, stdNormalScores(x)).V(); !near(got, c.want, 1e-8) {
-			t.Errorf("shift %v: KSD_V = %.10f, want %.10f (THEORY.md §8.3)", c.shift, got, c.want)
+			t.Errorf("shift %v: KSD_V = %.10f, want %.10f (worked example computed for the project)", c.shift, got, c.want)
 		}
 	}
 }
@@ -187,7 +188,7 @@ func TestKSDEdgeCases(t *testing.T) {
 		t.Errorf("empty sample: %+v, want N 0 and NaN estimates", d)
 	}
 	d = SteinDiscrepancy(IMQ{}, 2, []float64{1, 2}, []float64{-1, -2})
-	if d.N != 1 || d.V2 != 7 || !math.IsNaN(d.U2) { // k₀(x, x) = ‖x‖² + d (THEORY.md §8.1)
+	if d.N != 1 || d.V2 != 7 || !math.IsNaN(d.U2) { // k₀(x, x) = ‖x‖² + d (closed form derived here)
 		t.Errorf("one draw: %+v, want V² = 7, U² NaN", d)
 	}
 	if got := LinearSteinDiscrepancy(IMQ{}, 2, []float64{1, 2}, []float64{-1, -2}); !math.IsNaN(got) {
@@ -220,14 +221,13 @@ func panicMessage(f func()) (msg string) {
 	return ""
 }
 
-// Stein identity E_{X~π} k₀(X, y) = 0 for fixed y (THEORY.md §8.1,
-// [DER]), by Gauss–Hermite quadrature for π = N(0, 1) at the three points
-// of THEORY.md (E g(X) = π^{−1/2}∫g(√2 t)e^{−t²}dt, gonum quad.Hermite).
-// The integrand is analytic near the real line, so the rule converges
-// geometrically and the distance between the 400- and 800-node values
-// overestimates the error of the 800-node one; the tolerance is that
-// distance plus the rounding of the sum (nodes × unit roundoff × largest
-// |weighted term|). THEORY.md reports the identity to 1e-16.
+// Stein identity E_{X~π} k₀(X, y) = 0 for fixed y (Liu, Lee and Jordan
+// 2016), by Gauss–Hermite quadrature for π = N(0, 1) at three points
+// (E g(X) = π^{−1/2}∫g(√2 t)e^{−t²}dt, gonum quad.Hermite). The integrand
+// is analytic near the real line, so the rule converges geometrically and
+// the distance between the 400- and 800-node values overestimates the
+// error of the 800-node one; the tolerance is that distance plus the
+// rounding of the sum (nodes × unit roundoff × largest |weighted term|).
 func TestSteinIdentityQuadrature(t *testing.T) {
 	rule := func(n int) (x, w []float64) {
 		x, w = make([]float64, n), make([]float64, n)
@@ -253,7 +253,7 @@ func TestSteinIdentityQuadrature(t *testing.T) {
 			coarse, fine := mean(x400, w400), mean(x800, w800)
 			tol := math.Abs(fine-coarse) + 800*0x1p-53*big
 			if math.Abs(fine) > tol {
-				t.Errorf("%+v, y = %v: E k₀(X, y) = %g, want 0 within %g (THEORY.md §8.1)", k, y, fine, tol)
+				t.Errorf("%+v, y = %v: E k₀(X, y) = %g, want 0 within %g (Stein identity)", k, y, fine, tol)
 			}
 		}
 	}
@@ -326,7 +326,7 @@ var testPrecision3 = mat.NewSymDense(3, []float64{
 	0.2, -0.3, 0.8,
 })
 
-// Stein identity by Monte Carlo in 3D (THEORY.md §8.1, [DER]): for
+// Stein identity by Monte Carlo in 3D (Liu, Lee and Jordan 2016; derived here): for
 // X ~ N(μ, Q⁻¹) exact, the mean of k₀(X_i, y) over 50000 draws is within 4
 // standard errors of 0 for fixed y, with y's own score or any other vector
 // in the second slot (the identity is linear in it).
@@ -356,14 +356,14 @@ func TestSteinIdentityMonteCarlo(t *testing.T) {
 	}
 }
 
-// Exact i.i.d. draws from π = N(μ, Q⁻¹) in 2D (Q from THEORY.md §11a). The
+// Exact i.i.d. draws from π = N(μ, Q⁻¹) in 2D (Q from ULA on a Gaussian, derived here). The
 // kernel is degenerate under π (E_X k₀(X, y) = 0), so the U-statistic has
 // mean 0 and the exact variance 2ζ/(n(n−1)) with ζ = E k₀(X, X′)²
 // (Hoeffding decomposition of a U-statistic whose first-order projection
-// vanishes, [DER]); n·KSD²_U therefore has mean 0 and variance 2ζ·n/(n−1)
+// vanishes, derived here); n·KSD²_U therefore has mean 0 and variance 2ζ·n/(n−1)
 // at every n: the discrepancy shrinks like 1/n. The V-statistic is ≥ 0
-// and E[n·KSD²_V] = E k₀(X, X) = tr(Q) + d = 5 exactly (THEORY.md §8.1
-// diagonal, β = −½, c = 1, with E‖s(X)‖² = tr(Q)). ζ is estimated from
+// and E[n·KSD²_V] = E k₀(X, X) = tr(Q) + d = 5 exactly (the closed-form
+// diagonal, derived here, β = −½, c = 1, with E‖s(X)‖² = tr(Q)). ζ is estimated from
 // independent pairs. Checks, for n = 100, 400, 1600: the mean of n·KSD²_U
 // over the replicates is 0 within 4 exact standard errors; every single
 // n·KSD²_U is within 30 exact standard deviations of 0 (Chebyshev: α ≤
@@ -423,8 +423,8 @@ func TestKSDExactSamplerShrinksLikeOneOverN(t *testing.T) {
 	}
 }
 
-// KSD ranks LMC step sizes on π = N(0, Q⁻¹), Q from THEORY.md §11a: ULA's
-// stationary law is N(0, Q⁻¹(I − hQ/2)⁻¹) (THEORY.md §11a), further from π
+// KSD ranks LMC step sizes on π = N(0, Q⁻¹), Q from ULA on a Gaussian, derived here: ULA's
+// stationary law is N(0, Q⁻¹(I − hQ/2)⁻¹) (ULA on a Gaussian, derived here), further from π
 // as h grows (h < 0.906 for stability), so the expected discrepancy grows
 // with h. Each of 32 chains of one kernels.NewLMC run per step size is an
 // independent replicate; after a burn-in of 10 time units every step's
@@ -544,7 +544,7 @@ func testStreamThinning(t *testing.T, capacity int) {
 	}
 }
 
-// Fed the 2D points of THEORY.md §8.3 one at a time with room for all,
+// Fed the 2D points of the worked example one at a time with room for all,
 // the stream gives the batch values.
 func TestStreamKSDTheoryVector(t *testing.T) {
 	x := []float64{0, 0, 1, 0, 0, 1, -1, -1, 0.5, 0.5, 2, -1}
@@ -557,7 +557,7 @@ func TestStreamKSDTheoryVector(t *testing.T) {
 		st.Add(x[2*i:2*i+2], s[2*i:2*i+2])
 	}
 	if d := st.Result(); d.N != 6 || !near(d.V2, 0.4350857008, 1e-8) || !near(d.U2, -0.1945638257, 1e-8) {
-		t.Errorf("stream KSD = %+v, want V² 0.4350857008, U² −0.1945638257 (THEORY.md §8.3)", d)
+		t.Errorf("stream KSD = %+v, want V² 0.4350857008, U² −0.1945638257 (worked example computed for the project)", d)
 	}
 	// Two more draws halve the store: rounds 0, 2, 4, 6 remain.
 	st.Add([]float64{3, 3}, []float64{-3, -3})

@@ -10,8 +10,8 @@ import (
 // minHalf is the fewest draws per split chain the ESS figures accept.
 const minHalf = 4
 
-// BulkESS is the ESS of the rank-normalised split chains (THEORY.md §9
-// step 6). Chains need at least 8 draws each. NaN for constant input or
+// BulkESS is the ESS of the rank-normalised split chains (Vehtari et al.
+// 2021). Chains need at least 8 draws each. NaN for constant input or
 // input containing NaN.
 func BulkESS(chains [][]float64) float64 {
 	var ws workspace
@@ -22,7 +22,7 @@ func BulkESS(chains [][]float64) float64 {
 }
 
 // TailESS is min{ESS(1[θ ≤ q̂₀.₀₅]), ESS(1[θ ≤ q̂₀.₉₅])} on the split
-// chains, q̂ the type-7 quantiles of the pooled draws (THEORY.md §9 step 6).
+// chains, q̂ the type-7 quantiles of the pooled draws (Vehtari et al. 2021, bulk- and tail-ESS).
 func TailESS(chains [][]float64) float64 {
 	var ws workspace
 	if !ws.load(chains, minHalf) {
@@ -32,7 +32,7 @@ func TailESS(chains [][]float64) float64 {
 }
 
 // MeanESS is the ESS of the raw split chains, the one that goes with the
-// mean (THEORY.md §9 step 7): ESS(SplitChains(chains)).
+// mean (Vehtari et al. 2021, MCSE of the mean): ESS(SplitChains(chains)).
 func MeanESS(chains [][]float64) float64 {
 	var ws workspace
 	if !ws.load(chains, minHalf) {
@@ -42,7 +42,7 @@ func MeanESS(chains [][]float64) float64 {
 }
 
 // MeanMCSE is the Monte Carlo standard error of the mean of all split
-// draws (THEORY.md §9 step 7):
+// draws (Vehtari et al. 2021, MCSE of the mean):
 //
 //	MCSE = sd(θ) / √ESS_mean,  sd over all S_tot split draws, divisor S_tot − 1.
 func MeanMCSE(chains [][]float64) float64 {
@@ -50,11 +50,11 @@ func MeanMCSE(chains [][]float64) float64 {
 	if !ws.load(chains, minHalf) {
 		return math.NaN()
 	}
-	return math.Sqrt(variance(ws.pool, mean(ws.pool)) / geyerESS(ws.split, &ws.acov, nil))
+	return stdDev(ws.pool, mean(ws.pool)) / math.Sqrt(geyerESS(ws.split, &ws.acov, nil))
 }
 
 // QuantileMCSE is the Monte Carlo standard error of the α-quantile of the
-// pooled split draws (THEORY.md §9 step 8), 0 < α < 1:
+// pooled split draws (Vehtari et al. 2021, MCSE of a quantile), 0 < α < 1:
 //
 //	E_q = ESS(1[θ ≤ q̂_α])
 //	a = Beta⁻¹(Φ(−1); E_q·α + 1, E_q·(1−α) + 1),  b = Beta⁻¹(Φ(1); same)
@@ -88,12 +88,12 @@ func (ws *workspace) indicatorESS(q float64) float64 {
 	return geyerESS(ws.chainsOf(ws.ind), &ws.acov, nil)
 }
 
-// quantileParts are the intermediate values of §9 step 8.
+// quantileParts are the intermediate values of Vehtari et al. 2021, MCSE of a quantile.
 type quantileParts struct {
 	eq, a, b, lo, hi, mcse float64
 }
 
-// quantileMCSE applies §9 step 8 given E_q.
+// quantileMCSE applies Vehtari et al. 2021, MCSE of a quantile given E_q.
 func (ws *workspace) quantileMCSE(alpha, eq float64) quantileParts {
 	p := quantileParts{eq: eq}
 	if !(eq > 0) || math.IsInf(eq, 0) {
@@ -112,7 +112,7 @@ func (ws *workspace) quantileMCSE(alpha, eq float64) quantileParts {
 	return p
 }
 
-// Summary holds the THEORY.md §9 figures of one scalar quantity. Every
+// Summary holds the Vehtari et al. (2021) figures of one scalar quantity. Every
 // figure is computed on the split chains: with an odd number of draws per
 // chain the middle draw of each chain is left out of all of them.
 type Summary struct {
@@ -168,7 +168,7 @@ func (ws *workspace) summary(chains [][]float64) Summary {
 	}
 	var s Summary
 	s.Mean = mean(ws.pool)
-	s.SD = math.Sqrt(variance(ws.pool, s.Mean))
+	s.SD = stdDev(ws.pool, s.Mean)
 	s.MeanESS = geyerESS(ws.split, &ws.acov, nil)
 	s.MeanMCSE = s.SD / math.Sqrt(s.MeanESS)
 	s.BulkESS = geyerESS(ws.chainsOf(ws.z), &ws.acov, nil)

@@ -6,62 +6,62 @@ import (
 	"testing"
 )
 
-// THEORY.md §9 steps 5–6: bulk-ESS with its ρ̂ and P̂ sequences.
+// Vehtari et al. 2021, ESS by Geyer's initial monotone sequence, bulk- and tail-ESS: bulk-ESS with its ρ̂ and P̂ sequences.
 func TestBulkESSMatchesTheoryVector(t *testing.T) {
 	var ws workspace
-	ws.load(theoryChains, minHalf)
+	ws.load(workedChains, minHalf)
 	var tr geyerTrace
 	got := geyerESS(ws.chainsOf(ws.z), &ws.acov, &tr)
-	checkAbs(t, "bulk-ESS", got, 18.5830774451, 1e-8, theory9)
-	checkAbs(t, "BulkESS()", BulkESS(theoryChains), 18.5830774451, 1e-8, theory9)
-	checkAbs(t, "τ̂", tr.tau, 4.3049920142, 1e-8, theory9)
+	checkAbs(t, "bulk-ESS", got, 18.5830774451, 1e-8, workedVehtari)
+	checkAbs(t, "BulkESS()", BulkESS(workedChains), 18.5830774451, 1e-8, workedVehtari)
+	checkAbs(t, "τ̂", tr.tau, 4.3049920142, 1e-8, workedVehtari)
 	for k, want := range []float64{1.0, 0.3513045445, 0.1780649598, 0.1472329059, 0.1443004022, 0.3747726152} {
-		checkAbs(t, "ρ̂_"+string(rune('0'+k)), tr.rho[k], want, 1e-8, theory9)
+		checkAbs(t, "ρ̂_"+string(rune('0'+k)), tr.rho[k], want, 1e-8, workedVehtari)
 	}
 	wantP := []float64{1.3513045445, 0.3252978656, 0.3252978656, 0.3252978656, 0.3252978656}
 	if len(tr.pairs) != len(wantP) {
-		t.Fatalf("P̂ has %d terms, want %d (%s)", len(tr.pairs), len(wantP), theory9)
+		t.Fatalf("P̂ has %d terms, want %d (%s)", len(tr.pairs), len(wantP), workedVehtari)
 	}
 	for k, want := range wantP {
-		checkAbs(t, "P̂_"+string(rune('0'+k)), tr.pairs[k], want, 1e-8, theory9)
+		checkAbs(t, "P̂_"+string(rune('0'+k)), tr.pairs[k], want, 1e-8, workedVehtari)
 	}
 }
 
-// THEORY.md §9 step 6: tail quantiles and indicator ESSs.
+// Vehtari et al. 2021, bulk- and tail-ESS: tail quantiles and indicator ESSs.
 func TestTailESSMatchesTheoryVector(t *testing.T) {
 	var ws workspace
-	ws.load(theoryChains, minHalf)
+	ws.load(workedChains, minHalf)
 	q05, q95 := quantile7(ws.sorted, 0.05), quantile7(ws.sorted, 0.95)
-	checkAbs(t, "q̂₀.₀₅", q05, -1.6131, 1e-8, theory9)
-	checkAbs(t, "q̂₀.₉₅", q95, 1.88485, 1e-8, theory9)
-	checkAbs(t, "ESS(1[θ≤q̂₀.₀₅])", ws.indicatorESS(q05), 101.9011406844, 1e-8, theory9)
-	checkAbs(t, "ESS(1[θ≤q̂₀.₉₅])", ws.indicatorESS(q95), 43.2585262414, 1e-8, theory9)
-	checkAbs(t, "tail-ESS", TailESS(theoryChains), 43.2585262414, 1e-8, theory9)
+	checkAbs(t, "q̂₀.₀₅", q05, -1.6131, 1e-8, workedVehtari)
+	checkAbs(t, "q̂₀.₉₅", q95, 1.88485, 1e-8, workedVehtari)
+	checkAbs(t, "ESS(1[θ≤q̂₀.₀₅])", ws.indicatorESS(q05), 101.9011406844, 1e-8, workedVehtari)
+	checkAbs(t, "ESS(1[θ≤q̂₀.₉₅])", ws.indicatorESS(q95), 43.2585262414, 1e-8, workedVehtari)
+	checkAbs(t, "tail-ESS", TailESS(workedChains), 43.2585262414, 1e-8, workedVehtari)
 }
 
-// THEORY.md §9 steps 7–8: mean, its MCSE, and the MCSE of the median.
+// Vehtari et al. 2021, MCSE of the mean, MCSE of a quantile: mean, its MCSE, and the MCSE of the median.
 func TestMCSEMatchesTheoryVector(t *testing.T) {
-	checkAbs(t, "ESS_mean", MeanESS(theoryChains), 18.2306079393, 1e-8, theory9)
-	checkAbs(t, "MCSE(mean)", MeanMCSE(theoryChains), 0.2439975658, 1e-8, theory9)
+	checkAbs(t, "ESS_mean", MeanESS(workedChains), 18.2306079393, 1e-8, workedVehtari)
+	checkAbs(t, "MCSE(mean)", MeanMCSE(workedChains), 0.2439975658, 1e-8, workedVehtari)
 	var ws workspace
-	ws.load(theoryChains, minHalf)
-	checkAbs(t, "mean", mean(ws.pool), 0.1225625, 1e-8, theory9)
-	checkAbs(t, "sd", math.Sqrt(variance(ws.pool, mean(ws.pool))), 1.0418041173, 1e-8, theory9)
+	ws.load(workedChains, minHalf)
+	checkAbs(t, "mean", mean(ws.pool), 0.1225625, 1e-8, workedVehtari)
+	checkAbs(t, "sd", math.Sqrt(variance(ws.pool, mean(ws.pool))), 1.0418041173, 1e-8, workedVehtari)
 	med := quantile7(ws.sorted, 0.5)
-	checkAbs(t, "median", med, 0.0825, 1e-8, theory9)
+	checkAbs(t, "median", med, 0.0825, 1e-8, workedVehtari)
 	p := ws.quantileMCSE(0.5, ws.indicatorESS(med))
-	checkAbs(t, "E_q", p.eq, 60.3840583096, 1e-8, theory9)
-	checkAbs(t, "a", p.a, 0.4366977520, 1e-8, theory9)
-	checkAbs(t, "b", p.b, 0.5633022480, 1e-8, theory9)
-	checkAbs(t, "θ_lo = θ_(34)", p.lo, -0.089, 1e-8, theory9)
-	checkAbs(t, "θ_hi = θ_(46)", p.hi, 0.312, 1e-8, theory9)
-	checkAbs(t, "MCSE(median)", p.mcse, 0.2005, 1e-8, theory9)
-	checkAbs(t, "QuantileMCSE(0.5)", QuantileMCSE(theoryChains, 0.5), 0.2005, 1e-8, theory9)
+	checkAbs(t, "E_q", p.eq, 60.3840583096, 1e-8, workedVehtari)
+	checkAbs(t, "a", p.a, 0.4366977520, 1e-8, workedVehtari)
+	checkAbs(t, "b", p.b, 0.5633022480, 1e-8, workedVehtari)
+	checkAbs(t, "θ_lo = θ_(34)", p.lo, -0.089, 1e-8, workedVehtari)
+	checkAbs(t, "θ_hi = θ_(46)", p.hi, 0.312, 1e-8, workedVehtari)
+	checkAbs(t, "MCSE(median)", p.mcse, 0.2005, 1e-8, workedVehtari)
+	checkAbs(t, "QuantileMCSE(0.5)", QuantileMCSE(workedChains, 0.5), 0.2005, 1e-8, workedVehtari)
 }
 
 // Summarize gives the same figures as the single functions (all checked
-// above against THEORY.md §9), coordinate by coordinate: coordinate 0 is
-// the §9 array, coordinate 1 the same array times −2 + 1, whose R̂ and
+// above against the worked example), coordinate by coordinate: coordinate 0 is
+// the worked array, coordinate 1 the same array times −2 + 1, whose R̂ and
 // ESSs are the same (every figure but the mean, sd and quantiles is
 // invariant under a decreasing affine map, ties aside: none here) and
 // whose mean, sd and quantiles map accordingly.
@@ -70,28 +70,28 @@ func TestSummarizeLayoutAndConsistency(t *testing.T) {
 	x := make([]float64, chains*draws*dim)
 	for c := range chains {
 		for d := range draws {
-			v := theoryChains[c][d]
+			v := workedChains[c][d]
 			x[(c*draws+d)*dim] = v
 			x[(c*draws+d)*dim+1] = -2*v + 1
 		}
 	}
 	s := Summarize(x, chains, dim)
 	a := s[0]
-	r := Rhat(theoryChains)
+	r := Rhat(workedChains)
 	checkAbs(t, "Summary.Rhat.Reported", a.Rhat.Reported, r.Reported, 0, "Rhat")
 	checkAbs(t, "Summary.Rhat.Classic", a.Rhat.Classic, r.Classic, 0, "Rhat")
-	checkAbs(t, "Summary.BulkESS", a.BulkESS, 18.5830774451, 1e-8, theory9)
-	checkAbs(t, "Summary.TailESS", a.TailESS, 43.2585262414, 1e-8, theory9)
-	checkAbs(t, "Summary.MeanESS", a.MeanESS, 18.2306079393, 1e-8, theory9)
-	checkAbs(t, "Summary.MeanMCSE", a.MeanMCSE, 0.2439975658, 1e-8, theory9)
-	checkAbs(t, "Summary.Mean", a.Mean, 0.1225625, 1e-8, theory9)
-	checkAbs(t, "Summary.SD", a.SD, 1.0418041173, 1e-8, theory9)
-	checkAbs(t, "Summary.Q05", a.Q05, -1.6131, 1e-8, theory9)
-	checkAbs(t, "Summary.Median", a.Median, 0.0825, 1e-8, theory9)
-	checkAbs(t, "Summary.Q95", a.Q95, 1.88485, 1e-8, theory9)
-	checkAbs(t, "Summary.MedianMCSE", a.MedianMCSE, 0.2005, 1e-8, theory9)
-	checkAbs(t, "Summary.Q05MCSE", a.Q05MCSE, QuantileMCSE(theoryChains, 0.05), 0, "QuantileMCSE")
-	checkAbs(t, "Summary.Q95MCSE", a.Q95MCSE, QuantileMCSE(theoryChains, 0.95), 0, "QuantileMCSE")
+	checkAbs(t, "Summary.BulkESS", a.BulkESS, 18.5830774451, 1e-8, workedVehtari)
+	checkAbs(t, "Summary.TailESS", a.TailESS, 43.2585262414, 1e-8, workedVehtari)
+	checkAbs(t, "Summary.MeanESS", a.MeanESS, 18.2306079393, 1e-8, workedVehtari)
+	checkAbs(t, "Summary.MeanMCSE", a.MeanMCSE, 0.2439975658, 1e-8, workedVehtari)
+	checkAbs(t, "Summary.Mean", a.Mean, 0.1225625, 1e-8, workedVehtari)
+	checkAbs(t, "Summary.SD", a.SD, 1.0418041173, 1e-8, workedVehtari)
+	checkAbs(t, "Summary.Q05", a.Q05, -1.6131, 1e-8, workedVehtari)
+	checkAbs(t, "Summary.Median", a.Median, 0.0825, 1e-8, workedVehtari)
+	checkAbs(t, "Summary.Q95", a.Q95, 1.88485, 1e-8, workedVehtari)
+	checkAbs(t, "Summary.MedianMCSE", a.MedianMCSE, 0.2005, 1e-8, workedVehtari)
+	checkAbs(t, "Summary.Q05MCSE", a.Q05MCSE, QuantileMCSE(workedChains, 0.05), 0, "QuantileMCSE")
+	checkAbs(t, "Summary.Q95MCSE", a.Q95MCSE, QuantileMCSE(workedChains, 0.95), 0, "QuantileMCSE")
 
 	b := s[1]
 	checkAbs(t, "mapped mean", b.Mean, -2*a.Mean+1, 1e-12, "affine map")
@@ -147,8 +147,8 @@ func ar1Chains(r *rand.Rand, m, n int, rho float64) [][]float64 {
 	return chains
 }
 
-// THEORY.md §11d: an AR(1) chain has τ = (1+ρ)/(1−ρ), so ESS/S = 1/3 for
-// ρ = 0.5 (THEORY.md §9 reports 0.33382 with 4 × 20000 draws). Rank
+// AR(1) closed form, derived here: an AR(1) chain has τ = (1+ρ)/(1−ρ), so ESS/S = 1/3 for
+// ρ = 0.5 (a run made for the project gave 0.33382 with 4 × 20000 draws). Rank
 // normalisation of a Gaussian process is asymptotically an affine map, so
 // bulk-ESS targets the same ratio. Tolerance: 4 standard errors, the
 // standard error of an autocorrelation-time estimate with truncation
@@ -160,7 +160,7 @@ func TestBulkESSOfAR1(t *testing.T) {
 		got := BulkESS(ar1Chains(r, 4, 20000, rho)) / 80000
 		want := (1 - rho) / (1 + rho)
 		tol := 4 * want * math.Sqrt(2*(2*40+1)/80000.0)
-		checkAbs(t, "bulk-ESS/S of AR(1)", got, want, tol, "THEORY.md §11d")
+		checkAbs(t, "bulk-ESS/S of AR(1)", got, want, tol, "AR(1) closed form, derived here")
 	}
 }
 

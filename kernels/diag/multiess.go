@@ -10,7 +10,7 @@ import (
 )
 
 // MultiESS is the multivariate effective sample size of one chain's draws
-// Y_1..Y_n ∈ R^p, draws[t][j] (THEORY.md §10):
+// Y_1..Y_n ∈ R^p, draws[t][j] (Vats, Flegal and Jones 2019):
 //
 //	mESS = n·(det Λ̂ / det Σ̂_BM)^{1/p}
 //	Λ̂     = sample covariance of the n draws (divisor n − 1)
@@ -42,7 +42,7 @@ func MultiESS(draws [][]float64, batch int) float64 {
 	if n/batch < 2 {
 		panic(fmt.Sprintf("diag: MultiESS with %d draws and batch size %d has fewer than 2 batches", n, batch))
 	}
-	return float64(n) * detRatio(sampleCov(y), batchMeansCov(y, batch))
+	return capESS(float64(n)*detRatio(sampleCov(y), batchMeansCov(y, batch)), n)
 }
 
 // sampleCov is Λ̂, divisor n − 1.
@@ -86,7 +86,7 @@ func detRatio(lambda, sigma mat.Symmetric) float64 {
 }
 
 // MinESS is the effective sample size needed to estimate a p-dimensional
-// mean with relative precision eps at confidence 1 − alpha (THEORY.md §10,
+// mean with relative precision eps at confidence 1 − alpha (Vats, Flegal and Jones 2019,
 // from memory there):
 //
 //	minESS(p, α, ε) = [2^{2/p} π / (p Γ(p/2))^{2/p}] · χ²_{1−α, p} / ε²

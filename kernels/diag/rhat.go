@@ -8,7 +8,7 @@ import (
 	"gonum.org/v1/gonum/stat/distuv"
 )
 
-// RhatResult holds the R̂ figures of THEORY.md §9 steps 2–4, all computed
+// RhatResult holds the R̂ figures of Vehtari et al. 2021, split-R̂, rank normalisation, bulk and folded R̂, all computed
 // on the split chains.
 type RhatResult struct {
 	Classic  float64 // R̂ of the draws as they are (step 2)
@@ -17,8 +17,8 @@ type RhatResult struct {
 	Reported float64 // max(Bulk, Folded); the draws pass below 1.01
 }
 
-// Rhat returns the split-R̂ figures of chains[m][n] (THEORY.md §9 steps
-// 1–4). Chains must have the same length, at least 4. A constant input,
+// Rhat returns the split-R̂ figures of chains[m][n] (Vehtari et al. 2021:
+// split chains, split-R̂, rank normalisation, bulk and folded R̂). Chains must have the same length, at least 4. A constant input,
 // or one containing NaN, gives NaN figures.
 func Rhat(chains [][]float64) RhatResult {
 	var ws workspace
@@ -95,7 +95,7 @@ func (ws *workspace) chainsOf(flat []float64) [][]float64 {
 }
 
 // rankNormal writes into dst the normal scores of the pooled average ranks
-// of src (THEORY.md §9 step 3, Blom's offsets):
+// of src (Vehtari et al. 2021, rank normalisation, Blom's offsets):
 //
 //	z = Φ⁻¹((r − 3/8) / (S_tot + 1/4)),
 //
@@ -163,7 +163,7 @@ func (ws *workspace) rhat() RhatResult {
 	return r
 }
 
-// classicStats returns W, B and var⁺ of an M×N array (THEORY.md §9 step 2):
+// classicStats returns W, B and var⁺ of an M×N array (Vehtari et al. 2021, split-R̂):
 //
 //	W = mean_m s_m²,  B = N·var_m(θ̄_m),  var⁺ = ((N−1)/N)·W + B/N.
 func classicStats(chains [][]float64) (w, b, varPlus float64) {
@@ -179,7 +179,7 @@ func classicStats(chains [][]float64) (w, b, varPlus float64) {
 	return w, b, varPlus
 }
 
-// classicRhat is √(var⁺/W) (THEORY.md §9 step 2); NaN when W is zero.
+// classicRhat is √(var⁺/W) (Vehtari et al. 2021, split-R̂); NaN when W is zero.
 func classicRhat(chains [][]float64) float64 {
 	w, _, varPlus := classicStats(chains)
 	if !(w > 0) {
@@ -189,7 +189,7 @@ func classicRhat(chains [][]float64) float64 {
 }
 
 // quantile7 is the linear-interpolation quantile of sorted x ("type 7",
-// THEORY.md §9 step 6): h = α(S−1), x[⌊h⌋] + (h − ⌊h⌋)(x[⌊h⌋+1] − x[⌊h⌋]).
+// Vehtari et al. 2021, bulk- and tail-ESS): h = α(S−1), x[⌊h⌋] + (h − ⌊h⌋)(x[⌊h⌋+1] − x[⌊h⌋]).
 func quantile7(sorted []float64, alpha float64) float64 {
 	h := alpha * float64(len(sorted)-1)
 	lo := math.Floor(h)
