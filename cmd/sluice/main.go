@@ -5,6 +5,8 @@
 //	               kiln-firing data set, and answer a question with the draws
 //	sluice plan    step, iterations, evaluations and wall time needed for a
 //	               guaranteed accuracy, before sampling
+//	sluice report  pictures of a run's draws and progress, bundled in an
+//	               index.html that works offline
 //
 // Run "sluice <command> -h" for a command's flags.
 package main
@@ -26,6 +28,7 @@ Usage:
   sluice serve [flags]   serve the gRPC API
   sluice demo [flags]    sample an invented kiln-firing model end to end
   sluice plan [flags]    what a guaranteed accuracy costs, before sampling
+  sluice report DRAWS    pictures and a page (index.html) of a run's draws
 
 Run "sluice <command> -h" for the flags of a command.
 `
@@ -51,6 +54,8 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		err = demo(ctx, args[1:], stdout, stderr)
 	case "plan":
 		err = plan(ctx, args[1:], stdout, stderr)
+	case "report":
+		err = runReport(ctx, args[1:], stdout, stderr)
 	case "-h", "--help", "help":
 		fmt.Fprint(stdout, usage)
 		return 0
