@@ -13,9 +13,9 @@ func sample() []Record {
 	nan := Num(math.NaN())
 	p := Record{Kind: KindProgress, State: "sampling", Steps: 200, EvaluationsUsed: 1600, EvaluationsLeft: -1,
 		ElapsedSeconds: 0.25, SecondsLeft: 49.75, DrawsSent: 80,
-		Params: []Param{{Name: "a", Rhat: 1.2, BulkESS: 40, TailESS: 35}, {Name: "b", Rhat: 1.05, BulkESS: nan, TailESS: 60}},
-		Stein:  &Stein{Value: 0.3, SE: nan, Upper: nan},
-		Bound:  &Bound{Metric: "tv", Value: 0.9, Guaranteed: true, Label: "guaranteed"},
+		Params:  []Param{{Name: "a", Rhat: 1.2, BulkESS: 40, TailESS: 35}, {Name: "b", Rhat: 1.05, BulkESS: nan, TailESS: 60}},
+		Stein:   &Stein{Value: 0.3, SE: nan, Upper: nan},
+		Bound:   &Bound{Metric: "tv", Value: 0.9, Guaranteed: true, Label: "guaranteed"},
 		Targets: []Target{{Name: "rhat", Want: 1.01, Current: 1.2, ProjectedEvaluations: -1}}}
 	p.Summarise()
 	f := Record{Kind: KindFinish, State: "finished", Steps: 400, EvaluationsUsed: 3200, EvaluationsLeft: -1,

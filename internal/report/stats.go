@@ -10,10 +10,10 @@ import (
 // Stat is what the report says of one parameter, computed from the draws
 // in the file.
 type Stat struct {
-	Name            string
-	Mean, SD        float64
-	Lo, Median, Hi  float64 // equal-tailed interval at the report's level, and the median
-	Rhat            float64 // split-rank R-hat, max of bulk and folded
+	Name             string
+	Mean, SD         float64
+	Lo, Median, Hi   float64 // equal-tailed interval at the report's level, and the median
+	Rhat             float64 // split-rank R-hat, max of bulk and folded
 	BulkESS, TailESS float64
 }
 
