@@ -8,6 +8,7 @@ import (
 	"os"
 	"path/filepath"
 	"sort"
+	"strconv"
 	"strings"
 
 	"gonum.org/v1/plot"
@@ -107,6 +108,7 @@ func newPlot(title, x, y string) *plot.Plot {
 		a.Padding = vg.Points(2)
 	}
 	p.X.Label.Text, p.Y.Label.Text = x, y
+	p.X.Tick.Marker, p.Y.Tick.Marker = plainTicks{}, plainTicks{}
 	g := plotter.NewGrid()
 	g.Vertical.Color, g.Horizontal.Color = gridInk, gridInk
 	g.Vertical.Width, g.Horizontal.Width = vg.Points(0.5), vg.Points(0.5)
@@ -365,10 +367,10 @@ func runningPlots(recs []history.Record) *figure {
 	perParam := map[string]plotter.XYs{}
 	var order []string
 	targets := map[string]float64{}
-	maxX := 0.0
+	minX, maxX := math.Inf(1), math.Inf(-1)
 	for _, r := range recs {
 		x := float64(r.EvaluationsUsed)
-		maxX = math.Max(maxX, x)
+		minX, maxX = math.Min(minX, x), math.Max(maxX, x)
 		if r.WorstRhat.Valid() {
 			rhat = append(rhat, plotter.XY{X: x, Y: float64(r.WorstRhat)})
 		}
@@ -423,7 +425,7 @@ func runningPlots(recs []history.Record) *figure {
 	target := func(p *plot.Plot, key, verb string) {
 		for name, v := range targets {
 			if strings.Contains(name, key) {
-				l := hline(v, 0, maxX, accent)
+				l := hline(v, minX, maxX, accent)
 				p.Add(l)
 				p.Legend.Add(fmt.Sprintf("aim: %s %g", verb, v), l)
 				return
@@ -443,6 +445,7 @@ func runningPlots(recs []history.Record) *figure {
 		p.Add(l)
 		p.Legend.Add("worst parameter", l)
 		target(p, "rhat", "below")
+		p.Y.Min = math.Min(p.Y.Min, 1)
 		panels = append(panels, p)
 	}
 	if len(bulk)+len(tail) > 0 {
@@ -511,4 +514,40 @@ func reversed(x plotter.XYs) plotter.XYs {
 		out[len(x)-1-i] = v
 	}
 	return out
+}
+
+// plainTicks places ticks as gonum/plot does by default and writes their
+// labels with the fewest decimals that still give each value exactly:
+// 25000, not 25000.00; 0.75, not 0.8.
+type plainTicks struct{}
+
+func (plainTicks) Ticks(lo, hi float64) []plot.Tick {
+	ts := plot.DefaultTicks{}.Ticks(lo, hi)
+	tol := 1e-9 * math.Max(math.Abs(lo), math.Abs(hi))
+	prec := 0
+	for ; prec < 10; prec++ {
+		exact := true
+		for _, t := range ts {
+			if t.Label == "" {
+				continue
+			}
+			v, _ := strconv.ParseFloat(strconv.FormatFloat(t.Value, 'f', prec, 64), 64)
+			if math.Abs(v-t.Value) > tol {
+				exact = false
+				break
+			}
+		}
+		if exact {
+			break
+		}
+	}
+	for i := range ts {
+		if ts[i].Label != "" {
+			ts[i].Label = strconv.FormatFloat(ts[i].Value, 'f', prec, 64)
+			if ts[i].Label == "-0" {
+				ts[i].Label = "0"
+			}
+		}
+	}
+	return ts
 }

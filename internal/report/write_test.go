@@ -158,3 +158,28 @@ func TestWriteRejectsBadLevel(t *testing.T) {
 		t.Error("level 1.5 accepted")
 	}
 }
+
+func TestPlainTicks(t *testing.T) {
+	// Labels must give the tick values exactly, with no needless zeros.
+	for _, c := range []struct{ lo, hi float64 }{{0, 50000}, {0.6, 1.8}, {-1.9, -0.6}, {1, 1.4}, {0.0001, 0.0009}} {
+		decimals, zeroEnds := 0, 0
+		for _, tk := range (plainTicks{}).Ticks(c.lo, c.hi) {
+			if tk.Label == "" {
+				continue
+			}
+			if strings.Contains(tk.Label, ".") {
+				decimals++
+				if strings.HasSuffix(tk.Label, "0") {
+					zeroEnds++
+				}
+			}
+			v, err := strconv.ParseFloat(tk.Label, 64)
+			if err != nil || math.Abs(v-tk.Value) > 1e-9*math.Max(math.Abs(c.lo), math.Abs(c.hi)) {
+				t.Errorf("[%g, %g]: label %q for tick %g", c.lo, c.hi, tk.Label, tk.Value)
+			}
+		}
+		if decimals > 0 && zeroEnds == decimals {
+			t.Errorf("[%g, %g]: every label ends in a needless zero", c.lo, c.hi)
+		}
+	}
+}
