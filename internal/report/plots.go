@@ -353,6 +353,18 @@ func overviewPlots(stats []Stat, wantRhat, wantESS float64) figure {
 		ep.Legend.Add(fmt.Sprintf("aim: above %g", wantESS), l)
 	}
 	ep.Y.Min = 0
+	// Headroom above the highest mark and the aim, for the legend.
+	top := func(xys plotter.XYs, aim float64) float64 {
+		m := aim
+		for _, v := range xys {
+			m = math.Max(m, v.Y)
+		}
+		return m
+	}
+	if m := top(rh, wantRhat); m > 1 {
+		rp.Y.Max = m + 0.15*(m-math.Min(1, rp.Y.Min))
+	}
+	ep.Y.Max = 1.2 * math.Max(top(bulk, wantESS), top(tail, 0))
 	return grid([][]*plot.Plot{{rp}, {ep}}, 9*vg.Inch, 6*vg.Inch)
 }
 
@@ -516,16 +528,42 @@ func reversed(x plotter.XYs) plotter.XYs {
 	return out
 }
 
-// plainTicks places ticks as gonum/plot does by default and writes their
-// labels with the fewest decimals that still give each value exactly:
-// 25000, not 25000.00; 0.75, not 0.8.
+// plainTicks puts about five labelled ticks at round values (1, 2, 2.5 or
+// 5 times a power of ten apart), with unlabelled ones between, and writes
+// the labels with the fewest decimals that still give each value
+// exactly: 25000, not 25000.00; 0.75, not 0.8.
 type plainTicks struct{}
 
 func (plainTicks) Ticks(lo, hi float64) []plot.Tick {
-	ts := plot.DefaultTicks{}.Ticks(lo, hi)
+	if !(hi > lo) || math.IsInf(hi-lo, 0) {
+		return plot.DefaultTicks{}.Ticks(lo, hi)
+	}
+	raw := (hi - lo) / 5
+	mag := math.Pow(10, math.Floor(math.Log10(raw)))
+	step, minor := 10*mag, 5
+	for _, c := range []struct {
+		m     float64
+		minor int
+	}{{1, 5}, {2, 4}, {2.5, 5}, {5, 5}} {
+		if c.m*mag >= raw {
+			step, minor = c.m*mag, c.minor
+			break
+		}
+	}
+	var ts []plot.Tick
+	first := math.Ceil(lo/step - 1e-9)
+	for k := first; k*step <= hi+1e-9*step; k++ {
+		ts = append(ts, plot.Tick{Value: k * step, Label: "x"})
+	}
+	sub := step / float64(minor)
+	for k := math.Ceil(lo/sub - 1e-9); k*sub <= hi+1e-9*sub; k++ {
+		if math.Abs(math.Remainder(k*sub, step)) > 1e-6*step {
+			ts = append(ts, plot.Tick{Value: k * sub})
+		}
+	}
 	tol := 1e-9 * math.Max(math.Abs(lo), math.Abs(hi))
 	prec := 0
-	for ; prec < 10; prec++ {
+	for ; prec < 12; prec++ {
 		exact := true
 		for _, t := range ts {
 			if t.Label == "" {
