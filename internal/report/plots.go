@@ -580,11 +580,11 @@ func (plainTicks) Ticks(lo, hi float64) []plot.Tick {
 		}
 	}
 	for i := range ts {
+		if ts[i].Value == 0 {
+			ts[i].Value = 0 // not −0, which would be labelled "-0"
+		}
 		if ts[i].Label != "" {
 			ts[i].Label = strconv.FormatFloat(ts[i].Value, 'f', prec, 64)
-			if ts[i].Label == "-0" {
-				ts[i].Label = "0"
-			}
 		}
 	}
 	return ts

@@ -161,11 +161,14 @@ func TestWriteRejectsBadLevel(t *testing.T) {
 
 func TestPlainTicks(t *testing.T) {
 	// Labels must give the tick values exactly, with no needless zeros.
-	for _, c := range []struct{ lo, hi float64 }{{0, 50000}, {0.6, 1.8}, {-1.9, -0.6}, {1, 1.4}, {0.0001, 0.0009}} {
+	for _, c := range []struct{ lo, hi float64 }{{0, 50000}, {-0.1, 1.9}, {0.6, 1.8}, {-1.9, -0.6}, {1, 1.4}, {0.0001, 0.0009}} {
 		decimals, zeroEnds := 0, 0
 		for _, tk := range (plainTicks{}).Ticks(c.lo, c.hi) {
 			if tk.Label == "" {
 				continue
+			}
+			if strings.HasPrefix(tk.Label, "-") && !(tk.Value < 0) {
+				t.Errorf("[%g, %g]: label %q for tick %g", c.lo, c.hi, tk.Label, tk.Value)
 			}
 			if strings.Contains(tk.Label, ".") {
 				decimals++
