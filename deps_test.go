@@ -63,6 +63,8 @@ var kernelForbid = []string{
 //	internal/wire ────────────▶ std                                 (the wire's array layout and frame sizing)
 //	client ───────────────────▶ proto                                   (grpc; never server or kernels)
 //	deploy ───────────────────▶ nothing of ours                         (Kubernetes API types, yaml)
+//	internal/history ─────────▶ std
+//	internal/report ──────────▶ internal/history, kernels/diag           (gonum, gonum/plot)
 //
 // and the rule of STYLE.md that nothing imports grpc's internal packages.
 // The proto package is the wire API alone: it imports no other package of
@@ -121,6 +123,25 @@ var layerRules = []layerRule{
 		allowProject:  []string{"sluice/proto/..."},
 		allowExternal: []string{"..."},
 		forbid:        []string{"sluice/server/...", "sluice/client/...", "sluice/kernels/...", "sluice/cmd/..."},
+	},
+	{
+		// The progress history file: the standard library only, so any
+		// program may write or read it.
+		pkgs:         "sluice/internal/history",
+		forbid:       []string{"sluice/server/...", "sluice/client/...", "sluice/kernels/...", "sluice/cmd/...", "sluice/proto/..."},
+		allowProject: []string{},
+	},
+	{
+		// Pictures and the page of a run: std, gonum, gonum/plot, the
+		// measured accuracy of kernels/diag and the history file; never
+		// the transport or the engine.
+		pkgs:          "sluice/internal/report",
+		allowProject:  []string{"sluice/internal/history", "sluice/kernels/diag"},
+		allowExternal: []string{"gonum.org/v1/gonum/...", "gonum.org/v1/plot/..."},
+		forbid: []string{
+			"sluice/server/...", "sluice/client/...", "sluice/proto/...", "sluice/cmd/...",
+			"google.golang.org/grpc/...", "google.golang.org/protobuf/...", "go.uber.org/zap/...",
+		},
 	},
 	{
 		pkgs:          "...",
@@ -482,6 +503,18 @@ func TestDepsRuleMatching(t *testing.T) {
 			want: []string{
 				"sluice/proto/sluice/v1 imports sluice/kernels",
 				"sluice/proto/sluice/v1 is built from sluice/kernels",
+			},
+		},
+		{name: "layout as designed, report", pkg: "sluice/internal/report", g: with("sluice/internal/report", "sluice/internal/history", "sluice/kernels/diag", "gonum.org/v1/gonum/mat")},
+		{
+			name: "history imports gonum", pkg: "sluice/internal/history", g: with("sluice/internal/history", "gonum.org/v1/gonum/mat"),
+			want: []string{"sluice/internal/history imports gonum.org/v1/gonum/mat"},
+		},
+		{
+			name: "report imports the client", pkg: "sluice/internal/report", g: with("sluice/internal/report", "sluice/client"),
+			want: []string{
+				"sluice/internal/report imports sluice/client",
+				"sluice/internal/report is built from sluice/client",
 			},
 		},
 		{

@@ -21,6 +21,7 @@ import (
 	"google.golang.org/grpc/experimental"
 
 	"sluice/client"
+	"sluice/internal/history"
 	sluicev1 "sluice/proto/sluice/v1"
 	"sluice/server"
 )
@@ -48,6 +49,7 @@ type demoConfig struct {
 	minibatch     int
 	eps           float64
 	interval      float64
+	history       string
 }
 
 func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
@@ -75,6 +77,7 @@ func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs.IntVar(&c.minibatch, "minibatch", 0, "answer with stochastic gradients from minibatches of this many firings, two replicates per point (0: exact gradients)")
 	fs.Float64Var(&c.eps, "eps", 0.5, "with --minibatch: the W2 accuracy to plan for with the measured noise")
 	fs.Float64Var(&c.interval, "interval", 0.9, "level of the central interval shown for each parameter and for the answer, in (0, 1)")
+	fs.StringVar(&c.history, "history", "", "write the progress history (JSON lines, see docs/report.md) to this file (default: beside --out, <out>.history.jsonl)")
 	setHelp(fs, help{
 		usage: "sluice demo [flags]",
 		about: "Runs a sluice server and a client in one process, on loopback, and samples an invented model end to end: " +
@@ -102,6 +105,9 @@ func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	}
 	if !(c.interval > 0 && c.interval < 1) {
 		return usagef("--interval %v: the level must be in (0, 1), e.g. 0.9 for a 90%% interval", c.interval)
+	}
+	if c.history == "" && c.out != "" {
+		c.history = sidecar(c.out, "history.jsonl")
 	}
 	if c.out != "" && !strings.HasSuffix(c.out, ".csv") && !strings.HasSuffix(c.out, ".npy") {
 		return usagef("--out %q: the name must end in .csv or .npy", c.out)
@@ -334,6 +340,18 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 		}
 	}
 	live := newLiveLine(stderr, !c.noProgressBar && !c.json, int64(c.chains)*c.draws)
+	var hist *history.Writer
+	if c.history != "" {
+		if hist, err = history.Create(c.history); err != nil {
+			return nil, err
+		}
+	}
+	onProgress := func(p *client.Progress) {
+		live.update(p)
+		if hist != nil {
+			_ = hist.Write(historyRecord(history.KindProgress, p, "", ""))
+		}
+	}
 	eval := kilnExact(target)
 	if c.minibatch > 0 {
 		spec.Noise = &client.Noise{Replicates: 2, DataSize: kilnFirings, MinibatchSize: int64(c.minibatch)}
@@ -351,8 +369,16 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 				}
 			}
 		}),
-		client.OnProgress(live.update))
+		client.OnProgress(onProgress))
 	live.done()
+	if hist != nil {
+		if err == nil {
+			_ = hist.Write(historyRecord(history.KindFinish, &sum.Progress, sum.Reason, sum.Message))
+		}
+		if herr := hist.Close(); err == nil && herr != nil {
+			err = herr
+		}
+	}
 	if csv != nil {
 		if cerr := csv.close(); err == nil && cerr != nil {
 			err = cerr

@@ -6,6 +6,8 @@
 //	sluice plan      step, iterations, evaluations and wall time needed for a
 //	                 guaranteed accuracy, before sampling
 //	sluice version   the version, Go version and module build information
+//	sluice report    pictures of a run's draws and progress, bundled in an
+//	                 index.html that works offline
 //
 // Run "sluice <command> -h" for a command's description, examples and flags.
 package main
@@ -29,6 +31,7 @@ Usage:
   sluice demo [flags]    sample an invented kiln-firing model end to end
   sluice plan [flags]    what a guaranteed accuracy costs, before sampling
   sluice version         version, Go version and build information
+  sluice report DRAWS    pictures and a page (index.html) of a run's draws
 
 Run "sluice <command> -h" for a command's description, examples and flags.
 `
@@ -56,6 +59,8 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		err = plan(ctx, args[1:], stdout, stderr)
 	case "version", "-version", "--version":
 		err = version(args[1:], stdout, stderr)
+	case "report":
+		err = runReport(ctx, args[1:], stdout, stderr)
 	case "-h", "--help", "help":
 		fmt.Fprint(stdout, usage)
 		return 0

@@ -209,12 +209,12 @@ func TestDocsListRegisteredKernels(t *testing.T) {
 	// The kernel table is the one whose header starts "| kernel |"; it ends
 	// at the first line that is not a table row.
 	text := string(readme)
-	at := regexp.MustCompile("(?m)^\\s*\\| kernel \\|").FindStringIndex(text)
+	at := regexp.MustCompile(`(?m)^\s*\| kernel \|`).FindStringIndex(text)
 	if at == nil {
 		t.Fatal("README has no kernel table (a header starting \"| kernel |\")")
 	}
 	block := text[at[0]:]
-	if end := regexp.MustCompile("\n\\s*\n|\n\\s*[^|\\s]").FindStringIndex(block); end != nil {
+	if end := regexp.MustCompile(`\n\s*\n|\n\s*[^|\s]`).FindStringIndex(block); end != nil {
 		block = block[:end[0]]
 	}
 	tableRow := regexp.MustCompile("(?m)^\\s*\\| `([a-z-]+)` \\|")
