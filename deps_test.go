@@ -59,6 +59,7 @@ var kernelForbid = []string{
 //	kernels/diag, kernels/bound, kernels/targets ─▶ std, gonum
 //	kernels ──────────────────▶ std, gonum
 //	client ───────────────────▶ proto                                   (grpc; never server or kernels)
+//	internal/benchkit ────────▶ server, server/session, client, proto, kernels/...
 //
 // and the rule of STYLE.md that nothing imports grpc's internal packages.
 // The proto package is the wire API alone: it imports no other package of
@@ -90,6 +91,15 @@ var layerRules = []layerRule{
 		allowProject:  []string{"sluice/client/...", "sluice/proto/..."},
 		allowExternal: []string{"..."},
 		forbid:        []string{"sluice/server/...", "sluice/kernels/...", "sluice/cmd/..."},
+	},
+	{
+		// The measurements shared by `sluice bench` and the benchmarks:
+		// they drive a real server with a real client, so they may import
+		// both, but never the command.
+		pkgs:          "sluice/internal/benchkit",
+		allowProject:  []string{"sluice/server/...", "sluice/client/...", "sluice/proto/...", "sluice/kernels/..."},
+		allowExternal: []string{"..."},
+		forbid:        []string{"sluice/cmd/..."},
 	},
 	{
 		pkgs:          "sluice/proto/...",
@@ -329,7 +339,8 @@ func TestDepsRuleMatching(t *testing.T) {
 		"sluice/server/session":                     {"sluice/kernels", "sluice/kernels/diag"},
 		"sluice/server":                             {"sluice/server/session", "sluice/proto/sluice/v1", "google.golang.org/grpc", "go.uber.org/zap"},
 		"sluice/client":                             {"sluice/proto/sluice/v1", "google.golang.org/grpc"},
-		"sluice/cmd/sluice":                         {"sluice/server", "sluice/client", "sluice/kernels", "sluice/kernels/targets"},
+		"sluice/internal/benchkit":                  {"sluice/server", "sluice/client", "sluice/kernels", "sluice/kernels/targets"},
+		"sluice/cmd/sluice":                         {"sluice/server", "sluice/client", "sluice/kernels", "sluice/kernels/targets", "sluice/internal/benchkit"},
 	}
 	with := func(pkg string, imports ...string) depGraph {
 		g := depGraph{}
@@ -354,6 +365,7 @@ func TestDepsRuleMatching(t *testing.T) {
 		{name: "layout as designed, client", pkg: "sluice/client", g: base},
 		{name: "layout as designed, proto", pkg: "sluice/proto/sluice/v1", g: base},
 		{name: "layout as designed, cmd", pkg: "sluice/cmd/sluice", g: base},
+		{name: "layout as designed, benchkit", pkg: "sluice/internal/benchkit", g: base},
 		{name: "std only", pkg: "sluice/kernels/diag", g: with("sluice/kernels/diag")},
 		{name: "session tests may use targets", pkg: "sluice/server/session", g: base, testImports: []string{"sluice/kernels/targets"}},
 		{
@@ -427,6 +439,20 @@ func TestDepsRuleMatching(t *testing.T) {
 			want: []string{
 				"sluice/proto/sluice/v1 imports sluice/kernels",
 				"sluice/proto/sluice/v1 is built from sluice/kernels",
+			},
+		},
+		{
+			name: "benchkit imports the command", pkg: "sluice/internal/benchkit", g: with("sluice/internal/benchkit", "sluice/server", "sluice/cmd/sluice"),
+			want: []string{
+				"sluice/internal/benchkit imports sluice/cmd/sluice",
+				"sluice/internal/benchkit is built from sluice/cmd/sluice",
+			},
+		},
+		{
+			name: "server imports benchkit", pkg: "sluice/server", g: with("sluice/server", "sluice/server/session", "sluice/internal/benchkit"),
+			want: []string{
+				"sluice/server imports sluice/internal/benchkit",
+				"sluice/server is built from sluice/client",
 			},
 		},
 		{

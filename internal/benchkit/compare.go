@@ -1,0 +1,163 @@
+package benchkit
+
+import (
+	"context"
+	"fmt"
+	"math"
+	"slices"
+	"time"
+)
+
+// Measure is one figure over the rounds of a comparison: the median and
+// every round's value, in the order run.
+type Measure struct {
+	Median float64   `json:"median"`
+	Rounds []float64 `json:"rounds"`
+}
+
+func measure(xs []float64) Measure { return Measure{Median: median(xs), Rounds: xs} }
+
+// median returns the median of xs (the mean of the middle two for an
+// even count); NaN for none.
+func median(xs []float64) float64 {
+	if len(xs) == 0 {
+		return math.NaN()
+	}
+	s := slices.Clone(xs)
+	slices.Sort(s)
+	n := len(s)
+	if n%2 == 1 {
+		return s[n/2]
+	}
+	return (s[n/2-1] + s[n/2]) / 2
+}
+
+// alternate runs a, then b, rounds times (A, B, A, B, …) and returns what
+// each returned per round, and the median of the rounds' ratios a/b.
+func alternate(rounds int, a, b func() (float64, error)) (as, bs []float64, ratio float64, err error) {
+	rs := make([]float64, 0, rounds)
+	for range rounds {
+		x, err := a()
+		if err != nil {
+			return nil, nil, 0, err
+		}
+		y, err := b()
+		if err != nil {
+			return nil, nil, 0, err
+		}
+		as, bs, rs = append(as, x), append(bs, y), append(rs, x/y)
+	}
+	return as, bs, median(rs), nil
+}
+
+// WarmSteps is the length of the untimed first run of each side of a
+// transport comparison: it opens the streams and lets the transport's
+// flow-control windows grow.
+const WarmSteps = 200
+
+// TransportResult compares a session step over loopback TCP with a bare
+// gRPC echo of the same bytes (one message each way per step).
+type TransportResult struct {
+	Shape
+	Steps int `json:"steps"`
+	// Session is the time per step, from opening the session to the
+	// arrival of its last draw, over the steps; µs.
+	Session Measure `json:"session_us_per_step"`
+	// Echo is the time per round trip of the echo; µs.
+	Echo Measure `json:"echo_us_per_step"`
+	// Ratio is the median of the rounds' Session/Echo.
+	Ratio float64 `json:"ratio"`
+	// SummaryMS is the median time from the last draw to the end of the
+	// session: the final summary, computed once per session; ms.
+	SummaryMS float64 `json:"summary_ms"`
+}
+
+// Transport compares, rounds times alternately, a session of steps lmc
+// steps on srv (a server from ServeSluice) with steps round trips of an
+// echo server carrying chains × dim float64 each way. It checks that the
+// session's last draws equal an in-process run of the kernel bit for bit.
+func Transport(ctx context.Context, srv *Loopback, s Shape, steps, rounds int) (TransportResult, error) {
+	res := TransportResult{Shape: s, Steps: steps}
+	payload := make([]byte, 8*s.Chains*s.Dim)
+	echo, err := ServeEcho(len(payload), 1, max(steps, WarmSteps))
+	if err != nil {
+		return res, err
+	}
+	defer echo.Close()
+	tg := NewDiagGaussian(s.Dim)
+	warm := min(steps, WarmSteps)
+	if _, err := RunSession(ctx, srv.Conn(), s, tg, warm); err != nil {
+		return res, err
+	}
+	if err := RunEcho(ctx, echo.Conn(), warm, 1, payload); err != nil {
+		return res, err
+	}
+	var last []float64
+	var summary []float64
+	perStep := func(d time.Duration) float64 { return d.Seconds() * 1e6 / float64(steps) }
+	as, bs, ratio, err := alternate(rounds, func() (float64, error) {
+		run, err := RunSession(ctx, srv.Conn(), s, tg, steps)
+		last = run.Last
+		summary = append(summary, (run.Total-run.ToLastDraw).Seconds()*1e3)
+		return perStep(run.ToLastDraw), err
+	}, func() (float64, error) {
+		t0 := time.Now()
+		err := RunEcho(ctx, echo.Conn(), steps, 1, payload)
+		return perStep(time.Since(t0)), err
+	})
+	if err != nil {
+		return res, err
+	}
+	want := RunKernel(s, tg, steps)
+	for i := range want {
+		if math.Float64bits(last[i]) != math.Float64bits(want[i]) {
+			return res, fmt.Errorf("session %v: last draw, value %d: %v over TCP, %v in-process", s, i, last[i], want[i])
+		}
+	}
+	res.Session, res.Echo, res.Ratio, res.SummaryMS = measure(as), measure(bs), ratio, median(summary)
+	return res, nil
+}
+
+// KernelResult compares the lmc kernel driven in-process with a fused
+// loop making the same steps.
+type KernelResult struct {
+	Shape
+	Steps int `json:"steps"`
+	// Kernel and Fused are the times per step; µs.
+	Kernel Measure `json:"kernel_us_per_step"`
+	Fused  Measure `json:"fused_us_per_step"`
+	// Ratio is the median of the rounds' Kernel/Fused.
+	Ratio float64 `json:"ratio"`
+}
+
+// Kernel compares, rounds times alternately, RunKernel and RunFused over
+// steps steps, after one untimed run of each, and checks that they end
+// at the same positions.
+func Kernel(s Shape, steps, rounds int) (KernelResult, error) {
+	res := KernelResult{Shape: s, Steps: steps}
+	g := NewDiagGaussian(s.Dim)
+	got, want := RunKernel(s, g, steps), RunFused(s, g, steps)
+	for i := range want {
+		// The two evaluate the same expressions in the same order; a
+		// compiler may still fuse a multiply-add in one and not the
+		// other, so allow rounding.
+		if d := math.Abs(got[i] - want[i]); !(d <= 1e-9*(1+math.Abs(want[i]))) {
+			return res, fmt.Errorf("kernel %v: position %d is %v in the kernel, %v in the fused loop", s, i, got[i], want[i])
+		}
+	}
+	perStep := func(d time.Duration) float64 { return d.Seconds() * 1e6 / float64(steps) }
+	as, bs, ratio, err := alternate(rounds, func() (float64, error) {
+		t0 := time.Now()
+		RunKernel(s, g, steps)
+		return perStep(time.Since(t0)), nil
+	}, func() (float64, error) {
+		t0 := time.Now()
+		RunFused(s, g, steps)
+		return perStep(time.Since(t0)), nil
+	})
+	if err != nil {
+		return res, err
+	}
+	res.Kernel, res.Fused, res.Ratio = measure(as), measure(bs), ratio
+	return res, nil
+}
