@@ -158,7 +158,7 @@ func printBench(w io.Writer, r *benchkit.Report, quick bool) {
 
 	mem := r.Memory
 	mib := func(b int64) string { return fmt.Sprintf("%.1f MiB", float64(b)/(1<<20)) }
-	fmt.Fprintf(w, "\nmemory of one session (%v, %s draws, loopback, follow buffer %d rows): live heap growth over the process's before it\n",
+	fmt.Fprintf(w, "\nmemory of one session (%v, %s draws, loopback, follow buffer %d rows): live heap growth over the heap before it\n",
 		mem.Shape, countWord(mem.Draws), benchkit.FollowBuffer)
 	flat := "flat"
 	if !mem.Flat {

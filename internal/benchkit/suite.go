@@ -53,7 +53,7 @@ func DefaultConfig() Config {
 		},
 		Memory:      Shape{Chains: 8, Dim: 10},
 		MemoryDraws: 1_000_000,
-		Python: PythonConfig{Shape: Shape{Chains: 64, Dim: 1000}, Steps: 200, Rounds: 5,
+		Python: PythonConfig{Shape: Shape{Chains: 64, Dim: 1000}, Steps: 100, Rounds: 5,
 			GradCostMS: []float64{0, 5}},
 	}
 }
