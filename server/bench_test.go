@@ -14,7 +14,7 @@ import (
 // steps steps per run; the in-process mode, far faster, repeats its run
 // inprocReps times per iteration so that it too is long enough to time.
 // The shapes and step counts are those of `sluice bench`
-// (benchkit.DefaultConfig): each mode runs about a third of a second per
+// (benchkit.DefaultConfig): each mode runs about a tenth of a second per
 // iteration on an idle two-core machine.
 type transportCase struct {
 	benchkit.Sized

@@ -115,12 +115,13 @@ func findPythonClient() string {
 // printBench writes the report as text.
 func printBench(w io.Writer, r *benchkit.Report, quick bool) {
 	m := r.Machine
-	fmt.Fprintf(w, "sluice bench: loopback, %d CPUs (GOMAXPROCS %d), %s %s/%s; medians of %d alternating rounds, ratio = median of the rounds' ratios\n",
+	fmt.Fprintf(w, "sluice bench: loopback, %d CPUs (GOMAXPROCS %d), %s %s/%s; medians of %d alternating rounds\n",
 		m.CPUs, m.GOMAXPROCS, m.GoVersion, m.GOOS, m.GOARCH, r.Rounds)
+	fmt.Fprintln(w, "ratio: the median of the rounds' own ratios; middle half: their quartiles")
 	if m.LoadStart >= 0 {
 		fmt.Fprintf(w, "load average %.1f at the start, %.1f at the end", m.LoadStart, m.LoadEnd)
 		if max(m.LoadStart, m.LoadEnd) > float64(m.CPUs) {
-			fmt.Fprintf(w, ": the machine was busy, times are slower than on an idle one and move run to run; the ratios less so")
+			fmt.Fprintf(w, ": the machine was busy; times are slower than on an idle one and vary from round to round (see the middle half of each ratio)")
 		}
 		fmt.Fprintln(w)
 	}
@@ -129,16 +130,17 @@ func printBench(w io.Writer, r *benchkit.Report, quick bool) {
 	}
 
 	fmt.Fprintln(w, "\nsession step (lmc, Go client, loopback TCP) vs bare gRPC echo of the same bytes, one message each way")
-	fmt.Fprintf(w, "  %-12s %7s %15s %15s %7s %12s\n", "chains × dim", "steps", "session µs/step", "echo µs/step", "ratio", "summary ms")
+	fmt.Fprintf(w, "  %-12s %7s %15s %15s %7s %13s %12s\n", "chains × dim", "steps", "session µs/step", "echo µs/step", "ratio", "middle half", "summary ms")
 	for _, t := range r.Transport {
-		fmt.Fprintf(w, "  %-12s %7d %15.1f %15.1f %7.2f %12.1f\n", t.Shape, t.Steps, t.Session.Median, t.Echo.Median, t.Ratio, t.SummaryMS)
+		fmt.Fprintf(w, "  %-12s %7d %15.1f %15.1f %7.2f %13s %12.1f\n", t.Shape, t.Steps, t.Session.Median, t.Echo.Median, t.Ratio,
+			middleHalf(t.RatioRounds), t.SummaryMS)
 	}
 	fmt.Fprintln(w, "  (session time: open to last draw; the final summary, once per session, apart)")
 
 	fmt.Fprintln(w, "\nkernel step (lmc in-process, no transport) vs fused Go loop, same arithmetic and random stream")
-	fmt.Fprintf(w, "  %-12s %7s %15s %15s %7s\n", "chains × dim", "steps", "kernel µs/step", "fused µs/step", "ratio")
+	fmt.Fprintf(w, "  %-12s %7s %15s %15s %7s %13s\n", "chains × dim", "steps", "kernel µs/step", "fused µs/step", "ratio", "middle half")
 	for _, k := range r.Kernel {
-		fmt.Fprintf(w, "  %-12s %7d %15.2f %15.2f %7.2f\n", k.Shape, k.Steps, k.Kernel.Median, k.Fused.Median, k.Ratio)
+		fmt.Fprintf(w, "  %-12s %7d %15.2f %15.2f %7.2f %13s\n", k.Shape, k.Steps, k.Kernel.Median, k.Fused.Median, k.Ratio, middleHalf(k.RatioRounds))
 	}
 
 	p := r.Python
@@ -146,13 +148,13 @@ func printBench(w io.Writer, r *benchkit.Report, quick bool) {
 		fmt.Fprintf(w, "\nPython client vs numpy loop: skipped (%s)\n", p.Skipped)
 	} else {
 		fmt.Fprintf(w, "\nPython client (through sluice) vs numpy loop in-process, %v, %d steps per run\n", p.Shape, p.Steps)
-		fmt.Fprintf(w, "  %-20s %15s %15s %7s\n", "gradient", "client ms/step", "numpy ms/step", "ratio")
+		fmt.Fprintf(w, "  %-20s %15s %15s %7s %13s\n", "gradient", "client ms/step", "numpy ms/step", "ratio", "middle half")
 		for _, c := range p.Cases {
 			name := "free"
 			if c.GradCostMS > 0 {
 				name = fmt.Sprintf("%g ms sleep per batch", c.GradCostMS)
 			}
-			fmt.Fprintf(w, "  %-20s %15.3f %15.3f %7.2f\n", name, c.Client.Median, c.Numpy.Median, c.Ratio)
+			fmt.Fprintf(w, "  %-20s %15.3f %15.3f %7.2f %13s\n", name, c.Client.Median, c.Numpy.Median, c.Ratio, middleHalf(c.RatioRounds))
 		}
 	}
 
@@ -169,6 +171,11 @@ func printBench(w io.Writer, r *benchkit.Report, quick bool) {
 	fmt.Fprintf(w, "  peak live %s; peak with uncollected garbage %s; baseline %s; %.1f s\n",
 		mib(mem.PeakLive), mib(mem.PeakWithGarbage), mib(int64(mem.BaselineBytes)), mem.Seconds)
 	fmt.Fprintf(w, "\n%.0f s in all\n", r.Seconds)
+}
+
+// middleHalf writes the first and third quartiles of the ratios.
+func middleHalf(rs []float64) string {
+	return fmt.Sprintf("%.2f–%.2f", benchkit.Quantile(rs, 0.25), benchkit.Quantile(rs, 0.75))
 }
 
 // countWord writes a count, powers of ten as 10ⁿ.

@@ -93,6 +93,22 @@ func TestMedian(t *testing.T) {
 	}
 }
 
+// Quantiles interpolate linearly between order statistics at rank
+// p·(n−1): numpy's default method ("linear"), values worked by hand.
+func TestQuantile(t *testing.T) {
+	xs := []float64{7, 1, 3, 5} // sorted 1, 3, 5, 7
+	for _, c := range []struct{ p, want float64 }{
+		{0, 1}, {0.25, 2.5}, {0.5, 4}, {0.75, 5.5}, {1, 7}, {1.0 / 3, 3},
+	} {
+		if got := Quantile(xs, c.p); math.Abs(got-c.want) > 1e-12 {
+			t.Errorf("Quantile(%v, %v) = %v, want %v", xs, c.p, got, c.want)
+		}
+	}
+	if !math.IsNaN(Quantile(xs, 1.5)) || !math.IsNaN(Quantile(nil, 0.5)) {
+		t.Error("Quantile outside [0, 1] or of nothing is not NaN")
+	}
+}
+
 // alternate runs A, B, A, B, … and takes the median of the rounds' own
 // ratios, which is not the ratio of the medians.
 func TestAlternate(t *testing.T) {
@@ -100,7 +116,7 @@ func TestAlternate(t *testing.T) {
 	a := []float64{10, 30, 20}
 	b := []float64{5, 10, 20}
 	i, j := 0, 0
-	as, bs, ratio, err := alternate(3, func() (float64, error) {
+	as, bs, rs, err := alternate(3, func() (float64, error) {
 		order = append(order, 'A')
 		i++
 		return a[i-1], nil
@@ -118,8 +134,8 @@ func TestAlternate(t *testing.T) {
 	if !slices.Equal(as, a) || !slices.Equal(bs, b) {
 		t.Errorf("rounds %v, %v", as, bs)
 	}
-	if ratio != 2 { // ratios 2, 3, 1
-		t.Errorf("ratio %v, want 2 (median of 2, 3, 1)", ratio)
+	if !slices.Equal(rs, []float64{2, 3, 1}) || median(rs) != 2 {
+		t.Errorf("ratios %v, want 2, 3, 1 (median 2)", rs)
 	}
 }
 

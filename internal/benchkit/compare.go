@@ -19,35 +19,40 @@ func measure(xs []float64) Measure { return Measure{Median: median(xs), Rounds: 
 
 // median returns the median of xs (the mean of the middle two for an
 // even count); NaN for none.
-func median(xs []float64) float64 {
-	if len(xs) == 0 {
+func median(xs []float64) float64 { return Quantile(xs, 0.5) }
+
+// Quantile returns the p-quantile of xs, interpolating linearly between
+// order statistics (the sample at rank p·(n−1), counting from 0); NaN for
+// none. xs is not changed.
+func Quantile(xs []float64, p float64) float64 {
+	if len(xs) == 0 || !(p >= 0 && p <= 1) {
 		return math.NaN()
 	}
 	s := slices.Clone(xs)
 	slices.Sort(s)
-	n := len(s)
-	if n%2 == 1 {
-		return s[n/2]
+	r := p * float64(len(s)-1)
+	lo := int(math.Floor(r))
+	if lo == len(s)-1 {
+		return s[lo]
 	}
-	return (s[n/2-1] + s[n/2]) / 2
+	return s[lo] + (r-float64(lo))*(s[lo+1]-s[lo])
 }
 
 // alternate runs a, then b, rounds times (A, B, A, B, …) and returns what
-// each returned per round, and the median of the rounds' ratios a/b.
-func alternate(rounds int, a, b func() (float64, error)) (as, bs []float64, ratio float64, err error) {
-	rs := make([]float64, 0, rounds)
+// each returned per round, and the rounds' ratios a/b.
+func alternate(rounds int, a, b func() (float64, error)) (as, bs, ratios []float64, err error) {
 	for range rounds {
 		x, err := a()
 		if err != nil {
-			return nil, nil, 0, err
+			return nil, nil, nil, err
 		}
 		y, err := b()
 		if err != nil {
-			return nil, nil, 0, err
+			return nil, nil, nil, err
 		}
-		as, bs, rs = append(as, x), append(bs, y), append(rs, x/y)
+		as, bs, ratios = append(as, x), append(bs, y), append(ratios, x/y)
 	}
-	return as, bs, median(rs), nil
+	return as, bs, ratios, nil
 }
 
 // WarmSteps is the length of the untimed first run of each side of a
@@ -65,8 +70,10 @@ type TransportResult struct {
 	Session Measure `json:"session_us_per_step"`
 	// Echo is the time per round trip of the echo; µs.
 	Echo Measure `json:"echo_us_per_step"`
-	// Ratio is the median of the rounds' Session/Echo.
-	Ratio float64 `json:"ratio"`
+	// Ratio is the median of the rounds' Session/Echo, RatioRounds those
+	// ratios in the order run.
+	Ratio       float64   `json:"ratio"`
+	RatioRounds []float64 `json:"ratio_rounds"`
 	// SummaryMS is the median time from the last draw to the end of the
 	// session: the final summary, computed once per session; ms.
 	SummaryMS float64 `json:"summary_ms"`
@@ -95,7 +102,7 @@ func Transport(ctx context.Context, srv *Loopback, s Shape, steps, rounds int) (
 	var last []float64
 	var summary []float64
 	perStep := func(d time.Duration) float64 { return d.Seconds() * 1e6 / float64(steps) }
-	as, bs, ratio, err := alternate(rounds, func() (float64, error) {
+	as, bs, rs, err := alternate(rounds, func() (float64, error) {
 		run, err := RunSession(ctx, srv.Conn(), s, tg, steps)
 		last = run.Last
 		summary = append(summary, (run.Total-run.ToLastDraw).Seconds()*1e3)
@@ -114,7 +121,7 @@ func Transport(ctx context.Context, srv *Loopback, s Shape, steps, rounds int) (
 			return res, fmt.Errorf("session %v: last draw, value %d: %v over TCP, %v in-process", s, i, last[i], want[i])
 		}
 	}
-	res.Session, res.Echo, res.Ratio, res.SummaryMS = measure(as), measure(bs), ratio, median(summary)
+	res.Session, res.Echo, res.Ratio, res.RatioRounds, res.SummaryMS = measure(as), measure(bs), median(rs), rs, median(summary)
 	return res, nil
 }
 
@@ -126,8 +133,10 @@ type KernelResult struct {
 	// Kernel and Fused are the times per step; µs.
 	Kernel Measure `json:"kernel_us_per_step"`
 	Fused  Measure `json:"fused_us_per_step"`
-	// Ratio is the median of the rounds' Kernel/Fused.
-	Ratio float64 `json:"ratio"`
+	// Ratio is the median of the rounds' Kernel/Fused, RatioRounds those
+	// ratios in the order run.
+	Ratio       float64   `json:"ratio"`
+	RatioRounds []float64 `json:"ratio_rounds"`
 }
 
 // Kernel compares, rounds times alternately, RunKernel and RunFused over
@@ -146,7 +155,7 @@ func Kernel(s Shape, steps, rounds int) (KernelResult, error) {
 		}
 	}
 	perStep := func(d time.Duration) float64 { return d.Seconds() * 1e6 / float64(steps) }
-	as, bs, ratio, err := alternate(rounds, func() (float64, error) {
+	as, bs, rs, err := alternate(rounds, func() (float64, error) {
 		t0 := time.Now()
 		RunKernel(s, g, steps)
 		return perStep(time.Since(t0)), nil
@@ -158,6 +167,6 @@ func Kernel(s Shape, steps, rounds int) (KernelResult, error) {
 	if err != nil {
 		return res, err
 	}
-	res.Kernel, res.Fused, res.Ratio = measure(as), measure(bs), ratio
+	res.Kernel, res.Fused, res.Ratio, res.RatioRounds = measure(as), measure(bs), median(rs), rs
 	return res, nil
 }

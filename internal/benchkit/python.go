@@ -40,8 +40,10 @@ type PythonCase struct {
 	// client; Numpy that of the in-process numpy loop; ms.
 	Client Measure `json:"client_ms_per_step"`
 	Numpy  Measure `json:"numpy_ms_per_step"`
-	// Ratio is the median of the rounds' Client/Numpy.
-	Ratio float64 `json:"ratio"`
+	// Ratio is the median of the rounds' Client/Numpy, RatioRounds those
+	// ratios in the order run.
+	Ratio       float64   `json:"ratio"`
+	RatioRounds []float64 `json:"ratio_rounds"`
 }
 
 // PythonResult is the Python client against numpy, or why it was not
@@ -84,12 +86,12 @@ func PythonReady(ctx context.Context, interpreter, dir string) error {
 type benchPy struct {
 	SluiceMS []float64 `json:"sluice_ms_per_step_rounds"`
 	NumpyMS  []float64 `json:"numpy_ms_per_step_rounds"`
-	Ratio    float64   `json:"ratio"`
 }
 
 // PythonClient starts a server from ServeSluice and runs bench.py
 // against it once per gradient cost. bench.py alternates a session
-// through the Python client with the numpy loop, c.Rounds times.
+// through the Python client with the numpy loop, c.Rounds times; the
+// ratio is the median of the rounds' ratios, as in bench.py.
 func PythonClient(ctx context.Context, c PythonConfig) (PythonResult, error) {
 	res := PythonResult{Shape: c.Shape, Steps: c.Steps, Rounds: c.Rounds}
 	interp := c.Interpreter
@@ -124,7 +126,12 @@ func PythonClient(ctx context.Context, c PythonConfig) (PythonResult, error) {
 		if len(b.SluiceMS) != c.Rounds || len(b.NumpyMS) != c.Rounds {
 			return res, fmt.Errorf("bench.py gave %d and %d rounds, want %d", len(b.SluiceMS), len(b.NumpyMS), c.Rounds)
 		}
-		res.Cases = append(res.Cases, PythonCase{GradCostMS: cost, Client: measure(b.SluiceMS), Numpy: measure(b.NumpyMS), Ratio: b.Ratio})
+		rs := make([]float64, c.Rounds)
+		for i := range rs {
+			rs[i] = b.SluiceMS[i] / b.NumpyMS[i]
+		}
+		res.Cases = append(res.Cases, PythonCase{GradCostMS: cost, Client: measure(b.SluiceMS), Numpy: measure(b.NumpyMS),
+			Ratio: median(rs), RatioRounds: rs})
 	}
 	return res, nil
 }

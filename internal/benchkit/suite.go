@@ -17,7 +17,8 @@ type Sized struct {
 
 // Config is what Run measures.
 type Config struct {
-	// Rounds is the number of alternating rounds of every comparison.
+	// Rounds is the number of alternating rounds of the Go comparisons
+	// (Python.Rounds those of the Python one).
 	Rounds int
 	// Transport lists the shapes of the session-versus-echo comparison,
 	// Kernel those of the kernel-versus-fused-loop comparison.
@@ -34,26 +35,29 @@ type Config struct {
 	Log func(format string, args ...any)
 }
 
-// DefaultConfig is the full run of `sluice bench`. Step counts are set so
-// that each timed run takes about a third of a second on an idle 2-core
-// machine (transport floors of about 40 µs, 300 µs and 1.2 ms per round
-// trip at the three shapes).
+// DefaultConfig is the full run of `sluice bench`. Many short rounds
+// rather than a few long ones: on a shared machine the load changes
+// within seconds, and runs close in time see the same load. Step counts
+// are set so that each timed transport run takes about a tenth of a
+// second on an idle 2-core machine (floors of about 40 µs, 300 µs and
+// 1.2 ms per round trip at the three shapes), each kernel run a few
+// hundredths.
 func DefaultConfig() Config {
 	return Config{
-		Rounds: 5,
+		Rounds: 15,
 		Transport: []Sized{
-			{Shape{Chains: 8, Dim: 10}, 6000},
-			{Shape{Chains: 64, Dim: 100}, 1200},
-			{Shape{Chains: 64, Dim: 1000}, 300},
+			{Shape{Chains: 8, Dim: 10}, 2000},
+			{Shape{Chains: 64, Dim: 100}, 400},
+			{Shape{Chains: 64, Dim: 1000}, 100},
 		},
 		Kernel: []Sized{
 			{Shape{Chains: 8, Dim: 10}, 40000},
-			{Shape{Chains: 64, Dim: 100}, 1500},
-			{Shape{Chains: 64, Dim: 1000}, 150},
+			{Shape{Chains: 64, Dim: 100}, 500},
+			{Shape{Chains: 64, Dim: 1000}, 50},
 		},
 		Memory:      Shape{Chains: 8, Dim: 10},
 		MemoryDraws: 1_000_000,
-		Python: PythonConfig{Shape: Shape{Chains: 64, Dim: 1000}, Steps: 100, Rounds: 5,
+		Python: PythonConfig{Shape: Shape{Chains: 64, Dim: 1000}, Steps: 60, Rounds: 7,
 			GradCostMS: []float64{0, 5}},
 	}
 }
