@@ -130,17 +130,21 @@ func printBench(w io.Writer, r *benchkit.Report, quick bool) {
 	}
 
 	fmt.Fprintln(w, "\nsession step (lmc, Go client, loopback TCP) vs bare gRPC echo of the same bytes, one message each way")
-	fmt.Fprintf(w, "  %-12s %7s %15s %15s %7s %13s %12s\n", "chains × dim", "steps", "session µs/step", "echo µs/step", "ratio", "middle half", "summary ms")
+	fmt.Fprintf(w, "  %-12s %7s %15s %15s %7s %13s %10s %13s %11s\n", "chains × dim", "steps", "session µs/step", "echo µs/step", "ratio", "middle half",
+		"CPU ratio", "middle half", "summary ms")
 	for _, t := range r.Transport {
-		fmt.Fprintf(w, "  %-12s %7d %15.1f %15.1f %7.2f %13s %12.1f\n", t.Shape, t.Steps, t.Session.Median, t.Echo.Median, t.Ratio,
-			middleHalf(t.RatioRounds), t.SummaryMS)
+		fmt.Fprintf(w, "  %-12s %7d %15.1f %15.1f %7.2f %13s %s %11.1f\n", t.Shape, t.Steps, t.Session.Median, t.Echo.Median, t.Ratio,
+			middleHalf(t.RatioRounds), cpuColumns(t.CPU), t.SummaryMS)
 	}
-	fmt.Fprintln(w, "  (session time: open to last draw; the final summary, once per session, apart)")
+	fmt.Fprintln(w, "  (session time: open to last draw; the final summary, once per session, apart.")
+	fmt.Fprintln(w, "  CPU ratio: of the process's CPU time, every thread, over the same runs: it leaves out the waits for a core)")
 
 	fmt.Fprintln(w, "\nkernel step (lmc in-process, no transport) vs fused Go loop, same arithmetic and random stream")
-	fmt.Fprintf(w, "  %-12s %7s %15s %15s %7s %13s\n", "chains × dim", "steps", "kernel µs/step", "fused µs/step", "ratio", "middle half")
+	fmt.Fprintf(w, "  %-12s %7s %15s %15s %7s %13s %10s %13s\n", "chains × dim", "steps", "kernel µs/step", "fused µs/step", "ratio", "middle half",
+		"CPU ratio", "middle half")
 	for _, k := range r.Kernel {
-		fmt.Fprintf(w, "  %-12s %7d %15.2f %15.2f %7.2f %13s\n", k.Shape, k.Steps, k.Kernel.Median, k.Fused.Median, k.Ratio, middleHalf(k.RatioRounds))
+		fmt.Fprintf(w, "  %-12s %7d %15.2f %15.2f %7.2f %13s %s\n", k.Shape, k.Steps, k.Kernel.Median, k.Fused.Median, k.Ratio,
+			middleHalf(k.RatioRounds), cpuColumns(k.CPU))
 	}
 
 	p := r.Python
@@ -176,6 +180,14 @@ func printBench(w io.Writer, r *benchkit.Report, quick bool) {
 // middleHalf writes the first and third quartiles of the ratios.
 func middleHalf(rs []float64) string {
 	return fmt.Sprintf("%.2f–%.2f", benchkit.Quantile(rs, 0.25), benchkit.Quantile(rs, 0.75))
+}
+
+// cpuColumns writes the CPU ratio and its middle half, or n/a.
+func cpuColumns(c *benchkit.CPUComparison) string {
+	if c == nil {
+		return fmt.Sprintf("%10s %13s", "n/a", "")
+	}
+	return fmt.Sprintf("%10.2f %13s", c.Ratio, middleHalf(c.RatioRounds))
 }
 
 // countWord writes a count, powers of ten as 10ⁿ.

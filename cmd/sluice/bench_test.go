@@ -54,10 +54,11 @@ func TestBenchQuickJSON(t *testing.T) {
 	}
 	walk("report", rep)
 
-	// One transport and one kernel shape, the memory run, no Python: three
-	// ratios, each beside two positive medians of three rounds.
-	if ratios != 3 {
-		t.Errorf("%d ratios in the report, want 3 (transport, kernel, memory):\n%s", ratios, stdout)
+	// One transport and one kernel shape, the memory run, no Python: at
+	// least three ratios (five where the CPU time is reported), each
+	// beside two positive medians of three rounds.
+	if ratios < 3 {
+		t.Errorf("%d ratios in the report, want at least 3 (transport, kernel, memory):\n%s", ratios, stdout)
 	}
 	pos := func(name string, x any) {
 		if v, ok := x.(float64); !ok || !(v > 0) || math.IsInf(v, 0) {

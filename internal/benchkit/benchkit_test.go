@@ -113,17 +113,21 @@ func TestQuantile(t *testing.T) {
 // ratios, which is not the ratio of the medians.
 func TestAlternate(t *testing.T) {
 	var order []byte
+	// Wall times in µs over one step; CPU times twice the wall times.
 	a := []float64{10, 30, 20}
 	b := []float64{5, 10, 20}
 	i, j := 0, 0
-	as, bs, rs, err := alternate(3, func() (float64, error) {
+	us := func(x float64) sample {
+		return sample{wall: time.Duration(x * 1e3), cpu: time.Duration(2 * x * 1e3), hasCPU: true}
+	}
+	as, bs, err := alternate(3, func() (sample, error) {
 		order = append(order, 'A')
 		i++
-		return a[i-1], nil
-	}, func() (float64, error) {
+		return us(a[i-1]), nil
+	}, func() (sample, error) {
 		order = append(order, 'B')
 		j++
-		return b[j-1], nil
+		return us(b[j-1]), nil
 	})
 	if err != nil {
 		t.Fatal(err)
@@ -131,11 +135,19 @@ func TestAlternate(t *testing.T) {
 	if string(order) != "ABABAB" {
 		t.Errorf("order %s, want ABABAB", order)
 	}
-	if !slices.Equal(as, a) || !slices.Equal(bs, b) {
-		t.Errorf("rounds %v, %v", as, bs)
+	am, bm, rs, cpu := compare(as, bs, 1)
+	if !slices.Equal(am.Rounds, a) || !slices.Equal(bm.Rounds, b) || am.Median != 20 || bm.Median != 10 {
+		t.Errorf("rounds %v, %v", am, bm)
 	}
 	if !slices.Equal(rs, []float64{2, 3, 1}) || median(rs) != 2 {
 		t.Errorf("ratios %v, want 2, 3, 1 (median 2)", rs)
+	}
+	if cpu == nil || cpu.Value.Median != 40 || cpu.Floor.Median != 20 || cpu.Ratio != 2 {
+		t.Errorf("CPU comparison %+v, want medians 40 and 20, ratio 2", cpu)
+	}
+	as[1].hasCPU = false
+	if _, _, _, cpu := compare(as, bs, 1); cpu != nil {
+		t.Errorf("a round without CPU time still gave a CPU comparison: %+v", cpu)
 	}
 }
 

@@ -38,21 +38,72 @@ func Quantile(xs []float64, p float64) float64 {
 	return s[lo] + (r-float64(lo))*(s[lo+1]-s[lo])
 }
 
+// A sample is what one run cost: wall time, and the CPU time of the
+// whole process (every thread, user and system) when the platform
+// reports it.
+type sample struct {
+	wall, cpu time.Duration
+	hasCPU    bool
+}
+
+// timed runs f and returns its cost.
+func timed(f func() error) (sample, error) {
+	c0, ok0 := processCPU()
+	t0 := time.Now()
+	err := f()
+	wall := time.Since(t0)
+	c1, ok1 := processCPU()
+	return sample{wall: wall, cpu: c1 - c0, hasCPU: ok0 && ok1}, err
+}
+
 // alternate runs a, then b, rounds times (A, B, A, B, …) and returns what
-// each returned per round, and the rounds' ratios a/b.
-func alternate(rounds int, a, b func() (float64, error)) (as, bs, ratios []float64, err error) {
+// each cost per round.
+func alternate(rounds int, a, b func() (sample, error)) (as, bs []sample, err error) {
 	for range rounds {
 		x, err := a()
 		if err != nil {
-			return nil, nil, nil, err
+			return nil, nil, err
 		}
 		y, err := b()
 		if err != nil {
-			return nil, nil, nil, err
+			return nil, nil, err
 		}
-		as, bs, ratios = append(as, x), append(bs, y), append(ratios, x/y)
+		as, bs = append(as, x), append(bs, y)
 	}
-	return as, bs, ratios, nil
+	return as, bs, nil
+}
+
+// CPUComparison compares the CPU time of the whole process (every
+// thread, user and system) during the two sides' runs: unlike wall time,
+// it does not count the time the process waited for a core, so it moves
+// less with the machine's load. Per step, in µs.
+type CPUComparison struct {
+	Value Measure `json:"us_per_step"`
+	Floor Measure `json:"floor_us_per_step"`
+	// Ratio is the median of the rounds' Value/Floor, RatioRounds those
+	// ratios in the order run.
+	Ratio       float64   `json:"ratio"`
+	RatioRounds []float64 `json:"ratio_rounds"`
+}
+
+// compare turns the costs of alternating rounds of steps steps into
+// medians and ratios of wall time per step, in µs, and the same of CPU
+// time (nil when the platform does not report it).
+func compare(as, bs []sample, steps int) (a, b Measure, ratios []float64, cpu *CPUComparison) {
+	us := func(d time.Duration) float64 { return d.Seconds() * 1e6 / float64(steps) }
+	var aw, bw, ac, bc, rc []float64
+	hasCPU := true
+	for i := range as {
+		aw, bw = append(aw, us(as[i].wall)), append(bw, us(bs[i].wall))
+		ratios = append(ratios, aw[i]/bw[i])
+		hasCPU = hasCPU && as[i].hasCPU && bs[i].hasCPU && as[i].cpu > 0 && bs[i].cpu > 0
+		ac, bc = append(ac, us(as[i].cpu)), append(bc, us(bs[i].cpu))
+		rc = append(rc, ac[i]/bc[i])
+	}
+	if hasCPU {
+		cpu = &CPUComparison{Value: measure(ac), Floor: measure(bc), Ratio: median(rc), RatioRounds: rc}
+	}
+	return measure(aw), measure(bw), ratios, cpu
 }
 
 // WarmSteps is the length of the untimed first run of each side of a
@@ -74,6 +125,10 @@ type TransportResult struct {
 	// ratios in the order run.
 	Ratio       float64   `json:"ratio"`
 	RatioRounds []float64 `json:"ratio_rounds"`
+	// CPU compares the process's CPU time, session against echo, over the
+	// same runs (the session's up to its last draw); nil where the
+	// platform does not report it.
+	CPU *CPUComparison `json:"cpu,omitempty"`
 	// SummaryMS is the median time from the last draw to the end of the
 	// session: the final summary, computed once per session; ms.
 	SummaryMS float64 `json:"summary_ms"`
@@ -101,16 +156,13 @@ func Transport(ctx context.Context, srv *Loopback, s Shape, steps, rounds int) (
 	}
 	var last []float64
 	var summary []float64
-	perStep := func(d time.Duration) float64 { return d.Seconds() * 1e6 / float64(steps) }
-	as, bs, rs, err := alternate(rounds, func() (float64, error) {
+	as, bs, err := alternate(rounds, func() (sample, error) {
 		run, err := RunSession(ctx, srv.Conn(), s, tg, steps)
 		last = run.Last
 		summary = append(summary, (run.Total-run.ToLastDraw).Seconds()*1e3)
-		return perStep(run.ToLastDraw), err
-	}, func() (float64, error) {
-		t0 := time.Now()
-		err := RunEcho(ctx, echo.Conn(), steps, 1, payload)
-		return perStep(time.Since(t0)), err
+		return sample{wall: run.ToLastDraw, cpu: run.CPUToLastDraw, hasCPU: run.HasCPU}, err
+	}, func() (sample, error) {
+		return timed(func() error { return RunEcho(ctx, echo.Conn(), steps, 1, payload) })
 	})
 	if err != nil {
 		return res, err
@@ -121,7 +173,8 @@ func Transport(ctx context.Context, srv *Loopback, s Shape, steps, rounds int) (
 			return res, fmt.Errorf("session %v: last draw, value %d: %v over TCP, %v in-process", s, i, last[i], want[i])
 		}
 	}
-	res.Session, res.Echo, res.Ratio, res.RatioRounds, res.SummaryMS = measure(as), measure(bs), median(rs), rs, median(summary)
+	res.Session, res.Echo, res.RatioRounds, res.CPU = compare(as, bs, steps)
+	res.Ratio, res.SummaryMS = median(res.RatioRounds), median(summary)
 	return res, nil
 }
 
@@ -137,6 +190,9 @@ type KernelResult struct {
 	// ratios in the order run.
 	Ratio       float64   `json:"ratio"`
 	RatioRounds []float64 `json:"ratio_rounds"`
+	// CPU compares the process's CPU time over the same runs; nil where
+	// the platform does not report it.
+	CPU *CPUComparison `json:"cpu,omitempty"`
 }
 
 // Kernel compares, rounds times alternately, RunKernel and RunFused over
@@ -154,19 +210,15 @@ func Kernel(s Shape, steps, rounds int) (KernelResult, error) {
 			return res, fmt.Errorf("kernel %v: position %d is %v in the kernel, %v in the fused loop", s, i, got[i], want[i])
 		}
 	}
-	perStep := func(d time.Duration) float64 { return d.Seconds() * 1e6 / float64(steps) }
-	as, bs, rs, err := alternate(rounds, func() (float64, error) {
-		t0 := time.Now()
-		RunKernel(s, g, steps)
-		return perStep(time.Since(t0)), nil
-	}, func() (float64, error) {
-		t0 := time.Now()
-		RunFused(s, g, steps)
-		return perStep(time.Since(t0)), nil
+	as, bs, err := alternate(rounds, func() (sample, error) {
+		return timed(func() error { RunKernel(s, g, steps); return nil })
+	}, func() (sample, error) {
+		return timed(func() error { RunFused(s, g, steps); return nil })
 	})
 	if err != nil {
 		return res, err
 	}
-	res.Kernel, res.Fused, res.Ratio, res.RatioRounds = measure(as), measure(bs), median(rs), rs
+	res.Kernel, res.Fused, res.RatioRounds, res.CPU = compare(as, bs, steps)
+	res.Ratio = median(res.RatioRounds)
 	return res, nil
 }

@@ -35,6 +35,10 @@ type SessionRun struct {
 	// its last draw; Total adds the final summary, which the server
 	// computes once per session.
 	ToLastDraw, Total time.Duration
+	// CPUToLastDraw is the CPU time of the whole process (every thread,
+	// user and system) over ToLastDraw, if HasCPU.
+	CPUToLastDraw time.Duration
+	HasCPU        bool
 	// Last holds the draws of the last step, chains × dim.
 	Last    []float64
 	Summary *client.Summary
@@ -51,12 +55,15 @@ func RunSession(ctx context.Context, conn grpc.ClientConnInterface, s Shape, tg 
 		targets.EvalBatch(tg, bt.Points, bt.Rows, bt.Grad, nil)
 		return nil
 	}
+	c0, ok0 := processCPU()
 	t0 := time.Now()
 	onDraws := client.OnDraws(func(d *client.Draws) {
 		for r := range d.Rows {
 			if d.Iterations[r] == int64(steps) {
 				copy(run.Last[d.Chains[r]*s.Dim:(d.Chains[r]+1)*s.Dim], d.Values[r*s.Dim:(r+1)*s.Dim])
 				run.ToLastDraw = time.Since(t0)
+				c1, ok1 := processCPU()
+				run.CPUToLastDraw, run.HasCPU = c1-c0, ok0 && ok1
 			}
 		}
 	})
