@@ -23,7 +23,7 @@ func bench(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	asJSON := fs.Bool("json", false, "print the figures as one JSON object")
 	quick := fs.Bool("quick", false, "a short run with tiny sizes and a handful of steps, without Python: checks that everything runs; its figures say nothing about speed")
 	noPython := fs.Bool("no-python", false, "skip the Python client comparison")
-	rounds := fs.Int("rounds", 0, "alternating rounds of every comparison (0: 5, or 3 with --quick)")
+	rounds := fs.Int("rounds", 0, "alternating rounds of every comparison (0: 15 for Go and 7 for Python, 3 with --quick)")
 	python := fs.String("python", benchkit.Python, "Python interpreter with grpc and numpy")
 	pyDir := fs.String("python-dir", "", "directory of the Python client (bench.py, sluice_client); default: client/python of the source tree around the working directory")
 	quiet := fs.Bool("quiet", false, "do not report on stderr what is being measured")
