@@ -37,8 +37,10 @@ func bench(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 			"own process, at 64 × 1000, with a free gradient and with one that sleeps 5 ms per batch (needs " +
 			"/usr/bin/python3 with grpc and numpy and the client's sources); and the live heap of one session over " +
 			"10⁶ draws, at a tenth of the draws and at the end, to show whether it stays flat. Compared runs alternate " +
-			"and each figure is the median of several rounds, each ratio the median of the rounds' ratios, so the " +
-			"ratios stay fair on a busy machine even when the times do not. The target is a Gaussian with a diagonal " +
+			"in many short rounds; each time is the median of the rounds, each ratio the median of the rounds' own ratios, " +
+			"printed with their quartiles, so load that changes during the run weighs on both sides alike. Beside each Go " +
+			"ratio of wall times stands the ratio of the process's CPU time over the same runs, which leaves out the waits " +
+			"for a core on a busy machine. The target is a Gaussian with a diagonal " +
 			"precision, whose gradient costs little next to the transport. A full run takes a few minutes.",
 		examples: []string{
 			"sluice bench",
