@@ -1,7 +1,7 @@
 package sluice_test
 
-// This file keeps the import arrows of DESIGN.md true ("Layers and who may
-// import whom"), and checks that every package says in its doc comment what
+// This file keeps the import arrows of DEVELOPERS.md ("Import rules") true,
+// and checks that every package says in its doc comment what
 // it owns. It asks the go command about the packages that exist, so it keeps
 // working as packages are added.
 
@@ -51,7 +51,7 @@ var kernelForbid = []string{
 	"google.golang.org/grpc/...", "google.golang.org/protobuf/...", "go.uber.org/zap/...",
 }
 
-// layerRules encodes DESIGN.md, "Layers and who may import whom":
+// layerRules encodes the layering of DEVELOPERS.md, "Import rules":
 //
 //	cmd/sluice ───────────────▶ server, client, kernels/...
 //	server (gRPC adapter) ────▶ server/session, proto, kernels/..., internal/wire   (grpc, zap)
@@ -61,12 +61,13 @@ var kernelForbid = []string{
 //	kernels ──────────────────▶ std, gonum
 //	client ───────────────────▶ proto, internal/wire                (grpc; never server or kernels)
 //	internal/wire ────────────▶ std                                 (the wire's array layout and frame sizing)
-//	client ───────────────────▶ proto                                   (grpc; never server or kernels)
 //	deploy ───────────────────▶ nothing of ours                         (Kubernetes API types, yaml)
 //	internal/history ─────────▶ std
 //	internal/report ──────────▶ internal/history, kernels/diag           (gonum, gonum/plot)
+//	internal/benchkit ────────▶ server, server/session, client, proto, kernels/...
 //
-// and the rule of STYLE.md that nothing imports grpc's internal packages.
+// and the rule that nothing imports grpc's internal packages (they may change
+// without notice).
 // The proto package is the wire API alone: it imports no other package of
 // ours. cmd/sluice is the top and may import any of them.
 var layerRules = []layerRule{
@@ -117,6 +118,15 @@ var layerRules = []layerRule{
 		// Deployment manifests; only their tests have code.
 		pkgs:          "sluice/deploy/...",
 		allowExternal: []string{"k8s.io/api/...", "k8s.io/apimachinery/...", "sigs.k8s.io/yaml/..."},
+	},
+	{
+		// The measurements shared by `sluice bench` and the benchmarks:
+		// they drive a real server with a real client, so they may import
+		// both, but never the command.
+		pkgs:          "sluice/internal/benchkit",
+		allowProject:  []string{"sluice/server/...", "sluice/client/...", "sluice/proto/...", "sluice/kernels/..."},
+		allowExternal: []string{"..."},
+		forbid:        []string{"sluice/cmd/..."},
 	},
 	{
 		pkgs:          "sluice/proto/...",
@@ -378,7 +388,8 @@ func TestDepsRuleMatching(t *testing.T) {
 		"sluice/server":                             {"sluice/server/session", "sluice/proto/sluice/v1", "google.golang.org/grpc", "go.uber.org/zap"},
 		"sluice/client":                             {"sluice/proto/sluice/v1", "sluice/internal/wire", "google.golang.org/grpc"},
 		"sluice/internal/wire":                      nil,
-		"sluice/cmd/sluice":                         {"sluice/server", "sluice/client", "sluice/kernels", "sluice/kernels/targets"},
+		"sluice/internal/benchkit":                  {"sluice/server", "sluice/client", "sluice/kernels", "sluice/kernels/targets"},
+		"sluice/cmd/sluice":                         {"sluice/server", "sluice/client", "sluice/kernels", "sluice/kernels/targets", "sluice/internal/benchkit"},
 	}
 	with := func(pkg string, imports ...string) depGraph {
 		g := depGraph{}
@@ -430,6 +441,7 @@ func TestDepsRuleMatching(t *testing.T) {
 			name: "kernels imports wire", pkg: "sluice/kernels", g: with("sluice/kernels", "sluice/internal/wire"),
 			want: []string{"sluice/kernels imports sluice/internal/wire"},
 		},
+		{name: "layout as designed, benchkit", pkg: "sluice/internal/benchkit", g: base},
 		{name: "std only", pkg: "sluice/kernels/diag", g: with("sluice/kernels/diag")},
 		{name: "session tests may use targets", pkg: "sluice/server/session", g: base, testImports: []string{"sluice/kernels/targets"}},
 		{
@@ -518,6 +530,20 @@ func TestDepsRuleMatching(t *testing.T) {
 			},
 		},
 		{
+			name: "benchkit imports the command", pkg: "sluice/internal/benchkit", g: with("sluice/internal/benchkit", "sluice/server", "sluice/cmd/sluice"),
+			want: []string{
+				"sluice/internal/benchkit imports sluice/cmd/sluice",
+				"sluice/internal/benchkit is built from sluice/cmd/sluice",
+			},
+		},
+		{
+			name: "server imports benchkit", pkg: "sluice/server", g: with("sluice/server", "sluice/server/session", "sluice/internal/benchkit"),
+			want: []string{
+				"sluice/server imports sluice/internal/benchkit",
+				"sluice/server is built from sluice/client",
+			},
+		},
+		{
 			name: "grpc internal imported", pkg: "sluice/server", g: with("sluice/server", "google.golang.org/grpc/internal/transport"),
 			want: []string{"sluice/server (or its tests) imports google.golang.org/grpc/internal/transport"},
 		},
@@ -541,7 +567,7 @@ func TestDepsRuleMatching(t *testing.T) {
 }
 
 // TestPackageDocs checks that every package with Go files, main packages
-// included, has a doc comment (DESIGN.md, STYLE.md: each package says what
+// included, has a doc comment (each package says what
 // it owns). Packages made only of generated files, and the test-only root,
 // are left out.
 func TestPackageDocs(t *testing.T) {

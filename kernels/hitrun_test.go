@@ -486,7 +486,7 @@ func hitrunEqualBits(a, b []float64) bool {
 	return true
 }
 
-// A warmed-up step (all its rounds) allocates nothing (STYLE.md habit).
+// A warmed-up step (all its rounds) allocates nothing.
 func TestHitRunStepAllocatesNothing(t *testing.T) {
 	target := hitrunGaussian(t, []float64{0, 0, 0}, []float64{1, 0, 0, 0, 1, 0, 0, 0, 1})
 	eval := hitrunEval(target)

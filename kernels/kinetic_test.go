@@ -356,7 +356,7 @@ func TestKineticStateRoundTrip(t *testing.T) {
 	}
 }
 
-// A warmed-up step allocates nothing (STYLE.md habit).
+// A warmed-up step allocates nothing.
 func TestKineticStepAllocatesNothing(t *testing.T) {
 	k := NewKinetic(10, 8, 0.01, 0, 0, make([]float64, 10), nil, NewSource(1))
 	a := NewAnswer(8, 10)

@@ -156,7 +156,7 @@ func TestLMCStateRoundTrip(t *testing.T) {
 	}
 }
 
-// A warmed-up step allocates nothing (STYLE.md habit).
+// A warmed-up step allocates nothing.
 func TestLMCStepAllocatesNothing(t *testing.T) {
 	k := kernels.NewLMC(10, 8, 0.01, make([]float64, 10), kernels.NewSource(1))
 	a := kernels.NewAnswer(8, 10)

@@ -481,7 +481,7 @@ func TestMALAStateRoundTrip(t *testing.T) {
 	}
 }
 
-// A warmed-up step allocates nothing (STYLE.md habit).
+// A warmed-up step allocates nothing.
 func TestMALAStepAllocatesNothing(t *testing.T) {
 	k := NewMALA(10, 8, 0.1, 50, make([]float64, 10), NewSource(1))
 	a := &Answer{}

@@ -382,7 +382,7 @@ func TestMidpointStateRoundTrip(t *testing.T) {
 	}
 }
 
-// A warmed-up step (two requests) allocates nothing (STYLE.md habit).
+// A warmed-up step (two requests) allocates nothing.
 func TestMidpointStepAllocatesNothing(t *testing.T) {
 	k := NewMidpoint(10, 8, 0.01, 0, make([]float64, 10), nil, NewSource(1))
 	a := NewAnswer(8, 10)

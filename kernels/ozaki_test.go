@@ -620,7 +620,7 @@ func TestOzakiStateRoundTrip(t *testing.T) {
 	}
 }
 
-// A warmed-up step allocates nothing (STYLE.md habit): dsyev is called on
+// A warmed-up step allocates nothing: dsyev is called on
 // the preallocated workspace.
 func TestOzakiStepAllocatesNothing(t *testing.T) {
 	q := make([]float64, 100)

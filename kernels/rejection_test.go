@@ -504,7 +504,7 @@ func TestRejectionStateRoundTrip(t *testing.T) {
 	}
 }
 
-// A warmed-up step (all its rounds) allocates nothing (STYLE.md habit).
+// A warmed-up step (all its rounds) allocates nothing.
 func TestRejectionStepAllocatesNothing(t *testing.T) {
 	target := rejectionGaussian(t, make([]float64, 3), rejectionIdentity(3))
 	eval := rejectionEval(target, 0)

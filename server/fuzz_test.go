@@ -10,7 +10,7 @@ import (
 )
 
 // Registration and answer decoding never panic on arbitrary input: every
-// refusal is a *session.Error naming a field (STYLE.md: validation is
+// refusal is a *session.Error naming a field (validation is
 // fuzzed). `go test -fuzz FuzzRegister ./server/` explores further; plain
 // `go test` runs the seeds.
 func FuzzRegister(f *testing.F) {

@@ -11,15 +11,20 @@ sides make the same unadjusted Langevin steps,
 and hand every kept draw (all chains, every --keep-every-th step) to the
 caller: through sluice as Draws frames, in-process as a view of the state.
 The in-process loop works in place on preallocated arrays; the gradient
-function is the same one in both. Figures are draws per second (chains x
-kept steps / wall time), the median of --repeats runs each, alternating.
+function is the same one in both. With --grad-cost-ms the gradient also
+sleeps that long per batch, standing in for an expensive model. Figures
+are draws per second (chains x kept steps / wall time) and milliseconds
+per step, the median of --repeats rounds each; the runs alternate
+(sluice, numpy, sluice, numpy, ...) and the ratio is the median of the
+rounds' own ratios (sluice time per step over numpy's), so load that
+changes during the run weighs on both sides alike.
 
 Run a server first (`go run ./cmd/sluice serve --addr 127.0.0.1:7070`), then
 
     /usr/bin/python3 client/python/bench.py --target 127.0.0.1:7070
 
-or let `go test -run XXX -bench PythonClient -benchtime 1x ./client/python/`
-build and start one. --json prints one JSON object instead of text.
+or let `go run ./cmd/sluice bench` (which starts its own server) or
+`go test -run XXX -bench PythonClient -benchtime 1x ./client/python/` run it. --json prints one JSON object instead of text.
 """
 
 from __future__ import annotations
@@ -91,6 +96,8 @@ def main() -> int:
     ap.add_argument("--keep-every", type=int, default=1)
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--max-message-bytes", type=int, default=16 << 20)
+    ap.add_argument("--grad-cost-ms", type=float, default=0.0,
+                    help="milliseconds the gradient sleeps per batch, on both sides")
     ap.add_argument("--json", action="store_true")
     args = ap.parse_args()
 
@@ -98,7 +105,13 @@ def main() -> int:
     if not args.step * d.max() < 2.0:
         raise SystemExit("bench: step too large for the precision (needs h * max(d) < 2)")
 
+    if args.grad_cost_ms < 0 or args.repeats < 1:
+        raise SystemExit("bench: --grad-cost-ms must be >= 0 and --repeats >= 1")
+    cost = args.grad_cost_ms / 1e3
+
     def grad(x: np.ndarray) -> np.ndarray:
+        if cost > 0:
+            time.sleep(cost)
         return -d * x
 
     # Warm up both (channel set-up, first allocations), then alternate.
@@ -109,27 +122,31 @@ def main() -> int:
         remote.append(through_sluice(args.target, grad, args.dim, args.chains, args.step, args.steps,
                                      args.keep_every, args.max_message_bytes))
         local.append(in_process(grad, args.dim, args.chains, args.step, args.local_steps, args.keep_every))
-    best_remote = float(np.median([r["draws"] / r["seconds"] for r in remote]))
-    best_local = float(np.median([r["draws"] / r["seconds"] for r in local]))
+    remote_ms = [r["seconds"] / r["steps"] * 1e3 for r in remote]
+    local_ms = [r["seconds"] / r["steps"] * 1e3 for r in local]
     out = {
         "dim": args.dim,
         "chains": args.chains,
         "keep_every": args.keep_every,
-        "sluice_draws_per_second": best_remote,
-        "sluice_ms_per_step": float(np.median([r["seconds"] / r["steps"] for r in remote])) * 1e3,
-        "numpy_draws_per_second": best_local,
-        "numpy_ms_per_step": float(np.median([r["seconds"] / r["steps"] for r in local])) * 1e3,
-        "ratio": best_local / best_remote,
+        "grad_cost_ms": args.grad_cost_ms,
+        "sluice_draws_per_second": float(np.median([r["draws"] / r["seconds"] for r in remote])),
+        "sluice_ms_per_step": float(np.median(remote_ms)),
+        "sluice_ms_per_step_rounds": remote_ms,
+        "numpy_draws_per_second": float(np.median([r["draws"] / r["seconds"] for r in local])),
+        "numpy_ms_per_step": float(np.median(local_ms)),
+        "numpy_ms_per_step_rounds": local_ms,
+        "ratio": float(np.median([a / b for a, b in zip(remote_ms, local_ms)])),
     }
     if args.json:
         print(json.dumps(out))
     else:
-        print(f"dim {args.dim}, {args.chains} chains, keep every {args.keep_every}; median of {args.repeats} runs")
+        print(f"dim {args.dim}, {args.chains} chains, keep every {args.keep_every}, "
+              f"gradient cost {args.grad_cost_ms:g} ms; median of {args.repeats} alternating rounds")
         print(f"  through sluice:     {out['sluice_draws_per_second']:12.0f} draws/s  "
               f"({out['sluice_ms_per_step']:.3f} ms per step)")
         print(f"  in-process numpy:   {out['numpy_draws_per_second']:12.0f} draws/s  "
               f"({out['numpy_ms_per_step']:.3f} ms per step)")
-        print(f"  in-process / sluice: {out['ratio']:.1f}x")
+        print(f"  sluice / in-process: {out['ratio']:.2f}x (time per step)")
     return 0
 
 

@@ -5,6 +5,8 @@
 //	                 kiln-firing data set, and answer a question with the draws
 //	sluice plan      step, iterations, evaluations and wall time needed for a
 //	                 guaranteed accuracy, before sampling
+//	sluice bench     what a session step costs next to the bare transport,
+//	                 and other figures beside their floors, measured side by side
 //	sluice version   the version, Go version and module build information
 //	sluice report    pictures of a run's draws and progress, bundled in an
 //	                 index.html that works offline
@@ -30,6 +32,7 @@ Usage:
   sluice serve [flags]   serve the gRPC API
   sluice demo [flags]    sample an invented kiln-firing model end to end
   sluice plan [flags]    what a guaranteed accuracy costs, before sampling
+  sluice bench [flags]   figures beside their floors, measured side by side
   sluice version         version, Go version and build information
   sluice report DRAWS    pictures and a page (index.html) of a run's draws
 
@@ -57,6 +60,8 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		err = demo(ctx, args[1:], stdout, stderr)
 	case "plan":
 		err = plan(ctx, args[1:], stdout, stderr)
+	case "bench":
+		err = bench(ctx, args[1:], stdout, stderr)
 	case "version", "-version", "--version":
 		err = version(args[1:], stdout, stderr)
 	case "report":
