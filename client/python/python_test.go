@@ -212,6 +212,15 @@ func TestPythonClient(t *testing.T) {
 		}
 		t.Logf("%s", out)
 	})
+
+	t.Run("executor example", func(t *testing.T) {
+		out, err := runPython(t, dir, srv.addr, 5*time.Minute, "examples/pond_algae.py", "--target", srv.addr,
+			"--workers", "2", "--chains", "4", "--draws", "20", "--burn-in", "20", "--seed", "5")
+		if err != nil || !strings.Contains(out, "draws collected") || !strings.Contains(out, "with 2 worker processes") {
+			t.Fatalf("examples/pond_algae.py: %v\n%s\nserver log:\n%s", err, out, srv.logText())
+		}
+		t.Logf("%s", out)
+	})
 }
 
 // BenchmarkPythonClient compares, at dim 1000 with 64 chains (a Gaussian
