@@ -26,8 +26,8 @@ from ._types import Answer, Batch
 def default_split(executor: cf.Executor) -> int:
     """The number of blocks a frame is cut into when ``split`` is not given:
     the executor's worker count where it exposes one (the standard
-    library's pools keep it in ``_max_workers``), else the machine's CPU
-    count."""
+    library's pools and mpi4py's MPIPoolExecutor keep it in
+    ``_max_workers``), else the machine's CPU count."""
     n = getattr(executor, "_max_workers", None)
     if isinstance(n, int) and n > 0:
         return n

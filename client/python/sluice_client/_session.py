@@ -345,7 +345,7 @@ class Session:
                     request_id=p.request_id,
                     first_row=p.first_row,
                 )
-                if self._executor is not None and self._split > 1 and rows > 1:
+                if self._executor is not None:
                     ans = self._split_batch(b, want)
                 else:
                     ans = self._batch(b)
@@ -417,7 +417,7 @@ class Session:
             raise ValueError("sluice_client: the server asks for log densities, but no log_density was given")
         grad = self._grad if want.gradient else None
         log_density = self._log_density if want.log_density else None
-        if self._executor is not None and self._split > 1 and rows > 1:
+        if self._executor is not None:
             bounds = _parallel.block_bounds(rows, self._split)
             futures = [
                 self._executor.submit(_parallel.eval_simple_block, grad, log_density, points[lo:hi])

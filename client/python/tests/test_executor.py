@@ -102,7 +102,8 @@ class ScriptedExecutorTests(unittest.TestCase):
         want = self.reference(batch=em.answer)
         self.assertEqual(len(want), 4)
         with cf.ThreadPoolExecutor(3) as threads:
-            for ex, split in ((threads, 3), (threads, 5), (self.pool, 2), (self.pool, 3), (self.pool, 9)):
+            for ex, split in ((threads, 1), (threads, 3), (threads, 5), (self.pool, 1), (self.pool, 2), (self.pool, 3),
+                              (self.pool, 9)):
                 ch = _ScriptedChannel(script())
                 sc.run(ch, spec4(), batch=em.answer, executor=ex, split=split)  # type: ignore[arg-type]
                 self.assertEqual(sent(ch), want, (type(ex).__name__, split))
@@ -148,8 +149,10 @@ class ScriptedExecutorTests(unittest.TestCase):
     def test_wrong_block_shape_is_caught(self) -> None:
         frames = [_REGISTERED, _points(X, [pb.QUANTITY_GRADIENT]), _FINISHED]
         ch = _ScriptedChannel(frames)
-        with self.assertRaisesRegex(ValueError, r"grad returned an array of shape \(3, 3\); want \(rows, dim\) = \(3, 4\)"):
-            sc.run(ch, spec4(), lambda x: -x[:, :3], executor=cf.ThreadPoolExecutor(2), split=2)  # type: ignore[arg-type]
+        with cf.ThreadPoolExecutor(2) as threads, self.assertRaisesRegex(
+            ValueError, r"grad returned an array of shape \(3, 3\); want \(rows, dim\) = \(3, 4\)"
+        ):
+            sc.run(ch, spec4(), lambda x: -x[:, :3], executor=threads, split=2)  # type: ignore[arg-type]
 
     def test_unpicklable_callback_is_refused_before_sending(self) -> None:
         with self.assertRaisesRegex(TypeError, "process pool needs a picklable callback"):
