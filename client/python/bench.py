@@ -25,22 +25,36 @@ Run a server first (`go run ./cmd/sluice serve --addr 127.0.0.1:7070`), then
 
 or let `go run ./cmd/sluice bench` (which starts its own server) or
 `go test -run XXX -bench PythonClient -benchtime 1x ./client/python/` run it. --json prints one JSON object instead of text.
+
+--grad-cost-ms T makes each gradient batch sleep T milliseconds (like a
+remote model: the interpreter is free meanwhile); --grad-ms T adds a busy
+wait of T milliseconds instead (holding the interpreter lock like a model
+written in Python). Both apply to both loops. --request-paths also
+measures, alternating with the runs above, bare session loops on other
+request paths that grpcio allows (without the client package's checks), to
+show which is fastest: the synchronous stream fed by an iterator over a
+queue.SimpleQueue (the path the client uses), and grpc.aio with
+call.write/call.read on one event loop.
 """
 
 from __future__ import annotations
 
 import argparse
+import asyncio
 import json
+import queue
 import os
 import sys
 import time
 from typing import Callable, Dict
 
+import grpc
 import numpy as np
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 
 import sluice_client as sc  # noqa: E402
+from sluice_client._proto.sluice.v1 import sluice_pb2 as pb  # noqa: E402
 
 
 def through_sluice(target: str, grad: Callable[[np.ndarray], np.ndarray], dim: int, chains: int,
@@ -85,6 +99,80 @@ def in_process(grad: Callable[[np.ndarray], np.ndarray], dim: int, chains: int, 
     return {"seconds": seconds, "draws": got, "steps": steps}
 
 
+def _bare_spec(dim: int, chains: int, step: float, steps: int, limit: int) -> pb.Register:
+    return sc.Spec(dim=dim, chains=chains, start=np.zeros(dim), step=step, draws_per_chain=steps, seed=1,
+                   max_message_bytes=limit).to_register()
+
+
+def _bare_answer(grad: Callable[[np.ndarray], np.ndarray], p: pb.Points) -> pb.SessionRequest:
+    x = np.frombuffer(p.points, dtype="<f8").reshape(p.rows, p.dim)
+    g = np.asarray(grad(x), dtype="<f8")
+    return pb.SessionRequest(evaluations=pb.Evaluations(
+        request_id=p.request_id, first_row=p.first_row, rows=p.rows, dim=p.dim, gradients=g.tobytes()))
+
+
+def bare_sync_queue(target: str, grad: Callable[[np.ndarray], np.ndarray], dim: int, chains: int,
+                    step: float, steps: int, limit: int) -> Dict[str, float]:
+    """A bare session loop on the synchronous stream, requests from an
+    iterator over a SimpleQueue (the client's path, without its checks)."""
+    opts = [("grpc.max_send_message_length", limit), ("grpc.max_receive_message_length", limit)]
+    with grpc.insecure_channel(target, options=opts) as ch:
+        rpc = ch.stream_stream(sc.SESSION_METHOD, request_serializer=pb.SessionRequest.SerializeToString,
+                               response_deserializer=pb.SessionResponse.FromString)
+        q: "queue.SimpleQueue[object]" = queue.SimpleQueue()
+        q.put(pb.SessionRequest(register=_bare_spec(dim, chains, step, steps, limit)))
+        got = 0
+        t0 = time.perf_counter()
+        call = rpc(iter(q.get, None), timeout=600)
+        for f in call:
+            kind = f.WhichOneof("frame")
+            if kind == "points":
+                q.put(_bare_answer(grad, f.points))
+            elif kind == "draws":
+                got += f.draws.rows
+            elif kind == "finished":
+                break
+        q.put(None)
+        seconds = time.perf_counter() - t0
+    if got != chains * steps:
+        raise RuntimeError(f"bench: bare sync session ended after {got} draws")
+    return {"seconds": seconds, "draws": got, "steps": steps}
+
+
+def bare_aio(target: str, grad: Callable[[np.ndarray], np.ndarray], dim: int, chains: int,
+             step: float, steps: int, limit: int) -> Dict[str, float]:
+    """A bare session loop on grpc.aio: call.write and call.read on one
+    event loop."""
+    opts = [("grpc.max_send_message_length", limit), ("grpc.max_receive_message_length", limit)]
+
+    async def go() -> Dict[str, float]:
+        async with grpc.aio.insecure_channel(target, options=opts) as ch:
+            rpc = ch.stream_stream(sc.SESSION_METHOD, request_serializer=pb.SessionRequest.SerializeToString,
+                                   response_deserializer=pb.SessionResponse.FromString)
+            call = rpc(timeout=600)
+            got = 0
+            t0 = time.perf_counter()
+            await call.write(pb.SessionRequest(register=_bare_spec(dim, chains, step, steps, limit)))
+            while True:
+                f = await call.read()
+                if f is grpc.aio.EOF:
+                    break
+                kind = f.WhichOneof("frame")
+                if kind == "points":
+                    await call.write(_bare_answer(grad, f.points))
+                elif kind == "draws":
+                    got += f.draws.rows
+                elif kind == "finished":
+                    break
+            await call.done_writing()
+            seconds = time.perf_counter() - t0
+        if got != chains * steps:
+            raise RuntimeError(f"bench: bare aio session ended after {got} draws")
+        return {"seconds": seconds, "draws": got, "steps": steps}
+
+    return asyncio.run(go())
+
+
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--target", default="127.0.0.1:7070")
@@ -98,6 +186,10 @@ def main() -> int:
     ap.add_argument("--max-message-bytes", type=int, default=16 << 20)
     ap.add_argument("--grad-cost-ms", type=float, default=0.0,
                     help="milliseconds the gradient sleeps per batch, on both sides")
+    ap.add_argument("--grad-ms", type=float, default=0.0,
+                    help="extra cost of each gradient evaluation in ms (busy wait), in both loops")
+    ap.add_argument("--request-paths", action="store_true",
+                    help="also measure bare loops on other grpcio request paths")
     ap.add_argument("--json", action="store_true")
     args = ap.parse_args()
 
@@ -105,23 +197,35 @@ def main() -> int:
     if not args.step * d.max() < 2.0:
         raise SystemExit("bench: step too large for the precision (needs h * max(d) < 2)")
 
-    if args.grad_cost_ms < 0 or args.repeats < 1:
-        raise SystemExit("bench: --grad-cost-ms must be >= 0 and --repeats >= 1")
+    if args.grad_cost_ms < 0 or args.grad_ms < 0 or args.repeats < 1:
+        raise SystemExit("bench: --grad-cost-ms and --grad-ms must be >= 0 and --repeats >= 1")
     cost = args.grad_cost_ms / 1e3
+    extra = args.grad_ms * 1e-3
 
     def grad(x: np.ndarray) -> np.ndarray:
         if cost > 0:
             time.sleep(cost)
+        if extra > 0:
+            end = time.perf_counter() + extra
+            while time.perf_counter() < end:
+                pass
         return -d * x
 
     # Warm up both (channel set-up, first allocations), then alternate.
     through_sluice(args.target, grad, args.dim, args.chains, args.step, 20, 1, args.max_message_bytes)
     in_process(grad, args.dim, args.chains, args.step, 20, 1)
+    paths = {"sync_queue": bare_sync_queue, "aio": bare_aio} if args.request_paths else {}
+    for run in paths.values():
+        run(args.target, grad, args.dim, args.chains, args.step, 20, args.max_message_bytes)
     remote, local = [], []
+    bare: Dict[str, list] = {name: [] for name in paths}
     for _ in range(args.repeats):
         remote.append(through_sluice(args.target, grad, args.dim, args.chains, args.step, args.steps,
                                      args.keep_every, args.max_message_bytes))
         local.append(in_process(grad, args.dim, args.chains, args.step, args.local_steps, args.keep_every))
+        for name, run in paths.items():
+            bare[name].append(run(args.target, grad, args.dim, args.chains, args.step, args.steps,
+                                  args.max_message_bytes))
     remote_ms = [r["seconds"] / r["steps"] * 1e3 for r in remote]
     local_ms = [r["seconds"] / r["steps"] * 1e3 for r in local]
     out = {
@@ -136,17 +240,27 @@ def main() -> int:
         "numpy_ms_per_step": float(np.median(local_ms)),
         "numpy_ms_per_step_rounds": local_ms,
         "ratio": float(np.median([a / b for a, b in zip(remote_ms, local_ms)])),
+        "grad_ms": args.grad_ms,
+        "repeats": args.repeats,
+        # The client's throughput as a fraction of the in-process loop's.
+        "client_fraction": float(np.median([b / a for a, b in zip(remote_ms, local_ms)])),
     }
+    for name, runs in bare.items():
+        out[f"bare_{name}_ms_per_step"] = float(np.median([r["seconds"] / r["steps"] for r in runs])) * 1e3
     if args.json:
         print(json.dumps(out))
     else:
         print(f"dim {args.dim}, {args.chains} chains, keep every {args.keep_every}, "
-              f"gradient cost {args.grad_cost_ms:g} ms; median of {args.repeats} alternating rounds")
+              f"gradient sleep {args.grad_cost_ms:g} ms, busy {args.grad_ms:g} ms; "
+              f"median of {args.repeats} alternating rounds")
         print(f"  through sluice:     {out['sluice_draws_per_second']:12.0f} draws/s  "
               f"({out['sluice_ms_per_step']:.3f} ms per step)")
         print(f"  in-process numpy:   {out['numpy_draws_per_second']:12.0f} draws/s  "
               f"({out['numpy_ms_per_step']:.3f} ms per step)")
-        print(f"  sluice / in-process: {out['ratio']:.2f}x (time per step)")
+        print(f"  sluice / in-process: {out['ratio']:.2f}x (time per step; client at "
+              f"{out['client_fraction']:.2f} of in-process)")
+        for name in bare:
+            print(f"  bare loop, {name:10s}: {out[f'bare_{name}_ms_per_step']:.3f} ms per step")
     return 0
 
 

@@ -45,11 +45,17 @@ func checkPython(t testing.TB) {
 	// pip and setuptools are looked up, not imported: importing both into
 	// one interpreter trips setuptools' distutils shim. ensurepip comes with
 	// python3-venv, which the install test's virtual environment needs.
-	out, err := exec.Command(python, "-c", "import grpc, google.protobuf, numpy, pytest, ensurepip\n"+
+	out, err := exec.Command(python, "-c", "import grpc, google.protobuf, numpy, pytest, ensurepip, distributed, mpi4py\n"+
 		"import importlib.util as u\nassert u.find_spec('pip') and u.find_spec('setuptools')").CombinedOutput()
+	if err == nil {
+		if _, lerr := exec.LookPath("mpiexec"); lerr != nil {
+			err = lerr
+		}
+	}
 	if err != nil {
-		t.Fatalf("%s lacks grpc, google.protobuf, numpy, pytest, ensurepip, pip or setuptools: %v\n%s"+
-			"(apt-get install python3-grpcio python3-protobuf python3-numpy python3-pytest python3-pip python3-setuptools python3-venv)", python, err, out)
+		t.Fatalf("%s lacks grpc, google.protobuf, numpy, pytest, ensurepip, pip, setuptools, distributed, mpi4py or mpiexec: %v\n%s"+
+			"(apt-get install python3-grpcio python3-protobuf python3-numpy python3-pytest python3-pip python3-setuptools python3-venv "+
+			"python3-distributed python3-mpi4py openmpi-bin)", python, err, out)
 	}
 }
 
@@ -203,6 +209,15 @@ func TestPythonClient(t *testing.T) {
 			"--chains", "4", "--draws", "150", "--burn-in", "150", "--seed", "5")
 		if err != nil || !strings.Contains(out, "reason: draws collected") {
 			t.Fatalf("examples/billet_cooling.py: %v\n%s\nserver log:\n%s", err, out, srv.logText())
+		}
+		t.Logf("%s", out)
+	})
+
+	t.Run("executor example", func(t *testing.T) {
+		out, err := runPython(t, dir, srv.addr, 5*time.Minute, "examples/pond_algae.py", "--target", srv.addr,
+			"--workers", "2", "--chains", "4", "--draws", "20", "--burn-in", "20", "--seed", "5")
+		if err != nil || !strings.Contains(out, "draws collected") || !strings.Contains(out, "with 2 worker processes") {
+			t.Fatalf("examples/pond_algae.py: %v\n%s\nserver log:\n%s", err, out, srv.logText())
 		}
 		t.Logf("%s", out)
 	})

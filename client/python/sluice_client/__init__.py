@@ -26,7 +26,9 @@ bytes, decoded with ``np.frombuffer`` and encoded with ``tobytes``.
 than gradients and log densities (Hessians for "ozaki", Hessian-vector
 products for "ozaki-krylov", several gradient replicates per point with
 ``Noise(replicates=2)``) are answered with ``batch=``, a function of a
-:class:`Batch` returning an :class:`Answer`. :func:`plan` asks what a
+:class:`Batch` returning an :class:`Answer`. ``executor=`` (any
+``concurrent.futures.Executor``: a process pool, a Dask client's executor,
+an MPI pool) spreads the rows of every batch over its workers. :func:`plan` asks what a
 guaranteed accuracy costs before sampling; :func:`follow` streams another
 session's draws. Server errors raise :class:`SessionError` (gRPC status
 code, message, and the offending field from the status's bad-request

@@ -4,6 +4,7 @@ numbers, and ends with the Finished frame's summary."""
 
 from __future__ import annotations
 
+import concurrent.futures as cf
 import queue
 import threading
 from dataclasses import dataclass
@@ -13,6 +14,7 @@ import grpc
 import numpy as np
 import numpy.typing as npt
 
+from . import _parallel
 from ._errors import DrawsLostError, ProtocolError, SessionError
 from ._proto.sluice.v1 import sluice_pb2 as pb
 from ._types import (
@@ -104,6 +106,25 @@ class Session:
     (``summary.draws``, ``summary.save(path)``, the summary's intervals);
     pass False when the draws are consumed as they come and memory matters.
 
+    ``executor`` (any ``concurrent.futures.Executor``: a thread or process
+    pool, ``distributed.Client.get_executor()``, mpi4py's MPIPoolExecutor)
+    spreads every batch: its rows are cut into ``split`` contiguous blocks
+    (sizes differing by at most one; default: the executor's worker count
+    where it exposes one, else the CPU count), the callback runs on each
+    block on the executor, and the answers are put back in row order, for
+    every quantity asked (gradients, log densities, Hessians,
+    Hessian-vector products, replicates). A block's :class:`Batch` holds
+    its own rows, chains, vectors and minibatch groups, with ``first_row``
+    shifted to its first row; rows of one minibatch group may land in
+    different blocks, so derive the minibatch from the group number, not
+    from state shared between calls. With a deterministic callback the
+    bytes sent, and so the draws, are those of the same session without an
+    executor. For a process pool (and Dask or MPI pools) the callback is
+    pickled: define it at module level (a lambda or nested function fails
+    with TypeError before anything is sent when the executor is a
+    ``ProcessPoolExecutor``). The session does not shut the executor down.
+    An exception in a worker ends the session like one of the callback.
+
     Errors: an exception from ``grad``, ``log_density`` or ``batch``, an
     answer of the wrong shape or missing a quantity asked for (ValueError),
     or a request that ``grad`` and ``log_density`` cannot answer (a Hessian,
@@ -129,6 +150,8 @@ class Session:
         timeout: Optional[float] = None,
         on_registered: Optional[Callable[[Registered], None]] = None,
         keep_draws: bool = True,
+        executor: Optional[cf.Executor] = None,
+        split: Optional[int] = None,
     ) -> None:
         if (grad is None) == (batch is None):
             raise TypeError("sluice_client: give either grad (with log_density if needed) or batch")
@@ -137,6 +160,14 @@ class Session:
         self._spec = spec
         self._on_registered = on_registered
         self._register = spec.to_register()  # shapes start; raises ValueError early
+        if split is not None and (isinstance(split, bool) or not isinstance(split, int) or split < 1):
+            raise ValueError(f"sluice_client: split must be an integer >= 1, not {split!r}")
+        if split is not None and executor is None:
+            raise TypeError("sluice_client: split goes with executor")
+        if executor is not None:
+            _parallel.check_picklable(executor, (grad, log_density, batch))
+        self._executor = executor
+        self._split = split if split is not None else (_parallel.default_split(executor) if executor else 1)
         self._grad = grad
         self._log_density = log_density
         self._batch = batch
@@ -314,11 +345,16 @@ class Session:
                     request_id=p.request_id,
                     first_row=p.first_row,
                 )
-                ans = self._batch(b)
-                if not isinstance(ans, Answer):
-                    raise TypeError(f"sluice_client: batch returned {type(ans).__name__}; want sluice_client.Answer")
+                if self._executor is not None:
+                    ans = self._split_batch(b, want)
+                else:
+                    ans = self._batch(b)
+                    if not isinstance(ans, Answer):
+                        raise TypeError(
+                            f"sluice_client: batch returned {type(ans).__name__}; want sluice_client.Answer"
+                        )
             else:
-                ans = self._simple(points, want)
+                ans = self._simple(points, want, p.request_id, p.first_row)
             _encode(ev, ans, want, rows, dim)
         except Exception as err:  # the caller's code failed: stop, drain, re-raise
             self.stop(f"evaluator failed: {err!r}")
@@ -326,8 +362,44 @@ class Session:
         self._send(_request(evaluations=ev))
         return None
 
-    def _simple(self, points: np.ndarray, want: "_Wanted") -> Answer:
-        """Answers with grad and log_density, checking their shapes."""
+    def _split_batch(self, b: Batch, want: "_Wanted") -> Answer:
+        """Answers one Batch by cutting it into row blocks evaluated on the
+        executor, each a Batch of its own rows (first_row shifted)."""
+        assert self._executor is not None and self._batch is not None
+        bounds = _parallel.block_bounds(b.rows, self._split)
+        futures = []
+        for lo, hi in bounds:
+            part = Batch(
+                points=b.points[lo:hi],
+                chains=b.chains[lo:hi],
+                want_gradient=b.want_gradient,
+                want_log_density=b.want_log_density,
+                want_hessian=b.want_hessian,
+                want_hessian_vector=b.want_hessian_vector,
+                vectors=None if b.vectors is None else b.vectors[lo:hi],
+                minibatch_groups=None if b.minibatch_groups is None else b.minibatch_groups[lo:hi],
+                full_data=b.full_data,
+                replicates=b.replicates,
+                request_id=b.request_id,
+                first_row=b.first_row + lo,
+            )
+            futures.append(self._executor.submit(_parallel.eval_batch_block, self._batch, part))
+        answers = _parallel.gather(futures, bounds, b.request_id, b.first_row)
+        return _parallel.assemble(
+            answers,  # type: ignore[arg-type]
+            bounds,
+            b.rows,
+            b.dim,
+            want.gradient,
+            want.log_density,
+            want.hessian,
+            want.hessian_vector,
+            want.replicates,
+        )
+
+    def _simple(self, points: np.ndarray, want: "_Wanted", request_id: int = 0, first_row: int = 0) -> Answer:
+        """Answers with grad and log_density, checking their shapes; with an
+        executor, over row blocks evaluated on it."""
         rows, dim = points.shape
         if want.hessian or want.hessian_vector:
             what = "Hessians" if want.hessian else "Hessian-vector products"
@@ -341,23 +413,46 @@ class Session:
                 "(noise.replicates), which grad cannot give: pass batch= (a function of a sluice_client.Batch "
                 "returning an Answer with gradients of shape (rows, replicates, dim))"
             )
+        if want.log_density and self._log_density is None:
+            raise ValueError("sluice_client: the server asks for log densities, but no log_density was given")
+        grad = self._grad if want.gradient else None
+        log_density = self._log_density if want.log_density else None
+        if self._executor is not None:
+            bounds = _parallel.block_bounds(rows, self._split)
+            futures = [
+                self._executor.submit(_parallel.eval_simple_block, grad, log_density, points[lo:hi])
+                for lo, hi in bounds
+            ]
+            parts = _parallel.gather(futures, bounds, request_id, first_row)
+        else:
+            bounds = [(0, rows)]
+            parts = [_parallel.eval_simple_block(grad, log_density, points)]
         ans = Answer()
-        if want.gradient:
-            assert self._grad is not None
-            g = np.asarray(self._grad(points))
-            if g.shape != (rows, dim):
-                raise ValueError(
-                    f"sluice_client: grad returned an array of shape {g.shape}; want (rows, dim) = {(rows, dim)}"
-                )
+        if grad is not None:
+            g = np.empty((rows, dim)) if len(bounds) > 1 else None
+            for (lo, hi), (gb, _) in zip(bounds, parts):  # type: ignore[misc]
+                if gb.shape != (hi - lo, dim):
+                    raise ValueError(
+                        f"sluice_client: grad returned an array of shape {gb.shape}; "
+                        f"want (rows, dim) = {(hi - lo, dim)}"
+                    )
+                if g is None:
+                    g = gb
+                else:
+                    g[lo:hi] = gb
             ans.gradients = g
-        if want.log_density:
-            if self._log_density is None:
-                raise ValueError("sluice_client: the server asks for log densities, but no log_density was given")
-            ld = np.asarray(self._log_density(points))
-            if ld.shape != (rows,):
-                raise ValueError(
-                    f"sluice_client: log_density returned an array of shape {ld.shape}; want (rows,) = {(rows,)}"
-                )
+        if log_density is not None:
+            ld = np.empty(rows) if len(bounds) > 1 else None
+            for (lo, hi), (_, lb) in zip(bounds, parts):  # type: ignore[misc]
+                if lb.shape != (hi - lo,):
+                    raise ValueError(
+                        f"sluice_client: log_density returned an array of shape {lb.shape}; "
+                        f"want (rows,) = {(hi - lo,)}"
+                    )
+                if ld is None:
+                    ld = lb
+                else:
+                    ld[lo:hi] = lb
             ans.log_densities = ld
         return ans
 
@@ -386,15 +481,7 @@ def _encode(ev: pb.Evaluations, ans: Answer, want: _Wanted, rows: int, dim: int)
     and has its shape (sluice.proto, message Evaluations); quantities not
     asked for are left out."""
 
-    def shaped(name: str, value: Optional[npt.ArrayLike], *shapes: Tuple[int, ...]) -> np.ndarray:
-        if value is None:
-            raise ValueError(f"sluice_client: the server asks for {name}, but the answer has none")
-        a = np.asarray(value)
-        if a.shape not in shapes:
-            want_text = " or ".join(str(sh) for sh in shapes)
-            raise ValueError(f"sluice_client: the answer's {name} have shape {a.shape}; want {want_text}")
-        return a
-
+    shaped = _parallel.shaped
     reps = want.replicates
     if want.gradient:
         shapes = [(rows, reps, dim)] if reps > 1 else [(rows, dim), (rows, 1, dim)]
@@ -436,6 +523,8 @@ def run(
     on_registered: Optional[Callable[[Registered], None]] = None,
     timeout: Optional[float] = None,
     keep_draws: bool = True,
+    executor: Optional[cf.Executor] = None,
+    split: Optional[int] = None,
 ) -> Summary:
     """Runs one session to its end and returns the summary.
 
@@ -447,8 +536,9 @@ def run(
     order, ``on_progress`` every progress report, ``on_registered`` the
     server's acknowledgement; all run on the calling thread. With
     ``keep_draws`` (the default) the summary holds every draw received
-    (``summary.draws``, ``summary.save(path)``). Errors as for
-    :class:`Session`.
+    (``summary.draws``, ``summary.save(path)``). ``executor`` and
+    ``split`` spread every batch over a ``concurrent.futures.Executor`` (see
+    :class:`Session`). Errors as for :class:`Session`.
     """
     session = Session(
         channel_or_target,
@@ -459,6 +549,8 @@ def run(
         timeout=timeout,
         on_registered=on_registered,
         keep_draws=keep_draws,
+        executor=executor,
+        split=split,
     )
     with session:
         for event in session:
