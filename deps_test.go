@@ -592,3 +592,47 @@ func TestPackageDocs(t *testing.T) {
 		}
 	}
 }
+
+// singleThreaded lists the packages scripts/go-tests runs without the race
+// detector, to keep the suite's time in bounds: their heavy statistical
+// tests are pure arithmetic on one goroutine, where the detector finds
+// nothing and costs a factor of five to ten. TestSingleThreadedPackages
+// keeps that claim true, and that scripts/go-tests names them.
+var singleThreaded = []string{"kernels", "kernels/diag", "kernels/bound"}
+
+// TestSingleThreadedPackages fails when a package run without the race
+// detector, or its tests, start a goroutine or import sync: such code must
+// run under -race (move the package out of the list, in scripts/go-tests too).
+func TestSingleThreadedPackages(t *testing.T) {
+	script, err := os.ReadFile("scripts/go-tests")
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, dir := range singleThreaded {
+		if !strings.Contains(string(script), "./"+dir+" ") && !strings.Contains(string(script), "./"+dir+")") {
+			t.Errorf("scripts/go-tests does not name ./%s among the packages run without -race", dir)
+		}
+		files, err := filepath.Glob(filepath.Join(dir, "*.go"))
+		if err != nil || len(files) == 0 {
+			t.Fatalf("%s: no Go files (%v)", dir, err)
+		}
+		fset := token.NewFileSet()
+		for _, name := range files {
+			f, err := parser.ParseFile(fset, name, nil, parser.SkipObjectResolution)
+			if err != nil {
+				t.Fatal(err)
+			}
+			for _, imp := range f.Imports {
+				if p := strings.Trim(imp.Path.Value, `"`); p == "sync" || p == "sync/atomic" {
+					t.Errorf("%s imports %s: the package must run under -race", name, p)
+				}
+			}
+			ast.Inspect(f, func(n ast.Node) bool {
+				if g, ok := n.(*ast.GoStmt); ok {
+					t.Errorf("%s: a go statement: the package must run under -race", fset.Position(g.Pos()))
+				}
+				return true
+			})
+		}
+	}
+}
