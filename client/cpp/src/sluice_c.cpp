@@ -88,6 +88,7 @@ struct sluice_session {
   sluice_progress_fn on_progress = nullptr;
   void* progress_data = nullptr;
   bool ran = false;
+  sluice::Security security;
 
   std::optional<sluice::Summary> summary;
   std::string session_id;
@@ -212,6 +213,55 @@ void sluice_session_on_progress(sluice_session* s, sluice_progress_fn fn, void* 
   s->progress_data = user_data;
 }
 
+int sluice_session_set_tls(sluice_session* s, const char* ca_file, const char* cert_file, const char* key_file) {
+  if (s == nullptr) return SLUICE_ERR_USAGE;
+  try {
+    const bool cert = cert_file != nullptr && *cert_file != '\0', key = key_file != nullptr && *key_file != '\0';
+    if (cert != key) {
+      s->set_error(0, "sluice_session_set_tls: a client certificate needs its key, and a key its certificate");
+      return SLUICE_ERR_USAGE;
+    }
+    s->security.tls = true;
+    s->security.ca_file = ca_file != nullptr ? ca_file : "";
+    s->security.cert_file = cert ? cert_file : "";
+    s->security.key_file = key ? key_file : "";
+    return SLUICE_OK;
+  } catch (...) {
+    s->set_error(0, "sluice: out of memory");
+    return SLUICE_ERR_USAGE;
+  }
+}
+
+int sluice_session_set_token(sluice_session* s, const char* token) {
+  if (s == nullptr) return SLUICE_ERR_USAGE;
+  try {
+    s->security.token = token != nullptr ? token : "";
+    s->security.token_file.clear();
+    return SLUICE_OK;
+  } catch (...) {
+    s->set_error(0, "sluice: out of memory");
+    return SLUICE_ERR_USAGE;
+  }
+}
+
+int sluice_session_set_token_file(sluice_session* s, const char* path) {
+  if (s == nullptr) return SLUICE_ERR_USAGE;
+  try {
+    s->security.token_file = path != nullptr ? path : "";
+    s->security.token.clear();
+    return SLUICE_OK;
+  } catch (...) {
+    s->set_error(0, "sluice: out of memory");
+    return SLUICE_ERR_USAGE;
+  }
+}
+
+int sluice_session_set_insecure(sluice_session* s, int insecure) {
+  if (s == nullptr) return SLUICE_ERR_USAGE;
+  s->security.insecure = insecure != 0;
+  return SLUICE_OK;
+}
+
 int sluice_session_run(sluice_session* s, const char* target) {
   if (s == nullptr) return SLUICE_ERR_USAGE;
   try {
@@ -271,8 +321,8 @@ int sluice_session_run(sluice_session* s, const char* target) {
       if (rc != 0) throw std::runtime_error("evaluation callback returned " + std::to_string(rc));
     };
 
-    auto channel = sluice::connect(target, s->spec.max_message_bytes);
     try {
+      auto channel = sluice::connect(target, s->security, s->spec.max_message_bytes);
       s->summary = sluice::run(channel, s->spec, evaluate, cb);
       return SLUICE_OK;
     } catch (const sluice::Error& e) {
@@ -382,6 +432,8 @@ const char* sluice_error_name(int code) {
       return "SLUICE_ERR_USAGE";
     case SLUICE_ERR_STATE:
       return "SLUICE_ERR_STATE";
+    case SLUICE_ERR_UNAUTHENTICATED:
+      return "SLUICE_ERR_UNAUTHENTICATED";
     default:
       return "SLUICE_ERR_UNKNOWN";
   }

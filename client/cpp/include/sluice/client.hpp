@@ -218,6 +218,7 @@ enum class Code {
   Evaluator = 7,
   Protocol = 8,
   Usage = 9,
+  Unauthenticated = 11,  // gRPC UNAUTHENTICATED: no token, or one the server does not accept
 };
 
 // Error is thrown by run(). For a server status, grpc_code is the gRPC
@@ -234,10 +235,45 @@ class Error : public std::runtime_error {
   std::optional<Summary> summary;
 };
 
-// connect returns an insecure channel to target ("host:port") whose send and
-// receive limits are both max_message_bytes (0: 4 MiB); use the same value
-// in Spec::max_message_bytes.
+// Security says how connect() protects the connection and authenticates.
+//
+// TLS is used when tls is true or any file is named: ca_file holds the PEM
+// authorities trusted to sign the server's certificate ("" : the system's
+// roots); cert_file and key_file, both or neither, hold the client's own
+// certificate and key for a server requiring mutual TLS (sluice serve
+// --client-ca). Without TLS the connection is plain text, which connect()
+// allows only to a loopback host (127.0.0.0/8, ::1, localhost) or a Unix
+// socket unless insecure is true.
+//
+// A bearer token (token, or the first line of token_file that is neither
+// blank nor a # comment, surrounding white space trimmed; not both) is sent
+// with every call as the metadata "authorization: Bearer <token>", what a
+// server started with --token-file checks. Over plain text it can be read
+// by anyone on the path: keep that to loopback.
+struct Security {
+  bool tls = false;
+  std::string ca_file, cert_file, key_file;
+  std::string token, token_file;
+  bool insecure = false;
+};
+
+// connect returns a channel to target ("host:port", or a gRPC target such
+// as "unix:///path") whose send and receive limits are both
+// max_message_bytes (0: 4 MiB); use the same value in
+// Spec::max_message_bytes. It throws Error (Code::Usage, nothing sent) for
+// plain text to a host that is not loopback without Security::insecure,
+// an unreadable file, a certificate without its key, or an empty token.
+// The connection itself is made by the first call.
+std::shared_ptr<grpc::Channel> connect(const std::string& target, const Security& security,
+                                       std::int64_t max_message_bytes = 0);
+
+// connect without TLS or token: plain text, to loopback only.
 std::shared_ptr<grpc::Channel> connect(const std::string& target, std::int64_t max_message_bytes = 0);
+
+// is_loopback reports whether target names a Unix socket or a loopback
+// host, the only places connect() sends plain text to without
+// Security::insecure.
+bool is_loopback(const std::string& target);
 
 // run runs one session on channel and returns its summary, or throws Error.
 Summary run(const std::shared_ptr<grpc::Channel>& channel, const Spec& spec, const Evaluator& evaluate,
