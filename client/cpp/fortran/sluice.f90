@@ -88,7 +88,8 @@ module sluice
     sluice_session_run, sluice_session_summary, sluice_session_error_message, sluice_session_error_field, &
     sluice_session_error_description, sluice_session_grpc_code, sluice_session_free, sluice_error_name, &
     sluice_reason_name, sluice_string, sluice_layout_ok, sluice_session_set_tls, sluice_session_set_token, &
-    sluice_session_set_token_file, sluice_session_set_insecure
+    sluice_session_set_token_file, sluice_session_set_insecure, sluice_session_follow, sluice_session_next_seq, &
+    sluice_session_id
 
   interface
     subroutine sluice_spec_defaults(spec) bind(c, name="sluice_spec_defaults")
@@ -152,6 +153,24 @@ module sluice
       type(c_ptr), value :: s
       character(kind=c_char), dimension(*), intent(in) :: target
     end function sluice_session_run
+
+    ! session_id ends with c_null_char; from_seq is uint64_t in C.
+    integer(c_int) function sluice_session_follow(s, target, session_id, from_seq) bind(c, name="sluice_session_follow")
+      import :: c_ptr, c_int, c_char, c_int64_t
+      type(c_ptr), value :: s
+      character(kind=c_char), dimension(*), intent(in) :: target, session_id
+      integer(c_int64_t), value :: from_seq
+    end function sluice_session_follow
+
+    integer(c_int64_t) function sluice_session_next_seq(s) bind(c, name="sluice_session_next_seq")
+      import :: c_ptr, c_int64_t
+      type(c_ptr), value :: s
+    end function sluice_session_next_seq
+
+    type(c_ptr) function sluice_session_id(s) bind(c, name="sluice_session_id")
+      import :: c_ptr
+      type(c_ptr), value :: s
+    end function sluice_session_id
 
     integer(c_int) function sluice_session_summary(s, out) bind(c, name="sluice_session_summary")
       import :: c_ptr, c_int, sluice_summary

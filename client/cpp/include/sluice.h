@@ -307,6 +307,24 @@ int sluice_session_set_insecure(sluice_session *s, int insecure);
  * one (a Finished frame with reason FAILED, or after a callback error). */
 int sluice_session_run(sluice_session *s, const char *target);
 
+/* Follows another client's session: streams the draws of session_id
+ * (sluice_session_id of that session) from sequence number from_seq on to
+ * the draws callback of s, in order and exactly once, until the session's
+ * final frame, with s's TLS and token settings. Make s with
+ * sluice_session_new(NULL, NULL, NULL): its spec and evaluation callback
+ * are not used. Returns SLUICE_OK (the summary then holds the session's
+ * figures, draws_received this follower's rows) or an error code:
+ * SLUICE_ERR_SERVER with gRPC code 5 (NOT_FOUND) for an unknown session,
+ * 11 (OUT_OF_RANGE) when the rows asked for have left the server's
+ * buffer. After an error, sluice_session_next_seq says where a new handle
+ * resumes without loss or duplicate. A handle follows (or runs) once. The
+ * handle's message limit is 64 MiB, as large as a Follow frame can be. */
+int sluice_session_follow(sluice_session *s, const char *target, const char *session_id, uint64_t from_seq);
+
+/* After sluice_session_follow: the sequence number after the last draw
+ * received (from_seq when none arrived). */
+uint64_t sluice_session_next_seq(const sluice_session *s);
+
 /* Fills *out with the summary; returns SLUICE_OK, or SLUICE_ERR_STATE when
  * no summary was received. */
 int sluice_session_summary(const sluice_session *s, sluice_summary *out);

@@ -265,6 +265,49 @@ class Runner {
  public:
   Runner(const Spec& spec, const Evaluator& eval, const Callbacks& cb) : spec_(spec), eval_(eval), cb_(cb) {}
 
+  // follow reads a Follow stream: draws and the final frame.
+  Summary follow(pb::SluiceService::Stub& stub, const std::string& session_id, std::uint64_t from_seq) {
+    next_seq_ = from_seq;
+    sum_.next_seq = from_seq;
+    pb::FollowRequest req;
+    req.set_session_id(session_id);
+    req.set_from_seq(from_seq);
+    auto reader = stub.Follow(&ctx_, req);
+    std::string protocol_error;
+    pb::FollowResponse frame;
+    while (protocol_error.empty() && reader->Read(&frame)) {
+      switch (frame.frame_case()) {
+        case pb::FollowResponse::kDraws:
+          protocol_error = deliver(frame.draws());
+          break;
+        case pb::FollowResponse::kFinished:
+          finish(frame.finished());
+          break;
+        default:
+          break;
+      }
+    }
+    if (!protocol_error.empty()) ctx_.TryCancel();
+    grpc::Status st = reader->Finish();
+    // A follower's summary is what it received, finished or not.
+    if (!protocol_error.empty()) {
+      Error e(Code::Protocol, 0, "sluice: " + protocol_error);
+      e.summary = sum_;
+      throw e;
+    }
+    if (!st.ok()) {
+      Error e = error_from_status(st);
+      e.summary = sum_;
+      throw e;
+    }
+    if (!finished_) {
+      Error e(Code::Protocol, 0, "sluice: follow stream ended without a finished frame");
+      e.summary = sum_;
+      throw e;
+    }
+    return sum_;
+  }
+
   Summary run(pb::SluiceService::Stub& stub, std::int64_t limit) {
     stream_ = stub.Session(&ctx_);
     pb::SessionRequest reg;
@@ -422,6 +465,7 @@ class Runner {
       return "malformed draws frame at sequence " + std::to_string(w.seq());
     }
     next_seq_ += static_cast<std::uint64_t>(w.rows());
+    sum_.next_seq = next_seq_;
     sum_.draws_received += w.rows();
     if (!cb_.on_draws) return "";
     get_floats(w.values(), draws_);
@@ -646,6 +690,19 @@ Summary run(const std::shared_ptr<grpc::Channel>& channel, const Spec& spec, con
   auto stub = pb::SluiceService::NewStub(channel);
   Runner r(spec, evaluate, callbacks);
   return r.run(*stub, limit);
+}
+
+Summary follow(const std::shared_ptr<grpc::Channel>& channel, const std::string& session_id, std::uint64_t from_seq,
+               const std::function<void(const Draws&)>& on_draws) {
+  if (!channel) throw Error(Code::Usage, 0, "sluice: follow: null channel");
+  if (session_id.empty()) throw Error(Code::Usage, 0, "sluice: follow: no session id");
+  static const Spec no_spec;
+  static const Evaluator no_evaluator;
+  Callbacks cb;
+  cb.on_draws = on_draws;
+  auto stub = pb::SluiceService::NewStub(channel);
+  Runner r(no_spec, no_evaluator, cb);
+  return r.follow(*stub, session_id, from_seq);
 }
 
 }  // namespace sluice

@@ -5,6 +5,7 @@
 
 #include <cstring>
 #include <exception>
+#include <functional>
 #include <new>
 #include <optional>
 #include <stdexcept>
@@ -89,6 +90,7 @@ struct sluice_session {
   void* progress_data = nullptr;
   bool ran = false;
   sluice::Security security;
+  std::uint64_t next_seq = 0;
 
   std::optional<sluice::Summary> summary;
   std::string session_id;
@@ -341,6 +343,53 @@ int sluice_session_run(sluice_session* s, const char* target) {
     return SLUICE_ERR_PROTOCOL;
   }
 }
+
+int sluice_session_follow(sluice_session* s, const char* target, const char* session_id, uint64_t from_seq) {
+  if (s == nullptr) return SLUICE_ERR_USAGE;
+  try {
+    if (s->ran) {
+      s->set_error(0, "sluice_session_follow: this handle has already run");
+      return SLUICE_ERR_STATE;
+    }
+    s->set_error(0, "");
+    if (target == nullptr || *target == '\0') {
+      s->set_error(0, "sluice_session_follow: no target (want \"host:port\")");
+      return SLUICE_ERR_USAGE;
+    }
+    if (session_id == nullptr || *session_id == '\0') {
+      s->set_error(0, "sluice_session_follow: no session id");
+      return SLUICE_ERR_USAGE;
+    }
+    s->ran = true;
+    s->next_seq = from_seq;
+    std::function<void(const sluice::Draws&)> on_draws = [s](const sluice::Draws& d) {
+      s->next_seq = d.seq + static_cast<std::uint64_t>(d.rows);
+      if (s->on_draws == nullptr) return;
+      sluice_draws cd{d.seq, d.rows, d.dim, d.values, d.chains, d.iterations};
+      s->on_draws(&cd, s->draws_data);
+    };
+    try {
+      auto channel = sluice::connect(target, s->security, sluice::kFollowMaxMessageBytes);
+      s->summary = sluice::follow(channel, session_id, from_seq, on_draws);
+      return SLUICE_OK;
+    } catch (const sluice::Error& e) {
+      if (e.summary && e.summary->reason != sluice::Reason::None) s->summary = e.summary;
+      s->set_error(e.grpc_code, e.message, e.field, e.description);
+      return static_cast<int>(e.code);
+    }
+  } catch (const std::bad_alloc&) {
+    s->set_error(0, "sluice: out of memory");
+    return SLUICE_ERR_USAGE;
+  } catch (const std::exception& e) {
+    s->set_error(0, std::string("sluice: ") + e.what());
+    return SLUICE_ERR_PROTOCOL;
+  } catch (...) {
+    s->set_error(0, "sluice: unknown failure");
+    return SLUICE_ERR_PROTOCOL;
+  }
+}
+
+uint64_t sluice_session_next_seq(const sluice_session* s) { return s == nullptr ? 0 : s->next_seq; }
 
 int sluice_session_summary(const sluice_session* cs, sluice_summary* out) {
   if (cs == nullptr || out == nullptr) return SLUICE_ERR_USAGE;

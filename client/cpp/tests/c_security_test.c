@@ -19,6 +19,10 @@
  * (MCSE = sd / sqrt(bulk-ESS), the server's final bulk-ESS; a two-sided
  * normal tail of about 6e-7), so that "passes" means draws were made and
  * delivered, not only that a call returned.
+ *
+ * It also follows a finished session with a token (sluice_session_follow):
+ * the follower must receive, bit for bit and in order, the draws the
+ * session's own client received, from the start and from the middle.
  */
 #include <math.h>
 #include <stdio.h>
@@ -160,6 +164,114 @@ static const char *read_token(void) {
   exit(2);
 }
 
+/* A record of the draws a callback received: rows, the first sequence
+ * number, the next one expected, and running sums of every value, of value
+ * x (seq + 1), and of the values from sequence number 1000 on. Sums taken
+ * in the same order over the same values agree bit for bit, however the
+ * rows were split into blocks. */
+typedef struct {
+  long rows;
+  uint64_t first, next;
+  double sum, weighted, tail;
+  int gap;
+} record;
+
+static void record_draws(const sluice_draws *d, void *user) {
+  record *r = (record *)user;
+  int i, j;
+  if (r->rows == 0) r->first = d->seq;
+  else if (d->seq != r->next) r->gap = 1;
+  for (i = 0; i < d->rows; i++)
+    for (j = 0; j < d->dim; j++) {
+      double v = d->values[i * d->dim + j];
+      r->sum += v;
+      r->weighted += v * (double)(d->seq + i + 1);
+      if (d->seq + i >= 1000) r->tail += v;
+    }
+  r->rows += d->rows;
+  r->next = d->seq + d->rows;
+}
+
+/* Run a session with a token, keeping its draws, then follow it. */
+static void test_follow(const char *token) {
+  record own, all, half, before;
+  char why[512] = "";
+  char id[128];
+  int ok = 1, rc;
+  sluice_session *s = new_session(), *f;
+  sluice_summary sum, fsum;
+  memset(&own, 0, sizeof own);
+  memset(&all, 0, sizeof all);
+  memset(&half, 0, sizeof half);
+  memset(&before, 0, sizeof before);
+  sluice_session_set_token(s, token);
+  sluice_session_on_draws(s, record_draws, &own);
+  rc = sluice_session_run(s, token_target);
+  snprintf(id, sizeof id, "%s", sluice_session_id(s));
+  if (rc != SLUICE_OK || own.rows != 2000 || own.gap || sluice_session_summary(s, &sum) != SLUICE_OK) {
+    snprintf(why, sizeof why, "session: %s: %s, %ld rows", sluice_error_name(rc), sluice_session_error_message(s),
+             own.rows);
+    report("follow_replays_every_draw", 0, why);
+    sluice_session_free(s);
+    return;
+  }
+
+  /* From the start: the same draws, the same summary means. */
+  f = sluice_session_new(NULL, NULL, NULL);
+  sluice_session_set_token_file(f, file("token"));
+  sluice_session_on_draws(f, record_draws, &all);
+  rc = sluice_session_follow(f, token_target, id, 0);
+  if (rc != SLUICE_OK) {
+    snprintf(why, sizeof why, "%s (gRPC %d): %s", sluice_error_name(rc), sluice_session_grpc_code(f),
+             sluice_session_error_message(f));
+    ok = 0;
+  } else if (all.rows != own.rows || all.first != 0 || all.gap || all.sum != own.sum || all.weighted != own.weighted ||
+             sluice_session_next_seq(f) != 2000) {
+    snprintf(why, sizeof why, "follower got %ld rows from %llu (sum %.17g, weighted %.17g), session %ld (%.17g, %.17g)",
+             all.rows, (unsigned long long)all.first, all.sum, all.weighted, own.rows, own.sum, own.weighted);
+    ok = 0;
+  } else if (sluice_session_summary(f, &fsum) != SLUICE_OK || fsum.reason != SLUICE_REASON_DRAWS_COLLECTED ||
+             fsum.draws_received != 2000 || fsum.dim != 2 || fsum.mean[0] != sum.mean[0] || fsum.mean[1] != sum.mean[1]) {
+    snprintf(why, sizeof why, "follower's summary differs from the session's");
+    ok = 0;
+  }
+  sluice_session_free(f);
+  report("follow_replays_every_draw", ok, why);
+
+  /* From the middle: exactly the second half. */
+  f = sluice_session_new(NULL, NULL, NULL);
+  sluice_session_set_token(f, token);
+  sluice_session_on_draws(f, record_draws, &half);
+  rc = sluice_session_follow(f, token_target, id, 1000);
+  ok = rc == SLUICE_OK && half.rows == 1000 && half.first == 1000 && !half.gap && half.sum == own.tail &&
+       sluice_session_next_seq(f) == 2000;
+  snprintf(why, sizeof why, "%s: %s; %ld rows from %llu, sum %.17g, session's %.17g", sluice_error_name(rc),
+           sluice_session_error_message(f), half.rows, (unsigned long long)half.first, half.sum, own.tail);
+  sluice_session_free(f);
+  report("follow_from_the_middle", ok, why);
+
+  f = sluice_session_new(NULL, NULL, NULL);
+  sluice_session_set_token(f, "not-the-token-of-this-server");
+  sluice_session_on_draws(f, record_draws, &before);
+  rc = sluice_session_follow(f, token_target, id, 0);
+  snprintf(why, sizeof why, "%s (gRPC %d): %s; %ld rows", sluice_error_name(rc), sluice_session_grpc_code(f),
+           sluice_session_error_message(f), before.rows);
+  report("follow_wrong_token_unauthenticated",
+         rc == SLUICE_ERR_UNAUTHENTICATED && sluice_session_grpc_code(f) == 16 &&
+             strstr(sluice_session_error_message(f), "invalid bearer token") != NULL && before.rows == 0,
+         why);
+  sluice_session_free(f);
+
+  f = sluice_session_new(NULL, NULL, NULL);
+  sluice_session_set_token(f, token);
+  rc = sluice_session_follow(f, token_target, "no-such-session", 0);
+  snprintf(why, sizeof why, "%s (gRPC %d): %s", sluice_error_name(rc), sluice_session_grpc_code(f),
+           sluice_session_error_message(f));
+  report("follow_unknown_session_not_found", rc == SLUICE_ERR_SERVER && sluice_session_grpc_code(f) == 5, why);
+  sluice_session_free(f);
+  sluice_session_free(s);
+}
+
 int main(int argc, char **argv) {
   sluice_session *s;
   const char *token;
@@ -258,6 +370,8 @@ int main(int argc, char **argv) {
   s = new_session();
   sluice_session_set_token(s, "   ");
   expect_fail("blank_token_refused", s, token_target, SLUICE_ERR_USAGE, 0, "blank");
+
+  test_follow(token);
 
   printf("c_security_test: %d passed, %d failed\n", passed, failed);
   return failed > 0 ? 1 : 0;

@@ -198,6 +198,9 @@ struct Summary {
   std::vector<Parameter> parameters;
   int parameters_omitted = 0;
   std::int64_t draws_received = 0;
+  // The sequence number after the last draw received: where a follow()
+  // interrupted by an error resumes without loss or duplicate.
+  std::uint64_t next_seq = 0;
 };
 
 // Callbacks run on the thread that called run().
@@ -278,6 +281,24 @@ bool is_loopback(const std::string& target);
 // run runs one session on channel and returns its summary, or throws Error.
 Summary run(const std::shared_ptr<grpc::Channel>& channel, const Spec& spec, const Evaluator& evaluate,
             const Callbacks& callbacks = {});
+
+// The receive limit a follower's channel should have: a Follow frame can be
+// as large as the server's own limit (sluice serve --max-message-bytes,
+// 16 MiB by default). connect(target, security, kFollowMaxMessageBytes).
+constexpr std::int64_t kFollowMaxMessageBytes = 64 << 20;
+
+// follow streams the draws of session session_id (Registered::session_id)
+// from sequence number from_seq on, to a consumer other than the session's
+// client (the Follow rpc): each block goes to on_draws in sequence order,
+// exactly once, and follow returns the session's summary once its final
+// frame arrives (its registered part empty, draws_received counting this
+// follower's rows). A token set on the channel (Security) is sent as for
+// run(). On an error (NOT_FOUND for an unknown session, OUT_OF_RANGE when
+// the rows asked for have left the server's bounded buffer, a broken
+// connection) it throws Error whose summary holds what was received: resume
+// with follow(channel, session_id, e.summary->next_seq, on_draws).
+Summary follow(const std::shared_ptr<grpc::Channel>& channel, const std::string& session_id, std::uint64_t from_seq,
+               const std::function<void(const Draws&)>& on_draws);
 
 }  // namespace sluice
 
