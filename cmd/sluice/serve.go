@@ -13,6 +13,8 @@ import (
 	"go.uber.org/zap"
 	"go.uber.org/zap/zapcore"
 	"google.golang.org/grpc"
+	"google.golang.org/grpc/health"
+	healthpb "google.golang.org/grpc/health/grpc_health_v1"
 
 	"sluice/server"
 	"sluice/server/metrics"
@@ -75,6 +77,7 @@ func serve(ctx context.Context, args []string, stderr io.Writer) error {
 	addr := fs.String("addr", "127.0.0.1:7070", "address to listen on")
 	level := fs.String("log-level", "info", "log level: debug, info, warn, error")
 	grace := fs.Duration("grace", 15*time.Second, "on SIGINT/SIGTERM, how long running sessions get to finish")
+	healthAddr := fs.String("health-addr", "", "also serve grpc.health.v1.Health alone on this address, in plain text and without tokens, for probes that speak neither (empty: off)")
 	var sf serveFlags
 	sf.register(fs)
 	var sec securityFlags
@@ -92,6 +95,7 @@ func serve(ctx context.Context, args []string, stderr io.Writer) error {
 			"sluice serve",
 			"sluice serve --addr 127.0.0.1:7070 --log-level info",
 			"sluice serve --addr 0.0.0.0:7070 --tls-cert server.pem --tls-key server-key.pem --token-file tokens.txt",
+			"sluice serve --addr 0.0.0.0:7070 --health-addr 0.0.0.0:7071 --tls-cert server.pem --tls-key server-key.pem --token-file tokens.txt",
 			"sluice serve --max-sessions 8 --max-message-bytes 67108864 --answer-timeout 2m --metrics-addr 127.0.0.1:9090",
 		},
 		kernels: "Kernels a session may ask for (Register.kernel):",
@@ -124,11 +128,31 @@ func serve(ctx context.Context, args []string, stderr io.Writer) error {
 			return fmt.Errorf("--metrics-addr: %w", err)
 		}
 	}
+	var hlis net.Listener
+	if *healthAddr != "" {
+		if hlis, err = net.Listen("tcp", *healthAddr); err != nil {
+			_ = lis.Close()
+			if mlis != nil {
+				_ = mlis.Close()
+			}
+			return fmt.Errorf("--health-addr: %w", err)
+		}
+	}
 	srv := server.New(opts)
 	log.Info("serving", zap.String("addr", lis.Addr().String()), zap.Int64("max_message_bytes", sf.maxMessageBytes),
 		zap.Bool("tls", sec.tls.Enabled()), zap.Bool("mutual_tls", sec.tls.ClientCAFile != ""), zap.Bool("tokens", sec.tokenFile != ""))
-	errc := make(chan error, 2)
+	errc := make(chan error, 3)
 	go func() { errc <- srv.Serve(lis) }()
+	var probes *healthOnly
+	if hlis != nil {
+		probes = newHealthOnly()
+		log.Info("health", zap.String("addr", hlis.Addr().String()))
+		go func() {
+			if err := probes.grpc.Serve(hlis); err != nil {
+				errc <- fmt.Errorf("health: %w", err)
+			}
+		}()
+	}
 	var hsrv *http.Server
 	if mlis != nil {
 		hsrv = &http.Server{Handler: m.Handler(sec.pprof), ReadHeaderTimeout: 30 * time.Second}
@@ -148,7 +172,13 @@ func serve(ctx context.Context, args []string, stderr io.Writer) error {
 	}
 	sctx, cancel := context.WithTimeout(context.Background(), *grace)
 	defer cancel()
+	if probes != nil {
+		probes.health.Shutdown() // NOT_SERVING while sessions drain
+	}
 	srv.Shutdown(sctx)
+	if probes != nil {
+		probes.grpc.Stop()
+	}
 	if hsrv != nil {
 		_ = hsrv.Shutdown(sctx)
 	}
@@ -214,4 +244,22 @@ func (f *securityFlags) options(addr string) (*metrics.Metrics, []grpc.ServerOpt
 		opts = append(opts, t.ServerOptions()...)
 	}
 	return m, opts, nil
+}
+
+// healthOnly is the --health-addr server: grpc.health.v1.Health and
+// nothing else, plain text, no tokens, reporting SERVING for "" and the
+// sampling service until shutdown starts. It lets an orchestrator's gRPC
+// probe, which speaks neither TLS nor tokens, check a server whose main
+// port needs both; it answers no other rpc.
+type healthOnly struct {
+	grpc   *grpc.Server
+	health *health.Server
+}
+
+func newHealthOnly() *healthOnly {
+	h := &healthOnly{grpc: grpc.NewServer(), health: health.NewServer()}
+	h.health.SetServingStatus("", healthpb.HealthCheckResponse_SERVING)
+	h.health.SetServingStatus(server.ServiceName, healthpb.HealthCheckResponse_SERVING)
+	healthpb.RegisterHealthServer(h.grpc, h.health)
+	return h
 }

@@ -18,7 +18,10 @@
 ! It prints "check passed" and exits 0, or "check FAILED" and stops with
 ! code 1.
 !
-!   linear_gaussian HOST:PORT
+!   linear_gaussian HOST:PORT [TOKEN_FILE [CA_FILE]]
+!
+! TOKEN_FILE: send the bearer token it holds (a server with --token-file);
+! CA_FILE: connect with TLS, trusting the authorities it holds.
 module load_cell
   use, intrinsic :: iso_c_binding
   use sluice
@@ -167,7 +170,7 @@ program linear_gaussian
   real(c_double), target :: start(n_par) = 0d0
   character(kind=c_char, len=16), target :: kernel
   character(kind=c_char, len=64), target :: names
-  character(len=256) :: target
+  character(len=256) :: target, token_file, ca_file
   character(len=:), allocatable :: layout_message
   type(c_ptr) :: s
   integer(c_int) :: rc
@@ -177,11 +180,15 @@ program linear_gaussian
   integer :: j
   character(len=2), parameter :: labels(n_par) = ["b0", "b1", "b2"]
 
-  if (command_argument_count() /= 1) then
-    write (*, '(a)') "usage: linear_gaussian HOST:PORT"
+  if (command_argument_count() < 1 .or. command_argument_count() > 3) then
+    write (*, '(a)') "usage: linear_gaussian HOST:PORT [TOKEN_FILE [CA_FILE]]"
     stop 2
   end if
   call get_command_argument(1, target)
+  token_file = ""
+  ca_file = ""
+  if (command_argument_count() >= 2) call get_command_argument(2, token_file)
+  if (command_argument_count() >= 3) call get_command_argument(3, ca_file)
   if (.not. sluice_layout_ok(layout_message)) then
     write (*, '(a, a)') "linear_gaussian: the Fortran types do not match the library: ", layout_message
     stop 1
@@ -208,6 +215,8 @@ program linear_gaussian
   if (.not. c_associated(s)) error stop "linear_gaussian: sluice_session_new failed"
   call sluice_session_on_draws(s, c_funloc(on_draws), c_loc(model))
   call sluice_session_on_progress(s, c_funloc(on_progress), c_loc(model))
+  if (len_trim(token_file) > 0) rc = sluice_session_set_token_file(s, trim(token_file) // c_null_char)
+  if (len_trim(ca_file) > 0) rc = sluice_session_set_tls(s, trim(ca_file) // c_null_char, c_null_char, c_null_char)
   rc = sluice_session_run(s, trim(target) // c_null_char)
   if (rc /= SLUICE_OK) then
     write (*, '(a, a, a, a, a, a)') "session failed: ", sluice_string(sluice_error_name(rc)), ": ", &

@@ -16,6 +16,12 @@
 //
 //   spring_damper --target 127.0.0.1:7070 [--chains 8] [--draws 1500]
 //                 [--burn-in 500] [--seed 11] [--check]
+//                 [--ca ca.pem [--cert client.pem --key client-key.pem]]
+//                 [--token-file token.txt]
+//
+// --ca connects with TLS trusting that authority, --cert and --key add a
+// client certificate (mutual TLS), --token-file sends the bearer token the
+// file holds.
 //
 // With --check the program exits 1 unless each sampled posterior mean lies
 // within 5 Monte Carlo standard errors of the closed-form mean (MCSE from the
@@ -144,7 +150,8 @@ double quantile(std::vector<double> v, double q) {
 
 void usage() {
   std::fprintf(stderr,
-               "usage: spring_damper --target HOST:PORT [--chains N] [--draws N] [--burn-in N] [--seed N] [--check]\n");
+               "usage: spring_damper --target HOST:PORT [--chains N] [--draws N] [--burn-in N] [--seed N] [--check]\n"
+               "                     [--ca FILE [--cert FILE --key FILE]] [--token-file FILE]\n");
   std::exit(2);
 }
 
@@ -156,6 +163,7 @@ int main(int argc, char** argv) {
   long draws = 1500, burn_in = 500;
   unsigned long long seed = 11;
   bool check = false;
+  sluice::Security security;
   for (int i = 1; i < argc; ++i) {
     const std::string a = argv[i];
     auto value = [&]() -> const char* {
@@ -168,6 +176,10 @@ int main(int argc, char** argv) {
     else if (a == "--burn-in") burn_in = std::atol(value());
     else if (a == "--seed") seed = std::strtoull(value(), nullptr, 10);
     else if (a == "--check") check = true;
+    else if (a == "--ca") security.ca_file = value();
+    else if (a == "--cert") security.cert_file = value();
+    else if (a == "--key") security.key_file = value();
+    else if (a == "--token-file") security.token_file = value();
     else usage();
   }
   if (target.empty()) usage();
@@ -204,7 +216,7 @@ int main(int argc, char** argv) {
 
   sluice::Summary s;
   try {
-    s = sluice::run(sluice::connect(target, spec.max_message_bytes), spec, evaluate, cb);
+    s = sluice::run(sluice::connect(target, security, spec.max_message_bytes), spec, evaluate, cb);
   } catch (const sluice::Error& e) {
     std::fprintf(stderr, "spring_damper: session failed (code %d, gRPC %d): %s%s%s\n", static_cast<int>(e.code),
                  e.grpc_code, e.message.c_str(), e.field.empty() ? "" : " field ", e.field.c_str());

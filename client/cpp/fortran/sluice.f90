@@ -19,7 +19,7 @@ module sluice
   integer(c_int), parameter, public :: SLUICE_OK = 0, SLUICE_ERR_INVALID_ARGUMENT = 1, &
     SLUICE_ERR_RESOURCE_EXHAUSTED = 2, SLUICE_ERR_DEADLINE_EXCEEDED = 3, SLUICE_ERR_UNAVAILABLE = 4, &
     SLUICE_ERR_CANCELLED = 5, SLUICE_ERR_SERVER = 6, SLUICE_ERR_EVALUATOR = 7, SLUICE_ERR_PROTOCOL = 8, &
-    SLUICE_ERR_USAGE = 9, SLUICE_ERR_STATE = 10
+    SLUICE_ERR_USAGE = 9, SLUICE_ERR_STATE = 10, SLUICE_ERR_UNAUTHENTICATED = 11
   ! sluice_reason
   integer(c_int32_t), parameter, public :: SLUICE_REASON_NONE = 0, SLUICE_REASON_BUDGET_SPENT = 1, &
     SLUICE_REASON_TIME_SPENT = 2, SLUICE_REASON_STOPPED = 3, SLUICE_REASON_DRAWS_COLLECTED = 4, &
@@ -87,7 +87,9 @@ module sluice
   public :: sluice_spec_defaults, sluice_session_new, sluice_session_on_draws, sluice_session_on_progress, &
     sluice_session_run, sluice_session_summary, sluice_session_error_message, sluice_session_error_field, &
     sluice_session_error_description, sluice_session_grpc_code, sluice_session_free, sluice_error_name, &
-    sluice_reason_name, sluice_string, sluice_layout_ok
+    sluice_reason_name, sluice_string, sluice_layout_ok, sluice_session_set_tls, sluice_session_set_token, &
+    sluice_session_set_token_file, sluice_session_set_insecure, sluice_session_follow, sluice_session_next_seq, &
+    sluice_session_id
 
   interface
     subroutine sluice_spec_defaults(spec) bind(c, name="sluice_spec_defaults")
@@ -118,11 +120,57 @@ module sluice
       type(c_ptr), value :: user_data
     end subroutine sluice_session_on_progress
 
+    ! Files and tokens end with c_null_char; pass c_null_char alone for
+    ! "none" (ca_file: the system's roots; cert_file and key_file: no
+    ! client certificate).
+    integer(c_int) function sluice_session_set_tls(s, ca_file, cert_file, key_file) &
+      bind(c, name="sluice_session_set_tls")
+      import :: c_ptr, c_int, c_char
+      type(c_ptr), value :: s
+      character(kind=c_char), dimension(*), intent(in) :: ca_file, cert_file, key_file
+    end function sluice_session_set_tls
+
+    integer(c_int) function sluice_session_set_token(s, token) bind(c, name="sluice_session_set_token")
+      import :: c_ptr, c_int, c_char
+      type(c_ptr), value :: s
+      character(kind=c_char), dimension(*), intent(in) :: token
+    end function sluice_session_set_token
+
+    integer(c_int) function sluice_session_set_token_file(s, path) bind(c, name="sluice_session_set_token_file")
+      import :: c_ptr, c_int, c_char
+      type(c_ptr), value :: s
+      character(kind=c_char), dimension(*), intent(in) :: path
+    end function sluice_session_set_token_file
+
+    integer(c_int) function sluice_session_set_insecure(s, insecure) bind(c, name="sluice_session_set_insecure")
+      import :: c_ptr, c_int
+      type(c_ptr), value :: s
+      integer(c_int), value :: insecure
+    end function sluice_session_set_insecure
+
     integer(c_int) function sluice_session_run(s, target) bind(c, name="sluice_session_run")
       import :: c_ptr, c_int, c_char
       type(c_ptr), value :: s
       character(kind=c_char), dimension(*), intent(in) :: target
     end function sluice_session_run
+
+    ! session_id ends with c_null_char; from_seq is uint64_t in C.
+    integer(c_int) function sluice_session_follow(s, target, session_id, from_seq) bind(c, name="sluice_session_follow")
+      import :: c_ptr, c_int, c_char, c_int64_t
+      type(c_ptr), value :: s
+      character(kind=c_char), dimension(*), intent(in) :: target, session_id
+      integer(c_int64_t), value :: from_seq
+    end function sluice_session_follow
+
+    integer(c_int64_t) function sluice_session_next_seq(s) bind(c, name="sluice_session_next_seq")
+      import :: c_ptr, c_int64_t
+      type(c_ptr), value :: s
+    end function sluice_session_next_seq
+
+    type(c_ptr) function sluice_session_id(s) bind(c, name="sluice_session_id")
+      import :: c_ptr
+      type(c_ptr), value :: s
+    end function sluice_session_id
 
     integer(c_int) function sluice_session_summary(s, out) bind(c, name="sluice_session_summary")
       import :: c_ptr, c_int, sluice_summary

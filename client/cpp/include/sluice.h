@@ -12,7 +12,9 @@
  *   spec.dim = 2; spec.chains = 8; spec.step = 0.1; spec.draws_per_chain = 1000;
  *   spec.start = start; spec.start_rows = 1;
  *   sluice_session *s = sluice_session_new(&spec, evaluate, &my_model);
- *   int rc = sluice_session_run(s, "127.0.0.1:7070");
+ *   sluice_session_set_tls(s, "ca.pem", NULL, NULL);      (servers with TLS)
+ *   sluice_session_set_token_file(s, "token.txt");       (servers with tokens)
+ *   int rc = sluice_session_run(s, "sluice:7070");
  *   if (rc != SLUICE_OK)
  *     fprintf(stderr, "%s: %s (field %s)\n", sluice_error_name(rc),
  *             sluice_session_error_message(s), sluice_session_error_field(s));
@@ -72,7 +74,10 @@ enum sluice_code {
    * spec whose arrays are missing). Nothing was sent. */
   SLUICE_ERR_USAGE = 9,
   /* The session was already run: a handle runs once. */
-  SLUICE_ERR_STATE = 10
+  SLUICE_ERR_STATE = 10,
+  /* The server wants a bearer token and got none, or not one it accepts
+   * (sluice_session_set_token). gRPC UNAUTHENTICATED. */
+  SLUICE_ERR_UNAUTHENTICATED = 11
 };
 
 /* Why a session ended (Finished.reason). */
@@ -269,11 +274,56 @@ void sluice_session_on_draws(sluice_session *s, sluice_draws_fn fn, void *user_d
 /* Calls fn for every progress report. */
 void sluice_session_on_progress(sluice_session *s, sluice_progress_fn fn, void *user_data);
 
-/* Connects to target ("host:port") without TLS, runs the session until the
+/* Transport security and authentication, set before sluice_session_run.
+ * Each returns SLUICE_OK, or SLUICE_ERR_USAGE (a NULL handle, a certificate
+ * without its key); files are read by sluice_session_run, which returns
+ * SLUICE_ERR_USAGE with a message naming an unreadable one.
+ *
+ * sluice_session_set_tls: connect with TLS. ca_file holds the PEM
+ * authorities trusted to sign the server's certificate (NULL or "": the
+ * system's roots); cert_file and key_file, both or neither, the client's
+ * certificate and key for a server requiring them (mutual TLS). */
+int sluice_session_set_tls(sluice_session *s, const char *ca_file, const char *cert_file, const char *key_file);
+
+/* Sends "authorization: Bearer <token>" with every call (what a server
+ * started with --token-file wants). NULL or "" removes it. */
+int sluice_session_set_token(sluice_session *s, const char *token);
+
+/* The same with the token read from a file: its first line that is
+ * neither blank nor a # comment, white space trimmed. NULL or "" removes
+ * it. */
+int sluice_session_set_token_file(sluice_session *s, const char *path);
+
+/* Non-zero allows a plain-text connection to a host that is not loopback
+ * (a trusted network). Without TLS and without it, sluice_session_run
+ * refuses any target but 127.0.0.0/8, ::1, localhost and Unix sockets
+ * with SLUICE_ERR_USAGE, before sending anything. */
+int sluice_session_set_insecure(sluice_session *s, int insecure);
+
+/* Connects to target ("host:port"), with TLS and a token when set above
+ * (plain text otherwise, to loopback only), runs the session until the
  * server finishes it, and returns SLUICE_OK or an error code. The summary
  * is available after SLUICE_OK, and after an error when the server sent
  * one (a Finished frame with reason FAILED, or after a callback error). */
 int sluice_session_run(sluice_session *s, const char *target);
+
+/* Follows another client's session: streams the draws of session_id
+ * (sluice_session_id of that session) from sequence number from_seq on to
+ * the draws callback of s, in order and exactly once, until the session's
+ * final frame, with s's TLS and token settings. Make s with
+ * sluice_session_new(NULL, NULL, NULL): its spec and evaluation callback
+ * are not used. Returns SLUICE_OK (the summary then holds the session's
+ * figures, draws_received this follower's rows) or an error code:
+ * SLUICE_ERR_SERVER with gRPC code 5 (NOT_FOUND) for an unknown session,
+ * 11 (OUT_OF_RANGE) when the rows asked for have left the server's
+ * buffer. After an error, sluice_session_next_seq says where a new handle
+ * resumes without loss or duplicate. A handle follows (or runs) once. The
+ * handle's message limit is 64 MiB, as large as a Follow frame can be. */
+int sluice_session_follow(sluice_session *s, const char *target, const char *session_id, uint64_t from_seq);
+
+/* After sluice_session_follow: the sequence number after the last draw
+ * received (from_seq when none arrived). */
+uint64_t sluice_session_next_seq(const sluice_session *s);
 
 /* Fills *out with the summary; returns SLUICE_OK, or SLUICE_ERR_STATE when
  * no summary was received. */

@@ -3,8 +3,12 @@
 
 #include <grpcpp/grpcpp.h>
 
+#include <cctype>
 #include <cstring>
 #include <exception>
+#include <fstream>
+#include <map>
+#include <sstream>
 #include <utility>
 
 #include "sluice/v1/sluice.grpc.pb.h"
@@ -219,6 +223,8 @@ Code code_from_status(grpc::StatusCode c) {
       return Code::Unavailable;
     case grpc::StatusCode::CANCELLED:
       return Code::Cancelled;
+    case grpc::StatusCode::UNAUTHENTICATED:
+      return Code::Unauthenticated;
     default:
       return Code::Server;
   }
@@ -258,6 +264,49 @@ struct EvaluatorStop {
 class Runner {
  public:
   Runner(const Spec& spec, const Evaluator& eval, const Callbacks& cb) : spec_(spec), eval_(eval), cb_(cb) {}
+
+  // follow reads a Follow stream: draws and the final frame.
+  Summary follow(pb::SluiceService::Stub& stub, const std::string& session_id, std::uint64_t from_seq) {
+    next_seq_ = from_seq;
+    sum_.next_seq = from_seq;
+    pb::FollowRequest req;
+    req.set_session_id(session_id);
+    req.set_from_seq(from_seq);
+    auto reader = stub.Follow(&ctx_, req);
+    std::string protocol_error;
+    pb::FollowResponse frame;
+    while (protocol_error.empty() && reader->Read(&frame)) {
+      switch (frame.frame_case()) {
+        case pb::FollowResponse::kDraws:
+          protocol_error = deliver(frame.draws());
+          break;
+        case pb::FollowResponse::kFinished:
+          finish(frame.finished());
+          break;
+        default:
+          break;
+      }
+    }
+    if (!protocol_error.empty()) ctx_.TryCancel();
+    grpc::Status st = reader->Finish();
+    // A follower's summary is what it received, finished or not.
+    if (!protocol_error.empty()) {
+      Error e(Code::Protocol, 0, "sluice: " + protocol_error);
+      e.summary = sum_;
+      throw e;
+    }
+    if (!st.ok()) {
+      Error e = error_from_status(st);
+      e.summary = sum_;
+      throw e;
+    }
+    if (!finished_) {
+      Error e(Code::Protocol, 0, "sluice: follow stream ended without a finished frame");
+      e.summary = sum_;
+      throw e;
+    }
+    return sum_;
+  }
 
   Summary run(pb::SluiceService::Stub& stub, std::int64_t limit) {
     stream_ = stub.Session(&ctx_);
@@ -416,6 +465,7 @@ class Runner {
       return "malformed draws frame at sequence " + std::to_string(w.seq());
     }
     next_seq_ += static_cast<std::uint64_t>(w.rows());
+    sum_.next_seq = next_seq_;
     sum_.draws_received += w.rows();
     if (!cb_.on_draws) return "";
     get_floats(w.values(), draws_);
@@ -480,12 +530,155 @@ Error::Error(Code c, int g, std::string msg, std::string f, std::string d)
     : std::runtime_error(msg), code(c), grpc_code(g), message(std::move(msg)), field(std::move(f)),
       description(std::move(d)) {}
 
-std::shared_ptr<grpc::Channel> connect(const std::string& target, std::int64_t max_message_bytes) {
+namespace {
+
+// read_file returns the whole of a file, or throws a usage Error naming it
+// and what it is for.
+std::string read_file(const std::string& path, const char* what) {
+  std::ifstream in(path, std::ios::binary);
+  if (!in) throw Error(Code::Usage, 0, std::string("sluice: connect: cannot read the ") + what + " " + path);
+  std::ostringstream b;
+  b << in.rdbuf();
+  if (in.bad()) throw Error(Code::Usage, 0, std::string("sluice: connect: cannot read the ") + what + " " + path);
+  return b.str();
+}
+
+std::string trim(const std::string& s) {
+  std::size_t a = 0, b = s.size();
+  while (a < b && std::isspace(static_cast<unsigned char>(s[a]))) ++a;
+  while (b > a && std::isspace(static_cast<unsigned char>(s[b - 1]))) --b;
+  return s.substr(a, b - a);
+}
+
+// token_of returns the token Security names ("" for none).
+std::string token_of(const Security& sec) {
+  if (!sec.token.empty() && !sec.token_file.empty()) {
+    throw Error(Code::Usage, 0, "sluice: connect: give a token or a token file, not both");
+  }
+  if (sec.token_file.empty()) {
+    const std::string t = trim(sec.token);
+    if (t.empty() && !sec.token.empty()) throw Error(Code::Usage, 0, "sluice: connect: the token is blank");
+    return t;
+  }
+  std::istringstream lines(read_file(sec.token_file, "token file"));
+  for (std::string line; std::getline(lines, line);) {
+    line = trim(line);
+    if (!line.empty() && line[0] != '#') return line;
+  }
+  throw Error(Code::Usage, 0, "sluice: connect: token file " + sec.token_file + " holds no token (blank or # lines only)");
+}
+
+// BearerToken adds "authorization: Bearer <token>" to the initial metadata
+// of every call on its channel. An interceptor rather than call
+// credentials, because gRPC sends call credentials only over TLS and a
+// server on the same machine may listen in plain text.
+class BearerToken : public grpc::experimental::Interceptor {
+ public:
+  explicit BearerToken(std::string value) : value_(std::move(value)) {}
+  void Intercept(grpc::experimental::InterceptorBatchMethods* m) override {
+    if (m->QueryInterceptionHookPoint(grpc::experimental::InterceptionHookPoints::PRE_SEND_INITIAL_METADATA)) {
+      m->GetSendInitialMetadata()->emplace("authorization", value_);
+    }
+    m->Proceed();
+  }
+
+ private:
+  const std::string value_;
+};
+
+class BearerTokenFactory : public grpc::experimental::ClientInterceptorFactoryInterface {
+ public:
+  explicit BearerTokenFactory(std::string token) : value_("Bearer " + std::move(token)) {}
+  grpc::experimental::Interceptor* CreateClientInterceptor(grpc::experimental::ClientRpcInfo*) override {
+    return new BearerToken(value_);
+  }
+
+ private:
+  const std::string value_;
+};
+
+bool has_prefix(const std::string& s, const char* p) { return s.compare(0, std::strlen(p), p) == 0; }
+
+}  // namespace
+
+bool is_loopback(const std::string& target) {
+  if (has_prefix(target, "unix:") || has_prefix(target, "unix-abstract:")) return true;
+  std::string t = target;
+  // Strip a scheme and authority ("dns:///host:port", "ipv4:127.0.0.1:1").
+  const std::size_t slash = t.find(":///");
+  if (slash != std::string::npos) {
+    t = t.substr(slash + 4);
+  } else if (has_prefix(t, "dns://")) {
+    t = t.substr(t.rfind('/') + 1);
+  } else if (has_prefix(t, "ipv4:") || has_prefix(t, "ipv6:")) {
+    t = t.substr(5);
+  }
+  std::string host = t;
+  if (!t.empty() && t[0] == '[') {
+    const std::size_t close = t.find(']');
+    host = close == std::string::npos ? t : t.substr(1, close - 1);
+  } else if (t.find(':') == t.rfind(':') && t.find(':') != std::string::npos) {
+    host = t.substr(0, t.find(':'));  // host:port (an IPv6 literal has more colons)
+  }
+  std::string lower;
+  for (char c : host) lower.push_back(static_cast<char>(std::tolower(static_cast<unsigned char>(c))));
+  if (lower == "localhost" || lower == "::1") return true;
+  // 127.0.0.0/8 written as a dotted quad: four numbers 0..255, the first 127.
+  int parts = 0;
+  std::size_t i = 0;
+  bool first127 = false;
+  while (i <= lower.size()) {
+    const std::size_t dot = std::min(lower.find('.', i), lower.size());
+    const std::string part = lower.substr(i, dot - i);
+    if (part.empty() || part.size() > 3) return false;
+    for (char c : part) {
+      if (!std::isdigit(static_cast<unsigned char>(c))) return false;
+    }
+    const int v = std::stoi(part);
+    if (v > 255) return false;
+    if (parts == 0) first127 = v == 127;
+    ++parts;
+    i = dot + 1;
+  }
+  return parts == 4 && first127;
+}
+
+std::shared_ptr<grpc::Channel> connect(const std::string& target, const Security& sec, std::int64_t max_message_bytes) {
+  if (target.empty()) throw Error(Code::Usage, 0, "sluice: connect: no target (want \"host:port\")");
   const std::int64_t limit = max_message_bytes > 0 ? max_message_bytes : kDefaultMaxMessageBytes;
+  if (limit > INT32_MAX) throw Error(Code::Usage, 0, "sluice: connect: max_message_bytes above 2^31-1");
+  if (sec.cert_file.empty() != sec.key_file.empty()) {
+    throw Error(Code::Usage, 0, "sluice: connect: a client certificate needs its key, and a key its certificate");
+  }
+  const bool tls = sec.tls || !sec.ca_file.empty() || !sec.cert_file.empty();
+  if (!tls && !sec.insecure && !is_loopback(target)) {
+    throw Error(Code::Usage, 0, "sluice: connect: refusing a plain-text connection to \"" + target +
+                                    "\", which is not a loopback address: use TLS, or insecure on a trusted network");
+  }
+  std::shared_ptr<grpc::ChannelCredentials> creds;
+  if (tls) {
+    grpc::SslCredentialsOptions o;
+    if (!sec.ca_file.empty()) o.pem_root_certs = read_file(sec.ca_file, "CA file");
+    if (!sec.cert_file.empty()) {
+      o.pem_cert_chain = read_file(sec.cert_file, "client certificate");
+      o.pem_private_key = read_file(sec.key_file, "client key");
+    }
+    creds = grpc::SslCredentials(o);
+  } else {
+    creds = grpc::InsecureChannelCredentials();
+  }
+  const std::string token = token_of(sec);
   grpc::ChannelArguments args;
   args.SetMaxReceiveMessageSize(static_cast<int>(limit));
   args.SetMaxSendMessageSize(static_cast<int>(limit));
-  return grpc::CreateCustomChannel(target, grpc::InsecureChannelCredentials(), args);
+  if (token.empty()) return grpc::CreateCustomChannel(target, creds, args);
+  std::vector<std::unique_ptr<grpc::experimental::ClientInterceptorFactoryInterface>> icpt;
+  icpt.push_back(std::make_unique<BearerTokenFactory>(token));
+  return grpc::experimental::CreateCustomChannelWithInterceptors(target, creds, args, std::move(icpt));
+}
+
+std::shared_ptr<grpc::Channel> connect(const std::string& target, std::int64_t max_message_bytes) {
+  return connect(target, Security{}, max_message_bytes);
 }
 
 Summary run(const std::shared_ptr<grpc::Channel>& channel, const Spec& spec, const Evaluator& evaluate,
@@ -497,6 +690,19 @@ Summary run(const std::shared_ptr<grpc::Channel>& channel, const Spec& spec, con
   auto stub = pb::SluiceService::NewStub(channel);
   Runner r(spec, evaluate, callbacks);
   return r.run(*stub, limit);
+}
+
+Summary follow(const std::shared_ptr<grpc::Channel>& channel, const std::string& session_id, std::uint64_t from_seq,
+               const std::function<void(const Draws&)>& on_draws) {
+  if (!channel) throw Error(Code::Usage, 0, "sluice: follow: null channel");
+  if (session_id.empty()) throw Error(Code::Usage, 0, "sluice: follow: no session id");
+  static const Spec no_spec;
+  static const Evaluator no_evaluator;
+  Callbacks cb;
+  cb.on_draws = on_draws;
+  auto stub = pb::SluiceService::NewStub(channel);
+  Runner r(no_spec, no_evaluator, cb);
+  return r.follow(*stub, session_id, from_seq);
 }
 
 }  // namespace sluice

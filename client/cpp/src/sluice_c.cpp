@@ -5,6 +5,7 @@
 
 #include <cstring>
 #include <exception>
+#include <functional>
 #include <new>
 #include <optional>
 #include <stdexcept>
@@ -88,6 +89,8 @@ struct sluice_session {
   sluice_progress_fn on_progress = nullptr;
   void* progress_data = nullptr;
   bool ran = false;
+  sluice::Security security;
+  std::uint64_t next_seq = 0;
 
   std::optional<sluice::Summary> summary;
   std::string session_id;
@@ -212,6 +215,55 @@ void sluice_session_on_progress(sluice_session* s, sluice_progress_fn fn, void* 
   s->progress_data = user_data;
 }
 
+int sluice_session_set_tls(sluice_session* s, const char* ca_file, const char* cert_file, const char* key_file) {
+  if (s == nullptr) return SLUICE_ERR_USAGE;
+  try {
+    const bool cert = cert_file != nullptr && *cert_file != '\0', key = key_file != nullptr && *key_file != '\0';
+    if (cert != key) {
+      s->set_error(0, "sluice_session_set_tls: a client certificate needs its key, and a key its certificate");
+      return SLUICE_ERR_USAGE;
+    }
+    s->security.tls = true;
+    s->security.ca_file = ca_file != nullptr ? ca_file : "";
+    s->security.cert_file = cert ? cert_file : "";
+    s->security.key_file = key ? key_file : "";
+    return SLUICE_OK;
+  } catch (...) {
+    s->set_error(0, "sluice: out of memory");
+    return SLUICE_ERR_USAGE;
+  }
+}
+
+int sluice_session_set_token(sluice_session* s, const char* token) {
+  if (s == nullptr) return SLUICE_ERR_USAGE;
+  try {
+    s->security.token = token != nullptr ? token : "";
+    s->security.token_file.clear();
+    return SLUICE_OK;
+  } catch (...) {
+    s->set_error(0, "sluice: out of memory");
+    return SLUICE_ERR_USAGE;
+  }
+}
+
+int sluice_session_set_token_file(sluice_session* s, const char* path) {
+  if (s == nullptr) return SLUICE_ERR_USAGE;
+  try {
+    s->security.token_file = path != nullptr ? path : "";
+    s->security.token.clear();
+    return SLUICE_OK;
+  } catch (...) {
+    s->set_error(0, "sluice: out of memory");
+    return SLUICE_ERR_USAGE;
+  }
+}
+
+int sluice_session_set_insecure(sluice_session* s, int insecure) {
+  if (s == nullptr) return SLUICE_ERR_USAGE;
+  s->security.insecure = insecure != 0;
+  return SLUICE_OK;
+}
+
 int sluice_session_run(sluice_session* s, const char* target) {
   if (s == nullptr) return SLUICE_ERR_USAGE;
   try {
@@ -271,8 +323,8 @@ int sluice_session_run(sluice_session* s, const char* target) {
       if (rc != 0) throw std::runtime_error("evaluation callback returned " + std::to_string(rc));
     };
 
-    auto channel = sluice::connect(target, s->spec.max_message_bytes);
     try {
+      auto channel = sluice::connect(target, s->security, s->spec.max_message_bytes);
       s->summary = sluice::run(channel, s->spec, evaluate, cb);
       return SLUICE_OK;
     } catch (const sluice::Error& e) {
@@ -291,6 +343,53 @@ int sluice_session_run(sluice_session* s, const char* target) {
     return SLUICE_ERR_PROTOCOL;
   }
 }
+
+int sluice_session_follow(sluice_session* s, const char* target, const char* session_id, uint64_t from_seq) {
+  if (s == nullptr) return SLUICE_ERR_USAGE;
+  try {
+    if (s->ran) {
+      s->set_error(0, "sluice_session_follow: this handle has already run");
+      return SLUICE_ERR_STATE;
+    }
+    s->set_error(0, "");
+    if (target == nullptr || *target == '\0') {
+      s->set_error(0, "sluice_session_follow: no target (want \"host:port\")");
+      return SLUICE_ERR_USAGE;
+    }
+    if (session_id == nullptr || *session_id == '\0') {
+      s->set_error(0, "sluice_session_follow: no session id");
+      return SLUICE_ERR_USAGE;
+    }
+    s->ran = true;
+    s->next_seq = from_seq;
+    std::function<void(const sluice::Draws&)> on_draws = [s](const sluice::Draws& d) {
+      s->next_seq = d.seq + static_cast<std::uint64_t>(d.rows);
+      if (s->on_draws == nullptr) return;
+      sluice_draws cd{d.seq, d.rows, d.dim, d.values, d.chains, d.iterations};
+      s->on_draws(&cd, s->draws_data);
+    };
+    try {
+      auto channel = sluice::connect(target, s->security, sluice::kFollowMaxMessageBytes);
+      s->summary = sluice::follow(channel, session_id, from_seq, on_draws);
+      return SLUICE_OK;
+    } catch (const sluice::Error& e) {
+      if (e.summary && e.summary->reason != sluice::Reason::None) s->summary = e.summary;
+      s->set_error(e.grpc_code, e.message, e.field, e.description);
+      return static_cast<int>(e.code);
+    }
+  } catch (const std::bad_alloc&) {
+    s->set_error(0, "sluice: out of memory");
+    return SLUICE_ERR_USAGE;
+  } catch (const std::exception& e) {
+    s->set_error(0, std::string("sluice: ") + e.what());
+    return SLUICE_ERR_PROTOCOL;
+  } catch (...) {
+    s->set_error(0, "sluice: unknown failure");
+    return SLUICE_ERR_PROTOCOL;
+  }
+}
+
+uint64_t sluice_session_next_seq(const sluice_session* s) { return s == nullptr ? 0 : s->next_seq; }
 
 int sluice_session_summary(const sluice_session* cs, sluice_summary* out) {
   if (cs == nullptr || out == nullptr) return SLUICE_ERR_USAGE;
@@ -382,6 +481,8 @@ const char* sluice_error_name(int code) {
       return "SLUICE_ERR_USAGE";
     case SLUICE_ERR_STATE:
       return "SLUICE_ERR_STATE";
+    case SLUICE_ERR_UNAUTHENTICATED:
+      return "SLUICE_ERR_UNAUTHENTICATED";
     default:
       return "SLUICE_ERR_UNKNOWN";
   }

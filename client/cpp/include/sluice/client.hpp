@@ -198,6 +198,9 @@ struct Summary {
   std::vector<Parameter> parameters;
   int parameters_omitted = 0;
   std::int64_t draws_received = 0;
+  // The sequence number after the last draw received: where a follow()
+  // interrupted by an error resumes without loss or duplicate.
+  std::uint64_t next_seq = 0;
 };
 
 // Callbacks run on the thread that called run().
@@ -218,6 +221,7 @@ enum class Code {
   Evaluator = 7,
   Protocol = 8,
   Usage = 9,
+  Unauthenticated = 11,  // gRPC UNAUTHENTICATED: no token, or one the server does not accept
 };
 
 // Error is thrown by run(). For a server status, grpc_code is the gRPC
@@ -234,14 +238,67 @@ class Error : public std::runtime_error {
   std::optional<Summary> summary;
 };
 
-// connect returns an insecure channel to target ("host:port") whose send and
-// receive limits are both max_message_bytes (0: 4 MiB); use the same value
-// in Spec::max_message_bytes.
+// Security says how connect() protects the connection and authenticates.
+//
+// TLS is used when tls is true or any file is named: ca_file holds the PEM
+// authorities trusted to sign the server's certificate ("" : the system's
+// roots); cert_file and key_file, both or neither, hold the client's own
+// certificate and key for a server requiring mutual TLS (sluice serve
+// --client-ca). Without TLS the connection is plain text, which connect()
+// allows only to a loopback host (127.0.0.0/8, ::1, localhost) or a Unix
+// socket unless insecure is true.
+//
+// A bearer token (token, or the first line of token_file that is neither
+// blank nor a # comment, surrounding white space trimmed; not both) is sent
+// with every call as the metadata "authorization: Bearer <token>", what a
+// server started with --token-file checks. Over plain text it can be read
+// by anyone on the path: keep that to loopback.
+struct Security {
+  bool tls = false;
+  std::string ca_file, cert_file, key_file;
+  std::string token, token_file;
+  bool insecure = false;
+};
+
+// connect returns a channel to target ("host:port", or a gRPC target such
+// as "unix:///path") whose send and receive limits are both
+// max_message_bytes (0: 4 MiB); use the same value in
+// Spec::max_message_bytes. It throws Error (Code::Usage, nothing sent) for
+// plain text to a host that is not loopback without Security::insecure,
+// an unreadable file, a certificate without its key, or an empty token.
+// The connection itself is made by the first call.
+std::shared_ptr<grpc::Channel> connect(const std::string& target, const Security& security,
+                                       std::int64_t max_message_bytes = 0);
+
+// connect without TLS or token: plain text, to loopback only.
 std::shared_ptr<grpc::Channel> connect(const std::string& target, std::int64_t max_message_bytes = 0);
+
+// is_loopback reports whether target names a Unix socket or a loopback
+// host, the only places connect() sends plain text to without
+// Security::insecure.
+bool is_loopback(const std::string& target);
 
 // run runs one session on channel and returns its summary, or throws Error.
 Summary run(const std::shared_ptr<grpc::Channel>& channel, const Spec& spec, const Evaluator& evaluate,
             const Callbacks& callbacks = {});
+
+// The receive limit a follower's channel should have: a Follow frame can be
+// as large as the server's own limit (sluice serve --max-message-bytes,
+// 16 MiB by default). connect(target, security, kFollowMaxMessageBytes).
+constexpr std::int64_t kFollowMaxMessageBytes = 64 << 20;
+
+// follow streams the draws of session session_id (Registered::session_id)
+// from sequence number from_seq on, to a consumer other than the session's
+// client (the Follow rpc): each block goes to on_draws in sequence order,
+// exactly once, and follow returns the session's summary once its final
+// frame arrives (its registered part empty, draws_received counting this
+// follower's rows). A token set on the channel (Security) is sent as for
+// run(). On an error (NOT_FOUND for an unknown session, OUT_OF_RANGE when
+// the rows asked for have left the server's bounded buffer, a broken
+// connection) it throws Error whose summary holds what was received: resume
+// with follow(channel, session_id, e.summary->next_seq, on_draws).
+Summary follow(const std::shared_ptr<grpc::Channel>& channel, const std::string& session_id, std::uint64_t from_seq,
+               const std::function<void(const Draws&)>& on_draws);
 
 }  // namespace sluice
 
