@@ -644,3 +644,25 @@ func (l *DrawLog) suspend() {
 	close(l.wake)
 	l.wake = make(chan struct{})
 }
+
+// TokenOf reads the token saved in an encoded state without restoring the
+// session.
+func TokenOf(state []byte) (string, error) {
+	if len(state) < len(stateMagic)+1 || string(state[:len(stateMagic)]) != stateMagic || state[len(stateMagic)] != stateVersion {
+		return "", errors.New("session: not a session state of this version")
+	}
+	var secs []section
+	if err := gobRead(state[len(stateMagic)+1:], &secs); err != nil {
+		return "", fmt.Errorf("session: state: %w", err)
+	}
+	for _, sec := range secs {
+		if sec.Name == "session" {
+			var st sessionState
+			if err := gobRead(sec.Data, &st); err != nil {
+				return "", fmt.Errorf("session: state section session: %w", err)
+			}
+			return st.Token, nil
+		}
+	}
+	return "", errors.New("session: state lacks its session section")
+}
