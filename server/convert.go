@@ -72,10 +72,10 @@ func specFromWire(r *sluicev1.Register) (session.Spec, error) {
 		MaxEvaluations:     r.GetMaxEvaluations(),
 		MaxTime:            maxTime,
 		ProgressEverySteps: r.GetProgressEverySteps(), CheckpointEverySteps: r.GetCheckpointEverySteps(),
-		ProgressInterval:   interval,
-		Seed:               r.GetSeed(),
-		Names:              r.GetNames(),
-		MaxMessageBytes:    r.GetMaxMessageBytes(),
+		ProgressInterval: interval,
+		Seed:             r.GetSeed(),
+		Names:            r.GetNames(),
+		MaxMessageBytes:  r.GetMaxMessageBytes(),
 	}, nil
 }
 

@@ -98,7 +98,7 @@ func New(o Options) *Server {
 	}
 	s := &Server{opts: o, log: o.Logger, slots: make(chan struct{}, o.MaxSessions),
 		active: map[string]chan<- session.Message{},
-		logs: map[string]*followed{}, live: map[string]*liveSession{}, sweeper: make(chan struct{})}
+		logs:   map[string]*followed{}, live: map[string]*liveSession{}, sweeper: make(chan struct{})}
 	// The engine sizes its frames within Limits.MaxMessageBytes, and the
 	// reader refuses larger client frames with a status naming the frame.
 	// The transport's own cap sits at four times that, as a backstop
