@@ -1874,7 +1874,8 @@ func (x *Wants) GetMetric() Metric {
 // Registered acknowledges a Register frame.
 type Registered struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
-	// Identifier of this session, unique on the server.
+	// Identifier of this session: 128 random bits as 32 hex digits, so that
+	// knowing one id tells nothing about another.
 	SessionId string `protobuf:"bytes,1,opt,name=session_id,json=sessionId,proto3" json:"session_id,omitempty"`
 	// The seed actually used.
 	Seed uint64 `protobuf:"varint,2,opt,name=seed,proto3" json:"seed,omitempty"`

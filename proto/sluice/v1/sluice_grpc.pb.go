@@ -55,7 +55,8 @@ type SluiceServiceClient interface {
 	// client answers each with Evaluations, in lock step, while draws and
 	// progress flow back on the same stream.
 	//
-	// Frame order: the client's first frame is Register. The server answers
+	// Frame order: the client's first frame is Register (or Resume, to
+	// continue a session after a broken stream). The server answers
 	// Registered, then repeats {Points, Draws?, Progress?} until it sends
 	// Finished and closes the stream. The client answers every Points frame
 	// with exactly one Evaluations frame carrying the same request_id and
@@ -152,7 +153,8 @@ type SluiceServiceServer interface {
 	// client answers each with Evaluations, in lock step, while draws and
 	// progress flow back on the same stream.
 	//
-	// Frame order: the client's first frame is Register. The server answers
+	// Frame order: the client's first frame is Register (or Resume, to
+	// continue a session after a broken stream). The server answers
 	// Registered, then repeats {Points, Draws?, Progress?} until it sends
 	// Finished and closes the stream. The client answers every Points frame
 	// with exactly one Evaluations frame carrying the same request_id and
