@@ -27,7 +27,8 @@ type StateOptions struct {
 	Every time.Duration
 	// Retention is how long the state of a finished or abandoned session
 	// is kept after its last checkpoint (0 means 24 hours); a sweep
-	// removes older records every Retention/8 (at most hourly).
+	// removes older records every Retention/8 (between a second and an
+	// hour).
 	Retention time.Duration
 	// Replica names this server as the holder of its sessions' leases
 	// (default: the host name). A server restarted with the same name
@@ -235,7 +236,7 @@ func (s *Server) startSweep() {
 		return
 	}
 	st := s.opts.State.withDefaults()
-	every := min(st.Retention/8, time.Hour)
+	every := max(min(st.Retention/8, time.Hour), time.Second)
 	go func() {
 		t := time.NewTicker(every)
 		defer t.Stop()
