@@ -437,7 +437,6 @@ func (r *runner) open(ctx context.Context, c sluicev1.SluiceServiceClient, reg *
 	if id := r.sum.Registered.SessionID; id != "" {
 		first = &sluicev1.SessionRequest{Frame: &sluicev1.SessionRequest_Resume{Resume: &sluicev1.Resume{
 			SessionId: id, Token: r.sum.Registered.Token, NextSeq: r.nextSeq}}}
-		r.sum.Resumes++
 	}
 	if err := stream.Send(first); err != nil {
 		return recvStatus(stream, err)
@@ -545,6 +544,9 @@ func (r *runner) loop(ctx context.Context) (*Summary, error) {
 				EvaluationsPerStep: g.GetEvaluationsPerStep(), MaxMessageBytes: g.GetMaxMessageBytes(), Names: g.GetNames(),
 				PlannedSteps: g.GetPlannedSteps(), Token: g.GetResumeToken(), Resumed: g.GetResumed()}
 			r.registered = true
+			if !first {
+				r.sum.Resumes++
+			}
 			if first && r.cfg.onRegistered != nil {
 				r.cfg.onRegistered(&r.sum.Registered)
 			}

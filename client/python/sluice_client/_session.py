@@ -243,7 +243,6 @@ class Session:
             if self.registered is None:
                 self._outbox.put(_request(register=self._register))
             else:
-                self.resumes += 1
                 self._outbox.put(
                     _request(
                         resume=pb.Resume(
@@ -294,6 +293,8 @@ class Session:
                             first = self.registered is None
                             self.registered = Registered.from_wire(frame.registered)
                             got_registered = True
+                            if not first:
+                                self.resumes += 1
                             if first and self._on_registered is not None:
                                 self._on_registered(self.registered)
                         elif kind == "finished":
