@@ -167,6 +167,20 @@ func TestCheckpointRestoreContinuesBitForBit(t *testing.T) {
 						t.Fatalf("final progress steps %d evaluations %d draws %d, want %d %d %d",
 							fp.Steps, fp.EvaluationsUsed, fp.DrawsSent, wp.Steps, wp.EvaluationsUsed, wp.DrawsSent)
 					}
+					// The measured diagnostics continue too: the final
+					// report's figures over the restored history, Stein
+					// discrepancy and certificates are the same.
+					if !sameBits([]float64{fp.KSD, fp.Curvature.SmoothnessAtLeast, fp.Curvature.StrongConvexityAtMost},
+						[]float64{wp.KSD, wp.Curvature.SmoothnessAtLeast, wp.Curvature.StrongConvexityAtMost}) ||
+						fp.Curvature.Pairs != wp.Curvature.Pairs || len(fp.Parameters) != len(wp.Parameters) {
+						t.Fatalf("final diagnostics KSD %v curvature %+v, want %v %+v", fp.KSD, fp.Curvature, wp.KSD, wp.Curvature)
+					}
+					for i, p := range fp.Parameters {
+						q := wp.Parameters[i]
+						if !sameBits([]float64{p.Mean, p.SD, p.Rhat, p.BulkESS, p.TailESS, p.MCSE}, []float64{q.Mean, q.SD, q.Rhat, q.BulkESS, q.TailESS, q.MCSE}) {
+							t.Fatalf("final diagnostics %+v, want %+v", p, q)
+						}
+					}
 				}
 			}
 		})
