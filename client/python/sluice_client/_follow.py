@@ -59,7 +59,8 @@ class Follower:
     seconds (None: none).
 
     Errors raise :class:`SessionError`: ``NOT_FOUND`` (field "session_id")
-    for a session the server does not know or keeps no draws of;
+    for a session the server does not know or keeps no draws of, or a wrong
+    token (the same answer, so the token protects the id);
     ``OUT_OF_RANGE`` (field "from_seq") when the rows asked for have left the
     server's bounded buffer (the message says the oldest kept) or lie beyond
     the latest draw. A gap or repeat in the sequence numbers raises
