@@ -78,8 +78,12 @@ type SluiceServiceClient interface {
 	// it needs gets every draw after it, with no loss and no duplicate. Rows
 	// already dropped from the buffer end the call with OUT_OF_RANGE (the
 	// message says the oldest sequence number kept), never with a silent gap;
-	// an unknown session gives NOT_FOUND. The stream ends with the session's
-	// Finished frame once every draw has been sent.
+	// an unknown session, or a wrong FollowRequest.token, gives NOT_FOUND. A
+	// session stopped without finishing on a server that keeps state (its
+	// client went away, or the server is shutting down) gives UNAVAILABLE
+	// until its client resumes it: follow again from the next sequence
+	// number. The stream ends with the session's Finished frame once every
+	// draw has been sent.
 	Follow(ctx context.Context, in *FollowRequest, opts ...grpc.CallOption) (grpc.ServerStreamingClient[FollowResponse], error)
 	// Plan answers, before any sampling, what reaching a guaranteed accuracy
 	// costs for an m-strongly convex, M-smooth target with unadjusted
@@ -176,8 +180,12 @@ type SluiceServiceServer interface {
 	// it needs gets every draw after it, with no loss and no duplicate. Rows
 	// already dropped from the buffer end the call with OUT_OF_RANGE (the
 	// message says the oldest sequence number kept), never with a silent gap;
-	// an unknown session gives NOT_FOUND. The stream ends with the session's
-	// Finished frame once every draw has been sent.
+	// an unknown session, or a wrong FollowRequest.token, gives NOT_FOUND. A
+	// session stopped without finishing on a server that keeps state (its
+	// client went away, or the server is shutting down) gives UNAVAILABLE
+	// until its client resumes it: follow again from the next sequence
+	// number. The stream ends with the session's Finished frame once every
+	// draw has been sent.
 	Follow(*FollowRequest, grpc.ServerStreamingServer[FollowResponse]) error
 	// Plan answers, before any sampling, what reaching a guaranteed accuracy
 	// costs for an m-strongly convex, M-smooth target with unadjusted
