@@ -257,7 +257,11 @@ func (s *Session) snapshot(fin *Finished) (Checkpoint, error) {
 	secs = append(secs, section{"kernel", kb})
 	var phases [][]byte
 	for _, p := range s.phases {
-		b, err := p.(phaseCheckpointer).marshal()
+		pc, ok := p.(phaseCheckpointer)
+		if !ok {
+			return Checkpoint{}, fmt.Errorf("session: phase %T cannot be checkpointed", p)
+		}
+		b, err := pc.marshal()
 		if err != nil {
 			return Checkpoint{}, err
 		}
@@ -424,7 +428,9 @@ func (m *monitor) restore(ms *monitorState) error {
 }
 
 // phaseCheckpointer is implemented by every Phase, so that a checkpoint
-// taken after the phases holds what they learnt.
+// taken after the phases holds what they learnt. A phase without it makes
+// the session's checkpoints fail (reported through Checkpoints.Save as an
+// empty checkpoint), never the session.
 type phaseCheckpointer interface {
 	marshal() ([]byte, error)
 	unmarshal([]byte) error
@@ -478,7 +484,11 @@ func (s *Session) restorePhases() error {
 		return errors.New("session: state's phases do not match the spec's")
 	}
 	for i, b := range s.persist.phases {
-		if err := s.phases[i].(phaseCheckpointer).unmarshal(b); err != nil {
+		pc, ok := s.phases[i].(phaseCheckpointer)
+		if !ok {
+			return fmt.Errorf("session: phase %T cannot be restored", s.phases[i])
+		}
+		if err := pc.unmarshal(b); err != nil {
 			return err
 		}
 	}
