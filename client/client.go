@@ -63,6 +63,10 @@ type Spec struct {
 	// Envelope is rejection's Gaussian envelope N(Mean, Scale²I) with the
 	// declared bound π̃ ≤ exp(LogBound)·q.
 	Envelope *Envelope
+	// CheckpointEverySteps asks a server that keeps state to checkpoint
+	// the session every that many steps (0: only at the server's wall-time
+	// cadence and at shutdown).
+	CheckpointEverySteps int64
 }
 
 // Envelope is rejection's Gaussian envelope and declared bound.
@@ -163,6 +167,12 @@ type Registered struct {
 	// PlannedSteps is the steps per chain of a step planned from
 	// Wants.Eps (0 otherwise).
 	PlannedSteps int64
+	// Token is the session's secret: Follow and Resume need it with
+	// SessionID. Keep it private.
+	Token string
+	// Resumed is set when the latest stream continued the session from a
+	// checkpoint.
+	Resumed bool
 }
 
 // Draws is a block of draws numbered Seq, Seq+1, ..., Seq+Rows−1. It is
@@ -318,6 +328,9 @@ type Summary struct {
 	// NextSeq is the sequence number after the last draw received: where
 	// a follower resumes.
 	NextSeq uint64
+	// Resumes counts the times the session was resumed on a new stream
+	// after its stream broke.
+	Resumes int
 }
 
 // Option adjusts Run.
@@ -329,6 +342,7 @@ type config struct {
 	onProgress   func(*Progress)
 	callOpts     []grpc.CallOption
 	keepDraws    bool
+	resume       ResumePolicy
 }
 
 // OnRegistered calls f once the server accepted the session.
@@ -354,6 +368,16 @@ var ErrDrawsLost = errors.New("client: draws lost or repeated")
 // server error (a gRPC status) is returned as it is, together with the
 // summary: the server's when it managed to send one, else what was
 // received before the failure (Reason "").
+//
+// When the stream breaks (UNAVAILABLE: the server was killed, restarts or
+// shuts down; or a reset stream), Run resumes the session by itself on a
+// new stream (WithResume bounds the tries): it sends Resume with the
+// session's id, token and the next sequence number it needs, and the
+// server continues from its latest checkpoint. OnDraws sees every draw
+// exactly once, in order, with no gap; eval may be asked again for points
+// it evaluated before the break. OnRegistered is called once, for the
+// first Registered. A session that broke before it was registered is
+// registered again.
 func Run(ctx context.Context, cc grpc.ClientConnInterface, spec Spec, eval Evaluator, opts ...Option) (*Summary, error) {
 	var cfg config
 	for _, o := range opts {
@@ -366,18 +390,58 @@ func Run(ctx context.Context, cc grpc.ClientConnInterface, spec Spec, eval Evalu
 	callOpts := append([]grpc.CallOption{grpc.MaxCallRecvMsgSize(int(limit)), grpc.MaxCallSendMsgSize(int(limit))}, cfg.callOpts...)
 	ctx, cancel := context.WithCancel(ctx)
 	defer cancel()
-	stream, err := sluicev1.NewSluiceServiceClient(cc).Session(ctx, callOpts...)
-	if err != nil {
-		return nil, err
-	}
-	if err := stream.Send(registerFrame(spec, limit)); err != nil {
-		return nil, recvStatus(stream, err)
-	}
-	r := runner{cfg: cfg, eval: eval, stream: stream, sum: &Summary{}}
+	r := runner{cfg: cfg, eval: eval, sum: &Summary{}}
 	if cfg.keepDraws {
 		r.sum.Draws = &DrawSet{Dim: spec.Dim}
 	}
-	return r.loop(ctx)
+	pol := cfg.resume.withDefaults()
+	reg := registerFrame(spec, limit)
+	for tries := 0; ; {
+		err := r.open(ctx, sluicev1.NewSluiceServiceClient(cc), reg, callOpts)
+		var sum *Summary
+		if err == nil {
+			if sum, err = r.loop(ctx); err == nil {
+				return sum, nil
+			}
+		}
+		if r.registered { // this stream got the session back
+			tries = 0
+		}
+		if pol.Attempts < 0 || tries >= pol.Attempts || r.finished || r.evalErr != nil || !resumable(ctx, err) {
+			if r.stream != nil {
+				return r.result(err)
+			}
+			return r.sum, err
+		}
+		if werr := pol.wait(ctx, tries); werr != nil {
+			return r.sum, err
+		}
+		tries++
+	}
+}
+
+// open starts a stream and sends its first frame: Register for a session
+// not yet registered, else Resume.
+func (r *runner) open(ctx context.Context, c sluicev1.SluiceServiceClient, reg *sluicev1.SessionRequest, callOpts []grpc.CallOption) error {
+	if r.stream != nil {
+		_ = r.stream.CloseSend()
+		r.stream = nil
+	}
+	r.registered, r.sendClosed, r.finished = false, false, false
+	stream, err := c.Session(ctx, callOpts...)
+	if err != nil {
+		return err
+	}
+	r.stream = stream
+	first := reg
+	if id := r.sum.Registered.SessionID; id != "" {
+		first = &sluicev1.SessionRequest{Frame: &sluicev1.SessionRequest_Resume{Resume: &sluicev1.Resume{
+			SessionId: id, Token: r.sum.Registered.Token, NextSeq: r.nextSeq}}}
+	}
+	if err := stream.Send(first); err != nil {
+		return recvStatus(stream, err)
+	}
+	return nil
 }
 
 func registerFrame(spec Spec, limit int64) *sluicev1.SessionRequest {
@@ -399,6 +463,7 @@ func registerFrame(spec Spec, limit int64) *sluicev1.SessionRequest {
 		FixedPointTolerance: spec.FixedPointTolerance, FixedPointIterations: int32(spec.FixedPointIterations),
 		CurvatureProbeIterations: int32(spec.CurvatureProbe),
 		SliceWidth:               spec.SliceWidth, SliceMaxExpansions: int32(spec.SliceMaxExpansions), Envelope: envelopeToWire(spec.Envelope),
+		CheckpointEverySteps: spec.CheckpointEverySteps,
 	}}}
 }
 
@@ -451,6 +516,8 @@ type runner struct {
 	nextSeq  uint64
 	evalErr  error
 	finished bool
+	// registered is set once the current stream got Registered.
+	registered bool
 	// sendClosed is set once Send reported the stream closed by the
 	// server.
 	sendClosed bool
@@ -462,20 +529,25 @@ func (r *runner) loop(ctx context.Context) (*Summary, error) {
 		f, err := r.stream.Recv()
 		if errors.Is(err, io.EOF) {
 			if !r.finished {
-				return r.result(errors.New("client: stream ended without a finished frame"))
+				return r.sum, errStreamEnded
 			}
 			return r.result(r.evalErr)
 		}
 		if err != nil {
-			return r.result(err)
+			return r.sum, err
 		}
 		switch f := f.GetFrame().(type) {
 		case *sluicev1.SessionResponse_Registered:
 			g := f.Registered
+			first := r.sum.Registered.SessionID == ""
 			r.sum.Registered = Registered{SessionID: g.GetSessionId(), Seed: g.GetSeed(), Kernel: g.GetKernel(), Step: g.GetStep(),
 				EvaluationsPerStep: g.GetEvaluationsPerStep(), MaxMessageBytes: g.GetMaxMessageBytes(), Names: g.GetNames(),
-				PlannedSteps: g.GetPlannedSteps()}
-			if r.cfg.onRegistered != nil {
+				PlannedSteps: g.GetPlannedSteps(), Token: g.GetResumeToken(), Resumed: g.GetResumed()}
+			r.registered = true
+			if !first {
+				r.sum.Resumes++
+			}
+			if first && r.cfg.onRegistered != nil {
 				r.cfg.onRegistered(&r.sum.Registered)
 			}
 		case *sluicev1.SessionResponse_Points:

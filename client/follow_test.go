@@ -107,8 +107,8 @@ func followLog(n, cut uint64) *fakeServer {
 	calls := 0
 	return &fakeServer{follow: func(r *sluicev1.FollowRequest, s grpc.ServerStreamingServer[sluicev1.FollowResponse]) error {
 		calls++
-		if r.GetSessionId() != "s1" {
-			return status.Error(codes.NotFound, "no such session")
+		if r.GetSessionId() != "s1" || r.GetToken() != "t1" {
+			return status.Error(codes.NotFound, "no session with this id and token")
 		}
 		for seq := r.GetFromSeq(); seq < n; seq += 3 {
 			if calls == 1 && cut > 0 && seq >= cut {
@@ -126,14 +126,14 @@ func followLog(n, cut uint64) *fakeServer {
 
 // A follower that loses its connection resumes from NextSeq and gets
 // every later draw exactly once (the Follow rpc's contract in the wire
-// API).
+// API): by hand when resuming is off, by itself by default.
 func TestFollowResumesWithoutLossOrDuplicate(t *testing.T) {
 	cc := startFake(t, followLog(10, 6))
-	first, err := Follow(testCtx(t), cc, "s1", 0, KeepDraws())
+	first, err := Follow(testCtx(t), cc, "s1", "t1", 0, KeepDraws(), WithResume(ResumePolicy{Attempts: -1}))
 	if status.Code(err) != codes.Unavailable || first == nil || first.NextSeq != 6 || first.Reason != "" {
 		t.Fatalf("first follow: %v, %+v", err, first)
 	}
-	rest, err := Follow(testCtx(t), cc, "s1", first.NextSeq, KeepDraws())
+	rest, err := Follow(testCtx(t), cc, "s1", "t1", first.NextSeq, KeepDraws())
 	if err != nil || rest.Reason != DrawsCollected || rest.NextSeq != 10 || rest.DrawsReceived != 4 {
 		t.Fatalf("resumed follow: %v, %+v", err, rest)
 	}
@@ -144,8 +144,70 @@ func TestFollowResumesWithoutLossOrDuplicate(t *testing.T) {
 	if len(rest.Parameters) != 1 || rest.Parameters[0].Mean != 4.5 {
 		t.Fatalf("summary parameters %+v", rest.Parameters)
 	}
-	if _, err := Follow(testCtx(t), cc, "nope", 0); status.Code(err) != codes.NotFound {
-		t.Fatalf("unknown session: %v", err)
+	for _, c := range [][2]string{{"nope", "t1"}, {"s1", "wrong"}, {"s1", ""}} {
+		if _, err := Follow(testCtx(t), startFake(t, followLog(10, 0)), c[0], c[1], 0); status.Code(err) != codes.NotFound {
+			t.Fatalf("session %q token %q: %v", c[0], c[1], err)
+		}
+	}
+	auto, err := Follow(testCtx(t), startFake(t, followLog(10, 6)), "s1", "t1", 0, KeepDraws(), WithResume(ResumePolicy{First: time.Millisecond}))
+	if err != nil || auto.Resumes != 1 || auto.NextSeq != 10 || !slices.Equal(auto.Draws.Values, []float64{0, 1, 2, 3, 4, 5, 6, 7, 8, 9}) {
+		t.Fatalf("follow resuming by itself: %v, %+v", err, auto)
+	}
+}
+
+// Run resumes a session whose stream broke with UNAVAILABLE by itself: the
+// new stream's first frame is Resume with the session's id, token and the
+// next sequence number it needs, and OnDraws sees every draw once, in
+// order; OnRegistered is called once.
+func TestRunResumesAfterUnavailable(t *testing.T) {
+	streams := 0
+	var resume *sluicev1.Resume
+	cc := startFake(t, &fakeServer{session: func(s grpc.BidiStreamingServer[sluicev1.SessionRequest, sluicev1.SessionResponse]) error {
+		f, err := s.Recv()
+		if err != nil {
+			return err
+		}
+		streams++
+		send := func(fs ...*sluicev1.SessionResponse) error {
+			for _, f := range fs {
+				if err := s.Send(f); err != nil {
+					return err
+				}
+			}
+			return nil
+		}
+		reg := &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Registered{Registered: &sluicev1.Registered{
+			SessionId: "s1", ResumeToken: "t1", Names: []string{"x"}, Resumed: streams > 1}}}
+		switch streams {
+		case 1:
+			if f.GetRegister() == nil {
+				return status.Error(codes.InvalidArgument, "want register")
+			}
+			if err := send(reg, &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Draws{Draws: drawsFrame(0, 3)}}); err != nil {
+				return err
+			}
+			return status.Error(codes.Unavailable, "server going away")
+		case 2:
+			resume = f.GetResume()
+			return send(reg, &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Draws{Draws: drawsFrame(3, 2)}},
+				&sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Finished{Finished: &sluicev1.Finished{
+					Reason: sluicev1.FinishReason_FINISH_REASON_DRAWS_COLLECTED}}})
+		}
+		return status.Error(codes.Internal, "too many streams")
+	}})
+	var regs int
+	sum, err := Run(testCtx(t), cc, Spec{Dim: 1, Chains: 2, Start: []float64{0}, Step: 0.1},
+		func(context.Context, *Batch) error { return nil }, KeepDraws(), OnRegistered(func(*Registered) { regs++ }),
+		WithResume(ResumePolicy{First: time.Millisecond}))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if resume == nil || resume.GetSessionId() != "s1" || resume.GetToken() != "t1" || resume.GetNextSeq() != 3 {
+		t.Fatalf("resume frame %+v", resume)
+	}
+	if sum.Reason != DrawsCollected || sum.Resumes != 1 || regs != 1 || !sum.Registered.Resumed ||
+		!slices.Equal(sum.Draws.Values, []float64{0, 1, 2, 3, 4}) {
+		t.Fatalf("summary %+v, %d registrations", sum, regs)
 	}
 }
 
@@ -160,7 +222,7 @@ func TestFollowDetectsGaps(t *testing.T) {
 		}
 		return nil
 	}})
-	sum, err := Follow(testCtx(t), cc, "s1", 2)
+	sum, err := Follow(testCtx(t), cc, "s1", "t1", 2)
 	if !errors.Is(err, ErrDrawsLost) || sum.NextSeq != 5 || sum.DrawsReceived != 3 {
 		t.Fatalf("gap: %v, %+v", err, sum)
 	}

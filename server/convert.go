@@ -71,11 +71,11 @@ func specFromWire(r *sluicev1.Register) (session.Spec, error) {
 		DrawsPerChain:      r.GetDrawsPerChain(),
 		MaxEvaluations:     r.GetMaxEvaluations(),
 		MaxTime:            maxTime,
-		ProgressEverySteps: r.GetProgressEverySteps(),
-		ProgressInterval:   interval,
-		Seed:               r.GetSeed(),
-		Names:              r.GetNames(),
-		MaxMessageBytes:    r.GetMaxMessageBytes(),
+		ProgressEverySteps: r.GetProgressEverySteps(), CheckpointEverySteps: r.GetCheckpointEverySteps(),
+		ProgressInterval: interval,
+		Seed:             r.GetSeed(),
+		Names:            r.GetNames(),
+		MaxMessageBytes:  r.GetMaxMessageBytes(),
 	}, nil
 }
 
@@ -116,6 +116,8 @@ func messageFromWire(f *sluicev1.SessionRequest, gradBuf *[]float64) session.Mes
 		return session.Message{Stop: true, StopReason: f.Stop.GetReason()}
 	case *sluicev1.SessionRequest_Register:
 		return session.Message{Err: session.BadField("register", "sent twice: a session registers once")}
+	case *sluicev1.SessionRequest_Resume:
+		return session.Message{Err: session.BadField("resume", "only as the first frame of a stream")}
 	default:
 		return session.Message{Err: session.BadField("frame", "empty frame")}
 	}
@@ -155,7 +157,7 @@ func (e *encoder) frame(f session.Frame) *sluicev1.SessionResponse {
 		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Registered{Registered: &sluicev1.Registered{
 			SessionId: f.SessionID, Seed: f.Seed, Kernel: f.Kernel, Step: f.Step,
 			EvaluationsPerStep: int64(f.EvaluationsPerStep), MaxMessageBytes: f.MaxMessageBytes, Names: f.Names,
-			PlannedSteps: int64(f.PlannedSteps)}}}
+			PlannedSteps: int64(f.PlannedSteps), ResumeToken: f.Token, Resumed: f.Resumed}}}
 	case *session.Points:
 		var q []sluicev1.Quantity
 		if f.Need.Has(kernels.NeedGradient) {

@@ -12,16 +12,19 @@ import (
 
 // Follow implements the Follow rpc: it streams a session's draws from its
 // draw log, in sequence order from the requested number, then the
-// session's Finished frame.
+// session's Finished frame. The request must carry the session's token: a
+// wrong token and an unknown id get the same NOT_FOUND. A session stopped
+// without finishing (client gone, server shutting down, with state kept)
+// ends the call with UNAVAILABLE: follow again once it is resumed.
 func (s *Server) Follow(req *sluicev1.FollowRequest, stream grpc.ServerStreamingServer[sluicev1.FollowResponse]) error {
-	s.mu.Lock()
-	f, ok := s.logs[req.GetSessionId()]
-	s.mu.Unlock()
-	if !ok {
-		return problem(unknownSession, "session_id", "no session %q is followable here (unknown, not kept, or the server keeps no draws for followers)", req.GetSessionId())
+	f, err := s.followable(stream.Context(), req.GetSessionId(), req.GetToken())
+	if err != nil {
+		return err
 	}
 	from := req.GetFromSeq()
-	if _, next := f.log.Span(); from > next {
+	// A restored session re-makes the draws after its checkpoint, so a
+	// follower may be ahead of its log: it waits for them.
+	if _, next := f.log.Span(); from > next && !f.resumed {
 		return problem(outsideLog, "from_seq", "%d is beyond the latest draw (next is %d)", from, next)
 	}
 	rows := max(1, wire.RowsPerMessage(f.limit, f.dim))
@@ -31,6 +34,8 @@ func (s *Server) Follow(req *sluicev1.FollowRequest, stream grpc.ServerStreaming
 		switch {
 		case errors.Is(err, session.ErrDrawsDropped):
 			return problem(outsideLog, "from_seq", "%v", err)
+		case errors.Is(err, session.ErrLogSuspended):
+			return problem(draining, "", "%v", err)
 		case errors.Is(err, session.ErrLogClosed):
 			fin, _ := f.log.Finished()
 			w := enc.frame(&fin).GetFinished()

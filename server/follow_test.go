@@ -18,8 +18,8 @@ import (
 // followRows reads a Follow stream from seq until it has want rows more
 // (or the stream ends), returning the values, the next seq, and the
 // stream's end (nil while rows were still coming).
-func followRows(ctx context.Context, c sluicev1.SluiceServiceClient, id string, from uint64, want int) ([]float64, uint64, *sluicev1.Finished, error) {
-	st, err := c.Follow(ctx, &sluicev1.FollowRequest{SessionId: id, FromSeq: from})
+func followRows(ctx context.Context, c sluicev1.SluiceServiceClient, id, token string, from uint64, want int) ([]float64, uint64, *sluicev1.Finished, error) {
+	st, err := c.Follow(ctx, &sluicev1.FollowRequest{SessionId: id, Token: token, FromSeq: from})
 	if err != nil {
 		return nil, from, nil, err
 	}
@@ -55,23 +55,23 @@ func followRows(ctx context.Context, c sluicev1.SluiceServiceClient, id string, 
 func TestFollowResumesWithoutLossOrDuplicate(t *testing.T) {
 	conn, _ := start(t, server.Options{Limits: session.Limits{FollowBuffer: 4096}})
 	ctx := testCtx(t)
-	ids := make(chan string, 1)
+	ids := make(chan client.Registered, 1)
 	var own []float64
 	spec := client.Spec{Dim: 2, Chains: 4, Start: []float64{0, 0}, Step: 0.1, Seed: 8, DrawsPerChain: 300}
 	done := make(chan error, 1)
 	go func() {
 		_, err := client.Run(ctx, conn, spec, evaluator(gaussian2D(t)),
-			client.OnRegistered(func(r *client.Registered) { ids <- r.SessionID }),
+			client.OnRegistered(func(r *client.Registered) { ids <- *r }),
 			client.OnDraws(func(d *client.Draws) { own = append(own, d.Values...) }))
 		done <- err
 	}()
-	id := <-ids
+	reg := <-ids
 	c := sluicev1.NewSluiceServiceClient(conn)
 	var got []float64
 	from := uint64(0)
 	for _, chunk := range []int{250, 333, 1 << 30} { // disconnect twice mid-stream
 		cctx, cancel := context.WithCancel(ctx)
-		vals, next, fin, err := followRows(cctx, c, id, from, chunk)
+		vals, next, fin, err := followRows(cctx, c, reg.SessionID, reg.Token, from, chunk)
 		cancel()
 		if err != nil {
 			t.Fatal(err)
@@ -110,21 +110,37 @@ func TestFollowBehindBufferIsOutOfRange(t *testing.T) {
 		t.Fatal(err)
 	}
 	c := sluicev1.NewSluiceServiceClient(conn)
-	_, _, _, err = followRows(ctx, c, sum.Registered.SessionID, 0, 10)
+	_, _, _, err = followRows(ctx, c, sum.Registered.SessionID, sum.Registered.Token, 0, 10)
 	if s := status.Convert(err); s.Code() != codes.OutOfRange || fieldOf(s) != "from_seq" {
 		t.Fatalf("from 0 with 40 kept of 400: %v (field %q), want OUT_OF_RANGE on from_seq", err, fieldOf(s))
 	}
 	// The last 40 rows are still there, then the Finished frame.
-	vals, next, fin, err := followRows(ctx, c, sum.Registered.SessionID, 360, 1<<30)
+	vals, next, fin, err := followRows(ctx, c, sum.Registered.SessionID, sum.Registered.Token, 360, 1<<30)
 	if err != nil || len(vals) != 80 || next != 400 || fin == nil {
 		t.Fatalf("tail: %d values, next %d, finished %v, err %v", len(vals), next, fin != nil, err)
 	}
-	_, _, _, err = followRows(ctx, c, sum.Registered.SessionID, 401, 1)
+	_, _, _, err = followRows(ctx, c, sum.Registered.SessionID, sum.Registered.Token, 401, 1)
 	if status.Code(err) != codes.OutOfRange {
 		t.Fatalf("beyond the end: %v", err)
 	}
-	_, _, _, err = followRows(ctx, c, "no-such-session", 0, 1)
-	if s := status.Convert(err); s.Code() != codes.NotFound || fieldOf(s) != "session_id" {
-		t.Fatalf("unknown session: %v", err)
+	// An unknown id and a known id with a wrong or missing token get the
+	// same answer: the token's secrecy protects the id.
+	var msgs []string
+	for _, c2 := range [][2]string{{"no-such-session", sum.Registered.Token}, {sum.Registered.SessionID, "wrong"},
+		{sum.Registered.SessionID, ""}, {sum.Registered.SessionID, sum.Registered.Token[1:]}} {
+		_, _, _, err = followRows(ctx, c, c2[0], c2[1], 0, 1)
+		s := status.Convert(err)
+		if s.Code() != codes.NotFound || fieldOf(s) != "session_id" {
+			t.Fatalf("session %q token %q: %v", c2[0], c2[1], err)
+		}
+		msgs = append(msgs, s.Message())
+	}
+	for _, m := range msgs[1:] {
+		if m != msgs[0] {
+			t.Fatalf("answers differ: %q and %q", msgs[0], m)
+		}
+	}
+	if len(sum.Registered.SessionID) != 32 || len(sum.Registered.Token) != 32 || sum.Registered.SessionID == sum.Registered.Token {
+		t.Fatalf("id %q and token %q: want two distinct 128-bit hex values", sum.Registered.SessionID, sum.Registered.Token)
 	}
 }

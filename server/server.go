@@ -2,8 +2,6 @@ package server
 
 import (
 	"context"
-	"crypto/rand"
-	"encoding/hex"
 	"errors"
 	"fmt"
 	"io"
@@ -12,7 +10,6 @@ import (
 	"net"
 	"runtime/debug"
 	"sync"
-	"sync/atomic"
 	"time"
 
 	"go.uber.org/zap"
@@ -45,6 +42,9 @@ type Options struct {
 	// available to followers (default 10 minutes; negative: not kept
 	// after the session ends). Set Limits.FollowBuffer to serve followers.
 	FollowRetention time.Duration
+	// State configures checkpoints and Resume (resume.go); the zero value
+	// keeps no state.
+	State StateOptions
 }
 
 // Server serves the sluice API, health and reflection on one gRPC server.
@@ -56,13 +56,13 @@ type Server struct {
 	grpc   *grpc.Server
 	health *health.Server
 	slots  chan struct{}
-	nextID atomic.Uint64
-	prefix string
 
 	mu       sync.Mutex
 	draining bool
 	active   map[string]chan<- session.Message
 	logs     map[string]*followed
+	live     map[string]*liveSession // resume.go
+	sweeper  chan struct{}           // closed to stop the sweep loop
 }
 
 // followed is a session's draw log as followers see it.
@@ -71,6 +71,8 @@ type followed struct {
 	dim      int
 	limit    int64     // the server's message limit, for batching rows
 	finished time.Time // zero while the session runs
+	token    string    // the session's token, which Follow must present
+	resumed  bool      // restored from a checkpoint: followers may be ahead
 }
 
 // inboxSize is the capacity of a session's queue of received messages.
@@ -94,11 +96,9 @@ func New(o Options) *Server {
 	if o.FollowRetention == 0 {
 		o.FollowRetention = 10 * time.Minute
 	}
-	var b [4]byte
-	_, _ = rand.Read(b[:])
 	s := &Server{opts: o, log: o.Logger, slots: make(chan struct{}, o.MaxSessions),
-		prefix: hex.EncodeToString(b[:]), active: map[string]chan<- session.Message{},
-		logs: map[string]*followed{}}
+		active: map[string]chan<- session.Message{},
+		logs:   map[string]*followed{}, live: map[string]*liveSession{}, sweeper: make(chan struct{})}
 	// The engine sizes its frames within Limits.MaxMessageBytes, and the
 	// reader refuses larger client frames with a status naming the frame.
 	// The transport's own cap sits at four times that, as a backstop
@@ -120,6 +120,7 @@ func New(o Options) *Server {
 	s.health.SetServingStatus(ServiceName, healthpb.HealthCheckResponse_SERVING)
 	healthpb.RegisterHealthServer(s.grpc, s.health)
 	reflection.Register(s.grpc)
+	s.startSweep()
 	return s
 }
 
@@ -198,6 +199,7 @@ func (s *Server) GRPCServer() *grpc.Server { return s.grpc }
 func (s *Server) Shutdown(ctx context.Context) {
 	s.health.Shutdown()
 	s.mu.Lock()
+	s.stopSweep()
 	s.draining = true
 	for _, in := range s.active {
 		select {
@@ -217,7 +219,12 @@ func (s *Server) Shutdown(ctx context.Context) {
 }
 
 // Stop closes every connection at once.
-func (s *Server) Stop() { s.grpc.Stop() }
+func (s *Server) Stop() {
+	s.mu.Lock()
+	s.stopSweep()
+	s.mu.Unlock()
+	s.grpc.Stop()
+}
 
 // Session implements the bidirectional Session rpc. The handler's
 // goroutine runs the engine and is the only sender; one reader goroutine,
@@ -237,29 +244,42 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 	if err != nil {
 		return toStatus(recvError("register", err))
 	}
+	if res := first.GetResume(); res != nil {
+		return s.resume(stream, res)
+	}
 	reg := first.GetRegister()
 	if reg == nil {
-		return toStatus(session.BadField("register", "the first frame must be register"))
+		return toStatus(session.BadField("register", "the first frame must be register (or resume)"))
 	}
 	spec, err := specFromWire(reg)
 	if err != nil {
 		return toStatus(err)
 	}
-	id := fmt.Sprintf("%s-%d", s.prefix, s.nextID.Add(1))
+	id := NewSessionID()
 	sess, err := session.New(id, spec, s.opts.Limits)
 	if err != nil {
 		s.log.Debug("registration refused", zap.Error(err))
 		return toStatus(err)
 	}
+	sess.SetToken(NewSessionToken())
+	return s.serveSession(stream, sess, nil)
+}
 
+// serveSession runs a registered or restored session on stream; lv is its
+// entry in s.live when it was restored (nil: tracked here).
+func (s *Server) serveSession(stream sluicev1.SluiceService_SessionServer, sess *session.Session, lv *liveSession) error {
+	id := sess.ID()
 	ctx, cancel := context.WithCancel(stream.Context())
 	defer cancel()
 	in := make(chan session.Message, inboxSize)
 	limit := sess.MessageLimit()
+	lv = s.goLive(id, sess, cancel, lv)
+	defer s.leave(id, lv) // after untrack: a Resume waiting for it then finds the id free
 	if !s.track(id, in, sess) {
 		return problem(draining, "", "server shutting down")
 	}
 	defer s.untrack(id)
+	s.persistTo(ctx, sess)
 	go func() { // reader: owned by this handler
 		// Gradients are decoded into a ring of reused buffers. The engine
 		// takes messages in order and has finished with message j (copied
@@ -311,6 +331,9 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 			log.Warn("session failed", append(fields, zap.Error(err))...)
 		}
 	}
+	if errors.Is(err, session.ErrSuspended) {
+		return problem(draining, "", "server shutting down; session %s was checkpointed: resume it", id)
+	}
 	return toStatus(err)
 }
 
@@ -328,7 +351,8 @@ func (s *Server) track(id string, in chan<- session.Message, sess *session.Sessi
 		}
 	}
 	if l := sess.DrawLog(); l != nil {
-		s.logs[id] = &followed{log: l, dim: sess.Spec().Dim, limit: s.opts.Limits.MaxMessageBytes}
+		s.logs[id] = &followed{log: l, dim: sess.Spec().Dim, limit: s.opts.Limits.MaxMessageBytes,
+			token: sess.Token(), resumed: sess.Resumed()}
 	}
 	return true
 }

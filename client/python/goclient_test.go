@@ -71,7 +71,7 @@ func TestGoClientAgainstServer(t *testing.T) {
 			wg.Add(1)
 			go func() {
 				defer wg.Done()
-				followed, ferr = client.Follow(ctx, cc, r.SessionID, 0, client.KeepDraws())
+				followed, ferr = client.Follow(ctx, cc, r.SessionID, r.Token, 0, client.KeepDraws())
 			}()
 		}))
 		wg.Wait()

@@ -82,6 +82,8 @@ func serve(ctx context.Context, args []string, stderr io.Writer) error {
 	sf.register(fs)
 	var sec securityFlags
 	sec.register(fs)
+	var stf stateFlags
+	stf.register(fs)
 	setHelp(fs, help{
 		usage: "sluice serve [flags]",
 		about: "Serves the sluice gRPC API (sluice.v1.SluiceService: the Session stream, Follow and Plan) on --addr, " +
@@ -90,13 +92,15 @@ func serve(ctx context.Context, args []string, stderr io.Writer) error {
 			"batch per step, and streams back draws, progress and a summary. The flags below set the server's limits; " +
 			"a session asking for more is refused with a message naming the field. Logs are JSON lines on standard " +
 			"error. SIGINT or SIGTERM stops it gracefully: running sessions get --grace to finish and still deliver " +
-			"their last draws and summary.",
+			"their last draws and summary; with --state-dir or --state-postgres they are checkpointed instead, and " +
+			"their clients resume them once the server is back.",
 		examples: []string{
 			"sluice serve",
 			"sluice serve --addr 127.0.0.1:7070 --log-level info",
 			"sluice serve --addr 0.0.0.0:7070 --tls-cert server.pem --tls-key server-key.pem --token-file tokens.txt",
 			"sluice serve --addr 0.0.0.0:7070 --health-addr 0.0.0.0:7071 --tls-cert server.pem --tls-key server-key.pem --token-file tokens.txt",
 			"sluice serve --max-sessions 8 --max-message-bytes 67108864 --answer-timeout 2m --metrics-addr 127.0.0.1:9090",
+			"sluice serve --state-dir /var/lib/sluice --checkpoint-every 1m --retention 72h",
 		},
 		kernels: "Kernels a session may ask for (Register.kernel):",
 	})
@@ -117,6 +121,12 @@ func serve(ctx context.Context, args []string, stderr io.Writer) error {
 		return err
 	}
 	opts.GRPCOptions = append(opts.GRPCOptions, secOpts...)
+	if opts.State, err = stf.open(ctx, m); err != nil {
+		return err
+	}
+	if st := opts.State.Store; st != nil {
+		defer func() { _ = st.Close() }()
+	}
 	lis, err := net.Listen("tcp", *addr)
 	if err != nil {
 		return err
@@ -140,7 +150,8 @@ func serve(ctx context.Context, args []string, stderr io.Writer) error {
 	}
 	srv := server.New(opts)
 	log.Info("serving", zap.String("addr", lis.Addr().String()), zap.Int64("max_message_bytes", sf.maxMessageBytes),
-		zap.Bool("tls", sec.tls.Enabled()), zap.Bool("mutual_tls", sec.tls.ClientCAFile != ""), zap.Bool("tokens", sec.tokenFile != ""))
+		zap.Bool("tls", sec.tls.Enabled()), zap.Bool("mutual_tls", sec.tls.ClientCAFile != ""), zap.Bool("tokens", sec.tokenFile != ""),
+		zap.Bool("checkpoints", opts.State.Store != nil))
 	errc := make(chan error, 3)
 	go func() { errc <- srv.Serve(lis) }()
 	var probes *healthOnly

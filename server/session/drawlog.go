@@ -25,6 +25,9 @@ type DrawLog struct {
 	wake   chan struct{}
 	done   bool
 	final  Finished
+	// suspended is set when the session stopped at a checkpoint without
+	// finishing (checkpoint.go).
+	suspended bool
 }
 
 // ErrDrawsDropped is wrapped by the error Read returns when the rows asked
@@ -126,6 +129,10 @@ func (l *DrawLog) Read(ctx context.Context, from uint64, max int) (Draws, error)
 		if l.done {
 			l.mu.Unlock()
 			return Draws{}, ErrLogClosed
+		}
+		if l.suspended {
+			l.mu.Unlock()
+			return Draws{}, ErrLogSuspended
 		}
 		wake := l.wake
 		l.mu.Unlock()

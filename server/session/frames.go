@@ -24,6 +24,10 @@ type Registered struct {
 	// PlannedSteps is the steps per chain the plan needs when the step
 	// was planned from Wants.Eps; 0 otherwise.
 	PlannedSteps int
+	// Token is the session's secret (Session.SetToken); Resumed is set
+	// when the session was restored from a checkpoint.
+	Token   string
+	Resumed bool
 }
 
 // Points asks the client to evaluate rows points: part of request

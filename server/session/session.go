@@ -54,6 +54,7 @@ type Session struct {
 	stepM2     []float64
 	drawChains []int
 	drawIters  []int64
+	persist    persist // checkpoints (checkpoint.go)
 }
 
 // Result is what Run reports when it returns.
@@ -68,11 +69,13 @@ type Result struct {
 // values naming the offending field.
 func New(id string, spec Spec, lim Limits) (*Session, error) {
 	lim = lim.withDefaults()
+	orig := spec
 	entry, err := spec.validate(lim)
 	if err != nil {
 		return nil, err
 	}
 	spec.seed()
+	orig.Seed = spec.Seed
 	g, err := newGuarantee(&spec, entry)
 	if err != nil {
 		return nil, err
@@ -82,6 +85,7 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 	if g != nil && spec.Wants.Eps > 0 {
 		s.epsSteps = g.stepsTo(spec.Wants.Eps, 0)
 	}
+	s.persist.orig = orig
 	s.kernel = entry.build(&s.spec, kernels.NewSource(s.spec.Seed))
 	if err := s.size(); err != nil {
 		return nil, err
@@ -184,10 +188,22 @@ func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) e
 func (s *Session) loop(r *run) outcome {
 	if err := r.send(&Registered{SessionID: s.id, Seed: s.spec.Seed, Kernel: s.spec.Kernel, Step: s.spec.Step,
 		EvaluationsPerStep: s.kernel.EvaluationsPerStep(), MaxMessageBytes: s.msgBytes, Names: s.spec.Names,
-		PlannedSteps: s.plannedSteps()}); err != nil {
+		PlannedSteps: s.plannedSteps(), Token: s.persist.token, Resumed: s.persist.resumed}); err != nil {
+		return broken(err)
+	}
+	if err := s.replay(r); err != nil {
+		return broken(err)
+	}
+	if s.persist.final != nil {
+		return outcome{final: s.persist.final}
+	}
+	if err := s.restorePhases(); err != nil {
 		return broken(err)
 	}
 	for {
+		if o, stop := s.checkpointDue(r); stop {
+			return o
+		}
 		if o, stop := s.shouldStop(r); stop {
 			return o
 		}
@@ -224,6 +240,10 @@ type run struct {
 	// to be sent: they go out right after the next Points frame, so their
 	// transfer overlaps the client's evaluation instead of delaying it.
 	pending bool
+	// stepDone is set when the last request completed a kernel step (a
+	// checkpoint may follow); suspend when the server asked the session
+	// to stop at its next checkpoint.
+	stepDone, suspend bool
 }
 
 // outcome is how a session ends.
@@ -236,6 +256,9 @@ type outcome struct {
 	// quiet is set when the stream is gone or broken: nothing more is
 	// sent.
 	quiet bool
+	// final is the Finished frame of a restored finished session, sent
+	// again as it was.
+	final *Finished
 }
 
 // failed is the outcome of a client's bad data or silence: a Finished
@@ -250,9 +273,16 @@ func broken(err error) outcome {
 func (s *Session) begin(ctx context.Context, in <-chan Message, send func(Frame) error) *run {
 	s.start = time.Now()
 	s.lastProgress = s.start
+	var before time.Duration // wall time spent before a restore
+	if st := s.persist.restored; st != nil {
+		before = st.Elapsed
+		s.start = s.start.Add(-before)
+		s.lastProgress = s.start.Add(st.LastProgress)
+	}
+	s.persist.lastSave = time.Now()
 	r := &run{ctx: ctx, in: in, send: send, maxTime: s.maxTime(), answerTimer: time.NewTimer(s.lim.AnswerTimeout)}
 	if r.maxTime > 0 {
-		r.timer = time.NewTimer(r.maxTime)
+		r.timer = time.NewTimer(max(0, r.maxTime-before))
 		r.deadline = r.timer.C
 	}
 	s.phases = s.phases[:0]
@@ -273,6 +303,21 @@ func (r *run) stop() {
 // end is Run's one exit: it sends what is pending and the Finished frame
 // (unless the stream is gone) and reports.
 func (s *Session) end(r *run, o outcome) (Result, error) {
+	if o.final != nil { // a restored finished session: its frame again
+		if s.log != nil {
+			s.log.close(*o.final)
+		}
+		return Result{Finished: *o.final, Kernel: s.kernel}, r.send(o.final)
+	}
+	if o.quiet && s.checkpointing() {
+		// Gone or suspended, not finished: the session lives on in its
+		// checkpoint, and followers wait for it to be resumed.
+		if s.log != nil {
+			s.log.suspend()
+		}
+		p := s.progress(time.Now(), false)
+		return Result{Finished: Finished{Reason: o.reason, Message: o.msg, Progress: p}, Kernel: s.kernel}, o.err
+	}
 	if !o.quiet {
 		if err := s.flush(r); err != nil {
 			o = broken(err)
@@ -281,6 +326,9 @@ func (s *Session) end(r *run, o outcome) (Result, error) {
 	res := s.result(o.reason, o.msg)
 	if o.quiet {
 		return res, o.err
+	}
+	if s.checkpointing() {
+		s.save(&res.Finished)
 	}
 	if err := r.send(&res.Finished); err != nil && o.err == nil {
 		return res, err // a failed session reports its own error, not the send's
@@ -380,6 +428,11 @@ func (s *Session) await(r *run, req *kernels.Request) (outcome, bool) {
 				return outcome{reason: Failed, msg: "client closed the stream", err: ErrClientGone, quiet: true}, true
 			}
 			return outcome{reason: Failed, msg: msg.Err.Error(), err: fmt.Errorf("%w: %v", ErrClientGone, msg.Err), quiet: true}, true
+		case msg.Stop && msg.Shutdown && s.checkpointing():
+			// Stop at the next checkpoint instead: finish this request.
+			r.suspend = true
+			left++
+			continue
 		case msg.Stop && msg.Shutdown:
 			return outcome{reason: Shutdown, msg: msg.StopReason}, true
 		case msg.Stop:
@@ -422,6 +475,7 @@ func (s *Session) complete(r *run, req *kernels.Request) *Error {
 			return BadField(field, "a declared assumption does not hold: %v", err)
 		}
 	}
+	r.stepDone = done
 	if done {
 		r.pending = true
 		if s.keeps(int64(s.kernel.Steps())) {
@@ -705,8 +759,10 @@ func (s *Session) sendDraws(step int64, send func(Frame) error) error {
 		if s.log != nil {
 			s.log.append(&s.draws)
 		}
-		if err := send(&s.draws); err != nil {
-			return err
+		if d, ok := s.skipSent(&s.draws); ok {
+			if err := send(&d); err != nil {
+				return err
+			}
 		}
 		s.seq += uint64(hi - lo)
 	}

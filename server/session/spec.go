@@ -75,6 +75,9 @@ type Spec struct {
 	SliceMaxExpansions int
 	// Envelope is rejection's Gaussian envelope and declared bound.
 	Envelope *Envelope
+	// CheckpointEverySteps, when > 0, checkpoints the session every that
+	// many steps (when the server keeps checkpoints; see Checkpoints).
+	CheckpointEverySteps int64
 }
 
 // Envelope is q = N(Mean, Scale²I) with π̃ ≤ exp(LogBound)·q.
@@ -300,7 +303,8 @@ func (s *Spec) validateFields(k *kernelEntry) error {
 		name string
 		v    int64
 	}{{"burn_in", s.BurnIn}, {"keep_every", s.KeepEvery}, {"draws_per_chain", s.DrawsPerChain},
-		{"max_evaluations", s.MaxEvaluations}, {"progress_every_steps", s.ProgressEverySteps}, {"max_message_bytes", s.MaxMessageBytes}} {
+		{"max_evaluations", s.MaxEvaluations}, {"progress_every_steps", s.ProgressEverySteps}, {"max_message_bytes", s.MaxMessageBytes},
+		{"checkpoint_every_steps", s.CheckpointEverySteps}} {
 		if f.v < 0 {
 			return bad(f.name, "must be >= 0, got %d", f.v)
 		}

@@ -37,6 +37,7 @@ detail).
 
 from ._errors import DrawsLostError, ProtocolError, SessionError, SluiceError
 from ._follow import FOLLOW_MAX_MESSAGE_BYTES, FOLLOW_METHOD, FollowEvent, Follower, follow
+from ._resume import ResumePolicy
 from ._plan import PLAN_METHOD, plan
 from ._session import SESSION_METHOD, BatchFn, Event, GradFn, LogDensityFn, Session, connect, run
 from ._summary import DEFAULT_INTERVAL_LEVEL, ParameterStats
@@ -90,6 +91,7 @@ __all__ = [
     "FinishReason",
     "FollowEvent",
     "Follower",
+    "ResumePolicy",
     "GradFn",
     "KernelReport",
     "LogDensityFn",

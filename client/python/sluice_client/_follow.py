@@ -11,6 +11,7 @@ import grpc
 
 from ._errors import ProtocolError, SessionError
 from ._proto.sluice.v1 import sluice_pb2 as pb
+from ._resume import ResumePolicy, resumable
 from ._session import connect, decode_draws
 from ._types import Draws, DrawStore, Summary
 
@@ -32,7 +33,7 @@ class Follower:
 
     ::
 
-        follower = follow("127.0.0.1:7070", session_id)
+        follower = follow("127.0.0.1:7070", session_id, token)
         for event in follower:          # Draws in sequence order, then the Summary
             if isinstance(event, Draws):
                 keep(event.values.copy())
@@ -46,13 +47,20 @@ class Follower:
     draw after it with no loss and no duplicate while the server still
     keeps it.
 
+    ``token`` is the session's ``Registered.resume_token``: a wrong token and
+    an unknown session both get NOT_FOUND. When the stream breaks with
+    UNAVAILABLE (the server restarts, or the session waits for its client to
+    resume it) the follower follows again from ``next_seq`` by itself, as
+    ``resume`` (a :class:`ResumePolicy`) bounds; ``resumes`` counts those.
+
     ``channel_or_target`` is a ``grpc.Channel`` or a "host:port" target, for
     which the follower opens its own channel with receive limit
     ``max_message_bytes``. ``timeout`` is the call's gRPC deadline in
     seconds (None: none).
 
     Errors raise :class:`SessionError`: ``NOT_FOUND`` (field "session_id")
-    for a session the server does not know or keeps no draws of;
+    for a session the server does not know or keeps no draws of, or a wrong
+    token (the same answer, so the token protects the id);
     ``OUT_OF_RANGE`` (field "from_seq") when the rows asked for have left the
     server's bounded buffer (the message says the oldest kept) or lie beyond
     the latest draw. A gap or repeat in the sequence numbers raises
@@ -63,15 +71,21 @@ class Follower:
         self,
         channel_or_target: Union[grpc.Channel, str],
         session_id: str,
+        token: str,
         from_seq: int = 0,
         *,
         timeout: Optional[float] = None,
         max_message_bytes: int = FOLLOW_MAX_MESSAGE_BYTES,
         keep_draws: bool = True,
+        resume: ResumePolicy = ResumePolicy(),
     ) -> None:
         if from_seq < 0:
             raise ValueError(f"sluice_client: from_seq {from_seq} is negative")
         self.session_id = session_id
+        self._token = token
+        self._resume = resume
+        #: Times the follower followed again after a broken stream.
+        self.resumes = 0
         self._target = channel_or_target if isinstance(channel_or_target, str) else None
         self._channel: Optional[grpc.Channel] = None if self._target is not None else channel_or_target
         self._limit = max_message_bytes
@@ -124,28 +138,47 @@ class Follower:
                 request_serializer=pb.FollowRequest.SerializeToString,
                 response_deserializer=pb.FollowResponse.FromString,
             )
-            call = rpc(pb.FollowRequest(session_id=self.session_id, from_seq=self._from_seq), timeout=self._timeout)
-            self._call = call
-            try:
-                for frame in call:
-                    kind = frame.WhichOneof("frame")
-                    if kind == "draws":
-                        d = decode_draws(frame.draws, self.next_seq)
-                        self.next_seq += d.rows
-                        self.draws_received += d.rows
-                        if self._store is not None:
-                            self._store.add(d)
-                        yield d
-                    elif kind == "finished":
-                        self.summary = Summary.from_wire(
-                            frame.finished,
-                            None,
-                            self.draws_received,
-                            self._store.arrays() if self._store is not None else None,
-                        )
-                        yield self.summary
-            except grpc.RpcError as err:
-                raise SessionError.from_rpc_error(err, self.summary, call="follow") from None
+            tries = 0
+            while self.summary is None:
+                call = rpc(
+                    pb.FollowRequest(session_id=self.session_id, token=self._token, from_seq=self.next_seq),
+                    timeout=self._timeout,
+                )
+                with self._lock:
+                    if self._closed:
+                        call.cancel()
+                        return
+                    self._call = call
+                got = False
+                try:
+                    for frame in call:
+                        got = True
+                        kind = frame.WhichOneof("frame")
+                        if kind == "draws":
+                            d = decode_draws(frame.draws, self.next_seq)
+                            self.next_seq += d.rows
+                            self.draws_received += d.rows
+                            if self._store is not None:
+                                self._store.add(d)
+                            yield d
+                        elif kind == "finished":
+                            self.summary = Summary.from_wire(
+                                frame.finished,
+                                None,
+                                self.draws_received,
+                                self._store.arrays() if self._store is not None else None,
+                            )
+                            yield self.summary
+                except grpc.RpcError as err:
+                    if got:
+                        tries = 0
+                    if self._closed or tries >= self._resume.attempts or not resumable(err):
+                        raise SessionError.from_rpc_error(err, self.summary, call="follow") from None
+                    self._resume.wait(tries)
+                    tries += 1
+                    self.resumes += 1
+                    continue
+                break
             if self.summary is None:
                 raise ProtocolError("sluice_client: follow stream ended without a finished frame")
         finally:
@@ -155,21 +188,26 @@ class Follower:
 def follow(
     channel_or_target: Union[grpc.Channel, str],
     session_id: str,
+    token: str,
     from_seq: int = 0,
     *,
     timeout: Optional[float] = None,
     max_message_bytes: int = FOLLOW_MAX_MESSAGE_BYTES,
     keep_draws: bool = True,
+    resume: ResumePolicy = ResumePolicy(),
 ) -> Follower:
-    """Follows session ``session_id`` (``Registered.session_id``) from draw
-    ``from_seq`` on: iterate the result for its Draws and then its Summary
-    (see :class:`Follower`). The server must keep draws for followers
-    (`sluice serve --follow-buffer`, on by default)."""
+    """Follows session ``session_id`` (``Registered.session_id``, with its
+    ``Registered.resume_token``) from draw ``from_seq`` on: iterate the
+    result for its Draws and then its Summary (see :class:`Follower`). The
+    server must keep draws for followers (`sluice serve --follow-buffer`, on
+    by default)."""
     return Follower(
         channel_or_target,
         session_id,
+        token,
         from_seq,
         timeout=timeout,
         max_message_bytes=max_message_bytes,
         keep_draws=keep_draws,
+        resume=resume,
     )

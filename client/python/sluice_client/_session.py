@@ -17,6 +17,7 @@ import numpy.typing as npt
 from . import _parallel
 from ._errors import DrawsLostError, ProtocolError, SessionError
 from ._proto.sluice.v1 import sluice_pb2 as pb
+from ._resume import ResumePolicy, resumable
 from ._types import (
     DEFAULT_MAX_MESSAGE_BYTES,
     Answer,
@@ -137,6 +138,16 @@ class Session:
     even when the server could send no Finished frame); a gap or repeat in the draws' sequence numbers
     raises :class:`DrawsLostError` at once. Leaving the loop early (break)
     cancels the call.
+
+    When the stream breaks (UNAVAILABLE: the server was killed, restarts or
+    shuts down having checkpointed the session; or a reset stream) the
+    session resumes by itself on a new call, as ``resume`` (a
+    :class:`ResumePolicy`) bounds: it sends Resume with the session's id,
+    token and the next draw it needs, and the server (one that keeps state:
+    `sluice serve --state-dir`) continues from its latest checkpoint.
+    Iteration sees every draw once, in order; ``grad`` may be asked again
+    for points it evaluated before the break; ``on_registered`` is called
+    once. ``resumes`` counts the resumptions.
     """
 
     def __init__(
@@ -152,6 +163,7 @@ class Session:
         keep_draws: bool = True,
         executor: Optional[cf.Executor] = None,
         split: Optional[int] = None,
+        resume: ResumePolicy = ResumePolicy(),
     ) -> None:
         if (grad is None) == (batch is None):
             raise TypeError("sluice_client: give either grad (with log_density if needed) or batch")
@@ -193,6 +205,10 @@ class Session:
         self._stopped = False
         self._closed = False
         self._call: Optional[grpc.Call] = None
+        self._resume = resume
+        #: Times the session was resumed on a new stream after its stream
+        #: broke.
+        self.resumes = 0
 
     def __iter__(self) -> Iterator[Event]:
         if self._started:
@@ -248,6 +264,26 @@ class Session:
             *(self._store.arrays() if self._store is not None else (None, None, None)),
         )
 
+    def _reopen(self) -> None:
+        """Prepares the request stream of a new call after a broken one:
+        Resume from the next draw needed, or Register again when the
+        session was never acknowledged."""
+        with self._lock:
+            self._outbox.put(None)  # ends the broken call's request stream
+            self._outbox = queue.SimpleQueue()
+            if self.registered is None:
+                self._outbox.put(_request(register=self._register))
+            else:
+                self._outbox.put(
+                    _request(
+                        resume=pb.Resume(
+                            session_id=self.registered.session_id,
+                            token=self.registered.resume_token,
+                            next_seq=self._next_seq,
+                        )
+                    )
+                )
+
     def _send(self, frame: pb.SessionRequest) -> None:
         with self._lock:
             if not (self._stopped or self._closed):
@@ -264,37 +300,63 @@ class Session:
                 request_serializer=pb.SessionRequest.SerializeToString,
                 response_deserializer=pb.SessionResponse.FromString,
             )
-            call = rpc(iter(self._outbox.get, None), timeout=self._timeout)
-            self._call = call
-            try:
-                for frame in call:
-                    kind = frame.WhichOneof("frame")
-                    if kind == "points":
-                        if eval_error is None and not self._stopped:
-                            eval_error = self._answer(frame.points)
-                    elif kind == "draws":
-                        yield self._deliver(frame.draws)
-                    elif kind == "progress":
-                        self._last_progress = Progress.from_wire(frame.progress)
-                        yield self._last_progress
-                    elif kind == "registered":
-                        self.registered = Registered.from_wire(frame.registered)
-                        if self._on_registered is not None:
-                            self._on_registered(self.registered)
-                    elif kind == "finished":
-                        self.summary = Summary.from_wire(
-                            frame.finished,
-                            self.registered,
-                            self.draws_received,
-                            self._store.arrays() if self._store is not None else None,
-                        )
-            except grpc.RpcError as err:
-                serr = SessionError.from_rpc_error(err, self.summary)
-                serr.received = self.summary if self.summary is not None else self.received()
-                if eval_error is not None:
-                    eval_error.add_note(f"sluice_client: the session then ended with {serr}")
-                    raise eval_error from None
-                raise serr from None
+            tries = 0
+            while True:
+                call = rpc(iter(self._outbox.get, None), timeout=self._timeout)
+                with self._lock:
+                    if self._closed:
+                        call.cancel()
+                        return
+                    self._call = call
+                got_registered = False
+                try:
+                    for frame in call:
+                        kind = frame.WhichOneof("frame")
+                        if kind == "points":
+                            if eval_error is None and not self._stopped:
+                                eval_error = self._answer(frame.points)
+                        elif kind == "draws":
+                            yield self._deliver(frame.draws)
+                        elif kind == "progress":
+                            self._last_progress = Progress.from_wire(frame.progress)
+                            yield self._last_progress
+                        elif kind == "registered":
+                            first = self.registered is None
+                            self.registered = Registered.from_wire(frame.registered)
+                            got_registered = True
+                            if not first:
+                                self.resumes += 1
+                            if first and self._on_registered is not None:
+                                self._on_registered(self.registered)
+                        elif kind == "finished":
+                            self.summary = Summary.from_wire(
+                                frame.finished,
+                                self.registered,
+                                self.draws_received,
+                                self._store.arrays() if self._store is not None else None,
+                            )
+                except grpc.RpcError as err:
+                    if got_registered:
+                        tries = 0
+                    if (
+                        eval_error is None
+                        and not self._stopped
+                        and not self._closed
+                        and self.summary is None
+                        and tries < self._resume.attempts
+                        and resumable(err)
+                    ):
+                        self._resume.wait(tries)
+                        tries += 1
+                        self._reopen()
+                        continue
+                    serr = SessionError.from_rpc_error(err, self.summary)
+                    serr.received = self.summary if self.summary is not None else self.received()
+                    if eval_error is not None:
+                        eval_error.add_note(f"sluice_client: the session then ended with {serr}")
+                        raise eval_error from None
+                    raise serr from None
+                break
             if eval_error is not None:
                 raise eval_error
             if self.summary is None:
@@ -525,6 +587,7 @@ def run(
     keep_draws: bool = True,
     executor: Optional[cf.Executor] = None,
     split: Optional[int] = None,
+    resume: ResumePolicy = ResumePolicy(),
 ) -> Summary:
     """Runs one session to its end and returns the summary.
 
@@ -538,6 +601,7 @@ def run(
     ``keep_draws`` (the default) the summary holds every draw received
     (``summary.draws``, ``summary.save(path)``). ``executor`` and
     ``split`` spread every batch over a ``concurrent.futures.Executor`` (see
+    :class:`Session`). A broken stream is resumed as ``resume`` bounds (see
     :class:`Session`). Errors as for :class:`Session`.
     """
     session = Session(
@@ -551,6 +615,7 @@ def run(
         keep_draws=keep_draws,
         executor=executor,
         split=split,
+        resume=resume,
     )
     with session:
         for event in session:

@@ -266,6 +266,9 @@ class Spec:
     #: "rejection": the Gaussian envelope and its declared bound (required
     #: for that kernel).
     envelope: Optional[Envelope] = None
+    #: Checkpoint every this many steps when the server keeps state (0: only
+    #: at the server's wall-time cadence and at shutdown).
+    checkpoint_every_steps: int = 0
 
     def message_limit(self) -> int:
         """The message limit in bytes this spec asks for (0 means 4 MiB)."""
@@ -325,6 +328,7 @@ class Spec:
             reg.schedule.CopyFrom(self.schedule.to_wire())
         if self.envelope is not None:
             reg.envelope.CopyFrom(self.envelope.to_wire())
+        reg.checkpoint_every_steps = self.checkpoint_every_steps
         return reg
 
 
@@ -401,6 +405,10 @@ class Registered:
     names: Tuple[str, ...]
     #: Steps per chain of a step planned from wants.eps (0 otherwise).
     planned_steps: int = 0
+    #: The session's secret: follow() and resuming need it with session_id.
+    resume_token: str = ""
+    #: True when the latest stream continued the session from a checkpoint.
+    resumed: bool = False
 
     @classmethod
     def from_wire(cls, m: pb.Registered) -> "Registered":
@@ -413,6 +421,8 @@ class Registered:
             m.max_message_bytes,
             tuple(m.names),
             m.planned_steps,
+            m.resume_token,
+            m.resumed,
         )
 
 

@@ -619,7 +619,7 @@ class LiveFollowTests(unittest.TestCase):
         # a running session and resumes in the middle of it.
         chains, dim, n = 4, 3, 300
         spec = sc.Spec(dim=dim, chains=chains, start=MU, step=0.2, draws_per_chain=n, seed=8)
-        ids: "queue.Queue[str]" = queue.Queue()
+        ids: "queue.Queue[Tuple[str, str]]" = queue.Queue()
         release = threading.Event()
         own: List[sc.Draws] = []
         result: Dict[str, object] = {}
@@ -641,22 +641,22 @@ class LiveFollowTests(unittest.TestCase):
                     spec,
                     grad,
                     on_draws=keep,
-                    on_registered=lambda r: ids.put(r.session_id),
+                    on_registered=lambda r: ids.put((r.session_id, r.resume_token)),
                     timeout=DEADLINE_SECONDS,
                 )
             except BaseException as err:  # reported by the main thread
                 result["error"] = err
-                ids.put("")
+                ids.put(("", ""))
             finally:
                 release.set()
 
         th = threading.Thread(target=session, daemon=True)
         th.start()
         try:
-            sid = ids.get(timeout=DEADLINE_SECONDS)
+            sid, token = ids.get(timeout=DEADLINE_SECONDS)
             self.assertNotEqual(sid, "", f"session failed: {result.get('error')!r}")
             got: List[sc.Draws] = []
-            with sc.follow(self.target, sid, 0, timeout=DEADLINE_SECONDS) as f1:
+            with sc.follow(self.target, sid, token, 0, timeout=DEADLINE_SECONDS) as f1:
                 for ev in f1:
                     self.assertIsInstance(ev, sc.Draws)
                     assert isinstance(ev, sc.Draws)
@@ -668,7 +668,7 @@ class LiveFollowTests(unittest.TestCase):
             self.assertLessEqual(resume, 99 * chains)
             self.assertFalse(release.is_set())
             release.set()
-            events = list(sc.follow(self.target, sid, resume, timeout=DEADLINE_SECONDS))
+            events = list(sc.follow(self.target, sid, token, resume, timeout=DEADLINE_SECONDS))
         finally:
             release.set()
             th.join(DEADLINE_SECONDS)
@@ -703,19 +703,37 @@ class LiveFollowTests(unittest.TestCase):
 
         # From exactly the end: no draws, only the summary. Beyond it:
         # OUT_OF_RANGE naming from_seq.
-        tail = list(sc.follow(self.target, sid, chains * n, timeout=DEADLINE_SECONDS))
+        tail = list(sc.follow(self.target, sid, token, chains * n, timeout=DEADLINE_SECONDS))
         self.assertEqual(len(tail), 1)
         self.assertIsInstance(tail[0], sc.Summary)
         with self.assertRaises(sc.SessionError) as cm:
-            list(sc.follow(self.target, sid, chains * n + 1, timeout=DEADLINE_SECONDS))
+            list(sc.follow(self.target, sid, token, chains * n + 1, timeout=DEADLINE_SECONDS))
         self.assertEqual((cm.exception.code, cm.exception.field), (grpc.StatusCode.OUT_OF_RANGE, "from_seq"))
 
     def test_follow_unknown_session_is_not_found(self) -> None:
         with self.assertRaises(sc.SessionError) as cm:
-            for _ in sc.follow(self.target, "no-such-session", timeout=DEADLINE_SECONDS):
+            for _ in sc.follow(self.target, "no-such-session", "0" * 32, timeout=DEADLINE_SECONDS):
                 pass
         self.assertEqual((cm.exception.code, cm.exception.field), (grpc.StatusCode.NOT_FOUND, "session_id"))
         self.assertIn("follow failed", str(cm.exception))
+
+    def test_follow_needs_the_token(self) -> None:
+        # A known session with a wrong token gets the same answer as an
+        # unknown one: the token's secrecy protects the id.
+        spec = sc.Spec(dim=1, chains=2, start=[0.0], step=0.1, seed=3, draws_per_chain=5)
+        summary = sc.run(self.target, spec, lambda x: -x, timeout=DEADLINE_SECONDS)
+        reg = summary.registered
+        assert reg is not None
+        self.assertEqual((len(reg.session_id), len(reg.resume_token)), (32, 32))
+        messages = []
+        for sid, token in ((reg.session_id, "f" * 32), (reg.session_id, ""), ("no-such-session", reg.resume_token)):
+            with self.assertRaises(sc.SessionError) as cm:
+                list(sc.follow(self.target, sid, token, timeout=DEADLINE_SECONDS))
+            self.assertEqual((cm.exception.code, cm.exception.field), (grpc.StatusCode.NOT_FOUND, "session_id"))
+            messages.append(cm.exception.message)
+        self.assertEqual(len(set(messages)), 1, messages)
+        events = list(sc.follow(self.target, reg.session_id, reg.resume_token, timeout=DEADLINE_SECONDS))
+        self.assertEqual(sum(e.rows for e in events if isinstance(e, sc.Draws)), 10)
 
 
 if __name__ == "__main__":

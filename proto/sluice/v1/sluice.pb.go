@@ -652,7 +652,11 @@ type FollowRequest struct {
 	SessionId string `protobuf:"bytes,1,opt,name=session_id,json=sessionId,proto3" json:"session_id,omitempty"`
 	// Sequence number of the first draw wanted (0 for the beginning; after a
 	// disconnect, the last received seq + rows).
-	FromSeq       uint64 `protobuf:"varint,2,opt,name=from_seq,json=fromSeq,proto3" json:"from_seq,omitempty"`
+	FromSeq uint64 `protobuf:"varint,2,opt,name=from_seq,json=fromSeq,proto3" json:"from_seq,omitempty"`
+	// The session's resume_token from Registered (required). A wrong token
+	// and an unknown session_id get the same NOT_FOUND answer, so a caller
+	// without the token learns nothing about which sessions exist.
+	Token         string `protobuf:"bytes,3,opt,name=token,proto3" json:"token,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -699,6 +703,13 @@ func (x *FollowRequest) GetFromSeq() uint64 {
 		return x.FromSeq
 	}
 	return 0
+}
+
+func (x *FollowRequest) GetToken() string {
+	if x != nil {
+		return x.Token
+	}
+	return ""
 }
 
 // FollowResponse is one frame of a followed session.
@@ -794,6 +805,7 @@ type SessionRequest struct {
 	//	*SessionRequest_Register
 	//	*SessionRequest_Evaluations
 	//	*SessionRequest_Stop
+	//	*SessionRequest_Resume
 	Frame         isSessionRequest_Frame `protobuf_oneof:"frame"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
@@ -863,6 +875,15 @@ func (x *SessionRequest) GetStop() *Stop {
 	return nil
 }
 
+func (x *SessionRequest) GetResume() *Resume {
+	if x != nil {
+		if x, ok := x.Frame.(*SessionRequest_Resume); ok {
+			return x.Resume
+		}
+	}
+	return nil
+}
+
 type isSessionRequest_Frame interface {
 	isSessionRequest_Frame()
 }
@@ -883,11 +904,19 @@ type SessionRequest_Stop struct {
 	Stop *Stop `protobuf:"bytes,3,opt,name=stop,proto3,oneof"`
 }
 
+type SessionRequest_Resume struct {
+	// First frame instead of Register: continue an existing session (see
+	// Resume).
+	Resume *Resume `protobuf:"bytes,4,opt,name=resume,proto3,oneof"`
+}
+
 func (*SessionRequest_Register) isSessionRequest_Frame() {}
 
 func (*SessionRequest_Evaluations) isSessionRequest_Frame() {}
 
 func (*SessionRequest_Stop) isSessionRequest_Frame() {}
+
+func (*SessionRequest_Resume) isSessionRequest_Frame() {}
 
 // SessionResponse is one frame from the server.
 type SessionResponse struct {
@@ -1166,9 +1195,16 @@ type Register struct {
 	Envelope *Envelope `protobuf:"bytes,31,opt,name=envelope,proto3" json:"envelope,omitempty"`
 	// How the client's gradients are made: exact (the default) or
 	// stochastic (minibatches, Monte Carlo estimates, noisy simulators).
-	Noise         *GradientNoise `protobuf:"bytes,21,opt,name=noise,proto3" json:"noise,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	Noise *GradientNoise `protobuf:"bytes,21,opt,name=noise,proto3" json:"noise,omitempty"`
+	// Write a checkpoint every this many steps (0: only as the server's
+	// --checkpoint-every wall time says, and at shutdown). Checkpoints are
+	// written only when the server keeps state (sluice serve --state-dir or
+	// --state-postgres); a session resumed with Resume continues from its
+	// latest one. Wall time decides only when a checkpoint is written, never
+	// the draws.
+	CheckpointEverySteps int64 `protobuf:"varint,32,opt,name=checkpoint_every_steps,json=checkpointEverySteps,proto3" json:"checkpoint_every_steps,omitempty"`
+	unknownFields        protoimpl.UnknownFields
+	sizeCache            protoimpl.SizeCache
 }
 
 func (x *Register) Reset() {
@@ -1416,6 +1452,13 @@ func (x *Register) GetNoise() *GradientNoise {
 		return x.Noise
 	}
 	return nil
+}
+
+func (x *Register) GetCheckpointEverySteps() int64 {
+	if x != nil {
+		return x.CheckpointEverySteps
+	}
+	return 0
 }
 
 // Envelope is q = N(mean, scale^2 I) with the declared bound
@@ -1831,7 +1874,8 @@ func (x *Wants) GetMetric() Metric {
 // Registered acknowledges a Register frame.
 type Registered struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
-	// Identifier of this session, unique on the server.
+	// Identifier of this session: 128 random bits as 32 hex digits, so that
+	// knowing one id tells nothing about another.
 	SessionId string `protobuf:"bytes,1,opt,name=session_id,json=sessionId,proto3" json:"session_id,omitempty"`
 	// The seed actually used.
 	Seed uint64 `protobuf:"varint,2,opt,name=seed,proto3" json:"seed,omitempty"`
@@ -1849,7 +1893,15 @@ type Registered struct {
 	Names []string `protobuf:"bytes,7,rep,name=names,proto3" json:"names,omitempty"`
 	// When the step was planned from wants.eps and the declared curvature:
 	// the steps per chain the plan needs (0 otherwise).
-	PlannedSteps  int64 `protobuf:"varint,8,opt,name=planned_steps,json=plannedSteps,proto3" json:"planned_steps,omitempty"`
+	PlannedSteps int64 `protobuf:"varint,8,opt,name=planned_steps,json=plannedSteps,proto3" json:"planned_steps,omitempty"`
+	// The session's secret: 32 hex digits (128 random bits), issued once.
+	// It authorises Follow and Resume for this session_id (also a 128-bit
+	// random value); keep it as private as a password. The same token is
+	// sent again when the session is resumed.
+	ResumeToken string `protobuf:"bytes,9,opt,name=resume_token,json=resumeToken,proto3" json:"resume_token,omitempty"`
+	// True when this Registered answers a Resume: the session continues
+	// from its latest checkpoint.
+	Resumed       bool `protobuf:"varint,10,opt,name=resumed,proto3" json:"resumed,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -1938,6 +1990,20 @@ func (x *Registered) GetPlannedSteps() int64 {
 		return x.PlannedSteps
 	}
 	return 0
+}
+
+func (x *Registered) GetResumeToken() string {
+	if x != nil {
+		return x.ResumeToken
+	}
+	return ""
+}
+
+func (x *Registered) GetResumed() bool {
+	if x != nil {
+		return x.Resumed
+	}
+	return false
 }
 
 // Points asks the client to evaluate a batch of points.
@@ -3280,6 +3346,86 @@ func (x *ParameterSummary) GetCount() int64 {
 	return 0
 }
 
+// Resume continues a session after its stream broke or its server
+// restarted (sent as the first frame of a new Session stream, in place of
+// Register). The server loads the session's latest checkpoint (written by
+// a server with --state-dir or --state-postgres), answers Registered with
+// the same session_id, figures and token (resumed set), sends again the
+// draws from next_seq up to the checkpoint that it still keeps, and
+// continues with the step after the checkpoint: the client may be asked
+// for points it evaluated before, and the draws that follow are
+// bit-identical to those of the session that never stopped. Draws below
+// next_seq are never sent again. If the session is still running on
+// another stream of this server, that stream ends (CANCELED) and the new
+// one wins. A wrong token and an unknown session get NOT_FOUND (the same
+// answer, so that the token's secrecy protects the id); draws from
+// next_seq no longer kept give OUT_OF_RANGE; a server that keeps no state,
+// or is shutting down, gives UNAVAILABLE. A finished session answers
+// Registered, its kept draws from next_seq and its Finished frame again.
+type Resume struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The session_id from Registered.
+	SessionId string `protobuf:"bytes,1,opt,name=session_id,json=sessionId,proto3" json:"session_id,omitempty"`
+	// The resume_token from Registered.
+	Token string `protobuf:"bytes,2,opt,name=token,proto3" json:"token,omitempty"`
+	// Sequence number of the first draw the client does not have (the last
+	// received seq + rows; 0 when it has none).
+	NextSeq       uint64 `protobuf:"varint,3,opt,name=next_seq,json=nextSeq,proto3" json:"next_seq,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *Resume) Reset() {
+	*x = Resume{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[26]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *Resume) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*Resume) ProtoMessage() {}
+
+func (x *Resume) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[26]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use Resume.ProtoReflect.Descriptor instead.
+func (*Resume) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{26}
+}
+
+func (x *Resume) GetSessionId() string {
+	if x != nil {
+		return x.SessionId
+	}
+	return ""
+}
+
+func (x *Resume) GetToken() string {
+	if x != nil {
+		return x.Token
+	}
+	return ""
+}
+
+func (x *Resume) GetNextSeq() uint64 {
+	if x != nil {
+		return x.NextSeq
+	}
+	return 0
+}
+
 var File_sluice_v1_sluice_proto protoreflect.FileDescriptor
 
 const file_sluice_v1_sluice_proto_rawDesc = "" +
@@ -3310,19 +3456,21 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\vassumptions\x18\b \x03(\tR\vassumptions\x12-\n" +
 	"\x12constants_recalled\x18\t \x01(\bR\x11constantsRecalled\x12\x18\n" +
 	"\apenalty\x18\n" +
-	" \x01(\x01R\apenalty\"I\n" +
+	" \x01(\x01R\apenalty\"_\n" +
 	"\rFollowRequest\x12\x1d\n" +
 	"\n" +
 	"session_id\x18\x01 \x01(\tR\tsessionId\x12\x19\n" +
-	"\bfrom_seq\x18\x02 \x01(\x04R\afromSeq\"v\n" +
+	"\bfrom_seq\x18\x02 \x01(\x04R\afromSeq\x12\x14\n" +
+	"\x05token\x18\x03 \x01(\tR\x05token\"v\n" +
 	"\x0eFollowResponse\x12(\n" +
 	"\x05draws\x18\x01 \x01(\v2\x10.sluice.v1.DrawsH\x00R\x05draws\x121\n" +
 	"\bfinished\x18\x02 \x01(\v2\x13.sluice.v1.FinishedH\x00R\bfinishedB\a\n" +
-	"\x05frame\"\xaf\x01\n" +
+	"\x05frame\"\xdc\x01\n" +
 	"\x0eSessionRequest\x121\n" +
 	"\bregister\x18\x01 \x01(\v2\x13.sluice.v1.RegisterH\x00R\bregister\x12:\n" +
 	"\vevaluations\x18\x02 \x01(\v2\x16.sluice.v1.EvaluationsH\x00R\vevaluations\x12%\n" +
-	"\x04stop\x18\x03 \x01(\v2\x0f.sluice.v1.StopH\x00R\x04stopB\a\n" +
+	"\x04stop\x18\x03 \x01(\v2\x0f.sluice.v1.StopH\x00R\x04stop\x12+\n" +
+	"\x06resume\x18\x04 \x01(\v2\x11.sluice.v1.ResumeH\x00R\x06resumeB\a\n" +
 	"\x05frame\"\x90\x02\n" +
 	"\x0fSessionResponse\x127\n" +
 	"\n" +
@@ -3332,7 +3480,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x05draws\x18\x03 \x01(\v2\x10.sluice.v1.DrawsH\x00R\x05draws\x121\n" +
 	"\bprogress\x18\x04 \x01(\v2\x13.sluice.v1.ProgressH\x00R\bprogress\x121\n" +
 	"\bfinished\x18\x05 \x01(\v2\x13.sluice.v1.FinishedH\x00R\bfinishedB\a\n" +
-	"\x05frame\"\xb1\t\n" +
+	"\x05frame\"\xe7\t\n" +
 	"\bRegister\x12\x10\n" +
 	"\x03dim\x18\x01 \x01(\x05R\x03dim\x12\x16\n" +
 	"\x06chains\x18\x02 \x01(\x05R\x06chains\x12\x16\n" +
@@ -3369,7 +3517,8 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"sliceWidth\x120\n" +
 	"\x14slice_max_expansions\x18\x1e \x01(\x05R\x12sliceMaxExpansions\x12/\n" +
 	"\benvelope\x18\x1f \x01(\v2\x13.sluice.v1.EnvelopeR\benvelope\x12.\n" +
-	"\x05noise\x18\x15 \x01(\v2\x18.sluice.v1.GradientNoiseR\x05noise\"Q\n" +
+	"\x05noise\x18\x15 \x01(\v2\x18.sluice.v1.GradientNoiseR\x05noise\x124\n" +
+	"\x16checkpoint_every_steps\x18  \x01(\x03R\x14checkpointEverySteps\"Q\n" +
 	"\bEnvelope\x12\x12\n" +
 	"\x04mean\x18\x01 \x01(\fR\x04mean\x12\x14\n" +
 	"\x05scale\x18\x02 \x01(\x01R\x05scale\x12\x1b\n" +
@@ -3403,7 +3552,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\bmax_rhat\x18\x03 \x01(\x01R\amaxRhat\x12\x17\n" +
 	"\amax_ksd\x18\x04 \x01(\x01R\x06maxKsd\x12\x10\n" +
 	"\x03eps\x18\x05 \x01(\x01R\x03eps\x12)\n" +
-	"\x06metric\x18\x06 \x01(\x0e2\x11.sluice.v1.MetricR\x06metric\"\x84\x02\n" +
+	"\x06metric\x18\x06 \x01(\x0e2\x11.sluice.v1.MetricR\x06metric\"\xc1\x02\n" +
 	"\n" +
 	"Registered\x12\x1d\n" +
 	"\n" +
@@ -3414,7 +3563,10 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x14evaluations_per_step\x18\x05 \x01(\x03R\x12evaluationsPerStep\x12*\n" +
 	"\x11max_message_bytes\x18\x06 \x01(\x03R\x0fmaxMessageBytes\x12\x14\n" +
 	"\x05names\x18\a \x03(\tR\x05names\x12#\n" +
-	"\rplanned_steps\x18\b \x01(\x03R\fplannedSteps\"\xf0\x02\n" +
+	"\rplanned_steps\x18\b \x01(\x03R\fplannedSteps\x12!\n" +
+	"\fresume_token\x18\t \x01(\tR\vresumeToken\x12\x18\n" +
+	"\aresumed\x18\n" +
+	" \x01(\bR\aresumed\"\xf0\x02\n" +
 	"\x06Points\x12\x1d\n" +
 	"\n" +
 	"request_id\x18\x01 \x01(\x04R\trequestId\x12\x1b\n" +
@@ -3540,7 +3692,12 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x04name\x18\x01 \x01(\tR\x04name\x12\x12\n" +
 	"\x04mean\x18\x02 \x01(\x01R\x04mean\x12\x0e\n" +
 	"\x02sd\x18\x03 \x01(\x01R\x02sd\x12\x14\n" +
-	"\x05count\x18\x04 \x01(\x03R\x05count*d\n" +
+	"\x05count\x18\x04 \x01(\x03R\x05count\"X\n" +
+	"\x06Resume\x12\x1d\n" +
+	"\n" +
+	"session_id\x18\x01 \x01(\tR\tsessionId\x12\x14\n" +
+	"\x05token\x18\x02 \x01(\tR\x05token\x12\x19\n" +
+	"\bnext_seq\x18\x03 \x01(\x04R\anextSeq*d\n" +
 	"\fGradientKind\x12\x1d\n" +
 	"\x19GRADIENT_KIND_UNSPECIFIED\x10\x00\x12\x17\n" +
 	"\x13GRADIENT_KIND_EXACT\x10\x01\x12\x1c\n" +
@@ -3591,7 +3748,7 @@ func file_sluice_v1_sluice_proto_rawDescGZIP() []byte {
 }
 
 var file_sluice_v1_sluice_proto_enumTypes = make([]protoimpl.EnumInfo, 6)
-var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 26)
+var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 27)
 var file_sluice_v1_sluice_proto_goTypes = []any{
 	(GradientKind)(0),            // 0: sluice.v1.GradientKind
 	(Metric)(0),                  // 1: sluice.v1.Metric
@@ -3625,6 +3782,7 @@ var file_sluice_v1_sluice_proto_goTypes = []any{
 	(*TargetStatus)(nil),         // 29: sluice.v1.TargetStatus
 	(*Finished)(nil),             // 30: sluice.v1.Finished
 	(*ParameterSummary)(nil),     // 31: sluice.v1.ParameterSummary
+	(*Resume)(nil),               // 32: sluice.v1.Resume
 }
 var file_sluice_v1_sluice_proto_depIdxs = []int32{
 	16, // 0: sluice.v1.PlanRequest.curvature:type_name -> sluice.v1.Curvature
@@ -3635,42 +3793,43 @@ var file_sluice_v1_sluice_proto_depIdxs = []int32{
 	12, // 5: sluice.v1.SessionRequest.register:type_name -> sluice.v1.Register
 	20, // 6: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
 	21, // 7: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
-	18, // 8: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
-	19, // 9: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
-	22, // 10: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
-	23, // 11: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
-	30, // 12: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
-	16, // 13: sluice.v1.Register.curvature:type_name -> sluice.v1.Curvature
-	17, // 14: sluice.v1.Register.wants:type_name -> sluice.v1.Wants
-	14, // 15: sluice.v1.Register.schedule:type_name -> sluice.v1.StepSchedule
-	13, // 16: sluice.v1.Register.envelope:type_name -> sluice.v1.Envelope
-	15, // 17: sluice.v1.Register.noise:type_name -> sluice.v1.GradientNoise
-	0,  // 18: sluice.v1.GradientNoise.kind:type_name -> sluice.v1.GradientKind
-	1,  // 19: sluice.v1.Wants.metric:type_name -> sluice.v1.Metric
-	2,  // 20: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
-	3,  // 21: sluice.v1.Progress.state:type_name -> sluice.v1.State
-	26, // 22: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
-	27, // 23: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
-	28, // 24: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
-	29, // 25: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
-	25, // 26: sluice.v1.Progress.noise:type_name -> sluice.v1.NoiseEstimate
-	24, // 27: sluice.v1.Progress.kernel:type_name -> sluice.v1.KernelReport
-	1,  // 28: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
-	4,  // 29: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
-	5,  // 30: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
-	23, // 31: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
-	31, // 32: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
-	10, // 33: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
-	8,  // 34: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
-	6,  // 35: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
-	11, // 36: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
-	9,  // 37: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
-	7,  // 38: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
-	36, // [36:39] is the sub-list for method output_type
-	33, // [33:36] is the sub-list for method input_type
-	33, // [33:33] is the sub-list for extension type_name
-	33, // [33:33] is the sub-list for extension extendee
-	0,  // [0:33] is the sub-list for field type_name
+	32, // 8: sluice.v1.SessionRequest.resume:type_name -> sluice.v1.Resume
+	18, // 9: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
+	19, // 10: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
+	22, // 11: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
+	23, // 12: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
+	30, // 13: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
+	16, // 14: sluice.v1.Register.curvature:type_name -> sluice.v1.Curvature
+	17, // 15: sluice.v1.Register.wants:type_name -> sluice.v1.Wants
+	14, // 16: sluice.v1.Register.schedule:type_name -> sluice.v1.StepSchedule
+	13, // 17: sluice.v1.Register.envelope:type_name -> sluice.v1.Envelope
+	15, // 18: sluice.v1.Register.noise:type_name -> sluice.v1.GradientNoise
+	0,  // 19: sluice.v1.GradientNoise.kind:type_name -> sluice.v1.GradientKind
+	1,  // 20: sluice.v1.Wants.metric:type_name -> sluice.v1.Metric
+	2,  // 21: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
+	3,  // 22: sluice.v1.Progress.state:type_name -> sluice.v1.State
+	26, // 23: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
+	27, // 24: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
+	28, // 25: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
+	29, // 26: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
+	25, // 27: sluice.v1.Progress.noise:type_name -> sluice.v1.NoiseEstimate
+	24, // 28: sluice.v1.Progress.kernel:type_name -> sluice.v1.KernelReport
+	1,  // 29: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
+	4,  // 30: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
+	5,  // 31: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
+	23, // 32: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
+	31, // 33: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
+	10, // 34: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
+	8,  // 35: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
+	6,  // 36: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
+	11, // 37: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
+	9,  // 38: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
+	7,  // 39: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
+	37, // [37:40] is the sub-list for method output_type
+	34, // [34:37] is the sub-list for method input_type
+	34, // [34:34] is the sub-list for extension type_name
+	34, // [34:34] is the sub-list for extension extendee
+	0,  // [0:34] is the sub-list for field type_name
 }
 
 func init() { file_sluice_v1_sluice_proto_init() }
@@ -3686,6 +3845,7 @@ func file_sluice_v1_sluice_proto_init() {
 		(*SessionRequest_Register)(nil),
 		(*SessionRequest_Evaluations)(nil),
 		(*SessionRequest_Stop)(nil),
+		(*SessionRequest_Resume)(nil),
 	}
 	file_sluice_v1_sluice_proto_msgTypes[5].OneofWrappers = []any{
 		(*SessionResponse_Registered)(nil),
@@ -3700,7 +3860,7 @@ func file_sluice_v1_sluice_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_sluice_v1_sluice_proto_rawDesc), len(file_sluice_v1_sluice_proto_rawDesc)),
 			NumEnums:      6,
-			NumMessages:   26,
+			NumMessages:   27,
 			NumExtensions: 0,
 			NumServices:   1,
 		},

@@ -55,7 +55,8 @@ type SluiceServiceClient interface {
 	// client answers each with Evaluations, in lock step, while draws and
 	// progress flow back on the same stream.
 	//
-	// Frame order: the client's first frame is Register. The server answers
+	// Frame order: the client's first frame is Register (or Resume, to
+	// continue a session after a broken stream). The server answers
 	// Registered, then repeats {Points, Draws?, Progress?} until it sends
 	// Finished and closes the stream. The client answers every Points frame
 	// with exactly one Evaluations frame carrying the same request_id and
@@ -77,8 +78,12 @@ type SluiceServiceClient interface {
 	// it needs gets every draw after it, with no loss and no duplicate. Rows
 	// already dropped from the buffer end the call with OUT_OF_RANGE (the
 	// message says the oldest sequence number kept), never with a silent gap;
-	// an unknown session gives NOT_FOUND. The stream ends with the session's
-	// Finished frame once every draw has been sent.
+	// an unknown session, or a wrong FollowRequest.token, gives NOT_FOUND. A
+	// session stopped without finishing on a server that keeps state (its
+	// client went away, or the server is shutting down) gives UNAVAILABLE
+	// until its client resumes it: follow again from the next sequence
+	// number. The stream ends with the session's Finished frame once every
+	// draw has been sent.
 	Follow(ctx context.Context, in *FollowRequest, opts ...grpc.CallOption) (grpc.ServerStreamingClient[FollowResponse], error)
 	// Plan answers, before any sampling, what reaching a guaranteed accuracy
 	// costs for an m-strongly convex, M-smooth target with unadjusted
@@ -152,7 +157,8 @@ type SluiceServiceServer interface {
 	// client answers each with Evaluations, in lock step, while draws and
 	// progress flow back on the same stream.
 	//
-	// Frame order: the client's first frame is Register. The server answers
+	// Frame order: the client's first frame is Register (or Resume, to
+	// continue a session after a broken stream). The server answers
 	// Registered, then repeats {Points, Draws?, Progress?} until it sends
 	// Finished and closes the stream. The client answers every Points frame
 	// with exactly one Evaluations frame carrying the same request_id and
@@ -174,8 +180,12 @@ type SluiceServiceServer interface {
 	// it needs gets every draw after it, with no loss and no duplicate. Rows
 	// already dropped from the buffer end the call with OUT_OF_RANGE (the
 	// message says the oldest sequence number kept), never with a silent gap;
-	// an unknown session gives NOT_FOUND. The stream ends with the session's
-	// Finished frame once every draw has been sent.
+	// an unknown session, or a wrong FollowRequest.token, gives NOT_FOUND. A
+	// session stopped without finishing on a server that keeps state (its
+	// client went away, or the server is shutting down) gives UNAVAILABLE
+	// until its client resumes it: follow again from the next sequence
+	// number. The stream ends with the session's Finished frame once every
+	// draw has been sent.
 	Follow(*FollowRequest, grpc.ServerStreamingServer[FollowResponse]) error
 	// Plan answers, before any sampling, what reaching a guaranteed accuracy
 	// costs for an m-strongly convex, M-smooth target with unadjusted

@@ -145,12 +145,14 @@ class Finished(_message.Message):
     def __init__(self, reason: _Optional[_Union[FinishReason, str]] = ..., message: _Optional[str] = ..., progress: _Optional[_Union[Progress, _Mapping]] = ..., parameters: _Optional[_Iterable[_Union[ParameterSummary, _Mapping]]] = ..., parameters_omitted: _Optional[int] = ...) -> None: ...
 
 class FollowRequest(_message.Message):
-    __slots__ = ["from_seq", "session_id"]
+    __slots__ = ["from_seq", "session_id", "token"]
     FROM_SEQ_FIELD_NUMBER: _ClassVar[int]
     SESSION_ID_FIELD_NUMBER: _ClassVar[int]
+    TOKEN_FIELD_NUMBER: _ClassVar[int]
     from_seq: int
     session_id: str
-    def __init__(self, session_id: _Optional[str] = ..., from_seq: _Optional[int] = ...) -> None: ...
+    token: str
+    def __init__(self, session_id: _Optional[str] = ..., from_seq: _Optional[int] = ..., token: _Optional[str] = ...) -> None: ...
 
 class FollowResponse(_message.Message):
     __slots__ = ["draws", "finished"]
@@ -355,10 +357,11 @@ class Progress(_message.Message):
     def __init__(self, state: _Optional[_Union[State, str]] = ..., steps: _Optional[int] = ..., evaluations_used: _Optional[int] = ..., evaluations_left: _Optional[int] = ..., seconds_used: _Optional[float] = ..., seconds_left: _Optional[float] = ..., draws_sent: _Optional[int] = ..., evaluations_per_second: _Optional[float] = ..., parameters: _Optional[_Iterable[_Union[ParameterDiagnostics, _Mapping]]] = ..., ksd: _Optional[float] = ..., bound: _Optional[_Union[Bound, _Mapping]] = ..., curvature: _Optional[_Union[CurvatureEstimate, _Mapping]] = ..., targets: _Optional[_Iterable[_Union[TargetStatus, _Mapping]]] = ..., noise: _Optional[_Union[NoiseEstimate, _Mapping]] = ..., kernel: _Optional[_Union[KernelReport, _Mapping]] = ..., parameters_omitted: _Optional[int] = ...) -> None: ...
 
 class Register(_message.Message):
-    __slots__ = ["anchor_every", "burn_in", "chains", "curvature", "curvature_probe_iterations", "dim", "draws_per_chain", "envelope", "fixed_point_iterations", "fixed_point_tolerance", "friction", "inverse_mass", "keep_every", "kernel", "krylov_max_iterations", "krylov_tolerance", "max_evaluations", "max_message_bytes", "max_seconds", "names", "noise", "progress_every_steps", "progress_interval_seconds", "schedule", "seed", "slice_max_expansions", "slice_width", "start", "start_rows", "step", "wants"]
+    __slots__ = ["anchor_every", "burn_in", "chains", "checkpoint_every_steps", "curvature", "curvature_probe_iterations", "dim", "draws_per_chain", "envelope", "fixed_point_iterations", "fixed_point_tolerance", "friction", "inverse_mass", "keep_every", "kernel", "krylov_max_iterations", "krylov_tolerance", "max_evaluations", "max_message_bytes", "max_seconds", "names", "noise", "progress_every_steps", "progress_interval_seconds", "schedule", "seed", "slice_max_expansions", "slice_width", "start", "start_rows", "step", "wants"]
     ANCHOR_EVERY_FIELD_NUMBER: _ClassVar[int]
     BURN_IN_FIELD_NUMBER: _ClassVar[int]
     CHAINS_FIELD_NUMBER: _ClassVar[int]
+    CHECKPOINT_EVERY_STEPS_FIELD_NUMBER: _ClassVar[int]
     CURVATURE_FIELD_NUMBER: _ClassVar[int]
     CURVATURE_PROBE_ITERATIONS_FIELD_NUMBER: _ClassVar[int]
     DIM_FIELD_NUMBER: _ClassVar[int]
@@ -390,6 +393,7 @@ class Register(_message.Message):
     anchor_every: int
     burn_in: int
     chains: int
+    checkpoint_every_steps: int
     curvature: Curvature
     curvature_probe_iterations: int
     dim: int
@@ -418,15 +422,17 @@ class Register(_message.Message):
     start_rows: int
     step: float
     wants: Wants
-    def __init__(self, dim: _Optional[int] = ..., chains: _Optional[int] = ..., kernel: _Optional[str] = ..., start: _Optional[bytes] = ..., start_rows: _Optional[int] = ..., step: _Optional[float] = ..., burn_in: _Optional[int] = ..., keep_every: _Optional[int] = ..., draws_per_chain: _Optional[int] = ..., max_evaluations: _Optional[int] = ..., max_seconds: _Optional[float] = ..., progress_every_steps: _Optional[int] = ..., progress_interval_seconds: _Optional[float] = ..., seed: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., max_message_bytes: _Optional[int] = ..., curvature: _Optional[_Union[Curvature, _Mapping]] = ..., wants: _Optional[_Union[Wants, _Mapping]] = ..., friction: _Optional[float] = ..., inverse_mass: _Optional[float] = ..., krylov_tolerance: _Optional[float] = ..., krylov_max_iterations: _Optional[int] = ..., schedule: _Optional[_Union[StepSchedule, _Mapping]] = ..., anchor_every: _Optional[int] = ..., fixed_point_tolerance: _Optional[float] = ..., fixed_point_iterations: _Optional[int] = ..., curvature_probe_iterations: _Optional[int] = ..., slice_width: _Optional[float] = ..., slice_max_expansions: _Optional[int] = ..., envelope: _Optional[_Union[Envelope, _Mapping]] = ..., noise: _Optional[_Union[GradientNoise, _Mapping]] = ...) -> None: ...
+    def __init__(self, dim: _Optional[int] = ..., chains: _Optional[int] = ..., kernel: _Optional[str] = ..., start: _Optional[bytes] = ..., start_rows: _Optional[int] = ..., step: _Optional[float] = ..., burn_in: _Optional[int] = ..., keep_every: _Optional[int] = ..., draws_per_chain: _Optional[int] = ..., max_evaluations: _Optional[int] = ..., max_seconds: _Optional[float] = ..., progress_every_steps: _Optional[int] = ..., progress_interval_seconds: _Optional[float] = ..., seed: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., max_message_bytes: _Optional[int] = ..., curvature: _Optional[_Union[Curvature, _Mapping]] = ..., wants: _Optional[_Union[Wants, _Mapping]] = ..., friction: _Optional[float] = ..., inverse_mass: _Optional[float] = ..., krylov_tolerance: _Optional[float] = ..., krylov_max_iterations: _Optional[int] = ..., schedule: _Optional[_Union[StepSchedule, _Mapping]] = ..., anchor_every: _Optional[int] = ..., fixed_point_tolerance: _Optional[float] = ..., fixed_point_iterations: _Optional[int] = ..., curvature_probe_iterations: _Optional[int] = ..., slice_width: _Optional[float] = ..., slice_max_expansions: _Optional[int] = ..., envelope: _Optional[_Union[Envelope, _Mapping]] = ..., noise: _Optional[_Union[GradientNoise, _Mapping]] = ..., checkpoint_every_steps: _Optional[int] = ...) -> None: ...
 
 class Registered(_message.Message):
-    __slots__ = ["evaluations_per_step", "kernel", "max_message_bytes", "names", "planned_steps", "seed", "session_id", "step"]
+    __slots__ = ["evaluations_per_step", "kernel", "max_message_bytes", "names", "planned_steps", "resume_token", "resumed", "seed", "session_id", "step"]
     EVALUATIONS_PER_STEP_FIELD_NUMBER: _ClassVar[int]
     KERNEL_FIELD_NUMBER: _ClassVar[int]
     MAX_MESSAGE_BYTES_FIELD_NUMBER: _ClassVar[int]
     NAMES_FIELD_NUMBER: _ClassVar[int]
     PLANNED_STEPS_FIELD_NUMBER: _ClassVar[int]
+    RESUMED_FIELD_NUMBER: _ClassVar[int]
+    RESUME_TOKEN_FIELD_NUMBER: _ClassVar[int]
     SEED_FIELD_NUMBER: _ClassVar[int]
     SESSION_ID_FIELD_NUMBER: _ClassVar[int]
     STEP_FIELD_NUMBER: _ClassVar[int]
@@ -435,20 +441,34 @@ class Registered(_message.Message):
     max_message_bytes: int
     names: _containers.RepeatedScalarFieldContainer[str]
     planned_steps: int
+    resume_token: str
+    resumed: bool
     seed: int
     session_id: str
     step: float
-    def __init__(self, session_id: _Optional[str] = ..., seed: _Optional[int] = ..., kernel: _Optional[str] = ..., step: _Optional[float] = ..., evaluations_per_step: _Optional[int] = ..., max_message_bytes: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., planned_steps: _Optional[int] = ...) -> None: ...
+    def __init__(self, session_id: _Optional[str] = ..., seed: _Optional[int] = ..., kernel: _Optional[str] = ..., step: _Optional[float] = ..., evaluations_per_step: _Optional[int] = ..., max_message_bytes: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., planned_steps: _Optional[int] = ..., resume_token: _Optional[str] = ..., resumed: bool = ...) -> None: ...
+
+class Resume(_message.Message):
+    __slots__ = ["next_seq", "session_id", "token"]
+    NEXT_SEQ_FIELD_NUMBER: _ClassVar[int]
+    SESSION_ID_FIELD_NUMBER: _ClassVar[int]
+    TOKEN_FIELD_NUMBER: _ClassVar[int]
+    next_seq: int
+    session_id: str
+    token: str
+    def __init__(self, session_id: _Optional[str] = ..., token: _Optional[str] = ..., next_seq: _Optional[int] = ...) -> None: ...
 
 class SessionRequest(_message.Message):
-    __slots__ = ["evaluations", "register", "stop"]
+    __slots__ = ["evaluations", "register", "resume", "stop"]
     EVALUATIONS_FIELD_NUMBER: _ClassVar[int]
     REGISTER_FIELD_NUMBER: _ClassVar[int]
+    RESUME_FIELD_NUMBER: _ClassVar[int]
     STOP_FIELD_NUMBER: _ClassVar[int]
     evaluations: Evaluations
     register: Register
+    resume: Resume
     stop: Stop
-    def __init__(self, register: _Optional[_Union[Register, _Mapping]] = ..., evaluations: _Optional[_Union[Evaluations, _Mapping]] = ..., stop: _Optional[_Union[Stop, _Mapping]] = ...) -> None: ...
+    def __init__(self, register: _Optional[_Union[Register, _Mapping]] = ..., evaluations: _Optional[_Union[Evaluations, _Mapping]] = ..., stop: _Optional[_Union[Stop, _Mapping]] = ..., resume: _Optional[_Union[Resume, _Mapping]] = ...) -> None: ...
 
 class SessionResponse(_message.Message):
     __slots__ = ["draws", "finished", "points", "progress", "registered"]

@@ -1,0 +1,268 @@
+package server
+
+import (
+	"context"
+	"errors"
+	"os"
+	"time"
+
+	"go.uber.org/zap"
+
+	sluicev1 "sluice/proto/sluice/v1"
+	"sluice/server/metrics"
+	"sluice/server/session"
+	"sluice/server/store"
+)
+
+// StateOptions configure checkpoints and Resume. With a nil Store the
+// server keeps no state: sessions end with their stream, and Resume is
+// answered UNAVAILABLE.
+type StateOptions struct {
+	// Store keeps the checkpoints (store.OpenFile or store.OpenPostgres);
+	// the server closes it neither on Shutdown nor on Stop.
+	Store store.Store
+	// Every writes a checkpoint at the first step boundary after this much
+	// wall time since the last (0 means 30 seconds; negative: not by time).
+	// Register.checkpoint_every_steps adds checkpoints by step count.
+	Every time.Duration
+	// Retention is how long the state of a finished or abandoned session
+	// is kept after its last checkpoint (0 means 24 hours); a sweep
+	// removes older records every Retention/8 (between a second and an
+	// hour).
+	Retention time.Duration
+	// Replica names this server as the holder of its sessions' leases
+	// (default: the host name). A server restarted with the same name
+	// takes its sessions back at once; another replica waits for the
+	// lease to expire.
+	Replica string
+	// Lease is how long a checkpoint's lease lasts (0 means 2 minutes).
+	Lease time.Duration
+	// Metrics, when set, records every checkpoint written.
+	Metrics *metrics.Metrics
+}
+
+func (o StateOptions) withDefaults() StateOptions {
+	if o.Every == 0 {
+		o.Every = 30 * time.Second
+	}
+	if o.Every < 0 {
+		o.Every = 0
+	}
+	if o.Retention <= 0 {
+		o.Retention = 24 * time.Hour
+	}
+	if o.Replica == "" {
+		o.Replica, _ = os.Hostname()
+		if o.Replica == "" {
+			o.Replica = "sluice"
+		}
+	}
+	if o.Lease <= 0 {
+		o.Lease = 2 * time.Minute
+	}
+	return o
+}
+
+// liveSession is a session running on a stream of this server.
+type liveSession struct {
+	token  string
+	cancel context.CancelFunc
+	done   chan struct{} // closed when its handler is done with it
+}
+
+// storeTimeout bounds one store call.
+const storeTimeout = 30 * time.Second
+
+// takeoverWait bounds how long a Resume waits for the stream it replaces
+// to end.
+const takeoverWait = time.Minute
+
+// goLive records a running session so that a Resume from another stream
+// can end it; lv is the entry a Resume already made.
+func (s *Server) goLive(id string, sess *session.Session, cancel context.CancelFunc, lv *liveSession) *liveSession {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	if lv == nil {
+		lv = &liveSession{done: make(chan struct{})}
+	}
+	lv.token, lv.cancel = sess.Token(), cancel
+	s.live[id] = lv
+	return lv
+}
+
+func (s *Server) leave(id string, lv *liveSession) {
+	s.mu.Lock()
+	if s.live[id] == lv {
+		delete(s.live, id)
+	}
+	s.mu.Unlock()
+	close(lv.done)
+}
+
+// persistTo makes sess write its checkpoints to the store, under this
+// replica's lease; a finished session's last checkpoint releases it.
+func (s *Server) persistTo(ctx context.Context, sess *session.Session) {
+	st := s.opts.State.withDefaults()
+	if st.Store == nil {
+		return
+	}
+	id := sess.ID()
+	log := s.log.With(zap.String("session", id))
+	sess.SetCheckpoints(session.Checkpoints{Every: st.Every, Save: func(c session.Checkpoint) {
+		if c.State == nil {
+			log.Error("checkpoint could not be encoded; the previous one stands", zap.Int("step", c.Steps))
+			return
+		}
+		rec := store.Record{State: c.State, Seq: c.Seq, Owner: st.Replica, LeaseUntil: time.Now().Add(st.Lease)}
+		if c.Final {
+			rec.LeaseUntil = time.Time{}
+		}
+		sctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), storeTimeout)
+		defer cancel()
+		t := time.Now()
+		if err := st.Store.Put(sctx, id, rec); err != nil {
+			log.Warn("checkpoint not written", zap.Int("step", c.Steps), zap.Error(err))
+			return
+		}
+		st.Metrics.Checkpoint(time.Since(t), len(c.State))
+		log.Debug("checkpoint written", zap.Int("step", c.Steps), zap.Int("bytes", len(c.State)), zap.Bool("final", c.Final))
+	}})
+}
+
+// notFound is the one answer to a Resume or Follow whose session is
+// unknown or whose token is wrong: the two are indistinguishable.
+func notFound() error {
+	return problem(unknownSession, "session_id", "no session with this id and token here")
+}
+
+// resume implements the Resume variant of the Session rpc's first frame.
+func (s *Server) resume(stream sluicev1.SluiceService_SessionServer, r *sluicev1.Resume) error {
+	st := s.opts.State.withDefaults()
+	if st.Store == nil {
+		return problem(draining, "", "this server keeps no session state (sluice serve --state-dir or --state-postgres): nothing to resume")
+	}
+	id, token := r.GetSessionId(), r.GetToken()
+	if id == "" || len(id) > store.MaxIDBytes || token == "" {
+		return notFound()
+	}
+	// A session still running here: its stream ends, this one wins.
+	s.mu.Lock()
+	if s.draining {
+		s.mu.Unlock()
+		return problem(draining, "", "server shutting down")
+	}
+	old := s.live[id]
+	s.mu.Unlock()
+	if old != nil {
+		if !SessionTokenEqual(token, old.token) {
+			return notFound()
+		}
+		old.cancel()
+		select {
+		case <-old.done:
+		case <-time.After(takeoverWait):
+			return problem(draining, "", "the session's previous stream is still ending; retry")
+		case <-stream.Context().Done():
+			return toStatus(stream.Context().Err())
+		}
+	}
+	ctx, cancel := context.WithTimeout(stream.Context(), storeTimeout)
+	defer cancel()
+	rec, err := st.Store.Get(ctx, id)
+	if errors.Is(err, store.ErrNotFound) {
+		return notFound()
+	}
+	if err != nil {
+		s.log.Warn("checkpoint store", zap.String("session", id), zap.Error(err))
+		return problem(draining, "", "the checkpoint store is not available; retry")
+	}
+	sess, err := session.Restore(rec.State, s.opts.Limits)
+	if err != nil {
+		s.log.Error("checkpoint cannot be restored", zap.String("session", id), zap.Error(err))
+		return notFound()
+	}
+	if sess.ID() != id || !SessionTokenEqual(token, sess.Token()) {
+		return notFound()
+	}
+	if err := sess.ResumeAt(r.GetNextSeq()); err != nil {
+		return problem(outsideLog, "resume.next_seq", "%v", err)
+	}
+	// Take the lease: refused while another replica holds a live one.
+	rec.Owner, rec.LeaseUntil = st.Replica, time.Now().Add(st.Lease)
+	if err := st.Store.Put(ctx, id, rec); err != nil {
+		if errors.Is(err, store.ErrConflict) {
+			return problem(draining, "", "session %s is held by another server; retry after its lease (%v) expires", id, st.Lease)
+		}
+		return problem(draining, "", "the checkpoint store is not available; retry")
+	}
+	s.log.Info("session resumed", zap.String("session", id), zap.Uint64("next_seq", r.GetNextSeq()))
+	return s.serveSession(stream, sess, nil)
+}
+
+// followable returns the followed log of session id when token is its
+// token. A session this server keeps state for but is not running (its
+// client has not resumed it yet) gives UNAVAILABLE; anything else the one
+// NOT_FOUND.
+func (s *Server) followable(ctx context.Context, id, token string) (*followed, error) {
+	s.mu.Lock()
+	f, ok := s.logs[id]
+	s.mu.Unlock()
+	if ok {
+		if !SessionTokenEqual(token, f.token) {
+			return nil, notFound()
+		}
+		return f, nil
+	}
+	st := s.opts.State
+	if st.Store == nil || id == "" || len(id) > store.MaxIDBytes || token == "" {
+		return nil, notFound()
+	}
+	ctx, cancel := context.WithTimeout(ctx, storeTimeout)
+	defer cancel()
+	rec, err := st.Store.Get(ctx, id)
+	if err != nil {
+		return nil, notFound()
+	}
+	if t, err := session.TokenOf(rec.State); err != nil || !SessionTokenEqual(token, t) {
+		return nil, notFound()
+	}
+	return nil, problem(draining, "", "session %s is suspended; it continues when its client resumes it", id)
+}
+
+// startSweep runs the store's sweep every Retention/8 (at most hourly)
+// until Shutdown or Stop.
+func (s *Server) startSweep() {
+	if s.opts.State.Store == nil {
+		return
+	}
+	st := s.opts.State.withDefaults()
+	every := max(min(st.Retention/8, time.Hour), time.Second)
+	go func() {
+		t := time.NewTicker(every)
+		defer t.Stop()
+		for {
+			select {
+			case <-s.sweeper:
+				return
+			case <-t.C:
+			}
+			ctx, cancel := context.WithTimeout(context.Background(), storeTimeout)
+			n, err := st.Store.Sweep(ctx, time.Now().Add(-st.Retention))
+			cancel()
+			if err != nil {
+				s.log.Warn("sweep of old checkpoints failed", zap.Error(err))
+			} else if n > 0 {
+				s.log.Info("old checkpoints removed", zap.Int("sessions", n))
+			}
+		}
+	}()
+}
+
+// stopSweep ends the sweep loop; s.mu is held.
+func (s *Server) stopSweep() {
+	select {
+	case <-s.sweeper:
+	default:
+		close(s.sweeper)
+	}
+}
