@@ -99,10 +99,6 @@ func TestServeHealthAddrBad(t *testing.T) {
 	}
 }
 
-// pendingServeFlags are flags the Kubernetes manifests already pass that
-// sluice serve is still gaining; they are reported, not failed.
-var pendingServeFlags = map[string]bool{"state-dir": true}
-
 // Every flag the server Deployment passes to sluice serve is one that
 // `sluice serve -h` lists, and its readiness probe asks for the sampling
 // service by its health name.
@@ -126,8 +122,6 @@ func TestDeploymentUsesServeFlags(t *testing.T) {
 	for _, a := range args {
 		switch {
 		case known[a[1]]:
-		case pendingServeFlags[a[1]]:
-			t.Logf("--%s: not a flag of sluice serve yet", a[1])
 		default:
 			t.Errorf("the Deployment passes --%s, which sluice serve does not have", a[1])
 		}
