@@ -318,6 +318,8 @@ type Summary struct {
 	// NextSeq is the sequence number after the last draw received: where
 	// a follower resumes.
 	NextSeq uint64
+	// Header is the followed session's header (Follow only; nil for Run).
+	Header *FollowHeader
 }
 
 // Option adjusts Run.
@@ -327,6 +329,7 @@ type config struct {
 	onRegistered func(*Registered)
 	onDraws      func(*Draws)
 	onProgress   func(*Progress)
+	onHeader     func(*FollowHeader)
 	callOpts     []grpc.CallOption
 	keepDraws    bool
 }
