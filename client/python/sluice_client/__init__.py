@@ -28,13 +28,16 @@ products for "ozaki-krylov", several gradient replicates per point with
 ``Noise(replicates=2)``) are answered with ``batch=``, a function of a
 :class:`Batch` returning an :class:`Answer`. :func:`plan` asks what a
 guaranteed accuracy costs before sampling; :func:`follow` streams another
-session's draws. Server errors raise :class:`SessionError` (gRPC status
+session's header, draws and progress; :class:`HistoryWriter` writes the
+progress history that ``sluice report`` reads beside the draws
+``Summary.save`` writes. Server errors raise :class:`SessionError` (gRPC status
 code, message, and the offending field from the status's bad-request
 detail).
 """
 
 from ._errors import DrawsLostError, ProtocolError, SessionError, SluiceError
-from ._follow import FOLLOW_MAX_MESSAGE_BYTES, FOLLOW_METHOD, FollowEvent, Follower, follow
+from ._follow import FOLLOW_MAX_MESSAGE_BYTES, FOLLOW_METHOD, FollowEvent, Follower, FollowHeader, follow
+from ._history import KIND_FINISH, KIND_PROGRESS, HistoryWriter, history_record
 from ._plan import PLAN_METHOD, plan
 from ._session import SESSION_METHOD, BatchFn, Event, GradFn, LogDensityFn, Session, connect, run
 from ._summary import DEFAULT_INTERVAL_LEVEL, ParameterStats
@@ -72,6 +75,8 @@ __all__ = [
     "DEFAULT_MAX_MESSAGE_BYTES",
     "FOLLOW_MAX_MESSAGE_BYTES",
     "FOLLOW_METHOD",
+    "KIND_FINISH",
+    "KIND_PROGRESS",
     "METRICS",
     "PLAN_METHOD",
     "SESSION_METHOD",
@@ -87,6 +92,8 @@ __all__ = [
     "Event",
     "FinishReason",
     "FollowEvent",
+    "FollowHeader",
+    "HistoryWriter",
     "Follower",
     "GradFn",
     "KernelReport",
@@ -112,6 +119,7 @@ __all__ = [
     "connect",
     "follow",
     "from_wire",
+    "history_record",
     "plan",
     "run",
     "to_wire",
