@@ -77,8 +77,11 @@ type SluiceServiceClient interface {
 	// it needs gets every draw after it, with no loss and no duplicate. Rows
 	// already dropped from the buffer end the call with OUT_OF_RANGE (the
 	// message says the oldest sequence number kept), never with a silent gap;
-	// an unknown session gives NOT_FOUND. The stream ends with the session's
-	// Finished frame once every draw has been sent.
+	// an unknown session gives NOT_FOUND. The stream starts with a
+	// FollowHeader (what the session samples and its budget), carries the
+	// session's Progress reports among the draws where the session made
+	// them, and ends with the session's Finished frame once every draw has
+	// been sent.
 	Follow(ctx context.Context, in *FollowRequest, opts ...grpc.CallOption) (grpc.ServerStreamingClient[FollowResponse], error)
 	// Plan answers, before any sampling, what reaching a guaranteed accuracy
 	// costs for an m-strongly convex, M-smooth target with unadjusted
@@ -174,8 +177,11 @@ type SluiceServiceServer interface {
 	// it needs gets every draw after it, with no loss and no duplicate. Rows
 	// already dropped from the buffer end the call with OUT_OF_RANGE (the
 	// message says the oldest sequence number kept), never with a silent gap;
-	// an unknown session gives NOT_FOUND. The stream ends with the session's
-	// Finished frame once every draw has been sent.
+	// an unknown session gives NOT_FOUND. The stream starts with a
+	// FollowHeader (what the session samples and its budget), carries the
+	// session's Progress reports among the draws where the session made
+	// them, and ends with the session's Finished frame once every draw has
+	// been sent.
 	Follow(*FollowRequest, grpc.ServerStreamingServer[FollowResponse]) error
 	// Plan answers, before any sampling, what reaching a guaranteed accuracy
 	// costs for an m-strongly convex, M-smooth target with unadjusted
