@@ -12,6 +12,8 @@ import (
 	"time"
 
 	"google.golang.org/grpc"
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
 
 	"sluice/client"
 )
@@ -58,8 +60,13 @@ func watch(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	defer cc.Close()
 	v := newView(stdout, isTerminal(stdout) && !*plain, time.Now)
 	v.title = "session " + id
-	sum, err := followWithToken(ctx, cc, id, *token,
-		client.OnFollowHeader(v.header), client.OnProgress(v.progress))
+	opts := []client.Option{client.OnFollowHeader(v.header), client.OnProgress(v.progress)}
+	sum, err := followWithToken(ctx, cc, id, *token, 0, opts...)
+	if status.Code(err) == codes.OutOfRange && sum != nil && sum.Header != nil {
+		// The first draws have left the server's buffer (a long run): the
+		// view needs none of them, so follow from the latest on.
+		sum, err = followWithToken(ctx, cc, id, *token, sum.Header.NextSeq, opts...)
+	}
 	if err != nil {
 		v.stop()
 		return fmt.Errorf("following %s: %w", id, err)
@@ -68,14 +75,14 @@ func watch(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	return nil
 }
 
-// followWithToken follows session id from its first kept draw. The token
-// is for servers that ask followers for the session's token; this
-// client's Follow does not carry one yet, so it is checked for shape only.
-func followWithToken(ctx context.Context, cc grpc.ClientConnInterface, id, token string, opts ...client.Option) (*client.Summary, error) {
+// followWithToken follows session id from draw from on. The token is for
+// servers that ask followers for the session's token; this client's
+// Follow does not carry one yet, so it is checked for shape only.
+func followWithToken(ctx context.Context, cc grpc.ClientConnInterface, id, token string, from uint64, opts ...client.Option) (*client.Summary, error) {
 	if strings.ContainsAny(token, " \t\n") {
 		return nil, usagef("--token %q: a token has no spaces", token)
 	}
-	return client.Follow(ctx, cc, id, 0, opts...)
+	return client.Follow(ctx, cc, id, from, opts...)
 }
 
 // isTerminal reports whether w is a character device (a terminal).
@@ -115,12 +122,14 @@ func newView(w io.Writer, tty bool, now func() time.Time) *view {
 	return &view{w: w, tty: tty, now: now, seen: map[string]bool{}}
 }
 
-// header records the session's figures (kernel, chains, budget).
+// header records the session's figures (kernel, chains, budget); the
+// plain form prints them once.
 func (v *view) header(h *client.FollowHeader) {
 	v.mu.Lock()
 	defer v.mu.Unlock()
+	again := v.head != nil
 	v.head = h
-	if !v.tty {
+	if !v.tty && !again {
 		fmt.Fprintln(v.w, headerLine(v.title, h))
 	}
 }

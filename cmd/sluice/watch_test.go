@@ -23,13 +23,13 @@ import (
 // 127.0.0.1, whose gradients (of a standard Gaussian, −x) stop after
 // step 100 until release is called. It returns the server's address, the
 // session id, release, and a channel that receives the session's result.
-func heldSession(t *testing.T, ctx context.Context) (addr, id string, release func(), done <-chan error) {
+func heldSession(t *testing.T, ctx context.Context, buffer int) (addr, id string, release func(), done <-chan error) {
 	t.Helper()
 	lis, err := net.Listen("tcp", "127.0.0.1:0")
 	if err != nil {
 		t.Fatal(err)
 	}
-	srv := server.New(server.Options{Limits: session.Limits{FollowBuffer: 10000, DiagnosticsShare: -1}})
+	srv := server.New(server.Options{Limits: session.Limits{FollowBuffer: buffer, DiagnosticsShare: -1}})
 	go func() { _ = srv.Serve(lis) }()
 	t.Cleanup(srv.Stop)
 	cc, err := grpc.NewClient(lis.Addr().String(), grpc.WithTransportCredentials(insecure.NewCredentials()))
@@ -79,7 +79,7 @@ func heldSession(t *testing.T, ctx context.Context) (addr, id string, release fu
 func TestWatchOnATerminal(t *testing.T) {
 	ctx, cancel := context.WithTimeout(context.Background(), 3*time.Minute) // safety net only
 	defer cancel()
-	addr, id, release, done := heldSession(t, ctx)
+	addr, id, release, done := heldSession(t, ctx, 10000)
 	master, tty, err := pty.Open()
 	if err != nil {
 		t.Fatal(err)
@@ -158,7 +158,7 @@ func TestWatchOnATerminal(t *testing.T) {
 func TestWatchPlainLines(t *testing.T) {
 	ctx, cancel := context.WithTimeout(context.Background(), 3*time.Minute) // safety net only
 	defer cancel()
-	addr, id, release, done := heldSession(t, ctx)
+	addr, id, release, done := heldSession(t, ctx, 10000)
 	release()
 	if err := <-done; err != nil {
 		t.Fatal(err)
@@ -186,6 +186,22 @@ func TestWatchPlainLines(t *testing.T) {
 	}
 }
 
+// A session whose first draws have left the server's buffer (40 rows kept
+// of 800) is still watched: the view follows from the latest draw on.
+func TestWatchAfterTheBufferMovedOn(t *testing.T) {
+	ctx, cancel := context.WithTimeout(context.Background(), 3*time.Minute) // safety net only
+	defer cancel()
+	addr, id, release, done := heldSession(t, ctx, 40)
+	release()
+	if err := <-done; err != nil {
+		t.Fatal(err)
+	}
+	code, stdout, stderr := runCmd(t, ctx, "watch", id, "--target", addr)
+	if code != 0 || stderr != "" || !strings.Contains(stdout, "finished (draws collected): 250 steps") {
+		t.Fatalf("exit %d, stderr %q, stdout:\n%s", code, stderr, stdout)
+	}
+}
+
 // A missing session id is a usage error; an unknown one fails with the
 // server's NOT_FOUND in words.
 func TestWatchErrors(t *testing.T) {
@@ -194,7 +210,7 @@ func TestWatchErrors(t *testing.T) {
 	if code, _, stderr := runCmd(t, ctx, "watch", "--target", "127.0.0.1:1"); code != 2 || !strings.Contains(stderr, "name the session") {
 		t.Errorf("no session: exit %d, %q", code, stderr)
 	}
-	addr, _, release, _ := heldSession(t, ctx)
+	addr, _, release, _ := heldSession(t, ctx, 10000)
 	release()
 	code, _, stderr := runCmd(t, ctx, "watch", "no-such-session", "--target", addr)
 	if code != 1 || !strings.Contains(stderr, "no-such-session") {
