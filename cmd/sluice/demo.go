@@ -78,7 +78,7 @@ func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs.IntVar(&c.minibatch, "minibatch", 0, "answer with stochastic gradients from minibatches of this many firings, two replicates per point (0: exact gradients)")
 	fs.Float64Var(&c.eps, "eps", 0.5, "with --minibatch: the W2 accuracy to plan for with the measured noise")
 	fs.Float64Var(&c.interval, "interval", 0.9, "level of the central interval shown for each parameter and for the answer, in (0, 1)")
-	fs.Int64Var(&c.progressEvery, "progress-every", 200, "a progress report every this many steps, every diagnostic measured at each, so the same seed gives the same history (0: every 200 ms of wall time, measured within the server's time share)")
+	fs.Int64Var(&c.progressEvery, "progress-every", 1000, "a progress report every this many steps, every diagnostic measured at each, so the same seed gives the same history (0: every 200 ms of wall time, diagnostics within the server's share of the time)")
 	fs.StringVar(&c.history, "history", "", "write the progress history (JSON lines, see docs/report.md) to this file (default: beside --out, <out>.history.jsonl)")
 	setHelp(fs, help{
 		usage: "sluice demo [flags]",
