@@ -3,6 +3,7 @@ module sluice
 go 1.26.8
 
 require (
+	github.com/creack/pty v1.1.24
 	github.com/jackc/pgx/v5 v5.12.0
 	github.com/prometheus/client_golang v1.25.0
 	go.etcd.io/bbolt v1.5.0

@@ -331,6 +331,8 @@ type Summary struct {
 	// Resumes counts the times the session was resumed on a new stream
 	// after its stream broke.
 	Resumes int
+	// Header is the followed session's header (Follow only; nil for Run).
+	Header *FollowHeader
 }
 
 // Option adjusts Run.
@@ -340,6 +342,7 @@ type config struct {
 	onRegistered func(*Registered)
 	onDraws      func(*Draws)
 	onProgress   func(*Progress)
+	onHeader     func(*FollowHeader)
 	callOpts     []grpc.CallOption
 	keepDraws    bool
 	resume       ResumePolicy

@@ -250,6 +250,12 @@ func TestEveryProgressFieldIsRead(t *testing.T) {
 	}
 }
 
+func TestEveryFollowHeaderFieldIsRead(t *testing.T) {
+	for _, f := range unread(&sluicev1.FollowHeader{}, func(m *sluicev1.FollowHeader) any { return headerFromWire(m) }) {
+		t.Errorf("FollowHeader.%s is not read into client.FollowHeader", f)
+	}
+}
+
 func TestEveryFinishedFieldIsRead(t *testing.T) {
 	convert := func(m *sluicev1.Finished) any {
 		r := runner{sum: &Summary{}}

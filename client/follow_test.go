@@ -228,6 +228,46 @@ func TestFollowDetectsGaps(t *testing.T) {
 	}
 }
 
+// The header reaches OnFollowHeader before any draw, and each progress
+// report reaches OnProgress in its place among the draws; the summary
+// keeps the header (and, from the final frame, the final report).
+func TestFollowDeliversHeaderAndProgressInOrder(t *testing.T) {
+	cc := startFake(t, &fakeServer{follow: func(r *sluicev1.FollowRequest, s grpc.ServerStreamingServer[sluicev1.FollowResponse]) error {
+		frames := []*sluicev1.FollowResponse{
+			{Frame: &sluicev1.FollowResponse_Header{Header: &sluicev1.FollowHeader{SessionId: "s1", Dim: 1, Chains: 2,
+				Names: []string{"x"}, MaxSeconds: 1.5, DrawsPerChain: 3, Wants: &sluicev1.Wants{Metric: sluicev1.Metric_METRIC_W2}}}},
+			{Frame: &sluicev1.FollowResponse_Progress{Progress: &sluicev1.Progress{Steps: 1, DrawsSent: 0}}},
+			{Frame: &sluicev1.FollowResponse_Draws{Draws: drawsFrame(0, 3)}},
+			{Frame: &sluicev1.FollowResponse_Progress{Progress: &sluicev1.Progress{Steps: 2, DrawsSent: 3}}},
+			{Frame: &sluicev1.FollowResponse_Draws{Draws: drawsFrame(3, 3)}},
+			{Frame: &sluicev1.FollowResponse_Finished{Finished: &sluicev1.Finished{Reason: sluicev1.FinishReason_FINISH_REASON_DRAWS_COLLECTED}}},
+		}
+		for _, f := range frames {
+			if err := s.Send(f); err != nil {
+				return err
+			}
+		}
+		return nil
+	}})
+	var order []string
+	sum, err := Follow(testCtx(t), cc, "s1", "t1", 0,
+		OnFollowHeader(func(h *FollowHeader) { order = append(order, "header "+h.Names[0]) }),
+		OnProgress(func(p *Progress) { order = append(order, "progress "+string(rune('0'+p.Steps))) }),
+		OnDraws(func(d *Draws) { order = append(order, "draws "+string(rune('0'+d.Seq))) }))
+	if err != nil {
+		t.Fatal(err)
+	}
+	want := []string{"header x", "progress 1", "draws 0", "progress 2", "draws 3"}
+	if !slices.Equal(order, want) {
+		t.Fatalf("callbacks %q, want %q", order, want)
+	}
+	h := sum.Header
+	if h == nil || h.Chains != 2 || h.MaxTime != 1500*time.Millisecond || h.DrawsPerChain != 3 || h.Wants.Metric != W2 ||
+		sum.Reason != DrawsCollected || sum.NextSeq != 6 {
+		t.Fatalf("summary %+v, header %+v", sum, h)
+	}
+}
+
 func TestPlanDecodesTheAnswer(t *testing.T) {
 	cc := startFake(t, &fakeServer{plan: func(_ context.Context, r *sluicev1.PlanRequest) (*sluicev1.PlanResponse, error) {
 		if r.GetEps() <= 0 {

@@ -7,11 +7,14 @@ import (
 	"slices"
 	"strings"
 	"testing"
+	"time"
 
 	"google.golang.org/protobuf/proto"
 	"google.golang.org/protobuf/reflect/protoreflect"
 
+	"sluice/kernels/bound"
 	sluicev1 "sluice/proto/sluice/v1"
+	"sluice/server/session"
 )
 
 // registerIgnored lists the Register fields the server deliberately does
@@ -123,4 +126,27 @@ func leafValues(f protoreflect.FieldDescriptor) []protoreflect.Value {
 		return []protoreflect.Value{protoreflect.ValueOfUint64(3)}
 	}
 	panic("server: fields test: no value for " + f.FullName())
+}
+
+// TestEveryFollowHeaderFieldIsWritten converts a header whose every
+// figure is set and checks that each leaf of FollowHeader (the field list
+// comes from the generated descriptor) holds a non-default value, except
+// the sequence numbers, which Follow sets from the log when it sends the
+// header.
+func TestEveryFollowHeaderFieldIsWritten(t *testing.T) {
+	h := session.Header{SessionID: "s", Dim: 2, Chains: 3, Kernel: "lmc", Names: []string{"a", "b"}, Step: 0.5, Seed: 7,
+		BurnIn: 4, KeepEvery: 2, DrawsPerChain: 9, MaxEvaluations: 11, MaxTime: time.Second, EvaluationsPerStep: 3,
+		Wants: session.Wants{MinBulkESS: 1, MinTailESS: 2, MaxRhat: 1.1, MaxKSD: 0.5, Eps: 0.1, Metric: bound.W2}}
+	w := headerToWire(h).ProtoReflect()
+	setBySender := map[string]bool{"first_seq": true, "next_seq": true}
+	for _, p := range registerLeaves(w.Descriptor(), nil) {
+		name := pathName(p)
+		m := w
+		for _, f := range p[:len(p)-1] {
+			m = m.Get(f).Message()
+		}
+		if f := p[len(p)-1]; !m.Has(f) && !setBySender[name] {
+			t.Errorf("FollowHeader.%s is not written by headerToWire", name)
+		}
+	}
 }

@@ -10,12 +10,13 @@ import (
 	"sluice/server/session"
 )
 
-// Follow implements the Follow rpc: it streams a session's draws from its
-// draw log, in sequence order from the requested number, then the
-// session's Finished frame. The request must carry the session's token: a
-// wrong token and an unknown id get the same NOT_FOUND. A session stopped
-// without finishing (client gone, server shutting down, with state kept)
-// ends the call with UNAVAILABLE: follow again once it is resumed.
+// Follow implements the Follow rpc: it sends the session's header, then
+// its draws from the requested sequence number on, in order, with its
+// progress reports placed among them where the session made them, then
+// the session's Finished frame. The request must carry the session's
+// token: a wrong token and an unknown id get the same NOT_FOUND. A session
+// stopped without finishing (client gone, server shutting down, with state
+// kept) ends the call with UNAVAILABLE: follow again once it is resumed.
 func (s *Server) Follow(req *sluicev1.FollowRequest, stream grpc.ServerStreamingServer[sluicev1.FollowResponse]) error {
 	f, err := s.followable(stream.Context(), req.GetSessionId(), req.GetToken())
 	if err != nil {
@@ -24,13 +25,20 @@ func (s *Server) Follow(req *sluicev1.FollowRequest, stream grpc.ServerStreaming
 	from := req.GetFromSeq()
 	// A restored session re-makes the draws after its checkpoint, so a
 	// follower may be ahead of its log: it waits for them.
-	if _, next := f.log.Span(); from > next && !f.resumed {
+	first, next := f.log.Span()
+	if from > next && !f.resumed {
 		return problem(outsideLog, "from_seq", "%d is beyond the latest draw (next is %d)", from, next)
+	}
+	head := headerToWire(f.log.Header())
+	head.FirstSeq, head.NextSeq = first, next
+	if err := stream.Send(&sluicev1.FollowResponse{Frame: &sluicev1.FollowResponse_Header{Header: head}}); err != nil {
+		return err
 	}
 	rows := max(1, wire.RowsPerMessage(f.limit, f.dim))
 	enc := encoder{maxParams: paramCap(f.limit)}
+	cur := f.log.Cursor(from)
 	for {
-		d, err := f.log.Read(stream.Context(), from, rows)
+		ev, err := f.log.ReadEvent(stream.Context(), &cur, rows)
 		switch {
 		case errors.Is(err, session.ErrDrawsDropped):
 			return problem(outsideLog, "from_seq", "%v", err)
@@ -43,10 +51,25 @@ func (s *Server) Follow(req *sluicev1.FollowRequest, stream grpc.ServerStreaming
 		case err != nil:
 			return toStatus(err)
 		}
-		w := enc.frame(&d).GetDraws()
-		if err := stream.Send(&sluicev1.FollowResponse{Frame: &sluicev1.FollowResponse_Draws{Draws: w}}); err != nil {
+		var msg *sluicev1.FollowResponse
+		if ev.Progress != nil {
+			msg = &sluicev1.FollowResponse{Frame: &sluicev1.FollowResponse_Progress{Progress: enc.progress(ev.Progress)}}
+		} else {
+			msg = &sluicev1.FollowResponse{Frame: &sluicev1.FollowResponse_Draws{Draws: enc.frame(ev.Draws).GetDraws()}}
+		}
+		if err := stream.Send(msg); err != nil {
 			return err
 		}
-		from += uint64(d.Rows)
 	}
+}
+
+// headerToWire converts a draw log's header (its sequence numbers are set
+// by the caller).
+func headerToWire(h session.Header) *sluicev1.FollowHeader {
+	w := h.Wants
+	return &sluicev1.FollowHeader{SessionId: h.SessionID, Dim: int32(h.Dim), Chains: int32(h.Chains), Kernel: h.Kernel,
+		Names: h.Names, Step: h.Step, Seed: h.Seed, BurnIn: h.BurnIn, KeepEvery: h.KeepEvery, DrawsPerChain: h.DrawsPerChain,
+		MaxEvaluations: h.MaxEvaluations, MaxSeconds: h.MaxTime.Seconds(), EvaluationsPerStep: int64(h.EvaluationsPerStep),
+		Wants: &sluicev1.Wants{MinBulkEss: w.MinBulkESS, MinTailEss: w.MinTailESS, MaxRhat: w.MaxRhat, MaxKsd: w.MaxKSD,
+			Eps: w.Eps, Metric: metricToWire[w.Metric]}}
 }

@@ -37,6 +37,9 @@ func followRows(ctx context.Context, c sluicev1.SluiceServiceClient, id, token s
 			return vals, from, fin, nil
 		}
 		d := f.GetDraws()
+		if d == nil { // header and progress frames
+			continue
+		}
 		if d.Seq != from {
 			return vals, from, nil, errors.New("gap or duplicate in followed draws")
 		}
@@ -143,4 +146,65 @@ func TestFollowBehindBufferIsOutOfRange(t *testing.T) {
 	if len(sum.Registered.SessionID) != 32 || len(sum.Registered.Token) != 32 || sum.Registered.SessionID == sum.Registered.Token {
 		t.Fatalf("id %q and token %q: want two distinct 128-bit hex values", sum.Registered.SessionID, sum.Registered.Token)
 	}
+}
+
+// The header comes first with the registered figures; progress reports
+// come among the draws exactly where the session made them: each
+// report's draws_sent equals the rows received before it. With a report
+// every 25 steps, 30 burn-in steps and 60 kept steps, the session makes
+// floor(90/25) = 3 reports, all still kept when the follower reads the
+// finished session from the start.
+func TestFollowSendsHeaderAndPlacesProgress(t *testing.T) {
+	conn, _ := start(t, server.Options{Limits: session.Limits{FollowBuffer: 4096}})
+	ctx := testCtx(t)
+	spec := client.Spec{Dim: 2, Chains: 3, Start: []float64{0, 0}, Step: 0.1, Seed: 8, BurnIn: 30, DrawsPerChain: 60,
+		ProgressEverySteps: 25, MaxEvaluations: 1000, Names: []string{"a", "b"}, Wants: client.Wants{MinBulkESS: 1e9}}
+	sum, err := client.Run(ctx, conn, spec, evaluator(gaussian2D(t)))
+	if err != nil {
+		t.Fatal(err)
+	}
+	st, err := sluicev1.NewSluiceServiceClient(conn).Follow(ctx, &sluicev1.FollowRequest{SessionId: sum.Registered.SessionID, Token: sum.Registered.Token})
+	if err != nil {
+		t.Fatal(err)
+	}
+	var frames, rows, reports int
+	var lastSteps int64
+	for {
+		f, err := st.Recv()
+		if errors.Is(err, io.EOF) {
+			break
+		}
+		if err != nil {
+			t.Fatal(err)
+		}
+		frames++
+		switch f := f.GetFrame().(type) {
+		case *sluicev1.FollowResponse_Header:
+			h := f.Header
+			if frames != 1 || h.SessionId != sum.Registered.SessionID || h.Dim != 2 || h.Chains != 3 || h.Kernel != "lmc" ||
+				len(h.Names) != 2 || h.Names[1] != "b" || h.BurnIn != 30 || h.KeepEvery != 1 || h.DrawsPerChain != 60 ||
+				h.MaxEvaluations != 1000 || h.Seed != 8 || h.Step != 0.1 || h.EvaluationsPerStep != 3 ||
+				h.GetWants().GetMinBulkEss() != 1e9 || h.FirstSeq != 0 || h.NextSeq != 180 {
+				t.Fatalf("frame %d: header %v", frames, h)
+			}
+		case *sluicev1.FollowResponse_Progress:
+			reports++
+			p := f.Progress
+			if p.DrawsSent != int64(rows) || p.Steps != int64(25*reports) || p.Steps <= lastSteps {
+				t.Errorf("report %d at %d rows: steps %d, draws_sent %d", reports, rows, p.Steps, p.DrawsSent)
+			}
+			lastSteps = p.Steps
+		case *sluicev1.FollowResponse_Draws:
+			if frames == 1 {
+				t.Fatal("draws before the header")
+			}
+			rows += int(f.Draws.Rows)
+		case *sluicev1.FollowResponse_Finished:
+			if rows != 180 || reports != 3 {
+				t.Fatalf("finished after %d rows and %d reports, want 180 and 3", rows, reports)
+			}
+			return
+		}
+	}
+	t.Fatal("no finished frame")
 }

@@ -50,6 +50,7 @@ type demoConfig struct {
 	eps           float64
 	interval      float64
 	history       string
+	progressEvery int64
 }
 
 func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
@@ -77,6 +78,7 @@ func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs.IntVar(&c.minibatch, "minibatch", 0, "answer with stochastic gradients from minibatches of this many firings, two replicates per point (0: exact gradients)")
 	fs.Float64Var(&c.eps, "eps", 0.5, "with --minibatch: the W2 accuracy to plan for with the measured noise")
 	fs.Float64Var(&c.interval, "interval", 0.9, "level of the central interval shown for each parameter and for the answer, in (0, 1)")
+	fs.Int64Var(&c.progressEvery, "progress-every", 1000, "a progress report every this many steps, every diagnostic measured at each, so the same seed gives the same history (0: every 200 ms of wall time, diagnostics within the server's share of the time)")
 	fs.StringVar(&c.history, "history", "", "write the progress history (JSON lines, see docs/report.md) to this file (default: beside --out, <out>.history.jsonl)")
 	setHelp(fs, help{
 		usage: "sluice demo [flags]",
@@ -111,6 +113,9 @@ func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	}
 	if c.out != "" && !strings.HasSuffix(c.out, ".csv") && !strings.HasSuffix(c.out, ".npy") {
 		return usagef("--out %q: the name must end in .csv or .npy", c.out)
+	}
+	if c.progressEvery < 0 {
+		return usagef("--progress-every must be ≥ 0")
 	}
 	if c.chains < 1 || c.burnIn < 0 || c.keepEvery < 1 || c.draws < 0 || c.maxEvals < 0 || c.maxTime < 0 || c.step < 0 {
 		return usagef("--chains and --keep-every must be ≥ 1; --burn-in, --draws, --max-evals, --max-time, --step ≥ 0")
@@ -288,7 +293,14 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 	if err != nil {
 		return nil, err
 	}
-	srv := server.New(server.Options{Logger: log})
+	opts := server.Options{Logger: log}
+	if c.progressEvery > 0 {
+		// Every report measured, whatever the wall time it takes: the
+		// history (and a target's finishing step) then depends on the
+		// seed alone.
+		opts.Limits.DiagnosticsShare = -1
+	}
+	srv := server.New(opts)
 	go func() { _ = srv.Serve(lis) }()
 	defer srv.Stop()
 	conn, err := grpc.NewClient(lis.Addr().String(), grpc.WithTransportCredentials(insecure.NewCredentials()),
@@ -325,7 +337,7 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 	}
 	spec := client.Spec{Dim: 3, Chains: c.chains, Kernel: c.kernel, Start: start, Step: c.step, BurnIn: c.burnIn,
 		KeepEvery: c.keepEvery, DrawsPerChain: c.draws, MaxEvaluations: c.maxEvals, MaxTime: c.maxTime,
-		Seed: c.seed, Names: kilnNames, ProgressInterval: 200 * time.Millisecond,
+		Seed: c.seed, Names: kilnNames, ProgressInterval: 200 * time.Millisecond, ProgressEverySteps: c.progressEvery,
 		Curvature: &client.Curvature{StrongConvexity: m, Smoothness: bigM, StartDistance: w0},
 		Wants:     client.Wants{MinBulkESS: c.wantESS, MinTailESS: c.wantESS, MaxRhat: c.wantRhat, MaxKSD: c.wantKSD}}
 
@@ -339,7 +351,11 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 			return nil, err
 		}
 	}
-	live := newLiveLine(stderr, !c.noProgressBar && !c.json, int64(c.chains)*c.draws)
+	// The live view of `sluice watch`, on a terminal only.
+	live := newView(stderr, !c.noProgressBar && !c.json && isTerminal(stderr), time.Now)
+	live.title = "sluice demo"
+	live.head = &client.FollowHeader{Dim: 3, Chains: c.chains, Kernel: c.kernel, Names: kilnNames, Step: c.step,
+		BurnIn: c.burnIn, KeepEvery: c.keepEvery, DrawsPerChain: c.draws, MaxEvaluations: c.maxEvals, MaxTime: c.maxTime}
 	var hist *history.Writer
 	if c.history != "" {
 		if hist, err = history.Create(c.history); err != nil {
@@ -347,7 +363,9 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 		}
 	}
 	onProgress := func(p *client.Progress) {
-		live.update(p)
+		if live.tty {
+			live.progress(p)
+		}
 		if hist != nil {
 			_ = hist.Write(historyRecord(history.KindProgress, p, "", ""))
 		}
@@ -552,47 +570,6 @@ func printDemo(w io.Writer, r *demoResult) {
 		fmt.Fprintf(w, "draws written to %s (%s), summary to %s\n", f.Path, f.Format, f.Summary)
 	}
 	fmt.Fprintln(w, "These draws are approximate and the diagnostics cannot prove convergence; validate before relying on them.")
-}
-
-// liveLine shows one updating progress line on a terminal.
-type liveLine struct {
-	w       io.Writer
-	on      bool
-	want    int64
-	printed bool
-}
-
-func newLiveLine(w io.Writer, on bool, want int64) *liveLine {
-	if f, ok := w.(*os.File); on && ok {
-		st, err := f.Stat()
-		on = err == nil && st.Mode()&os.ModeCharDevice != 0
-	} else {
-		on = false
-	}
-	return &liveLine{w: w, on: on, want: want}
-}
-
-func (l *liveLine) update(p *client.Progress) {
-	if !l.on {
-		return
-	}
-	draws := strconv.FormatInt(p.DrawsSent, 10)
-	if l.want > 0 {
-		draws += "/" + strconv.FormatInt(l.want, 10)
-	}
-	left := ""
-	if p.TimeLeft >= 0 {
-		left = fmt.Sprintf(", %.0f s left", p.TimeLeft.Seconds())
-	}
-	fmt.Fprintf(l.w, "\r\033[K%-8s step %d, draws %s, %d evaluations, %.1f s, %.0f evaluations/s%s",
-		p.State, p.Steps, draws, p.EvaluationsUsed, p.Elapsed.Seconds(), p.EvaluationsPerSecond, left)
-	l.printed = true
-}
-
-func (l *liveLine) done() {
-	if l.printed {
-		fmt.Fprint(l.w, "\r\033[K")
-	}
 }
 
 // csvWriter writes draws as CSV: a header "chain,iteration,<names>",

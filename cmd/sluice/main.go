@@ -10,6 +10,8 @@
 //	sluice version   the version, Go version and module build information
 //	sluice report    pictures of a run's draws and progress, bundled in an
 //	                 index.html that works offline
+//	sluice watch     follow a running session from another terminal: a live
+//	                 view of its budget, accuracy and warnings
 //
 // Run "sluice <command> -h" for a command's description, examples and flags.
 package main
@@ -35,6 +37,7 @@ Usage:
   sluice bench [flags]   figures beside their floors, measured side by side
   sluice version         version, Go version and build information
   sluice report DRAWS    pictures and a page (index.html) of a run's draws
+  sluice watch SESSION   a live view of a running session, from another terminal
 
 Run "sluice <command> -h" for a command's description, examples and flags.
 `
@@ -66,6 +69,8 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		err = version(args[1:], stdout, stderr)
 	case "report":
 		err = runReport(ctx, args[1:], stdout, stderr)
+	case "watch":
+		err = watch(ctx, args[1:], stdout, stderr)
 	case "-h", "--help", "help":
 		fmt.Fprint(stdout, usage)
 		return 0

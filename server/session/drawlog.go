@@ -4,7 +4,9 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"slices"
 	"sync"
+	"time"
 )
 
 // DrawLog keeps the most recent kept draws of one session, numbered by
@@ -13,8 +15,15 @@ import (
 // at most its capacity in rows (a ring); a reader asking for rows already
 // dropped gets an error saying so, never a silent gap. Safe for concurrent
 // use: the engine appends, any number of readers read.
+//
+// Besides the draws it keeps what a follower needs to show the run: the
+// session's Header, and its latest progress reports, each placed at the
+// sequence number the draws had reached when it was made, so a reader
+// gets draws and reports in the order the session produced them
+// (ReadEvent).
 type DrawLog struct {
 	dim, capRows int
+	head         Header
 
 	mu     sync.Mutex
 	vals   []float64 // capRows×dim ring
@@ -28,7 +37,52 @@ type DrawLog struct {
 	// suspended is set when the session stopped at a checkpoint without
 	// finishing (checkpoint.go).
 	suspended bool
+	// reports is a ring of the latest progressKept reports; report n (0
+	// for the session's first) is at reports[n%progressKept].
+	reports  [progressKept]placedProgress
+	nReports uint64
 }
+
+// progressKept is how many of its latest progress reports a DrawLog
+// keeps: a follower that falls further behind skips the older ones
+// (never draws).
+const progressKept = 8
+
+// placedProgress is a progress report and the sequence number of the
+// next draw when it was made.
+type placedProgress struct {
+	at uint64
+	p  Progress
+}
+
+// Header is what a follower learns of a session before its draws: what it
+// samples and the budget it was given, as registered.
+type Header struct {
+	SessionID          string
+	Dim, Chains        int
+	Kernel             string
+	Names              []string
+	Step               float64
+	Seed               uint64
+	BurnIn, KeepEvery  int64
+	DrawsPerChain      int64
+	MaxEvaluations     int64
+	MaxTime            time.Duration
+	EvaluationsPerStep int
+	Wants              Wants
+}
+
+// header is the session's Header, for its draw log.
+func (s *Session) header() Header {
+	sp := &s.spec
+	return Header{SessionID: s.id, Dim: sp.Dim, Chains: sp.Chains, Kernel: sp.Kernel, Names: slices.Clone(sp.Names),
+		Step: sp.Step, Seed: sp.Seed, BurnIn: sp.BurnIn, KeepEvery: sp.KeepEvery, DrawsPerChain: sp.DrawsPerChain,
+		MaxEvaluations: sp.MaxEvaluations, MaxTime: sp.MaxTime, EvaluationsPerStep: s.kernel.EvaluationsPerStep(),
+		Wants: sp.Wants}
+}
+
+// Header is the followed session's header.
+func (l *DrawLog) Header() Header { return l.head }
 
 // ErrDrawsDropped is wrapped by the error Read returns when the rows asked
 // for have left the log.
@@ -69,6 +123,29 @@ func (l *DrawLog) append(d *Draws) {
 	if l.next-l.first > uint64(l.capRows) {
 		l.first = l.next - uint64(l.capRows)
 	}
+	close(l.wake)
+	l.wake = make(chan struct{})
+}
+
+// progress records a progress report at the current end of the draws.
+// The log keeps its own copy: the engine reuses the report's slices.
+func (l *DrawLog) progress(p *Progress) {
+	q := *p
+	q.Parameters = slices.Clone(p.Parameters)
+	q.Targets = slices.Clone(p.Targets)
+	q.Kernel.AcceptanceRates = slices.Clone(p.Kernel.AcceptanceRates)
+	if p.Bound != nil {
+		b := *p.Bound
+		q.Bound = &b
+	}
+	if p.Noise != nil {
+		n := *p.Noise
+		q.Noise = &n
+	}
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	l.reports[l.nReports%progressKept] = placedProgress{at: l.next, p: q}
+	l.nReports++
 	close(l.wake)
 	l.wake = make(chan struct{})
 }
@@ -140,6 +217,89 @@ func (l *DrawLog) Read(ctx context.Context, from uint64, max int) (Draws, error)
 		case <-wake:
 		case <-ctx.Done():
 			return Draws{}, ctx.Err()
+		}
+	}
+}
+
+// Event is one item a follower reads: a block of draws or a progress
+// report (exactly one is set).
+type Event struct {
+	Draws    *Draws
+	Progress *Progress
+}
+
+// Cursor is where a follower stands: the next draw and the next progress
+// report it has not seen. Start it with Cursor.
+type Cursor struct {
+	Seq    uint64
+	report uint64
+}
+
+// Cursor returns a reader's starting point at draw from: its first report
+// is the latest one made at or before that draw (or the oldest kept, when
+// all were made after it), then every later one.
+func (l *DrawLog) Cursor(from uint64) Cursor {
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	c := Cursor{Seq: from, report: l.nReports - min(l.nReports, progressKept)}
+	for n := l.nReports; n > c.report; n-- {
+		if l.reports[(n-1)%progressKept].at <= from {
+			c.report = n - 1
+			break
+		}
+	}
+	return c
+}
+
+// ReadEvent returns the next event at c and advances c past it, waiting
+// until one is available: a progress report when one is placed at or
+// before c.Seq (reports that have left the log are skipped), else up to
+// max draws from c.Seq that do not pass the next report's place. Its
+// errors are Read's. The returned values own their slices (a report's
+// slices are shared with other readers: read them only).
+func (l *DrawLog) ReadEvent(ctx context.Context, c *Cursor, max int) (Event, error) {
+	if max < 1 {
+		max = 1
+	}
+	for {
+		l.mu.Lock()
+		if c.report+progressKept < l.nReports {
+			c.report = l.nReports - progressKept
+		}
+		limit := uint64(max)
+		if c.report < l.nReports {
+			r := &l.reports[c.report%progressKept]
+			if r.at <= c.Seq {
+				p := r.p
+				c.report++
+				l.mu.Unlock()
+				return Event{Progress: &p}, nil
+			}
+			limit = min(limit, r.at-c.Seq)
+		}
+		if c.Seq < l.first || c.Seq < l.next {
+			l.mu.Unlock()
+			d, err := l.Read(ctx, c.Seq, int(limit))
+			if err != nil {
+				return Event{}, err
+			}
+			c.Seq += uint64(d.Rows)
+			return Event{Draws: &d}, nil
+		}
+		if l.done {
+			l.mu.Unlock()
+			return Event{}, ErrLogClosed
+		}
+		if l.suspended {
+			l.mu.Unlock()
+			return Event{}, ErrLogSuspended
+		}
+		wake := l.wake
+		l.mu.Unlock()
+		select {
+		case <-wake:
+		case <-ctx.Done():
+			return Event{}, ctx.Err()
 		}
 	}
 }

@@ -143,6 +143,7 @@ func (s *Session) alloc() {
 	spec := s.spec
 	if s.lim.FollowBuffer > 0 {
 		s.log = NewDrawLog(spec.Dim, min(s.lim.FollowBuffer, max(1, maxFollowBytes/(8*spec.Dim))))
+		s.log.head = s.header()
 	}
 	s.mon = newMonitor(spec.Dim, spec.Chains, spec.Names)
 	s.mon.stochastic = spec.Noise.Stochastic
@@ -725,6 +726,9 @@ func (s *Session) afterStep(send func(Frame) error) error {
 	if due {
 		s.lastProgress = now
 		p := s.progress(now, false)
+		if s.log != nil {
+			s.log.progress(&p)
+		}
 		return send(&p)
 	}
 	return nil

@@ -30,13 +30,16 @@ products for "ozaki-krylov", several gradient replicates per point with
 ``concurrent.futures.Executor``: a process pool, a Dask client's executor,
 an MPI pool) spreads the rows of every batch over its workers. :func:`plan` asks what a
 guaranteed accuracy costs before sampling; :func:`follow` streams another
-session's draws. Server errors raise :class:`SessionError` (gRPC status
+session's header, draws and progress; :class:`HistoryWriter` writes the
+progress history that ``sluice report`` reads beside the draws
+``Summary.save`` writes. Server errors raise :class:`SessionError` (gRPC status
 code, message, and the offending field from the status's bad-request
 detail).
 """
 
 from ._errors import DrawsLostError, ProtocolError, SessionError, SluiceError
-from ._follow import FOLLOW_MAX_MESSAGE_BYTES, FOLLOW_METHOD, FollowEvent, Follower, follow
+from ._follow import FOLLOW_MAX_MESSAGE_BYTES, FOLLOW_METHOD, FollowEvent, Follower, FollowHeader, follow
+from ._history import KIND_FINISH, KIND_PROGRESS, HistoryWriter, history_record
 from ._resume import ResumePolicy
 from ._plan import PLAN_METHOD, plan
 from ._session import SESSION_METHOD, BatchFn, Event, GradFn, LogDensityFn, Session, connect, run
@@ -75,6 +78,8 @@ __all__ = [
     "DEFAULT_MAX_MESSAGE_BYTES",
     "FOLLOW_MAX_MESSAGE_BYTES",
     "FOLLOW_METHOD",
+    "KIND_FINISH",
+    "KIND_PROGRESS",
     "METRICS",
     "PLAN_METHOD",
     "SESSION_METHOD",
@@ -90,6 +95,8 @@ __all__ = [
     "Event",
     "FinishReason",
     "FollowEvent",
+    "FollowHeader",
+    "HistoryWriter",
     "Follower",
     "ResumePolicy",
     "GradFn",
@@ -116,6 +123,7 @@ __all__ = [
     "connect",
     "follow",
     "from_wire",
+    "history_record",
     "plan",
     "run",
     "to_wire",

@@ -1,11 +1,13 @@
 """Following a session from another process: the Follow rpc streams a
-running (or recently finished) session's draws from a sequence number on,
-then its Finished frame."""
+running (or recently finished) session's header, then its draws from a
+sequence number on with its progress reports among them, then its
+Finished frame."""
 
 from __future__ import annotations
 
 import threading
-from typing import Iterator, Optional, Union
+from dataclasses import dataclass
+from typing import Iterator, Optional, Tuple, Union
 
 import grpc
 
@@ -13,7 +15,7 @@ from ._errors import ProtocolError, SessionError
 from ._proto.sluice.v1 import sluice_pb2 as pb
 from ._resume import ResumePolicy, resumable
 from ._session import connect, decode_draws
-from ._types import Draws, DrawStore, Summary
+from ._types import _METRIC_FROM_WIRE, Draws, DrawStore, Progress, Summary, Wants
 
 #: Full method name of the Follow rpc.
 FOLLOW_METHOD = "/sluice.v1.SluiceService/Follow"
@@ -24,8 +26,66 @@ FOLLOW_METHOD = "/sluice.v1.SluiceService/Follow"
 #: server keeps at most 64 MiB of draws per session for followers.
 FOLLOW_MAX_MESSAGE_BYTES = 64 << 20
 
-#: What iterating a Follower yields: Draws, then the session's Summary last.
-FollowEvent = Union[Draws, Summary]
+
+@dataclass(frozen=True)
+class FollowHeader:
+    """What a follower learns of a session before its draws: what it
+    samples and the budget it was given, as registered (sluice.proto,
+    message FollowHeader). ``draws_per_chain``, ``max_evaluations`` and
+    ``max_seconds`` are 0 when that limit was not set; ``first_seq`` and
+    ``next_seq`` are the oldest draw the server still kept and the next to
+    come when it sent the header."""
+
+    session_id: str
+    dim: int
+    chains: int
+    kernel: str
+    names: Tuple[str, ...]
+    step: float
+    seed: int
+    burn_in: int
+    keep_every: int
+    draws_per_chain: int
+    max_evaluations: int
+    max_seconds: float
+    evaluations_per_step: int
+    wants: Wants
+    first_seq: int
+    next_seq: int
+
+    @classmethod
+    def from_wire(cls, m: pb.FollowHeader) -> "FollowHeader":
+        w = m.wants
+        return cls(
+            m.session_id,
+            m.dim,
+            m.chains,
+            m.kernel,
+            tuple(m.names),
+            m.step,
+            m.seed,
+            m.burn_in,
+            m.keep_every,
+            m.draws_per_chain,
+            m.max_evaluations,
+            m.max_seconds,
+            m.evaluations_per_step,
+            Wants(
+                min_bulk_ess=w.min_bulk_ess,
+                min_tail_ess=w.min_tail_ess,
+                max_rhat=w.max_rhat,
+                max_ksd=w.max_ksd,
+                eps=w.eps,
+                metric=_METRIC_FROM_WIRE.get(w.metric),
+            ),
+            m.first_seq,
+            m.next_seq,
+        )
+
+
+#: What iterating a Follower yields: the FollowHeader first, then Draws and
+#: Progress in the order the session produced them, then the Summary last.
+FollowEvent = Union[FollowHeader, Draws, Progress, Summary]
 
 
 class Follower:
@@ -34,13 +94,19 @@ class Follower:
     ::
 
         follower = follow("127.0.0.1:7070", session_id, token)
-        for event in follower:          # Draws in sequence order, then the Summary
+        for event in follower:          # header, draws and progress, then the Summary
             if isinstance(event, Draws):
                 keep(event.values.copy())
+            elif isinstance(event, Progress):
+                print(event.steps, event.evaluations_left)
         print(follower.summary.reason)
 
-    Iteration yields :class:`Draws` numbered from ``from_seq`` on, exactly
-    once each, and finally the session's :class:`Summary` (its
+    Iteration yields the session's :class:`FollowHeader` first (also kept as
+    ``header``), then :class:`Draws` numbered from ``from_seq`` on, exactly
+    once each, with the session's :class:`Progress` reports among them where
+    the session made them (the latest is kept as ``progress``; a follower
+    that falls far behind may miss reports, never draws), and finally the
+    session's :class:`Summary` (its
     ``registered`` is None, ``draws_received`` counts this follower's rows
     and, with ``keep_draws`` (the default), ``draws`` holds them). Leaving the loop early (break) disconnects; ``next_seq`` is then
     the sequence number to resume from with a new Follower, which gets every
@@ -97,6 +163,10 @@ class Follower:
         self.summary: Optional[Summary] = None
         #: Draws received by this follower.
         self.draws_received = 0
+        #: The session's header, once received.
+        self.header: Optional[FollowHeader] = None
+        #: The latest progress report received.
+        self.progress: Optional[Progress] = None
         self._store: Optional[DrawStore] = DrawStore() if keep_draws else None
         self._started = False
         self._lock = threading.Lock()
@@ -161,6 +231,12 @@ class Follower:
                             if self._store is not None:
                                 self._store.add(d)
                             yield d
+                        elif kind == "progress":
+                            self.progress = Progress.from_wire(frame.progress)
+                            yield self.progress
+                        elif kind == "header":
+                            self.header = FollowHeader.from_wire(frame.header)
+                            yield self.header
                         elif kind == "finished":
                             self.summary = Summary.from_wire(
                                 frame.finished,
@@ -198,9 +274,9 @@ def follow(
 ) -> Follower:
     """Follows session ``session_id`` (``Registered.session_id``, with its
     ``Registered.resume_token``) from draw ``from_seq`` on: iterate the
-    result for its Draws and then its Summary (see :class:`Follower`). The
-    server must keep draws for followers (`sluice serve --follow-buffer`, on
-    by default)."""
+    result for the header, draws and progress, then the Summary (see
+    :class:`Follower`). The server must keep draws for followers
+    (`sluice serve --follow-buffer`, on by default)."""
     return Follower(
         channel_or_target,
         session_id,

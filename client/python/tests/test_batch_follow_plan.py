@@ -657,7 +657,14 @@ class LiveFollowTests(unittest.TestCase):
             self.assertNotEqual(sid, "", f"session failed: {result.get('error')!r}")
             got: List[sc.Draws] = []
             with sc.follow(self.target, sid, token, 0, timeout=DEADLINE_SECONDS) as f1:
-                for ev in f1:
+                for i, ev in enumerate(f1):
+                    if i == 0:  # the header comes first
+                        self.assertIsInstance(ev, sc.FollowHeader)
+                        assert isinstance(ev, sc.FollowHeader)
+                        self.assertEqual((ev.session_id, ev.dim, ev.chains, ev.draws_per_chain), (sid, spec.dim, chains, n))
+                        continue
+                    if isinstance(ev, sc.Progress):
+                        continue
                     self.assertIsInstance(ev, sc.Draws)
                     assert isinstance(ev, sc.Draws)
                     got.append(ev)
@@ -676,10 +683,12 @@ class LiveFollowTests(unittest.TestCase):
         own_summary = result["summary"]
         assert isinstance(own_summary, sc.Summary)
         self.assertIsInstance(events[-1], sc.Summary)
-        self.assertTrue(all(isinstance(e, sc.Draws) for e in events[:-1]))
+        self.assertIsInstance(events[0], sc.FollowHeader)
+        self.assertTrue(all(isinstance(e, (sc.Draws, sc.Progress)) for e in events[1:-1]))
         fsum = events[-1]
         assert isinstance(fsum, sc.Summary)
-        self.assertEqual(events[0].seq if isinstance(events[0], sc.Draws) else -1, resume)
+        first_draws = next(e for e in events if isinstance(e, sc.Draws))
+        self.assertEqual(first_draws.seq, resume)
         got.extend(e for e in events[:-1] if isinstance(e, sc.Draws))
 
         # Every draw once, in order, equal to what the session's own client got.
@@ -704,8 +713,9 @@ class LiveFollowTests(unittest.TestCase):
         # From exactly the end: no draws, only the summary. Beyond it:
         # OUT_OF_RANGE naming from_seq.
         tail = list(sc.follow(self.target, sid, token, chains * n, timeout=DEADLINE_SECONDS))
-        self.assertEqual(len(tail), 1)
-        self.assertIsInstance(tail[0], sc.Summary)
+        self.assertIsInstance(tail[0], sc.FollowHeader)
+        self.assertFalse(any(isinstance(e, sc.Draws) for e in tail))
+        self.assertIsInstance(tail[-1], sc.Summary)
         with self.assertRaises(sc.SessionError) as cm:
             list(sc.follow(self.target, sid, token, chains * n + 1, timeout=DEADLINE_SECONDS))
         self.assertEqual((cm.exception.code, cm.exception.field), (grpc.StatusCode.OUT_OF_RANGE, "from_seq"))

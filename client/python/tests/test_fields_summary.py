@@ -6,7 +6,8 @@ in the Python client fails here:
 
 * every leaf field of Register is filled by ``Spec.to_register`` when every
   Spec field is set, and every Spec field reaches the Register;
-* every leaf field of Progress, Finished, Registered and PlanResponse
+* every leaf field of Progress, Finished, Registered, PlanResponse and
+  FollowHeader
   changes the Python value that ``from_wire`` builds from it.
 
 The summary's quantiles are checked against the definition of Hyndman and
@@ -149,6 +150,10 @@ def check_every_leaf_read(desc: Descriptor, convert: Any) -> List[str]:
 
 def test_progress_fields_all_read() -> None:
     assert check_every_leaf_read(pb.Progress.DESCRIPTOR, sc.Progress.from_wire) == []
+
+
+def test_follow_header_fields_all_read() -> None:
+    assert check_every_leaf_read(pb.FollowHeader.DESCRIPTOR, sc.FollowHeader.from_wire) == []
 
 
 def test_finished_fields_all_read() -> None:

@@ -712,13 +712,20 @@ func (x *FollowRequest) GetToken() string {
 	return ""
 }
 
-// FollowResponse is one frame of a followed session.
+// FollowResponse is one frame of a followed session. Frame order: one
+// FollowHeader first, then Draws and Progress interleaved as the session
+// produced them, then Finished. A consumer written before header and
+// progress existed sees frames whose oneof it does not know (an empty
+// frame once decoded) and skips them: it still gets every draw and the
+// Finished frame.
 type FollowResponse struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// Types that are valid to be assigned to Frame:
 	//
 	//	*FollowResponse_Draws
 	//	*FollowResponse_Finished
+	//	*FollowResponse_Header
+	//	*FollowResponse_Progress
 	Frame         isFollowResponse_Frame `protobuf_oneof:"frame"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
@@ -779,6 +786,24 @@ func (x *FollowResponse) GetFinished() *Finished {
 	return nil
 }
 
+func (x *FollowResponse) GetHeader() *FollowHeader {
+	if x != nil {
+		if x, ok := x.Frame.(*FollowResponse_Header); ok {
+			return x.Header
+		}
+	}
+	return nil
+}
+
+func (x *FollowResponse) GetProgress() *Progress {
+	if x != nil {
+		if x, ok := x.Frame.(*FollowResponse_Progress); ok {
+			return x.Progress
+		}
+	}
+	return nil
+}
+
 type isFollowResponse_Frame interface {
 	isFollowResponse_Frame()
 }
@@ -793,9 +818,26 @@ type FollowResponse_Finished struct {
 	Finished *Finished `protobuf:"bytes,2,opt,name=finished,proto3,oneof"`
 }
 
+type FollowResponse_Header struct {
+	// What the session is: sent once, first.
+	Header *FollowHeader `protobuf:"bytes,3,opt,name=header,proto3,oneof"`
+}
+
+type FollowResponse_Progress struct {
+	// Budget and state, placed among the draws where the session reported
+	// it. A follower that connects mid-run first gets the latest report
+	// made before from_seq (if any is still kept); one that falls behind
+	// may miss reports (the server keeps the latest few), never draws.
+	Progress *Progress `protobuf:"bytes,4,opt,name=progress,proto3,oneof"`
+}
+
 func (*FollowResponse_Draws) isFollowResponse_Frame() {}
 
 func (*FollowResponse_Finished) isFollowResponse_Frame() {}
+
+func (*FollowResponse_Header) isFollowResponse_Frame() {}
+
+func (*FollowResponse_Progress) isFollowResponse_Frame() {}
 
 // SessionRequest is one frame from the client.
 type SessionRequest struct {
@@ -3426,6 +3468,188 @@ func (x *Resume) GetNextSeq() uint64 {
 	return 0
 }
 
+// FollowHeader is the first frame of a Follow stream: what the followed
+// session samples and the budget it was given, as registered (after the
+// server's defaults and planning).
+type FollowHeader struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The session followed.
+	SessionId string `protobuf:"bytes,1,opt,name=session_id,json=sessionId,proto3" json:"session_id,omitempty"`
+	// Dimension and chains.
+	Dim    int32 `protobuf:"varint,2,opt,name=dim,proto3" json:"dim,omitempty"`
+	Chains int32 `protobuf:"varint,3,opt,name=chains,proto3" json:"chains,omitempty"`
+	// The kernel in use.
+	Kernel string `protobuf:"bytes,4,opt,name=kernel,proto3" json:"kernel,omitempty"`
+	// Parameter names (dim entries).
+	Names []string `protobuf:"bytes,5,rep,name=names,proto3" json:"names,omitempty"`
+	// The step size in use at the start.
+	Step float64 `protobuf:"fixed64,6,opt,name=step,proto3" json:"step,omitempty"`
+	// The seed in use.
+	Seed uint64 `protobuf:"varint,7,opt,name=seed,proto3" json:"seed,omitempty"`
+	// Budget figures from Register: burn_in, keep_every (>= 1),
+	// draws_per_chain (0: no limit), max_evaluations (0: no limit),
+	// max_seconds (0: none set by the client; the server may still impose
+	// its limit, which Progress.seconds_left reflects).
+	BurnIn         int64   `protobuf:"varint,8,opt,name=burn_in,json=burnIn,proto3" json:"burn_in,omitempty"`
+	KeepEvery      int64   `protobuf:"varint,9,opt,name=keep_every,json=keepEvery,proto3" json:"keep_every,omitempty"`
+	DrawsPerChain  int64   `protobuf:"varint,10,opt,name=draws_per_chain,json=drawsPerChain,proto3" json:"draws_per_chain,omitempty"`
+	MaxEvaluations int64   `protobuf:"varint,11,opt,name=max_evaluations,json=maxEvaluations,proto3" json:"max_evaluations,omitempty"`
+	MaxSeconds     float64 `protobuf:"fixed64,12,opt,name=max_seconds,json=maxSeconds,proto3" json:"max_seconds,omitempty"`
+	// Evaluations per completed step over all chains (an estimate for
+	// kernels whose cost varies).
+	EvaluationsPerStep int64 `protobuf:"varint,13,opt,name=evaluations_per_step,json=evaluationsPerStep,proto3" json:"evaluations_per_step,omitempty"`
+	// The accuracy targets the session finishes on.
+	Wants *Wants `protobuf:"bytes,14,opt,name=wants,proto3" json:"wants,omitempty"`
+	// Sequence numbers of the oldest draw still kept for followers and of
+	// the next draw to come, when the header was sent.
+	FirstSeq      uint64 `protobuf:"varint,15,opt,name=first_seq,json=firstSeq,proto3" json:"first_seq,omitempty"`
+	NextSeq       uint64 `protobuf:"varint,16,opt,name=next_seq,json=nextSeq,proto3" json:"next_seq,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *FollowHeader) Reset() {
+	*x = FollowHeader{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[27]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *FollowHeader) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*FollowHeader) ProtoMessage() {}
+
+func (x *FollowHeader) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[27]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use FollowHeader.ProtoReflect.Descriptor instead.
+func (*FollowHeader) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{27}
+}
+
+func (x *FollowHeader) GetSessionId() string {
+	if x != nil {
+		return x.SessionId
+	}
+	return ""
+}
+
+func (x *FollowHeader) GetDim() int32 {
+	if x != nil {
+		return x.Dim
+	}
+	return 0
+}
+
+func (x *FollowHeader) GetChains() int32 {
+	if x != nil {
+		return x.Chains
+	}
+	return 0
+}
+
+func (x *FollowHeader) GetKernel() string {
+	if x != nil {
+		return x.Kernel
+	}
+	return ""
+}
+
+func (x *FollowHeader) GetNames() []string {
+	if x != nil {
+		return x.Names
+	}
+	return nil
+}
+
+func (x *FollowHeader) GetStep() float64 {
+	if x != nil {
+		return x.Step
+	}
+	return 0
+}
+
+func (x *FollowHeader) GetSeed() uint64 {
+	if x != nil {
+		return x.Seed
+	}
+	return 0
+}
+
+func (x *FollowHeader) GetBurnIn() int64 {
+	if x != nil {
+		return x.BurnIn
+	}
+	return 0
+}
+
+func (x *FollowHeader) GetKeepEvery() int64 {
+	if x != nil {
+		return x.KeepEvery
+	}
+	return 0
+}
+
+func (x *FollowHeader) GetDrawsPerChain() int64 {
+	if x != nil {
+		return x.DrawsPerChain
+	}
+	return 0
+}
+
+func (x *FollowHeader) GetMaxEvaluations() int64 {
+	if x != nil {
+		return x.MaxEvaluations
+	}
+	return 0
+}
+
+func (x *FollowHeader) GetMaxSeconds() float64 {
+	if x != nil {
+		return x.MaxSeconds
+	}
+	return 0
+}
+
+func (x *FollowHeader) GetEvaluationsPerStep() int64 {
+	if x != nil {
+		return x.EvaluationsPerStep
+	}
+	return 0
+}
+
+func (x *FollowHeader) GetWants() *Wants {
+	if x != nil {
+		return x.Wants
+	}
+	return nil
+}
+
+func (x *FollowHeader) GetFirstSeq() uint64 {
+	if x != nil {
+		return x.FirstSeq
+	}
+	return 0
+}
+
+func (x *FollowHeader) GetNextSeq() uint64 {
+	if x != nil {
+		return x.NextSeq
+	}
+	return 0
+}
+
 var File_sluice_v1_sluice_proto protoreflect.FileDescriptor
 
 const file_sluice_v1_sluice_proto_rawDesc = "" +
@@ -3461,10 +3685,12 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\n" +
 	"session_id\x18\x01 \x01(\tR\tsessionId\x12\x19\n" +
 	"\bfrom_seq\x18\x02 \x01(\x04R\afromSeq\x12\x14\n" +
-	"\x05token\x18\x03 \x01(\tR\x05token\"v\n" +
+	"\x05token\x18\x03 \x01(\tR\x05token\"\xdc\x01\n" +
 	"\x0eFollowResponse\x12(\n" +
 	"\x05draws\x18\x01 \x01(\v2\x10.sluice.v1.DrawsH\x00R\x05draws\x121\n" +
-	"\bfinished\x18\x02 \x01(\v2\x13.sluice.v1.FinishedH\x00R\bfinishedB\a\n" +
+	"\bfinished\x18\x02 \x01(\v2\x13.sluice.v1.FinishedH\x00R\bfinished\x121\n" +
+	"\x06header\x18\x03 \x01(\v2\x17.sluice.v1.FollowHeaderH\x00R\x06header\x121\n" +
+	"\bprogress\x18\x04 \x01(\v2\x13.sluice.v1.ProgressH\x00R\bprogressB\a\n" +
 	"\x05frame\"\xdc\x01\n" +
 	"\x0eSessionRequest\x121\n" +
 	"\bregister\x18\x01 \x01(\v2\x13.sluice.v1.RegisterH\x00R\bregister\x12:\n" +
@@ -3697,7 +3923,28 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\n" +
 	"session_id\x18\x01 \x01(\tR\tsessionId\x12\x14\n" +
 	"\x05token\x18\x02 \x01(\tR\x05token\x12\x19\n" +
-	"\bnext_seq\x18\x03 \x01(\x04R\anextSeq*d\n" +
+	"\bnext_seq\x18\x03 \x01(\x04R\anextSeq\"\xe9\x03\n" +
+	"\fFollowHeader\x12\x1d\n" +
+	"\n" +
+	"session_id\x18\x01 \x01(\tR\tsessionId\x12\x10\n" +
+	"\x03dim\x18\x02 \x01(\x05R\x03dim\x12\x16\n" +
+	"\x06chains\x18\x03 \x01(\x05R\x06chains\x12\x16\n" +
+	"\x06kernel\x18\x04 \x01(\tR\x06kernel\x12\x14\n" +
+	"\x05names\x18\x05 \x03(\tR\x05names\x12\x12\n" +
+	"\x04step\x18\x06 \x01(\x01R\x04step\x12\x12\n" +
+	"\x04seed\x18\a \x01(\x04R\x04seed\x12\x17\n" +
+	"\aburn_in\x18\b \x01(\x03R\x06burnIn\x12\x1d\n" +
+	"\n" +
+	"keep_every\x18\t \x01(\x03R\tkeepEvery\x12&\n" +
+	"\x0fdraws_per_chain\x18\n" +
+	" \x01(\x03R\rdrawsPerChain\x12'\n" +
+	"\x0fmax_evaluations\x18\v \x01(\x03R\x0emaxEvaluations\x12\x1f\n" +
+	"\vmax_seconds\x18\f \x01(\x01R\n" +
+	"maxSeconds\x120\n" +
+	"\x14evaluations_per_step\x18\r \x01(\x03R\x12evaluationsPerStep\x12&\n" +
+	"\x05wants\x18\x0e \x01(\v2\x10.sluice.v1.WantsR\x05wants\x12\x1b\n" +
+	"\tfirst_seq\x18\x0f \x01(\x04R\bfirstSeq\x12\x19\n" +
+	"\bnext_seq\x18\x10 \x01(\x04R\anextSeq*d\n" +
 	"\fGradientKind\x12\x1d\n" +
 	"\x19GRADIENT_KIND_UNSPECIFIED\x10\x00\x12\x17\n" +
 	"\x13GRADIENT_KIND_EXACT\x10\x01\x12\x1c\n" +
@@ -3748,7 +3995,7 @@ func file_sluice_v1_sluice_proto_rawDescGZIP() []byte {
 }
 
 var file_sluice_v1_sluice_proto_enumTypes = make([]protoimpl.EnumInfo, 6)
-var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 27)
+var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 28)
 var file_sluice_v1_sluice_proto_goTypes = []any{
 	(GradientKind)(0),            // 0: sluice.v1.GradientKind
 	(Metric)(0),                  // 1: sluice.v1.Metric
@@ -3783,6 +4030,7 @@ var file_sluice_v1_sluice_proto_goTypes = []any{
 	(*Finished)(nil),             // 30: sluice.v1.Finished
 	(*ParameterSummary)(nil),     // 31: sluice.v1.ParameterSummary
 	(*Resume)(nil),               // 32: sluice.v1.Resume
+	(*FollowHeader)(nil),         // 33: sluice.v1.FollowHeader
 }
 var file_sluice_v1_sluice_proto_depIdxs = []int32{
 	16, // 0: sluice.v1.PlanRequest.curvature:type_name -> sluice.v1.Curvature
@@ -3790,46 +4038,49 @@ var file_sluice_v1_sluice_proto_depIdxs = []int32{
 	27, // 2: sluice.v1.PlanResponse.bound:type_name -> sluice.v1.Bound
 	22, // 3: sluice.v1.FollowResponse.draws:type_name -> sluice.v1.Draws
 	30, // 4: sluice.v1.FollowResponse.finished:type_name -> sluice.v1.Finished
-	12, // 5: sluice.v1.SessionRequest.register:type_name -> sluice.v1.Register
-	20, // 6: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
-	21, // 7: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
-	32, // 8: sluice.v1.SessionRequest.resume:type_name -> sluice.v1.Resume
-	18, // 9: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
-	19, // 10: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
-	22, // 11: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
-	23, // 12: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
-	30, // 13: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
-	16, // 14: sluice.v1.Register.curvature:type_name -> sluice.v1.Curvature
-	17, // 15: sluice.v1.Register.wants:type_name -> sluice.v1.Wants
-	14, // 16: sluice.v1.Register.schedule:type_name -> sluice.v1.StepSchedule
-	13, // 17: sluice.v1.Register.envelope:type_name -> sluice.v1.Envelope
-	15, // 18: sluice.v1.Register.noise:type_name -> sluice.v1.GradientNoise
-	0,  // 19: sluice.v1.GradientNoise.kind:type_name -> sluice.v1.GradientKind
-	1,  // 20: sluice.v1.Wants.metric:type_name -> sluice.v1.Metric
-	2,  // 21: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
-	3,  // 22: sluice.v1.Progress.state:type_name -> sluice.v1.State
-	26, // 23: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
-	27, // 24: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
-	28, // 25: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
-	29, // 26: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
-	25, // 27: sluice.v1.Progress.noise:type_name -> sluice.v1.NoiseEstimate
-	24, // 28: sluice.v1.Progress.kernel:type_name -> sluice.v1.KernelReport
-	1,  // 29: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
-	4,  // 30: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
-	5,  // 31: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
-	23, // 32: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
-	31, // 33: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
-	10, // 34: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
-	8,  // 35: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
-	6,  // 36: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
-	11, // 37: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
-	9,  // 38: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
-	7,  // 39: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
-	37, // [37:40] is the sub-list for method output_type
-	34, // [34:37] is the sub-list for method input_type
-	34, // [34:34] is the sub-list for extension type_name
-	34, // [34:34] is the sub-list for extension extendee
-	0,  // [0:34] is the sub-list for field type_name
+	33, // 5: sluice.v1.FollowResponse.header:type_name -> sluice.v1.FollowHeader
+	23, // 6: sluice.v1.FollowResponse.progress:type_name -> sluice.v1.Progress
+	12, // 7: sluice.v1.SessionRequest.register:type_name -> sluice.v1.Register
+	20, // 8: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
+	21, // 9: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
+	32, // 10: sluice.v1.SessionRequest.resume:type_name -> sluice.v1.Resume
+	18, // 11: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
+	19, // 12: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
+	22, // 13: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
+	23, // 14: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
+	30, // 15: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
+	16, // 16: sluice.v1.Register.curvature:type_name -> sluice.v1.Curvature
+	17, // 17: sluice.v1.Register.wants:type_name -> sluice.v1.Wants
+	14, // 18: sluice.v1.Register.schedule:type_name -> sluice.v1.StepSchedule
+	13, // 19: sluice.v1.Register.envelope:type_name -> sluice.v1.Envelope
+	15, // 20: sluice.v1.Register.noise:type_name -> sluice.v1.GradientNoise
+	0,  // 21: sluice.v1.GradientNoise.kind:type_name -> sluice.v1.GradientKind
+	1,  // 22: sluice.v1.Wants.metric:type_name -> sluice.v1.Metric
+	2,  // 23: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
+	3,  // 24: sluice.v1.Progress.state:type_name -> sluice.v1.State
+	26, // 25: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
+	27, // 26: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
+	28, // 27: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
+	29, // 28: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
+	25, // 29: sluice.v1.Progress.noise:type_name -> sluice.v1.NoiseEstimate
+	24, // 30: sluice.v1.Progress.kernel:type_name -> sluice.v1.KernelReport
+	1,  // 31: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
+	4,  // 32: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
+	5,  // 33: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
+	23, // 34: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
+	31, // 35: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
+	17, // 36: sluice.v1.FollowHeader.wants:type_name -> sluice.v1.Wants
+	10, // 37: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
+	8,  // 38: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
+	6,  // 39: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
+	11, // 40: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
+	9,  // 41: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
+	7,  // 42: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
+	40, // [40:43] is the sub-list for method output_type
+	37, // [37:40] is the sub-list for method input_type
+	37, // [37:37] is the sub-list for extension type_name
+	37, // [37:37] is the sub-list for extension extendee
+	0,  // [0:37] is the sub-list for field type_name
 }
 
 func init() { file_sluice_v1_sluice_proto_init() }
@@ -3840,6 +4091,8 @@ func file_sluice_v1_sluice_proto_init() {
 	file_sluice_v1_sluice_proto_msgTypes[3].OneofWrappers = []any{
 		(*FollowResponse_Draws)(nil),
 		(*FollowResponse_Finished)(nil),
+		(*FollowResponse_Header)(nil),
+		(*FollowResponse_Progress)(nil),
 	}
 	file_sluice_v1_sluice_proto_msgTypes[4].OneofWrappers = []any{
 		(*SessionRequest_Register)(nil),
@@ -3860,7 +4113,7 @@ func file_sluice_v1_sluice_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_sluice_v1_sluice_proto_rawDesc), len(file_sluice_v1_sluice_proto_rawDesc)),
 			NumEnums:      6,
-			NumMessages:   27,
+			NumMessages:   28,
 			NumExtensions: 0,
 			NumServices:   1,
 		},

@@ -82,8 +82,10 @@ type SluiceServiceClient interface {
 	// session stopped without finishing on a server that keeps state (its
 	// client went away, or the server is shutting down) gives UNAVAILABLE
 	// until its client resumes it: follow again from the next sequence
-	// number. The stream ends with the session's Finished frame once every
-	// draw has been sent.
+	// number. The stream starts with a FollowHeader (what the session samples
+	// and its budget), carries the session's Progress reports among the draws
+	// where the session made them, and ends with the session's Finished frame
+	// once every draw has been sent.
 	Follow(ctx context.Context, in *FollowRequest, opts ...grpc.CallOption) (grpc.ServerStreamingClient[FollowResponse], error)
 	// Plan answers, before any sampling, what reaching a guaranteed accuracy
 	// costs for an m-strongly convex, M-smooth target with unadjusted
@@ -184,8 +186,10 @@ type SluiceServiceServer interface {
 	// session stopped without finishing on a server that keeps state (its
 	// client went away, or the server is shutting down) gives UNAVAILABLE
 	// until its client resumes it: follow again from the next sequence
-	// number. The stream ends with the session's Finished frame once every
-	// draw has been sent.
+	// number. The stream starts with a FollowHeader (what the session samples
+	// and its budget), carries the session's Progress reports among the draws
+	// where the session made them, and ends with the session's Finished frame
+	// once every draw has been sent.
 	Follow(*FollowRequest, grpc.ServerStreamingServer[FollowResponse]) error
 	// Plan answers, before any sampling, what reaching a guaranteed accuracy
 	// costs for an m-strongly convex, M-smooth target with unadjusted

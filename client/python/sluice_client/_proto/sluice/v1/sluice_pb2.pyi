@@ -144,6 +144,42 @@ class Finished(_message.Message):
     reason: FinishReason
     def __init__(self, reason: _Optional[_Union[FinishReason, str]] = ..., message: _Optional[str] = ..., progress: _Optional[_Union[Progress, _Mapping]] = ..., parameters: _Optional[_Iterable[_Union[ParameterSummary, _Mapping]]] = ..., parameters_omitted: _Optional[int] = ...) -> None: ...
 
+class FollowHeader(_message.Message):
+    __slots__ = ["burn_in", "chains", "dim", "draws_per_chain", "evaluations_per_step", "first_seq", "keep_every", "kernel", "max_evaluations", "max_seconds", "names", "next_seq", "seed", "session_id", "step", "wants"]
+    BURN_IN_FIELD_NUMBER: _ClassVar[int]
+    CHAINS_FIELD_NUMBER: _ClassVar[int]
+    DIM_FIELD_NUMBER: _ClassVar[int]
+    DRAWS_PER_CHAIN_FIELD_NUMBER: _ClassVar[int]
+    EVALUATIONS_PER_STEP_FIELD_NUMBER: _ClassVar[int]
+    FIRST_SEQ_FIELD_NUMBER: _ClassVar[int]
+    KEEP_EVERY_FIELD_NUMBER: _ClassVar[int]
+    KERNEL_FIELD_NUMBER: _ClassVar[int]
+    MAX_EVALUATIONS_FIELD_NUMBER: _ClassVar[int]
+    MAX_SECONDS_FIELD_NUMBER: _ClassVar[int]
+    NAMES_FIELD_NUMBER: _ClassVar[int]
+    NEXT_SEQ_FIELD_NUMBER: _ClassVar[int]
+    SEED_FIELD_NUMBER: _ClassVar[int]
+    SESSION_ID_FIELD_NUMBER: _ClassVar[int]
+    STEP_FIELD_NUMBER: _ClassVar[int]
+    WANTS_FIELD_NUMBER: _ClassVar[int]
+    burn_in: int
+    chains: int
+    dim: int
+    draws_per_chain: int
+    evaluations_per_step: int
+    first_seq: int
+    keep_every: int
+    kernel: str
+    max_evaluations: int
+    max_seconds: float
+    names: _containers.RepeatedScalarFieldContainer[str]
+    next_seq: int
+    seed: int
+    session_id: str
+    step: float
+    wants: Wants
+    def __init__(self, session_id: _Optional[str] = ..., dim: _Optional[int] = ..., chains: _Optional[int] = ..., kernel: _Optional[str] = ..., names: _Optional[_Iterable[str]] = ..., step: _Optional[float] = ..., seed: _Optional[int] = ..., burn_in: _Optional[int] = ..., keep_every: _Optional[int] = ..., draws_per_chain: _Optional[int] = ..., max_evaluations: _Optional[int] = ..., max_seconds: _Optional[float] = ..., evaluations_per_step: _Optional[int] = ..., wants: _Optional[_Union[Wants, _Mapping]] = ..., first_seq: _Optional[int] = ..., next_seq: _Optional[int] = ...) -> None: ...
+
 class FollowRequest(_message.Message):
     __slots__ = ["from_seq", "session_id", "token"]
     FROM_SEQ_FIELD_NUMBER: _ClassVar[int]
@@ -155,12 +191,16 @@ class FollowRequest(_message.Message):
     def __init__(self, session_id: _Optional[str] = ..., from_seq: _Optional[int] = ..., token: _Optional[str] = ...) -> None: ...
 
 class FollowResponse(_message.Message):
-    __slots__ = ["draws", "finished"]
+    __slots__ = ["draws", "finished", "header", "progress"]
     DRAWS_FIELD_NUMBER: _ClassVar[int]
     FINISHED_FIELD_NUMBER: _ClassVar[int]
+    HEADER_FIELD_NUMBER: _ClassVar[int]
+    PROGRESS_FIELD_NUMBER: _ClassVar[int]
     draws: Draws
     finished: Finished
-    def __init__(self, draws: _Optional[_Union[Draws, _Mapping]] = ..., finished: _Optional[_Union[Finished, _Mapping]] = ...) -> None: ...
+    header: FollowHeader
+    progress: Progress
+    def __init__(self, draws: _Optional[_Union[Draws, _Mapping]] = ..., finished: _Optional[_Union[Finished, _Mapping]] = ..., header: _Optional[_Union[FollowHeader, _Mapping]] = ..., progress: _Optional[_Union[Progress, _Mapping]] = ...) -> None: ...
 
 class GradientNoise(_message.Message):
     __slots__ = ["bias", "data_size", "kind", "minibatch_size", "replicates", "variance"]
