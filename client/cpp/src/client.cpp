@@ -266,11 +266,13 @@ class Runner {
   Runner(const Spec& spec, const Evaluator& eval, const Callbacks& cb) : spec_(spec), eval_(eval), cb_(cb) {}
 
   // follow reads a Follow stream: draws and the final frame.
-  Summary follow(pb::SluiceService::Stub& stub, const std::string& session_id, std::uint64_t from_seq) {
+  Summary follow(pb::SluiceService::Stub& stub, const std::string& session_id, const std::string& token,
+                 std::uint64_t from_seq) {
     next_seq_ = from_seq;
     sum_.next_seq = from_seq;
     pb::FollowRequest req;
     req.set_session_id(session_id);
+    req.set_token(token);
     req.set_from_seq(from_seq);
     auto reader = stub.Follow(&ctx_, req);
     std::string protocol_error;
@@ -356,6 +358,7 @@ class Runner {
   void registered(const pb::Registered& g) {
     Registered& r = sum_.registered;
     r.session_id = g.session_id();
+    r.resume_token = g.resume_token();
     r.kernel = g.kernel();
     r.seed = g.seed();
     r.step = g.step();
@@ -692,17 +695,23 @@ Summary run(const std::shared_ptr<grpc::Channel>& channel, const Spec& spec, con
   return r.run(*stub, limit);
 }
 
-Summary follow(const std::shared_ptr<grpc::Channel>& channel, const std::string& session_id, std::uint64_t from_seq,
+Summary follow(const std::shared_ptr<grpc::Channel>& channel, const std::string& session_id,
+               const std::string& session_token, std::uint64_t from_seq,
                const std::function<void(const Draws&)>& on_draws) {
   if (!channel) throw Error(Code::Usage, 0, "sluice: follow: null channel");
   if (session_id.empty()) throw Error(Code::Usage, 0, "sluice: follow: no session id");
+  if (session_token.empty()) {
+    throw Error(Code::Usage, 0,
+                "sluice: follow: no session token (the resume_token of the session's Registered, "
+                "not the server's bearer token)");
+  }
   static const Spec no_spec;
   static const Evaluator no_evaluator;
   Callbacks cb;
   cb.on_draws = on_draws;
   auto stub = pb::SluiceService::NewStub(channel);
   Runner r(no_spec, no_evaluator, cb);
-  return r.follow(*stub, session_id, from_seq);
+  return r.follow(*stub, session_id, session_token, from_seq);
 }
 
 }  // namespace sluice

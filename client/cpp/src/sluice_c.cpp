@@ -93,7 +93,7 @@ struct sluice_session {
   std::uint64_t next_seq = 0;
 
   std::optional<sluice::Summary> summary;
-  std::string session_id;
+  std::string session_id, session_token;
   std::string error_message, error_field, error_description;
   int grpc_code = 0;
 
@@ -287,7 +287,10 @@ int sluice_session_run(sluice_session* s, const char* target) {
     s->ran = true;
 
     sluice::Callbacks cb;
-    cb.on_registered = [s](const sluice::Registered& r) { s->session_id = r.session_id; };
+    cb.on_registered = [s](const sluice::Registered& r) {
+      s->session_id = r.session_id;
+      s->session_token = r.resume_token;
+    };
     if (s->on_draws != nullptr) {
       cb.on_draws = [s](const sluice::Draws& d) {
         sluice_draws cd{d.seq, d.rows, d.dim, d.values, d.chains, d.iterations};
@@ -344,7 +347,8 @@ int sluice_session_run(sluice_session* s, const char* target) {
   }
 }
 
-int sluice_session_follow(sluice_session* s, const char* target, const char* session_id, uint64_t from_seq) {
+int sluice_session_follow(sluice_session* s, const char* target, const char* session_id, const char* session_token,
+                          uint64_t from_seq) {
   if (s == nullptr) return SLUICE_ERR_USAGE;
   try {
     if (s->ran) {
@@ -360,6 +364,12 @@ int sluice_session_follow(sluice_session* s, const char* target, const char* ses
       s->set_error(0, "sluice_session_follow: no session id");
       return SLUICE_ERR_USAGE;
     }
+    if (session_token == nullptr || *session_token == '\0') {
+      s->set_error(0,
+                   "sluice_session_follow: no session token (sluice_session_token of the session followed, "
+                   "not the server's bearer token)");
+      return SLUICE_ERR_USAGE;
+    }
     s->ran = true;
     s->next_seq = from_seq;
     std::function<void(const sluice::Draws&)> on_draws = [s](const sluice::Draws& d) {
@@ -370,7 +380,7 @@ int sluice_session_follow(sluice_session* s, const char* target, const char* ses
     };
     try {
       auto channel = sluice::connect(target, s->security, sluice::kFollowMaxMessageBytes);
-      s->summary = sluice::follow(channel, session_id, from_seq, on_draws);
+      s->summary = sluice::follow(channel, session_id, session_token, from_seq, on_draws);
       return SLUICE_OK;
     } catch (const sluice::Error& e) {
       if (e.summary && e.summary->reason != sluice::Reason::None) s->summary = e.summary;
@@ -432,6 +442,8 @@ const char* sluice_session_error_description(const sluice_session* s) {
 int sluice_session_grpc_code(const sluice_session* s) { return s == nullptr ? 0 : s->grpc_code; }
 
 const char* sluice_session_id(const sluice_session* s) { return s == nullptr ? "" : s->session_id.c_str(); }
+
+const char* sluice_session_token(const sluice_session* s) { return s == nullptr ? "" : s->session_token.c_str(); }
 
 void sluice_session_free(sluice_session* s) { delete s; }
 

@@ -172,6 +172,13 @@ struct Progress {
 
 struct Registered {
   std::string session_id, kernel;
+  // The session's own secret (Registered.resume_token on the wire: 32 hex
+  // digits, issued once). follow() of this session, from any client, needs
+  // it, and so does resuming it; keep it as private as a password. It is
+  // not the server's bearer token (Security::token), which admits a client
+  // to the server at all: a follower of a server with --token-file sends
+  // both.
+  std::string resume_token;
   std::uint64_t seed = 0;
   double step = 0;
   std::int64_t evaluations_per_step = 0, max_message_bytes = 0, planned_steps = 0;
@@ -292,12 +299,19 @@ constexpr std::int64_t kFollowMaxMessageBytes = 64 << 20;
 // client (the Follow rpc): each block goes to on_draws in sequence order,
 // exactly once, and follow returns the session's summary once its final
 // frame arrives (its registered part empty, draws_received counting this
-// follower's rows). A token set on the channel (Security) is sent as for
-// run(). On an error (NOT_FOUND for an unknown session, OUT_OF_RANGE when
-// the rows asked for have left the server's bounded buffer, a broken
-// connection) it throws Error whose summary holds what was received: resume
-// with follow(channel, session_id, e.summary->next_seq, on_draws).
-Summary follow(const std::shared_ptr<grpc::Channel>& channel, const std::string& session_id, std::uint64_t from_seq,
+// follower's rows). session_token is that session's own secret
+// (Registered::resume_token), required: an empty one is Code::Usage with
+// nothing sent, and a wrong one gets the same answer as an unknown
+// session_id (Code::Server, grpc_code 5 NOT_FOUND, field "session_id"), so
+// that a caller without it learns nothing about which sessions exist. The
+// server's bearer token, when the server wants one, is a different thing:
+// it is set on the channel (Security) and sent as for run(). On an error
+// (NOT_FOUND, OUT_OF_RANGE when the rows asked for have left the server's
+// bounded buffer, a broken connection) follow throws Error whose summary
+// holds what was received: resume with
+// follow(channel, session_id, session_token, e.summary->next_seq, on_draws).
+Summary follow(const std::shared_ptr<grpc::Channel>& channel, const std::string& session_id,
+               const std::string& session_token, std::uint64_t from_seq,
                const std::function<void(const Draws&)>& on_draws);
 
 }  // namespace sluice
