@@ -331,8 +331,33 @@ int sluice_session_run(sluice_session *s, const char *target);
 int sluice_session_follow(sluice_session *s, const char *target, const char *session_id, const char *session_token,
                           uint64_t from_seq);
 
-/* After sluice_session_follow: the sequence number after the last draw
- * received (from_seq when none arrived). */
+/* Continues session session_id after its stream broke or its server
+ * restarted, on a server that keeps checkpoints (sluice serve --state-dir
+ * or --state-postgres): a Resume frame in place of Register. s is a new
+ * handle made like the one that ran the session, with the same evaluation
+ * callback (the server may ask again for points it asked before) and the
+ * same max_message_bytes (the rest of its spec is not sent), its draws and
+ * progress callbacks, TLS and bearer token. session_id and session_token
+ * are sluice_session_id and sluice_session_token of the handle that ran
+ * (the session token, not the server's bearer token); next_seq the first
+ * draw not yet received, sluice_session_next_seq of that handle. Draws
+ * arrive from next_seq on, in order and exactly once, bit-identical to
+ * those of a session that never stopped; a finished session sends its kept
+ * draws from next_seq and its summary again. Returns as
+ * sluice_session_run, and SLUICE_ERR_SERVER with gRPC code 5 (NOT_FOUND,
+ * field "session_id") for an unknown session or a wrong session token,
+ * 11 (OUT_OF_RANGE) when the draws from next_seq are no longer kept;
+ * SLUICE_ERR_UNAVAILABLE from a server that keeps no state. SLUICE_ERR_USAGE,
+ * nothing sent, for a NULL or empty session_id or session_token. The
+ * handle then answers sluice_session_id, _token and _next_seq for a
+ * further resume. */
+int sluice_session_resume(sluice_session *s, const char *target, const char *session_id, const char *session_token,
+                          uint64_t next_seq);
+
+/* After sluice_session_run, _resume or _follow: the sequence number after
+ * the last draw received (0, next_seq or from_seq when none arrived):
+ * where sluice_session_resume or a new follow continues without loss or
+ * duplicate. */
 uint64_t sluice_session_next_seq(const sluice_session *s);
 
 /* Fills *out with the summary; returns SLUICE_OK, or SLUICE_ERR_STATE when
@@ -353,8 +378,8 @@ const char *sluice_session_id(const sluice_session *s);
 
 /* The session's own token the server gave with its id (32 hex digits; ""
  * before Registered): what sluice_session_follow needs to follow this
- * session. Anyone holding the id and this token can read the session's
- * draws: keep it as private as a password, and hand it only to the
+ * session, and sluice_session_resume to continue it. Anyone holding the
+ * id and this token can read the session's draws: keep it as private as a password, and hand it only to the
  * followers meant to read them. It is not the server's bearer token. */
 const char *sluice_session_token(const sluice_session *s);
 

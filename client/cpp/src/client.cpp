@@ -310,10 +310,18 @@ class Runner {
     return sum_;
   }
 
-  Summary run(pb::SluiceService::Stub& stub, std::int64_t limit) {
+  // run runs a session: with resume null it registers spec_, otherwise its
+  // first frame is *resume and draws are expected from resume->next_seq().
+  Summary run(pb::SluiceService::Stub& stub, std::int64_t limit, const pb::Resume* resume = nullptr) {
     stream_ = stub.Session(&ctx_);
     pb::SessionRequest reg;
-    register_frame(spec_, limit, reg.mutable_register_());
+    if (resume != nullptr) {
+      *reg.mutable_resume() = *resume;
+      next_seq_ = resume->next_seq();
+      sum_.next_seq = next_seq_;
+    } else {
+      register_frame(spec_, limit, reg.mutable_register_());
+    }
     if (!stream_->Write(reg)) send_closed_ = true;  // the status says why
     std::string protocol_error;
     pb::SessionResponse frame;
@@ -359,6 +367,7 @@ class Runner {
     Registered& r = sum_.registered;
     r.session_id = g.session_id();
     r.resume_token = g.resume_token();
+    r.resumed = g.resumed();
     r.kernel = g.kernel();
     r.seed = g.seed();
     r.step = g.step();
@@ -693,6 +702,27 @@ Summary run(const std::shared_ptr<grpc::Channel>& channel, const Spec& spec, con
   auto stub = pb::SluiceService::NewStub(channel);
   Runner r(spec, evaluate, callbacks);
   return r.run(*stub, limit);
+}
+
+Summary resume(const std::shared_ptr<grpc::Channel>& channel, const std::string& session_id,
+               const std::string& session_token, std::uint64_t next_seq, const Evaluator& evaluate,
+               const Callbacks& callbacks) {
+  if (!channel) throw Error(Code::Usage, 0, "sluice: resume: null channel");
+  if (!evaluate) throw Error(Code::Usage, 0, "sluice: resume: no evaluator");
+  if (session_id.empty()) throw Error(Code::Usage, 0, "sluice: resume: no session id");
+  if (session_token.empty()) {
+    throw Error(Code::Usage, 0,
+                "sluice: resume: no session token (the resume_token of the session's Registered, "
+                "not the server's bearer token)");
+  }
+  static const Spec no_spec;
+  pb::Resume frame;
+  frame.set_session_id(session_id);
+  frame.set_token(session_token);
+  frame.set_next_seq(next_seq);
+  auto stub = pb::SluiceService::NewStub(channel);
+  Runner r(no_spec, evaluate, callbacks);
+  return r.run(*stub, 0, &frame);
 }
 
 Summary follow(const std::shared_ptr<grpc::Channel>& channel, const std::string& session_id,

@@ -264,39 +264,52 @@ int sluice_session_set_insecure(sluice_session* s, int insecure) {
   return SLUICE_OK;
 }
 
-int sluice_session_run(sluice_session* s, const char* target) {
+}  // extern "C"
+
+namespace {
+
+// ResumeFrom names the session sluice_session_resume continues.
+struct ResumeFrom {
+  std::string session_id, session_token;
+  std::uint64_t next_seq = 0;
+};
+
+// run_session is sluice_session_run (resume null, messages name fn) and
+// sluice_session_resume.
+int run_session(sluice_session* s, const char* target, const char* fn, const ResumeFrom* resume) {
   if (s == nullptr) return SLUICE_ERR_USAGE;
   try {
     if (s->ran) {
-      s->set_error(0, "sluice_session_run: this session has already run");
+      s->set_error(0, std::string(fn) + ": this session has already run");
       return SLUICE_ERR_STATE;
     }
     s->set_error(0, "");
-    if (!s->usage_error.empty()) {
+    if (resume == nullptr && !s->usage_error.empty()) {
       s->set_error(0, s->usage_error);
       return SLUICE_ERR_USAGE;
     }
     if (target == nullptr || *target == '\0') {
-      s->set_error(0, "sluice_session_run: no target (want \"host:port\")");
+      s->set_error(0, std::string(fn) + ": no target (want \"host:port\")");
       return SLUICE_ERR_USAGE;
     }
     if (s->evaluate == nullptr) {
-      s->set_error(0, "sluice_session_run: no evaluation callback");
+      s->set_error(0, std::string(fn) + ": no evaluation callback");
       return SLUICE_ERR_USAGE;
     }
     s->ran = true;
+    s->next_seq = resume != nullptr ? resume->next_seq : 0;
 
     sluice::Callbacks cb;
     cb.on_registered = [s](const sluice::Registered& r) {
       s->session_id = r.session_id;
       s->session_token = r.resume_token;
     };
-    if (s->on_draws != nullptr) {
-      cb.on_draws = [s](const sluice::Draws& d) {
-        sluice_draws cd{d.seq, d.rows, d.dim, d.values, d.chains, d.iterations};
-        s->on_draws(&cd, s->draws_data);
-      };
-    }
+    cb.on_draws = [s](const sluice::Draws& d) {
+      s->next_seq = d.seq + static_cast<std::uint64_t>(d.rows);
+      if (s->on_draws == nullptr) return;
+      sluice_draws cd{d.seq, d.rows, d.dim, d.values, d.chains, d.iterations};
+      s->on_draws(&cd, s->draws_data);
+    };
     if (s->on_progress != nullptr) {
       cb.on_progress = [s](const sluice::Progress& p) {
         sluice_progress cp;
@@ -328,7 +341,11 @@ int sluice_session_run(sluice_session* s, const char* target) {
 
     try {
       auto channel = sluice::connect(target, s->security, s->spec.max_message_bytes);
-      s->summary = sluice::run(channel, s->spec, evaluate, cb);
+      if (resume != nullptr) {
+        s->summary = sluice::resume(channel, resume->session_id, resume->session_token, resume->next_seq, evaluate, cb);
+      } else {
+        s->summary = sluice::run(channel, s->spec, evaluate, cb);
+      }
       return SLUICE_OK;
     } catch (const sluice::Error& e) {
       if (e.summary) s->summary = e.summary;
@@ -344,6 +361,40 @@ int sluice_session_run(sluice_session* s, const char* target) {
   } catch (...) {
     s->set_error(0, "sluice: unknown failure");
     return SLUICE_ERR_PROTOCOL;
+  }
+}
+
+}  // namespace
+
+extern "C" {
+
+int sluice_session_run(sluice_session* s, const char* target) {
+  return run_session(s, target, "sluice_session_run", nullptr);
+}
+
+int sluice_session_resume(sluice_session* s, const char* target, const char* session_id, const char* session_token,
+                          uint64_t next_seq) {
+  if (s == nullptr) return SLUICE_ERR_USAGE;
+  if (s->ran) {
+    s->set_error(0, "sluice_session_resume: this session has already run");
+    return SLUICE_ERR_STATE;
+  }
+  if (session_id == nullptr || *session_id == '\0') {
+    s->set_error(0, "sluice_session_resume: no session id");
+    return SLUICE_ERR_USAGE;
+  }
+  if (session_token == nullptr || *session_token == '\0') {
+    s->set_error(0,
+                 "sluice_session_resume: no session token (sluice_session_token of the session resumed, "
+                 "not the server's bearer token)");
+    return SLUICE_ERR_USAGE;
+  }
+  try {
+    ResumeFrom from{session_id, session_token, next_seq};
+    return run_session(s, target, "sluice_session_resume", &from);
+  } catch (const std::bad_alloc&) {
+    s->set_error(0, "sluice: out of memory");
+    return SLUICE_ERR_USAGE;
   }
 }
 

@@ -179,6 +179,9 @@ struct Registered {
   // to the server at all: a follower of a server with --token-file sends
   // both.
   std::string resume_token;
+  // True when this answers resume(): the session continues from its latest
+  // checkpoint.
+  bool resumed = false;
   std::uint64_t seed = 0;
   double step = 0;
   std::int64_t evaluations_per_step = 0, max_message_bytes = 0, planned_steps = 0;
@@ -288,6 +291,29 @@ bool is_loopback(const std::string& target);
 // run runs one session on channel and returns its summary, or throws Error.
 Summary run(const std::shared_ptr<grpc::Channel>& channel, const Spec& spec, const Evaluator& evaluate,
             const Callbacks& callbacks = {});
+
+// resume continues session session_id after its stream broke or its
+// server restarted (the Session rpc with a Resume frame in place of
+// Register), on a server that keeps checkpoints (sluice serve --state-dir
+// or --state-postgres). session_token is Registered::resume_token of the
+// session (not the server's bearer token, which goes on the channel as for
+// run()); next_seq is the first draw the caller does not have
+// (Summary::next_seq of what it received, or the last Draws::seq + rows
+// seen by on_draws; 0 for none). The server answers Registered again (same
+// id and token, resumed true) to on_registered, sends the draws from
+// next_seq on to on_draws, exactly once and in order, and asks evaluate
+// for points as run() does: it must be the session's own target, and may
+// be asked for points it evaluated before (the draws are bit-identical to
+// those of a session that never stopped). A finished session answers with
+// its kept draws from next_seq and its summary again. Errors as for run(),
+// and: Code::Server with grpc_code 5 (NOT_FOUND, field "session_id") for an
+// unknown id or a wrong token, 11 (OUT_OF_RANGE) when the draws from
+// next_seq are no longer kept; Code::Unavailable from a server that keeps
+// no state. The channel's message limit is the one the session was
+// registered with (connect(..., spec.max_message_bytes)).
+Summary resume(const std::shared_ptr<grpc::Channel>& channel, const std::string& session_id,
+               const std::string& session_token, std::uint64_t next_seq, const Evaluator& evaluate,
+               const Callbacks& callbacks = {});
 
 // The receive limit a follower's channel should have: a Follow frame can be
 // as large as the server's own limit (sluice serve --max-message-bytes,
