@@ -379,8 +379,9 @@ const char *sluice_session_id(const sluice_session *s);
 /* The session's own token the server gave with its id (32 hex digits; ""
  * before Registered): what sluice_session_follow needs to follow this
  * session, and sluice_session_resume to continue it. Anyone holding the
- * id and this token can read the session's draws: keep it as private as a password, and hand it only to the
- * followers meant to read them. It is not the server's bearer token. */
+ * id and this token can read the session's draws: keep it as private as
+ * a password, and hand it only to the followers meant to read them. It is
+ * not the server's bearer token. */
 const char *sluice_session_token(const sluice_session *s);
 
 /* Frees the handle and everything it owns; NULL is allowed. */
