@@ -14,7 +14,10 @@
 !     the mean of the draws it received equals the server's summary mean;
 !   * each posterior mean lies within 5 Monte Carlo standard errors of the
 !     closed-form mean (MCSE = sd / sqrt(bulk-ESS), the server's final
-!     bulk-ESS; 5 standard errors is a two-sided normal tail of ~6e-7).
+!     bulk-ESS; 5 standard errors is a two-sided normal tail of ~6e-7);
+!   * a second handle following the finished session (sluice_session_follow
+!     with the session's own token, sluice_session_token) receives the same
+!     draws in order, their sums equal bit for bit.
 ! It prints "check passed" and exits 0, or "check FAILED" and stops with
 ! code 1.
 !
@@ -164,7 +167,7 @@ program linear_gaussian
 
   integer(c_int32_t), parameter :: chains = 8
   integer(c_int64_t), parameter :: draws = 1000
-  type(model_t), target :: model
+  type(model_t), target :: model, follower
   type(sluice_spec) :: spec
   type(sluice_summary) :: summary
   real(c_double), target :: start(n_par) = 0d0
@@ -172,8 +175,9 @@ program linear_gaussian
   character(kind=c_char, len=64), target :: names
   character(len=256) :: target, token_file, ca_file
   character(len=:), allocatable :: layout_message
-  type(c_ptr) :: s
+  type(c_ptr) :: s, f
   integer(c_int) :: rc
+  character(len=:), allocatable :: session_id, session_token
   real(c_double), pointer :: mean(:), sd(:), ess(:)
   real(c_double) :: exact(n_par), z, mcse, own_mean
   logical :: ok
@@ -255,6 +259,27 @@ program linear_gaussian
       if (.not. (ess(j) > 0d0 .and. abs(z) <= 5d0)) ok = .false.
     end do
   end if
+
+  ! Follow the finished session from a second handle: the server's bearer
+  ! token as for the session, and the session's own token. (A follower's
+  ! spec and evaluation callback are not used.)
+  session_id = sluice_string(sluice_session_id(s))
+  session_token = sluice_string(sluice_session_token(s))
+  f = sluice_session_new(spec, c_null_funptr, c_null_ptr)
+  if (.not. c_associated(f)) error stop "linear_gaussian: sluice_session_new failed"
+  call sluice_session_on_draws(f, c_funloc(on_draws), c_loc(follower))
+  if (len_trim(token_file) > 0) rc = sluice_session_set_token_file(f, trim(token_file) // c_null_char)
+  if (len_trim(ca_file) > 0) rc = sluice_session_set_tls(f, trim(ca_file) // c_null_char, c_null_char, c_null_char)
+  rc = sluice_session_follow(f, trim(target) // c_null_char, session_id // c_null_char, &
+                             session_token // c_null_char, 0_c_int64_t)
+  write (*, '(a, a, a, i0, a)') "follow: ", sluice_string(sluice_error_name(rc)), ", ", follower%draws_seen, " draws"
+  if (rc /= SLUICE_OK .or. len(session_token) /= 32 .or. follower%draws_seen /= model%draws_seen .or. &
+      .not. follower%seq_ok .or. any(follower%draw_sum /= model%draw_sum)) then
+    write (*, '(a, a)') "check: the follower did not receive the session's draws: ", &
+      sluice_string(sluice_session_error_message(f))
+    ok = .false.
+  end if
+  call sluice_session_free(f)
   call sluice_session_free(s)
   if (ok) then
     write (*, '(a)') "check passed"

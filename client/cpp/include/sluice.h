@@ -13,7 +13,7 @@
  *   spec.start = start; spec.start_rows = 1;
  *   sluice_session *s = sluice_session_new(&spec, evaluate, &my_model);
  *   sluice_session_set_tls(s, "ca.pem", NULL, NULL);      (servers with TLS)
- *   sluice_session_set_token_file(s, "token.txt");       (servers with tokens)
+ *   sluice_session_set_token_file(s, "token.txt");       (servers with a bearer token)
  *   int rc = sluice_session_run(s, "sluice:7070");
  *   if (rc != SLUICE_OK)
  *     fprintf(stderr, "%s: %s (field %s)\n", sluice_error_name(rc),
@@ -286,7 +286,9 @@ void sluice_session_on_progress(sluice_session *s, sluice_progress_fn fn, void *
 int sluice_session_set_tls(sluice_session *s, const char *ca_file, const char *cert_file, const char *key_file);
 
 /* Sends "authorization: Bearer <token>" with every call (what a server
- * started with --token-file wants). NULL or "" removes it. */
+ * started with --token-file wants). NULL or "" removes it. This bearer
+ * token admits a client to the server; it is not a session's own token
+ * (sluice_session_token), which sluice_session_follow takes. */
 int sluice_session_set_token(sluice_session *s, const char *token);
 
 /* The same with the token read from a file: its first line that is
@@ -310,19 +312,52 @@ int sluice_session_run(sluice_session *s, const char *target);
 /* Follows another client's session: streams the draws of session_id
  * (sluice_session_id of that session) from sequence number from_seq on to
  * the draws callback of s, in order and exactly once, until the session's
- * final frame, with s's TLS and token settings. Make s with
- * sluice_session_new(NULL, NULL, NULL): its spec and evaluation callback
- * are not used. Returns SLUICE_OK (the summary then holds the session's
- * figures, draws_received this follower's rows) or an error code:
- * SLUICE_ERR_SERVER with gRPC code 5 (NOT_FOUND) for an unknown session,
- * 11 (OUT_OF_RANGE) when the rows asked for have left the server's
- * buffer. After an error, sluice_session_next_seq says where a new handle
- * resumes without loss or duplicate. A handle follows (or runs) once. The
+ * final frame, with s's TLS and bearer-token settings. session_token is
+ * the followed session's own secret (sluice_session_token of that
+ * session), required; it is not the server's bearer token
+ * (sluice_session_set_token), which a server started with --token-file
+ * wants as well. Make s with sluice_session_new(NULL, NULL, NULL): its
+ * spec and evaluation callback are not used. Returns SLUICE_OK (the
+ * summary then holds the session's figures, draws_received this
+ * follower's rows) or an error code: SLUICE_ERR_USAGE, nothing sent, for
+ * a NULL or empty target, session_id or session_token; SLUICE_ERR_SERVER
+ * with gRPC code 5 (NOT_FOUND) and field "session_id" for an unknown
+ * session or a wrong session token (the same answer, so that a caller
+ * without the token learns nothing about which sessions exist), 11
+ * (OUT_OF_RANGE) when the rows asked for have left the server's buffer.
+ * After an error, sluice_session_next_seq says where a new handle resumes
+ * without loss or duplicate. A handle follows (or runs) once. The
  * handle's message limit is 64 MiB, as large as a Follow frame can be. */
-int sluice_session_follow(sluice_session *s, const char *target, const char *session_id, uint64_t from_seq);
+int sluice_session_follow(sluice_session *s, const char *target, const char *session_id, const char *session_token,
+                          uint64_t from_seq);
 
-/* After sluice_session_follow: the sequence number after the last draw
- * received (from_seq when none arrived). */
+/* Continues session session_id after its stream broke or its server
+ * restarted, on a server that keeps checkpoints (sluice serve --state-dir
+ * or --state-postgres): a Resume frame in place of Register. s is a new
+ * handle made like the one that ran the session, with the same evaluation
+ * callback (the server may ask again for points it asked before) and the
+ * same max_message_bytes (the rest of its spec is not sent), its draws and
+ * progress callbacks, TLS and bearer token. session_id and session_token
+ * are sluice_session_id and sluice_session_token of the handle that ran
+ * (the session token, not the server's bearer token); next_seq the first
+ * draw not yet received, sluice_session_next_seq of that handle. Draws
+ * arrive from next_seq on, in order and exactly once, bit-identical to
+ * those of a session that never stopped; a finished session sends its kept
+ * draws from next_seq and its summary again. Returns as
+ * sluice_session_run, and SLUICE_ERR_SERVER with gRPC code 5 (NOT_FOUND,
+ * field "session_id") for an unknown session or a wrong session token,
+ * 11 (OUT_OF_RANGE) when the draws from next_seq are no longer kept;
+ * SLUICE_ERR_UNAVAILABLE from a server that keeps no state. SLUICE_ERR_USAGE,
+ * nothing sent, for a NULL or empty session_id or session_token. The
+ * handle then answers sluice_session_id, _token and _next_seq for a
+ * further resume. */
+int sluice_session_resume(sluice_session *s, const char *target, const char *session_id, const char *session_token,
+                          uint64_t next_seq);
+
+/* After sluice_session_run, _resume or _follow: the sequence number after
+ * the last draw received (0, next_seq or from_seq when none arrived):
+ * where sluice_session_resume or a new follow continues without loss or
+ * duplicate. */
 uint64_t sluice_session_next_seq(const sluice_session *s);
 
 /* Fills *out with the summary; returns SLUICE_OK, or SLUICE_ERR_STATE when
@@ -340,6 +375,14 @@ int sluice_session_grpc_code(const sluice_session *s);
 
 /* The session id the server gave ("" before Registered). */
 const char *sluice_session_id(const sluice_session *s);
+
+/* The session's own token the server gave with its id (32 hex digits; ""
+ * before Registered): what sluice_session_follow needs to follow this
+ * session, and sluice_session_resume to continue it. Anyone holding the
+ * id and this token can read the session's draws: keep it as private as
+ * a password, and hand it only to the followers meant to read them. It is
+ * not the server's bearer token. */
+const char *sluice_session_token(const sluice_session *s);
 
 /* Frees the handle and everything it owns; NULL is allowed. */
 void sluice_session_free(sluice_session *s);

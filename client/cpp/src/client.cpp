@@ -266,11 +266,13 @@ class Runner {
   Runner(const Spec& spec, const Evaluator& eval, const Callbacks& cb) : spec_(spec), eval_(eval), cb_(cb) {}
 
   // follow reads a Follow stream: draws and the final frame.
-  Summary follow(pb::SluiceService::Stub& stub, const std::string& session_id, std::uint64_t from_seq) {
+  Summary follow(pb::SluiceService::Stub& stub, const std::string& session_id, const std::string& token,
+                 std::uint64_t from_seq) {
     next_seq_ = from_seq;
     sum_.next_seq = from_seq;
     pb::FollowRequest req;
     req.set_session_id(session_id);
+    req.set_token(token);
     req.set_from_seq(from_seq);
     auto reader = stub.Follow(&ctx_, req);
     std::string protocol_error;
@@ -308,10 +310,18 @@ class Runner {
     return sum_;
   }
 
-  Summary run(pb::SluiceService::Stub& stub, std::int64_t limit) {
+  // run runs a session: with resume null it registers spec_, otherwise its
+  // first frame is *resume and draws are expected from resume->next_seq().
+  Summary run(pb::SluiceService::Stub& stub, std::int64_t limit, const pb::Resume* resume = nullptr) {
     stream_ = stub.Session(&ctx_);
     pb::SessionRequest reg;
-    register_frame(spec_, limit, reg.mutable_register_());
+    if (resume != nullptr) {
+      *reg.mutable_resume() = *resume;
+      next_seq_ = resume->next_seq();
+      sum_.next_seq = next_seq_;
+    } else {
+      register_frame(spec_, limit, reg.mutable_register_());
+    }
     if (!stream_->Write(reg)) send_closed_ = true;  // the status says why
     std::string protocol_error;
     pb::SessionResponse frame;
@@ -356,6 +366,8 @@ class Runner {
   void registered(const pb::Registered& g) {
     Registered& r = sum_.registered;
     r.session_id = g.session_id();
+    r.resume_token = g.resume_token();
+    r.resumed = g.resumed();
     r.kernel = g.kernel();
     r.seed = g.seed();
     r.step = g.step();
@@ -692,17 +704,44 @@ Summary run(const std::shared_ptr<grpc::Channel>& channel, const Spec& spec, con
   return r.run(*stub, limit);
 }
 
-Summary follow(const std::shared_ptr<grpc::Channel>& channel, const std::string& session_id, std::uint64_t from_seq,
+Summary resume(const std::shared_ptr<grpc::Channel>& channel, const std::string& session_id,
+               const std::string& session_token, std::uint64_t next_seq, const Evaluator& evaluate,
+               const Callbacks& callbacks) {
+  if (!channel) throw Error(Code::Usage, 0, "sluice: resume: null channel");
+  if (!evaluate) throw Error(Code::Usage, 0, "sluice: resume: no evaluator");
+  if (session_id.empty()) throw Error(Code::Usage, 0, "sluice: resume: no session id");
+  if (session_token.empty()) {
+    throw Error(Code::Usage, 0,
+                "sluice: resume: no session token (the resume_token of the session's Registered, "
+                "not the server's bearer token)");
+  }
+  static const Spec no_spec;
+  pb::Resume frame;
+  frame.set_session_id(session_id);
+  frame.set_token(session_token);
+  frame.set_next_seq(next_seq);
+  auto stub = pb::SluiceService::NewStub(channel);
+  Runner r(no_spec, evaluate, callbacks);
+  return r.run(*stub, 0, &frame);
+}
+
+Summary follow(const std::shared_ptr<grpc::Channel>& channel, const std::string& session_id,
+               const std::string& session_token, std::uint64_t from_seq,
                const std::function<void(const Draws&)>& on_draws) {
   if (!channel) throw Error(Code::Usage, 0, "sluice: follow: null channel");
   if (session_id.empty()) throw Error(Code::Usage, 0, "sluice: follow: no session id");
+  if (session_token.empty()) {
+    throw Error(Code::Usage, 0,
+                "sluice: follow: no session token (the resume_token of the session's Registered, "
+                "not the server's bearer token)");
+  }
   static const Spec no_spec;
   static const Evaluator no_evaluator;
   Callbacks cb;
   cb.on_draws = on_draws;
   auto stub = pb::SluiceService::NewStub(channel);
   Runner r(no_spec, no_evaluator, cb);
-  return r.follow(*stub, session_id, from_seq);
+  return r.follow(*stub, session_id, session_token, from_seq);
 }
 
 }  // namespace sluice

@@ -93,7 +93,7 @@ struct sluice_session {
   std::uint64_t next_seq = 0;
 
   std::optional<sluice::Summary> summary;
-  std::string session_id;
+  std::string session_id, session_token;
   std::string error_message, error_field, error_description;
   int grpc_code = 0;
 
@@ -264,36 +264,52 @@ int sluice_session_set_insecure(sluice_session* s, int insecure) {
   return SLUICE_OK;
 }
 
-int sluice_session_run(sluice_session* s, const char* target) {
+}  // extern "C"
+
+namespace {
+
+// ResumeFrom names the session sluice_session_resume continues.
+struct ResumeFrom {
+  std::string session_id, session_token;
+  std::uint64_t next_seq = 0;
+};
+
+// run_session is sluice_session_run (resume null, messages name fn) and
+// sluice_session_resume.
+int run_session(sluice_session* s, const char* target, const char* fn, const ResumeFrom* resume) {
   if (s == nullptr) return SLUICE_ERR_USAGE;
   try {
     if (s->ran) {
-      s->set_error(0, "sluice_session_run: this session has already run");
+      s->set_error(0, std::string(fn) + ": this session has already run");
       return SLUICE_ERR_STATE;
     }
     s->set_error(0, "");
-    if (!s->usage_error.empty()) {
+    if (resume == nullptr && !s->usage_error.empty()) {
       s->set_error(0, s->usage_error);
       return SLUICE_ERR_USAGE;
     }
     if (target == nullptr || *target == '\0') {
-      s->set_error(0, "sluice_session_run: no target (want \"host:port\")");
+      s->set_error(0, std::string(fn) + ": no target (want \"host:port\")");
       return SLUICE_ERR_USAGE;
     }
     if (s->evaluate == nullptr) {
-      s->set_error(0, "sluice_session_run: no evaluation callback");
+      s->set_error(0, std::string(fn) + ": no evaluation callback");
       return SLUICE_ERR_USAGE;
     }
     s->ran = true;
+    s->next_seq = resume != nullptr ? resume->next_seq : 0;
 
     sluice::Callbacks cb;
-    cb.on_registered = [s](const sluice::Registered& r) { s->session_id = r.session_id; };
-    if (s->on_draws != nullptr) {
-      cb.on_draws = [s](const sluice::Draws& d) {
-        sluice_draws cd{d.seq, d.rows, d.dim, d.values, d.chains, d.iterations};
-        s->on_draws(&cd, s->draws_data);
-      };
-    }
+    cb.on_registered = [s](const sluice::Registered& r) {
+      s->session_id = r.session_id;
+      s->session_token = r.resume_token;
+    };
+    cb.on_draws = [s](const sluice::Draws& d) {
+      s->next_seq = d.seq + static_cast<std::uint64_t>(d.rows);
+      if (s->on_draws == nullptr) return;
+      sluice_draws cd{d.seq, d.rows, d.dim, d.values, d.chains, d.iterations};
+      s->on_draws(&cd, s->draws_data);
+    };
     if (s->on_progress != nullptr) {
       cb.on_progress = [s](const sluice::Progress& p) {
         sluice_progress cp;
@@ -325,7 +341,11 @@ int sluice_session_run(sluice_session* s, const char* target) {
 
     try {
       auto channel = sluice::connect(target, s->security, s->spec.max_message_bytes);
-      s->summary = sluice::run(channel, s->spec, evaluate, cb);
+      if (resume != nullptr) {
+        s->summary = sluice::resume(channel, resume->session_id, resume->session_token, resume->next_seq, evaluate, cb);
+      } else {
+        s->summary = sluice::run(channel, s->spec, evaluate, cb);
+      }
       return SLUICE_OK;
     } catch (const sluice::Error& e) {
       if (e.summary) s->summary = e.summary;
@@ -344,7 +364,42 @@ int sluice_session_run(sluice_session* s, const char* target) {
   }
 }
 
-int sluice_session_follow(sluice_session* s, const char* target, const char* session_id, uint64_t from_seq) {
+}  // namespace
+
+extern "C" {
+
+int sluice_session_run(sluice_session* s, const char* target) {
+  return run_session(s, target, "sluice_session_run", nullptr);
+}
+
+int sluice_session_resume(sluice_session* s, const char* target, const char* session_id, const char* session_token,
+                          uint64_t next_seq) {
+  if (s == nullptr) return SLUICE_ERR_USAGE;
+  if (s->ran) {
+    s->set_error(0, "sluice_session_resume: this session has already run");
+    return SLUICE_ERR_STATE;
+  }
+  if (session_id == nullptr || *session_id == '\0') {
+    s->set_error(0, "sluice_session_resume: no session id");
+    return SLUICE_ERR_USAGE;
+  }
+  if (session_token == nullptr || *session_token == '\0') {
+    s->set_error(0,
+                 "sluice_session_resume: no session token (sluice_session_token of the session resumed, "
+                 "not the server's bearer token)");
+    return SLUICE_ERR_USAGE;
+  }
+  try {
+    ResumeFrom from{session_id, session_token, next_seq};
+    return run_session(s, target, "sluice_session_resume", &from);
+  } catch (const std::bad_alloc&) {
+    s->set_error(0, "sluice: out of memory");
+    return SLUICE_ERR_USAGE;
+  }
+}
+
+int sluice_session_follow(sluice_session* s, const char* target, const char* session_id, const char* session_token,
+                          uint64_t from_seq) {
   if (s == nullptr) return SLUICE_ERR_USAGE;
   try {
     if (s->ran) {
@@ -360,6 +415,12 @@ int sluice_session_follow(sluice_session* s, const char* target, const char* ses
       s->set_error(0, "sluice_session_follow: no session id");
       return SLUICE_ERR_USAGE;
     }
+    if (session_token == nullptr || *session_token == '\0') {
+      s->set_error(0,
+                   "sluice_session_follow: no session token (sluice_session_token of the session followed, "
+                   "not the server's bearer token)");
+      return SLUICE_ERR_USAGE;
+    }
     s->ran = true;
     s->next_seq = from_seq;
     std::function<void(const sluice::Draws&)> on_draws = [s](const sluice::Draws& d) {
@@ -370,7 +431,7 @@ int sluice_session_follow(sluice_session* s, const char* target, const char* ses
     };
     try {
       auto channel = sluice::connect(target, s->security, sluice::kFollowMaxMessageBytes);
-      s->summary = sluice::follow(channel, session_id, from_seq, on_draws);
+      s->summary = sluice::follow(channel, session_id, session_token, from_seq, on_draws);
       return SLUICE_OK;
     } catch (const sluice::Error& e) {
       if (e.summary && e.summary->reason != sluice::Reason::None) s->summary = e.summary;
@@ -432,6 +493,8 @@ const char* sluice_session_error_description(const sluice_session* s) {
 int sluice_session_grpc_code(const sluice_session* s) { return s == nullptr ? 0 : s->grpc_code; }
 
 const char* sluice_session_id(const sluice_session* s) { return s == nullptr ? "" : s->session_id.c_str(); }
+
+const char* sluice_session_token(const sluice_session* s) { return s == nullptr ? "" : s->session_token.c_str(); }
 
 void sluice_session_free(sluice_session* s) { delete s; }
 

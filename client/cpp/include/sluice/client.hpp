@@ -172,6 +172,16 @@ struct Progress {
 
 struct Registered {
   std::string session_id, kernel;
+  // The session's own secret (Registered.resume_token on the wire: 32 hex
+  // digits, issued once). follow() of this session, from any client, needs
+  // it, and so does resuming it; keep it as private as a password. It is
+  // not the server's bearer token (Security::token), which admits a client
+  // to the server at all: a follower of a server with --token-file sends
+  // both.
+  std::string resume_token;
+  // True when this answers resume(): the session continues from its latest
+  // checkpoint.
+  bool resumed = false;
   std::uint64_t seed = 0;
   double step = 0;
   std::int64_t evaluations_per_step = 0, max_message_bytes = 0, planned_steps = 0;
@@ -282,6 +292,29 @@ bool is_loopback(const std::string& target);
 Summary run(const std::shared_ptr<grpc::Channel>& channel, const Spec& spec, const Evaluator& evaluate,
             const Callbacks& callbacks = {});
 
+// resume continues session session_id after its stream broke or its
+// server restarted (the Session rpc with a Resume frame in place of
+// Register), on a server that keeps checkpoints (sluice serve --state-dir
+// or --state-postgres). session_token is Registered::resume_token of the
+// session (not the server's bearer token, which goes on the channel as for
+// run()); next_seq is the first draw the caller does not have
+// (Summary::next_seq of what it received, or the last Draws::seq + rows
+// seen by on_draws; 0 for none). The server answers Registered again (same
+// id and token, resumed true) to on_registered, sends the draws from
+// next_seq on to on_draws, exactly once and in order, and asks evaluate
+// for points as run() does: it must be the session's own target, and may
+// be asked for points it evaluated before (the draws are bit-identical to
+// those of a session that never stopped). A finished session answers with
+// its kept draws from next_seq and its summary again. Errors as for run(),
+// and: Code::Server with grpc_code 5 (NOT_FOUND, field "session_id") for an
+// unknown id or a wrong token, 11 (OUT_OF_RANGE) when the draws from
+// next_seq are no longer kept; Code::Unavailable from a server that keeps
+// no state. The channel's message limit is the one the session was
+// registered with (connect(..., spec.max_message_bytes)).
+Summary resume(const std::shared_ptr<grpc::Channel>& channel, const std::string& session_id,
+               const std::string& session_token, std::uint64_t next_seq, const Evaluator& evaluate,
+               const Callbacks& callbacks = {});
+
 // The receive limit a follower's channel should have: a Follow frame can be
 // as large as the server's own limit (sluice serve --max-message-bytes,
 // 16 MiB by default). connect(target, security, kFollowMaxMessageBytes).
@@ -292,12 +325,19 @@ constexpr std::int64_t kFollowMaxMessageBytes = 64 << 20;
 // client (the Follow rpc): each block goes to on_draws in sequence order,
 // exactly once, and follow returns the session's summary once its final
 // frame arrives (its registered part empty, draws_received counting this
-// follower's rows). A token set on the channel (Security) is sent as for
-// run(). On an error (NOT_FOUND for an unknown session, OUT_OF_RANGE when
-// the rows asked for have left the server's bounded buffer, a broken
-// connection) it throws Error whose summary holds what was received: resume
-// with follow(channel, session_id, e.summary->next_seq, on_draws).
-Summary follow(const std::shared_ptr<grpc::Channel>& channel, const std::string& session_id, std::uint64_t from_seq,
+// follower's rows). session_token is that session's own secret
+// (Registered::resume_token), required: an empty one is Code::Usage with
+// nothing sent, and a wrong one gets the same answer as an unknown
+// session_id (Code::Server, grpc_code 5 NOT_FOUND, field "session_id"), so
+// that a caller without it learns nothing about which sessions exist. The
+// server's bearer token, when the server wants one, is a different thing:
+// it is set on the channel (Security) and sent as for run(). On an error
+// (NOT_FOUND, OUT_OF_RANGE when the rows asked for have left the server's
+// bounded buffer, a broken connection) follow throws Error whose summary
+// holds what was received: resume with
+// follow(channel, session_id, session_token, e.summary->next_seq, on_draws).
+Summary follow(const std::shared_ptr<grpc::Channel>& channel, const std::string& session_id,
+               const std::string& session_token, std::uint64_t from_seq,
                const std::function<void(const Draws&)>& on_draws);
 
 }  // namespace sluice
