@@ -10,10 +10,16 @@ import (
 	"sluice/server/session"
 )
 
+// MaxSessionIDBytes caps the session id a Follow request may name.
+const MaxSessionIDBytes = 128
+
 // Follow implements the Follow rpc: it streams a session's draws from its
 // draw log, in sequence order from the requested number, then the
 // session's Finished frame.
 func (s *Server) Follow(req *sluicev1.FollowRequest, stream grpc.ServerStreamingServer[sluicev1.FollowResponse]) error {
+	if n := len(req.GetSessionId()); n > MaxSessionIDBytes {
+		return problem(badInput, "session_id", "is %d bytes long, the limit is %d", n, MaxSessionIDBytes)
+	}
 	s.mu.Lock()
 	f, ok := s.logs[req.GetSessionId()]
 	s.mu.Unlock()

@@ -4,9 +4,7 @@ import (
 	"context"
 	"crypto/rand"
 	"encoding/hex"
-	"errors"
 	"fmt"
-	"io"
 	"math"
 	"math/bits"
 	"net"
@@ -34,8 +32,8 @@ type Options struct {
 	// Limits apply to every session (see session.Limits for defaults).
 	// Limits.MaxMessageBytes is also the gRPC receive and send limit.
 	Limits session.Limits
-	// MaxSessions caps concurrent sessions; more are refused with
-	// RESOURCE_EXHAUSTED. 0 means 64.
+	// MaxSessions caps concurrent registered sessions; more are refused
+	// with RESOURCE_EXHAUSTED. 0 means DefaultMaxSessions.
 	MaxSessions int
 	// Logger receives the server's log; nil means no logging.
 	Logger *zap.Logger
@@ -44,8 +42,34 @@ type Options struct {
 	// FollowRetention is how long a finished session's draws stay
 	// available to followers (default 10 minutes; negative: not kept
 	// after the session ends). Set Limits.FollowBuffer to serve followers.
+	// A finished session's ring stays reserved in the memory budget until
+	// then, and is released on time.
 	FollowRetention time.Duration
+	// MaxMemoryBytes is the memory budget of all sessions together: each
+	// reserves its worst case (session.Budget) at registration, and one
+	// that does not fit what is left is refused with RESOURCE_EXHAUSTED.
+	// 0 means DefaultMaxMemory().
+	MaxMemoryBytes int64
+	// RegisterTimeout is how long a new stream may take to send its
+	// Register frame (0: DefaultRegisterTimeout).
+	RegisterTimeout time.Duration
+	// MaxRegistering caps the streams waiting for their Register frame;
+	// they hold no session slot (0: DefaultMaxRegistering).
+	MaxRegistering int
 }
+
+// Defaults of Options.
+const (
+	// DefaultMaxSessions: the memory budget, not this count, is what
+	// protects the server; the count bounds goroutines and scheduling.
+	DefaultMaxSessions = 256
+	// DefaultRegisterTimeout: a client registers in its first frame,
+	// right after opening the stream.
+	DefaultRegisterTimeout = 10 * time.Second
+	// DefaultMaxRegistering: streams waiting to register cost a goroutine
+	// and a few KiB each.
+	DefaultMaxRegistering = 1024
+)
 
 // Server serves the sluice API, health and reflection on one gRPC server.
 type Server struct {
@@ -58,6 +82,12 @@ type Server struct {
 	slots  chan struct{}
 	nextID atomic.Uint64
 	prefix string
+	// registering holds a token per stream waiting for its Register
+	// frame; quit is closed when Shutdown begins.
+	registering chan struct{}
+	quit        chan struct{}
+	quitOnce    sync.Once
+	mem         memoryPool
 
 	mu       sync.Mutex
 	draining bool
@@ -67,10 +97,12 @@ type Server struct {
 
 // followed is a session's draw log as followers see it.
 type followed struct {
-	log      *session.DrawLog
-	dim      int
-	limit    int64     // the server's message limit, for batching rows
-	finished time.Time // zero while the session runs
+	log   *session.DrawLog
+	dim   int
+	limit int64 // the server's message limit, for batching rows
+	// reserved is the memory budget the retained ring holds once the
+	// session has finished.
+	reserved int64
 }
 
 // inboxSize is the capacity of a session's queue of received messages.
@@ -83,8 +115,20 @@ const ServiceName = "sluice.v1.SluiceService"
 // services registered.
 func New(o Options) *Server {
 	if o.MaxSessions <= 0 {
-		o.MaxSessions = 64
+		o.MaxSessions = DefaultMaxSessions
 	}
+	if o.MaxMemoryBytes <= 0 {
+		o.MaxMemoryBytes = DefaultMaxMemory()
+	}
+	if o.RegisterTimeout <= 0 {
+		o.RegisterTimeout = DefaultRegisterTimeout
+	}
+	if o.MaxRegistering <= 0 {
+		o.MaxRegistering = DefaultMaxRegistering
+	}
+	// Streams hold up to inboxSize received answers, one in hand, and a
+	// ring of decoded ones: the budget counts them.
+	o.Limits.InflightAnswers = inboxSize + 2
 	if o.Limits.MaxMessageBytes <= 0 {
 		o.Limits.MaxMessageBytes = 4 << 20
 	}
@@ -98,7 +142,8 @@ func New(o Options) *Server {
 	_, _ = rand.Read(b[:])
 	s := &Server{opts: o, log: o.Logger, slots: make(chan struct{}, o.MaxSessions),
 		prefix: hex.EncodeToString(b[:]), active: map[string]chan<- session.Message{},
-		logs: map[string]*followed{}}
+		logs: map[string]*followed{}, registering: make(chan struct{}, o.MaxRegistering), quit: make(chan struct{}),
+		mem: memoryPool{total: o.MaxMemoryBytes}}
 	// The engine sizes its frames within Limits.MaxMessageBytes, and the
 	// reader refuses larger client frames with a status naming the frame.
 	// The transport's own cap sits at four times that, as a backstop
@@ -197,6 +242,7 @@ func (s *Server) GRPCServer() *grpc.Server { return s.grpc }
 // are closed hard.
 func (s *Server) Shutdown(ctx context.Context) {
 	s.health.Shutdown()
+	s.quitOnce.Do(func() { close(s.quit) }) // streams not yet registered end now
 	s.mu.Lock()
 	s.draining = true
 	for _, in := range s.active {
@@ -224,18 +270,15 @@ func (s *Server) Stop() { s.grpc.Stop() }
 // owned by this handler, feeds the engine and exits when the stream ends
 // or the handler returns.
 func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
+	first, err := s.awaitRegister(stream)
+	if err != nil {
+		return err
+	}
 	select {
 	case s.slots <- struct{}{}:
 		defer func() { <-s.slots }()
 	default:
 		return problem(busy, "", "server busy: %d sessions running", cap(s.slots))
-	}
-	first, err := stream.Recv()
-	if errors.Is(err, io.EOF) {
-		return problem(badInput, "register", "stream closed before the first frame")
-	}
-	if err != nil {
-		return toStatus(recvError("register", err))
 	}
 	reg := first.GetRegister()
 	if reg == nil {
@@ -245,6 +288,16 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 	if err != nil {
 		return toStatus(err)
 	}
+	budget, err := session.Need(spec, s.opts.Limits)
+	if err != nil {
+		s.log.Debug("registration refused", zap.Error(err))
+		return toStatus(err)
+	}
+	if !s.mem.reserve(budget.Total) {
+		return s.memoryRefusal(budget)
+	}
+	reserved := budget.Total // what is left to release when the handler returns
+	defer func() { s.mem.release(reserved) }()
 	id := fmt.Sprintf("%s-%d", s.prefix, s.nextID.Add(1))
 	sess, err := session.New(id, spec, s.opts.Limits)
 	if err != nil {
@@ -259,7 +312,8 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 	if !s.track(id, in, sess) {
 		return problem(draining, "", "server shutting down")
 	}
-	defer s.untrack(id)
+	defer s.untrack(id, &reserved)
+	maxGrad, sp0 := sess.MaxGradientValues(), sess.Spec()
 	go func() { // reader: owned by this handler
 		// Gradients are decoded into a ring of reused buffers. The engine
 		// takes messages in order and has finished with message j (copied
@@ -276,6 +330,12 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 			case int64(proto.Size(f)) > limit:
 				m = session.Message{Err: &session.Error{Kind: session.TooLarge, Field: "evaluations", Chain: -1, Coord: -1,
 					Reason: fmt.Sprintf("message of %d bytes exceeds the session's limit of %d bytes", proto.Size(f), limit)}}
+			case len(f.GetEvaluations().GetGradients()) > 8*maxGrad:
+				// Decoded, it would grow the reader's buffers beyond what
+				// registration reserved.
+				m = session.Message{Err: session.BadField("evaluations.gradients",
+					"carries %d values, more than any answer part of this session holds (%d: rows × replicates declared at registration (%d) × dim)",
+					len(f.GetEvaluations().GetGradients())/8, maxGrad, sp0.Noise.Replicates)}
 			default:
 				m = messageFromWire(f, &ring[n%len(ring)])
 			}
@@ -296,6 +356,9 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 		zap.String("kernel", sp.Kernel), zap.Float64("step", sp.Step), zap.Uint64("seed", sp.Seed))
 	enc := encoder{maxParams: paramCap(limit)}
 	res, err := sess.Run(ctx, in, func(f session.Frame) error { return stream.Send(enc.frame(f)) })
+	if e, ok := session.AsError(err); ok && e.Kind == session.Timeout {
+		err = s.onSilent(id, sess, res, err)
+	}
 	f := res.Finished
 	fields := []zap.Field{zap.String("reason", f.Reason.String()), zap.Int64("evaluations", f.Progress.EvaluationsUsed),
 		zap.Int64("draws", f.Progress.DrawsSent), zap.Duration("elapsed", f.Progress.Elapsed)}
@@ -321,28 +384,41 @@ func (s *Server) track(id string, in chan<- session.Message, sess *session.Sessi
 		return false
 	}
 	s.active[id] = in
-	now := time.Now()
-	for k, f := range s.logs { // forget logs past their retention
-		if !f.finished.IsZero() && now.Sub(f.finished) > s.opts.FollowRetention {
-			delete(s.logs, k)
-		}
-	}
 	if l := sess.DrawLog(); l != nil {
 		s.logs[id] = &followed{log: l, dim: sess.Spec().Dim, limit: s.opts.Limits.MaxMessageBytes}
 	}
 	return true
 }
 
-func (s *Server) untrack(id string) {
+// untrack forgets a finished session. Its draw log stays followable for
+// the retention, holding its ring's memory (moved from *reserved, the
+// session's reservation, to the log); it is dropped, and the memory
+// released, when the retention passes.
+func (s *Server) untrack(id string, reserved *int64) {
 	s.mu.Lock()
 	defer s.mu.Unlock()
 	delete(s.active, id)
-	if f, ok := s.logs[id]; ok {
-		if s.opts.FollowRetention < 0 {
-			delete(s.logs, id)
-		} else {
-			f.finished = time.Now()
-		}
+	f, ok := s.logs[id]
+	if !ok {
+		return
+	}
+	if s.opts.FollowRetention < 0 {
+		delete(s.logs, id)
+		return
+	}
+	f.reserved = min(f.log.Bytes(), *reserved)
+	*reserved -= f.reserved
+	time.AfterFunc(s.opts.FollowRetention, func() { s.forget(id) })
+}
+
+// forget drops a finished session's draw log and releases its memory.
+func (s *Server) forget(id string) {
+	s.mu.Lock()
+	f, ok := s.logs[id]
+	delete(s.logs, id)
+	s.mu.Unlock()
+	if ok {
+		s.mem.release(f.reserved)
 	}
 }
 

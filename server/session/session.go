@@ -54,6 +54,7 @@ type Session struct {
 	stepM2     []float64
 	drawChains []int
 	drawIters  []int64
+	budget     Budget // the most memory the session may need
 }
 
 // Result is what Run reports when it returns.
@@ -77,7 +78,11 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 	if err != nil {
 		return nil, err
 	}
-	s := &Session{id: id, spec: spec, lim: lim, entry: entry, guarantee: g, epsSteps: -1,
+	budget := budgetOf(&spec, entry, lim)
+	if err := checkBudget(budget, lim); err != nil {
+		return nil, err
+	}
+	s := &Session{id: id, spec: spec, lim: lim, entry: entry, guarantee: g, epsSteps: -1, budget: budget,
 		msgBytes: negotiate(lim.MaxMessageBytes, spec.MaxMessageBytes)}
 	if g != nil && spec.Wants.Eps > 0 {
 		s.epsSteps = g.stepsTo(spec.Wants.Eps, 0)
@@ -137,8 +142,8 @@ func (s *Session) size() error {
 // alloc makes the session's buffers.
 func (s *Session) alloc() {
 	spec := s.spec
-	if s.lim.FollowBuffer > 0 {
-		s.log = NewDrawLog(spec.Dim, min(s.lim.FollowBuffer, max(1, maxFollowBytes/(8*spec.Dim))))
+	if rows := followCap(s.lim.FollowBuffer, spec.Dim); rows > 0 {
+		s.log = NewDrawLog(spec.Dim, rows)
 	}
 	s.mon = newMonitor(spec.Dim, spec.Chains, spec.Names)
 	s.mon.stochastic = spec.Noise.Stochastic
@@ -155,6 +160,10 @@ func (s *Session) MessageLimit() int64 { return s.msgBytes }
 // DrawLog is the log followers read the session's draws from; nil when
 // Limits.FollowBuffer is 0.
 func (s *Session) DrawLog() *DrawLog { return s.log }
+
+// Budget is the most memory the session may need, as registration
+// computed it.
+func (s *Session) Budget() Budget { return s.budget }
 
 // ID is the session's identifier.
 func (s *Session) ID() string { return s.id }
