@@ -81,3 +81,7 @@ func (s *Server) memoryRefusal(b session.Budget) error {
 	return problem(tooLarge, big.Field, "this session needs %s at worst (%s); the server has %s left of its %s",
 		session.Bytes(b.Total), big.What, session.Bytes(max(0, s.mem.left())), session.Bytes(s.mem.total))
 }
+
+// Registering returns the number of streams waiting for their Register
+// frame.
+func (s *Server) Registering() int { return len(s.registering) }

@@ -6,6 +6,8 @@ import (
 	"strconv"
 	"strings"
 	"sync"
+
+	"sluice/server/session"
 )
 
 // memoryPool is the server's memory budget: every session reserves its
@@ -88,3 +90,13 @@ func physicalMemory() int64 {
 	}
 	return 0
 }
+
+// Budget returns what a session registered with spec would reserve from
+// the server's memory budget, or its refusal.
+func (s *Server) Budget(spec session.Spec) (session.Budget, error) {
+	return session.Need(spec, s.opts.Limits)
+}
+
+// MemoryLimit returns the server's memory budget (Options.MaxMemoryBytes
+// after defaults).
+func (s *Server) MemoryLimit() int64 { return s.mem.total }
