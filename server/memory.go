@@ -3,9 +3,11 @@ package server
 import (
 	"bufio"
 	"os"
+	"runtime/debug"
 	"strconv"
 	"strings"
 	"sync"
+	"time"
 
 	"sluice/server/session"
 )
@@ -100,3 +102,33 @@ func (s *Server) Budget(spec session.Spec) (session.Budget, error) {
 // MemoryLimit returns the server's memory budget (Options.MaxMemoryBytes
 // after defaults).
 func (s *Server) MemoryLimit() int64 { return s.mem.total }
+
+// idleRelease is how long the server must have had no running session
+// (and no follow log left to drop) before it returns freed memory to the
+// operating system.
+const idleRelease = time.Second
+
+// maybeIdle is called, with s.mu held, whenever a session ends or a
+// finished session's log is dropped: once the server has been idle for
+// idleRelease, it collects and returns the freed memory to the operating
+// system, so that a burst of sessions does not leave the process at its
+// peak resident size (the runtime would otherwise keep the heap's
+// headroom until its next collection, which an idle server never
+// triggers). It runs at most once per idle period.
+func (s *Server) maybeIdle() {
+	if len(s.active) > 0 {
+		return
+	}
+	if s.idleTimer != nil {
+		s.idleTimer.Reset(idleRelease)
+		return
+	}
+	s.idleTimer = time.AfterFunc(idleRelease, func() {
+		s.mu.Lock()
+		idle := len(s.active) == 0
+		s.mu.Unlock()
+		if idle {
+			debug.FreeOSMemory()
+		}
+	})
+}

@@ -88,6 +88,7 @@ type Server struct {
 	quit        chan struct{}
 	quitOnce    sync.Once
 	mem         memoryPool
+	idleTimer   *time.Timer // see maybeIdle; guarded by mu
 
 	mu       sync.Mutex
 	draining bool
@@ -398,6 +399,7 @@ func (s *Server) untrack(id string, reserved *int64) {
 	s.mu.Lock()
 	defer s.mu.Unlock()
 	delete(s.active, id)
+	defer s.maybeIdle()
 	f, ok := s.logs[id]
 	if !ok {
 		return
@@ -416,6 +418,7 @@ func (s *Server) forget(id string) {
 	s.mu.Lock()
 	f, ok := s.logs[id]
 	delete(s.logs, id)
+	s.maybeIdle()
 	s.mu.Unlock()
 	if ok {
 		s.mem.release(f.reserved)

@@ -170,7 +170,10 @@ func budgetOf(s *Spec, k *kernelEntry, lim Limits) Budget {
 
 	// Diagnostics: the thinned windows of the monitor (see newMonitor).
 	ksdRows, _, histChains, histCap := monitorSizes(s.Dim, s.Chains)
-	add("register.dim", "diagnostics windows", (2*float64(ksdRows)+10*float64(histChains*histCap))*dim*8)
+	// The Stein window keeps draws and scores; the history keeps draws and
+	// batch sums, and its summaries a scratch of about 8 values per kept
+	// draw and chain (diag.NewHistory).
+	add("register.dim", "diagnostics windows", (2*float64(ksdRows)*dim+float64(histChains*histCap)*(2*dim+8))*8)
 
 	// A dense dim×dim metric, for gradient kernels that may adapt one.
 	if k.need().Has(kernels.NeedGradient) {
