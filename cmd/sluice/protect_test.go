@@ -166,7 +166,7 @@ func TestServeSurvivesAbortsAndIdleStreams(t *testing.T) {
 			defer scancel()
 			rows := 0
 			_, err := client.Run(sctx, conn, spec, minusX, client.OnDraws(func(d *client.Draws) {
-				if rows += d.Rows; rows >= 8*200 {
+				if rows += d.Rows; rows >= 8*50 {
 					scancel()
 				}
 			}))
