@@ -16,7 +16,7 @@ import (
 //	go test -run XXX -fuzz '^FuzzDecodeFloats$' -fuzztime 10s ./internal/wire
 func FuzzDecodeFloats(f *testing.F) {
 	f.Add([]byte{}, 0)
-	f.Add([]byte{0, 0, 0, 0, 0, 0, 0xF0, 0x3F}, 1)                               // 1.0
+	f.Add([]byte{0, 0, 0, 0, 0, 0, 0xF0, 0x3F}, 1)                                  // 1.0
 	f.Add([]byte{0, 0, 0, 0, 0, 0, 0x04, 0xC0, 0x23, 1, 0, 0, 0, 0, 0xF8, 0x7F}, 2) // −2.5, a NaN with payload
 	f.Add([]byte{1, 2, 3}, 3)
 	f.Fuzz(func(t *testing.T, b []byte, prefix int) {
