@@ -291,3 +291,29 @@ func TestFollowSessionIDLimit(t *testing.T) {
 		t.Fatal("cancelled")
 	}
 }
+
+// A frame far larger than any answer the session needs, though within
+// the message limit, is refused before it is decoded (RESOURCE_EXHAUSTED
+// naming evaluations): what a client sends stays within what
+// registration reserved.
+func TestOversizeAnswerRefusedBeforeDecoding(t *testing.T) {
+	addr, _ := startTCP(t, server.Options{})
+	st := rawSession(t, dialLoop(t, addr), goodRegister())
+	var p *sluicev1.Points
+	for p == nil {
+		f, err := st.Recv()
+		if err != nil {
+			t.Fatal(err)
+		}
+		p = f.GetPoints()
+	}
+	ev := &sluicev1.Evaluations{RequestId: p.RequestId, FirstRow: p.FirstRow, Rows: p.Rows, Dim: p.Dim,
+		Gradients: make([]byte, len(p.Points)), Hessians: make([]byte, 1<<20)}
+	if err := st.Send(&sluicev1.SessionRequest{Frame: &sluicev1.SessionRequest_Evaluations{Evaluations: ev}}); err != nil {
+		t.Fatal(err)
+	}
+	s, _ := finalStatus(st)
+	if s.Code() != codes.ResourceExhausted || fieldOf(s) != "evaluations" || !strings.Contains(s.Message(), "largest answer this session needs") {
+		t.Fatalf("1 MiB of Hessians for a 3 × 2 session: %v %q (field %q)", s.Code(), s.Message(), fieldOf(s))
+	}
+}

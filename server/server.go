@@ -314,7 +314,7 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 		return problem(draining, "", "server shutting down")
 	}
 	defer s.untrack(id, &reserved)
-	maxGrad, sp0 := sess.MaxGradientValues(), sess.Spec()
+	maxGrad, maxFrame, sp0 := sess.MaxGradientValues(), sess.MaxAnswerBytes(), sess.Spec()
 	go func() { // reader: owned by this handler
 		// Gradients are decoded into a ring of reused buffers. The engine
 		// takes messages in order and has finished with message j (copied
@@ -337,6 +337,10 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 				m = session.Message{Err: session.BadField("evaluations.gradients",
 					"carries %d values, more than any answer part of this session holds (%d: rows × replicates declared at registration (%d) × dim)",
 					len(f.GetEvaluations().GetGradients())/8, maxGrad, sp0.Noise.Replicates)}
+			case int64(proto.Size(f)) > maxFrame:
+				m = session.Message{Err: &session.Error{Kind: session.TooLarge, Field: "evaluations", Chain: -1, Coord: -1,
+					Reason: fmt.Sprintf("message of %d bytes exceeds the largest answer this session needs (%d bytes; the message limit is %d)",
+						proto.Size(f), maxFrame, limit)}}
 			default:
 				m = messageFromWire(f, &ring[n%len(ring)])
 			}

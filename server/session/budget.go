@@ -146,7 +146,7 @@ func budgetOf(s *Spec, k *kernelEntry, lim Limits) Budget {
 			hvRows = max(hvRows, rows)
 		}
 		answer = max(answer, rows*(vals+1)*8)
-		part = max(part, min(float64(msg), rows*float64(wire.RowBytes(int(vals)))))
+		part = max(part, min(float64(msg), rows*float64(wire.RowBytes(int(vals)))+wire.FrameOverhead+stopSlack))
 	}
 	if hess > 0 {
 		add("register.chains", fmt.Sprintf("Hessians of %d×%d for %d chains", s.Dim, s.Dim, s.Chains), hess)
@@ -218,3 +218,20 @@ func (s *Session) MaxGradientValues() int {
 	}
 	return m
 }
+
+// MaxAnswerBytes is the largest client frame this session can need: an
+// answer part of its largest request (within the message limit), with
+// room for a Stop frame's reason. Transports refuse larger frames before
+// decoding them, so that what the client sends stays within what
+// registration reserved.
+func (s *Session) MaxAnswerBytes() int64 {
+	var m int64
+	for _, r := range s.shapes() {
+		rows := min(s.partRows(r.need), s.spec.Chains*max(r.rowsPerChain, 1))
+		m = max(m, int64(rows)*s.rowBytes(r.need))
+	}
+	return min(m+wire.FrameOverhead+stopSlack, s.msgBytes)
+}
+
+// stopSlack is room for a Stop frame's reason (transports cap it at 1 KiB).
+const stopSlack = 2048
