@@ -192,6 +192,7 @@ type monitor struct {
 	// ksdEvaluations counts the Stein kernel evaluations of every
 	// discrepancy computed, the work the windows bound.
 	ksdEvaluations int64
+	ksdSeen        int // draws offered at the last count
 }
 
 // maxKSDPoints caps the kernel Stein discrepancy's window: the final
@@ -347,7 +348,13 @@ func (m *monitor) measure(p *Progress, final bool) {
 	}
 	t := time.Now()
 	if n := int64(m.ksd.Kept()); n >= 2 {
-		m.ksdEvaluations += n * (n + 1) / 2 // Result evaluates each unordered pair and each diagonal once
+		if seen := m.ksd.Seen(); seen != m.ksdSeen {
+			// Result recomputes at most when draws were offered since
+			// (it caches otherwise), evaluating each unordered pair and
+			// each diagonal once.
+			m.ksdEvaluations += n * (n + 1) / 2
+			m.ksdSeen = seen
+		}
 		m.lastKSD = m.ksd.Result().U()
 		p.KSD = m.lastKSD
 	}
