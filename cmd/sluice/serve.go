@@ -138,6 +138,7 @@ func serve(ctx context.Context, args []string, stderr io.Writer) error {
 	}
 	srv := server.New(opts)
 	log.Info("serving", zap.String("addr", lis.Addr().String()), zap.Int64("max_message_bytes", sf.maxMessageBytes),
+		zap.Int64("max_memory_bytes", srv.MemoryLimit()), zap.Int64("max_session_bytes", sf.maxSessionBytes),
 		zap.Bool("tls", sec.tls.Enabled()), zap.Bool("mutual_tls", sec.tls.ClientCAFile != ""), zap.Bool("tokens", sec.tokenFile != ""))
 	errc := make(chan error, 2)
 	go func() { errc <- srv.Serve(lis) }()
