@@ -8,6 +8,7 @@ import (
 	"errors"
 	"os"
 	"os/exec"
+	"path/filepath"
 	"strconv"
 	"strings"
 	"sync"
@@ -24,19 +25,6 @@ import (
 	sluicev1 "sluice/proto/sluice/v1"
 )
 
-// childEnv, when set, makes the test binary run `sluice` with the
-// variable's words as arguments instead of the tests: the tests below
-// start the server as a subprocess this way, without building it.
-const childEnv = "SLUICE_TEST_CHILD_ARGS"
-
-func TestMain(m *testing.M) {
-	if args := os.Getenv(childEnv); args != "" {
-		os.Args = append([]string{"sluice"}, strings.Fields(args)...)
-		main()
-	}
-	os.Exit(m.Run())
-}
-
 // child is `sluice serve` running as a subprocess.
 type child struct {
 	cmd  *exec.Cmd
@@ -52,14 +40,21 @@ func (c *child) logText() string {
 	return c.log.String()
 }
 
-// startChild starts `sluice serve` with args on a loopback port the
-// kernel picks and returns once it logged its address. The process is
-// killed at cleanup if it is still running.
+// startChild builds the sluice command (without the race detector, whose
+// shadow memory is never returned to the system and would make resident
+// sizes meaningless), starts `sluice serve` with args on a loopback port
+// the kernel picks and returns once it logged its address. The process
+// is killed at cleanup if it is still running.
 func startChild(t *testing.T, args ...string) *child {
 	t.Helper()
+	bin := filepath.Join(t.TempDir(), "sluice")
+	bctx, bcancel := context.WithTimeout(context.Background(), 10*time.Minute)
+	defer bcancel()
+	if out, err := exec.CommandContext(bctx, "go", "build", "-o", bin, ".").CombinedOutput(); err != nil {
+		t.Fatalf("go build: %v\n%s", err, out)
+	}
 	c := &child{done: make(chan error, 1)}
-	c.cmd = exec.Command(os.Args[0])
-	c.cmd.Env = append(os.Environ(), childEnv+"=serve --addr 127.0.0.1:0 --log-level info "+strings.Join(args, " "))
+	c.cmd = exec.Command(bin, append([]string{"serve", "--addr", "127.0.0.1:0", "--log-level", "info"}, args...)...)
 	stderr, err := c.cmd.StderrPipe()
 	if err != nil {
 		t.Fatal(err)
