@@ -86,6 +86,10 @@ func scheduleFromWire(s *sluicev1.StepSchedule) *kernels.SGLDSchedule {
 	return &kernels.SGLDSchedule{A: s.GetA(), B: s.GetB(), Gamma: s.GetGamma()}
 }
 
+// MaxStopReasonBytes caps the reason a client gives with Stop (it is
+// echoed in the Finished frame and the log).
+const MaxStopReasonBytes = 1024
+
 // messageFromWire turns one received frame into an engine Message.
 // Gradients are decoded into *gradBuf (grown as needed), which the caller
 // owns and must not reuse while the engine may still read the message.
@@ -113,6 +117,9 @@ func messageFromWire(f *sluicev1.SessionRequest, gradBuf *[]float64) session.Mes
 		return session.Message{Evaluations: &session.Evaluations{RequestID: e.GetRequestId(), FirstRow: int(e.GetFirstRow()),
 			Rows: int(e.GetRows()), Dim: int(e.GetDim()), Grad: grad, LogDensity: ld, Hessian: hess, HessVec: hv}}
 	case *sluicev1.SessionRequest_Stop:
+		if n := len(f.Stop.GetReason()); n > MaxStopReasonBytes {
+			return session.Message{Err: session.BadField("stop.reason", "is %d bytes long, the limit is %d", n, MaxStopReasonBytes)}
+		}
 		return session.Message{Stop: true, StopReason: f.Stop.GetReason()}
 	case *sluicev1.SessionRequest_Register:
 		return session.Message{Err: session.BadField("register", "sent twice: a session registers once")}

@@ -10,6 +10,9 @@ import (
 	"sluice/server/session"
 )
 
+// MaxSessionIDBytes caps the session id a Follow request may name.
+const MaxSessionIDBytes = 128
+
 // Follow implements the Follow rpc: it sends the session's header, then
 // its draws from the requested sequence number on, in order, with its
 // progress reports placed among them where the session made them, then
@@ -18,6 +21,9 @@ import (
 // stopped without finishing (client gone, server shutting down, with state
 // kept) ends the call with UNAVAILABLE: follow again once it is resumed.
 func (s *Server) Follow(req *sluicev1.FollowRequest, stream grpc.ServerStreamingServer[sluicev1.FollowResponse]) error {
+	if n := len(req.GetSessionId()); n > MaxSessionIDBytes {
+		return problem(badInput, "session_id", "is %d bytes long, the limit is %d", n, MaxSessionIDBytes)
+	}
 	f, err := s.followable(stream.Context(), req.GetSessionId(), req.GetToken())
 	if err != nil {
 		return err

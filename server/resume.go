@@ -195,8 +195,17 @@ func (s *Server) resume(stream sluicev1.SluiceService_SessionServer, r *sluicev1
 		}
 		return problem(draining, "", "the checkpoint store is not available; retry")
 	}
+	budget, err := session.Need(sess.Spec(), s.opts.Limits)
+	if err != nil {
+		return toStatus(err)
+	}
+	if !s.mem.reserve(budget.Total) {
+		return s.memoryRefusal(budget)
+	}
+	reserved := budget.Total // what is left to release when the handler returns
+	defer func() { s.mem.release(reserved) }()
 	s.log.Info("session resumed", zap.String("session", id), zap.Uint64("next_seq", r.GetNextSeq()))
-	return s.serveSession(stream, sess, nil)
+	return s.serveSession(stream, sess, nil, &reserved)
 }
 
 // followable returns the followed log of session id when token is its

@@ -4,7 +4,6 @@ import (
 	"context"
 	"errors"
 	"fmt"
-	"io"
 	"math"
 	"math/bits"
 	"net"
@@ -31,8 +30,8 @@ type Options struct {
 	// Limits apply to every session (see session.Limits for defaults).
 	// Limits.MaxMessageBytes is also the gRPC receive and send limit.
 	Limits session.Limits
-	// MaxSessions caps concurrent sessions; more are refused with
-	// RESOURCE_EXHAUSTED. 0 means 64.
+	// MaxSessions caps concurrent registered sessions; more are refused
+	// with RESOURCE_EXHAUSTED. 0 means DefaultMaxSessions.
 	MaxSessions int
 	// Logger receives the server's log; nil means no logging.
 	Logger *zap.Logger
@@ -41,11 +40,37 @@ type Options struct {
 	// FollowRetention is how long a finished session's draws stay
 	// available to followers (default 10 minutes; negative: not kept
 	// after the session ends). Set Limits.FollowBuffer to serve followers.
+	// A finished session's ring stays reserved in the memory budget until
+	// then, and is released on time.
 	FollowRetention time.Duration
 	// State configures checkpoints and Resume (resume.go); the zero value
 	// keeps no state.
 	State StateOptions
+	// MaxMemoryBytes is the memory budget of all sessions together: each
+	// reserves its worst case (session.Budget) at registration, and one
+	// that does not fit what is left is refused with RESOURCE_EXHAUSTED.
+	// 0 means DefaultMaxMemory().
+	MaxMemoryBytes int64
+	// RegisterTimeout is how long a new stream may take to send its
+	// Register frame (0: DefaultRegisterTimeout).
+	RegisterTimeout time.Duration
+	// MaxRegistering caps the streams waiting for their Register frame;
+	// they hold no session slot (0: DefaultMaxRegistering).
+	MaxRegistering int
 }
+
+// Defaults of Options.
+const (
+	// DefaultMaxSessions: the memory budget, not this count, is what
+	// protects the server; the count bounds goroutines and scheduling.
+	DefaultMaxSessions = 256
+	// DefaultRegisterTimeout: a client registers in its first frame,
+	// right after opening the stream.
+	DefaultRegisterTimeout = 10 * time.Second
+	// DefaultMaxRegistering: streams waiting to register cost a goroutine
+	// and a few KiB each.
+	DefaultMaxRegistering = 1024
+)
 
 // Server serves the sluice API, health and reflection on one gRPC server.
 type Server struct {
@@ -56,6 +81,13 @@ type Server struct {
 	grpc   *grpc.Server
 	health *health.Server
 	slots  chan struct{}
+	// registering holds a token per stream waiting for its Register
+	// frame; quit is closed when Shutdown begins.
+	registering chan struct{}
+	quit        chan struct{}
+	quitOnce    sync.Once
+	mem         memoryPool
+	idleTimer   *time.Timer // see maybeIdle; guarded by mu
 
 	mu       sync.Mutex
 	draining bool
@@ -67,12 +99,14 @@ type Server struct {
 
 // followed is a session's draw log as followers see it.
 type followed struct {
-	log      *session.DrawLog
-	dim      int
-	limit    int64     // the server's message limit, for batching rows
-	finished time.Time // zero while the session runs
-	token    string    // the session's token, which Follow must present
-	resumed  bool      // restored from a checkpoint: followers may be ahead
+	log     *session.DrawLog
+	dim     int
+	limit   int64  // the server's message limit, for batching rows
+	token   string // the session's token, which Follow must present
+	resumed bool   // restored from a checkpoint: followers may be ahead
+	// reserved is the memory budget the retained ring holds once the
+	// session has finished.
+	reserved int64
 }
 
 // inboxSize is the capacity of a session's queue of received messages.
@@ -85,8 +119,20 @@ const ServiceName = "sluice.v1.SluiceService"
 // services registered.
 func New(o Options) *Server {
 	if o.MaxSessions <= 0 {
-		o.MaxSessions = 64
+		o.MaxSessions = DefaultMaxSessions
 	}
+	if o.MaxMemoryBytes <= 0 {
+		o.MaxMemoryBytes = DefaultMaxMemory()
+	}
+	if o.RegisterTimeout <= 0 {
+		o.RegisterTimeout = DefaultRegisterTimeout
+	}
+	if o.MaxRegistering <= 0 {
+		o.MaxRegistering = DefaultMaxRegistering
+	}
+	// Streams hold up to inboxSize received answers, one in hand, and a
+	// ring of decoded ones: the budget counts them.
+	o.Limits.InflightAnswers = inboxSize + 2
 	if o.Limits.MaxMessageBytes <= 0 {
 		o.Limits.MaxMessageBytes = 4 << 20
 	}
@@ -98,7 +144,9 @@ func New(o Options) *Server {
 	}
 	s := &Server{opts: o, log: o.Logger, slots: make(chan struct{}, o.MaxSessions),
 		active: map[string]chan<- session.Message{},
-		logs:   map[string]*followed{}, live: map[string]*liveSession{}, sweeper: make(chan struct{})}
+		logs:   map[string]*followed{}, live: map[string]*liveSession{}, sweeper: make(chan struct{}),
+		registering: make(chan struct{}, o.MaxRegistering), quit: make(chan struct{}),
+		mem: memoryPool{total: o.MaxMemoryBytes}}
 	// The engine sizes its frames within Limits.MaxMessageBytes, and the
 	// reader refuses larger client frames with a status naming the frame.
 	// The transport's own cap sits at four times that, as a backstop
@@ -198,6 +246,7 @@ func (s *Server) GRPCServer() *grpc.Server { return s.grpc }
 // are closed hard.
 func (s *Server) Shutdown(ctx context.Context) {
 	s.health.Shutdown()
+	s.quitOnce.Do(func() { close(s.quit) }) // streams not yet registered end now
 	s.mu.Lock()
 	s.stopSweep()
 	s.draining = true
@@ -231,18 +280,15 @@ func (s *Server) Stop() {
 // owned by this handler, feeds the engine and exits when the stream ends
 // or the handler returns.
 func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
+	first, err := s.awaitRegister(stream)
+	if err != nil {
+		return err
+	}
 	select {
 	case s.slots <- struct{}{}:
 		defer func() { <-s.slots }()
 	default:
 		return problem(busy, "", "server busy: %d sessions running", cap(s.slots))
-	}
-	first, err := stream.Recv()
-	if errors.Is(err, io.EOF) {
-		return problem(badInput, "register", "stream closed before the first frame")
-	}
-	if err != nil {
-		return toStatus(recvError("register", err))
 	}
 	if res := first.GetResume(); res != nil {
 		return s.resume(stream, res)
@@ -255,6 +301,16 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 	if err != nil {
 		return toStatus(err)
 	}
+	budget, err := session.Need(spec, s.opts.Limits)
+	if err != nil {
+		s.log.Debug("registration refused", zap.Error(err))
+		return toStatus(err)
+	}
+	if !s.mem.reserve(budget.Total) {
+		return s.memoryRefusal(budget)
+	}
+	reserved := budget.Total // what is left to release when the handler returns
+	defer func() { s.mem.release(reserved) }()
 	id := NewSessionID()
 	sess, err := session.New(id, spec, s.opts.Limits)
 	if err != nil {
@@ -262,12 +318,14 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 		return toStatus(err)
 	}
 	sess.SetToken(NewSessionToken())
-	return s.serveSession(stream, sess, nil)
+	return s.serveSession(stream, sess, nil, &reserved)
 }
 
 // serveSession runs a registered or restored session on stream; lv is its
-// entry in s.live when it was restored (nil: tracked here).
-func (s *Server) serveSession(stream sluicev1.SluiceService_SessionServer, sess *session.Session, lv *liveSession) error {
+// entry in s.live when it was restored (nil: tracked here). reserved is the
+// memory budget the session holds: what its retained follow ring keeps
+// after the end moves out of it (see untrack).
+func (s *Server) serveSession(stream sluicev1.SluiceService_SessionServer, sess *session.Session, lv *liveSession, reserved *int64) error {
 	id := sess.ID()
 	ctx, cancel := context.WithCancel(stream.Context())
 	defer cancel()
@@ -278,8 +336,9 @@ func (s *Server) serveSession(stream sluicev1.SluiceService_SessionServer, sess 
 	if !s.track(id, in, sess) {
 		return problem(draining, "", "server shutting down")
 	}
-	defer s.untrack(id)
+	defer s.untrack(id, reserved)
 	s.persistTo(ctx, sess)
+	maxGrad, maxFrame, sp0 := sess.MaxGradientValues(), sess.MaxAnswerBytes(), sess.Spec()
 	go func() { // reader: owned by this handler
 		// Gradients are decoded into a ring of reused buffers. The engine
 		// takes messages in order and has finished with message j (copied
@@ -296,6 +355,16 @@ func (s *Server) serveSession(stream sluicev1.SluiceService_SessionServer, sess 
 			case int64(proto.Size(f)) > limit:
 				m = session.Message{Err: &session.Error{Kind: session.TooLarge, Field: "evaluations", Chain: -1, Coord: -1,
 					Reason: fmt.Sprintf("message of %d bytes exceeds the session's limit of %d bytes", proto.Size(f), limit)}}
+			case len(f.GetEvaluations().GetGradients()) > 8*maxGrad:
+				// Decoded, it would grow the reader's buffers beyond what
+				// registration reserved.
+				m = session.Message{Err: session.BadField("evaluations.gradients",
+					"carries %d values, more than any answer part of this session holds (%d: rows × replicates declared at registration (%d) × dim)",
+					len(f.GetEvaluations().GetGradients())/8, maxGrad, sp0.Noise.Replicates)}
+			case int64(proto.Size(f)) > maxFrame:
+				m = session.Message{Err: &session.Error{Kind: session.TooLarge, Field: "evaluations", Chain: -1, Coord: -1,
+					Reason: fmt.Sprintf("message of %d bytes exceeds the largest answer this session needs (%d bytes; the message limit is %d)",
+						proto.Size(f), maxFrame, limit)}}
 			default:
 				m = messageFromWire(f, &ring[n%len(ring)])
 			}
@@ -316,6 +385,9 @@ func (s *Server) serveSession(stream sluicev1.SluiceService_SessionServer, sess 
 		zap.String("kernel", sp.Kernel), zap.Float64("step", sp.Step), zap.Uint64("seed", sp.Seed))
 	enc := encoder{maxParams: paramCap(limit)}
 	res, err := sess.Run(ctx, in, func(f session.Frame) error { return stream.Send(enc.frame(f)) })
+	if e, ok := session.AsError(err); ok && e.Kind == session.Timeout {
+		err = s.onSilent(id, sess, res, err)
+	}
 	f := res.Finished
 	fields := []zap.Field{zap.String("reason", f.Reason.String()), zap.Int64("evaluations", f.Progress.EvaluationsUsed),
 		zap.Int64("draws", f.Progress.DrawsSent), zap.Duration("elapsed", f.Progress.Elapsed)}
@@ -344,12 +416,6 @@ func (s *Server) track(id string, in chan<- session.Message, sess *session.Sessi
 		return false
 	}
 	s.active[id] = in
-	now := time.Now()
-	for k, f := range s.logs { // forget logs past their retention
-		if !f.finished.IsZero() && now.Sub(f.finished) > s.opts.FollowRetention {
-			delete(s.logs, k)
-		}
-	}
 	if l := sess.DrawLog(); l != nil {
 		s.logs[id] = &followed{log: l, dim: sess.Spec().Dim, limit: s.opts.Limits.MaxMessageBytes,
 			token: sess.Token(), resumed: sess.Resumed()}
@@ -357,16 +423,37 @@ func (s *Server) track(id string, in chan<- session.Message, sess *session.Sessi
 	return true
 }
 
-func (s *Server) untrack(id string) {
+// untrack forgets a finished session. Its draw log stays followable for
+// the retention, holding its ring's memory (moved from *reserved, the
+// session's reservation, to the log); it is dropped, and the memory
+// released, when the retention passes.
+func (s *Server) untrack(id string, reserved *int64) {
 	s.mu.Lock()
 	defer s.mu.Unlock()
 	delete(s.active, id)
-	if f, ok := s.logs[id]; ok {
-		if s.opts.FollowRetention < 0 {
-			delete(s.logs, id)
-		} else {
-			f.finished = time.Now()
-		}
+	defer s.maybeIdle()
+	f, ok := s.logs[id]
+	if !ok {
+		return
+	}
+	if s.opts.FollowRetention < 0 {
+		delete(s.logs, id)
+		return
+	}
+	f.reserved = min(f.log.Bytes(), *reserved)
+	*reserved -= f.reserved
+	time.AfterFunc(s.opts.FollowRetention, func() { s.forget(id) })
+}
+
+// forget drops a finished session's draw log and releases its memory.
+func (s *Server) forget(id string) {
+	s.mu.Lock()
+	f, ok := s.logs[id]
+	delete(s.logs, id)
+	s.maybeIdle()
+	s.mu.Unlock()
+	if ok {
+		s.mem.release(f.reserved)
 	}
 }
 

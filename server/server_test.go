@@ -517,7 +517,9 @@ func float64frombytes(b []byte) float64 {
 // Finished carry the first ones and say how many were left out, instead
 // of failing the send.
 func TestManyParametersFitTheMessageLimit(t *testing.T) {
-	conn, _ := start(t, server.Options{})
+	// The budget counts a dense dim×dim metric for gradient kernels (3 GiB
+	// here): raise the per-session limit above the default of 1 GiB.
+	conn, _ := start(t, server.Options{Limits: session.Limits{MaxSessionBytes: 4 << 30}})
 	const dim = 20000
 	spec := client.Spec{Dim: dim, Chains: 1, Start: make([]float64, dim), Step: 0.1, Seed: 1, DrawsPerChain: 20,
 		MaxMessageBytes: 1 << 20, ProgressEverySteps: 10}

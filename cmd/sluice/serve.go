@@ -31,32 +31,44 @@ type serveFlags struct {
 	answerTimeout   time.Duration
 	followBuffer    int
 	followRetention time.Duration
+	maxSessionBytes int64
+	maxMemoryBytes  int64
+	registerTimeout time.Duration
+	maxRegistering  int
 }
 
 func (f *serveFlags) register(fs *flag.FlagSet) {
 	fs.Int64Var(&f.maxMessageBytes, "max-message-bytes", 16<<20, "largest gRPC message sent or accepted, in bytes; larger batches are split")
-	fs.IntVar(&f.maxSessions, "max-sessions", 64, "concurrent sessions; more are refused")
+	fs.IntVar(&f.maxSessions, "max-sessions", server.DefaultMaxSessions, "concurrent registered sessions; more are refused (memory is guarded by --max-memory-bytes)")
 	fs.IntVar(&f.maxChains, "max-chains", 1<<16, "most chains one session may run")
 	fs.IntVar(&f.maxDim, "max-dim", 1<<20, "largest dimension one session may have")
 	fs.DurationVar(&f.maxTime, "max-session-time", 0, "wall-time cap on every session (0: none)")
-	fs.DurationVar(&f.answerTimeout, "answer-timeout", 10*time.Minute, "how long to wait for a client's answer to one request")
+	fs.DurationVar(&f.answerTimeout, "answer-timeout", session.DefaultAnswerTimeout, "how long to wait for a client's answer to one request; a silent client's session then ends and frees its slot")
 	fs.IntVar(&f.followBuffer, "follow-buffer", 100000, "latest draws (rows) each session keeps for followers, at most 64 MiB (0: no following)")
-	fs.DurationVar(&f.followRetention, "follow-retention", 10*time.Minute, "how long a finished session stays followable")
+	fs.DurationVar(&f.followRetention, "follow-retention", 10*time.Minute, "how long a finished session stays followable; its draws' memory is released then")
+	fs.Int64Var(&f.maxSessionBytes, "max-session-bytes", session.DefaultMaxSessionBytes, "most memory one session may need at worst (Hessians, answers, replicates, follow ring, diagnostics); larger sessions are refused at registration")
+	fs.Int64Var(&f.maxMemoryBytes, "max-memory-bytes", 0, "memory budget of all sessions together, each counted at its worst case (0: half of physical memory, or 4 GiB when unknown)")
+	fs.DurationVar(&f.registerTimeout, "register-timeout", server.DefaultRegisterTimeout, "how long a new stream may take to send Register; waiting streams hold no session slot")
+	fs.IntVar(&f.maxRegistering, "max-registering", server.DefaultMaxRegistering, "streams that may wait for their Register frame at once; more are refused")
 }
 
 func (f *serveFlags) options(log *zap.Logger) (server.Options, error) {
 	if f.maxMessageBytes < 64<<10 {
 		return server.Options{}, usagef("--max-message-bytes must be at least 65536")
 	}
-	if f.maxSessions < 1 || f.maxChains < 1 || f.maxDim < 1 || f.maxTime < 0 || f.answerTimeout <= 0 || f.followBuffer < 0 || f.followRetention <= 0 {
+	if f.maxSessions < 1 || f.maxChains < 1 || f.maxDim < 1 || f.maxTime < 0 || f.answerTimeout <= 0 || f.followBuffer < 0 || f.followRetention <= 0 ||
+		f.maxSessionBytes < 1 || f.maxMemoryBytes < 0 || f.registerTimeout <= 0 || f.maxRegistering < 1 {
 		return server.Options{}, usagef("limits must be positive")
 	}
 	return server.Options{
 		Limits: session.Limits{MaxDim: f.maxDim, MaxChains: f.maxChains, MaxMessageBytes: f.maxMessageBytes,
-			MaxTime: f.maxTime, AnswerTimeout: f.answerTimeout, FollowBuffer: f.followBuffer},
+			MaxTime: f.maxTime, AnswerTimeout: f.answerTimeout, FollowBuffer: f.followBuffer, MaxSessionBytes: f.maxSessionBytes},
 		MaxSessions:     f.maxSessions,
 		Logger:          log,
 		FollowRetention: f.followRetention,
+		MaxMemoryBytes:  f.maxMemoryBytes,
+		RegisterTimeout: f.registerTimeout,
+		MaxRegistering:  f.maxRegistering,
 	}, nil
 }
 
@@ -150,6 +162,7 @@ func serve(ctx context.Context, args []string, stderr io.Writer) error {
 	}
 	srv := server.New(opts)
 	log.Info("serving", zap.String("addr", lis.Addr().String()), zap.Int64("max_message_bytes", sf.maxMessageBytes),
+		zap.Int64("max_memory_bytes", srv.MemoryLimit()), zap.Int64("max_session_bytes", sf.maxSessionBytes),
 		zap.Bool("tls", sec.tls.Enabled()), zap.Bool("mutual_tls", sec.tls.ClientCAFile != ""), zap.Bool("tokens", sec.tokenFile != ""),
 		zap.Bool("checkpoints", opts.State.Store != nil))
 	errc := make(chan error, 3)

@@ -186,22 +186,90 @@ type monitor struct {
 	// The last measured figures, for the targets.
 	params   []ParameterDiagnostics
 	measured bool
+	// The chains the windows follow (nil: all) and their gather buffers.
+	ksdIdx, histIdx   []int
+	ksdX, ksdS, histX []float64
+	// ksdEvaluations counts the Stein kernel evaluations of every
+	// discrepancy computed, the work the windows bound.
+	ksdEvaluations int64
+	ksdSeen        int // draws offered at the last count
+}
+
+// maxKSDPoints caps the kernel Stein discrepancy's window: the final
+// report's U-statistic costs at most maxKSDPoints(maxKSDPoints+1)/2
+// kernel evaluations, however many chains the session runs.
+const maxKSDPoints = 2048
+
+// monitorSizes returns the monitor's window sizes for dim and chains:
+// the Stein discrepancy keeps rounds of ksdChains evenly spaced chains,
+// ksdCap draws in all; the history keeps histCap draws of histChains
+// evenly spaced chains.
+func monitorSizes(dim, chains int) (ksdCap, ksdChains, histChains, histCap int) {
+	// The U-statistic costs O(K²·dim) on K kept draws: keep K near
+	// √(5·10⁷/dim), at most maxKSDPoints, and at least two rounds of the
+	// chains it follows (at most half of maxKSDPoints of them).
+	ksdChains = min(chains, maxKSDPoints/2)
+	ksdCap = max(2*ksdChains, min(int(math.Sqrt(5e7/float64(dim))), maxKSDPoints))
+	// The rank-normalised figures of Vehtari et al. (2021) sort every
+	// coordinate's kept draws: keep about 10⁶ values in all (about 0.3 s
+	// to summarise), between 16 and 4096 draws per chain, from at most
+	// 2¹⁶/dim chains (at least 4) so that the 16 draws per chain stay
+	// within that too.
+	histChains = min(chains, max(4, (1<<16)/dim))
+	histCap = max(16, min(4096, (1<<20)/(histChains*dim)))
+	return ksdCap, ksdChains, histChains, histCap
+}
+
+// spread returns n indices evenly spread over 0..chains−1, or nil when n
+// is every chain.
+func spread(n, chains int) []int {
+	if n >= chains {
+		return nil
+	}
+	idx := make([]int, n)
+	for i := range idx {
+		idx[i] = i * chains / n
+	}
+	return idx
+}
+
+// pick gathers the rows idx of x (rows of dim values) into *buf; with a
+// nil idx it returns x itself.
+func pick(idx []int, dim int, x []float64, buf *[]float64) []float64 {
+	if idx == nil {
+		return x
+	}
+	if len(*buf) != len(idx)*dim {
+		*buf = make([]float64, len(idx)*dim)
+	}
+	for i, c := range idx {
+		copy((*buf)[i*dim:(i+1)*dim], x[c*dim:(c+1)*dim])
+	}
+	return *buf
 }
 
 func newMonitor(dim, chains int, names []string) *monitor {
-	// The U-statistic costs O(K²·dim) on K kept draws: keep K near
-	// √(5·10⁷/dim), at least two rounds of chains.
-	k := int(math.Sqrt(5e7 / float64(dim)))
-	k = max(2*chains, min(k, 2048))
-	// The rank-normalised figures of Vehtari et al. (2021) sort every
-	// coordinate's kept draws: keep about 10⁶
-	// values in all (about 0.3 s to summarise), between 16 and 4096 draws
-	// per chain.
-	h := max(16, min(4096, (1<<20)/(chains*dim)))
-	return &monitor{dim: dim, chains: chains, names: names, hist: diag.NewHistory(chains, dim, h),
-		ksd:   diag.NewStreamKSD(diag.IMQ{}, dim, chains, k),
-		lastX: make([]float64, dim*chains), lastG: make([]float64, dim*chains), haveLast: make([]bool, chains),
+	ksdCap, ksdChains, histChains, histCap := monitorSizes(dim, chains)
+	return &monitor{dim: dim, chains: chains, names: names, hist: diag.NewHistory(histChains, dim, histCap),
+		ksd:     diag.NewStreamKSD(diag.IMQ{}, dim, ksdChains, ksdCap),
+		ksdIdx:  spread(ksdChains, chains),
+		histIdx: spread(histChains, chains),
+		lastX:   make([]float64, dim*chains), lastG: make([]float64, dim*chains), haveLast: make([]bool, chains),
 		keptX: make([]float64, dim*chains), lastKSD: -1}
+}
+
+// histChains is the number of chains the history follows.
+func (m *monitor) histChains() int {
+	if m.histIdx == nil {
+		return m.chains
+	}
+	return len(m.histIdx)
+}
+
+// addKSD offers the kept positions x and their scores sc (every chain) to
+// the Stein discrepancy's window, thinned to its chains.
+func (m *monitor) addKSD(x, sc []float64) {
+	m.ksd.Add(pick(m.ksdIdx, m.dim, x, &m.ksdX), pick(m.ksdIdx, m.dim, sc, &m.ksdS))
 }
 
 // answered records the gradients of one completed request (before Tell).
@@ -238,7 +306,7 @@ func (m *monitor) answered(req *kernels.Request, a *kernels.Answer) {
 	// Scores of the last kept draws: the kernel asked for the gradient at
 	// exactly those positions (as LMC does at the start of each step).
 	if m.pendingScores && req.Rows == m.chains && slices.Equal(req.Points[:d*m.chains], m.keptX) {
-		m.ksd.Add(m.keptX, a.Grad[:d*m.chains])
+		m.addKSD(m.keptX, a.Grad[:d*m.chains])
 	}
 	m.pendingScores = false
 }
@@ -250,9 +318,9 @@ func (m *monitor) pairPeriod() int { return max(1, m.chains*m.dim/8192) }
 // kept records the positions of a kept step; k is the kernel, which may
 // know the scores there already.
 func (m *monitor) kept(k kernels.Kernel) {
-	m.hist.Add(k.Positions())
+	m.hist.Add(pick(m.histIdx, m.dim, k.Positions(), &m.histX))
 	if sc, ok := k.(kernels.Scorer); ok {
-		m.ksd.Add(k.Positions(), sc.Scores())
+		m.addKSD(k.Positions(), sc.Scores())
 		return
 	}
 	copy(m.keptX, k.Positions())
@@ -273,13 +341,20 @@ func (m *monitor) measure(p *Progress, final bool) {
 	p.Parameters = m.params
 	expect := m.lastCost
 	if expect == 0 {
-		expect = time.Duration(500 * m.hist.Kept() * m.chains * m.dim) // measured: ~0.5 µs per kept value
+		expect = time.Duration(500 * m.hist.Kept() * m.histChains() * m.dim) // measured: ~0.5 µs per kept value
 	}
 	if !final && m.share >= 0 && float64(m.spent+expect) > m.share*float64(p.Elapsed) {
 		return
 	}
 	t := time.Now()
-	if m.ksd.Kept() >= 2 {
+	if n := int64(m.ksd.Kept()); n >= 2 {
+		if seen := m.ksd.Seen(); seen != m.ksdSeen {
+			// Result recomputes at most when draws were offered since
+			// (it caches otherwise), evaluating each unordered pair and
+			// each diagonal once.
+			m.ksdEvaluations += n * (n + 1) / 2
+			m.ksdSeen = seen
+		}
 		m.lastKSD = m.ksd.Result().U()
 		p.KSD = m.lastKSD
 	}

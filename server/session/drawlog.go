@@ -12,7 +12,9 @@ import (
 // DrawLog keeps the most recent kept draws of one session, numbered by
 // sequence, so that consumers other than the session's client can follow
 // it and resume after a disconnect with no loss and no duplicate. It holds
-// at most its capacity in rows (a ring); a reader asking for rows already
+// at most its capacity in rows (a ring that starts at initialLogRows and
+// doubles as it fills, so a short session never holds the whole
+// capacity); a reader asking for rows already
 // dropped gets an error saying so, never a silent gap. Safe for concurrent
 // use: the engine appends, any number of readers read.
 //
@@ -26,7 +28,7 @@ type DrawLog struct {
 	head         Header
 
 	mu     sync.Mutex
-	vals   []float64 // capRows×dim ring
+	vals   []float64 // size×dim ring, size = len(chains) ≤ capRows
 	chains []int
 	iters  []int64
 	first  uint64 // sequence number of the oldest row kept
@@ -98,8 +100,33 @@ func NewDrawLog(dim, capacity int) *DrawLog {
 	if dim < 1 || capacity < 1 {
 		panic(fmt.Sprintf("session: DrawLog of dim %d, capacity %d", dim, capacity))
 	}
-	return &DrawLog{dim: dim, capRows: capacity, vals: make([]float64, capacity*dim),
-		chains: make([]int, capacity), iters: make([]int64, capacity), wake: make(chan struct{})}
+	n := min(capacity, initialLogRows)
+	return &DrawLog{dim: dim, capRows: capacity, vals: make([]float64, n*dim),
+		chains: make([]int, n), iters: make([]int64, n), wake: make(chan struct{})}
+}
+
+// initialLogRows is the ring's first size.
+const initialLogRows = 256
+
+// Bytes is the memory the ring holds now.
+func (l *DrawLog) Bytes() int64 {
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	return int64(len(l.chains)) * int64(8*l.dim+16)
+}
+
+// grow doubles the ring (within the capacity), keeping every row at the
+// index its sequence number maps to in the new size.
+func (l *DrawLog) grow() {
+	old := len(l.chains)
+	n := min(2*old, l.capRows)
+	vals, chains, iters := make([]float64, n*l.dim), make([]int, n), make([]int64, n)
+	for q := l.first; q < l.next; q++ {
+		i, j := int(q%uint64(old)), int(q%uint64(n))
+		copy(vals[j*l.dim:(j+1)*l.dim], l.vals[i*l.dim:(i+1)*l.dim])
+		chains[j], iters[j] = l.chains[i], l.iters[i]
+	}
+	l.vals, l.chains, l.iters = vals, chains, iters
 }
 
 // Capacity is the most rows the log keeps.
@@ -114,7 +141,10 @@ func (l *DrawLog) append(d *Draws) {
 		panic(fmt.Sprintf("session: DrawLog append at seq %d, want %d", d.Seq, l.next))
 	}
 	for r := range d.Rows {
-		i := int(l.next % uint64(l.capRows))
+		if size := len(l.chains); l.next-l.first >= uint64(size) && size < l.capRows {
+			l.grow()
+		}
+		i := int(l.next % uint64(len(l.chains)))
 		copy(l.vals[i*l.dim:(i+1)*l.dim], d.Values[r*l.dim:(r+1)*l.dim])
 		l.chains[i] = d.Chains[r]
 		l.iters[i] = d.Iterations[r]
@@ -196,7 +226,7 @@ func (l *DrawLog) Read(ctx context.Context, from uint64, max int) (Draws, error)
 			n := int(min(l.next-from, uint64(max)))
 			d := Draws{Seq: from, Rows: n, Dim: l.dim, Values: make([]float64, n*l.dim), Chains: make([]int, n), Iterations: make([]int64, n)}
 			for r := range n {
-				i := int((from + uint64(r)) % uint64(l.capRows))
+				i := int((from + uint64(r)) % uint64(len(l.chains)))
 				copy(d.Values[r*l.dim:], l.vals[i*l.dim:(i+1)*l.dim])
 				d.Chains[r], d.Iterations[r] = l.chains[i], l.iters[i]
 			}

@@ -55,6 +55,7 @@ type Session struct {
 	drawChains []int
 	drawIters  []int64
 	persist    persist // checkpoints (checkpoint.go)
+	budget     Budget  // the most memory the session may need
 }
 
 // Result is what Run reports when it returns.
@@ -80,7 +81,11 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 	if err != nil {
 		return nil, err
 	}
-	s := &Session{id: id, spec: spec, lim: lim, entry: entry, guarantee: g, epsSteps: -1,
+	budget := budgetOf(&spec, entry, lim)
+	if err := checkBudget(budget, lim); err != nil {
+		return nil, err
+	}
+	s := &Session{id: id, spec: spec, lim: lim, entry: entry, guarantee: g, epsSteps: -1, budget: budget,
 		msgBytes: negotiate(lim.MaxMessageBytes, spec.MaxMessageBytes)}
 	if g != nil && spec.Wants.Eps > 0 {
 		s.epsSteps = g.stepsTo(spec.Wants.Eps, 0)
@@ -141,8 +146,8 @@ func (s *Session) size() error {
 // alloc makes the session's buffers.
 func (s *Session) alloc() {
 	spec := s.spec
-	if s.lim.FollowBuffer > 0 {
-		s.log = NewDrawLog(spec.Dim, min(s.lim.FollowBuffer, max(1, maxFollowBytes/(8*spec.Dim))))
+	if rows := followCap(s.lim.FollowBuffer, spec.Dim); rows > 0 {
+		s.log = NewDrawLog(spec.Dim, rows)
 		s.log.head = s.header()
 	}
 	s.mon = newMonitor(spec.Dim, spec.Chains, spec.Names)
@@ -160,6 +165,10 @@ func (s *Session) MessageLimit() int64 { return s.msgBytes }
 // DrawLog is the log followers read the session's draws from; nil when
 // Limits.FollowBuffer is 0.
 func (s *Session) DrawLog() *DrawLog { return s.log }
+
+// Budget is the most memory the session may need, as registration
+// computed it.
+func (s *Session) Budget() Budget { return s.budget }
 
 // ID is the session's identifier.
 func (s *Session) ID() string { return s.id }

@@ -143,7 +143,8 @@ type Limits struct {
 	// MaxTime caps every session's wall time (default: none).
 	MaxTime time.Duration
 	// AnswerTimeout is how long the server waits for the answer to one
-	// Points frame before it fails the session (default 10 minutes).
+	// Points frame before it fails the session (default
+	// DefaultAnswerTimeout).
 	AnswerTimeout time.Duration
 	// ProgressInterval is the default Progress cadence (default 1 s).
 	ProgressInterval time.Duration
@@ -153,11 +154,32 @@ type Limits struct {
 	DiagnosticsShare float64
 	// FollowBuffer is how many of its latest draws (rows) each session
 	// keeps for followers, capped at 64 MiB of values per session; 0 means
-	// followers are not served.
+	// followers are not served. The ring starts small and doubles as it
+	// fills; the budget counts it at its cap.
 	FollowBuffer int
+	// MaxSessionBytes caps the memory one session may need at worst (see
+	// Budget); default DefaultMaxSessionBytes.
+	MaxSessionBytes int64
+	// InflightAnswers is how many received answer frames the transport
+	// may hold decoded before the engine takes them, counted in the
+	// budget (default 2).
+	InflightAnswers int
 }
 
+// Length limits of the strings a client sends.
+const (
+	// MaxNameBytes caps each parameter name.
+	MaxNameBytes = 256
+	// MaxKernelBytes caps the kernel's name.
+	MaxKernelBytes = 64
+)
+
 const maxFollowBytes = 64 << 20
+
+// DefaultAnswerTimeout is Limits.AnswerTimeout's default: two minutes, long
+// enough for a batch of expensive simulations, short enough that a silent
+// client does not hold its session slot and memory for long.
+const DefaultAnswerTimeout = 2 * time.Minute
 
 const defaultMessageBytes = 4 << 20
 
@@ -175,7 +197,13 @@ func (l Limits) withDefaults() Limits {
 		l.MaxMessageBytes = defaultMessageBytes
 	}
 	if l.AnswerTimeout <= 0 {
-		l.AnswerTimeout = 10 * time.Minute
+		l.AnswerTimeout = DefaultAnswerTimeout
+	}
+	if l.MaxSessionBytes <= 0 {
+		l.MaxSessionBytes = DefaultMaxSessionBytes
+	}
+	if l.InflightAnswers <= 0 {
+		l.InflightAnswers = 2
 	}
 	if l.ProgressInterval <= 0 {
 		l.ProgressInterval = time.Second
@@ -195,6 +223,9 @@ func (s *Spec) validate(l Limits) (*kernelEntry, error) {
 	}
 	if s.Kernel == "" {
 		s.Kernel = defaultKernel
+	}
+	if len(s.Kernel) > MaxKernelBytes {
+		return nil, BadField("register.kernel", "is %d bytes long, the limit is %d (known kernels: %v)", len(s.Kernel), MaxKernelBytes, KernelNames())
 	}
 	k, known := lookupKernel(s.Kernel)
 	if !known {
@@ -325,6 +356,9 @@ func (s *Spec) validateFields(k *kernelEntry) error {
 	for i, n := range s.Names {
 		if n == "" {
 			return bad("names", "name %d is empty", i)
+		}
+		if len(n) > MaxNameBytes {
+			return bad("names", "name %d is %d bytes long, the limit is %d", i, len(n), MaxNameBytes)
 		}
 		if seen[n] {
 			return bad("names", "name %q appears twice", n)
