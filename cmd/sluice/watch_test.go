@@ -92,7 +92,9 @@ func TestWatchOnATerminal(t *testing.T) {
 	var mu sync.Mutex
 	var screen bytes.Buffer
 	seen := make(chan struct{}, 1)
+	drained := make(chan struct{}) // closed once the reader has read all
 	go func() {
+		defer close(drained)
 		buf := make([]byte, 4096)
 		for {
 			n, err := master.Read(buf)
@@ -133,7 +135,14 @@ func TestWatchOnATerminal(t *testing.T) {
 	if err := <-done; err != nil {
 		t.Fatal(err)
 	}
+	// With the terminal's own end closed, the reader reads what is still
+	// buffered and then gets an error: everything written is on screen.
 	_ = tty.Close()
+	select {
+	case <-drained:
+	case <-ctx.Done():
+		t.Fatal("the terminal's output never ended")
+	}
 	mu.Lock()
 	out := screen.String()
 	mu.Unlock()

@@ -503,7 +503,7 @@ func (l *DrawLog) tail() followState {
 	n := int(l.next - l.first)
 	fs := followState{First: l.first, Next: l.next, Values: make([]float64, n*l.dim), Chains: make([]int, n), Iterations: make([]int64, n)}
 	for r := range n {
-		i := int((l.first + uint64(r)) % uint64(l.capRows))
+		i := int((l.first + uint64(r)) % uint64(len(l.chains)))
 		copy(fs.Values[r*l.dim:], l.vals[i*l.dim:(i+1)*l.dim])
 		fs.Chains[r], fs.Iterations[r] = l.chains[i], l.iters[i]
 	}
@@ -524,8 +524,11 @@ func (l *DrawLog) restore(fs *followState, seq uint64) error {
 	l.mu.Lock()
 	defer l.mu.Unlock()
 	l.first, l.next = fs.First+skip, fs.First+skip
+	for uint64(len(l.chains)) < n-skip { // the ring grows as it fills
+		l.grow()
+	}
 	for r := skip; r < n; r++ {
-		i := int(l.next % uint64(l.capRows))
+		i := int(l.next % uint64(len(l.chains)))
 		copy(l.vals[i*l.dim:(i+1)*l.dim], fs.Values[r*uint64(l.dim):(r+1)*uint64(l.dim)])
 		l.chains[i], l.iters[i] = fs.Chains[r], fs.Iterations[r]
 		l.next++
@@ -610,7 +613,7 @@ func (l *DrawLog) readKept(from uint64, max int) (Draws, error) {
 	n := int(min(l.next-from, uint64(max)))
 	d := Draws{Seq: from, Rows: n, Dim: l.dim, Values: make([]float64, n*l.dim), Chains: make([]int, n), Iterations: make([]int64, n)}
 	for r := range n {
-		i := int((from + uint64(r)) % uint64(l.capRows))
+		i := int((from + uint64(r)) % uint64(len(l.chains)))
 		copy(d.Values[r*l.dim:], l.vals[i*l.dim:(i+1)*l.dim])
 		d.Chains[r], d.Iterations[r] = l.chains[i], l.iters[i]
 	}
