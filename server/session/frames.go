@@ -8,8 +8,9 @@ import (
 )
 
 // Frame is one message from the engine to the client: *Registered,
-// *Points, *Draws, *Progress or *Finished. Slices in a frame belong to the
-// engine and are valid only during the send call that carries it.
+// *Points, *Draws, *Progress or *Finished. A frame and its slices belong to the
+// engine (Points and Draws frames are reused) and are valid only during
+// the send call that carries it.
 type Frame interface{ frame() }
 
 // Registered acknowledges the registration.

@@ -50,6 +50,7 @@ type Session struct {
 	epsSteps   int      // steps at which the bound meets Wants.Eps; −1 if never or not asked
 	log        *DrawLog // nil when followers are not served
 	draws      Draws    // reused frame
+	points     Points   // reused frame
 	stepMean   []float64
 	stepM2     []float64
 	drawChains []int
@@ -531,7 +532,8 @@ func (s *Session) sendPoints(req *kernels.Request, send func(Frame) error) error
 	for p := range n {
 		lo := p * s.rowsPerPart
 		hi := min(lo+s.rowsPerPart, req.Rows)
-		f := &Points{RequestID: s.requestID, FirstRow: lo, Rows: hi - lo, TotalRows: req.Rows, Dim: dim,
+		f := &s.points // reused: a frame is valid only during its send call
+		*f = Points{RequestID: s.requestID, FirstRow: lo, Rows: hi - lo, TotalRows: req.Rows, Dim: dim,
 			Points: req.Points[lo*dim : hi*dim], Chains: req.Chain[lo:hi], Need: req.Need}
 		if req.Need.Has(kernels.NeedHessianVector) {
 			f.Vectors = req.Vectors[lo*dim : hi*dim]
