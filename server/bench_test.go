@@ -131,7 +131,9 @@ func runInproc(tg targets.Target, c transportCase, start []float64) []float64 {
 // tg, and returns the summary, the draws of the last step, and the time
 // from opening the session to the arrival of its last draw (the rest, the
 // final summary with its diagnostics, is computed once per session).
-func runSession(ctx context.Context, conn grpc.ClientConnInterface, tg targets.Target, c transportCase, steps int, start []float64) (*client.Summary, []float64, time.Duration, error) {
+// With full, the client asks for every draw's values instead of letting
+// the server name the draws it has just sent as points.
+func runSession(ctx context.Context, conn grpc.ClientConnInterface, tg targets.Target, c transportCase, steps int, start []float64, full bool) (*client.Summary, []float64, time.Duration, error) {
 	spec := client.Spec{Dim: c.dim, Chains: c.chains, Kernel: "lmc", Start: start, Step: benchStep,
 		BurnIn: 0, KeepEvery: 1, DrawsPerChain: int64(steps), Seed: benchSeed, MaxMessageBytes: floorMessageBytes}
 	last := make([]float64, c.chains*c.dim)
@@ -147,17 +149,25 @@ func runSession(ctx context.Context, conn grpc.ClientConnInterface, tg targets.T
 			toLast = time.Since(t0)
 		}
 	})
-	sum, err := client.Run(ctx, conn, spec, eval, onDraws)
+	opts := []client.Option{onDraws}
+	if full {
+		opts = append(opts, client.FullDraws())
+	}
+	sum, err := client.Run(ctx, conn, spec, eval, opts...)
 	return sum, last, toLast, err
 }
 
 // BenchmarkTransport measures, side by side in each iteration, the draws
 // per second of one LMC configuration (same target, kernel and seed)
-// driven three ways: in-process; as a session of a real server over
-// loopback TCP; and the bare transport floor, an engine-free ping-pong of
-// the same payload each way on the same stream type (echoService). A draw
-// is one chain's state after one step. tcp/floor is the session's time
-// per step over the floor's per round trip (TOOLCHAIN.md aims at ≤ 1.2).
+// driven four ways: in-process; as a session of a real server over
+// loopback TCP, where the draws the client has just received as points
+// are named rather than sent again (the default); the same session with
+// every draw's values sent (client.FullDraws); and the bare transport
+// floor, an engine-free ping-pong of the same payload each way on the
+// same stream type (echoService). A draw is one chain's state after one
+// step. tcp/floor is the session's time per step over the floor's per
+// round trip (TOOLCHAIN.md aims at ≤ 1.2); full/tcp is what sending the
+// draws again costs.
 // Every session is checked to deliver chains×steps draws whose last step
 // equals the in-process run bit for bit.
 func BenchmarkTransport(b *testing.B) {
@@ -174,15 +184,17 @@ func BenchmarkTransport(b *testing.B) {
 			defer cancel()
 
 			warm := min(c.steps, warmSteps)
-			if _, _, _, err := runSession(ctx, tcp, tg, c, warm, start); err != nil {
-				b.Fatal(err)
+			for _, full := range []bool{false, true} {
+				if _, _, _, err := runSession(ctx, tcp, tg, c, warm, start, full); err != nil {
+					b.Fatal(err)
+				}
 			}
 			if err := runFloor(ctx, floor, warm, 1, payload); err != nil {
 				b.Fatal(err)
 			}
 
 			b.ReportAllocs()
-			var inT, tcpT, floorT, summaryT time.Duration
+			var inT, tcpT, fullT, floorT, summaryT time.Duration
 			iters := 0
 			for b.Loop() {
 				t0 := time.Now()
@@ -192,24 +204,30 @@ func BenchmarkTransport(b *testing.B) {
 				}
 				inT += time.Since(t0)
 
-				t0 = time.Now()
-				sum, got, toLast, err := runSession(ctx, tcp, tg, c, c.steps, start)
-				tcpT += toLast
-				summaryT += time.Since(t0) - toLast
-				if err != nil {
-					b.Fatal(err)
-				}
-				if sum.Reason != client.DrawsCollected || sum.DrawsReceived != int64(c.chains*c.steps) {
-					b.Fatalf("session: reason %v, %d draws received, want %d", sum.Reason, sum.DrawsReceived, c.chains*c.steps)
-				}
-				for i := range want {
-					if math.Float64bits(got[i]) != math.Float64bits(want[i]) {
-						b.Fatalf("last draw, value %d: %v over TCP, %v in-process", i, got[i], want[i])
+				for _, full := range []bool{false, true} {
+					t0 = time.Now()
+					sum, got, toLast, err := runSession(ctx, tcp, tg, c, c.steps, start, full)
+					if full {
+						fullT += toLast
+					} else {
+						tcpT += toLast
+						summaryT += time.Since(t0) - toLast
+					}
+					if err != nil {
+						b.Fatal(err)
+					}
+					if sum.Reason != client.DrawsCollected || sum.DrawsReceived != int64(c.chains*c.steps) {
+						b.Fatalf("session: reason %v, %d draws received, want %d", sum.Reason, sum.DrawsReceived, c.chains*c.steps)
+					}
+					for i := range want {
+						if math.Float64bits(got[i]) != math.Float64bits(want[i]) {
+							b.Fatalf("last draw (full draws %v), value %d: %v over TCP, %v in-process", full, i, got[i], want[i])
+						}
 					}
 				}
 
 				t0 = time.Now()
-				err = runFloor(ctx, floor, c.steps, 1, payload)
+				err := runFloor(ctx, floor, c.steps, 1, payload)
 				floorT += time.Since(t0)
 				if err != nil {
 					b.Fatal(err)
@@ -226,6 +244,8 @@ func BenchmarkTransport(b *testing.B) {
 			b.ReportMetric(steps/floorT.Seconds(), "floor-steps/s")
 			b.ReportMetric(tcpRate/inRate, "tcp/inproc")
 			b.ReportMetric(tcpT.Seconds()/floorT.Seconds(), "tcp/floor")
+			b.ReportMetric(fullT.Seconds()/floorT.Seconds(), "full/floor")
+			b.ReportMetric(fullT.Seconds()/tcpT.Seconds(), "full/tcp")
 			b.ReportMetric(tcpT.Seconds()*1e6/steps, "us/step-tcp")
 			b.ReportMetric(floorT.Seconds()*1e6/steps, "us/rtt-floor")
 			b.ReportMetric(summaryT.Seconds()*1e3/float64(iters), "ms-summary/session")

@@ -35,6 +35,9 @@ type echoService struct {
 	maxRounds int    // round trips allowed per stream
 	down      int    // frames sent back per round (>= 1)
 	payload   []byte // the bytes of every frame sent back, and the size expected up
+	// later, when not nil, is sent instead of the payload for every frame
+	// of a round after the first (draws sent by reference).
+	later *sluicev1.SessionResponse
 }
 
 func (e *echoService) Session(st sluicev1.SluiceService_SessionServer) error {
@@ -54,8 +57,12 @@ func (e *echoService) Session(st sluicev1.SluiceService_SessionServer) error {
 		if n := len(req.GetEvaluations().GetGradients()); n != len(e.payload) {
 			return status.Errorf(codes.InvalidArgument, "gradients of %d bytes, want %d", n, len(e.payload))
 		}
-		for range e.down {
-			if err := st.Send(resp); err != nil {
+		for j := range e.down {
+			r := resp
+			if j > 0 && e.later != nil {
+				r = e.later
+			}
+			if err := st.Send(r); err != nil {
 				return err
 			}
 		}
@@ -75,7 +82,8 @@ func serveLoopback(b *testing.B, serve func(net.Listener) error, stop func()) *g
 	done := make(chan struct{})
 	go func() { _ = serve(lis); close(done) }()
 	conn, err := grpc.NewClient(lis.Addr().String(), grpc.WithTransportCredentials(insecure.NewCredentials()),
-		experimental.WithBufferPool(server.BufferPool()))
+		experimental.WithBufferPool(server.BufferPool()), // as the server, and client.Dial's windows
+		grpc.WithInitialWindowSize(server.StreamWindowBytes), grpc.WithInitialConnWindowSize(server.ConnWindowBytes))
 	if err != nil {
 		stop()
 		<-done
@@ -92,10 +100,30 @@ func serveLoopback(b *testing.B, serve func(net.Listener) error, stop func()) *g
 // startFloor serves an echoService of up to rounds round trips per
 // stream, payload bytes each way, down frames back per round.
 func startFloor(b *testing.B, rounds, down int, payload []byte) *grpc.ClientConn {
+	return startEcho(b, &echoService{maxRounds: rounds, down: down, payload: payload})
+}
+
+// startFloorRefs is startFloor with two frames back per round: the
+// payload, then a Draws frame naming chains rows of it, as a session
+// sends the draws of a step whose next request asks at them.
+func startFloorRefs(b *testing.B, rounds, chains int, payload []byte) *grpc.ClientConn {
+	d := &sluicev1.Draws{Rows: int32(chains), Dim: int32(len(payload) / 8 / chains), FromRequestId: 1}
+	for c := range chains {
+		d.Chains = append(d.Chains, int32(c))
+		d.Iterations = append(d.Iterations, 1)
+		d.PointRows = append(d.PointRows, int32(c))
+	}
+	return startEcho(b, &echoService{maxRounds: rounds, down: 2, payload: payload,
+		later: &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Draws{Draws: d}}})
+}
+
+func startEcho(b *testing.B, e *echoService) *grpc.ClientConn {
 	b.Helper()
 	gs := grpc.NewServer(grpc.MaxRecvMsgSize(floorMessageBytes), grpc.MaxSendMsgSize(floorMessageBytes),
-		experimental.BufferPool(server.BufferPool())) // the same buffers as the session's server
-	sluicev1.RegisterSluiceServiceServer(gs, &echoService{maxRounds: rounds, down: down, payload: payload})
+		// the same buffers and windows as the session's server
+		experimental.BufferPool(server.BufferPool()),
+		grpc.InitialWindowSize(server.StreamWindowBytes), grpc.InitialConnWindowSize(server.ConnWindowBytes))
+	sluicev1.RegisterSluiceServiceServer(gs, e)
 	return serveLoopback(b, gs.Serve, gs.Stop)
 }
 
@@ -116,10 +144,13 @@ func runFloor(ctx context.Context, conn *grpc.ClientConn, rounds, down int, payl
 		if err := st.Send(req); err != nil {
 			return fmt.Errorf("round %d: send: %w", i, err)
 		}
-		for range down {
+		for j := range down {
 			resp, err := st.Recv()
 			if err != nil {
 				return fmt.Errorf("round %d: recv: %w", i, err)
+			}
+			if resp.GetDraws() != nil && j > 0 {
+				continue // a draws frame by reference (startFloorRefs)
 			}
 			if n := len(resp.GetPoints().GetPoints()); n != len(payload) {
 				return fmt.Errorf("round %d: reply of %d bytes, want %d", i, n, len(payload))
@@ -139,13 +170,17 @@ func runFloor(ctx context.Context, conn *grpc.ClientConn, rounds, down int, payl
 // shapes it: one rows×dim message up (the gradients) and two down (the
 // Points of the next step and the Draws of the step just made), against
 // the one-each-way floor of BenchmarkTransport. The gap between the two is
-// what sending draws costs on the wire, before any engine work.
+// what sending draws costs on the wire, before any engine work; 2down-ref
+// is the same with the Draws frame naming the points just sent
+// (Draws.point_rows), as a session does for a client that accepts
+// references.
 func BenchmarkFloorWithDraws(b *testing.B) {
 	for _, c := range transportCases {
 		b.Run(c.name(), func(b *testing.B) {
 			payload := make([]byte, 8*c.dim*c.chains)
 			conn1 := startFloor(b, c.steps, 1, payload)
 			conn2 := startFloor(b, c.steps, 2, payload)
+			connRef := startFloorRefs(b, c.steps, c.chains, payload)
 			ctx, cancel := context.WithTimeout(context.Background(), 5*time.Minute)
 			defer cancel()
 			warm := min(c.steps, warmSteps)
@@ -155,8 +190,11 @@ func BenchmarkFloorWithDraws(b *testing.B) {
 			if err := runFloor(ctx, conn2, warm, 2, payload); err != nil {
 				b.Fatal(err)
 			}
+			if err := runFloor(ctx, connRef, warm, 2, payload); err != nil {
+				b.Fatal(err)
+			}
 			b.ReportAllocs()
-			var one, two time.Duration
+			var one, two, ref time.Duration
 			iters := 0
 			for b.Loop() {
 				t0 := time.Now()
@@ -169,12 +207,18 @@ func BenchmarkFloorWithDraws(b *testing.B) {
 					b.Fatal(err)
 				}
 				two += time.Since(t0)
+				t0 = time.Now()
+				if err := runFloor(ctx, connRef, c.steps, 2, payload); err != nil {
+					b.Fatal(err)
+				}
+				ref += time.Since(t0)
 				iters++
 			}
 			rounds := float64(c.steps * iters)
 			b.ReportMetric(one.Seconds()*1e6/rounds, "us/rtt-1down")
 			b.ReportMetric(two.Seconds()*1e6/rounds, "us/rtt-2down")
 			b.ReportMetric(float64(two)/float64(one), "2down/1down")
+			b.ReportMetric(float64(ref)/float64(one), "2down-ref/1down")
 		})
 	}
 }
@@ -191,7 +235,7 @@ func BenchmarkSessionLoopback(b *testing.B) {
 			conn := serveLoopback(b, srv.Serve, srv.Stop)
 			ctx, cancel := context.WithTimeout(context.Background(), 5*time.Minute)
 			defer cancel()
-			if _, _, _, err := runSession(ctx, conn, tg, c, min(c.steps, warmSteps), start); err != nil {
+			if _, _, _, err := runSession(ctx, conn, tg, c, min(c.steps, warmSteps), start, false); err != nil {
 				b.Fatal(err)
 			}
 			b.ReportAllocs()
@@ -199,7 +243,7 @@ func BenchmarkSessionLoopback(b *testing.B) {
 			iters := 0
 			for b.Loop() {
 				t0 := time.Now()
-				sum, _, _, err := runSession(ctx, conn, tg, c, c.steps, start)
+				sum, _, _, err := runSession(ctx, conn, tg, c, c.steps, start, false)
 				total += time.Since(t0)
 				if err != nil {
 					b.Fatal(err)
