@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"math"
 	"math/rand/v2"
+	"syscall"
 	"testing"
 	"time"
 
@@ -127,13 +128,25 @@ func runInproc(tg targets.Target, c transportCase, start []float64) []float64 {
 	return k.Positions()
 }
 
+// cpuTime is the CPU time, user and system, this process has used: the
+// server's work and the client's alike, as both run here. On a machine
+// shared with other work, a step's CPU time moves far less than its wall
+// time, which also counts the waits for a core.
+func cpuTime() time.Duration {
+	var ru syscall.Rusage
+	if err := syscall.Getrusage(syscall.RUSAGE_SELF, &ru); err != nil {
+		return 0
+	}
+	return time.Duration(ru.Utime.Nano() + ru.Stime.Nano())
+}
+
 // runSession runs one session of steps steps over conn, answering with
 // tg, and returns the summary, the draws of the last step, and the time
 // from opening the session to the arrival of its last draw (the rest, the
 // final summary with its diagnostics, is computed once per session).
 // With full, the client asks for every draw's values instead of letting
 // the server name the draws it has just sent as points.
-func runSession(ctx context.Context, conn grpc.ClientConnInterface, tg targets.Target, c transportCase, steps int, start []float64, full bool) (*client.Summary, []float64, time.Duration, error) {
+func runSession(ctx context.Context, conn grpc.ClientConnInterface, tg targets.Target, c transportCase, steps int, start []float64, full bool) (*client.Summary, []float64, time.Duration, time.Duration, error) {
 	spec := client.Spec{Dim: c.dim, Chains: c.chains, Kernel: "lmc", Start: start, Step: benchStep,
 		BurnIn: 0, KeepEvery: 1, DrawsPerChain: int64(steps), Seed: benchSeed, MaxMessageBytes: floorMessageBytes}
 	last := make([]float64, c.chains*c.dim)
@@ -141,12 +154,12 @@ func runSession(ctx context.Context, conn grpc.ClientConnInterface, tg targets.T
 		targets.EvalBatch(tg, bt.Points, bt.Rows, bt.Grad, nil)
 		return nil
 	}
-	t0 := time.Now()
-	var toLast time.Duration
+	t0, cpu0 := time.Now(), cpuTime()
+	var toLast, cpuToLast time.Duration
 	onDraws := client.OnDraws(func(d *client.Draws) {
 		if d.Rows > 0 && d.Iterations[0] == int64(steps) {
 			copy(last[d.Chains[0]*c.dim:], d.Values)
-			toLast = time.Since(t0)
+			toLast, cpuToLast = time.Since(t0), cpuTime()-cpu0
 		}
 	})
 	opts := []client.Option{onDraws}
@@ -154,7 +167,7 @@ func runSession(ctx context.Context, conn grpc.ClientConnInterface, tg targets.T
 		opts = append(opts, client.FullDraws())
 	}
 	sum, err := client.Run(ctx, conn, spec, eval, opts...)
-	return sum, last, toLast, err
+	return sum, last, toLast, cpuToLast, err
 }
 
 // BenchmarkTransport measures, side by side in each iteration, the draws
@@ -185,7 +198,7 @@ func BenchmarkTransport(b *testing.B) {
 
 			warm := min(c.steps, warmSteps)
 			for _, full := range []bool{false, true} {
-				if _, _, _, err := runSession(ctx, tcp, tg, c, warm, start, full); err != nil {
+				if _, _, _, _, err := runSession(ctx, tcp, tg, c, warm, start, full); err != nil {
 					b.Fatal(err)
 				}
 			}
@@ -194,7 +207,7 @@ func BenchmarkTransport(b *testing.B) {
 			}
 
 			b.ReportAllocs()
-			var inT, tcpT, fullT, floorT, summaryT time.Duration
+			var inT, tcpT, fullT, floorT, summaryT, tcpC, fullC, floorC time.Duration
 			iters := 0
 			for b.Loop() {
 				t0 := time.Now()
@@ -208,11 +221,13 @@ func BenchmarkTransport(b *testing.B) {
 				// that neither always runs on the warmer machine.
 				for _, full := range []bool{iters%2 == 1, iters%2 == 0} {
 					t0 = time.Now()
-					sum, got, toLast, err := runSession(ctx, tcp, tg, c, c.steps, start, full)
+					sum, got, toLast, cpu, err := runSession(ctx, tcp, tg, c, c.steps, start, full)
 					if full {
 						fullT += toLast
+						fullC += cpu
 					} else {
 						tcpT += toLast
+						tcpC += cpu
 						summaryT += time.Since(t0) - toLast
 					}
 					if err != nil {
@@ -228,9 +243,10 @@ func BenchmarkTransport(b *testing.B) {
 					}
 				}
 
-				t0 = time.Now()
+				t0, c0 := time.Now(), cpuTime()
 				err := runFloor(ctx, floor, c.steps, 1, payload)
 				floorT += time.Since(t0)
+				floorC += cpuTime() - c0
 				if err != nil {
 					b.Fatal(err)
 				}
@@ -248,6 +264,13 @@ func BenchmarkTransport(b *testing.B) {
 			b.ReportMetric(tcpT.Seconds()/floorT.Seconds(), "tcp/floor")
 			b.ReportMetric(fullT.Seconds()/floorT.Seconds(), "full/floor")
 			b.ReportMetric(fullT.Seconds()/tcpT.Seconds(), "full/tcp")
+			// CPU time per step of the whole process (server and client):
+			// steadier than wall time on a shared machine.
+			b.ReportMetric(tcpC.Seconds()*1e6/steps, "cpu-us/step-tcp")
+			b.ReportMetric(fullC.Seconds()*1e6/steps, "cpu-us/step-full")
+			b.ReportMetric(floorC.Seconds()*1e6/steps, "cpu-us/rtt-floor")
+			b.ReportMetric(tcpC.Seconds()/floorC.Seconds(), "cpu-tcp/floor")
+			b.ReportMetric(fullC.Seconds()/tcpC.Seconds(), "cpu-full/tcp")
 			b.ReportMetric(tcpT.Seconds()*1e6/steps, "us/step-tcp")
 			b.ReportMetric(floorT.Seconds()*1e6/steps, "us/rtt-floor")
 			b.ReportMetric(summaryT.Seconds()*1e3/float64(iters), "ms-summary/session")

@@ -235,7 +235,7 @@ func BenchmarkSessionLoopback(b *testing.B) {
 			conn := serveLoopback(b, srv.Serve, srv.Stop)
 			ctx, cancel := context.WithTimeout(context.Background(), 5*time.Minute)
 			defer cancel()
-			if _, _, _, err := runSession(ctx, conn, tg, c, min(c.steps, warmSteps), start, false); err != nil {
+			if _, _, _, _, err := runSession(ctx, conn, tg, c, min(c.steps, warmSteps), start, false); err != nil {
 				b.Fatal(err)
 			}
 			b.ReportAllocs()
@@ -243,7 +243,7 @@ func BenchmarkSessionLoopback(b *testing.B) {
 			iters := 0
 			for b.Loop() {
 				t0 := time.Now()
-				sum, _, _, err := runSession(ctx, conn, tg, c, c.steps, start, false)
+				sum, _, _, _, err := runSession(ctx, conn, tg, c, c.steps, start, false)
 				total += time.Since(t0)
 				if err != nil {
 					b.Fatal(err)
