@@ -194,24 +194,21 @@ func BenchmarkFloorWithDraws(b *testing.B) {
 				b.Fatal(err)
 			}
 			b.ReportAllocs()
-			var one, two, ref time.Duration
+			var one, two, ref, oneC, twoC, refC time.Duration
 			iters := 0
 			for b.Loop() {
-				t0 := time.Now()
-				if err := runFloor(ctx, conn1, c.steps, 1, payload); err != nil {
-					b.Fatal(err)
+				for _, m := range []struct {
+					conn      *grpc.ClientConn
+					down      int
+					wall, cpu *time.Duration
+				}{{conn1, 1, &one, &oneC}, {conn2, 2, &two, &twoC}, {connRef, 2, &ref, &refC}} {
+					t0, c0 := time.Now(), cpuTime()
+					if err := runFloor(ctx, m.conn, c.steps, m.down, payload); err != nil {
+						b.Fatal(err)
+					}
+					*m.wall += time.Since(t0)
+					*m.cpu += cpuTime() - c0
 				}
-				one += time.Since(t0)
-				t0 = time.Now()
-				if err := runFloor(ctx, conn2, c.steps, 2, payload); err != nil {
-					b.Fatal(err)
-				}
-				two += time.Since(t0)
-				t0 = time.Now()
-				if err := runFloor(ctx, connRef, c.steps, 2, payload); err != nil {
-					b.Fatal(err)
-				}
-				ref += time.Since(t0)
 				iters++
 			}
 			rounds := float64(c.steps * iters)
@@ -219,6 +216,8 @@ func BenchmarkFloorWithDraws(b *testing.B) {
 			b.ReportMetric(two.Seconds()*1e6/rounds, "us/rtt-2down")
 			b.ReportMetric(float64(two)/float64(one), "2down/1down")
 			b.ReportMetric(float64(ref)/float64(one), "2down-ref/1down")
+			b.ReportMetric(float64(twoC)/float64(oneC), "cpu-2down/1down")
+			b.ReportMetric(float64(refC)/float64(oneC), "cpu-2down-ref/1down")
 		})
 	}
 }
