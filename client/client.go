@@ -346,6 +346,7 @@ type config struct {
 	callOpts     []grpc.CallOption
 	keepDraws    bool
 	resume       ResumePolicy
+	fullDraws    bool
 }
 
 // OnRegistered calls f once the server accepted the session.
@@ -356,6 +357,12 @@ func OnDraws(f func(*Draws)) Option { return func(c *config) { c.onDraws = f } }
 
 // OnProgress calls f for every progress report.
 func OnProgress(f func(*Progress)) Option { return func(c *config) { c.onProgress = f } }
+
+// FullDraws asks the server to send every draw's values. By default the
+// client lets the server name draws that equal points it has just sent
+// (most kernels' next request asks at the positions just reached) and
+// rebuilds them; OnDraws and the Summary see the same values either way.
+func FullDraws() Option { return func(c *config) { c.fullDraws = true } }
 
 // WithCallOptions adds gRPC call options to the session's stream.
 func WithCallOptions(o ...grpc.CallOption) Option {
@@ -399,6 +406,7 @@ func Run(ctx context.Context, cc grpc.ClientConnInterface, spec Spec, eval Evalu
 	}
 	pol := cfg.resume.withDefaults()
 	reg := registerFrame(spec, limit)
+	reg.GetRegister().AcceptsDrawReferences = !cfg.fullDraws
 	for tries := 0; ; {
 		err := r.open(ctx, sluicev1.NewSluiceServiceClient(cc), reg, callOpts)
 		var sum *Summary
@@ -525,6 +533,12 @@ type runner struct {
 	// server.
 	sendClosed bool
 	out        []byte
+	// held holds the points of request heldID (heldRows×Dim values, those
+	// of every part received so far), which Draws frames may refer to;
+	// heldDim is their dimension.
+	held              []float64
+	heldID            uint64
+	heldRows, heldDim int
 }
 
 func (r *runner) loop(ctx context.Context) (*Summary, error) {
@@ -554,6 +568,9 @@ func (r *runner) loop(ctx context.Context) (*Summary, error) {
 				r.cfg.onRegistered(&r.sum.Registered)
 			}
 		case *sluicev1.SessionResponse_Points:
+			if err := r.hold(f.Points); err != nil {
+				return r.result(err)
+			}
 			if r.evalErr != nil || r.sendClosed {
 				continue // Stop already sent, or the server is finishing
 			}
@@ -590,10 +607,11 @@ func (r *runner) answer(ctx context.Context, p *sluicev1.Points) error {
 	b := &r.batch
 	b.Rows, b.Dim = int(p.GetRows()), int(p.GetDim())
 	n := b.Rows * b.Dim
-	if len(p.GetPoints()) != 8*n || len(p.GetChains()) != b.Rows {
-		return fmt.Errorf("client: malformed points frame: %d bytes and %d chains for %d×%d", len(p.GetPoints()), len(p.GetChains()), b.Rows, b.Dim)
-	}
-	b.Points = getFloats(b.Points[:0], p.GetPoints())
+	// hold checked the frame's shape and decoded its points; the batch
+	// gets a copy, so that an evaluator writing into it cannot change
+	// the draws rebuilt from them.
+	first := int(p.GetFirstRow()) * b.Dim
+	b.Points = append(b.Points[:0], r.held[first:first+n]...)
 	b.Chains = b.Chains[:0]
 	for _, c := range p.GetChains() {
 		b.Chains = append(b.Chains, int(c))
@@ -654,13 +672,54 @@ func (r *runner) answer(ctx context.Context, p *sluicev1.Points) error {
 	return r.stream.Send(&sluicev1.SessionRequest{Frame: &sluicev1.SessionRequest_Evaluations{Evaluations: ev}})
 }
 
+// hold checks a Points frame's shape and decodes its points into r.held,
+// at their rows within the request; a frame of another request than the
+// one held starts a new one.
+func (r *runner) hold(p *sluicev1.Points) error {
+	rows, dim, first, total := int(p.GetRows()), int(p.GetDim()), int(p.GetFirstRow()), int(p.GetTotalRows())
+	n := rows * dim
+	if len(p.GetPoints()) != 8*n || len(p.GetChains()) != rows {
+		return fmt.Errorf("client: malformed points frame: %d bytes and %d chains for %d×%d", len(p.GetPoints()), len(p.GetChains()), rows, dim)
+	}
+	if dim < 1 || first < 0 || first+rows > total && first > 0 {
+		return fmt.Errorf("client: malformed points frame: rows %d to %d of %d, dimension %d", first, first+rows, total, dim)
+	}
+	total = max(total, rows) // a frame without total_rows is a whole request
+	if p.GetRequestId() != r.heldID || r.heldRows != total || r.heldDim != dim {
+		r.heldID, r.heldRows, r.heldDim = p.GetRequestId(), total, dim
+		r.held = resize(r.held, total*dim)
+	}
+	if _, err := wire.DecodeFloats(r.held[first*dim:first*dim], p.GetPoints()); err != nil {
+		return fmt.Errorf("client: malformed points frame: %w", err)
+	}
+	return nil
+}
+
+// deliver checks a Draws frame and hands its draws on, rebuilding those
+// sent by reference from the points held.
 func (r *runner) deliver(w *sluicev1.Draws) error {
 	d := &r.draws
 	d.Seq, d.Rows, d.Dim = w.GetSeq(), int(w.GetRows()), int(w.GetDim())
 	if d.Seq != r.nextSeq {
 		return fmt.Errorf("%w: got sequence %d, expected %d", ErrDrawsLost, d.Seq, r.nextSeq)
 	}
-	if len(w.GetValues()) != 8*d.Rows*d.Dim || len(w.GetChains()) != d.Rows || len(w.GetIterations()) != d.Rows {
+	sent := d.Rows // rows whose values are in the frame
+	if pr := w.GetPointRows(); len(pr) > 0 {
+		if len(pr) != d.Rows || w.GetFromRequestId() != r.heldID || d.Dim != r.heldDim {
+			return fmt.Errorf("client: draws frame at sequence %d refers to request %d (dimension %d), but the points held are of request %d (dimension %d)",
+				d.Seq, w.GetFromRequestId(), d.Dim, r.heldID, r.heldDim)
+		}
+		sent = 0
+		for _, row := range pr {
+			switch {
+			case row < 0:
+				sent++
+			case int(row) >= r.heldRows:
+				return fmt.Errorf("client: draws frame at sequence %d refers to row %d of a request of %d rows", d.Seq, row, r.heldRows)
+			}
+		}
+	}
+	if len(w.GetValues()) != 8*sent*d.Dim || len(w.GetChains()) != d.Rows || len(w.GetIterations()) != d.Rows {
 		return fmt.Errorf("client: malformed draws frame at sequence %d", d.Seq)
 	}
 	r.nextSeq += uint64(d.Rows)
@@ -669,7 +728,11 @@ func (r *runner) deliver(w *sluicev1.Draws) error {
 	if r.cfg.onDraws == nil && r.sum.Draws == nil {
 		return nil
 	}
-	d.Values = getFloats(d.Values[:0], w.GetValues())
+	if pr := w.GetPointRows(); len(pr) > 0 {
+		d.Values = r.rebuild(d.Values, pr, w.GetValues())
+	} else {
+		d.Values = getFloats(d.Values[:0], w.GetValues())
+	}
 	d.Chains = d.Chains[:0]
 	for _, c := range w.GetChains() {
 		d.Chains = append(d.Chains, int(c))
@@ -680,6 +743,24 @@ func (r *runner) deliver(w *sluicev1.Draws) error {
 		r.cfg.onDraws(d)
 	}
 	return nil
+}
+
+// rebuild returns dst filled with the draws of a frame sent by reference:
+// row i is row pr[i] of the points held, or the next row of vals when
+// pr[i] is −1 (deliver checked the rows and the length of vals).
+func (r *runner) rebuild(dst []float64, pr []int32, vals []byte) []float64 {
+	dim := r.heldDim
+	dst = resize(dst, len(pr)*dim)
+	for i, row := range pr {
+		out := dst[i*dim : (i+1)*dim]
+		if row >= 0 {
+			copy(out, r.held[int(row)*dim:(int(row)+1)*dim])
+			continue
+		}
+		_, _ = wire.DecodeFloats(out[:0], vals[:8*dim])
+		vals = vals[8*dim:]
+	}
+	return dst
 }
 
 var reasonFromWire = map[sluicev1.FinishReason]Reason{

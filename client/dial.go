@@ -79,6 +79,11 @@ func Dial(target string, opts ...DialOption) (*grpc.ClientConn, error) {
 	dopts := append([]grpc.DialOption{
 		grpc.WithTransportCredentials(creds),
 		grpc.WithDefaultCallOptions(grpc.MaxCallRecvMsgSize(cfg.maxMessageBytes), grpc.MaxCallSendMsgSize(cfg.maxMessageBytes)),
+		// The server's flow-control windows (server.StreamWindowBytes,
+		// server.ConnWindowBytes, which says why): a lock-step session has
+		// at most about two frames in flight each way, and 4 MiB, the
+		// default message limit, lets one go out whole.
+		grpc.WithInitialWindowSize(4 << 20), grpc.WithInitialConnWindowSize(16 << 20),
 	}, cfg.grpcOpts...)
 	return grpc.NewClient(target, dopts...)
 }

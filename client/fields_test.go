@@ -22,9 +22,12 @@ import (
 // changes the value this client decodes from it.
 
 // registerNotFromSpec lists Register leaves that no Spec field sets on
-// purpose: none (start_rows is derived from the length of Start and
-// noise.kind from the presence of Noise, and both are checked here).
-var registerNotFromSpec = []string{}
+// purpose (start_rows is derived from the length of Start and noise.kind
+// from the presence of Noise, and both are checked here):
+// accepts_draw_references says what this client can do, not what the
+// session is; Run sets it unless given the FullDraws option
+// (TestDrawReferencesAreRebuilt).
+var registerNotFromSpec = []string{"accepts_draw_references"}
 
 // planRequestNotFromSpec lists PlanRequest leaves that Plan leaves unset on
 // purpose: the request carries the start distance and second moment as

@@ -69,6 +69,7 @@ func specFromWire(r *sluicev1.Register) (session.Spec, error) {
 		BurnIn:             r.GetBurnIn(),
 		KeepEvery:          r.GetKeepEvery(),
 		DrawsPerChain:      r.GetDrawsPerChain(),
+		DrawReferences:     r.GetAcceptsDrawReferences(),
 		MaxEvaluations:     r.GetMaxEvaluations(),
 		MaxTime:            maxTime,
 		ProgressEverySteps: r.GetProgressEverySteps(), CheckpointEverySteps: r.GetCheckpointEverySteps(),
@@ -135,6 +136,8 @@ func messageFromWire(f *sluicev1.SessionRequest, gradBuf *[]float64) session.Mes
 type encoder struct {
 	buf []byte
 	i32 []int32
+	// rows holds a Draws frame's point rows (i32 holds its chains).
+	rows []int32
 	// maxParams is how many per-parameter entries a Progress or Finished
 	// frame may carry within the message limit (0: no cap).
 	maxParams int
@@ -151,11 +154,16 @@ func (e *encoder) floats(v []float64) []byte {
 }
 
 func (e *encoder) ints(v []int) []int32 {
-	e.i32 = e.i32[:0]
-	for _, x := range v {
-		e.i32 = append(e.i32, int32(x))
-	}
+	e.i32 = appendInt32(e.i32[:0], v)
 	return e.i32
+}
+
+// appendInt32 appends v to dst as int32 values.
+func appendInt32(dst []int32, v []int) []int32 {
+	for _, x := range v {
+		dst = append(dst, int32(x))
+	}
+	return dst
 }
 
 func (e *encoder) frame(f session.Frame) *sluicev1.SessionResponse {
@@ -192,9 +200,13 @@ func (e *encoder) frame(f session.Frame) *sluicev1.SessionResponse {
 		p.Quantities = q
 		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Points{Points: p}}
 	case *session.Draws:
-		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Draws{Draws: &sluicev1.Draws{
-			Seq: f.Seq, Rows: int32(f.Rows), Dim: int32(f.Dim), Values: e.floats(f.Values),
-			Chains: e.ints(f.Chains), Iterations: f.Iterations}}}
+		d := &sluicev1.Draws{Seq: f.Seq, Rows: int32(f.Rows), Dim: int32(f.Dim), Values: e.floats(f.Values),
+			Chains: e.ints(f.Chains), Iterations: f.Iterations}
+		if f.PointRows != nil {
+			e.rows = appendInt32(e.rows[:0], f.PointRows)
+			d.FromRequestId, d.PointRows = f.FromRequestID, e.rows
+		}
+		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Draws{Draws: d}}
 	case *session.Progress:
 		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Progress{Progress: e.progress(f)}}
 	case *session.Finished:

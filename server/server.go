@@ -160,6 +160,7 @@ func New(o Options) *Server {
 		grpc.ChainUnaryInterceptor(s.recoverUnary),
 		grpc.ChainStreamInterceptor(s.recoverStream),
 		experimental.BufferPool(BufferPool()),
+		grpc.InitialWindowSize(StreamWindowBytes), grpc.InitialConnWindowSize(ConnWindowBytes),
 	}, o.GRPCOptions...)
 	s.grpc = grpc.NewServer(gopts...)
 	sluicev1.RegisterSluiceServiceServer(s.grpc, s)
@@ -171,6 +172,22 @@ func New(o Options) *Server {
 	s.startSweep()
 	return s
 }
+
+// Flow-control windows, set on both ends (client.Dial uses the same). A
+// session is lock-step: per step the server sends a Points frame (and
+// the Draws frame, a Progress frame now and then) and waits for one
+// Evaluations frame, so no more than about two frames are in flight per
+// direction. A stream window of 4 MiB, the default message limit, lets
+// a frame of that size go out whole, with no wait for a window update
+// half-way; the connection window holds four such streams. Fixed windows
+// also turn off gRPC's bandwidth-delay estimation, whose ping rides on
+// every round trip of a lock-step stream. The windows are credit, not
+// memory: a receiver buffers up to them only when its reader stalls, and
+// the session's reader never does for longer than its inbox allows.
+const (
+	StreamWindowBytes = 4 << 20
+	ConnWindowBytes   = 16 << 20
+)
 
 // BufferPool returns gRPC buffers in power-of-two sizes from 256 B to
 // 64 MiB, without clearing them. gRPC's default pool jumps from 32 KiB to

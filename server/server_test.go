@@ -30,15 +30,15 @@ import (
 
 // start serves srv over an in-memory listener and returns a connection;
 // everything is torn down, and goroutine leaks checked, at cleanup.
-func start(t *testing.T, o server.Options) (*grpc.ClientConn, *server.Server) {
+func start(t *testing.T, o server.Options, dial ...grpc.DialOption) (*grpc.ClientConn, *server.Server) {
 	t.Helper()
 	lis := bufconn.Listen(1 << 20)
 	srv := server.New(o)
 	done := make(chan struct{})
 	go func() { _ = srv.Serve(lis); close(done) }()
-	conn, err := grpc.NewClient("passthrough:///bufnet",
+	conn, err := grpc.NewClient("passthrough:///bufnet", append([]grpc.DialOption{
 		grpc.WithContextDialer(func(ctx context.Context, _ string) (net.Conn, error) { return lis.DialContext(ctx) }),
-		grpc.WithTransportCredentials(insecure.NewCredentials()))
+		grpc.WithTransportCredentials(insecure.NewCredentials())}, dial...)...)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -161,11 +161,17 @@ var testEnvelope = client.Envelope{Mean: []float64{1, -1}, Scale: 1.5, LogBound:
 // two for the midpoint kernels, plus the start and periodic costs the
 // kernel registry declares).
 func TestTransportIsTransparent(t *testing.T) {
-	conn, _ := start(t, server.Options{})
+	var seen drawCounter
+	conn, _ := start(t, server.Options{}, grpc.WithStreamInterceptor(seen.intercept))
 	tg := gaussian2D(t)
 	const chains, steps = 8, 300
 	for name, build := range inProcess {
-		for _, limit := range []int64{0, 1024 + 3*(8*(2*2+2+1)+16)} { // default, and 3 rows per message even with Hessians
+		for _, c := range []struct {
+			limit int64
+			full  bool
+		}{{0, false}, {0, true}, {1024 + 3*(8*(2*2+2+1)+16), false}, {1024 + 3*(8*(2*2+2+1)+16), true}} { // default, and 3 rows per message even with Hessians
+			limit := c.limit
+			seen.reset()
 			spec := client.Spec{Dim: 2, Chains: chains, Kernel: name, Start: []float64{0, 0}, Step: 0.2, Seed: 2024,
 				BurnIn: 0, DrawsPerChain: steps, MaxMessageBytes: limit}
 			switch name {
@@ -181,10 +187,14 @@ func TestTransportIsTransparent(t *testing.T) {
 				rows += int64(b.Rows)
 				return evaluator(tg)(ctx, b)
 			}
-			sum, err := client.Run(testCtx(t), conn, spec, ev, client.OnDraws(func(d *client.Draws) {
+			opts := []client.Option{client.OnDraws(func(d *client.Draws) {
 				got = append(got, d.Values...)
 				seqs++
-			}))
+			})}
+			if c.full {
+				opts = append(opts, client.FullDraws())
+			}
+			sum, err := client.Run(testCtx(t), conn, spec, ev, opts...)
 			if err != nil {
 				t.Fatal(err)
 			}
@@ -233,8 +243,69 @@ func TestTransportIsTransparent(t *testing.T) {
 			if limit > 0 && seqs < steps*2 {
 				t.Fatalf("%s: split run delivered %d draw frames for %d steps of %d chains: not split", name, seqs, steps, chains)
 			}
+			drawRows, refs := seen.counts()
+			t.Logf("%s, limit %d, full draws %v: %d of %d draws sent by reference", name, limit, c.full, refs, drawRows)
+			switch {
+			case drawRows != chains*steps:
+				t.Fatalf("%s: the interceptor saw %d draws, want %d", name, drawRows, chains*steps)
+			case c.full && refs != 0:
+				t.Fatalf("%s: %d draws sent by reference to a client that asked for full draws", name, refs)
+			case !c.full && drawsArePoints[name] && refs != chains*(steps-1):
+				// Every step's draws but the last go out after the next
+				// request, which asks at them; the last go out with
+				// Finished, in full.
+				t.Fatalf("%s: %d draws sent by reference, want %d", name, refs, chains*(steps-1))
+			}
 		}
 	}
+}
+
+// drawsArePoints lists the kernels whose next request asks at the
+// positions a step reached, so every draw but the last is sent by
+// reference.
+var drawsArePoints = map[string]bool{"lmc": true, "kinetic": true, "sgld": true, "midpoint": true, "midpoint-overdamped": true,
+	"ozaki": true, "ozaki-krylov": true, "sgld-cv": true, "svrg": true}
+
+// drawCounter counts the draws a client receives and those sent by
+// reference, from a stream interceptor.
+type drawCounter struct {
+	mu         sync.Mutex
+	rows, refs int
+}
+
+func (d *drawCounter) reset() { d.mu.Lock(); d.rows, d.refs = 0, 0; d.mu.Unlock() }
+
+func (d *drawCounter) counts() (rows, refs int) {
+	d.mu.Lock()
+	defer d.mu.Unlock()
+	return d.rows, d.refs
+}
+
+func (d *drawCounter) intercept(ctx context.Context, desc *grpc.StreamDesc, cc *grpc.ClientConn, method string,
+	streamer grpc.Streamer, opts ...grpc.CallOption) (grpc.ClientStream, error) {
+	s, err := streamer(ctx, desc, cc, method, opts...)
+	return &countingStream{ClientStream: s, d: d}, err
+}
+
+type countingStream struct {
+	grpc.ClientStream
+	d *drawCounter
+}
+
+func (s *countingStream) RecvMsg(m any) error {
+	err := s.ClientStream.RecvMsg(m)
+	if r, ok := m.(*sluicev1.SessionResponse); ok && err == nil && r.GetDraws() != nil {
+		w := r.GetDraws()
+		s.d.mu.Lock()
+		s.d.rows += int(w.GetRows())
+		for _, row := range w.GetPointRows() {
+			if row >= 0 {
+				s.d.refs++
+			}
+		}
+		s.d.mu.Unlock()
+	}
+	return err
 }
 
 // Gradient evaluations are counted exactly (chains × steps for LMC, by

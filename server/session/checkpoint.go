@@ -560,7 +560,7 @@ func (s *Session) checkpointDue(r *run) (outcome, bool) {
 	r.stepDone = false
 	// The checkpoint holds every draw sent so far: send the pending ones
 	// first.
-	if err := s.flush(r); err != nil {
+	if err := s.flush(r, nil); err != nil { // full values: a resumed client holds no points
 		return broken(err), true
 	}
 	s.save(nil)
@@ -622,16 +622,19 @@ func (l *DrawLog) readKept(from uint64, max int) (Draws, error) {
 
 // skipSent trims a block of draws to the rows a resumed client does not
 // have yet; ok is false when it has them all.
-func (s *Session) skipSent(d *Draws) (Draws, bool) {
+func (s *Session) skipSent(d *Draws) (*Draws, bool) {
 	next := s.persist.nextSeq
 	if d.Seq+uint64(d.Rows) <= next {
-		return Draws{}, false
+		return nil, false
 	}
 	if d.Seq >= next {
-		return *d, true
+		return d, true
 	}
+	// Only a resumed session's first draws are trimmed; they carry full
+	// values (sendDraws makes no references before the client caught up).
 	k := int(next - d.Seq)
-	return Draws{Seq: next, Rows: d.Rows - k, Dim: d.Dim, Values: d.Values[k*d.Dim:], Chains: d.Chains[k:], Iterations: d.Iterations[k:]}, true
+	s.trimmed = Draws{Seq: next, Rows: d.Rows - k, Dim: d.Dim, Values: d.Values[k*d.Dim:], Chains: d.Chains[k:], Iterations: d.Iterations[k:]}
+	return &s.trimmed, true
 }
 
 // newSmallFrom allocates the second probe of p, to be overwritten by a

@@ -97,18 +97,6 @@ func flatten(t *testing.T, from uint64, ds []Draws) (vals []float64, next uint64
 	return vals, next
 }
 
-func sameBits(a, b []float64) bool {
-	if len(a) != len(b) {
-		return false
-	}
-	for i := range a {
-		if math.Float64bits(a[i]) != math.Float64bits(b[i]) {
-			return false
-		}
-	}
-	return true
-}
-
 // A session restored from any of its checkpoints continues with draws
 // bit-identical to the run that never stopped, for every kernel in the
 // registry, whether the resuming client has fewer draws than the

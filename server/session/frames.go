@@ -8,8 +8,9 @@ import (
 )
 
 // Frame is one message from the engine to the client: *Registered,
-// *Points, *Draws, *Progress or *Finished. Slices in a frame belong to the
-// engine and are valid only during the send call that carries it.
+// *Points, *Draws, *Progress or *Finished. A frame and its slices belong to the
+// engine (Points and Draws frames are reused) and are valid only during
+// the send call that carries it.
 type Frame interface{ frame() }
 
 // Registered acknowledges the registration.
@@ -50,12 +51,23 @@ type Points struct {
 }
 
 // Draws carries kept draws numbered Seq, Seq+1, ..., Seq+Rows−1.
+//
+// When PointRows is nil, Values holds Rows×Dim values. Otherwise (only
+// for a session whose Spec.DrawReferences is set) PointRows has Rows
+// entries: an entry r ≥ 0 says the draw is, bit for bit, row r of the
+// points of request FromRequestID, the request whose Points frames were
+// sent last; an entry −1 says its values are in Values, which then holds
+// only those rows, in order. The draw log and followers always get full
+// values.
 type Draws struct {
 	Seq        uint64
 	Rows, Dim  int
-	Values     []float64 // Rows×Dim
+	Values     []float64 // Rows×Dim, or the rows marked −1 in PointRows
 	Chains     []int     // Rows
 	Iterations []int64   // Rows
+	// FromRequestID and PointRows name draws the client already has.
+	FromRequestID uint64
+	PointRows     []int
 }
 
 // State is where a session is.

@@ -50,12 +50,16 @@ type Session struct {
 	epsSteps   int      // steps at which the bound meets Wants.Eps; −1 if never or not asked
 	log        *DrawLog // nil when followers are not served
 	draws      Draws    // reused frame
+	points     Points   // reused frame
 	stepMean   []float64
 	stepM2     []float64
 	drawChains []int
 	drawIters  []int64
-	persist    persist // checkpoints (checkpoint.go)
-	budget     Budget  // the most memory the session may need
+	persist    persist   // checkpoints (checkpoint.go)
+	budget     Budget    // the most memory the session may need
+	pointRow   []int     // per chain: the row of the last request holding its draw, or −1
+	refValues  []float64 // the draws not sent by reference
+	trimmed    Draws     // a resumed client's first draws, less those it has (skipSent)
 }
 
 // Result is what Run reports when it returns.
@@ -329,7 +333,7 @@ func (s *Session) end(r *run, o outcome) (Result, error) {
 		return Result{Finished: Finished{Reason: o.reason, Message: o.msg, Progress: p}, Kernel: s.kernel}, o.err
 	}
 	if !o.quiet {
-		if err := s.flush(r); err != nil {
+		if err := s.flush(r, nil); err != nil {
 			o = broken(err)
 		}
 	}
@@ -347,13 +351,14 @@ func (s *Session) end(r *run, o outcome) (Result, error) {
 }
 
 // flush sends the draws and progress of the last completed step, if they
-// are still pending.
-func (s *Session) flush(r *run) error {
+// are still pending. sent is the request whose Points frames were just
+// sent, or nil: draws equal to its points may be sent by reference.
+func (s *Session) flush(r *run, sent *kernels.Request) error {
 	if !r.pending {
 		return nil
 	}
 	r.pending = false
-	return s.afterStep(r.send)
+	return s.afterStep(r.send, sent)
 }
 
 // maxTime is the session's wall-time limit: the smaller of the client's
@@ -404,7 +409,7 @@ func (s *Session) request(r *run, req *kernels.Request) error {
 	if err := s.sendPoints(req, r.send); err != nil {
 		return err
 	}
-	if err := s.flush(r); err != nil {
+	if err := s.flush(r, req); err != nil {
 		return err
 	}
 	if prep, ok := s.kernel.(kernels.Preparer); ok && s.phase == len(s.phases) {
@@ -592,7 +597,8 @@ func (s *Session) sendPoints(req *kernels.Request, send func(Frame) error) error
 	for p := range n {
 		lo := p * s.rowsPerPart
 		hi := min(lo+s.rowsPerPart, req.Rows)
-		f := &Points{RequestID: s.requestID, FirstRow: lo, Rows: hi - lo, TotalRows: req.Rows, Dim: dim,
+		f := &s.points // reused: a frame is valid only during its send call
+		*f = Points{RequestID: s.requestID, FirstRow: lo, Rows: hi - lo, TotalRows: req.Rows, Dim: dim,
 			Points: req.Points[lo*dim : hi*dim], Chains: req.Chain[lo:hi], Need: req.Need}
 		if req.Need.Has(kernels.NeedHessianVector) {
 			f.Vectors = req.Vectors[lo*dim : hi*dim]
@@ -719,11 +725,12 @@ func checkHessians(h []float64, rows, dim int, chains []int) *Error {
 	return nil
 }
 
-// afterStep keeps draws and sends progress after a completed step.
-func (s *Session) afterStep(send func(Frame) error) error {
+// afterStep keeps draws and sends progress after a completed step; sent
+// is as for flush.
+func (s *Session) afterStep(send func(Frame) error, sent *kernels.Request) error {
 	step := int64(s.kernel.Steps())
 	if s.keeps(step) {
-		if err := s.sendDraws(step, send); err != nil {
+		if err := s.sendDraws(step, send, sent); err != nil {
 			return err
 		}
 	}
@@ -750,10 +757,15 @@ func (s *Session) progressInterval() time.Duration {
 	return s.lim.ProgressInterval
 }
 
-func (s *Session) sendDraws(step int64, send func(Frame) error) error {
+// sendDraws sends the draws of a kept step, by reference to the rows of
+// sent that hold them when the client accepts references.
+func (s *Session) sendDraws(step int64, send func(Frame) error, sent *kernels.Request) error {
 	x := s.kernel.Positions()
 	dim, chains := s.spec.Dim, s.spec.Chains
 	s.accumulate(x, dim, chains)
+	// No references while a resumed client has not caught up: those draws
+	// may be trimmed (skipSent), and a resumed client holds no points.
+	refs := s.spec.DrawReferences && sent != nil && s.seq >= s.persist.nextSeq && s.matchPoints(sent, x)
 	if s.drawChains == nil {
 		s.drawChains = make([]int, chains)
 		s.drawIters = make([]int64, chains)
@@ -770,16 +782,72 @@ func (s *Session) sendDraws(step int64, send func(Frame) error) error {
 		s.draws = Draws{Seq: s.seq, Rows: hi - lo, Dim: dim, Values: x[lo*dim : hi*dim],
 			Chains: s.drawChains[lo:hi], Iterations: s.drawIters[lo:hi]}
 		if s.log != nil {
-			s.log.append(&s.draws)
+			s.log.append(&s.draws) // full values
+		}
+		if refs {
+			s.refValues = s.refValues[:0]
+			for c := lo; c < hi; c++ {
+				if s.pointRow[c] < 0 {
+					s.refValues = append(s.refValues, x[c*dim:(c+1)*dim]...)
+				}
+			}
+			s.draws.Values, s.draws.FromRequestID, s.draws.PointRows = s.refValues, s.requestID, s.pointRow[lo:hi]
 		}
 		if d, ok := s.skipSent(&s.draws); ok {
-			if err := send(&d); err != nil {
+			if err := send(d); err != nil {
 				return err
 			}
 		}
 		s.seq += uint64(hi - lo)
 	}
 	return nil
+}
+
+// matchPoints finds, for each chain, a row of req (the request just sent)
+// whose point is bit for bit the chain's position in x, and records it in
+// s.pointRow (−1 where none is); it reports whether any chain has one.
+// Kernels whose requests ask at their positions (LMC, kinetic Langevin,
+// SGLD) hand out the position slice itself, and such rows match without
+// a comparison; any other row is compared value by value, which stops at
+// the first difference, so a kernel asking elsewhere (MALA's proposals)
+// pays little.
+func (s *Session) matchPoints(req *kernels.Request, x []float64) bool {
+	dim, chains := s.spec.Dim, s.spec.Chains
+	if cap(s.pointRow) < chains {
+		s.pointRow = make([]int, chains)
+	}
+	s.pointRow = s.pointRow[:chains]
+	for c := range s.pointRow {
+		s.pointRow[c] = -1
+	}
+	found := false
+	for r := range req.Rows {
+		c := req.Chain[r]
+		if c < 0 || c >= chains || s.pointRow[c] >= 0 {
+			continue
+		}
+		p, q := req.Points[r*dim:(r+1)*dim], x[c*dim:(c+1)*dim]
+		if &p[0] == &q[0] || sameBits(p, q) {
+			s.pointRow[c] = r
+			found = true
+		}
+	}
+	return found
+}
+
+// sameBits reports whether a and b hold the same float64 bit patterns, so
+// that a client rebuilding one from the other gets exactly the same values
+// (−0 and 0 differ, as they do on the wire).
+func sameBits(a, b []float64) bool {
+	if len(a) != len(b) {
+		return false
+	}
+	for i, v := range a {
+		if math.Float64bits(v) != math.Float64bits(b[i]) {
+			return false
+		}
+	}
+	return true
 }
 
 func (s *Session) plannedSteps() int {

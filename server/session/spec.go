@@ -44,6 +44,9 @@ type Spec struct {
 	Names []string
 	// MaxMessageBytes is the client's receive limit; 0 means 4 MiB.
 	MaxMessageBytes int64
+	// DrawReferences says the client rebuilds draws sent by reference to
+	// the points of the request it received last (Draws.PointRows).
+	DrawReferences bool
 	// Curvature is what the client declares of the potential's curvature;
 	// nil when nothing is declared.
 	Curvature *Curvature

@@ -106,6 +106,10 @@ class Session:
     every draw it receives and hands them over in the summary
     (``summary.draws``, ``summary.save(path)``, the summary's intervals);
     pass False when the draws are consumed as they come and memory matters.
+    By default the server may name a draw that equals a point it has just
+    sent (most kernels' next request asks at the positions just reached)
+    instead of sending it again, and the session rebuilds it; ``full_draws``
+    asks for every draw's values instead. The draws seen are the same.
 
     ``executor`` (any ``concurrent.futures.Executor``: a thread or process
     pool, ``distributed.Client.get_executor()``, mpi4py's MPIPoolExecutor)
@@ -164,6 +168,7 @@ class Session:
         executor: Optional[cf.Executor] = None,
         split: Optional[int] = None,
         resume: ResumePolicy = ResumePolicy(),
+        full_draws: bool = False,
     ) -> None:
         if (grad is None) == (batch is None):
             raise TypeError("sluice_client: give either grad (with log_density if needed) or batch")
@@ -180,6 +185,7 @@ class Session:
             _parallel.check_picklable(executor, (grad, log_density, batch))
         self._executor = executor
         self._split = split if split is not None else (_parallel.default_split(executor) if executor else 1)
+        self._register.accepts_draw_references = not full_draws
         self._grad = grad
         self._log_density = log_density
         self._batch = batch
@@ -198,6 +204,9 @@ class Session:
         self._store: Optional[DrawStore] = DrawStore(spec.dim) if keep_draws else None
         self._last_progress: Optional[Progress] = None
         self._next_seq = 0
+        # The points of the request received last (id, rows x dim), which
+        # Draws frames may refer to instead of repeating them.
+        self._held: Optional[Tuple[int, np.ndarray]] = None
         self._started = False
         self._lock = threading.Lock()
         self._outbox: "queue.SimpleQueue[Optional[pb.SessionRequest]]" = queue.SimpleQueue()
@@ -313,6 +322,7 @@ class Session:
                     for frame in call:
                         kind = frame.WhichOneof("frame")
                         if kind == "points":
+                            self._hold(frame.points)
                             if eval_error is None and not self._stopped:
                                 eval_error = self._answer(frame.points)
                         elif kind == "draws":
@@ -389,7 +399,7 @@ class Session:
             raise ProtocolError(
                 f"sluice_client: malformed points frame: {len(p.minibatch_groups)} minibatch groups for {rows} rows"
             )
-        points = from_wire(p.points, rows, dim)
+        points = self._part(p)
         ev = pb.Evaluations(request_id=p.request_id, first_row=p.first_row, rows=rows, dim=dim)
         try:
             if self._batch is not None:
@@ -518,8 +528,37 @@ class Session:
             ans.log_densities = ld
         return ans
 
+    def _hold(self, p: pb.Points) -> None:
+        """Keeps the points of a Points frame, at their rows within the
+        request, for Draws frames that refer to them."""
+        rows, dim, first = p.rows, p.dim, p.first_row
+        if len(p.points) != 8 * rows * dim or len(p.chains) != rows:
+            raise ProtocolError(
+                f"sluice_client: malformed points frame: {len(p.points)} bytes and "
+                f"{len(p.chains)} chains for {rows} x {dim}"
+            )
+        total = max(p.total_rows, rows)  # a frame without total_rows is a whole request
+        if first < 0 or first + rows > total:
+            raise ProtocolError(f"sluice_client: malformed points frame: rows {first} to {first + rows} of {total}")
+        part = from_wire(p.points, rows, dim)
+        if first == 0 and rows == total:
+            self._held = (p.request_id, part)  # the common case: no copy
+            return
+        if self._held is None or self._held[0] != p.request_id or self._held[1].shape != (total, dim):
+            self._held = (p.request_id, np.empty((total, dim), dtype=part.dtype))
+        self._held[1][first : first + rows] = part
+
+    def _part(self, p: pb.Points) -> np.ndarray:
+        """Returns the points of a Points frame kept by _hold, read-only."""
+        assert self._held is not None
+        v = self._held[1][p.first_row : p.first_row + p.rows]
+        if v.flags.writeable:
+            v = v.view()
+            v.flags.writeable = False
+        return v
+
     def _deliver(self, w: pb.Draws) -> Draws:
-        d = decode_draws(w, self._next_seq)
+        d = decode_draws(w, self._next_seq, self._held)
         self._next_seq += d.rows
         self.draws_received += d.rows
         if self._store is not None:
@@ -556,18 +595,38 @@ def _encode(ev: pb.Evaluations, ans: Answer, want: _Wanted, rows: int, dim: int)
         ev.hessian_vectors = to_wire(shaped("hessian_vectors", ans.hessian_vectors, (rows, dim)))
 
 
-def decode_draws(w: pb.Draws, expected_seq: int) -> Draws:
+def decode_draws(w: pb.Draws, expected_seq: int, held: Optional[Tuple[int, np.ndarray]] = None) -> Draws:
     """Returns a Draws frame as :class:`Draws`, or raises DrawsLostError
     when it does not start at expected_seq and ProtocolError when it is
-    malformed."""
+    malformed. Draws sent by reference (``point_rows``) are rebuilt from
+    held, the request id and points of the last Points frames received."""
     if w.seq != expected_seq:
         raise DrawsLostError(expected_seq, w.seq)
     rows, dim = w.rows, w.dim
-    if len(w.values) != 8 * rows * dim or len(w.chains) != rows or len(w.iterations) != rows:
+    if len(w.chains) != rows or len(w.iterations) != rows:
         raise ProtocolError(f"sluice_client: malformed draws frame at sequence {w.seq}")
+    if len(w.point_rows) == 0:
+        if len(w.values) != 8 * rows * dim:
+            raise ProtocolError(f"sluice_client: malformed draws frame at sequence {w.seq}")
+        values = from_wire(w.values, rows, dim)
+    else:
+        if held is None or held[0] != w.from_request_id or held[1].shape[1] != dim or len(w.point_rows) != rows:
+            raise ProtocolError(
+                f"sluice_client: draws frame at sequence {w.seq} refers to request {w.from_request_id}, "
+                f"whose points were not the last received"
+            )
+        pr = np.array(w.point_rows, dtype=np.int64)
+        sent = pr < 0
+        n = int(sent.sum())
+        if len(w.values) != 8 * n * dim or int(pr.max()) >= held[1].shape[0]:
+            raise ProtocolError(f"sluice_client: malformed draws frame at sequence {w.seq}")
+        values = np.empty((rows, dim), dtype=held[1].dtype)
+        values[~sent] = held[1][pr[~sent]]
+        values[sent] = from_wire(w.values, n, dim)
+        values.flags.writeable = False
     return Draws(
         seq=w.seq,
-        values=from_wire(w.values, rows, dim),
+        values=values,
         chains=np.array(w.chains, dtype=np.int32),
         iterations=np.array(w.iterations, dtype=np.int64),
     )
@@ -588,6 +647,7 @@ def run(
     executor: Optional[cf.Executor] = None,
     split: Optional[int] = None,
     resume: ResumePolicy = ResumePolicy(),
+    full_draws: bool = False,
 ) -> Summary:
     """Runs one session to its end and returns the summary.
 
@@ -602,7 +662,8 @@ def run(
     (``summary.draws``, ``summary.save(path)``). ``executor`` and
     ``split`` spread every batch over a ``concurrent.futures.Executor`` (see
     :class:`Session`). A broken stream is resumed as ``resume`` bounds (see
-    :class:`Session`). Errors as for :class:`Session`.
+    :class:`Session`); ``full_draws`` as for :class:`Session`. Errors as for
+    :class:`Session`.
     """
     session = Session(
         channel_or_target,
@@ -616,6 +677,7 @@ def run(
         executor=executor,
         split=split,
         resume=resume,
+        full_draws=full_draws,
     )
     with session:
         for event in session:

@@ -212,6 +212,66 @@ class ScriptedProtocolTests(unittest.TestCase):
             self.assertEqual(ev.log_densities, b"")  # not asked for: must be empty
 
 
+    def test_draws_by_reference_are_rebuilt(self) -> None:
+        # A Draws frame may name rows of the request whose Points frames
+        # came last (point_rows >= 0) and carry only the other rows in
+        # values, in order (sluice.proto, message Draws); the session
+        # rebuilds the full block, here from a request split over two parts.
+        x = np.array([[1.0, 2.0], [3.0, 4.0], [5.0, 6.0]])
+        parts = [
+            pb.SessionResponse(
+                points=pb.Points(
+                    request_id=9,
+                    first_row=lo,
+                    rows=hi - lo,
+                    dim=2,
+                    total_rows=3,
+                    points=sc.to_wire(x[lo:hi]),
+                    chains=list(range(lo, hi)),
+                    quantities=[pb.QUANTITY_GRADIENT],
+                )
+            )
+            for lo, hi in ((0, 2), (2, 3))
+        ]
+        other = np.array([[-0.0, 7.5]])
+
+        def draws(request_id: int) -> pb.SessionResponse:
+            return pb.SessionResponse(
+                draws=pb.Draws(
+                    seq=0,
+                    rows=3,
+                    dim=2,
+                    values=sc.to_wire(other),
+                    chains=[0, 1, 2],
+                    iterations=[1, 1, 1],
+                    from_request_id=request_id,
+                    point_rows=[2, -1, 0],
+                )
+            )
+
+        got: List[np.ndarray] = []
+        ch = _ScriptedChannel([_REGISTERED, *parts, draws(9), _FINISHED])
+        summary = sc.run(ch, self.spec(), lambda p: -p, on_draws=lambda d: got.append(d.values))  # type: ignore[arg-type]
+        want = np.array([x[2], other[0], x[0]])
+        self.assertEqual(len(got), 1)
+        self.assertEqual(got[0].tobytes(), want.tobytes())  # bit for bit, -0.0 included
+        self.assertFalse(got[0].flags.writeable)
+        assert summary.draws is not None
+        self.assertEqual(np.asarray(summary.draws).reshape(-1, 2).tobytes(), want.tobytes())
+        assert ch.call is not None
+        self.assertTrue(ch.call.sent[0].register.accepts_draw_references)
+        # A reference to another request than the last one is a protocol
+        # error, never silently wrong draws.
+        ch = _ScriptedChannel([_REGISTERED, *parts, draws(8), _FINISHED])
+        with self.assertRaises(sc.ProtocolError):
+            sc.run(ch, self.spec(), lambda p: -p)  # type: ignore[arg-type]
+        # full_draws=True tells the server not to send references.
+        ch = _ScriptedChannel([_REGISTERED, _FINISHED])
+        sc.run(ch, self.spec(), lambda p: -p, full_draws=True)  # type: ignore[arg-type]
+        assert ch.call is not None
+        self.assertFalse(ch.call.sent[0].register.accepts_draw_references)
+
+
 class UnreachableServerTests(unittest.TestCase):
     def test_no_server_raises_unavailable(self) -> None:
         # A loopback port that nothing listens on: the kernel picks a free
@@ -429,7 +489,7 @@ class LiveServerTests(unittest.TestCase):
         # makes the server split every request into parts (Points).
         chains, dim = 16, 3
 
-        def sample(limit: int) -> "tuple[np.ndarray, sc.Summary]":
+        def sample(limit: int, full_draws: bool = False) -> "tuple[np.ndarray, sc.Summary]":
             spec = sc.Spec(
                 dim=dim,
                 chains=chains,
@@ -448,6 +508,7 @@ class LiveServerTests(unittest.TestCase):
                 lambda x: -x * np.array([1.0, 2.0, 0.5]),
                 on_draws=lambda d: blocks.append(d.values.copy()),
                 timeout=DEADLINE_SECONDS,
+                full_draws=full_draws,
             )
             return np.concatenate(blocks), s
 
@@ -460,6 +521,10 @@ class LiveServerTests(unittest.TestCase):
         self.assertEqual(s2.registered.max_message_bytes, limit)
         self.assertEqual(s1.draws_received, chains * 20)
         self.assertEqual(whole.tobytes(), split.tobytes())
+        # Draws sent by reference (the default) and in full are the same.
+        for lim in (sc.DEFAULT_MAX_MESSAGE_BYTES, limit):
+            full, _ = sample(lim, full_draws=True)
+            self.assertEqual(whole.tobytes(), full.tobytes())
 
 
 if __name__ == "__main__":

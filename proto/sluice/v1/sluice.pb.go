@@ -1245,8 +1245,14 @@ type Register struct {
 	// latest one. Wall time decides only when a checkpoint is written, never
 	// the draws.
 	CheckpointEverySteps int64 `protobuf:"varint,32,opt,name=checkpoint_every_steps,json=checkpointEverySteps,proto3" json:"checkpoint_every_steps,omitempty"`
-	unknownFields        protoimpl.UnknownFields
-	sizeCache            protoimpl.SizeCache
+	// The client rebuilds draws sent by reference (see Draws.point_rows): it
+	// keeps the points of the request whose Points frames it received last,
+	// until Points frames of another request arrive. When false (the
+	// default, and what clients written before this field get), every Draws
+	// frame carries all its values.
+	AcceptsDrawReferences bool `protobuf:"varint,33,opt,name=accepts_draw_references,json=acceptsDrawReferences,proto3" json:"accepts_draw_references,omitempty"`
+	unknownFields         protoimpl.UnknownFields
+	sizeCache             protoimpl.SizeCache
 }
 
 func (x *Register) Reset() {
@@ -1501,6 +1507,13 @@ func (x *Register) GetCheckpointEverySteps() int64 {
 		return x.CheckpointEverySteps
 	}
 	return 0
+}
+
+func (x *Register) GetAcceptsDrawReferences() bool {
+	if x != nil {
+		return x.AcceptsDrawReferences
+	}
+	return false
 }
 
 // Envelope is q = N(mean, scale^2 I) with the declared bound
@@ -2381,7 +2394,23 @@ type Draws struct {
 	Chains []int32 `protobuf:"varint,5,rep,packed,name=chains,proto3" json:"chains,omitempty"`
 	// Step count of each row's chain when the draw was taken (rows entries;
 	// 1 is the state after the first step).
-	Iterations    []int64 `protobuf:"varint,6,rep,packed,name=iterations,proto3" json:"iterations,omitempty"`
+	Iterations []int64 `protobuf:"varint,6,rep,packed,name=iterations,proto3" json:"iterations,omitempty"`
+	// Draws by reference, sent only to a client that set
+	// Register.accepts_draw_references. Most kernels' next request asks the
+	// gradient at the positions just reached (lmc, kinetic, sgld, the first
+	// request of a midpoint step), and a step's draws are sent right after
+	// that request's Points frames; a draw that equals, bit for bit, a point
+	// the client has just received is then named instead of sent again.
+	// When point_rows is empty, values holds every row. Otherwise it has
+	// rows entries: an entry r >= 0 says this row's draw is row r (0-based
+	// within the whole request, as Points.first_row counts) of the points of
+	// request from_request_id, always the request whose Points frames came
+	// last; an entry -1 says the draw's values are in values, which then
+	// holds only the rows marked -1, in order (a kernel whose draws differ
+	// from its next points, such as mala, sends those rows in full).
+	// Followers (Follow) always get full values.
+	FromRequestId uint64  `protobuf:"varint,7,opt,name=from_request_id,json=fromRequestId,proto3" json:"from_request_id,omitempty"`
+	PointRows     []int32 `protobuf:"varint,8,rep,packed,name=point_rows,json=pointRows,proto3" json:"point_rows,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -2454,6 +2483,20 @@ func (x *Draws) GetChains() []int32 {
 func (x *Draws) GetIterations() []int64 {
 	if x != nil {
 		return x.Iterations
+	}
+	return nil
+}
+
+func (x *Draws) GetFromRequestId() uint64 {
+	if x != nil {
+		return x.FromRequestId
+	}
+	return 0
+}
+
+func (x *Draws) GetPointRows() []int32 {
+	if x != nil {
+		return x.PointRows
 	}
 	return nil
 }
@@ -3706,7 +3749,8 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x05draws\x18\x03 \x01(\v2\x10.sluice.v1.DrawsH\x00R\x05draws\x121\n" +
 	"\bprogress\x18\x04 \x01(\v2\x13.sluice.v1.ProgressH\x00R\bprogress\x121\n" +
 	"\bfinished\x18\x05 \x01(\v2\x13.sluice.v1.FinishedH\x00R\bfinishedB\a\n" +
-	"\x05frame\"\xe7\t\n" +
+	"\x05frame\"\x9f\n" +
+	"\n" +
 	"\bRegister\x12\x10\n" +
 	"\x03dim\x18\x01 \x01(\x05R\x03dim\x12\x16\n" +
 	"\x06chains\x18\x02 \x01(\x05R\x06chains\x12\x16\n" +
@@ -3744,7 +3788,8 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x14slice_max_expansions\x18\x1e \x01(\x05R\x12sliceMaxExpansions\x12/\n" +
 	"\benvelope\x18\x1f \x01(\v2\x13.sluice.v1.EnvelopeR\benvelope\x12.\n" +
 	"\x05noise\x18\x15 \x01(\v2\x18.sluice.v1.GradientNoiseR\x05noise\x124\n" +
-	"\x16checkpoint_every_steps\x18  \x01(\x03R\x14checkpointEverySteps\"Q\n" +
+	"\x16checkpoint_every_steps\x18  \x01(\x03R\x14checkpointEverySteps\x126\n" +
+	"\x17accepts_draw_references\x18! \x01(\bR\x15acceptsDrawReferences\"Q\n" +
 	"\bEnvelope\x12\x12\n" +
 	"\x04mean\x18\x01 \x01(\fR\x04mean\x12\x14\n" +
 	"\x05scale\x18\x02 \x01(\x01R\x05scale\x12\x1b\n" +
@@ -3824,7 +3869,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\bhessians\x18\a \x01(\fR\bhessians\x12'\n" +
 	"\x0fhessian_vectors\x18\b \x01(\fR\x0ehessianVectors\"\x1e\n" +
 	"\x04Stop\x12\x16\n" +
-	"\x06reason\x18\x01 \x01(\tR\x06reason\"\x8f\x01\n" +
+	"\x06reason\x18\x01 \x01(\tR\x06reason\"\xd6\x01\n" +
 	"\x05Draws\x12\x10\n" +
 	"\x03seq\x18\x01 \x01(\x04R\x03seq\x12\x12\n" +
 	"\x04rows\x18\x02 \x01(\x05R\x04rows\x12\x10\n" +
@@ -3833,7 +3878,10 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x06chains\x18\x05 \x03(\x05R\x06chains\x12\x1e\n" +
 	"\n" +
 	"iterations\x18\x06 \x03(\x03R\n" +
-	"iterations\"\xb3\x05\n" +
+	"iterations\x12&\n" +
+	"\x0ffrom_request_id\x18\a \x01(\x04R\rfromRequestId\x12\x1d\n" +
+	"\n" +
+	"point_rows\x18\b \x03(\x05R\tpointRows\"\xb3\x05\n" +
 	"\bProgress\x12&\n" +
 	"\x05state\x18\x01 \x01(\x0e2\x10.sluice.v1.StateR\x05state\x12\x14\n" +
 	"\x05steps\x18\x02 \x01(\x03R\x05steps\x12)\n" +

@@ -85,20 +85,24 @@ class CurvatureEstimate(_message.Message):
     def __init__(self, pairs: _Optional[int] = ..., smoothness_at_least: _Optional[float] = ..., strong_convexity_at_most: _Optional[float] = ..., not_convex: bool = ..., probed_smoothness: _Optional[float] = ..., probed_strong_convexity: _Optional[float] = ..., probe_evaluations: _Optional[int] = ...) -> None: ...
 
 class Draws(_message.Message):
-    __slots__ = ["chains", "dim", "iterations", "rows", "seq", "values"]
+    __slots__ = ["chains", "dim", "from_request_id", "iterations", "point_rows", "rows", "seq", "values"]
     CHAINS_FIELD_NUMBER: _ClassVar[int]
     DIM_FIELD_NUMBER: _ClassVar[int]
+    FROM_REQUEST_ID_FIELD_NUMBER: _ClassVar[int]
     ITERATIONS_FIELD_NUMBER: _ClassVar[int]
+    POINT_ROWS_FIELD_NUMBER: _ClassVar[int]
     ROWS_FIELD_NUMBER: _ClassVar[int]
     SEQ_FIELD_NUMBER: _ClassVar[int]
     VALUES_FIELD_NUMBER: _ClassVar[int]
     chains: _containers.RepeatedScalarFieldContainer[int]
     dim: int
+    from_request_id: int
     iterations: _containers.RepeatedScalarFieldContainer[int]
+    point_rows: _containers.RepeatedScalarFieldContainer[int]
     rows: int
     seq: int
     values: bytes
-    def __init__(self, seq: _Optional[int] = ..., rows: _Optional[int] = ..., dim: _Optional[int] = ..., values: _Optional[bytes] = ..., chains: _Optional[_Iterable[int]] = ..., iterations: _Optional[_Iterable[int]] = ...) -> None: ...
+    def __init__(self, seq: _Optional[int] = ..., rows: _Optional[int] = ..., dim: _Optional[int] = ..., values: _Optional[bytes] = ..., chains: _Optional[_Iterable[int]] = ..., iterations: _Optional[_Iterable[int]] = ..., from_request_id: _Optional[int] = ..., point_rows: _Optional[_Iterable[int]] = ...) -> None: ...
 
 class Envelope(_message.Message):
     __slots__ = ["log_bound", "mean", "scale"]
@@ -397,7 +401,8 @@ class Progress(_message.Message):
     def __init__(self, state: _Optional[_Union[State, str]] = ..., steps: _Optional[int] = ..., evaluations_used: _Optional[int] = ..., evaluations_left: _Optional[int] = ..., seconds_used: _Optional[float] = ..., seconds_left: _Optional[float] = ..., draws_sent: _Optional[int] = ..., evaluations_per_second: _Optional[float] = ..., parameters: _Optional[_Iterable[_Union[ParameterDiagnostics, _Mapping]]] = ..., ksd: _Optional[float] = ..., bound: _Optional[_Union[Bound, _Mapping]] = ..., curvature: _Optional[_Union[CurvatureEstimate, _Mapping]] = ..., targets: _Optional[_Iterable[_Union[TargetStatus, _Mapping]]] = ..., noise: _Optional[_Union[NoiseEstimate, _Mapping]] = ..., kernel: _Optional[_Union[KernelReport, _Mapping]] = ..., parameters_omitted: _Optional[int] = ...) -> None: ...
 
 class Register(_message.Message):
-    __slots__ = ["anchor_every", "burn_in", "chains", "checkpoint_every_steps", "curvature", "curvature_probe_iterations", "dim", "draws_per_chain", "envelope", "fixed_point_iterations", "fixed_point_tolerance", "friction", "inverse_mass", "keep_every", "kernel", "krylov_max_iterations", "krylov_tolerance", "max_evaluations", "max_message_bytes", "max_seconds", "names", "noise", "progress_every_steps", "progress_interval_seconds", "schedule", "seed", "slice_max_expansions", "slice_width", "start", "start_rows", "step", "wants"]
+    __slots__ = ["accepts_draw_references", "anchor_every", "burn_in", "chains", "checkpoint_every_steps", "curvature", "curvature_probe_iterations", "dim", "draws_per_chain", "envelope", "fixed_point_iterations", "fixed_point_tolerance", "friction", "inverse_mass", "keep_every", "kernel", "krylov_max_iterations", "krylov_tolerance", "max_evaluations", "max_message_bytes", "max_seconds", "names", "noise", "progress_every_steps", "progress_interval_seconds", "schedule", "seed", "slice_max_expansions", "slice_width", "start", "start_rows", "step", "wants"]
+    ACCEPTS_DRAW_REFERENCES_FIELD_NUMBER: _ClassVar[int]
     ANCHOR_EVERY_FIELD_NUMBER: _ClassVar[int]
     BURN_IN_FIELD_NUMBER: _ClassVar[int]
     CHAINS_FIELD_NUMBER: _ClassVar[int]
@@ -430,6 +435,7 @@ class Register(_message.Message):
     START_ROWS_FIELD_NUMBER: _ClassVar[int]
     STEP_FIELD_NUMBER: _ClassVar[int]
     WANTS_FIELD_NUMBER: _ClassVar[int]
+    accepts_draw_references: bool
     anchor_every: int
     burn_in: int
     chains: int
@@ -462,7 +468,7 @@ class Register(_message.Message):
     start_rows: int
     step: float
     wants: Wants
-    def __init__(self, dim: _Optional[int] = ..., chains: _Optional[int] = ..., kernel: _Optional[str] = ..., start: _Optional[bytes] = ..., start_rows: _Optional[int] = ..., step: _Optional[float] = ..., burn_in: _Optional[int] = ..., keep_every: _Optional[int] = ..., draws_per_chain: _Optional[int] = ..., max_evaluations: _Optional[int] = ..., max_seconds: _Optional[float] = ..., progress_every_steps: _Optional[int] = ..., progress_interval_seconds: _Optional[float] = ..., seed: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., max_message_bytes: _Optional[int] = ..., curvature: _Optional[_Union[Curvature, _Mapping]] = ..., wants: _Optional[_Union[Wants, _Mapping]] = ..., friction: _Optional[float] = ..., inverse_mass: _Optional[float] = ..., krylov_tolerance: _Optional[float] = ..., krylov_max_iterations: _Optional[int] = ..., schedule: _Optional[_Union[StepSchedule, _Mapping]] = ..., anchor_every: _Optional[int] = ..., fixed_point_tolerance: _Optional[float] = ..., fixed_point_iterations: _Optional[int] = ..., curvature_probe_iterations: _Optional[int] = ..., slice_width: _Optional[float] = ..., slice_max_expansions: _Optional[int] = ..., envelope: _Optional[_Union[Envelope, _Mapping]] = ..., noise: _Optional[_Union[GradientNoise, _Mapping]] = ..., checkpoint_every_steps: _Optional[int] = ...) -> None: ...
+    def __init__(self, dim: _Optional[int] = ..., chains: _Optional[int] = ..., kernel: _Optional[str] = ..., start: _Optional[bytes] = ..., start_rows: _Optional[int] = ..., step: _Optional[float] = ..., burn_in: _Optional[int] = ..., keep_every: _Optional[int] = ..., draws_per_chain: _Optional[int] = ..., max_evaluations: _Optional[int] = ..., max_seconds: _Optional[float] = ..., progress_every_steps: _Optional[int] = ..., progress_interval_seconds: _Optional[float] = ..., seed: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., max_message_bytes: _Optional[int] = ..., curvature: _Optional[_Union[Curvature, _Mapping]] = ..., wants: _Optional[_Union[Wants, _Mapping]] = ..., friction: _Optional[float] = ..., inverse_mass: _Optional[float] = ..., krylov_tolerance: _Optional[float] = ..., krylov_max_iterations: _Optional[int] = ..., schedule: _Optional[_Union[StepSchedule, _Mapping]] = ..., anchor_every: _Optional[int] = ..., fixed_point_tolerance: _Optional[float] = ..., fixed_point_iterations: _Optional[int] = ..., curvature_probe_iterations: _Optional[int] = ..., slice_width: _Optional[float] = ..., slice_max_expansions: _Optional[int] = ..., envelope: _Optional[_Union[Envelope, _Mapping]] = ..., noise: _Optional[_Union[GradientNoise, _Mapping]] = ..., checkpoint_every_steps: _Optional[int] = ..., accepts_draw_references: bool = ...) -> None: ...
 
 class Registered(_message.Message):
     __slots__ = ["evaluations_per_step", "kernel", "max_message_bytes", "names", "planned_steps", "resume_token", "resumed", "seed", "session_id", "step"]

@@ -1,0 +1,84 @@
+package session
+
+import (
+	"context"
+	"testing"
+	"time"
+
+	"sluice/kernels"
+)
+
+// TestStepAllocatesNothing drives a sampling session's steps through the
+// engine's own loop (shouldStop, next, overBudget, request, await,
+// complete, and the previous step's draws sent by reference or in full)
+// with an in-process client that answers inside send into reused buffers,
+// and counts heap allocations per step once warm. Progress reports are
+// kept out of the measured steps (an interval of an hour): they compute
+// diagnostics, a per-report cost. A regression that allocates per step
+// (a frame, a slice, a boxed value) fails here.
+func TestStepAllocatesNothing(t *testing.T) {
+	for _, c := range []struct {
+		kernel     string
+		dim        int
+		references bool
+	}{{"lmc", 10, true}, {"lmc", 10, false}, {"kinetic", 100, true}, {"mala", 10, true}} {
+		spec := Spec{Dim: c.dim, Chains: 8, Kernel: c.kernel, Start: make([]float64, c.dim), StartRows: 1, Step: 0.05, Seed: 7,
+			ProgressInterval: time.Hour, DrawReferences: c.references}
+		s, err := New("alloc", spec, Limits{})
+		if err != nil {
+			t.Fatal(err)
+		}
+		in := make(chan Message, 16)
+		ev := &Evaluations{}
+		var grad, logd []float64
+		send := func(f Frame) error {
+			p, ok := f.(*Points)
+			if !ok {
+				return nil
+			}
+			// N(0, I): ∇log π(x) = −x, log π(x) = −|x|²/2.
+			grad, logd = grad[:0], logd[:0]
+			for r := range p.Rows {
+				var sq float64
+				for _, x := range p.Points[r*p.Dim : (r+1)*p.Dim] {
+					grad = append(grad, -x)
+					sq += x * x
+				}
+				logd = append(logd, -sq/2)
+			}
+			*ev = Evaluations{RequestID: p.RequestID, FirstRow: p.FirstRow, Rows: p.Rows, Dim: p.Dim, Grad: grad}
+			if p.Need.Has(kernels.NeedLogDensity) {
+				ev.LogDensity = logd
+			}
+			in <- Message{Evaluations: ev}
+			return nil
+		}
+		r := s.begin(context.Background(), in, send)
+		step := func() {
+			if _, stop := s.shouldStop(r); stop {
+				t.Fatal("session stopped")
+			}
+			req := s.next()
+			if _, stop := s.overBudget(req); stop {
+				t.Fatal("over budget")
+			}
+			if err := s.request(r, req); err != nil {
+				t.Fatal(err)
+			}
+			if o, stop := s.await(r, req); stop {
+				t.Fatalf("await: %v", o.msg)
+			}
+			if err := s.complete(r, req); err != nil {
+				t.Fatal(err)
+			}
+		}
+		for range 500 { // warm: buffers reach their sizes
+			step()
+		}
+		got := testing.AllocsPerRun(500, step)
+		r.stop()
+		if got != 0 {
+			t.Errorf("%s, dim %d, references %v: %v allocations per step, want 0", c.kernel, c.dim, c.references, got)
+		}
+	}
+}
