@@ -75,6 +75,9 @@ type Spec struct {
 	SliceMaxExpansions int
 	// Envelope is rejection's Gaussian envelope and declared bound.
 	Envelope *Envelope
+	// WorkersOnly says the owner's stream only consumes: workers attached
+	// to the session (Session.Attach) evaluate every row.
+	WorkersOnly bool
 }
 
 // Envelope is q = N(Mean, Scale²I) with π̃ ≤ exp(LogBound)·q.
@@ -152,6 +155,8 @@ type Limits struct {
 	// keeps for followers, capped at 64 MiB of values per session; 0 means
 	// followers are not served.
 	FollowBuffer int
+	// Pool tunes how rows are shared among a session's evaluators.
+	Pool PoolOptions
 }
 
 const maxFollowBytes = 64 << 20
