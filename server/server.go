@@ -62,6 +62,7 @@ type Server struct {
 	mu       sync.Mutex
 	draining bool
 	active   map[string]chan<- session.Message
+	pools    map[string]attachable // running sessions workers may attach to (attach.go)
 	logs     map[string]*followed
 }
 
@@ -98,7 +99,7 @@ func New(o Options) *Server {
 	_, _ = rand.Read(b[:])
 	s := &Server{opts: o, log: o.Logger, slots: make(chan struct{}, o.MaxSessions),
 		prefix: hex.EncodeToString(b[:]), active: map[string]chan<- session.Message{},
-		logs: map[string]*followed{}}
+		logs: map[string]*followed{}, pools: map[string]attachable{}}
 	// The engine sizes its frames within Limits.MaxMessageBytes, and the
 	// reader refuses larger client frames with a status naming the frame.
 	// The transport's own cap sits at four times that, as a backstop
@@ -260,6 +261,9 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 		return problem(draining, "", "server shutting down")
 	}
 	defer s.untrack(id)
+	token := NewSessionToken()
+	s.openPool(id, token, sess)
+	defer s.closePool(id)
 	go func() { // reader: owned by this handler
 		// Gradients are decoded into a ring of reused buffers. The engine
 		// takes messages in order and has finished with message j (copied
@@ -295,7 +299,7 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 	log.Info("session started", zap.Int("dim", sp.Dim), zap.Int("chains", sp.Chains),
 		zap.String("kernel", sp.Kernel), zap.Float64("step", sp.Step), zap.Uint64("seed", sp.Seed))
 	enc := encoder{maxParams: paramCap(limit)}
-	res, err := sess.Run(ctx, in, func(f session.Frame) error { return stream.Send(enc.frame(f)) })
+	res, err := sess.Run(ctx, in, func(f session.Frame) error { return stream.Send(withToken(enc.frame(f), token)) })
 	f := res.Finished
 	fields := []zap.Field{zap.String("reason", f.Reason.String()), zap.Int64("evaluations", f.Progress.EvaluationsUsed),
 		zap.Int64("draws", f.Progress.DrawsSent), zap.Duration("elapsed", f.Progress.Elapsed)}

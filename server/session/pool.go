@@ -715,7 +715,6 @@ func (s *Session) poolReport() PoolReport {
 	return r
 }
 
-
 // ownerAnswer takes the owner's answer ev during req.
 func (s *Session) ownerAnswer(req *kernels.Request, ev *Evaluations) error {
 	p := s.pool
