@@ -424,7 +424,7 @@ func registerFrame(spec Spec, limit int64) *sluicev1.SessionRequest {
 		FixedPointTolerance: spec.FixedPointTolerance, FixedPointIterations: int32(spec.FixedPointIterations),
 		CurvatureProbeIterations: int32(spec.CurvatureProbe),
 		SliceWidth:               spec.SliceWidth, SliceMaxExpansions: int32(spec.SliceMaxExpansions), Envelope: envelopeToWire(spec.Envelope),
-		OwnerEvaluates:           ownerEvaluates(spec),
+		OwnerEvaluates: ownerEvaluates(spec),
 	}}}
 }
 

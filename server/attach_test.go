@@ -198,7 +198,9 @@ func TestAttachRefusals(t *testing.T) {
 	_, err := client.Run(ctx, conn, spec, nil, client.OnRegistered(func(r *client.Registered) {
 		got = client.Work(ctx, conn, r.SessionID, r.Token+"x", nop)
 		// A worker with the right token then serves the session.
-		go func() { _ = client.Work(ctx, conn, r.SessionID, r.Token, func(_ context.Context, b *client.Batch) error { gradOfStdNormal(b); return nil }) }()
+		go func() {
+			_ = client.Work(ctx, conn, r.SessionID, r.Token, func(_ context.Context, b *client.Batch) error { gradOfStdNormal(b); return nil })
+		}()
 	}))
 	if err != nil {
 		t.Fatal(err)

@@ -20,10 +20,12 @@ import (
 // The rule, owned here and nowhere else:
 //   - Split. A request's rows are cut into one contiguous share per
 //     eligible evaluator, in proportion to its measured speed (rows per
-//     second, an exponentially weighted mean), rounded by largest
+//     second over each spell from rows issued to an empty backlog until
+//     it is empty again, an exponentially weighted mean), rounded by largest
 //     remainder; an evaluator not yet measured counts at the median of
 //     the measured ones (1 when none is). Each share is cut further into
-//     parts that fit a message. Eligible are the evaluators with nothing
+//     parts that fit a message and, when several evaluators share the
+//     request, into Pieces parts, so that a lost evaluator's rows spread. Eligible are the evaluators with nothing
 //     outstanding from an earlier request and not overdue; when none is,
 //     every live evaluator is.
 //   - Deadline. An evaluator with rows outstanding must answer its next
@@ -58,6 +60,10 @@ type PoolOptions struct {
 	// Smoothing is the weight of the newest speed measurement in the
 	// exponentially weighted mean, in (0, 1] (default 0.3).
 	Smoothing float64
+	// Pieces is how many parts an evaluator's share is cut into when
+	// several evaluators share a request, so that the rows of one that is
+	// lost spread over several others (default 4; 1: one part each).
+	Pieces int
 }
 
 func (o PoolOptions) withDefaults() PoolOptions {
@@ -69,6 +75,9 @@ func (o PoolOptions) withDefaults() PoolOptions {
 	}
 	if !(o.Smoothing > 0 && o.Smoothing <= 1) {
 		o.Smoothing = 0.3
+	}
+	if o.Pieces <= 0 {
+		o.Pieces = 4
 	}
 	return o
 }
@@ -200,10 +209,14 @@ type evaluator struct {
 	speed   float64 // rows per second; 0 until measured
 	out     []outKey
 	backlog int // rows in out
-	since   time.Time
-	due     time.Time // zero: no deadline
-	overdue bool
-	st      WorkerStatus
+	// busy is when the backlog last grew from empty, busyRows the rows
+	// answered since: one speed measurement per busy spell.
+	busy     time.Time
+	busyRows int
+	since    time.Time
+	due      time.Time // zero: no deadline
+	overdue  bool
+	st       WorkerStatus
 }
 
 func (e *evaluator) owner() bool { return e.w == nil }
@@ -442,8 +455,13 @@ func (s *Session) assign(req *kernels.Request, send func(Frame) error) error {
 	lo := 0
 	for i, e := range elig {
 		end := lo + shares[i]
-		for a := lo; a < end; a += s.rowsPerPart {
-			p.parts = append(p.parts, part{lo: a, hi: min(a+s.rowsPerPart, end)})
+		size := s.rowsPerPart
+		if len(elig) > 1 {
+			// Pieces, so that a lost evaluator's rows spread over several.
+			size = min(size, max(1, (shares[i]+p.opts.Pieces-1)/p.opts.Pieces))
+		}
+		for a := lo; a < end; a += size {
+			p.parts = append(p.parts, part{lo: a, hi: min(a+size, end)})
 			owners = append(owners, e)
 		}
 		lo = end
@@ -465,7 +483,7 @@ func (s *Session) issue(req *kernels.Request, k int, e *evaluator, now time.Time
 	pt := &p.parts[k]
 	pt.holders = append(pt.holders, e)
 	if e.backlog == 0 {
-		e.since = now
+		e.since, e.busy, e.busyRows = now, now, 0
 	}
 	e.out = append(e.out, outKey{req: s.requestID, first: pt.lo, rows: pt.hi - pt.lo})
 	e.backlog += pt.hi - pt.lo
@@ -580,8 +598,10 @@ func (s *Session) takeAnswer(req *kernels.Request, e *evaluator, ev *Evaluations
 	o := e.out[i]
 	e.out = slices.Delete(e.out, i, i+1)
 	e.backlog -= o.rows
-	if dt := now.Sub(e.since).Seconds(); dt > 0 {
-		v := float64(o.rows) / dt
+	e.busyRows += o.rows
+	if dt := now.Sub(e.busy).Seconds(); e.backlog == 0 && dt > 0 {
+		// A busy spell ended: its rows over its length is one measurement.
+		v := float64(e.busyRows) / dt
 		if e.speed == 0 || e.overdue {
 			e.speed = v
 		} else {

@@ -28,7 +28,8 @@ products for "ozaki-krylov", several gradient replicates per point with
 ``Noise(replicates=2)``) are answered with ``batch=``, a function of a
 :class:`Batch` returning an :class:`Answer`. :func:`plan` asks what a
 guaranteed accuracy costs before sampling; :func:`follow` streams another
-session's draws. Server errors raise :class:`SessionError` (gRPC status
+session's draws; :func:`work` serves a running session as one of several
+evaluators (``Spec(owner_evaluates=False)`` lets the owner only consume). Server errors raise :class:`SessionError` (gRPC status
 code, message, and the offending field from the status's bad-request
 detail).
 """
@@ -38,6 +39,7 @@ from ._follow import FOLLOW_MAX_MESSAGE_BYTES, FOLLOW_METHOD, FollowEvent, Follo
 from ._plan import PLAN_METHOD, plan
 from ._session import SESSION_METHOD, BatchFn, Event, GradFn, LogDensityFn, Session, connect, run
 from ._summary import DEFAULT_INTERVAL_LEVEL, ParameterStats
+from ._work import ATTACH_METHOD, work, work_from_env
 from ._types import (
     DEFAULT_MAX_MESSAGE_BYTES,
     METRICS,
@@ -68,6 +70,7 @@ from ._types import (
 )
 
 __all__ = [
+    "ATTACH_METHOD",
     "DEFAULT_INTERVAL_LEVEL",
     "DEFAULT_MAX_MESSAGE_BYTES",
     "FOLLOW_MAX_MESSAGE_BYTES",
@@ -115,4 +118,6 @@ __all__ = [
     "plan",
     "run",
     "to_wire",
+    "work",
+    "work_from_env",
 ]

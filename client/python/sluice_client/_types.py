@@ -266,6 +266,9 @@ class Spec:
     #: "rejection": the Gaussian envelope and its declared bound (required
     #: for that kernel).
     envelope: Optional[Envelope] = None
+    #: False: this client only consumes draws and progress, and workers
+    #: attached with :func:`work` evaluate every row.
+    owner_evaluates: bool = True
 
     def message_limit(self) -> int:
         """The message limit in bytes this spec asks for (0 means 4 MiB)."""
@@ -325,6 +328,8 @@ class Spec:
             reg.schedule.CopyFrom(self.schedule.to_wire())
         if self.envelope is not None:
             reg.envelope.CopyFrom(self.envelope.to_wire())
+        if not self.owner_evaluates:
+            reg.owner_evaluates = False
         return reg
 
 
@@ -401,6 +406,9 @@ class Registered:
     names: Tuple[str, ...]
     #: Steps per chain of a step planned from wants.eps (0 otherwise).
     planned_steps: int = 0
+    #: The session's secret: workers attach with it and session_id (see
+    #: :func:`work`).
+    token: str = ""
 
     @classmethod
     def from_wire(cls, m: pb.Registered) -> "Registered":
@@ -413,6 +421,7 @@ class Registered:
             m.max_message_bytes,
             tuple(m.names),
             m.planned_steps,
+            m.token,
         )
 
 
