@@ -28,6 +28,7 @@ Usage:
   sluice serve [flags]   serve the gRPC API
   sluice demo [flags]    sample an invented kiln-firing model end to end
   sluice plan [flags]    what a guaranteed accuracy costs, before sampling
+  sluice slurm-script [flags] -- WORKER...  a Slurm job array serving a session
   sluice version         version, Go version and build information
 
 Run "sluice <command> -h" for a command's description, examples and flags.
@@ -54,6 +55,8 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		err = demo(ctx, args[1:], stdout, stderr)
 	case "plan":
 		err = plan(ctx, args[1:], stdout, stderr)
+	case "slurm-script":
+		err = slurmScript(args[1:], stdout, stderr)
 	case "version", "-version", "--version":
 		err = version(args[1:], stdout, stderr)
 	case "-h", "--help", "help":
