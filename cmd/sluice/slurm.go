@@ -79,8 +79,8 @@ func slurmUsage(fs *flag.FlagSet, msg string) error {
 	return errors.New("slurm-script: " + msg)
 }
 
-// shellQuote quotes s for bash: single quotes, with each single quote
-// written as '\''.
+// shellQuote quotes s for bash: in single quotes, each single quote of s
+// closing the quotes, escaped with a backslash, and reopening them.
 func shellQuote(s string) string {
 	return "'" + strings.ReplaceAll(s, "'", `'\''`) + "'"
 }

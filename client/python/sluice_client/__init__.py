@@ -65,6 +65,7 @@ from ._types import (
     Summary,
     TargetStatus,
     Wants,
+    WorkerReport,
     from_wire,
     to_wire,
 )
@@ -112,6 +113,7 @@ __all__ = [
     "Summary",
     "TargetStatus",
     "Wants",
+    "WorkerReport",
     "connect",
     "follow",
     "from_wire",

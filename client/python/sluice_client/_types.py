@@ -621,6 +621,25 @@ class KernelReport:
 
 
 @dataclass(frozen=True)
+class WorkerReport:
+    """One evaluator of a session: the name it attached with ("owner" for
+    the owner's stream), whether it is the owner, its measured speed (rows
+    per second, 0 until measured), the rows it answered first, its rows
+    given to other evaluators, and its answers dropped as late."""
+
+    name: str
+    owner: bool
+    rows_per_second: float
+    rows: int
+    rows_reissued: int
+    answers_late: int
+
+    @classmethod
+    def from_wire(cls, m: pb.WorkerReport) -> "WorkerReport":
+        return cls(m.name, m.owner, m.rows_per_second, m.rows, m.rows_reissued, m.answers_late)
+
+
+@dataclass(frozen=True)
 class Progress:
     """Where the budget stands, and the accuracy so far.
     ``evaluations_left`` and ``seconds_left`` are -1 when unlimited; ``ksd``
@@ -647,6 +666,13 @@ class Progress:
     noise: Optional[NoiseEstimate] = None
     kernel: KernelReport = KernelReport()
     parameters_omitted: int = 0
+    #: The evaluators sharing the rows (the owner first when it evaluates);
+    #: empty when no worker ever attached (see :func:`work`).
+    workers: Tuple[WorkerReport, ...] = ()
+    #: Rows issued again because their evaluator left or fell behind.
+    rows_reissued: int = 0
+    #: Answers dropped because another evaluator answered first.
+    answers_late: int = 0
 
     @classmethod
     def from_wire(cls, m: pb.Progress) -> "Progress":
@@ -667,6 +693,9 @@ class Progress:
             NoiseEstimate.from_wire(m.noise) if m.HasField("noise") else None,
             KernelReport.from_wire(m.kernel),
             m.parameters_omitted,
+            tuple(WorkerReport.from_wire(w) for w in m.workers),
+            m.rows_reissued,
+            m.answers_late,
         )
 
 
