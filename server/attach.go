@@ -43,8 +43,9 @@ func withToken(r *sluicev1.SessionResponse, token string) *sluicev1.SessionRespo
 // running session's rows. The engine decides which rows the worker gets
 // (session.Session.Attach); this handler only carries frames. It owns two
 // goroutines: a writer, the stream's only sender, fed by a queue the
-// engine fills without blocking, and a reader handing the worker's
-// answers to the engine. Both have ended when it returns.
+// engine fills without blocking (the writer has ended when the handler
+// returns), and a reader handing the worker's answers to the engine, which
+// ends with the stream.
 func (s *Server) Attach(stream sluicev1.SluiceService_AttachServer) error {
 	first, err := stream.Recv()
 	if errors.Is(err, io.EOF) {
