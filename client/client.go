@@ -67,6 +67,10 @@ type Spec struct {
 	// the session every that many steps (0: only at the server's wall-time
 	// cadence and at shutdown).
 	CheckpointEverySteps int64
+	// WorkersOnly: this client only consumes draws and progress; workers
+	// attached with Work evaluate every row (the eval passed to Run is
+	// then never called and may be nil).
+	WorkersOnly bool
 }
 
 // Envelope is rejection's Gaussian envelope and declared bound.
@@ -168,7 +172,7 @@ type Registered struct {
 	// Wants.Eps (0 otherwise).
 	PlannedSteps int64
 	// Token is the session's secret: Follow and Resume need it with
-	// SessionID. Keep it private.
+	// SessionID, and workers attach with it (see Work). Keep it private.
 	Token string
 	// Resumed is set when the latest stream continued the session from a
 	// checkpoint.
@@ -223,6 +227,24 @@ type Progress struct {
 	// ParametersOmitted counts parameters left out of Parameters so that
 	// the frame fits the message limit (the first ones are sent).
 	ParametersOmitted int
+	// Workers lists the session's evaluators (the owner first when it
+	// evaluates); empty when no worker ever attached. RowsReissued counts
+	// rows issued again because their evaluator left or fell behind;
+	// AnswersLate the answers dropped because another came first.
+	Workers                   []WorkerReport
+	RowsReissued, AnswersLate int64
+}
+
+// WorkerReport is one evaluator of a session: its name, whether it is the
+// owner's stream, its measured speed, the rows it answered first, its rows
+// given to others, and its answers dropped as late.
+type WorkerReport struct {
+	Name          string
+	Owner         bool
+	RowsPerSecond float64
+	Rows          int64
+	RowsReissued  int64
+	AnswersLate   int64
 }
 
 // NoiseEstimate: measured variance of one replicate's error per
@@ -475,7 +497,18 @@ func registerFrame(spec Spec, limit int64) *sluicev1.SessionRequest {
 		CurvatureProbeIterations: int32(spec.CurvatureProbe),
 		SliceWidth:               spec.SliceWidth, SliceMaxExpansions: int32(spec.SliceMaxExpansions), Envelope: envelopeToWire(spec.Envelope),
 		CheckpointEverySteps: spec.CheckpointEverySteps,
+		OwnerEvaluates:       ownerEvaluates(spec),
 	}}}
+}
+
+// ownerEvaluates is the wire's owner_evaluates: unset (true) unless
+// WorkersOnly.
+func ownerEvaluates(spec Spec) *bool {
+	if !spec.WorkersOnly {
+		return nil
+	}
+	f := false
+	return &f
 }
 
 func envelopeToWire(e *Envelope) *sluicev1.Envelope {
@@ -826,6 +859,11 @@ func progressFromWire(p *sluicev1.Progress) Progress {
 			AcceptanceRate: k.GetAcceptanceRate()}
 	}
 	out.ParametersOmitted = int(p.GetParametersOmitted())
+	out.RowsReissued, out.AnswersLate = p.GetRowsReissued(), p.GetAnswersLate()
+	for _, w := range p.GetWorkers() {
+		out.Workers = append(out.Workers, WorkerReport{Name: w.GetName(), Owner: w.GetOwner(), RowsPerSecond: w.GetRowsPerSecond(),
+			Rows: w.GetRows(), RowsReissued: w.GetRowsReissued(), AnswersLate: w.GetAnswersLate()})
+	}
 	for _, t := range p.GetTargets() {
 		out.Targets = append(out.Targets, TargetStatus{Name: t.GetName(), Want: t.GetWant(), Current: t.GetCurrent(), Met: t.GetMet(),
 			ProjectedEvaluations: t.GetProjectedEvaluations()})

@@ -55,6 +55,7 @@ func specFromWire(r *sluicev1.Register) (session.Spec, error) {
 		FixedPointTolerance:  r.GetFixedPointTolerance(),
 		FixedPointIterations: int(r.GetFixedPointIterations()),
 		KrylovMaxIterations:  int(r.GetKrylovMaxIterations()),
+		WorkersOnly:          r.OwnerEvaluates != nil && !r.GetOwnerEvaluates(),
 		Noise: session.Noise{Stochastic: r.GetNoise().GetKind() == sluicev1.GradientKind_GRADIENT_KIND_STOCHASTIC,
 			Variance: r.GetNoise().GetVariance(), Bias: r.GetNoise().GetBias(), DataSize: r.GetNoise().GetDataSize(),
 			MinibatchSize: r.GetNoise().GetMinibatchSize(), Replicates: int(r.GetNoise().GetReplicates())},
@@ -285,5 +286,6 @@ func progressToWire(p *session.Progress) *sluicev1.Progress {
 		w.Targets = append(w.Targets, &sluicev1.TargetStatus{Name: t.Name, Want: t.Want, Current: t.Current, Met: t.Met,
 			ProjectedEvaluations: t.ProjectedEvaluations})
 	}
+	poolToWire(w, &p.Pool)
 	return w
 }

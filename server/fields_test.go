@@ -111,6 +111,9 @@ func leafValues(f protoreflect.FieldDescriptor) []protoreflect.Value {
 		}
 		return out
 	case protoreflect.BoolKind:
+		if f.HasPresence() { // an optional bool whose default is true is read when false
+			return []protoreflect.Value{protoreflect.ValueOfBool(true), protoreflect.ValueOfBool(false)}
+		}
 		return []protoreflect.Value{protoreflect.ValueOfBool(true)}
 	case protoreflect.DoubleKind:
 		return []protoreflect.Value{protoreflect.ValueOfFloat64(0.75)}

@@ -92,6 +92,7 @@ type Server struct {
 	mu       sync.Mutex
 	draining bool
 	active   map[string]chan<- session.Message
+	pools    map[string]attachable // running sessions workers may attach to (attach.go)
 	logs     map[string]*followed
 	live     map[string]*liveSession // resume.go
 	sweeper  chan struct{}           // closed to stop the sweep loop
@@ -146,7 +147,7 @@ func New(o Options) *Server {
 		active: map[string]chan<- session.Message{},
 		logs:   map[string]*followed{}, live: map[string]*liveSession{}, sweeper: make(chan struct{}),
 		registering: make(chan struct{}, o.MaxRegistering), quit: make(chan struct{}),
-		mem: memoryPool{total: o.MaxMemoryBytes}}
+		mem: memoryPool{total: o.MaxMemoryBytes}, pools: map[string]attachable{}}
 	// The engine sizes its frames within Limits.MaxMessageBytes, and the
 	// reader refuses larger client frames with a status naming the frame.
 	// The transport's own cap sits at four times that, as a backstop
@@ -356,6 +357,8 @@ func (s *Server) serveSession(stream sluicev1.SluiceService_SessionServer, sess 
 	defer s.untrack(id, reserved)
 	s.persistTo(ctx, sess)
 	maxGrad, maxFrame, sp0 := sess.MaxGradientValues(), sess.MaxAnswerBytes(), sess.Spec()
+	s.openPool(id, sess.Token(), sess)
+	defer s.closePool(id)
 	go func() { // reader: owned by this handler
 		// Gradients are decoded into a ring of reused buffers. The engine
 		// takes messages in order and has finished with message j (copied

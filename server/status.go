@@ -40,6 +40,8 @@ const (
 	clientGone
 	// deadlineSpent: the call's own deadline passed.
 	deadlineSpent
+	// wrongToken: a worker presented a wrong session token.
+	wrongToken
 )
 
 // statusTable is the one table from faults to status codes.
@@ -54,6 +56,7 @@ var statusTable = map[fault]codes.Code{
 	outsideLog:     codes.OutOfRange,
 	clientGone:     codes.Canceled,
 	deadlineSpent:  codes.DeadlineExceeded,
+	wrongToken:     codes.PermissionDenied,
 }
 
 // kindFault says which fault each engine error kind is.

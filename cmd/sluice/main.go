@@ -35,6 +35,7 @@ Usage:
   sluice demo [flags]    sample an invented kiln-firing model end to end
   sluice plan [flags]    what a guaranteed accuracy costs, before sampling
   sluice bench [flags]   figures beside their floors, measured side by side
+  sluice slurm-script [flags] -- WORKER...  a Slurm job array serving a session
   sluice version         version, Go version and build information
   sluice report DRAWS    pictures and a page (index.html) of a run's draws
   sluice watch SESSION   a live view of a running session, from another terminal
@@ -65,6 +66,8 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		err = plan(ctx, args[1:], stdout, stderr)
 	case "bench":
 		err = bench(ctx, args[1:], stdout, stderr)
+	case "slurm-script":
+		err = slurmScript(args[1:], stdout, stderr)
 	case "version", "-version", "--version":
 		err = version(args[1:], stdout, stderr)
 	case "report":

@@ -11,6 +11,10 @@
 // The engine is the one owner of concurrency in a session: Run reads the
 // client's messages from a channel and calls send for every frame from its
 // own goroutine, so a transport needs one reader goroutine and no locks.
+// It also owns the sharing of each request's rows among the session's
+// evaluators — the owner's stream and workers attached with
+// Session.Attach — and the reissue of a lost or late evaluator's rows
+// (pool.go); a transport gives each worker stream its own writer.
 // Nothing here imports gRPC, protobuf or a logger; the server package
 // translates frames to and from the wire and maps errors to status codes.
 package session

@@ -109,6 +109,8 @@ type Progress struct {
 	Noise *NoiseEstimate
 	// Kernel is what the kernel reports of itself.
 	Kernel KernelReport
+	// Pool reports the evaluators and reissued rows.
+	Pool PoolReport
 }
 
 // KernelReport holds a kernel's own figures (zero when it has none).

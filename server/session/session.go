@@ -27,9 +27,9 @@ type Session struct {
 	phase  int     // index of the running phase; len(phases) once sampling
 
 	msgBytes    int64 // negotiated message limit
-	rowsPerPart int   // rows per Points frame of the current request
+	rowsPerPart int   // most rows per Points frame of the current request
 	answer      *kernels.Answer
-	answered    []bool // per part of the current request
+	pool        *pool // the evaluators and the current request's parts (pool.go)
 
 	start        time.Time
 	requestID    uint64
@@ -90,7 +90,7 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 		return nil, err
 	}
 	s := &Session{id: id, spec: spec, lim: lim, entry: entry, guarantee: g, epsSteps: -1, budget: budget,
-		msgBytes: negotiate(lim.MaxMessageBytes, spec.MaxMessageBytes)}
+		msgBytes: negotiate(lim.MaxMessageBytes, spec.MaxMessageBytes), pool: newPool(lim.Pool)}
 	if g != nil && spec.Wants.Eps > 0 {
 		s.epsSteps = g.stepsTo(spec.Wants.Eps, 0)
 	}
@@ -194,6 +194,7 @@ func (s *Session) Spec() Spec { return s.spec }
 func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) error) (Result, error) {
 	r := s.begin(ctx, in, send)
 	defer r.stop()
+	defer s.pool.close()
 	return s.end(r, s.loop(r))
 }
 
@@ -422,9 +423,19 @@ func (s *Session) request(r *run, req *kernels.Request) error {
 // await collects every part of the answer to req; it reports an outcome
 // when the session ends while waiting.
 func (s *Session) await(r *run, req *kernels.Request) (outcome, bool) {
-	for left := s.parts(req.Rows); left > 0; left-- {
+	for s.pool.unanswered > 0 {
 		var msg Message
 		select {
+		case ev := <-s.pool.events:
+			if err := s.poolEvent(req, ev); err != nil {
+				return s.poolFailure(err), true
+			}
+			continue
+		case <-s.pool.timer.C:
+			if err := s.overdue(req, time.Now()); err != nil {
+				return s.poolFailure(err), true
+			}
+			continue
 		case <-r.ctx.Done():
 			return outcome{reason: Failed, msg: ErrClientGone.Error(), err: ErrClientGone, quiet: true}, true
 		case <-r.deadline:
@@ -446,7 +457,6 @@ func (s *Session) await(r *run, req *kernels.Request) (outcome, bool) {
 		case msg.Stop && msg.Shutdown && s.checkpointing():
 			// Stop at the next checkpoint instead: finish this request.
 			r.suspend = true
-			left++
 			continue
 		case msg.Stop && msg.Shutdown:
 			return outcome{reason: Shutdown, msg: msg.StopReason}, true
@@ -455,8 +465,8 @@ func (s *Session) await(r *run, req *kernels.Request) (outcome, bool) {
 		case msg.Evaluations == nil:
 			return failed(BadField("frame", "expected evaluations or stop")), true
 		}
-		if err := s.accept(req, msg.Evaluations); err != nil {
-			return failed(err), true
+		if err := s.ownerAnswer(req, msg.Evaluations); err != nil {
+			return s.poolFailure(err), true
 		}
 	}
 	return outcome{}, false
@@ -574,9 +584,6 @@ func (s *Session) partRows(need kernels.Need) int {
 	return wire.RowsPerMessage(s.msgBytes, rowValues(need, s.spec.Dim, s.replicates(need)))
 }
 
-// parts is the number of Points frames a request of rows rows takes.
-func (s *Session) parts(rows int) int { return (rows + s.rowsPerPart - 1) / s.rowsPerPart }
-
 func (s *Session) sendPoints(req *kernels.Request, send func(Frame) error) error {
 	s.rowsPerPart = s.partRows(req.Need)
 	if s.rowsPerPart < 1 {
@@ -586,48 +593,31 @@ func (s *Session) sendPoints(req *kernels.Request, send func(Frame) error) error
 		return &Error{Kind: TooLarge, Field: "register.max_message_bytes", Chain: -1, Coord: -1,
 			Reason: fmt.Sprintf("one row of this request (%d bytes) does not fit the session's message limit of %d bytes", s.rowBytes(req.Need), s.msgBytes)}
 	}
-	n := s.parts(req.Rows)
-	if cap(s.answered) < n {
-		s.answered = make([]bool, n)
-	}
-	s.answered = s.answered[:n]
-	clear(s.answered)
 	s.answer.Reserve(req.Need, req.Rows, s.spec.Dim)
-	dim := s.spec.Dim
-	for p := range n {
-		lo := p * s.rowsPerPart
-		hi := min(lo+s.rowsPerPart, req.Rows)
-		f := &s.points // reused: a frame is valid only during its send call
-		*f = Points{RequestID: s.requestID, FirstRow: lo, Rows: hi - lo, TotalRows: req.Rows, Dim: dim,
-			Points: req.Points[lo*dim : hi*dim], Chains: req.Chain[lo:hi], Need: req.Need}
-		if req.Need.Has(kernels.NeedHessianVector) {
-			f.Vectors = req.Vectors[lo*dim : hi*dim]
-		}
-		if req.Group != nil {
-			f.Groups = req.Group[lo:hi]
-		}
-		f.FullData = req.Need.Has(kernels.NeedFullData)
-		f.Replicates = s.replicates(req.Need)
-		if err := send(f); err != nil {
-			return err
-		}
-	}
-	return nil
+	return s.assign(req, send)
 }
 
-// accept validates one answer part and copies it into s.answer.
-func (s *Session) accept(req *kernels.Request, ev *Evaluations) *Error {
-	if ev.RequestID != s.requestID {
-		return BadField("evaluations.request_id", "answers request %d, but the current request is %d", ev.RequestID, s.requestID)
+// pointsFrame is the Points frame of rows [lo, hi) of req.
+func (s *Session) pointsFrame(req *kernels.Request, lo, hi int) *Points {
+	dim := s.spec.Dim
+	f := &Points{RequestID: s.requestID, FirstRow: lo, Rows: hi - lo, TotalRows: req.Rows, Dim: dim,
+		Points: req.Points[lo*dim : hi*dim], Chains: req.Chain[lo:hi], Need: req.Need}
+	if req.Need.Has(kernels.NeedHessianVector) {
+		f.Vectors = req.Vectors[lo*dim : hi*dim]
 	}
-	if ev.FirstRow < 0 || ev.FirstRow >= req.Rows || ev.FirstRow%s.rowsPerPart != 0 {
-		return BadField("evaluations.first_row", "%d is not the first row of a part of request %d", ev.FirstRow, s.requestID)
+	if req.Group != nil {
+		f.Groups = req.Group[lo:hi]
 	}
-	part := ev.FirstRow / s.rowsPerPart
-	if s.answered[part] {
-		return BadField("evaluations.first_row", "part starting at row %d of request %d was already answered", ev.FirstRow, s.requestID)
-	}
-	rows := min(s.rowsPerPart, req.Rows-ev.FirstRow)
+	f.FullData = req.Need.Has(kernels.NeedFullData)
+	f.Replicates = s.replicates(req.Need)
+	return f
+}
+
+// accept validates the answer to part k of the current request (the
+// pool has matched it to the part) and copies it into s.answer.
+func (s *Session) accept(req *kernels.Request, ev *Evaluations, k int) *Error {
+	pt := s.pool.parts[k]
+	rows := pt.hi - pt.lo
 	if ev.Rows != rows {
 		return BadField("evaluations.rows", "is %d, the part has %d rows", ev.Rows, rows)
 	}
@@ -695,7 +685,6 @@ func (s *Session) accept(req *kernels.Request, ev *Evaluations) *Error {
 	} else if len(ev.HessVec) != 0 {
 		return BadField("evaluations.hessian_vectors", "must be empty: Hessian-vector products were not asked for")
 	}
-	s.answered[part] = true
 	return nil
 }
 
@@ -1031,6 +1020,7 @@ func (s *Session) progress(now time.Time, final bool) Progress {
 		ph.Report(&p)
 	}
 	p.Kernel = kernelReport(s.kernel)
+	p.Pool = s.poolReport()
 	if s.spec.Noise.Stochastic {
 		n := s.noise.estimate(s.spec.Noise)
 		p.Noise = &n

@@ -81,6 +81,9 @@ type Spec struct {
 	// CheckpointEverySteps, when > 0, checkpoints the session every that
 	// many steps (when the server keeps checkpoints; see Checkpoints).
 	CheckpointEverySteps int64
+	// WorkersOnly says the owner's stream only consumes: workers attached
+	// to the session (Session.Attach) evaluate every row.
+	WorkersOnly bool
 }
 
 // Envelope is q = N(Mean, Scale²I) with π̃ ≤ exp(LogBound)·q.
@@ -167,6 +170,8 @@ type Limits struct {
 	// may hold decoded before the engine takes them, counted in the
 	// budget (default 2).
 	InflightAnswers int
+	// Pool tunes how rows are shared among a session's evaluators.
+	Pool PoolOptions
 }
 
 // Length limits of the strings a client sends.

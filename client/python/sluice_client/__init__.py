@@ -32,7 +32,9 @@ an MPI pool) spreads the rows of every batch over its workers. :func:`plan` asks
 guaranteed accuracy costs before sampling; :func:`follow` streams another
 session's header, draws and progress; :class:`HistoryWriter` writes the
 progress history that ``sluice report`` reads beside the draws
-``Summary.save`` writes. Server errors raise :class:`SessionError` (gRPC status
+``Summary.save`` writes; :func:`work` serves a running session as one of
+several evaluators (``Spec(owner_evaluates=False)`` lets the owner only
+consume). Server errors raise :class:`SessionError` (gRPC status
 code, message, and the offending field from the status's bad-request
 detail).
 """
@@ -44,6 +46,7 @@ from ._resume import ResumePolicy
 from ._plan import PLAN_METHOD, plan
 from ._session import SESSION_METHOD, BatchFn, Event, GradFn, LogDensityFn, Session, connect, run
 from ._summary import DEFAULT_INTERVAL_LEVEL, ParameterStats
+from ._work import ATTACH_METHOD, work, work_from_env
 from ._types import (
     DEFAULT_MAX_MESSAGE_BYTES,
     METRICS,
@@ -69,11 +72,13 @@ from ._types import (
     Summary,
     TargetStatus,
     Wants,
+    WorkerReport,
     from_wire,
     to_wire,
 )
 
 __all__ = [
+    "ATTACH_METHOD",
     "DEFAULT_INTERVAL_LEVEL",
     "DEFAULT_MAX_MESSAGE_BYTES",
     "FOLLOW_MAX_MESSAGE_BYTES",
@@ -120,6 +125,7 @@ __all__ = [
     "Summary",
     "TargetStatus",
     "Wants",
+    "WorkerReport",
     "connect",
     "follow",
     "from_wire",
@@ -127,4 +133,6 @@ __all__ = [
     "plan",
     "run",
     "to_wire",
+    "work",
+    "work_from_env",
 ]

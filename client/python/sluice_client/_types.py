@@ -269,6 +269,9 @@ class Spec:
     #: Checkpoint every this many steps when the server keeps state (0: only
     #: at the server's wall-time cadence and at shutdown).
     checkpoint_every_steps: int = 0
+    #: False: this client only consumes draws and progress, and workers
+    #: attached with :func:`work` evaluate every row.
+    owner_evaluates: bool = True
 
     def message_limit(self) -> int:
         """The message limit in bytes this spec asks for (0 means 4 MiB)."""
@@ -329,6 +332,8 @@ class Spec:
         if self.envelope is not None:
             reg.envelope.CopyFrom(self.envelope.to_wire())
         reg.checkpoint_every_steps = self.checkpoint_every_steps
+        if not self.owner_evaluates:
+            reg.owner_evaluates = False
         return reg
 
 
@@ -405,7 +410,7 @@ class Registered:
     names: Tuple[str, ...]
     #: Steps per chain of a step planned from wants.eps (0 otherwise).
     planned_steps: int = 0
-    #: The session's secret: follow() and resuming need it with session_id.
+    #: The session's secret: follow(), resuming and work() need it with session_id.
     resume_token: str = ""
     #: True when the latest stream continued the session from a checkpoint.
     resumed: bool = False
@@ -622,6 +627,25 @@ class KernelReport:
 
 
 @dataclass(frozen=True)
+class WorkerReport:
+    """One evaluator of a session: the name it attached with ("owner" for
+    the owner's stream), whether it is the owner, its measured speed (rows
+    per second, 0 until measured), the rows it answered first, its rows
+    given to other evaluators, and its answers dropped as late."""
+
+    name: str
+    owner: bool
+    rows_per_second: float
+    rows: int
+    rows_reissued: int
+    answers_late: int
+
+    @classmethod
+    def from_wire(cls, m: pb.WorkerReport) -> "WorkerReport":
+        return cls(m.name, m.owner, m.rows_per_second, m.rows, m.rows_reissued, m.answers_late)
+
+
+@dataclass(frozen=True)
 class Progress:
     """Where the budget stands, and the accuracy so far.
     ``evaluations_left`` and ``seconds_left`` are -1 when unlimited; ``ksd``
@@ -648,6 +672,13 @@ class Progress:
     noise: Optional[NoiseEstimate] = None
     kernel: KernelReport = KernelReport()
     parameters_omitted: int = 0
+    #: The evaluators sharing the rows (the owner first when it evaluates);
+    #: empty when no worker ever attached (see :func:`work`).
+    workers: Tuple[WorkerReport, ...] = ()
+    #: Rows issued again because their evaluator left or fell behind.
+    rows_reissued: int = 0
+    #: Answers dropped because another evaluator answered first.
+    answers_late: int = 0
 
     @classmethod
     def from_wire(cls, m: pb.Progress) -> "Progress":
@@ -668,6 +699,9 @@ class Progress:
             NoiseEstimate.from_wire(m.noise) if m.HasField("noise") else None,
             KernelReport.from_wire(m.kernel),
             m.parameters_omitted,
+            tuple(WorkerReport.from_wire(w) for w in m.workers),
+            m.rows_reissued,
+            m.answers_late,
         )
 
 

@@ -117,6 +117,8 @@ def is_set(msg: Message, path: Path_) -> bool:
             return any(is_set(m, path[1:]) for m in getattr(msg, f.name))
         return msg.HasField(f.name) and is_set(getattr(msg, f.name), path[1:])
     v = getattr(msg, f.name)
+    if f.label != FieldDescriptor.LABEL_REPEATED and f.has_presence:
+        return msg.HasField(f.name)  # an optional field is set when present, whatever its value
     return len(v) > 0 if f.label == FieldDescriptor.LABEL_REPEATED else v != f.default_value
 
 
@@ -178,6 +180,7 @@ SPECIAL = {
     "metric": "tv",
     "penalty_centre": np.full(2, 0.75),
     "mean": np.full(2, 0.75),
+    "owner_evaluates": False,
 }
 
 

@@ -1235,6 +1235,10 @@ type Register struct {
 	// "rejection": the Gaussian envelope and its declared bound (required
 	// for that kernel, dim <= 4).
 	Envelope *Envelope `protobuf:"bytes,31,opt,name=envelope,proto3" json:"envelope,omitempty"`
+	// Whether this stream evaluates rows itself (default true). False: the
+	// owner only consumes draws and progress, and workers attached with the
+	// Attach rpc evaluate every row (rows wait until one attaches).
+	OwnerEvaluates *bool `protobuf:"varint,34,opt,name=owner_evaluates,json=ownerEvaluates,proto3,oneof" json:"owner_evaluates,omitempty"`
 	// How the client's gradients are made: exact (the default) or
 	// stochastic (minibatches, Monte Carlo estimates, noisy simulators).
 	Noise *GradientNoise `protobuf:"bytes,21,opt,name=noise,proto3" json:"noise,omitempty"`
@@ -1493,6 +1497,13 @@ func (x *Register) GetEnvelope() *Envelope {
 		return x.Envelope
 	}
 	return nil
+}
+
+func (x *Register) GetOwnerEvaluates() bool {
+	if x != nil && x.OwnerEvaluates != nil {
+		return *x.OwnerEvaluates
+	}
+	return false
 }
 
 func (x *Register) GetNoise() *GradientNoise {
@@ -2541,8 +2552,16 @@ type Progress struct {
 	// Parameters left out of `parameters` so that the frame fits the message
 	// limit (the first ones are sent); 0 normally.
 	ParametersOmitted int32 `protobuf:"varint,16,opt,name=parameters_omitted,json=parametersOmitted,proto3" json:"parameters_omitted,omitempty"`
-	unknownFields     protoimpl.UnknownFields
-	sizeCache         protoimpl.SizeCache
+	// The evaluators sharing the rows (the owner first when it evaluates);
+	// empty when no worker ever attached.
+	Workers []*WorkerReport `protobuf:"bytes,17,rep,name=workers,proto3" json:"workers,omitempty"`
+	// Rows issued a second time (or more) because their evaluator left or
+	// fell behind.
+	RowsReissued int64 `protobuf:"varint,18,opt,name=rows_reissued,json=rowsReissued,proto3" json:"rows_reissued,omitempty"`
+	// Answers dropped because another evaluator answered the part first.
+	AnswersLate   int64 `protobuf:"varint,19,opt,name=answers_late,json=answersLate,proto3" json:"answers_late,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *Progress) Reset() {
@@ -2683,6 +2702,27 @@ func (x *Progress) GetKernel() *KernelReport {
 func (x *Progress) GetParametersOmitted() int32 {
 	if x != nil {
 		return x.ParametersOmitted
+	}
+	return 0
+}
+
+func (x *Progress) GetWorkers() []*WorkerReport {
+	if x != nil {
+		return x.Workers
+	}
+	return nil
+}
+
+func (x *Progress) GetRowsReissued() int64 {
+	if x != nil {
+		return x.RowsReissued
+	}
+	return 0
+}
+
+func (x *Progress) GetAnswersLate() int64 {
+	if x != nil {
+		return x.AnswersLate
 	}
 	return 0
 }
@@ -3693,6 +3733,405 @@ func (x *FollowHeader) GetNextSeq() uint64 {
 	return 0
 }
 
+// WorkerReport is one evaluator of a session.
+type WorkerReport struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The name the worker attached with ("owner" for the owner's stream).
+	Name string `protobuf:"bytes,1,opt,name=name,proto3" json:"name,omitempty"`
+	// Set for the session owner's own stream.
+	Owner bool `protobuf:"varint,2,opt,name=owner,proto3" json:"owner,omitempty"`
+	// Measured speed: rows per second, an exponentially weighted mean (0
+	// until measured).
+	RowsPerSecond float64 `protobuf:"fixed64,3,opt,name=rows_per_second,json=rowsPerSecond,proto3" json:"rows_per_second,omitempty"`
+	// Rows it answered first (the answers kept).
+	Rows int64 `protobuf:"varint,4,opt,name=rows,proto3" json:"rows,omitempty"`
+	// Rows it held that were issued to others.
+	RowsReissued int64 `protobuf:"varint,5,opt,name=rows_reissued,json=rowsReissued,proto3" json:"rows_reissued,omitempty"`
+	// Its answers dropped because another evaluator answered first.
+	AnswersLate   int64 `protobuf:"varint,6,opt,name=answers_late,json=answersLate,proto3" json:"answers_late,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *WorkerReport) Reset() {
+	*x = WorkerReport{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[28]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *WorkerReport) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*WorkerReport) ProtoMessage() {}
+
+func (x *WorkerReport) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[28]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use WorkerReport.ProtoReflect.Descriptor instead.
+func (*WorkerReport) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{28}
+}
+
+func (x *WorkerReport) GetName() string {
+	if x != nil {
+		return x.Name
+	}
+	return ""
+}
+
+func (x *WorkerReport) GetOwner() bool {
+	if x != nil {
+		return x.Owner
+	}
+	return false
+}
+
+func (x *WorkerReport) GetRowsPerSecond() float64 {
+	if x != nil {
+		return x.RowsPerSecond
+	}
+	return 0
+}
+
+func (x *WorkerReport) GetRows() int64 {
+	if x != nil {
+		return x.Rows
+	}
+	return 0
+}
+
+func (x *WorkerReport) GetRowsReissued() int64 {
+	if x != nil {
+		return x.RowsReissued
+	}
+	return 0
+}
+
+func (x *WorkerReport) GetAnswersLate() int64 {
+	if x != nil {
+		return x.AnswersLate
+	}
+	return 0
+}
+
+// AttachRequest is one frame from a worker.
+type AttachRequest struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Types that are valid to be assigned to Frame:
+	//
+	//	*AttachRequest_Attach
+	//	*AttachRequest_Evaluations
+	Frame         isAttachRequest_Frame `protobuf_oneof:"frame"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *AttachRequest) Reset() {
+	*x = AttachRequest{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[29]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *AttachRequest) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*AttachRequest) ProtoMessage() {}
+
+func (x *AttachRequest) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[29]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use AttachRequest.ProtoReflect.Descriptor instead.
+func (*AttachRequest) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{29}
+}
+
+func (x *AttachRequest) GetFrame() isAttachRequest_Frame {
+	if x != nil {
+		return x.Frame
+	}
+	return nil
+}
+
+func (x *AttachRequest) GetAttach() *Attach {
+	if x != nil {
+		if x, ok := x.Frame.(*AttachRequest_Attach); ok {
+			return x.Attach
+		}
+	}
+	return nil
+}
+
+func (x *AttachRequest) GetEvaluations() *Evaluations {
+	if x != nil {
+		if x, ok := x.Frame.(*AttachRequest_Evaluations); ok {
+			return x.Evaluations
+		}
+	}
+	return nil
+}
+
+type isAttachRequest_Frame interface {
+	isAttachRequest_Frame()
+}
+
+type AttachRequest_Attach struct {
+	// First frame, sent exactly once.
+	Attach *Attach `protobuf:"bytes,1,opt,name=attach,proto3,oneof"`
+}
+
+type AttachRequest_Evaluations struct {
+	// The answer to one Points frame.
+	Evaluations *Evaluations `protobuf:"bytes,2,opt,name=evaluations,proto3,oneof"`
+}
+
+func (*AttachRequest_Attach) isAttachRequest_Frame() {}
+
+func (*AttachRequest_Evaluations) isAttachRequest_Frame() {}
+
+// Attach names the session a worker serves.
+type Attach struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Registered.session_id of the session.
+	SessionId string `protobuf:"bytes,1,opt,name=session_id,json=sessionId,proto3" json:"session_id,omitempty"`
+	// Registered.resume_token of the session.
+	Token string `protobuf:"bytes,2,opt,name=token,proto3" json:"token,omitempty"`
+	// Free text shown in progress reports (a host name, a task index).
+	Name          string `protobuf:"bytes,3,opt,name=name,proto3" json:"name,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *Attach) Reset() {
+	*x = Attach{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[30]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *Attach) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*Attach) ProtoMessage() {}
+
+func (x *Attach) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[30]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use Attach.ProtoReflect.Descriptor instead.
+func (*Attach) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{30}
+}
+
+func (x *Attach) GetSessionId() string {
+	if x != nil {
+		return x.SessionId
+	}
+	return ""
+}
+
+func (x *Attach) GetToken() string {
+	if x != nil {
+		return x.Token
+	}
+	return ""
+}
+
+func (x *Attach) GetName() string {
+	if x != nil {
+		return x.Name
+	}
+	return ""
+}
+
+// AttachResponse is one frame to a worker.
+type AttachResponse struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Types that are valid to be assigned to Frame:
+	//
+	//	*AttachResponse_Attached
+	//	*AttachResponse_Points
+	Frame         isAttachResponse_Frame `protobuf_oneof:"frame"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *AttachResponse) Reset() {
+	*x = AttachResponse{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[31]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *AttachResponse) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*AttachResponse) ProtoMessage() {}
+
+func (x *AttachResponse) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[31]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use AttachResponse.ProtoReflect.Descriptor instead.
+func (*AttachResponse) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{31}
+}
+
+func (x *AttachResponse) GetFrame() isAttachResponse_Frame {
+	if x != nil {
+		return x.Frame
+	}
+	return nil
+}
+
+func (x *AttachResponse) GetAttached() *Attached {
+	if x != nil {
+		if x, ok := x.Frame.(*AttachResponse_Attached); ok {
+			return x.Attached
+		}
+	}
+	return nil
+}
+
+func (x *AttachResponse) GetPoints() *Points {
+	if x != nil {
+		if x, ok := x.Frame.(*AttachResponse_Points); ok {
+			return x.Points
+		}
+	}
+	return nil
+}
+
+type isAttachResponse_Frame interface {
+	isAttachResponse_Frame()
+}
+
+type AttachResponse_Attached struct {
+	// Acknowledges Attach.
+	Attached *Attached `protobuf:"bytes,1,opt,name=attached,proto3,oneof"`
+}
+
+type AttachResponse_Points struct {
+	// Points the worker must evaluate.
+	Points *Points `protobuf:"bytes,2,opt,name=points,proto3,oneof"`
+}
+
+func (*AttachResponse_Attached) isAttachResponse_Frame() {}
+
+func (*AttachResponse_Points) isAttachResponse_Frame() {}
+
+// Attached tells the worker what the session needs.
+type Attached struct {
+	state     protoimpl.MessageState `protogen:"open.v1"`
+	SessionId string                 `protobuf:"bytes,1,opt,name=session_id,json=sessionId,proto3" json:"session_id,omitempty"`
+	// The session's dimension.
+	Dim int32 `protobuf:"varint,2,opt,name=dim,proto3" json:"dim,omitempty"`
+	// The largest message in bytes the server sends or accepts on this
+	// stream.
+	MaxMessageBytes int64 `protobuf:"varint,3,opt,name=max_message_bytes,json=maxMessageBytes,proto3" json:"max_message_bytes,omitempty"`
+	// Parameter names (dim entries).
+	Names         []string `protobuf:"bytes,4,rep,name=names,proto3" json:"names,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *Attached) Reset() {
+	*x = Attached{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[32]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *Attached) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*Attached) ProtoMessage() {}
+
+func (x *Attached) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[32]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use Attached.ProtoReflect.Descriptor instead.
+func (*Attached) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{32}
+}
+
+func (x *Attached) GetSessionId() string {
+	if x != nil {
+		return x.SessionId
+	}
+	return ""
+}
+
+func (x *Attached) GetDim() int32 {
+	if x != nil {
+		return x.Dim
+	}
+	return 0
+}
+
+func (x *Attached) GetMaxMessageBytes() int64 {
+	if x != nil {
+		return x.MaxMessageBytes
+	}
+	return 0
+}
+
+func (x *Attached) GetNames() []string {
+	if x != nil {
+		return x.Names
+	}
+	return nil
+}
+
 var File_sluice_v1_sluice_proto protoreflect.FileDescriptor
 
 const file_sluice_v1_sluice_proto_rawDesc = "" +
@@ -3749,7 +4188,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x05draws\x18\x03 \x01(\v2\x10.sluice.v1.DrawsH\x00R\x05draws\x121\n" +
 	"\bprogress\x18\x04 \x01(\v2\x13.sluice.v1.ProgressH\x00R\bprogress\x121\n" +
 	"\bfinished\x18\x05 \x01(\v2\x13.sluice.v1.FinishedH\x00R\bfinishedB\a\n" +
-	"\x05frame\"\x9f\n" +
+	"\x05frame\"\xe1\n" +
 	"\n" +
 	"\bRegister\x12\x10\n" +
 	"\x03dim\x18\x01 \x01(\x05R\x03dim\x12\x16\n" +
@@ -3786,10 +4225,12 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\vslice_width\x18\x1d \x01(\x01R\n" +
 	"sliceWidth\x120\n" +
 	"\x14slice_max_expansions\x18\x1e \x01(\x05R\x12sliceMaxExpansions\x12/\n" +
-	"\benvelope\x18\x1f \x01(\v2\x13.sluice.v1.EnvelopeR\benvelope\x12.\n" +
+	"\benvelope\x18\x1f \x01(\v2\x13.sluice.v1.EnvelopeR\benvelope\x12,\n" +
+	"\x0fowner_evaluates\x18\" \x01(\bH\x00R\x0eownerEvaluates\x88\x01\x01\x12.\n" +
 	"\x05noise\x18\x15 \x01(\v2\x18.sluice.v1.GradientNoiseR\x05noise\x124\n" +
 	"\x16checkpoint_every_steps\x18  \x01(\x03R\x14checkpointEverySteps\x126\n" +
-	"\x17accepts_draw_references\x18! \x01(\bR\x15acceptsDrawReferences\"Q\n" +
+	"\x17accepts_draw_references\x18! \x01(\bR\x15acceptsDrawReferencesB\x12\n" +
+	"\x10_owner_evaluates\"Q\n" +
 	"\bEnvelope\x12\x12\n" +
 	"\x04mean\x18\x01 \x01(\fR\x04mean\x12\x14\n" +
 	"\x05scale\x18\x02 \x01(\x01R\x05scale\x12\x1b\n" +
@@ -3881,7 +4322,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"iterations\x12&\n" +
 	"\x0ffrom_request_id\x18\a \x01(\x04R\rfromRequestId\x12\x1d\n" +
 	"\n" +
-	"point_rows\x18\b \x03(\x05R\tpointRows\"\xb3\x05\n" +
+	"point_rows\x18\b \x03(\x05R\tpointRows\"\xae\x06\n" +
 	"\bProgress\x12&\n" +
 	"\x05state\x18\x01 \x01(\x0e2\x10.sluice.v1.StateR\x05state\x12\x14\n" +
 	"\x05steps\x18\x02 \x01(\x03R\x05steps\x12)\n" +
@@ -3902,7 +4343,10 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\atargets\x18\r \x03(\v2\x17.sluice.v1.TargetStatusR\atargets\x12.\n" +
 	"\x05noise\x18\x0e \x01(\v2\x18.sluice.v1.NoiseEstimateR\x05noise\x12/\n" +
 	"\x06kernel\x18\x0f \x01(\v2\x17.sluice.v1.KernelReportR\x06kernel\x12-\n" +
-	"\x12parameters_omitted\x18\x10 \x01(\x05R\x11parametersOmitted\"\xdd\x02\n" +
+	"\x12parameters_omitted\x18\x10 \x01(\x05R\x11parametersOmitted\x121\n" +
+	"\aworkers\x18\x11 \x03(\v2\x17.sluice.v1.WorkerReportR\aworkers\x12#\n" +
+	"\rrows_reissued\x18\x12 \x01(\x03R\frowsReissued\x12!\n" +
+	"\fanswers_late\x18\x13 \x01(\x03R\vanswersLate\"\xdd\x02\n" +
 	"\fKernelReport\x12\x12\n" +
 	"\x04step\x18\x01 \x01(\x01R\x04step\x12\x1a\n" +
 	"\badapting\x18\x02 \x01(\bR\badapting\x12)\n" +
@@ -3992,7 +4436,33 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x14evaluations_per_step\x18\r \x01(\x03R\x12evaluationsPerStep\x12&\n" +
 	"\x05wants\x18\x0e \x01(\v2\x10.sluice.v1.WantsR\x05wants\x12\x1b\n" +
 	"\tfirst_seq\x18\x0f \x01(\x04R\bfirstSeq\x12\x19\n" +
-	"\bnext_seq\x18\x10 \x01(\x04R\anextSeq*d\n" +
+	"\bnext_seq\x18\x10 \x01(\x04R\anextSeq\"\xbc\x01\n" +
+	"\fWorkerReport\x12\x12\n" +
+	"\x04name\x18\x01 \x01(\tR\x04name\x12\x14\n" +
+	"\x05owner\x18\x02 \x01(\bR\x05owner\x12&\n" +
+	"\x0frows_per_second\x18\x03 \x01(\x01R\rrowsPerSecond\x12\x12\n" +
+	"\x04rows\x18\x04 \x01(\x03R\x04rows\x12#\n" +
+	"\rrows_reissued\x18\x05 \x01(\x03R\frowsReissued\x12!\n" +
+	"\fanswers_late\x18\x06 \x01(\x03R\vanswersLate\"\x81\x01\n" +
+	"\rAttachRequest\x12+\n" +
+	"\x06attach\x18\x01 \x01(\v2\x11.sluice.v1.AttachH\x00R\x06attach\x12:\n" +
+	"\vevaluations\x18\x02 \x01(\v2\x16.sluice.v1.EvaluationsH\x00R\vevaluationsB\a\n" +
+	"\x05frame\"Q\n" +
+	"\x06Attach\x12\x1d\n" +
+	"\n" +
+	"session_id\x18\x01 \x01(\tR\tsessionId\x12\x14\n" +
+	"\x05token\x18\x02 \x01(\tR\x05token\x12\x12\n" +
+	"\x04name\x18\x03 \x01(\tR\x04name\"y\n" +
+	"\x0eAttachResponse\x121\n" +
+	"\battached\x18\x01 \x01(\v2\x13.sluice.v1.AttachedH\x00R\battached\x12+\n" +
+	"\x06points\x18\x02 \x01(\v2\x11.sluice.v1.PointsH\x00R\x06pointsB\a\n" +
+	"\x05frame\"}\n" +
+	"\bAttached\x12\x1d\n" +
+	"\n" +
+	"session_id\x18\x01 \x01(\tR\tsessionId\x12\x10\n" +
+	"\x03dim\x18\x02 \x01(\x05R\x03dim\x12*\n" +
+	"\x11max_message_bytes\x18\x03 \x01(\x03R\x0fmaxMessageBytes\x12\x14\n" +
+	"\x05names\x18\x04 \x03(\tR\x05names*d\n" +
 	"\fGradientKind\x12\x1d\n" +
 	"\x19GRADIENT_KIND_UNSPECIFIED\x10\x00\x12\x17\n" +
 	"\x13GRADIENT_KIND_EXACT\x10\x01\x12\x1c\n" +
@@ -4024,11 +4494,12 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x1dFINISH_REASON_DRAWS_COLLECTED\x10\x04\x12\x18\n" +
 	"\x14FINISH_REASON_FAILED\x10\x05\x12\x1a\n" +
 	"\x16FINISH_REASON_SHUTDOWN\x10\x06\x12\x1c\n" +
-	"\x18FINISH_REASON_TARGET_MET\x10\a2\xcf\x01\n" +
+	"\x18FINISH_REASON_TARGET_MET\x10\a2\x92\x02\n" +
 	"\rSluiceService\x12D\n" +
 	"\aSession\x12\x19.sluice.v1.SessionRequest\x1a\x1a.sluice.v1.SessionResponse(\x010\x01\x12?\n" +
 	"\x06Follow\x12\x18.sluice.v1.FollowRequest\x1a\x19.sluice.v1.FollowResponse0\x01\x127\n" +
-	"\x04Plan\x12\x16.sluice.v1.PlanRequest\x1a\x17.sluice.v1.PlanResponseB!Z\x1fsluice/proto/sluice/v1;sluicev1b\x06proto3"
+	"\x04Plan\x12\x16.sluice.v1.PlanRequest\x1a\x17.sluice.v1.PlanResponse\x12A\n" +
+	"\x06Attach\x12\x18.sluice.v1.AttachRequest\x1a\x19.sluice.v1.AttachResponse(\x010\x01B!Z\x1fsluice/proto/sluice/v1;sluicev1b\x06proto3"
 
 var (
 	file_sluice_v1_sluice_proto_rawDescOnce sync.Once
@@ -4043,7 +4514,7 @@ func file_sluice_v1_sluice_proto_rawDescGZIP() []byte {
 }
 
 var file_sluice_v1_sluice_proto_enumTypes = make([]protoimpl.EnumInfo, 6)
-var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 28)
+var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 33)
 var file_sluice_v1_sluice_proto_goTypes = []any{
 	(GradientKind)(0),            // 0: sluice.v1.GradientKind
 	(Metric)(0),                  // 1: sluice.v1.Metric
@@ -4079,6 +4550,11 @@ var file_sluice_v1_sluice_proto_goTypes = []any{
 	(*ParameterSummary)(nil),     // 31: sluice.v1.ParameterSummary
 	(*Resume)(nil),               // 32: sluice.v1.Resume
 	(*FollowHeader)(nil),         // 33: sluice.v1.FollowHeader
+	(*WorkerReport)(nil),         // 34: sluice.v1.WorkerReport
+	(*AttachRequest)(nil),        // 35: sluice.v1.AttachRequest
+	(*Attach)(nil),               // 36: sluice.v1.Attach
+	(*AttachResponse)(nil),       // 37: sluice.v1.AttachResponse
+	(*Attached)(nil),             // 38: sluice.v1.Attached
 }
 var file_sluice_v1_sluice_proto_depIdxs = []int32{
 	16, // 0: sluice.v1.PlanRequest.curvature:type_name -> sluice.v1.Curvature
@@ -4112,23 +4588,30 @@ var file_sluice_v1_sluice_proto_depIdxs = []int32{
 	29, // 28: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
 	25, // 29: sluice.v1.Progress.noise:type_name -> sluice.v1.NoiseEstimate
 	24, // 30: sluice.v1.Progress.kernel:type_name -> sluice.v1.KernelReport
-	1,  // 31: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
-	4,  // 32: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
-	5,  // 33: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
-	23, // 34: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
-	31, // 35: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
-	17, // 36: sluice.v1.FollowHeader.wants:type_name -> sluice.v1.Wants
-	10, // 37: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
-	8,  // 38: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
-	6,  // 39: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
-	11, // 40: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
-	9,  // 41: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
-	7,  // 42: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
-	40, // [40:43] is the sub-list for method output_type
-	37, // [37:40] is the sub-list for method input_type
-	37, // [37:37] is the sub-list for extension type_name
-	37, // [37:37] is the sub-list for extension extendee
-	0,  // [0:37] is the sub-list for field type_name
+	34, // 31: sluice.v1.Progress.workers:type_name -> sluice.v1.WorkerReport
+	1,  // 32: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
+	4,  // 33: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
+	5,  // 34: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
+	23, // 35: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
+	31, // 36: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
+	17, // 37: sluice.v1.FollowHeader.wants:type_name -> sluice.v1.Wants
+	36, // 38: sluice.v1.AttachRequest.attach:type_name -> sluice.v1.Attach
+	20, // 39: sluice.v1.AttachRequest.evaluations:type_name -> sluice.v1.Evaluations
+	38, // 40: sluice.v1.AttachResponse.attached:type_name -> sluice.v1.Attached
+	19, // 41: sluice.v1.AttachResponse.points:type_name -> sluice.v1.Points
+	10, // 42: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
+	8,  // 43: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
+	6,  // 44: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
+	35, // 45: sluice.v1.SluiceService.Attach:input_type -> sluice.v1.AttachRequest
+	11, // 46: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
+	9,  // 47: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
+	7,  // 48: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
+	37, // 49: sluice.v1.SluiceService.Attach:output_type -> sluice.v1.AttachResponse
+	46, // [46:50] is the sub-list for method output_type
+	42, // [42:46] is the sub-list for method input_type
+	42, // [42:42] is the sub-list for extension type_name
+	42, // [42:42] is the sub-list for extension extendee
+	0,  // [0:42] is the sub-list for field type_name
 }
 
 func init() { file_sluice_v1_sluice_proto_init() }
@@ -4155,13 +4638,22 @@ func file_sluice_v1_sluice_proto_init() {
 		(*SessionResponse_Progress)(nil),
 		(*SessionResponse_Finished)(nil),
 	}
+	file_sluice_v1_sluice_proto_msgTypes[6].OneofWrappers = []any{}
+	file_sluice_v1_sluice_proto_msgTypes[29].OneofWrappers = []any{
+		(*AttachRequest_Attach)(nil),
+		(*AttachRequest_Evaluations)(nil),
+	}
+	file_sluice_v1_sluice_proto_msgTypes[31].OneofWrappers = []any{
+		(*AttachResponse_Attached)(nil),
+		(*AttachResponse_Points)(nil),
+	}
 	type x struct{}
 	out := protoimpl.TypeBuilder{
 		File: protoimpl.DescBuilder{
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_sluice_v1_sluice_proto_rawDesc), len(file_sluice_v1_sluice_proto_rawDesc)),
 			NumEnums:      6,
-			NumMessages:   28,
+			NumMessages:   33,
 			NumExtensions: 0,
 			NumServices:   1,
 		},

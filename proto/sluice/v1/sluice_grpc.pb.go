@@ -41,6 +41,7 @@ const (
 	SluiceService_Session_FullMethodName = "/sluice.v1.SluiceService/Session"
 	SluiceService_Follow_FullMethodName  = "/sluice.v1.SluiceService/Follow"
 	SluiceService_Plan_FullMethodName    = "/sluice.v1.SluiceService/Plan"
+	SluiceService_Attach_FullMethodName  = "/sluice.v1.SluiceService/Attach"
 )
 
 // SluiceServiceClient is the client API for SluiceService service.
@@ -95,6 +96,22 @@ type SluiceServiceClient interface {
 	// literature (see `constants_recalled`): treat the figures as planning
 	// guidance, checked by the project only on Gaussian targets.
 	Plan(ctx context.Context, in *PlanRequest, opts ...grpc.CallOption) (*PlanResponse, error)
+	// Attach adds an evaluator to a running session: a worker process that
+	// answers part of each request's rows, so that an expensive target is
+	// evaluated on many machines at once. The worker's first frame is Attach
+	// with the session's id and token (from Registered); the server answers
+	// Attached, then sends Points frames which the worker answers with
+	// Evaluations exactly as a session client does. The server shares each
+	// request's rows among the attached workers (and the owner's stream,
+	// unless it registered owner_evaluates = false) in proportion to their
+	// measured speed; the rows of a worker that leaves or falls far behind
+	// its own pace are issued to others (the first answer is kept, a later
+	// one dropped). Workers may attach and leave at any time; the draws do
+	// not depend on how many there are. The stream ends with status OK when
+	// the session ends. An unknown session gives NOT_FOUND, a wrong token
+	// PERMISSION_DENIED, an answer to rows never sent to the worker
+	// INVALID_ARGUMENT naming the field (the session itself goes on).
+	Attach(ctx context.Context, opts ...grpc.CallOption) (grpc.BidiStreamingClient[AttachRequest, AttachResponse], error)
 }
 
 type sluiceServiceClient struct {
@@ -146,6 +163,19 @@ func (c *sluiceServiceClient) Plan(ctx context.Context, in *PlanRequest, opts ..
 	}
 	return out, nil
 }
+
+func (c *sluiceServiceClient) Attach(ctx context.Context, opts ...grpc.CallOption) (grpc.BidiStreamingClient[AttachRequest, AttachResponse], error) {
+	cOpts := append([]grpc.CallOption{grpc.StaticMethod()}, opts...)
+	stream, err := c.cc.NewStream(ctx, &SluiceService_ServiceDesc.Streams[2], SluiceService_Attach_FullMethodName, cOpts...)
+	if err != nil {
+		return nil, err
+	}
+	x := &grpc.GenericClientStream[AttachRequest, AttachResponse]{ClientStream: stream}
+	return x, nil
+}
+
+// This type alias is provided for backwards compatibility with existing code that references the prior non-generic stream type by name.
+type SluiceService_AttachClient = grpc.BidiStreamingClient[AttachRequest, AttachResponse]
 
 // SluiceServiceServer is the server API for SluiceService service.
 // All implementations must embed UnimplementedSluiceServiceServer
@@ -199,6 +229,22 @@ type SluiceServiceServer interface {
 	// literature (see `constants_recalled`): treat the figures as planning
 	// guidance, checked by the project only on Gaussian targets.
 	Plan(context.Context, *PlanRequest) (*PlanResponse, error)
+	// Attach adds an evaluator to a running session: a worker process that
+	// answers part of each request's rows, so that an expensive target is
+	// evaluated on many machines at once. The worker's first frame is Attach
+	// with the session's id and token (from Registered); the server answers
+	// Attached, then sends Points frames which the worker answers with
+	// Evaluations exactly as a session client does. The server shares each
+	// request's rows among the attached workers (and the owner's stream,
+	// unless it registered owner_evaluates = false) in proportion to their
+	// measured speed; the rows of a worker that leaves or falls far behind
+	// its own pace are issued to others (the first answer is kept, a later
+	// one dropped). Workers may attach and leave at any time; the draws do
+	// not depend on how many there are. The stream ends with status OK when
+	// the session ends. An unknown session gives NOT_FOUND, a wrong token
+	// PERMISSION_DENIED, an answer to rows never sent to the worker
+	// INVALID_ARGUMENT naming the field (the session itself goes on).
+	Attach(grpc.BidiStreamingServer[AttachRequest, AttachResponse]) error
 	mustEmbedUnimplementedSluiceServiceServer()
 }
 
@@ -217,6 +263,9 @@ func (UnimplementedSluiceServiceServer) Follow(*FollowRequest, grpc.ServerStream
 }
 func (UnimplementedSluiceServiceServer) Plan(context.Context, *PlanRequest) (*PlanResponse, error) {
 	return nil, status.Error(codes.Unimplemented, "method Plan not implemented")
+}
+func (UnimplementedSluiceServiceServer) Attach(grpc.BidiStreamingServer[AttachRequest, AttachResponse]) error {
+	return status.Error(codes.Unimplemented, "method Attach not implemented")
 }
 func (UnimplementedSluiceServiceServer) mustEmbedUnimplementedSluiceServiceServer() {}
 func (UnimplementedSluiceServiceServer) testEmbeddedByValue()                       {}
@@ -275,6 +324,13 @@ func _SluiceService_Plan_Handler(srv interface{}, ctx context.Context, dec func(
 	return interceptor(ctx, in, info, handler)
 }
 
+func _SluiceService_Attach_Handler(srv interface{}, stream grpc.ServerStream) error {
+	return srv.(SluiceServiceServer).Attach(&grpc.GenericServerStream[AttachRequest, AttachResponse]{ServerStream: stream})
+}
+
+// This type alias is provided for backwards compatibility with existing code that references the prior non-generic stream type by name.
+type SluiceService_AttachServer = grpc.BidiStreamingServer[AttachRequest, AttachResponse]
+
 // SluiceService_ServiceDesc is the grpc.ServiceDesc for SluiceService service.
 // It's only intended for direct use with grpc.RegisterService,
 // and not to be introspected or modified (even as a copy)
@@ -298,6 +354,12 @@ var SluiceService_ServiceDesc = grpc.ServiceDesc{
 			StreamName:    "Follow",
 			Handler:       _SluiceService_Follow_Handler,
 			ServerStreams: true,
+		},
+		{
+			StreamName:    "Attach",
+			Handler:       _SluiceService_Attach_Handler,
+			ServerStreams: true,
+			ClientStreams: true,
 		},
 	},
 	Metadata: "sluice/v1/sluice.proto",

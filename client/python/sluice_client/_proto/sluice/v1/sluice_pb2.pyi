@@ -32,6 +32,44 @@ STATE_FINISHED: State
 STATE_SAMPLING: State
 STATE_UNSPECIFIED: State
 
+class Attach(_message.Message):
+    __slots__ = ["name", "session_id", "token"]
+    NAME_FIELD_NUMBER: _ClassVar[int]
+    SESSION_ID_FIELD_NUMBER: _ClassVar[int]
+    TOKEN_FIELD_NUMBER: _ClassVar[int]
+    name: str
+    session_id: str
+    token: str
+    def __init__(self, session_id: _Optional[str] = ..., token: _Optional[str] = ..., name: _Optional[str] = ...) -> None: ...
+
+class AttachRequest(_message.Message):
+    __slots__ = ["attach", "evaluations"]
+    ATTACH_FIELD_NUMBER: _ClassVar[int]
+    EVALUATIONS_FIELD_NUMBER: _ClassVar[int]
+    attach: Attach
+    evaluations: Evaluations
+    def __init__(self, attach: _Optional[_Union[Attach, _Mapping]] = ..., evaluations: _Optional[_Union[Evaluations, _Mapping]] = ...) -> None: ...
+
+class AttachResponse(_message.Message):
+    __slots__ = ["attached", "points"]
+    ATTACHED_FIELD_NUMBER: _ClassVar[int]
+    POINTS_FIELD_NUMBER: _ClassVar[int]
+    attached: Attached
+    points: Points
+    def __init__(self, attached: _Optional[_Union[Attached, _Mapping]] = ..., points: _Optional[_Union[Points, _Mapping]] = ...) -> None: ...
+
+class Attached(_message.Message):
+    __slots__ = ["dim", "max_message_bytes", "names", "session_id"]
+    DIM_FIELD_NUMBER: _ClassVar[int]
+    MAX_MESSAGE_BYTES_FIELD_NUMBER: _ClassVar[int]
+    NAMES_FIELD_NUMBER: _ClassVar[int]
+    SESSION_ID_FIELD_NUMBER: _ClassVar[int]
+    dim: int
+    max_message_bytes: int
+    names: _containers.RepeatedScalarFieldContainer[str]
+    session_id: str
+    def __init__(self, session_id: _Optional[str] = ..., dim: _Optional[int] = ..., max_message_bytes: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ...) -> None: ...
+
 class Bound(_message.Message):
     __slots__ = ["bias_term", "discretisation_term", "label", "metric", "noise_term", "source", "start_term", "value"]
     BIAS_TERM_FIELD_NUMBER: _ClassVar[int]
@@ -365,7 +403,8 @@ class Points(_message.Message):
     def __init__(self, request_id: _Optional[int] = ..., first_row: _Optional[int] = ..., rows: _Optional[int] = ..., dim: _Optional[int] = ..., points: _Optional[bytes] = ..., chains: _Optional[_Iterable[int]] = ..., quantities: _Optional[_Iterable[_Union[Quantity, str]]] = ..., total_rows: _Optional[int] = ..., vectors: _Optional[bytes] = ..., minibatch_groups: _Optional[_Iterable[int]] = ..., full_data: bool = ..., replicates: _Optional[int] = ...) -> None: ...
 
 class Progress(_message.Message):
-    __slots__ = ["bound", "curvature", "draws_sent", "evaluations_left", "evaluations_per_second", "evaluations_used", "kernel", "ksd", "noise", "parameters", "parameters_omitted", "seconds_left", "seconds_used", "state", "steps", "targets"]
+    __slots__ = ["answers_late", "bound", "curvature", "draws_sent", "evaluations_left", "evaluations_per_second", "evaluations_used", "kernel", "ksd", "noise", "parameters", "parameters_omitted", "rows_reissued", "seconds_left", "seconds_used", "state", "steps", "targets", "workers"]
+    ANSWERS_LATE_FIELD_NUMBER: _ClassVar[int]
     BOUND_FIELD_NUMBER: _ClassVar[int]
     CURVATURE_FIELD_NUMBER: _ClassVar[int]
     DRAWS_SENT_FIELD_NUMBER: _ClassVar[int]
@@ -377,11 +416,14 @@ class Progress(_message.Message):
     NOISE_FIELD_NUMBER: _ClassVar[int]
     PARAMETERS_FIELD_NUMBER: _ClassVar[int]
     PARAMETERS_OMITTED_FIELD_NUMBER: _ClassVar[int]
+    ROWS_REISSUED_FIELD_NUMBER: _ClassVar[int]
     SECONDS_LEFT_FIELD_NUMBER: _ClassVar[int]
     SECONDS_USED_FIELD_NUMBER: _ClassVar[int]
     STATE_FIELD_NUMBER: _ClassVar[int]
     STEPS_FIELD_NUMBER: _ClassVar[int]
     TARGETS_FIELD_NUMBER: _ClassVar[int]
+    WORKERS_FIELD_NUMBER: _ClassVar[int]
+    answers_late: int
     bound: Bound
     curvature: CurvatureEstimate
     draws_sent: int
@@ -393,15 +435,17 @@ class Progress(_message.Message):
     noise: NoiseEstimate
     parameters: _containers.RepeatedCompositeFieldContainer[ParameterDiagnostics]
     parameters_omitted: int
+    rows_reissued: int
     seconds_left: float
     seconds_used: float
     state: State
     steps: int
     targets: _containers.RepeatedCompositeFieldContainer[TargetStatus]
-    def __init__(self, state: _Optional[_Union[State, str]] = ..., steps: _Optional[int] = ..., evaluations_used: _Optional[int] = ..., evaluations_left: _Optional[int] = ..., seconds_used: _Optional[float] = ..., seconds_left: _Optional[float] = ..., draws_sent: _Optional[int] = ..., evaluations_per_second: _Optional[float] = ..., parameters: _Optional[_Iterable[_Union[ParameterDiagnostics, _Mapping]]] = ..., ksd: _Optional[float] = ..., bound: _Optional[_Union[Bound, _Mapping]] = ..., curvature: _Optional[_Union[CurvatureEstimate, _Mapping]] = ..., targets: _Optional[_Iterable[_Union[TargetStatus, _Mapping]]] = ..., noise: _Optional[_Union[NoiseEstimate, _Mapping]] = ..., kernel: _Optional[_Union[KernelReport, _Mapping]] = ..., parameters_omitted: _Optional[int] = ...) -> None: ...
+    workers: _containers.RepeatedCompositeFieldContainer[WorkerReport]
+    def __init__(self, state: _Optional[_Union[State, str]] = ..., steps: _Optional[int] = ..., evaluations_used: _Optional[int] = ..., evaluations_left: _Optional[int] = ..., seconds_used: _Optional[float] = ..., seconds_left: _Optional[float] = ..., draws_sent: _Optional[int] = ..., evaluations_per_second: _Optional[float] = ..., parameters: _Optional[_Iterable[_Union[ParameterDiagnostics, _Mapping]]] = ..., ksd: _Optional[float] = ..., bound: _Optional[_Union[Bound, _Mapping]] = ..., curvature: _Optional[_Union[CurvatureEstimate, _Mapping]] = ..., targets: _Optional[_Iterable[_Union[TargetStatus, _Mapping]]] = ..., noise: _Optional[_Union[NoiseEstimate, _Mapping]] = ..., kernel: _Optional[_Union[KernelReport, _Mapping]] = ..., parameters_omitted: _Optional[int] = ..., workers: _Optional[_Iterable[_Union[WorkerReport, _Mapping]]] = ..., rows_reissued: _Optional[int] = ..., answers_late: _Optional[int] = ...) -> None: ...
 
 class Register(_message.Message):
-    __slots__ = ["accepts_draw_references", "anchor_every", "burn_in", "chains", "checkpoint_every_steps", "curvature", "curvature_probe_iterations", "dim", "draws_per_chain", "envelope", "fixed_point_iterations", "fixed_point_tolerance", "friction", "inverse_mass", "keep_every", "kernel", "krylov_max_iterations", "krylov_tolerance", "max_evaluations", "max_message_bytes", "max_seconds", "names", "noise", "progress_every_steps", "progress_interval_seconds", "schedule", "seed", "slice_max_expansions", "slice_width", "start", "start_rows", "step", "wants"]
+    __slots__ = ["accepts_draw_references", "anchor_every", "burn_in", "chains", "checkpoint_every_steps", "curvature", "curvature_probe_iterations", "dim", "draws_per_chain", "envelope", "fixed_point_iterations", "fixed_point_tolerance", "friction", "inverse_mass", "keep_every", "kernel", "krylov_max_iterations", "krylov_tolerance", "max_evaluations", "max_message_bytes", "max_seconds", "names", "noise", "owner_evaluates", "progress_every_steps", "progress_interval_seconds", "schedule", "seed", "slice_max_expansions", "slice_width", "start", "start_rows", "step", "wants"]
     ACCEPTS_DRAW_REFERENCES_FIELD_NUMBER: _ClassVar[int]
     ANCHOR_EVERY_FIELD_NUMBER: _ClassVar[int]
     BURN_IN_FIELD_NUMBER: _ClassVar[int]
@@ -425,6 +469,7 @@ class Register(_message.Message):
     MAX_SECONDS_FIELD_NUMBER: _ClassVar[int]
     NAMES_FIELD_NUMBER: _ClassVar[int]
     NOISE_FIELD_NUMBER: _ClassVar[int]
+    OWNER_EVALUATES_FIELD_NUMBER: _ClassVar[int]
     PROGRESS_EVERY_STEPS_FIELD_NUMBER: _ClassVar[int]
     PROGRESS_INTERVAL_SECONDS_FIELD_NUMBER: _ClassVar[int]
     SCHEDULE_FIELD_NUMBER: _ClassVar[int]
@@ -458,6 +503,7 @@ class Register(_message.Message):
     max_seconds: float
     names: _containers.RepeatedScalarFieldContainer[str]
     noise: GradientNoise
+    owner_evaluates: bool
     progress_every_steps: int
     progress_interval_seconds: float
     schedule: StepSchedule
@@ -468,7 +514,7 @@ class Register(_message.Message):
     start_rows: int
     step: float
     wants: Wants
-    def __init__(self, dim: _Optional[int] = ..., chains: _Optional[int] = ..., kernel: _Optional[str] = ..., start: _Optional[bytes] = ..., start_rows: _Optional[int] = ..., step: _Optional[float] = ..., burn_in: _Optional[int] = ..., keep_every: _Optional[int] = ..., draws_per_chain: _Optional[int] = ..., max_evaluations: _Optional[int] = ..., max_seconds: _Optional[float] = ..., progress_every_steps: _Optional[int] = ..., progress_interval_seconds: _Optional[float] = ..., seed: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., max_message_bytes: _Optional[int] = ..., curvature: _Optional[_Union[Curvature, _Mapping]] = ..., wants: _Optional[_Union[Wants, _Mapping]] = ..., friction: _Optional[float] = ..., inverse_mass: _Optional[float] = ..., krylov_tolerance: _Optional[float] = ..., krylov_max_iterations: _Optional[int] = ..., schedule: _Optional[_Union[StepSchedule, _Mapping]] = ..., anchor_every: _Optional[int] = ..., fixed_point_tolerance: _Optional[float] = ..., fixed_point_iterations: _Optional[int] = ..., curvature_probe_iterations: _Optional[int] = ..., slice_width: _Optional[float] = ..., slice_max_expansions: _Optional[int] = ..., envelope: _Optional[_Union[Envelope, _Mapping]] = ..., noise: _Optional[_Union[GradientNoise, _Mapping]] = ..., checkpoint_every_steps: _Optional[int] = ..., accepts_draw_references: bool = ...) -> None: ...
+    def __init__(self, dim: _Optional[int] = ..., chains: _Optional[int] = ..., kernel: _Optional[str] = ..., start: _Optional[bytes] = ..., start_rows: _Optional[int] = ..., step: _Optional[float] = ..., burn_in: _Optional[int] = ..., keep_every: _Optional[int] = ..., draws_per_chain: _Optional[int] = ..., max_evaluations: _Optional[int] = ..., max_seconds: _Optional[float] = ..., progress_every_steps: _Optional[int] = ..., progress_interval_seconds: _Optional[float] = ..., seed: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., max_message_bytes: _Optional[int] = ..., curvature: _Optional[_Union[Curvature, _Mapping]] = ..., wants: _Optional[_Union[Wants, _Mapping]] = ..., friction: _Optional[float] = ..., inverse_mass: _Optional[float] = ..., krylov_tolerance: _Optional[float] = ..., krylov_max_iterations: _Optional[int] = ..., schedule: _Optional[_Union[StepSchedule, _Mapping]] = ..., anchor_every: _Optional[int] = ..., fixed_point_tolerance: _Optional[float] = ..., fixed_point_iterations: _Optional[int] = ..., curvature_probe_iterations: _Optional[int] = ..., slice_width: _Optional[float] = ..., slice_max_expansions: _Optional[int] = ..., envelope: _Optional[_Union[Envelope, _Mapping]] = ..., owner_evaluates: bool = ..., noise: _Optional[_Union[GradientNoise, _Mapping]] = ..., checkpoint_every_steps: _Optional[int] = ..., accepts_draw_references: bool = ...) -> None: ...
 
 class Registered(_message.Message):
     __slots__ = ["evaluations_per_step", "kernel", "max_message_bytes", "names", "planned_steps", "resume_token", "resumed", "seed", "session_id", "step"]
@@ -575,6 +621,22 @@ class Wants(_message.Message):
     min_bulk_ess: float
     min_tail_ess: float
     def __init__(self, min_bulk_ess: _Optional[float] = ..., min_tail_ess: _Optional[float] = ..., max_rhat: _Optional[float] = ..., max_ksd: _Optional[float] = ..., eps: _Optional[float] = ..., metric: _Optional[_Union[Metric, str]] = ...) -> None: ...
+
+class WorkerReport(_message.Message):
+    __slots__ = ["answers_late", "name", "owner", "rows", "rows_per_second", "rows_reissued"]
+    ANSWERS_LATE_FIELD_NUMBER: _ClassVar[int]
+    NAME_FIELD_NUMBER: _ClassVar[int]
+    OWNER_FIELD_NUMBER: _ClassVar[int]
+    ROWS_FIELD_NUMBER: _ClassVar[int]
+    ROWS_PER_SECOND_FIELD_NUMBER: _ClassVar[int]
+    ROWS_REISSUED_FIELD_NUMBER: _ClassVar[int]
+    answers_late: int
+    name: str
+    owner: bool
+    rows: int
+    rows_per_second: float
+    rows_reissued: int
+    def __init__(self, name: _Optional[str] = ..., owner: bool = ..., rows_per_second: _Optional[float] = ..., rows: _Optional[int] = ..., rows_reissued: _Optional[int] = ..., answers_late: _Optional[int] = ...) -> None: ...
 
 class GradientKind(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = []
