@@ -24,6 +24,12 @@ type Registered struct {
 	// PlannedSteps is the steps per chain the plan needs when the step
 	// was planned from Wants.Eps; 0 otherwise.
 	PlannedSteps int
+	// Metric is the metric at registration and the adaptation schedule.
+	Metric MetricReport
+	// Tuning lists the automatic settings and what will choose them
+	// (their values come in Progress); empty when the client gave the
+	// step.
+	Tuning []Choice
 }
 
 // Points asks the client to evaluate rows points: part of request
@@ -93,6 +99,13 @@ type Progress struct {
 	Noise *NoiseEstimate
 	// Kernel is what the kernel reports of itself.
 	Kernel KernelReport
+	// Metric is the metric in use.
+	Metric MetricReport
+	// Tuning lists the settings the engine chose, with their reasons;
+	// TuningEvaluations is what its curvature probes cost (counted in
+	// EvaluationsUsed).
+	Tuning            []Choice
+	TuningEvaluations int64
 }
 
 // KernelReport holds a kernel's own figures (zero when it has none).
