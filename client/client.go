@@ -21,7 +21,10 @@ type Spec struct {
 	Kernel string
 	// Start holds Dim values (every chain starts there) or Chains×Dim.
 	Start []float64
-	// Step is the step size h > 0.
+	// Step is the step size h > 0 (in the metric's units with a metric);
+	// 0 means automatic for the Langevin kernels: the server chooses it
+	// (and friction and inverse mass left at 0) and adapts a metric
+	// during burn-in, reporting its choices in Progress.Tuning.
 	Step                             float64
 	BurnIn, KeepEvery, DrawsPerChain int64
 	MaxEvaluations                   int64
@@ -63,6 +66,68 @@ type Spec struct {
 	// Envelope is rejection's Gaussian envelope N(Mean, Scale²I) with the
 	// declared bound π̃ ≤ exp(LogBound)·q.
 	Envelope *Envelope
+	// Preconditioner is a declared metric C: Dim values (a diagonal) or
+	// Dim×Dim (dense, row-major), for example an inverse Hessian at a
+	// known mode; nil: none declared.
+	Preconditioner []float64
+	// MetricForm says what the server does about the metric ("": the
+	// declared one, else adapted during burn-in when Step is 0).
+	MetricForm MetricForm
+}
+
+// MetricForm is what the server does about the metric.
+type MetricForm string
+
+const (
+	// MetricAuto: the declared Preconditioner, else one adapted during
+	// burn-in when the step is automatic, else none.
+	MetricAuto MetricForm = ""
+	// MetricIdentity: no metric, no adaptation.
+	MetricIdentity MetricForm = "identity"
+	// MetricDiagonal: the declared diagonal, else an adapted one.
+	MetricDiagonal MetricForm = "diagonal"
+	// MetricDense: the declared dense metric, else an adapted one.
+	MetricDense MetricForm = "dense"
+)
+
+var metricFormToWire = map[MetricForm]sluicev1.MetricForm{
+	MetricAuto: sluicev1.MetricForm_METRIC_FORM_UNSPECIFIED, MetricIdentity: sluicev1.MetricForm_METRIC_FORM_IDENTITY,
+	MetricDiagonal: sluicev1.MetricForm_METRIC_FORM_DIAGONAL, MetricDense: sluicev1.MetricForm_METRIC_FORM_DENSE,
+}
+
+// MetricReport says which metric the kernel uses: its Kind ("identity",
+// "diagonal", "dense") and Source ("none", "declared", "adapted"),
+// whether adaptation windows remain, the condition number of C, the step
+// of the last update (−1: never), the updates so far, the last
+// Ledoit–Wolf shrinkage and the steps at which the windows end.
+type MetricReport struct {
+	Kind, Source  string
+	Adapting      bool
+	Condition     float64
+	UpdatedAtStep int64
+	Updates       int
+	Shrinkage     float64
+	WindowEnds    []int64
+}
+
+// TuningChoice is one setting the server chose (or kept), with its reason.
+type TuningChoice struct {
+	Setting string
+	Value   float64
+	Reason  string
+}
+
+func metricReportFromWire(m *sluicev1.MetricReport) MetricReport {
+	return MetricReport{Kind: m.GetKind(), Source: m.GetSource(), Adapting: m.GetAdapting(), Condition: m.GetCondition(),
+		UpdatedAtStep: m.GetUpdatedAtStep(), Updates: int(m.GetUpdates()), Shrinkage: m.GetShrinkage(), WindowEnds: m.GetWindowEnds()}
+}
+
+func tuningFromWire(cs []*sluicev1.TuningChoice) []TuningChoice {
+	var out []TuningChoice
+	for _, c := range cs {
+		out = append(out, TuningChoice{Setting: c.GetSetting(), Value: c.GetValue(), Reason: c.GetReason()})
+	}
+	return out
 }
 
 // Envelope is rejection's Gaussian envelope and declared bound.
@@ -163,6 +228,10 @@ type Registered struct {
 	// PlannedSteps is the steps per chain of a step planned from
 	// Wants.Eps (0 otherwise).
 	PlannedSteps int64
+	// Metric is the metric at registration and the adaptation schedule;
+	// Tuning lists the automatic settings to come (Step 0).
+	Metric MetricReport
+	Tuning []TuningChoice
 }
 
 // Draws is a block of draws numbered Seq, Seq+1, ..., Seq+Rows−1. It is
@@ -213,6 +282,12 @@ type Progress struct {
 	// ParametersOmitted counts parameters left out of Parameters so that
 	// the frame fits the message limit (the first ones are sent).
 	ParametersOmitted int
+	// Metric is the metric in use; Tuning the settings the server chose
+	// (Step 0) with their reasons; TuningEvaluations what its curvature
+	// probes cost (counted in EvaluationsUsed).
+	Metric            MetricReport
+	Tuning            []TuningChoice
+	TuningEvaluations int64
 }
 
 // NoiseEstimate: measured variance of one replicate's error per
@@ -399,6 +474,7 @@ func registerFrame(spec Spec, limit int64) *sluicev1.SessionRequest {
 		FixedPointTolerance: spec.FixedPointTolerance, FixedPointIterations: int32(spec.FixedPointIterations),
 		CurvatureProbeIterations: int32(spec.CurvatureProbe),
 		SliceWidth:               spec.SliceWidth, SliceMaxExpansions: int32(spec.SliceMaxExpansions), Envelope: envelopeToWire(spec.Envelope),
+		Metric: putFloats(nil, spec.Preconditioner), MetricForm: metricFormToWire[spec.MetricForm],
 	}}}
 }
 
@@ -474,7 +550,7 @@ func (r *runner) loop(ctx context.Context) (*Summary, error) {
 			g := f.Registered
 			r.sum.Registered = Registered{SessionID: g.GetSessionId(), Seed: g.GetSeed(), Kernel: g.GetKernel(), Step: g.GetStep(),
 				EvaluationsPerStep: g.GetEvaluationsPerStep(), MaxMessageBytes: g.GetMaxMessageBytes(), Names: g.GetNames(),
-				PlannedSteps: g.GetPlannedSteps()}
+				PlannedSteps: g.GetPlannedSteps(), Metric: metricReportFromWire(g.GetMetric()), Tuning: tuningFromWire(g.GetTuning())}
 			if r.cfg.onRegistered != nil {
 				r.cfg.onRegistered(&r.sum.Registered)
 			}
@@ -670,6 +746,7 @@ func progressFromWire(p *sluicev1.Progress) Progress {
 			AcceptanceRate: k.GetAcceptanceRate()}
 	}
 	out.ParametersOmitted = int(p.GetParametersOmitted())
+	out.Metric, out.Tuning, out.TuningEvaluations = metricReportFromWire(p.GetMetric()), tuningFromWire(p.GetTuning()), p.GetTuningEvaluations()
 	for _, t := range p.GetTargets() {
 		out.Targets = append(out.Targets, TargetStatus{Name: t.GetName(), Want: t.GetWant(), Current: t.GetCurrent(), Met: t.GetMet(),
 			ProjectedEvaluations: t.GetProjectedEvaluations()})

@@ -170,6 +170,8 @@ SPECIAL = {
     "metric": "tv",
     "penalty_centre": np.full(2, 0.75),
     "mean": np.full(2, 0.75),
+    "preconditioner": np.full(2, 0.75),
+    "metric_form": "dense",
 }
 
 

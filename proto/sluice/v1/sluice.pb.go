@@ -40,6 +40,68 @@ const (
 	_ = protoimpl.EnforceVersion(protoimpl.MaxVersion - 20)
 )
 
+// MetricForm says which metric a session uses.
+type MetricForm int32
+
+const (
+	// The declared `metric` if there is one (its length says diagonal or
+	// dense); else, with step 0 (automatic) and burn_in >= 150, a metric
+	// adapted during burn-in from every chain's positions (dense up to dim
+	// 1000, diagonal above) and frozen when burn-in ends; else none.
+	MetricForm_METRIC_FORM_UNSPECIFIED MetricForm = 0
+	// No metric and no adaptation.
+	MetricForm_METRIC_FORM_IDENTITY MetricForm = 1
+	// The declared diagonal (dim values), else a diagonal adapted during
+	// burn-in (burn_in >= 150).
+	MetricForm_METRIC_FORM_DIAGONAL MetricForm = 2
+	// The declared dense metric (dim x dim values), else a dense one adapted
+	// during burn-in (burn_in >= 150, dim <= 1000).
+	MetricForm_METRIC_FORM_DENSE MetricForm = 3
+)
+
+// Enum value maps for MetricForm.
+var (
+	MetricForm_name = map[int32]string{
+		0: "METRIC_FORM_UNSPECIFIED",
+		1: "METRIC_FORM_IDENTITY",
+		2: "METRIC_FORM_DIAGONAL",
+		3: "METRIC_FORM_DENSE",
+	}
+	MetricForm_value = map[string]int32{
+		"METRIC_FORM_UNSPECIFIED": 0,
+		"METRIC_FORM_IDENTITY":    1,
+		"METRIC_FORM_DIAGONAL":    2,
+		"METRIC_FORM_DENSE":       3,
+	}
+)
+
+func (x MetricForm) Enum() *MetricForm {
+	p := new(MetricForm)
+	*p = x
+	return p
+}
+
+func (x MetricForm) String() string {
+	return protoimpl.X.EnumStringOf(x.Descriptor(), protoreflect.EnumNumber(x))
+}
+
+func (MetricForm) Descriptor() protoreflect.EnumDescriptor {
+	return file_sluice_v1_sluice_proto_enumTypes[0].Descriptor()
+}
+
+func (MetricForm) Type() protoreflect.EnumType {
+	return &file_sluice_v1_sluice_proto_enumTypes[0]
+}
+
+func (x MetricForm) Number() protoreflect.EnumNumber {
+	return protoreflect.EnumNumber(x)
+}
+
+// Deprecated: Use MetricForm.Descriptor instead.
+func (MetricForm) EnumDescriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{0}
+}
+
 // Whether gradients are exact.
 type GradientKind int32
 
@@ -76,11 +138,11 @@ func (x GradientKind) String() string {
 }
 
 func (GradientKind) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[0].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[1].Descriptor()
 }
 
 func (GradientKind) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[0]
+	return &file_sluice_v1_sluice_proto_enumTypes[1]
 }
 
 func (x GradientKind) Number() protoreflect.EnumNumber {
@@ -89,7 +151,7 @@ func (x GradientKind) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use GradientKind.Descriptor instead.
 func (GradientKind) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{0}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{1}
 }
 
 // Distance in which a guaranteed bound is stated.
@@ -128,11 +190,11 @@ func (x Metric) String() string {
 }
 
 func (Metric) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[1].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[2].Descriptor()
 }
 
 func (Metric) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[1]
+	return &file_sluice_v1_sluice_proto_enumTypes[2]
 }
 
 func (x Metric) Number() protoreflect.EnumNumber {
@@ -141,7 +203,7 @@ func (x Metric) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use Metric.Descriptor instead.
 func (Metric) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{1}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{2}
 }
 
 // What to evaluate at each point of a Points frame (a bit set).
@@ -190,11 +252,11 @@ func (x Quantity) String() string {
 }
 
 func (Quantity) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[2].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[3].Descriptor()
 }
 
 func (Quantity) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[2]
+	return &file_sluice_v1_sluice_proto_enumTypes[3]
 }
 
 func (x Quantity) Number() protoreflect.EnumNumber {
@@ -203,7 +265,7 @@ func (x Quantity) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use Quantity.Descriptor instead.
 func (Quantity) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{2}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{3}
 }
 
 // Where a session is.
@@ -246,11 +308,11 @@ func (x State) String() string {
 }
 
 func (State) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[3].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[4].Descriptor()
 }
 
 func (State) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[3]
+	return &file_sluice_v1_sluice_proto_enumTypes[4]
 }
 
 func (x State) Number() protoreflect.EnumNumber {
@@ -259,7 +321,7 @@ func (x State) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use State.Descriptor instead.
 func (State) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{3}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{4}
 }
 
 // Where a bound's curvature constants come from.
@@ -299,11 +361,11 @@ func (x BoundSource) String() string {
 }
 
 func (BoundSource) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[4].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[5].Descriptor()
 }
 
 func (BoundSource) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[4]
+	return &file_sluice_v1_sluice_proto_enumTypes[5]
 }
 
 func (x BoundSource) Number() protoreflect.EnumNumber {
@@ -312,7 +374,7 @@ func (x BoundSource) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use BoundSource.Descriptor instead.
 func (BoundSource) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{4}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{5}
 }
 
 // Why a session ended.
@@ -371,11 +433,11 @@ func (x FinishReason) String() string {
 }
 
 func (FinishReason) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[5].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[6].Descriptor()
 }
 
 func (FinishReason) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[5]
+	return &file_sluice_v1_sluice_proto_enumTypes[6]
 }
 
 func (x FinishReason) Number() protoreflect.EnumNumber {
@@ -384,7 +446,7 @@ func (x FinishReason) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use FinishReason.Descriptor instead.
 func (FinishReason) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{5}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{6}
 }
 
 // PlanRequest describes the target and the accuracy wanted.
@@ -1079,7 +1141,14 @@ type Register struct {
 	// Number of rows in `start`: chains or 1.
 	StartRows int32 `protobuf:"varint,5,opt,name=start_rows,json=startRows,proto3" json:"start_rows,omitempty"`
 	// Step size h > 0, in the units of theta squared (the Langevin time
-	// increment of one step).
+	// increment of one step), read in the metric's units when there is a
+	// metric. 0 means automatic for lmc, kinetic, midpoint,
+	// midpoint-overdamped, mala, sgld, sgld-cv and svrg: the server probes
+	// the curvature (gradients counted in the budget), chooses the step
+	// (and the kinetic kernels' friction and inverse mass left at 0), adapts
+	// a metric during burn-in unless metric_form says otherwise, and reports
+	// its choices with their reasons in Progress.tuning. Needs exact
+	// gradients.
 	Step float64 `protobuf:"fixed64,6,opt,name=step,proto3" json:"step,omitempty"`
 	// Steps per chain discarded before the first draw is kept (burn-in).
 	// Must be >= 0.
@@ -1166,7 +1235,19 @@ type Register struct {
 	Envelope *Envelope `protobuf:"bytes,31,opt,name=envelope,proto3" json:"envelope,omitempty"`
 	// How the client's gradients are made: exact (the default) or
 	// stochastic (minibatches, Monte Carlo estimates, noisy simulators).
-	Noise         *GradientNoise `protobuf:"bytes,21,opt,name=noise,proto3" json:"noise,omitempty"`
+	Noise *GradientNoise `protobuf:"bytes,21,opt,name=noise,proto3" json:"noise,omitempty"`
+	// A declared preconditioner C (the metric) for the kernels that take one
+	// (lmc, kinetic, midpoint, midpoint-overdamped, mala, sgld, sgld-cv,
+	// svrg), float64 (see the array convention): dim values (a diagonal) or
+	// dim x dim values (dense, row-major, symmetric positive definite, dim <=
+	// 1000), for example an inverse Hessian at a mode the client knows. The
+	// kernels then move by h*C*gradient plus noise of covariance 2h*C.
+	// Declared curvature is read in the metric's units (bounds on the
+	// Hessian of -log pi in the coordinates L^-1 theta, C = L L^T). Empty:
+	// none declared.
+	Metric []byte `protobuf:"bytes,32,opt,name=metric,proto3" json:"metric,omitempty"`
+	// What the server does about the metric (see MetricForm).
+	MetricForm    MetricForm `protobuf:"varint,33,opt,name=metric_form,json=metricForm,proto3,enum=sluice.v1.MetricForm" json:"metric_form,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -1418,6 +1499,193 @@ func (x *Register) GetNoise() *GradientNoise {
 	return nil
 }
 
+func (x *Register) GetMetric() []byte {
+	if x != nil {
+		return x.Metric
+	}
+	return nil
+}
+
+func (x *Register) GetMetricForm() MetricForm {
+	if x != nil {
+		return x.MetricForm
+	}
+	return MetricForm_METRIC_FORM_UNSPECIFIED
+}
+
+// MetricReport says which metric the kernel uses.
+type MetricReport struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// "identity", "diagonal" or "dense".
+	Kind string `protobuf:"bytes,1,opt,name=kind,proto3" json:"kind,omitempty"`
+	// "none", "declared" or "adapted".
+	Source string `protobuf:"bytes,2,opt,name=source,proto3" json:"source,omitempty"`
+	// True while adaptation windows remain.
+	Adapting bool `protobuf:"varint,3,opt,name=adapting,proto3" json:"adapting,omitempty"`
+	// Condition number of C (1 for the identity).
+	Condition float64 `protobuf:"fixed64,4,opt,name=condition,proto3" json:"condition,omitempty"`
+	// Step at which the metric last changed; -1 when it never did.
+	UpdatedAtStep int64 `protobuf:"varint,5,opt,name=updated_at_step,json=updatedAtStep,proto3" json:"updated_at_step,omitempty"`
+	// Metric updates so far.
+	Updates int32 `protobuf:"varint,6,opt,name=updates,proto3" json:"updates,omitempty"`
+	// Ledoit-Wolf shrinkage intensity of the last update (0 for a diagonal).
+	Shrinkage float64 `protobuf:"fixed64,7,opt,name=shrinkage,proto3" json:"shrinkage,omitempty"`
+	// Steps at which the adaptation windows end (the schedule).
+	WindowEnds    []int64 `protobuf:"varint,8,rep,packed,name=window_ends,json=windowEnds,proto3" json:"window_ends,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *MetricReport) Reset() {
+	*x = MetricReport{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *MetricReport) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*MetricReport) ProtoMessage() {}
+
+func (x *MetricReport) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use MetricReport.ProtoReflect.Descriptor instead.
+func (*MetricReport) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{7}
+}
+
+func (x *MetricReport) GetKind() string {
+	if x != nil {
+		return x.Kind
+	}
+	return ""
+}
+
+func (x *MetricReport) GetSource() string {
+	if x != nil {
+		return x.Source
+	}
+	return ""
+}
+
+func (x *MetricReport) GetAdapting() bool {
+	if x != nil {
+		return x.Adapting
+	}
+	return false
+}
+
+func (x *MetricReport) GetCondition() float64 {
+	if x != nil {
+		return x.Condition
+	}
+	return 0
+}
+
+func (x *MetricReport) GetUpdatedAtStep() int64 {
+	if x != nil {
+		return x.UpdatedAtStep
+	}
+	return 0
+}
+
+func (x *MetricReport) GetUpdates() int32 {
+	if x != nil {
+		return x.Updates
+	}
+	return 0
+}
+
+func (x *MetricReport) GetShrinkage() float64 {
+	if x != nil {
+		return x.Shrinkage
+	}
+	return 0
+}
+
+func (x *MetricReport) GetWindowEnds() []int64 {
+	if x != nil {
+		return x.WindowEnds
+	}
+	return nil
+}
+
+// TuningChoice is one setting the server chose automatically (or kept from
+// the client), with the reason in words.
+type TuningChoice struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// "step", "friction" or "inverse_mass".
+	Setting string `protobuf:"bytes,1,opt,name=setting,proto3" json:"setting,omitempty"`
+	// The value chosen; 0 in Registered when it is still to be chosen.
+	Value         float64 `protobuf:"fixed64,2,opt,name=value,proto3" json:"value,omitempty"`
+	Reason        string  `protobuf:"bytes,3,opt,name=reason,proto3" json:"reason,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *TuningChoice) Reset() {
+	*x = TuningChoice{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *TuningChoice) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*TuningChoice) ProtoMessage() {}
+
+func (x *TuningChoice) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use TuningChoice.ProtoReflect.Descriptor instead.
+func (*TuningChoice) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{8}
+}
+
+func (x *TuningChoice) GetSetting() string {
+	if x != nil {
+		return x.Setting
+	}
+	return ""
+}
+
+func (x *TuningChoice) GetValue() float64 {
+	if x != nil {
+		return x.Value
+	}
+	return 0
+}
+
+func (x *TuningChoice) GetReason() string {
+	if x != nil {
+		return x.Reason
+	}
+	return ""
+}
+
 // Envelope is q = N(mean, scale^2 I) with the declared bound
 // pi_tilde(x) <= exp(log_bound) * q(x) for the client's unnormalised
 // density pi_tilde = exp(log density it returns). A proposal y is accepted
@@ -1437,7 +1705,7 @@ type Envelope struct {
 
 func (x *Envelope) Reset() {
 	*x = Envelope{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1449,7 +1717,7 @@ func (x *Envelope) String() string {
 func (*Envelope) ProtoMessage() {}
 
 func (x *Envelope) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1462,7 +1730,7 @@ func (x *Envelope) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Envelope.ProtoReflect.Descriptor instead.
 func (*Envelope) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{7}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{9}
 }
 
 func (x *Envelope) GetMean() []byte {
@@ -1498,7 +1766,7 @@ type StepSchedule struct {
 
 func (x *StepSchedule) Reset() {
 	*x = StepSchedule{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1510,7 +1778,7 @@ func (x *StepSchedule) String() string {
 func (*StepSchedule) ProtoMessage() {}
 
 func (x *StepSchedule) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1523,7 +1791,7 @@ func (x *StepSchedule) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use StepSchedule.ProtoReflect.Descriptor instead.
 func (*StepSchedule) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{8}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{10}
 }
 
 func (x *StepSchedule) GetA() float64 {
@@ -1574,7 +1842,7 @@ type GradientNoise struct {
 
 func (x *GradientNoise) Reset() {
 	*x = GradientNoise{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1586,7 +1854,7 @@ func (x *GradientNoise) String() string {
 func (*GradientNoise) ProtoMessage() {}
 
 func (x *GradientNoise) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1599,7 +1867,7 @@ func (x *GradientNoise) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use GradientNoise.ProtoReflect.Descriptor instead.
 func (*GradientNoise) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{9}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{11}
 }
 
 func (x *GradientNoise) GetKind() GradientKind {
@@ -1674,7 +1942,7 @@ type Curvature struct {
 
 func (x *Curvature) Reset() {
 	*x = Curvature{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1686,7 +1954,7 @@ func (x *Curvature) String() string {
 func (*Curvature) ProtoMessage() {}
 
 func (x *Curvature) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1699,7 +1967,7 @@ func (x *Curvature) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Curvature.ProtoReflect.Descriptor instead.
 func (*Curvature) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{10}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{12}
 }
 
 func (x *Curvature) GetStrongConvexity() float64 {
@@ -1758,7 +2026,7 @@ type Wants struct {
 
 func (x *Wants) Reset() {
 	*x = Wants{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1770,7 +2038,7 @@ func (x *Wants) String() string {
 func (*Wants) ProtoMessage() {}
 
 func (x *Wants) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1783,7 +2051,7 @@ func (x *Wants) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Wants.ProtoReflect.Descriptor instead.
 func (*Wants) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{11}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{13}
 }
 
 func (x *Wants) GetMinBulkEss() float64 {
@@ -1849,14 +2117,19 @@ type Registered struct {
 	Names []string `protobuf:"bytes,7,rep,name=names,proto3" json:"names,omitempty"`
 	// When the step was planned from wants.eps and the declared curvature:
 	// the steps per chain the plan needs (0 otherwise).
-	PlannedSteps  int64 `protobuf:"varint,8,opt,name=planned_steps,json=plannedSteps,proto3" json:"planned_steps,omitempty"`
+	PlannedSteps int64 `protobuf:"varint,8,opt,name=planned_steps,json=plannedSteps,proto3" json:"planned_steps,omitempty"`
+	// The metric at registration and the adaptation schedule.
+	Metric *MetricReport `protobuf:"bytes,9,opt,name=metric,proto3" json:"metric,omitempty"`
+	// With step 0: the settings the server will choose and what chooses
+	// them (their values come in Progress.tuning).
+	Tuning        []*TuningChoice `protobuf:"bytes,10,rep,name=tuning,proto3" json:"tuning,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
 
 func (x *Registered) Reset() {
 	*x = Registered{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1868,7 +2141,7 @@ func (x *Registered) String() string {
 func (*Registered) ProtoMessage() {}
 
 func (x *Registered) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1881,7 +2154,7 @@ func (x *Registered) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Registered.ProtoReflect.Descriptor instead.
 func (*Registered) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{12}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{14}
 }
 
 func (x *Registered) GetSessionId() string {
@@ -1940,6 +2213,20 @@ func (x *Registered) GetPlannedSteps() int64 {
 	return 0
 }
 
+func (x *Registered) GetMetric() *MetricReport {
+	if x != nil {
+		return x.Metric
+	}
+	return nil
+}
+
+func (x *Registered) GetTuning() []*TuningChoice {
+	if x != nil {
+		return x.Tuning
+	}
+	return nil
+}
+
 // Points asks the client to evaluate a batch of points.
 type Points struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -1982,7 +2269,7 @@ type Points struct {
 
 func (x *Points) Reset() {
 	*x = Points{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1994,7 +2281,7 @@ func (x *Points) String() string {
 func (*Points) ProtoMessage() {}
 
 func (x *Points) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2007,7 +2294,7 @@ func (x *Points) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Points.ProtoReflect.Descriptor instead.
 func (*Points) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{13}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{15}
 }
 
 func (x *Points) GetRequestId() uint64 {
@@ -2125,7 +2412,7 @@ type Evaluations struct {
 
 func (x *Evaluations) Reset() {
 	*x = Evaluations{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2137,7 +2424,7 @@ func (x *Evaluations) String() string {
 func (*Evaluations) ProtoMessage() {}
 
 func (x *Evaluations) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2150,7 +2437,7 @@ func (x *Evaluations) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Evaluations.ProtoReflect.Descriptor instead.
 func (*Evaluations) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{14}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{16}
 }
 
 func (x *Evaluations) GetRequestId() uint64 {
@@ -2220,7 +2507,7 @@ type Stop struct {
 
 func (x *Stop) Reset() {
 	*x = Stop{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2232,7 +2519,7 @@ func (x *Stop) String() string {
 func (*Stop) ProtoMessage() {}
 
 func (x *Stop) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2245,7 +2532,7 @@ func (x *Stop) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Stop.ProtoReflect.Descriptor instead.
 func (*Stop) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{15}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{17}
 }
 
 func (x *Stop) GetReason() string {
@@ -2280,7 +2567,7 @@ type Draws struct {
 
 func (x *Draws) Reset() {
 	*x = Draws{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2292,7 +2579,7 @@ func (x *Draws) String() string {
 func (*Draws) ProtoMessage() {}
 
 func (x *Draws) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2305,7 +2592,7 @@ func (x *Draws) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Draws.ProtoReflect.Descriptor instead.
 func (*Draws) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{16}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{18}
 }
 
 func (x *Draws) GetSeq() uint64 {
@@ -2390,13 +2677,20 @@ type Progress struct {
 	// Parameters left out of `parameters` so that the frame fits the message
 	// limit (the first ones are sent); 0 normally.
 	ParametersOmitted int32 `protobuf:"varint,16,opt,name=parameters_omitted,json=parametersOmitted,proto3" json:"parameters_omitted,omitempty"`
+	// The metric in use.
+	Metric *MetricReport `protobuf:"bytes,17,opt,name=metric,proto3" json:"metric,omitempty"`
+	// With step 0: the settings the server chose, with their reasons.
+	Tuning []*TuningChoice `protobuf:"bytes,18,rep,name=tuning,proto3" json:"tuning,omitempty"`
+	// Evaluations the automatic tuning's curvature probes cost (counted in
+	// evaluations_used).
+	TuningEvaluations int64 `protobuf:"varint,19,opt,name=tuning_evaluations,json=tuningEvaluations,proto3" json:"tuning_evaluations,omitempty"`
 	unknownFields     protoimpl.UnknownFields
 	sizeCache         protoimpl.SizeCache
 }
 
 func (x *Progress) Reset() {
 	*x = Progress{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2408,7 +2702,7 @@ func (x *Progress) String() string {
 func (*Progress) ProtoMessage() {}
 
 func (x *Progress) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2421,7 +2715,7 @@ func (x *Progress) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Progress.ProtoReflect.Descriptor instead.
 func (*Progress) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{17}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{19}
 }
 
 func (x *Progress) GetState() State {
@@ -2536,6 +2830,27 @@ func (x *Progress) GetParametersOmitted() int32 {
 	return 0
 }
 
+func (x *Progress) GetMetric() *MetricReport {
+	if x != nil {
+		return x.Metric
+	}
+	return nil
+}
+
+func (x *Progress) GetTuning() []*TuningChoice {
+	if x != nil {
+		return x.Tuning
+	}
+	return nil
+}
+
+func (x *Progress) GetTuningEvaluations() int64 {
+	if x != nil {
+		return x.TuningEvaluations
+	}
+	return 0
+}
+
 // KernelReport holds a kernel's own figures.
 type KernelReport struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -2563,7 +2878,7 @@ type KernelReport struct {
 
 func (x *KernelReport) Reset() {
 	*x = KernelReport{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2575,7 +2890,7 @@ func (x *KernelReport) String() string {
 func (*KernelReport) ProtoMessage() {}
 
 func (x *KernelReport) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2588,7 +2903,7 @@ func (x *KernelReport) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use KernelReport.ProtoReflect.Descriptor instead.
 func (*KernelReport) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{18}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{20}
 }
 
 func (x *KernelReport) GetStep() float64 {
@@ -2671,7 +2986,7 @@ type NoiseEstimate struct {
 
 func (x *NoiseEstimate) Reset() {
 	*x = NoiseEstimate{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2683,7 +2998,7 @@ func (x *NoiseEstimate) String() string {
 func (*NoiseEstimate) ProtoMessage() {}
 
 func (x *NoiseEstimate) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2696,7 +3011,7 @@ func (x *NoiseEstimate) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use NoiseEstimate.ProtoReflect.Descriptor instead.
 func (*NoiseEstimate) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{19}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{21}
 }
 
 func (x *NoiseEstimate) GetVariance() float64 {
@@ -2759,7 +3074,7 @@ type ParameterDiagnostics struct {
 
 func (x *ParameterDiagnostics) Reset() {
 	*x = ParameterDiagnostics{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2771,7 +3086,7 @@ func (x *ParameterDiagnostics) String() string {
 func (*ParameterDiagnostics) ProtoMessage() {}
 
 func (x *ParameterDiagnostics) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2784,7 +3099,7 @@ func (x *ParameterDiagnostics) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ParameterDiagnostics.ProtoReflect.Descriptor instead.
 func (*ParameterDiagnostics) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{20}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{22}
 }
 
 func (x *ParameterDiagnostics) GetName() string {
@@ -2860,7 +3175,7 @@ type Bound struct {
 
 func (x *Bound) Reset() {
 	*x = Bound{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2872,7 +3187,7 @@ func (x *Bound) String() string {
 func (*Bound) ProtoMessage() {}
 
 func (x *Bound) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2885,7 +3200,7 @@ func (x *Bound) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Bound.ProtoReflect.Descriptor instead.
 func (*Bound) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{21}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{23}
 }
 
 func (x *Bound) GetMetric() Metric {
@@ -2968,7 +3283,7 @@ type CurvatureEstimate struct {
 
 func (x *CurvatureEstimate) Reset() {
 	*x = CurvatureEstimate{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[24]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2980,7 +3295,7 @@ func (x *CurvatureEstimate) String() string {
 func (*CurvatureEstimate) ProtoMessage() {}
 
 func (x *CurvatureEstimate) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[24]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2993,7 +3308,7 @@ func (x *CurvatureEstimate) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use CurvatureEstimate.ProtoReflect.Descriptor instead.
 func (*CurvatureEstimate) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{22}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{24}
 }
 
 func (x *CurvatureEstimate) GetPairs() int64 {
@@ -3062,7 +3377,7 @@ type TargetStatus struct {
 
 func (x *TargetStatus) Reset() {
 	*x = TargetStatus{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[25]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3074,7 +3389,7 @@ func (x *TargetStatus) String() string {
 func (*TargetStatus) ProtoMessage() {}
 
 func (x *TargetStatus) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[25]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3087,7 +3402,7 @@ func (x *TargetStatus) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use TargetStatus.ProtoReflect.Descriptor instead.
 func (*TargetStatus) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{23}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{25}
 }
 
 func (x *TargetStatus) GetName() string {
@@ -3144,7 +3459,7 @@ type Finished struct {
 
 func (x *Finished) Reset() {
 	*x = Finished{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[24]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[26]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3156,7 +3471,7 @@ func (x *Finished) String() string {
 func (*Finished) ProtoMessage() {}
 
 func (x *Finished) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[24]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[26]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3169,7 +3484,7 @@ func (x *Finished) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Finished.ProtoReflect.Descriptor instead.
 func (*Finished) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{24}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{26}
 }
 
 func (x *Finished) GetReason() FinishReason {
@@ -3224,7 +3539,7 @@ type ParameterSummary struct {
 
 func (x *ParameterSummary) Reset() {
 	*x = ParameterSummary{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[25]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[27]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3236,7 +3551,7 @@ func (x *ParameterSummary) String() string {
 func (*ParameterSummary) ProtoMessage() {}
 
 func (x *ParameterSummary) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[25]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[27]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3249,7 +3564,7 @@ func (x *ParameterSummary) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ParameterSummary.ProtoReflect.Descriptor instead.
 func (*ParameterSummary) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{25}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{27}
 }
 
 func (x *ParameterSummary) GetName() string {
@@ -3332,7 +3647,8 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x05draws\x18\x03 \x01(\v2\x10.sluice.v1.DrawsH\x00R\x05draws\x121\n" +
 	"\bprogress\x18\x04 \x01(\v2\x13.sluice.v1.ProgressH\x00R\bprogress\x121\n" +
 	"\bfinished\x18\x05 \x01(\v2\x13.sluice.v1.FinishedH\x00R\bfinishedB\a\n" +
-	"\x05frame\"\xb1\t\n" +
+	"\x05frame\"\x81\n" +
+	"\n" +
 	"\bRegister\x12\x10\n" +
 	"\x03dim\x18\x01 \x01(\x05R\x03dim\x12\x16\n" +
 	"\x06chains\x18\x02 \x01(\x05R\x06chains\x12\x16\n" +
@@ -3369,7 +3685,24 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"sliceWidth\x120\n" +
 	"\x14slice_max_expansions\x18\x1e \x01(\x05R\x12sliceMaxExpansions\x12/\n" +
 	"\benvelope\x18\x1f \x01(\v2\x13.sluice.v1.EnvelopeR\benvelope\x12.\n" +
-	"\x05noise\x18\x15 \x01(\v2\x18.sluice.v1.GradientNoiseR\x05noise\"Q\n" +
+	"\x05noise\x18\x15 \x01(\v2\x18.sluice.v1.GradientNoiseR\x05noise\x12\x16\n" +
+	"\x06metric\x18  \x01(\fR\x06metric\x126\n" +
+	"\vmetric_form\x18! \x01(\x0e2\x15.sluice.v1.MetricFormR\n" +
+	"metricForm\"\xf5\x01\n" +
+	"\fMetricReport\x12\x12\n" +
+	"\x04kind\x18\x01 \x01(\tR\x04kind\x12\x16\n" +
+	"\x06source\x18\x02 \x01(\tR\x06source\x12\x1a\n" +
+	"\badapting\x18\x03 \x01(\bR\badapting\x12\x1c\n" +
+	"\tcondition\x18\x04 \x01(\x01R\tcondition\x12&\n" +
+	"\x0fupdated_at_step\x18\x05 \x01(\x03R\rupdatedAtStep\x12\x18\n" +
+	"\aupdates\x18\x06 \x01(\x05R\aupdates\x12\x1c\n" +
+	"\tshrinkage\x18\a \x01(\x01R\tshrinkage\x12\x1f\n" +
+	"\vwindow_ends\x18\b \x03(\x03R\n" +
+	"windowEnds\"V\n" +
+	"\fTuningChoice\x12\x18\n" +
+	"\asetting\x18\x01 \x01(\tR\asetting\x12\x14\n" +
+	"\x05value\x18\x02 \x01(\x01R\x05value\x12\x16\n" +
+	"\x06reason\x18\x03 \x01(\tR\x06reason\"Q\n" +
 	"\bEnvelope\x12\x12\n" +
 	"\x04mean\x18\x01 \x01(\fR\x04mean\x12\x14\n" +
 	"\x05scale\x18\x02 \x01(\x01R\x05scale\x12\x1b\n" +
@@ -3403,7 +3736,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\bmax_rhat\x18\x03 \x01(\x01R\amaxRhat\x12\x17\n" +
 	"\amax_ksd\x18\x04 \x01(\x01R\x06maxKsd\x12\x10\n" +
 	"\x03eps\x18\x05 \x01(\x01R\x03eps\x12)\n" +
-	"\x06metric\x18\x06 \x01(\x0e2\x11.sluice.v1.MetricR\x06metric\"\x84\x02\n" +
+	"\x06metric\x18\x06 \x01(\x0e2\x11.sluice.v1.MetricR\x06metric\"\xe6\x02\n" +
 	"\n" +
 	"Registered\x12\x1d\n" +
 	"\n" +
@@ -3414,7 +3747,10 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x14evaluations_per_step\x18\x05 \x01(\x03R\x12evaluationsPerStep\x12*\n" +
 	"\x11max_message_bytes\x18\x06 \x01(\x03R\x0fmaxMessageBytes\x12\x14\n" +
 	"\x05names\x18\a \x03(\tR\x05names\x12#\n" +
-	"\rplanned_steps\x18\b \x01(\x03R\fplannedSteps\"\xf0\x02\n" +
+	"\rplanned_steps\x18\b \x01(\x03R\fplannedSteps\x12/\n" +
+	"\x06metric\x18\t \x01(\v2\x17.sluice.v1.MetricReportR\x06metric\x12/\n" +
+	"\x06tuning\x18\n" +
+	" \x03(\v2\x17.sluice.v1.TuningChoiceR\x06tuning\"\xf0\x02\n" +
 	"\x06Points\x12\x1d\n" +
 	"\n" +
 	"request_id\x18\x01 \x01(\x04R\trequestId\x12\x1b\n" +
@@ -3455,7 +3791,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x06chains\x18\x05 \x03(\x05R\x06chains\x12\x1e\n" +
 	"\n" +
 	"iterations\x18\x06 \x03(\x03R\n" +
-	"iterations\"\xb3\x05\n" +
+	"iterations\"\xc4\x06\n" +
 	"\bProgress\x12&\n" +
 	"\x05state\x18\x01 \x01(\x0e2\x10.sluice.v1.StateR\x05state\x12\x14\n" +
 	"\x05steps\x18\x02 \x01(\x03R\x05steps\x12)\n" +
@@ -3476,7 +3812,10 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\atargets\x18\r \x03(\v2\x17.sluice.v1.TargetStatusR\atargets\x12.\n" +
 	"\x05noise\x18\x0e \x01(\v2\x18.sluice.v1.NoiseEstimateR\x05noise\x12/\n" +
 	"\x06kernel\x18\x0f \x01(\v2\x17.sluice.v1.KernelReportR\x06kernel\x12-\n" +
-	"\x12parameters_omitted\x18\x10 \x01(\x05R\x11parametersOmitted\"\xdd\x02\n" +
+	"\x12parameters_omitted\x18\x10 \x01(\x05R\x11parametersOmitted\x12/\n" +
+	"\x06metric\x18\x11 \x01(\v2\x17.sluice.v1.MetricReportR\x06metric\x12/\n" +
+	"\x06tuning\x18\x12 \x03(\v2\x17.sluice.v1.TuningChoiceR\x06tuning\x12-\n" +
+	"\x12tuning_evaluations\x18\x13 \x01(\x03R\x11tuningEvaluations\"\xdd\x02\n" +
 	"\fKernelReport\x12\x12\n" +
 	"\x04step\x18\x01 \x01(\x01R\x04step\x12\x1a\n" +
 	"\badapting\x18\x02 \x01(\bR\badapting\x12)\n" +
@@ -3540,7 +3879,13 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x04name\x18\x01 \x01(\tR\x04name\x12\x12\n" +
 	"\x04mean\x18\x02 \x01(\x01R\x04mean\x12\x0e\n" +
 	"\x02sd\x18\x03 \x01(\x01R\x02sd\x12\x14\n" +
-	"\x05count\x18\x04 \x01(\x03R\x05count*d\n" +
+	"\x05count\x18\x04 \x01(\x03R\x05count*t\n" +
+	"\n" +
+	"MetricForm\x12\x1b\n" +
+	"\x17METRIC_FORM_UNSPECIFIED\x10\x00\x12\x18\n" +
+	"\x14METRIC_FORM_IDENTITY\x10\x01\x12\x18\n" +
+	"\x14METRIC_FORM_DIAGONAL\x10\x02\x12\x15\n" +
+	"\x11METRIC_FORM_DENSE\x10\x03*d\n" +
 	"\fGradientKind\x12\x1d\n" +
 	"\x19GRADIENT_KIND_UNSPECIFIED\x10\x00\x12\x17\n" +
 	"\x13GRADIENT_KIND_EXACT\x10\x01\x12\x1c\n" +
@@ -3590,87 +3935,95 @@ func file_sluice_v1_sluice_proto_rawDescGZIP() []byte {
 	return file_sluice_v1_sluice_proto_rawDescData
 }
 
-var file_sluice_v1_sluice_proto_enumTypes = make([]protoimpl.EnumInfo, 6)
-var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 26)
+var file_sluice_v1_sluice_proto_enumTypes = make([]protoimpl.EnumInfo, 7)
+var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 28)
 var file_sluice_v1_sluice_proto_goTypes = []any{
-	(GradientKind)(0),            // 0: sluice.v1.GradientKind
-	(Metric)(0),                  // 1: sluice.v1.Metric
-	(Quantity)(0),                // 2: sluice.v1.Quantity
-	(State)(0),                   // 3: sluice.v1.State
-	(BoundSource)(0),             // 4: sluice.v1.BoundSource
-	(FinishReason)(0),            // 5: sluice.v1.FinishReason
-	(*PlanRequest)(nil),          // 6: sluice.v1.PlanRequest
-	(*PlanResponse)(nil),         // 7: sluice.v1.PlanResponse
-	(*FollowRequest)(nil),        // 8: sluice.v1.FollowRequest
-	(*FollowResponse)(nil),       // 9: sluice.v1.FollowResponse
-	(*SessionRequest)(nil),       // 10: sluice.v1.SessionRequest
-	(*SessionResponse)(nil),      // 11: sluice.v1.SessionResponse
-	(*Register)(nil),             // 12: sluice.v1.Register
-	(*Envelope)(nil),             // 13: sluice.v1.Envelope
-	(*StepSchedule)(nil),         // 14: sluice.v1.StepSchedule
-	(*GradientNoise)(nil),        // 15: sluice.v1.GradientNoise
-	(*Curvature)(nil),            // 16: sluice.v1.Curvature
-	(*Wants)(nil),                // 17: sluice.v1.Wants
-	(*Registered)(nil),           // 18: sluice.v1.Registered
-	(*Points)(nil),               // 19: sluice.v1.Points
-	(*Evaluations)(nil),          // 20: sluice.v1.Evaluations
-	(*Stop)(nil),                 // 21: sluice.v1.Stop
-	(*Draws)(nil),                // 22: sluice.v1.Draws
-	(*Progress)(nil),             // 23: sluice.v1.Progress
-	(*KernelReport)(nil),         // 24: sluice.v1.KernelReport
-	(*NoiseEstimate)(nil),        // 25: sluice.v1.NoiseEstimate
-	(*ParameterDiagnostics)(nil), // 26: sluice.v1.ParameterDiagnostics
-	(*Bound)(nil),                // 27: sluice.v1.Bound
-	(*CurvatureEstimate)(nil),    // 28: sluice.v1.CurvatureEstimate
-	(*TargetStatus)(nil),         // 29: sluice.v1.TargetStatus
-	(*Finished)(nil),             // 30: sluice.v1.Finished
-	(*ParameterSummary)(nil),     // 31: sluice.v1.ParameterSummary
+	(MetricForm)(0),              // 0: sluice.v1.MetricForm
+	(GradientKind)(0),            // 1: sluice.v1.GradientKind
+	(Metric)(0),                  // 2: sluice.v1.Metric
+	(Quantity)(0),                // 3: sluice.v1.Quantity
+	(State)(0),                   // 4: sluice.v1.State
+	(BoundSource)(0),             // 5: sluice.v1.BoundSource
+	(FinishReason)(0),            // 6: sluice.v1.FinishReason
+	(*PlanRequest)(nil),          // 7: sluice.v1.PlanRequest
+	(*PlanResponse)(nil),         // 8: sluice.v1.PlanResponse
+	(*FollowRequest)(nil),        // 9: sluice.v1.FollowRequest
+	(*FollowResponse)(nil),       // 10: sluice.v1.FollowResponse
+	(*SessionRequest)(nil),       // 11: sluice.v1.SessionRequest
+	(*SessionResponse)(nil),      // 12: sluice.v1.SessionResponse
+	(*Register)(nil),             // 13: sluice.v1.Register
+	(*MetricReport)(nil),         // 14: sluice.v1.MetricReport
+	(*TuningChoice)(nil),         // 15: sluice.v1.TuningChoice
+	(*Envelope)(nil),             // 16: sluice.v1.Envelope
+	(*StepSchedule)(nil),         // 17: sluice.v1.StepSchedule
+	(*GradientNoise)(nil),        // 18: sluice.v1.GradientNoise
+	(*Curvature)(nil),            // 19: sluice.v1.Curvature
+	(*Wants)(nil),                // 20: sluice.v1.Wants
+	(*Registered)(nil),           // 21: sluice.v1.Registered
+	(*Points)(nil),               // 22: sluice.v1.Points
+	(*Evaluations)(nil),          // 23: sluice.v1.Evaluations
+	(*Stop)(nil),                 // 24: sluice.v1.Stop
+	(*Draws)(nil),                // 25: sluice.v1.Draws
+	(*Progress)(nil),             // 26: sluice.v1.Progress
+	(*KernelReport)(nil),         // 27: sluice.v1.KernelReport
+	(*NoiseEstimate)(nil),        // 28: sluice.v1.NoiseEstimate
+	(*ParameterDiagnostics)(nil), // 29: sluice.v1.ParameterDiagnostics
+	(*Bound)(nil),                // 30: sluice.v1.Bound
+	(*CurvatureEstimate)(nil),    // 31: sluice.v1.CurvatureEstimate
+	(*TargetStatus)(nil),         // 32: sluice.v1.TargetStatus
+	(*Finished)(nil),             // 33: sluice.v1.Finished
+	(*ParameterSummary)(nil),     // 34: sluice.v1.ParameterSummary
 }
 var file_sluice_v1_sluice_proto_depIdxs = []int32{
-	16, // 0: sluice.v1.PlanRequest.curvature:type_name -> sluice.v1.Curvature
-	1,  // 1: sluice.v1.PlanRequest.metric:type_name -> sluice.v1.Metric
-	27, // 2: sluice.v1.PlanResponse.bound:type_name -> sluice.v1.Bound
-	22, // 3: sluice.v1.FollowResponse.draws:type_name -> sluice.v1.Draws
-	30, // 4: sluice.v1.FollowResponse.finished:type_name -> sluice.v1.Finished
-	12, // 5: sluice.v1.SessionRequest.register:type_name -> sluice.v1.Register
-	20, // 6: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
-	21, // 7: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
-	18, // 8: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
-	19, // 9: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
-	22, // 10: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
-	23, // 11: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
-	30, // 12: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
-	16, // 13: sluice.v1.Register.curvature:type_name -> sluice.v1.Curvature
-	17, // 14: sluice.v1.Register.wants:type_name -> sluice.v1.Wants
-	14, // 15: sluice.v1.Register.schedule:type_name -> sluice.v1.StepSchedule
-	13, // 16: sluice.v1.Register.envelope:type_name -> sluice.v1.Envelope
-	15, // 17: sluice.v1.Register.noise:type_name -> sluice.v1.GradientNoise
-	0,  // 18: sluice.v1.GradientNoise.kind:type_name -> sluice.v1.GradientKind
-	1,  // 19: sluice.v1.Wants.metric:type_name -> sluice.v1.Metric
-	2,  // 20: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
-	3,  // 21: sluice.v1.Progress.state:type_name -> sluice.v1.State
-	26, // 22: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
-	27, // 23: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
-	28, // 24: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
-	29, // 25: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
-	25, // 26: sluice.v1.Progress.noise:type_name -> sluice.v1.NoiseEstimate
-	24, // 27: sluice.v1.Progress.kernel:type_name -> sluice.v1.KernelReport
-	1,  // 28: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
-	4,  // 29: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
-	5,  // 30: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
-	23, // 31: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
-	31, // 32: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
-	10, // 33: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
-	8,  // 34: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
-	6,  // 35: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
-	11, // 36: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
-	9,  // 37: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
-	7,  // 38: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
-	36, // [36:39] is the sub-list for method output_type
-	33, // [33:36] is the sub-list for method input_type
-	33, // [33:33] is the sub-list for extension type_name
-	33, // [33:33] is the sub-list for extension extendee
-	0,  // [0:33] is the sub-list for field type_name
+	19, // 0: sluice.v1.PlanRequest.curvature:type_name -> sluice.v1.Curvature
+	2,  // 1: sluice.v1.PlanRequest.metric:type_name -> sluice.v1.Metric
+	30, // 2: sluice.v1.PlanResponse.bound:type_name -> sluice.v1.Bound
+	25, // 3: sluice.v1.FollowResponse.draws:type_name -> sluice.v1.Draws
+	33, // 4: sluice.v1.FollowResponse.finished:type_name -> sluice.v1.Finished
+	13, // 5: sluice.v1.SessionRequest.register:type_name -> sluice.v1.Register
+	23, // 6: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
+	24, // 7: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
+	21, // 8: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
+	22, // 9: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
+	25, // 10: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
+	26, // 11: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
+	33, // 12: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
+	19, // 13: sluice.v1.Register.curvature:type_name -> sluice.v1.Curvature
+	20, // 14: sluice.v1.Register.wants:type_name -> sluice.v1.Wants
+	17, // 15: sluice.v1.Register.schedule:type_name -> sluice.v1.StepSchedule
+	16, // 16: sluice.v1.Register.envelope:type_name -> sluice.v1.Envelope
+	18, // 17: sluice.v1.Register.noise:type_name -> sluice.v1.GradientNoise
+	0,  // 18: sluice.v1.Register.metric_form:type_name -> sluice.v1.MetricForm
+	1,  // 19: sluice.v1.GradientNoise.kind:type_name -> sluice.v1.GradientKind
+	2,  // 20: sluice.v1.Wants.metric:type_name -> sluice.v1.Metric
+	14, // 21: sluice.v1.Registered.metric:type_name -> sluice.v1.MetricReport
+	15, // 22: sluice.v1.Registered.tuning:type_name -> sluice.v1.TuningChoice
+	3,  // 23: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
+	4,  // 24: sluice.v1.Progress.state:type_name -> sluice.v1.State
+	29, // 25: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
+	30, // 26: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
+	31, // 27: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
+	32, // 28: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
+	28, // 29: sluice.v1.Progress.noise:type_name -> sluice.v1.NoiseEstimate
+	27, // 30: sluice.v1.Progress.kernel:type_name -> sluice.v1.KernelReport
+	14, // 31: sluice.v1.Progress.metric:type_name -> sluice.v1.MetricReport
+	15, // 32: sluice.v1.Progress.tuning:type_name -> sluice.v1.TuningChoice
+	2,  // 33: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
+	5,  // 34: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
+	6,  // 35: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
+	26, // 36: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
+	34, // 37: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
+	11, // 38: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
+	9,  // 39: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
+	7,  // 40: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
+	12, // 41: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
+	10, // 42: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
+	8,  // 43: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
+	41, // [41:44] is the sub-list for method output_type
+	38, // [38:41] is the sub-list for method input_type
+	38, // [38:38] is the sub-list for extension type_name
+	38, // [38:38] is the sub-list for extension extendee
+	0,  // [0:38] is the sub-list for field type_name
 }
 
 func init() { file_sluice_v1_sluice_proto_init() }
@@ -3699,8 +4052,8 @@ func file_sluice_v1_sluice_proto_init() {
 		File: protoimpl.DescBuilder{
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_sluice_v1_sluice_proto_rawDesc), len(file_sluice_v1_sluice_proto_rawDesc)),
-			NumEnums:      6,
-			NumMessages:   26,
+			NumEnums:      7,
+			NumMessages:   28,
 			NumExtensions: 0,
 			NumServices:   1,
 		},
