@@ -149,6 +149,25 @@ type tuner struct {
 	probing    bool
 	seed       uint64
 	probes     int
+	// The metric before the last update, restored when the probe finds
+	// the update made the curvature worse; reverted counts such updates.
+	prevMetric    *kernels.Metric
+	prevUpdatedAt int64
+	prevLambda    float64
+	reverted      int
+}
+
+// better reports whether curvatures m, bigM seen in a new metric give a
+// condition number at most 1.5 times the one last seen (a non-positive
+// m̂ counts as the cap maxCondition).
+func (t *tuner) better(m, bigM float64) bool {
+	cond := func(m, bigM float64) float64 {
+		if !(m > 0) || !(bigM > 0) || math.IsInf(bigM, 0) {
+			return maxCondition
+		}
+		return math.Min(bigM/m, maxCondition)
+	}
+	return cond(m, bigM) <= 1.5*cond(t.m, t.bigM)
 }
 
 // newTuner validates the metric fields of spec for kernel k and returns
@@ -337,6 +356,19 @@ func (t *tuner) probe(k kernels.Kernel, s *Spec, x0 []float64) Phase {
 	return newLanczosProbe(x0, t.metric, tuneProbeSteps, v0, func(m, bigM float64, evals int) {
 		t.probeEvals += int64(evals)
 		t.probing = false
+		if t.updates > 0 && t.prevMetric != nil && t.bigM > 0 && !t.better(m, bigM) {
+			// The update made the curvature worse than the metric it
+			// replaced (a window whose chains had not spread yet): keep the
+			// old metric and its settings (derived here: the condition
+			// number in the metric's units is what every rule's cost grows
+			// with, so an update that raises it by more than half is
+			// undone).
+			t.metric, t.updatedAt, t.lambda = t.prevMetric, t.prevUpdatedAt, t.prevLambda
+			t.reverted++
+			k.(kernels.MetricUser).SetMetric(t.metric)
+			t.apply(k, s, t.m, t.bigM, fmt.Sprintf("update %d undone: in its metric the probe saw M̂ = %.4g, m̂ = %.4g, a worse condition; kept", t.updates, bigM, m))
+			return
+		}
 		t.apply(k, s, m, bigM, name)
 	})
 }
@@ -379,6 +411,10 @@ func (t *tuner) afterStep(k kernels.Kernel, s *Spec) Phase {
 	t.window++
 	if err != nil {
 		return nil // draws that do not spread: keep the metric in use
+	}
+	t.prevMetric, t.prevUpdatedAt, t.prevLambda = t.metric, t.updatedAt, t.lambda
+	if t.prevMetric == nil {
+		t.prevMetric = kernels.NewIdentityMetric(s.Dim)
 	}
 	t.metric, t.lambda = m, lambda
 	t.updatedAt = step

@@ -417,14 +417,17 @@ func worstTau(sc scheme, lo, hi float64) float64 {
 }
 
 // bestFree searches a kernel's one free parameter on the grid
-// centre·2^(k/2), k = −8…8: for each value the largest step meeting the
+// centre·2^(k/2), k = −8…8 (up to most): for each value the largest step meeting the
 // variance tolerance, scored by the worst-case autocorrelation time over
 // [lo, hi]; it returns the best value and its step.
-func bestFree(centre float64, family func(v float64) func(h float64) scheme, lo, hi float64, ceiling func(v float64) float64, tol float64) (best, step float64) {
+func bestFree(centre float64, family func(v float64) func(h float64) scheme, lo, hi float64, ceiling func(v float64) float64, tol, most float64) (best, step float64) {
 	bestTau := math.Inf(1)
 	best, step = centre, 0
 	for k := -8; k <= 8; k++ {
 		v := centre * math.Pow(2, float64(k)/2)
+		if v > most {
+			break
+		}
 		mk := family(v)
 		h := largestStep(mk, lo, hi, ceiling(v), tol)
 		if tau := worstTau(mk(h), lo, hi); tau < bestTau {
@@ -473,11 +476,18 @@ func choose(rule tuneRule, m, bigM float64, prev, prevM float64, tol float64) (s
 		// grid around critical damping of the slowest direction that gives
 		// the smallest worst-case autocorrelation time at its largest
 		// step meeting the tolerance.
+		// The grid stops at critical damping of the stiffest direction
+		// (γ = 2√(u·1.1M̂) = 2): beyond it every direction is overdamped and
+		// the kernel only imitates lmc. The step is capped at ω_max·h = 1,
+		// half the stable range of the undamped frozen-gradient step
+		// (derived here: as γ → 0 its trace is 2 − (ωh)², stable only
+		// below ωh = 2), so that an M̂ the probe underestimates leaves a
+		// margin.
 		s.inverseMass = 1 / hi
 		crit := 2 * math.Sqrt(s.inverseMass*lo)
 		s.friction, s.step = bestFree(crit, func(g float64) func(h float64) scheme {
 			return func(h float64) scheme { return kineticScheme(h, g, s.inverseMass) }
-		}, lo, hi, func(g float64) float64 { return 64 / math.Sqrt(s.inverseMass*lo) }, tol)
+		}, lo, hi, func(g float64) float64 { return 1 }, tol, 2)
 		out = append(out,
 			Choice{"inverse_mass", s.inverseMass, "1/(1.1·M̂): the stiffest direction oscillates at ω = 1"},
 			Choice{"friction", s.friction, fmt.Sprintf("the friction, on a grid around critical damping of the slowest direction 2√(u·m̂) = %.4g (%s), with the smallest worst-case autocorrelation time at its largest step meeting the tolerance", crit, mText)},
@@ -491,7 +501,7 @@ func choose(rule tuneRule, m, bigM float64, prev, prevM float64, tol float64) (s
 		crit := 1 / lo
 		s.inverseMass, s.step = bestFree(crit, func(u float64) func(h float64) scheme {
 			return func(h float64) scheme { return midpointScheme(h, u) }
-		}, lo, hi, func(u float64) float64 { return 64 }, tol)
+		}, lo, hi, func(u float64) float64 { return 1 / math.Sqrt(u*hi) }, tol, math.Inf(1))
 		out = append(out,
 			Choice{"inverse_mass", s.inverseMass, fmt.Sprintf("on a grid around 1/m̂ = %.4g (with the kernel's friction 2, critical damping of the slowest direction; %s), the value with the smallest worst-case autocorrelation time at its largest step meeting the tolerance", crit, mText)},
 			Choice{"step", s.step, "largest step with the mean-square " + tolText})
