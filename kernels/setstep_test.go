@@ -183,3 +183,31 @@ func equalDraws(a, b [][][]float64) bool {
 	}
 	return true
 }
+
+// ApplyFactorT is the adjoint of ApplyFactor: ⟨L·a, b⟩ = ⟨a, Lᵀ·b⟩ for
+// every a, b (the definition of the transpose), for each kind of metric.
+func TestApplyFactorTIsTheAdjoint(t *testing.T) {
+	const p = 4
+	dense, err := NewDenseMetric(p, []float64{4, 1, 0.5, 0, 1, 3, 0.2, 0.1, 0.5, 0.2, 2, 0.3, 0, 0.1, 0.3, 1})
+	if err != nil {
+		t.Fatal(err)
+	}
+	diagonal, err := NewDiagonalMetric([]float64{4, 3, 2, 1})
+	if err != nil {
+		t.Fatal(err)
+	}
+	a, b := []float64{0.3, -1, 2, 0.5}, []float64{1.5, 0.2, -0.7, 1}
+	la, ltb := make([]float64, p), make([]float64, p)
+	for _, m := range []*Metric{NewIdentityMetric(p), diagonal, dense} {
+		m.ApplyFactor(la, a)
+		m.ApplyFactorT(ltb, b)
+		var x, y float64
+		for i := range p {
+			x += la[i] * b[i]
+			y += a[i] * ltb[i]
+		}
+		if math.Abs(x-y) > 1e-12*math.Max(1, math.Abs(x)) {
+			t.Fatalf("%v: ⟨La, b⟩ = %v, ⟨a, Lᵀb⟩ = %v", m.Kind(), x, y)
+		}
+	}
+}

@@ -7,44 +7,8 @@ import (
 	"sluice/kernels"
 )
 
-// Metric adaptation during burn-in.
-//
-// The engine adapts a preconditioner C (kernels.Metric) from the chains'
-// own positions, all chains pooled, on a schedule counted in steps per
-// chain, never in wall time, so that the same seed and the same answers
-// give the same draws whatever the client's speed. For a burn-in of B
-// steps (B ≥ minAdaptBurnIn):
-//
-//   - the first B/10 steps (at least 10) collect nothing: the chains are
-//     still leaving their start, and a covariance of draws on that way
-//     would measure the path, not the target;
-//   - a first short window of w = B/20 steps (at least 10) gives a
-//     diagonal metric: scales can differ by orders of magnitude, a
-//     variance needs few draws, and correcting the scales first lets the
-//     later windows' chains mix enough to estimate correlations;
-//   - then windows of 2w, 4w, 8w, … steps, each estimating the metric
-//     afresh from its own draws alone (the earlier draws came from a
-//     worse-tuned kernel and may carry the transient): the dense
-//     Ledoit–Wolf estimate (kernels.Covariance.Shrunk) up to
-//     kernels.MaxDenseMetricDim, the pooled variances above it (or with
-//     metric_form diagonal). Each window is twice the last because its
-//     chains mix better, and the estimate's error falls as its length
-//     grows; a window that would not fit is merged into the one before;
-//   - the last window ends B/10 steps (at least 20) before burn-in ends,
-//     so that the chains (and MALA's acceptance-rate adaptation) settle
-//     under the final metric and step before anything is kept;
-//   - the metric is frozen when burn-in ends: every kept draw comes from
-//     one fixed Markov kernel.
-//
-// After every update the engine, when it chooses the step itself (step
-// 0), probes the curvature in the new metric at chain 0's position and
-// chooses the step (and friction, inverse mass) again (tune.go): a step
-// suited to the old geometry is not the one suited to the new. A step the
-// client gave is kept and read in the metric's units.
-//
-// The adapter's state is plain fields (counts, steps, the last choices,
-// the metric's matrix and the window's accumulator), so a checkpoint can
-// encode it.
+// Metric adaptation during burn-in: the schedule and its reasons are in
+// the package doc (doc.go).
 
 // minAdaptBurnIn is the shortest burn-in the engine adapts a metric in:
 // with fewer steps the windows would be too short to estimate anything.

@@ -315,7 +315,7 @@ func chainsMean(x [][]float64) float64 {
 // metric (its acceptance step makes it exact), with the MCSE of each
 // coordinate.
 func refRun(tb testing.TB, bt *benchTarget) {
-	const chains, kept = 8, 40000
+	const chains, kept = 8, 16000
 	p := bt.tg.Dim()
 	start := make([]float64, p*chains)
 	for i := range start {
@@ -342,8 +342,10 @@ func refRun(tb testing.TB, bt *benchTarget) {
 // identity metric and with the metric adapted during burn-in, on three
 // targets. Each row runs until its smallest bulk-ESS (Vehtari et al.
 // 2021) over the coordinates is at least 400, growing the kept steps, up
-// to a cap of maxEvals evaluations (rows that stop at the cap are
-// marked). ESS/eval is over the kept phase; its ± is the half-difference
+// to a cap of evaluations (1.5·10⁵, or SLUICE_ESSBENCH_MAX_EVALS; rows
+// that stop at the cap are marked). By default it runs lmc, kinetic,
+// midpoint and mala; SLUICE_ESSBENCH_ALL=1 adds midpoint-overdamped, and
+// sgld, sgld-cv and svrg (with exact gradients) with the adapted metric. ESS/eval is over the kept phase; its ± is the half-difference
 // of the figures of the two halves of the kept draws (each half estimates
 // the same rate from half the draws, so their half-difference is of the
 // order of the full run's standard error), or, with
@@ -358,7 +360,13 @@ func refRun(tb testing.TB, bt *benchTarget) {
 //
 //	go test -run XXX -bench ESSPerEvaluation -benchtime 1x -timeout 60m ./server/session/
 func BenchmarkESSPerEvaluation(b *testing.B) {
-	const burn, minESS, maxEvals = 1000, 400, 6e5
+	const burn, minESS = 1000, 400
+	maxEvals := 1.5e5
+	if v := os.Getenv("SLUICE_ESSBENCH_MAX_EVALS"); v != "" {
+		if f, err := strconv.ParseFloat(v, 64); err == nil && f > 0 {
+			maxEvals = f
+		}
+	}
 	seeds := []uint64{11}
 	if v := os.Getenv("SLUICE_ESSBENCH_SEEDS"); v == "3" {
 		seeds = []uint64{11, 12, 13}
@@ -371,8 +379,14 @@ func BenchmarkESSPerEvaluation(b *testing.B) {
 	}
 	variants := []variant{{"adapted", MetricDefault}, {"identity", MetricIdentity}}
 	kernelsOf := map[string][]string{
-		"identity": {"lmc", "kinetic", "midpoint", "midpoint-overdamped", "mala"},
-		"adapted":  {"lmc", "kinetic", "midpoint", "midpoint-overdamped", "mala", "sgld", "sgld-cv", "svrg"},
+		"identity": {"lmc", "kinetic", "midpoint", "mala"},
+		"adapted":  {"lmc", "kinetic", "midpoint", "mala"},
+	}
+	if os.Getenv("SLUICE_ESSBENCH_ALL") != "" {
+		kernelsOf = map[string][]string{
+			"identity": {"lmc", "kinetic", "midpoint", "midpoint-overdamped", "mala"},
+			"adapted":  {"lmc", "kinetic", "midpoint", "midpoint-overdamped", "mala", "sgld", "sgld-cv", "svrg"},
+		}
 	}
 	var rows []benchRow
 	for b.Loop() {
@@ -393,7 +407,7 @@ func BenchmarkESSPerEvaluation(b *testing.B) {
 								break
 							}
 							grow := math.Min(16, math.Max(2, 1.3*minESS/math.Max(ess, 1)))
-							kept = min(int64(float64(kept)*grow), int64(maxEvals/(evals/float64(kept))))
+							kept = max(kept+1, min(int64(float64(kept)*grow), int64(maxEvals/(evals/float64(kept)))))
 						}
 						if err != nil {
 							row.failed = err.Error()
