@@ -110,7 +110,6 @@ type tuner struct {
 	m, bigM    float64
 	choices    []Choice
 	probeEvals int64
-	probing    bool
 	seed       uint64
 	probes     int
 	// The metric before the last update, restored when the probe finds
@@ -201,14 +200,13 @@ func (t *tuner) kind() string {
 	return t.metric.Kind().String()
 }
 
-// report fills r with the metric's state at kernel step step.
-func (t *tuner) report(step int64) MetricReport {
+// report is the metric's state.
+func (t *tuner) report() MetricReport {
 	r := MetricReport{Kind: t.kind(), Source: t.source, Condition: 1, UpdatedAtStep: t.updatedAt, Updates: t.updates,
 		Shrinkage: t.lambda, Adapting: t.adapt && t.window < len(t.ends), WindowEnds: t.ends}
 	if t.metric != nil {
 		r.Condition = t.metric.Condition()
 	}
-	_ = step
 	return r
 }
 
@@ -248,19 +246,11 @@ func (t *tuner) apply(k kernels.Kernel, s *Spec, m, bigM float64, source string)
 		prev, prevM = stepOf(k), probeSafety*t.bigM
 	}
 	t.m, t.bigM = m, bigM
-	set, why := choose(t.rule, m, bigM, prev, prevM, t.tolerance())
+	_, why := choose(t.rule, m, bigM, prev, prevM, t.tolerance(), settings{friction: s.Friction, inverseMass: s.InverseMass})
 	t.choices = t.choices[:0]
 	for _, c := range why {
-		c.Reason += " (" + source + fmt.Sprintf(": M̂ = %.4g, m̂ = %.4g)", bigM, m)
-		switch c.Setting {
-		case "friction":
-			if s.Friction > 0 {
-				c = Choice{"friction", s.Friction, "given by the client"}
-			}
-		case "inverse_mass":
-			if s.InverseMass > 0 {
-				c = Choice{"inverse_mass", s.InverseMass, "given by the client"}
-			}
+		if c.Reason != "given by the client" {
+			c.Reason += " (" + source + fmt.Sprintf(": M̂ = %.4g, m̂ = %.4g)", bigM, m)
 		}
 		t.choices = append(t.choices, c)
 	}
@@ -280,7 +270,6 @@ func (t *tuner) apply(k kernels.Kernel, s *Spec, m, bigM float64, source string)
 			}
 		}
 	}
-	_ = set
 }
 
 // tolerance is the variance tolerance of the next choice: looser while
@@ -312,14 +301,12 @@ func (t *tuner) probe(k kernels.Kernel, s *Spec, x0 []float64) Phase {
 		v0[i] = 2*float64(src.Uint64()>>11)/(1<<53) - 1
 	}
 	t.probes++
-	t.probing = true
 	name := "curvature probe"
 	if t.updates > 0 {
 		name = fmt.Sprintf("curvature probe in the metric of update %d", t.updates)
 	}
 	return newLanczosProbe(x0, t.metric, tuneProbeSteps, v0, func(m, bigM float64, evals int) {
 		t.probeEvals += int64(evals)
-		t.probing = false
 		if t.updates > 0 && t.prevMetric != nil && t.bigM > 0 && !t.better(m, bigM) {
 			// The update made the curvature worse than the metric it
 			// replaced (a window whose chains had not spread yet): keep the

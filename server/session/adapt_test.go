@@ -194,7 +194,7 @@ func TestStationaryVarianceClosedForms(t *testing.T) {
 	}
 	// The lmc rule: h = 2τ/((1 + τ)·1.1·M̂) puts the stiffest direction's
 	// variance error exactly at the tolerance.
-	set, _ := choose(ruleOverdamped, 1, 50, 0, 0, varianceTolerance)
+	set, _ := choose(ruleOverdamped, 1, 50, 0, 0, varianceTolerance, settings{})
 	if v, _ := stationaryVariance(lmcScheme(set.step), 1.1*50); math.Abs(v*1.1*50-1-varianceTolerance) > 1e-9 {
 		t.Fatalf("lmc rule: variance error %v at 1.1·M̂, want %v", v*1.1*50-1, varianceTolerance)
 	}
@@ -340,5 +340,18 @@ func TestMetricValidation(t *testing.T) {
 	}
 	if m := s.kernel.(kernels.MetricUser).Metric(); m.Kind() != kernels.DenseMetric || !slices.Equal(m.Matrix(), spec.Metric) {
 		t.Fatalf("declared metric not in use: %v", m.Matrix())
+	}
+}
+
+// A friction the client gives wins, and the automatic step is chosen for
+// it: the chosen step meets the variance tolerance with that friction
+// (the scheme's exact stationary variance, worstError).
+func TestGivenFrictionWins(t *testing.T) {
+	set, why := choose(ruleKinetic, 1, 100, 0, 0, varianceTolerance, settings{friction: 0.7})
+	if set.friction != 0.7 || why[1].Reason != "given by the client" {
+		t.Fatalf("friction %v (%q), want the client's 0.7", set.friction, why[1].Reason)
+	}
+	if e := worstError(kineticScheme(set.step, 0.7, set.inverseMass), 1, probeSafety*100); e > varianceTolerance {
+		t.Fatalf("step %v with the client's friction has variance error %v", set.step, e)
 	}
 }

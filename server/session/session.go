@@ -83,7 +83,8 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 		// Declared m and M, read in the declared metric's units, choose
 		// the first settings without a probe.
 		c := spec.Curvature
-		set, _ := choose(tn.rule, c.StrongConvexity, c.Smoothness/probeSafety, 0, 0, tn.tolerance())
+		set, _ := choose(tn.rule, c.StrongConvexity, c.Smoothness/probeSafety, 0, 0, tn.tolerance(),
+			settings{friction: spec.Friction, inverseMass: spec.InverseMass})
 		spec.Step, declared = set.step, &set
 	}
 	g, err := newGuarantee(&spec, entry)
@@ -208,7 +209,7 @@ func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) e
 func (s *Session) loop(r *run) outcome {
 	if err := r.send(&Registered{SessionID: s.id, Seed: s.spec.Seed, Kernel: s.spec.Kernel, Step: s.spec.Step,
 		EvaluationsPerStep: s.kernel.EvaluationsPerStep(), MaxMessageBytes: s.msgBytes, Names: s.spec.Names,
-		PlannedSteps: s.plannedSteps(), Metric: s.tune.report(0), Tuning: s.tune.registered(&s.spec)}); err != nil {
+		PlannedSteps: s.plannedSteps(), Metric: s.tune.report(), Tuning: s.tune.registered(&s.spec)}); err != nil {
 		return broken(err)
 	}
 	for {
@@ -927,7 +928,7 @@ func (s *Session) progress(now time.Time, final bool) Progress {
 		ph.Report(&p)
 	}
 	p.Kernel = kernelReport(s.kernel)
-	p.Metric = s.tune.report(p.Steps)
+	p.Metric = s.tune.report()
 	p.Tuning = append([]Choice(nil), s.tune.choices...)
 	p.TuningEvaluations = s.tune.probeEvals
 	if s.spec.Noise.Stochastic {

@@ -447,7 +447,10 @@ func bestFree(centre float64, family func(v float64) func(h float64) scheme, lo,
 //
 // tol is the variance tolerance: varianceTolerance for the kept draws,
 // travelTolerance while adaptation windows remain.
-func choose(rule tuneRule, m, bigM float64, prev, prevM float64, tol float64) (settings, []Choice) {
+//
+// given holds the friction and inverse mass the client set (0: free); the
+// step is then chosen for them.
+func choose(rule tuneRule, m, bigM float64, prev, prevM float64, tol float64, given settings) (settings, []Choice) {
 	hi := probeSafety * bigM
 	lo := m
 	floor := false
@@ -484,13 +487,25 @@ func choose(rule tuneRule, m, bigM float64, prev, prevM float64, tol float64) (s
 		// below ωh = 2), so that an M̂ the probe underestimates leaves a
 		// margin.
 		s.inverseMass = 1 / hi
+		uWhy := "1/(1.1·M̂): the stiffest direction oscillates at ω = 1"
+		if given.inverseMass > 0 {
+			s.inverseMass, uWhy = given.inverseMass, "given by the client"
+		}
 		crit := 2 * math.Sqrt(s.inverseMass*lo)
-		s.friction, s.step = bestFree(crit, func(g float64) func(h float64) scheme {
+		ceil := func(float64) float64 { return 1 / math.Sqrt(s.inverseMass*hi) }
+		family := func(g float64) func(h float64) scheme {
 			return func(h float64) scheme { return kineticScheme(h, g, s.inverseMass) }
-		}, lo, hi, func(g float64) float64 { return 1 }, tol, 2)
+		}
+		gWhy := fmt.Sprintf("the friction, on a grid around critical damping of the slowest direction 2√(u·m̂) = %.4g (%s), with the smallest worst-case autocorrelation time at its largest step meeting the tolerance", crit, mText)
+		if given.friction > 0 {
+			s.friction, gWhy = given.friction, "given by the client"
+			s.step = largestStep(family(s.friction), lo, hi, ceil(0), tol)
+		} else {
+			s.friction, s.step = bestFree(crit, family, lo, hi, ceil, tol, 2*math.Sqrt(s.inverseMass*hi))
+		}
 		out = append(out,
-			Choice{"inverse_mass", s.inverseMass, "1/(1.1·M̂): the stiffest direction oscillates at ω = 1"},
-			Choice{"friction", s.friction, fmt.Sprintf("the friction, on a grid around critical damping of the slowest direction 2√(u·m̂) = %.4g (%s), with the smallest worst-case autocorrelation time at its largest step meeting the tolerance", crit, mText)},
+			Choice{"inverse_mass", s.inverseMass, uWhy},
+			Choice{"friction", s.friction, gWhy},
 			Choice{"step", s.step, "largest step with the " + tolText})
 	case ruleMidpoint:
 		// The friction is 2, so the inverse mass sets both the time unit
@@ -499,11 +514,19 @@ func choose(rule tuneRule, m, bigM float64, prev, prevM float64, tol float64) (s
 		// worst-case autocorrelation time at its largest step.
 		s.friction = 2
 		crit := 1 / lo
-		s.inverseMass, s.step = bestFree(crit, func(u float64) func(h float64) scheme {
+		family := func(u float64) func(h float64) scheme {
 			return func(h float64) scheme { return midpointScheme(h, u) }
-		}, lo, hi, func(u float64) float64 { return 1 / math.Sqrt(u*hi) }, tol, math.Inf(1))
+		}
+		ceil := func(u float64) float64 { return 1 / math.Sqrt(u*hi) }
+		uWhy := fmt.Sprintf("on a grid around 1/m̂ = %.4g (with the kernel's friction 2, critical damping of the slowest direction; %s), the value with the smallest worst-case autocorrelation time at its largest step meeting the tolerance", crit, mText)
+		if given.inverseMass > 0 {
+			s.inverseMass, uWhy = given.inverseMass, "given by the client"
+			s.step = largestStep(family(s.inverseMass), lo, hi, ceil(s.inverseMass), tol)
+		} else {
+			s.inverseMass, s.step = bestFree(crit, family, lo, hi, ceil, tol, math.Inf(1))
+		}
 		out = append(out,
-			Choice{"inverse_mass", s.inverseMass, fmt.Sprintf("on a grid around 1/m̂ = %.4g (with the kernel's friction 2, critical damping of the slowest direction; %s), the value with the smallest worst-case autocorrelation time at its largest step meeting the tolerance", crit, mText)},
+			Choice{"inverse_mass", s.inverseMass, uWhy},
 			Choice{"step", s.step, "largest step with the mean-square " + tolText})
 	case ruleMALA:
 		s.step = 1 / hi
