@@ -416,18 +416,15 @@ func worstTau(sc scheme, lo, hi float64) float64 {
 	return worst
 }
 
-// bestFree searches a kernel's one free parameter on the grid
-// centre·2^(k/2), k = −8…8 (up to most): for each value the largest step meeting the
+// bestFree searches a kernel's one free parameter on 17 values
+// log-spaced over [from, to]: for each value the largest step meeting the
 // variance tolerance, scored by the worst-case autocorrelation time over
 // [lo, hi]; it returns the best value and its step.
-func bestFree(centre float64, family func(v float64) func(h float64) scheme, lo, hi float64, ceiling func(v float64) float64, tol, most float64) (best, step float64) {
+func bestFree(from, to float64, family func(v float64) func(h float64) scheme, lo, hi float64, ceiling func(v float64) float64, tol float64) (best, step float64) {
 	bestTau := math.Inf(1)
-	best, step = centre, 0
-	for k := -8; k <= 8; k++ {
-		v := centre * math.Pow(2, float64(k)/2)
-		if v > most {
-			break
-		}
+	best, step = from, 0
+	for k := range 17 {
+		v := from * math.Pow(to/from, float64(k)/16)
 		mk := family(v)
 		h := largestStep(mk, lo, hi, ceiling(v), tol)
 		if tau := worstTau(mk(h), lo, hi); tau < bestTau {
@@ -435,7 +432,7 @@ func bestFree(centre float64, family func(v float64) func(h float64) scheme, lo,
 		}
 	}
 	if step == 0 {
-		step = largestStep(family(centre), lo, hi, ceiling(centre), tol)
+		step = largestStep(family(from), lo, hi, ceiling(from), tol)
 	}
 	return best, step
 }
@@ -476,11 +473,10 @@ func choose(rule tuneRule, m, bigM float64, prev, prevM float64, tol float64, gi
 		// u fixes the time unit (the kinetic diffusion with (γ, u, h) is
 		// the one with (γs, us², h/s) run s times slower, derived here by
 		// rescaling time), so only γ and h are free: γ is the value on a
-		// grid around critical damping of the slowest direction that gives
-		// the smallest worst-case autocorrelation time at its largest
-		// step meeting the tolerance.
-		// The grid stops at critical damping of the stiffest direction
-		// (γ = 2√(u·1.1M̂) = 2): beyond it every direction is overdamped and
+		// grid from critical damping of the slowest direction to that of
+		// the stiffest (γ = 2√(u·1.1M̂) = 2) that gives the smallest
+		// worst-case autocorrelation time at its largest step meeting the
+		// tolerance. Beyond the stiffest's every direction is overdamped and
 		// the kernel only imitates lmc. The step is capped at ω_max·h = 1,
 		// half the stable range of the undamped frozen-gradient step
 		// (derived here: as γ → 0 its trace is 2 − (ωh)², stable only
@@ -496,12 +492,12 @@ func choose(rule tuneRule, m, bigM float64, prev, prevM float64, tol float64, gi
 		family := func(g float64) func(h float64) scheme {
 			return func(h float64) scheme { return kineticScheme(h, g, s.inverseMass) }
 		}
-		gWhy := fmt.Sprintf("the friction, on a grid around critical damping of the slowest direction 2√(u·m̂) = %.4g (%s), with the smallest worst-case autocorrelation time at its largest step meeting the tolerance", crit, mText)
+		gWhy := fmt.Sprintf("the friction, on a grid from critical damping of the slowest direction 2√(u·m̂) = %.4g (%s) to that of the stiffest, 2√(u·1.1M̂), with the smallest worst-case autocorrelation time at its largest step meeting the tolerance", crit, mText)
 		if given.friction > 0 {
 			s.friction, gWhy = given.friction, "given by the client"
 			s.step = largestStep(family(s.friction), lo, hi, ceil(0), tol)
 		} else {
-			s.friction, s.step = bestFree(crit, family, lo, hi, ceil, tol, 2*math.Sqrt(s.inverseMass*hi))
+			s.friction, s.step = bestFree(crit, 2*math.Sqrt(s.inverseMass*hi), family, lo, hi, ceil, tol)
 		}
 		out = append(out,
 			Choice{"inverse_mass", s.inverseMass, uWhy},
@@ -509,21 +505,22 @@ func choose(rule tuneRule, m, bigM float64, prev, prevM float64, tol float64, gi
 			Choice{"step", s.step, "largest step with the " + tolText})
 	case ruleMidpoint:
 		// The friction is 2, so the inverse mass sets both the time unit
-		// and the damping: u is the value on a grid around critical
-		// damping of the slowest direction (u = 1/m̂) with the smallest
-		// worst-case autocorrelation time at its largest step.
+		// and the damping: u is the value on a grid from critical damping
+		// of the stiffest direction (u = 1/(1.1·M̂)) to that of the slowest
+		// (u = 1/m̂) with the smallest worst-case autocorrelation time at
+		// its largest step (capped at ω_max·h = 1).
 		s.friction = 2
 		crit := 1 / lo
 		family := func(u float64) func(h float64) scheme {
 			return func(h float64) scheme { return midpointScheme(h, u) }
 		}
 		ceil := func(u float64) float64 { return 1 / math.Sqrt(u*hi) }
-		uWhy := fmt.Sprintf("on a grid around 1/m̂ = %.4g (with the kernel's friction 2, critical damping of the slowest direction; %s), the value with the smallest worst-case autocorrelation time at its largest step meeting the tolerance", crit, mText)
+		uWhy := fmt.Sprintf("on a grid from 1/(1.1·M̂) to 1/m̂ = %.4g (with the kernel's friction 2, critical damping of the stiffest and of the slowest direction; %s), the value with the smallest worst-case autocorrelation time at its largest step meeting the tolerance", crit, mText)
 		if given.inverseMass > 0 {
 			s.inverseMass, uWhy = given.inverseMass, "given by the client"
 			s.step = largestStep(family(s.inverseMass), lo, hi, ceil(s.inverseMass), tol)
 		} else {
-			s.inverseMass, s.step = bestFree(crit, family, lo, hi, ceil, tol, math.Inf(1))
+			s.inverseMass, s.step = bestFree(1/hi, crit, family, lo, hi, ceil, tol)
 		}
 		out = append(out,
 			Choice{"inverse_mass", s.inverseMass, uWhy},
