@@ -159,6 +159,17 @@ func (k *Midpoint) SetStep(h float64) {
 // InverseMass returns u.
 func (k *Midpoint) InverseMass() float64 { return k.u }
 
+// SetInverseMass changes the scalar inverse mass u from the next step (a
+// step whose midpoints are already out finishes with the coefficients its
+// first request fixed; with a metric C the inverse mass is u·C). It panics
+// on a non-positive or non-finite u.
+func (k *Midpoint) SetInverseMass(u float64) {
+	if !positive(u) {
+		panic(fmt.Sprintf("kernels: Midpoint inverse mass %v", u))
+	}
+	k.u = u
+}
+
 // EvaluationsPerStep implements Kernel: two gradients per chain.
 func (k *Midpoint) EvaluationsPerStep() int { return 2 * k.chains }
 

@@ -93,6 +93,19 @@ func TestSetStepEqualsConstruction(t *testing.T) {
 	}
 }
 
+// Midpoint's SetInverseMass equals construction with that inverse mass,
+// bit for bit.
+func TestMidpointSetInverseMass(t *testing.T) {
+	start := []float64{0.3, -0.2, 0.5}
+	want := NewMidpoint(3, 2, 0.2, 0.4, start, nil, NewSource(6))
+	got := NewMidpoint(3, 2, 0.2, 1, start, nil, NewSource(6))
+	got.SetInverseMass(0.4)
+	eval := gaussEval(3)
+	if !equalDraws(driveKernel(want, eval, 0, 30), driveKernel(got, eval, 0, 30)) {
+		t.Fatal("SetInverseMass(0.4) differs from construction with u = 0.4")
+	}
+}
+
 // TestSetStepMidStep checks that the two-request kernels finish a step
 // whose midpoints are out with the step it began with: SetStep between
 // the two requests equals SetStep right after the step completes.

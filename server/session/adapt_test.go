@@ -355,3 +355,34 @@ func TestGivenFrictionWins(t *testing.T) {
 		t.Fatalf("step %v with the client's friction has variance error %v", set.step, e)
 	}
 }
+
+// Every setting a rule chooses reaches the kernel: after the automatic
+// tuning, the kernel's own step (and inverse mass, friction) equal the
+// reported choices.
+func TestChoicesReachTheKernel(t *testing.T) {
+	g, _ := correlated3(t)
+	for _, k := range []string{"lmc", "kinetic", "midpoint", "midpoint-overdamped", "sgld", "sgld-cv", "svrg"} {
+		spec := Spec{Dim: 3, Chains: 2, Kernel: k, Start: []float64{0.5, -5, 0.05}, StartRows: 1, Seed: 34, BurnIn: 20, DrawsPerChain: 5}
+		r := runTarget(t, spec, g, false, nil)
+		if r.err != nil {
+			t.Fatalf("%s: %v", k, r.err)
+		}
+		for _, c := range r.finished.Progress.Tuning {
+			var have float64
+			switch c.Setting {
+			case "step":
+				have = stepOf(r.res.Kernel)
+			case "friction":
+				have = r.res.Kernel.(interface{ Friction() float64 }).Friction()
+			case "inverse_mass":
+				have = r.res.Kernel.(interface{ InverseMass() float64 }).InverseMass()
+			}
+			if k == "midpoint" && c.Setting == "friction" {
+				have = 2 // the kernel's fixed friction
+			}
+			if have != c.Value {
+				t.Fatalf("%s: %s chosen %v, the kernel has %v", k, c.Setting, c.Value, have)
+			}
+		}
+	}
+}

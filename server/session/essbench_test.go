@@ -152,7 +152,7 @@ func condition(a *mat.SymDense) float64 {
 // logisticData is the invented data set of testdata/README.md: n = 300
 // rows of p = 30 features in three groups of ten, each feature its
 // group's latent factor plus independent noise of standard deviation
-// 0.05 (correlations near 0.998 within a group), labels drawn from a
+// 0.03 (correlations near 0.999 within a group), labels drawn from a
 // logistic model with coefficients 0.3·(−1)^j, all from the stream of
 // kernels.NewSource(20261202).
 func logisticData() (*mat.Dense, []float64) {
@@ -169,7 +169,7 @@ func logisticData() (*mat.Dense, []float64) {
 		f := [3]float64{normal(), normal(), normal()}
 		var eta float64
 		for j := range p {
-			v := f[j/10] + 0.05*normal()
+			v := f[j/10] + 0.03*normal()
 			x.Set(i, j, v)
 			eta += 0.3 * float64(1-2*(j%2)) * v
 		}
