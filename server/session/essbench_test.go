@@ -182,11 +182,11 @@ func logisticData() (*mat.Dense, []float64) {
 }
 
 // logisticBench is the Bayesian logistic regression on logisticData with
-// prior N(0, I); its reference mean comes from a long MALA run with the
+// prior N(0, 2I) (precision 0.5); its reference mean comes from a long MALA run with the
 // adapted metric (refRun).
 func logisticBench(tb testing.TB) benchTarget {
 	x, y := logisticData()
-	l, err := targets.NewLogistic(x, y, 1)
+	l, err := targets.NewLogistic(x, y, 0.5)
 	if err != nil {
 		tb.Fatal(err)
 	}
