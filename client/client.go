@@ -21,7 +21,10 @@ type Spec struct {
 	Kernel string
 	// Start holds Dim values (every chain starts there) or Chains×Dim.
 	Start []float64
-	// Step is the step size h > 0.
+	// Step is the step size h > 0 (in the metric's units with a metric);
+	// 0 means automatic for the Langevin kernels: the server chooses it
+	// (and friction and inverse mass left at 0) and adapts a metric
+	// during burn-in, reporting its choices in Progress.Tuning.
 	Step                             float64
 	BurnIn, KeepEvery, DrawsPerChain int64
 	MaxEvaluations                   int64
@@ -71,6 +74,68 @@ type Spec struct {
 	// attached with Work evaluate every row (the eval passed to Run is
 	// then never called and may be nil).
 	WorkersOnly bool
+	// Preconditioner is a declared metric C: Dim values (a diagonal) or
+	// Dim×Dim (dense, row-major), for example an inverse Hessian at a
+	// known mode; nil: none declared.
+	Preconditioner []float64
+	// MetricForm says what the server does about the metric ("": the
+	// declared one, else adapted during burn-in when Step is 0).
+	MetricForm MetricForm
+}
+
+// MetricForm is what the server does about the metric.
+type MetricForm string
+
+const (
+	// MetricAuto: the declared Preconditioner, else one adapted during
+	// burn-in when the step is automatic, else none.
+	MetricAuto MetricForm = ""
+	// MetricIdentity: no metric, no adaptation.
+	MetricIdentity MetricForm = "identity"
+	// MetricDiagonal: the declared diagonal, else an adapted one.
+	MetricDiagonal MetricForm = "diagonal"
+	// MetricDense: the declared dense metric, else an adapted one.
+	MetricDense MetricForm = "dense"
+)
+
+var metricFormToWire = map[MetricForm]sluicev1.MetricForm{
+	MetricAuto: sluicev1.MetricForm_METRIC_FORM_UNSPECIFIED, MetricIdentity: sluicev1.MetricForm_METRIC_FORM_IDENTITY,
+	MetricDiagonal: sluicev1.MetricForm_METRIC_FORM_DIAGONAL, MetricDense: sluicev1.MetricForm_METRIC_FORM_DENSE,
+}
+
+// MetricReport says which metric the kernel uses: its Kind ("identity",
+// "diagonal", "dense") and Source ("none", "declared", "adapted"),
+// whether adaptation windows remain, the condition number of C, the step
+// of the last update (−1: never), the updates so far, the last
+// Ledoit–Wolf shrinkage and the steps at which the windows end.
+type MetricReport struct {
+	Kind, Source  string
+	Adapting      bool
+	Condition     float64
+	UpdatedAtStep int64
+	Updates       int
+	Shrinkage     float64
+	WindowEnds    []int64
+}
+
+// TuningChoice is one setting the server chose (or kept), with its reason.
+type TuningChoice struct {
+	Setting string
+	Value   float64
+	Reason  string
+}
+
+func metricReportFromWire(m *sluicev1.MetricReport) MetricReport {
+	return MetricReport{Kind: m.GetKind(), Source: m.GetSource(), Adapting: m.GetAdapting(), Condition: m.GetCondition(),
+		UpdatedAtStep: m.GetUpdatedAtStep(), Updates: int(m.GetUpdates()), Shrinkage: m.GetShrinkage(), WindowEnds: m.GetWindowEnds()}
+}
+
+func tuningFromWire(cs []*sluicev1.TuningChoice) []TuningChoice {
+	var out []TuningChoice
+	for _, c := range cs {
+		out = append(out, TuningChoice{Setting: c.GetSetting(), Value: c.GetValue(), Reason: c.GetReason()})
+	}
+	return out
 }
 
 // Envelope is rejection's Gaussian envelope and declared bound.
@@ -177,6 +242,10 @@ type Registered struct {
 	// Resumed is set when the latest stream continued the session from a
 	// checkpoint.
 	Resumed bool
+	// Metric is the metric at registration and the adaptation schedule;
+	// Tuning lists the automatic settings to come (Step 0).
+	Metric MetricReport
+	Tuning []TuningChoice
 }
 
 // Draws is a block of draws numbered Seq, Seq+1, ..., Seq+Rows−1. It is
@@ -233,6 +302,12 @@ type Progress struct {
 	// AnswersLate the answers dropped because another came first.
 	Workers                   []WorkerReport
 	RowsReissued, AnswersLate int64
+	// Metric is the metric in use; Tuning the settings the server chose
+	// (Step 0) with their reasons; TuningEvaluations what its curvature
+	// probes cost (counted in EvaluationsUsed).
+	Metric            MetricReport
+	Tuning            []TuningChoice
+	TuningEvaluations int64
 }
 
 // WorkerReport is one evaluator of a session: its name, whether it is the
@@ -245,6 +320,12 @@ type WorkerReport struct {
 	Rows          int64
 	RowsReissued  int64
 	AnswersLate   int64
+	// Metric is the metric in use; Tuning the settings the server chose
+	// (Step 0) with their reasons; TuningEvaluations what its curvature
+	// probes cost (counted in EvaluationsUsed).
+	Metric            MetricReport
+	Tuning            []TuningChoice
+	TuningEvaluations int64
 }
 
 // NoiseEstimate: measured variance of one replicate's error per
@@ -498,6 +579,7 @@ func registerFrame(spec Spec, limit int64) *sluicev1.SessionRequest {
 		SliceWidth:               spec.SliceWidth, SliceMaxExpansions: int32(spec.SliceMaxExpansions), Envelope: envelopeToWire(spec.Envelope),
 		CheckpointEverySteps: spec.CheckpointEverySteps,
 		OwnerEvaluates:       ownerEvaluates(spec),
+		Metric:               putFloats(nil, spec.Preconditioner), MetricForm: metricFormToWire[spec.MetricForm],
 	}}}
 }
 
@@ -592,7 +674,8 @@ func (r *runner) loop(ctx context.Context) (*Summary, error) {
 			first := r.sum.Registered.SessionID == ""
 			r.sum.Registered = Registered{SessionID: g.GetSessionId(), Seed: g.GetSeed(), Kernel: g.GetKernel(), Step: g.GetStep(),
 				EvaluationsPerStep: g.GetEvaluationsPerStep(), MaxMessageBytes: g.GetMaxMessageBytes(), Names: g.GetNames(),
-				PlannedSteps: g.GetPlannedSteps(), Token: g.GetResumeToken(), Resumed: g.GetResumed()}
+				PlannedSteps: g.GetPlannedSteps(), Token: g.GetResumeToken(), Resumed: g.GetResumed(),
+				Metric: metricReportFromWire(g.GetMetric()), Tuning: tuningFromWire(g.GetTuning())}
 			r.registered = true
 			if !first {
 				r.sum.Resumes++
@@ -864,6 +947,7 @@ func progressFromWire(p *sluicev1.Progress) Progress {
 		out.Workers = append(out.Workers, WorkerReport{Name: w.GetName(), Owner: w.GetOwner(), RowsPerSecond: w.GetRowsPerSecond(),
 			Rows: w.GetRows(), RowsReissued: w.GetRowsReissued(), AnswersLate: w.GetAnswersLate()})
 	}
+	out.Metric, out.Tuning, out.TuningEvaluations = metricReportFromWire(p.GetMetric()), tuningFromWire(p.GetTuning()), p.GetTuningEvaluations()
 	for _, t := range p.GetTargets() {
 		out.Targets = append(out.Targets, TargetStatus{Name: t.GetName(), Want: t.GetWant(), Current: t.GetCurrent(), Met: t.GetMet(),
 			ProjectedEvaluations: t.GetProjectedEvaluations()})

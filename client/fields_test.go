@@ -213,7 +213,7 @@ func fill(v reflect.Value, n int) {
 func fullSpec() Spec {
 	var s Spec
 	fill(reflect.ValueOf(&s).Elem(), 2)
-	s.Dim, s.Chains, s.Wants.Metric = 2, 3, TV
+	s.Dim, s.Chains, s.Wants.Metric, s.MetricForm = 2, 3, TV, MetricDense
 	return s
 }
 

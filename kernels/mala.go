@@ -64,6 +64,7 @@ type MALA struct {
 	pending     *Metric // set by SetMetric, used from the next proposal
 	pendingSet  bool
 	tmp         []float64 // 2·dim scratch for a metric
+	pendingH    float64   // set by SetStep once proposals are out; 0: none
 }
 
 var (
@@ -155,7 +156,29 @@ func (k *MALA) Chains() int { return k.chains }
 func (k *MALA) Steps() int { return k.steps }
 
 // Step returns the current step size h (frozen once Adapting is false).
-func (k *MALA) Step() float64 { return k.h }
+func (k *MALA) Step() float64 {
+	if k.pendingH > 0 {
+		return k.pendingH
+	}
+	return k.h
+}
+
+// SetStep sets the step size of the next proposal. Before the start is
+// evaluated it applies at once; after, the proposals already out keep
+// the old step (and so does the density ratio that accepts them), and
+// the new one replaces whatever the acceptance-rate adaptation makes of
+// it at the next proposal, from which the adaptation goes on. It panics
+// on a non-positive or non-finite h.
+func (k *MALA) SetStep(h float64) {
+	if !positive(h) {
+		panic(fmt.Sprintf("kernels: MALA step %v", h))
+	}
+	if !k.ready {
+		k.h = h
+		return
+	}
+	k.pendingH = h
+}
 
 // Scores implements Scorer: ∇log π at the current positions, kept from
 // the accepted points.
@@ -251,6 +274,9 @@ func (k *MALA) propose() {
 	if k.pendingSet {
 		k.metric, k.pending, k.pendingSet = k.pending, nil, false
 	}
+	if k.pendingH > 0 {
+		k.h, k.pendingH = k.pendingH, 0
+	}
 	s := math.Sqrt(2 * k.h)
 	if k.metric == nil {
 		for i := range k.y {
@@ -331,6 +357,9 @@ func (k *MALA) MarshalBinary() ([]byte, error) {
 	writeMetric(w, "metric", k.metric)
 	w.flag("pending", k.pendingSet)
 	writeMetric(w, "pendingmetric", k.pending)
+	if k.pendingH > 0 {
+		w.floats("pendingh", k.pendingH)
+	}
 	w.stream("rng", k.src)
 	return w.bytes()
 }
@@ -367,6 +396,12 @@ func (k *MALA) UnmarshalBinary(b []byte) error {
 	n.metric = readMetric(r, "metric", n.dim)
 	n.pendingSet = r.flag("pending")
 	n.pending = readMetric(r, "pendingmetric", n.dim)
+	if r.has("pendingh") {
+		n.pendingH = r.float("pendingh")
+		if !positive(n.pendingH) {
+			r.fail("pending step %v", n.pendingH)
+		}
+	}
 	if n.metric != nil || n.pending != nil {
 		n.tmp = make([]float64, 2*n.dim)
 	}

@@ -221,6 +221,26 @@ func (m *Metric) ApplyFactor(dst, xi []float64) {
 	}
 }
 
+// ApplyFactorT sets dst = Lᵀ·v: a score ∇log π(x) mapped to the
+// coordinates y = L⁻¹x, where it is Lᵀ∇log π(Ly). dst may be v. It
+// allocates nothing.
+func (m *Metric) ApplyFactorT(dst, v []float64) {
+	m.check(dst, v)
+	switch m.kind {
+	case IdentityMetric:
+		copy(dst, v)
+	case DiagonalMetric:
+		for i, l := range m.l {
+			dst[i] = l * v[i]
+		}
+	default:
+		copy(dst, v)
+		p := m.dim
+		blas64.Trmv(blas.Trans, blas64.Triangular{N: p, Stride: p, Data: m.l, Uplo: blas.Lower, Diag: blas.NonUnit},
+			blas64.Vector{N: p, Inc: 1, Data: dst})
+	}
+}
+
 // SolveFactor sets dst = L⁻¹·v (so ‖L⁻¹v‖² = vᵀC⁻¹v). dst may be v. It
 // allocates nothing.
 func (m *Metric) SolveFactor(dst, v []float64) {

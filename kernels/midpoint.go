@@ -144,8 +144,31 @@ func (k *Midpoint) Steps() int { return k.steps }
 // Step returns the step size h.
 func (k *Midpoint) Step() float64 { return k.h }
 
+// SetStep changes the step size h from the next step: a step whose
+// midpoints are already out finishes with the coefficients its first
+// request fixed. It panics on a non-positive or non-finite h.
+func (k *Midpoint) SetStep(h float64) {
+	if !positive(h) {
+		panic(fmt.Sprintf("kernels: Midpoint step %v", h))
+	}
+	k.h = h
+	k.e = math.Exp(-2 * k.h)
+	k.b = -math.Expm1(-2*k.h) / 2
+}
+
 // InverseMass returns u.
 func (k *Midpoint) InverseMass() float64 { return k.u }
+
+// SetInverseMass changes the scalar inverse mass u from the next step (a
+// step whose midpoints are already out finishes with the coefficients its
+// first request fixed; with a metric C the inverse mass is u·C). It panics
+// on a non-positive or non-finite u.
+func (k *Midpoint) SetInverseMass(u float64) {
+	if !positive(u) {
+		panic(fmt.Sprintf("kernels: Midpoint inverse mass %v", u))
+	}
+	k.u = u
+}
 
 // EvaluationsPerStep implements Kernel: two gradients per chain.
 func (k *Midpoint) EvaluationsPerStep() int { return 2 * k.chains }
@@ -359,6 +382,7 @@ func (k *Midpoint) UnmarshalBinary(b []byte) error {
 type OverdampedMidpoint struct {
 	dim, chains  int
 	h            float64
+	hmid         float64 // the step of the step in progress (set by its first Tell)
 	steps        int
 	mid          bool      // the step's first Tell is done; the midpoints are requested
 	x            []float64 // chains×dim positions at the last completed step
@@ -441,6 +465,16 @@ func (k *OverdampedMidpoint) Steps() int { return k.steps }
 // Step returns the step size h.
 func (k *OverdampedMidpoint) Step() float64 { return k.h }
 
+// SetStep changes the step size h from the next step: a step whose
+// midpoints are already out finishes with the step it started with. It
+// panics on a non-positive or non-finite h.
+func (k *OverdampedMidpoint) SetStep(h float64) {
+	if !positive(h) {
+		panic(fmt.Sprintf("kernels: OverdampedMidpoint step %v", h))
+	}
+	k.h = h
+}
+
 // EvaluationsPerStep implements Kernel: two gradients per chain.
 func (k *OverdampedMidpoint) EvaluationsPerStep() int { return 2 * k.chains }
 
@@ -465,8 +499,8 @@ func (k *OverdampedMidpoint) Tell(a *Answer) bool {
 		panic(fmt.Sprintf("kernels: OverdampedMidpoint answer has %d gradient values, want %d", len(a.Grad), n))
 	}
 	g := a.Grad[:n]
-	h := k.h
 	if k.mid {
+		h := k.hmid
 		xn := k.xnext[:n]
 		if m := k.pc.metric; m != nil {
 			p := k.dim
@@ -492,6 +526,8 @@ func (k *OverdampedMidpoint) Tell(a *Answer) bool {
 		}
 		return true
 	}
+	h := k.h
+	k.hmid = h
 	y, xn := k.y[:n], k.xnext[:n]
 	if m := k.pc.metric; m != nil {
 		p := k.dim
@@ -548,6 +584,9 @@ func (k *OverdampedMidpoint) MarshalBinary() ([]byte, error) {
 	if k.mid {
 		w.floats("y", k.y...)
 		w.floats("xnext", k.xnext...)
+		if k.hmid != k.h {
+			w.floats("hmid", k.hmid)
+		}
 	}
 	writeMetric(w, "metric", k.pc.metric)
 	w.flag("pending", k.pendingSet)
@@ -570,12 +609,16 @@ func (k *OverdampedMidpoint) UnmarshalBinary(b []byte) error {
 	m.x = r.floats("x", n)
 	if m.mid {
 		m.y, m.xnext = r.floats("y", n), r.floats("xnext", n)
+		m.hmid = m.h
+		if r.has("hmid") {
+			m.hmid = r.float("hmid")
+		}
 	}
 	metric := readMetric(r, "metric", dim)
 	m.pendingSet = r.flag("pending")
 	m.pending = readMetric(r, "pendingmetric", dim)
 	m.src = r.stream("rng")
-	if err := r.check(m.steps >= 0 && positive(m.h) && (m.mid || !m.pendingSet), "step, step count or phase"); err != nil {
+	if err := r.check(m.steps >= 0 && positive(m.h) && (!m.mid || positive(m.hmid)) && (m.mid || !m.pendingSet), "step, step count or phase"); err != nil {
 		return err
 	}
 	m.pc.set("OverdampedMidpoint", metric, dim, 3*dim)

@@ -99,6 +99,17 @@ func (k *SGLD) Steps() int { return k.steps }
 // ε_t/2 of the schedule at t = Steps().
 func (k *SGLD) Step() float64 { return sgldStepAt(k.h, k.sched, k.steps) }
 
+// SetStep changes the constant step size from the next Tell (noise drawn
+// ahead by Prepare is standard normal and stays valid). It panics on a
+// non-positive or non-finite h, or on a kernel whose step follows a
+// schedule.
+func (k *SGLD) SetStep(h float64) {
+	if !positive(h) || !k.sched.IsZero() {
+		panic(fmt.Sprintf("kernels: SGLD step %v (schedule %+v)", h, k.sched))
+	}
+	k.h = h
+}
+
 // Schedule returns the step schedule (the zero value for a constant step).
 func (k *SGLD) Schedule() SGLDSchedule { return k.sched }
 

@@ -167,6 +167,16 @@ func (k *SGLDCV) Steps() int { return k.steps }
 // Step returns the step size h.
 func (k *SGLDCV) Step() float64 { return k.h }
 
+// SetStep changes the step size from the next Tell (and the first trial
+// step of a fixed-point search not yet begun). It panics on a non-positive
+// or non-finite h.
+func (k *SGLDCV) SetStep(h float64) {
+	if !positive(h) {
+		panic(fmt.Sprintf("kernels: SGLDCV step %v", h))
+	}
+	k.h = h
+}
+
 // Options returns the search settings in use (defaults filled in).
 func (k *SGLDCV) Options() SGLDCVOptions { return SGLDCVOptions{Tol: k.tol, MaxIter: k.maxIter} }
 

@@ -104,6 +104,15 @@ func (k *SVRG) Steps() int { return k.steps }
 // Step returns the step size h.
 func (k *SVRG) Step() float64 { return k.h }
 
+// SetStep changes the step size from the next Tell. It panics on a
+// non-positive or non-finite h.
+func (k *SVRG) SetStep(h float64) {
+	if !positive(h) {
+		panic(fmt.Sprintf("kernels: SVRG step %v", h))
+	}
+	k.h = h
+}
+
 // AnchorEvery returns τ, the steps between anchor refreshes.
 func (k *SVRG) AnchorEvery() int { return k.every }
 

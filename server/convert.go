@@ -34,6 +34,10 @@ func specFromWire(r *sluicev1.Register) (session.Spec, error) {
 	w := r.GetWants()
 	wants := session.Wants{MinBulkESS: w.GetMinBulkEss(), MinTailESS: w.GetMinTailEss(), MaxRhat: w.GetMaxRhat(),
 		MaxKSD: w.GetMaxKsd(), Eps: w.GetEps(), Metric: metricFromWire[w.GetMetric()]}
+	metric, err := floats("register.metric", r.GetMetric())
+	if err != nil {
+		return session.Spec{}, err
+	}
 	var env *session.Envelope
 	if e := r.GetEnvelope(); e != nil {
 		mean, err := floats("register.envelope.mean", e.GetMean())
@@ -78,6 +82,8 @@ func specFromWire(r *sluicev1.Register) (session.Spec, error) {
 		Seed:             r.GetSeed(),
 		Names:            r.GetNames(),
 		MaxMessageBytes:  r.GetMaxMessageBytes(),
+		Metric:           metric,
+		MetricForm:       session.MetricForm(r.GetMetricForm()),
 	}, nil
 }
 
@@ -173,7 +179,8 @@ func (e *encoder) frame(f session.Frame) *sluicev1.SessionResponse {
 		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Registered{Registered: &sluicev1.Registered{
 			SessionId: f.SessionID, Seed: f.Seed, Kernel: f.Kernel, Step: f.Step,
 			EvaluationsPerStep: int64(f.EvaluationsPerStep), MaxMessageBytes: f.MaxMessageBytes, Names: f.Names,
-			PlannedSteps: int64(f.PlannedSteps), ResumeToken: f.Token, Resumed: f.Resumed}}}
+			PlannedSteps: int64(f.PlannedSteps), ResumeToken: f.Token, Resumed: f.Resumed,
+			Metric: metricReportToWire(f.Metric), Tuning: tuningToWire(f.Tuning)}}}
 	case *session.Points:
 		var q []sluicev1.Quantity
 		if f.Need.Has(kernels.NeedGradient) {
@@ -287,5 +294,19 @@ func progressToWire(p *session.Progress) *sluicev1.Progress {
 			ProjectedEvaluations: t.ProjectedEvaluations})
 	}
 	poolToWire(w, &p.Pool)
+	w.Metric, w.Tuning, w.TuningEvaluations = metricReportToWire(p.Metric), tuningToWire(p.Tuning), p.TuningEvaluations
 	return w
+}
+
+func metricReportToWire(m session.MetricReport) *sluicev1.MetricReport {
+	return &sluicev1.MetricReport{Kind: m.Kind, Source: m.Source, Adapting: m.Adapting, Condition: m.Condition,
+		UpdatedAtStep: m.UpdatedAtStep, Updates: int32(m.Updates), Shrinkage: m.Shrinkage, WindowEnds: m.WindowEnds}
+}
+
+func tuningToWire(cs []session.Choice) []*sluicev1.TuningChoice {
+	out := make([]*sluicev1.TuningChoice, len(cs))
+	for i, c := range cs {
+		out[i] = &sluicev1.TuningChoice{Setting: c.Setting, Value: c.Value, Reason: c.Reason}
+	}
+	return out
 }

@@ -59,7 +59,7 @@ func demo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	var c demoConfig
 	fs.IntVar(&c.chains, "chains", 8, "number of chains")
 	fs.StringVar(&c.kernel, "kernel", "lmc", "sampling kernel")
-	fs.Float64Var(&c.step, "step", 0, "step size h (0: a tenth of 1/M, M the target's smoothness; 0.25 for kinetic and midpoint)")
+	fs.Float64Var(&c.step, "step", 0, "step size h (0: automatic, with a metric adapted during burn-in; with --minibatch, a tenth of 1/M)")
 	fs.Int64Var(&c.burnIn, "burn-in", 1000, "steps per chain discarded before keeping draws")
 	fs.Int64Var(&c.keepEvery, "keep-every", 10, "keep every k-th step after burn-in (thinning)")
 	fs.Int64Var(&c.draws, "draws", 1000, "kept draws per chain (0: until a budget runs out)")
@@ -246,11 +246,21 @@ type drawsFile struct {
 	Summary string `json:"summary"`
 }
 
+// demoChoice is one setting the server chose automatically.
+type demoChoice struct {
+	Setting string  `json:"setting"`
+	Value   float64 `json:"value"`
+	Reason  string  `json:"reason"`
+}
+
 type demoResult struct {
 	Scenario       string          `json:"scenario"`
 	SessionID      string          `json:"session_id"`
 	Kernel         string          `json:"kernel"`
 	Step           float64         `json:"step"`
+	Metric         string          `json:"metric"`
+	Tuning         []demoChoice    `json:"tuning,omitempty"`
+	TuningEvals    int64           `json:"tuning_evaluations"`
 	Chains         int             `json:"chains"`
 	Seed           uint64          `json:"seed"`
 	Reason         string          `json:"reason"`
@@ -270,7 +280,9 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 	if err != nil {
 		return nil, err
 	}
-	if c.step == 0 {
+	if c.step == 0 && (c.minibatch > 0 || strings.HasPrefix(c.kernel, "ozaki")) {
+		// Automatic tuning probes the curvature with exact gradients, and
+		// the Ozaki kernels have none: those get a fixed step.
 		_, bigM := target.Curvature()
 		switch c.kernel {
 		case "kinetic", "midpoint":
@@ -410,6 +422,19 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 		SessionID: sum.Registered.SessionID, Kernel: sum.Registered.Kernel, Step: sum.Registered.Step,
 		Chains: c.chains, Seed: sum.Registered.Seed, Reason: string(sum.Reason),
 		Evaluations: sum.Progress.EvaluationsUsed, Seconds: sum.Progress.Elapsed.Seconds(),
+		TuningEvals: sum.Progress.TuningEvaluations,
+	}
+	if k := sum.Progress.Kernel.Step; k > 0 {
+		res.Step = k // the step in use (the automatic one when Registered said 0)
+	}
+	mr := sum.Progress.Metric
+	res.Metric = mr.Kind
+	if mr.Source == "adapted" {
+		res.Metric = fmt.Sprintf("%s, adapted during burn-in (%d updates, last at step %d, condition number %.3g, shrinkage %.2f)",
+			mr.Kind, mr.Updates, mr.UpdatedAtStep, mr.Condition, mr.Shrinkage)
+	}
+	for _, t := range sum.Progress.Tuning {
+		res.Tuning = append(res.Tuning, demoChoice{t.Setting, t.Value, t.Reason})
 	}
 	n := len(chains[0][0])
 	for _, ch := range chains[0] {
@@ -527,7 +552,13 @@ func quantileSorted(x []float64, q float64) float64 {
 
 func printDemo(w io.Writer, r *demoResult) {
 	fmt.Fprintf(w, "sluice demo: %s\n", r.Scenario)
-	fmt.Fprintf(w, "session %s: kernel %s, step %.4g, %d chains, seed %d\n", r.SessionID, r.Kernel, r.Step, r.Chains, r.Seed)
+	fmt.Fprintf(w, "session %s: kernel %s, step %.4g, %d chains, seed %d, metric %s\n", r.SessionID, r.Kernel, r.Step, r.Chains, r.Seed, r.Metric)
+	for _, t := range r.Tuning {
+		fmt.Fprintf(w, "chosen:     %s = %.4g: %s\n", t.Setting, t.Value, t.Reason)
+	}
+	if r.TuningEvals > 0 {
+		fmt.Fprintf(w, "            (the curvature probes cost %d gradient evaluations)\n", r.TuningEvals)
+	}
 	fmt.Fprintf(w, "finished (%s): %d gradient evaluations in %.2f s, %d draws per chain kept\n\n",
 		r.Reason, r.Evaluations, r.Seconds, r.DrawsPerChain)
 	printParameters(w, r.Parameters)

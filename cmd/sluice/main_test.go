@@ -53,8 +53,9 @@ func TestDemoMeansNearNewtonModeAndOutputs(t *testing.T) {
 	if res.Reason != "draws collected" || res.DrawsPerChain != 500 || res.Seed != 11 || len(res.Parameters) != 3 {
 		t.Fatalf("summary %+v", res)
 	}
-	// LMC: one gradient per chain per step.
-	if want := int64(4 * (1000 + 10*500)); res.Evaluations != want {
+	// LMC: one gradient per chain per step, plus the automatic tuning's
+	// curvature probes.
+	if want := int64(4*(1000+10*500)) + res.TuningEvals; res.Evaluations != want || res.TuningEvals <= 0 {
 		t.Fatalf("%d evaluations, want %d", res.Evaluations, want)
 	}
 	for i, p := range res.Parameters {

@@ -29,6 +29,12 @@ type Registered struct {
 	// when the session was restored from a checkpoint.
 	Token   string
 	Resumed bool
+	// Metric is the metric at registration and the adaptation schedule.
+	Metric MetricReport
+	// Tuning lists the automatic settings and what will choose them
+	// (their values come in Progress); empty when the client gave the
+	// step.
+	Tuning []Choice
 }
 
 // Points asks the client to evaluate rows points: part of request
@@ -111,6 +117,13 @@ type Progress struct {
 	Kernel KernelReport
 	// Pool reports the evaluators and reissued rows.
 	Pool PoolReport
+	// Metric is the metric in use.
+	Metric MetricReport
+	// Tuning lists the settings the engine chose, with their reasons;
+	// TuningEvaluations is what its curvature probes cost (counted in
+	// EvaluationsUsed).
+	Tuning            []Choice
+	TuningEvaluations int64
 }
 
 // KernelReport holds a kernel's own figures (zero when it has none).

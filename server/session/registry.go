@@ -59,6 +59,11 @@ type kernelEntry struct {
 	// tune fills the kernel's tuning defaults into the Spec (the values a
 	// zero field stands for); nil when it has none.
 	tune func(s *Spec)
+	// tuning is the rule of the kernel's automatic settings (tune.go);
+	// ruleNone for kernels that take neither a metric nor an automatic
+	// step. Every other kernel implements kernels.MetricUser and
+	// kernels.StepSetter.
+	tuning tuneRule
 	// build constructs the kernel from a validated, tuned Spec.
 	build func(s *Spec, src *rand.PCG) kernels.Kernel
 }
@@ -99,32 +104,32 @@ var gradientRows = []requestShape{{kernels.NeedGradient, 1}}
 // registry holds every kernel, in the order the docs list them.
 var registry = []*kernelEntry{
 	{
-		name: "lmc", requests: gradientRows, guaranteed: true,
+		name: "lmc", requests: gradientRows, guaranteed: true, tuning: ruleOverdamped,
 		build: func(s *Spec, src *rand.PCG) kernels.Kernel {
 			return kernels.NewLMC(s.Dim, s.Chains, s.Step, s.Start, src)
 		},
 	},
 	{
-		name: "kinetic", requests: gradientRows,
+		name: "kinetic", requests: gradientRows, tuning: ruleKinetic,
 		build: func(s *Spec, src *rand.PCG) kernels.Kernel {
 			return kernels.NewKinetic(s.Dim, s.Chains, s.Step, s.Friction, inverseMass(s), s.Start, nil, src)
 		},
 	},
 	{
-		name: "midpoint", requests: gradientRows,
+		name: "midpoint", requests: gradientRows, tuning: ruleMidpoint,
 		build: func(s *Spec, src *rand.PCG) kernels.Kernel {
 			return kernels.NewMidpoint(s.Dim, s.Chains, s.Step, inverseMass(s), s.Start, nil, src)
 		},
 	},
 	{
-		name: "midpoint-overdamped", requests: gradientRows,
+		name: "midpoint-overdamped", requests: gradientRows, tuning: ruleOverdampedMidpoint,
 		build: func(s *Spec, src *rand.PCG) kernels.Kernel {
 			return kernels.NewOverdampedMidpoint(s.Dim, s.Chains, s.Step, s.Start, src)
 		},
 	},
 	{
 		name: "mala", requests: []requestShape{{kernels.NeedGradient | kernels.NeedLogDensity, 1}}, exactGradients: true,
-		setupRows: 1,
+		setupRows: 1, tuning: ruleMALA,
 		build: func(s *Spec, src *rand.PCG) kernels.Kernel {
 			// Adaptation ends with burn-in, so no kept draw comes from it.
 			return kernels.NewMALA(s.Dim, s.Chains, s.Step, int(min(s.BurnIn, math.MaxInt32)), s.Start, src)
@@ -152,7 +157,7 @@ var registry = []*kernelEntry{
 		},
 	},
 	{
-		name: "sgld", requests: gradientRows, schedule: true,
+		name: "sgld", requests: gradientRows, schedule: true, tuning: ruleOverdamped,
 		build: func(s *Spec, src *rand.PCG) kernels.Kernel {
 			var sched kernels.SGLDSchedule
 			if s.Schedule != nil {
@@ -162,7 +167,7 @@ var registry = []*kernelEntry{
 		},
 	},
 	{
-		name: "sgld-cv", randomCost: true,
+		name: "sgld-cv", randomCost: true, tuning: ruleOverdamped,
 		requests: []requestShape{{kernels.NeedGradient | kernels.NeedFullData, 1}, {kernels.NeedGradient, 2}},
 		build: func(s *Spec, src *rand.PCG) kernels.Kernel {
 			return kernels.NewSGLDCV(s.Dim, s.Chains, s.Step,
@@ -170,7 +175,7 @@ var registry = []*kernelEntry{
 		},
 	},
 	{
-		name:     "svrg",
+		name: "svrg", tuning: ruleOverdamped,
 		requests: []requestShape{{kernels.NeedGradient | kernels.NeedFullData, 1}, {kernels.NeedGradient, 2}},
 		periodicRows: func(s *Spec, steps int) int {
 			return steps / s.AnchorEvery // one full-data anchor per chain every AnchorEvery steps

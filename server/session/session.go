@@ -24,6 +24,7 @@ type Session struct {
 	entry  *kernelEntry // the kernel's registry entry
 	kernel kernels.Kernel
 	phases []Phase // run in order before sampling
+	tune   *tuner  // the metric and the automatic settings (adapt.go, tune.go)
 	phase  int     // index of the running phase; len(phases) once sampling
 
 	msgBytes    int64 // negotiated message limit
@@ -81,6 +82,19 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 	}
 	spec.seed()
 	orig.Seed = spec.Seed
+	tn, err := newTuner(&spec, entry)
+	if err != nil {
+		return nil, err
+	}
+	var declared *settings
+	if tn.auto && spec.Curvature != nil {
+		// Declared m and M, read in the declared metric's units, choose
+		// the first settings without a probe.
+		c := spec.Curvature
+		set, _ := choose(tn.rule, c.StrongConvexity, c.Smoothness/probeSafety, 0, 0, tn.tolerance(),
+			settings{friction: spec.Friction, inverseMass: spec.InverseMass})
+		spec.Step, declared = set.step, &set
+	}
 	g, err := newGuarantee(&spec, entry)
 	if err != nil {
 		return nil, err
@@ -89,13 +103,24 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 	if err := checkBudget(budget, lim); err != nil {
 		return nil, err
 	}
-	s := &Session{id: id, spec: spec, lim: lim, entry: entry, guarantee: g, epsSteps: -1, budget: budget,
+	s := &Session{id: id, spec: spec, lim: lim, entry: entry, guarantee: g, epsSteps: -1, budget: budget, tune: tn,
 		msgBytes: negotiate(lim.MaxMessageBytes, spec.MaxMessageBytes), pool: newPool(lim.Pool)}
 	if g != nil && spec.Wants.Eps > 0 {
 		s.epsSteps = g.stepsTo(spec.Wants.Eps, 0)
 	}
 	s.persist.orig = orig
-	s.kernel = entry.build(&s.spec, kernels.NewSource(s.spec.Seed))
+	build := s.spec
+	if build.Step == 0 && tn.auto {
+		build.Step = 1 // a placeholder: the probe's choice replaces it before the first step
+	}
+	s.kernel = entry.build(&build, kernels.NewSource(s.spec.Seed))
+	if tn.metric != nil {
+		s.kernel.(kernels.MetricUser).SetMetric(tn.metric)
+	}
+	if declared != nil {
+		c := spec.Curvature
+		tn.apply(s.kernel, &s.spec, c.StrongConvexity, c.Smoothness/probeSafety, "declared curvature")
+	}
 	if err := s.size(); err != nil {
 		return nil, err
 	}
@@ -203,7 +228,8 @@ func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) e
 func (s *Session) loop(r *run) outcome {
 	if err := r.send(&Registered{SessionID: s.id, Seed: s.spec.Seed, Kernel: s.spec.Kernel, Step: s.spec.Step,
 		EvaluationsPerStep: s.kernel.EvaluationsPerStep(), MaxMessageBytes: s.msgBytes, Names: s.spec.Names,
-		PlannedSteps: s.plannedSteps(), Token: s.persist.token, Resumed: s.persist.resumed}); err != nil {
+		PlannedSteps: s.plannedSteps(), Token: s.persist.token, Resumed: s.persist.resumed,
+		Metric: s.tune.report(), Tuning: s.tune.registered(&s.spec)}); err != nil {
 		return broken(err)
 	}
 	if err := s.replay(r); err != nil {
@@ -303,6 +329,9 @@ func (s *Session) begin(ctx context.Context, in <-chan Message, send func(Frame)
 	s.phases = s.phases[:0]
 	if s.spec.CurvatureProbe > 0 {
 		s.phases = append(s.phases, newCurvatureProbe(s.kernel.Positions(), s.spec.Dim, s.spec.CurvatureProbe))
+	}
+	if s.tune.auto && s.spec.Curvature == nil && s.kernel.Steps() == 0 {
+		s.phases = append(s.phases, s.tune.probe(s.kernel, &s.spec, s.kernel.Positions()[:s.spec.Dim]))
 	}
 	s.phase = 0
 	return r
@@ -490,6 +519,11 @@ func (s *Session) complete(r *run, req *kernels.Request) *Error {
 		if err := s.diverged(); err != nil {
 			return err
 		}
+		if int64(s.kernel.Steps()) <= s.spec.BurnIn {
+			if ph := s.tune.afterStep(s.kernel, &s.spec); ph != nil {
+				s.phases = append(s.phases, ph)
+			}
+		}
 	}
 	if f, ok := s.kernel.(kernels.Faulter); ok {
 		if err := f.Fault(); err != nil {
@@ -521,7 +555,7 @@ func (s *Session) diverged() *Error {
 	for i, v := range x {
 		if math.IsNaN(v) || math.IsInf(v, 0) {
 			return badValue("register.step", i/d, i%d, "the chain diverged at step %d (position %v): the step %v is too large for this target",
-				s.kernel.Steps(), v, s.spec.Step)
+				s.kernel.Steps(), v, stepOf(s.kernel))
 		}
 	}
 	return nil
@@ -923,7 +957,7 @@ func (s *Session) targets(b *bound.Bound) []TargetStatus {
 // burnInCost is the evaluations the burn-in steps took (per-step cost
 // times burn-in, capped at what was used).
 func (s *Session) burnInCost() int64 {
-	return min(s.used, s.spec.BurnIn*int64(s.kernel.EvaluationsPerStep()))
+	return min(s.used, s.spec.BurnIn*int64(s.kernel.EvaluationsPerStep())+s.tune.probeEvals)
 }
 
 // estimatedBound is the W2 bound of a session whose kernel the bounds
@@ -933,7 +967,8 @@ func (s *Session) burnInCost() int64 {
 // bound used, M ≥ the lower bound used), so the figure is optimistic:
 // it is labelled "estimated, not guaranteed" (bound.Estimated).
 func (s *Session) estimatedBound(c CurvatureEstimate) (bound.Bound, bool) {
-	if !s.entry.guaranteed || s.spec.Curvature != nil || (c.Pairs < int64(2*s.spec.Dim) && c.ProbedSmoothness == 0) || c.NotConvex {
+	if !s.entry.guaranteed || s.spec.Curvature != nil || (c.Pairs < int64(2*s.spec.Dim) && c.ProbedSmoothness == 0) || c.NotConvex ||
+		s.tune.metric != nil {
 		return bound.Bound{}, false
 	}
 	m, bigM := c.StrongConvexityAtMost, c.SmoothnessAtLeast
@@ -956,7 +991,7 @@ func (s *Session) estimatedBound(c CurvatureEstimate) (bound.Bound, bool) {
 		}
 		set.Bias = s.spec.Noise.Bias
 	}
-	b, err := bound.W2Bound(set, s.spec.Step, s.kernel.Steps())
+	b, err := bound.W2Bound(set, stepOf(s.kernel), s.kernel.Steps())
 	return b, err == nil
 }
 
@@ -1021,6 +1056,9 @@ func (s *Session) progress(now time.Time, final bool) Progress {
 	}
 	p.Kernel = kernelReport(s.kernel)
 	p.Pool = s.poolReport()
+	p.Metric = s.tune.report()
+	p.Tuning = append([]Choice(nil), s.tune.choices...)
+	p.TuningEvaluations = s.tune.probeEvals
 	if s.spec.Noise.Stochastic {
 		n := s.noise.estimate(s.spec.Noise)
 		p.Noise = &n
@@ -1030,6 +1068,12 @@ func (s *Session) progress(now time.Time, final bool) Progress {
 		if b, err := s.guarantee.at(s.kernel.Steps()); err == nil {
 			p.Bound = &b
 			p.BoundLabel = b.Source.String()
+			if s.tune.updates > 0 {
+				// The declared curvature holds in the units the client
+				// stated; the kernel now runs in an adapted metric.
+				b.Source = bound.Estimated
+				p.BoundLabel = b.Source.String() + "; the metric was adapted, and the declared curvature is in the units of the metric declared at registration"
+			}
 			if s.spec.Noise.Stochastic && s.spec.Noise.Variance == 0 && s.guarantee.setting.Noise > 0 {
 				p.BoundLabel += "; gradient noise measured, not declared"
 			}

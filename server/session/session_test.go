@@ -230,7 +230,7 @@ func TestRegistrationValidationNamesTheField(t *testing.T) {
 		{"too many chains", func(s *Spec) { s.Chains = 1 << 20 }, "register.chains", TooLarge},
 		{"unknown kernel", func(s *Spec) { s.Kernel = "bogus" }, "register.kernel", Invalid},
 		{"negative step", func(s *Spec) { s.Step = -0.1 }, "register.step", Invalid},
-		{"zero step", func(s *Spec) { s.Step = 0 }, "register.step", Invalid},
+		{"zero step without automatic tuning", func(s *Spec) { s.Step, s.Kernel = 0, "ozaki" }, "register.step", Invalid},
 		{"NaN step", func(s *Spec) { s.Step = nan }, "register.step", Invalid},
 		{"start rows", func(s *Spec) { s.StartRows = 3 }, "register.start_rows", Invalid},
 		{"start length", func(s *Spec) { s.Start = []float64{1} }, "register.start", Invalid},

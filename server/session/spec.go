@@ -20,7 +20,11 @@ type Spec struct {
 	// chain) or Chains.
 	Start     []float64
 	StartRows int
-	// Step is the step size h > 0.
+	// Step is the step size h > 0, in the metric's units when there is a
+	// metric; 0 means automatic for the kernels that tune it (tune.go):
+	// the engine chooses the step, and the kinetic kernels' friction and
+	// inverse mass left at 0, from the curvature it probes, and adapts a
+	// metric during burn-in unless MetricForm says otherwise.
 	Step float64
 	// BurnIn steps per chain are discarded; then every KeepEvery-th step
 	// is kept (0 means 1).
@@ -84,6 +88,16 @@ type Spec struct {
 	// WorkersOnly says the owner's stream only consumes: workers attached
 	// to the session (Session.Attach) evaluate every row.
 	WorkersOnly bool
+	// Metric is a declared preconditioner C for the kernels that take one
+	// (kernels.MetricUser): Dim values (a diagonal) or Dim×Dim values
+	// (dense, row-major, symmetric positive definite), for example an
+	// inverse Hessian at a mode the client knows; nil when none is
+	// declared. Declared curvature (Curvature.StrongConvexity and
+	// Smoothness) is then read in the metric's units: as bounds on
+	// Lᵀ∇²(−log π)L, C = L·Lᵀ.
+	Metric []float64
+	// MetricForm says what the engine does about the metric (adapt.go).
+	MetricForm MetricForm
 }
 
 // Envelope is q = N(Mean, Scale²I) with π̃ ≤ exp(LogBound)·q.
@@ -335,8 +349,10 @@ func (s *Spec) validateFields(k *kernelEntry) error {
 		// the schedule gives the step; density-only kernels have none
 	} else if s.Step == 0 && s.Wants.Eps > 0 && k.guaranteed {
 		// planned below, in New
+	} else if s.Step == 0 && k.tuning != ruleNone {
+		// automatic (tune.go)
 	} else if !(s.Step > 0) || math.IsInf(s.Step, 0) {
-		return bad("step", "must be a finite number > 0 (or 0 with curvature and wants.eps, to plan it), got %v", s.Step)
+		return bad("step", "must be a finite number > 0 (or 0: automatic for the Langevin kernels, planned with curvature and wants.eps), got %v", s.Step)
 	}
 	for _, f := range []struct {
 		name string

@@ -190,10 +190,14 @@ class Spec:
     and its zero value). The server validates everything; the client only
     shapes ``start`` and checks ``wants.metric``.
 
-    ``dim``, ``start`` and ``step`` have no default. ``start`` is an array of
-    ``dim`` values (every chain starts there) or of ``chains x dim`` values
-    (one row per chain). ``step`` is 0 with a ``schedule``, or to have the
-    server plan it from ``wants.eps`` and ``curvature``.
+    ``dim`` and ``start`` have no default. ``start`` is an array of ``dim``
+    values (every chain starts there) or of ``chains x dim`` values (one row
+    per chain). ``step`` 0 (the default) is automatic for the Langevin
+    kernels: the server chooses it (and ``friction``, ``inverse_mass`` left
+    at 0) from a curvature probe and adapts a metric during burn-in,
+    reporting its choices in ``Progress.tuning``; it is also 0 with a
+    ``schedule``, or to have the server plan it from ``wants.eps`` and
+    ``curvature``.
     """
 
     dim: int
@@ -206,8 +210,9 @@ class Spec:
     #: (sluice.proto, Register.kernel).
     kernel: str = "lmc"
     start: npt.ArrayLike
-    #: Step size h > 0 (the Langevin time increment of one step).
-    step: float
+    #: Step size h > 0 (the Langevin time increment of one step, in the
+    #: metric's units with a metric); 0 means automatic.
+    step: float = 0.0
     burn_in: int = 0
     #: Keep every keep_every-th step after burn-in; 0 means 1.
     keep_every: int = 1
@@ -272,6 +277,13 @@ class Spec:
     #: False: this client only consumes draws and progress, and workers
     #: attached with :func:`work` evaluate every row.
     owner_evaluates: bool = True
+    #: A declared metric C (Register.metric): dim values (a diagonal) or
+    #: dim x dim (dense), e.g. an inverse Hessian at a known mode; None: none.
+    preconditioner: Optional[npt.ArrayLike] = None
+    #: What the server does about the metric: "" (the declared one, else
+    #: adapted during burn-in when step is 0), "identity", "diagonal" or
+    #: "dense" (Register.metric_form).
+    metric_form: str = ""
 
     def message_limit(self) -> int:
         """The message limit in bytes this spec asks for (0 means 4 MiB)."""
@@ -334,7 +346,56 @@ class Spec:
         reg.checkpoint_every_steps = self.checkpoint_every_steps
         if not self.owner_evaluates:
             reg.owner_evaluates = False
+        if self.preconditioner is not None:
+            reg.metric = to_wire(np.ravel(np.asarray(self.preconditioner, dtype=np.float64)))
+        if self.metric_form not in _METRIC_FORM_TO_WIRE:
+            raise ValueError(f"sluice_client: metric_form {self.metric_form!r}; want one of {sorted(_METRIC_FORM_TO_WIRE)}")
+        reg.metric_form = _METRIC_FORM_TO_WIRE[self.metric_form]
         return reg
+
+
+_METRIC_FORM_TO_WIRE = {
+    "": pb.METRIC_FORM_UNSPECIFIED,
+    "identity": pb.METRIC_FORM_IDENTITY,
+    "diagonal": pb.METRIC_FORM_DIAGONAL,
+    "dense": pb.METRIC_FORM_DENSE,
+}
+
+
+@dataclass(frozen=True)
+class MetricReport:
+    """Which metric the kernel uses: ``kind`` ("identity", "diagonal",
+    "dense"), ``source`` ("none", "declared", "adapted"), whether adaptation
+    windows remain, the condition number of C, the step of the last update
+    (-1: never), the updates so far, the last Ledoit-Wolf shrinkage and the
+    steps at which the adaptation windows end."""
+
+    kind: str = ""
+    source: str = ""
+    adapting: bool = False
+    condition: float = 0.0
+    updated_at_step: int = -1
+    updates: int = 0
+    shrinkage: float = 0.0
+    window_ends: Tuple[int, ...] = ()
+
+    @classmethod
+    def from_wire(cls, m: pb.MetricReport) -> "MetricReport":
+        return cls(m.kind, m.source, m.adapting, m.condition, m.updated_at_step, m.updates, m.shrinkage,
+                   tuple(m.window_ends))
+
+
+@dataclass(frozen=True)
+class TuningChoice:
+    """One setting the server chose (or kept), with its reason."""
+
+    setting: str
+    value: float
+    reason: str
+
+    @classmethod
+    def from_wire(cls, m: pb.TuningChoice) -> "TuningChoice":
+        return cls(m.setting, m.value, m.reason)
 
 
 @dataclass(frozen=True, eq=False)
@@ -414,6 +475,10 @@ class Registered:
     resume_token: str = ""
     #: True when the latest stream continued the session from a checkpoint.
     resumed: bool = False
+    #: The metric at registration and the adaptation schedule.
+    metric: MetricReport = MetricReport()
+    #: With step 0: the settings the server will choose, and what chooses them.
+    tuning: Tuple[TuningChoice, ...] = ()
 
     @classmethod
     def from_wire(cls, m: pb.Registered) -> "Registered":
@@ -428,6 +493,8 @@ class Registered:
             m.planned_steps,
             m.resume_token,
             m.resumed,
+            MetricReport.from_wire(m.metric),
+            tuple(TuningChoice.from_wire(c) for c in m.tuning),
         )
 
 
@@ -679,6 +746,12 @@ class Progress:
     rows_reissued: int = 0
     #: Answers dropped because another evaluator answered first.
     answers_late: int = 0
+    #: The metric in use.
+    metric: MetricReport = MetricReport()
+    #: With step 0: the settings the server chose, with their reasons.
+    tuning: Tuple[TuningChoice, ...] = ()
+    #: Evaluations the automatic tuning's curvature probes cost.
+    tuning_evaluations: int = 0
 
     @classmethod
     def from_wire(cls, m: pb.Progress) -> "Progress":
@@ -702,6 +775,9 @@ class Progress:
             tuple(WorkerReport.from_wire(w) for w in m.workers),
             m.rows_reissued,
             m.answers_late,
+            MetricReport.from_wire(m.metric),
+            tuple(TuningChoice.from_wire(c) for c in m.tuning),
+            m.tuning_evaluations,
         )
 
 

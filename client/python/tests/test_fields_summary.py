@@ -181,6 +181,8 @@ SPECIAL = {
     "penalty_centre": np.full(2, 0.75),
     "mean": np.full(2, 0.75),
     "owner_evaluates": False,
+    "preconditioner": np.full(2, 0.75),
+    "metric_form": "dense",
 }
 
 

@@ -40,6 +40,68 @@ const (
 	_ = protoimpl.EnforceVersion(protoimpl.MaxVersion - 20)
 )
 
+// MetricForm says which metric a session uses.
+type MetricForm int32
+
+const (
+	// The declared `metric` if there is one (its length says diagonal or
+	// dense); else, with step 0 (automatic) and burn_in >= 150, a metric
+	// adapted during burn-in from every chain's positions (dense up to dim
+	// 1000, diagonal above) and frozen when burn-in ends; else none.
+	MetricForm_METRIC_FORM_UNSPECIFIED MetricForm = 0
+	// No metric and no adaptation.
+	MetricForm_METRIC_FORM_IDENTITY MetricForm = 1
+	// The declared diagonal (dim values), else a diagonal adapted during
+	// burn-in (burn_in >= 150).
+	MetricForm_METRIC_FORM_DIAGONAL MetricForm = 2
+	// The declared dense metric (dim x dim values), else a dense one adapted
+	// during burn-in (burn_in >= 150, dim <= 1000).
+	MetricForm_METRIC_FORM_DENSE MetricForm = 3
+)
+
+// Enum value maps for MetricForm.
+var (
+	MetricForm_name = map[int32]string{
+		0: "METRIC_FORM_UNSPECIFIED",
+		1: "METRIC_FORM_IDENTITY",
+		2: "METRIC_FORM_DIAGONAL",
+		3: "METRIC_FORM_DENSE",
+	}
+	MetricForm_value = map[string]int32{
+		"METRIC_FORM_UNSPECIFIED": 0,
+		"METRIC_FORM_IDENTITY":    1,
+		"METRIC_FORM_DIAGONAL":    2,
+		"METRIC_FORM_DENSE":       3,
+	}
+)
+
+func (x MetricForm) Enum() *MetricForm {
+	p := new(MetricForm)
+	*p = x
+	return p
+}
+
+func (x MetricForm) String() string {
+	return protoimpl.X.EnumStringOf(x.Descriptor(), protoreflect.EnumNumber(x))
+}
+
+func (MetricForm) Descriptor() protoreflect.EnumDescriptor {
+	return file_sluice_v1_sluice_proto_enumTypes[0].Descriptor()
+}
+
+func (MetricForm) Type() protoreflect.EnumType {
+	return &file_sluice_v1_sluice_proto_enumTypes[0]
+}
+
+func (x MetricForm) Number() protoreflect.EnumNumber {
+	return protoreflect.EnumNumber(x)
+}
+
+// Deprecated: Use MetricForm.Descriptor instead.
+func (MetricForm) EnumDescriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{0}
+}
+
 // Whether gradients are exact.
 type GradientKind int32
 
@@ -76,11 +138,11 @@ func (x GradientKind) String() string {
 }
 
 func (GradientKind) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[0].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[1].Descriptor()
 }
 
 func (GradientKind) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[0]
+	return &file_sluice_v1_sluice_proto_enumTypes[1]
 }
 
 func (x GradientKind) Number() protoreflect.EnumNumber {
@@ -89,7 +151,7 @@ func (x GradientKind) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use GradientKind.Descriptor instead.
 func (GradientKind) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{0}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{1}
 }
 
 // Distance in which a guaranteed bound is stated.
@@ -128,11 +190,11 @@ func (x Metric) String() string {
 }
 
 func (Metric) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[1].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[2].Descriptor()
 }
 
 func (Metric) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[1]
+	return &file_sluice_v1_sluice_proto_enumTypes[2]
 }
 
 func (x Metric) Number() protoreflect.EnumNumber {
@@ -141,7 +203,7 @@ func (x Metric) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use Metric.Descriptor instead.
 func (Metric) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{1}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{2}
 }
 
 // What to evaluate at each point of a Points frame (a bit set).
@@ -190,11 +252,11 @@ func (x Quantity) String() string {
 }
 
 func (Quantity) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[2].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[3].Descriptor()
 }
 
 func (Quantity) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[2]
+	return &file_sluice_v1_sluice_proto_enumTypes[3]
 }
 
 func (x Quantity) Number() protoreflect.EnumNumber {
@@ -203,7 +265,7 @@ func (x Quantity) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use Quantity.Descriptor instead.
 func (Quantity) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{2}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{3}
 }
 
 // Where a session is.
@@ -246,11 +308,11 @@ func (x State) String() string {
 }
 
 func (State) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[3].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[4].Descriptor()
 }
 
 func (State) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[3]
+	return &file_sluice_v1_sluice_proto_enumTypes[4]
 }
 
 func (x State) Number() protoreflect.EnumNumber {
@@ -259,7 +321,7 @@ func (x State) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use State.Descriptor instead.
 func (State) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{3}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{4}
 }
 
 // Where a bound's curvature constants come from.
@@ -299,11 +361,11 @@ func (x BoundSource) String() string {
 }
 
 func (BoundSource) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[4].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[5].Descriptor()
 }
 
 func (BoundSource) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[4]
+	return &file_sluice_v1_sluice_proto_enumTypes[5]
 }
 
 func (x BoundSource) Number() protoreflect.EnumNumber {
@@ -312,7 +374,7 @@ func (x BoundSource) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use BoundSource.Descriptor instead.
 func (BoundSource) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{4}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{5}
 }
 
 // Why a session ended.
@@ -371,11 +433,11 @@ func (x FinishReason) String() string {
 }
 
 func (FinishReason) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[5].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[6].Descriptor()
 }
 
 func (FinishReason) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[5]
+	return &file_sluice_v1_sluice_proto_enumTypes[6]
 }
 
 func (x FinishReason) Number() protoreflect.EnumNumber {
@@ -384,7 +446,7 @@ func (x FinishReason) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use FinishReason.Descriptor instead.
 func (FinishReason) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{5}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{6}
 }
 
 // PlanRequest describes the target and the accuracy wanted.
@@ -1150,7 +1212,14 @@ type Register struct {
 	// Number of rows in `start`: chains or 1.
 	StartRows int32 `protobuf:"varint,5,opt,name=start_rows,json=startRows,proto3" json:"start_rows,omitempty"`
 	// Step size h > 0, in the units of theta squared (the Langevin time
-	// increment of one step).
+	// increment of one step), read in the metric's units when there is a
+	// metric. 0 means automatic for lmc, kinetic, midpoint,
+	// midpoint-overdamped, mala, sgld, sgld-cv and svrg: the server probes
+	// the curvature (gradients counted in the budget), chooses the step
+	// (and the kinetic kernels' friction and inverse mass left at 0), adapts
+	// a metric during burn-in unless metric_form says otherwise, and reports
+	// its choices with their reasons in Progress.tuning. Needs exact
+	// gradients.
 	Step float64 `protobuf:"fixed64,6,opt,name=step,proto3" json:"step,omitempty"`
 	// Steps per chain discarded before the first draw is kept (burn-in).
 	// Must be >= 0.
@@ -1255,8 +1324,20 @@ type Register struct {
 	// default, and what clients written before this field get), every Draws
 	// frame carries all its values.
 	AcceptsDrawReferences bool `protobuf:"varint,33,opt,name=accepts_draw_references,json=acceptsDrawReferences,proto3" json:"accepts_draw_references,omitempty"`
-	unknownFields         protoimpl.UnknownFields
-	sizeCache             protoimpl.SizeCache
+	// A declared preconditioner C (the metric) for the kernels that take one
+	// (lmc, kinetic, midpoint, midpoint-overdamped, mala, sgld, sgld-cv,
+	// svrg), float64 (see the array convention): dim values (a diagonal) or
+	// dim x dim values (dense, row-major, symmetric positive definite, dim <=
+	// 1000), for example an inverse Hessian at a mode the client knows. The
+	// kernels then move by h*C*gradient plus noise of covariance 2h*C.
+	// Declared curvature is read in the metric's units (bounds on the
+	// Hessian of -log pi in the coordinates L^-1 theta, C = L L^T). Empty:
+	// none declared.
+	Metric []byte `protobuf:"bytes,35,opt,name=metric,proto3" json:"metric,omitempty"`
+	// What the server does about the metric (see MetricForm).
+	MetricForm    MetricForm `protobuf:"varint,36,opt,name=metric_form,json=metricForm,proto3,enum=sluice.v1.MetricForm" json:"metric_form,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *Register) Reset() {
@@ -1527,6 +1608,193 @@ func (x *Register) GetAcceptsDrawReferences() bool {
 	return false
 }
 
+func (x *Register) GetMetric() []byte {
+	if x != nil {
+		return x.Metric
+	}
+	return nil
+}
+
+func (x *Register) GetMetricForm() MetricForm {
+	if x != nil {
+		return x.MetricForm
+	}
+	return MetricForm_METRIC_FORM_UNSPECIFIED
+}
+
+// MetricReport says which metric the kernel uses.
+type MetricReport struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// "identity", "diagonal" or "dense".
+	Kind string `protobuf:"bytes,1,opt,name=kind,proto3" json:"kind,omitempty"`
+	// "none", "declared" or "adapted".
+	Source string `protobuf:"bytes,2,opt,name=source,proto3" json:"source,omitempty"`
+	// True while adaptation windows remain.
+	Adapting bool `protobuf:"varint,3,opt,name=adapting,proto3" json:"adapting,omitempty"`
+	// Condition number of C (1 for the identity).
+	Condition float64 `protobuf:"fixed64,4,opt,name=condition,proto3" json:"condition,omitempty"`
+	// Step at which the metric last changed; -1 when it never did.
+	UpdatedAtStep int64 `protobuf:"varint,5,opt,name=updated_at_step,json=updatedAtStep,proto3" json:"updated_at_step,omitempty"`
+	// Metric updates so far.
+	Updates int32 `protobuf:"varint,6,opt,name=updates,proto3" json:"updates,omitempty"`
+	// Ledoit-Wolf shrinkage intensity of the last update (0 for a diagonal).
+	Shrinkage float64 `protobuf:"fixed64,7,opt,name=shrinkage,proto3" json:"shrinkage,omitempty"`
+	// Steps at which the adaptation windows end (the schedule).
+	WindowEnds    []int64 `protobuf:"varint,8,rep,packed,name=window_ends,json=windowEnds,proto3" json:"window_ends,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *MetricReport) Reset() {
+	*x = MetricReport{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *MetricReport) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*MetricReport) ProtoMessage() {}
+
+func (x *MetricReport) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use MetricReport.ProtoReflect.Descriptor instead.
+func (*MetricReport) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{7}
+}
+
+func (x *MetricReport) GetKind() string {
+	if x != nil {
+		return x.Kind
+	}
+	return ""
+}
+
+func (x *MetricReport) GetSource() string {
+	if x != nil {
+		return x.Source
+	}
+	return ""
+}
+
+func (x *MetricReport) GetAdapting() bool {
+	if x != nil {
+		return x.Adapting
+	}
+	return false
+}
+
+func (x *MetricReport) GetCondition() float64 {
+	if x != nil {
+		return x.Condition
+	}
+	return 0
+}
+
+func (x *MetricReport) GetUpdatedAtStep() int64 {
+	if x != nil {
+		return x.UpdatedAtStep
+	}
+	return 0
+}
+
+func (x *MetricReport) GetUpdates() int32 {
+	if x != nil {
+		return x.Updates
+	}
+	return 0
+}
+
+func (x *MetricReport) GetShrinkage() float64 {
+	if x != nil {
+		return x.Shrinkage
+	}
+	return 0
+}
+
+func (x *MetricReport) GetWindowEnds() []int64 {
+	if x != nil {
+		return x.WindowEnds
+	}
+	return nil
+}
+
+// TuningChoice is one setting the server chose automatically (or kept from
+// the client), with the reason in words.
+type TuningChoice struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// "step", "friction" or "inverse_mass".
+	Setting string `protobuf:"bytes,1,opt,name=setting,proto3" json:"setting,omitempty"`
+	// The value chosen; 0 in Registered when it is still to be chosen.
+	Value         float64 `protobuf:"fixed64,2,opt,name=value,proto3" json:"value,omitempty"`
+	Reason        string  `protobuf:"bytes,3,opt,name=reason,proto3" json:"reason,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *TuningChoice) Reset() {
+	*x = TuningChoice{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *TuningChoice) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*TuningChoice) ProtoMessage() {}
+
+func (x *TuningChoice) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use TuningChoice.ProtoReflect.Descriptor instead.
+func (*TuningChoice) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{8}
+}
+
+func (x *TuningChoice) GetSetting() string {
+	if x != nil {
+		return x.Setting
+	}
+	return ""
+}
+
+func (x *TuningChoice) GetValue() float64 {
+	if x != nil {
+		return x.Value
+	}
+	return 0
+}
+
+func (x *TuningChoice) GetReason() string {
+	if x != nil {
+		return x.Reason
+	}
+	return ""
+}
+
 // Envelope is q = N(mean, scale^2 I) with the declared bound
 // pi_tilde(x) <= exp(log_bound) * q(x) for the client's unnormalised
 // density pi_tilde = exp(log density it returns). A proposal y is accepted
@@ -1546,7 +1814,7 @@ type Envelope struct {
 
 func (x *Envelope) Reset() {
 	*x = Envelope{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1558,7 +1826,7 @@ func (x *Envelope) String() string {
 func (*Envelope) ProtoMessage() {}
 
 func (x *Envelope) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[7]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1571,7 +1839,7 @@ func (x *Envelope) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Envelope.ProtoReflect.Descriptor instead.
 func (*Envelope) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{7}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{9}
 }
 
 func (x *Envelope) GetMean() []byte {
@@ -1607,7 +1875,7 @@ type StepSchedule struct {
 
 func (x *StepSchedule) Reset() {
 	*x = StepSchedule{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1619,7 +1887,7 @@ func (x *StepSchedule) String() string {
 func (*StepSchedule) ProtoMessage() {}
 
 func (x *StepSchedule) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[8]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1632,7 +1900,7 @@ func (x *StepSchedule) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use StepSchedule.ProtoReflect.Descriptor instead.
 func (*StepSchedule) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{8}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{10}
 }
 
 func (x *StepSchedule) GetA() float64 {
@@ -1683,7 +1951,7 @@ type GradientNoise struct {
 
 func (x *GradientNoise) Reset() {
 	*x = GradientNoise{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1695,7 +1963,7 @@ func (x *GradientNoise) String() string {
 func (*GradientNoise) ProtoMessage() {}
 
 func (x *GradientNoise) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[9]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1708,7 +1976,7 @@ func (x *GradientNoise) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use GradientNoise.ProtoReflect.Descriptor instead.
 func (*GradientNoise) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{9}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{11}
 }
 
 func (x *GradientNoise) GetKind() GradientKind {
@@ -1783,7 +2051,7 @@ type Curvature struct {
 
 func (x *Curvature) Reset() {
 	*x = Curvature{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1795,7 +2063,7 @@ func (x *Curvature) String() string {
 func (*Curvature) ProtoMessage() {}
 
 func (x *Curvature) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[10]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1808,7 +2076,7 @@ func (x *Curvature) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Curvature.ProtoReflect.Descriptor instead.
 func (*Curvature) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{10}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{12}
 }
 
 func (x *Curvature) GetStrongConvexity() float64 {
@@ -1867,7 +2135,7 @@ type Wants struct {
 
 func (x *Wants) Reset() {
 	*x = Wants{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1879,7 +2147,7 @@ func (x *Wants) String() string {
 func (*Wants) ProtoMessage() {}
 
 func (x *Wants) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[11]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1892,7 +2160,7 @@ func (x *Wants) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Wants.ProtoReflect.Descriptor instead.
 func (*Wants) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{11}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{13}
 }
 
 func (x *Wants) GetMinBulkEss() float64 {
@@ -1967,14 +2235,19 @@ type Registered struct {
 	ResumeToken string `protobuf:"bytes,9,opt,name=resume_token,json=resumeToken,proto3" json:"resume_token,omitempty"`
 	// True when this Registered answers a Resume: the session continues
 	// from its latest checkpoint.
-	Resumed       bool `protobuf:"varint,10,opt,name=resumed,proto3" json:"resumed,omitempty"`
+	Resumed bool `protobuf:"varint,10,opt,name=resumed,proto3" json:"resumed,omitempty"`
+	// The metric at registration and the adaptation schedule.
+	Metric *MetricReport `protobuf:"bytes,11,opt,name=metric,proto3" json:"metric,omitempty"`
+	// With step 0: the settings the server will choose and what chooses
+	// them (their values come in Progress.tuning).
+	Tuning        []*TuningChoice `protobuf:"bytes,12,rep,name=tuning,proto3" json:"tuning,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
 
 func (x *Registered) Reset() {
 	*x = Registered{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1986,7 +2259,7 @@ func (x *Registered) String() string {
 func (*Registered) ProtoMessage() {}
 
 func (x *Registered) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[12]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1999,7 +2272,7 @@ func (x *Registered) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Registered.ProtoReflect.Descriptor instead.
 func (*Registered) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{12}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{14}
 }
 
 func (x *Registered) GetSessionId() string {
@@ -2072,6 +2345,20 @@ func (x *Registered) GetResumed() bool {
 	return false
 }
 
+func (x *Registered) GetMetric() *MetricReport {
+	if x != nil {
+		return x.Metric
+	}
+	return nil
+}
+
+func (x *Registered) GetTuning() []*TuningChoice {
+	if x != nil {
+		return x.Tuning
+	}
+	return nil
+}
+
 // Points asks the client to evaluate a batch of points.
 type Points struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -2114,7 +2401,7 @@ type Points struct {
 
 func (x *Points) Reset() {
 	*x = Points{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2126,7 +2413,7 @@ func (x *Points) String() string {
 func (*Points) ProtoMessage() {}
 
 func (x *Points) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[13]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2139,7 +2426,7 @@ func (x *Points) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Points.ProtoReflect.Descriptor instead.
 func (*Points) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{13}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{15}
 }
 
 func (x *Points) GetRequestId() uint64 {
@@ -2257,7 +2544,7 @@ type Evaluations struct {
 
 func (x *Evaluations) Reset() {
 	*x = Evaluations{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2269,7 +2556,7 @@ func (x *Evaluations) String() string {
 func (*Evaluations) ProtoMessage() {}
 
 func (x *Evaluations) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[14]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2282,7 +2569,7 @@ func (x *Evaluations) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Evaluations.ProtoReflect.Descriptor instead.
 func (*Evaluations) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{14}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{16}
 }
 
 func (x *Evaluations) GetRequestId() uint64 {
@@ -2352,7 +2639,7 @@ type Stop struct {
 
 func (x *Stop) Reset() {
 	*x = Stop{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2364,7 +2651,7 @@ func (x *Stop) String() string {
 func (*Stop) ProtoMessage() {}
 
 func (x *Stop) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[15]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2377,7 +2664,7 @@ func (x *Stop) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Stop.ProtoReflect.Descriptor instead.
 func (*Stop) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{15}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{17}
 }
 
 func (x *Stop) GetReason() string {
@@ -2428,7 +2715,7 @@ type Draws struct {
 
 func (x *Draws) Reset() {
 	*x = Draws{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2440,7 +2727,7 @@ func (x *Draws) String() string {
 func (*Draws) ProtoMessage() {}
 
 func (x *Draws) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[16]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2453,7 +2740,7 @@ func (x *Draws) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Draws.ProtoReflect.Descriptor instead.
 func (*Draws) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{16}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{18}
 }
 
 func (x *Draws) GetSeq() uint64 {
@@ -2559,14 +2846,21 @@ type Progress struct {
 	// fell behind.
 	RowsReissued int64 `protobuf:"varint,18,opt,name=rows_reissued,json=rowsReissued,proto3" json:"rows_reissued,omitempty"`
 	// Answers dropped because another evaluator answered the part first.
-	AnswersLate   int64 `protobuf:"varint,19,opt,name=answers_late,json=answersLate,proto3" json:"answers_late,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	AnswersLate int64 `protobuf:"varint,19,opt,name=answers_late,json=answersLate,proto3" json:"answers_late,omitempty"`
+	// The metric in use.
+	Metric *MetricReport `protobuf:"bytes,20,opt,name=metric,proto3" json:"metric,omitempty"`
+	// With step 0: the settings the server chose, with their reasons.
+	Tuning []*TuningChoice `protobuf:"bytes,21,rep,name=tuning,proto3" json:"tuning,omitempty"`
+	// Evaluations the automatic tuning's curvature probes cost (counted in
+	// evaluations_used).
+	TuningEvaluations int64 `protobuf:"varint,22,opt,name=tuning_evaluations,json=tuningEvaluations,proto3" json:"tuning_evaluations,omitempty"`
+	unknownFields     protoimpl.UnknownFields
+	sizeCache         protoimpl.SizeCache
 }
 
 func (x *Progress) Reset() {
 	*x = Progress{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2578,7 +2872,7 @@ func (x *Progress) String() string {
 func (*Progress) ProtoMessage() {}
 
 func (x *Progress) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[17]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2591,7 +2885,7 @@ func (x *Progress) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Progress.ProtoReflect.Descriptor instead.
 func (*Progress) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{17}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{19}
 }
 
 func (x *Progress) GetState() State {
@@ -2727,6 +3021,27 @@ func (x *Progress) GetAnswersLate() int64 {
 	return 0
 }
 
+func (x *Progress) GetMetric() *MetricReport {
+	if x != nil {
+		return x.Metric
+	}
+	return nil
+}
+
+func (x *Progress) GetTuning() []*TuningChoice {
+	if x != nil {
+		return x.Tuning
+	}
+	return nil
+}
+
+func (x *Progress) GetTuningEvaluations() int64 {
+	if x != nil {
+		return x.TuningEvaluations
+	}
+	return 0
+}
+
 // KernelReport holds a kernel's own figures.
 type KernelReport struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -2754,7 +3069,7 @@ type KernelReport struct {
 
 func (x *KernelReport) Reset() {
 	*x = KernelReport{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2766,7 +3081,7 @@ func (x *KernelReport) String() string {
 func (*KernelReport) ProtoMessage() {}
 
 func (x *KernelReport) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2779,7 +3094,7 @@ func (x *KernelReport) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use KernelReport.ProtoReflect.Descriptor instead.
 func (*KernelReport) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{18}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{20}
 }
 
 func (x *KernelReport) GetStep() float64 {
@@ -2862,7 +3177,7 @@ type NoiseEstimate struct {
 
 func (x *NoiseEstimate) Reset() {
 	*x = NoiseEstimate{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2874,7 +3189,7 @@ func (x *NoiseEstimate) String() string {
 func (*NoiseEstimate) ProtoMessage() {}
 
 func (x *NoiseEstimate) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2887,7 +3202,7 @@ func (x *NoiseEstimate) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use NoiseEstimate.ProtoReflect.Descriptor instead.
 func (*NoiseEstimate) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{19}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{21}
 }
 
 func (x *NoiseEstimate) GetVariance() float64 {
@@ -2950,7 +3265,7 @@ type ParameterDiagnostics struct {
 
 func (x *ParameterDiagnostics) Reset() {
 	*x = ParameterDiagnostics{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2962,7 +3277,7 @@ func (x *ParameterDiagnostics) String() string {
 func (*ParameterDiagnostics) ProtoMessage() {}
 
 func (x *ParameterDiagnostics) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2975,7 +3290,7 @@ func (x *ParameterDiagnostics) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ParameterDiagnostics.ProtoReflect.Descriptor instead.
 func (*ParameterDiagnostics) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{20}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{22}
 }
 
 func (x *ParameterDiagnostics) GetName() string {
@@ -3051,7 +3366,7 @@ type Bound struct {
 
 func (x *Bound) Reset() {
 	*x = Bound{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3063,7 +3378,7 @@ func (x *Bound) String() string {
 func (*Bound) ProtoMessage() {}
 
 func (x *Bound) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3076,7 +3391,7 @@ func (x *Bound) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Bound.ProtoReflect.Descriptor instead.
 func (*Bound) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{21}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{23}
 }
 
 func (x *Bound) GetMetric() Metric {
@@ -3159,7 +3474,7 @@ type CurvatureEstimate struct {
 
 func (x *CurvatureEstimate) Reset() {
 	*x = CurvatureEstimate{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[24]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3171,7 +3486,7 @@ func (x *CurvatureEstimate) String() string {
 func (*CurvatureEstimate) ProtoMessage() {}
 
 func (x *CurvatureEstimate) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[24]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3184,7 +3499,7 @@ func (x *CurvatureEstimate) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use CurvatureEstimate.ProtoReflect.Descriptor instead.
 func (*CurvatureEstimate) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{22}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{24}
 }
 
 func (x *CurvatureEstimate) GetPairs() int64 {
@@ -3253,7 +3568,7 @@ type TargetStatus struct {
 
 func (x *TargetStatus) Reset() {
 	*x = TargetStatus{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[25]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3265,7 +3580,7 @@ func (x *TargetStatus) String() string {
 func (*TargetStatus) ProtoMessage() {}
 
 func (x *TargetStatus) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[25]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3278,7 +3593,7 @@ func (x *TargetStatus) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use TargetStatus.ProtoReflect.Descriptor instead.
 func (*TargetStatus) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{23}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{25}
 }
 
 func (x *TargetStatus) GetName() string {
@@ -3335,7 +3650,7 @@ type Finished struct {
 
 func (x *Finished) Reset() {
 	*x = Finished{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[24]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[26]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3347,7 +3662,7 @@ func (x *Finished) String() string {
 func (*Finished) ProtoMessage() {}
 
 func (x *Finished) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[24]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[26]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3360,7 +3675,7 @@ func (x *Finished) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Finished.ProtoReflect.Descriptor instead.
 func (*Finished) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{24}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{26}
 }
 
 func (x *Finished) GetReason() FinishReason {
@@ -3415,7 +3730,7 @@ type ParameterSummary struct {
 
 func (x *ParameterSummary) Reset() {
 	*x = ParameterSummary{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[25]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[27]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3427,7 +3742,7 @@ func (x *ParameterSummary) String() string {
 func (*ParameterSummary) ProtoMessage() {}
 
 func (x *ParameterSummary) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[25]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[27]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3440,7 +3755,7 @@ func (x *ParameterSummary) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ParameterSummary.ProtoReflect.Descriptor instead.
 func (*ParameterSummary) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{25}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{27}
 }
 
 func (x *ParameterSummary) GetName() string {
@@ -3502,7 +3817,7 @@ type Resume struct {
 
 func (x *Resume) Reset() {
 	*x = Resume{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[26]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[28]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3514,7 +3829,7 @@ func (x *Resume) String() string {
 func (*Resume) ProtoMessage() {}
 
 func (x *Resume) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[26]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[28]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3527,7 +3842,7 @@ func (x *Resume) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Resume.ProtoReflect.Descriptor instead.
 func (*Resume) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{26}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{28}
 }
 
 func (x *Resume) GetSessionId() string {
@@ -3593,7 +3908,7 @@ type FollowHeader struct {
 
 func (x *FollowHeader) Reset() {
 	*x = FollowHeader{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[27]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[29]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3605,7 +3920,7 @@ func (x *FollowHeader) String() string {
 func (*FollowHeader) ProtoMessage() {}
 
 func (x *FollowHeader) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[27]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[29]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3618,7 +3933,7 @@ func (x *FollowHeader) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use FollowHeader.ProtoReflect.Descriptor instead.
 func (*FollowHeader) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{27}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{29}
 }
 
 func (x *FollowHeader) GetSessionId() string {
@@ -3755,7 +4070,7 @@ type WorkerReport struct {
 
 func (x *WorkerReport) Reset() {
 	*x = WorkerReport{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[28]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[30]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3767,7 +4082,7 @@ func (x *WorkerReport) String() string {
 func (*WorkerReport) ProtoMessage() {}
 
 func (x *WorkerReport) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[28]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[30]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3780,7 +4095,7 @@ func (x *WorkerReport) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use WorkerReport.ProtoReflect.Descriptor instead.
 func (*WorkerReport) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{28}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{30}
 }
 
 func (x *WorkerReport) GetName() string {
@@ -3839,7 +4154,7 @@ type AttachRequest struct {
 
 func (x *AttachRequest) Reset() {
 	*x = AttachRequest{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[29]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[31]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3851,7 +4166,7 @@ func (x *AttachRequest) String() string {
 func (*AttachRequest) ProtoMessage() {}
 
 func (x *AttachRequest) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[29]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[31]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3864,7 +4179,7 @@ func (x *AttachRequest) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use AttachRequest.ProtoReflect.Descriptor instead.
 func (*AttachRequest) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{29}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{31}
 }
 
 func (x *AttachRequest) GetFrame() isAttachRequest_Frame {
@@ -3925,7 +4240,7 @@ type Attach struct {
 
 func (x *Attach) Reset() {
 	*x = Attach{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[30]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[32]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3937,7 +4252,7 @@ func (x *Attach) String() string {
 func (*Attach) ProtoMessage() {}
 
 func (x *Attach) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[30]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[32]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3950,7 +4265,7 @@ func (x *Attach) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Attach.ProtoReflect.Descriptor instead.
 func (*Attach) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{30}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{32}
 }
 
 func (x *Attach) GetSessionId() string {
@@ -3988,7 +4303,7 @@ type AttachResponse struct {
 
 func (x *AttachResponse) Reset() {
 	*x = AttachResponse{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[31]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[33]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -4000,7 +4315,7 @@ func (x *AttachResponse) String() string {
 func (*AttachResponse) ProtoMessage() {}
 
 func (x *AttachResponse) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[31]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[33]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -4013,7 +4328,7 @@ func (x *AttachResponse) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use AttachResponse.ProtoReflect.Descriptor instead.
 func (*AttachResponse) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{31}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{33}
 }
 
 func (x *AttachResponse) GetFrame() isAttachResponse_Frame {
@@ -4076,7 +4391,7 @@ type Attached struct {
 
 func (x *Attached) Reset() {
 	*x = Attached{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[32]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[34]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -4088,7 +4403,7 @@ func (x *Attached) String() string {
 func (*Attached) ProtoMessage() {}
 
 func (x *Attached) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[32]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[34]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -4101,7 +4416,7 @@ func (x *Attached) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Attached.ProtoReflect.Descriptor instead.
 func (*Attached) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{32}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{34}
 }
 
 func (x *Attached) GetSessionId() string {
@@ -4188,8 +4503,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x05draws\x18\x03 \x01(\v2\x10.sluice.v1.DrawsH\x00R\x05draws\x121\n" +
 	"\bprogress\x18\x04 \x01(\v2\x13.sluice.v1.ProgressH\x00R\bprogress\x121\n" +
 	"\bfinished\x18\x05 \x01(\v2\x13.sluice.v1.FinishedH\x00R\bfinishedB\a\n" +
-	"\x05frame\"\xe1\n" +
-	"\n" +
+	"\x05frame\"\xb1\v\n" +
 	"\bRegister\x12\x10\n" +
 	"\x03dim\x18\x01 \x01(\x05R\x03dim\x12\x16\n" +
 	"\x06chains\x18\x02 \x01(\x05R\x06chains\x12\x16\n" +
@@ -4229,8 +4543,25 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x0fowner_evaluates\x18\" \x01(\bH\x00R\x0eownerEvaluates\x88\x01\x01\x12.\n" +
 	"\x05noise\x18\x15 \x01(\v2\x18.sluice.v1.GradientNoiseR\x05noise\x124\n" +
 	"\x16checkpoint_every_steps\x18  \x01(\x03R\x14checkpointEverySteps\x126\n" +
-	"\x17accepts_draw_references\x18! \x01(\bR\x15acceptsDrawReferencesB\x12\n" +
-	"\x10_owner_evaluates\"Q\n" +
+	"\x17accepts_draw_references\x18! \x01(\bR\x15acceptsDrawReferences\x12\x16\n" +
+	"\x06metric\x18# \x01(\fR\x06metric\x126\n" +
+	"\vmetric_form\x18$ \x01(\x0e2\x15.sluice.v1.MetricFormR\n" +
+	"metricFormB\x12\n" +
+	"\x10_owner_evaluates\"\xf5\x01\n" +
+	"\fMetricReport\x12\x12\n" +
+	"\x04kind\x18\x01 \x01(\tR\x04kind\x12\x16\n" +
+	"\x06source\x18\x02 \x01(\tR\x06source\x12\x1a\n" +
+	"\badapting\x18\x03 \x01(\bR\badapting\x12\x1c\n" +
+	"\tcondition\x18\x04 \x01(\x01R\tcondition\x12&\n" +
+	"\x0fupdated_at_step\x18\x05 \x01(\x03R\rupdatedAtStep\x12\x18\n" +
+	"\aupdates\x18\x06 \x01(\x05R\aupdates\x12\x1c\n" +
+	"\tshrinkage\x18\a \x01(\x01R\tshrinkage\x12\x1f\n" +
+	"\vwindow_ends\x18\b \x03(\x03R\n" +
+	"windowEnds\"V\n" +
+	"\fTuningChoice\x12\x18\n" +
+	"\asetting\x18\x01 \x01(\tR\asetting\x12\x14\n" +
+	"\x05value\x18\x02 \x01(\x01R\x05value\x12\x16\n" +
+	"\x06reason\x18\x03 \x01(\tR\x06reason\"Q\n" +
 	"\bEnvelope\x12\x12\n" +
 	"\x04mean\x18\x01 \x01(\fR\x04mean\x12\x14\n" +
 	"\x05scale\x18\x02 \x01(\x01R\x05scale\x12\x1b\n" +
@@ -4264,7 +4595,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\bmax_rhat\x18\x03 \x01(\x01R\amaxRhat\x12\x17\n" +
 	"\amax_ksd\x18\x04 \x01(\x01R\x06maxKsd\x12\x10\n" +
 	"\x03eps\x18\x05 \x01(\x01R\x03eps\x12)\n" +
-	"\x06metric\x18\x06 \x01(\x0e2\x11.sluice.v1.MetricR\x06metric\"\xc1\x02\n" +
+	"\x06metric\x18\x06 \x01(\x0e2\x11.sluice.v1.MetricR\x06metric\"\xa3\x03\n" +
 	"\n" +
 	"Registered\x12\x1d\n" +
 	"\n" +
@@ -4278,7 +4609,9 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\rplanned_steps\x18\b \x01(\x03R\fplannedSteps\x12!\n" +
 	"\fresume_token\x18\t \x01(\tR\vresumeToken\x12\x18\n" +
 	"\aresumed\x18\n" +
-	" \x01(\bR\aresumed\"\xf0\x02\n" +
+	" \x01(\bR\aresumed\x12/\n" +
+	"\x06metric\x18\v \x01(\v2\x17.sluice.v1.MetricReportR\x06metric\x12/\n" +
+	"\x06tuning\x18\f \x03(\v2\x17.sluice.v1.TuningChoiceR\x06tuning\"\xf0\x02\n" +
 	"\x06Points\x12\x1d\n" +
 	"\n" +
 	"request_id\x18\x01 \x01(\x04R\trequestId\x12\x1b\n" +
@@ -4322,7 +4655,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"iterations\x12&\n" +
 	"\x0ffrom_request_id\x18\a \x01(\x04R\rfromRequestId\x12\x1d\n" +
 	"\n" +
-	"point_rows\x18\b \x03(\x05R\tpointRows\"\xae\x06\n" +
+	"point_rows\x18\b \x03(\x05R\tpointRows\"\xbf\a\n" +
 	"\bProgress\x12&\n" +
 	"\x05state\x18\x01 \x01(\x0e2\x10.sluice.v1.StateR\x05state\x12\x14\n" +
 	"\x05steps\x18\x02 \x01(\x03R\x05steps\x12)\n" +
@@ -4346,7 +4679,10 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x12parameters_omitted\x18\x10 \x01(\x05R\x11parametersOmitted\x121\n" +
 	"\aworkers\x18\x11 \x03(\v2\x17.sluice.v1.WorkerReportR\aworkers\x12#\n" +
 	"\rrows_reissued\x18\x12 \x01(\x03R\frowsReissued\x12!\n" +
-	"\fanswers_late\x18\x13 \x01(\x03R\vanswersLate\"\xdd\x02\n" +
+	"\fanswers_late\x18\x13 \x01(\x03R\vanswersLate\x12/\n" +
+	"\x06metric\x18\x14 \x01(\v2\x17.sluice.v1.MetricReportR\x06metric\x12/\n" +
+	"\x06tuning\x18\x15 \x03(\v2\x17.sluice.v1.TuningChoiceR\x06tuning\x12-\n" +
+	"\x12tuning_evaluations\x18\x16 \x01(\x03R\x11tuningEvaluations\"\xdd\x02\n" +
 	"\fKernelReport\x12\x12\n" +
 	"\x04step\x18\x01 \x01(\x01R\x04step\x12\x1a\n" +
 	"\badapting\x18\x02 \x01(\bR\badapting\x12)\n" +
@@ -4462,7 +4798,13 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"session_id\x18\x01 \x01(\tR\tsessionId\x12\x10\n" +
 	"\x03dim\x18\x02 \x01(\x05R\x03dim\x12*\n" +
 	"\x11max_message_bytes\x18\x03 \x01(\x03R\x0fmaxMessageBytes\x12\x14\n" +
-	"\x05names\x18\x04 \x03(\tR\x05names*d\n" +
+	"\x05names\x18\x04 \x03(\tR\x05names*t\n" +
+	"\n" +
+	"MetricForm\x12\x1b\n" +
+	"\x17METRIC_FORM_UNSPECIFIED\x10\x00\x12\x18\n" +
+	"\x14METRIC_FORM_IDENTITY\x10\x01\x12\x18\n" +
+	"\x14METRIC_FORM_DIAGONAL\x10\x02\x12\x15\n" +
+	"\x11METRIC_FORM_DENSE\x10\x03*d\n" +
 	"\fGradientKind\x12\x1d\n" +
 	"\x19GRADIENT_KIND_UNSPECIFIED\x10\x00\x12\x17\n" +
 	"\x13GRADIENT_KIND_EXACT\x10\x01\x12\x1c\n" +
@@ -4513,105 +4855,113 @@ func file_sluice_v1_sluice_proto_rawDescGZIP() []byte {
 	return file_sluice_v1_sluice_proto_rawDescData
 }
 
-var file_sluice_v1_sluice_proto_enumTypes = make([]protoimpl.EnumInfo, 6)
-var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 33)
+var file_sluice_v1_sluice_proto_enumTypes = make([]protoimpl.EnumInfo, 7)
+var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 35)
 var file_sluice_v1_sluice_proto_goTypes = []any{
-	(GradientKind)(0),            // 0: sluice.v1.GradientKind
-	(Metric)(0),                  // 1: sluice.v1.Metric
-	(Quantity)(0),                // 2: sluice.v1.Quantity
-	(State)(0),                   // 3: sluice.v1.State
-	(BoundSource)(0),             // 4: sluice.v1.BoundSource
-	(FinishReason)(0),            // 5: sluice.v1.FinishReason
-	(*PlanRequest)(nil),          // 6: sluice.v1.PlanRequest
-	(*PlanResponse)(nil),         // 7: sluice.v1.PlanResponse
-	(*FollowRequest)(nil),        // 8: sluice.v1.FollowRequest
-	(*FollowResponse)(nil),       // 9: sluice.v1.FollowResponse
-	(*SessionRequest)(nil),       // 10: sluice.v1.SessionRequest
-	(*SessionResponse)(nil),      // 11: sluice.v1.SessionResponse
-	(*Register)(nil),             // 12: sluice.v1.Register
-	(*Envelope)(nil),             // 13: sluice.v1.Envelope
-	(*StepSchedule)(nil),         // 14: sluice.v1.StepSchedule
-	(*GradientNoise)(nil),        // 15: sluice.v1.GradientNoise
-	(*Curvature)(nil),            // 16: sluice.v1.Curvature
-	(*Wants)(nil),                // 17: sluice.v1.Wants
-	(*Registered)(nil),           // 18: sluice.v1.Registered
-	(*Points)(nil),               // 19: sluice.v1.Points
-	(*Evaluations)(nil),          // 20: sluice.v1.Evaluations
-	(*Stop)(nil),                 // 21: sluice.v1.Stop
-	(*Draws)(nil),                // 22: sluice.v1.Draws
-	(*Progress)(nil),             // 23: sluice.v1.Progress
-	(*KernelReport)(nil),         // 24: sluice.v1.KernelReport
-	(*NoiseEstimate)(nil),        // 25: sluice.v1.NoiseEstimate
-	(*ParameterDiagnostics)(nil), // 26: sluice.v1.ParameterDiagnostics
-	(*Bound)(nil),                // 27: sluice.v1.Bound
-	(*CurvatureEstimate)(nil),    // 28: sluice.v1.CurvatureEstimate
-	(*TargetStatus)(nil),         // 29: sluice.v1.TargetStatus
-	(*Finished)(nil),             // 30: sluice.v1.Finished
-	(*ParameterSummary)(nil),     // 31: sluice.v1.ParameterSummary
-	(*Resume)(nil),               // 32: sluice.v1.Resume
-	(*FollowHeader)(nil),         // 33: sluice.v1.FollowHeader
-	(*WorkerReport)(nil),         // 34: sluice.v1.WorkerReport
-	(*AttachRequest)(nil),        // 35: sluice.v1.AttachRequest
-	(*Attach)(nil),               // 36: sluice.v1.Attach
-	(*AttachResponse)(nil),       // 37: sluice.v1.AttachResponse
-	(*Attached)(nil),             // 38: sluice.v1.Attached
+	(MetricForm)(0),              // 0: sluice.v1.MetricForm
+	(GradientKind)(0),            // 1: sluice.v1.GradientKind
+	(Metric)(0),                  // 2: sluice.v1.Metric
+	(Quantity)(0),                // 3: sluice.v1.Quantity
+	(State)(0),                   // 4: sluice.v1.State
+	(BoundSource)(0),             // 5: sluice.v1.BoundSource
+	(FinishReason)(0),            // 6: sluice.v1.FinishReason
+	(*PlanRequest)(nil),          // 7: sluice.v1.PlanRequest
+	(*PlanResponse)(nil),         // 8: sluice.v1.PlanResponse
+	(*FollowRequest)(nil),        // 9: sluice.v1.FollowRequest
+	(*FollowResponse)(nil),       // 10: sluice.v1.FollowResponse
+	(*SessionRequest)(nil),       // 11: sluice.v1.SessionRequest
+	(*SessionResponse)(nil),      // 12: sluice.v1.SessionResponse
+	(*Register)(nil),             // 13: sluice.v1.Register
+	(*MetricReport)(nil),         // 14: sluice.v1.MetricReport
+	(*TuningChoice)(nil),         // 15: sluice.v1.TuningChoice
+	(*Envelope)(nil),             // 16: sluice.v1.Envelope
+	(*StepSchedule)(nil),         // 17: sluice.v1.StepSchedule
+	(*GradientNoise)(nil),        // 18: sluice.v1.GradientNoise
+	(*Curvature)(nil),            // 19: sluice.v1.Curvature
+	(*Wants)(nil),                // 20: sluice.v1.Wants
+	(*Registered)(nil),           // 21: sluice.v1.Registered
+	(*Points)(nil),               // 22: sluice.v1.Points
+	(*Evaluations)(nil),          // 23: sluice.v1.Evaluations
+	(*Stop)(nil),                 // 24: sluice.v1.Stop
+	(*Draws)(nil),                // 25: sluice.v1.Draws
+	(*Progress)(nil),             // 26: sluice.v1.Progress
+	(*KernelReport)(nil),         // 27: sluice.v1.KernelReport
+	(*NoiseEstimate)(nil),        // 28: sluice.v1.NoiseEstimate
+	(*ParameterDiagnostics)(nil), // 29: sluice.v1.ParameterDiagnostics
+	(*Bound)(nil),                // 30: sluice.v1.Bound
+	(*CurvatureEstimate)(nil),    // 31: sluice.v1.CurvatureEstimate
+	(*TargetStatus)(nil),         // 32: sluice.v1.TargetStatus
+	(*Finished)(nil),             // 33: sluice.v1.Finished
+	(*ParameterSummary)(nil),     // 34: sluice.v1.ParameterSummary
+	(*Resume)(nil),               // 35: sluice.v1.Resume
+	(*FollowHeader)(nil),         // 36: sluice.v1.FollowHeader
+	(*WorkerReport)(nil),         // 37: sluice.v1.WorkerReport
+	(*AttachRequest)(nil),        // 38: sluice.v1.AttachRequest
+	(*Attach)(nil),               // 39: sluice.v1.Attach
+	(*AttachResponse)(nil),       // 40: sluice.v1.AttachResponse
+	(*Attached)(nil),             // 41: sluice.v1.Attached
 }
 var file_sluice_v1_sluice_proto_depIdxs = []int32{
-	16, // 0: sluice.v1.PlanRequest.curvature:type_name -> sluice.v1.Curvature
-	1,  // 1: sluice.v1.PlanRequest.metric:type_name -> sluice.v1.Metric
-	27, // 2: sluice.v1.PlanResponse.bound:type_name -> sluice.v1.Bound
-	22, // 3: sluice.v1.FollowResponse.draws:type_name -> sluice.v1.Draws
-	30, // 4: sluice.v1.FollowResponse.finished:type_name -> sluice.v1.Finished
-	33, // 5: sluice.v1.FollowResponse.header:type_name -> sluice.v1.FollowHeader
-	23, // 6: sluice.v1.FollowResponse.progress:type_name -> sluice.v1.Progress
-	12, // 7: sluice.v1.SessionRequest.register:type_name -> sluice.v1.Register
-	20, // 8: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
-	21, // 9: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
-	32, // 10: sluice.v1.SessionRequest.resume:type_name -> sluice.v1.Resume
-	18, // 11: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
-	19, // 12: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
-	22, // 13: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
-	23, // 14: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
-	30, // 15: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
-	16, // 16: sluice.v1.Register.curvature:type_name -> sluice.v1.Curvature
-	17, // 17: sluice.v1.Register.wants:type_name -> sluice.v1.Wants
-	14, // 18: sluice.v1.Register.schedule:type_name -> sluice.v1.StepSchedule
-	13, // 19: sluice.v1.Register.envelope:type_name -> sluice.v1.Envelope
-	15, // 20: sluice.v1.Register.noise:type_name -> sluice.v1.GradientNoise
-	0,  // 21: sluice.v1.GradientNoise.kind:type_name -> sluice.v1.GradientKind
-	1,  // 22: sluice.v1.Wants.metric:type_name -> sluice.v1.Metric
-	2,  // 23: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
-	3,  // 24: sluice.v1.Progress.state:type_name -> sluice.v1.State
-	26, // 25: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
-	27, // 26: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
-	28, // 27: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
-	29, // 28: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
-	25, // 29: sluice.v1.Progress.noise:type_name -> sluice.v1.NoiseEstimate
-	24, // 30: sluice.v1.Progress.kernel:type_name -> sluice.v1.KernelReport
-	34, // 31: sluice.v1.Progress.workers:type_name -> sluice.v1.WorkerReport
-	1,  // 32: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
-	4,  // 33: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
-	5,  // 34: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
-	23, // 35: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
-	31, // 36: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
-	17, // 37: sluice.v1.FollowHeader.wants:type_name -> sluice.v1.Wants
-	36, // 38: sluice.v1.AttachRequest.attach:type_name -> sluice.v1.Attach
-	20, // 39: sluice.v1.AttachRequest.evaluations:type_name -> sluice.v1.Evaluations
-	38, // 40: sluice.v1.AttachResponse.attached:type_name -> sluice.v1.Attached
-	19, // 41: sluice.v1.AttachResponse.points:type_name -> sluice.v1.Points
-	10, // 42: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
-	8,  // 43: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
-	6,  // 44: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
-	35, // 45: sluice.v1.SluiceService.Attach:input_type -> sluice.v1.AttachRequest
-	11, // 46: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
-	9,  // 47: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
-	7,  // 48: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
-	37, // 49: sluice.v1.SluiceService.Attach:output_type -> sluice.v1.AttachResponse
-	46, // [46:50] is the sub-list for method output_type
-	42, // [42:46] is the sub-list for method input_type
-	42, // [42:42] is the sub-list for extension type_name
-	42, // [42:42] is the sub-list for extension extendee
-	0,  // [0:42] is the sub-list for field type_name
+	19, // 0: sluice.v1.PlanRequest.curvature:type_name -> sluice.v1.Curvature
+	2,  // 1: sluice.v1.PlanRequest.metric:type_name -> sluice.v1.Metric
+	30, // 2: sluice.v1.PlanResponse.bound:type_name -> sluice.v1.Bound
+	25, // 3: sluice.v1.FollowResponse.draws:type_name -> sluice.v1.Draws
+	33, // 4: sluice.v1.FollowResponse.finished:type_name -> sluice.v1.Finished
+	36, // 5: sluice.v1.FollowResponse.header:type_name -> sluice.v1.FollowHeader
+	26, // 6: sluice.v1.FollowResponse.progress:type_name -> sluice.v1.Progress
+	13, // 7: sluice.v1.SessionRequest.register:type_name -> sluice.v1.Register
+	23, // 8: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
+	24, // 9: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
+	35, // 10: sluice.v1.SessionRequest.resume:type_name -> sluice.v1.Resume
+	21, // 11: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
+	22, // 12: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
+	25, // 13: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
+	26, // 14: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
+	33, // 15: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
+	19, // 16: sluice.v1.Register.curvature:type_name -> sluice.v1.Curvature
+	20, // 17: sluice.v1.Register.wants:type_name -> sluice.v1.Wants
+	17, // 18: sluice.v1.Register.schedule:type_name -> sluice.v1.StepSchedule
+	16, // 19: sluice.v1.Register.envelope:type_name -> sluice.v1.Envelope
+	18, // 20: sluice.v1.Register.noise:type_name -> sluice.v1.GradientNoise
+	0,  // 21: sluice.v1.Register.metric_form:type_name -> sluice.v1.MetricForm
+	1,  // 22: sluice.v1.GradientNoise.kind:type_name -> sluice.v1.GradientKind
+	2,  // 23: sluice.v1.Wants.metric:type_name -> sluice.v1.Metric
+	14, // 24: sluice.v1.Registered.metric:type_name -> sluice.v1.MetricReport
+	15, // 25: sluice.v1.Registered.tuning:type_name -> sluice.v1.TuningChoice
+	3,  // 26: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
+	4,  // 27: sluice.v1.Progress.state:type_name -> sluice.v1.State
+	29, // 28: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
+	30, // 29: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
+	31, // 30: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
+	32, // 31: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
+	28, // 32: sluice.v1.Progress.noise:type_name -> sluice.v1.NoiseEstimate
+	27, // 33: sluice.v1.Progress.kernel:type_name -> sluice.v1.KernelReport
+	37, // 34: sluice.v1.Progress.workers:type_name -> sluice.v1.WorkerReport
+	14, // 35: sluice.v1.Progress.metric:type_name -> sluice.v1.MetricReport
+	15, // 36: sluice.v1.Progress.tuning:type_name -> sluice.v1.TuningChoice
+	2,  // 37: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
+	5,  // 38: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
+	6,  // 39: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
+	26, // 40: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
+	34, // 41: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
+	20, // 42: sluice.v1.FollowHeader.wants:type_name -> sluice.v1.Wants
+	39, // 43: sluice.v1.AttachRequest.attach:type_name -> sluice.v1.Attach
+	23, // 44: sluice.v1.AttachRequest.evaluations:type_name -> sluice.v1.Evaluations
+	41, // 45: sluice.v1.AttachResponse.attached:type_name -> sluice.v1.Attached
+	22, // 46: sluice.v1.AttachResponse.points:type_name -> sluice.v1.Points
+	11, // 47: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
+	9,  // 48: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
+	7,  // 49: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
+	38, // 50: sluice.v1.SluiceService.Attach:input_type -> sluice.v1.AttachRequest
+	12, // 51: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
+	10, // 52: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
+	8,  // 53: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
+	40, // 54: sluice.v1.SluiceService.Attach:output_type -> sluice.v1.AttachResponse
+	51, // [51:55] is the sub-list for method output_type
+	47, // [47:51] is the sub-list for method input_type
+	47, // [47:47] is the sub-list for extension type_name
+	47, // [47:47] is the sub-list for extension extendee
+	0,  // [0:47] is the sub-list for field type_name
 }
 
 func init() { file_sluice_v1_sluice_proto_init() }
@@ -4639,11 +4989,11 @@ func file_sluice_v1_sluice_proto_init() {
 		(*SessionResponse_Finished)(nil),
 	}
 	file_sluice_v1_sluice_proto_msgTypes[6].OneofWrappers = []any{}
-	file_sluice_v1_sluice_proto_msgTypes[29].OneofWrappers = []any{
+	file_sluice_v1_sluice_proto_msgTypes[31].OneofWrappers = []any{
 		(*AttachRequest_Attach)(nil),
 		(*AttachRequest_Evaluations)(nil),
 	}
-	file_sluice_v1_sluice_proto_msgTypes[31].OneofWrappers = []any{
+	file_sluice_v1_sluice_proto_msgTypes[33].OneofWrappers = []any{
 		(*AttachResponse_Attached)(nil),
 		(*AttachResponse_Points)(nil),
 	}
@@ -4652,8 +5002,8 @@ func file_sluice_v1_sluice_proto_init() {
 		File: protoimpl.DescBuilder{
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_sluice_v1_sluice_proto_rawDesc), len(file_sluice_v1_sluice_proto_rawDesc)),
-			NumEnums:      6,
-			NumMessages:   33,
+			NumEnums:      7,
+			NumMessages:   35,
 			NumExtensions: 0,
 			NumServices:   1,
 		},

@@ -19,6 +19,10 @@ FINISH_REASON_UNSPECIFIED: FinishReason
 GRADIENT_KIND_EXACT: GradientKind
 GRADIENT_KIND_STOCHASTIC: GradientKind
 GRADIENT_KIND_UNSPECIFIED: GradientKind
+METRIC_FORM_DENSE: MetricForm
+METRIC_FORM_DIAGONAL: MetricForm
+METRIC_FORM_IDENTITY: MetricForm
+METRIC_FORM_UNSPECIFIED: MetricForm
 METRIC_TV: Metric
 METRIC_UNSPECIFIED: Metric
 METRIC_W2: Metric
@@ -280,6 +284,26 @@ class KernelReport(_message.Message):
     step: float
     def __init__(self, step: _Optional[float] = ..., adapting: bool = ..., acceptance_rates: _Optional[_Iterable[float]] = ..., krylov_iterations: _Optional[int] = ..., krylov_error_estimate: _Optional[float] = ..., krylov_unconverged: _Optional[int] = ..., evaluations_per_step_mean: _Optional[float] = ..., acceptance_rate: _Optional[float] = ...) -> None: ...
 
+class MetricReport(_message.Message):
+    __slots__ = ["adapting", "condition", "kind", "shrinkage", "source", "updated_at_step", "updates", "window_ends"]
+    ADAPTING_FIELD_NUMBER: _ClassVar[int]
+    CONDITION_FIELD_NUMBER: _ClassVar[int]
+    KIND_FIELD_NUMBER: _ClassVar[int]
+    SHRINKAGE_FIELD_NUMBER: _ClassVar[int]
+    SOURCE_FIELD_NUMBER: _ClassVar[int]
+    UPDATED_AT_STEP_FIELD_NUMBER: _ClassVar[int]
+    UPDATES_FIELD_NUMBER: _ClassVar[int]
+    WINDOW_ENDS_FIELD_NUMBER: _ClassVar[int]
+    adapting: bool
+    condition: float
+    kind: str
+    shrinkage: float
+    source: str
+    updated_at_step: int
+    updates: int
+    window_ends: _containers.RepeatedScalarFieldContainer[int]
+    def __init__(self, kind: _Optional[str] = ..., source: _Optional[str] = ..., adapting: bool = ..., condition: _Optional[float] = ..., updated_at_step: _Optional[int] = ..., updates: _Optional[int] = ..., shrinkage: _Optional[float] = ..., window_ends: _Optional[_Iterable[int]] = ...) -> None: ...
+
 class NoiseEstimate(_message.Message):
     __slots__ = ["declared", "epochs", "requests", "variance", "variance_se", "warning"]
     DECLARED_FIELD_NUMBER: _ClassVar[int]
@@ -403,7 +427,7 @@ class Points(_message.Message):
     def __init__(self, request_id: _Optional[int] = ..., first_row: _Optional[int] = ..., rows: _Optional[int] = ..., dim: _Optional[int] = ..., points: _Optional[bytes] = ..., chains: _Optional[_Iterable[int]] = ..., quantities: _Optional[_Iterable[_Union[Quantity, str]]] = ..., total_rows: _Optional[int] = ..., vectors: _Optional[bytes] = ..., minibatch_groups: _Optional[_Iterable[int]] = ..., full_data: bool = ..., replicates: _Optional[int] = ...) -> None: ...
 
 class Progress(_message.Message):
-    __slots__ = ["answers_late", "bound", "curvature", "draws_sent", "evaluations_left", "evaluations_per_second", "evaluations_used", "kernel", "ksd", "noise", "parameters", "parameters_omitted", "rows_reissued", "seconds_left", "seconds_used", "state", "steps", "targets", "workers"]
+    __slots__ = ["answers_late", "bound", "curvature", "draws_sent", "evaluations_left", "evaluations_per_second", "evaluations_used", "kernel", "ksd", "metric", "noise", "parameters", "parameters_omitted", "rows_reissued", "seconds_left", "seconds_used", "state", "steps", "targets", "tuning", "tuning_evaluations", "workers"]
     ANSWERS_LATE_FIELD_NUMBER: _ClassVar[int]
     BOUND_FIELD_NUMBER: _ClassVar[int]
     CURVATURE_FIELD_NUMBER: _ClassVar[int]
@@ -413,6 +437,7 @@ class Progress(_message.Message):
     EVALUATIONS_USED_FIELD_NUMBER: _ClassVar[int]
     KERNEL_FIELD_NUMBER: _ClassVar[int]
     KSD_FIELD_NUMBER: _ClassVar[int]
+    METRIC_FIELD_NUMBER: _ClassVar[int]
     NOISE_FIELD_NUMBER: _ClassVar[int]
     PARAMETERS_FIELD_NUMBER: _ClassVar[int]
     PARAMETERS_OMITTED_FIELD_NUMBER: _ClassVar[int]
@@ -422,6 +447,8 @@ class Progress(_message.Message):
     STATE_FIELD_NUMBER: _ClassVar[int]
     STEPS_FIELD_NUMBER: _ClassVar[int]
     TARGETS_FIELD_NUMBER: _ClassVar[int]
+    TUNING_EVALUATIONS_FIELD_NUMBER: _ClassVar[int]
+    TUNING_FIELD_NUMBER: _ClassVar[int]
     WORKERS_FIELD_NUMBER: _ClassVar[int]
     answers_late: int
     bound: Bound
@@ -432,6 +459,7 @@ class Progress(_message.Message):
     evaluations_used: int
     kernel: KernelReport
     ksd: float
+    metric: MetricReport
     noise: NoiseEstimate
     parameters: _containers.RepeatedCompositeFieldContainer[ParameterDiagnostics]
     parameters_omitted: int
@@ -441,11 +469,13 @@ class Progress(_message.Message):
     state: State
     steps: int
     targets: _containers.RepeatedCompositeFieldContainer[TargetStatus]
+    tuning: _containers.RepeatedCompositeFieldContainer[TuningChoice]
+    tuning_evaluations: int
     workers: _containers.RepeatedCompositeFieldContainer[WorkerReport]
-    def __init__(self, state: _Optional[_Union[State, str]] = ..., steps: _Optional[int] = ..., evaluations_used: _Optional[int] = ..., evaluations_left: _Optional[int] = ..., seconds_used: _Optional[float] = ..., seconds_left: _Optional[float] = ..., draws_sent: _Optional[int] = ..., evaluations_per_second: _Optional[float] = ..., parameters: _Optional[_Iterable[_Union[ParameterDiagnostics, _Mapping]]] = ..., ksd: _Optional[float] = ..., bound: _Optional[_Union[Bound, _Mapping]] = ..., curvature: _Optional[_Union[CurvatureEstimate, _Mapping]] = ..., targets: _Optional[_Iterable[_Union[TargetStatus, _Mapping]]] = ..., noise: _Optional[_Union[NoiseEstimate, _Mapping]] = ..., kernel: _Optional[_Union[KernelReport, _Mapping]] = ..., parameters_omitted: _Optional[int] = ..., workers: _Optional[_Iterable[_Union[WorkerReport, _Mapping]]] = ..., rows_reissued: _Optional[int] = ..., answers_late: _Optional[int] = ...) -> None: ...
+    def __init__(self, state: _Optional[_Union[State, str]] = ..., steps: _Optional[int] = ..., evaluations_used: _Optional[int] = ..., evaluations_left: _Optional[int] = ..., seconds_used: _Optional[float] = ..., seconds_left: _Optional[float] = ..., draws_sent: _Optional[int] = ..., evaluations_per_second: _Optional[float] = ..., parameters: _Optional[_Iterable[_Union[ParameterDiagnostics, _Mapping]]] = ..., ksd: _Optional[float] = ..., bound: _Optional[_Union[Bound, _Mapping]] = ..., curvature: _Optional[_Union[CurvatureEstimate, _Mapping]] = ..., targets: _Optional[_Iterable[_Union[TargetStatus, _Mapping]]] = ..., noise: _Optional[_Union[NoiseEstimate, _Mapping]] = ..., kernel: _Optional[_Union[KernelReport, _Mapping]] = ..., parameters_omitted: _Optional[int] = ..., workers: _Optional[_Iterable[_Union[WorkerReport, _Mapping]]] = ..., rows_reissued: _Optional[int] = ..., answers_late: _Optional[int] = ..., metric: _Optional[_Union[MetricReport, _Mapping]] = ..., tuning: _Optional[_Iterable[_Union[TuningChoice, _Mapping]]] = ..., tuning_evaluations: _Optional[int] = ...) -> None: ...
 
 class Register(_message.Message):
-    __slots__ = ["accepts_draw_references", "anchor_every", "burn_in", "chains", "checkpoint_every_steps", "curvature", "curvature_probe_iterations", "dim", "draws_per_chain", "envelope", "fixed_point_iterations", "fixed_point_tolerance", "friction", "inverse_mass", "keep_every", "kernel", "krylov_max_iterations", "krylov_tolerance", "max_evaluations", "max_message_bytes", "max_seconds", "names", "noise", "owner_evaluates", "progress_every_steps", "progress_interval_seconds", "schedule", "seed", "slice_max_expansions", "slice_width", "start", "start_rows", "step", "wants"]
+    __slots__ = ["accepts_draw_references", "anchor_every", "burn_in", "chains", "checkpoint_every_steps", "curvature", "curvature_probe_iterations", "dim", "draws_per_chain", "envelope", "fixed_point_iterations", "fixed_point_tolerance", "friction", "inverse_mass", "keep_every", "kernel", "krylov_max_iterations", "krylov_tolerance", "max_evaluations", "max_message_bytes", "max_seconds", "metric", "metric_form", "names", "noise", "owner_evaluates", "progress_every_steps", "progress_interval_seconds", "schedule", "seed", "slice_max_expansions", "slice_width", "start", "start_rows", "step", "wants"]
     ACCEPTS_DRAW_REFERENCES_FIELD_NUMBER: _ClassVar[int]
     ANCHOR_EVERY_FIELD_NUMBER: _ClassVar[int]
     BURN_IN_FIELD_NUMBER: _ClassVar[int]
@@ -467,6 +497,8 @@ class Register(_message.Message):
     MAX_EVALUATIONS_FIELD_NUMBER: _ClassVar[int]
     MAX_MESSAGE_BYTES_FIELD_NUMBER: _ClassVar[int]
     MAX_SECONDS_FIELD_NUMBER: _ClassVar[int]
+    METRIC_FIELD_NUMBER: _ClassVar[int]
+    METRIC_FORM_FIELD_NUMBER: _ClassVar[int]
     NAMES_FIELD_NUMBER: _ClassVar[int]
     NOISE_FIELD_NUMBER: _ClassVar[int]
     OWNER_EVALUATES_FIELD_NUMBER: _ClassVar[int]
@@ -501,6 +533,8 @@ class Register(_message.Message):
     max_evaluations: int
     max_message_bytes: int
     max_seconds: float
+    metric: bytes
+    metric_form: MetricForm
     names: _containers.RepeatedScalarFieldContainer[str]
     noise: GradientNoise
     owner_evaluates: bool
@@ -514,13 +548,14 @@ class Register(_message.Message):
     start_rows: int
     step: float
     wants: Wants
-    def __init__(self, dim: _Optional[int] = ..., chains: _Optional[int] = ..., kernel: _Optional[str] = ..., start: _Optional[bytes] = ..., start_rows: _Optional[int] = ..., step: _Optional[float] = ..., burn_in: _Optional[int] = ..., keep_every: _Optional[int] = ..., draws_per_chain: _Optional[int] = ..., max_evaluations: _Optional[int] = ..., max_seconds: _Optional[float] = ..., progress_every_steps: _Optional[int] = ..., progress_interval_seconds: _Optional[float] = ..., seed: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., max_message_bytes: _Optional[int] = ..., curvature: _Optional[_Union[Curvature, _Mapping]] = ..., wants: _Optional[_Union[Wants, _Mapping]] = ..., friction: _Optional[float] = ..., inverse_mass: _Optional[float] = ..., krylov_tolerance: _Optional[float] = ..., krylov_max_iterations: _Optional[int] = ..., schedule: _Optional[_Union[StepSchedule, _Mapping]] = ..., anchor_every: _Optional[int] = ..., fixed_point_tolerance: _Optional[float] = ..., fixed_point_iterations: _Optional[int] = ..., curvature_probe_iterations: _Optional[int] = ..., slice_width: _Optional[float] = ..., slice_max_expansions: _Optional[int] = ..., envelope: _Optional[_Union[Envelope, _Mapping]] = ..., owner_evaluates: bool = ..., noise: _Optional[_Union[GradientNoise, _Mapping]] = ..., checkpoint_every_steps: _Optional[int] = ..., accepts_draw_references: bool = ...) -> None: ...
+    def __init__(self, dim: _Optional[int] = ..., chains: _Optional[int] = ..., kernel: _Optional[str] = ..., start: _Optional[bytes] = ..., start_rows: _Optional[int] = ..., step: _Optional[float] = ..., burn_in: _Optional[int] = ..., keep_every: _Optional[int] = ..., draws_per_chain: _Optional[int] = ..., max_evaluations: _Optional[int] = ..., max_seconds: _Optional[float] = ..., progress_every_steps: _Optional[int] = ..., progress_interval_seconds: _Optional[float] = ..., seed: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., max_message_bytes: _Optional[int] = ..., curvature: _Optional[_Union[Curvature, _Mapping]] = ..., wants: _Optional[_Union[Wants, _Mapping]] = ..., friction: _Optional[float] = ..., inverse_mass: _Optional[float] = ..., krylov_tolerance: _Optional[float] = ..., krylov_max_iterations: _Optional[int] = ..., schedule: _Optional[_Union[StepSchedule, _Mapping]] = ..., anchor_every: _Optional[int] = ..., fixed_point_tolerance: _Optional[float] = ..., fixed_point_iterations: _Optional[int] = ..., curvature_probe_iterations: _Optional[int] = ..., slice_width: _Optional[float] = ..., slice_max_expansions: _Optional[int] = ..., envelope: _Optional[_Union[Envelope, _Mapping]] = ..., owner_evaluates: bool = ..., noise: _Optional[_Union[GradientNoise, _Mapping]] = ..., checkpoint_every_steps: _Optional[int] = ..., accepts_draw_references: bool = ..., metric: _Optional[bytes] = ..., metric_form: _Optional[_Union[MetricForm, str]] = ...) -> None: ...
 
 class Registered(_message.Message):
-    __slots__ = ["evaluations_per_step", "kernel", "max_message_bytes", "names", "planned_steps", "resume_token", "resumed", "seed", "session_id", "step"]
+    __slots__ = ["evaluations_per_step", "kernel", "max_message_bytes", "metric", "names", "planned_steps", "resume_token", "resumed", "seed", "session_id", "step", "tuning"]
     EVALUATIONS_PER_STEP_FIELD_NUMBER: _ClassVar[int]
     KERNEL_FIELD_NUMBER: _ClassVar[int]
     MAX_MESSAGE_BYTES_FIELD_NUMBER: _ClassVar[int]
+    METRIC_FIELD_NUMBER: _ClassVar[int]
     NAMES_FIELD_NUMBER: _ClassVar[int]
     PLANNED_STEPS_FIELD_NUMBER: _ClassVar[int]
     RESUMED_FIELD_NUMBER: _ClassVar[int]
@@ -528,9 +563,11 @@ class Registered(_message.Message):
     SEED_FIELD_NUMBER: _ClassVar[int]
     SESSION_ID_FIELD_NUMBER: _ClassVar[int]
     STEP_FIELD_NUMBER: _ClassVar[int]
+    TUNING_FIELD_NUMBER: _ClassVar[int]
     evaluations_per_step: int
     kernel: str
     max_message_bytes: int
+    metric: MetricReport
     names: _containers.RepeatedScalarFieldContainer[str]
     planned_steps: int
     resume_token: str
@@ -538,7 +575,8 @@ class Registered(_message.Message):
     seed: int
     session_id: str
     step: float
-    def __init__(self, session_id: _Optional[str] = ..., seed: _Optional[int] = ..., kernel: _Optional[str] = ..., step: _Optional[float] = ..., evaluations_per_step: _Optional[int] = ..., max_message_bytes: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., planned_steps: _Optional[int] = ..., resume_token: _Optional[str] = ..., resumed: bool = ...) -> None: ...
+    tuning: _containers.RepeatedCompositeFieldContainer[TuningChoice]
+    def __init__(self, session_id: _Optional[str] = ..., seed: _Optional[int] = ..., kernel: _Optional[str] = ..., step: _Optional[float] = ..., evaluations_per_step: _Optional[int] = ..., max_message_bytes: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., planned_steps: _Optional[int] = ..., resume_token: _Optional[str] = ..., resumed: bool = ..., metric: _Optional[_Union[MetricReport, _Mapping]] = ..., tuning: _Optional[_Iterable[_Union[TuningChoice, _Mapping]]] = ...) -> None: ...
 
 class Resume(_message.Message):
     __slots__ = ["next_seq", "session_id", "token"]
@@ -606,6 +644,16 @@ class TargetStatus(_message.Message):
     want: float
     def __init__(self, name: _Optional[str] = ..., want: _Optional[float] = ..., current: _Optional[float] = ..., met: bool = ..., projected_evaluations: _Optional[int] = ...) -> None: ...
 
+class TuningChoice(_message.Message):
+    __slots__ = ["reason", "setting", "value"]
+    REASON_FIELD_NUMBER: _ClassVar[int]
+    SETTING_FIELD_NUMBER: _ClassVar[int]
+    VALUE_FIELD_NUMBER: _ClassVar[int]
+    reason: str
+    setting: str
+    value: float
+    def __init__(self, setting: _Optional[str] = ..., value: _Optional[float] = ..., reason: _Optional[str] = ...) -> None: ...
+
 class Wants(_message.Message):
     __slots__ = ["eps", "max_ksd", "max_rhat", "metric", "min_bulk_ess", "min_tail_ess"]
     EPS_FIELD_NUMBER: _ClassVar[int]
@@ -637,6 +685,9 @@ class WorkerReport(_message.Message):
     rows_per_second: float
     rows_reissued: int
     def __init__(self, name: _Optional[str] = ..., owner: bool = ..., rows_per_second: _Optional[float] = ..., rows: _Optional[int] = ..., rows_reissued: _Optional[int] = ..., answers_late: _Optional[int] = ...) -> None: ...
+
+class MetricForm(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+    __slots__ = []
 
 class GradientKind(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = []
