@@ -77,6 +77,9 @@ func Work(ctx context.Context, cc grpc.ClientConnInterface, sessionID, token str
 		if p == nil {
 			continue // Attached
 		}
+		if err := r.hold(p); err != nil { // decodes the points answer reads
+			return err
+		}
 		if err := r.answer(ctx, p); err != nil {
 			if errors.Is(err, io.EOF) {
 				_, rerr := st.Recv()

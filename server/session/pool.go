@@ -247,6 +247,22 @@ type pool struct {
 	reissued    int64
 	late        int64
 	timer       *time.Timer
+	// Scratch reused by assign, so that a step allocates nothing.
+	elig, owners []*evaluator
+	speeds       []float64
+	shares       []int
+}
+
+// addPart appends part [lo, hi), reusing the holders slice of the part
+// that was there before.
+func (p *pool) addPart(lo, hi int) {
+	n := len(p.parts)
+	if n < cap(p.parts) {
+		p.parts = p.parts[:n+1]
+		p.parts[n] = part{lo: lo, hi: hi, holders: p.parts[n].holders[:0]}
+		return
+	}
+	p.parts = append(p.parts, part{lo: lo, hi: hi})
 }
 
 func newPool(o PoolOptions) *pool {
@@ -427,12 +443,13 @@ func (s *Session) assign(req *kernels.Request, send func(Frame) error) error {
 		return err
 	}
 	now := time.Now()
-	var elig []*evaluator
+	elig := p.elig[:0]
 	for _, e := range p.evals {
 		if !e.overdue && !slices.ContainsFunc(e.out, func(k outKey) bool { return k.req != s.requestID }) {
 			elig = append(elig, e)
 		}
 	}
+	p.elig = elig
 	if len(elig) == 0 {
 		elig = p.evals
 	}
@@ -440,18 +457,25 @@ func (s *Session) assign(req *kernels.Request, send func(Frame) error) error {
 	p.waiting = p.waiting[:0]
 	if len(elig) == 0 {
 		for lo := 0; lo < req.Rows; lo += s.rowsPerPart {
-			p.parts = append(p.parts, part{lo: lo, hi: min(lo+s.rowsPerPart, req.Rows)})
+			p.addPart(lo, min(lo+s.rowsPerPart, req.Rows))
 			p.waiting = append(p.waiting, len(p.parts)-1)
 		}
 		p.unanswered = len(p.parts)
 		return nil
 	}
-	speeds := make([]float64, len(elig))
-	for i, e := range elig {
-		speeds[i] = p.speedOf(e)
+	var shares []int
+	if len(elig) == 1 { // one evaluator takes every row
+		p.shares = append(p.shares[:0], req.Rows)
+		shares = p.shares
+	} else {
+		speeds := p.speeds[:0]
+		for _, e := range elig {
+			speeds = append(speeds, p.speedOf(e))
+		}
+		p.speeds = speeds
+		shares = split(req.Rows, speeds)
 	}
-	shares := split(req.Rows, speeds)
-	owners := make([]*evaluator, 0, len(elig))
+	owners := p.owners[:0]
 	lo := 0
 	for i, e := range elig {
 		end := lo + shares[i]
@@ -461,11 +485,12 @@ func (s *Session) assign(req *kernels.Request, send func(Frame) error) error {
 			size = min(size, max(1, (shares[i]+p.opts.Pieces-1)/p.opts.Pieces))
 		}
 		for a := lo; a < end; a += size {
-			p.parts = append(p.parts, part{lo: a, hi: min(a+size, end)})
+			p.addPart(a, min(a+size, end))
 			owners = append(owners, e)
 		}
 		lo = end
 	}
+	p.owners = owners
 	p.unanswered = len(p.parts)
 	for k, e := range owners {
 		if err := s.issue(req, k, e, now); err != nil {

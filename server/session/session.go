@@ -634,7 +634,8 @@ func (s *Session) sendPoints(req *kernels.Request, send func(Frame) error) error
 // pointsFrame is the Points frame of rows [lo, hi) of req.
 func (s *Session) pointsFrame(req *kernels.Request, lo, hi int) *Points {
 	dim := s.spec.Dim
-	f := &Points{RequestID: s.requestID, FirstRow: lo, Rows: hi - lo, TotalRows: req.Rows, Dim: dim,
+	f := &s.points // reused: a frame is valid only during its send (or encoding) call
+	*f = Points{RequestID: s.requestID, FirstRow: lo, Rows: hi - lo, TotalRows: req.Rows, Dim: dim,
 		Points: req.Points[lo*dim : hi*dim], Chains: req.Chain[lo:hi], Need: req.Need}
 	if req.Need.Has(kernels.NeedHessianVector) {
 		f.Vectors = req.Vectors[lo*dim : hi*dim]
