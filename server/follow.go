@@ -25,7 +25,7 @@ func (s *Server) Follow(req *sluicev1.FollowRequest, stream grpc.ServerStreaming
 		return problem(outsideLog, "from_seq", "%d is beyond the latest draw (next is %d)", from, next)
 	}
 	rows := max(1, wire.RowsPerMessage(f.limit, f.dim))
-	enc := encoder{maxParams: paramCap(f.limit)}
+	enc := encoder{maxParams: paramCap(f.limit), maxText: textCap(f.limit)}
 	for {
 		d, err := f.log.Read(stream.Context(), from, rows)
 		switch {

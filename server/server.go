@@ -294,7 +294,7 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 	log := s.log.With(zap.String("session", id))
 	log.Info("session started", zap.Int("dim", sp.Dim), zap.Int("chains", sp.Chains),
 		zap.String("kernel", sp.Kernel), zap.Float64("step", sp.Step), zap.Uint64("seed", sp.Seed))
-	enc := encoder{maxParams: paramCap(limit)}
+	enc := encoder{maxParams: paramCap(limit), maxText: textCap(limit)}
 	res, err := sess.Run(ctx, in, func(f session.Frame) error { return stream.Send(enc.frame(f)) })
 	f := res.Finished
 	fields := []zap.Field{zap.String("reason", f.Reason.String()), zap.Int64("evaluations", f.Progress.EvaluationsUsed),

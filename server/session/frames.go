@@ -93,6 +93,11 @@ type Progress struct {
 	Noise *NoiseEstimate
 	// Kernel is what the kernel reports of itself.
 	Kernel KernelReport
+	// Stein is the kernel Stein discrepancy with its uncertainty; nil
+	// when not measured (KSD above is its point estimate).
+	Stein *SteinReport
+	// Checks is the verdict so far: every named check with its status.
+	Checks []Check
 }
 
 // KernelReport holds a kernel's own figures (zero when it has none).
@@ -128,6 +133,9 @@ const (
 	Failed
 	Shutdown
 	TargetMet
+	// CheckFailed: the session would have ended with its draws collected
+	// or its targets met, but a check of the verdict failed.
+	CheckFailed
 )
 
 func (r Reason) String() string {
@@ -146,6 +154,8 @@ func (r Reason) String() string {
 		return "server shutting down"
 	case TargetMet:
 		return "target met"
+	case CheckFailed:
+		return "check failed"
 	}
 	return "unknown"
 }
@@ -163,6 +173,8 @@ type Finished struct {
 	Message    string
 	Progress   Progress
 	Parameters []ParameterSummary
+	// Checks is the session's verdict (the same as Progress.Checks).
+	Checks []Check
 }
 
 func (*Registered) frame() {}

@@ -262,6 +262,118 @@ func (State) EnumDescriptor() ([]byte, []int) {
 	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{3}
 }
 
+// What a Stein assessment can claim.
+type SteinState int32
+
+const (
+	SteinState_STEIN_STATE_UNSPECIFIED SteinState = 0
+	// Too few draws or values that are not finite.
+	SteinState_STEIN_STATE_UNDEFINED SteinState = 1
+	// The test does not reject KSD = 0: not distinguishable from 0 at this
+	// sample size (not a proof that the draws match the target).
+	SteinState_STEIN_STATE_INDISTINGUISHABLE SteinState = 2
+	// The test rejects KSD = 0: the draws measurably differ from the target.
+	SteinState_STEIN_STATE_SIGNIFICANT SteinState = 3
+)
+
+// Enum value maps for SteinState.
+var (
+	SteinState_name = map[int32]string{
+		0: "STEIN_STATE_UNSPECIFIED",
+		1: "STEIN_STATE_UNDEFINED",
+		2: "STEIN_STATE_INDISTINGUISHABLE",
+		3: "STEIN_STATE_SIGNIFICANT",
+	}
+	SteinState_value = map[string]int32{
+		"STEIN_STATE_UNSPECIFIED":       0,
+		"STEIN_STATE_UNDEFINED":         1,
+		"STEIN_STATE_INDISTINGUISHABLE": 2,
+		"STEIN_STATE_SIGNIFICANT":       3,
+	}
+)
+
+func (x SteinState) Enum() *SteinState {
+	p := new(SteinState)
+	*p = x
+	return p
+}
+
+func (x SteinState) String() string {
+	return protoimpl.X.EnumStringOf(x.Descriptor(), protoreflect.EnumNumber(x))
+}
+
+func (SteinState) Descriptor() protoreflect.EnumDescriptor {
+	return file_sluice_v1_sluice_proto_enumTypes[4].Descriptor()
+}
+
+func (SteinState) Type() protoreflect.EnumType {
+	return &file_sluice_v1_sluice_proto_enumTypes[4]
+}
+
+func (x SteinState) Number() protoreflect.EnumNumber {
+	return protoreflect.EnumNumber(x)
+}
+
+// Deprecated: Use SteinState.Descriptor instead.
+func (SteinState) EnumDescriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{4}
+}
+
+// How a check came out.
+type CheckStatus int32
+
+const (
+	CheckStatus_CHECK_STATUS_UNSPECIFIED CheckStatus = 0
+	CheckStatus_CHECK_STATUS_PASS        CheckStatus = 1
+	// Something to look at; the draws may still be usable.
+	CheckStatus_CHECK_STATUS_WARN CheckStatus = 2
+	// The draws should not be trusted for what this check covers.
+	CheckStatus_CHECK_STATUS_FAIL CheckStatus = 3
+)
+
+// Enum value maps for CheckStatus.
+var (
+	CheckStatus_name = map[int32]string{
+		0: "CHECK_STATUS_UNSPECIFIED",
+		1: "CHECK_STATUS_PASS",
+		2: "CHECK_STATUS_WARN",
+		3: "CHECK_STATUS_FAIL",
+	}
+	CheckStatus_value = map[string]int32{
+		"CHECK_STATUS_UNSPECIFIED": 0,
+		"CHECK_STATUS_PASS":        1,
+		"CHECK_STATUS_WARN":        2,
+		"CHECK_STATUS_FAIL":        3,
+	}
+)
+
+func (x CheckStatus) Enum() *CheckStatus {
+	p := new(CheckStatus)
+	*p = x
+	return p
+}
+
+func (x CheckStatus) String() string {
+	return protoimpl.X.EnumStringOf(x.Descriptor(), protoreflect.EnumNumber(x))
+}
+
+func (CheckStatus) Descriptor() protoreflect.EnumDescriptor {
+	return file_sluice_v1_sluice_proto_enumTypes[5].Descriptor()
+}
+
+func (CheckStatus) Type() protoreflect.EnumType {
+	return &file_sluice_v1_sluice_proto_enumTypes[5]
+}
+
+func (x CheckStatus) Number() protoreflect.EnumNumber {
+	return protoreflect.EnumNumber(x)
+}
+
+// Deprecated: Use CheckStatus.Descriptor instead.
+func (CheckStatus) EnumDescriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{5}
+}
+
 // Where a bound's curvature constants come from.
 type BoundSource int32
 
@@ -299,11 +411,11 @@ func (x BoundSource) String() string {
 }
 
 func (BoundSource) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[4].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[6].Descriptor()
 }
 
 func (BoundSource) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[4]
+	return &file_sluice_v1_sluice_proto_enumTypes[6]
 }
 
 func (x BoundSource) Number() protoreflect.EnumNumber {
@@ -312,7 +424,7 @@ func (x BoundSource) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use BoundSource.Descriptor instead.
 func (BoundSource) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{4}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{6}
 }
 
 // Why a session ended.
@@ -334,6 +446,9 @@ const (
 	FinishReason_FINISH_REASON_SHUTDOWN FinishReason = 6
 	// Every target in Register.wants holds.
 	FinishReason_FINISH_REASON_TARGET_MET FinishReason = 7
+	// The session would have ended with its draws collected or its targets
+	// met, but a check of the verdict failed; `message` names it.
+	FinishReason_FINISH_REASON_CHECK_FAILED FinishReason = 8
 )
 
 // Enum value maps for FinishReason.
@@ -347,6 +462,7 @@ var (
 		5: "FINISH_REASON_FAILED",
 		6: "FINISH_REASON_SHUTDOWN",
 		7: "FINISH_REASON_TARGET_MET",
+		8: "FINISH_REASON_CHECK_FAILED",
 	}
 	FinishReason_value = map[string]int32{
 		"FINISH_REASON_UNSPECIFIED":     0,
@@ -357,6 +473,7 @@ var (
 		"FINISH_REASON_FAILED":          5,
 		"FINISH_REASON_SHUTDOWN":        6,
 		"FINISH_REASON_TARGET_MET":      7,
+		"FINISH_REASON_CHECK_FAILED":    8,
 	}
 )
 
@@ -371,11 +488,11 @@ func (x FinishReason) String() string {
 }
 
 func (FinishReason) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[5].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[7].Descriptor()
 }
 
 func (FinishReason) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[5]
+	return &file_sluice_v1_sluice_proto_enumTypes[7]
 }
 
 func (x FinishReason) Number() protoreflect.EnumNumber {
@@ -384,7 +501,7 @@ func (x FinishReason) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use FinishReason.Descriptor instead.
 func (FinishReason) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{5}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{7}
 }
 
 // PlanRequest describes the target and the accuracy wanted.
@@ -1166,9 +1283,15 @@ type Register struct {
 	Envelope *Envelope `protobuf:"bytes,31,opt,name=envelope,proto3" json:"envelope,omitempty"`
 	// How the client's gradients are made: exact (the default) or
 	// stochastic (minibatches, Monte Carlo estimates, noisy simulators).
-	Noise         *GradientNoise `protobuf:"bytes,21,opt,name=noise,proto3" json:"noise,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	Noise *GradientNoise `protobuf:"bytes,21,opt,name=noise,proto3" json:"noise,omitempty"`
+	// Start points at which the gradient is compared with finite
+	// differences of the log density before sampling (log densities are
+	// asked for then, and counted in the budget): 0 means 3 for kernels that
+	// ask for log densities anyway and none for the others; -1 means none.
+	// A gradient that disagrees fails the session on evaluations.gradients.
+	GradientCheckPoints int32 `protobuf:"varint,32,opt,name=gradient_check_points,json=gradientCheckPoints,proto3" json:"gradient_check_points,omitempty"`
+	unknownFields       protoimpl.UnknownFields
+	sizeCache           protoimpl.SizeCache
 }
 
 func (x *Register) Reset() {
@@ -1416,6 +1539,13 @@ func (x *Register) GetNoise() *GradientNoise {
 		return x.Noise
 	}
 	return nil
+}
+
+func (x *Register) GetGradientCheckPoints() int32 {
+	if x != nil {
+		return x.GradientCheckPoints
+	}
+	return 0
 }
 
 // Envelope is q = N(mean, scale^2 I) with the declared bound
@@ -2390,8 +2520,13 @@ type Progress struct {
 	// Parameters left out of `parameters` so that the frame fits the message
 	// limit (the first ones are sent); 0 normally.
 	ParametersOmitted int32 `protobuf:"varint,16,opt,name=parameters_omitted,json=parametersOmitted,proto3" json:"parameters_omitted,omitempty"`
-	unknownFields     protoimpl.UnknownFields
-	sizeCache         protoimpl.SizeCache
+	// The kernel Stein discrepancy with its uncertainty (ksd above is its
+	// point estimate). Absent when not measured.
+	Stein *SteinAssessment `protobuf:"bytes,17,opt,name=stein,proto3" json:"stein,omitempty"`
+	// The session's verdict so far: every named check with its status.
+	Checks        []*Check `protobuf:"bytes,18,rep,name=checks,proto3" json:"checks,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *Progress) Reset() {
@@ -2536,6 +2671,206 @@ func (x *Progress) GetParametersOmitted() int32 {
 	return 0
 }
 
+func (x *Progress) GetStein() *SteinAssessment {
+	if x != nil {
+		return x.Stein
+	}
+	return nil
+}
+
+func (x *Progress) GetChecks() []*Check {
+	if x != nil {
+		return x.Checks
+	}
+	return nil
+}
+
+// SteinAssessment is a kernel Stein discrepancy of the kept draws in
+// standardised coordinates, with its standard error, an upper 95 % bound
+// and a bootstrap test of KSD = 0.
+type SteinAssessment struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Point estimate, sqrt(max(U, 0)) of the U-statistic U of KSD^2: 0 is
+	// not evidence of a small discrepancy; read upper95 and state.
+	Ksd float64 `protobuf:"fixed64,1,opt,name=ksd,proto3" json:"ksd,omitempty"`
+	// The U-statistic of KSD^2 (may be negative: sampling noise) and its
+	// standard error.
+	UStatistic float64 `protobuf:"fixed64,2,opt,name=u_statistic,json=uStatistic,proto3" json:"u_statistic,omitempty"`
+	Se         float64 `protobuf:"fixed64,3,opt,name=se,proto3" json:"se,omitempty"`
+	// Upper 95 % confidence bound on the KSD: a max_ksd target is met only
+	// when this is below it.
+	Upper95 float64 `protobuf:"fixed64,4,opt,name=upper95,proto3" json:"upper95,omitempty"`
+	// Bootstrap p-value of the test of KSD = 0.
+	PValue float64 `protobuf:"fixed64,5,opt,name=p_value,json=pValue,proto3" json:"p_value,omitempty"`
+	// Draws it was computed from.
+	Draws int64      `protobuf:"varint,6,opt,name=draws,proto3" json:"draws,omitempty"`
+	State SteinState `protobuf:"varint,7,opt,name=state,proto3,enum=sluice.v1.SteinState" json:"state,omitempty"`
+	// The state in plain words.
+	StateText     string `protobuf:"bytes,8,opt,name=state_text,json=stateText,proto3" json:"state_text,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *SteinAssessment) Reset() {
+	*x = SteinAssessment{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *SteinAssessment) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*SteinAssessment) ProtoMessage() {}
+
+func (x *SteinAssessment) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use SteinAssessment.ProtoReflect.Descriptor instead.
+func (*SteinAssessment) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{18}
+}
+
+func (x *SteinAssessment) GetKsd() float64 {
+	if x != nil {
+		return x.Ksd
+	}
+	return 0
+}
+
+func (x *SteinAssessment) GetUStatistic() float64 {
+	if x != nil {
+		return x.UStatistic
+	}
+	return 0
+}
+
+func (x *SteinAssessment) GetSe() float64 {
+	if x != nil {
+		return x.Se
+	}
+	return 0
+}
+
+func (x *SteinAssessment) GetUpper95() float64 {
+	if x != nil {
+		return x.Upper95
+	}
+	return 0
+}
+
+func (x *SteinAssessment) GetPValue() float64 {
+	if x != nil {
+		return x.PValue
+	}
+	return 0
+}
+
+func (x *SteinAssessment) GetDraws() int64 {
+	if x != nil {
+		return x.Draws
+	}
+	return 0
+}
+
+func (x *SteinAssessment) GetState() SteinState {
+	if x != nil {
+		return x.State
+	}
+	return SteinState_STEIN_STATE_UNSPECIFIED
+}
+
+func (x *SteinAssessment) GetStateText() string {
+	if x != nil {
+		return x.StateText
+	}
+	return ""
+}
+
+// Check is one named check of a session's verdict: divergence, stability,
+// mixing, bias, gradient, guarantee.
+type Check struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Which check, e.g. "divergence", "mixing".
+	Name   string      `protobuf:"bytes,1,opt,name=name,proto3" json:"name,omitempty"`
+	Status CheckStatus `protobuf:"varint,2,opt,name=status,proto3,enum=sluice.v1.CheckStatus" json:"status,omitempty"`
+	// The figure the status rests on (its meaning is in the message), e.g.
+	// the largest R-hat; NaN when there is none.
+	Figure float64 `protobuf:"fixed64,3,opt,name=figure,proto3" json:"figure,omitempty"`
+	// One sentence for a person: what was found and what to do.
+	Message       string `protobuf:"bytes,4,opt,name=message,proto3" json:"message,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *Check) Reset() {
+	*x = Check{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *Check) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*Check) ProtoMessage() {}
+
+func (x *Check) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use Check.ProtoReflect.Descriptor instead.
+func (*Check) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{19}
+}
+
+func (x *Check) GetName() string {
+	if x != nil {
+		return x.Name
+	}
+	return ""
+}
+
+func (x *Check) GetStatus() CheckStatus {
+	if x != nil {
+		return x.Status
+	}
+	return CheckStatus_CHECK_STATUS_UNSPECIFIED
+}
+
+func (x *Check) GetFigure() float64 {
+	if x != nil {
+		return x.Figure
+	}
+	return 0
+}
+
+func (x *Check) GetMessage() string {
+	if x != nil {
+		return x.Message
+	}
+	return ""
+}
+
 // KernelReport holds a kernel's own figures.
 type KernelReport struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -2563,7 +2898,7 @@ type KernelReport struct {
 
 func (x *KernelReport) Reset() {
 	*x = KernelReport{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2575,7 +2910,7 @@ func (x *KernelReport) String() string {
 func (*KernelReport) ProtoMessage() {}
 
 func (x *KernelReport) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[18]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2588,7 +2923,7 @@ func (x *KernelReport) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use KernelReport.ProtoReflect.Descriptor instead.
 func (*KernelReport) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{18}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{20}
 }
 
 func (x *KernelReport) GetStep() float64 {
@@ -2671,7 +3006,7 @@ type NoiseEstimate struct {
 
 func (x *NoiseEstimate) Reset() {
 	*x = NoiseEstimate{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2683,7 +3018,7 @@ func (x *NoiseEstimate) String() string {
 func (*NoiseEstimate) ProtoMessage() {}
 
 func (x *NoiseEstimate) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[19]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2696,7 +3031,7 @@ func (x *NoiseEstimate) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use NoiseEstimate.ProtoReflect.Descriptor instead.
 func (*NoiseEstimate) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{19}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{21}
 }
 
 func (x *NoiseEstimate) GetVariance() float64 {
@@ -2759,7 +3094,7 @@ type ParameterDiagnostics struct {
 
 func (x *ParameterDiagnostics) Reset() {
 	*x = ParameterDiagnostics{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2771,7 +3106,7 @@ func (x *ParameterDiagnostics) String() string {
 func (*ParameterDiagnostics) ProtoMessage() {}
 
 func (x *ParameterDiagnostics) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2784,7 +3119,7 @@ func (x *ParameterDiagnostics) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ParameterDiagnostics.ProtoReflect.Descriptor instead.
 func (*ParameterDiagnostics) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{20}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{22}
 }
 
 func (x *ParameterDiagnostics) GetName() string {
@@ -2860,7 +3195,7 @@ type Bound struct {
 
 func (x *Bound) Reset() {
 	*x = Bound{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2872,7 +3207,7 @@ func (x *Bound) String() string {
 func (*Bound) ProtoMessage() {}
 
 func (x *Bound) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2885,7 +3220,7 @@ func (x *Bound) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Bound.ProtoReflect.Descriptor instead.
 func (*Bound) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{21}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{23}
 }
 
 func (x *Bound) GetMetric() Metric {
@@ -2968,7 +3303,7 @@ type CurvatureEstimate struct {
 
 func (x *CurvatureEstimate) Reset() {
 	*x = CurvatureEstimate{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[24]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2980,7 +3315,7 @@ func (x *CurvatureEstimate) String() string {
 func (*CurvatureEstimate) ProtoMessage() {}
 
 func (x *CurvatureEstimate) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[24]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2993,7 +3328,7 @@ func (x *CurvatureEstimate) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use CurvatureEstimate.ProtoReflect.Descriptor instead.
 func (*CurvatureEstimate) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{22}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{24}
 }
 
 func (x *CurvatureEstimate) GetPairs() int64 {
@@ -3062,7 +3397,7 @@ type TargetStatus struct {
 
 func (x *TargetStatus) Reset() {
 	*x = TargetStatus{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[25]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3074,7 +3409,7 @@ func (x *TargetStatus) String() string {
 func (*TargetStatus) ProtoMessage() {}
 
 func (x *TargetStatus) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[25]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3087,7 +3422,7 @@ func (x *TargetStatus) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use TargetStatus.ProtoReflect.Descriptor instead.
 func (*TargetStatus) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{23}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{25}
 }
 
 func (x *TargetStatus) GetName() string {
@@ -3138,13 +3473,16 @@ type Finished struct {
 	Parameters []*ParameterSummary `protobuf:"bytes,4,rep,name=parameters,proto3" json:"parameters,omitempty"`
 	// Parameters left out of `parameters` to fit the message limit.
 	ParametersOmitted int32 `protobuf:"varint,5,opt,name=parameters_omitted,json=parametersOmitted,proto3" json:"parameters_omitted,omitempty"`
-	unknownFields     protoimpl.UnknownFields
-	sizeCache         protoimpl.SizeCache
+	// The session's verdict: every named check with its status (the same as
+	// progress.checks).
+	Checks        []*Check `protobuf:"bytes,6,rep,name=checks,proto3" json:"checks,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *Finished) Reset() {
 	*x = Finished{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[24]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[26]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3156,7 +3494,7 @@ func (x *Finished) String() string {
 func (*Finished) ProtoMessage() {}
 
 func (x *Finished) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[24]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[26]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3169,7 +3507,7 @@ func (x *Finished) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Finished.ProtoReflect.Descriptor instead.
 func (*Finished) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{24}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{26}
 }
 
 func (x *Finished) GetReason() FinishReason {
@@ -3207,6 +3545,13 @@ func (x *Finished) GetParametersOmitted() int32 {
 	return 0
 }
 
+func (x *Finished) GetChecks() []*Check {
+	if x != nil {
+		return x.Checks
+	}
+	return nil
+}
+
 // ParameterSummary summarises the kept draws of one parameter over all
 // chains.
 type ParameterSummary struct {
@@ -3224,7 +3569,7 @@ type ParameterSummary struct {
 
 func (x *ParameterSummary) Reset() {
 	*x = ParameterSummary{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[25]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[27]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3236,7 +3581,7 @@ func (x *ParameterSummary) String() string {
 func (*ParameterSummary) ProtoMessage() {}
 
 func (x *ParameterSummary) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[25]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[27]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3249,7 +3594,7 @@ func (x *ParameterSummary) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ParameterSummary.ProtoReflect.Descriptor instead.
 func (*ParameterSummary) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{25}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{27}
 }
 
 func (x *ParameterSummary) GetName() string {
@@ -3332,7 +3677,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x05draws\x18\x03 \x01(\v2\x10.sluice.v1.DrawsH\x00R\x05draws\x121\n" +
 	"\bprogress\x18\x04 \x01(\v2\x13.sluice.v1.ProgressH\x00R\bprogress\x121\n" +
 	"\bfinished\x18\x05 \x01(\v2\x13.sluice.v1.FinishedH\x00R\bfinishedB\a\n" +
-	"\x05frame\"\xb1\t\n" +
+	"\x05frame\"\xe5\t\n" +
 	"\bRegister\x12\x10\n" +
 	"\x03dim\x18\x01 \x01(\x05R\x03dim\x12\x16\n" +
 	"\x06chains\x18\x02 \x01(\x05R\x06chains\x12\x16\n" +
@@ -3369,7 +3714,8 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"sliceWidth\x120\n" +
 	"\x14slice_max_expansions\x18\x1e \x01(\x05R\x12sliceMaxExpansions\x12/\n" +
 	"\benvelope\x18\x1f \x01(\v2\x13.sluice.v1.EnvelopeR\benvelope\x12.\n" +
-	"\x05noise\x18\x15 \x01(\v2\x18.sluice.v1.GradientNoiseR\x05noise\"Q\n" +
+	"\x05noise\x18\x15 \x01(\v2\x18.sluice.v1.GradientNoiseR\x05noise\x122\n" +
+	"\x15gradient_check_points\x18  \x01(\x05R\x13gradientCheckPoints\"Q\n" +
 	"\bEnvelope\x12\x12\n" +
 	"\x04mean\x18\x01 \x01(\fR\x04mean\x12\x14\n" +
 	"\x05scale\x18\x02 \x01(\x01R\x05scale\x12\x1b\n" +
@@ -3455,7 +3801,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x06chains\x18\x05 \x03(\x05R\x06chains\x12\x1e\n" +
 	"\n" +
 	"iterations\x18\x06 \x03(\x03R\n" +
-	"iterations\"\xb3\x05\n" +
+	"iterations\"\x8f\x06\n" +
 	"\bProgress\x12&\n" +
 	"\x05state\x18\x01 \x01(\x0e2\x10.sluice.v1.StateR\x05state\x12\x14\n" +
 	"\x05steps\x18\x02 \x01(\x03R\x05steps\x12)\n" +
@@ -3476,7 +3822,25 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\atargets\x18\r \x03(\v2\x17.sluice.v1.TargetStatusR\atargets\x12.\n" +
 	"\x05noise\x18\x0e \x01(\v2\x18.sluice.v1.NoiseEstimateR\x05noise\x12/\n" +
 	"\x06kernel\x18\x0f \x01(\v2\x17.sluice.v1.KernelReportR\x06kernel\x12-\n" +
-	"\x12parameters_omitted\x18\x10 \x01(\x05R\x11parametersOmitted\"\xdd\x02\n" +
+	"\x12parameters_omitted\x18\x10 \x01(\x05R\x11parametersOmitted\x120\n" +
+	"\x05stein\x18\x11 \x01(\v2\x1a.sluice.v1.SteinAssessmentR\x05stein\x12(\n" +
+	"\x06checks\x18\x12 \x03(\v2\x10.sluice.v1.CheckR\x06checks\"\xe9\x01\n" +
+	"\x0fSteinAssessment\x12\x10\n" +
+	"\x03ksd\x18\x01 \x01(\x01R\x03ksd\x12\x1f\n" +
+	"\vu_statistic\x18\x02 \x01(\x01R\n" +
+	"uStatistic\x12\x0e\n" +
+	"\x02se\x18\x03 \x01(\x01R\x02se\x12\x18\n" +
+	"\aupper95\x18\x04 \x01(\x01R\aupper95\x12\x17\n" +
+	"\ap_value\x18\x05 \x01(\x01R\x06pValue\x12\x14\n" +
+	"\x05draws\x18\x06 \x01(\x03R\x05draws\x12+\n" +
+	"\x05state\x18\a \x01(\x0e2\x15.sluice.v1.SteinStateR\x05state\x12\x1d\n" +
+	"\n" +
+	"state_text\x18\b \x01(\tR\tstateText\"}\n" +
+	"\x05Check\x12\x12\n" +
+	"\x04name\x18\x01 \x01(\tR\x04name\x12.\n" +
+	"\x06status\x18\x02 \x01(\x0e2\x16.sluice.v1.CheckStatusR\x06status\x12\x16\n" +
+	"\x06figure\x18\x03 \x01(\x01R\x06figure\x12\x18\n" +
+	"\amessage\x18\x04 \x01(\tR\amessage\"\xdd\x02\n" +
 	"\fKernelReport\x12\x12\n" +
 	"\x04step\x18\x01 \x01(\x01R\x04step\x12\x1a\n" +
 	"\badapting\x18\x02 \x01(\bR\badapting\x12)\n" +
@@ -3527,7 +3891,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x04want\x18\x02 \x01(\x01R\x04want\x12\x18\n" +
 	"\acurrent\x18\x03 \x01(\x01R\acurrent\x12\x10\n" +
 	"\x03met\x18\x04 \x01(\bR\x03met\x123\n" +
-	"\x15projected_evaluations\x18\x05 \x01(\x03R\x14projectedEvaluations\"\xf2\x01\n" +
+	"\x15projected_evaluations\x18\x05 \x01(\x03R\x14projectedEvaluations\"\x9c\x02\n" +
 	"\bFinished\x12/\n" +
 	"\x06reason\x18\x01 \x01(\x0e2\x17.sluice.v1.FinishReasonR\x06reason\x12\x18\n" +
 	"\amessage\x18\x02 \x01(\tR\amessage\x12/\n" +
@@ -3535,7 +3899,8 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\n" +
 	"parameters\x18\x04 \x03(\v2\x1b.sluice.v1.ParameterSummaryR\n" +
 	"parameters\x12-\n" +
-	"\x12parameters_omitted\x18\x05 \x01(\x05R\x11parametersOmitted\"`\n" +
+	"\x12parameters_omitted\x18\x05 \x01(\x05R\x11parametersOmitted\x12(\n" +
+	"\x06checks\x18\x06 \x03(\v2\x10.sluice.v1.CheckR\x06checks\"`\n" +
 	"\x10ParameterSummary\x12\x12\n" +
 	"\x04name\x18\x01 \x01(\tR\x04name\x12\x12\n" +
 	"\x04mean\x18\x02 \x01(\x01R\x04mean\x12\x0e\n" +
@@ -3559,11 +3924,22 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x11STATE_UNSPECIFIED\x10\x00\x12\x11\n" +
 	"\rSTATE_BURN_IN\x10\x01\x12\x12\n" +
 	"\x0eSTATE_SAMPLING\x10\x02\x12\x12\n" +
-	"\x0eSTATE_FINISHED\x10\x03*b\n" +
+	"\x0eSTATE_FINISHED\x10\x03*\x84\x01\n" +
+	"\n" +
+	"SteinState\x12\x1b\n" +
+	"\x17STEIN_STATE_UNSPECIFIED\x10\x00\x12\x19\n" +
+	"\x15STEIN_STATE_UNDEFINED\x10\x01\x12!\n" +
+	"\x1dSTEIN_STATE_INDISTINGUISHABLE\x10\x02\x12\x1b\n" +
+	"\x17STEIN_STATE_SIGNIFICANT\x10\x03*p\n" +
+	"\vCheckStatus\x12\x1c\n" +
+	"\x18CHECK_STATUS_UNSPECIFIED\x10\x00\x12\x15\n" +
+	"\x11CHECK_STATUS_PASS\x10\x01\x12\x15\n" +
+	"\x11CHECK_STATUS_WARN\x10\x02\x12\x15\n" +
+	"\x11CHECK_STATUS_FAIL\x10\x03*b\n" +
 	"\vBoundSource\x12\x1c\n" +
 	"\x18BOUND_SOURCE_UNSPECIFIED\x10\x00\x12\x19\n" +
 	"\x15BOUND_SOURCE_DECLARED\x10\x01\x12\x1a\n" +
-	"\x16BOUND_SOURCE_ESTIMATED\x10\x02*\xfd\x01\n" +
+	"\x16BOUND_SOURCE_ESTIMATED\x10\x02*\x9d\x02\n" +
 	"\fFinishReason\x12\x1d\n" +
 	"\x19FINISH_REASON_UNSPECIFIED\x10\x00\x12\x1e\n" +
 	"\x1aFINISH_REASON_BUDGET_SPENT\x10\x01\x12\x1c\n" +
@@ -3572,7 +3948,8 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x1dFINISH_REASON_DRAWS_COLLECTED\x10\x04\x12\x18\n" +
 	"\x14FINISH_REASON_FAILED\x10\x05\x12\x1a\n" +
 	"\x16FINISH_REASON_SHUTDOWN\x10\x06\x12\x1c\n" +
-	"\x18FINISH_REASON_TARGET_MET\x10\a2\xcf\x01\n" +
+	"\x18FINISH_REASON_TARGET_MET\x10\a\x12\x1e\n" +
+	"\x1aFINISH_REASON_CHECK_FAILED\x10\b2\xcf\x01\n" +
 	"\rSluiceService\x12D\n" +
 	"\aSession\x12\x19.sluice.v1.SessionRequest\x1a\x1a.sluice.v1.SessionResponse(\x010\x01\x12?\n" +
 	"\x06Follow\x12\x18.sluice.v1.FollowRequest\x1a\x19.sluice.v1.FollowResponse0\x01\x127\n" +
@@ -3590,87 +3967,96 @@ func file_sluice_v1_sluice_proto_rawDescGZIP() []byte {
 	return file_sluice_v1_sluice_proto_rawDescData
 }
 
-var file_sluice_v1_sluice_proto_enumTypes = make([]protoimpl.EnumInfo, 6)
-var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 26)
+var file_sluice_v1_sluice_proto_enumTypes = make([]protoimpl.EnumInfo, 8)
+var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 28)
 var file_sluice_v1_sluice_proto_goTypes = []any{
 	(GradientKind)(0),            // 0: sluice.v1.GradientKind
 	(Metric)(0),                  // 1: sluice.v1.Metric
 	(Quantity)(0),                // 2: sluice.v1.Quantity
 	(State)(0),                   // 3: sluice.v1.State
-	(BoundSource)(0),             // 4: sluice.v1.BoundSource
-	(FinishReason)(0),            // 5: sluice.v1.FinishReason
-	(*PlanRequest)(nil),          // 6: sluice.v1.PlanRequest
-	(*PlanResponse)(nil),         // 7: sluice.v1.PlanResponse
-	(*FollowRequest)(nil),        // 8: sluice.v1.FollowRequest
-	(*FollowResponse)(nil),       // 9: sluice.v1.FollowResponse
-	(*SessionRequest)(nil),       // 10: sluice.v1.SessionRequest
-	(*SessionResponse)(nil),      // 11: sluice.v1.SessionResponse
-	(*Register)(nil),             // 12: sluice.v1.Register
-	(*Envelope)(nil),             // 13: sluice.v1.Envelope
-	(*StepSchedule)(nil),         // 14: sluice.v1.StepSchedule
-	(*GradientNoise)(nil),        // 15: sluice.v1.GradientNoise
-	(*Curvature)(nil),            // 16: sluice.v1.Curvature
-	(*Wants)(nil),                // 17: sluice.v1.Wants
-	(*Registered)(nil),           // 18: sluice.v1.Registered
-	(*Points)(nil),               // 19: sluice.v1.Points
-	(*Evaluations)(nil),          // 20: sluice.v1.Evaluations
-	(*Stop)(nil),                 // 21: sluice.v1.Stop
-	(*Draws)(nil),                // 22: sluice.v1.Draws
-	(*Progress)(nil),             // 23: sluice.v1.Progress
-	(*KernelReport)(nil),         // 24: sluice.v1.KernelReport
-	(*NoiseEstimate)(nil),        // 25: sluice.v1.NoiseEstimate
-	(*ParameterDiagnostics)(nil), // 26: sluice.v1.ParameterDiagnostics
-	(*Bound)(nil),                // 27: sluice.v1.Bound
-	(*CurvatureEstimate)(nil),    // 28: sluice.v1.CurvatureEstimate
-	(*TargetStatus)(nil),         // 29: sluice.v1.TargetStatus
-	(*Finished)(nil),             // 30: sluice.v1.Finished
-	(*ParameterSummary)(nil),     // 31: sluice.v1.ParameterSummary
+	(SteinState)(0),              // 4: sluice.v1.SteinState
+	(CheckStatus)(0),             // 5: sluice.v1.CheckStatus
+	(BoundSource)(0),             // 6: sluice.v1.BoundSource
+	(FinishReason)(0),            // 7: sluice.v1.FinishReason
+	(*PlanRequest)(nil),          // 8: sluice.v1.PlanRequest
+	(*PlanResponse)(nil),         // 9: sluice.v1.PlanResponse
+	(*FollowRequest)(nil),        // 10: sluice.v1.FollowRequest
+	(*FollowResponse)(nil),       // 11: sluice.v1.FollowResponse
+	(*SessionRequest)(nil),       // 12: sluice.v1.SessionRequest
+	(*SessionResponse)(nil),      // 13: sluice.v1.SessionResponse
+	(*Register)(nil),             // 14: sluice.v1.Register
+	(*Envelope)(nil),             // 15: sluice.v1.Envelope
+	(*StepSchedule)(nil),         // 16: sluice.v1.StepSchedule
+	(*GradientNoise)(nil),        // 17: sluice.v1.GradientNoise
+	(*Curvature)(nil),            // 18: sluice.v1.Curvature
+	(*Wants)(nil),                // 19: sluice.v1.Wants
+	(*Registered)(nil),           // 20: sluice.v1.Registered
+	(*Points)(nil),               // 21: sluice.v1.Points
+	(*Evaluations)(nil),          // 22: sluice.v1.Evaluations
+	(*Stop)(nil),                 // 23: sluice.v1.Stop
+	(*Draws)(nil),                // 24: sluice.v1.Draws
+	(*Progress)(nil),             // 25: sluice.v1.Progress
+	(*SteinAssessment)(nil),      // 26: sluice.v1.SteinAssessment
+	(*Check)(nil),                // 27: sluice.v1.Check
+	(*KernelReport)(nil),         // 28: sluice.v1.KernelReport
+	(*NoiseEstimate)(nil),        // 29: sluice.v1.NoiseEstimate
+	(*ParameterDiagnostics)(nil), // 30: sluice.v1.ParameterDiagnostics
+	(*Bound)(nil),                // 31: sluice.v1.Bound
+	(*CurvatureEstimate)(nil),    // 32: sluice.v1.CurvatureEstimate
+	(*TargetStatus)(nil),         // 33: sluice.v1.TargetStatus
+	(*Finished)(nil),             // 34: sluice.v1.Finished
+	(*ParameterSummary)(nil),     // 35: sluice.v1.ParameterSummary
 }
 var file_sluice_v1_sluice_proto_depIdxs = []int32{
-	16, // 0: sluice.v1.PlanRequest.curvature:type_name -> sluice.v1.Curvature
+	18, // 0: sluice.v1.PlanRequest.curvature:type_name -> sluice.v1.Curvature
 	1,  // 1: sluice.v1.PlanRequest.metric:type_name -> sluice.v1.Metric
-	27, // 2: sluice.v1.PlanResponse.bound:type_name -> sluice.v1.Bound
-	22, // 3: sluice.v1.FollowResponse.draws:type_name -> sluice.v1.Draws
-	30, // 4: sluice.v1.FollowResponse.finished:type_name -> sluice.v1.Finished
-	12, // 5: sluice.v1.SessionRequest.register:type_name -> sluice.v1.Register
-	20, // 6: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
-	21, // 7: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
-	18, // 8: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
-	19, // 9: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
-	22, // 10: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
-	23, // 11: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
-	30, // 12: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
-	16, // 13: sluice.v1.Register.curvature:type_name -> sluice.v1.Curvature
-	17, // 14: sluice.v1.Register.wants:type_name -> sluice.v1.Wants
-	14, // 15: sluice.v1.Register.schedule:type_name -> sluice.v1.StepSchedule
-	13, // 16: sluice.v1.Register.envelope:type_name -> sluice.v1.Envelope
-	15, // 17: sluice.v1.Register.noise:type_name -> sluice.v1.GradientNoise
+	31, // 2: sluice.v1.PlanResponse.bound:type_name -> sluice.v1.Bound
+	24, // 3: sluice.v1.FollowResponse.draws:type_name -> sluice.v1.Draws
+	34, // 4: sluice.v1.FollowResponse.finished:type_name -> sluice.v1.Finished
+	14, // 5: sluice.v1.SessionRequest.register:type_name -> sluice.v1.Register
+	22, // 6: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
+	23, // 7: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
+	20, // 8: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
+	21, // 9: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
+	24, // 10: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
+	25, // 11: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
+	34, // 12: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
+	18, // 13: sluice.v1.Register.curvature:type_name -> sluice.v1.Curvature
+	19, // 14: sluice.v1.Register.wants:type_name -> sluice.v1.Wants
+	16, // 15: sluice.v1.Register.schedule:type_name -> sluice.v1.StepSchedule
+	15, // 16: sluice.v1.Register.envelope:type_name -> sluice.v1.Envelope
+	17, // 17: sluice.v1.Register.noise:type_name -> sluice.v1.GradientNoise
 	0,  // 18: sluice.v1.GradientNoise.kind:type_name -> sluice.v1.GradientKind
 	1,  // 19: sluice.v1.Wants.metric:type_name -> sluice.v1.Metric
 	2,  // 20: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
 	3,  // 21: sluice.v1.Progress.state:type_name -> sluice.v1.State
-	26, // 22: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
-	27, // 23: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
-	28, // 24: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
-	29, // 25: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
-	25, // 26: sluice.v1.Progress.noise:type_name -> sluice.v1.NoiseEstimate
-	24, // 27: sluice.v1.Progress.kernel:type_name -> sluice.v1.KernelReport
-	1,  // 28: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
-	4,  // 29: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
-	5,  // 30: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
-	23, // 31: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
-	31, // 32: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
-	10, // 33: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
-	8,  // 34: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
-	6,  // 35: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
-	11, // 36: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
-	9,  // 37: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
-	7,  // 38: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
-	36, // [36:39] is the sub-list for method output_type
-	33, // [33:36] is the sub-list for method input_type
-	33, // [33:33] is the sub-list for extension type_name
-	33, // [33:33] is the sub-list for extension extendee
-	0,  // [0:33] is the sub-list for field type_name
+	30, // 22: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
+	31, // 23: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
+	32, // 24: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
+	33, // 25: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
+	29, // 26: sluice.v1.Progress.noise:type_name -> sluice.v1.NoiseEstimate
+	28, // 27: sluice.v1.Progress.kernel:type_name -> sluice.v1.KernelReport
+	26, // 28: sluice.v1.Progress.stein:type_name -> sluice.v1.SteinAssessment
+	27, // 29: sluice.v1.Progress.checks:type_name -> sluice.v1.Check
+	4,  // 30: sluice.v1.SteinAssessment.state:type_name -> sluice.v1.SteinState
+	5,  // 31: sluice.v1.Check.status:type_name -> sluice.v1.CheckStatus
+	1,  // 32: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
+	6,  // 33: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
+	7,  // 34: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
+	25, // 35: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
+	35, // 36: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
+	27, // 37: sluice.v1.Finished.checks:type_name -> sluice.v1.Check
+	12, // 38: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
+	10, // 39: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
+	8,  // 40: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
+	13, // 41: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
+	11, // 42: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
+	9,  // 43: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
+	41, // [41:44] is the sub-list for method output_type
+	38, // [38:41] is the sub-list for method input_type
+	38, // [38:38] is the sub-list for extension type_name
+	38, // [38:38] is the sub-list for extension extendee
+	0,  // [0:38] is the sub-list for field type_name
 }
 
 func init() { file_sluice_v1_sluice_proto_init() }
@@ -3699,8 +4085,8 @@ func file_sluice_v1_sluice_proto_init() {
 		File: protoimpl.DescBuilder{
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_sluice_v1_sluice_proto_rawDesc), len(file_sluice_v1_sluice_proto_rawDesc)),
-			NumEnums:      6,
-			NumMessages:   26,
+			NumEnums:      8,
+			NumMessages:   28,
 			NumExtensions: 0,
 			NumServices:   1,
 		},
