@@ -67,6 +67,10 @@ type guarantee struct {
 	// startSource says how the start distance was obtained ("" for the
 	// declared or default one).
 	startSource string
+	// tvStart is, for a TV bound, a lower bound on the start points'
+	// distance to the mode in standard deviations of N(x*, M⁻¹I),
+	// certified from the start gradients (0: not yet known).
+	tvStart float64
 }
 
 // newGuarantee returns nil when no bound applies: no curvature declared,

@@ -6,6 +6,7 @@ import (
 	"strings"
 
 	"sluice/kernels"
+	"sluice/kernels/bound"
 	"sluice/kernels/diag"
 )
 
@@ -384,6 +385,8 @@ func (s *Session) boundBroken() string {
 	cv := &s.mon.curv
 	const slack = 1 + 1e-9
 	switch {
+	case s.guarantee != nil && s.guarantee.tvStart > 1:
+		return fmt.Sprintf("the TV bound of Dalalyan (2017) assumes chains started from N(x*, M⁻¹I), x* the mode; a start point is at least %.3g of that law's standard deviations from the mode (‖∇log π(x₀)‖/M, by M-smoothness), so it does not apply", s.guarantee.tvStart)
 	case cv.NonConvex() && c.StrongConvexity > 0:
 		return fmt.Sprintf("a gradient pair shows −log π is not convex, but m = %.4g was declared", c.StrongConvexity)
 	case cv.Pairs() > 0 && cv.SmoothnessFloor() > c.Smoothness*slack:
@@ -413,6 +416,13 @@ func (s *Session) guaranteeChecks() []Check {
 	}
 	c := Check{Name: "guarantee", Status: CheckPass, Figure: b.Total,
 		Message: fmt.Sprintf("the %s bound %.4g rests on %s; %s", g.metric, b.Total, g.theorem(), g.startText())}
+	if g.metric == bound.TV {
+		// The chains start from the client's points, not from a draw of
+		// N(x*, M⁻¹I): within a standard deviation of the mode (or
+		// unknown, m = 0) the bound is only indicative.
+		c.Status = CheckWarn
+		c.Message = "the chains were not started from N(x*, M⁻¹I) as the theorem assumes (they start from the given points), so the bound is indicative only; " + c.Message
+	}
 	if g.metric != 0 && g.metric.String() == "W2" && s.mon.measured {
 		var v float64
 		for _, p := range s.mon.params {
@@ -434,4 +444,65 @@ func (s *Session) guaranteeOnly() bool {
 	w := s.spec.Wants
 	return s.guarantee != nil && w.Eps > 0 && w.MinBulkESS == 0 && w.MinTailESS == 0 && w.MaxRhat == 0 && w.MaxKSD == 0 &&
 		s.boundBroken() == ""
+}
+
+// certifyStart bounds the W2 start distance of a guaranteed W2 bound from
+// the gradients at the chains' start points, when the client declared m
+// but no start distance: by m-strong convexity of f = −log π,
+// ‖x₀ − x*‖ ≤ ‖∇f(x₀)‖/m, and E_π‖X − x*‖² ≤ p/m (Durmus and Moulines
+// 2019, from memory), so by the triangle inequality
+//
+//	W2(δ_{x₀}, π) ≤ ‖∇log π(x₀)‖/m + √(p/m)
+//
+// per chain; the bound takes the worst chain. It runs on the kernel's
+// first request (steps = 0) when that asks the gradient at every chain's
+// start, as the unadjusted Langevin kernels do.
+func (s *Session) certifyStart(req *kernels.Request) {
+	g := s.guarantee
+	c := s.spec.Curvature
+	if g == nil || c == nil || g.startSource != "" || g.tvStart != 0 || !req.Need.Has(kernels.NeedGradient) || req.Rows != s.spec.Chains {
+		return
+	}
+	tv := g.metric == bound.TV
+	if !tv && (g.metric != bound.W2 || c.StrongConvexity <= 0 || c.StartDistance > 0) {
+		return
+	}
+	d := s.spec.Dim
+	starts := s.spec.Start
+	worst := 0.0
+	for r := range req.Rows {
+		row := r % s.spec.StartRows
+		if s.spec.StartRows == 1 {
+			row = 0
+		}
+		x := req.Points[r*d : (r+1)*d]
+		for i, v := range x {
+			if v != starts[row*d+i] {
+				return // not the start points
+			}
+		}
+		var n2 float64
+		for _, v := range s.answer.Grad[r*d : (r+1)*d] {
+			n2 += v * v
+		}
+		if tv {
+			// M-smoothness: ‖∇f(x₀)‖ ≤ M·‖x₀ − x*‖, a lower bound on
+			// the start's distance to the mode.
+			worst = math.Max(worst, math.Sqrt(n2)/c.Smoothness)
+		} else {
+			worst = math.Max(worst, math.Sqrt(n2)/c.StrongConvexity)
+		}
+	}
+	if tv {
+		g.tvStart = worst * math.Sqrt(c.Smoothness)
+		if g.tvStart == 0 {
+			g.tvStart = math.SmallestNonzeroFloat64
+		}
+		return
+	}
+	g.setting.StartDistance = worst + math.Sqrt(float64(d)/c.StrongConvexity)
+	g.startSource = fmt.Sprintf("the start distance %.4g certified from the start gradients (‖∇log π(x₀)‖/m + √(p/m), worst chain; strong convexity, Durmus and Moulines 2019)", g.setting.StartDistance)
+	if s.spec.Wants.Eps > 0 {
+		s.epsSteps = g.stepsTo(s.spec.Wants.Eps, 0)
+	}
 }

@@ -429,6 +429,9 @@ func (s *Session) complete(r *run, req *kernels.Request) *Error {
 		}
 		return nil
 	}
+	if s.kernel.Steps() == 0 {
+		s.certifyStart(req)
+	}
 	done := s.kernel.Tell(s.answer)
 	if done && s.div.observe(s.kernel.Positions(), s.kernel.Steps()) {
 		return s.divergedError(s.kernel.Steps())
