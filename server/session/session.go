@@ -877,6 +877,11 @@ func (s *Session) estimatedBound(c CurvatureEstimate) (bound.Bound, bool) {
 	if !s.entry.guaranteed || s.spec.Curvature != nil || (c.Pairs < int64(2*s.spec.Dim) && c.ProbedSmoothness == 0) || c.NotConvex {
 		return bound.Bound{}, false
 	}
+	if _, _, rhat := s.mon.worst(); s.mon.measured && !(rhat <= rhatFail) {
+		// The chains disagree: a bound on one chain's law is no summary
+		// of them.
+		return bound.Bound{}, false
+	}
 	m, bigM := c.StrongConvexityAtMost, c.SmoothnessAtLeast
 	if c.ProbedSmoothness > 0 {
 		// A safety factor of 1.1 on the larger of the probe and the

@@ -315,3 +315,58 @@ func TestDrawsDoNotDependOnClientSpeed(t *testing.T) {
 		}
 	}
 }
+
+// A 20-parameter logistic posterior (200 invented observations, prior
+// precision 1) sampled with the kinetic kernel at step 0.1 and inverse
+// mass 1: the posterior's curvature reaches about 0.25·λ_max(XᵀX) + 1
+// (the bound of kernels/targets), far beyond what that step follows, so
+// the run is wasted. The session does not end "target met": the verdict
+// names stability (and divergence or bias, whichever the run reaches).
+func TestKineticTooLargeAStepIsNamed(t *testing.T) {
+	const n, p = 200, 20
+	r := rand.New(rand.NewPCG(8, 9))
+	x := mat.NewDense(n, p, nil)
+	y := make([]float64, n)
+	for i := range n {
+		var z float64
+		for j := range p {
+			v := r.NormFloat64()
+			x.Set(i, j, v)
+			z += 0.3 * v
+		}
+		if r.Float64() < 1/(1+math.Exp(-z)) {
+			y[i] = 1
+		}
+	}
+	tg, err := targets.NewLogistic(x, y, 1)
+	if err != nil {
+		t.Fatal(err)
+	}
+	spec := Spec{Dim: p, Chains: 4, Kernel: "kinetic", Start: make([]float64, p), StartRows: 1, Step: 0.1, Seed: 12, BurnIn: 200,
+		Wants: Wants{MinBulkESS: 400}, MaxEvaluations: 4 * 3000}
+	_, res, err := drive(t, mustNew(t, spec, Limits{}), targetOracle(tg, 1))
+	if res.Finished.Reason == TargetMet {
+		t.Fatalf("target met: %+v", res.Finished.Checks)
+	}
+	c, ok := checkNamed(res.Finished.Checks, "stability")
+	if !ok || c.Status == CheckPass {
+		t.Fatalf("stability check %+v (err %v)", res.Finished.Checks, err)
+	}
+}
+
+// A guaranteed W2 bound much larger than the posterior's spread is
+// flagged as saying little: on N(0, I/400) (sd 0.05) with the loose
+// declaration m = 1, M = 400 and a start distance of 30, the bound after
+// a few hundred steps stays far above √2·0.05.
+func TestUninformativeGuaranteeWarns(t *testing.T) {
+	spec := Spec{Dim: 2, Chains: 4, Start: []float64{0.01, -0.01}, StartRows: 1, Step: 0.002, Seed: 2, BurnIn: 50,
+		DrawsPerChain: 300, Curvature: &Curvature{StrongConvexity: 1, Smoothness: 400, StartDistance: 30}, Wants: Wants{Metric: bound.W2}}
+	_, res, err := drive(t, mustNew(t, spec, Limits{}), gaussian(400))
+	if err != nil {
+		t.Fatal(err)
+	}
+	c, ok := checkNamed(res.Finished.Checks, "guarantee")
+	if !ok || c.Status != CheckWarn || !strings.Contains(c.Message, "says little") {
+		t.Fatalf("guarantee check %+v", res.Finished.Checks)
+	}
+}
