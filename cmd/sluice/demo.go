@@ -238,21 +238,21 @@ type drawsFile struct {
 }
 
 type demoResult struct {
-	Scenario       string          `json:"scenario"`
-	SessionID      string          `json:"session_id"`
-	Kernel         string          `json:"kernel"`
-	Step           float64         `json:"step"`
-	Chains         int             `json:"chains"`
-	Seed           uint64          `json:"seed"`
-	Reason         string          `json:"reason"`
-	Evaluations    int64           `json:"evaluations"`
-	Seconds        float64         `json:"seconds"`
-	DrawsPerChain  int             `json:"draws_per_chain"`
-	Parameters     []demoParameter `json:"parameters"`
-	Accuracy       demoAccuracy    `json:"accuracy"`
-	Noise          *demoNoise      `json:"noise,omitempty"`
-	Question       *demoAnswer     `json:"question,omitempty"`
-	DrawsFile      *drawsFile      `json:"draws_file,omitempty"`
+	Scenario      string          `json:"scenario"`
+	SessionID     string          `json:"session_id"`
+	Kernel        string          `json:"kernel"`
+	Step          float64         `json:"step"`
+	Chains        int             `json:"chains"`
+	Seed          uint64          `json:"seed"`
+	Reason        string          `json:"reason"`
+	Evaluations   int64           `json:"evaluations"`
+	Seconds       float64         `json:"seconds"`
+	DrawsPerChain int             `json:"draws_per_chain"`
+	Parameters    []demoParameter `json:"parameters"`
+	Accuracy      demoAccuracy    `json:"accuracy"`
+	Noise         *demoNoise      `json:"noise,omitempty"`
+	Question      *demoAnswer     `json:"question,omitempty"`
+	DrawsFile     *drawsFile      `json:"draws_file,omitempty"`
 	// Message is the server's detail on the reason (which check failed).
 	Message string `json:"message,omitempty"`
 	// Checks is the session's verdict: every named check with its status.
