@@ -370,9 +370,6 @@ func (s *Session) divergedError(k int) *Error {
 	return &Error{Kind: Invalid, Field: "register.step", Chain: d.Chain, Coord: -1, Reason: msg}
 }
 
-// kernelStep is the kernel's step size (0 for kernels without one).
-func kernelStep(k kernels.Kernel) float64 { return kernelReport(k).Step }
-
 // boundBroken says why the declared curvature is contradicted by what the
 // session has seen, "" when it is not: a gradient pair certifying M above
 // the declared M, a pair showing non-convexity while m > 0 was declared,

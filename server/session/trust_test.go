@@ -370,3 +370,27 @@ func TestUninformativeGuaranteeWarns(t *testing.T) {
 		t.Fatalf("guarantee check %+v", res.Finished.Checks)
 	}
 }
+
+// LMC at step 1.9 on N(0, 1) multiplies by 1 − 1.9 = −0.9 per step
+// (derived here): strongly antithetic chains, whose ESS exceeds the
+// draws. Every reported ESS stays positive and at most S·log₁₀ S (the
+// floor of Vehtari et al. 2021 on the autocorrelation time, in
+// kernels/diag), and the verdict warns that the step is over half the
+// stable limit 2/M.
+func TestAntitheticChainsReportPossibleESS(t *testing.T) {
+	spec := Spec{Dim: 1, Chains: 4, Start: []float64{0.3}, StartRows: 1, Step: 1.9, Seed: 6, BurnIn: 100, DrawsPerChain: 2000}
+	_, res, err := drive(t, mustNew(t, spec, Limits{}), gaussian(1))
+	if err != nil {
+		t.Fatal(err)
+	}
+	s := float64(4 * 2000)
+	for _, p := range res.Finished.Progress.Parameters {
+		if !(p.BulkESS > 0 && p.BulkESS <= s*math.Log10(s)) || !(p.TailESS > 0 && p.TailESS <= s*math.Log10(s)) {
+			t.Fatalf("ESS %+v from %v draws", p, s)
+		}
+	}
+	c, ok := checkNamed(res.Finished.Checks, "stability")
+	if !ok || c.Status != CheckWarn {
+		t.Fatalf("stability check %+v", res.Finished.Checks)
+	}
+}
