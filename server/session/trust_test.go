@@ -378,12 +378,12 @@ func TestUninformativeGuaranteeWarns(t *testing.T) {
 // kernels/diag), and the verdict warns that the step is over half the
 // stable limit 2/M.
 func TestAntitheticChainsReportPossibleESS(t *testing.T) {
-	spec := Spec{Dim: 1, Chains: 4, Start: []float64{0.3}, StartRows: 1, Step: 1.9, Seed: 6, BurnIn: 100, DrawsPerChain: 2000}
+	spec := Spec{Dim: 1, Chains: 4, Start: []float64{0.3}, StartRows: 1, Step: 1.9, Seed: 6, BurnIn: 100, DrawsPerChain: 1000}
 	_, res, err := drive(t, mustNew(t, spec, Limits{}), gaussian(1))
 	if err != nil {
 		t.Fatal(err)
 	}
-	s := float64(4 * 2000)
+	s := float64(4 * 1000)
 	for _, p := range res.Finished.Progress.Parameters {
 		if !(p.BulkESS > 0 && p.BulkESS <= s*math.Log10(s)) || !(p.TailESS > 0 && p.TailESS <= s*math.Log10(s)) {
 			t.Fatalf("ESS %+v from %v draws", p, s)
