@@ -441,7 +441,12 @@ class LiveBatchTests(unittest.TestCase):
             noise=sc.Noise(replicates=2),
         )
         summary = sc.run(self.target, spec, batch=batch, timeout=DEADLINE_SECONDS)
-        self.assertEqual(summary.reason, sc.FinishReason.DRAWS_COLLECTED, summary.message)
+        # 400 steps of 0.05 are short for these chains: the verdict may
+        # fail the mixing check (R-hat above 1.1), and then says so.
+        if summary.reason != sc.FinishReason.DRAWS_COLLECTED:
+            self.assertEqual(summary.reason, sc.FinishReason.CHECK_FAILED, summary.message)
+            self.assertIn("check mixing failed", summary.message)
+        self.assertEqual(summary.draws_received, chains * steps)
         self.assertEqual(shapes, {(2, False)})
         self.assertEqual(rows[0], chains * steps)
         self.assertEqual(summary.progress.evaluations_used, 2 * rows[0])
