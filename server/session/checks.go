@@ -181,24 +181,24 @@ func (s *Session) mixingCheck() (Check, bool) {
 	switch {
 	case !(rhat <= rhatFail) && s.guaranteeOnly():
 		c.Status = CheckWarn
-		c.Message = fmt.Sprintf("R-hat is %.3g (above %.2g): the kept draws are far from a mixed sample; the guarantee covers each chain's current state, not the kept sequence", rhat, rhatFail)
+		c.Message = fmt.Sprintf("R-hat is %.3g (above %g): the kept draws are far from a mixed sample; the guarantee covers each chain's current state, not the kept sequence", rhat, rhatFail)
 	case !(rhat <= rhatFail):
 		c.Status = CheckFail
-		c.Message = fmt.Sprintf("R-hat is %.3g (above %.2g): the chains disagree, they have not mixed or found different modes; run longer or start them closer", rhat, rhatFail)
+		c.Message = fmt.Sprintf("R-hat is %.3g (above %g): the chains disagree, they have not mixed or found different modes; run longer or start them closer", rhat, rhatFail)
 	case s.mon.spread > chainsDisagree:
 		c.Status = CheckWarn
 		c.Figure = s.mon.spread
 		c.Message = fmt.Sprintf("chain means differ by %.3g standard errors on %s: the chains may sit in different modes", s.mon.spread, s.mon.spreadName)
 	case rhat > rhatWarn:
 		c.Status = CheckWarn
-		c.Message = fmt.Sprintf("R-hat is %.4g (above %.2g): the chains are not yet in agreement; run longer", rhat, rhatWarn)
+		c.Message = fmt.Sprintf("R-hat is %.4g (above %g): the chains are not yet in agreement; run longer", rhat, rhatWarn)
 	case !(ess >= floor):
 		c.Status = CheckWarn
 		c.Figure = ess
 		c.Message = fmt.Sprintf("the smallest bulk- or tail-ESS is %.0f, below %.0f: means and quantiles are still imprecise; run longer", ess, floor)
 	default:
 		c.Status = CheckPass
-		c.Message = fmt.Sprintf("R-hat %.4g ≤ %.2g and every bulk- and tail-ESS ≥ %.0f", rhat, rhatWarn, floor)
+		c.Message = fmt.Sprintf("R-hat %.4g ≤ %g and every bulk- and tail-ESS ≥ %.0f", rhat, rhatWarn, floor)
 	}
 	return c, true
 }
