@@ -152,7 +152,7 @@ func (s *Session) stabilityCheck() (Check, bool) {
 	case rho >= 1:
 		c.Status = CheckFail
 		c.Message = fmt.Sprintf("the step %.4g is unstable for the curvature seen (M ≥ %.4g): on the stiffest direction the chains grow by a factor %.3g per step (%s); try a step below %.2g",
-			h, lambda, math.Sqrt(rho), rule.source, hMax)
+			h, lambda, math.Sqrt(rho), rule.source, roundDown2(hMax))
 	case h > hMax/2:
 		c.Status = CheckWarn
 		c.Message = fmt.Sprintf("the step %.4g is more than half the largest stable step %.3g for the curvature seen (M ≥ %.4g; %s): expect a visible discretisation bias along the stiffest direction",
@@ -360,7 +360,7 @@ func (s *Session) divergedError(k int) *Error {
 	case s.mon.pairs >= 10 && s.mon.uphill == s.mon.pairs:
 		msg += fmt.Sprintf(": on every gradient pair seen −log π curves downward; is the gradient that of −log π instead of log π? (step %.4g)", h)
 	case ok && h > 0 && lambda > 0 && !math.IsInf(lambda, 0):
-		msg += fmt.Sprintf(": the step %.4g is too large for the curvature seen (M ≥ %.4g); try a step below %.2g", h, lambda, rule.largestStable(lambda))
+		msg += fmt.Sprintf(": the step %.4g is too large for the curvature seen (M ≥ %.4g); try a step below %.2g", h, lambda, roundDown2(rule.largestStable(lambda)))
 	case h > 0:
 		msg += fmt.Sprintf(": the step %.4g is too large for this target; try a smaller one", h)
 	default:
@@ -502,4 +502,14 @@ func (s *Session) certifyStart(req *kernels.Request) {
 	if s.spec.Wants.Eps > 0 {
 		s.epsSteps = g.stepsTo(s.spec.Wants.Eps, 0)
 	}
+}
+
+// roundDown2 rounds x > 0 down to two significant digits, so that a step
+// "below" it is below x.
+func roundDown2(x float64) float64 {
+	if !(x > 0) || math.IsInf(x, 0) {
+		return x
+	}
+	p := math.Pow(10, math.Floor(math.Log10(x))-1)
+	return math.Floor(x/p) * p
 }

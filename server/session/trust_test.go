@@ -65,7 +65,8 @@ func checkNamed(cs []Check, name string) (Check, bool) {
 // Step 5 on a Gaussian whose precision reaches 2.2: LMC's recursion
 // multiplies by 1 − 5·2.2 = −10 per step along that axis (derived here),
 // so the chains diverge. The session fails naming the step, the curvature
-// seen and a stable step (2/2.2 = 0.909), never "draws collected".
+// seen and a stable step (2/2.2 = 0.909, rounded down to 0.9), never
+// "draws collected".
 func TestDivergenceNamesStepCurvatureAndRemedy(t *testing.T) {
 	spec := Spec{Dim: 2, Chains: 4, Start: []float64{0.5, -0.5}, StartRows: 1, Step: 5, Seed: 11, DrawsPerChain: 1000}
 	_, res, err := drive(t, mustNew(t, spec, Limits{}), targetOracle(diagGaussian(t, 2.2, 1), 1))
@@ -73,10 +74,13 @@ func TestDivergenceNamesStepCurvatureAndRemedy(t *testing.T) {
 	if !ok || e.Field != "register.step" || res.Finished.Reason != Failed {
 		t.Fatalf("got %v (%v)", err, res.Finished.Reason)
 	}
-	for _, want := range []string{"diverged at step", "the step 5 is too large", "M ≥ 2.2", "below 0.91"} {
+	for _, want := range []string{"diverged at step", "the step 5 is too large", "M ≥ 2.2", "try a step below 0.9"} {
 		if !strings.Contains(e.Reason, want) {
 			t.Fatalf("reason %q lacks %q", e.Reason, want)
 		}
+	}
+	if strings.Contains(e.Reason, "below 0.91") {
+		t.Fatalf("reason %q suggests an unstable step", e.Reason)
 	}
 	if c, ok := checkNamed(res.Finished.Checks, "divergence"); !ok || c.Status != CheckFail {
 		t.Fatalf("checks %+v", res.Finished.Checks)
