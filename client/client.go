@@ -60,6 +60,12 @@ type Spec struct {
 	// CurvatureProbe asks for that many power iterations each way (M and
 	// m) at chain 0's start before sampling, counted in the budget.
 	CurvatureProbe int
+	// GradientCheckPoints is how many start points the server compares
+	// the gradient with finite differences of the log density at before
+	// sampling (asking log densities then, counted in the budget): 0
+	// means 3 for kernels that ask for log densities anyway and none for
+	// the others; −1 means none.
+	GradientCheckPoints int
 	// SliceWidth and SliceMaxExpansions tune hit-and-run (0: defaults).
 	SliceWidth         float64
 	SliceMaxExpansions int
@@ -308,6 +314,11 @@ type Progress struct {
 	Metric            MetricReport
 	Tuning            []TuningChoice
 	TuningEvaluations int64
+	// Stein is the kernel Stein discrepancy with its uncertainty (nil
+	// when not measured); KSD above is its point estimate.
+	Stein *SteinAssessment
+	// Checks is the session's verdict so far.
+	Checks []Check
 }
 
 // WorkerReport is one evaluator of a session: its name, whether it is the
@@ -320,12 +331,36 @@ type WorkerReport struct {
 	Rows          int64
 	RowsReissued  int64
 	AnswersLate   int64
-	// Metric is the metric in use; Tuning the settings the server chose
-	// (Step 0) with their reasons; TuningEvaluations what its curvature
-	// probes cost (counted in EvaluationsUsed).
-	Metric            MetricReport
-	Tuning            []TuningChoice
-	TuningEvaluations int64
+}
+
+// SteinAssessment is a kernel Stein discrepancy in standardised
+// coordinates: the point estimate √max(U, 0), the U-statistic of KSD² and
+// its standard error, an upper 95 % bound (a max_ksd target is met only
+// below it), the bootstrap p-value of KSD = 0, the draws it rests on, and
+// what it can claim in plain words (State).
+type SteinAssessment struct {
+	KSD, U, SE, Upper95, PValue float64
+	Draws                       int64
+	State                       string
+}
+
+// CheckStatus is how a check of the verdict came out.
+type CheckStatus string
+
+const (
+	CheckPass CheckStatus = "pass"
+	CheckWarn CheckStatus = "warn"
+	CheckFail CheckStatus = "fail"
+)
+
+// Check is one named check of the verdict (divergence, stability,
+// mixing, bias, gradient, guarantee): its status, the figure it rests on
+// and one sentence for a person.
+type Check struct {
+	Name    string
+	Status  CheckStatus
+	Figure  float64
+	Message string
 }
 
 // NoiseEstimate: measured variance of one replicate's error per
@@ -401,6 +436,9 @@ const (
 	Failed         Reason = "failed"
 	Shutdown       Reason = "server shutting down"
 	TargetMet      Reason = "target met"
+	// CheckFailed: the draws were collected or the targets met, but a
+	// check of the verdict failed; Message names it.
+	CheckFailed Reason = "check failed"
 )
 
 // Parameter summarises one parameter's kept draws (computed by the
@@ -436,6 +474,8 @@ type Summary struct {
 	Resumes int
 	// Header is the followed session's header (Follow only; nil for Run).
 	Header *FollowHeader
+	// Checks is the session's verdict from the final frame.
+	Checks []Check
 }
 
 // Option adjusts Run.
@@ -576,6 +616,7 @@ func registerFrame(spec Spec, limit int64) *sluicev1.SessionRequest {
 		Noise: noiseToWire(spec.Noise), Schedule: scheduleToWire(spec.Schedule), AnchorEvery: int32(spec.AnchorEvery),
 		FixedPointTolerance: spec.FixedPointTolerance, FixedPointIterations: int32(spec.FixedPointIterations),
 		CurvatureProbeIterations: int32(spec.CurvatureProbe),
+		GradientCheckPoints:      int32(spec.GradientCheckPoints),
 		SliceWidth:               spec.SliceWidth, SliceMaxExpansions: int32(spec.SliceMaxExpansions), Envelope: envelopeToWire(spec.Envelope),
 		CheckpointEverySteps: spec.CheckpointEverySteps,
 		OwnerEvaluates:       ownerEvaluates(spec),
@@ -887,6 +928,21 @@ var reasonFromWire = map[sluicev1.FinishReason]Reason{
 	sluicev1.FinishReason_FINISH_REASON_FAILED:          Failed,
 	sluicev1.FinishReason_FINISH_REASON_SHUTDOWN:        Shutdown,
 	sluicev1.FinishReason_FINISH_REASON_TARGET_MET:      TargetMet,
+	sluicev1.FinishReason_FINISH_REASON_CHECK_FAILED:    CheckFailed,
+}
+
+var checkStatusFromWire = map[sluicev1.CheckStatus]CheckStatus{
+	sluicev1.CheckStatus_CHECK_STATUS_PASS: CheckPass,
+	sluicev1.CheckStatus_CHECK_STATUS_WARN: CheckWarn,
+	sluicev1.CheckStatus_CHECK_STATUS_FAIL: CheckFail,
+}
+
+func checksFromWire(cs []*sluicev1.Check) []Check {
+	var out []Check
+	for _, c := range cs {
+		out = append(out, Check{Name: c.GetName(), Status: checkStatusFromWire[c.GetStatus()], Figure: c.GetFigure(), Message: c.GetMessage()})
+	}
+	return out
 }
 
 func (r *runner) finish(f *sluicev1.Finished) {
@@ -895,6 +951,7 @@ func (r *runner) finish(f *sluicev1.Finished) {
 	r.sum.Message = f.GetMessage()
 	r.sum.Progress = progressFromWire(f.GetProgress())
 	r.sum.ParametersOmitted = int(f.GetParametersOmitted())
+	r.sum.Checks = checksFromWire(f.GetChecks())
 	r.sum.Parameters = make([]Parameter, len(f.GetParameters()))
 	for i, p := range f.GetParameters() {
 		r.sum.Parameters[i] = Parameter{Name: p.GetName(), Mean: p.GetMean(), SD: p.GetSd(), Count: p.GetCount()}
@@ -952,6 +1009,14 @@ func progressFromWire(p *sluicev1.Progress) Progress {
 		out.Targets = append(out.Targets, TargetStatus{Name: t.GetName(), Want: t.GetWant(), Current: t.GetCurrent(), Met: t.GetMet(),
 			ProjectedEvaluations: t.GetProjectedEvaluations()})
 	}
+	if st := p.GetStein(); st != nil {
+		out.Stein = &SteinAssessment{KSD: st.GetKsd(), U: st.GetUStatistic(), SE: st.GetSe(), Upper95: st.GetUpper95(),
+			PValue: st.GetPValue(), Draws: st.GetDraws(), State: st.GetStateText()}
+		if out.Stein.State == "" {
+			out.Stein.State = st.GetState().String()
+		}
+	}
+	out.Checks = checksFromWire(p.GetChecks())
 	return out
 }
 

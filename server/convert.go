@@ -1,8 +1,11 @@
 package server
 
 import (
+	"unicode/utf8"
+
 	"sluice/internal/wire"
 	"sluice/kernels"
+	"sluice/kernels/diag"
 	sluicev1 "sluice/proto/sluice/v1"
 	"sluice/server/session"
 )
@@ -54,6 +57,7 @@ func specFromWire(r *sluicev1.Register) (session.Spec, error) {
 		Schedule:             scheduleFromWire(r.GetSchedule()),
 		AnchorEvery:          int(r.GetAnchorEvery()),
 		CurvatureProbe:       int(r.GetCurvatureProbeIterations()),
+		GradientCheckPoints:  int(r.GetGradientCheckPoints()),
 		SliceWidth:           r.GetSliceWidth(),
 		SliceMaxExpansions:   int(r.GetSliceMaxExpansions()),
 		FixedPointTolerance:  r.GetFixedPointTolerance(),
@@ -148,6 +152,26 @@ type encoder struct {
 	// maxParams is how many per-parameter entries a Progress or Finished
 	// frame may carry within the message limit (0: no cap).
 	maxParams int
+	// maxText is how many bytes the checks of one frame, and a Finished
+	// frame's message, may take each (0: no cap): an eighth of the
+	// message limit, so that with the parameters' half the frame fits.
+	maxText int
+}
+
+// textCap returns the byte budget of a frame's checks and of a message.
+func textCap(limit int64) int { return int(max(64, limit/8)) }
+
+// clip shortens s to at most n bytes, at a rune boundary, marking the cut.
+func clip(s string, n int) string {
+	if n <= 0 || len(s) <= n {
+		return s
+	}
+	const mark = "…"
+	cut := max(0, n-len(mark))
+	for cut > 0 && !utf8.RuneStart(s[cut]) {
+		cut--
+	}
+	return s[:cut] + mark
 }
 
 // paramCap returns how many per-parameter entries fit in half of a
@@ -227,8 +251,8 @@ func (e *encoder) frame(f session.Frame) *sluicev1.SessionResponse {
 			ps[i] = &sluicev1.ParameterSummary{Name: p.Name, Mean: p.Mean, Sd: p.SD, Count: p.Count}
 		}
 		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Finished{Finished: &sluicev1.Finished{
-			Reason: reasonToWire[f.Reason], Message: f.Message, Progress: e.progress(&f.Progress), Parameters: ps,
-			ParametersOmitted: int32(omitted)}}}
+			Reason: reasonToWire[f.Reason], Message: clip(f.Message, e.maxText), Progress: e.progress(&f.Progress), Parameters: ps,
+			ParametersOmitted: int32(omitted), Checks: checksToWire(f.Checks, e.maxText)}}}
 	}
 	panic("server: unknown frame type")
 }
@@ -247,18 +271,51 @@ var reasonToWire = map[session.Reason]sluicev1.FinishReason{
 	session.Failed:         sluicev1.FinishReason_FINISH_REASON_FAILED,
 	session.Shutdown:       sluicev1.FinishReason_FINISH_REASON_SHUTDOWN,
 	session.TargetMet:      sluicev1.FinishReason_FINISH_REASON_TARGET_MET,
+	session.CheckFailed:    sluicev1.FinishReason_FINISH_REASON_CHECK_FAILED,
+}
+
+var checkStatusToWire = map[session.CheckStatus]sluicev1.CheckStatus{
+	session.CheckPass: sluicev1.CheckStatus_CHECK_STATUS_PASS,
+	session.CheckWarn: sluicev1.CheckStatus_CHECK_STATUS_WARN,
+	session.CheckFail: sluicev1.CheckStatus_CHECK_STATUS_FAIL,
+}
+
+var steinStateToWire = map[diag.SteinState]sluicev1.SteinState{
+	diag.SteinUndefined:         sluicev1.SteinState_STEIN_STATE_UNDEFINED,
+	diag.SteinIndistinguishable: sluicev1.SteinState_STEIN_STATE_INDISTINGUISHABLE,
+	diag.SteinSignificant:       sluicev1.SteinState_STEIN_STATE_SIGNIFICANT,
+}
+
+// checksToWire converts the checks, their messages clipped so that all
+// of them take at most budget bytes (0: no cap); each check's name,
+// status and figure take about 32 bytes on the wire.
+func checksToWire(cs []session.Check, budget int) []*sluicev1.Check {
+	out := make([]*sluicev1.Check, len(cs))
+	each := 0
+	if budget > 0 && len(cs) > 0 {
+		each = max(1, budget/len(cs)-32)
+	}
+	for i, c := range cs {
+		out[i] = &sluicev1.Check{Name: c.Name, Status: checkStatusToWire[c.Status], Figure: c.Figure, Message: clip(c.Message, each)}
+	}
+	return out
 }
 
 // progress converts p, keeping the per-parameter list within the cap.
 func (e *encoder) progress(p *session.Progress) *sluicev1.Progress {
+	var w *sluicev1.Progress
 	if e.maxParams > 0 && len(p.Parameters) > e.maxParams {
 		q := *p
 		q.Parameters = p.Parameters[:e.maxParams]
-		w := progressToWire(&q)
+		w = progressToWire(&q)
 		w.ParametersOmitted = int32(len(p.Parameters) - e.maxParams)
-		return w
+	} else {
+		w = progressToWire(p)
 	}
-	return progressToWire(p)
+	if e.maxText > 0 {
+		w.Checks = checksToWire(p.Checks, e.maxText)
+	}
+	return w
 }
 
 func progressToWire(p *session.Progress) *sluicev1.Progress {
@@ -295,6 +352,11 @@ func progressToWire(p *session.Progress) *sluicev1.Progress {
 	}
 	poolToWire(w, &p.Pool)
 	w.Metric, w.Tuning, w.TuningEvaluations = metricReportToWire(p.Metric), tuningToWire(p.Tuning), p.TuningEvaluations
+	if r := p.Stein; r != nil {
+		w.Stein = &sluicev1.SteinAssessment{Ksd: r.KSD, UStatistic: r.U2, Se: r.SE, Upper95: r.Upper95, PValue: r.PValue,
+			Draws: int64(r.Draws), State: steinStateToWire[r.State], StateText: r.State.String()}
+	}
+	w.Checks = checksToWire(p.Checks, 0)
 	return w
 }
 

@@ -41,7 +41,7 @@ func (s *Server) Follow(req *sluicev1.FollowRequest, stream grpc.ServerStreaming
 		return err
 	}
 	rows := max(1, wire.RowsPerMessage(f.limit, f.dim))
-	enc := encoder{maxParams: paramCap(f.limit)}
+	enc := encoder{maxParams: paramCap(f.limit), maxText: textCap(f.limit)}
 	cur := f.log.Cursor(from)
 	for {
 		ev, err := f.log.ReadEvent(stream.Context(), &cur, rows)

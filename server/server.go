@@ -403,7 +403,7 @@ func (s *Server) serveSession(stream sluicev1.SluiceService_SessionServer, sess 
 	log := s.log.With(zap.String("session", id))
 	log.Info("session started", zap.Int("dim", sp.Dim), zap.Int("chains", sp.Chains),
 		zap.String("kernel", sp.Kernel), zap.Float64("step", sp.Step), zap.Uint64("seed", sp.Seed))
-	enc := encoder{maxParams: paramCap(limit)}
+	enc := encoder{maxParams: paramCap(limit), maxText: textCap(limit)}
 	res, err := sess.Run(ctx, in, func(f session.Frame) error { return stream.Send(enc.frame(f)) })
 	if e, ok := session.AsError(err); ok && e.Kind == session.Timeout {
 		err = s.onSilent(id, sess, res, err)

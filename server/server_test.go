@@ -211,7 +211,7 @@ func TestTransportIsTransparent(t *testing.T) {
 			if !ok {
 				t.Fatalf("no registry entry for %s", name)
 			}
-			wantRows := perStep*steps + int64(cost.SetupPerChain*chains)
+			wantRows := perStep*steps + int64(cost.SetupPerChain*chains+cost.CheckRows)
 			if cost.Periodic != nil {
 				wantRows += int64(cost.Periodic(&session.Spec{AnchorEvery: 10}, steps) * chains)
 			}
@@ -604,7 +604,9 @@ func TestManyParametersFitTheMessageLimit(t *testing.T) {
 		t.Fatal(err)
 	}
 	kept := len(sum.Parameters)
-	if sum.Reason != client.DrawsCollected || kept == 0 || kept+sum.ParametersOmitted != dim || sum.Parameters[0].Name != "theta[0]" {
+	// Twenty draws of one chain do not mix on 20000 parameters: the
+	// verdict may fail the mixing check, and then says so in the reason.
+	if (sum.Reason != client.DrawsCollected && sum.Reason != client.CheckFailed) || kept == 0 || kept+sum.ParametersOmitted != dim || sum.Parameters[0].Name != "theta[0]" {
 		t.Fatalf("reason %v, %d parameters kept, %d omitted", sum.Reason, kept, sum.ParametersOmitted)
 	}
 }

@@ -207,6 +207,8 @@ type demoNoise struct {
 // label), kept apart.
 type demoAccuracy struct {
 	KSD             num     `json:"ksd"`
+	KSDUpper95      num     `json:"ksd_upper95"`
+	KSDState        string  `json:"ksd_state,omitempty"`
 	SmoothnessSeen  num     `json:"smoothness_at_least"`
 	ConvexitySeen   num     `json:"strong_convexity_at_most"`
 	DeclaredM       float64 `json:"declared_m"`
@@ -254,25 +256,38 @@ type demoChoice struct {
 }
 
 type demoResult struct {
-	Scenario       string          `json:"scenario"`
-	SessionID      string          `json:"session_id"`
-	Kernel         string          `json:"kernel"`
-	Step           float64         `json:"step"`
-	Metric         string          `json:"metric"`
-	Tuning         []demoChoice    `json:"tuning,omitempty"`
-	TuningEvals    int64           `json:"tuning_evaluations"`
-	Chains         int             `json:"chains"`
-	Seed           uint64          `json:"seed"`
-	Reason         string          `json:"reason"`
-	Evaluations    int64           `json:"evaluations"`
-	Seconds        float64         `json:"seconds"`
-	DrawsPerChain  int             `json:"draws_per_chain"`
-	Parameters     []demoParameter `json:"parameters"`
-	Accuracy       demoAccuracy    `json:"accuracy"`
-	Noise          *demoNoise      `json:"noise,omitempty"`
-	Question       *demoAnswer     `json:"question,omitempty"`
-	DrawsFile      *drawsFile      `json:"draws_file,omitempty"`
-	MinDrawsNeeded int             `json:"-"`
+	Scenario      string          `json:"scenario"`
+	SessionID     string          `json:"session_id"`
+	Kernel        string          `json:"kernel"`
+	Step          float64         `json:"step"`
+	Metric        string          `json:"metric"`
+	Tuning        []demoChoice    `json:"tuning,omitempty"`
+	TuningEvals   int64           `json:"tuning_evaluations"`
+	Chains        int             `json:"chains"`
+	Seed          uint64          `json:"seed"`
+	Reason        string          `json:"reason"`
+	Evaluations   int64           `json:"evaluations"`
+	Seconds       float64         `json:"seconds"`
+	DrawsPerChain int             `json:"draws_per_chain"`
+	Parameters    []demoParameter `json:"parameters"`
+	Accuracy      demoAccuracy    `json:"accuracy"`
+	Noise         *demoNoise      `json:"noise,omitempty"`
+	Question      *demoAnswer     `json:"question,omitempty"`
+	DrawsFile     *drawsFile      `json:"draws_file,omitempty"`
+	// Message is the server's detail on the reason (which check failed).
+	Message string `json:"message,omitempty"`
+	// Checks is the session's verdict: every named check with its status.
+	Checks         []demoCheck `json:"checks"`
+	MinDrawsNeeded int         `json:"-"`
+}
+
+// demoCheck is one check of the verdict (status "pass", "warn" or
+// "fail"; figure null when there is none).
+type demoCheck struct {
+	Name    string `json:"name"`
+	Status  string `json:"status"`
+	Figure  num    `json:"figure"`
+	Message string `json:"message"`
 }
 
 func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, error) {
@@ -471,6 +486,11 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 		res.Parameters = append(res.Parameters, p)
 	}
 	fp := sum.Progress
+	res.Message = sum.Message
+	res.Checks = []demoCheck{}
+	for _, ch := range sum.Checks {
+		res.Checks = append(res.Checks, demoCheck{Name: ch.Name, Status: string(ch.Status), Figure: num(ch.Figure), Message: ch.Message})
+	}
 	if n := fp.Noise; n != nil && c.minibatch > 0 {
 		res.Noise = &demoNoise{Minibatch: c.minibatch, Variance: n.Variance, VarianceSE: n.SE, Epochs: n.Epochs, Eps: c.eps}
 		// What a guaranteed W2 ≤ eps would cost with this noise: the noise
@@ -483,7 +503,10 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 		}
 	}
 	res.Accuracy = demoAccuracy{KSD: num(fp.KSD), SmoothnessSeen: num(fp.Curvature.SmoothnessAtLeast),
-		ConvexitySeen: num(fp.Curvature.StrongConvexityAtMost), DeclaredM: m, DeclaredBigM: bigM}
+		ConvexitySeen: num(fp.Curvature.StrongConvexityAtMost), DeclaredM: m, DeclaredBigM: bigM, KSDUpper95: -1}
+	if st := fp.Stein; st != nil {
+		res.Accuracy.KSDUpper95, res.Accuracy.KSDState = num(st.Upper95), st.State
+	}
 	if b := fp.Bound; b != nil {
 		res.Accuracy.BoundMetric, res.Accuracy.Bound, res.Accuracy.BoundLabel = string(b.Metric), b.Value, b.Label
 		res.Accuracy.BoundStart, res.Accuracy.BoundDiscretise, res.Accuracy.BoundNoise = b.Start, b.Discretisation, b.Noise
@@ -559,14 +582,19 @@ func printDemo(w io.Writer, r *demoResult) {
 	if r.TuningEvals > 0 {
 		fmt.Fprintf(w, "            (the curvature probes cost %d gradient evaluations)\n", r.TuningEvals)
 	}
-	fmt.Fprintf(w, "finished (%s): %d gradient evaluations in %.2f s, %d draws per chain kept\n\n",
+	fmt.Fprintf(w, "finished (%s): %d gradient evaluations in %.2f s, %d draws per chain kept\n",
 		r.Reason, r.Evaluations, r.Seconds, r.DrawsPerChain)
+	if r.Message != "" {
+		fmt.Fprintf(w, "            %s\n", r.Message)
+	}
+	fmt.Fprintln(w)
+	printVerdict(w, r.Checks)
 	printParameters(w, r.Parameters)
 	fmt.Fprintf(w, "(coefficients on the log-odds scale: temperature per %g °C, cooling rate per %g °C/min)\n\n", tempScale, coolScale)
 	a := r.Accuracy
 	if a.KSD >= 0 {
-		fmt.Fprintf(w, "measured:   Stein discrepancy %.4g; curvature seen along the chains M ≥ %.4g, m ≤ %.4g\n",
-			float64(a.KSD), float64(a.SmoothnessSeen), float64(a.ConvexitySeen))
+		fmt.Fprintf(w, "measured:   Stein discrepancy %.4g (upper 95%% bound %.4g: %s); curvature seen along the chains M ≥ %.4g, m ≤ %.4g\n",
+			float64(a.KSD), float64(a.KSDUpper95), a.KSDState, float64(a.SmoothnessSeen), float64(a.ConvexitySeen))
 	} else {
 		fmt.Fprintln(w, "measured:   no Stein discrepancy or curvature certificates: they need exact gradients of every draw")
 	}
@@ -724,4 +752,21 @@ func fmtNum(n num, format string) string {
 // levelPercent writes a level as a percentage: 0.9 → "90%", 0.995 → "99.5%".
 func levelPercent(level float64) string {
 	return strconv.FormatFloat(math.Round(level*100*1e6)/1e6, 'f', -1, 64) + "%"
+}
+
+// printVerdict prints the session's checks, one line each, failures and
+// warnings first.
+func printVerdict(w io.Writer, checks []demoCheck) {
+	if len(checks) == 0 {
+		return
+	}
+	fmt.Fprintln(w, "verdict:")
+	for _, want := range []string{"fail", "warn", "pass"} {
+		for _, c := range checks {
+			if c.Status == want {
+				fmt.Fprintf(w, "  %-4s %-10s %s\n", c.Status, c.Name, c.Message)
+			}
+		}
+	}
+	fmt.Fprintln(w)
 }

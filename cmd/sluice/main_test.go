@@ -218,7 +218,11 @@ func TestDemoRunsEveryKernel(t *testing.T) {
 		}
 		code, stdout, stderr := runCmd(t, ctx, "demo", "--kernel", k, "--seed", "2", "--chains", "2", "--draws", "30", "--burn-in", "20", "--json")
 		var res demoResult
-		if code != 0 || json.Unmarshal([]byte(stdout), &res) != nil || res.Reason != "draws collected" || res.DrawsPerChain != 30 {
+		// Thirty draws of two chains are too few to pass the mixing check:
+		// the run collects its draws and may end "check failed", with the
+		// verdict in the output.
+		if code != 0 || json.Unmarshal([]byte(stdout), &res) != nil || (res.Reason != "draws collected" && res.Reason != "check failed") ||
+			res.DrawsPerChain != 30 || len(res.Checks) == 0 {
 			t.Errorf("%s: exit %d, reason %q, %d draws per chain: %s", k, code, res.Reason, res.DrawsPerChain, stderr)
 		}
 	}

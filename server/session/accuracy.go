@@ -1,9 +1,10 @@
 package session
 
 import (
+	"fmt"
 	"math"
+	"math/rand/v2"
 	"slices"
-	"time"
 
 	"sluice/kernels"
 	"sluice/kernels/bound"
@@ -63,6 +64,13 @@ type guarantee struct {
 	k0     int
 	eps    float64
 	chains int
+	// startSource says how the start distance was obtained ("" for the
+	// declared or default one).
+	startSource string
+	// tvStart is, for a TV bound, a lower bound on the start points'
+	// distance to the mode in standard deviations of N(x*, M⁻¹I),
+	// certified from the start gradients (0: not yet known).
+	tvStart float64
 }
 
 // newGuarantee returns nil when no bound applies: no curvature declared,
@@ -179,11 +187,9 @@ type monitor struct {
 	keptX         []float64
 	pendingScores bool
 	requests      int // requests seen, for the pair cadence
-	// Cost control: time spent computing diagnostics, so that they take
-	// at most a tenth of the session's wall time.
-	spent, lastCost time.Duration
-	lastKSD         float64
-	// The last measured figures, for the targets.
+	lastKSD       float64
+	stein         *SteinReport
+	// The last measured figures, for the targets and the verdict.
 	params   []ParameterDiagnostics
 	measured bool
 	// The chains the windows follow (nil: all) and their gather buffers.
@@ -193,6 +199,16 @@ type monitor struct {
 	// discrepancy computed, the work the windows bound.
 	ksdEvaluations int64
 	ksdSeen        int // draws offered at the last count
+	// Per-chain sums of the kept draws (chains×dim) over chainN kept
+	// steps, and the largest spread of the chains' means in pooled
+	// standard errors (spreadName: of which parameter).
+	chainSum   []float64
+	chainN     int64
+	spread     float64
+	spreadName string
+	// Gradient pairs taken for certificates, and how many of them showed
+	// −log π curving downward (⟨Δ∇log π, Δx⟩ > 0).
+	pairs, uphill int
 }
 
 // maxKSDPoints caps the kernel Stein discrepancy's window: the final
@@ -255,7 +271,7 @@ func newMonitor(dim, chains int, names []string) *monitor {
 		ksdIdx:  spread(ksdChains, chains),
 		histIdx: spread(histChains, chains),
 		lastX:   make([]float64, dim*chains), lastG: make([]float64, dim*chains), haveLast: make([]bool, chains),
-		keptX: make([]float64, dim*chains), lastKSD: -1}
+		keptX: make([]float64, dim*chains), lastKSD: -1, chainSum: make([]float64, dim*chains)}
 }
 
 // histChains is the number of chains the history follows.
@@ -296,7 +312,13 @@ func (m *monitor) answered(req *kernels.Request, a *kernels.Answer) {
 			c := req.Chain[r]
 			x, g := req.Points[r*d:(r+1)*d], a.Grad[r*d:(r+1)*d]
 			if m.haveLast[c] && phase == 1%m.pairPeriod() {
-				m.curv.Add(m.lastX[c*d:(c+1)*d], x, m.lastG[c*d:(c+1)*d], g)
+				sec := m.curv.Add(m.lastX[c*d:(c+1)*d], x, m.lastG[c*d:(c+1)*d], g)
+				if !math.IsNaN(sec.In) {
+					m.pairs++
+					if sec.In < 0 {
+						m.uphill++
+					}
+				}
 			}
 			copy(m.lastX[c*d:], x)
 			copy(m.lastG[c*d:], g)
@@ -319,6 +341,10 @@ func (m *monitor) pairPeriod() int { return max(1, m.chains*m.dim/8192) }
 // know the scores there already.
 func (m *monitor) kept(k kernels.Kernel) {
 	m.hist.Add(pick(m.histIdx, m.dim, k.Positions(), &m.histX))
+	for i, v := range k.Positions() {
+		m.chainSum[i] += v
+	}
+	m.chainN++
 	if sc, ok := k.(kernels.Scorer); ok {
 		m.addKSD(k.Positions(), sc.Scores())
 		return
@@ -327,48 +353,66 @@ func (m *monitor) kept(k kernels.Kernel) {
 	m.pendingScores = true
 }
 
-// measure fills p's measured figures. Diagnostics cost O(N log N) per
-// coordinate on the kept window, so they are refreshed only while their
-// total cost stays within Limits.DiagnosticsShare (a tenth) of the
-// session's wall time: a report is
-// skipped (the last values stand) when the expected cost of one more —
-// the last one's, or 0.5 µs per kept value before the first — would
-// exceed that share. The final report always refreshes them.
-func (m *monitor) measure(p *Progress, final bool) {
+// steinReplicates is the bootstrap replicates of the Stein assessment on
+// the step cadence: 199 gives p-values in steps of 1/200, enough for a
+// test at 5 %, at two fifths of the default's cost.
+const steinReplicates = 199
+
+// judge measures the figures the targets and the verdict rest on: the
+// summaries of the kept window, the chains' agreement and the Stein
+// assessment. The engine calls it on the step cadence (Session.stepped)
+// and at the end, never on wall time, and the bootstrap's generator is
+// seeded from the session's seed and the step, so the figures, and every
+// decision taken on them, are the same however fast the client answers.
+func (m *monitor) judge(seed uint64, step int, stein bool) {
+	if n := int64(m.ksd.Kept()); stein && n >= 2 {
+		if seen := m.ksd.Seen(); seen != m.ksdSeen {
+			// The assessment recomputes the kernel sums at most when
+			// draws were offered since, evaluating each unordered pair
+			// and each diagonal once: the work the windows bound.
+			m.ksdEvaluations += n * (n + 1) / 2
+			m.ksdSeen = seen
+		}
+		r := m.ksd.Assess(steinReplicates, rand.New(rand.NewPCG(seed, uint64(step))))
+		m.stein = &SteinReport{KSD: r.KSD, U2: r.U2, SE: r.SE, Upper95: r.Upper95, PValue: r.PValue, Draws: r.N, State: r.State}
+		m.lastKSD = -1
+		if r.State != diag.SteinUndefined {
+			m.lastKSD = r.KSD
+		}
+	}
+	if sum := m.hist.Summarize(); sum != nil {
+		m.params = m.params[:0]
+		m.spread, m.spreadName = 0, ""
+		for j, d := range sum {
+			m.params = append(m.params, ParameterDiagnostics{Name: m.names[j], Mean: d.Mean, SD: d.SD,
+				Rhat: d.Rhat.Reported, BulkESS: d.BulkESS, TailESS: d.TailESS, MCSE: d.MeanMCSE})
+			if m.chains > 1 && m.chainN > 0 && d.MeanMCSE > 0 {
+				lo, hi := math.Inf(1), math.Inf(-1)
+				for c := range m.chains {
+					v := m.chainSum[c*m.dim+j] / float64(m.chainN)
+					lo, hi = math.Min(lo, v), math.Max(hi, v)
+				}
+				// A chain's mean has about √chains times the MCSE of the
+				// pooled mean.
+				if z := (hi - lo) / (d.MeanMCSE * math.Sqrt(float64(m.chains))); z > m.spread {
+					m.spread, m.spreadName = z, m.names[j]
+				}
+			}
+		}
+		m.measured = true
+	}
+}
+
+// report fills p with the figures of the last judgement.
+func (m *monitor) report(p *Progress) {
 	p.Curvature = CurvatureEstimate{Pairs: int64(m.curv.Pairs()), SmoothnessAtLeast: m.curv.SmoothnessFloor(),
 		StrongConvexityAtMost: m.curv.ConvexityCeiling(), NotConvex: m.curv.NonConvex()}
 	p.KSD = m.lastKSD
 	p.Parameters = m.params
-	expect := m.lastCost
-	if expect == 0 {
-		expect = time.Duration(500 * m.hist.Kept() * m.histChains() * m.dim) // measured: ~0.5 µs per kept value
+	if m.stein != nil {
+		r := *m.stein
+		p.Stein = &r
 	}
-	if !final && m.share >= 0 && float64(m.spent+expect) > m.share*float64(p.Elapsed) {
-		return
-	}
-	t := time.Now()
-	if n := int64(m.ksd.Kept()); n >= 2 {
-		if seen := m.ksd.Seen(); seen != m.ksdSeen {
-			// Result recomputes at most when draws were offered since
-			// (it caches otherwise), evaluating each unordered pair and
-			// each diagonal once.
-			m.ksdEvaluations += n * (n + 1) / 2
-			m.ksdSeen = seen
-		}
-		m.lastKSD = m.ksd.Result().U()
-		p.KSD = m.lastKSD
-	}
-	if sum := m.hist.Summarize(); sum != nil {
-		m.params = m.params[:0]
-		for j, d := range sum {
-			m.params = append(m.params, ParameterDiagnostics{Name: m.names[j], Mean: d.Mean, SD: d.SD,
-				Rhat: d.Rhat.Reported, BulkESS: d.BulkESS, TailESS: d.TailESS, MCSE: d.MeanMCSE})
-		}
-		m.measured = true
-	}
-	m.lastCost = time.Since(t)
-	m.spent += m.lastCost
-	p.Parameters = m.params
 }
 
 // worst returns the smallest bulk-ESS, the smallest tail-ESS and the
@@ -432,4 +476,25 @@ func (g *guarantee) penalise(req *kernels.Request, a *kernels.Answer, dim int) {
 			a.LogDensity[r] -= g.penalty * sq / 2
 		}
 	}
+}
+
+// theorem names the published result the bound rests on.
+func (g *guarantee) theorem() string {
+	if g.metric == bound.TV {
+		return "Dalalyan (2017), JRSS B 79(3), the total-variation bound for unadjusted Langevin under the declared m and M"
+	}
+	return "Dalalyan and Karagulyan (2019), Stochastic Processes and their Applications 129(12), Theorem 1 (W2 for unadjusted Langevin, inaccurate gradients) under the declared m and M"
+}
+
+// startText says where the bound's start term comes from.
+func (g *guarantee) startText() string {
+	switch {
+	case g.startSource != "":
+		return g.startSource
+	case g.metric == bound.TV:
+		return "its start law N(x*, M⁻¹I) is the theorem's own"
+	case g.setting.StartDistance > 0:
+		return fmt.Sprintf("the start distance %.4g as declared", g.setting.StartDistance)
+	}
+	return "the default start distance √(p/m), which holds only for a start at the mode"
 }

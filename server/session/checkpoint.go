@@ -157,6 +157,9 @@ type sessionState struct {
 	Guarantee    *guaranteeState
 	Finished     *Finished
 	LastProgress time.Duration // since start
+	// The verdict's cadence and divergence watch.
+	JudgeNext, SteinNext int
+	Divergence           *divergence
 }
 
 type noiseState struct {
@@ -182,10 +185,17 @@ type monitorState struct {
 	KeptX           []float64
 	PendingScores   bool
 	Requests        int
-	Spent, LastCost time.Duration
 	LastKSD         float64
 	Params          []ParameterDiagnostics
 	Measured        bool
+	// The verdict's figures: chains' sums, their spread, certificate
+	// pairs and the last Stein assessment.
+	ChainSum      []float64
+	ChainN        int64
+	Spread        float64
+	SpreadName    string
+	Pairs, Uphill int
+	Stein         *SteinReport
 }
 
 // followState is the "follow" section: the kept tail of the draw log.
@@ -239,6 +249,7 @@ func (s *Session) snapshot(fin *Finished) (Checkpoint, error) {
 	st := sessionState{ID: s.id, Token: s.persist.token, RequestID: s.requestID, Used: s.used, Seq: s.seq, Kept: s.kept,
 		Steps: s.kernel.Steps(), Phase: s.phase, Elapsed: time.Since(s.start), Count: s.count, Mean: s.mean, M2: s.m2,
 		EpsSteps: s.epsSteps, Finished: fin, LastProgress: s.lastProgress.Sub(s.start),
+		JudgeNext: s.judgeNext, SteinNext: s.steinNext, Divergence: s.div,
 		Noise: noiseState{Sum: s.noise.sum, Count: s.noise.count, N: s.noise.n, Mean: s.noise.mean, M2: s.noise.m2, Touched: s.noise.touched}}
 	if g := s.guarantee; g != nil {
 		st.Guarantee = &guaranteeState{Noise: g.setting.Noise, H: g.h, K0: g.k0, Planned: g.planned, Replan: g.replan}
@@ -272,7 +283,8 @@ func (s *Session) snapshot(fin *Finished) (Checkpoint, error) {
 	}
 	m := s.mon
 	ms := monitorState{LastX: m.lastX, LastG: m.lastG, HaveLast: m.haveLast, KeptX: m.keptX, PendingScores: m.pendingScores,
-		Requests: m.requests, Spent: m.spent, LastCost: m.lastCost, LastKSD: m.lastKSD, Params: m.params, Measured: m.measured}
+		Requests: m.requests, LastKSD: m.lastKSD, Params: m.params, Measured: m.measured,
+		ChainSum: m.chainSum, ChainN: m.chainN, Spread: m.spread, SpreadName: m.spreadName, Pairs: m.pairs, Uphill: m.uphill, Stein: m.stein}
 	if ms.Hist, err = m.hist.MarshalBinary(); err == nil {
 		if ms.KSD, err = m.ksd.MarshalBinary(); err == nil {
 			ms.Curv, err = m.curv.MarshalBinary()
@@ -394,6 +406,10 @@ func Restore(state []byte, lim Limits) (*Session, error) {
 		s.guarantee.setting.Noise, s.guarantee.h, s.guarantee.k0, s.guarantee.planned, s.guarantee.replan = g.Noise, g.H, g.K0, g.Planned, g.Replan
 	}
 	s.persist.token = st.Token
+	s.judgeNext, s.steinNext = st.JudgeNext, st.SteinNext
+	if st.Divergence != nil {
+		s.div = st.Divergence
+	}
 	s.persist.restored = &st
 	s.persist.phases = phases
 	s.persist.final = st.Finished
@@ -422,7 +438,11 @@ func (m *monitor) restore(ms *monitorState) error {
 	copy(m.lastG, ms.LastG)
 	copy(m.haveLast, ms.HaveLast)
 	copy(m.keptX, ms.KeptX)
-	m.pendingScores, m.requests, m.spent, m.lastCost, m.lastKSD = ms.PendingScores, ms.Requests, ms.Spent, ms.LastCost, ms.LastKSD
+	m.pendingScores, m.requests, m.lastKSD = ms.PendingScores, ms.Requests, ms.LastKSD
+	if len(ms.ChainSum) == len(m.chainSum) {
+		copy(m.chainSum, ms.ChainSum)
+	}
+	m.chainN, m.spread, m.spreadName, m.pairs, m.uphill, m.stein = ms.ChainN, ms.Spread, ms.SpreadName, ms.Pairs, ms.Uphill, ms.Stein
 	m.params, m.measured = append(m.params[:0], ms.Params...), ms.Measured
 	return nil
 }

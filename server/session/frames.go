@@ -124,6 +124,11 @@ type Progress struct {
 	// EvaluationsUsed).
 	Tuning            []Choice
 	TuningEvaluations int64
+	// Stein is the kernel Stein discrepancy with its uncertainty; nil
+	// when not measured (KSD above is its point estimate).
+	Stein *SteinReport
+	// Checks is the verdict so far: every named check with its status.
+	Checks []Check
 }
 
 // KernelReport holds a kernel's own figures (zero when it has none).
@@ -159,6 +164,9 @@ const (
 	Failed
 	Shutdown
 	TargetMet
+	// CheckFailed: the session would have ended with its draws collected
+	// or its targets met, but a check of the verdict failed.
+	CheckFailed
 )
 
 func (r Reason) String() string {
@@ -177,6 +185,8 @@ func (r Reason) String() string {
 		return "server shutting down"
 	case TargetMet:
 		return "target met"
+	case CheckFailed:
+		return "check failed"
 	}
 	return "unknown"
 }
@@ -194,6 +204,8 @@ type Finished struct {
 	Message    string
 	Progress   Progress
 	Parameters []ParameterSummary
+	// Checks is the session's verdict (the same as Progress.Checks).
+	Checks []Check
 }
 
 func (*Registered) frame() {}

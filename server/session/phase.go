@@ -9,8 +9,8 @@ import (
 
 // A Phase is a stage the engine runs before sampling, in the same ask/tell
 // shape as a kernel but without chains, steps or draws of its own: a
-// curvature probe today; a gradient check, a mode search or metric
-// adaptation can be added the same way.
+// gradient check (gradcheck.go) and a curvature probe today; a mode
+// search or metric adaptation can be added the same way.
 //
 // The contract:
 //   - Next returns the phase's next request. Calling Next again before Tell
@@ -23,7 +23,10 @@ import (
 //     request (after the engine's own corrections, such as a penalty) and
 //     reports whether the phase is complete. A phase that cannot continue
 //     (a vanishing direction, say) completes early with what it has; it
-//     never panics on a client's values and never fails the session.
+//     never panics on a client's values. It fails the session only
+//     through an optional method Fault() *Error, read after every Tell
+//     (the gradient check: a gradient that disagrees with finite
+//     differences of log π is the client's error).
 //   - Report adds what the phase has learnt to a progress report. The
 //     engine calls it for every report, while the phase runs and after.
 //

@@ -236,6 +236,10 @@ type KernelCost struct {
 	// SetupPerChain is the evaluations per chain spent once, before the
 	// first step.
 	SetupPerChain int
+	// CheckRows is the evaluations the default gradient check spends once,
+	// before sampling, whatever the number of chains (0 for kernels it
+	// does not run for by default; see Spec.GradientCheckPoints).
+	CheckRows int
 	// Periodic returns the extra evaluations per chain beyond
 	// EvaluationsPerStep over steps steps of spec; nil when there are
 	// none. spec must have been validated by New (Session.Spec).
@@ -249,7 +253,11 @@ func CostOf(name string) (KernelCost, bool) {
 	if !ok {
 		return KernelCost{}, false
 	}
-	return KernelCost{Random: e.randomCost, SetupPerChain: e.setupRows, Periodic: e.periodicRows}, true
+	c := KernelCost{Random: e.randomCost, SetupPerChain: e.setupRows, Periodic: e.periodicRows}
+	if n := gradientCheckPoints(&Spec{}, e); n > 0 {
+		c.CheckRows = n * gradCheckShape.rowsPerChain
+	}
+	return c, true
 }
 
 // checkEnvelope validates the rejection kernel's envelope.

@@ -14,6 +14,7 @@ import (
 	"sluice/internal/wire"
 	"sluice/kernels"
 	"sluice/kernels/bound"
+	"sluice/kernels/diag"
 )
 
 // Session is one validated session, ready to Run once.
@@ -61,6 +62,14 @@ type Session struct {
 	pointRow   []int     // per chain: the row of the last request holding its draw, or −1
 	refValues  []float64 // the draws not sent by reference
 	trimmed    Draws     // a resumed client's first draws, less those it has (skipSent)
+
+	// The verdict's state, in plain fields: the divergence watch, the
+	// step at which the figures are next judged (stepped), and the
+	// gradient check phase (nil when none runs).
+	div       *divergence
+	judgeNext int
+	steinNext int
+	gradCheck *gradientCheckPhase
 }
 
 // Result is what Run reports when it returns.
@@ -121,6 +130,7 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 		c := spec.Curvature
 		tn.apply(s.kernel, &s.spec, c.StrongConvexity, c.Smoothness/probeSafety, "declared curvature")
 	}
+	s.div = newDivergence(&s.spec)
 	if err := s.size(); err != nil {
 		return nil, err
 	}
@@ -153,10 +163,14 @@ func negotiate(server, client int64) int64 {
 // shapes lists every kind of request the session may send: its phases'
 // and its kernel's.
 func (s *Session) shapes() []requestShape {
+	out := s.entry.requests
 	if s.spec.CurvatureProbe > 0 {
-		return append(slices.Clip(probeShapes), s.entry.requests...)
+		out = append(slices.Clip(probeShapes), out...)
 	}
-	return s.entry.requests
+	if gradientCheckPoints(&s.spec, s.entry) > 0 {
+		out = append(slices.Clip(out), gradCheckShape)
+	}
+	return out
 }
 
 // size checks that one row of every kind of request the session may send
@@ -327,6 +341,10 @@ func (s *Session) begin(ctx context.Context, in <-chan Message, send func(Frame)
 		r.deadline = r.timer.C
 	}
 	s.phases = s.phases[:0]
+	if n := gradientCheckPoints(&s.spec, s.entry); n > 0 {
+		s.gradCheck = newGradientCheck(&s.spec, n)
+		s.phases = append(s.phases, s.gradCheck)
+	}
 	if s.spec.CurvatureProbe > 0 {
 		s.phases = append(s.phases, newCurvatureProbe(s.kernel.Positions(), s.spec.Dim, s.spec.CurvatureProbe))
 	}
@@ -509,20 +527,25 @@ func (s *Session) complete(r *run, req *kernels.Request) *Error {
 	s.guarantee.penalise(req, s.answer, s.spec.Dim)
 	s.mon.answered(req, s.answer)
 	if s.phase < len(s.phases) {
-		if s.phases[s.phase].Tell(s.answer) {
+		ph := s.phases[s.phase]
+		if ph.Tell(s.answer) {
 			s.phase++
+		}
+		if f, ok := ph.(interface{ Fault() *Error }); ok && f.Fault() != nil {
+			return f.Fault()
 		}
 		return nil
 	}
+	if s.kernel.Steps() == 0 {
+		s.certifyStart(req)
+	}
 	done := s.kernel.Tell(s.answer)
-	if done {
-		if err := s.diverged(); err != nil {
-			return err
-		}
-		if int64(s.kernel.Steps()) <= s.spec.BurnIn {
-			if ph := s.tune.afterStep(s.kernel, &s.spec); ph != nil {
-				s.phases = append(s.phases, ph)
-			}
+	if done && s.div.observe(s.kernel.Positions(), s.kernel.Steps()) {
+		return s.divergedError(s.kernel.Steps())
+	}
+	if done && int64(s.kernel.Steps()) <= s.spec.BurnIn {
+		if ph := s.tune.afterStep(s.kernel, &s.spec); ph != nil {
+			s.phases = append(s.phases, ph)
 		}
 	}
 	if f, ok := s.kernel.(kernels.Faulter); ok {
@@ -541,24 +564,44 @@ func (s *Session) complete(r *run, req *kernels.Request) *Error {
 			s.kept++
 			s.mon.kept(s.kernel)
 		}
+		s.stepped()
 	}
 	return nil
 }
 
-// diverged reports a chain whose position stopped being finite: the step
-// is too large for the target (on a Gaussian with largest precision
-// eigenvalue M, LMC's recursion multiplies by 1 − hM, so it is stable only
-// below h = 2/M; derived here), and going on would only send the client
-// points it cannot evaluate.
-func (s *Session) diverged() *Error {
-	x, d := s.kernel.Positions(), s.spec.Dim
-	for i, v := range x {
-		if math.IsNaN(v) || math.IsInf(v, 0) {
-			return badValue("register.step", i/d, i%d, "the chain diverged at step %d (position %v): the step %v is too large for this target",
-				s.kernel.Steps(), v, stepOf(s.kernel))
-		}
+// stepped runs, after every completed step, everything that changes the
+// sampling or decides when it ends: the gradient-noise estimate, the
+// guaranteed bound and the re-plan of the step, and, on a step-count
+// cadence, the measured figures the targets and the verdict rest on.
+// Nothing here reads the clock, so a slow client and a fast one with the
+// same seed and answers get the same draws. The cadence: every step (every
+// ProgressEverySteps steps when set) while Limits.DiagnosticsShare is
+// negative (tests), else after 20 steps, then
+// whenever the steps have grown by a tenth (at least 20 steps apart): the
+// summaries cost O(window) each, so a run of K steps pays for
+// O(log K) of them. The Stein assessment has a sparser cadence of its
+// own.
+func (s *Session) stepped() {
+	k := s.kernel.Steps()
+	if s.spec.Noise.Stochastic {
+		s.updateNoise(s.noise.estimate(s.spec.Noise))
 	}
-	return nil
+	if k < s.judgeNext {
+		return
+	}
+	stein := k >= s.steinNext
+	s.mon.judge(s.spec.Seed, k, stein)
+	if s.lim.DiagnosticsShare < 0 {
+		s.judgeNext = k + max(1, int(s.spec.ProgressEverySteps))
+	} else {
+		s.judgeNext = k + max(20, k/10)
+	}
+	if stein {
+		// The Stein assessment costs O(N²) on its window of N ≤ 2048
+		// draws and a bootstrap: at most every 20 steps, then a quarter
+		// further each time.
+		s.steinNext = k + max(20, k/4)
+	}
 }
 
 // keeps reports whether the draws after step are kept (burn-in, then
@@ -888,7 +931,7 @@ func (s *Session) targetsMet() bool {
 	if !w.any() {
 		return false
 	}
-	if w.Eps > 0 && (s.epsSteps < 0 || s.kernel.Steps() < s.epsSteps) {
+	if w.Eps > 0 && !s.epsMet() {
 		return false
 	}
 	if w.MinBulkESS > 0 || w.MinTailESS > 0 || w.MaxRhat > 0 {
@@ -901,10 +944,28 @@ func (s *Session) targetsMet() bool {
 			return false
 		}
 	}
-	if w.MaxKSD > 0 && !(s.mon.lastKSD >= 0 && s.mon.lastKSD <= w.MaxKSD) {
+	if w.MaxKSD > 0 && !(s.mon.stein != nil && s.stein().Below(w.MaxKSD)) {
 		return false
 	}
-	return true
+	// Never "target met" while a check fails.
+	return failing(s.verdict()) == ""
+}
+
+// epsMet reports whether the guaranteed bound at the current step count
+// is within Wants.Eps: the bound is the one the report shows, computed
+// with the noise level and step of the step path.
+func (s *Session) epsMet() bool {
+	if s.guarantee == nil || s.boundBroken() != "" {
+		return false
+	}
+	b, err := s.guarantee.at(s.kernel.Steps())
+	return err == nil && b.Total <= s.spec.Wants.Eps
+}
+
+// stein returns the last Stein assessment as a diag result, for Below.
+func (s *Session) stein() diag.SteinResult {
+	r := s.mon.stein
+	return diag.SteinResult{N: r.Draws, U2: r.U2, SE: r.SE, KSD: r.KSD, Upper95: r.Upper95, PValue: r.PValue, State: r.State}
 }
 
 // targets reports each requested target at the current state.
@@ -917,7 +978,7 @@ func (s *Session) targets(b *bound.Bound) []TargetStatus {
 			t.Current = b.Total
 		}
 		k := s.kernel.Steps()
-		t.Met = s.epsSteps >= 0 && k >= s.epsSteps
+		t.Met = s.epsMet()
 		if s.epsSteps >= 0 {
 			t.ProjectedEvaluations = int64(max(0, s.epsSteps-k)) * int64(s.kernel.EvaluationsPerStep())
 		}
@@ -949,8 +1010,14 @@ func (s *Session) targets(b *bound.Bound) []TargetStatus {
 		out = append(out, TargetStatus{Name: "max_rhat", Want: w.MaxRhat, Current: rhat, Met: rhat <= w.MaxRhat, ProjectedEvaluations: -1})
 	}
 	if w.MaxKSD > 0 {
-		k := s.mon.lastKSD
-		out = append(out, TargetStatus{Name: "max_ksd", Want: w.MaxKSD, Current: k, Met: k >= 0 && k <= w.MaxKSD, ProjectedEvaluations: -1})
+		// The figure judged against the target is the upper 95 % bound:
+		// the target is met only when the discrepancy is below it with
+		// 95 % confidence.
+		t := TargetStatus{Name: "max_ksd", Want: w.MaxKSD, Current: -1, ProjectedEvaluations: -1}
+		if s.mon.stein != nil {
+			t.Current, t.Met = s.mon.stein.Upper95, s.stein().Below(w.MaxKSD)
+		}
+		out = append(out, t)
 	}
 	return out
 }
@@ -970,6 +1037,11 @@ func (s *Session) burnInCost() int64 {
 func (s *Session) estimatedBound(c CurvatureEstimate) (bound.Bound, bool) {
 	if !s.entry.guaranteed || s.spec.Curvature != nil || (c.Pairs < int64(2*s.spec.Dim) && c.ProbedSmoothness == 0) || c.NotConvex ||
 		s.tune.metric != nil {
+		return bound.Bound{}, false
+	}
+	if _, _, rhat := s.mon.worst(); s.mon.measured && !(rhat <= rhatFail) {
+		// The chains disagree: a bound on one chain's law is no summary
+		// of them.
 		return bound.Bound{}, false
 	}
 	m, bigM := c.StrongConvexityAtMost, c.SmoothnessAtLeast
@@ -1051,7 +1123,10 @@ func (s *Session) progress(now time.Time, final bool) Progress {
 	if sec := elapsed.Seconds(); sec > 0 {
 		p.EvaluationsPerSecond = float64(s.used) / sec
 	}
-	s.mon.measure(&p, final)
+	if final {
+		s.mon.judge(s.spec.Seed, s.kernel.Steps(), true)
+	}
+	s.mon.report(&p)
 	for _, ph := range s.phases {
 		ph.Report(&p)
 	}
@@ -1063,7 +1138,6 @@ func (s *Session) progress(now time.Time, final bool) Progress {
 	if s.spec.Noise.Stochastic {
 		n := s.noise.estimate(s.spec.Noise)
 		p.Noise = &n
-		s.updateNoise(n)
 	}
 	if s.guarantee != nil {
 		if b, err := s.guarantee.at(s.kernel.Steps()); err == nil {
@@ -1084,13 +1158,27 @@ func (s *Session) progress(now time.Time, final bool) Progress {
 		p.BoundLabel = b.Source.String()
 	}
 	p.Targets = s.targets(p.Bound)
+	p.Checks = s.verdict()
 	return p
 }
 
 func (s *Session) result(r Reason, msg string) Result {
 	p := s.progress(time.Now(), true)
 	p.State = Done
-	f := Finished{Reason: r, Message: msg, Progress: p, Parameters: make([]ParameterSummary, s.spec.Dim)}
+	if fail := failing(p.Checks); fail != "" {
+		switch r {
+		case DrawsCollected, TargetMet:
+			msg = fmt.Sprintf("%s, but %s", r, fail)
+			r = CheckFailed
+		case Failed:
+		default:
+			if msg != "" {
+				msg += "; "
+			}
+			msg += fail
+		}
+	}
+	f := Finished{Reason: r, Message: msg, Progress: p, Parameters: make([]ParameterSummary, s.spec.Dim), Checks: p.Checks}
 	for i := range f.Parameters {
 		ps := ParameterSummary{Name: s.spec.Names[i], Count: s.count}
 		if s.count > 0 {

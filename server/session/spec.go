@@ -98,6 +98,12 @@ type Spec struct {
 	Metric []float64
 	// MetricForm says what the engine does about the metric (adapt.go).
 	MetricForm MetricForm
+	// GradientCheckPoints is how many start points the gradient check
+	// compares the gradient with finite differences of log π at, before
+	// sampling (log densities are asked for then, and counted): 0 means 3
+	// for kernels that ask for log densities anyway and none for the
+	// others; −1 means none.
+	GradientCheckPoints int
 }
 
 // Envelope is q = N(Mean, Scale²I) with π̃ ≤ exp(LogBound)·q.
@@ -315,6 +321,12 @@ func (s *Spec) validateFields(k *kernelEntry) error {
 	}
 	if err := s.validateNoise(k); err != nil {
 		return err
+	}
+	if s.GradientCheckPoints < -1 || s.GradientCheckPoints > 64 {
+		return bad("gradient_check_points", "must be between -1 (none) and 64, got %d", s.GradientCheckPoints)
+	}
+	if s.GradientCheckPoints > 0 && (s.Noise.Stochastic || !k.need().Has(kernels.NeedGradient)) {
+		return bad("gradient_check_points", "the gradient check compares exact gradients with finite differences of log π: kernel %s with these gradients cannot take it", s.Kernel)
 	}
 	if s.CurvatureProbe < 0 || s.CurvatureProbe > 10000 {
 		return bad("curvature_probe_iterations", "must be between 0 and 10000, got %d", s.CurvatureProbe)

@@ -126,6 +126,8 @@ def render_table(summary: "Summary", level: float = DEFAULT_INTERVAL_LEVEL) -> s
         f"{chains}{summary.draws_received} draws received, {p.evaluations_used} evaluations, "
         f"{p.seconds_used:.3g} s",
     ]
+    for c in summary.checks:
+        lines.append(f"check {c.name}: {c.status.value}: {c.message}")
     stats = parameter_stats(summary, level)
     if not stats:
         lines.append("no parameters reported")

@@ -264,6 +264,11 @@ class Spec:
     #: the budget; reported in Progress.curvature). 0: no probe. Exact
     #: gradients only.
     curvature_probe_iterations: int = 0
+    #: Start points at which the server compares the gradient with finite
+    #: differences of the log density before sampling (log densities are
+    #: asked for then, counted in the budget): 0 means 3 for kernels that
+    #: ask for log densities anyway and none for the others; -1 means none.
+    gradient_check_points: int = 0
     #: "hit-and-run": initial slice width on each line in units of theta (0
     #: means 1) and the most stepping-out expansions per step (0 means 64).
     slice_width: float = 0.0
@@ -330,6 +335,7 @@ class Spec:
             fixed_point_tolerance=self.fixed_point_tolerance,
             fixed_point_iterations=self.fixed_point_iterations,
             curvature_probe_iterations=self.curvature_probe_iterations,
+            gradient_check_points=self.gradient_check_points,
             slice_width=self.slice_width,
             slice_max_expansions=self.slice_max_expansions,
         )
@@ -713,6 +719,60 @@ class WorkerReport:
 
 
 @dataclass(frozen=True)
+class SteinAssessment:
+    """The kernel Stein discrepancy of the kept draws in standardised
+    coordinates: the point estimate sqrt(max(U, 0)), the U-statistic of
+    KSD^2 and its standard error, an upper 95 % bound (a max_ksd target is
+    met only below it), the bootstrap p-value of KSD = 0, the draws it
+    rests on, the state's wire name and the state in plain words."""
+
+    ksd: float
+    u_statistic: float
+    se: float
+    upper95: float
+    p_value: float
+    draws: int
+    state: str
+    state_text: str
+
+    @classmethod
+    def from_wire(cls, m: pb.SteinAssessment) -> "SteinAssessment":
+        return cls(m.ksd, m.u_statistic, m.se, m.upper95, m.p_value, m.draws, pb.SteinState.Name(m.state), m.state_text)
+
+
+class CheckStatus(enum.Enum):
+    """How a check of the verdict came out."""
+
+    UNSPECIFIED = "unspecified"
+    PASS = "pass"
+    WARN = "warn"
+    FAIL = "fail"
+
+
+_CHECK_STATUS_FROM_WIRE = {
+    pb.CHECK_STATUS_PASS: CheckStatus.PASS,
+    pb.CHECK_STATUS_WARN: CheckStatus.WARN,
+    pb.CHECK_STATUS_FAIL: CheckStatus.FAIL,
+}
+
+
+@dataclass(frozen=True)
+class Check:
+    """One named check of the session's verdict (divergence, stability,
+    mixing, bias, gradient, guarantee): its status, the figure it rests on
+    and one sentence for a person."""
+
+    name: str
+    status: CheckStatus
+    figure: float
+    message: str
+
+    @classmethod
+    def from_wire(cls, m: pb.Check) -> "Check":
+        return cls(m.name, _CHECK_STATUS_FROM_WIRE.get(m.status, CheckStatus.UNSPECIFIED), m.figure, m.message)
+
+
+@dataclass(frozen=True)
 class Progress:
     """Where the budget stands, and the accuracy so far.
     ``evaluations_left`` and ``seconds_left`` are -1 when unlimited; ``ksd``
@@ -752,6 +812,10 @@ class Progress:
     tuning: Tuple[TuningChoice, ...] = ()
     #: Evaluations the automatic tuning's curvature probes cost.
     tuning_evaluations: int = 0
+    #: The Stein discrepancy with its uncertainty; None when not measured.
+    stein: Optional[SteinAssessment] = None
+    #: The verdict so far.
+    checks: Tuple[Check, ...] = ()
 
     @classmethod
     def from_wire(cls, m: pb.Progress) -> "Progress":
@@ -778,6 +842,8 @@ class Progress:
             MetricReport.from_wire(m.metric),
             tuple(TuningChoice.from_wire(c) for c in m.tuning),
             m.tuning_evaluations,
+            SteinAssessment.from_wire(m.stein) if m.HasField("stein") else None,
+            tuple(Check.from_wire(c) for c in m.checks),
         )
 
 
@@ -792,6 +858,7 @@ class FinishReason(enum.Enum):
     FAILED = "failed"
     SHUTDOWN = "server shutting down"
     TARGET_MET = "target met"
+    CHECK_FAILED = "check failed"
 
 
 _REASON_FROM_WIRE = {
@@ -802,6 +869,7 @@ _REASON_FROM_WIRE = {
     pb.FINISH_REASON_FAILED: FinishReason.FAILED,
     pb.FINISH_REASON_SHUTDOWN: FinishReason.SHUTDOWN,
     pb.FINISH_REASON_TARGET_MET: FinishReason.TARGET_MET,
+    pb.FINISH_REASON_CHECK_FAILED: FinishReason.CHECK_FAILED,
 }
 
 
@@ -842,6 +910,8 @@ class Summary:
     draws: Optional[np.ndarray] = None
     draw_chains: Optional[np.ndarray] = None
     draw_iterations: Optional[np.ndarray] = None
+    #: The session's verdict from the final frame.
+    checks: Tuple[Check, ...] = ()
 
     @property
     def names(self) -> Tuple[str, ...]:
@@ -938,6 +1008,7 @@ class Summary:
             values,
             chains,
             iterations,
+            tuple(Check.from_wire(c) for c in m.checks),
         )
 
 

@@ -324,6 +324,118 @@ func (State) EnumDescriptor() ([]byte, []int) {
 	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{4}
 }
 
+// What a Stein assessment can claim.
+type SteinState int32
+
+const (
+	SteinState_STEIN_STATE_UNSPECIFIED SteinState = 0
+	// Too few draws or values that are not finite.
+	SteinState_STEIN_STATE_UNDEFINED SteinState = 1
+	// The test does not reject KSD = 0: not distinguishable from 0 at this
+	// sample size (not a proof that the draws match the target).
+	SteinState_STEIN_STATE_INDISTINGUISHABLE SteinState = 2
+	// The test rejects KSD = 0: the draws measurably differ from the target.
+	SteinState_STEIN_STATE_SIGNIFICANT SteinState = 3
+)
+
+// Enum value maps for SteinState.
+var (
+	SteinState_name = map[int32]string{
+		0: "STEIN_STATE_UNSPECIFIED",
+		1: "STEIN_STATE_UNDEFINED",
+		2: "STEIN_STATE_INDISTINGUISHABLE",
+		3: "STEIN_STATE_SIGNIFICANT",
+	}
+	SteinState_value = map[string]int32{
+		"STEIN_STATE_UNSPECIFIED":       0,
+		"STEIN_STATE_UNDEFINED":         1,
+		"STEIN_STATE_INDISTINGUISHABLE": 2,
+		"STEIN_STATE_SIGNIFICANT":       3,
+	}
+)
+
+func (x SteinState) Enum() *SteinState {
+	p := new(SteinState)
+	*p = x
+	return p
+}
+
+func (x SteinState) String() string {
+	return protoimpl.X.EnumStringOf(x.Descriptor(), protoreflect.EnumNumber(x))
+}
+
+func (SteinState) Descriptor() protoreflect.EnumDescriptor {
+	return file_sluice_v1_sluice_proto_enumTypes[5].Descriptor()
+}
+
+func (SteinState) Type() protoreflect.EnumType {
+	return &file_sluice_v1_sluice_proto_enumTypes[5]
+}
+
+func (x SteinState) Number() protoreflect.EnumNumber {
+	return protoreflect.EnumNumber(x)
+}
+
+// Deprecated: Use SteinState.Descriptor instead.
+func (SteinState) EnumDescriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{5}
+}
+
+// How a check came out.
+type CheckStatus int32
+
+const (
+	CheckStatus_CHECK_STATUS_UNSPECIFIED CheckStatus = 0
+	CheckStatus_CHECK_STATUS_PASS        CheckStatus = 1
+	// Something to look at; the draws may still be usable.
+	CheckStatus_CHECK_STATUS_WARN CheckStatus = 2
+	// The draws should not be trusted for what this check covers.
+	CheckStatus_CHECK_STATUS_FAIL CheckStatus = 3
+)
+
+// Enum value maps for CheckStatus.
+var (
+	CheckStatus_name = map[int32]string{
+		0: "CHECK_STATUS_UNSPECIFIED",
+		1: "CHECK_STATUS_PASS",
+		2: "CHECK_STATUS_WARN",
+		3: "CHECK_STATUS_FAIL",
+	}
+	CheckStatus_value = map[string]int32{
+		"CHECK_STATUS_UNSPECIFIED": 0,
+		"CHECK_STATUS_PASS":        1,
+		"CHECK_STATUS_WARN":        2,
+		"CHECK_STATUS_FAIL":        3,
+	}
+)
+
+func (x CheckStatus) Enum() *CheckStatus {
+	p := new(CheckStatus)
+	*p = x
+	return p
+}
+
+func (x CheckStatus) String() string {
+	return protoimpl.X.EnumStringOf(x.Descriptor(), protoreflect.EnumNumber(x))
+}
+
+func (CheckStatus) Descriptor() protoreflect.EnumDescriptor {
+	return file_sluice_v1_sluice_proto_enumTypes[6].Descriptor()
+}
+
+func (CheckStatus) Type() protoreflect.EnumType {
+	return &file_sluice_v1_sluice_proto_enumTypes[6]
+}
+
+func (x CheckStatus) Number() protoreflect.EnumNumber {
+	return protoreflect.EnumNumber(x)
+}
+
+// Deprecated: Use CheckStatus.Descriptor instead.
+func (CheckStatus) EnumDescriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{6}
+}
+
 // Where a bound's curvature constants come from.
 type BoundSource int32
 
@@ -361,11 +473,11 @@ func (x BoundSource) String() string {
 }
 
 func (BoundSource) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[5].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[7].Descriptor()
 }
 
 func (BoundSource) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[5]
+	return &file_sluice_v1_sluice_proto_enumTypes[7]
 }
 
 func (x BoundSource) Number() protoreflect.EnumNumber {
@@ -374,7 +486,7 @@ func (x BoundSource) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use BoundSource.Descriptor instead.
 func (BoundSource) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{5}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{7}
 }
 
 // Why a session ended.
@@ -396,6 +508,9 @@ const (
 	FinishReason_FINISH_REASON_SHUTDOWN FinishReason = 6
 	// Every target in Register.wants holds.
 	FinishReason_FINISH_REASON_TARGET_MET FinishReason = 7
+	// The session would have ended with its draws collected or its targets
+	// met, but a check of the verdict failed; `message` names it.
+	FinishReason_FINISH_REASON_CHECK_FAILED FinishReason = 8
 )
 
 // Enum value maps for FinishReason.
@@ -409,6 +524,7 @@ var (
 		5: "FINISH_REASON_FAILED",
 		6: "FINISH_REASON_SHUTDOWN",
 		7: "FINISH_REASON_TARGET_MET",
+		8: "FINISH_REASON_CHECK_FAILED",
 	}
 	FinishReason_value = map[string]int32{
 		"FINISH_REASON_UNSPECIFIED":     0,
@@ -419,6 +535,7 @@ var (
 		"FINISH_REASON_FAILED":          5,
 		"FINISH_REASON_SHUTDOWN":        6,
 		"FINISH_REASON_TARGET_MET":      7,
+		"FINISH_REASON_CHECK_FAILED":    8,
 	}
 )
 
@@ -433,11 +550,11 @@ func (x FinishReason) String() string {
 }
 
 func (FinishReason) Descriptor() protoreflect.EnumDescriptor {
-	return file_sluice_v1_sluice_proto_enumTypes[6].Descriptor()
+	return file_sluice_v1_sluice_proto_enumTypes[8].Descriptor()
 }
 
 func (FinishReason) Type() protoreflect.EnumType {
-	return &file_sluice_v1_sluice_proto_enumTypes[6]
+	return &file_sluice_v1_sluice_proto_enumTypes[8]
 }
 
 func (x FinishReason) Number() protoreflect.EnumNumber {
@@ -446,7 +563,7 @@ func (x FinishReason) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use FinishReason.Descriptor instead.
 func (FinishReason) EnumDescriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{6}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{8}
 }
 
 // PlanRequest describes the target and the accuracy wanted.
@@ -1335,9 +1452,15 @@ type Register struct {
 	// none declared.
 	Metric []byte `protobuf:"bytes,35,opt,name=metric,proto3" json:"metric,omitempty"`
 	// What the server does about the metric (see MetricForm).
-	MetricForm    MetricForm `protobuf:"varint,36,opt,name=metric_form,json=metricForm,proto3,enum=sluice.v1.MetricForm" json:"metric_form,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	MetricForm MetricForm `protobuf:"varint,36,opt,name=metric_form,json=metricForm,proto3,enum=sluice.v1.MetricForm" json:"metric_form,omitempty"`
+	// Start points at which the gradient is compared with finite
+	// differences of the log density before sampling (log densities are
+	// asked for then, and counted in the budget): 0 means 3 for kernels that
+	// ask for log densities anyway and none for the others; -1 means none.
+	// A gradient that disagrees fails the session on evaluations.gradients.
+	GradientCheckPoints int32 `protobuf:"varint,37,opt,name=gradient_check_points,json=gradientCheckPoints,proto3" json:"gradient_check_points,omitempty"`
+	unknownFields       protoimpl.UnknownFields
+	sizeCache           protoimpl.SizeCache
 }
 
 func (x *Register) Reset() {
@@ -1620,6 +1743,13 @@ func (x *Register) GetMetricForm() MetricForm {
 		return x.MetricForm
 	}
 	return MetricForm_METRIC_FORM_UNSPECIFIED
+}
+
+func (x *Register) GetGradientCheckPoints() int32 {
+	if x != nil {
+		return x.GradientCheckPoints
+	}
+	return 0
 }
 
 // MetricReport says which metric the kernel uses.
@@ -2854,8 +2984,13 @@ type Progress struct {
 	// Evaluations the automatic tuning's curvature probes cost (counted in
 	// evaluations_used).
 	TuningEvaluations int64 `protobuf:"varint,22,opt,name=tuning_evaluations,json=tuningEvaluations,proto3" json:"tuning_evaluations,omitempty"`
-	unknownFields     protoimpl.UnknownFields
-	sizeCache         protoimpl.SizeCache
+	// The kernel Stein discrepancy with its uncertainty (ksd above is its
+	// point estimate). Absent when not measured.
+	Stein *SteinAssessment `protobuf:"bytes,23,opt,name=stein,proto3" json:"stein,omitempty"`
+	// The session's verdict so far: every named check with its status.
+	Checks        []*Check `protobuf:"bytes,24,rep,name=checks,proto3" json:"checks,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *Progress) Reset() {
@@ -3042,6 +3177,206 @@ func (x *Progress) GetTuningEvaluations() int64 {
 	return 0
 }
 
+func (x *Progress) GetStein() *SteinAssessment {
+	if x != nil {
+		return x.Stein
+	}
+	return nil
+}
+
+func (x *Progress) GetChecks() []*Check {
+	if x != nil {
+		return x.Checks
+	}
+	return nil
+}
+
+// SteinAssessment is a kernel Stein discrepancy of the kept draws in
+// standardised coordinates, with its standard error, an upper 95 % bound
+// and a bootstrap test of KSD = 0.
+type SteinAssessment struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Point estimate, sqrt(max(U, 0)) of the U-statistic U of KSD^2: 0 is
+	// not evidence of a small discrepancy; read upper95 and state.
+	Ksd float64 `protobuf:"fixed64,1,opt,name=ksd,proto3" json:"ksd,omitempty"`
+	// The U-statistic of KSD^2 (may be negative: sampling noise) and its
+	// standard error.
+	UStatistic float64 `protobuf:"fixed64,2,opt,name=u_statistic,json=uStatistic,proto3" json:"u_statistic,omitempty"`
+	Se         float64 `protobuf:"fixed64,3,opt,name=se,proto3" json:"se,omitempty"`
+	// Upper 95 % confidence bound on the KSD: a max_ksd target is met only
+	// when this is below it.
+	Upper95 float64 `protobuf:"fixed64,4,opt,name=upper95,proto3" json:"upper95,omitempty"`
+	// Bootstrap p-value of the test of KSD = 0.
+	PValue float64 `protobuf:"fixed64,5,opt,name=p_value,json=pValue,proto3" json:"p_value,omitempty"`
+	// Draws it was computed from.
+	Draws int64      `protobuf:"varint,6,opt,name=draws,proto3" json:"draws,omitempty"`
+	State SteinState `protobuf:"varint,7,opt,name=state,proto3,enum=sluice.v1.SteinState" json:"state,omitempty"`
+	// The state in plain words.
+	StateText     string `protobuf:"bytes,8,opt,name=state_text,json=stateText,proto3" json:"state_text,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *SteinAssessment) Reset() {
+	*x = SteinAssessment{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *SteinAssessment) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*SteinAssessment) ProtoMessage() {}
+
+func (x *SteinAssessment) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use SteinAssessment.ProtoReflect.Descriptor instead.
+func (*SteinAssessment) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{20}
+}
+
+func (x *SteinAssessment) GetKsd() float64 {
+	if x != nil {
+		return x.Ksd
+	}
+	return 0
+}
+
+func (x *SteinAssessment) GetUStatistic() float64 {
+	if x != nil {
+		return x.UStatistic
+	}
+	return 0
+}
+
+func (x *SteinAssessment) GetSe() float64 {
+	if x != nil {
+		return x.Se
+	}
+	return 0
+}
+
+func (x *SteinAssessment) GetUpper95() float64 {
+	if x != nil {
+		return x.Upper95
+	}
+	return 0
+}
+
+func (x *SteinAssessment) GetPValue() float64 {
+	if x != nil {
+		return x.PValue
+	}
+	return 0
+}
+
+func (x *SteinAssessment) GetDraws() int64 {
+	if x != nil {
+		return x.Draws
+	}
+	return 0
+}
+
+func (x *SteinAssessment) GetState() SteinState {
+	if x != nil {
+		return x.State
+	}
+	return SteinState_STEIN_STATE_UNSPECIFIED
+}
+
+func (x *SteinAssessment) GetStateText() string {
+	if x != nil {
+		return x.StateText
+	}
+	return ""
+}
+
+// Check is one named check of a session's verdict: divergence, stability,
+// mixing, bias, gradient, guarantee.
+type Check struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Which check, e.g. "divergence", "mixing".
+	Name   string      `protobuf:"bytes,1,opt,name=name,proto3" json:"name,omitempty"`
+	Status CheckStatus `protobuf:"varint,2,opt,name=status,proto3,enum=sluice.v1.CheckStatus" json:"status,omitempty"`
+	// The figure the status rests on (its meaning is in the message), e.g.
+	// the largest R-hat; NaN when there is none.
+	Figure float64 `protobuf:"fixed64,3,opt,name=figure,proto3" json:"figure,omitempty"`
+	// One sentence for a person: what was found and what to do.
+	Message       string `protobuf:"bytes,4,opt,name=message,proto3" json:"message,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *Check) Reset() {
+	*x = Check{}
+	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *Check) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*Check) ProtoMessage() {}
+
+func (x *Check) ProtoReflect() protoreflect.Message {
+	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use Check.ProtoReflect.Descriptor instead.
+func (*Check) Descriptor() ([]byte, []int) {
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{21}
+}
+
+func (x *Check) GetName() string {
+	if x != nil {
+		return x.Name
+	}
+	return ""
+}
+
+func (x *Check) GetStatus() CheckStatus {
+	if x != nil {
+		return x.Status
+	}
+	return CheckStatus_CHECK_STATUS_UNSPECIFIED
+}
+
+func (x *Check) GetFigure() float64 {
+	if x != nil {
+		return x.Figure
+	}
+	return 0
+}
+
+func (x *Check) GetMessage() string {
+	if x != nil {
+		return x.Message
+	}
+	return ""
+}
+
 // KernelReport holds a kernel's own figures.
 type KernelReport struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -3069,7 +3404,7 @@ type KernelReport struct {
 
 func (x *KernelReport) Reset() {
 	*x = KernelReport{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3081,7 +3416,7 @@ func (x *KernelReport) String() string {
 func (*KernelReport) ProtoMessage() {}
 
 func (x *KernelReport) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[20]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3094,7 +3429,7 @@ func (x *KernelReport) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use KernelReport.ProtoReflect.Descriptor instead.
 func (*KernelReport) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{20}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{22}
 }
 
 func (x *KernelReport) GetStep() float64 {
@@ -3177,7 +3512,7 @@ type NoiseEstimate struct {
 
 func (x *NoiseEstimate) Reset() {
 	*x = NoiseEstimate{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3189,7 +3524,7 @@ func (x *NoiseEstimate) String() string {
 func (*NoiseEstimate) ProtoMessage() {}
 
 func (x *NoiseEstimate) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[21]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3202,7 +3537,7 @@ func (x *NoiseEstimate) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use NoiseEstimate.ProtoReflect.Descriptor instead.
 func (*NoiseEstimate) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{21}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{23}
 }
 
 func (x *NoiseEstimate) GetVariance() float64 {
@@ -3265,7 +3600,7 @@ type ParameterDiagnostics struct {
 
 func (x *ParameterDiagnostics) Reset() {
 	*x = ParameterDiagnostics{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[24]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3277,7 +3612,7 @@ func (x *ParameterDiagnostics) String() string {
 func (*ParameterDiagnostics) ProtoMessage() {}
 
 func (x *ParameterDiagnostics) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[22]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[24]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3290,7 +3625,7 @@ func (x *ParameterDiagnostics) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ParameterDiagnostics.ProtoReflect.Descriptor instead.
 func (*ParameterDiagnostics) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{22}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{24}
 }
 
 func (x *ParameterDiagnostics) GetName() string {
@@ -3366,7 +3701,7 @@ type Bound struct {
 
 func (x *Bound) Reset() {
 	*x = Bound{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[25]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3378,7 +3713,7 @@ func (x *Bound) String() string {
 func (*Bound) ProtoMessage() {}
 
 func (x *Bound) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[23]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[25]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3391,7 +3726,7 @@ func (x *Bound) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Bound.ProtoReflect.Descriptor instead.
 func (*Bound) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{23}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{25}
 }
 
 func (x *Bound) GetMetric() Metric {
@@ -3474,7 +3809,7 @@ type CurvatureEstimate struct {
 
 func (x *CurvatureEstimate) Reset() {
 	*x = CurvatureEstimate{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[24]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[26]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3486,7 +3821,7 @@ func (x *CurvatureEstimate) String() string {
 func (*CurvatureEstimate) ProtoMessage() {}
 
 func (x *CurvatureEstimate) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[24]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[26]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3499,7 +3834,7 @@ func (x *CurvatureEstimate) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use CurvatureEstimate.ProtoReflect.Descriptor instead.
 func (*CurvatureEstimate) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{24}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{26}
 }
 
 func (x *CurvatureEstimate) GetPairs() int64 {
@@ -3568,7 +3903,7 @@ type TargetStatus struct {
 
 func (x *TargetStatus) Reset() {
 	*x = TargetStatus{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[25]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[27]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3580,7 +3915,7 @@ func (x *TargetStatus) String() string {
 func (*TargetStatus) ProtoMessage() {}
 
 func (x *TargetStatus) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[25]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[27]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3593,7 +3928,7 @@ func (x *TargetStatus) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use TargetStatus.ProtoReflect.Descriptor instead.
 func (*TargetStatus) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{25}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{27}
 }
 
 func (x *TargetStatus) GetName() string {
@@ -3644,13 +3979,16 @@ type Finished struct {
 	Parameters []*ParameterSummary `protobuf:"bytes,4,rep,name=parameters,proto3" json:"parameters,omitempty"`
 	// Parameters left out of `parameters` to fit the message limit.
 	ParametersOmitted int32 `protobuf:"varint,5,opt,name=parameters_omitted,json=parametersOmitted,proto3" json:"parameters_omitted,omitempty"`
-	unknownFields     protoimpl.UnknownFields
-	sizeCache         protoimpl.SizeCache
+	// The session's verdict: every named check with its status (the same as
+	// progress.checks).
+	Checks        []*Check `protobuf:"bytes,6,rep,name=checks,proto3" json:"checks,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *Finished) Reset() {
 	*x = Finished{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[26]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[28]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3662,7 +4000,7 @@ func (x *Finished) String() string {
 func (*Finished) ProtoMessage() {}
 
 func (x *Finished) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[26]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[28]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3675,7 +4013,7 @@ func (x *Finished) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Finished.ProtoReflect.Descriptor instead.
 func (*Finished) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{26}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{28}
 }
 
 func (x *Finished) GetReason() FinishReason {
@@ -3713,6 +4051,13 @@ func (x *Finished) GetParametersOmitted() int32 {
 	return 0
 }
 
+func (x *Finished) GetChecks() []*Check {
+	if x != nil {
+		return x.Checks
+	}
+	return nil
+}
+
 // ParameterSummary summarises the kept draws of one parameter over all
 // chains.
 type ParameterSummary struct {
@@ -3730,7 +4075,7 @@ type ParameterSummary struct {
 
 func (x *ParameterSummary) Reset() {
 	*x = ParameterSummary{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[27]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[29]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3742,7 +4087,7 @@ func (x *ParameterSummary) String() string {
 func (*ParameterSummary) ProtoMessage() {}
 
 func (x *ParameterSummary) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[27]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[29]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3755,7 +4100,7 @@ func (x *ParameterSummary) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ParameterSummary.ProtoReflect.Descriptor instead.
 func (*ParameterSummary) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{27}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{29}
 }
 
 func (x *ParameterSummary) GetName() string {
@@ -3817,7 +4162,7 @@ type Resume struct {
 
 func (x *Resume) Reset() {
 	*x = Resume{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[28]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[30]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3829,7 +4174,7 @@ func (x *Resume) String() string {
 func (*Resume) ProtoMessage() {}
 
 func (x *Resume) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[28]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[30]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3842,7 +4187,7 @@ func (x *Resume) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Resume.ProtoReflect.Descriptor instead.
 func (*Resume) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{28}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{30}
 }
 
 func (x *Resume) GetSessionId() string {
@@ -3908,7 +4253,7 @@ type FollowHeader struct {
 
 func (x *FollowHeader) Reset() {
 	*x = FollowHeader{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[29]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[31]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -3920,7 +4265,7 @@ func (x *FollowHeader) String() string {
 func (*FollowHeader) ProtoMessage() {}
 
 func (x *FollowHeader) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[29]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[31]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -3933,7 +4278,7 @@ func (x *FollowHeader) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use FollowHeader.ProtoReflect.Descriptor instead.
 func (*FollowHeader) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{29}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{31}
 }
 
 func (x *FollowHeader) GetSessionId() string {
@@ -4070,7 +4415,7 @@ type WorkerReport struct {
 
 func (x *WorkerReport) Reset() {
 	*x = WorkerReport{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[30]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[32]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -4082,7 +4427,7 @@ func (x *WorkerReport) String() string {
 func (*WorkerReport) ProtoMessage() {}
 
 func (x *WorkerReport) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[30]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[32]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -4095,7 +4440,7 @@ func (x *WorkerReport) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use WorkerReport.ProtoReflect.Descriptor instead.
 func (*WorkerReport) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{30}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{32}
 }
 
 func (x *WorkerReport) GetName() string {
@@ -4154,7 +4499,7 @@ type AttachRequest struct {
 
 func (x *AttachRequest) Reset() {
 	*x = AttachRequest{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[31]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[33]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -4166,7 +4511,7 @@ func (x *AttachRequest) String() string {
 func (*AttachRequest) ProtoMessage() {}
 
 func (x *AttachRequest) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[31]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[33]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -4179,7 +4524,7 @@ func (x *AttachRequest) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use AttachRequest.ProtoReflect.Descriptor instead.
 func (*AttachRequest) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{31}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{33}
 }
 
 func (x *AttachRequest) GetFrame() isAttachRequest_Frame {
@@ -4240,7 +4585,7 @@ type Attach struct {
 
 func (x *Attach) Reset() {
 	*x = Attach{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[32]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[34]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -4252,7 +4597,7 @@ func (x *Attach) String() string {
 func (*Attach) ProtoMessage() {}
 
 func (x *Attach) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[32]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[34]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -4265,7 +4610,7 @@ func (x *Attach) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Attach.ProtoReflect.Descriptor instead.
 func (*Attach) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{32}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{34}
 }
 
 func (x *Attach) GetSessionId() string {
@@ -4303,7 +4648,7 @@ type AttachResponse struct {
 
 func (x *AttachResponse) Reset() {
 	*x = AttachResponse{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[33]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[35]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -4315,7 +4660,7 @@ func (x *AttachResponse) String() string {
 func (*AttachResponse) ProtoMessage() {}
 
 func (x *AttachResponse) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[33]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[35]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -4328,7 +4673,7 @@ func (x *AttachResponse) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use AttachResponse.ProtoReflect.Descriptor instead.
 func (*AttachResponse) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{33}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{35}
 }
 
 func (x *AttachResponse) GetFrame() isAttachResponse_Frame {
@@ -4391,7 +4736,7 @@ type Attached struct {
 
 func (x *Attached) Reset() {
 	*x = Attached{}
-	mi := &file_sluice_v1_sluice_proto_msgTypes[34]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[36]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -4403,7 +4748,7 @@ func (x *Attached) String() string {
 func (*Attached) ProtoMessage() {}
 
 func (x *Attached) ProtoReflect() protoreflect.Message {
-	mi := &file_sluice_v1_sluice_proto_msgTypes[34]
+	mi := &file_sluice_v1_sluice_proto_msgTypes[36]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -4416,7 +4761,7 @@ func (x *Attached) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Attached.ProtoReflect.Descriptor instead.
 func (*Attached) Descriptor() ([]byte, []int) {
-	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{34}
+	return file_sluice_v1_sluice_proto_rawDescGZIP(), []int{36}
 }
 
 func (x *Attached) GetSessionId() string {
@@ -4503,7 +4848,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x05draws\x18\x03 \x01(\v2\x10.sluice.v1.DrawsH\x00R\x05draws\x121\n" +
 	"\bprogress\x18\x04 \x01(\v2\x13.sluice.v1.ProgressH\x00R\bprogress\x121\n" +
 	"\bfinished\x18\x05 \x01(\v2\x13.sluice.v1.FinishedH\x00R\bfinishedB\a\n" +
-	"\x05frame\"\xb1\v\n" +
+	"\x05frame\"\xe5\v\n" +
 	"\bRegister\x12\x10\n" +
 	"\x03dim\x18\x01 \x01(\x05R\x03dim\x12\x16\n" +
 	"\x06chains\x18\x02 \x01(\x05R\x06chains\x12\x16\n" +
@@ -4546,7 +4891,8 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x17accepts_draw_references\x18! \x01(\bR\x15acceptsDrawReferences\x12\x16\n" +
 	"\x06metric\x18# \x01(\fR\x06metric\x126\n" +
 	"\vmetric_form\x18$ \x01(\x0e2\x15.sluice.v1.MetricFormR\n" +
-	"metricFormB\x12\n" +
+	"metricForm\x122\n" +
+	"\x15gradient_check_points\x18% \x01(\x05R\x13gradientCheckPointsB\x12\n" +
 	"\x10_owner_evaluates\"\xf5\x01\n" +
 	"\fMetricReport\x12\x12\n" +
 	"\x04kind\x18\x01 \x01(\tR\x04kind\x12\x16\n" +
@@ -4655,7 +5001,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"iterations\x12&\n" +
 	"\x0ffrom_request_id\x18\a \x01(\x04R\rfromRequestId\x12\x1d\n" +
 	"\n" +
-	"point_rows\x18\b \x03(\x05R\tpointRows\"\xbf\a\n" +
+	"point_rows\x18\b \x03(\x05R\tpointRows\"\x9b\b\n" +
 	"\bProgress\x12&\n" +
 	"\x05state\x18\x01 \x01(\x0e2\x10.sluice.v1.StateR\x05state\x12\x14\n" +
 	"\x05steps\x18\x02 \x01(\x03R\x05steps\x12)\n" +
@@ -4682,7 +5028,25 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\fanswers_late\x18\x13 \x01(\x03R\vanswersLate\x12/\n" +
 	"\x06metric\x18\x14 \x01(\v2\x17.sluice.v1.MetricReportR\x06metric\x12/\n" +
 	"\x06tuning\x18\x15 \x03(\v2\x17.sluice.v1.TuningChoiceR\x06tuning\x12-\n" +
-	"\x12tuning_evaluations\x18\x16 \x01(\x03R\x11tuningEvaluations\"\xdd\x02\n" +
+	"\x12tuning_evaluations\x18\x16 \x01(\x03R\x11tuningEvaluations\x120\n" +
+	"\x05stein\x18\x17 \x01(\v2\x1a.sluice.v1.SteinAssessmentR\x05stein\x12(\n" +
+	"\x06checks\x18\x18 \x03(\v2\x10.sluice.v1.CheckR\x06checks\"\xe9\x01\n" +
+	"\x0fSteinAssessment\x12\x10\n" +
+	"\x03ksd\x18\x01 \x01(\x01R\x03ksd\x12\x1f\n" +
+	"\vu_statistic\x18\x02 \x01(\x01R\n" +
+	"uStatistic\x12\x0e\n" +
+	"\x02se\x18\x03 \x01(\x01R\x02se\x12\x18\n" +
+	"\aupper95\x18\x04 \x01(\x01R\aupper95\x12\x17\n" +
+	"\ap_value\x18\x05 \x01(\x01R\x06pValue\x12\x14\n" +
+	"\x05draws\x18\x06 \x01(\x03R\x05draws\x12+\n" +
+	"\x05state\x18\a \x01(\x0e2\x15.sluice.v1.SteinStateR\x05state\x12\x1d\n" +
+	"\n" +
+	"state_text\x18\b \x01(\tR\tstateText\"}\n" +
+	"\x05Check\x12\x12\n" +
+	"\x04name\x18\x01 \x01(\tR\x04name\x12.\n" +
+	"\x06status\x18\x02 \x01(\x0e2\x16.sluice.v1.CheckStatusR\x06status\x12\x16\n" +
+	"\x06figure\x18\x03 \x01(\x01R\x06figure\x12\x18\n" +
+	"\amessage\x18\x04 \x01(\tR\amessage\"\xdd\x02\n" +
 	"\fKernelReport\x12\x12\n" +
 	"\x04step\x18\x01 \x01(\x01R\x04step\x12\x1a\n" +
 	"\badapting\x18\x02 \x01(\bR\badapting\x12)\n" +
@@ -4733,7 +5097,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x04want\x18\x02 \x01(\x01R\x04want\x12\x18\n" +
 	"\acurrent\x18\x03 \x01(\x01R\acurrent\x12\x10\n" +
 	"\x03met\x18\x04 \x01(\bR\x03met\x123\n" +
-	"\x15projected_evaluations\x18\x05 \x01(\x03R\x14projectedEvaluations\"\xf2\x01\n" +
+	"\x15projected_evaluations\x18\x05 \x01(\x03R\x14projectedEvaluations\"\x9c\x02\n" +
 	"\bFinished\x12/\n" +
 	"\x06reason\x18\x01 \x01(\x0e2\x17.sluice.v1.FinishReasonR\x06reason\x12\x18\n" +
 	"\amessage\x18\x02 \x01(\tR\amessage\x12/\n" +
@@ -4741,7 +5105,8 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\n" +
 	"parameters\x18\x04 \x03(\v2\x1b.sluice.v1.ParameterSummaryR\n" +
 	"parameters\x12-\n" +
-	"\x12parameters_omitted\x18\x05 \x01(\x05R\x11parametersOmitted\"`\n" +
+	"\x12parameters_omitted\x18\x05 \x01(\x05R\x11parametersOmitted\x12(\n" +
+	"\x06checks\x18\x06 \x03(\v2\x10.sluice.v1.CheckR\x06checks\"`\n" +
 	"\x10ParameterSummary\x12\x12\n" +
 	"\x04name\x18\x01 \x01(\tR\x04name\x12\x12\n" +
 	"\x04mean\x18\x02 \x01(\x01R\x04mean\x12\x0e\n" +
@@ -4823,11 +5188,22 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x11STATE_UNSPECIFIED\x10\x00\x12\x11\n" +
 	"\rSTATE_BURN_IN\x10\x01\x12\x12\n" +
 	"\x0eSTATE_SAMPLING\x10\x02\x12\x12\n" +
-	"\x0eSTATE_FINISHED\x10\x03*b\n" +
+	"\x0eSTATE_FINISHED\x10\x03*\x84\x01\n" +
+	"\n" +
+	"SteinState\x12\x1b\n" +
+	"\x17STEIN_STATE_UNSPECIFIED\x10\x00\x12\x19\n" +
+	"\x15STEIN_STATE_UNDEFINED\x10\x01\x12!\n" +
+	"\x1dSTEIN_STATE_INDISTINGUISHABLE\x10\x02\x12\x1b\n" +
+	"\x17STEIN_STATE_SIGNIFICANT\x10\x03*p\n" +
+	"\vCheckStatus\x12\x1c\n" +
+	"\x18CHECK_STATUS_UNSPECIFIED\x10\x00\x12\x15\n" +
+	"\x11CHECK_STATUS_PASS\x10\x01\x12\x15\n" +
+	"\x11CHECK_STATUS_WARN\x10\x02\x12\x15\n" +
+	"\x11CHECK_STATUS_FAIL\x10\x03*b\n" +
 	"\vBoundSource\x12\x1c\n" +
 	"\x18BOUND_SOURCE_UNSPECIFIED\x10\x00\x12\x19\n" +
 	"\x15BOUND_SOURCE_DECLARED\x10\x01\x12\x1a\n" +
-	"\x16BOUND_SOURCE_ESTIMATED\x10\x02*\xfd\x01\n" +
+	"\x16BOUND_SOURCE_ESTIMATED\x10\x02*\x9d\x02\n" +
 	"\fFinishReason\x12\x1d\n" +
 	"\x19FINISH_REASON_UNSPECIFIED\x10\x00\x12\x1e\n" +
 	"\x1aFINISH_REASON_BUDGET_SPENT\x10\x01\x12\x1c\n" +
@@ -4836,7 +5212,8 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x1dFINISH_REASON_DRAWS_COLLECTED\x10\x04\x12\x18\n" +
 	"\x14FINISH_REASON_FAILED\x10\x05\x12\x1a\n" +
 	"\x16FINISH_REASON_SHUTDOWN\x10\x06\x12\x1c\n" +
-	"\x18FINISH_REASON_TARGET_MET\x10\a2\x92\x02\n" +
+	"\x18FINISH_REASON_TARGET_MET\x10\a\x12\x1e\n" +
+	"\x1aFINISH_REASON_CHECK_FAILED\x10\b2\x92\x02\n" +
 	"\rSluiceService\x12D\n" +
 	"\aSession\x12\x19.sluice.v1.SessionRequest\x1a\x1a.sluice.v1.SessionResponse(\x010\x01\x12?\n" +
 	"\x06Follow\x12\x18.sluice.v1.FollowRequest\x1a\x19.sluice.v1.FollowResponse0\x01\x127\n" +
@@ -4855,113 +5232,122 @@ func file_sluice_v1_sluice_proto_rawDescGZIP() []byte {
 	return file_sluice_v1_sluice_proto_rawDescData
 }
 
-var file_sluice_v1_sluice_proto_enumTypes = make([]protoimpl.EnumInfo, 7)
-var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 35)
+var file_sluice_v1_sluice_proto_enumTypes = make([]protoimpl.EnumInfo, 9)
+var file_sluice_v1_sluice_proto_msgTypes = make([]protoimpl.MessageInfo, 37)
 var file_sluice_v1_sluice_proto_goTypes = []any{
 	(MetricForm)(0),              // 0: sluice.v1.MetricForm
 	(GradientKind)(0),            // 1: sluice.v1.GradientKind
 	(Metric)(0),                  // 2: sluice.v1.Metric
 	(Quantity)(0),                // 3: sluice.v1.Quantity
 	(State)(0),                   // 4: sluice.v1.State
-	(BoundSource)(0),             // 5: sluice.v1.BoundSource
-	(FinishReason)(0),            // 6: sluice.v1.FinishReason
-	(*PlanRequest)(nil),          // 7: sluice.v1.PlanRequest
-	(*PlanResponse)(nil),         // 8: sluice.v1.PlanResponse
-	(*FollowRequest)(nil),        // 9: sluice.v1.FollowRequest
-	(*FollowResponse)(nil),       // 10: sluice.v1.FollowResponse
-	(*SessionRequest)(nil),       // 11: sluice.v1.SessionRequest
-	(*SessionResponse)(nil),      // 12: sluice.v1.SessionResponse
-	(*Register)(nil),             // 13: sluice.v1.Register
-	(*MetricReport)(nil),         // 14: sluice.v1.MetricReport
-	(*TuningChoice)(nil),         // 15: sluice.v1.TuningChoice
-	(*Envelope)(nil),             // 16: sluice.v1.Envelope
-	(*StepSchedule)(nil),         // 17: sluice.v1.StepSchedule
-	(*GradientNoise)(nil),        // 18: sluice.v1.GradientNoise
-	(*Curvature)(nil),            // 19: sluice.v1.Curvature
-	(*Wants)(nil),                // 20: sluice.v1.Wants
-	(*Registered)(nil),           // 21: sluice.v1.Registered
-	(*Points)(nil),               // 22: sluice.v1.Points
-	(*Evaluations)(nil),          // 23: sluice.v1.Evaluations
-	(*Stop)(nil),                 // 24: sluice.v1.Stop
-	(*Draws)(nil),                // 25: sluice.v1.Draws
-	(*Progress)(nil),             // 26: sluice.v1.Progress
-	(*KernelReport)(nil),         // 27: sluice.v1.KernelReport
-	(*NoiseEstimate)(nil),        // 28: sluice.v1.NoiseEstimate
-	(*ParameterDiagnostics)(nil), // 29: sluice.v1.ParameterDiagnostics
-	(*Bound)(nil),                // 30: sluice.v1.Bound
-	(*CurvatureEstimate)(nil),    // 31: sluice.v1.CurvatureEstimate
-	(*TargetStatus)(nil),         // 32: sluice.v1.TargetStatus
-	(*Finished)(nil),             // 33: sluice.v1.Finished
-	(*ParameterSummary)(nil),     // 34: sluice.v1.ParameterSummary
-	(*Resume)(nil),               // 35: sluice.v1.Resume
-	(*FollowHeader)(nil),         // 36: sluice.v1.FollowHeader
-	(*WorkerReport)(nil),         // 37: sluice.v1.WorkerReport
-	(*AttachRequest)(nil),        // 38: sluice.v1.AttachRequest
-	(*Attach)(nil),               // 39: sluice.v1.Attach
-	(*AttachResponse)(nil),       // 40: sluice.v1.AttachResponse
-	(*Attached)(nil),             // 41: sluice.v1.Attached
+	(SteinState)(0),              // 5: sluice.v1.SteinState
+	(CheckStatus)(0),             // 6: sluice.v1.CheckStatus
+	(BoundSource)(0),             // 7: sluice.v1.BoundSource
+	(FinishReason)(0),            // 8: sluice.v1.FinishReason
+	(*PlanRequest)(nil),          // 9: sluice.v1.PlanRequest
+	(*PlanResponse)(nil),         // 10: sluice.v1.PlanResponse
+	(*FollowRequest)(nil),        // 11: sluice.v1.FollowRequest
+	(*FollowResponse)(nil),       // 12: sluice.v1.FollowResponse
+	(*SessionRequest)(nil),       // 13: sluice.v1.SessionRequest
+	(*SessionResponse)(nil),      // 14: sluice.v1.SessionResponse
+	(*Register)(nil),             // 15: sluice.v1.Register
+	(*MetricReport)(nil),         // 16: sluice.v1.MetricReport
+	(*TuningChoice)(nil),         // 17: sluice.v1.TuningChoice
+	(*Envelope)(nil),             // 18: sluice.v1.Envelope
+	(*StepSchedule)(nil),         // 19: sluice.v1.StepSchedule
+	(*GradientNoise)(nil),        // 20: sluice.v1.GradientNoise
+	(*Curvature)(nil),            // 21: sluice.v1.Curvature
+	(*Wants)(nil),                // 22: sluice.v1.Wants
+	(*Registered)(nil),           // 23: sluice.v1.Registered
+	(*Points)(nil),               // 24: sluice.v1.Points
+	(*Evaluations)(nil),          // 25: sluice.v1.Evaluations
+	(*Stop)(nil),                 // 26: sluice.v1.Stop
+	(*Draws)(nil),                // 27: sluice.v1.Draws
+	(*Progress)(nil),             // 28: sluice.v1.Progress
+	(*SteinAssessment)(nil),      // 29: sluice.v1.SteinAssessment
+	(*Check)(nil),                // 30: sluice.v1.Check
+	(*KernelReport)(nil),         // 31: sluice.v1.KernelReport
+	(*NoiseEstimate)(nil),        // 32: sluice.v1.NoiseEstimate
+	(*ParameterDiagnostics)(nil), // 33: sluice.v1.ParameterDiagnostics
+	(*Bound)(nil),                // 34: sluice.v1.Bound
+	(*CurvatureEstimate)(nil),    // 35: sluice.v1.CurvatureEstimate
+	(*TargetStatus)(nil),         // 36: sluice.v1.TargetStatus
+	(*Finished)(nil),             // 37: sluice.v1.Finished
+	(*ParameterSummary)(nil),     // 38: sluice.v1.ParameterSummary
+	(*Resume)(nil),               // 39: sluice.v1.Resume
+	(*FollowHeader)(nil),         // 40: sluice.v1.FollowHeader
+	(*WorkerReport)(nil),         // 41: sluice.v1.WorkerReport
+	(*AttachRequest)(nil),        // 42: sluice.v1.AttachRequest
+	(*Attach)(nil),               // 43: sluice.v1.Attach
+	(*AttachResponse)(nil),       // 44: sluice.v1.AttachResponse
+	(*Attached)(nil),             // 45: sluice.v1.Attached
 }
 var file_sluice_v1_sluice_proto_depIdxs = []int32{
-	19, // 0: sluice.v1.PlanRequest.curvature:type_name -> sluice.v1.Curvature
+	21, // 0: sluice.v1.PlanRequest.curvature:type_name -> sluice.v1.Curvature
 	2,  // 1: sluice.v1.PlanRequest.metric:type_name -> sluice.v1.Metric
-	30, // 2: sluice.v1.PlanResponse.bound:type_name -> sluice.v1.Bound
-	25, // 3: sluice.v1.FollowResponse.draws:type_name -> sluice.v1.Draws
-	33, // 4: sluice.v1.FollowResponse.finished:type_name -> sluice.v1.Finished
-	36, // 5: sluice.v1.FollowResponse.header:type_name -> sluice.v1.FollowHeader
-	26, // 6: sluice.v1.FollowResponse.progress:type_name -> sluice.v1.Progress
-	13, // 7: sluice.v1.SessionRequest.register:type_name -> sluice.v1.Register
-	23, // 8: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
-	24, // 9: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
-	35, // 10: sluice.v1.SessionRequest.resume:type_name -> sluice.v1.Resume
-	21, // 11: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
-	22, // 12: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
-	25, // 13: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
-	26, // 14: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
-	33, // 15: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
-	19, // 16: sluice.v1.Register.curvature:type_name -> sluice.v1.Curvature
-	20, // 17: sluice.v1.Register.wants:type_name -> sluice.v1.Wants
-	17, // 18: sluice.v1.Register.schedule:type_name -> sluice.v1.StepSchedule
-	16, // 19: sluice.v1.Register.envelope:type_name -> sluice.v1.Envelope
-	18, // 20: sluice.v1.Register.noise:type_name -> sluice.v1.GradientNoise
+	34, // 2: sluice.v1.PlanResponse.bound:type_name -> sluice.v1.Bound
+	27, // 3: sluice.v1.FollowResponse.draws:type_name -> sluice.v1.Draws
+	37, // 4: sluice.v1.FollowResponse.finished:type_name -> sluice.v1.Finished
+	40, // 5: sluice.v1.FollowResponse.header:type_name -> sluice.v1.FollowHeader
+	28, // 6: sluice.v1.FollowResponse.progress:type_name -> sluice.v1.Progress
+	15, // 7: sluice.v1.SessionRequest.register:type_name -> sluice.v1.Register
+	25, // 8: sluice.v1.SessionRequest.evaluations:type_name -> sluice.v1.Evaluations
+	26, // 9: sluice.v1.SessionRequest.stop:type_name -> sluice.v1.Stop
+	39, // 10: sluice.v1.SessionRequest.resume:type_name -> sluice.v1.Resume
+	23, // 11: sluice.v1.SessionResponse.registered:type_name -> sluice.v1.Registered
+	24, // 12: sluice.v1.SessionResponse.points:type_name -> sluice.v1.Points
+	27, // 13: sluice.v1.SessionResponse.draws:type_name -> sluice.v1.Draws
+	28, // 14: sluice.v1.SessionResponse.progress:type_name -> sluice.v1.Progress
+	37, // 15: sluice.v1.SessionResponse.finished:type_name -> sluice.v1.Finished
+	21, // 16: sluice.v1.Register.curvature:type_name -> sluice.v1.Curvature
+	22, // 17: sluice.v1.Register.wants:type_name -> sluice.v1.Wants
+	19, // 18: sluice.v1.Register.schedule:type_name -> sluice.v1.StepSchedule
+	18, // 19: sluice.v1.Register.envelope:type_name -> sluice.v1.Envelope
+	20, // 20: sluice.v1.Register.noise:type_name -> sluice.v1.GradientNoise
 	0,  // 21: sluice.v1.Register.metric_form:type_name -> sluice.v1.MetricForm
 	1,  // 22: sluice.v1.GradientNoise.kind:type_name -> sluice.v1.GradientKind
 	2,  // 23: sluice.v1.Wants.metric:type_name -> sluice.v1.Metric
-	14, // 24: sluice.v1.Registered.metric:type_name -> sluice.v1.MetricReport
-	15, // 25: sluice.v1.Registered.tuning:type_name -> sluice.v1.TuningChoice
+	16, // 24: sluice.v1.Registered.metric:type_name -> sluice.v1.MetricReport
+	17, // 25: sluice.v1.Registered.tuning:type_name -> sluice.v1.TuningChoice
 	3,  // 26: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
 	4,  // 27: sluice.v1.Progress.state:type_name -> sluice.v1.State
-	29, // 28: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
-	30, // 29: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
-	31, // 30: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
-	32, // 31: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
-	28, // 32: sluice.v1.Progress.noise:type_name -> sluice.v1.NoiseEstimate
-	27, // 33: sluice.v1.Progress.kernel:type_name -> sluice.v1.KernelReport
-	37, // 34: sluice.v1.Progress.workers:type_name -> sluice.v1.WorkerReport
-	14, // 35: sluice.v1.Progress.metric:type_name -> sluice.v1.MetricReport
-	15, // 36: sluice.v1.Progress.tuning:type_name -> sluice.v1.TuningChoice
-	2,  // 37: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
-	5,  // 38: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
-	6,  // 39: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
-	26, // 40: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
-	34, // 41: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
-	20, // 42: sluice.v1.FollowHeader.wants:type_name -> sluice.v1.Wants
-	39, // 43: sluice.v1.AttachRequest.attach:type_name -> sluice.v1.Attach
-	23, // 44: sluice.v1.AttachRequest.evaluations:type_name -> sluice.v1.Evaluations
-	41, // 45: sluice.v1.AttachResponse.attached:type_name -> sluice.v1.Attached
-	22, // 46: sluice.v1.AttachResponse.points:type_name -> sluice.v1.Points
-	11, // 47: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
-	9,  // 48: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
-	7,  // 49: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
-	38, // 50: sluice.v1.SluiceService.Attach:input_type -> sluice.v1.AttachRequest
-	12, // 51: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
-	10, // 52: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
-	8,  // 53: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
-	40, // 54: sluice.v1.SluiceService.Attach:output_type -> sluice.v1.AttachResponse
-	51, // [51:55] is the sub-list for method output_type
-	47, // [47:51] is the sub-list for method input_type
-	47, // [47:47] is the sub-list for extension type_name
-	47, // [47:47] is the sub-list for extension extendee
-	0,  // [0:47] is the sub-list for field type_name
+	33, // 28: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
+	34, // 29: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
+	35, // 30: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
+	36, // 31: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
+	32, // 32: sluice.v1.Progress.noise:type_name -> sluice.v1.NoiseEstimate
+	31, // 33: sluice.v1.Progress.kernel:type_name -> sluice.v1.KernelReport
+	41, // 34: sluice.v1.Progress.workers:type_name -> sluice.v1.WorkerReport
+	16, // 35: sluice.v1.Progress.metric:type_name -> sluice.v1.MetricReport
+	17, // 36: sluice.v1.Progress.tuning:type_name -> sluice.v1.TuningChoice
+	29, // 37: sluice.v1.Progress.stein:type_name -> sluice.v1.SteinAssessment
+	30, // 38: sluice.v1.Progress.checks:type_name -> sluice.v1.Check
+	5,  // 39: sluice.v1.SteinAssessment.state:type_name -> sluice.v1.SteinState
+	6,  // 40: sluice.v1.Check.status:type_name -> sluice.v1.CheckStatus
+	2,  // 41: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
+	7,  // 42: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
+	8,  // 43: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
+	28, // 44: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
+	38, // 45: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
+	30, // 46: sluice.v1.Finished.checks:type_name -> sluice.v1.Check
+	22, // 47: sluice.v1.FollowHeader.wants:type_name -> sluice.v1.Wants
+	43, // 48: sluice.v1.AttachRequest.attach:type_name -> sluice.v1.Attach
+	25, // 49: sluice.v1.AttachRequest.evaluations:type_name -> sluice.v1.Evaluations
+	45, // 50: sluice.v1.AttachResponse.attached:type_name -> sluice.v1.Attached
+	24, // 51: sluice.v1.AttachResponse.points:type_name -> sluice.v1.Points
+	13, // 52: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
+	11, // 53: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
+	9,  // 54: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
+	42, // 55: sluice.v1.SluiceService.Attach:input_type -> sluice.v1.AttachRequest
+	14, // 56: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
+	12, // 57: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
+	10, // 58: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
+	44, // 59: sluice.v1.SluiceService.Attach:output_type -> sluice.v1.AttachResponse
+	56, // [56:60] is the sub-list for method output_type
+	52, // [52:56] is the sub-list for method input_type
+	52, // [52:52] is the sub-list for extension type_name
+	52, // [52:52] is the sub-list for extension extendee
+	0,  // [0:52] is the sub-list for field type_name
 }
 
 func init() { file_sluice_v1_sluice_proto_init() }
@@ -4989,11 +5375,11 @@ func file_sluice_v1_sluice_proto_init() {
 		(*SessionResponse_Finished)(nil),
 	}
 	file_sluice_v1_sluice_proto_msgTypes[6].OneofWrappers = []any{}
-	file_sluice_v1_sluice_proto_msgTypes[31].OneofWrappers = []any{
+	file_sluice_v1_sluice_proto_msgTypes[33].OneofWrappers = []any{
 		(*AttachRequest_Attach)(nil),
 		(*AttachRequest_Evaluations)(nil),
 	}
-	file_sluice_v1_sluice_proto_msgTypes[33].OneofWrappers = []any{
+	file_sluice_v1_sluice_proto_msgTypes[35].OneofWrappers = []any{
 		(*AttachResponse_Attached)(nil),
 		(*AttachResponse_Points)(nil),
 	}
@@ -5002,8 +5388,8 @@ func file_sluice_v1_sluice_proto_init() {
 		File: protoimpl.DescBuilder{
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_sluice_v1_sluice_proto_rawDesc), len(file_sluice_v1_sluice_proto_rawDesc)),
-			NumEnums:      7,
-			NumMessages:   35,
+			NumEnums:      9,
+			NumMessages:   37,
 			NumExtensions: 0,
 			NumServices:   1,
 		},

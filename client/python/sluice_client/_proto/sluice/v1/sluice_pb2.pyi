@@ -7,8 +7,13 @@ from typing import ClassVar as _ClassVar, Iterable as _Iterable, Mapping as _Map
 BOUND_SOURCE_DECLARED: BoundSource
 BOUND_SOURCE_ESTIMATED: BoundSource
 BOUND_SOURCE_UNSPECIFIED: BoundSource
+CHECK_STATUS_FAIL: CheckStatus
+CHECK_STATUS_PASS: CheckStatus
+CHECK_STATUS_UNSPECIFIED: CheckStatus
+CHECK_STATUS_WARN: CheckStatus
 DESCRIPTOR: _descriptor.FileDescriptor
 FINISH_REASON_BUDGET_SPENT: FinishReason
+FINISH_REASON_CHECK_FAILED: FinishReason
 FINISH_REASON_DRAWS_COLLECTED: FinishReason
 FINISH_REASON_FAILED: FinishReason
 FINISH_REASON_SHUTDOWN: FinishReason
@@ -35,6 +40,10 @@ STATE_BURN_IN: State
 STATE_FINISHED: State
 STATE_SAMPLING: State
 STATE_UNSPECIFIED: State
+STEIN_STATE_INDISTINGUISHABLE: SteinState
+STEIN_STATE_SIGNIFICANT: SteinState
+STEIN_STATE_UNDEFINED: SteinState
+STEIN_STATE_UNSPECIFIED: SteinState
 
 class Attach(_message.Message):
     __slots__ = ["name", "session_id", "token"]
@@ -93,6 +102,18 @@ class Bound(_message.Message):
     start_term: float
     value: float
     def __init__(self, metric: _Optional[_Union[Metric, str]] = ..., value: _Optional[float] = ..., source: _Optional[_Union[BoundSource, str]] = ..., label: _Optional[str] = ..., start_term: _Optional[float] = ..., discretisation_term: _Optional[float] = ..., noise_term: _Optional[float] = ..., bias_term: _Optional[float] = ...) -> None: ...
+
+class Check(_message.Message):
+    __slots__ = ["figure", "message", "name", "status"]
+    FIGURE_FIELD_NUMBER: _ClassVar[int]
+    MESSAGE_FIELD_NUMBER: _ClassVar[int]
+    NAME_FIELD_NUMBER: _ClassVar[int]
+    STATUS_FIELD_NUMBER: _ClassVar[int]
+    figure: float
+    message: str
+    name: str
+    status: CheckStatus
+    def __init__(self, name: _Optional[str] = ..., status: _Optional[_Union[CheckStatus, str]] = ..., figure: _Optional[float] = ..., message: _Optional[str] = ...) -> None: ...
 
 class Curvature(_message.Message):
     __slots__ = ["penalty_centre", "second_moment", "smoothness", "start_distance", "strong_convexity"]
@@ -177,18 +198,20 @@ class Evaluations(_message.Message):
     def __init__(self, request_id: _Optional[int] = ..., first_row: _Optional[int] = ..., rows: _Optional[int] = ..., dim: _Optional[int] = ..., gradients: _Optional[bytes] = ..., log_densities: _Optional[bytes] = ..., hessians: _Optional[bytes] = ..., hessian_vectors: _Optional[bytes] = ...) -> None: ...
 
 class Finished(_message.Message):
-    __slots__ = ["message", "parameters", "parameters_omitted", "progress", "reason"]
+    __slots__ = ["checks", "message", "parameters", "parameters_omitted", "progress", "reason"]
+    CHECKS_FIELD_NUMBER: _ClassVar[int]
     MESSAGE_FIELD_NUMBER: _ClassVar[int]
     PARAMETERS_FIELD_NUMBER: _ClassVar[int]
     PARAMETERS_OMITTED_FIELD_NUMBER: _ClassVar[int]
     PROGRESS_FIELD_NUMBER: _ClassVar[int]
     REASON_FIELD_NUMBER: _ClassVar[int]
+    checks: _containers.RepeatedCompositeFieldContainer[Check]
     message: str
     parameters: _containers.RepeatedCompositeFieldContainer[ParameterSummary]
     parameters_omitted: int
     progress: Progress
     reason: FinishReason
-    def __init__(self, reason: _Optional[_Union[FinishReason, str]] = ..., message: _Optional[str] = ..., progress: _Optional[_Union[Progress, _Mapping]] = ..., parameters: _Optional[_Iterable[_Union[ParameterSummary, _Mapping]]] = ..., parameters_omitted: _Optional[int] = ...) -> None: ...
+    def __init__(self, reason: _Optional[_Union[FinishReason, str]] = ..., message: _Optional[str] = ..., progress: _Optional[_Union[Progress, _Mapping]] = ..., parameters: _Optional[_Iterable[_Union[ParameterSummary, _Mapping]]] = ..., parameters_omitted: _Optional[int] = ..., checks: _Optional[_Iterable[_Union[Check, _Mapping]]] = ...) -> None: ...
 
 class FollowHeader(_message.Message):
     __slots__ = ["burn_in", "chains", "dim", "draws_per_chain", "evaluations_per_step", "first_seq", "keep_every", "kernel", "max_evaluations", "max_seconds", "names", "next_seq", "seed", "session_id", "step", "wants"]
@@ -427,9 +450,10 @@ class Points(_message.Message):
     def __init__(self, request_id: _Optional[int] = ..., first_row: _Optional[int] = ..., rows: _Optional[int] = ..., dim: _Optional[int] = ..., points: _Optional[bytes] = ..., chains: _Optional[_Iterable[int]] = ..., quantities: _Optional[_Iterable[_Union[Quantity, str]]] = ..., total_rows: _Optional[int] = ..., vectors: _Optional[bytes] = ..., minibatch_groups: _Optional[_Iterable[int]] = ..., full_data: bool = ..., replicates: _Optional[int] = ...) -> None: ...
 
 class Progress(_message.Message):
-    __slots__ = ["answers_late", "bound", "curvature", "draws_sent", "evaluations_left", "evaluations_per_second", "evaluations_used", "kernel", "ksd", "metric", "noise", "parameters", "parameters_omitted", "rows_reissued", "seconds_left", "seconds_used", "state", "steps", "targets", "tuning", "tuning_evaluations", "workers"]
+    __slots__ = ["answers_late", "bound", "checks", "curvature", "draws_sent", "evaluations_left", "evaluations_per_second", "evaluations_used", "kernel", "ksd", "metric", "noise", "parameters", "parameters_omitted", "rows_reissued", "seconds_left", "seconds_used", "state", "stein", "steps", "targets", "tuning", "tuning_evaluations", "workers"]
     ANSWERS_LATE_FIELD_NUMBER: _ClassVar[int]
     BOUND_FIELD_NUMBER: _ClassVar[int]
+    CHECKS_FIELD_NUMBER: _ClassVar[int]
     CURVATURE_FIELD_NUMBER: _ClassVar[int]
     DRAWS_SENT_FIELD_NUMBER: _ClassVar[int]
     EVALUATIONS_LEFT_FIELD_NUMBER: _ClassVar[int]
@@ -445,6 +469,7 @@ class Progress(_message.Message):
     SECONDS_LEFT_FIELD_NUMBER: _ClassVar[int]
     SECONDS_USED_FIELD_NUMBER: _ClassVar[int]
     STATE_FIELD_NUMBER: _ClassVar[int]
+    STEIN_FIELD_NUMBER: _ClassVar[int]
     STEPS_FIELD_NUMBER: _ClassVar[int]
     TARGETS_FIELD_NUMBER: _ClassVar[int]
     TUNING_EVALUATIONS_FIELD_NUMBER: _ClassVar[int]
@@ -452,6 +477,7 @@ class Progress(_message.Message):
     WORKERS_FIELD_NUMBER: _ClassVar[int]
     answers_late: int
     bound: Bound
+    checks: _containers.RepeatedCompositeFieldContainer[Check]
     curvature: CurvatureEstimate
     draws_sent: int
     evaluations_left: int
@@ -467,15 +493,16 @@ class Progress(_message.Message):
     seconds_left: float
     seconds_used: float
     state: State
+    stein: SteinAssessment
     steps: int
     targets: _containers.RepeatedCompositeFieldContainer[TargetStatus]
     tuning: _containers.RepeatedCompositeFieldContainer[TuningChoice]
     tuning_evaluations: int
     workers: _containers.RepeatedCompositeFieldContainer[WorkerReport]
-    def __init__(self, state: _Optional[_Union[State, str]] = ..., steps: _Optional[int] = ..., evaluations_used: _Optional[int] = ..., evaluations_left: _Optional[int] = ..., seconds_used: _Optional[float] = ..., seconds_left: _Optional[float] = ..., draws_sent: _Optional[int] = ..., evaluations_per_second: _Optional[float] = ..., parameters: _Optional[_Iterable[_Union[ParameterDiagnostics, _Mapping]]] = ..., ksd: _Optional[float] = ..., bound: _Optional[_Union[Bound, _Mapping]] = ..., curvature: _Optional[_Union[CurvatureEstimate, _Mapping]] = ..., targets: _Optional[_Iterable[_Union[TargetStatus, _Mapping]]] = ..., noise: _Optional[_Union[NoiseEstimate, _Mapping]] = ..., kernel: _Optional[_Union[KernelReport, _Mapping]] = ..., parameters_omitted: _Optional[int] = ..., workers: _Optional[_Iterable[_Union[WorkerReport, _Mapping]]] = ..., rows_reissued: _Optional[int] = ..., answers_late: _Optional[int] = ..., metric: _Optional[_Union[MetricReport, _Mapping]] = ..., tuning: _Optional[_Iterable[_Union[TuningChoice, _Mapping]]] = ..., tuning_evaluations: _Optional[int] = ...) -> None: ...
+    def __init__(self, state: _Optional[_Union[State, str]] = ..., steps: _Optional[int] = ..., evaluations_used: _Optional[int] = ..., evaluations_left: _Optional[int] = ..., seconds_used: _Optional[float] = ..., seconds_left: _Optional[float] = ..., draws_sent: _Optional[int] = ..., evaluations_per_second: _Optional[float] = ..., parameters: _Optional[_Iterable[_Union[ParameterDiagnostics, _Mapping]]] = ..., ksd: _Optional[float] = ..., bound: _Optional[_Union[Bound, _Mapping]] = ..., curvature: _Optional[_Union[CurvatureEstimate, _Mapping]] = ..., targets: _Optional[_Iterable[_Union[TargetStatus, _Mapping]]] = ..., noise: _Optional[_Union[NoiseEstimate, _Mapping]] = ..., kernel: _Optional[_Union[KernelReport, _Mapping]] = ..., parameters_omitted: _Optional[int] = ..., workers: _Optional[_Iterable[_Union[WorkerReport, _Mapping]]] = ..., rows_reissued: _Optional[int] = ..., answers_late: _Optional[int] = ..., metric: _Optional[_Union[MetricReport, _Mapping]] = ..., tuning: _Optional[_Iterable[_Union[TuningChoice, _Mapping]]] = ..., tuning_evaluations: _Optional[int] = ..., stein: _Optional[_Union[SteinAssessment, _Mapping]] = ..., checks: _Optional[_Iterable[_Union[Check, _Mapping]]] = ...) -> None: ...
 
 class Register(_message.Message):
-    __slots__ = ["accepts_draw_references", "anchor_every", "burn_in", "chains", "checkpoint_every_steps", "curvature", "curvature_probe_iterations", "dim", "draws_per_chain", "envelope", "fixed_point_iterations", "fixed_point_tolerance", "friction", "inverse_mass", "keep_every", "kernel", "krylov_max_iterations", "krylov_tolerance", "max_evaluations", "max_message_bytes", "max_seconds", "metric", "metric_form", "names", "noise", "owner_evaluates", "progress_every_steps", "progress_interval_seconds", "schedule", "seed", "slice_max_expansions", "slice_width", "start", "start_rows", "step", "wants"]
+    __slots__ = ["accepts_draw_references", "anchor_every", "burn_in", "chains", "checkpoint_every_steps", "curvature", "curvature_probe_iterations", "dim", "draws_per_chain", "envelope", "fixed_point_iterations", "fixed_point_tolerance", "friction", "gradient_check_points", "inverse_mass", "keep_every", "kernel", "krylov_max_iterations", "krylov_tolerance", "max_evaluations", "max_message_bytes", "max_seconds", "metric", "metric_form", "names", "noise", "owner_evaluates", "progress_every_steps", "progress_interval_seconds", "schedule", "seed", "slice_max_expansions", "slice_width", "start", "start_rows", "step", "wants"]
     ACCEPTS_DRAW_REFERENCES_FIELD_NUMBER: _ClassVar[int]
     ANCHOR_EVERY_FIELD_NUMBER: _ClassVar[int]
     BURN_IN_FIELD_NUMBER: _ClassVar[int]
@@ -489,6 +516,7 @@ class Register(_message.Message):
     FIXED_POINT_ITERATIONS_FIELD_NUMBER: _ClassVar[int]
     FIXED_POINT_TOLERANCE_FIELD_NUMBER: _ClassVar[int]
     FRICTION_FIELD_NUMBER: _ClassVar[int]
+    GRADIENT_CHECK_POINTS_FIELD_NUMBER: _ClassVar[int]
     INVERSE_MASS_FIELD_NUMBER: _ClassVar[int]
     KEEP_EVERY_FIELD_NUMBER: _ClassVar[int]
     KERNEL_FIELD_NUMBER: _ClassVar[int]
@@ -525,6 +553,7 @@ class Register(_message.Message):
     fixed_point_iterations: int
     fixed_point_tolerance: float
     friction: float
+    gradient_check_points: int
     inverse_mass: float
     keep_every: int
     kernel: str
@@ -548,7 +577,7 @@ class Register(_message.Message):
     start_rows: int
     step: float
     wants: Wants
-    def __init__(self, dim: _Optional[int] = ..., chains: _Optional[int] = ..., kernel: _Optional[str] = ..., start: _Optional[bytes] = ..., start_rows: _Optional[int] = ..., step: _Optional[float] = ..., burn_in: _Optional[int] = ..., keep_every: _Optional[int] = ..., draws_per_chain: _Optional[int] = ..., max_evaluations: _Optional[int] = ..., max_seconds: _Optional[float] = ..., progress_every_steps: _Optional[int] = ..., progress_interval_seconds: _Optional[float] = ..., seed: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., max_message_bytes: _Optional[int] = ..., curvature: _Optional[_Union[Curvature, _Mapping]] = ..., wants: _Optional[_Union[Wants, _Mapping]] = ..., friction: _Optional[float] = ..., inverse_mass: _Optional[float] = ..., krylov_tolerance: _Optional[float] = ..., krylov_max_iterations: _Optional[int] = ..., schedule: _Optional[_Union[StepSchedule, _Mapping]] = ..., anchor_every: _Optional[int] = ..., fixed_point_tolerance: _Optional[float] = ..., fixed_point_iterations: _Optional[int] = ..., curvature_probe_iterations: _Optional[int] = ..., slice_width: _Optional[float] = ..., slice_max_expansions: _Optional[int] = ..., envelope: _Optional[_Union[Envelope, _Mapping]] = ..., owner_evaluates: bool = ..., noise: _Optional[_Union[GradientNoise, _Mapping]] = ..., checkpoint_every_steps: _Optional[int] = ..., accepts_draw_references: bool = ..., metric: _Optional[bytes] = ..., metric_form: _Optional[_Union[MetricForm, str]] = ...) -> None: ...
+    def __init__(self, dim: _Optional[int] = ..., chains: _Optional[int] = ..., kernel: _Optional[str] = ..., start: _Optional[bytes] = ..., start_rows: _Optional[int] = ..., step: _Optional[float] = ..., burn_in: _Optional[int] = ..., keep_every: _Optional[int] = ..., draws_per_chain: _Optional[int] = ..., max_evaluations: _Optional[int] = ..., max_seconds: _Optional[float] = ..., progress_every_steps: _Optional[int] = ..., progress_interval_seconds: _Optional[float] = ..., seed: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., max_message_bytes: _Optional[int] = ..., curvature: _Optional[_Union[Curvature, _Mapping]] = ..., wants: _Optional[_Union[Wants, _Mapping]] = ..., friction: _Optional[float] = ..., inverse_mass: _Optional[float] = ..., krylov_tolerance: _Optional[float] = ..., krylov_max_iterations: _Optional[int] = ..., schedule: _Optional[_Union[StepSchedule, _Mapping]] = ..., anchor_every: _Optional[int] = ..., fixed_point_tolerance: _Optional[float] = ..., fixed_point_iterations: _Optional[int] = ..., curvature_probe_iterations: _Optional[int] = ..., slice_width: _Optional[float] = ..., slice_max_expansions: _Optional[int] = ..., envelope: _Optional[_Union[Envelope, _Mapping]] = ..., owner_evaluates: bool = ..., noise: _Optional[_Union[GradientNoise, _Mapping]] = ..., checkpoint_every_steps: _Optional[int] = ..., accepts_draw_references: bool = ..., metric: _Optional[bytes] = ..., metric_form: _Optional[_Union[MetricForm, str]] = ..., gradient_check_points: _Optional[int] = ...) -> None: ...
 
 class Registered(_message.Message):
     __slots__ = ["evaluations_per_step", "kernel", "max_message_bytes", "metric", "names", "planned_steps", "resume_token", "resumed", "seed", "session_id", "step", "tuning"]
@@ -613,6 +642,26 @@ class SessionResponse(_message.Message):
     progress: Progress
     registered: Registered
     def __init__(self, registered: _Optional[_Union[Registered, _Mapping]] = ..., points: _Optional[_Union[Points, _Mapping]] = ..., draws: _Optional[_Union[Draws, _Mapping]] = ..., progress: _Optional[_Union[Progress, _Mapping]] = ..., finished: _Optional[_Union[Finished, _Mapping]] = ...) -> None: ...
+
+class SteinAssessment(_message.Message):
+    __slots__ = ["draws", "ksd", "p_value", "se", "state", "state_text", "u_statistic", "upper95"]
+    DRAWS_FIELD_NUMBER: _ClassVar[int]
+    KSD_FIELD_NUMBER: _ClassVar[int]
+    P_VALUE_FIELD_NUMBER: _ClassVar[int]
+    SE_FIELD_NUMBER: _ClassVar[int]
+    STATE_FIELD_NUMBER: _ClassVar[int]
+    STATE_TEXT_FIELD_NUMBER: _ClassVar[int]
+    UPPER95_FIELD_NUMBER: _ClassVar[int]
+    U_STATISTIC_FIELD_NUMBER: _ClassVar[int]
+    draws: int
+    ksd: float
+    p_value: float
+    se: float
+    state: SteinState
+    state_text: str
+    u_statistic: float
+    upper95: float
+    def __init__(self, ksd: _Optional[float] = ..., u_statistic: _Optional[float] = ..., se: _Optional[float] = ..., upper95: _Optional[float] = ..., p_value: _Optional[float] = ..., draws: _Optional[int] = ..., state: _Optional[_Union[SteinState, str]] = ..., state_text: _Optional[str] = ...) -> None: ...
 
 class StepSchedule(_message.Message):
     __slots__ = ["a", "b", "gamma"]
@@ -699,6 +748,12 @@ class Quantity(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = []
 
 class State(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+    __slots__ = []
+
+class SteinState(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+    __slots__ = []
+
+class CheckStatus(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = []
 
 class BoundSource(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):

@@ -1,0 +1,400 @@
+package session
+
+import (
+	"math"
+	"math/rand/v2"
+	"slices"
+	"strings"
+	"testing"
+	"time"
+
+	"gonum.org/v1/gonum/mat"
+
+	"sluice/kernels"
+	"sluice/kernels/bound"
+	"sluice/kernels/targets"
+)
+
+// targetOracle answers from a kernels/targets target (closed forms);
+// sign −1 returns ∇(−log π) instead of ∇log π.
+func targetOracle(tg targets.Target, sign float64) oracle {
+	return func(p *Points, ev *Evaluations) {
+		d := p.Dim
+		if p.Need.Has(kernels.NeedGradient) {
+			ev.Grad = make([]float64, p.Rows*d)
+		}
+		if p.Need.Has(kernels.NeedLogDensity) {
+			ev.LogDensity = make([]float64, p.Rows)
+		}
+		for r := range p.Rows {
+			x := p.Points[r*d : (r+1)*d]
+			if ev.Grad != nil {
+				tg.GradLogDensity(ev.Grad[r*d:(r+1)*d], x)
+				for i := range d {
+					ev.Grad[r*d+i] *= sign
+				}
+			}
+			if ev.LogDensity != nil {
+				ev.LogDensity[r] = tg.LogDensity(x)
+			}
+		}
+	}
+}
+
+func precisionGaussian(t *testing.T, prec ...float64) *targets.Gaussian {
+	t.Helper()
+	p := mat.NewSymDense(len(prec), nil)
+	for i, v := range prec {
+		p.SetSym(i, i, v)
+	}
+	g, err := targets.NewGaussian(make([]float64, len(prec)), p)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return g
+}
+
+func checkNamed(cs []Check, name string) (Check, bool) {
+	i := slices.IndexFunc(cs, func(c Check) bool { return c.Name == name })
+	if i < 0 {
+		return Check{}, false
+	}
+	return cs[i], true
+}
+
+// Step 5 on a Gaussian whose precision reaches 2.2: LMC's recursion
+// multiplies by 1 − 5·2.2 = −10 per step along that axis (derived here),
+// so the chains diverge. The session fails naming the step, the curvature
+// seen and a stable step (2/2.2 = 0.909, rounded down to 0.9), never
+// "draws collected".
+func TestDivergenceNamesStepCurvatureAndRemedy(t *testing.T) {
+	spec := Spec{Dim: 2, Chains: 4, Start: []float64{0.5, -0.5}, StartRows: 1, Step: 5, Seed: 11, DrawsPerChain: 1000}
+	_, res, err := drive(t, mustNew(t, spec, Limits{}), targetOracle(precisionGaussian(t, 2.2, 1), 1))
+	e, ok := AsError(err)
+	if !ok || e.Field != "register.step" || res.Finished.Reason != Failed {
+		t.Fatalf("got %v (%v)", err, res.Finished.Reason)
+	}
+	for _, want := range []string{"diverged at step", "the step 5 is too large", "M ≥ 2.2", "try a step below 0.9"} {
+		if !strings.Contains(e.Reason, want) {
+			t.Fatalf("reason %q lacks %q", e.Reason, want)
+		}
+	}
+	if strings.Contains(e.Reason, "below 0.91") {
+		t.Fatalf("reason %q suggests an unstable step", e.Reason)
+	}
+	if c, ok := checkNamed(res.Finished.Checks, "divergence"); !ok || c.Status != CheckFail {
+		t.Fatalf("checks %+v", res.Finished.Checks)
+	}
+	if c, ok := checkNamed(res.Finished.Checks, "stability"); !ok || c.Status != CheckFail {
+		t.Fatalf("stability check %+v", res.Finished.Checks)
+	}
+}
+
+// A client that returns ∇(−log π): without log densities the chains run
+// away from the mode (LMC multiplies by 1 + h per step on N(0, I)), and
+// the failure says the gradient may point downhill; with log densities
+// (MALA) the gradient check fails before sampling on
+// evaluations.gradients.
+func TestWrongSignGradientIsNamed(t *testing.T) {
+	tg := precisionGaussian(t, 1, 1)
+	spec := Spec{Dim: 2, Chains: 4, Start: []float64{0.5, -0.5}, StartRows: 1, Step: 0.1, Seed: 3, DrawsPerChain: 2000}
+	_, res, err := drive(t, mustNew(t, spec, Limits{}), targetOracle(tg, -1))
+	e, ok := AsError(err)
+	if !ok || res.Finished.Reason != Failed || !strings.Contains(e.Reason, "−log π") {
+		t.Fatalf("lmc: got %v (%v)", err, res.Finished.Reason)
+	}
+	if c, ok := checkNamed(res.Finished.Checks, "gradient"); !ok || c.Status != CheckWarn {
+		t.Fatalf("lmc: gradient check %+v", res.Finished.Checks)
+	}
+	spec.Kernel = "mala"
+	_, res, err = drive(t, mustNew(t, spec, Limits{}), targetOracle(tg, -1))
+	e, ok = AsError(err)
+	if !ok || e.Field != "evaluations.gradients" || !strings.Contains(e.Reason, "points downhill") || res.Finished.Reason != Failed {
+		t.Fatalf("mala: got %v (%v)", err, res.Finished.Reason)
+	}
+	// A gradient off by a factor of 2 is named as such.
+	half := func(p *Points, ev *Evaluations) {
+		targetOracle(tg, 1)(p, ev)
+		for i := range ev.Grad {
+			ev.Grad[i] *= 2
+		}
+	}
+	_, _, err = drive(t, mustNew(t, spec, Limits{}), half)
+	if e, ok = AsError(err); !ok || e.Field != "evaluations.gradients" || !strings.Contains(e.Reason, "off by a factor of about 2") {
+		t.Fatalf("mala, doubled gradient: got %v", err)
+	}
+	// The right gradient passes, and the verdict says so.
+	spec.DrawsPerChain = 50
+	_, res, err = drive(t, mustNew(t, spec, Limits{}), targetOracle(tg, 1))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if c, ok := checkNamed(res.Finished.Checks, "gradient"); !ok || c.Status != CheckPass {
+		t.Fatalf("mala: gradient check %+v", res.Finished.Checks)
+	}
+}
+
+// A max_ksd target far below what the draws can show (0.001 with a few
+// thousand draws) is never met: the rule is the upper 95 % bound of the
+// Stein assessment (kernels/diag), not a clamped point estimate, and the
+// report carries the SE, bound and state.
+func TestKSDTargetNeedsTheUpperBound(t *testing.T) {
+	for _, seed := range []uint64{1, 2} {
+		spec := Spec{Dim: 2, Chains: 4, Start: []float64{0.1, -0.1}, StartRows: 1, Step: 0.05, Seed: seed, BurnIn: 100,
+			DrawsPerChain: 600, Wants: Wants{MaxKSD: 0.001}}
+		_, res, err := drive(t, mustNew(t, spec, Limits{}), gaussian(1))
+		if err != nil || res.Finished.Reason == TargetMet {
+			t.Fatalf("seed %d: reason %v err %v", seed, res.Finished.Reason, err)
+		}
+		st := res.Finished.Progress.Stein
+		if st == nil || !(st.SE > 0) || !(st.Upper95 > 0.001) || st.Draws < 8 {
+			t.Fatalf("seed %d: stein %+v", seed, st)
+		}
+		tgt := res.Finished.Progress.Targets[0]
+		if tgt.Name != "max_ksd" || tgt.Met || tgt.Current != st.Upper95 {
+			t.Fatalf("seed %d: target %+v", seed, tgt)
+		}
+	}
+}
+
+// wants.eps = 1 in W2 with m = M = 1, undeclared stochastic gradient
+// noise and a planned step: whenever the session ends "target met", the
+// final report's bound is within eps and every target says met (the
+// noise, bound and re-plan are updated on the step path, not at timed
+// reports).
+func TestEpsTargetMetOnlyWhenTheBoundSaysSo(t *testing.T) {
+	spec := Spec{Dim: 2, Chains: 4, Start: []float64{0.5, -0.5}, StartRows: 1, Seed: 5, BurnIn: 40,
+		Curvature: &Curvature{StrongConvexity: 1, Smoothness: 1}, Wants: Wants{Eps: 1, Metric: bound.W2},
+		Noise: Noise{Stochastic: true, Replicates: 2}, MaxEvaluations: 200000}
+	r := rand.New(rand.NewPCG(5, 6))
+	noisy := func(p *Points, ev *Evaluations) {
+		ev.Grad = make([]float64, 2*len(p.Points))
+		for row := range p.Rows {
+			for j := range 2 {
+				for i := range p.Dim {
+					ev.Grad[(row*2+j)*p.Dim+i] = -p.Points[row*p.Dim+i] + 2*r.NormFloat64()
+				}
+			}
+		}
+	}
+	_, res, err := drive(t, mustNew(t, spec, Limits{ProgressInterval: time.Hour}), noisy)
+	if err != nil || res.Finished.Reason != TargetMet {
+		t.Fatalf("reason %v err %v", res.Finished.Reason, err)
+	}
+	p := res.Finished.Progress
+	if p.Bound == nil || p.Bound.Total > 1 {
+		t.Fatalf("target met with bound %+v", p.Bound)
+	}
+	for _, tg := range p.Targets {
+		if !tg.Met {
+			t.Fatalf("target met but %+v", tg)
+		}
+	}
+}
+
+// Chains started at (30, 30) on N(0, I) with m = M = 1 and a W2 bound:
+// the start distance is certified from the start gradient,
+// ‖∇log π(x₀)‖/m + √(p/m) = 42.43 + 1.41 = 43.84 ≥ the exact
+// W2(δ_{x₀}, N(0, I)) = √(1800 + 2) = 42.45, and the reported bound
+// dominates the exact W2 of the chains' law after K steps of LMC with
+// step h (a Gaussian: mean (1 − h)^K·x₀, per-coordinate variance
+// 2h(1 − (1 − h)^{2K})/(1 − (1 − h)²), derived here from the AR(1)
+// recursion; W2 between Gaussians with proportional-to-identity
+// covariances is √(‖Δμ‖² + p(s₁ − s₂)²), the closed form of Givens and
+// Shortt (1984)).
+func TestW2StartCertifiedFromGradient(t *testing.T) {
+	const h, K = 0.05, 40
+	spec := Spec{Dim: 2, Chains: 2, Start: []float64{30, 30}, StartRows: 1, Step: h, Seed: 4, DrawsPerChain: K,
+		Curvature: &Curvature{StrongConvexity: 1, Smoothness: 1}, Wants: Wants{Metric: bound.W2}}
+	s := mustNew(t, spec, Limits{})
+	_, res, err := drive(t, s, gaussian(1))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if d := s.guarantee.setting.StartDistance; math.Abs(d-(math.Sqrt(1800)+math.Sqrt(2))) > 1e-9 {
+		t.Fatalf("certified start distance %v, want 43.84", d)
+	}
+	b := res.Finished.Progress.Bound
+	a := math.Pow(1-h, K)
+	v := 2 * h * (1 - a*a) / (1 - (1-h)*(1-h))
+	exact := math.Sqrt(2*900*a*a + 2*(math.Sqrt(v)-1)*(math.Sqrt(v)-1))
+	if b == nil || !(b.Total >= exact) {
+		t.Fatalf("bound %+v below the exact W2 %v", b, exact)
+	}
+	c, ok := checkNamed(res.Finished.Checks, "guarantee")
+	if !ok || !strings.Contains(c.Message, "certified from the start gradients") {
+		t.Fatalf("guarantee check %+v", c)
+	}
+}
+
+// Chains started at (30, 30) with a TV target: the theorem assumes a
+// start drawn from N(x*, M⁻¹I); the start gradient shows the start is at
+// least ‖∇log π(x₀)‖/M = 42.4 standard deviations from the mode, so the
+// guarantee check fails and the session never ends "target met" (the
+// exact TV of the chains' law is far above the target).
+func TestTVGuaranteeRefusedForAFarStart(t *testing.T) {
+	spec := Spec{Dim: 2, Chains: 2, Start: []float64{30, 30}, StartRows: 1, Seed: 4, MaxEvaluations: 2 * 5000,
+		Curvature: &Curvature{StrongConvexity: 1, Smoothness: 1}, Wants: Wants{Eps: 0.1, Metric: bound.TV}}
+	_, res, err := drive(t, mustNew(t, spec, Limits{}), gaussian(1))
+	if err != nil || res.Finished.Reason == TargetMet {
+		t.Fatalf("reason %v err %v", res.Finished.Reason, err)
+	}
+	c, ok := checkNamed(res.Finished.Checks, "guarantee")
+	if !ok || c.Status != CheckFail || !strings.Contains(c.Message, "N(x*, M⁻¹I)") {
+		t.Fatalf("guarantee check %+v", res.Finished.Checks)
+	}
+}
+
+// A slow and a fast client with the same seed and answers get
+// bit-identical draws and the same ending, for every kernel in the
+// registry, and with stochastic gradients and an eps target (whose noise
+// estimate, bound and re-plan run on the step path): progress reports
+// are timed (1 ms), so they fall on different steps in the two runs.
+func TestDrawsDoNotDependOnClientSpeed(t *testing.T) {
+	type run struct {
+		name string
+		spec Spec
+		o    func() oracle
+	}
+	var runs []run
+	for _, name := range KernelNames() {
+		spec := registrySpec(t, name)
+		spec.DrawsPerChain = 60
+		runs = append(runs, run{name, spec, func() oracle {
+			return func(p *Points, ev *Evaluations) {
+				req := &kernels.Request{Need: p.Need, Rows: p.Rows, Points: p.Points, Vectors: p.Vectors}
+				a := kernels.NewAnswer(p.Rows, p.Dim)
+				gaussianAnswer(req, a, p.Dim)
+				if p.Need.Has(kernels.NeedGradient) {
+					ev.Grad = slices.Repeat(a.Grad[:p.Rows*p.Dim], 1)
+				}
+				if p.Need.Has(kernels.NeedLogDensity) {
+					ev.LogDensity = append([]float64(nil), a.LogDensity[:p.Rows]...)
+				}
+				if p.Need.Has(kernels.NeedHessian) {
+					ev.Hessian = append([]float64(nil), a.Hessian[:p.Rows*p.Dim*p.Dim]...)
+				}
+				if p.Need.Has(kernels.NeedHessianVector) {
+					ev.HessVec = append([]float64(nil), a.HessVec[:p.Rows*p.Dim]...)
+				}
+			}
+		}})
+	}
+	eps := Spec{Dim: 2, Chains: 4, Start: []float64{0.5, -0.5}, StartRows: 1, Seed: 5, BurnIn: 40, DrawsPerChain: 200,
+		Curvature: &Curvature{StrongConvexity: 1, Smoothness: 1}, Wants: Wants{Eps: 1, Metric: bound.W2},
+		Noise: Noise{Stochastic: true, Replicates: 2}}
+	runs = append(runs, run{"lmc, stochastic, eps", eps, func() oracle {
+		r := rand.New(rand.NewPCG(5, 6))
+		return func(p *Points, ev *Evaluations) {
+			ev.Grad = make([]float64, 2*len(p.Points))
+			for row := range p.Rows {
+				for j := range 2 {
+					for i := range p.Dim {
+						ev.Grad[(row*2+j)*p.Dim+i] = -p.Points[row*p.Dim+i] + 2*r.NormFloat64()
+					}
+				}
+			}
+		}
+	}})
+	for _, rn := range runs {
+		var got [2][]float64
+		var reasons [2]Reason
+		for i, delay := range []time.Duration{0, 300 * time.Microsecond} {
+			o := rn.o()
+			slow := func(p *Points, ev *Evaluations) {
+				time.Sleep(delay)
+				o(p, ev)
+			}
+			tr, res, err := drive(t, mustNew(t, rn.spec, Limits{ProgressInterval: time.Millisecond}), slow)
+			if err != nil {
+				t.Fatalf("%s: %v", rn.name, err)
+			}
+			for _, d := range tr.draws {
+				got[i] = append(got[i], d.Values...)
+			}
+			reasons[i] = res.Finished.Reason
+		}
+		if len(got[0]) == 0 || !slices.Equal(got[0], got[1]) || reasons[0] != reasons[1] {
+			t.Fatalf("%s: %d and %d draw values, equal %v; reasons %v", rn.name, len(got[0]), len(got[1]), slices.Equal(got[0], got[1]), reasons)
+		}
+	}
+}
+
+// A 20-parameter logistic posterior (200 invented observations, prior
+// precision 1) sampled with the kinetic kernel at step 0.1 and inverse
+// mass 1: the posterior's curvature reaches about 0.25·λ_max(XᵀX) + 1
+// (the bound of kernels/targets), far beyond what that step follows, so
+// the run is wasted. The session does not end "target met": the verdict
+// names stability (and divergence or bias, whichever the run reaches).
+func TestKineticTooLargeAStepIsNamed(t *testing.T) {
+	const n, p = 200, 20
+	r := rand.New(rand.NewPCG(8, 9))
+	x := mat.NewDense(n, p, nil)
+	y := make([]float64, n)
+	for i := range n {
+		var z float64
+		for j := range p {
+			v := r.NormFloat64()
+			x.Set(i, j, v)
+			z += 0.3 * v
+		}
+		if r.Float64() < 1/(1+math.Exp(-z)) {
+			y[i] = 1
+		}
+	}
+	tg, err := targets.NewLogistic(x, y, 1)
+	if err != nil {
+		t.Fatal(err)
+	}
+	spec := Spec{Dim: p, Chains: 4, Kernel: "kinetic", Start: make([]float64, p), StartRows: 1, Step: 0.1, Seed: 12, BurnIn: 200,
+		Wants: Wants{MinBulkESS: 400}, MaxEvaluations: 4 * 3000}
+	_, res, err := drive(t, mustNew(t, spec, Limits{}), targetOracle(tg, 1))
+	if res.Finished.Reason == TargetMet {
+		t.Fatalf("target met: %+v", res.Finished.Checks)
+	}
+	c, ok := checkNamed(res.Finished.Checks, "stability")
+	if !ok || c.Status == CheckPass {
+		t.Fatalf("stability check %+v (err %v)", res.Finished.Checks, err)
+	}
+}
+
+// A guaranteed W2 bound much larger than the posterior's spread is
+// flagged as saying little: on N(0, I/400) (sd 0.05) with the loose
+// declaration m = 1, M = 400 and a start distance of 30, the bound after
+// a few hundred steps stays far above √2·0.05.
+func TestUninformativeGuaranteeWarns(t *testing.T) {
+	spec := Spec{Dim: 2, Chains: 4, Start: []float64{0.01, -0.01}, StartRows: 1, Step: 0.002, Seed: 2, BurnIn: 50,
+		DrawsPerChain: 300, Curvature: &Curvature{StrongConvexity: 1, Smoothness: 400, StartDistance: 30}, Wants: Wants{Metric: bound.W2}}
+	_, res, err := drive(t, mustNew(t, spec, Limits{}), gaussian(400))
+	if err != nil {
+		t.Fatal(err)
+	}
+	c, ok := checkNamed(res.Finished.Checks, "guarantee")
+	if !ok || c.Status != CheckWarn || !strings.Contains(c.Message, "says little") {
+		t.Fatalf("guarantee check %+v", res.Finished.Checks)
+	}
+}
+
+// LMC at step 1.9 on N(0, 1) multiplies by 1 − 1.9 = −0.9 per step
+// (derived here): strongly antithetic chains, whose ESS exceeds the
+// draws. Every reported ESS stays positive and at most S·log₁₀ S (the
+// floor of Vehtari et al. 2021 on the autocorrelation time, in
+// kernels/diag), and the verdict warns that the step is over half the
+// stable limit 2/M.
+func TestAntitheticChainsReportPossibleESS(t *testing.T) {
+	spec := Spec{Dim: 1, Chains: 4, Start: []float64{0.3}, StartRows: 1, Step: 1.9, Seed: 6, BurnIn: 100, DrawsPerChain: 1000}
+	_, res, err := drive(t, mustNew(t, spec, Limits{}), gaussian(1))
+	if err != nil {
+		t.Fatal(err)
+	}
+	s := float64(4 * 1000)
+	for _, p := range res.Finished.Progress.Parameters {
+		if !(p.BulkESS > 0 && p.BulkESS <= s*math.Log10(s)) || !(p.TailESS > 0 && p.TailESS <= s*math.Log10(s)) {
+			t.Fatalf("ESS %+v from %v draws", p, s)
+		}
+	}
+	c, ok := checkNamed(res.Finished.Checks, "stability")
+	if !ok || c.Status != CheckWarn {
+		t.Fatalf("stability check %+v", res.Finished.Checks)
+	}
+}
