@@ -143,7 +143,7 @@ func TestAttachDrawsEqualOneClient(t *testing.T) {
 		if err != nil {
 			t.Fatalf("%d workers: %v", n, err)
 		}
-		if got.sum.Reason != client.DrawsCollected {
+		if !collected(got.sum.Reason) {
 			t.Fatalf("%d workers: reason %v", n, got.sum.Reason)
 		}
 		sameDraws(t, "pool", one.draws, got.draws)

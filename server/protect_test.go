@@ -104,7 +104,9 @@ func TestHundredConcurrentSessionsAtDefaults(t *testing.T) {
 				failed.Add(1)
 				errs <- fmt.Errorf("session %d: %w", i, err)
 				return
-			case sum.Reason != client.DrawsCollected:
+			// Short sessions may end "check failed" (the verdict finds
+			// too few effective draws): every draw is still delivered.
+			case !collected(sum.Reason):
 				failed.Add(1)
 				errs <- fmt.Errorf("session %d ended %v", i, sum.Reason)
 				return
@@ -166,7 +168,7 @@ func TestUnregisteredStreamsHoldNoSlotAndDoNotDelayShutdown(t *testing.T) {
 	}
 	waitFor(t, "the idle streams to reach the server", func() bool { return srv.Registering() == idle })
 	sum, err := client.Run(ctx, dialLoop(t, addr), client.Spec{Dim: 2, Chains: 2, Start: []float64{0, 0}, Step: 0.1, DrawsPerChain: 20}, minusX)
-	if err != nil || sum.Reason != client.DrawsCollected {
+	if err != nil || !collected(sum.Reason) {
 		t.Fatalf("good session beside %d idle streams: %v %+v", idle, err, sum)
 	}
 	sctx, cancel := context.WithTimeout(context.Background(), 2*time.Minute)
@@ -194,7 +196,7 @@ func TestSilentClientFreesItsSlot(t *testing.T) {
 		t.Fatalf("silent client: %v %q (field %q)", s.Code(), s.Message(), fieldOf(s))
 	}
 	sum, err := client.Run(testCtx(t), conn, client.Spec{Dim: 2, Chains: 2, Start: []float64{0, 0}, Step: 0.1, DrawsPerChain: 10}, minusX)
-	if err != nil || sum.Reason != client.DrawsCollected {
+	if err != nil || !collected(sum.Reason) {
 		t.Fatalf("next session: %v", err)
 	}
 }
@@ -317,3 +319,9 @@ func TestOversizeAnswerRefusedBeforeDecoding(t *testing.T) {
 		t.Fatalf("1 MiB of Hessians for a 3 × 2 session: %v %q (field %q)", s.Code(), s.Message(), fieldOf(s))
 	}
 }
+
+// collected reports whether a session ended with every draw it was asked
+// for: "draws collected", or "check failed" when the verdict judged those
+// draws poor (short runs often are) — these tests are about delivery, not
+// about the draws' quality.
+func collected(r client.Reason) bool { return r == client.DrawsCollected || r == client.CheckFailed }

@@ -85,7 +85,7 @@ func TestShutdownSuspendsAndClientResumes(t *testing.T) {
 	own := newSeqCounter()
 	sum, err := client.Run(testCtx(t), cc, survivalSpec(), eval, client.OnDraws(own.add),
 		client.WithResume(client.ResumePolicy{Attempts: 100, First: 1e6, MaxWait: 1e8}))
-	if err != nil || sum.Reason != client.DrawsCollected {
+	if err != nil || !collected(sum.Reason) {
 		t.Fatalf("session: %v, %+v", err, sum)
 	}
 	<-stopped

@@ -188,7 +188,8 @@ func TestWatchPlainLines(t *testing.T) {
 	// reports (steps 25, 50, …, 250) the server keeps the latest eight:
 	// the first line is the report at step 75 (30% of the draws budget,
 	// 0.3% of the evaluations).
-	if !regexp.MustCompile(`^ 30% sampling, step 75/250, 300 evaluations \(99700 left\), [0-9.]+ s, .*; worst R-hat \d\.\d{3} `).MatchString(lines[1]) {
+	// (R-hat is measured on the engine's own cadence: it may not be yet.)
+	if !regexp.MustCompile(`^ 30% sampling, step 75/250, 300 evaluations \(99700 left\), [0-9.]+ s, .*; (worst R-hat \d\.\d{3} |R-hat not measured yet)`).MatchString(lines[1]) {
 		t.Errorf("first report line %q", lines[1])
 	}
 	if !strings.HasPrefix(lines[len(lines)-1], "finished (draws collected): 250 steps, 1000 evaluations") {

@@ -143,8 +143,10 @@ func TestStopAtManyChainsHasBoundedEndWork(t *testing.T) {
 	if k := s.mon.ksd.Kept(); k > maxKSDPoints {
 		t.Fatalf("the window keeps %d draws, more than %d", k, maxKSDPoints)
 	}
-	if res.Finished.Progress.KSD < 0 {
-		t.Fatalf("no final discrepancy: %v", res.Finished.Progress.KSD)
+	// The final report assessed the discrepancy (with two draws per chain
+	// it may honestly say "undefined" rather than give a figure).
+	if res.Finished.Progress.Stein == nil {
+		t.Fatal("no final Stein assessment")
 	}
 }
 

@@ -141,6 +141,15 @@ func (s *Session) curvatureSeen() float64 {
 func (s *Session) stabilityCheck() (Check, bool) {
 	h := kernelReport(s.kernel).Step
 	lambda := s.curvatureSeen()
+	// With a metric C = L·Lᵀ the kernel steps in y = L⁻¹x, where the
+	// curvature is that of Lᵀ∇²(−log π)L: the pairs seen in x do not
+	// measure it, the tuner's probe in the metric's units does.
+	if mu, ok := s.kernel.(kernels.MetricUser); ok && mu.Metric() != nil && mu.Metric().Kind() != kernels.IdentityMetric {
+		if s.tune == nil || !(s.tune.bigM > 0) {
+			return Check{}, false
+		}
+		lambda = s.tune.bigM
+	}
 	rule, ok := stabilityRuleOf(s.spec.Kernel, s.kernel)
 	if !ok || !(h > 0) || !(lambda > 0) || math.IsInf(lambda, 0) {
 		return Check{}, false

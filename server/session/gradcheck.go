@@ -215,3 +215,26 @@ func (g *gradientCheckPhase) check() Check {
 	return Check{Name: "gradient", Status: CheckPass, Figure: g.worst,
 		Message: fmt.Sprintf("the gradient agrees with finite differences of log π at %d points in %d directions each (largest disagreement %.2g of the tolerance)", g.points, gradCheckDirections, g.worst)}
 }
+
+// gradCheckState is what a checkpoint keeps of the gradient check: its
+// results. Checkpoints are taken before the first request or after the
+// phases are over, never while it runs, so its progress need not be kept.
+type gradCheckState struct {
+	Done      bool
+	Worst     float64
+	Ratios    []float64
+	Evaluated int
+}
+
+func (p *gradientCheckPhase) marshal() ([]byte, error) {
+	return gobBytes(gradCheckState{Done: p.done, Worst: p.worst, Ratios: p.ratios, Evaluated: p.evaluated})
+}
+
+func (p *gradientCheckPhase) unmarshal(b []byte) error {
+	var st gradCheckState
+	if err := gobRead(b, &st); err != nil {
+		return fmt.Errorf("session: state's gradient check: %w", err)
+	}
+	p.done, p.worst, p.ratios, p.evaluated = st.Done, st.Worst, st.Ratios, st.Evaluated
+	return nil
+}

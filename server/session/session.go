@@ -832,7 +832,9 @@ func (s *Session) sendDraws(step int64, send func(Frame) error, sent *kernels.Re
 	s.accumulate(x, dim, chains)
 	// No references while a resumed client has not caught up: those draws
 	// may be trimmed (skipSent), and a resumed client holds no points.
-	refs := s.spec.DrawReferences && sent != nil && s.seq >= s.persist.nextSeq && s.matchPoints(sent, x)
+	// Nor once workers share the rows: the owner's stream may not hold the
+	// request's points.
+	refs := s.spec.DrawReferences && sent != nil && s.seq >= s.persist.nextSeq && !s.pool.everWorkers && s.matchPoints(sent, x)
 	if s.drawChains == nil {
 		s.drawChains = make([]int, chains)
 		s.drawIters = make([]int64, chains)
