@@ -274,14 +274,6 @@ func newMonitor(dim, chains int, names []string) *monitor {
 		keptX: make([]float64, dim*chains), lastKSD: -1, chainSum: make([]float64, dim*chains)}
 }
 
-// histChains is the number of chains the history follows.
-func (m *monitor) histChains() int {
-	if m.histIdx == nil {
-		return m.chains
-	}
-	return len(m.histIdx)
-}
-
 // addKSD offers the kept positions x and their scores sc (every chain) to
 // the Stein discrepancy's window, thinned to its chains.
 func (m *monitor) addKSD(x, sc []float64) {
