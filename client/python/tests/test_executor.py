@@ -179,7 +179,10 @@ def live_sessions(executor: Optional[cf.Executor], split: Optional[int] = None) 
                        **spec_kw)  # type: ignore[arg-type]
         s = sc.run(target, spec, executor=executor, split=split, timeout=DEADLINE_SECONDS,
                    **fn_kw)  # type: ignore[arg-type]
-        if s.reason != sc.FinishReason.DRAWS_COLLECTED:
+        # Short runs may end CHECK_FAILED (the verdict finds too few
+        # effective draws): every draw is still delivered, which is what
+        # this test compares.
+        if s.reason not in (sc.FinishReason.DRAWS_COLLECTED, sc.FinishReason.CHECK_FAILED):
             raise AssertionError(f"{spec_kw}: {s.reason} {s.message}")
         assert s.draws is not None and s.draw_chains is not None
         out.append((s.draws, s.draw_chains))
