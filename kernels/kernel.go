@@ -216,3 +216,15 @@ type Scorer interface {
 func NewSource(seed uint64) *rand.PCG {
 	return rand.NewPCG(seed, seed^0x9e3779b97f4a7c15)
 }
+
+// Massive is implemented by kernels with a velocity: their inverse mass u
+// (a scalar multiplying the metric, when one is set).
+type Massive interface {
+	InverseMass() float64
+}
+
+// Damped is implemented by kernels with a settable friction γ as well.
+type Damped interface {
+	Massive
+	Friction() float64
+}

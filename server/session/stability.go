@@ -35,19 +35,23 @@ type stabilityRule struct {
 	source string
 }
 
-// stabilityRuleOf returns the rule of the named kernel; false when it is
-// exempt.
+// stabilityRuleOf returns the rule of the named kernel (by the tuning
+// rule its registry entry declares); false when it is exempt.
 func stabilityRuleOf(name string, k kernels.Kernel) (stabilityRule, bool) {
-	switch name {
-	case "lmc", "sgld", "svrg", "sgld-cv":
+	e, ok := lookupKernel(name)
+	if !ok {
+		return stabilityRule{}, false
+	}
+	switch e.tuning {
+	case ruleOverdamped:
 		return stabilityRule{n: 1, source: "the recursion multiplies by 1 − hM, stable only for hM < 2",
 			matrix: func(h, l, _ float64, a []float64) { a[0] = 1 - h*l }}, true
-	case "midpoint-overdamped":
+	case ruleOverdampedMidpoint:
 		return stabilityRule{n: 1, random: true, source: "the randomised midpoint recursion's mean-square growth",
 			matrix: func(h, l, al float64, a []float64) { t := h * l; a[0] = 1 - t + al*t*t }}, true
-	case "kinetic":
+	case ruleKinetic:
 		gamma, u := 2.0, 1.0
-		if kk, ok := k.(*kernels.Kinetic); ok {
+		if kk, ok := k.(kernels.Damped); ok {
 			gamma, u = kk.Friction(), kk.InverseMass()
 		}
 		return stabilityRule{n: 2, source: fmt.Sprintf("the kinetic step's growth with friction %.3g and inverse mass %.3g", gamma, u),
@@ -58,9 +62,9 @@ func stabilityRuleOf(name string, k kernels.Kernel) (stabilityRule, bool) {
 				a[0], a[1] = 1-(lu/gamma)*(h-c), c
 				a[2], a[3] = -lu*c, e
 			}}, true
-	case "midpoint":
+	case ruleMidpoint:
 		u := 1.0
-		if kk, ok := k.(*kernels.Midpoint); ok {
+		if kk, ok := k.(kernels.Massive); ok {
 			u = kk.InverseMass()
 		}
 		return stabilityRule{n: 2, random: true, source: fmt.Sprintf("the randomised midpoint step's mean-square growth with inverse mass %.3g", u),

@@ -563,17 +563,24 @@ func StepStability(kernel string, h, friction, u, bigM float64) Verdict {
 	}
 	var sc scheme
 	var rule string
-	switch kernel {
-	case "", "lmc", "sgld", "sgld-cv", "svrg":
+	e, ok := lookupKernel(kernel)
+	if kernel == "" {
+		e, ok = lookupKernel(KernelNames()[0]) // the default kernel
+	}
+	if !ok {
+		return Verdict{}
+	}
+	switch e.tuning {
+	case ruleOverdamped:
 		if h*bigM >= 2 {
 			return Verdict{true, fmt.Sprintf("h·M = %.4g ≥ 2: x' = (1 − hM)x + noise grows along the stiffest direction (derived here)", h*bigM)}
 		}
 		return Verdict{false, fmt.Sprintf("h·M = %.4g < 2", h*bigM)}
-	case "kinetic":
+	case ruleKinetic:
 		sc, rule = kineticScheme(h, friction, u), "the frozen-gradient kinetic step"
-	case "midpoint":
+	case ruleMidpoint:
 		sc, rule = midpointScheme(h, u), "the randomised midpoint step in mean square"
-	case "midpoint-overdamped":
+	case ruleOverdampedMidpoint:
 		sc, rule = overdampedMidpointScheme(h), "the overdamped randomised midpoint step in mean square"
 	default:
 		return Verdict{}
