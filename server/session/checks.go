@@ -436,7 +436,11 @@ func (s *Session) guaranteeChecks() []Check {
 		}
 		if spread := math.Sqrt(v); spread > 0 && b.Total > spread {
 			c.Status = CheckWarn
-			c.Message = fmt.Sprintf("the guaranteed W2 ≤ %.4g is %.3g× the posterior's spread (%.3g): it says little; %s", b.Total, b.Total/spread, spread, c.Message)
+			word := "guaranteed"
+			if s.tune != nil && s.tune.updates > 0 {
+				word = "estimated (the metric was adapted)"
+			}
+			c.Message = fmt.Sprintf("the %s W2 ≤ %.4g is %.3g× the posterior's spread (%.3g): it says little; %s", word, b.Total, b.Total/spread, spread, c.Message)
 		}
 	}
 	return []Check{c}
