@@ -93,7 +93,15 @@ func historyRecord(kind string, p *client.Progress, reason client.Reason, messag
 			BulkESS: history.Num(d.BulkESS), TailESS: history.Num(d.TailESS)})
 	}
 	r.Summarise()
-	if p.KSD >= 0 {
+	if st := p.Stein; st != nil && st.KSD >= 0 {
+		// The KSD's standard error on the scale of KSD (delta method on
+		// √U: SE(U)/(2√U)), and its upper 95 % bound.
+		se := math.NaN()
+		if st.KSD > 0 {
+			se = st.SE / (2 * st.KSD)
+		}
+		r.Stein = &history.Stein{Value: history.Num(st.KSD), SE: history.Num(se), Upper: history.Num(st.Upper95)}
+	} else if p.KSD >= 0 {
 		nan := history.Num(math.NaN())
 		r.Stein = &history.Stein{Value: history.Num(p.KSD), SE: nan, Upper: nan}
 	}
