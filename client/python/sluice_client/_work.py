@@ -41,12 +41,18 @@ class _Worker:
 
     _answer = Session._answer
     _simple = Session._simple
+    _split_batch = Session._split_batch
+    _hold = Session._hold
+    _part = Session._part
 
     def __init__(self, grad: Optional[GradFn], log_density: Optional[LogDensityFn], batch: Optional[BatchFn]) -> None:
         self._grad = grad
         self._log_density = log_density
         self._batch = batch
         self._spec = _Spec()
+        self._held = None  # the points of the current request (_hold)
+        self._executor = None  # a worker evaluates its rows itself
+        self._split = 1
         self.outbox: "queue.SimpleQueue[Optional[pb.AttachRequest]]" = queue.SimpleQueue()
 
     def _send(self, frame: pb.SessionRequest) -> None:
@@ -102,6 +108,7 @@ def work(
         for frame in call:
             if frame.WhichOneof("frame") != "points":
                 continue
+            w._hold(frame.points)
             err = w._answer(frame.points)
             if err is not None:
                 call.cancel()
