@@ -345,12 +345,16 @@ func namesOf(summary map[string]any, dim int) []string {
 	return names
 }
 
-// verdictOf finds the checks of a summary's "verdict": a list of checks,
-// or an object holding them under "checks".
+// verdictOf finds the checks of a summary: its "checks" list (what sluice
+// demo writes), or a "verdict" that is a list of checks or an object
+// holding them under "checks". A check's sentence is its "sentence" or,
+// as the demo writes it, its "message".
 func verdictOf(summary map[string]any) []Check {
-	v, ok := summary["verdict"]
+	v, ok := summary["checks"]
 	if !ok {
-		return nil
+		if v, ok = summary["verdict"]; !ok {
+			return nil
+		}
 	}
 	if m, ok := v.(map[string]any); ok {
 		v = m["checks"]
@@ -359,9 +363,19 @@ func verdictOf(summary map[string]any) []Check {
 	if err != nil {
 		return nil
 	}
-	var checks []Check
-	if json.Unmarshal(b, &checks) != nil {
+	var raw []struct {
+		Check
+		Message string `json:"message"`
+	}
+	if json.Unmarshal(b, &raw) != nil {
 		return nil
+	}
+	checks := make([]Check, len(raw))
+	for i, c := range raw {
+		checks[i] = c.Check
+		if checks[i].Sentence == "" {
+			checks[i].Sentence = c.Message
+		}
 	}
 	return checks
 }

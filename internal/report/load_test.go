@@ -163,3 +163,22 @@ func must(t *testing.T, err error) {
 		t.Fatal(err)
 	}
 }
+
+// The verdict is read from the summary sluice demo writes: a "checks"
+// list whose entries carry "message" (and from an older "verdict" with
+// "sentence").
+func TestVerdictFromDemoSummary(t *testing.T) {
+	demo := map[string]any{"checks": []any{
+		map[string]any{"name": "mixing", "status": "warn", "figure": 1.02, "message": "R-hat 1.02 is above 1.01"},
+	}}
+	got := verdictOf(demo)
+	if len(got) != 1 || got[0].Name != "mixing" || got[0].Status != "warn" || got[0].Sentence != "R-hat 1.02 is above 1.01" {
+		t.Fatalf("checks: %+v", got)
+	}
+	older := map[string]any{"verdict": map[string]any{"checks": []any{
+		map[string]any{"name": "bias", "status": "pass", "figure": nil, "sentence": "fine"},
+	}}}
+	if got := verdictOf(older); len(got) != 1 || got[0].Sentence != "fine" {
+		t.Fatalf("verdict: %+v", got)
+	}
+}
