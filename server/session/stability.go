@@ -42,7 +42,21 @@ func stabilityRuleOf(name string, k kernels.Kernel) (stabilityRule, bool) {
 	if !ok {
 		return stabilityRule{}, false
 	}
-	switch e.tuning {
+	gamma, u := 2.0, 1.0
+	if kk, ok := k.(kernels.Massive); ok {
+		u = kk.InverseMass()
+	}
+	if kk, ok := k.(kernels.Damped); ok {
+		gamma = kk.Friction()
+	}
+	return stabilityRuleFor(e.tuning, gamma, u)
+}
+
+// stabilityRuleFor returns the rule of a kernel with tuning rule r,
+// friction gamma and inverse mass u (the kinetic kernels'; the midpoint
+// kernel's friction is 2); false when it is exempt.
+func stabilityRuleFor(r tuneRule, gamma, u float64) (stabilityRule, bool) {
+	switch r {
 	case ruleOverdamped:
 		return stabilityRule{n: 1, source: "the recursion multiplies by 1 − hM, stable only for hM < 2",
 			matrix: func(h, l, _ float64, a []float64) { a[0] = 1 - h*l }}, true
@@ -50,10 +64,6 @@ func stabilityRuleOf(name string, k kernels.Kernel) (stabilityRule, bool) {
 		return stabilityRule{n: 1, random: true, source: "the randomised midpoint recursion's mean-square growth",
 			matrix: func(h, l, al float64, a []float64) { t := h * l; a[0] = 1 - t + al*t*t }}, true
 	case ruleKinetic:
-		gamma, u := 2.0, 1.0
-		if kk, ok := k.(kernels.Damped); ok {
-			gamma, u = kk.Friction(), kk.InverseMass()
-		}
 		return stabilityRule{n: 2, source: fmt.Sprintf("the kinetic step's growth with friction %.3g and inverse mass %.3g", gamma, u),
 			matrix: func(h, l, _ float64, a []float64) {
 				e := math.Exp(-gamma * h)
@@ -63,10 +73,6 @@ func stabilityRuleOf(name string, k kernels.Kernel) (stabilityRule, bool) {
 				a[2], a[3] = -lu*c, e
 			}}, true
 	case ruleMidpoint:
-		u := 1.0
-		if kk, ok := k.(kernels.Massive); ok {
-			u = kk.InverseMass()
-		}
 		return stabilityRule{n: 2, random: true, source: fmt.Sprintf("the randomised midpoint step's mean-square growth with inverse mass %.3g", u),
 			matrix: func(h, l, al float64, a []float64) {
 				lu := l * u

@@ -547,10 +547,10 @@ type Verdict struct {
 // StepStability says whether kernel's step h (with friction and inverse
 // mass u for the kinetic kernels; 0 for their defaults, γ = 2 and u = 1)
 // is unstable on a target whose largest curvature in the metric's units
-// is bigM, by the exact recursion on a Gaussian direction of curvature
-// bigM (derived here; for LMC the recursion multiplies by 1 − hM, stable
-// only below hM = 2). Kernels without a step, and MALA (its
-// accept/reject step keeps it exact at any step), are never unstable.
+// is bigM. It uses the verdict's rule (stability.go): the mean-square
+// growth of the step's recursion on a Gaussian direction of curvature
+// bigM (for LMC 1 − hM, stable only below hM = 2; derived here). Kernels
+// without a step, and MALA and the Ozaki kernels, are never unstable.
 func StepStability(kernel string, h, friction, u, bigM float64) Verdict {
 	if !(bigM > 0) || !(h > 0) {
 		return Verdict{}
@@ -561,8 +561,6 @@ func StepStability(kernel string, h, friction, u, bigM float64) Verdict {
 	if u == 0 {
 		u = 1
 	}
-	var sc scheme
-	var rule string
 	e, ok := lookupKernel(kernel)
 	if kernel == "" {
 		e, ok = lookupKernel(KernelNames()[0]) // the default kernel
@@ -570,25 +568,15 @@ func StepStability(kernel string, h, friction, u, bigM float64) Verdict {
 	if !ok {
 		return Verdict{}
 	}
-	switch e.tuning {
-	case ruleOverdamped:
-		if h*bigM >= 2 {
-			return Verdict{true, fmt.Sprintf("h·M = %.4g ≥ 2: x' = (1 − hM)x + noise grows along the stiffest direction (derived here)", h*bigM)}
-		}
-		return Verdict{false, fmt.Sprintf("h·M = %.4g < 2", h*bigM)}
-	case ruleKinetic:
-		sc, rule = kineticScheme(h, friction, u), "the frozen-gradient kinetic step"
-	case ruleMidpoint:
-		sc, rule = midpointScheme(h, u), "the randomised midpoint step in mean square"
-	case ruleOverdampedMidpoint:
-		sc, rule = overdampedMidpointScheme(h), "the overdamped randomised midpoint step in mean square"
-	default:
+	// The verdict's own rule (stability.go): one account of stability.
+	r, ok := stabilityRuleFor(e.tuning, friction, u)
+	if !ok {
 		return Verdict{}
 	}
-	if _, ok := stationary(sc, bigM); !ok {
-		return Verdict{true, fmt.Sprintf("%s on a Gaussian direction of curvature M = %.4g has spectral radius ≥ 1 (derived here)", rule, bigM)}
+	if rho := r.growth(h, bigM); rho >= 1 {
+		return Verdict{true, fmt.Sprintf("at h·M = %.4g the step's mean-square growth is %.3g ≥ 1 (%s)", h*bigM, rho, r.source)}
 	}
-	return Verdict{false, fmt.Sprintf("%s is stable at curvature M = %.4g", rule, bigM)}
+	return Verdict{false, fmt.Sprintf("stable at h·M = %.4g (%s)", h*bigM, r.source)}
 }
 
 // lanczosProbe is the curvature probe the automatic settings use: k
