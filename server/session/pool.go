@@ -36,8 +36,11 @@ import (
 //     each of its unanswered parts of the current request that no other
 //     live, punctual evaluator holds is issued again, whole, to the live
 //     punctual evaluator that would finish it first (backlog plus part,
-//     over speed). A part nobody can take waits for the next evaluator
-//     to attach. An overdue evaluator's speed is lowered to what it has
+//     over speed); when the holder is gone and every other evaluator is
+//     overdue, the quickest overdue one takes it. A part nobody can take
+//     waits for the next evaluator to attach or to answer again. Parts
+//     meant for an evaluator lost while a request was being dealt go the
+//     same way. An overdue evaluator's speed is lowered to what it has
 //     shown at most (outstanding rows over time waited), so it gets
 //     fewer rows next time.
 //   - First answer wins. A part's first valid answer is kept; a later one
@@ -493,7 +496,15 @@ func (s *Session) assign(req *kernels.Request, send func(Frame) error) error {
 	p.owners = owners
 	p.unanswered = len(p.parts)
 	for k, e := range owners {
-		if err := s.issue(req, k, e, now); err != nil {
+		var err error
+		if slices.Contains(p.evals, e) {
+			err = s.issue(req, k, e, now)
+		} else {
+			// e was lost while its earlier parts were being sent: this
+			// part goes to whoever would finish it first.
+			_, err = s.place(req, k, true, now)
+		}
+		if err != nil {
 			return err
 		}
 	}
@@ -535,9 +546,10 @@ func (s *Session) lose(req *kernels.Request, e *evaluator, err error, now time.T
 
 // reissue gives the unanswered parts of the current request that e holds
 // and no other live punctual evaluator holds to the evaluator that would
-// finish each first; parts nobody can take wait.
+// finish each first (place); parts nobody can take wait.
 func (s *Session) reissue(req *kernels.Request, e *evaluator, now time.Time) error {
 	p := s.pool
+	gone := !slices.Contains(p.evals, e)
 	for _, o := range e.out {
 		if o.req != s.requestID {
 			continue
@@ -546,26 +558,72 @@ func (s *Session) reissue(req *kernels.Request, e *evaluator, now time.Time) err
 		if k < 0 || p.parts[k].answered || p.covered(k) {
 			continue
 		}
-		var best *evaluator
-		var bestT float64
-		for _, c := range p.evals {
-			if c.overdue || slices.Contains(p.parts[k].holders, c) {
-				continue
-			}
-			t := float64(c.backlog+o.rows) / p.speedOf(c)
-			if best == nil || t < bestT {
-				best, bestT = c, t
-			}
-		}
 		e.st.Reissued += int64(o.rows)
-		if best == nil {
-			if !slices.Contains(p.waiting, k) {
-				p.waiting = append(p.waiting, k)
-			}
+		issued, err := s.place(req, k, gone, now)
+		if err != nil {
+			return err
+		}
+		if issued {
+			p.reissued += int64(o.rows)
+		}
+	}
+	p.arm(now)
+	return nil
+}
+
+// place issues part k to the live punctual evaluator not holding it that
+// would finish it first (backlog plus part, over speed). When none is
+// punctual and anyOverdue is set (the part's holder is gone, so waiting
+// for it is hopeless), an overdue but live evaluator takes it instead;
+// with no taker the part waits for the next evaluator to attach or to
+// become punctual again. It reports whether the part was issued.
+func (s *Session) place(req *kernels.Request, k int, anyOverdue bool, now time.Time) (bool, error) {
+	p := s.pool
+	best := p.fastest(k, false)
+	if best == nil && anyOverdue {
+		best = p.fastest(k, true)
+	}
+	if best == nil {
+		if !slices.Contains(p.waiting, k) {
+			p.waiting = append(p.waiting, k)
+		}
+		return false, nil
+	}
+	return true, s.issue(req, k, best, now)
+}
+
+// fastest is the live evaluator not holding part k that would finish it
+// first; overdue ones count only when overdue is set. nil when none.
+func (p *pool) fastest(k int, overdue bool) *evaluator {
+	rows := p.parts[k].hi - p.parts[k].lo
+	var best *evaluator
+	var bestT float64
+	for _, c := range p.evals {
+		if (c.overdue && !overdue) || slices.Contains(p.parts[k].holders, c) {
 			continue
 		}
-		p.reissued += int64(o.rows)
-		if err := s.issue(req, k, best, now); err != nil {
+		t := float64(c.backlog+rows) / p.speedOf(c)
+		if best == nil || t < bestT {
+			best, bestT = c, t
+		}
+	}
+	return best
+}
+
+// placeWaiting places the parts waiting for an evaluator; the ones still
+// without a taker keep waiting.
+func (s *Session) placeWaiting(req *kernels.Request, now time.Time) error {
+	p := s.pool
+	if req == nil || len(p.waiting) == 0 {
+		return nil
+	}
+	waiting := slices.Clone(p.waiting)
+	p.waiting = p.waiting[:0]
+	for _, k := range waiting {
+		if p.parts[k].answered || p.covered(k) {
+			continue
+		}
+		if _, err := s.place(req, k, true, now); err != nil {
 			return err
 		}
 	}
@@ -583,18 +641,7 @@ func (s *Session) join(req *kernels.Request, w *Worker, now time.Time) error {
 	if req == nil {
 		return nil
 	}
-	waiting := p.waiting
-	p.waiting = nil
-	for _, k := range waiting {
-		if p.parts[k].answered {
-			continue
-		}
-		if err := s.issue(req, k, e, now); err != nil {
-			return err
-		}
-	}
-	p.arm(now)
-	return nil
+	return s.placeWaiting(req, now)
 }
 
 // partAt is the index of the part of the current request starting at
@@ -634,9 +681,16 @@ func (s *Session) takeAnswer(req *kernels.Request, e *evaluator, ev *Evaluations
 			e.speed = a*v + (1-a)*e.speed
 		}
 	}
+	wasOverdue := e.overdue
 	e.overdue = false
 	p.setDeadline(e, now)
 	p.arm(now)
+	if wasOverdue {
+		// Punctual again: it may take the parts waiting for a taker.
+		if err := s.placeWaiting(req, now); err != nil {
+			return err
+		}
+	}
 	k := -1
 	if o.req == s.requestID {
 		k = p.partAt(o.first)

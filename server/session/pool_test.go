@@ -3,6 +3,7 @@ package session
 import (
 	"context"
 	"errors"
+	"fmt"
 	"io"
 	"math"
 	"slices"
@@ -311,4 +312,53 @@ func TestSplitProportional(t *testing.T) {
 			t.Errorf("split(%d, %v) = %v, want %v", c.rows, c.speeds, got, c.want)
 		}
 	}
+}
+
+// A worker whose stream closes while the engine is handing it a
+// request's parts (its send fails on the second part of a request): the
+// parts already sent and the ones not yet sent all go to the others, so
+// the session neither loses rows nor waits for its answer timeout. The
+// worker's parts of each later request it would have got are dealt the
+// same way; the draws are those of one client.
+func TestPoolSendFailsInTheMiddleOfAssign(t *testing.T) {
+	spec := poolSpec()
+	spec.DrawsPerChain = 5
+	want := spec.Chains * int(spec.DrawsPerChain)
+	one, _, err := drive(t, mustNew(t, spec, Limits{}), gaussian(1))
+	if err != nil {
+		t.Fatal(err)
+	}
+	spec.WorkersOnly = true
+	// An answer timeout a healthy pool never needs: if a part were
+	// orphaned, the run would end FAILED naming it instead of hanging.
+	s := mustNew(t, spec, Limits{AnswerTimeout: time.Minute})
+	var wg sync.WaitGroup
+	runWorker(t, s, simWorker{name: "steady", perRow: 50 * time.Microsecond}, 0, &wg)
+	for i := range 3 {
+		var mu sync.Mutex
+		sends := 0
+		// This worker takes one frame of its first request and then its
+		// stream is gone: every later send fails.
+		_, err := s.Attach(fmt.Sprintf("flaky-%d", i), func(*Points) error {
+			mu.Lock()
+			defer mu.Unlock()
+			sends++
+			if sends > 1 {
+				return errors.New("stream closed")
+			}
+			return nil
+		})
+		if err != nil {
+			t.Fatal(err)
+		}
+	}
+	tr, res, err := drive(t, s, gaussian(1))
+	wg.Wait()
+	if err != nil {
+		t.Fatalf("Run: %v", err)
+	}
+	if res.Finished.Reason != DrawsCollected {
+		t.Fatalf("reason %v (%s)", res.Finished.Reason, res.Finished.Message)
+	}
+	mustSameBits(t, "send failing mid-assign", drawValues(t, one, want), drawValues(t, tr, want))
 }
