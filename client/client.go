@@ -9,6 +9,7 @@ import (
 
 	"google.golang.org/grpc"
 
+	"sluice/client/history"
 	"sluice/internal/wire"
 	sluicev1 "sluice/proto/sluice/v1"
 )
@@ -490,6 +491,8 @@ type config struct {
 	keepDraws    bool
 	resume       ResumePolicy
 	fullDraws    bool
+	history      *history.Writer
+	drawsOut     *history.DrawsWriter
 }
 
 // OnRegistered calls f once the server accepted the session.
@@ -745,10 +748,7 @@ func (r *runner) loop(ctx context.Context) (*Summary, error) {
 			}
 		case *sluicev1.SessionResponse_Progress:
 			r.sum.Progress = progressFromWire(f.Progress)
-			if r.cfg.onProgress != nil {
-				p := r.sum.Progress
-				r.cfg.onProgress(&p)
-			}
+			r.progress()
 		case *sluicev1.SessionResponse_Finished:
 			r.finish(f.Finished)
 		}
@@ -882,7 +882,7 @@ func (r *runner) deliver(w *sluicev1.Draws) error {
 	r.nextSeq += uint64(d.Rows)
 	r.sum.NextSeq = r.nextSeq
 	r.sum.DrawsReceived += int64(d.Rows)
-	if r.cfg.onDraws == nil && r.sum.Draws == nil {
+	if r.cfg.onDraws == nil && r.sum.Draws == nil && r.cfg.drawsOut == nil {
 		return nil
 	}
 	if pr := w.GetPointRows(); len(pr) > 0 {
@@ -896,6 +896,11 @@ func (r *runner) deliver(w *sluicev1.Draws) error {
 	}
 	d.Iterations = append(d.Iterations[:0], w.GetIterations()...)
 	r.sum.Draws.add(d)
+	if w := r.cfg.drawsOut; w != nil {
+		for row := range d.Rows {
+			w.Row(d.Chains[row], d.Iterations[row], d.Values[row*d.Dim:(row+1)*d.Dim])
+		}
+	}
 	if r.cfg.onDraws != nil {
 		r.cfg.onDraws(d)
 	}
@@ -955,6 +960,9 @@ func (r *runner) finish(f *sluicev1.Finished) {
 	r.sum.Parameters = make([]Parameter, len(f.GetParameters()))
 	for i, p := range f.GetParameters() {
 		r.sum.Parameters[i] = Parameter{Name: p.GetName(), Mean: p.GetMean(), SD: p.GetSd(), Count: p.GetCount()}
+	}
+	if r.cfg.history != nil {
+		_ = r.cfg.history.Write(FinishRecord(r.sum))
 	}
 }
 

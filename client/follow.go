@@ -97,10 +97,7 @@ func (r *runner) follow(ctx context.Context, cc grpc.ClientConnInterface, sessio
 			}
 		case *sluicev1.FollowResponse_Progress:
 			r.sum.Progress = progressFromWire(f.Progress)
-			if r.cfg.onProgress != nil {
-				p := r.sum.Progress
-				r.cfg.onProgress(&p)
-			}
+			r.progress()
 		case *sluicev1.FollowResponse_Header:
 			h := headerFromWire(f.Header)
 			r.sum.Header = &h

@@ -3,6 +3,7 @@ package python_test
 import (
 	"math"
 	"path/filepath"
+	"strings"
 	"testing"
 	"time"
 
@@ -25,14 +26,16 @@ with sc.HistoryWriter(out + ".history.jsonl") as h:
     h.finish(summary)
 summary.save(out)
 print("reason:", summary.reason.value)
+print("checks:", ";".join(f"{c.name}={c.status.value}" for c in summary.checks))
 `
 
 // TestPythonWritesFilesTheReportReads checks that the draws and the
 // progress history written by the Python client are read by the Go
 // reader behind `sluice report` (internal/report.Load, which reads the
-// history with internal/history): the names, every draw, and one record
+// history with client/history): the names, every draw, and one record
 // per report (floor(150/30) = 5 reports at steps 30, 60, …, 150, the
-// session's own cadence) plus the finish record with its reason.
+// session's own cadence) plus the finish record with its reason and the
+// session's verdict, which the report shows.
 func TestPythonWritesFilesTheReportReads(t *testing.T) {
 	checkPython(t)
 	root := moduleRoot(t)
@@ -66,6 +69,13 @@ func TestPythonWritesFilesTheReportReads(t *testing.T) {
 	}
 	// worst_rhat and least_ess are the extremes of the per-parameter
 	// figures, as the Go writer computes them (history.Record.Summarise).
+	var checks []string
+	for _, c := range run.Verdict {
+		checks = append(checks, c.Name+"="+c.Status)
+	}
+	if len(checks) == 0 || !strings.Contains(string(out), "checks: "+strings.Join(checks, ";")+"\n") {
+		t.Errorf("verdict read from the history %v; Python printed\n%s", checks, out)
+	}
 	want := last
 	want.Summarise()
 	if math.Abs(float64(want.WorstRhat-last.WorstRhat)) > 0 || math.Abs(float64(want.SmallestESS-last.SmallestESS)) > 0 {

@@ -1,7 +1,6 @@
 package main
 
 import (
-	"bufio"
 	"context"
 	"encoding/json"
 	"flag"
@@ -21,7 +20,7 @@ import (
 	"google.golang.org/grpc/experimental"
 
 	"sluice/client"
-	"sluice/internal/history"
+	"sluice/client/history"
 	sluicev1 "sluice/proto/sluice/v1"
 	"sluice/server"
 )
@@ -372,11 +371,20 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 	for i := range chains {
 		chains[i] = make([][]float64, c.chains)
 	}
-	var csv *csvWriter
+	runOpts := []client.Option{client.OnDraws(func(d *client.Draws) {
+		for row := range d.Rows {
+			ch := d.Chains[row]
+			for i := range 3 {
+				chains[i][ch] = append(chains[i][ch], d.Values[row*3+i])
+			}
+		}
+	})}
+	var csv *history.DrawsWriter
 	if strings.HasSuffix(c.out, ".csv") {
-		if csv, err = newCSVWriter(c.out, kilnNames); err != nil {
+		if csv, err = history.CreateDraws(c.out, kilnNames); err != nil {
 			return nil, err
 		}
+		runOpts = append(runOpts, client.WriteDraws(csv))
 	}
 	// The live view of `sluice watch`, on a terminal only.
 	live := newView(stderr, !c.noProgressBar && !c.json && isTerminal(stderr), time.Now)
@@ -388,44 +396,25 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 		if hist, err = history.Create(c.history); err != nil {
 			return nil, err
 		}
+		runOpts = append(runOpts, client.WriteHistory(hist))
 	}
-	onProgress := func(p *client.Progress) {
-		if live.tty {
-			live.progress(p)
-		}
-		if hist != nil {
-			_ = hist.Write(historyRecord(history.KindProgress, p, "", ""))
-		}
+	if live.tty {
+		runOpts = append(runOpts, client.OnProgress(live.progress))
 	}
 	eval := kilnExact(target)
 	if c.minibatch > 0 {
 		spec.Noise = &client.Noise{Replicates: 2, DataSize: kilnFirings, MinibatchSize: int64(c.minibatch)}
 		eval = kilnMinibatch(kilnData(), c.minibatch, c.seed)
 	}
-	sum, err := client.Run(ctx, conn, spec, eval,
-		client.OnDraws(func(d *client.Draws) {
-			for row := range d.Rows {
-				ch := d.Chains[row]
-				for i := range 3 {
-					chains[i][ch] = append(chains[i][ch], d.Values[row*3+i])
-				}
-				if csv != nil {
-					csv.row(d.Chains[row], d.Iterations[row], d.Values[row*3:(row+1)*3])
-				}
-			}
-		}),
-		client.OnProgress(onProgress))
+	sum, err := client.Run(ctx, conn, spec, eval, runOpts...)
 	live.done()
 	if hist != nil {
-		if err == nil {
-			_ = hist.Write(historyRecord(history.KindFinish, &sum.Progress, sum.Reason, sum.Message))
-		}
 		if herr := hist.Close(); err == nil && herr != nil {
 			err = herr
 		}
 	}
 	if csv != nil {
-		if cerr := csv.close(); err == nil && cerr != nil {
+		if cerr := csv.Close(); err == nil && cerr != nil {
 			err = cerr
 		}
 	}
@@ -629,51 +618,6 @@ func printDemo(w io.Writer, r *demoResult) {
 		fmt.Fprintf(w, "draws written to %s (%s), summary to %s\n", f.Path, f.Format, f.Summary)
 	}
 	fmt.Fprintln(w, "These draws are approximate and the diagnostics cannot prove convergence; validate before relying on them.")
-}
-
-// csvWriter writes draws as CSV: a header "chain,iteration,<names>",
-// then one row per draw.
-type csvWriter struct {
-	f   *os.File
-	w   *bufio.Writer
-	buf []byte
-	err error
-}
-
-func newCSVWriter(path string, names []string) (*csvWriter, error) {
-	f, err := os.Create(path)
-	if err != nil {
-		return nil, err
-	}
-	c := &csvWriter{f: f, w: bufio.NewWriter(f)}
-	_, c.err = c.w.WriteString("chain,iteration," + strings.Join(names, ",") + "\n")
-	return c, nil
-}
-
-func (c *csvWriter) row(chain int, iter int64, v []float64) {
-	if c.err != nil {
-		return
-	}
-	b := strconv.AppendInt(c.buf[:0], int64(chain), 10)
-	b = append(b, ',')
-	b = strconv.AppendInt(b, iter, 10)
-	for _, x := range v {
-		b = append(b, ',')
-		b = strconv.AppendFloat(b, x, 'g', -1, 64)
-	}
-	b = append(b, '\n')
-	c.buf = b
-	_, c.err = c.w.Write(b)
-}
-
-func (c *csvWriter) close() error {
-	if err := c.w.Flush(); c.err == nil {
-		c.err = err
-	}
-	if err := c.f.Close(); c.err == nil {
-		c.err = err
-	}
-	return c.err
 }
 
 // summaryPath is where the JSON summary goes beside a draws file: the

@@ -5,12 +5,9 @@ import (
 	"flag"
 	"fmt"
 	"io"
-	"math"
 	"path/filepath"
 	"strings"
 
-	"sluice/client"
-	"sluice/internal/history"
 	"sluice/internal/report"
 )
 
@@ -76,41 +73,3 @@ progress history beside it are read when present.
 // sidecar names a companion file beside a draws file: draws.csv →
 // draws.csv.<suffix>.
 func sidecar(out, suffix string) string { return out + "." + suffix }
-
-// historyRecord turns a progress report into a line of the progress
-// history; kind is history.KindProgress, or history.KindFinish for the
-// last one (with the reason and message).
-func historyRecord(kind string, p *client.Progress, reason client.Reason, message string) *history.Record {
-	r := &history.Record{Kind: kind, State: string(p.State), Steps: p.Steps,
-		EvaluationsUsed: p.EvaluationsUsed, EvaluationsLeft: p.EvaluationsLeft,
-		ElapsedSeconds: p.Elapsed.Seconds(), SecondsLeft: -1, DrawsSent: p.DrawsSent,
-		Reason: string(reason), Message: message}
-	if p.TimeLeft >= 0 {
-		r.SecondsLeft = p.TimeLeft.Seconds()
-	}
-	for _, d := range p.Parameters {
-		r.Params = append(r.Params, history.Param{Name: d.Name, Rhat: history.Num(d.Rhat),
-			BulkESS: history.Num(d.BulkESS), TailESS: history.Num(d.TailESS)})
-	}
-	r.Summarise()
-	if st := p.Stein; st != nil && st.KSD >= 0 {
-		// The KSD's standard error on the scale of KSD (delta method on
-		// √U: SE(U)/(2√U)), and its upper 95 % bound.
-		se := math.NaN()
-		if st.KSD > 0 {
-			se = st.SE / (2 * st.KSD)
-		}
-		r.Stein = &history.Stein{Value: history.Num(st.KSD), SE: history.Num(se), Upper: history.Num(st.Upper95)}
-	} else if p.KSD >= 0 {
-		nan := history.Num(math.NaN())
-		r.Stein = &history.Stein{Value: history.Num(p.KSD), SE: nan, Upper: nan}
-	}
-	if b := p.Bound; b != nil {
-		r.Bound = &history.Bound{Metric: string(b.Metric), Value: history.Num(b.Value), Guaranteed: b.Guaranteed, Label: b.Label}
-	}
-	for _, t := range p.Targets {
-		r.Targets = append(r.Targets, history.Target{Name: t.Name, Want: history.Num(t.Want), Current: history.Num(t.Current),
-			Met: t.Met, ProjectedEvaluations: t.ProjectedEvaluations})
-	}
-	return r
-}

@@ -4,15 +4,21 @@ import (
 	"context"
 	"encoding/json"
 	"math"
+	"net"
 	"os"
 	"path/filepath"
 	"strings"
 	"testing"
 	"time"
 
+	"google.golang.org/grpc"
+	"google.golang.org/grpc/credentials/insecure"
+
 	"sluice/client"
-	"sluice/internal/history"
+	"sluice/client/history"
 	"sluice/internal/report"
+	"sluice/server"
+	"sluice/server/session"
 )
 
 // The demo writes its progress history beside --out, and sluice report
@@ -104,23 +110,115 @@ func TestReportUsage(t *testing.T) {
 	}
 }
 
-func TestHistoryRecord(t *testing.T) {
-	p := &client.Progress{State: client.Sampling, Steps: 40, EvaluationsUsed: 320, EvaluationsLeft: -1,
-		Elapsed: 1500 * time.Millisecond, TimeLeft: -1, DrawsSent: 64, KSD: -1,
-		Parameters: []client.Diagnostics{{Name: "a", Rhat: 1.3, BulkESS: 12, TailESS: 9}, {Name: "b", Rhat: 1.1, BulkESS: math.NaN(), TailESS: 30}},
-		Targets:    []client.TargetStatus{{Name: "max_rhat", Want: 1.01, Current: 1.3, ProjectedEvaluations: -1}}}
-	r := historyRecord(history.KindProgress, p, "", "")
-	if r.Stein != nil {
-		t.Errorf("Stein discrepancy %+v recorded where the server had none (−1)", r.Stein)
+
+// TestGoClientWritesWhatReportReads runs a session with the Go client's
+// WriteHistory and WriteDraws on a server on 127.0.0.1, then reads the
+// files back as `sluice report` does (report.Load) and runs the command:
+// the names and every draw bit for bit (the client's own KeepDraws copy is
+// the reference), one record per progress report the client saw plus the
+// finish record with the summary's reason, and the summary's verdict on
+// the page, taken from the history (no summary file is written).
+func TestGoClientWritesWhatReportReads(t *testing.T) {
+	ctx, cancel := context.WithTimeout(context.Background(), 5*time.Minute)
+	defer cancel()
+	lis, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
 	}
-	if r.WorstRhat != 1.3 || r.SmallestESS != 9 || r.ElapsedSeconds != 1.5 || r.SecondsLeft != -1 {
-		t.Errorf("worst R-hat %v, least ESS %v, elapsed %v, left %v; want 1.3, 9, 1.5, −1", r.WorstRhat, r.SmallestESS, r.ElapsedSeconds, r.SecondsLeft)
+	// Every report measured (DiagnosticsShare −1), so the reports fall at
+	// the steps asked for whatever the machine's load.
+	srv := server.New(server.Options{Limits: session.Limits{DiagnosticsShare: -1}})
+	go func() { _ = srv.Serve(lis) }()
+	defer srv.Stop()
+	cc, err := grpc.NewClient(lis.Addr().String(), grpc.WithTransportCredentials(insecure.NewCredentials()))
+	if err != nil {
+		t.Fatal(err)
 	}
-	if len(r.Targets) != 1 || r.Targets[0].Want != 1.01 {
-		t.Errorf("targets %+v", r.Targets)
+	defer cc.Close()
+
+	dir := t.TempDir()
+	drawsPath := filepath.Join(dir, "run.csv")
+	names := []string{"left", "right"}
+	h, err := history.Create(drawsPath + ".history.jsonl")
+	if err != nil {
+		t.Fatal(err)
 	}
-	p.KSD = 0.25
-	if r := historyRecord(history.KindFinish, p, client.TargetMet, ""); r.Stein == nil || r.Stein.Value != 0.25 || r.Reason != "target met" {
-		t.Errorf("finish record %+v", r)
+	d, err := history.CreateDraws(drawsPath, names)
+	if err != nil {
+		t.Fatal(err)
+	}
+	// A standard Gaussian (∇log π = −x); 50 burn-in steps and 100 kept,
+	// a report every 30 steps.
+	spec := client.Spec{Dim: 2, Chains: 4, Start: []float64{1, -1}, Step: 0.2, BurnIn: 50, DrawsPerChain: 100, Seed: 11,
+		ProgressEverySteps: 30, Names: names, MaxEvaluations: 100000}
+	reports := 0
+	sum, err := client.Run(ctx, cc, spec, func(ctx context.Context, b *client.Batch) error {
+		for i, x := range b.Points {
+			b.Grad[i] = -x
+		}
+		return nil
+	}, client.WriteHistory(h), client.WriteDraws(d), client.KeepDraws(), client.OnProgress(func(*client.Progress) { reports++ }))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := h.Close(); err != nil {
+		t.Fatal(err)
+	}
+	if err := d.Close(); err != nil {
+		t.Fatal(err)
+	}
+	if len(sum.Checks) == 0 {
+		t.Fatal("the session's summary has no verdict to compare")
+	}
+
+	run, err := report.Load(drawsPath, "")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if strings.Join(run.Names, ",") != "left,right" || run.Chains() != 4 || run.Len() != 100 || run.Dropped != 0 {
+		t.Fatalf("draws: names %v, %d chains of %d (%d dropped); want [left right], 4 of 100", run.Names, run.Chains(), run.Len(), run.Dropped)
+	}
+	seen := make([]int, 4)
+	for i := range sum.Draws.Rows() {
+		ch := sum.Draws.Chains[i]
+		for p, want := range sum.Draws.Row(i) {
+			if got := run.Draws[p][ch][seen[ch]]; math.Float64bits(got) != math.Float64bits(want) {
+				t.Fatalf("draw %d of chain %d, %s: %v in the file, %v received", seen[ch], ch, names[p], got, want)
+			}
+		}
+		seen[ch]++
+	}
+
+	recs := run.History
+	if reports == 0 || len(recs) != reports+1 {
+		t.Fatalf("history: %d records for %d reports; want one per report and the finish", len(recs), reports)
+	}
+	last := recs[len(recs)-1]
+	if last.Kind != history.KindFinish || last.Reason != string(sum.Reason) || last.EvaluationsUsed != sum.Progress.EvaluationsUsed ||
+		last.DrawsSent != 400 || len(last.Params) != 2 {
+		t.Errorf("finish record %+v; want reason %q, %d evaluations, 400 draws, 2 parameters", last, sum.Reason, sum.Progress.EvaluationsUsed)
+	}
+	if len(run.Verdict) != len(sum.Checks) {
+		t.Fatalf("verdict of %d checks read, the summary has %d", len(run.Verdict), len(sum.Checks))
+	}
+	for i, c := range sum.Checks {
+		v := run.Verdict[i]
+		if v.Name != c.Name || v.Status != string(c.Status) || v.Sentence != c.Message {
+			t.Errorf("check %d read as %+v, want %+v", i, v, c)
+		}
+	}
+
+	pages := filepath.Join(dir, "pages")
+	if code, _, stderr := runCmd(t, ctx, "report", drawsPath, "--out", pages); code != 0 {
+		t.Fatalf("report: exit %d\n%s", code, stderr)
+	}
+	page, err := os.ReadFile(filepath.Join(pages, "index.html"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, s := range append([]string{"Verdict", "progress.png", "left", "right"}, sum.Checks[0].Name) {
+		if !strings.Contains(string(page), s) {
+			t.Errorf("index.html lacks %q", s)
+		}
 	}
 }

@@ -15,7 +15,7 @@ import (
 	"strconv"
 	"strings"
 
-	"sluice/internal/history"
+	"sluice/client/history"
 )
 
 // Run is what a report is made from: the draws, their names, and the
@@ -33,7 +33,8 @@ type Run struct {
 	// shortest.
 	Dropped int
 	// Summary is the summary JSON object, decoded generically; Verdict
-	// the checks found in it (or nil).
+	// the checks found in it, else those of the history's latest record
+	// that has any (or nil).
 	Summary     map[string]any
 	SummaryPath string
 	Verdict     []Check
@@ -137,6 +138,9 @@ func Load(drawsPath, historyPath string) (*Run, error) {
 		}
 		r.History, r.HistoryPath = recs, p
 		break
+	}
+	if r.Verdict == nil {
+		r.Verdict = historyVerdict(r.History)
 	}
 	return r, nil
 }
@@ -343,6 +347,25 @@ func namesOf(summary map[string]any, dim int) []string {
 		}
 	}
 	return names
+}
+
+// historyVerdict returns the verdict of the latest history record that
+// holds one (the finish record's, when the session finished), or nil.
+func historyVerdict(recs []history.Record) []Check {
+	for i := len(recs) - 1; i >= 0; i-- {
+		if len(recs[i].Checks) == 0 {
+			continue
+		}
+		checks := make([]Check, len(recs[i].Checks))
+		for j, c := range recs[i].Checks {
+			checks[j] = Check{Name: c.Name, Status: c.Status, Sentence: c.Sentence}
+			if c.Figure.Valid() {
+				checks[j].Figure = float64(c.Figure)
+			}
+		}
+		return checks
+	}
+	return nil
 }
 
 // verdictOf finds the checks of a summary: its "checks" list (what sluice

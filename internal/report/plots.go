@@ -18,7 +18,7 @@ import (
 	"gonum.org/v1/plot/vg/vgimg"
 	"gonum.org/v1/plot/vg/vgsvg"
 
-	"sluice/internal/history"
+	"sluice/client/history"
 )
 
 // The report's own colours: a warm paper ground, dark ink, and chain

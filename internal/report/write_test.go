@@ -11,7 +11,7 @@ import (
 	"strings"
 	"testing"
 
-	"sluice/internal/history"
+	"sluice/client/history"
 )
 
 // synthetic makes a run of dim parameters, chains AR(1) chains of n

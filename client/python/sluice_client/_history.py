@@ -8,9 +8,9 @@ from __future__ import annotations
 import json
 import math
 import os
-from typing import IO, Any, Dict, List, Optional, Union
+from typing import IO, Any, Dict, List, Optional, Sequence, Union
 
-from ._types import Progress, Summary
+from ._types import Check, Progress, Summary
 
 #: Kinds of record.
 KIND_PROGRESS = "progress"
@@ -22,9 +22,16 @@ def _num(x: float) -> Optional[float]:
     return float(x) if math.isfinite(x) else None
 
 
-def history_record(p: Progress, kind: str = KIND_PROGRESS, reason: str = "", message: str = "") -> Dict[str, Any]:
+def history_record(
+    p: Progress,
+    kind: str = KIND_PROGRESS,
+    reason: str = "",
+    message: str = "",
+    checks: Optional[Sequence[Check]] = None,
+) -> Dict[str, Any]:
     """One line of the history for progress report ``p`` (``kind``
-    "progress", or "finish" with the session's reason and message)."""
+    "progress", or "finish" with the session's reason and message), with
+    the verdict ``checks`` (by default the report's own, ``p.checks``)."""
     rec: Dict[str, Any] = {
         "kind": kind,
         "state": p.state.value if p.state.value != "unspecified" else "",
@@ -67,6 +74,11 @@ def history_record(p: Progress, kind: str = KIND_PROGRESS, reason: str = "", mes
             }
             for t in p.targets
         ]
+    verdict = p.checks if checks is None else checks
+    if verdict:
+        rec["checks"] = [
+            {"name": c.name, "status": c.status.value, "figure": _num(c.figure), "sentence": c.message} for c in verdict
+        ]
     if reason:
         rec["reason"] = reason
     if message:
@@ -102,8 +114,8 @@ class HistoryWriter:
 
     def finish(self, s: Summary) -> None:
         """Appends the session's last record: its final report with the
-        reason and message."""
-        self._line(history_record(s.progress, KIND_FINISH, s.reason.value, s.message))
+        reason, the message and the session's verdict."""
+        self._line(history_record(s.progress, KIND_FINISH, s.reason.value, s.message, s.checks))
 
     def _line(self, rec: Dict[str, Any]) -> None:
         self._f.write(json.dumps(rec, allow_nan=False, separators=(",", ":")) + "\n")

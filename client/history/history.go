@@ -1,8 +1,12 @@
-// Package history owns the progress history of a session on disk: one JSON
-// object per line, one line per progress report, and a last line when the
-// session finishes. The keys are documented in docs/report.md. The package
-// uses the standard library only, so any program can write or read the
-// file.
+// Package history owns the files of a run that `sluice report` reads
+// beside its draws: the progress history (one JSON object per line, one
+// line per progress report with the verdict so far, and a last line when
+// the session finishes, with its reason and verdict) and the draws as CSV
+// (DrawsWriter). The keys and columns are documented in docs/report.md.
+// It is the one definition of both formats: the Go client writes them
+// (client.WriteHistory, client.WriteDraws), the report reads them. The
+// package uses the standard library only, so any program can write or read
+// the files.
 package history
 
 import (
@@ -89,6 +93,16 @@ type Target struct {
 	ProjectedEvaluations int64 `json:"projected_evaluations"`
 }
 
+// Check is one check of the session's verdict: its name, its status
+// ("pass", "warn" or "fail"), the figure it rests on (NaN: none) and one
+// sentence for a person.
+type Check struct {
+	Name     string `json:"name"`
+	Status   string `json:"status"`
+	Figure   Num    `json:"figure"`
+	Sentence string `json:"sentence"`
+}
+
 // Record is one line of the file.
 type Record struct {
 	Kind  string `json:"kind"`
@@ -111,6 +125,9 @@ type Record struct {
 	Stein       *Stein   `json:"stein,omitempty"`
 	Bound       *Bound   `json:"bound,omitempty"`
 	Targets     []Target `json:"targets,omitempty"`
+	// Checks is the verdict: so far (KindProgress), or the session's
+	// final one (KindFinish).
+	Checks []Check `json:"checks,omitempty"`
 	// Reason and Message say why the session ended (KindFinish only).
 	Reason  string `json:"reason,omitempty"`
 	Message string `json:"message,omitempty"`

@@ -2,9 +2,12 @@ package history
 
 import (
 	"bytes"
+	"encoding/csv"
 	"encoding/json"
 	"math"
+	"os"
 	"path/filepath"
+	"strconv"
 	"strings"
 	"testing"
 )
@@ -19,7 +22,9 @@ func sample() []Record {
 		Targets: []Target{{Name: "rhat", Want: 1.01, Current: 1.2, ProjectedEvaluations: -1}}}
 	p.Summarise()
 	f := Record{Kind: KindFinish, State: "finished", Steps: 400, EvaluationsUsed: 3200, EvaluationsLeft: -1,
-		ElapsedSeconds: 0.5, SecondsLeft: -1, Reason: "draws collected"}
+		ElapsedSeconds: 0.5, SecondsLeft: -1, Reason: "draws collected",
+		Checks: []Check{{Name: "mixing", Status: "pass", Figure: 1.004, Sentence: "R-hat is below 1.01."},
+			{Name: "guarantee", Status: "warn", Figure: nan, Sentence: "no curvature declared"}}}
 	f.Summarise()
 	return []Record{p, f}
 }
@@ -58,6 +63,9 @@ func TestRoundTrip(t *testing.T) {
 	}
 	if out[1].Kind != KindFinish || out[1].Reason != "draws collected" || out[1].EvaluationsUsed != 3200 {
 		t.Errorf("finish record = %+v", out[1])
+	}
+	if c := out[1].Checks; len(c) != 2 || c[0] != in[1].Checks[0] || c[1].Name != "guarantee" || c[1].Status != "warn" || c[1].Figure.Valid() {
+		t.Errorf("finish record's checks = %+v, want %+v", c, in[1].Checks)
 	}
 	if !math.IsNaN(float64(out[1].WorstRhat)) {
 		t.Errorf("finish record without params has worst R-hat %v, want NaN", out[1].WorstRhat)
@@ -100,5 +108,61 @@ func TestReadCutShortAndBad(t *testing.T) {
 	}
 	if _, err := Read(strings.NewReader(`{"kind":"other"}` + "\n")); err == nil {
 		t.Error("unknown kind accepted")
+	}
+}
+
+// TestDrawsCSV reads what DrawsWriter wrote with encoding/csv and
+// strconv: the header, and every value bit for bit ('g' with precision −1
+// is the shortest form that parses back to the same float64, as the
+// strconv documentation states).
+func TestDrawsCSV(t *testing.T) {
+	path := filepath.Join(t.TempDir(), "draws.csv")
+	d, err := CreateDraws(path, []string{"a", "b"})
+	if err != nil {
+		t.Fatal(err)
+	}
+	rows := [][]float64{{0.1, -1e-300}, {math.Pi, 1.0 / 3}, {math.Copysign(0, -1), 12345678.9}}
+	for i, r := range rows {
+		d.Row(i%2, int64(10*i), r)
+	}
+	if err := d.Close(); err != nil {
+		t.Fatal(err)
+	}
+	f, err := os.Open(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer f.Close()
+	recs, err := csv.NewReader(f).ReadAll()
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(recs) != 4 || strings.Join(recs[0], ",") != "chain,iteration,a,b" {
+		t.Fatalf("read %q", recs)
+	}
+	for i, r := range rows {
+		rec := recs[i+1]
+		if rec[0] != strconv.Itoa(i%2) || rec[1] != strconv.Itoa(10*i) {
+			t.Errorf("row %d: chain, iteration %q, want %d, %d", i, rec[:2], i%2, 10*i)
+		}
+		for j, want := range r {
+			got, err := strconv.ParseFloat(rec[2+j], 64)
+			if err != nil || math.Float64bits(got) != math.Float64bits(want) {
+				t.Errorf("row %d value %d: %q, want %v bit for bit", i, j, rec[2+j], want)
+			}
+		}
+	}
+}
+
+func TestDrawsWrongLengthIsAnError(t *testing.T) {
+	var buf bytes.Buffer
+	d := NewDrawsWriter(&buf, []string{"a", "b"})
+	d.Row(0, 0, []float64{1, 2, 3})
+	d.Row(0, 1, []float64{1, 2})
+	if err := d.Close(); err == nil || !strings.Contains(err.Error(), "3 values for 2 names") {
+		t.Errorf("Close = %v, want an error naming 3 values for 2 names", err)
+	}
+	if buf.String() != "chain,iteration,a,b\n" {
+		t.Errorf("wrote %q, want the header alone (nothing after the error)", buf.String())
 	}
 }
