@@ -110,7 +110,6 @@ func TestReportUsage(t *testing.T) {
 	}
 }
 
-
 // TestGoClientWritesWhatReportReads runs a session with the Go client's
 // WriteHistory and WriteDraws on a server on 127.0.0.1, then reads the
 // files back as `sluice report` does (report.Load) and runs the command:
