@@ -31,22 +31,29 @@ remote model: the interpreter is free meanwhile); --grad-ms T adds a busy
 wait of T milliseconds instead (holding the interpreter lock like a model
 written in Python). Both apply to both loops. --request-paths also
 measures, alternating with the runs above, bare session loops on other
-request paths that grpcio allows (without the client package's checks), to
-show which is fastest: the synchronous stream fed by an iterator over a
-queue.SimpleQueue (the path the client uses), and grpc.aio with
-call.write/call.read on one event loop.
+request paths that grpcio allows (without the client package's checks,
+with its frame encoding), to show which is fastest: the synchronous stream
+fed by an iterator over a queue.SimpleQueue (the path the client uses), and
+grpc.aio with call.write/call.read on one event loop. --baseline DIR also
+measures, in the same alternating rounds, the sluice_client package found
+in DIR (another version of the client), so a change shows as a before and
+after ratio from one run:
+
+    git archive <commit> client/python/sluice_client | tar -x -C /tmp/base
+    /usr/bin/python3 client/python/bench.py --baseline /tmp/base/client/python
 """
 
 from __future__ import annotations
 
 import argparse
 import asyncio
+import importlib.util
 import json
 import queue
 import os
 import sys
 import time
-from typing import Callable, Dict
+from typing import Any, Callable, Dict
 
 import grpc
 import numpy as np
@@ -54,24 +61,57 @@ import numpy as np
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 
 import sluice_client as sc  # noqa: E402
+from sluice_client import _frames  # noqa: E402
 from sluice_client._proto.sluice.v1 import sluice_pb2 as pb  # noqa: E402
 
 
+#: The server's process id (--server-pid), whose CPU time is read from
+#: /proc around each run; 0 when not given.
+SERVER_PID = 0
+
+
+def server_cpu() -> float:
+    """The server process's CPU seconds so far (user and system, every
+    thread), from /proc/PID/stat; 0 without --server-pid."""
+    if not SERVER_PID:
+        return 0.0
+    with open(f"/proc/{SERVER_PID}/stat", encoding="ascii") as f:
+        fields = f.read().rsplit(")", 1)[1].split()
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
+
+def load_baseline(directory: str) -> Any:
+    """Imports the sluice_client package found in directory (another
+    version of the client, for instance `git archive <commit>
+    client/python/sluice_client | tar -x -C DIR` then
+    DIR/client/python) under the name sluice_client_baseline."""
+    root = os.path.join(os.path.abspath(directory), "sluice_client")
+    spec = importlib.util.spec_from_file_location("sluice_client_baseline", os.path.join(root, "__init__.py"),
+                                                  submodule_search_locations=[root])
+    if spec is None or spec.loader is None:
+        raise SystemExit(f"bench: no sluice_client package in {directory}")
+    mod = importlib.util.module_from_spec(spec)
+    sys.modules["sluice_client_baseline"] = mod
+    spec.loader.exec_module(mod)
+    return mod
+
+
 def through_sluice(target: str, grad: Callable[[np.ndarray], np.ndarray], dim: int, chains: int,
-                   step: float, steps: int, keep_every: int, limit: int) -> Dict[str, float]:
-    spec = sc.Spec(dim=dim, chains=chains, start=np.zeros(dim), step=step, keep_every=keep_every,
+                   step: float, steps: int, keep_every: int, limit: int, client: Any = sc) -> Dict[str, float]:
+    spec = client.Spec(dim=dim, chains=chains, start=np.zeros(dim), step=step, keep_every=keep_every,
                    draws_per_chain=steps // keep_every, seed=1, max_message_bytes=limit)
     got = [0]
 
-    def on_draws(d: sc.Draws) -> None:
+    def on_draws(d: Any) -> None:
         got[0] += d.rows
 
-    t0 = time.perf_counter()
-    summary = sc.run(target, spec, grad, on_draws=on_draws, timeout=600, keep_draws=False)
-    seconds = time.perf_counter() - t0
-    if summary.reason not in (sc.FinishReason.DRAWS_COLLECTED, sc.FinishReason.CHECK_FAILED) or got[0] != chains * (steps // keep_every):
+    t0, c0, s0 = time.perf_counter(), time.process_time(), server_cpu()
+    summary = client.run(target, spec, grad, on_draws=on_draws, timeout=600, keep_draws=False)
+    seconds, cpu, server = time.perf_counter() - t0, time.process_time() - c0, server_cpu() - s0
+    done = (client.FinishReason.DRAWS_COLLECTED, client.FinishReason.CHECK_FAILED)
+    if summary.reason not in done or got[0] != chains * (steps // keep_every):
         raise RuntimeError(f"bench: session ended with {summary.reason} after {got[0]} draws")
-    return {"seconds": seconds, "draws": got[0], "steps": steps}
+    return {"seconds": seconds, "cpu": cpu, "server_cpu": server, "draws": got[0], "steps": steps}
 
 
 def in_process(grad: Callable[[np.ndarray], np.ndarray], dim: int, chains: int, step: float,
@@ -82,7 +122,7 @@ def in_process(grad: Callable[[np.ndarray], np.ndarray], dim: int, chains: int, 
     scale = np.sqrt(2.0 * step)
     got = 0
     checksum = 0.0
-    t0 = time.perf_counter()
+    t0, c0, s0 = time.perf_counter(), time.process_time(), server_cpu()
     for n in range(1, steps + 1):
         g = grad(x)
         g *= step
@@ -93,22 +133,24 @@ def in_process(grad: Callable[[np.ndarray], np.ndarray], dim: int, chains: int, 
         if n % keep_every == 0:
             got += chains  # the caller gets the state, as on_draws gets a view
             checksum += x[0, 0]
-    seconds = time.perf_counter() - t0
+    seconds, cpu, server = time.perf_counter() - t0, time.process_time() - c0, server_cpu() - s0
     if not np.isfinite(checksum):
         raise RuntimeError("bench: in-process chain diverged")
-    return {"seconds": seconds, "draws": got, "steps": steps}
+    return {"seconds": seconds, "cpu": cpu, "server_cpu": server, "draws": got, "steps": steps}
 
 
 def _bare_spec(dim: int, chains: int, step: float, steps: int, limit: int) -> pb.Register:
-    return sc.Spec(dim=dim, chains=chains, start=np.zeros(dim), step=step, draws_per_chain=steps, seed=1,
-                   max_message_bytes=limit).to_register()
+    reg = sc.Spec(dim=dim, chains=chains, start=np.zeros(dim), step=step, draws_per_chain=steps, seed=1,
+                  max_message_bytes=limit).to_register()
+    reg.accepts_draw_references = True  # as the client does
+    return reg
 
 
-def _bare_answer(grad: Callable[[np.ndarray], np.ndarray], p: pb.Points) -> pb.SessionRequest:
+def _bare_answer(grad: Callable[[np.ndarray], np.ndarray], p: pb.Points) -> bytes:
+    """The answer as the client builds it (sluice_client._frames)."""
     x = np.frombuffer(p.points, dtype="<f8").reshape(p.rows, p.dim)
     g = np.asarray(grad(x), dtype="<f8")
-    return pb.SessionRequest(evaluations=pb.Evaluations(
-        request_id=p.request_id, first_row=p.first_row, rows=p.rows, dim=p.dim, gradients=g.tobytes()))
+    return _frames.evaluations(_frames.SESSION_EVALUATIONS, p.request_id, p.first_row, p.rows, p.dim, gradients=g)
 
 
 def bare_sync_queue(target: str, grad: Callable[[np.ndarray], np.ndarray], dim: int, chains: int,
@@ -117,7 +159,7 @@ def bare_sync_queue(target: str, grad: Callable[[np.ndarray], np.ndarray], dim: 
     iterator over a SimpleQueue (the client's path, without its checks)."""
     opts = [("grpc.max_send_message_length", limit), ("grpc.max_receive_message_length", limit)]
     with grpc.insecure_channel(target, options=opts) as ch:
-        rpc = ch.stream_stream(sc.SESSION_METHOD, request_serializer=pb.SessionRequest.SerializeToString,
+        rpc = ch.stream_stream(sc.SESSION_METHOD, request_serializer=_frames.serializer(pb.SessionRequest),
                                response_deserializer=pb.SessionResponse.FromString)
         q: "queue.SimpleQueue[object]" = queue.SimpleQueue()
         q.put(pb.SessionRequest(register=_bare_spec(dim, chains, step, steps, limit)))
@@ -147,7 +189,7 @@ def bare_aio(target: str, grad: Callable[[np.ndarray], np.ndarray], dim: int, ch
 
     async def go() -> Dict[str, float]:
         async with grpc.aio.insecure_channel(target, options=opts) as ch:
-            rpc = ch.stream_stream(sc.SESSION_METHOD, request_serializer=pb.SessionRequest.SerializeToString,
+            rpc = ch.stream_stream(sc.SESSION_METHOD, request_serializer=_frames.serializer(pb.SessionRequest),
                                    response_deserializer=pb.SessionResponse.FromString)
             call = rpc(timeout=600)
             got = 0
@@ -190,8 +232,14 @@ def main() -> int:
                     help="extra cost of each gradient evaluation in ms (busy wait), in both loops")
     ap.add_argument("--request-paths", action="store_true",
                     help="also measure bare loops on other grpcio request paths")
+    ap.add_argument("--baseline", default="",
+                    help="directory holding another sluice_client package, measured in the same rounds")
+    ap.add_argument("--server-pid", type=int, default=0,
+                    help="the server's process id: also report its CPU time per step (Linux /proc)")
     ap.add_argument("--json", action="store_true")
     args = ap.parse_args()
+    global SERVER_PID
+    SERVER_PID = args.server_pid
 
     d = np.linspace(1.0, 10.0, args.dim)
     if not args.step * d.max() < 2.0:
@@ -211,15 +259,21 @@ def main() -> int:
                 pass
         return -d * x
 
+    base = load_baseline(args.baseline) if args.baseline else None
     # Warm up both (channel set-up, first allocations), then alternate.
     through_sluice(args.target, grad, args.dim, args.chains, args.step, 20, 1, args.max_message_bytes)
+    if base is not None:
+        through_sluice(args.target, grad, args.dim, args.chains, args.step, 20, 1, args.max_message_bytes, base)
     in_process(grad, args.dim, args.chains, args.step, 20, 1)
     paths = {"sync_queue": bare_sync_queue, "aio": bare_aio} if args.request_paths else {}
     for run in paths.values():
         run(args.target, grad, args.dim, args.chains, args.step, 20, args.max_message_bytes)
-    remote, local = [], []
+    remote, local, baseline = [], [], []
     bare: Dict[str, list] = {name: [] for name in paths}
     for _ in range(args.repeats):
+        if base is not None:
+            baseline.append(through_sluice(args.target, grad, args.dim, args.chains, args.step, args.steps,
+                                           args.keep_every, args.max_message_bytes, base))
         remote.append(through_sluice(args.target, grad, args.dim, args.chains, args.step, args.steps,
                                      args.keep_every, args.max_message_bytes))
         local.append(in_process(grad, args.dim, args.chains, args.step, args.local_steps, args.keep_every))
@@ -247,6 +301,28 @@ def main() -> int:
     }
     for name, runs in bare.items():
         out[f"bare_{name}_ms_per_step"] = float(np.median([r["seconds"] / r["steps"] for r in runs])) * 1e3
+    # CPU time per step of this process (every thread: the interpreter
+    # and gRPC's), which waits for a core on a busy machine do not
+    # inflate, and of the server when its pid is known.
+    def cpu_ms(runs: list, key: str = "cpu") -> float:
+        return float(np.median([r[key] / r["steps"] for r in runs])) * 1e3
+
+    out["sluice_cpu_ms_per_step"] = cpu_ms(remote)
+    out["numpy_cpu_ms_per_step"] = cpu_ms(local)
+    if SERVER_PID:
+        out["server_cpu_ms_per_step"] = cpu_ms(remote, "server_cpu")
+    if base is not None:
+        base_ms = [r["seconds"] / r["steps"] * 1e3 for r in baseline]
+        out["baseline_cpu_ms_per_step"] = cpu_ms(baseline)
+        if SERVER_PID:
+            out["baseline_server_cpu_ms_per_step"] = cpu_ms(baseline, "server_cpu")
+        out["baseline"] = os.path.abspath(args.baseline)
+        out["baseline_ms_per_step"] = float(np.median(base_ms))
+        out["baseline_ms_per_step_rounds"] = base_ms
+        out["baseline_ratio"] = float(np.median([a / b for a, b in zip(base_ms, local_ms)]))
+        out["baseline_client_fraction"] = float(np.median([b / a for a, b in zip(base_ms, local_ms)]))
+        # How much faster this client is than the baseline, per round.
+        out["speedup_over_baseline"] = float(np.median([a / b for a, b in zip(base_ms, remote_ms)]))
     if args.json:
         print(json.dumps(out))
     else:
@@ -259,8 +335,17 @@ def main() -> int:
               f"({out['numpy_ms_per_step']:.3f} ms per step)")
         print(f"  sluice / in-process: {out['ratio']:.2f}x (time per step; client at "
               f"{out['client_fraction']:.2f} of in-process)")
+        print(f"  CPU per step: client process {out['sluice_cpu_ms_per_step']:.3f} ms, numpy loop "
+              f"{out['numpy_cpu_ms_per_step']:.3f} ms"
+              + (f", server {out['server_cpu_ms_per_step']:.3f} ms" if SERVER_PID else ""))
         for name in bare:
             print(f"  bare loop, {name:10s}: {out[f'bare_{name}_ms_per_step']:.3f} ms per step")
+        if base is not None:
+            print(f"  baseline client ({out['baseline']}): {out['baseline_ms_per_step']:.3f} ms per step, "
+                  f"{out['baseline_ratio']:.2f}x numpy (client at {out['baseline_client_fraction']:.2f} of "
+                  f"in-process); this client is {out['speedup_over_baseline']:.2f}x faster")
+            print(f"    baseline CPU per step: client process {out['baseline_cpu_ms_per_step']:.3f} ms"
+                  + (f", server {out['baseline_server_cpu_ms_per_step']:.3f} ms" if SERVER_PID else ""))
     return 0
 
 

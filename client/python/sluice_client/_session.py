@@ -14,7 +14,7 @@ import grpc
 import numpy as np
 import numpy.typing as npt
 
-from . import _parallel
+from . import _frames, _parallel
 from ._errors import DrawsLostError, ProtocolError, SessionError
 from ._proto.sluice.v1 import sluice_pb2 as pb
 from ._resume import ResumePolicy, resumable
@@ -30,7 +30,6 @@ from ._types import (
     Spec,
     Summary,
     from_wire,
-    to_wire,
 )
 
 #: Full method name of the Session rpc.
@@ -209,7 +208,7 @@ class Session:
         self._held: Optional[Tuple[int, np.ndarray]] = None
         self._started = False
         self._lock = threading.Lock()
-        self._outbox: "queue.SimpleQueue[Optional[pb.SessionRequest]]" = queue.SimpleQueue()
+        self._outbox: "queue.SimpleQueue[Optional[Union[pb.SessionRequest, bytes]]]" = queue.SimpleQueue()
         self._outbox.put(_request(register=self._register))
         self._stopped = False
         self._closed = False
@@ -293,7 +292,10 @@ class Session:
                     )
                 )
 
-    def _send(self, frame: pb.SessionRequest) -> None:
+    #: The field of the request that carries Evaluations (see _frames).
+    _evaluations_field = _frames.SESSION_EVALUATIONS
+
+    def _send(self, frame: Union[pb.SessionRequest, bytes]) -> None:
         with self._lock:
             if not (self._stopped or self._closed):
                 self._outbox.put(frame)
@@ -306,7 +308,7 @@ class Session:
                 self._channel = connect(self._target, self._spec.message_limit())
             rpc = self._channel.stream_stream(
                 SESSION_METHOD,
-                request_serializer=pb.SessionRequest.SerializeToString,
+                request_serializer=_frames.serializer(pb.SessionRequest),
                 response_deserializer=pb.SessionResponse.FromString,
             )
             tries = 0
@@ -376,13 +378,10 @@ class Session:
 
     def _answer(self, p: pb.Points) -> Optional[BaseException]:
         """Evaluates one Points frame and sends the answer; on an error of
-        the caller's functions sends Stop instead and returns the error."""
+        the caller's functions sends Stop instead and returns the error.
+        _hold has checked the frame's points and chains and kept the points
+        (each read of ``p.points`` copies the bytes, so it is read once)."""
         rows, dim = p.rows, p.dim
-        if len(p.points) != 8 * rows * dim or len(p.chains) != rows:
-            raise ProtocolError(
-                f"sluice_client: malformed points frame: {len(p.points)} bytes and "
-                f"{len(p.chains)} chains for {rows} x {dim}"
-            )
         quantities = set(p.quantities)
         want = _Wanted(
             gradient=pb.QUANTITY_GRADIENT in quantities,
@@ -400,7 +399,6 @@ class Session:
                 f"sluice_client: malformed points frame: {len(p.minibatch_groups)} minibatch groups for {rows} rows"
             )
         points = self._part(p)
-        ev = pb.Evaluations(request_id=p.request_id, first_row=p.first_row, rows=rows, dim=dim)
         try:
             if self._batch is not None:
                 b = Batch(
@@ -427,11 +425,11 @@ class Session:
                         )
             else:
                 ans = self._simple(points, want, p.request_id, p.first_row)
-            _encode(ev, ans, want, rows, dim)
+            frame = _encode(self._evaluations_field, p, ans, want, rows, dim)
         except Exception as err:  # the caller's code failed: stop, drain, re-raise
             self.stop(f"evaluator failed: {err!r}")
             return err
-        self._send(_request(evaluations=ev))
+        self._send(frame)
         return None
 
     def _split_batch(self, b: Batch, want: "_Wanted") -> Answer:
@@ -532,15 +530,16 @@ class Session:
         """Keeps the points of a Points frame, at their rows within the
         request, for Draws frames that refer to them."""
         rows, dim, first = p.rows, p.dim, p.first_row
-        if len(p.points) != 8 * rows * dim or len(p.chains) != rows:
+        pts = p.points  # each read copies the bytes: read once
+        if len(pts) != 8 * rows * dim or len(p.chains) != rows:
             raise ProtocolError(
-                f"sluice_client: malformed points frame: {len(p.points)} bytes and "
+                f"sluice_client: malformed points frame: {len(pts)} bytes and "
                 f"{len(p.chains)} chains for {rows} x {dim}"
             )
         total = max(p.total_rows, rows)  # a frame without total_rows is a whole request
         if first < 0 or first + rows > total:
             raise ProtocolError(f"sluice_client: malformed points frame: rows {first} to {first + rows} of {total}")
-        part = from_wire(p.points, rows, dim)
+        part = from_wire(pts, rows, dim)
         if first == 0 and rows == total:
             self._held = (p.request_id, part)  # the common case: no copy
             return
@@ -577,22 +576,26 @@ class _Wanted:
     replicates: int
 
 
-def _encode(ev: pb.Evaluations, ans: Answer, want: _Wanted, rows: int, dim: int) -> None:
-    """Fills ev with the quantities asked for, checking that each is present
-    and has its shape (sluice.proto, message Evaluations); quantities not
-    asked for are left out."""
+def _encode(outer: int, p: pb.Points, ans: Answer, want: _Wanted, rows: int, dim: int) -> bytes:
+    """The answer to Points frame p as wire bytes (an Evaluations message
+    in field ``outer`` of the request), with the quantities asked for,
+    checking that each is present and has its shape (sluice.proto, message
+    Evaluations); quantities not asked for are left out. Each array is
+    copied once, into the frame (see _frames)."""
 
     shaped = _parallel.shaped
     reps = want.replicates
+    g = ld = h = hv = None
     if want.gradient:
         shapes = [(rows, reps, dim)] if reps > 1 else [(rows, dim), (rows, 1, dim)]
-        ev.gradients = to_wire(shaped("gradients", ans.gradients, *shapes))
+        g = shaped("gradients", ans.gradients, *shapes)
     if want.log_density:
-        ev.log_densities = to_wire(shaped("log_densities", ans.log_densities, (rows,)))
+        ld = shaped("log_densities", ans.log_densities, (rows,))
     if want.hessian:
-        ev.hessians = to_wire(shaped("hessians", ans.hessians, (rows, dim, dim)))
+        h = shaped("hessians", ans.hessians, (rows, dim, dim))
     if want.hessian_vector:
-        ev.hessian_vectors = to_wire(shaped("hessian_vectors", ans.hessian_vectors, (rows, dim)))
+        hv = shaped("hessian_vectors", ans.hessian_vectors, (rows, dim))
+    return _frames.evaluations(outer, p.request_id, p.first_row, rows, dim, g, ld, h, hv)
 
 
 def decode_draws(w: pb.Draws, expected_seq: int, held: Optional[Tuple[int, np.ndarray]] = None) -> Draws:
@@ -618,12 +621,22 @@ def decode_draws(w: pb.Draws, expected_seq: int, held: Optional[Tuple[int, np.nd
         pr = np.array(w.point_rows, dtype=np.int64)
         sent = pr < 0
         n = int(sent.sum())
-        if len(w.values) != 8 * n * dim or int(pr.max()) >= held[1].shape[0]:
+        vals = w.values
+        if len(vals) != 8 * n * dim or int(pr.max()) >= held[1].shape[0]:
             raise ProtocolError(f"sluice_client: malformed draws frame at sequence {w.seq}")
-        values = np.empty((rows, dim), dtype=held[1].dtype)
-        values[~sent] = held[1][pr[~sent]]
-        values[sent] = from_wire(w.values, n, dim)
-        values.flags.writeable = False
+        if n == 0 and rows == held[1].shape[0] and not held[1].flags.writeable and np.array_equal(pr, np.arange(rows)):
+            # Every row of the request, in order (lmc, kinetic): the held
+            # points are the draws. They are a read-only view of the
+            # request's bytes, which nothing changes: no copy.
+            values = held[1]
+        elif n == 0:
+            values = held[1][pr]
+            values.flags.writeable = False
+        else:
+            values = np.empty((rows, dim), dtype=held[1].dtype)
+            values[~sent] = held[1][pr[~sent]]
+            values[sent] = from_wire(vals, n, dim)
+            values.flags.writeable = False
     return Draws(
         seq=w.seq,
         values=values,

@@ -11,6 +11,7 @@ from typing import Callable, Optional, Union
 
 import grpc
 
+from . import _frames
 from ._errors import SessionError
 from ._proto.sluice.v1 import sluice_pb2 as pb
 from ._session import BatchFn, GradFn, LogDensityFn, Session, connect
@@ -53,10 +54,14 @@ class _Worker:
         self._held = None  # the points of the current request (_hold)
         self._executor = None  # a worker evaluates its rows itself
         self._split = 1
-        self.outbox: "queue.SimpleQueue[Optional[pb.AttachRequest]]" = queue.SimpleQueue()
+        self.outbox: "queue.SimpleQueue[Optional[Union[pb.AttachRequest, bytes]]]" = queue.SimpleQueue()
 
-    def _send(self, frame: pb.SessionRequest) -> None:
-        self.outbox.put(pb.AttachRequest(evaluations=frame.evaluations))
+    _evaluations_field = _frames.ATTACH_EVALUATIONS
+
+    def _send(self, frame: bytes) -> None:
+        """Sends an answer built by Session._answer (wire bytes of an
+        AttachRequest; see _frames)."""
+        self.outbox.put(frame)
 
     def stop(self, reason: str) -> None:
         """The caller's function failed: the worker leaves (its rows go to
@@ -100,7 +105,7 @@ def work(
     w.outbox.put(pb.AttachRequest(attach=pb.Attach(session_id=session_id, token=token, name=name or socket.gethostname())))
     rpc = channel.stream_stream(
         ATTACH_METHOD,
-        request_serializer=pb.AttachRequest.SerializeToString,
+        request_serializer=_frames.serializer(pb.AttachRequest),
         response_deserializer=pb.AttachResponse.FromString,
     )
     call = rpc(iter(w.outbox.get, None), timeout=timeout)
