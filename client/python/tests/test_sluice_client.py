@@ -15,7 +15,7 @@ import socket
 import struct
 import threading
 import unittest
-from typing import Iterator, List, Optional
+from typing import Callable, Iterator, List, Optional
 
 import grpc
 import numpy as np
@@ -93,20 +93,31 @@ class WireArrayTests(unittest.TestCase):
 class _ScriptedCall:
     """Stands in for a gRPC stream: takes the client's Register, then plays
     server frames, collecting the client's answer after every Points frame
-    (the client answers before it reads on, as the protocol asks)."""
+    (the client answers before it reads on, as the protocol asks). Each
+    request goes through the client's request serializer and is parsed
+    back by protobuf, as a server would read it."""
 
-    def __init__(self, requests: Iterator[pb.SessionRequest], script: List[pb.SessionResponse]) -> None:
+    def __init__(
+        self,
+        requests: Iterator[object],
+        script: List[pb.SessionResponse],
+        serialize: Callable[[object], bytes],
+    ) -> None:
         self._requests = requests
         self._script = script
+        self._serialize = serialize
         self.sent: List[pb.SessionRequest] = []
         self.cancelled = False
 
+    def _next(self) -> pb.SessionRequest:
+        return pb.SessionRequest.FromString(self._serialize(next(self._requests)))
+
     def __iter__(self) -> Iterator[pb.SessionResponse]:
-        self.sent.append(next(self._requests))
+        self.sent.append(self._next())
         for frame in self._script:
             yield frame
             if frame.WhichOneof("frame") == "points":
-                self.sent.append(next(self._requests))
+                self.sent.append(self._next())
 
     def cancel(self) -> bool:
         self.cancelled = True
@@ -121,11 +132,13 @@ class _ScriptedChannel:
         self.call: Optional[_ScriptedCall] = None
         self.method = ""
 
-    def stream_stream(self, method: str, request_serializer: object, response_deserializer: object) -> object:
+    def stream_stream(
+        self, method: str, request_serializer: Callable[[object], bytes], response_deserializer: object
+    ) -> object:
         self.method = method
 
-        def start(requests: Iterator[pb.SessionRequest], timeout: Optional[float] = None) -> _ScriptedCall:
-            self.call = _ScriptedCall(requests, self.script)
+        def start(requests: Iterator[object], timeout: Optional[float] = None) -> _ScriptedCall:
+            self.call = _ScriptedCall(requests, self.script, request_serializer)
             return self.call
 
         return start
