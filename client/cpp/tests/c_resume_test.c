@@ -13,13 +13,16 @@
  *      SIGNAL_DIR/go-1, which the script creates once it has killed the
  *      server with SIGKILL and started it again on the same address and
  *      state. The run must end SLUICE_OK having resumed by itself
- *      (sluice_session_resumes >= 1);
+ *      (sluice_session_resumes >= 1). A follower on a thread of its own
+ *      (sluice_session_follow from draw 0, started at the session's first
+ *      draws, holding at least one block before the kill) must end
+ *      SLUICE_OK having followed again by itself;
  *   3. resume off (sluice_session_set_resume(s, 0, 0, 0)), killed the same
  *      way (ready-2, go-2): the run must end SLUICE_ERR_UNAVAILABLE without
  *      resuming, and sluice_session_resume on a new handle from
  *      sluice_session_next_seq must finish it.
  *
- * In 2 and 3 the draws callback must see every sequence number of the
+ * In 2 (the session and its follower) and 3 the draws callback must see every sequence number of the
  * reference exactly once (no gap, no duplicate) with bit-identical values:
  * the noise is drawn on the server from the seed and the gradients are
  * exact, so a resumed session repeats the uninterrupted one (the wire
@@ -27,6 +30,7 @@
  * M failed"; the exit code is 1 when M > 0.
  */
 #define _POSIX_C_SOURCE 200809L
+#include <pthread.h>
 #include <stdint.h>
 #include <stdio.h>
 #include <stdlib.h>
@@ -41,6 +45,13 @@ enum { TOTAL = CHAINS * DRAWS_PER_CHAIN };
 
 static int passed, failed;
 static const char *target, *signal_dir;
+
+/* Shared with the follower thread (see follower below). */
+static pthread_mutex_t follow_mu = PTHREAD_MUTEX_INITIALIZER;
+static pthread_cond_t follow_cv = PTHREAD_COND_INITIALIZER;
+static int follow_state; /* 0 waiting, 1 go, -1 abandoned; under follow_mu */
+static char follow_id[256], follow_token[256];
+static int followed_blocks; /* under follow_mu */
 
 static void report(const char *name, int ok, const char *why) {
   if (ok) {
@@ -93,6 +104,17 @@ static int evaluate(const sluice_batch *b, void *user) {
     char ready[4096], go[4096];
     FILE *f;
     int n;
+    if (e->kill_round == 1) {
+      /* The follower holds a block before the kill (bounded: 3 minutes). */
+      int blocks = 0;
+      for (n = 0; n < 18000; n++) {
+        pthread_mutex_lock(&follow_mu);
+        blocks = followed_blocks;
+        pthread_mutex_unlock(&follow_mu);
+        if (blocks > 0) break;
+        sleep_ms(10);
+      }
+    }
     snprintf(ready, sizeof ready, "%s/ready-%d", signal_dir, e->kill_round);
     snprintf(go, sizeof go, "%s/go-%d", signal_dir, e->kill_round);
     f = fopen(ready, "w");
@@ -127,6 +149,69 @@ static void on_draws(const sluice_draws *d, void *user) {
     }
     got->seen[s]++;
     memcpy(&got->values[s * DIM], d->values + (size_t)r * DIM, DIM * sizeof(double));
+  }
+}
+
+/* The follower of session 2, on a thread of its own. The session's draws
+ * callback (on the main thread) hands it the id and token at the first
+ * draws; the evaluator waits for its first block before the kill. */
+static received followed;
+static int follow_rc = -1, follow_resumes;
+static char follow_error[512];
+
+static void on_followed(const sluice_draws *d, void *user) {
+  on_draws(d, user);
+  pthread_mutex_lock(&follow_mu);
+  followed_blocks++;
+  pthread_mutex_unlock(&follow_mu);
+}
+
+static void *follower(void *unused) {
+  sluice_session *f;
+  int state;
+  (void)unused;
+  pthread_mutex_lock(&follow_mu);
+  while (follow_state == 0) pthread_cond_wait(&follow_cv, &follow_mu);
+  state = follow_state;
+  pthread_mutex_unlock(&follow_mu);
+  if (state < 0) return NULL;
+  f = sluice_session_new(NULL, NULL, NULL);
+  if (f == NULL) return NULL;
+  sluice_session_on_draws(f, on_followed, &followed);
+  follow_rc = sluice_session_follow(f, target, follow_id, follow_token, 0);
+  follow_resumes = sluice_session_resumes(f);
+  snprintf(follow_error, sizeof follow_error, "%s", sluice_session_error_message(f));
+  sluice_session_free(f);
+  return NULL;
+}
+
+static void announce(int state) {
+  pthread_mutex_lock(&follow_mu);
+  if (follow_state == 0) {
+    follow_state = state;
+    pthread_cond_broadcast(&follow_cv);
+  }
+  pthread_mutex_unlock(&follow_mu);
+}
+
+/* Session 2's draws callback: on_draws, and at the first block the id and
+ * token for the follower (read on the thread running the session). */
+typedef struct {
+  received *got;
+  sluice_session *s;
+} announced;
+
+static void on_draws_announce(const sluice_draws *d, void *user) {
+  announced *a = (announced *)user;
+  int state;
+  on_draws(d, a->got);
+  pthread_mutex_lock(&follow_mu);
+  state = follow_state;
+  pthread_mutex_unlock(&follow_mu);
+  if (state == 0) {
+    snprintf(follow_id, sizeof follow_id, "%s", sluice_session_id(a->s));
+    snprintf(follow_token, sizeof follow_token, "%s", sluice_session_token(a->s));
+    announce(1);
   }
 }
 
@@ -176,6 +261,7 @@ int main(int argc, char **argv) {
   int rc, ok;
   evaluator e;
   sluice_session *s, *r;
+  pthread_t follow_thread;
   if (argc != 3) {
     fprintf(stderr, "usage: c_resume_test HOST:PORT SIGNAL_DIR\n");
     return 2;
@@ -201,11 +287,23 @@ int main(int argc, char **argv) {
     return 1;
   }
 
-  /* 2. Killed mid-run, resumed by itself. */
+  /* 2. Killed mid-run, resumed by itself; a follower too. */
   memset(&e, 0, sizeof e);
   e.kill_round = 1;
   s = new_session(&e, &auto_got);
+  {
+    static announced a;
+    a.got = &auto_got;
+    a.s = s;
+    sluice_session_on_draws(s, on_draws_announce, &a);
+  }
+  if (pthread_create(&follow_thread, NULL, follower, NULL) != 0) {
+    fprintf(stderr, "c_resume_test: cannot start the follower thread\n");
+    return 2;
+  }
   rc = sluice_session_run(s, target);
+  announce(-1); /* no follower if the session never sent draws */
+  pthread_join(follow_thread, NULL);
   snprintf(why, sizeof why, "%s: %s (resumes %d, evaluator calls %d)", sluice_error_name(rc),
            sluice_session_error_message(s), sluice_session_resumes(s), e.calls);
   /* The answer to call KILL_AT_CALL never reached the killed server, so the
@@ -222,6 +320,12 @@ int main(int argc, char **argv) {
            e.calls, BURN_IN + DRAWS_PER_CHAIN);
   report("server_killed_resumes_by_itself_no_gap_no_duplicate_identical", ok, why);
   sluice_session_free(s);
+
+  snprintf(why, sizeof why, "%s: %s (resumes %d)", sluice_error_name(follow_rc), follow_error, follow_resumes);
+  ok = follow_rc == SLUICE_OK && follow_resumes >= 1;
+  if (ok) ok = compare(&followed, &ref, why, sizeof why);
+  if (ok) printf("   the follower followed again %d time(s)\n", follow_resumes);
+  report("follower_follows_again_by_itself_no_gap_no_duplicate_identical", ok, why);
 
   /* 3. Resume off: the run returns UNAVAILABLE; a resume by hand ends it. */
   memset(&e, 0, sizeof e);
