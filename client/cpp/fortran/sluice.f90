@@ -89,7 +89,8 @@ module sluice
     sluice_session_error_description, sluice_session_grpc_code, sluice_session_free, sluice_error_name, &
     sluice_reason_name, sluice_string, sluice_layout_ok, sluice_session_set_tls, sluice_session_set_token, &
     sluice_session_set_token_file, sluice_session_set_insecure, sluice_session_follow, sluice_session_next_seq, &
-    sluice_session_id, sluice_session_token, sluice_session_resume
+    sluice_session_id, sluice_session_token, sluice_session_resume, sluice_session_set_resume, &
+    sluice_session_resumes
 
   interface
     subroutine sluice_spec_defaults(spec) bind(c, name="sluice_spec_defaults")
@@ -147,6 +148,21 @@ module sluice
       type(c_ptr), value :: s
       integer(c_int), value :: insecure
     end function sluice_session_set_insecure
+
+    ! Resuming by itself after a broken stream (on by default: 10 tries,
+    ! waits from 0.1 s doubling to at most 5 s); attempts <= 0 turns it off.
+    integer(c_int) function sluice_session_set_resume(s, attempts, first_wait_seconds, max_wait_seconds) &
+        bind(c, name="sluice_session_set_resume")
+      import :: c_ptr, c_int, c_double
+      type(c_ptr), value :: s
+      integer(c_int), value :: attempts
+      real(c_double), value :: first_wait_seconds, max_wait_seconds
+    end function sluice_session_set_resume
+
+    integer(c_int) function sluice_session_resumes(s) bind(c, name="sluice_session_resumes")
+      import :: c_ptr, c_int
+      type(c_ptr), value :: s
+    end function sluice_session_resumes
 
     integer(c_int) function sluice_session_run(s, target) bind(c, name="sluice_session_run")
       import :: c_ptr, c_int, c_char

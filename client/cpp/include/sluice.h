@@ -57,7 +57,9 @@ enum sluice_code {
   /* The client took too long to answer, or a deadline passed.
    * gRPC DEADLINE_EXCEEDED. */
   SLUICE_ERR_DEADLINE_EXCEEDED = 3,
-  /* No server at the address, or the connection broke. gRPC UNAVAILABLE. */
+  /* No server at the address, or the connection broke and resuming
+   * (sluice_session_set_resume) did not get the session back.
+   * gRPC UNAVAILABLE. */
   SLUICE_ERR_UNAVAILABLE = 4,
   /* The call was cancelled. gRPC CANCELLED. */
   SLUICE_ERR_CANCELLED = 5,
@@ -302,6 +304,23 @@ int sluice_session_set_token_file(sluice_session *s, const char *path);
  * with SLUICE_ERR_USAGE, before sending anything. */
 int sluice_session_set_insecure(sluice_session *s, int insecure);
 
+/* How sluice_session_run, _resume and _follow resume by themselves when
+ * their stream breaks (gRPC UNAVAILABLE: the server was killed, restarts,
+ * or shut down having checkpointed the session; a reset connection): they
+ * open a new stream that sends Resume with the session id, its token and
+ * the next draw needed (a follow follows again from there), so the draws
+ * callback sees every draw once, in order, with no gap, and the evaluation
+ * callback may be asked again for points it evaluated before. On by
+ * default: 10 tries in a row, waiting 0.1 s, 0.2 s, 0.4 s, ... and at most
+ * 5 s between two; a try that gets the session back resets the count.
+ * attempts <= 0 turns it off (the error is returned at once; resume by
+ * hand with sluice_session_resume); a wait of 0 takes its default.
+ * A session the server never registered is not resumed. The server must
+ * keep state (sluice serve --state-dir or --state-postgres) for a session
+ * to outlive it. Returns SLUICE_OK, or SLUICE_ERR_USAGE for a NULL handle
+ * or a wait outside [0, 3600] seconds. */
+int sluice_session_set_resume(sluice_session *s, int attempts, double first_wait_seconds, double max_wait_seconds);
+
 /* Connects to target ("host:port"), with TLS and a token when set above
  * (plain text otherwise, to loopback only), runs the session until the
  * server finishes it, and returns SLUICE_OK or an error code. The summary
@@ -347,7 +366,8 @@ int sluice_session_follow(sluice_session *s, const char *target, const char *ses
  * sluice_session_run, and SLUICE_ERR_SERVER with gRPC code 5 (NOT_FOUND,
  * field "session_id") for an unknown session or a wrong session token,
  * 11 (OUT_OF_RANGE) when the draws from next_seq are no longer kept;
- * SLUICE_ERR_UNAVAILABLE from a server that keeps no state. SLUICE_ERR_USAGE,
+ * SLUICE_ERR_UNAVAILABLE from a server that keeps no state (after the tries
+ * sluice_session_set_resume allows, as for a server still restarting). SLUICE_ERR_USAGE,
  * nothing sent, for a NULL or empty session_id or session_token. The
  * handle then answers sluice_session_id, _token and _next_seq for a
  * further resume. */
@@ -359,6 +379,10 @@ int sluice_session_resume(sluice_session *s, const char *target, const char *ses
  * where sluice_session_resume or a new follow continues without loss or
  * duplicate. */
 uint64_t sluice_session_next_seq(const sluice_session *s);
+
+/* After sluice_session_run, _resume or _follow: the times the handle
+ * resumed by itself on a new stream (sluice_session_set_resume). */
+int sluice_session_resumes(const sluice_session *s);
 
 /* Fills *out with the summary; returns SLUICE_OK, or SLUICE_ERR_STATE when
  * no summary was received. */

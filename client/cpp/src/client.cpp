@@ -3,12 +3,15 @@
 
 #include <grpcpp/grpcpp.h>
 
+#include <algorithm>
 #include <cctype>
+#include <chrono>
 #include <cstring>
 #include <exception>
 #include <fstream>
 #include <map>
 #include <sstream>
+#include <thread>
 #include <utility>
 
 #include "sluice/v1/sluice.grpc.pb.h"
@@ -261,81 +264,152 @@ struct EvaluatorStop {
   std::string message;
 };
 
+// resumable reports whether a stream's status is a break worth resuming
+// after: UNAVAILABLE, or a reset stream reported as INTERNAL or UNKNOWN.
+bool resumable(const grpc::Status& st) {
+  if (st.error_code() == grpc::StatusCode::UNAVAILABLE) return true;
+  if (st.error_code() != grpc::StatusCode::INTERNAL && st.error_code() != grpc::StatusCode::UNKNOWN) return false;
+  std::string m;
+  for (char c : st.error_message()) m.push_back(static_cast<char>(std::tolower(static_cast<unsigned char>(c))));
+  return m.find("rst_stream") != std::string::npos || m.find("stream reset") != std::string::npos ||
+         m.find("connection reset") != std::string::npos;
+}
+
+// wait sleeps before resume try n (0-based): first_wait * 2^n seconds, at
+// most max_wait.
+void wait(const ResumePolicy& p, int n) {
+  const double first = p.first_wait > 0 ? p.first_wait : 0.1;
+  const double most = p.max_wait > 0 ? p.max_wait : 5;
+  double d = first;
+  for (int i = 0; i < n && d < most; ++i) d *= 2;
+  std::this_thread::sleep_for(std::chrono::duration<double>(std::min(d, most)));
+}
+
 class Runner {
  public:
-  Runner(const Spec& spec, const Evaluator& eval, const Callbacks& cb) : spec_(spec), eval_(eval), cb_(cb) {}
+  Runner(const Spec& spec, const Evaluator& eval, const Callbacks& cb, const ResumePolicy& policy)
+      : spec_(spec), eval_(eval), cb_(cb), policy_(policy) {}
 
-  // follow reads a Follow stream: draws and the final frame.
+  // follow reads Follow streams: draws and the final frame, following
+  // again from the next draw after a broken stream as policy_ says.
   Summary follow(pb::SluiceService::Stub& stub, const std::string& session_id, const std::string& token,
                  std::uint64_t from_seq) {
     next_seq_ = from_seq;
     sum_.next_seq = from_seq;
-    pb::FollowRequest req;
-    req.set_session_id(session_id);
-    req.set_token(token);
-    req.set_from_seq(from_seq);
-    auto reader = stub.Follow(&ctx_, req);
-    std::string protocol_error;
-    pb::FollowResponse frame;
-    while (protocol_error.empty() && reader->Read(&frame)) {
-      switch (frame.frame_case()) {
-        case pb::FollowResponse::kDraws:
-          protocol_error = deliver(frame.draws());
-          break;
-        case pb::FollowResponse::kFinished:
-          finish(frame.finished());
-          break;
-        default:
-          break;
+    bool again = false;  // this stream follows again after a broken one
+    for (int tries = 0;;) {
+      const std::uint64_t before = next_seq_;
+      ctx_ = std::make_unique<grpc::ClientContext>();
+      pb::FollowRequest req;
+      req.set_session_id(session_id);
+      req.set_token(token);
+      req.set_from_seq(next_seq_);
+      auto reader = stub.Follow(ctx_.get(), req);
+      std::string protocol_error;
+      pb::FollowResponse frame;
+      while (protocol_error.empty() && reader->Read(&frame)) {
+        switch (frame.frame_case()) {
+          case pb::FollowResponse::kDraws:
+            protocol_error = deliver(frame.draws());
+            break;
+          case pb::FollowResponse::kFinished:
+            finish(frame.finished());
+            break;
+          default:
+            break;
+        }
       }
-    }
-    if (!protocol_error.empty()) ctx_.TryCancel();
-    grpc::Status st = reader->Finish();
-    // A follower's summary is what it received, finished or not.
-    if (!protocol_error.empty()) {
-      Error e(Code::Protocol, 0, "sluice: " + protocol_error);
-      e.summary = sum_;
-      throw e;
-    }
-    if (!st.ok()) {
-      Error e = error_from_status(st);
-      e.summary = sum_;
-      throw e;
-    }
-    if (!finished_) {
+      if (!protocol_error.empty()) ctx_->TryCancel();
+      grpc::Status st = reader->Finish();
+      // A follower's summary is what it received, finished or not.
+      if (!protocol_error.empty()) {
+        Error e(Code::Protocol, 0, "sluice: " + protocol_error);
+        e.summary = sum_;
+        throw e;
+      }
+      if (again && (next_seq_ != before || finished_)) ++sum_.resumes;
+      if (st.ok() && finished_) return sum_;
+      if (next_seq_ != before) tries = 0;  // this stream made progress
+      again = policy_.attempts > 0 && tries < policy_.attempts && !finished_ && (st.ok() || resumable(st));
+      if (again) {
+        wait(policy_, tries++);
+        continue;
+      }
+      if (!st.ok()) {
+        Error e = error_from_status(st);
+        e.summary = sum_;
+        throw e;
+      }
       Error e(Code::Protocol, 0, "sluice: follow stream ended without a finished frame");
       e.summary = sum_;
       throw e;
     }
-    return sum_;
   }
 
   // run runs a session: with resume null it registers spec_, otherwise its
   // first frame is *resume and draws are expected from resume->next_seq().
+  // A broken stream of a registered session is resumed as policy_ says,
+  // with Resume from the next draw expected.
   Summary run(pb::SluiceService::Stub& stub, std::int64_t limit, const pb::Resume* resume = nullptr) {
-    stream_ = stub.Session(&ctx_);
-    pb::SessionRequest reg;
+    pb::SessionRequest first;
+    std::string id, token;
     if (resume != nullptr) {
-      *reg.mutable_resume() = *resume;
+      *first.mutable_resume() = *resume;
       next_seq_ = resume->next_seq();
       sum_.next_seq = next_seq_;
+      id = resume->session_id();
+      token = resume->token();
     } else {
-      register_frame(spec_, limit, reg.mutable_register_());
+      register_frame(spec_, limit, first.mutable_register_());
     }
-    if (!stream_->Write(reg)) send_closed_ = true;  // the status says why
-    std::string protocol_error;
+    for (int tries = 0;;) {
+      std::string protocol_error;
+      const grpc::Status st = stream(stub, first, &protocol_error);
+      if (!protocol_error.empty()) throw with_summary(Error(Code::Protocol, 0, "sluice: " + protocol_error));
+      if (st.ok() && finished_) break;
+      if (registered_) {  // this stream got the session back
+        tries = 0;
+        id = sum_.registered.session_id;
+        token = sum_.registered.resume_token;
+      }
+      const bool again = policy_.attempts > 0 && tries < policy_.attempts && !finished_ && !stop_ &&
+                         !id.empty() && !token.empty() && (st.ok() || resumable(st));
+      if (!again) {
+        if (!st.ok()) throw with_summary(error_from_status(st));
+        throw with_summary(Error(Code::Protocol, 0, "sluice: stream ended without a finished frame"));
+      }
+      wait(policy_, tries++);
+      first.Clear();
+      auto* r = first.mutable_resume();
+      r->set_session_id(id);
+      r->set_token(token);
+      r->set_next_seq(next_seq_);
+    }
+    if (stop_) throw with_summary(Error(Code::Evaluator, 0, "sluice: evaluator failed: " + stop_->message));
+    return sum_;
+  }
+
+ private:
+  // stream runs one Session stream whose first frame is first until it
+  // ends, and returns its status; a protocol error found in its frames
+  // cancels it and is set in *protocol_error.
+  grpc::Status stream(pb::SluiceService::Stub& stub, const pb::SessionRequest& first, std::string* protocol_error) {
+    ctx_ = std::make_unique<grpc::ClientContext>();
+    finished_ = send_closed_ = registered_ = false;
+    stream_ = stub.Session(ctx_.get());
+    if (!stream_->Write(first)) send_closed_ = true;  // the status says why
     pb::SessionResponse frame;
-    while (protocol_error.empty() && stream_->Read(&frame)) {
+    while (protocol_error->empty() && stream_->Read(&frame)) {
       switch (frame.frame_case()) {
         case pb::SessionResponse::kRegistered:
           registered(frame.registered());
           break;
         case pb::SessionResponse::kPoints:
           if (stop_ || send_closed_) break;  // Stop already sent, or the server is finishing
-          protocol_error = answer(frame.points());
+          *protocol_error = answer(frame.points());
           break;
         case pb::SessionResponse::kDraws:
-          protocol_error = deliver(frame.draws());
+          *protocol_error = deliver(frame.draws());
           break;
         case pb::SessionResponse::kProgress:
           if (cb_.on_progress) cb_.on_progress(progress_from_wire(frame.progress()));
@@ -347,17 +421,13 @@ class Runner {
           break;
       }
     }
-    if (!protocol_error.empty()) ctx_.TryCancel();
+    if (!protocol_error->empty()) ctx_->TryCancel();
     stream_->WritesDone();
     grpc::Status st = stream_->Finish();
-    if (!protocol_error.empty()) throw with_summary(Error(Code::Protocol, 0, "sluice: " + protocol_error));
-    if (!st.ok()) throw with_summary(error_from_status(st));
-    if (!finished_) throw Error(Code::Protocol, 0, "sluice: stream ended without a finished frame");
-    if (stop_) throw with_summary(Error(Code::Evaluator, 0, "sluice: evaluator failed: " + stop_->message));
-    return sum_;
+    stream_.reset();
+    return st;
   }
 
- private:
   Error with_summary(Error e) const {
     if (finished_) e.summary = sum_;
     return e;
@@ -375,6 +445,12 @@ class Runner {
     r.max_message_bytes = g.max_message_bytes();
     r.planned_steps = g.planned_steps();
     r.names.assign(g.names().begin(), g.names().end());
+    registered_ = true;
+    if (announced_) {
+      ++sum_.resumes;
+      return;
+    }
+    announced_ = true;
     if (cb_.on_registered) cb_.on_registered(r);
   }
 
@@ -505,11 +581,14 @@ class Runner {
   const Spec& spec_;
   const Evaluator& eval_;
   const Callbacks& cb_;
-  grpc::ClientContext ctx_;
+  const ResumePolicy& policy_;
+  std::unique_ptr<grpc::ClientContext> ctx_;  // one per stream
   std::unique_ptr<grpc::ClientReaderWriter<pb::SessionRequest, pb::SessionResponse>> stream_;
   Summary sum_;
   std::uint64_t next_seq_ = 0;
-  bool finished_ = false, send_closed_ = false;
+  // finished_, send_closed_ and registered_ are of the current stream;
+  // announced_ is set once on_registered was called.
+  bool finished_ = false, send_closed_ = false, registered_ = false, announced_ = false;
   std::optional<EvaluatorStop> stop_;
   pb::SessionRequest out_;
   std::vector<double> points_, vectors_, grad_, logd_, hess_, hessvec_, draws_;
@@ -683,6 +762,10 @@ std::shared_ptr<grpc::Channel> connect(const std::string& target, const Security
   grpc::ChannelArguments args;
   args.SetMaxReceiveMessageSize(static_cast<int>(limit));
   args.SetMaxSendMessageSize(static_cast<int>(limit));
+  // Reconnect soon after a lost connection (gRPC's default backoff starts
+  // at 1 s and grows to 2 min), so a resume finds a restarted server.
+  args.SetInt(GRPC_ARG_INITIAL_RECONNECT_BACKOFF_MS, 100);
+  args.SetInt(GRPC_ARG_MAX_RECONNECT_BACKOFF_MS, 5000);
   if (token.empty()) return grpc::CreateCustomChannel(target, creds, args);
   std::vector<std::unique_ptr<grpc::experimental::ClientInterceptorFactoryInterface>> icpt;
   icpt.push_back(std::make_unique<BearerTokenFactory>(token));
@@ -694,19 +777,19 @@ std::shared_ptr<grpc::Channel> connect(const std::string& target, std::int64_t m
 }
 
 Summary run(const std::shared_ptr<grpc::Channel>& channel, const Spec& spec, const Evaluator& evaluate,
-            const Callbacks& callbacks) {
+            const Callbacks& callbacks, const ResumePolicy& policy) {
   if (!channel) throw Error(Code::Usage, 0, "sluice: run: null channel");
   if (!evaluate) throw Error(Code::Usage, 0, "sluice: run: no evaluator");
   const std::int64_t limit = spec.max_message_bytes > 0 ? spec.max_message_bytes : kDefaultMaxMessageBytes;
   if (limit > INT32_MAX) throw Error(Code::Usage, 0, "sluice: run: max_message_bytes above 2^31-1");
   auto stub = pb::SluiceService::NewStub(channel);
-  Runner r(spec, evaluate, callbacks);
+  Runner r(spec, evaluate, callbacks, policy);
   return r.run(*stub, limit);
 }
 
 Summary resume(const std::shared_ptr<grpc::Channel>& channel, const std::string& session_id,
                const std::string& session_token, std::uint64_t next_seq, const Evaluator& evaluate,
-               const Callbacks& callbacks) {
+               const Callbacks& callbacks, const ResumePolicy& policy) {
   if (!channel) throw Error(Code::Usage, 0, "sluice: resume: null channel");
   if (!evaluate) throw Error(Code::Usage, 0, "sluice: resume: no evaluator");
   if (session_id.empty()) throw Error(Code::Usage, 0, "sluice: resume: no session id");
@@ -721,13 +804,13 @@ Summary resume(const std::shared_ptr<grpc::Channel>& channel, const std::string&
   frame.set_token(session_token);
   frame.set_next_seq(next_seq);
   auto stub = pb::SluiceService::NewStub(channel);
-  Runner r(no_spec, evaluate, callbacks);
+  Runner r(no_spec, evaluate, callbacks, policy);
   return r.run(*stub, 0, &frame);
 }
 
 Summary follow(const std::shared_ptr<grpc::Channel>& channel, const std::string& session_id,
                const std::string& session_token, std::uint64_t from_seq,
-               const std::function<void(const Draws&)>& on_draws) {
+               const std::function<void(const Draws&)>& on_draws, const ResumePolicy& policy) {
   if (!channel) throw Error(Code::Usage, 0, "sluice: follow: null channel");
   if (session_id.empty()) throw Error(Code::Usage, 0, "sluice: follow: no session id");
   if (session_token.empty()) {
@@ -740,7 +823,7 @@ Summary follow(const std::shared_ptr<grpc::Channel>& channel, const std::string&
   Callbacks cb;
   cb.on_draws = on_draws;
   auto stub = pb::SluiceService::NewStub(channel);
-  Runner r(no_spec, no_evaluator, cb);
+  Runner r(no_spec, no_evaluator, cb, policy);
   return r.follow(*stub, session_id, session_token, from_seq);
 }
 

@@ -90,7 +90,9 @@ struct sluice_session {
   void* progress_data = nullptr;
   bool ran = false;
   sluice::Security security;
+  sluice::ResumePolicy resume;
   std::uint64_t next_seq = 0;
+  int resumes = 0;
 
   std::optional<sluice::Summary> summary;
   std::string session_id, session_token;
@@ -264,6 +266,20 @@ int sluice_session_set_insecure(sluice_session* s, int insecure) {
   return SLUICE_OK;
 }
 
+int sluice_session_set_resume(sluice_session* s, int attempts, double first_wait_seconds, double max_wait_seconds) {
+  if (s == nullptr) return SLUICE_ERR_USAGE;
+  // NaN fails every comparison: check that the waits are numbers.
+  if (!(first_wait_seconds >= 0) || !(max_wait_seconds >= 0) || first_wait_seconds > 3600 ||
+      max_wait_seconds > 3600) {
+    s->set_error(0, "sluice_session_set_resume: first_wait_seconds and max_wait_seconds must be in [0, 3600]");
+    return SLUICE_ERR_USAGE;
+  }
+  s->resume.attempts = attempts;
+  s->resume.first_wait = first_wait_seconds;
+  s->resume.max_wait = max_wait_seconds;
+  return SLUICE_OK;
+}
+
 }  // extern "C"
 
 namespace {
@@ -342,13 +358,16 @@ int run_session(sluice_session* s, const char* target, const char* fn, const Res
     try {
       auto channel = sluice::connect(target, s->security, s->spec.max_message_bytes);
       if (resume != nullptr) {
-        s->summary = sluice::resume(channel, resume->session_id, resume->session_token, resume->next_seq, evaluate, cb);
+        s->summary =
+            sluice::resume(channel, resume->session_id, resume->session_token, resume->next_seq, evaluate, cb, s->resume);
       } else {
-        s->summary = sluice::run(channel, s->spec, evaluate, cb);
+        s->summary = sluice::run(channel, s->spec, evaluate, cb, s->resume);
       }
+      s->resumes = s->summary->resumes;
       return SLUICE_OK;
     } catch (const sluice::Error& e) {
       if (e.summary) s->summary = e.summary;
+      if (e.summary) s->resumes = e.summary->resumes;
       s->set_error(e.grpc_code, e.message, e.field, e.description);
       return static_cast<int>(e.code);
     }
@@ -431,9 +450,11 @@ int sluice_session_follow(sluice_session* s, const char* target, const char* ses
     };
     try {
       auto channel = sluice::connect(target, s->security, sluice::kFollowMaxMessageBytes);
-      s->summary = sluice::follow(channel, session_id, session_token, from_seq, on_draws);
+      s->summary = sluice::follow(channel, session_id, session_token, from_seq, on_draws, s->resume);
+      s->resumes = s->summary->resumes;
       return SLUICE_OK;
     } catch (const sluice::Error& e) {
+      if (e.summary) s->resumes = e.summary->resumes;
       if (e.summary && e.summary->reason != sluice::Reason::None) s->summary = e.summary;
       s->set_error(e.grpc_code, e.message, e.field, e.description);
       return static_cast<int>(e.code);
@@ -451,6 +472,8 @@ int sluice_session_follow(sluice_session* s, const char* target, const char* ses
 }
 
 uint64_t sluice_session_next_seq(const sluice_session* s) { return s == nullptr ? 0 : s->next_seq; }
+
+int sluice_session_resumes(const sluice_session* s) { return s == nullptr ? 0 : s->resumes; }
 
 int sluice_session_summary(const sluice_session* cs, sluice_summary* out) {
   if (cs == nullptr || out == nullptr) return SLUICE_ERR_USAGE;

@@ -427,9 +427,11 @@ static void test_resume(const char *token) {
          why);
   sluice_session_free(r);
 
-  /* A server that keeps no state cannot resume anything. */
+  /* A server that keeps no state cannot resume anything: UNAVAILABLE,
+   * after the tries the resume policy allows (two short ones here). */
   r = new_session();
   sluice_session_set_token(r, token);
+  sluice_session_set_resume(r, 2, 0.01, 0.02);
   rc = sluice_session_resume(r, token_target, id, tok, 0);
   snprintf(why, sizeof why, "%s (gRPC %d): %s", sluice_error_name(rc), sluice_session_grpc_code(r),
            sluice_session_error_message(r));

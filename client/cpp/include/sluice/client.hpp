@@ -211,6 +211,30 @@ struct Summary {
   // The sequence number after the last draw received: where a follow()
   // interrupted by an error resumes without loss or duplicate.
   std::uint64_t next_seq = 0;
+  // Times the client resumed the session (or the follow) by itself on a
+  // new stream after the one before broke (ResumePolicy).
+  int resumes = 0;
+};
+
+// ResumePolicy bounds how run(), resume() and follow() resume by themselves
+// when their stream breaks: gRPC UNAVAILABLE (the server was killed,
+// restarts, or shut down having checkpointed the session; a connection
+// reset), a reset stream (INTERNAL or UNKNOWN naming RST_STREAM or a reset
+// connection), or a stream that ended without a Finished frame. The client
+// then opens a new stream whose first frame is Resume with the session id,
+// its token and the next sequence number it needs, so on_draws sees every
+// draw once, in order, with no gap; the evaluator may be asked again for
+// points it evaluated before the break. Up to attempts tries in a row,
+// waiting first_wait, 2 first_wait, 4 first_wait, ... seconds, never more
+// than max_wait; a try that gets the session back resets the count. A
+// session that the server never registered is not resumed (there is
+// nothing to resume: the error comes at once). The server must keep state
+// (sluice serve --state-dir or --state-postgres) for a session to outlive
+// it; a follow() resumes on any server that still has the rows.
+struct ResumePolicy {
+  int attempts = 10;       // <= 0: never resume, errors are thrown at once
+  double first_wait = 0.1;  // seconds; <= 0 means 0.1
+  double max_wait = 5;      // seconds; <= 0 means 5
 };
 
 // Callbacks run on the thread that called run().
@@ -273,7 +297,10 @@ struct Security {
 // connect returns a channel to target ("host:port", or a gRPC target such
 // as "unix:///path") whose send and receive limits are both
 // max_message_bytes (0: 4 MiB); use the same value in
-// Spec::max_message_bytes. It throws Error (Code::Usage, nothing sent) for
+// Spec::max_message_bytes. The channel reconnects after a lost connection
+// within 0.1 s at first, backing off to at most 5 s between attempts (gRPC's
+// own default grows to 2 min), so that a resume finds a restarted server
+// soon. It throws Error (Code::Usage, nothing sent) for
 // plain text to a host that is not loopback without Security::insecure,
 // an unreadable file, a certificate without its key, or an empty token.
 // The connection itself is made by the first call.
@@ -289,8 +316,10 @@ std::shared_ptr<grpc::Channel> connect(const std::string& target, std::int64_t m
 bool is_loopback(const std::string& target);
 
 // run runs one session on channel and returns its summary, or throws Error.
+// A broken stream is resumed as policy says (by default: yes, up to 10
+// tries in a row); on_registered is called once, for the first Registered.
 Summary run(const std::shared_ptr<grpc::Channel>& channel, const Spec& spec, const Evaluator& evaluate,
-            const Callbacks& callbacks = {});
+            const Callbacks& callbacks = {}, const ResumePolicy& policy = {});
 
 // resume continues session session_id after its stream broke or its
 // server restarted (the Session rpc with a Resume frame in place of
@@ -310,10 +339,12 @@ Summary run(const std::shared_ptr<grpc::Channel>& channel, const Spec& spec, con
 // unknown id or a wrong token, 11 (OUT_OF_RANGE) when the draws from
 // next_seq are no longer kept; Code::Unavailable from a server that keeps
 // no state. The channel's message limit is the one the session was
-// registered with (connect(..., spec.max_message_bytes)).
+// registered with (connect(..., spec.max_message_bytes)). A stream that
+// breaks, the first one included (a server still restarting), is resumed
+// again as policy says.
 Summary resume(const std::shared_ptr<grpc::Channel>& channel, const std::string& session_id,
                const std::string& session_token, std::uint64_t next_seq, const Evaluator& evaluate,
-               const Callbacks& callbacks = {});
+               const Callbacks& callbacks = {}, const ResumePolicy& policy = {});
 
 // The receive limit a follower's channel should have: a Follow frame can be
 // as large as the server's own limit (sluice serve --max-message-bytes,
@@ -336,9 +367,11 @@ constexpr std::int64_t kFollowMaxMessageBytes = 64 << 20;
 // bounded buffer, a broken connection) follow throws Error whose summary
 // holds what was received: resume with
 // follow(channel, session_id, session_token, e.summary->next_seq, on_draws).
+// A broken stream is followed again from the next draw by itself first, as
+// policy says.
 Summary follow(const std::shared_ptr<grpc::Channel>& channel, const std::string& session_id,
                const std::string& session_token, std::uint64_t from_seq,
-               const std::function<void(const Draws&)>& on_draws);
+               const std::function<void(const Draws&)>& on_draws, const ResumePolicy& policy = {});
 
 }  // namespace sluice
 

@@ -1,5 +1,6 @@
 // Command slurmworker is the worker the Slurm test runs in each array
-// task: it serves the session named in its environment (see
+// task, and the worker-kill test (TestWorkerKilledEvery10s) in each of its
+// worker processes: it serves the session named in its environment (see
 // client.WorkFromEnv) with ∇log π = −x of a standard normal, sleeping
 // SLUICE_TEST_ROW_DELAY per row to stand in for a simulation.
 package main
