@@ -964,6 +964,11 @@ func (s *Session) startAtMode() {
 	s.kernel = k
 	// The divergence watch measures excursions from the new starts.
 	s.div = newDivergence(&b)
+	// The shift term is now the search's, at most its budget: the target
+	// may be met sooner than planned.
+	if s.spec.Wants.Eps > 0 {
+		s.epsSteps = s.guarantee.stepsTo(s.spec.Wants.Eps, 0)
+	}
 }
 
 // targetsMet reports whether every requested target holds. Targets on
