@@ -241,7 +241,9 @@ type Registered struct {
 	MaxMessageBytes    int64
 	Names              []string
 	// PlannedSteps is the steps per chain of a step planned from
-	// Wants.Eps (0 otherwise).
+	// Wants.Eps, from the chains' actual start (0 otherwise, and 0 for
+	// W2 without a declared start distance until the start gradients
+	// certify it: Progress's eps target projects the rest).
 	PlannedSteps int64
 	// Token is the session's secret: Follow and Resume need it with
 	// SessionID, and workers attach with it (see Work). Keep it private.

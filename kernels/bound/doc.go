@@ -27,6 +27,13 @@
 // makes each term ε/2 at horizon T (and the sum stays ≤ ε at K·h ≥ T,
 // see TVRule).
 //
+// The TV start (derived here, docs/methods.md, section 2.5; start.go):
+// chains started from N(θ̂, M⁻¹I) with ‖θ̂ − θ*‖ ≤ r add ShiftTV(r, M) =
+// erf(r√M/(2√2)) to the bound above; the engine finds θ̂ by gradient
+// steps of size ModeSearchStep (Nesterov 2004, Theorem 2.1.15, from
+// memory), certifies r = ‖∇f(θ̂)‖/m, and gives the shift TVShiftShare of
+// the target.
+//
 // Convex, not strongly convex (derived here, docs/methods.md): with the penalised
 // target π_λ ∝ π·exp(−λ‖θ−θ̄‖²/2) and μ₂ ≥ E_π‖θ−θ̄‖²,
 //

@@ -67,11 +67,24 @@ type guarantee struct {
 	// startSource says how the start distance was obtained ("" for the
 	// declared or default one).
 	startSource string
-	// tvStart is, for a TV bound, a lower bound on the start points'
-	// distance to the mode in standard deviations of N(x*, M⁻¹I),
-	// certified from the start gradients (0: not yet known).
-	tvStart float64
+	// startPending is set for a W2 bound whose start distance will be
+	// certified from the start gradients (m declared, no start distance):
+	// the planned steps are not known until then.
+	startPending bool
+	// shift is, for a TV bound, the shift term TV(N(x̂, M⁻¹I),
+	// N(x*, M⁻¹I)) added to the start term: the mode search's budget
+	// (shiftBudget) until it completes, then the term its certified
+	// radius gives (modesearch.go). modeText says what the search found
+	// ("" while it runs).
+	shift, shiftBudget float64
+	modeText           string
 }
+
+// tvShiftNoTarget is the shift term the mode search aims at when a TV
+// bound is asked for without a target (wants.metric TV, eps 0): a
+// hundredth in TV, a tenth of the loosest target (0.1) a TV rule is
+// commonly asked for.
+const tvShiftNoTarget = 0.01
 
 // newGuarantee returns nil when no bound applies: no curvature declared,
 // another kernel, m = 0, or a step outside the theorem's range.
@@ -92,11 +105,22 @@ func newGuarantee(spec *Spec, k *kernelEntry) (*guarantee, error) {
 	if g.metric == 0 {
 		g.metric = bound.W2
 	}
+	planEps := spec.Wants.Eps
 	if g.metric == bound.TV {
-		g.setting.StartDistance = 0 // TV's theorem fixes its own start law
+		// The chains start from N(x̂, M⁻¹I) around the mode search's
+		// point (modesearch.go): the shift term takes a share of the
+		// target, and the rule plans for the rest.
+		g.shiftBudget = tvShiftNoTarget
+		if planEps > 0 {
+			g.shiftBudget = bound.TVShiftShare * planEps
+			planEps -= g.shiftBudget
+		}
+		g.shift = g.shiftBudget
+	} else {
+		g.startPending = c.StrongConvexity > 0 && c.StartDistance == 0
 	}
 	if c.StrongConvexity == 0 || spec.Step == 0 { // plan it (validate allowed this only with wants.eps)
-		p, err := bound.NewPlan(bound.Spec{Setting: g.setting, Metric: g.metric, Eps: spec.Wants.Eps, Chains: spec.Chains})
+		p, err := bound.NewPlan(bound.Spec{Setting: g.setting, Metric: g.metric, Eps: planEps, Chains: spec.Chains})
 		if err != nil {
 			return nil, BadField("register.wants.eps", "cannot plan a step: %v", err)
 		}
@@ -121,7 +145,7 @@ func newGuarantee(spec *Spec, k *kernelEntry) (*guarantee, error) {
 	}
 	g.h = spec.Step
 	if _, err := g.at(0); err != nil {
-		if spec.Wants.Eps > 0 {
+		if spec.Wants.Eps > 0 || g.metric == bound.TV {
 			return nil, BadField("register.step", "no guaranteed bound holds for this step: %v", err)
 		}
 		return nil, nil
@@ -132,7 +156,14 @@ func newGuarantee(spec *Spec, k *kernelEntry) (*guarantee, error) {
 func (g *guarantee) at(k int) (bound.Bound, error) {
 	k = max(0, k-g.k0)
 	if g.metric == bound.TV {
-		return bound.TVBound(g.setting, g.penalty, g.h, k)
+		b, err := bound.TVBound(g.setting, g.penalty, g.h, k)
+		// The chains start from N(x̂, M⁻¹I), not N(x*, M⁻¹I): by the
+		// triangle inequality and TV's contraction under a Markov kernel,
+		// the shift between the two start laws adds to the start term
+		// (docs/methods.md, section 2.5).
+		b.Start += g.shift
+		b.Total += g.shift
+		return b, err
 	}
 	return bound.W2Bound(g.setting, g.h, k)
 }
@@ -483,8 +514,10 @@ func (g *guarantee) startText() string {
 	switch {
 	case g.startSource != "":
 		return g.startSource
+	case g.metric == bound.TV && g.modeText != "":
+		return g.modeText
 	case g.metric == bound.TV:
-		return "its start law N(x*, M⁻¹I) is the theorem's own"
+		return fmt.Sprintf("the mode search that sets the start law N(x̂, M⁻¹I) has not completed: its shift term is counted at its budget %.3g", g.shiftBudget)
 	case g.setting.StartDistance > 0:
 		return fmt.Sprintf("the start distance %.4g as declared", g.setting.StartDistance)
 	}

@@ -78,14 +78,25 @@ func TestPlannedStepAndGuaranteedBound(t *testing.T) {
 	if err != nil || res.Finished.Reason != TargetMet {
 		t.Fatalf("reason %v err %v: %+v", res.Finished.Reason, err, res.Finished.Checks)
 	}
-	if tr.registered.Step != plan.Step || tr.registered.PlannedSteps != plan.Iterations {
-		t.Fatalf("registered step %v planned %d; plan %v, %d", tr.registered.Step, tr.registered.PlannedSteps, plan.Step, plan.Iterations)
+	// The step does not depend on the start distance; the steps do, and
+	// the start distance is certified from the start gradients, which
+	// come after Registered: planned_steps is 0 there, not the count of
+	// a start at the mode.
+	if tr.registered.Step != plan.Step || tr.registered.PlannedSteps != 0 {
+		t.Fatalf("registered step %v planned %d; plan %v", tr.registered.Step, tr.registered.PlannedSteps, plan.Step)
 	}
-	// The plan assumed a start at the mode (start distance √(p/m)); the
-	// engine then certifies the start from its gradient, ‖∇log π(x₀)‖/m +
-	// √(p/m) = √0.5 + √2 (strong convexity), and runs until the bound
-	// with that start distance is within eps: the first such step count.
+	// The engine certifies the start from its gradient, ‖∇log π(x₀)‖/m +
+	// √(p/m) = √0.5 + √2 (strong convexity), plans the steps again from
+	// it, and runs until the bound with that start distance is within
+	// eps: the first such step count.
 	set := bound.Setting{Convexity: 1, Smoothness: 1, Dim: 2, StartDistance: math.Sqrt(0.5) + math.Sqrt(2), Source: bound.Declared}
+	certified, err := bound.NewPlan(bound.Spec{Setting: set, Metric: bound.W2, Eps: 0.5, Chains: 2})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if s.guarantee.planned != certified.Iterations || certified.Step != plan.Step || !(certified.Iterations > plan.Iterations) {
+		t.Fatalf("planned %d steps after the certificate, plan from it %d (%v), from the mode %d", s.guarantee.planned, certified.Iterations, certified.Step, plan.Iterations)
+	}
 	k := int(res.Finished.Progress.Steps)
 	at := func(k int) float64 {
 		b, err := bound.W2Bound(set, plan.Step, k)
@@ -241,10 +252,12 @@ func TestEstimatedBoundIsLabelled(t *testing.T) {
 // A convex target that is not strongly convex (m = 0) with a TV target
 // and a second-moment bound is sampled through the penalised target π_λ
 // (derived here: TV(π, π_λ) ≤ λμ₂/2, the extension of Dalalyan (2017) to
-// m = 0): λ and the step come from kernels/bound's composed
-// rule, every gradient gets −λ(θ − centre), and the bias λμ₂/2 is the
-// bound's own term. The draws equal an in-process LMC on the penalised
-// gradient, bit for bit.
+// m = 0): λ and the step come from kernels/bound's composed rule for
+// the nine tenths of eps the mode search's shift term leaves
+// (bound.TVShiftShare), every gradient gets −λ(θ − centre), and the
+// bias λμ₂/2 is the bound's own term. The mode search runs on π_λ (m = λ,
+// M = 1 + λ), and the draws equal an in-process LMC on the penalised
+// gradient from the starts it drew, bit for bit.
 func TestPenalisedTargetForConvexPotential(t *testing.T) {
 	// f(θ) = log cosh θ: convex, M = 1, m = 0; π ∝ sech θ has
 	// E θ² = π²/4 ≈ 2.467 (a closed form, from memory), so about the
@@ -252,7 +265,7 @@ func TestPenalisedTargetForConvexPotential(t *testing.T) {
 	spec := Spec{Dim: 1, Chains: 2, Start: []float64{0.5}, StartRows: 1, Seed: 9, MaxEvaluations: 2 * 300,
 		Curvature: &Curvature{Smoothness: 1, SecondMoment: 2.75}, Wants: Wants{Eps: 0.3, Metric: bound.TV}}
 	plan, err := bound.NewPlan(bound.Spec{Setting: bound.Setting{Smoothness: 1, Dim: 1, SecondMoment: 2.75, Source: bound.Declared},
-		Metric: bound.TV, Eps: 0.3, Chains: 2})
+		Metric: bound.TV, Eps: 0.3 * (1 - bound.TVShiftShare), Chains: 2})
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -262,18 +275,28 @@ func TestPenalisedTargetForConvexPotential(t *testing.T) {
 			ev.Grad[i] = -math.Tanh(x)
 		}
 	}
-	tr, res, err := drive(t, mustNew(t, spec, Limits{}), tanh)
+	s := mustNew(t, spec, Limits{})
+	tr, res, err := drive(t, s, tanh)
 	if err != nil || res.Finished.Reason != BudgetSpent {
 		t.Fatalf("reason %v err %v", res.Finished.Reason, err)
 	}
-	if tr.registered.Step != plan.Step || tr.registered.PlannedSteps != plan.Iterations || plan.Penalty != 0.3/2.75 {
+	if tr.registered.Step != plan.Step || tr.registered.PlannedSteps != plan.Iterations || math.Abs(plan.Penalty-0.27/2.75) > 1e-15 {
 		t.Fatalf("registered step %v planned %d; plan %+v", tr.registered.Step, tr.registered.PlannedSteps, plan.Schedule)
 	}
 	b := res.Finished.Progress.Bound
 	if b == nil || math.Abs(b.Bias-plan.Penalty*2.75/2) > 1e-15 || b.Metric != bound.TV {
 		t.Fatalf("bound %+v, want bias term λμ₂/2 = %v", b, plan.Penalty*2.75/2)
 	}
-	k := kernelsLMC(1, 2, plan.Step, []float64{0.5}, 9)
+	ms := s.mode
+	// The certified radius is |∇log π_λ(x̂)|/λ (strong convexity of π_λ).
+	if ms == nil || !ms.done || !(ms.r <= bound.ShiftRadius(0.03, 1+plan.Penalty)) ||
+		math.Abs(math.Abs(math.Tanh(ms.xhat[0])+plan.Penalty*(ms.xhat[0]-0.5))/plan.Penalty-ms.r) > 1e-12 {
+		t.Fatalf("mode search %+v", ms)
+	}
+	if got, want := b.Start, bound.ShiftTV(ms.r, 1+plan.Penalty); !(got > want) {
+		t.Fatalf("start term %v lacks the shift %v", got, want)
+	}
+	k := kernelsLMC(1, 2, plan.Step, ms.starts, 9)
 	g := make([]float64, 2)
 	for _, d := range tr.draws {
 		for i, x := range k.Next().Points {

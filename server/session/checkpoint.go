@@ -175,6 +175,13 @@ type guaranteeState struct {
 	K0      int
 	Planned int
 	Replan  bool
+	// The start: a W2 start distance certified from the start gradients,
+	// a TV bound's shift term and what the mode search found.
+	StartDistance float64
+	StartSource   string
+	StartPending  bool
+	Shift         float64
+	ModeText      string
 }
 
 // monitorState is the "monitor" section.
@@ -252,7 +259,8 @@ func (s *Session) snapshot(fin *Finished) (Checkpoint, error) {
 		JudgeNext: s.judgeNext, SteinNext: s.steinNext, Divergence: s.div,
 		Noise: noiseState{Sum: s.noise.sum, Count: s.noise.count, N: s.noise.n, Mean: s.noise.mean, M2: s.noise.m2, Touched: s.noise.touched}}
 	if g := s.guarantee; g != nil {
-		st.Guarantee = &guaranteeState{Noise: g.setting.Noise, H: g.h, K0: g.k0, Planned: g.planned, Replan: g.replan}
+		st.Guarantee = &guaranteeState{Noise: g.setting.Noise, H: g.h, K0: g.k0, Planned: g.planned, Replan: g.replan,
+			StartDistance: g.setting.StartDistance, StartSource: g.startSource, StartPending: g.startPending, Shift: g.shift, ModeText: g.modeText}
 	}
 	if err := add("session", st); err != nil {
 		return Checkpoint{}, err
@@ -404,6 +412,12 @@ func Restore(state []byte, lim Limits) (*Session, error) {
 	s.noise = noiseMeter{sum: n.Sum, count: n.Count, n: n.N, mean: n.Mean, m2: n.M2, touched: n.Touched}
 	if g := st.Guarantee; g != nil && s.guarantee != nil {
 		s.guarantee.setting.Noise, s.guarantee.h, s.guarantee.k0, s.guarantee.planned, s.guarantee.replan = g.Noise, g.H, g.K0, g.Planned, g.Replan
+		if g.StartSource != "" { // certified after registration
+			s.guarantee.setting.StartDistance, s.guarantee.startSource, s.guarantee.startPending = g.StartDistance, g.StartSource, false
+		}
+		if g.ModeText != "" { // the mode search completed
+			s.guarantee.shift, s.guarantee.modeText = g.Shift, g.ModeText
+		}
 	}
 	s.persist.token = st.Token
 	s.judgeNext, s.steinNext = st.JudgeNext, st.SteinNext

@@ -3,9 +3,11 @@ package session
 import (
 	"bytes"
 	"math"
+	"strings"
 	"testing"
 
 	"sluice/kernels"
+	"sluice/kernels/bound"
 )
 
 // exactGaussian answers every quantity for π = N(0, I/λ) exactly:
@@ -237,5 +239,46 @@ func TestRestoreRejectsDamagedState(t *testing.T) {
 	}
 	if _, err := Restore(append([]byte("sluice-state\x02"), st[13:]...), lim); err == nil {
 		t.Fatal("another version accepted")
+	}
+}
+
+// With a TV guarantee, the mode search runs before sampling: a session
+// restored from its first checkpoint (before any request) runs the search
+// again and draws the same starts; one restored after it keeps what the
+// search found. Both continue bit for bit and report the same bound, the
+// shift term included, as the run that never stopped.
+func TestCheckpointWithModeSearch(t *testing.T) {
+	lim := Limits{FollowBuffer: 1 << 12}
+	spec := Spec{Dim: 2, Chains: 3, Start: []float64{30, 30}, StartRows: 1, Seed: 99, DrawsPerChain: 40, CheckpointEverySteps: 7,
+		Curvature: &Curvature{StrongConvexity: 0.5, Smoothness: 1}, Wants: Wants{Eps: 0.1, Metric: bound.TV}}
+	o := exactGaussian(1)
+	full, cps := runCollecting(t, mustNew(t, spec, lim), o)
+	want, _ := flatten(t, 0, full.draws)
+	wb := full.finished.Progress.Bound
+	if wb == nil || len(cps) < 3 {
+		t.Fatalf("bound %+v, %d checkpoints", wb, len(cps))
+	}
+	for _, k := range []int{0, 1, len(cps) - 2} {
+		s, err := Restore(cps[k].State, lim)
+		if err != nil {
+			t.Fatal(err)
+		}
+		next := s.seq
+		tr, _, err := drive(t, s, o)
+		if err != nil {
+			t.Fatal(err)
+		}
+		got, _ := flatten(t, next, tr.draws)
+		if !sameBits(got, want[int(next)*2:]) {
+			t.Fatalf("checkpoint %d: draws differ", k)
+		}
+		b := tr.finished.Progress.Bound
+		if b == nil || b.Total != wb.Total || b.Start != wb.Start || tr.finished.Progress.EvaluationsUsed != full.finished.Progress.EvaluationsUsed {
+			t.Fatalf("checkpoint %d: bound %+v, want %+v", k, b, wb)
+		}
+		c, _ := checkNamed(tr.finished.Checks, "guarantee")
+		if !strings.Contains(c.Message, "8 gradient steps of the mode search") {
+			t.Fatalf("checkpoint %d: guarantee check %+v", k, c)
+		}
 	}
 }

@@ -391,8 +391,8 @@ func (s *Session) boundBroken() string {
 	cv := &s.mon.curv
 	const slack = 1 + 1e-9
 	switch {
-	case s.guarantee != nil && s.guarantee.tvStart > 1:
-		return fmt.Sprintf("the TV bound of Dalalyan (2017) assumes chains started from N(x*, M⁻¹I), x* the mode; a start point is at least %.3g of that law's standard deviations from the mode (‖∇log π(x₀)‖/M, by M-smoothness), so it does not apply", s.guarantee.tvStart)
+	case s.mode != nil && s.mode.fault != nil:
+		return s.mode.fault.Reason
 	case cv.NonConvex() && c.StrongConvexity > 0:
 		return fmt.Sprintf("a gradient pair shows −log π is not convex, but m = %.4g was declared", c.StrongConvexity)
 	case cv.Pairs() > 0 && cv.SmoothnessFloor() > c.Smoothness*slack:
@@ -422,13 +422,6 @@ func (s *Session) guaranteeChecks() []Check {
 	}
 	c := Check{Name: "guarantee", Status: CheckPass, Figure: b.Total,
 		Message: fmt.Sprintf("the %s bound %.4g rests on %s; %s", g.metric, b.Total, g.theorem(), g.startText())}
-	if g.metric == bound.TV {
-		// The chains start from the client's points, not from a draw of
-		// N(x*, M⁻¹I): within a standard deviation of the mode (or
-		// unknown, m = 0) the bound is only indicative.
-		c.Status = CheckWarn
-		c.Message = "the chains were not started from N(x*, M⁻¹I) as the theorem assumes (they start from the given points), so the bound is indicative only; " + c.Message
-	}
 	if g.metric != 0 && g.metric.String() == "W2" && s.mon.measured {
 		var v float64
 		for _, p := range s.mon.params {
@@ -470,11 +463,11 @@ func (s *Session) guaranteeOnly() bool {
 func (s *Session) certifyStart(req *kernels.Request) {
 	g := s.guarantee
 	c := s.spec.Curvature
-	if g == nil || c == nil || g.startSource != "" || g.tvStart != 0 || !req.Need.Has(kernels.NeedGradient) || req.Rows != s.spec.Chains {
+	if g == nil || c == nil || g.startSource != "" || !req.Need.Has(kernels.NeedGradient) || req.Rows != s.spec.Chains {
 		return
 	}
-	tv := g.metric == bound.TV
-	if !tv && (g.metric != bound.W2 || c.StrongConvexity <= 0 || c.StartDistance > 0) {
+	// A TV bound's start is the mode search's (modesearch.go).
+	if g.metric != bound.W2 || c.StrongConvexity <= 0 || c.StartDistance > 0 {
 		return
 	}
 	d := s.spec.Dim
@@ -495,25 +488,21 @@ func (s *Session) certifyStart(req *kernels.Request) {
 		for _, v := range s.answer.Grad[r*d : (r+1)*d] {
 			n2 += v * v
 		}
-		if tv {
-			// M-smoothness: ‖∇f(x₀)‖ ≤ M·‖x₀ − x*‖, a lower bound on
-			// the start's distance to the mode.
-			worst = math.Max(worst, math.Sqrt(n2)/c.Smoothness)
-		} else {
-			worst = math.Max(worst, math.Sqrt(n2)/c.StrongConvexity)
-		}
-	}
-	if tv {
-		g.tvStart = worst * math.Sqrt(c.Smoothness)
-		if g.tvStart == 0 {
-			g.tvStart = math.SmallestNonzeroFloat64
-		}
-		return
+		worst = math.Max(worst, math.Sqrt(n2)/c.StrongConvexity)
 	}
 	g.setting.StartDistance = worst + math.Sqrt(float64(d)/c.StrongConvexity)
 	g.startSource = fmt.Sprintf("the start distance %.4g certified from the start gradients (‖∇log π(x₀)‖/m + √(p/m), worst chain; strong convexity, Durmus and Moulines 2019)", g.setting.StartDistance)
+	g.startPending = false
 	if s.spec.Wants.Eps > 0 {
 		s.epsSteps = g.stepsTo(s.spec.Wants.Eps, 0)
+		if g.planned > 0 {
+			// The planned step does not depend on the start distance
+			// (W2Rule); the iterations do: plan them again from the
+			// certified one.
+			if p, err := bound.NewPlan(bound.Spec{Setting: g.setting, Metric: bound.W2, Eps: s.spec.Wants.Eps, Chains: s.spec.Chains}); err == nil {
+				g.planned = g.k0 + p.Iterations
+			}
+		}
 	}
 }
 

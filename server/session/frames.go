@@ -22,8 +22,12 @@ type Registered struct {
 	EvaluationsPerStep int
 	MaxMessageBytes    int64
 	Names              []string
-	// PlannedSteps is the steps per chain the plan needs when the step
-	// was planned from Wants.Eps; 0 otherwise.
+	// PlannedSteps is the steps per chain the plan needs, from the
+	// chains' actual start, when the step was planned from Wants.Eps: for
+	// TV from the mode search's N(x̂, M⁻¹I) (the plan leaves a tenth of
+	// eps to its shift term); for W2 from the declared start distance,
+	// and 0 when that distance is yet to be certified from the start
+	// gradients (see Session.plannedSteps); 0 otherwise.
 	PlannedSteps int
 	// Token is the session's secret (Session.SetToken); Resumed is set
 	// when the session was restored from a checkpoint.

@@ -9,8 +9,9 @@ import (
 
 // A Phase is a stage the engine runs before sampling, in the same ask/tell
 // shape as a kernel but without chains, steps or draws of its own: a
-// gradient check (gradcheck.go) and a curvature probe today; a mode
-// search or metric adaptation can be added the same way.
+// gradient check (gradcheck.go), a curvature probe, and the mode search
+// that starts a TV guarantee (modesearch.go); others can be added the
+// same way.
 //
 // The contract:
 //   - Next returns the phase's next request. Calling Next again before Tell

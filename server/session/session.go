@@ -70,6 +70,9 @@ type Session struct {
 	judgeNext int
 	steinNext int
 	gradCheck *gradientCheckPhase
+	// mode is the mode search that starts a TV guarantee's chains
+	// (modesearch.go); nil when none runs.
+	mode *modeSearchPhase
 }
 
 // Result is what Run reports when it returns.
@@ -169,6 +172,9 @@ func (s *Session) shapes() []requestShape {
 	}
 	if gradientCheckPoints(&s.spec, s.entry) > 0 {
 		out = append(slices.Clip(out), gradCheckShape)
+	}
+	if wantsModeSearch(s.guarantee) {
+		out = append(slices.Clip(out), modeSearchShapes...)
 	}
 	return out
 }
@@ -347,6 +353,10 @@ func (s *Session) begin(ctx context.Context, in <-chan Message, send func(Frame)
 	}
 	if s.spec.CurvatureProbe > 0 {
 		s.phases = append(s.phases, newCurvatureProbe(s.kernel.Positions(), s.spec.Dim, s.spec.CurvatureProbe))
+	}
+	if wantsModeSearch(s.guarantee) {
+		s.mode = newModeSearch(&s.spec, s.guarantee, s.spec.Start, s.tune.declare)
+		s.phases = append(s.phases, s.mode)
 	}
 	if s.tune.auto && s.spec.Curvature == nil && s.kernel.Steps() == 0 {
 		s.phases = append(s.phases, s.tune.probe(s.kernel, &s.spec, s.kernel.Positions()[:s.spec.Dim]))
@@ -533,6 +543,9 @@ func (s *Session) complete(r *run, req *kernels.Request) *Error {
 		}
 		if f, ok := ph.(interface{ Fault() *Error }); ok && f.Fault() != nil {
 			return f.Fault()
+		}
+		if ph == Phase(s.mode) && s.mode.done {
+			s.startAtMode()
 		}
 		return nil
 	}
@@ -919,11 +932,43 @@ func sameBits(a, b []float64) bool {
 	return true
 }
 
+// plannedSteps is Registered.PlannedSteps: the steps per chain the plan
+// needs from the chains' actual start. For TV that is the mode search's
+// N(x̂, M⁻¹I), which the plan accounts for (its shift term has a share of
+// the target). For W2 without a declared start distance the start
+// distance is certified from the start gradients, which come after
+// Registered: until then the count is not known and is 0 (a resumed
+// session's Registered carries it; Progress projects it all along).
 func (s *Session) plannedSteps() int {
-	if s.guarantee == nil {
+	if s.guarantee == nil || s.guarantee.startPending {
 		return 0
 	}
 	return s.guarantee.planned
+}
+
+// startAtMode restarts the kernel, which has taken no step, from the
+// starts the mode search drew: the kernel is built again as New built
+// it, from those starts, with the same seed (its stream has drawn
+// nothing yet), step and metric.
+func (s *Session) startAtMode() {
+	old := s.kernel
+	b := s.spec
+	b.Start, b.StartRows = s.mode.starts, s.spec.Chains
+	if h := stepOf(old); h > 0 {
+		b.Step = h
+	}
+	k := s.entry.build(&b, kernels.NewSource(s.spec.Seed))
+	if s.tune.metric != nil {
+		k.(kernels.MetricUser).SetMetric(s.tune.metric)
+	}
+	s.kernel = k
+	// The divergence watch measures excursions from the new starts.
+	s.div = newDivergence(&b)
+	// The shift term is now the search's, at most its budget: the target
+	// may be met sooner than planned.
+	if s.spec.Wants.Eps > 0 {
+		s.epsSteps = s.guarantee.stepsTo(s.spec.Wants.Eps, 0)
+	}
 }
 
 // targetsMet reports whether every requested target holds. Targets on
@@ -1027,7 +1072,11 @@ func (s *Session) targets(b *bound.Bound) []TargetStatus {
 // burnInCost is the evaluations the burn-in steps took (per-step cost
 // times burn-in, capped at what was used).
 func (s *Session) burnInCost() int64 {
-	return min(s.used, s.spec.BurnIn*int64(s.kernel.EvaluationsPerStep())+s.tune.probeEvals)
+	searched := int64(0)
+	if s.mode != nil {
+		searched = int64(s.mode.evaluated)
+	}
+	return min(s.used, s.spec.BurnIn*int64(s.kernel.EvaluationsPerStep())+s.tune.probeEvals+searched)
 }
 
 // estimatedBound is the W2 bound of a session whose kernel the bounds

@@ -480,6 +480,11 @@ func (s *Spec) validateAccuracy(k *kernelEntry) error {
 		}
 	}
 	w := s.Wants
+	if w.Metric == bound.TV {
+		if err := s.validateTV(k); err != nil {
+			return err
+		}
+	}
 	for _, f := range []struct {
 		name string
 		v    float64
@@ -504,6 +509,31 @@ func (s *Spec) validateAccuracy(k *kernelEntry) error {
 		case !k.guaranteed:
 			return BadField("register.wants.eps", "guaranteed bounds do not cover kernel %q", s.Kernel)
 		}
+	}
+	return nil
+}
+
+// validateTV refuses a TV guarantee (wants.metric TV) whose assumptions
+// the engine cannot establish, naming the field that is missing or
+// wrong. The TV bound of Dalalyan (2017) holds for unadjusted Langevin
+// with exact gradients from a start drawn from N(x*, M⁻¹I); the engine
+// provides that start by a mode search (modesearch.go), which needs the
+// declared m (or, for m = 0, the penalised target's λ) to certify how far
+// its point is from the mode, and M for the start's spread.
+func (s *Spec) validateTV(k *kernelEntry) error {
+	c := s.Curvature
+	const why = "the TV bound (Dalalyan 2017) holds only for chains started from N(x*, M⁻¹I), x* the mode: the server finds the mode by gradient steps and certifies how close it got with the declared m, then draws the starts with the declared M"
+	switch {
+	case c == nil:
+		return BadField("register.curvature", "a TV guarantee (wants.metric TV) needs the declared curvature m > 0 and M (strong_convexity and smoothness): %s", why)
+	case !k.guaranteed:
+		return BadField("register.kernel", "a TV guarantee covers unadjusted Langevin (lmc) only, the method the theorem of Dalalyan (2017) is about; kernel %q is not covered", s.Kernel)
+	case s.Noise.Stochastic:
+		return BadField("register.noise.kind", "a TV guarantee needs exact gradients (the TV bound of Dalalyan 2017 has no term for gradient noise); use metric W2 with stochastic gradients")
+	case c.StrongConvexity == 0 && (s.Wants.Eps == 0 || c.SecondMoment == 0):
+		return BadField("register.curvature.strong_convexity", "a TV guarantee needs m > 0 (or, with m = 0, wants.eps and curvature.second_moment, for the penalised target): %s", why)
+	case c.StartDistance > 0:
+		return BadField("register.curvature.start_distance", "is for W2: a TV guarantee starts the chains from N(x̂, M⁻¹I) around a mode the server certifies, not from the given start")
 	}
 	return nil
 }

@@ -8,6 +8,7 @@ import (
 	"testing"
 	"time"
 
+	"gonum.org/v1/gonum/integrate/quad"
 	"gonum.org/v1/gonum/mat"
 
 	"sluice/kernels"
@@ -227,21 +228,237 @@ func TestW2StartCertifiedFromGradient(t *testing.T) {
 	}
 }
 
-// Chains started at (30, 30) with a TV target: the theorem assumes a
-// start drawn from N(x*, M⁻¹I); the start gradient shows the start is at
-// least ‖∇log π(x₀)‖/M = 42.4 standard deviations from the mode, so the
-// guarantee check fails and the session never ends "target met" (the
-// exact TV of the chains' law is far above the target).
-func TestTVGuaranteeRefusedForAFarStart(t *testing.T) {
-	spec := Spec{Dim: 2, Chains: 2, Start: []float64{30, 30}, StartRows: 1, Seed: 4, MaxEvaluations: 2 * 5000,
-		Curvature: &Curvature{StrongConvexity: 1, Smoothness: 1}, Wants: Wants{Eps: 0.1, Metric: bound.TV}}
-	_, res, err := drive(t, mustNew(t, spec, Limits{}), gaussian(1))
-	if err != nil || res.Finished.Reason == TargetMet {
-		t.Fatalf("reason %v err %v", res.Finished.Reason, err)
+// lmcIsoLaw is the law of one LMC chain on N(0, I) (gradient −x) after k
+// steps of size h from N(μ₀, v₀I): LMC's recursion x ← (1 − h)x + √(2h)ξ
+// is linear and Gaussian, so the law stays N(a·μ₀, v·I) with a = (1 − h)^k
+// and v = a²v₀ + 2h(1 − a²)/(1 − (1 − h)²) (derived here: the variance
+// obeys v_{j+1} = (1 − h)²v_j + 2h; docs/methods.md, section 4).
+func lmcIsoLaw(h float64, k int, v0 float64) (a, v float64) {
+	a = math.Pow(1-h, float64(k))
+	return a, a*a*v0 + 2*h*(1-a*a)/(1-(1-h)*(1-h))
+}
+
+// tvCentred2D is the exact TV between N(0, s²I₂) and N(0, I₂), a closed
+// form derived here: the densities cross on the circle ‖x‖² = ρ² =
+// 2s²·log s²/(s² − 1), and ‖x‖²/s² is χ²₂ (exponential with mean 2) under
+// the first, so TV = |exp(−ρ²/(2s²)) − exp(−ρ²/2)|.
+func tvCentred2D(s2 float64) float64 {
+	if s2 == 1 {
+		return 0
 	}
-	c, ok := checkNamed(res.Finished.Checks, "guarantee")
-	if !ok || c.Status != CheckFail || !strings.Contains(c.Message, "N(x*, M⁻¹I)") {
+	rho2 := 2 * s2 * math.Log(s2) / (s2 - 1)
+	return math.Abs(math.Exp(-rho2/(2*s2)) - math.Exp(-rho2/2))
+}
+
+// The closed form of tvCentred2D against gonum's Gauss–Legendre rule on
+// the radial integral ½∫₀^∞ |p(r) − q(r)|·2πr dr, split where the
+// densities cross.
+func TestTVCentred2DMatchesIntegral(t *testing.T) {
+	for _, s2 := range []float64{0.5, 1.0005, 1.3, 4} {
+		dens := func(r, v float64) float64 { return math.Exp(-r*r/(2*v)) / (2 * math.Pi * v) }
+		f := func(r float64) float64 { return math.Pi * r * math.Abs(dens(r, s2)-dens(r, 1)) }
+		rho := math.Sqrt(2 * s2 * math.Log(s2) / (s2 - 1))
+		got := quad.Fixed(f, 0, rho, 300, nil, 0) + quad.Fixed(f, rho, 40*math.Sqrt(math.Max(s2, 1)), 600, nil, 0)
+		if math.Abs(got-tvCentred2D(s2)) > 1e-10 {
+			t.Errorf("s² = %v: integral %.12g, closed form %.12g", s2, got, tvCentred2D(s2))
+		}
+	}
+}
+
+// The example: a TV target of 0.1 on N(0, I) in 2-D with
+// m = M = 1 declared, chains given the start (30, 30) or (100, 100). The
+// mode search runs first (counted in the evaluations): its step
+// 2/(m + M) = 1 lands exactly on the mode 0 (x − 1·x), where the
+// certified radius is 0, so it takes two gradients and adds no shift.
+// The chains then start from N(0, I), the plan is the rule of Dalalyan
+// (2017) for 0.9 of the target (kernels/bound), and the session from
+// (30, 30) ends "target met" with a bound ≥ the exact TV of the chains'
+// law, N(0, vI) after k steps (lmcIsoLaw) against N(0, I) (tvCentred2D).
+// From (100, 100) the search ends at the same x̂ = 0 and the same seed
+// draws the same starts, bit for bit, so the rest of that run is the
+// same chain: it runs 50 steps, where the bound again dominates the
+// exact TV.
+func TestTVGuaranteeStartsFromTheCertifiedMode(t *testing.T) {
+	plan, err := bound.NewPlan(bound.Spec{Setting: bound.Setting{Convexity: 1, Smoothness: 1, Dim: 2, Source: bound.Declared},
+		Metric: bound.TV, Eps: 0.1 * (1 - bound.TVShiftShare), Chains: 2})
+	if err != nil {
+		t.Fatal(err)
+	}
+	var first []float64
+	for _, x0 := range []float64{30, 100} {
+		spec := Spec{Dim: 2, Chains: 2, Start: []float64{x0, x0}, StartRows: 1, Seed: 4, MaxEvaluations: 2 * 8000,
+			Curvature: &Curvature{StrongConvexity: 1, Smoothness: 1}, Wants: Wants{Eps: 0.1, Metric: bound.TV}}
+		want := TargetMet
+		if x0 == 100 {
+			spec.DrawsPerChain, want = 50, DrawsCollected
+		}
+		s := mustNew(t, spec, Limits{ProgressInterval: time.Hour})
+		tr, res, err := drive(t, s, gaussian(1))
+		if err != nil || res.Finished.Reason != want {
+			t.Fatalf("start %v: reason %v err %v", x0, res.Finished.Reason, err)
+		}
+		if tr.registered.Step != plan.Step || tr.registered.PlannedSteps != plan.Iterations {
+			t.Fatalf("start %v: registered step %v planned %d; plan %v, %d", x0, tr.registered.Step, tr.registered.PlannedSteps, plan.Step, plan.Iterations)
+		}
+		ms := s.mode
+		if ms == nil || ms.evaluated != 2 || ms.iters != 1 || ms.r != 0 || ms.xhat[0] != 0 || ms.xhat[1] != 0 || s.guarantee.shift != 0 {
+			t.Fatalf("start %v: mode search %+v", x0, ms)
+		}
+		if first == nil {
+			first = ms.starts
+		} else if !sameBits(first, ms.starts) {
+			t.Fatalf("start %v: starts %v, from (30, 30) %v", x0, ms.starts, first)
+		}
+		p := res.Finished.Progress
+		if p.EvaluationsUsed != 2+2*p.Steps {
+			t.Fatalf("start %v: %d evaluations for %d steps and a 2-gradient search", x0, p.EvaluationsUsed, p.Steps)
+		}
+		_, v := lmcIsoLaw(plan.Step, int(p.Steps), 1)
+		exact := tvCentred2D(v)
+		b := p.Bound
+		if b == nil || !(b.Total >= exact) || (want == TargetMet && !(b.Total <= 0.1)) {
+			t.Fatalf("start %v: bound %+v, exact TV %v", x0, b, exact)
+		}
+		t.Logf("start (%v, %v): %d steps, %d evaluations, bound %.4f ≥ exact TV %.3g", x0, x0, p.Steps, p.EvaluationsUsed, b.Total, exact)
+		c, ok := checkNamed(res.Finished.Checks, "guarantee")
+		if !ok || c.Status != CheckPass || !strings.Contains(c.Message, "mode search") {
+			t.Fatalf("start %v: guarantee check %+v", x0, c)
+		}
+	}
+}
+
+// A looser declaration, m = 0.5 and M = 1, on the same N(0, I): the
+// search's step 2/(m + M) = 4/3 maps x to −x/3 (derived here), the
+// contraction (M − m)/(M + m) = 1/3 of Nesterov's (2004) theorem; the
+// certified radius ‖∇log π(x)‖/m = 2‖x‖ starts at 84.85 and must reach
+// ShiftRadius(0.01, 1) = 0.02507, which takes 8 steps (3⁷ < 84.85/0.02507
+// < 3⁸), 9 gradients. The bound's start term carries the shift
+// erf(r/(2√2)) exactly, and the reported bound is ≥ a proven upper bound
+// on the exact TV of the chains' law N(a·x̂, vI) (lmcIsoLaw, from the
+// start N(x̂, I)): by the triangle inequality TV(N(a·x̂, vI), N(0, I)) ≤
+// TV(N(a·x̂, vI), N(0, vI)) + TV(N(0, vI), N(0, I)) = erf(a‖x̂‖/(2√(2v)))
+// + tvCentred2D(v) (bound.ShiftTV's closed form, then the one above).
+func TestTVShiftTermAfterAMultiStepSearch(t *testing.T) {
+	spec := Spec{Dim: 2, Chains: 2, Start: []float64{30, 30}, StartRows: 1, Seed: 5, DrawsPerChain: 400,
+		Curvature: &Curvature{StrongConvexity: 0.5, Smoothness: 1}, Wants: Wants{Eps: 0.1, Metric: bound.TV}}
+	s := mustNew(t, spec, Limits{})
+	_, res, err := drive(t, s, gaussian(1))
+	if err != nil {
+		t.Fatal(err)
+	}
+	ms := s.mode
+	want := 30 / math.Pow(3, 8)
+	if ms == nil || ms.iters != 8 || ms.evaluated != 9 || math.Abs(ms.xhat[0]-want) > 1e-12*want || math.Abs(ms.xhat[1]-want) > 1e-12*want ||
+		math.Abs(ms.r-2*math.Hypot(ms.xhat[0], ms.xhat[1])) > 1e-15 {
+		t.Fatalf("mode search %+v, want x̂ = (%v, %v) after 8 steps", ms, want, want)
+	}
+	p := res.Finished.Progress
+	h := s.guarantee.h
+	tvb, err := bound.TVBound(bound.Setting{Convexity: 0.5, Smoothness: 1, Dim: 2, Source: bound.Declared}, 0, h, int(p.Steps))
+	if err != nil {
+		t.Fatal(err)
+	}
+	shift := bound.ShiftTV(ms.r, 1)
+	b := p.Bound
+	if b == nil || b.Start != tvb.Start+shift || b.Total != tvb.Total+shift || !(shift > 0.004) || p.EvaluationsUsed != 9+2*p.Steps {
+		t.Fatalf("bound %+v, theorem's %+v, shift %v; %d evaluations", b, tvb, shift, p.EvaluationsUsed)
+	}
+	a, v := lmcIsoLaw(h, int(p.Steps), 1)
+	upper := math.Erf(a*math.Hypot(ms.xhat[0], ms.xhat[1])/(2*math.Sqrt(2*v))) + tvCentred2D(v)
+	if !(b.Total >= upper) {
+		t.Fatalf("bound %v below the upper bound %v on the exact TV", b.Total, upper)
+	}
+	t.Logf("%d steps: bound %.4f (shift %.3g) ≥ exact TV ≤ %.3g", p.Steps, b.Total, shift, upper)
+}
+
+// The starts come from a stream of the session's seed: the same seed
+// gives the same bits, another seed other starts. With 400 chains their
+// sample mean and variance match N(x̂, M⁻¹I) (M = 1) within 4 standard
+// errors (a sample mean of n normals has sd √(v/n), a sample variance
+// √(2/(n−1))·v; common practice).
+func TestModeSearchStartsAreSeeded(t *testing.T) {
+	starts := func(seed uint64, chains int) ([]float64, []float64) {
+		spec := Spec{Dim: 2, Chains: chains, Start: []float64{30, 30}, StartRows: 1, Seed: seed, DrawsPerChain: 1,
+			Curvature: &Curvature{StrongConvexity: 0.5, Smoothness: 1}, Wants: Wants{Eps: 0.1, Metric: bound.TV}}
+		s := mustNew(t, spec, Limits{})
+		tr, _, err := drive(t, s, gaussian(1))
+		if err != nil || len(tr.draws) == 0 {
+			t.Fatal(err)
+		}
+		return s.mode.starts, tr.draws[0].Values
+	}
+	a, da := starts(21, 4)
+	b, db := starts(21, 4)
+	c, _ := starts(22, 4)
+	if !sameBits(a, b) || !sameBits(da, db) || slices.Equal(a, c) {
+		t.Fatalf("same seed: %v and %v; another seed: %v", a, b, c)
+	}
+	n := 400
+	x, _ := starts(23, n)
+	want := 30 / math.Pow(3, 8)
+	for i := range 2 {
+		var sum, sq float64
+		for c := range n {
+			sum += x[c*2+i]
+		}
+		mean := sum / float64(n)
+		for c := range n {
+			d := x[c*2+i] - mean
+			sq += d * d
+		}
+		v := sq / float64(n-1)
+		if math.Abs(mean-want) > 4/math.Sqrt(float64(n)) || math.Abs(v-1) > 4*math.Sqrt(2/float64(n-1)) {
+			t.Fatalf("coordinate %d: mean %v (x̂ %v), variance %v", i, mean, want, v)
+		}
+	}
+}
+
+// A declared M below the target's curvature (N(0, I/4), precision 4,
+// declared m = M = 1): the search's step 1 maps x to −3x (derived here),
+// so it cannot certify within the steps the theorem allows (one, plus
+// one for rounding); the session fails on register.curvature saying the
+// declaration does not hold, and never samples.
+func TestModeSearchFailsOnAFalseDeclaration(t *testing.T) {
+	spec := Spec{Dim: 2, Chains: 2, Start: []float64{30, 30}, StartRows: 1, Seed: 4, DrawsPerChain: 10,
+		Curvature: &Curvature{StrongConvexity: 1, Smoothness: 1}, Wants: Wants{Eps: 0.1, Metric: bound.TV}}
+	tr, res, err := drive(t, mustNew(t, spec, Limits{}), gaussian(4))
+	e, ok := AsError(err)
+	if !ok || e.Kind != Invalid || e.Field != "register.curvature" || !strings.Contains(e.Reason, "do not hold") ||
+		res.Finished.Reason != Failed || len(tr.draws) != 0 || res.Finished.Progress.EvaluationsUsed != 3 {
+		t.Fatalf("got %v (%v), %d draws, %d evaluations", err, res.Finished.Reason, len(tr.draws), res.Finished.Progress.EvaluationsUsed)
+	}
+	if c, ok := checkNamed(res.Finished.Checks, "guarantee"); !ok || c.Status != CheckFail || !strings.Contains(c.Message, "mode search") {
 		t.Fatalf("guarantee check %+v", res.Finished.Checks)
+	}
+}
+
+// A TV guarantee whose assumptions the engine cannot establish is refused
+// at registration, with INVALID_ARGUMENT's kind (server/status.go maps
+// Invalid to it), naming the field and saying why.
+func TestTVGuaranteeRefusedAtRegistration(t *testing.T) {
+	base := func() Spec {
+		return Spec{Dim: 2, Chains: 2, Start: []float64{30, 30}, StartRows: 1, Seed: 4,
+			Curvature: &Curvature{StrongConvexity: 1, Smoothness: 1}, Wants: Wants{Eps: 0.1, Metric: bound.TV}}
+	}
+	for _, c := range []struct {
+		name, field, says string
+		edit              func(*Spec)
+	}{
+		{"no curvature", "register.curvature", "needs the declared curvature m > 0 and M", func(s *Spec) { s.Curvature = nil }},
+		{"no curvature, no eps", "register.curvature", "N(x*, M⁻¹I)", func(s *Spec) { s.Curvature, s.Wants.Eps, s.Step = nil, 0, 0.01 }},
+		{"m = 0 without a second moment", "register.curvature.strong_convexity", "needs m > 0", func(s *Spec) { s.Curvature.StrongConvexity = 0 }},
+		{"another kernel", "register.kernel", "lmc", func(s *Spec) { s.Kernel = "mala" }},
+		{"stochastic gradients", "register.noise.kind", "exact gradients", func(s *Spec) { s.Noise = Noise{Stochastic: true} }},
+		{"a start distance", "register.curvature.start_distance", "is for W2", func(s *Spec) { s.Curvature.StartDistance = 3 }},
+		{"a step beyond 1/M", "register.step", "h ≤ 1/M", func(s *Spec) { s.Wants.Eps, s.Step = 0, 1.5 }},
+	} {
+		spec := base()
+		c.edit(&spec)
+		_, err := New("x", spec, Limits{})
+		e, ok := AsError(err)
+		if !ok || e.Kind != Invalid || e.Field != c.field || !strings.Contains(e.Reason, c.says) {
+			t.Errorf("%s: got %v, want %s saying %q", c.name, err, c.field, c.says)
+		}
 	}
 }
 
@@ -396,5 +613,46 @@ func TestAntitheticChainsReportPossibleESS(t *testing.T) {
 	c, ok := checkNamed(res.Finished.Checks, "stability")
 	if !ok || c.Status != CheckWarn {
 		t.Fatalf("stability check %+v", res.Finished.Checks)
+	}
+}
+
+// Declared curvature is read in the declared metric's units: on
+// N(0, diag(1, 100)) with the metric C = diag(1, 100), the curvature of
+// −log π in y = L⁻¹x is the identity, so m = M = 1. The search's step
+// x ← x + 1·C·∇log π(x) = x − x lands on the mode at once (derived here),
+// and the starts x̂ + L·ξ/√M have variances (1, 100): within 4 standard
+// errors of a sample variance (√(2/(n−1))·v; common practice) over 400
+// chains.
+func TestModeSearchInTheDeclaredMetric(t *testing.T) {
+	const n = 400
+	spec := Spec{Dim: 2, Chains: n, Start: []float64{30, -300}, StartRows: 1, Seed: 8, Step: 0.01, DrawsPerChain: 1,
+		Metric: []float64{1, 100}, Curvature: &Curvature{StrongConvexity: 1, Smoothness: 1}, Wants: Wants{Metric: bound.TV}}
+	s := mustNew(t, spec, Limits{})
+	_, res, err := drive(t, s, func(p *Points, ev *Evaluations) {
+		ev.Grad = make([]float64, len(p.Points))
+		for i, x := range p.Points {
+			ev.Grad[i] = -x * []float64{1, 0.01}[i%2]
+		}
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	ms := s.mode
+	if ms == nil || ms.evaluated != 2 || ms.xhat[0] != 0 || ms.xhat[1] != 0 || res.Finished.Progress.Bound == nil {
+		t.Fatalf("mode search %+v, bound %+v", ms, res.Finished.Progress.Bound)
+	}
+	for i, want := range []float64{1, 100} {
+		var sum, sq float64
+		for c := range n {
+			sum += ms.starts[c*2+i]
+		}
+		mean := sum / n
+		for c := range n {
+			d := ms.starts[c*2+i] - mean
+			sq += d * d
+		}
+		if v := sq / (n - 1); math.Abs(v-want) > 4*math.Sqrt(2.0/(n-1))*want {
+			t.Fatalf("coordinate %d: start variance %v, want %v", i, v, want)
+		}
 	}
 }
