@@ -3,6 +3,7 @@ package server
 import (
 	"context"
 	"errors"
+	"fmt"
 
 	"sluice/kernels/bound"
 	sluicev1 "sluice/proto/sluice/v1"
@@ -39,7 +40,21 @@ func MakePlan(req *sluicev1.PlanRequest) (*sluicev1.PlanResponse, error) {
 		},
 		Metric: metricFromWire[req.GetMetric()], Eps: req.GetEps(), Chains: int(req.GetChains()), Rate: req.GetEvaluationsPerSecond(),
 	}
+	eps := spec.Eps
+	if spec.Metric == bound.TV && eps > 0 {
+		// As a session does: the server's mode search starts the chains
+		// within a shift of TVShiftShare·ε of the theorem's start, and
+		// the rule is planned for the rest of ε.
+		spec.Eps = (1 - bound.TVShiftShare) * eps
+	}
 	plan, err := bound.NewPlan(spec)
+	if err == nil && spec.Metric == bound.TV && eps > 0 {
+		plan.Final.Start += bound.TVShiftShare * eps
+		plan.Final.Total += bound.TVShiftShare * eps
+		plan.Assumptions = append(plan.Assumptions, fmt.Sprintf(
+			"the chains start from N(x̂, M⁻¹I) around a point x̂ the server's gradient search certifies near the mode; the shift from the theorem's start costs at most %.3g of ε, and the step and steps are planned for the remaining %.3g",
+			bound.TVShiftShare*eps, spec.Eps))
+	}
 	var ie *bound.InputError
 	if errors.As(err, &ie) {
 		f, ok := planField[ie.Input]
