@@ -9,7 +9,7 @@ import (
 	"go.uber.org/zap"
 
 	sluicev1 "sluice/proto/sluice/v1"
-		"sluice/server/session"
+	"sluice/server/session"
 	"sluice/server/store"
 )
 
