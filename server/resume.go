@@ -13,9 +13,10 @@ import (
 	"sluice/server/store"
 )
 
-// StateOptions configure checkpoints and Resume. With a nil Store the
-// server keeps no state: sessions end with their stream, and Resume is
-// answered UNAVAILABLE.
+// StateOptions configure checkpoints, Resume and the suspension of
+// sessions whose client stopped answering (suspend.go). With a nil Store
+// the server keeps no state: sessions end with their stream, a silent
+// client's session ends FAILED, and Resume is answered UNAVAILABLE.
 type StateOptions struct {
 	// Store keeps the checkpoints (store.OpenFile or store.OpenPostgres);
 	// the server closes it neither on Shutdown nor on Stop.
