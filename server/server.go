@@ -13,12 +13,14 @@ import (
 
 	"go.uber.org/zap"
 	"google.golang.org/grpc"
+	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/experimental"
 	"google.golang.org/grpc/health"
 	healthpb "google.golang.org/grpc/health/grpc_health_v1"
 	"google.golang.org/grpc/keepalive"
 	"google.golang.org/grpc/mem"
 	"google.golang.org/grpc/reflection"
+	"google.golang.org/grpc/status"
 	"google.golang.org/protobuf/proto"
 
 	sluicev1 "sluice/proto/sluice/v1"
@@ -329,6 +331,7 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 	}
 	spec, err := specFromWire(reg)
 	if err != nil {
+		s.log.Info("registration refused", zap.Error(err))
 		return toStatus(err)
 	}
 	budget, err := session.Need(spec, s.opts.Limits)
@@ -518,6 +521,7 @@ func (s *Server) recoverUnary(ctx context.Context, req any, info *grpc.UnaryServ
 		if r := recover(); r != nil {
 			err = s.recovered(info.FullMethod, r)
 		}
+		s.logDenied(info.FullMethod, err)
 	}()
 	return h(ctx, req)
 }
@@ -527,6 +531,21 @@ func (s *Server) recoverStream(srv any, ss grpc.ServerStream, info *grpc.StreamS
 		if r := recover(); r != nil {
 			err = s.recovered(info.FullMethod, r)
 		}
+		s.logDenied(info.FullMethod, err)
 	}()
 	return h(srv, ss)
+}
+
+// deniedCodes are the refusals no handler logs: credentials refused by
+// the token interceptors (which run inside this server's own), and a
+// session id or token that matches nothing. The handlers log their other
+// refusals themselves, with their figures.
+var deniedCodes = map[codes.Code]bool{codes.Unauthenticated: true, codes.PermissionDenied: true, codes.NotFound: true}
+
+// logDenied logs a call refused for its credentials or its session id, at
+// info.
+func (s *Server) logDenied(method string, err error) {
+	if st, ok := status.FromError(err); ok && deniedCodes[st.Code()] {
+		s.log.Info("call refused", zap.String("method", method), zap.String("code", st.Code().String()), zap.String("message", st.Message()))
+	}
 }
