@@ -15,7 +15,8 @@ import (
 // Register frame within Options.RegisterTimeout, and waits for it
 // outside the session slots (with its own cap, Options.MaxRegistering);
 // Shutdown ends such streams at once. A registered client that stops
-// answering is ended after Limits.AnswerTimeout (onSilent).
+// answering for Limits.AnswerTimeout has its session suspended, or ended
+// when the server keeps no state (onSilent, suspend.go).
 
 // awaitRegister waits for a stream's first frame, within the register
 // deadline, holding a registering token (not a session slot).
@@ -24,6 +25,7 @@ func (s *Server) awaitRegister(stream sluicev1.SluiceService_SessionServer) (*sl
 	case s.registering <- struct{}{}:
 		defer func() { <-s.registering }()
 	default:
+		s.log.Info("stream refused: too many waiting to register", zap.Int("max_registering", cap(s.registering)))
 		return nil, problem(busy, "", "server busy: %d streams are waiting to register", cap(s.registering))
 	}
 	type received struct {
@@ -49,21 +51,11 @@ func (s *Server) awaitRegister(stream sluicev1.SluiceService_SessionServer) (*sl
 		}
 		return r.f, nil
 	case <-t.C:
+		s.log.Info("stream refused: no register frame in time", zap.Duration("register_timeout", s.opts.RegisterTimeout))
 		return nil, problem(noAnswer, "register", "no register frame within %v of opening the stream", s.opts.RegisterTimeout)
 	case <-s.quit:
 		return nil, problem(draining, "", "server shutting down")
 	}
-}
-
-// onSilent is called when a registered client did not answer a request
-// within Limits.AnswerTimeout: the session has ended (its slot and memory
-// are freed as the handler returns) and err, the engine's Timeout error,
-// is what the client is told. A server that can checkpoint sessions
-// suspends the session here instead, so that the client can resume it.
-func (s *Server) onSilent(id string, sess *session.Session, res session.Result, err error) error {
-	s.log.Info("client silent: session ended", zap.String("session", id), zap.Duration("answer_timeout", s.answerTimeout()),
-		zap.Int64("draws", res.Finished.Progress.DrawsSent), zap.Int("chains", sess.Spec().Chains))
-	return err
 }
 
 // answerTimeout is the answer timeout sessions run with.
@@ -78,6 +70,8 @@ func (s *Server) answerTimeout() time.Duration {
 // what the server's memory budget has left.
 func (s *Server) memoryRefusal(b session.Budget) error {
 	big := b.Largest()
+	s.log.Info("session refused: memory budget", zap.Int64("needs", b.Total), zap.String("largest", big.What),
+		zap.Int64("left", max(0, s.mem.left())), zap.Int64("max_memory_bytes", s.mem.total))
 	return problem(tooLarge, big.Field, "this session needs %s at worst (%s); the server has %s left of its %s",
 		session.Bytes(b.Total), big.What, session.Bytes(max(0, s.mem.left())), session.Bytes(s.mem.total))
 }

@@ -9,6 +9,7 @@ import (
 	"sync"
 	"time"
 
+	"sluice/server/metrics"
 	"sluice/server/session"
 )
 
@@ -19,6 +20,7 @@ import (
 type memoryPool struct {
 	mu          sync.Mutex
 	total, used int64
+	metrics     *metrics.Metrics // the gauge of the budget in use (nil: none)
 }
 
 // reserve takes n bytes; false (and nothing taken) when fewer are left.
@@ -29,6 +31,7 @@ func (p *memoryPool) reserve(n int64) bool {
 		return false
 	}
 	p.used += n
+	p.metrics.MemoryInUse(p.used)
 	return true
 }
 
@@ -40,6 +43,7 @@ func (p *memoryPool) release(n int64) {
 	if p.used < 0 {
 		panic("server: memory pool released more than it reserved")
 	}
+	p.metrics.MemoryInUse(p.used)
 }
 
 // left returns the bytes not reserved.

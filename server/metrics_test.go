@@ -20,6 +20,8 @@ import (
 	"sluice/client"
 	"sluice/server"
 	"sluice/server/metrics"
+	"sluice/server/session"
+	"sluice/server/store"
 )
 
 // wireBytes counts a client's payload bytes on the wire, independently of
@@ -167,4 +169,65 @@ func TestMetricsCountAbortedSessions(t *testing.T) {
 	if got[`sluice_sessions_finished_total{reason="aborted"}`] != 1 || got[`sluice_sessions{state="running"}`] != 0 {
 		t.Errorf("aborted %v, running %v; want 1 and 0", got[`sluice_sessions_finished_total{reason="aborted"}`], got[`sluice_sessions{state="running"}`])
 	}
+}
+
+// countingStore counts the checkpoints written through it and their bytes.
+type countingStore struct {
+	store.Store
+	puts, bytes atomic.Int64
+}
+
+func (c *countingStore) Put(ctx context.Context, id string, rec store.Record) error {
+	err := c.Store.Put(ctx, id, rec)
+	if err == nil {
+		c.puts.Add(1)
+		c.bytes.Add(int64(len(rec.State)))
+	}
+	return err
+}
+
+// The server's own metrics read real values: while a session runs, the
+// memory budget in use is what the server reserved for it (> 0), and back
+// to 0 once it ended; every checkpoint written is one sample of the
+// checkpoint time and size histograms, whose size sum is the bytes the
+// store received.
+func TestMetricsOfCheckpointsAndMemory(t *testing.T) {
+	m := metrics.New()
+	st := &countingStore{Store: openState(t)}
+	conn, srv := start(t, server.Options{Metrics: m, FollowRetention: -1, Limits: session.Limits{FollowBuffer: 4096},
+		State: server.StateOptions{Store: st}})
+	tg := gaussian2D(t)
+	var requests int
+	var during map[string]float64
+	var used int64
+	eval := func(ctx context.Context, b *client.Batch) error {
+		requests++
+		if requests == 30 {
+			during, used = scrapeMetrics(t, m), srv.Used()
+		}
+		return evaluator(tg)(ctx, b)
+	}
+	sum, err := client.Run(testCtx(t), conn, survivalSpec(), eval)
+	if err != nil || !collected(sum.Reason) {
+		t.Fatalf("session: %v, %+v", err, sum)
+	}
+	const inUse = "sluice_memory_budget_in_use_bytes"
+	if during[inUse] <= 0 || during[inUse] != float64(used) {
+		t.Errorf("memory in use while the session ran: %v, want the server's reservation %d > 0", during[inUse], used)
+	}
+	if during["sluice_checkpoint_bytes_count"] < 1 {
+		t.Errorf("no checkpoint counted after %d requests (the first precedes the first request)", requests)
+	}
+	waitFor(t, "the session's reservation to be released", func() bool { return srv.Used() == 0 })
+	after := scrapeMetrics(t, m)
+	if after[inUse] != 0 {
+		t.Errorf("memory in use after the session: %v, want 0", after[inUse])
+	}
+	puts, bytes := float64(st.puts.Load()), float64(st.bytes.Load())
+	if puts < 2 || after["sluice_checkpoint_bytes_count"] != puts || after["sluice_checkpoint_seconds_count"] != puts ||
+		after["sluice_checkpoint_bytes_sum"] != bytes {
+		t.Errorf("checkpoints: %v counted (%v timed), %v bytes; the store got %v of %v bytes (want at least the first and the last)",
+			after["sluice_checkpoint_bytes_count"], after["sluice_checkpoint_seconds_count"], after["sluice_checkpoint_bytes_sum"], puts, bytes)
+	}
+	t.Logf("%v checkpoints of %v bytes in all; memory in use while running %v bytes", puts, bytes, during[inUse])
 }

@@ -12,6 +12,9 @@ import (
 	"time"
 
 	"go.uber.org/goleak"
+	"go.uber.org/zap"
+	"go.uber.org/zap/zapcore"
+	"go.uber.org/zap/zaptest/observer"
 	"google.golang.org/grpc"
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/credentials/insecure"
@@ -328,3 +331,56 @@ func TestOversizeAnswerRefusedBeforeDecoding(t *testing.T) {
 // draws poor (short runs often are) — these tests are about delivery, not
 // about the draws' quality.
 func collected(r client.Reason) bool { return r == client.DrawsCollected || r == client.CheckFailed }
+
+// Refusals and abandoned sessions are logged at info: a Follow of an
+// unknown session (NOT_FOUND), a session refused for want of a slot, a
+// registration refused for its input, and a session whose client went
+// away.
+func TestRefusalsAndAbandonedSessionsLoggedAtInfo(t *testing.T) {
+	core, logs := observer.New(zapcore.InfoLevel)
+	addr, _ := startTCP(t, server.Options{MaxSessions: 1, Logger: zap.New(core)})
+	conn := dialLoop(t, addr)
+	c := sluicev1.NewSluiceServiceClient(conn)
+	ctx, cancel := context.WithCancel(testCtx(t))
+	defer cancel()
+	fs, err := c.Follow(ctx, &sluicev1.FollowRequest{SessionId: "nobody", Token: "0123456789abcdef0123456789abcdef"})
+	if err == nil {
+		_, err = fs.Recv()
+	}
+	if status.Code(err) != codes.NotFound {
+		t.Fatalf("follow of an unknown session: %v", err)
+	}
+	held, err := c.Session(ctx)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := held.Send(&sluicev1.SessionRequest{Frame: &sluicev1.SessionRequest_Register{Register: goodRegister()}}); err != nil {
+		t.Fatal(err)
+	}
+	if f, err := held.Recv(); err != nil || f.GetRegistered() == nil {
+		t.Fatalf("first session: %v, %v", f, err)
+	}
+	if s, _ := finalStatus(rawSession(t, conn, goodRegister())); s.Code() != codes.ResourceExhausted {
+		t.Fatalf("second session with one slot: %v", s)
+	}
+	cancel() // the first client goes away
+	waitFor(t, "the abandoned session to be logged", func() bool { return logs.FilterMessageSnippet("abandoned").Len() == 1 })
+	bad := goodRegister()
+	bad.Dim = -1
+	if s, _ := finalStatus(rawSession(t, conn, bad)); s.Code() != codes.InvalidArgument {
+		t.Fatalf("bad registration: %v", s)
+	}
+	for _, msg := range []string{"call refused", "session refused: every slot taken", "client went away: session abandoned", "registration refused"} {
+		if n := logs.FilterMessage(msg).FilterLevelExact(zapcore.InfoLevel).Len(); n != 1 {
+			t.Errorf("%q logged %d times at info, want once; logged: %v", msg, n, messages(logs))
+		}
+	}
+}
+
+func messages(o *observer.ObservedLogs) []string {
+	var m []string
+	for _, e := range o.All() {
+		m = append(m, e.Level.String()+" "+e.Message)
+	}
+	return m
+}

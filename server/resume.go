@@ -9,14 +9,14 @@ import (
 	"go.uber.org/zap"
 
 	sluicev1 "sluice/proto/sluice/v1"
-	"sluice/server/metrics"
 	"sluice/server/session"
 	"sluice/server/store"
 )
 
-// StateOptions configure checkpoints and Resume. With a nil Store the
-// server keeps no state: sessions end with their stream, and Resume is
-// answered UNAVAILABLE.
+// StateOptions configure checkpoints, Resume and the suspension of
+// sessions whose client stopped answering (suspend.go). With a nil Store
+// the server keeps no state: sessions end with their stream, a silent
+// client's session ends FAILED, and Resume is answered UNAVAILABLE.
 type StateOptions struct {
 	// Store keeps the checkpoints (store.OpenFile or store.OpenPostgres);
 	// the server closes it neither on Shutdown nor on Stop.
@@ -35,11 +35,23 @@ type StateOptions struct {
 	// takes its sessions back at once; another replica waits for the
 	// lease to expire.
 	Replica string
-	// Lease is how long a checkpoint's lease lasts (0 means 2 minutes).
+	// Lease is how long a session's lease lasts (0 means 2 minutes). A
+	// running session renews it every Lease/3, whether or not it writes
+	// checkpoints, and every checkpoint renews it too; a session whose
+	// lease another replica took, or whose lease passed by this server's
+	// clock without a renewal, is stopped (its client gets UNAVAILABLE
+	// and resumes it where it now lives).
 	Lease time.Duration
-	// Metrics, when set, records every checkpoint written.
-	Metrics *metrics.Metrics
+	// SuspendGrace is how long a session whose client stopped answering
+	// (Limits.AnswerTimeout) stays resumable (0 means DefaultSuspendGrace;
+	// more than Retention is cut to Retention). See suspend.go.
+	SuspendGrace time.Duration
 }
+
+// DefaultSuspendGrace is StateOptions.SuspendGrace's default: long enough
+// for a batch job whose client was preempted or stalled to be requeued and
+// resume, short next to the default retention.
+const DefaultSuspendGrace = time.Hour
 
 func (o StateOptions) withDefaults() StateOptions {
 	if o.Every == 0 {
@@ -60,6 +72,10 @@ func (o StateOptions) withDefaults() StateOptions {
 	if o.Lease <= 0 {
 		o.Lease = 2 * time.Minute
 	}
+	if o.SuspendGrace <= 0 {
+		o.SuspendGrace = DefaultSuspendGrace
+	}
+	o.SuspendGrace = min(o.SuspendGrace, o.Retention)
 	return o
 }
 
@@ -100,14 +116,18 @@ func (s *Server) leave(id string, lv *liveSession) {
 }
 
 // persistTo makes sess write its checkpoints to the store, under this
-// replica's lease; a finished session's last checkpoint releases it.
-func (s *Server) persistTo(ctx context.Context, sess *session.Session) {
+// replica's lease, and returns the lease (nil without a store); a
+// finished session's last checkpoint releases it. cancel stops the
+// session when its lease is lost.
+func (s *Server) persistTo(ctx context.Context, sess *session.Session, cancel context.CancelFunc) *lease {
 	st := s.opts.State.withDefaults()
 	if st.Store == nil {
-		return
+		return nil
 	}
 	id := sess.ID()
 	log := s.log.With(zap.String("session", id))
+	l := &lease{store: st.Store, id: id, owner: st.Replica, length: st.Lease, log: log, cancel: cancel,
+		held: true, until: time.Now().Add(st.Lease), stopc: make(chan struct{}), done: make(chan struct{})}
 	sess.SetCheckpoints(session.Checkpoints{Every: st.Every, Save: func(c session.Checkpoint) {
 		if c.State == nil {
 			log.Error("checkpoint could not be encoded; the previous one stands", zap.Int("step", c.Steps))
@@ -119,14 +139,29 @@ func (s *Server) persistTo(ctx context.Context, sess *session.Session) {
 		}
 		sctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), storeTimeout)
 		defer cancel()
+		l.mu.Lock()
+		defer l.mu.Unlock()
+		if c.Final {
+			l.held = false // no renewal may follow the release
+		}
 		t := time.Now()
-		if err := st.Store.Put(sctx, id, rec); err != nil {
+		err := st.Store.Put(sctx, id, rec)
+		switch {
+		case errors.Is(err, store.ErrConflict):
+			l.loseLocked("checkpoint refused: another replica holds the session")
+			return
+		case err != nil:
 			log.Warn("checkpoint not written", zap.Int("step", c.Steps), zap.Error(err))
 			return
 		}
-		st.Metrics.Checkpoint(time.Since(t), len(c.State))
+		if !c.Final {
+			l.until = rec.LeaseUntil
+		}
+		s.opts.Metrics.Checkpoint(time.Since(t), len(c.State))
 		log.Debug("checkpoint written", zap.Int("step", c.Steps), zap.Int("bytes", len(c.State)), zap.Bool("final", c.Final))
 	}})
+	go l.renew()
+	return l
 }
 
 // notFound is the one answer to a Resume or Follow whose session is
@@ -176,6 +211,13 @@ func (s *Server) resume(stream sluicev1.SluiceService_SessionServer, r *sluicev1
 		s.log.Warn("checkpoint store", zap.String("session", id), zap.Error(err))
 		return problem(draining, "", "the checkpoint store is not available; retry")
 	}
+	if info, err := session.Describe(rec.State); err == nil && info.ID == id && SessionTokenEqual(token, info.Token) && s.expired(rec, info) {
+		s.mu.Lock()
+		s.unsuspendLocked(id)
+		s.mu.Unlock()
+		s.dropExpired(ctx, id)
+		return notFound()
+	}
 	sess, err := session.Restore(rec.State, s.opts.Limits)
 	if err != nil {
 		s.log.Error("checkpoint cannot be restored", zap.String("session", id), zap.Error(err))
@@ -195,6 +237,9 @@ func (s *Server) resume(stream sluicev1.SluiceService_SessionServer, r *sluicev1
 		}
 		return problem(draining, "", "the checkpoint store is not available; retry")
 	}
+	s.mu.Lock()
+	s.unsuspendLocked(id) // suspended here: no longer
+	s.mu.Unlock()
 	budget, err := session.Need(sess.Spec(), s.opts.Limits)
 	if err != nil {
 		return toStatus(err)
@@ -232,7 +277,8 @@ func (s *Server) followable(ctx context.Context, id, token string) (*followed, e
 	if err != nil {
 		return nil, notFound()
 	}
-	if t, err := session.TokenOf(rec.State); err != nil || !SessionTokenEqual(token, t) {
+	info, err := session.Describe(rec.State)
+	if err != nil || !SessionTokenEqual(token, info.Token) || s.expired(rec, info) {
 		return nil, notFound()
 	}
 	return nil, problem(draining, "", "session %s is suspended; it continues when its client resumes it", id)

@@ -13,15 +13,18 @@ import (
 
 	"go.uber.org/zap"
 	"google.golang.org/grpc"
+	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/experimental"
 	"google.golang.org/grpc/health"
 	healthpb "google.golang.org/grpc/health/grpc_health_v1"
 	"google.golang.org/grpc/keepalive"
 	"google.golang.org/grpc/mem"
 	"google.golang.org/grpc/reflection"
+	"google.golang.org/grpc/status"
 	"google.golang.org/protobuf/proto"
 
 	sluicev1 "sluice/proto/sluice/v1"
+	"sluice/server/metrics"
 	"sluice/server/session"
 )
 
@@ -57,6 +60,11 @@ type Options struct {
 	// MaxRegistering caps the streams waiting for their Register frame;
 	// they hold no session slot (0: DefaultMaxRegistering).
 	MaxRegistering int
+	// Metrics, when set, receives what the server itself measures: the
+	// memory budget in use, every checkpoint written (time and size) and
+	// the sessions suspended and waiting for a resume. The counts seen on
+	// the wire come from MetricsOptions(m), added to GRPCOptions.
+	Metrics *metrics.Metrics
 }
 
 // Defaults of Options.
@@ -95,7 +103,9 @@ type Server struct {
 	pools    map[string]attachable // running sessions workers may attach to (attach.go)
 	logs     map[string]*followed
 	live     map[string]*liveSession // resume.go
-	sweeper  chan struct{}           // closed to stop the sweep loop
+	// suspended: sessions this server suspended (suspend.go)
+	suspended map[string]*suspension
+	sweeper   chan struct{} // closed to stop the sweep loop
 }
 
 // followed is a session's draw log as followers see it.
@@ -147,7 +157,8 @@ func New(o Options) *Server {
 		active: map[string]chan<- session.Message{},
 		logs:   map[string]*followed{}, live: map[string]*liveSession{}, sweeper: make(chan struct{}),
 		registering: make(chan struct{}, o.MaxRegistering), quit: make(chan struct{}),
-		mem: memoryPool{total: o.MaxMemoryBytes}, pools: map[string]attachable{}}
+		mem: memoryPool{total: o.MaxMemoryBytes, metrics: o.Metrics}, pools: map[string]attachable{},
+		suspended: map[string]*suspension{}}
 	// The engine sizes its frames within Limits.MaxMessageBytes, and the
 	// reader refuses larger client frames with a status naming the frame.
 	// The transport's own cap sits at four times that, as a backstop
@@ -267,6 +278,7 @@ func (s *Server) Shutdown(ctx context.Context) {
 	s.quitOnce.Do(func() { close(s.quit) }) // streams not yet registered end now
 	s.mu.Lock()
 	s.stopSweep()
+	s.stopSuspensionsLocked()
 	s.draining = true
 	for _, in := range s.active {
 		select {
@@ -289,6 +301,7 @@ func (s *Server) Shutdown(ctx context.Context) {
 func (s *Server) Stop() {
 	s.mu.Lock()
 	s.stopSweep()
+	s.stopSuspensionsLocked()
 	s.mu.Unlock()
 	s.grpc.Stop()
 }
@@ -306,6 +319,7 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 	case s.slots <- struct{}{}:
 		defer func() { <-s.slots }()
 	default:
+		s.log.Info("session refused: every slot taken", zap.Int("max_sessions", cap(s.slots)))
 		return problem(busy, "", "server busy: %d sessions running", cap(s.slots))
 	}
 	if res := first.GetResume(); res != nil {
@@ -317,11 +331,12 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 	}
 	spec, err := specFromWire(reg)
 	if err != nil {
+		s.log.Info("registration refused", zap.Error(err))
 		return toStatus(err)
 	}
 	budget, err := session.Need(spec, s.opts.Limits)
 	if err != nil {
-		s.log.Debug("registration refused", zap.Error(err))
+		s.log.Info("registration refused", zap.Error(err))
 		return toStatus(err)
 	}
 	if !s.mem.reserve(budget.Total) {
@@ -332,7 +347,7 @@ func (s *Server) Session(stream sluicev1.SluiceService_SessionServer) error {
 	id := NewSessionID()
 	sess, err := session.New(id, spec, s.opts.Limits)
 	if err != nil {
-		s.log.Debug("registration refused", zap.Error(err))
+		s.log.Info("registration refused", zap.Error(err))
 		return toStatus(err)
 	}
 	sess.SetToken(NewSessionToken())
@@ -355,7 +370,8 @@ func (s *Server) serveSession(stream sluicev1.SluiceService_SessionServer, sess 
 		return problem(draining, "", "server shutting down")
 	}
 	defer s.untrack(id, reserved)
-	s.persistTo(ctx, sess)
+	l := s.persistTo(ctx, sess, cancel)
+	defer l.stop()
 	maxGrad, maxFrame, sp0 := sess.MaxGradientValues(), sess.MaxAnswerBytes(), sess.Spec()
 	s.openPool(id, sess.Token(), sess)
 	defer s.closePool(id)
@@ -405,8 +421,12 @@ func (s *Server) serveSession(stream sluicev1.SluiceService_SessionServer, sess 
 		zap.String("kernel", sp.Kernel), zap.Float64("step", sp.Step), zap.Uint64("seed", sp.Seed))
 	enc := encoder{maxParams: paramCap(limit), maxText: textCap(limit)}
 	res, err := sess.Run(ctx, in, func(f session.Frame) error { return stream.Send(enc.frame(f)) })
+	l.stop() // no renewal after the session stopped
 	if e, ok := session.AsError(err); ok && e.Kind == session.Timeout {
-		err = s.onSilent(id, sess, res, err)
+		var wasSuspended bool
+		if err, wasSuspended = s.onSilent(sess, res, err, l); wasSuspended {
+			return err
+		}
 	}
 	f := res.Finished
 	fields := []zap.Field{zap.String("reason", f.Reason.String()), zap.Int64("evaluations", f.Progress.EvaluationsUsed),
@@ -414,14 +434,19 @@ func (s *Server) serveSession(stream sluicev1.SluiceService_SessionServer, sess 
 	switch {
 	case err == nil:
 		log.Info("session finished", fields...)
+	case l.isLost():
+		log.Info("session stopped: another replica holds it now", fields...)
 	case canceled(err):
-		log.Debug("client went away", append(fields, zap.Error(err))...)
+		log.Info("client went away: session abandoned", append(fields, zap.Bool("resumable", s.opts.State.Store != nil), zap.Error(err))...)
 	default:
 		if _, bad := session.AsError(err); bad {
 			log.Info("session failed on client input", append(fields, zap.Error(err))...)
 		} else {
 			log.Warn("session failed", append(fields, zap.Error(err))...)
 		}
+	}
+	if l.isLost() {
+		return problem(draining, "", "session %s is held by another server replica now (its lease passed or was taken): resume it", id)
 	}
 	if errors.Is(err, session.ErrSuspended) {
 		return problem(draining, "", "server shutting down; session %s was checkpointed: resume it", id)
@@ -437,6 +462,12 @@ func (s *Server) track(id string, in chan<- session.Message, sess *session.Sessi
 	}
 	s.active[id] = in
 	if l := sess.DrawLog(); l != nil {
+		if old := s.logs[id]; old != nil {
+			// A resumed session's new log replaces the retained one,
+			// whose retention timer then finds nothing to drop.
+			s.mem.release(old.reserved)
+			old.reserved = 0
+		}
 		s.logs[id] = &followed{log: l, dim: sess.Spec().Dim, limit: s.opts.Limits.MaxMessageBytes,
 			token: sess.Token(), resumed: sess.Resumed()}
 	}
@@ -462,14 +493,17 @@ func (s *Server) untrack(id string, reserved *int64) {
 	}
 	f.reserved = min(f.log.Bytes(), *reserved)
 	*reserved -= f.reserved
-	time.AfterFunc(s.opts.FollowRetention, func() { s.forget(id) })
+	time.AfterFunc(s.opts.FollowRetention, func() { s.forget(id, f) })
 }
 
-// forget drops a finished session's draw log and releases its memory.
-func (s *Server) forget(id string) {
+// forget drops a finished session's draw log f and releases its memory,
+// unless another log (the session's, resumed) has replaced it.
+func (s *Server) forget(id string, f *followed) {
 	s.mu.Lock()
-	f, ok := s.logs[id]
-	delete(s.logs, id)
+	ok := s.logs[id] == f
+	if ok {
+		delete(s.logs, id)
+	}
 	s.maybeIdle()
 	s.mu.Unlock()
 	if ok {
@@ -487,6 +521,7 @@ func (s *Server) recoverUnary(ctx context.Context, req any, info *grpc.UnaryServ
 		if r := recover(); r != nil {
 			err = s.recovered(info.FullMethod, r)
 		}
+		s.logDenied(info.FullMethod, err)
 	}()
 	return h(ctx, req)
 }
@@ -496,6 +531,21 @@ func (s *Server) recoverStream(srv any, ss grpc.ServerStream, info *grpc.StreamS
 		if r := recover(); r != nil {
 			err = s.recovered(info.FullMethod, r)
 		}
+		s.logDenied(info.FullMethod, err)
 	}()
 	return h(srv, ss)
+}
+
+// deniedCodes are the refusals no handler logs: credentials refused by
+// the token interceptors (which run inside this server's own), and a
+// session id or token that matches nothing. The handlers log their other
+// refusals themselves, with their figures.
+var deniedCodes = map[codes.Code]bool{codes.Unauthenticated: true, codes.PermissionDenied: true, codes.NotFound: true}
+
+// logDenied logs a call refused for its credentials or its session id, at
+// info.
+func (s *Server) logDenied(method string, err error) {
+	if st, ok := status.FromError(err); ok && deniedCodes[st.Code()] {
+		s.log.Info("call refused", zap.String("method", method), zap.String("code", st.Code().String()), zap.String("message", st.Message()))
+	}
 }

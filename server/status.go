@@ -42,6 +42,9 @@ const (
 	deadlineSpent
 	// wrongToken: a worker presented a wrong session token.
 	wrongToken
+	// suspended: the client stopped answering and its session was
+	// suspended at a checkpoint: it may resume it.
+	suspended
 )
 
 // statusTable is the one table from faults to status codes.
@@ -57,6 +60,7 @@ var statusTable = map[fault]codes.Code{
 	clientGone:     codes.Canceled,
 	deadlineSpent:  codes.DeadlineExceeded,
 	wrongToken:     codes.PermissionDenied,
+	suspended:      codes.Unavailable,
 }
 
 // kindFault says which fault each engine error kind is.

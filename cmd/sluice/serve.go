@@ -43,7 +43,7 @@ func (f *serveFlags) register(fs *flag.FlagSet) {
 	fs.IntVar(&f.maxChains, "max-chains", 1<<16, "most chains one session may run")
 	fs.IntVar(&f.maxDim, "max-dim", 1<<20, "largest dimension one session may have")
 	fs.DurationVar(&f.maxTime, "max-session-time", 0, "wall-time cap on every session (0: none)")
-	fs.DurationVar(&f.answerTimeout, "answer-timeout", session.DefaultAnswerTimeout, "how long to wait for a client's answer to one request; a silent client's session then ends and frees its slot")
+	fs.DurationVar(&f.answerTimeout, "answer-timeout", session.DefaultAnswerTimeout, "how long to wait for a client's answer to one request; a silent client's session then frees its slot: suspended, resumable for --suspend-grace, with --state-dir or --state-postgres; else ended, FAILED")
 	fs.IntVar(&f.followBuffer, "follow-buffer", 100000, "latest draws (rows) each session keeps for followers, at most 64 MiB (0: no following)")
 	fs.DurationVar(&f.followRetention, "follow-retention", 10*time.Minute, "how long a finished session stays followable; its draws' memory is released then")
 	fs.Int64Var(&f.maxSessionBytes, "max-session-bytes", session.DefaultMaxSessionBytes, "most memory one session may need at worst (Hessians, answers, replicates, follow ring, diagnostics); larger sessions are refused at registration")
@@ -133,7 +133,8 @@ func serve(ctx context.Context, args []string, stderr io.Writer) error {
 		return err
 	}
 	opts.GRPCOptions = append(opts.GRPCOptions, secOpts...)
-	if opts.State, err = stf.open(ctx, m); err != nil {
+	opts.Metrics = m
+	if opts.State, err = stf.open(ctx); err != nil {
 		return err
 	}
 	if st := opts.State.Store; st != nil {

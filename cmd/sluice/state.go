@@ -7,7 +7,6 @@ import (
 	"time"
 
 	"sluice/server"
-	"sluice/server/metrics"
 	"sluice/server/store"
 )
 
@@ -18,6 +17,8 @@ type stateFlags struct {
 	every     time.Duration
 	retention time.Duration
 	replica   string
+	grace     time.Duration
+	lease     time.Duration
 }
 
 func (f *stateFlags) register(fs *flag.FlagSet) {
@@ -25,14 +26,16 @@ func (f *stateFlags) register(fs *flag.FlagSet) {
 	fs.StringVar(&f.postgres, "state-postgres", "", "keep session checkpoints in this PostgreSQL database (a postgres:// URL), shared by replicas (instead of --state-dir)")
 	fs.DurationVar(&f.every, "checkpoint-every", 30*time.Second, "write each session's checkpoint at the first step boundary after this much wall time since its last (Register.checkpoint_every_steps adds checkpoints by steps; 0: not by time)")
 	fs.DurationVar(&f.retention, "retention", 24*time.Hour, "how long a finished or abandoned session's checkpoint is kept after it was written")
+	fs.DurationVar(&f.grace, "suspend-grace", server.DefaultSuspendGrace, "how long a session whose client stopped answering (--answer-timeout) stays suspended and resumable with its token before its state is deleted (at most --retention; needs --state-dir or --state-postgres: without them such a session ends, FAILED)")
+	fs.DurationVar(&f.lease, "lease", 2*time.Minute, "how long a running session's hold on its checkpoint lasts; renewed every third of it, so another replica can take the session over this long after this server stopped")
 	fs.StringVar(&f.replica, "replica", "", "name of this server as holder of its sessions' leases (default: the host name); a restart under the same name takes its sessions back at once")
 }
 
 // open opens the store the flags name (nil when none) and returns the
 // server's state options.
-func (f *stateFlags) open(ctx context.Context, m *metrics.Metrics) (server.StateOptions, error) {
-	if f.every < 0 || f.retention <= 0 {
-		return server.StateOptions{}, usagef("--checkpoint-every must be >= 0 and --retention > 0")
+func (f *stateFlags) open(ctx context.Context) (server.StateOptions, error) {
+	if f.every < 0 || f.retention <= 0 || f.grace <= 0 || f.lease <= 0 {
+		return server.StateOptions{}, usagef("--checkpoint-every must be >= 0, and --retention, --suspend-grace and --lease > 0")
 	}
 	var st store.Store
 	switch {
@@ -57,5 +60,6 @@ func (f *stateFlags) open(ctx context.Context, m *metrics.Metrics) (server.State
 	if every == 0 {
 		every = -1 // StateOptions: negative means not by time
 	}
-	return server.StateOptions{Store: st, Every: every, Retention: f.retention, Replica: f.replica, Metrics: m}, nil
+	return server.StateOptions{Store: st, Every: every, Retention: f.retention, Replica: f.replica,
+		SuspendGrace: f.grace, Lease: f.lease}, nil
 }

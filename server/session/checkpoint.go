@@ -79,6 +79,27 @@ type Checkpoints struct {
 // without finishing (the server is shutting down): it can be resumed.
 var ErrSuspended = errors.New("session: suspended at a checkpoint")
 
+// ErrSilent is wrapped, with the Timeout *Error, by the error Run returns
+// when a checkpointed session's client did not answer within the answer
+// timeout: the session is suspended at its latest checkpoint (no Finished
+// frame is sent and no final checkpoint written) and can be resumed.
+var ErrSilent = errors.New("session: suspended: its client stopped answering")
+
+// silent is the outcome of a client that did not answer the request
+// within the answer timeout. A checkpointed session is suspended: its
+// latest checkpoint (a step boundary at or before the request) stands,
+// and a resume continues from there. Otherwise it fails, saying why it
+// could not be suspended.
+func (s *Session) silent() outcome {
+	e := &Error{Kind: Timeout, Field: "evaluations", Chain: -1, Coord: -1,
+		Reason: fmt.Sprintf("no answer to request %d within the answer timeout of %v", s.requestID, s.lim.AnswerTimeout)}
+	if s.checkpointing() {
+		return outcome{reason: Failed, msg: e.Error(), err: fmt.Errorf("%w: %w", ErrSilent, e), quiet: true}
+	}
+	e.Reason += "; this session is not checkpointed (the server keeps no session state), so it cannot be suspended and ends"
+	return failed(e)
+}
+
 // ErrNotResumable is wrapped by the error ResumeAt returns when the draws
 // the client asks for can no longer be replayed.
 var ErrNotResumable = errors.New("session: draws asked for are no longer kept")
@@ -695,24 +716,31 @@ func (l *DrawLog) suspend() {
 	l.wake = make(chan struct{})
 }
 
-// TokenOf reads the token saved in an encoded state without restoring the
-// session.
-func TokenOf(state []byte) (string, error) {
+// StateInfo is what Describe reads of an encoded state.
+type StateInfo struct {
+	ID, Token string
+	// Finished is set for a finished session's last checkpoint.
+	Finished bool
+}
+
+// Describe reads a state's session id, token and whether it finished,
+// without rebuilding the session.
+func Describe(state []byte) (StateInfo, error) {
 	if len(state) < len(stateMagic)+1 || string(state[:len(stateMagic)]) != stateMagic || state[len(stateMagic)] != stateVersion {
-		return "", errors.New("session: not a session state of this version")
+		return StateInfo{}, errors.New("session: not a session state of this version")
 	}
 	var secs []section
 	if err := gobRead(state[len(stateMagic)+1:], &secs); err != nil {
-		return "", fmt.Errorf("session: state: %w", err)
+		return StateInfo{}, fmt.Errorf("session: state: %w", err)
 	}
 	for _, sec := range secs {
 		if sec.Name == "session" {
 			var st sessionState
 			if err := gobRead(sec.Data, &st); err != nil {
-				return "", fmt.Errorf("session: state section session: %w", err)
+				return StateInfo{}, fmt.Errorf("session: state section session: %w", err)
 			}
-			return st.Token, nil
+			return StateInfo{ID: st.ID, Token: st.Token, Finished: st.Finished != nil}, nil
 		}
 	}
-	return "", errors.New("session: state lacks its session section")
+	return StateInfo{}, errors.New("session: state lacks its session section")
 }

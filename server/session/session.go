@@ -234,8 +234,10 @@ func (s *Session) Spec() Spec { return s.spec }
 // protocol foresees (budget, time, stop, draws collected): the Finished
 // frame has then been sent. It returns an *Error when the client sent bad
 // data or timed out (a Finished frame with reason Failed was attempted
-// first), ErrClientGone when the stream ended early, or the error of a
-// failed send.
+// first), ErrClientGone when the stream ended early, ErrSilent (wrapping
+// the Timeout *Error) when the client of a checkpointed session stopped
+// answering and the session was suspended, ErrSuspended when a shutdown
+// suspended it, or the error of a failed send.
 func (s *Session) Run(ctx context.Context, in <-chan Message, send func(Frame) error) (Result, error) {
 	r := s.begin(ctx, in, send)
 	defer r.stop()
@@ -498,8 +500,7 @@ func (s *Session) await(r *run, req *kernels.Request) (outcome, bool) {
 		case <-r.deadline:
 			return outcome{reason: TimeSpent}, true
 		case <-r.answerTimer.C:
-			return failed(&Error{Kind: Timeout, Field: "evaluations", Chain: -1, Coord: -1,
-				Reason: fmt.Sprintf("no answer to request %d within %v", s.requestID, s.lim.AnswerTimeout)}), true
+			return s.silent(), true
 		case msg = <-r.in:
 		}
 		switch {

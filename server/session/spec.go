@@ -169,8 +169,8 @@ type Limits struct {
 	// MaxTime caps every session's wall time (default: none).
 	MaxTime time.Duration
 	// AnswerTimeout is how long the server waits for the answer to one
-	// Points frame before it fails the session (default
-	// DefaultAnswerTimeout).
+	// Points frame before it suspends the session (when checkpointed:
+	// ErrSilent) or fails it (default DefaultAnswerTimeout).
 	AnswerTimeout time.Duration
 	// ProgressInterval is the default Progress cadence (default 1 s).
 	ProgressInterval time.Duration

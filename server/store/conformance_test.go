@@ -101,6 +101,57 @@ func testConformance(t *testing.T, newReplicas replicas) {
 		mustGet(t, b, "free", "y", 1, "a")
 	})
 
+	t.Run("renew", func(t *testing.T) {
+		open := newReplicas(t)
+		a, b := open(), open()
+		if err := a.Renew(ctx, "none", "a", time.Now().Add(hour)); !errors.Is(err, store.ErrNotFound) {
+			t.Fatalf("Renew of a missing id: %v, want ErrNotFound", err)
+		}
+		// The owner's lease has run out (written as expired): a renewal
+		// keeps another owner out again, and leaves state and seq alone.
+		mustPut(t, a, "s", store.Record{State: []byte("a1"), Seq: 3, Owner: "a", LeaseUntil: time.Now().Add(-time.Minute)})
+		before := time.Now().Truncate(time.Microsecond)
+		until := time.Now().Add(hour)
+		if err := a.Renew(ctx, "s", "a", until); err != nil {
+			t.Fatalf("Renew by the owner of an expired lease: %v", err)
+		}
+		got, err := b.Get(ctx, "s")
+		if err != nil {
+			t.Fatal(err)
+		}
+		if string(got.State) != "a1" || got.Seq != 3 || got.Owner != "a" || !got.LeaseUntil.Equal(until.Truncate(time.Microsecond)) {
+			t.Fatalf("after Renew: state %q seq %d owner %q lease %v; want a1, 3, a, %v", got.State, got.Seq, got.Owner, got.LeaseUntil, until)
+		}
+		if got.Updated.Before(before) {
+			t.Errorf("Renew left updated at %v, before the call (%v)", got.Updated, before)
+		}
+		if err := b.Put(ctx, "s", store.Record{State: []byte("b"), Seq: 4, Owner: "b", LeaseUntil: time.Now().Add(hour)}); !errors.Is(err, store.ErrConflict) {
+			t.Fatalf("Put by another owner under a renewed lease: %v, want ErrConflict", err)
+		}
+		if err := b.Renew(ctx, "s", "b", time.Now().Add(hour)); !errors.Is(err, store.ErrConflict) {
+			t.Fatalf("Renew by another owner: %v, want ErrConflict", err)
+		}
+		// Released: the owner can no longer renew it, anyone may take it.
+		if err := a.Renew(ctx, "s", "a", time.Time{}); err != nil {
+			t.Fatalf("release: %v", err)
+		}
+		if err := a.Renew(ctx, "s", "a", time.Now().Add(hour)); !errors.Is(err, store.ErrConflict) {
+			t.Fatalf("Renew of a released lease: %v, want ErrConflict", err)
+		}
+		mustGet(t, b, "s", "a1", 3, "a")
+		mustPut(t, b, "s", store.Record{State: []byte("b"), Seq: 4, Owner: "b", LeaseUntil: time.Now().Add(hour)})
+		if err := a.Renew(ctx, "s", "a", time.Now().Add(hour)); !errors.Is(err, store.ErrConflict) {
+			t.Fatalf("Renew by the former owner after a takeover: %v, want ErrConflict", err)
+		}
+		mustGet(t, a, "s", "b", 4, "b")
+		// A record written without a lease (a finished session's) is held
+		// by no one.
+		mustPut(t, a, "done", store.Record{State: []byte("x"), Seq: 1, Owner: "a"})
+		if err := a.Renew(ctx, "done", "a", time.Now().Add(hour)); !errors.Is(err, store.ErrConflict) {
+			t.Fatalf("Renew of a record without a lease: %v, want ErrConflict", err)
+		}
+	})
+
 	t.Run("takeover race has one winner", func(t *testing.T) {
 		open := newReplicas(t)
 		const n = 8
@@ -195,6 +246,8 @@ func testConformance(t *testing.T, newReplicas replicas) {
 			"put long owner": s.Put(ctx, "s", store.Record{Seq: 1, Owner: long}),
 			"get empty id":   func() error { _, err := s.Get(ctx, ""); return err }(),
 			"delete long id": s.Delete(ctx, long),
+			"renew no owner": s.Renew(ctx, "s", "", time.Now()),
+			"renew long id":  s.Renew(ctx, long, "a", time.Now()),
 		} {
 			if err == nil || errors.Is(err, store.ErrConflict) || errors.Is(err, store.ErrNotFound) {
 				t.Errorf("%s: %v, want an argument error", name, err)

@@ -26,9 +26,12 @@
 // wins: the loser finds a live lease held by another owner.
 //
 // A replica running a session therefore writes every checkpoint with its
-// own name as Owner and a LeaseUntil some time ahead (the lease is renewed
-// by each checkpoint), and stops the session when Put returns ErrConflict:
-// another replica has taken it over. A replica resuming a session reads it
+// own name as Owner and a LeaseUntil some time ahead, renews the lease on
+// a timer of its own with Renew (each checkpoint renews it too, but a
+// session's checkpoints may be far apart), and stops the session when Put
+// or Renew returns ErrConflict: another replica has taken it over. Renew
+// with a zero time releases the lease, so that any replica may take the
+// session at once (a session suspended because its client fell silent). A replica resuming a session reads it
 // with Get and claims it by writing it back under its own name; only after
 // that Put succeeds may it run the session. Expiry is judged by the
 // store's clock (the process clock for the file store, the database

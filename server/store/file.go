@@ -102,6 +102,32 @@ func (f *File) Get(ctx context.Context, id string) (Record, error) {
 	return rec, err
 }
 
+// Renew implements Store.
+func (f *File) Renew(ctx context.Context, id, owner string, until time.Time) error {
+	if err := checkRenew(id, owner); err != nil {
+		return err
+	}
+	if err := ctx.Err(); err != nil {
+		return err
+	}
+	return f.db.Update(func(tx *bolt.Tx) error {
+		b := tx.Bucket(bucket)
+		v := b.Get([]byte(id))
+		if v == nil {
+			return ErrNotFound
+		}
+		cur, err := decode(v, true)
+		if err != nil {
+			return fmt.Errorf("store: record %q: %w", id, err)
+		}
+		if !mayRenew(cur, owner) {
+			return ErrConflict
+		}
+		cur.LeaseUntil, cur.Updated = micro(until), micro(f.now())
+		return b.Put([]byte(id), encode(cur))
+	})
+}
+
 // Delete implements Store.
 func (f *File) Delete(ctx context.Context, id string) error {
 	if err := checkID(id); err != nil {

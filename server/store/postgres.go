@@ -132,6 +132,41 @@ func (p *Postgres) Get(ctx context.Context, id string) (Record, error) {
 	return r, nil
 }
 
+// renewSQL is Renew's compare-and-set: the row is changed only while
+// owner holds it (lease not released).
+const renewSQL = `UPDATE ` + Table + ` SET lease_until = $3, updated = date_trunc('microseconds', clock_timestamp())
+	WHERE id = $1 AND owner = $2 AND lease_until IS NOT NULL`
+
+// Renew implements Store.
+func (p *Postgres) Renew(ctx context.Context, id, owner string, until time.Time) error {
+	if err := checkRenew(id, owner); err != nil {
+		return err
+	}
+	if err := ctx.Err(); err != nil {
+		return err
+	}
+	var lease *time.Time
+	if !until.IsZero() {
+		l := micro(until)
+		lease = &l
+	}
+	tag, err := p.pool.Exec(ctx, renewSQL, id, owner, lease)
+	if err != nil {
+		return fmt.Errorf("store: postgres renew: %w", err)
+	}
+	if tag.RowsAffected() == 1 {
+		return nil
+	}
+	var exists bool
+	if err := p.pool.QueryRow(ctx, `SELECT EXISTS (SELECT 1 FROM `+Table+` WHERE id = $1)`, id).Scan(&exists); err != nil {
+		return fmt.Errorf("store: postgres renew: %w", err)
+	}
+	if !exists {
+		return ErrNotFound
+	}
+	return ErrConflict
+}
+
 // Delete implements Store.
 func (p *Postgres) Delete(ctx context.Context, id string) error {
 	if err := checkID(id); err != nil {

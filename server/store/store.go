@@ -17,6 +17,14 @@ type Store interface {
 	Put(ctx context.Context, id string, rec Record) error
 	// Get returns the record under id, or ErrNotFound.
 	Get(ctx context.Context, id string) (Record, error)
+	// Renew sets the lease of the record under id to until, keeping its
+	// state and seq, when owner holds it: the record's Owner is owner and
+	// its lease has not been released (LeaseUntil is not zero; it may have
+	// expired, as long as no other owner took the record since). A zero
+	// until releases the lease: anyone may then take the record. It
+	// returns ErrNotFound when there is no record, ErrConflict when owner
+	// does not hold it. The store sets Updated to its own clock.
+	Renew(ctx context.Context, id, owner string, until time.Time) error
 	// Delete removes the record under id; deleting a missing id is not an
 	// error.
 	Delete(ctx context.Context, id string) error
@@ -34,7 +42,8 @@ type Record struct {
 	// Seq is the checkpoint's sequence number; a Put never lowers it.
 	// At most math.MaxInt64.
 	Seq uint64
-	// Updated is when the store wrote the record (set by Put).
+	// Updated is when the store last wrote the record (set by Put and
+	// Renew).
 	Updated time.Time
 	// Owner names the replica holding the lease; empty for none.
 	Owner string
@@ -83,6 +92,22 @@ func micro(t time.Time) time.Time {
 		return time.Time{}
 	}
 	return time.UnixMicro(t.UnixMicro()).UTC()
+}
+
+// checkRenew validates the arguments of Renew.
+func checkRenew(id, owner string) error {
+	if err := checkID(id); err != nil {
+		return err
+	}
+	if owner == "" || len(owner) > MaxIDBytes {
+		return fmt.Errorf("store: owner of %d bytes: want 1 to %d", len(owner), MaxIDBytes)
+	}
+	return nil
+}
+
+// mayRenew reports whether owner holds cur (the rule of Renew).
+func mayRenew(cur Record, owner string) bool {
+	return cur.Owner == owner && !cur.LeaseUntil.IsZero()
 }
 
 // mayReplace reports whether a Put of next may replace cur at time now
