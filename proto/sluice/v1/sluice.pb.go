@@ -2356,7 +2356,10 @@ type Registered struct {
 	// Parameter names in use (dim entries).
 	Names []string `protobuf:"bytes,7,rep,name=names,proto3" json:"names,omitempty"`
 	// When the step was planned from wants.eps and the declared curvature:
-	// the steps per chain the plan needs (0 otherwise).
+	// the steps per chain the plan needs from where the chains start (for
+	// TV, the mode search's start). 0 otherwise, and 0 for W2 when the start
+	// distance is still to be certified from the start gradients: Progress
+	// then carries the count.
 	PlannedSteps int64 `protobuf:"varint,8,opt,name=planned_steps,json=plannedSteps,proto3" json:"planned_steps,omitempty"`
 	// The session's secret: 32 hex digits (128 random bits), issued once.
 	// It authorises Follow and Resume for this session_id (also a 128-bit
