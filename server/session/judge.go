@@ -38,22 +38,22 @@ const (
 
 // judgement is one measurement, of the windows it points at.
 type judgement struct {
-	seed           uint64
-	step, reps     int
-	stein          bool
-	hist           *diag.History
-	ksd            *diag.StreamKSD
-	chainSum       []float64
-	chainN         int64
-	names          []string
-	chains, dim    int
-	assessed       bool // the Stein assessment ran
-	steinRep       SteinReport
-	lastKSD        float64
-	measured       bool // the summaries ran
-	params         []ParameterDiagnostics
-	spread         float64
-	spreadName     string
+	seed        uint64
+	step, reps  int
+	stein       bool
+	hist        *diag.History
+	ksd         *diag.StreamKSD
+	chainSum    []float64
+	chainN      int64
+	names       []string
+	chains, dim int
+	assessed    bool // the Stein assessment ran
+	steinRep    SteinReport
+	lastKSD     float64
+	measured    bool // the summaries ran
+	params      []ParameterDiagnostics
+	spread      float64
+	spreadName  string
 }
 
 // judgeScratch is the memory, in float64 values, a judgement needs beyond
