@@ -130,11 +130,13 @@ func (m *monitor) apply(j *judgement) {
 	}
 }
 
-// judge measures the figures on the live windows now (after applying a
-// pending judgement): with reps bootstrap replicates, the Stein
-// assessment only when stein is set.
+// judge measures the figures on the live windows now, with reps
+// bootstrap replicates, the Stein assessment only when stein is set. A
+// pending judgement is applied first, as at a cadence point, unless this
+// one replaces every figure it would set: then it is dropped without
+// waiting for it (it goes on with its own snapshots and results; the
+// next start makes new ones), so the end does not pay for both.
 func (m *monitor) judge(seed uint64, step int, stein bool, reps int) {
-	m.collect()
 	if m.now == nil {
 		m.now = &judgement{}
 	}
@@ -142,6 +144,10 @@ func (m *monitor) judge(seed uint64, step int, stein bool, reps int) {
 	m.prepare(j, seed, step, stein, reps)
 	j.hist, j.ksd, j.chainSum, j.chainN = m.hist, m.ksd, m.chainSum, m.chainN
 	j.compute()
+	if m.done != nil && j.assessed && j.measured {
+		m.done, m.bg = nil, nil
+	}
+	m.collect()
 	m.apply(j)
 }
 
