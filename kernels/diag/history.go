@@ -156,6 +156,23 @@ func (h *History) mergeBatches() {
 	h.batch *= 2
 }
 
+// CopyFrom makes h a copy of src, which must have the same chains, dim
+// and capacity (it panics otherwise), reusing h's memory: a snapshot that
+// another goroutine may summarise while src goes on. It copies only the
+// rows in use, O(kept·chains·dim).
+func (h *History) CopyFrom(src *History) {
+	if h.chains != src.chains || h.dim != src.dim || h.capacity != src.capacity {
+		panic("diag: History.CopyFrom of a history of other sizes")
+	}
+	copy(h.buf, src.buf[:src.kept*src.row])
+	copy(h.sums, src.sums[:src.batches*src.row])
+	copy(h.cur, src.cur)
+	copy(h.mu, src.mu)
+	copy(h.m2, src.m2)
+	h.steps, h.interval, h.kept = src.steps, src.interval, src.kept
+	h.batch, h.batches, h.curN = src.batch, src.batches, src.curN
+}
+
 // Steps is the number of steps added so far.
 func (h *History) Steps() int { return h.steps }
 

@@ -302,6 +302,19 @@ func (st *StreamKSD) Result() KSD {
 	return st.cached
 }
 
+// CopyFrom makes st a copy of src, which must have the same kernel and
+// sizes (it panics otherwise), reusing st's memory: a snapshot of the
+// window that another goroutine may assess while src goes on.
+func (st *StreamKSD) CopyFrom(src *StreamKSD) {
+	if st.kern != src.kern || st.dim != src.dim || st.rows != src.rows || st.maxRounds != src.maxRounds {
+		panic("diag: StreamKSD.CopyFrom of a stream of other sizes or kernel")
+	}
+	k := src.kept * src.rows * src.dim
+	copy(st.x, src.x[:k])
+	copy(st.s, src.s[:k])
+	st.kept, st.stride, st.rounds, st.cached, st.cacheRounds = src.kept, src.stride, src.rounds, src.cached, src.cacheRounds
+}
+
 // Seen returns the number of draws offered so far.
 func (st *StreamKSD) Seen() int { return st.rounds * st.rows }
 

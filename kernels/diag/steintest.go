@@ -51,6 +51,12 @@ type SteinOptions struct {
 	Chains int
 	// Replicates is the number of bootstrap replicates; 0 means 499.
 	Replicates int
+	// BootstrapDraws, when positive and smaller than the number of draws,
+	// makes the test of KSD = 0 run on an evenly thinned subsample of
+	// about that many draws (whole rounds of the chains, at least 4 of
+	// them; see AssessStein); U2, SE and Upper95 still use every draw.
+	// 0 tests on every draw.
+	BootstrapDraws int
 }
 
 // SteinResult is a kernel Stein discrepancy with its uncertainty and what
@@ -86,6 +92,9 @@ type SteinResult struct {
 	// Block is the autocorrelation time of the bootstrap multiplier: 1 for
 	// independent draws.
 	Block float64
+	// TestDraws is the number of draws the test of KSD = 0 used: N, or
+	// fewer with SteinOptions.BootstrapDraws.
+	TestDraws int
 }
 
 // Below reports whether the discrepancy is below x with 95 % confidence:
@@ -200,30 +209,25 @@ func AssessStein(dim int, draws, scores []float64, opt SteinOptions, rng *rand.R
 	}
 	z, sz, scale := standardise(dim, draws, scores)
 	out.Scale = scale
-	k, h, q, dlog := steinMatrix(c2, beta, dim, z, sz)
+	keep, pos := testRows(n, opt.Chains, opt.BootstrapDraws)
+	k, h, q, dlog := steinMatrix(c2, beta, dim, z, sz, pos)
 	u, psi := steinInfluence(dim, z, h, dlog)
 	se := steinSE(psi, q)
-	h = psi
-	block := 1.0
+	var acov acovScratch
 	if opt.Chains > 0 {
-		var acov acovScratch
-		tauH := chainTau(h, opt.Chains, &acov)
-		se *= math.Sqrt(tauH)
-		tmax := tauH
-		col := make([]float64, n)
-		for j := range dim {
-			for i := range n {
-				col[i] = z[i*dim+j]
-			}
-			tmax = math.Max(tmax, chainTau(col, opt.Chains, &acov))
-		}
-		block = math.Min(blockFactor*tmax, float64(n/opt.Chains)/4)
-		block = math.Max(block, 1)
+		se *= math.Sqrt(chainTau(psi, opt.Chains, &acov))
 	}
-	out.U2, out.SE, out.Block = u, se, block
+	// The test's draws: every draw, or the subsample keep.
+	ut, zt, psit := u, z, psi
+	if keep != nil {
+		zt, psit = gatherRows(z, dim, keep), gatherRows(psi, 1, keep)
+		ut = offDiagonalMean(k)
+	}
+	block := multiplierBlock(dim, zt, psit, opt.Chains, &acov)
+	out.U2, out.SE, out.Block, out.TestDraws = u, se, block, k.SymmetricDim()
 	out.KSD = math.Sqrt(math.Max(u, 0))
 	out.Upper95 = math.Sqrt(math.Max(u, 0) + steinZ*se)
-	out.PValue = wildBootstrapP(k, u, opt.Chains, block, reps, rng)
+	out.PValue = wildBootstrapP(k, ut, opt.Chains, block, reps, rng)
 	out.State = SteinIndistinguishable
 	if out.PValue <= steinAlpha {
 		out.State = SteinSignificant
@@ -234,13 +238,91 @@ func AssessStein(dim int, draws, scores []float64, opt SteinOptions, rng *rand.R
 	return out
 }
 
+// multiplierBlock returns the autocorrelation time of the bootstrap's
+// multiplier for the test's draws z (rows of dim values) with influences
+// psi: 1 for independent draws; for chains 4·τ̂_max, τ̂_max the largest
+// autocorrelation time of psi and of the coordinates along the chains,
+// at most a quarter of a chain's length and at least 1 (see AssessStein).
+func multiplierBlock(dim int, z, psi []float64, chains int, acov *acovScratch) float64 {
+	if chains == 0 {
+		return 1
+	}
+	n := len(psi)
+	tmax := chainTau(psi, chains, acov)
+	col := make([]float64, n)
+	for j := range dim {
+		for i := range n {
+			col[i] = z[i*dim+j]
+		}
+		tmax = math.Max(tmax, chainTau(col, chains, acov))
+	}
+	block := math.Min(blockFactor*tmax, float64(n/chains)/4)
+	return math.Max(block, 1)
+}
+
+// testRows returns the rows of an evenly thinned subsample of about
+// limit of the n draws (every t-th round of chains rows, or every t-th
+// row for chains = 0; t = ⌈n/limit⌉, keeping at least 4 rounds, or
+// steinMinDraws rows) and pos, each row's place in it (−1 when left
+// out); both nil when every draw is tested.
+func testRows(n, chains, limit int) (keep, pos []int) {
+	if limit <= 0 || limit >= n {
+		return nil, nil
+	}
+	width, units, least := 1, n, steinMinDraws
+	if chains > 0 {
+		width, units, least = chains, n/chains, 4
+	}
+	t := min((n+limit-1)/limit, units/least)
+	if t <= 1 {
+		return nil, nil
+	}
+	pos = make([]int, n)
+	for i := range pos {
+		pos[i] = -1
+	}
+	for u := 0; u < units; u += t {
+		for i := u * width; i < (u+1)*width; i++ {
+			pos[i] = len(keep)
+			keep = append(keep, i)
+		}
+	}
+	return keep, pos
+}
+
+// gatherRows returns the rows keep of x (rows of width values).
+func gatherRows(x []float64, width int, keep []int) []float64 {
+	out := make([]float64, 0, len(keep)*width)
+	for _, i := range keep {
+		out = append(out, x[i*width:(i+1)*width]...)
+	}
+	return out
+}
+
+// offDiagonalMean is the U-statistic of a Stein matrix with a zero
+// diagonal: the mean of its off-diagonal entries.
+func offDiagonalMean(k *mat.SymDense) float64 {
+	m := k.SymmetricDim()
+	raw := k.RawSymmetric()
+	var sum float64
+	for i := range m {
+		for _, v := range raw.Data[i*raw.Stride+i+1 : i*raw.Stride+m] {
+			sum += v
+		}
+	}
+	return 2 * sum / (float64(m) * float64(m-1))
+}
+
 // Assess returns AssessStein of the kept draws, with the rows of each
 // round taken as one draw of each of Chains = rows chains (the order in
-// which they were added). The stream's kernel is applied in standardised
-// coordinates; opt.Chains is ignored.
-func (st *StreamKSD) Assess(replicates int, rng *rand.Rand) SteinResult {
+// which they were added), replicates bootstrap replicates and the test on
+// at most about bootstrapDraws of them (0: all; see
+// SteinOptions.BootstrapDraws). The stream's kernel is applied in
+// standardised coordinates.
+func (st *StreamKSD) Assess(replicates, bootstrapDraws int, rng *rand.Rand) SteinResult {
 	k := st.kept * st.rows * st.dim
-	return AssessStein(st.dim, st.x[:k], st.s[:k], SteinOptions{Kernel: st.kern, Chains: st.rows, Replicates: replicates}, rng)
+	return AssessStein(st.dim, st.x[:k], st.s[:k], SteinOptions{Kernel: st.kern, Chains: st.rows, Replicates: replicates,
+		BootstrapDraws: bootstrapDraws}, rng)
 }
 
 func allFinite(x []float64) bool {
@@ -276,14 +358,25 @@ func standardise(dim int, x, s []float64) (z, sz, scale []float64) {
 	return z, sz, scale
 }
 
-// steinMatrix returns the N×N matrix of k₀ off the diagonal (zero on it),
-// the row means ĥ_i = (1/(N−1))·Σ_{j≠i} k₀(z_i, z_j), the within-row
+// steinMatrix returns the matrix of k₀ off the diagonal (zero on it) of
+// the draws the test uses (N×N when pos is nil, else M×M with row i at
+// place pos[i] ≥ 0 and rows at −1 left out), and, over every draw, the
+// row means ĥ_i = (1/(N−1))·Σ_{j≠i} k₀(z_i, z_j), the within-row
 // variances q_i = (1/(N−1))·Σ_{j≠i} k₀(z_i, z_j)² − ĥ_i², and
 // D_l = ∂U/∂log σ_l for every coordinate l (see steinScaleDerivative).
-func steinMatrix(c2, beta float64, dim int, z, sz []float64) (k *mat.SymDense, h, q, dlog []float64) {
+func steinMatrix(c2, beta float64, dim int, z, sz []float64, pos []int) (k *mat.SymDense, h, q, dlog []float64) {
 	n := len(z) / dim
 	d := float64(dim)
-	k = mat.NewSymDense(n, nil)
+	m := n
+	if pos != nil {
+		m = 0
+		for _, p := range pos {
+			if p >= 0 {
+				m++
+			}
+		}
+	}
+	k = mat.NewSymDense(m, nil)
 	raw := k.RawSymmetric()
 	h, q, dlog = make([]float64, n), make([]float64, n), make([]float64, dim)
 	for i := range n {
@@ -291,13 +384,17 @@ func steinMatrix(c2, beta float64, dim int, z, sz []float64) (k *mat.SymDense, h
 		for j := i + 1; j < n; j++ {
 			zj, sj := z[j*dim:(j+1)*dim], sz[j*dim:(j+1)*dim]
 			qq, a, b := pairSums(zi, si, zj, sj)
-			v := steinValue(c2, beta, d, qq, a, b)
-			raw.Data[i*raw.Stride+j] = v // upper triangle, as SymDense stores it
+			v, dq, da := steinValuePartials(c2, beta, d, qq, a, b)
+			switch {
+			case pos == nil:
+				raw.Data[i*raw.Stride+j] = v // upper triangle, as SymDense stores it
+			case pos[i] >= 0 && pos[j] >= 0:
+				raw.Data[pos[i]*raw.Stride+pos[j]] = v // pos increases with the row
+			}
 			h[i] += v
 			h[j] += v
 			q[i] += v * v
 			q[j] += v * v
-			dq, da := steinPartials(c2, beta, d, qq, a, b)
 			for l := range dlog {
 				r := zi[l] - zj[l]
 				dlog[l] += -2*r*r*dq + 2*si[l]*sj[l]*da
@@ -314,17 +411,25 @@ func steinMatrix(c2, beta float64, dim int, z, sz []float64) (k *mat.SymDense, h
 	return k, h, q, dlog
 }
 
-// steinPartials returns ∂k₀/∂q and ∂k₀/∂a of steinValue's
-// k₀ = S^β·(a + 2β(b − d)/S − 4β(β−1)q/S²), S = c² + q (derived here by
-// differentiating it). Scaling coordinate l of z by e^{−t} and of the
-// scores by e^{t} changes q by −2r_l²·t, a by 2·s_l(x)s_l(y)·t and leaves
-// b unchanged, which gives D_l.
-func steinPartials(c2, beta, d, q, a, b float64) (dq, da float64) {
+// steinValuePartials returns steinValue's
+// k₀ = S^β·(a + 2β(b − d)/S − 4β(β−1)q/S²), S = c² + q, with ∂k₀/∂q and
+// ∂k₀/∂a (derived here by differentiating it), sharing one power of S.
+// Scaling coordinate l of z by e^{−t} and of the scores by e^{t} changes q
+// by −2r_l²·t, a by 2·s_l(x)s_l(y)·t and leaves b unchanged, which gives
+// D_l.
+func steinValuePartials(c2, beta, d, q, a, b float64) (v, dq, da float64) {
 	s := c2 + q
-	sb := math.Pow(s, beta)
+	var sb float64 // S^β
+	if beta == -0.5 {
+		sb = 1 / math.Sqrt(s)
+	} else {
+		sb = math.Pow(s, beta)
+	}
+	inv := 1 / s
+	v = sb * (a + 2*beta*inv*(b-d) - 4*beta*(beta-1)*q*inv*inv)
 	g := a + 2*beta*(b-d)/s - 4*beta*(beta-1)*q/(s*s)
 	dg := -2*beta*(b-d)/(s*s) - 4*beta*(beta-1)*(1/(s*s)-2*q/(s*s*s))
-	return beta*sb/s*g + sb*dg, sb
+	return v, beta*sb/s*g + sb*dg, sb
 }
 
 // steinInfluence returns U and the estimated influence ψ_i of every draw

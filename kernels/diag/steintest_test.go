@@ -86,7 +86,7 @@ func TestSteinStandardErrorMatchesSpread(t *testing.T) {
 	for range reps {
 		x, s := normalSample(r, n, p, 0, 1.5)
 		z, sz, _ := standardise(p, x, s)
-		_, h, q, dlog := steinMatrix(c2, beta, p, z, sz)
+		_, h, q, dlog := steinMatrix(c2, beta, p, z, sz, nil)
 		u, psi := steinInfluence(p, z, h, dlog)
 		_, hse := steinMoments(h)
 		us = append(us, u)
@@ -229,7 +229,7 @@ func TestStreamKSDAssess(t *testing.T) {
 		st.Add(x, s)
 		all, allS = append(all, x...), append(allS, s...)
 	}
-	got := st.Assess(49, rand.New(rand.NewPCG(5, 5)))
+	got := st.Assess(49, 0, rand.New(rand.NewPCG(5, 5)))
 	want := AssessStein(dim, all, allS, SteinOptions{Chains: rows, Replicates: 49}, rand.New(rand.NewPCG(5, 5)))
 	if got.N != 60 || got.U2 != want.U2 || got.SE != want.SE || got.PValue != want.PValue || got.State != want.State {
 		t.Errorf("stream Assess %+v, want %+v", got, want)
@@ -286,7 +286,7 @@ func TestSteinScaleDerivative(t *testing.T) {
 	x, s := normalSample(r, 40, 3, 0.2, 1.3)
 	for _, k := range []IMQ{{}, {C: 0.7, Beta: -0.3}} {
 		c2, beta := k.params()
-		_, _, _, dlog := steinMatrix(c2, beta, 3, x, s)
+		_, _, _, dlog := steinMatrix(c2, beta, 3, x, s, nil)
 		for l := range 3 {
 			u := func(e float64) float64 {
 				xe, se := append([]float64(nil), x...), append([]float64(nil), s...)
@@ -303,4 +303,117 @@ func TestSteinScaleDerivative(t *testing.T) {
 			}
 		}
 	}
+}
+
+// The test on a thinned subsample (SteinOptions.BootstrapDraws) keeps the
+// level of the test on every draw: exact i.i.d. draws of N(0, I) (p = 2,
+// N = 600, 200 tested) and AR(1) chains whose every draw has the target
+// law (4 chains of 200 steps, ρ = 0.5, 200 tested: every 4th round) must
+// be SteinIndistinguishable in at least 0.888 of 200 seeds, the band of
+// TestSteinTestLevelIID (4 binomial standard deviations below 95 %). The
+// test is the wild bootstrap of Chwialkowski, Strathmann and Gretton
+// (2016) applied to a sample of the same law, so the level is the same
+// claim; the estimate and SE must still be those of every draw (checked
+// on the first 5 seeds).
+func TestSteinSubsampleTestLevel(t *testing.T) {
+	const seeds, p = 200, 2
+	lo := 0.95 - 4*math.Sqrt(0.95*0.05/seeds)
+	for _, c := range []struct {
+		name          string
+		chains, steps int
+		rho           float64
+	}{{"i.i.d.", 0, 600, 0}, {"AR(1) chains", 4, 200, 0.5}} {
+		indist := 0
+		for seed := range seeds {
+			r := rand.New(rand.NewPCG(uint64(seed), 4242))
+			width := max(c.chains, 1)
+			x := make([]float64, c.steps*width*p)
+			for ch := range width {
+				for j := range p {
+					v := r.NormFloat64()
+					for st := range c.steps {
+						x[(st*width+ch)*p+j] = v
+						v = c.rho*v + math.Sqrt(1-c.rho*c.rho)*r.NormFloat64()
+					}
+				}
+			}
+			s := stdNormalScores(x)
+			opt := SteinOptions{Chains: c.chains, Replicates: 99, BootstrapDraws: 200}
+			res := AssessStein(p, x, s, opt, rand.New(rand.NewPCG(uint64(seed), 1)))
+			if res.TestDraws != 200 || res.N != c.steps*width {
+				t.Fatalf("%s seed %d: tested %d of %d draws, want 200 of %d", c.name, seed, res.TestDraws, res.N, c.steps*width)
+			}
+			if seed >= 5 { // the comparison below costs a test on every draw
+				if res.State == SteinIndistinguishable {
+					indist++
+				}
+				continue
+			}
+			opt.BootstrapDraws = 0
+			all := AssessStein(p, x, s, opt, rand.New(rand.NewPCG(uint64(seed), 1)))
+			if res.U2 != all.U2 || res.SE != all.SE || res.Upper95 != all.Upper95 || all.TestDraws != all.N {
+				t.Fatalf("%s seed %d: estimate %v ± %v on the subsample's run, %v ± %v on every draw's", c.name, seed, res.U2, res.SE, all.U2, all.SE)
+			}
+			if res.State == SteinIndistinguishable {
+				indist++
+			}
+		}
+		frac := float64(indist) / seeds
+		t.Logf("%s: indistinguishable in %.3f of %d seeds (want ≥ %.3f)", c.name, frac, seeds, lo)
+		if frac < lo {
+			t.Errorf("%s with the target law, tested on 200 draws: indistinguishable in %.3f of seeds, want ≥ %.3f", c.name, frac, lo)
+		}
+	}
+}
+
+// The power left to the test on a subsample: the laws of
+// TestSteinTestDetectsBiasedLaws (N = 1000, p = 2), tested on 250 draws,
+// are still told apart from the target.
+func TestSteinSubsampleTestDetectsBiasedLaws(t *testing.T) {
+	r := rand.New(rand.NewPCG(71, 73))
+	for _, c := range []struct {
+		name      string
+		mu, sigma float64
+	}{{"N(0, 1.5²I)", 0, 1.5}, {"N(0.3·1, I)", 0.3, 1}} {
+		x, s := normalSample(r, 1000, 2, c.mu, c.sigma)
+		res := AssessStein(2, x, s, SteinOptions{BootstrapDraws: 250}, r)
+		t.Logf("%s: U² %.4g ± %.2g, p %.3f on %d draws, %v", c.name, res.U2, res.SE, res.PValue, res.TestDraws, res.State)
+		if res.State != SteinSignificant || res.TestDraws != 250 {
+			t.Errorf("%s: %+v, want a significant discrepancy tested on 250 draws", c.name, res)
+		}
+	}
+}
+
+// CopyFrom gives a snapshot that assesses and summarises exactly as its
+// source, and does not move when the source goes on.
+func TestWindowCopies(t *testing.T) {
+	r := rand.New(rand.NewPCG(3, 9))
+	const dim, rows = 3, 4
+	st, cp := NewStreamKSD(IMQ{}, dim, rows, 64), NewStreamKSD(IMQ{}, dim, rows, 64)
+	h, hc := NewHistory(rows, dim, 32), NewHistory(rows, dim, 32)
+	round := func() {
+		x, s := normalSample(r, rows, dim, 0, 1)
+		st.Add(x, s)
+		h.Add(x)
+	}
+	for range 100 {
+		round()
+	}
+	cp.CopyFrom(st)
+	hc.CopyFrom(h)
+	want, wantSum := st.Assess(49, 0, rand.New(rand.NewPCG(1, 1))), h.Summarize()
+	for range 37 {
+		round()
+	}
+	got, gotSum := cp.Assess(49, 0, rand.New(rand.NewPCG(1, 1))), hc.Summarize()
+	if got.U2 != want.U2 || got.SE != want.SE || got.PValue != want.PValue || got.N != want.N {
+		t.Errorf("copied window: %+v, source at the copy: %+v", got, want)
+	}
+	for j := range wantSum {
+		if gotSum[j].Rhat.Reported != wantSum[j].Rhat.Reported || gotSum[j].BulkESS != wantSum[j].BulkESS || gotSum[j].Mean != wantSum[j].Mean {
+			t.Errorf("coordinate %d: copied history %+v, source at the copy %+v", j, gotSum[j], wantSum[j])
+		}
+	}
+	cp.Add(make([]float64, rows*dim), make([]float64, rows*dim)) // the copy works on its own
+	hc.Add(make([]float64, rows*dim))
 }

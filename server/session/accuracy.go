@@ -3,7 +3,6 @@ package session
 import (
 	"fmt"
 	"math"
-	"math/rand/v2"
 	"slices"
 
 	"sluice/kernels"
@@ -230,6 +229,11 @@ type monitor struct {
 	// discrepancy computed, the work the windows bound.
 	ksdEvaluations int64
 	ksdSeen        int // draws offered at the last count
+	// The judgements (judge.go): now is one on the live windows, bg one
+	// on snapshots in a goroutine, which closes done when it has finished
+	// (nil: none pending).
+	now, bg *judgement
+	done    chan struct{}
 	// Per-chain sums of the kept draws (chains×dim) over chainN kept
 	// steps, and the largest spread of the chains' means in pooled
 	// standard errors (spreadName: of which parameter).
@@ -374,56 +378,6 @@ func (m *monitor) kept(k kernels.Kernel) {
 	}
 	copy(m.keptX, k.Positions())
 	m.pendingScores = true
-}
-
-// steinReplicates is the bootstrap replicates of the Stein assessment on
-// the step cadence: 199 gives p-values in steps of 1/200, enough for a
-// test at 5 %, at two fifths of the default's cost.
-const steinReplicates = 199
-
-// judge measures the figures the targets and the verdict rest on: the
-// summaries of the kept window, the chains' agreement and the Stein
-// assessment. The engine calls it on the step cadence (Session.stepped)
-// and at the end, never on wall time, and the bootstrap's generator is
-// seeded from the session's seed and the step, so the figures, and every
-// decision taken on them, are the same however fast the client answers.
-func (m *monitor) judge(seed uint64, step int, stein bool) {
-	if n := int64(m.ksd.Kept()); stein && n >= 2 {
-		if seen := m.ksd.Seen(); seen != m.ksdSeen {
-			// The assessment recomputes the kernel sums at most when
-			// draws were offered since, evaluating each unordered pair
-			// and each diagonal once: the work the windows bound.
-			m.ksdEvaluations += n * (n + 1) / 2
-			m.ksdSeen = seen
-		}
-		r := m.ksd.Assess(steinReplicates, rand.New(rand.NewPCG(seed, uint64(step))))
-		m.stein = &SteinReport{KSD: r.KSD, U2: r.U2, SE: r.SE, Upper95: r.Upper95, PValue: r.PValue, Draws: r.N, State: r.State}
-		m.lastKSD = -1
-		if r.State != diag.SteinUndefined {
-			m.lastKSD = r.KSD
-		}
-	}
-	if sum := m.hist.Summarize(); sum != nil {
-		m.params = m.params[:0]
-		m.spread, m.spreadName = 0, ""
-		for j, d := range sum {
-			m.params = append(m.params, ParameterDiagnostics{Name: m.names[j], Mean: d.Mean, SD: d.SD,
-				Rhat: d.Rhat.Reported, BulkESS: d.BulkESS, TailESS: d.TailESS, MCSE: d.MeanMCSE})
-			if m.chains > 1 && m.chainN > 0 && d.MeanMCSE > 0 {
-				lo, hi := math.Inf(1), math.Inf(-1)
-				for c := range m.chains {
-					v := m.chainSum[c*m.dim+j] / float64(m.chainN)
-					lo, hi = math.Min(lo, v), math.Max(hi, v)
-				}
-				// A chain's mean has about √chains times the MCSE of the
-				// pooled mean.
-				if z := (hi - lo) / (d.MeanMCSE * math.Sqrt(float64(m.chains))); z > m.spread {
-					m.spread, m.spreadName = z, m.names[j]
-				}
-			}
-		}
-		m.measured = true
-	}
 }
 
 // report fills p with the figures of the last judgement.

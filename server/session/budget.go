@@ -174,6 +174,9 @@ func budgetOf(s *Spec, k *kernelEntry, lim Limits) Budget {
 	// batch sums, and its summaries a scratch of about 8 values per kept
 	// draw and chain (diag.NewHistory).
 	add("register.dim", "diagnostics windows", (2*float64(ksdRows)*dim+float64(histChains*histCap)*(2*dim+8))*8)
+	// A judgement's snapshots of them and the Stein assessment's scratch
+	// (judge.go).
+	add("register.dim", "diagnostics judgement", judgeScratch(s.Dim, s.Chains)*8)
 
 	// A dense dim×dim metric, for gradient kernels that may adapt one.
 	if k.need().Has(kernels.NeedGradient) {

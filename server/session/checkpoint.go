@@ -224,6 +224,8 @@ type monitorState struct {
 	SpreadName    string
 	Pairs, Uphill int
 	Stein         *SteinReport
+	// A judgement taken on the cadence and not yet applied (judge.go).
+	Pending *pendingState
 }
 
 // followState is the "follow" section: the kept tail of the draw log.
@@ -313,7 +315,8 @@ func (s *Session) snapshot(fin *Finished) (Checkpoint, error) {
 	m := s.mon
 	ms := monitorState{LastX: m.lastX, LastG: m.lastG, HaveLast: m.haveLast, KeptX: m.keptX, PendingScores: m.pendingScores,
 		Requests: m.requests, LastKSD: m.lastKSD, Params: m.params, Measured: m.measured,
-		ChainSum: m.chainSum, ChainN: m.chainN, Spread: m.spread, SpreadName: m.spreadName, Pairs: m.pairs, Uphill: m.uphill, Stein: m.stein}
+		ChainSum: m.chainSum, ChainN: m.chainN, Spread: m.spread, SpreadName: m.spreadName, Pairs: m.pairs, Uphill: m.uphill, Stein: m.stein,
+		Pending: m.pending()}
 	if ms.Hist, err = m.hist.MarshalBinary(); err == nil {
 		if ms.KSD, err = m.ksd.MarshalBinary(); err == nil {
 			ms.Curv, err = m.curv.MarshalBinary()
@@ -479,6 +482,10 @@ func (m *monitor) restore(ms *monitorState) error {
 	}
 	m.chainN, m.spread, m.spreadName, m.pairs, m.uphill, m.stein = ms.ChainN, ms.Spread, ms.SpreadName, ms.Pairs, ms.Uphill, ms.Stein
 	m.params, m.measured = append(m.params[:0], ms.Params...), ms.Measured
+	if p := ms.Pending; p != nil && len(p.Params) != 0 && len(p.Params) != m.dim {
+		return errors.New("session: state's pending judgement has other sizes")
+	}
+	m.restorePending(ms.Pending)
 	return nil
 }
 

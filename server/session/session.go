@@ -588,13 +588,12 @@ func (s *Session) complete(r *run, req *kernels.Request) *Error {
 // guaranteed bound and the re-plan of the step, and, on a step-count
 // cadence, the measured figures the targets and the verdict rest on.
 // Nothing here reads the clock, so a slow client and a fast one with the
-// same seed and answers get the same draws. The cadence: every step (every
-// ProgressEverySteps steps when set) while Limits.DiagnosticsShare is
-// negative (tests), else after 20 steps, then
-// whenever the steps have grown by a tenth (at least 20 steps apart): the
-// summaries cost O(window) each, so a run of K steps pays for
-// O(log K) of them. The Stein assessment has a sparser cadence of its
-// own.
+// same seed and answers get the same draws. The cadence (judgeCadence):
+// every step (every ProgressEverySteps steps when set), judged at once,
+// while Limits.DiagnosticsShare is negative (tests); else pipelined
+// (judge.go: judged in the background on snapshots, applied at the next
+// cadence point), after 20 steps, then whenever the steps have grown by a
+// tenth when a target rests on the figures, by half otherwise.
 func (s *Session) stepped() {
 	k := s.kernel.Steps()
 	if s.spec.Noise.Stochastic {
@@ -604,18 +603,12 @@ func (s *Session) stepped() {
 		return
 	}
 	stein := k >= s.steinNext
-	s.mon.judge(s.spec.Seed, k, stein)
 	if s.lim.DiagnosticsShare < 0 {
-		s.judgeNext = k + max(1, int(s.spec.ProgressEverySteps))
+		s.mon.judge(s.spec.Seed, k, stein, steinReplicates)
 	} else {
-		s.judgeNext = k + max(20, k/10)
+		s.mon.start(s.spec.Seed, k, stein)
 	}
-	if stein {
-		// The Stein assessment costs O(N²) on its window of N ≤ 2048
-		// draws and a bootstrap: at most every 20 steps, then a quarter
-		// further each time.
-		s.steinNext = k + max(20, k/4)
-	}
+	s.judgeNext, s.steinNext = s.judgeCadence(k, stein)
 }
 
 // keeps reports whether the draws after step are kept (burn-in, then
@@ -1176,7 +1169,7 @@ func (s *Session) progress(now time.Time, final bool) Progress {
 		p.EvaluationsPerSecond = float64(s.used) / sec
 	}
 	if final {
-		s.mon.judge(s.spec.Seed, s.kernel.Steps(), true)
+		s.mon.judge(s.spec.Seed, s.kernel.Steps(), true, steinFinalReplicates)
 	}
 	s.mon.report(&p)
 	for _, ph := range s.phases {
