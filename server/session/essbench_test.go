@@ -371,7 +371,7 @@ func refRun(tb testing.TB, bt *benchTarget) {
 // (Gaussians: exact). Rows are printed as they finish, the ranked table
 // at the end. Run it with
 //
-//	go test -run XXX -bench ESSPerEvaluation -benchtime 1x -timeout 60m ./server/session/
+//	go test -run XXX -bench ESSPerEvaluation -benchtime 1x -timeout 90m ./server/session/
 func BenchmarkESSPerEvaluation(b *testing.B) {
 	const burn, minESS = 1000, 400
 	maxEvals := 3e6
