@@ -601,3 +601,98 @@ func (pc *precond) set(kind string, m *Metric, dim, n int) {
 		pc.tmp = make([]float64, n)
 	}
 }
+
+// MarshalBinary implements encoding.BinaryMarshaler: the dimension, the
+// kind and C (the factor is recomputed on reading).
+func (m *Metric) MarshalBinary() ([]byte, error) {
+	w := newStateWriter("Metric")
+	w.ints("dim", m.dim)
+	w.ints("kind", int(m.kind))
+	if !m.identity() {
+		w.floats("c", m.c...)
+	}
+	return w.bytes()
+}
+
+// UnmarshalMetric reads a metric written by Metric.MarshalBinary. The
+// factor is recomputed from C by the same arithmetic, so the metric is bit
+// for bit the one saved; a corrupt record is an error, never a panic.
+func UnmarshalMetric(b []byte) (*Metric, error) {
+	r, err := readState(b, "Metric")
+	if err != nil {
+		return nil, err
+	}
+	dim, kind := r.integer("dim"), MetricKind(r.integer("kind"))
+	if err := r.check(dim >= 1, "dimension"); err != nil {
+		return nil, err
+	}
+	switch kind {
+	case IdentityMetric:
+		return NewIdentityMetric(dim), nil
+	case DiagonalMetric:
+		c := r.floats("c", dim)
+		if r.err != nil {
+			return nil, r.err
+		}
+		return NewDiagonalMetric(c)
+	case DenseMetric:
+		if err := r.check(dim <= MaxDenseMetricDim, "dense metric dimension"); err != nil {
+			return nil, err
+		}
+		c := r.floats("c", dim*dim)
+		if r.err != nil {
+			return nil, r.err
+		}
+		return NewDenseMetric(dim, c)
+	}
+	return nil, r.check(false, fmt.Sprintf("metric kind %d", kind))
+}
+
+// MarshalBinary implements encoding.BinaryMarshaler: the dimension and
+// every running sum, so that an accumulator restored mid-window goes on
+// bit for bit as the one that never stopped.
+func (a *Covariance) MarshalBinary() ([]byte, error) {
+	w := newStateWriter("Covariance")
+	w.ints("dim", a.dim)
+	w.ints("n", a.n)
+	w.floats("mean", a.mean...)
+	w.floats("m2", a.m2...)
+	if a.dense {
+		w.floats("shift", a.shift...)
+		w.floats("sums", a.sumA, a.sumA2)
+		w.floats("sumAY", a.sumAY...)
+	}
+	return w.bytes()
+}
+
+// UnmarshalBinary implements encoding.BinaryUnmarshaler. It restores the
+// whole state, dimension included; a corrupt record is an error.
+func (a *Covariance) UnmarshalBinary(b []byte) error {
+	r, err := readState(b, "Covariance")
+	if err != nil {
+		return err
+	}
+	dim, n := r.integer("dim"), r.integer("n")
+	// The sums hold dim values (dim² up to MaxDenseMetricDim): a
+	// dimension the record cannot hold is refused before allocating.
+	fits := dim >= 1 && dim <= r.size/8 && (dim > MaxDenseMetricDim || dim*dim <= r.size/8)
+	if err := r.check(fits && n >= 0, "dimension or count"); err != nil {
+		return err
+	}
+	c := NewCovariance(dim)
+	r.fill("mean", c.mean)
+	r.fill("m2", c.m2)
+	if c.dense {
+		r.fill("shift", c.shift)
+		if s := r.floats("sums", 2); s != nil {
+			c.sumA, c.sumA2 = s[0], s[1]
+		}
+		r.fill("sumAY", c.sumAY)
+	}
+	if r.err != nil {
+		return r.err
+	}
+	c.n = n
+	*a = *c
+	return nil
+}

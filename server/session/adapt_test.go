@@ -386,3 +386,100 @@ func TestChoicesReachTheKernel(t *testing.T) {
 		}
 	}
 }
+
+// Why the kinetic kernel gains nothing over lmc at equal accuracy (the
+// rule in tune.go and docs/methods.md): on a Gaussian direction of
+// curvature λ, the frozen-gradient kinetic step with step h, friction γ
+// and inverse mass u has, up to terms of order γh, the stationary
+// position variance 1/(λ(1 − uλh/(2γ))) and the integrated
+// autocorrelation time 2γ/(uλh) − 1 of lmc with the step uh/γ (closed
+// forms of lmc in TestStationaryVarianceClosedForms; the h → 0 limit,
+// τ·h → 2γ/(uλ), is the diffusion's own integrated autocorrelation time,
+// derived here: the mean path from (x₀, v₀) solves d²m/dt² + γ·dm/dt + uλ·m = 0,
+// whose integral over [0, ∞) is (v₀ + γx₀)/(uλ), so ∫ρ = γ/(uλ)). So the
+// step that keeps the stiffest direction's variance error at a tolerance
+// gives the slowest direction the same autocorrelation time as lmc's, for
+// every γ and u: on κ = 100 no friction on a grid from a tenth of the
+// slowest direction's critical damping to ten times the stiffest's brings
+// the worst autocorrelation time below 0.85 of lmc's at the same
+// tolerance.
+func TestKineticIsLMCAtItsEffectiveStep(t *testing.T) {
+	for _, c := range []struct{ h, g, u, l float64 }{
+		{0.03, 0.19, 1.0 / 110, 110}, {0.01, 0.1, 1, 5}, {0.1, 0.5, 0.25, 10}, {0.368, 2, 1.0 / 110, 110}, {0.368, 2, 1.0 / 110, 1},
+	} {
+		eff := c.u * c.h / c.g // lmc's step with the same law
+		v, ok := stationaryVariance(kineticScheme(c.h, c.g, c.u), c.l)
+		want := 1 / (c.l * (1 - eff*c.l/2))
+		tau, wantTau := autocorrelationTime(kineticScheme(c.h, c.g, c.u), c.l), 2/(eff*c.l)-1
+		// Order-γh terms: a relative tolerance of γh/10 (a wrong rule is
+		// off by O(1)).
+		tol := math.Max(1e-4, c.g*c.h/10)
+		if !ok || math.Abs(v/want-1) > tol || math.Abs(tau/wantTau-1) > tol {
+			t.Fatalf("%+v: variance %v τ %v, lmc at step uh/γ = %v: %v and %v", c, v, tau, eff, want, wantTau)
+		}
+	}
+	// The diffusion's limit.
+	const g, u, l, h = 0.7, 0.3, 2.0, 1e-5
+	if tau := autocorrelationTime(kineticScheme(h, g, u), l) * h; math.Abs(tau/(2*g/(u*l))-1) > 1e-3 {
+		t.Fatalf("τ·h = %v, want 2γ/(uλ) = %v", tau, 2*g/(u*l))
+	}
+	// Equal accuracy, κ = 100.
+	lo, hi := 1.0, probeSafety*100
+	uu := 1 / hi
+	lmcTau := worstTau(lmcScheme(2*varianceTolerance/((1+varianceTolerance)*hi)), lo, hi)
+	gLo, gHi := 0.1*2*math.Sqrt(uu*lo), 10*2*math.Sqrt(uu*hi)
+	for k := 0; k <= 12; k++ {
+		gg := gLo * math.Pow(gHi/gLo, float64(k)/12)
+		mk := func(h float64) scheme { return kineticScheme(h, gg, uu) }
+		st := largestStep(mk, lo, hi, 1/math.Sqrt(uu*hi), varianceTolerance)
+		if tau := worstTau(mk(st), lo, hi); tau < 0.85*lmcTau {
+			t.Fatalf("γ = %v: worst τ %v at step %v, below 0.85 × lmc's %v", gg, tau, st, lmcTau)
+		}
+	}
+}
+
+// baoabScheme is one step of the BAOAB splitting of the kinetic diffusion
+// (half kick, half drift, exact friction and noise, half drift, half
+// kick; Leimkuhler and Matthews 2013) on a direction of curvature λ, for
+// the comparison in docs/methods.md. sluice has no such kernel.
+func baoabScheme(h, g, u float64) scheme {
+	mul := func(a, b [2][2]float64) (c [2][2]float64) {
+		for i := range 2 {
+			for j := range 2 {
+				c[i][j] = a[i][0]*b[0][j] + a[i][1]*b[1][j]
+			}
+		}
+		return c
+	}
+	return func(l float64) ([3][3]float64, [3]float64, [2][2]float64) {
+		e := math.Exp(-g * h)
+		kick := [2][2]float64{{1, 0}, {-(h / 2) * u * l, 1}}
+		drift := [2][2]float64{{1, h / 2}, {0, 1}}
+		fric := [2][2]float64{{1, 0}, {0, e}}
+		after := mul(kick, drift) // what follows the noise
+		m := mul(after, mul(fric, mul(drift, kick)))
+		s := u * (1 - e*e)
+		q := [3]float64{after[0][1] * after[0][1] * s, after[0][1] * after[1][1] * s, after[1][1] * after[1][1] * s}
+		return lyapunovMap(m[0][0], m[0][1], m[1][0], m[1][1]), q, m
+	}
+}
+
+// The prediction of docs/methods.md for a splitting integrator: BAOAB's
+// stationary position variance on a Gaussian is exactly 1/λ at every
+// stable step (Leimkuhler and Matthews 2013, from memory; the solver
+// confirms it here), so on κ = 100 at γ = 2√(u·m̂) and ω_max·h = 1 its
+// worst autocorrelation time is about 42 steps against lmc's 1 209.
+func TestSplittingIntegratorPrediction(t *testing.T) {
+	lo, hi := 1.0, probeSafety*100
+	u := 1 / hi
+	sc := baoabScheme(1, 2*math.Sqrt(u*lo), u)
+	if e := worstError(sc, lo, hi); e > 1e-9 {
+		t.Fatalf("BAOAB variance error %v, want 0", e)
+	}
+	tau := worstTau(sc, lo, hi)
+	lmcTau := worstTau(lmcScheme(2*varianceTolerance/((1+varianceTolerance)*hi)), lo, hi)
+	t.Logf("worst τ: BAOAB %.1f, lmc %.1f (%.1f×)", tau, lmcTau, lmcTau/tau)
+	if tau > lmcTau/20 {
+		t.Fatalf("BAOAB worst τ %v, lmc %v", tau, lmcTau)
+	}
+}

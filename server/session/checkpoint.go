@@ -34,6 +34,8 @@ import (
 //	kernel   the kernel's state (kernels.Checkpointer)
 //	phases   each phase's state
 //	monitor  the measured diagnostics' bounded accumulators
+//	tuner    the metric adaptation in burn-in (window, pooled covariance,
+//	         metrics) and the automatic settings chosen so far
 //	follow   the tail of the draw log that followers and resuming clients read
 //
 // A phase in progress is never checkpointed: the first checkpoint precedes
@@ -312,6 +314,13 @@ func (s *Session) snapshot(fin *Finished) (Checkpoint, error) {
 	if err := add("phases", phases); err != nil {
 		return Checkpoint{}, err
 	}
+	ts, err := s.tune.state()
+	if err != nil {
+		return Checkpoint{}, fmt.Errorf("session: checkpoint of the tuner: %w", err)
+	}
+	if err := add("tuner", ts); err != nil {
+		return Checkpoint{}, err
+	}
 	m := s.mon
 	ms := monitorState{LastX: m.lastX, LastG: m.lastG, HaveLast: m.haveLast, KeptX: m.keptX, PendingScores: m.pendingScores,
 		Requests: m.requests, LastKSD: m.lastKSD, Params: m.params, Measured: m.measured,
@@ -412,6 +421,15 @@ func Restore(state []byte, lim Limits) (*Session, error) {
 	var ms monitorState
 	if err := get("monitor", &ms); err != nil {
 		return nil, err
+	}
+	if _, ok := byName["tuner"]; ok { // states written before the section existed have none
+		var ts tunerState
+		if err := get("tuner", &ts); err != nil {
+			return nil, err
+		}
+		if err := s.tune.restore(&ts, dim); err != nil {
+			return nil, err
+		}
 	}
 	if err := s.mon.restore(&ms); err != nil {
 		return nil, err
@@ -542,6 +560,14 @@ func (s *Session) restorePhases() error {
 	if st == nil {
 		return nil
 	}
+	// Phases begin does not build again are the tuner's probes run during
+	// burn-in (and its first probe, once the kernel has stepped): they
+	// were finished when the checkpoint was taken, their results are in
+	// the tuner's and the kernel's state, and they stand in the list as
+	// finished probes so that the phase index means what it meant.
+	for len(s.phases) < len(s.persist.phases) {
+		s.phases = append(s.phases, &lanczosProbe{})
+	}
 	if st.Phase > len(s.phases) || (len(s.persist.phases) != 0 && len(s.persist.phases) != len(s.phases)) {
 		return errors.New("session: state's phases do not match the spec's")
 	}
@@ -552,6 +578,9 @@ func (s *Session) restorePhases() error {
 		}
 		if err := pc.unmarshal(b); err != nil {
 			return err
+		}
+		if pr, ok := s.phases[i].(*lanczosProbe); ok && i < st.Phase && !pr.finished {
+			return errors.New("session: state's tuner probe was not finished")
 		}
 	}
 	s.phase = st.Phase
@@ -750,4 +779,123 @@ func Describe(state []byte) (StateInfo, error) {
 		}
 	}
 	return StateInfo{}, errors.New("session: state lacks its session section")
+}
+
+// tunerState is the "tuner" section: the metric adaptation and the
+// automatic settings in the middle of burn-in (adapt.go), so that a
+// session restored between two window ends pools the same draws into the
+// same window and estimates the same metric. Metrics and the accumulator
+// use their own codecs (nil: none).
+type tunerState struct {
+	Window        int
+	Cov           []byte
+	Metric        []byte
+	UpdatedAt     int64
+	Updates       int
+	Lambda        float64
+	M, BigM       float64
+	Choices       []Choice
+	ProbeEvals    int64
+	Probes        int
+	PrevMetric    []byte
+	PrevUpdatedAt int64
+	PrevLambda    float64
+	Reverted      int
+}
+
+// marshalMetric encodes m (nil stays nil).
+func marshalMetric(m *kernels.Metric) ([]byte, error) {
+	if m == nil {
+		return nil, nil
+	}
+	return m.MarshalBinary()
+}
+
+// unmarshalMetric decodes a metric of dimension dim (nil stays nil).
+func unmarshalMetric(b []byte, dim int) (*kernels.Metric, error) {
+	if b == nil {
+		return nil, nil
+	}
+	m, err := kernels.UnmarshalMetric(b)
+	if err == nil && m.Dim() != dim {
+		err = fmt.Errorf("metric of dimension %d, want %d", m.Dim(), dim)
+	}
+	return m, err
+}
+
+func (t *tuner) state() (tunerState, error) {
+	st := tunerState{Window: t.window, UpdatedAt: t.updatedAt, Updates: t.updates, Lambda: t.lambda, M: t.m, BigM: t.bigM,
+		Choices: t.choices, ProbeEvals: t.probeEvals, Probes: t.probes, PrevUpdatedAt: t.prevUpdatedAt,
+		PrevLambda: t.prevLambda, Reverted: t.reverted}
+	var err error
+	if t.cov != nil {
+		if st.Cov, err = t.cov.MarshalBinary(); err != nil {
+			return st, err
+		}
+	}
+	if st.Metric, err = marshalMetric(t.metric); err != nil {
+		return st, err
+	}
+	st.PrevMetric, err = marshalMetric(t.prevMetric)
+	return st, err
+}
+
+// restore applies a saved tuner state to the tuner New built from the
+// same spec.
+func (t *tuner) restore(st *tunerState, dim int) error {
+	bad := func(err error) error { return fmt.Errorf("session: state's tuner: %w", err) }
+	if st.Window < 0 || st.Window > len(t.ends) || st.Updates < 0 || st.Probes < 0 || st.ProbeEvals < 0 {
+		return errors.New("session: state's tuner section is inconsistent")
+	}
+	m, err := unmarshalMetric(st.Metric, dim)
+	if err != nil {
+		return bad(err)
+	}
+	prev, err := unmarshalMetric(st.PrevMetric, dim)
+	if err != nil {
+		return bad(err)
+	}
+	t.cov = nil
+	if st.Cov != nil {
+		c := &kernels.Covariance{}
+		if err := c.UnmarshalBinary(st.Cov); err != nil {
+			return bad(err)
+		}
+		if c.Dim() != dim {
+			return bad(fmt.Errorf("accumulator of dimension %d, want %d", c.Dim(), dim))
+		}
+		t.cov = c
+	}
+	t.window, t.metric, t.updatedAt, t.updates, t.lambda = st.Window, m, st.UpdatedAt, st.Updates, st.Lambda
+	t.m, t.bigM, t.choices, t.probeEvals, t.probes = st.M, st.BigM, st.Choices, st.ProbeEvals, st.Probes
+	t.prevMetric, t.prevUpdatedAt, t.prevLambda, t.reverted = prev, st.PrevUpdatedAt, st.PrevLambda, st.Reverted
+	return nil
+}
+
+// lanczosState is a tuner probe's phase state. A checkpoint is taken only
+// when every phase is complete, so a probe is saved either before it
+// started (the first checkpoint) or finished, its result already applied
+// to the tuner and the kernel.
+type lanczosState struct {
+	Kind     string // "lanczos"
+	Finished bool
+	Evals    int
+}
+
+func (pr *lanczosProbe) marshal() ([]byte, error) {
+	if !pr.finished && pr.evals > 0 {
+		return nil, errors.New("session: a curvature probe in progress cannot be checkpointed")
+	}
+	return gobBytes(lanczosState{Kind: "lanczos", Finished: pr.finished, Evals: pr.evals})
+}
+
+func (pr *lanczosProbe) unmarshal(b []byte) error {
+	var st lanczosState
+	if err := gobRead(b, &st); err != nil || st.Kind != "lanczos" {
+		return fmt.Errorf("session: state's tuner probe: not a probe state (%v)", err)
+	}
+	if st.Finished {
+		pr.finished, pr.evals = true, st.Evals
+	}
+	return nil
 }

@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"math"
 	"strings"
+	"slices"
 	"testing"
 
 	"sluice/kernels"
@@ -280,5 +281,107 @@ func TestCheckpointWithModeSearch(t *testing.T) {
 		if !strings.Contains(c.Message, "8 gradient steps of the mode search") {
 			t.Fatalf("checkpoint %d: guarantee check %+v", k, c)
 		}
+	}
+}
+// diagonalGaussian answers gradients of π = N(0, diag(1/λ)) exactly:
+// ∇log π = −λ ⊙ x (closed form), and log π when asked.
+func diagonalGaussian(lam []float64) oracle {
+	return func(p *Points, ev *Evaluations) {
+		d := p.Dim
+		ev.Grad, ev.LogDensity, ev.Hessian, ev.HessVec = nil, nil, nil, nil
+		ev.Grad = make([]float64, len(p.Points))
+		for i, x := range p.Points {
+			ev.Grad[i] = -lam[i%d] * x
+		}
+		if p.Need&kernels.NeedLogDensity != 0 {
+			ev.LogDensity = make([]float64, p.Rows)
+			for r := range p.Rows {
+				for i, x := range p.Points[r*d : (r+1)*d] {
+					ev.LogDensity[r] -= lam[i] * x * x / 2
+				}
+			}
+		}
+	}
+}
+
+// A session with automatic tuning (step 0) and a metric adapted during
+// burn-in, checkpointed in the middle of an adaptation window after at
+// least one metric update, restores and continues with draws, metric and
+// tuning choices bit-identical to the run that never stopped, for every
+// kernel that takes a metric: the window's pooled covariance, the metric
+// in use and the one an update would fall back to, and the finished
+// probes are in the checkpoint.
+func TestCheckpointInMetricAdaptation(t *testing.T) {
+	lim := Limits{FollowBuffer: 1 << 12}
+	lam := []float64{1, 9, 100}
+	o := diagonalGaussian(lam)
+	for _, e := range registry {
+		if e.tuning == ruleNone {
+			continue
+		}
+		t.Run(e.name, func(t *testing.T) {
+			spec := Spec{Dim: 3, Chains: 4, Kernel: e.name, Start: []float64{1, -0.3, 0.1}, StartRows: 1, Seed: 7,
+				BurnIn: 300, DrawsPerChain: 30, CheckpointEverySteps: 13}
+			full, cps := runCollecting(t, mustNew(t, spec, lim), o)
+			want, _ := flatten(t, 0, full.draws)
+			fm := full.finished.Progress.Metric
+			if fm.Source != "adapted" || fm.Updates < 2 {
+				t.Fatalf("metric %+v: not adapted", fm)
+			}
+			// The checkpoints strictly inside a window after the first
+			// update: those a restore without the tuner's state would get
+			// wrong.
+			_, ends := adaptSchedule(spec.BurnIn)
+			tested := 0
+			for k, cp := range cps {
+				if int64(cp.Steps) <= ends[0] || int64(cp.Steps) >= ends[len(ends)-1] || slices.Contains(ends, int64(cp.Steps)) {
+					continue
+				}
+				s, err := Restore(cp.State, lim)
+				if err != nil {
+					t.Fatalf("restore %d (step %d): %v", k, cp.Steps, err)
+				}
+				tested++
+				window, pooled := s.tune.window, 0
+				if s.tune.cov != nil {
+					pooled = s.tune.cov.Count()
+				}
+				next := s.seq
+				tr, _, err := drive(t, s, o)
+				if err != nil {
+					t.Fatalf("resumed from step %d: %v", cp.Steps, err)
+				}
+				got, _ := flatten(t, next, tr.draws)
+				if len(got) == 0 || !sameBits(got, want[int(next)*spec.Dim:]) {
+					t.Fatalf("checkpoint at step %d (restored in window %d with %d draws pooled): draws differ from the uninterrupted run", cp.Steps, window, pooled)
+				}
+				if window == 0 || pooled == 0 {
+					t.Fatalf("checkpoint at step %d: restored in window %d with %d draws pooled", cp.Steps, window, pooled)
+				}
+				gm := tr.finished.Progress.Metric
+				if gm.Updates != fm.Updates || gm.UpdatedAtStep != fm.UpdatedAtStep || math.Float64bits(gm.Condition) != math.Float64bits(fm.Condition) ||
+					math.Float64bits(gm.Shrinkage) != math.Float64bits(fm.Shrinkage) {
+					t.Fatalf("checkpoint at step %d: metric %+v, want %+v", cp.Steps, gm, fm)
+				}
+				gt, wt := tr.finished.Progress.Tuning, full.finished.Progress.Tuning
+				if len(gt) != len(wt) {
+					t.Fatalf("checkpoint at step %d: tuning %+v, want %+v", cp.Steps, gt, wt)
+				}
+				for i := range gt {
+					if gt[i].Setting != wt[i].Setting || math.Float64bits(gt[i].Value) != math.Float64bits(wt[i].Value) {
+						t.Fatalf("checkpoint at step %d: tuning %+v, want %+v", cp.Steps, gt, wt)
+					}
+				}
+				if tr.finished.Progress.TuningEvaluations != full.finished.Progress.TuningEvaluations ||
+					tr.finished.Progress.EvaluationsUsed != full.finished.Progress.EvaluationsUsed {
+					t.Fatalf("checkpoint at step %d: evaluations %d (tuning %d), want %d (%d)", cp.Steps,
+						tr.finished.Progress.EvaluationsUsed, tr.finished.Progress.TuningEvaluations,
+						full.finished.Progress.EvaluationsUsed, full.finished.Progress.TuningEvaluations)
+				}
+			}
+			if tested < 3 {
+				t.Fatalf("%d checkpoints inside an adaptation window after an update, want at least 3", tested)
+			}
+		})
 	}
 }

@@ -31,13 +31,25 @@ import (
 //     variance 1/(λ(1 − hλ/2)), so h = 2τ/((1 + τ)·1.1·M̂) with τ the
 //     tolerance; it is unstable at hλ ≥ 2.
 //   - kinetic: inverse mass u = 1/(1.1·M̂) (Cheng, Chatterji, Bartlett and
-//     Jordan (2018) take u = 1/M), friction γ = 2√(u·m̂), which critically
-//     damps the slowest direction (on a direction of curvature λ the
-//     position and velocity form a damped oscillator with ω² = uλ,
-//     critically damped at γ = 2ω; the rate of the kinetic diffusion is of
-//     order √(m·u) at that friction, Dalalyan and Riou-Durand (2020), from
-//     memory), and the largest h meeting the criterion for the
-//     frozen-gradient step.
+//     Jordan (2018) take u = 1/M), and the friction on a grid from
+//     γ = 2√(u·m̂), which critically damps the slowest direction (on a
+//     direction of curvature λ the position and velocity form a damped
+//     oscillator with ω² = uλ, critically damped at γ = 2ω; the rate of
+//     the kinetic diffusion is of order √(m·u) at that friction, Dalalyan
+//     and Riou-Durand (2020), from memory), to the stiffest direction's
+//     critical damping, each with the largest h meeting the criterion for
+//     the frozen-gradient step, keeping the one with the smallest
+//     worst-case autocorrelation time. For this integrator the choice
+//     hardly matters: on a Gaussian direction the frozen-gradient step
+//     with (h, γ, u) has, up to terms of order γh, the stationary variance
+//     and autocorrelation time of lmc with step uh/γ
+//     (TestKineticIsLMCAtItsEffectiveStep; docs/methods.md), so the step
+//     that holds the stiffest direction's variance error at the tolerance
+//     leaves the slowest direction as slow as lmc leaves it, whatever γ
+//     and u. Its step is bound by that accuracy, far inside its stability
+//     range (which is h < 2γ/(uM) for small γh, not ω·h < 2), and a step
+//     near the stability limit would buy speed with a variance error of
+//     order one on the stiff directions.
 //   - midpoint: its friction is 2, so the inverse mass critically damps
 //     the slowest direction, u = 1/m̂, and h meets the criterion in mean
 //     square over the random midpoint (the expectation over α by
