@@ -3,8 +3,8 @@ package session
 import (
 	"bytes"
 	"math"
-	"strings"
 	"slices"
+	"strings"
 	"testing"
 
 	"sluice/kernels"
@@ -283,6 +283,7 @@ func TestCheckpointWithModeSearch(t *testing.T) {
 		}
 	}
 }
+
 // diagonalGaussian answers gradients of π = N(0, diag(1/λ)) exactly:
 // ∇log π = −λ ⊙ x (closed form), and log π when asked.
 func diagonalGaussian(lam []float64) oracle {
