@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"math"
+	"math/rand/v2"
 	"net"
 	"sync"
 	"testing"
@@ -109,18 +110,18 @@ func fill(tg targets.Target, rows, dim int, points, vectors, grad, logd, hess, h
 // inProcess builds each kernel exactly as the engine does for a spec with
 // no curvature declared (friction 2, inverse mass 1).
 var inProcess = map[string]func(dim, chains int, h float64, start []float64, seed uint64) kernels.Kernel{
-	"lmc": func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
-		return kernels.NewLMC(d, c, h, x, kernels.NewSource(seed))
-	},
-	"kinetic": func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
-		return kernels.NewKinetic(d, c, h, 0, 0, x, nil, kernels.NewSource(seed))
-	},
-	"midpoint": func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
-		return kernels.NewMidpoint(d, c, h, 0, x, nil, kernels.NewSource(seed))
-	},
-	"midpoint-overdamped": func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
-		return kernels.NewOverdampedMidpoint(d, c, h, x, kernels.NewSource(seed))
-	},
+	"lmc": perChain(func(d int, h float64, x []float64, src *rand.PCG) kernels.Kernel {
+		return kernels.NewLMC(d, 1, h, x, src)
+	}),
+	"kinetic": perChain(func(d int, h float64, x []float64, src *rand.PCG) kernels.Kernel {
+		return kernels.NewKinetic(d, 1, h, 0, 0, x, nil, src)
+	}),
+	"midpoint": perChain(func(d int, h float64, x []float64, src *rand.PCG) kernels.Kernel {
+		return kernels.NewMidpoint(d, 1, h, 0, x, nil, src)
+	}),
+	"midpoint-overdamped": perChain(func(d int, h float64, x []float64, src *rand.PCG) kernels.Kernel {
+		return kernels.NewOverdampedMidpoint(d, 1, h, x, src)
+	}),
 	"mala": func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
 		return kernels.NewMALA(d, c, h, 0, x, kernels.NewSource(seed))
 	},
@@ -145,6 +146,23 @@ var inProcess = map[string]func(dim, chains int, h float64, start []float64, see
 	"rejection": func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
 		return kernels.NewRejection(d, c, testEnvelope.Mean, testEnvelope.Scale, testEnvelope.LogBound, kernels.NewSource(seed))
 	},
+}
+
+// perChain builds a kernel the way the engine builds its chainwise
+// kernels: one kernel per chain, chain c drawing from
+// kernels.ChainSource(seed, c), batched by kernels.NewBlocks.
+func perChain(one func(dim int, h float64, start []float64, src *rand.PCG) kernels.Kernel) func(int, int, float64, []float64, uint64) kernels.Kernel {
+	return func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
+		ks := make([]kernels.Kernel, c)
+		for i := range ks {
+			row := x
+			if len(x) == c*d {
+				row = x[i*d : (i+1)*d]
+			}
+			ks[i] = one(d, h, row, kernels.ChainSource(seed, i))
+		}
+		return kernels.NewBlocks(ks)
+	}
 }
 
 // testEnvelope covers gaussian2D (mean (1, −1), precision [[2, .5], [.5, 1]],

@@ -122,7 +122,7 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 	if build.Step == 0 && tn.auto {
 		build.Step = 1 // a placeholder: the probe's choice replaces it before the first step
 	}
-	s.kernel = entry.build(&build, kernels.NewSource(s.spec.Seed))
+	s.kernel = entry.buildKernel(&build)
 	if tn.metric != nil {
 		s.kernel.(kernels.MetricUser).SetMetric(tn.metric)
 	}

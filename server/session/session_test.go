@@ -163,7 +163,7 @@ func TestSessionDrawsEqualInProcessKernel(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	k := kernels.NewLMC(2, 4, 0.1, []float64{0.5, -0.5}, kernels.NewSource(7))
+	k := kernelsLMC(2, 4, 0.1, []float64{0.5, -0.5}, 7)
 	a := kernels.NewAnswer(4, 2)
 	for _, d := range tr.draws {
 		req := k.Next()
