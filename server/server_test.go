@@ -184,14 +184,25 @@ func TestTransportIsTransparent(t *testing.T) {
 	tg := gaussian2D(t)
 	const chains, steps = 8, 300
 	for name, build := range inProcess {
-		for _, c := range []struct {
-			limit int64
-			full  bool
-		}{{0, false}, {0, true}, {1024 + 3*(8*(2*2+2+1)+16), false}, {1024 + 3*(8*(2*2+2+1)+16), true}} { // default, and 3 rows per message even with Hessians
+		cases := []struct {
+			limit  int64
+			full   bool
+			groups int
+		}{{0, false, 0}, {0, true, 0}, {1024 + 3*(8*(2*2+2+1)+16), false, 0}, {1024 + 3*(8*(2*2+2+1)+16), true, 0}} // default, and 3 rows per message even with Hessians
+		if pipelines[name] {
+			// Chains stepped in pipelined groups: one request at a time,
+			// two and four groups.
+			cases = append(cases, []struct {
+				limit  int64
+				full   bool
+				groups int
+			}{{0, false, 1}, {0, false, 2}, {0, true, 4}, {1024 + 3*(8*(2*2+2+1)+16), false, 4}}...)
+		}
+		for _, c := range cases {
 			limit := c.limit
 			seen.reset()
 			spec := client.Spec{Dim: 2, Chains: chains, Kernel: name, Start: []float64{0, 0}, Step: 0.2, Seed: 2024,
-				BurnIn: 0, DrawsPerChain: steps, MaxMessageBytes: limit}
+				BurnIn: 0, DrawsPerChain: steps, MaxMessageBytes: limit, ChainGroups: c.groups}
 			switch name {
 			case "rejection":
 				spec.Envelope, spec.Step = &testEnvelope, 0
@@ -262,7 +273,7 @@ func TestTransportIsTransparent(t *testing.T) {
 				t.Fatalf("%s: split run delivered %d draw frames for %d steps of %d chains: not split", name, seqs, steps, chains)
 			}
 			drawRows, refs := seen.counts()
-			t.Logf("%s, limit %d, full draws %v: %d of %d draws sent by reference", name, limit, c.full, refs, drawRows)
+			t.Logf("%s, limit %d, full draws %v, groups %d: %d of %d draws sent by reference", name, limit, c.full, c.groups, refs, drawRows)
 			switch {
 			case drawRows != chains*steps:
 				t.Fatalf("%s: the interceptor saw %d draws, want %d", name, drawRows, chains*steps)
@@ -277,6 +288,10 @@ func TestTransportIsTransparent(t *testing.T) {
 		}
 	}
 }
+
+// pipelines lists the kernels whose chains the server may step in
+// pipelined groups (Spec.ChainGroups).
+var pipelines = map[string]bool{"lmc": true, "kinetic": true}
 
 // drawsArePoints lists the kernels whose next request asks at the
 // positions a step reached, so every draw but the last is sent by

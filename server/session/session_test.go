@@ -185,6 +185,7 @@ func TestSplitRequestsGiveSameDraws(t *testing.T) {
 	spec := baseSpec()
 	spec.Chains, spec.Dim, spec.Start = 64, 20, make([]float64, 20)
 	spec.DrawsPerChain = 3
+	spec.ChainGroups = 1 // one request per step: the frames counted below
 	whole, _, err := drive(t, mustNew(t, spec, Limits{}), gaussian(1))
 	if err != nil {
 		t.Fatal(err)
