@@ -385,8 +385,10 @@ func floatBytes(v ...float64) []byte {
 	return b
 }
 
+// goodRegister is a valid session stepping its 3 chains in one request
+// at a time (chain_groups 1), so that every request has 3 rows.
 func goodRegister() *sluicev1.Register {
-	return &sluicev1.Register{Dim: 2, Chains: 3, Start: floatBytes(0, 0), StartRows: 1, Step: 0.1, Seed: 5}
+	return &sluicev1.Register{Dim: 2, Chains: 3, Start: floatBytes(0, 0), StartRows: 1, Step: 0.1, Seed: 5, ChainGroups: 1}
 }
 
 // badAnswer answers the first request correctly and then corrupts the
@@ -541,7 +543,8 @@ func TestEvaluatorErrorStopsSession(t *testing.T) {
 	conn, _ := start(t, server.Options{})
 	boom := errors.New("solver diverged")
 	n := 0
-	sum, err := client.Run(testCtx(t), conn, client.Spec{Dim: 2, Chains: 2, Start: []float64{0, 0}, Step: 0.1, Seed: 1},
+	// One request per step (ChainGroups 1): the tenth request is the tenth step's.
+	sum, err := client.Run(testCtx(t), conn, client.Spec{Dim: 2, Chains: 2, Start: []float64{0, 0}, Step: 0.1, Seed: 1, ChainGroups: 1},
 		func(ctx context.Context, b *client.Batch) error {
 			if n++; n == 10 {
 				return boom
