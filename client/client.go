@@ -67,6 +67,12 @@ type Spec struct {
 	// means 3 for kernels that ask for log densities anyway and none for
 	// the others; −1 means none.
 	GradientCheckPoints int
+	// ChainGroups is how many groups of chains step independently, so
+	// that the server sends one group's next points while this client
+	// evaluates another's (several requests outstanding, answered in the
+	// order they come): 0 lets the server choose, 1 asks for one request
+	// at a time; at most Chains. The draws are the same whatever it is.
+	ChainGroups int
 	// SliceWidth and SliceMaxExpansions tune hit-and-run (0: defaults).
 	SliceWidth         float64
 	SliceMaxExpansions int
@@ -622,6 +628,7 @@ func registerFrame(spec Spec, limit int64) *sluicev1.SessionRequest {
 		FixedPointTolerance: spec.FixedPointTolerance, FixedPointIterations: int32(spec.FixedPointIterations),
 		CurvatureProbeIterations: int32(spec.CurvatureProbe),
 		GradientCheckPoints:      int32(spec.GradientCheckPoints),
+		ChainGroups:              int32(spec.ChainGroups),
 		SliceWidth:               spec.SliceWidth, SliceMaxExpansions: int32(spec.SliceMaxExpansions), Envelope: envelopeToWire(spec.Envelope),
 		CheckpointEverySteps: spec.CheckpointEverySteps,
 		OwnerEvaluates:       ownerEvaluates(spec),
@@ -694,12 +701,9 @@ type runner struct {
 	// server.
 	sendClosed bool
 	out        []byte
-	// held holds the points of request heldID (heldRows×Dim values, those
-	// of every part received so far), which Draws frames may refer to;
-	// heldDim is their dimension.
-	held              []float64
-	heldID            uint64
-	heldRows, heldDim int
+	// held holds the points of the latest requests, which Draws frames
+	// may refer to (heldRequests).
+	held heldRequests
 }
 
 func (r *runner) loop(ctx context.Context) (*Summary, error) {
@@ -730,13 +734,14 @@ func (r *runner) loop(ctx context.Context) (*Summary, error) {
 				r.cfg.onRegistered(&r.sum.Registered)
 			}
 		case *sluicev1.SessionResponse_Points:
-			if err := r.hold(f.Points); err != nil {
+			h, err := r.hold(f.Points)
+			if err != nil {
 				return r.result(err)
 			}
 			if r.evalErr != nil || r.sendClosed {
 				continue // Stop already sent, or the server is finishing
 			}
-			err := r.answer(ctx, f.Points)
+			err = r.answer(ctx, f.Points, h)
 			if errors.Is(err, io.EOF) {
 				// The server ended the stream: Recv delivers what it
 				// sent before (the Finished frame) and then its status.
@@ -762,7 +767,7 @@ func (r *runner) result(err error) (*Summary, error) {
 	return r.sum, err
 }
 
-func (r *runner) answer(ctx context.Context, p *sluicev1.Points) error {
+func (r *runner) answer(ctx context.Context, p *sluicev1.Points, h *heldRequest) error {
 	b := &r.batch
 	b.Rows, b.Dim = int(p.GetRows()), int(p.GetDim())
 	n := b.Rows * b.Dim
@@ -770,7 +775,7 @@ func (r *runner) answer(ctx context.Context, p *sluicev1.Points) error {
 	// gets a copy, so that an evaluator writing into it cannot change
 	// the draws rebuilt from them.
 	first := int(p.GetFirstRow()) * b.Dim
-	b.Points = append(b.Points[:0], r.held[first:first+n]...)
+	b.Points = append(b.Points[:0], h.vals[first:first+n]...)
 	b.Chains = b.Chains[:0]
 	for _, c := range p.GetChains() {
 		b.Chains = append(b.Chains, int(c))
@@ -831,27 +836,101 @@ func (r *runner) answer(ctx context.Context, p *sluicev1.Points) error {
 	return r.stream.Send(&sluicev1.SessionRequest{Frame: &sluicev1.SessionRequest_Evaluations{Evaluations: ev}})
 }
 
-// hold checks a Points frame's shape and decodes its points into r.held,
-// at their rows within the request; a frame of another request than the
-// one held starts a new one.
-func (r *runner) hold(p *sluicev1.Points) error {
+// hold checks a Points frame's shape and decodes its points into the
+// request it belongs to among those held, at their rows within the
+// request.
+func (r *runner) hold(p *sluicev1.Points) (*heldRequest, error) {
 	rows, dim, first, total := int(p.GetRows()), int(p.GetDim()), int(p.GetFirstRow()), int(p.GetTotalRows())
 	n := rows * dim
 	if len(p.GetPoints()) != 8*n || len(p.GetChains()) != rows {
-		return fmt.Errorf("client: malformed points frame: %d bytes and %d chains for %d×%d", len(p.GetPoints()), len(p.GetChains()), rows, dim)
+		return nil, fmt.Errorf("client: malformed points frame: %d bytes and %d chains for %d×%d", len(p.GetPoints()), len(p.GetChains()), rows, dim)
 	}
 	if dim < 1 || first < 0 || first+rows > total && first > 0 {
-		return fmt.Errorf("client: malformed points frame: rows %d to %d of %d, dimension %d", first, first+rows, total, dim)
+		return nil, fmt.Errorf("client: malformed points frame: rows %d to %d of %d, dimension %d", first, first+rows, total, dim)
 	}
 	total = max(total, rows) // a frame without total_rows is a whole request
-	if p.GetRequestId() != r.heldID || r.heldRows != total || r.heldDim != dim {
-		r.heldID, r.heldRows, r.heldDim = p.GetRequestId(), total, dim
-		r.held = resize(r.held, total*dim)
+	firstChain := -1
+	if first == 0 && rows > 0 {
+		firstChain = int(p.GetChains()[0])
 	}
-	if _, err := wire.DecodeFloats(r.held[first*dim:first*dim], p.GetPoints()); err != nil {
-		return fmt.Errorf("client: malformed points frame: %w", err)
+	h := r.held.take(p.GetRequestId(), total, dim, firstChain)
+	if _, err := wire.DecodeFloats(h.vals[first*dim:first*dim], p.GetPoints()); err != nil {
+		return nil, fmt.Errorf("client: malformed points frame: %w", err)
+	}
+	return h, nil
+}
+
+// heldRequest is the points of one request: rows×dim values, those of
+// every part received so far.
+type heldRequest struct {
+	id         uint64
+	rows, dim  int
+	firstChain int // the chain of its first row; −1 until that part came
+	vals       []float64
+}
+
+// heldRequests keeps the points of the latest request of each group of
+// chains a server steps apart (Spec.ChainGroups): a request whose first
+// row is of the same chain as an older one's replaces it, so at most one
+// step's worth of points is held, and at most maxHeldRequests requests.
+// Draws frames refer to rows of these.
+type heldRequests struct {
+	reqs  []*heldRequest
+	spare []*heldRequest
+}
+
+const maxHeldRequests = 256
+
+// find returns the held request id, or nil.
+func (hs *heldRequests) find(id uint64) *heldRequest {
+	for _, h := range hs.reqs {
+		if h.id == id {
+			return h
+		}
 	}
 	return nil
+}
+
+// take returns the held request id of rows×dim points, making it (and
+// dropping the one it replaces) if it is new.
+func (hs *heldRequests) take(id uint64, rows, dim, firstChain int) *heldRequest {
+	h := hs.find(id)
+	if h == nil || h.rows != rows || h.dim != dim {
+		if h != nil {
+			hs.drop(h)
+		}
+		if len(hs.reqs) >= maxHeldRequests {
+			hs.drop(hs.reqs[0])
+		}
+		if n := len(hs.spare); n > 0 {
+			h, hs.spare = hs.spare[n-1], hs.spare[:n-1]
+		} else {
+			h = &heldRequest{}
+		}
+		h.id, h.rows, h.dim, h.firstChain = id, rows, dim, -1
+		h.vals = resize(h.vals, rows*dim)
+		hs.reqs = append(hs.reqs, h)
+	}
+	if firstChain >= 0 && h.firstChain < 0 {
+		h.firstChain = firstChain
+		for _, o := range hs.reqs {
+			if o != h && o.firstChain == firstChain {
+				hs.drop(o)
+				break
+			}
+		}
+	}
+	return h
+}
+
+func (hs *heldRequests) drop(h *heldRequest) {
+	for i, o := range hs.reqs {
+		if o == h {
+			hs.reqs = append(hs.reqs[:i], hs.reqs[i+1:]...)
+			hs.spare = append(hs.spare, h)
+			return
+		}
+	}
 }
 
 // deliver checks a Draws frame and hands its draws on, rebuilding those
@@ -863,18 +942,20 @@ func (r *runner) deliver(w *sluicev1.Draws) error {
 		return fmt.Errorf("%w: got sequence %d, expected %d", ErrDrawsLost, d.Seq, r.nextSeq)
 	}
 	sent := d.Rows // rows whose values are in the frame
+	var h *heldRequest
 	if pr := w.GetPointRows(); len(pr) > 0 {
-		if len(pr) != d.Rows || w.GetFromRequestId() != r.heldID || d.Dim != r.heldDim {
-			return fmt.Errorf("client: draws frame at sequence %d refers to request %d (dimension %d), but the points held are of request %d (dimension %d)",
-				d.Seq, w.GetFromRequestId(), d.Dim, r.heldID, r.heldDim)
+		h = r.held.find(w.GetFromRequestId())
+		if len(pr) != d.Rows || h == nil || d.Dim != h.dim {
+			return fmt.Errorf("client: draws frame at sequence %d refers to request %d (dimension %d), which is not among the requests whose points are held",
+				d.Seq, w.GetFromRequestId(), d.Dim)
 		}
 		sent = 0
 		for _, row := range pr {
 			switch {
 			case row < 0:
 				sent++
-			case int(row) >= r.heldRows:
-				return fmt.Errorf("client: draws frame at sequence %d refers to row %d of a request of %d rows", d.Seq, row, r.heldRows)
+			case int(row) >= h.rows:
+				return fmt.Errorf("client: draws frame at sequence %d refers to row %d of a request of %d rows", d.Seq, row, h.rows)
 			}
 		}
 	}
@@ -888,7 +969,7 @@ func (r *runner) deliver(w *sluicev1.Draws) error {
 		return nil
 	}
 	if pr := w.GetPointRows(); len(pr) > 0 {
-		d.Values = r.rebuild(d.Values, pr, w.GetValues())
+		d.Values = rebuild(d.Values, h, pr, w.GetValues())
 	} else {
 		d.Values = getFloats(d.Values[:0], w.GetValues())
 	}
@@ -910,15 +991,15 @@ func (r *runner) deliver(w *sluicev1.Draws) error {
 }
 
 // rebuild returns dst filled with the draws of a frame sent by reference:
-// row i is row pr[i] of the points held, or the next row of vals when
+// row i is row pr[i] of the points of h, or the next row of vals when
 // pr[i] is −1 (deliver checked the rows and the length of vals).
-func (r *runner) rebuild(dst []float64, pr []int32, vals []byte) []float64 {
-	dim := r.heldDim
+func rebuild(dst []float64, h *heldRequest, pr []int32, vals []byte) []float64 {
+	dim := h.dim
 	dst = resize(dst, len(pr)*dim)
 	for i, row := range pr {
 		out := dst[i*dim : (i+1)*dim]
 		if row >= 0 {
-			copy(out, r.held[int(row)*dim:(int(row)+1)*dim])
+			copy(out, h.vals[int(row)*dim:(int(row)+1)*dim])
 			continue
 		}
 		_, _ = wire.DecodeFloats(out[:0], vals[:8*dim])

@@ -77,10 +77,11 @@ func Work(ctx context.Context, cc grpc.ClientConnInterface, sessionID, token str
 		if p == nil {
 			continue // Attached
 		}
-		if err := r.hold(p); err != nil { // decodes the points answer reads
+		h, err := r.hold(p) // decodes the points answer reads
+		if err != nil {
 			return err
 		}
-		if err := r.answer(ctx, p); err != nil {
+		if err := r.answer(ctx, p, h); err != nil {
 			if errors.Is(err, io.EOF) {
 				_, rerr := st.Recv()
 				return attachStatus(rerr, nil)

@@ -9,7 +9,9 @@
 // clock and no global randomness here: every kernel takes its random stream
 // (math/rand/v2) from the caller, and its whole state, including that
 // stream, round-trips through MarshalBinary and UnmarshalBinary, so a run
-// can be checkpointed and resumed bit for bit.
+// can be checkpointed and resumed bit for bit. Blocks (blocks.go) runs a
+// batch as one kernel per chain, each on its own stream (ChainSource), so
+// that any range of chains can be stepped apart with the same draws.
 //
 // Conventions. The target is pi(theta) ∝ exp(-f(theta)) on R^p. Answers
 // carry the gradient of log pi (the score, -∇f), never of the potential f.

@@ -90,6 +90,12 @@ func (w *stateWriter) stream(name string, src *rand.PCG) {
 	w.b = append(w.b, rs...)
 }
 
+// raw writes a named array of bytes (another record, for example).
+func (w *stateWriter) raw(name string, v []byte) {
+	w.head(name, 'b', len(v))
+	w.b = append(w.b, v...)
+}
+
 // bytes returns the finished record.
 func (w *stateWriter) bytes() ([]byte, error) {
 	if w.err != nil {
@@ -280,6 +286,15 @@ func (r *stateRecord) flag(name string) bool {
 		r.fail("field %q is %d, want 0 or 1", name, v)
 	}
 	return v == 1
+}
+
+// raw returns the named array of bytes; it aliases the input.
+func (r *stateRecord) raw(name string) []byte {
+	f, ok := r.field(name, 'b', -1)
+	if !ok {
+		return nil
+	}
+	return f.data
 }
 
 // stream returns the named PCG random stream.

@@ -69,7 +69,7 @@ func BenchmarkTransport(b *testing.B) {
 			defer cancel()
 
 			warm := min(c.Steps, benchkit.WarmSteps)
-			if _, err := benchkit.RunSession(ctx, tcp.Conn(), c.Shape, tg, warm); err != nil {
+			if _, err := benchkit.RunSession(ctx, tcp.Conn(), c.Shape, tg, warm, 0); err != nil {
 				b.Fatal(err)
 			}
 			if err := benchkit.RunEcho(ctx, floor.Conn(), warm, 1, payload); err != nil {
@@ -87,7 +87,7 @@ func BenchmarkTransport(b *testing.B) {
 				}
 				inT += time.Since(t0)
 
-				run, err := benchkit.RunSession(ctx, tcp.Conn(), c.Shape, tg, c.Steps)
+				run, err := benchkit.RunSession(ctx, tcp.Conn(), c.Shape, tg, c.Steps, 0)
 				if err != nil {
 					b.Fatal(err)
 				}

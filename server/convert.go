@@ -58,6 +58,7 @@ func specFromWire(r *sluicev1.Register) (session.Spec, error) {
 		AnchorEvery:          int(r.GetAnchorEvery()),
 		CurvatureProbe:       int(r.GetCurvatureProbeIterations()),
 		GradientCheckPoints:  int(r.GetGradientCheckPoints()),
+		ChainGroups:          int(r.GetChainGroups()),
 		SliceWidth:           r.GetSliceWidth(),
 		SliceMaxExpansions:   int(r.GetSliceMaxExpansions()),
 		FixedPointTolerance:  r.GetFixedPointTolerance(),

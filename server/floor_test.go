@@ -71,7 +71,7 @@ func BenchmarkSessionLoopback(b *testing.B) {
 			conn := serveSluice(b)
 			ctx, cancel := context.WithTimeout(context.Background(), 5*time.Minute)
 			defer cancel()
-			if _, err := benchkit.RunSession(ctx, conn.Conn(), c.Shape, tg, min(c.Steps, benchkit.WarmSteps)); err != nil {
+			if _, err := benchkit.RunSession(ctx, conn.Conn(), c.Shape, tg, min(c.Steps, benchkit.WarmSteps), 0); err != nil {
 				b.Fatal(err)
 			}
 			b.ReportAllocs()
@@ -79,7 +79,7 @@ func BenchmarkSessionLoopback(b *testing.B) {
 			iters := 0
 			for b.Loop() {
 				t0 := time.Now()
-				if _, err := benchkit.RunSession(ctx, conn.Conn(), c.Shape, tg, c.Steps); err != nil {
+				if _, err := benchkit.RunSession(ctx, conn.Conn(), c.Shape, tg, c.Steps, 0); err != nil {
 					b.Fatal(err)
 				}
 				total += time.Since(t0)

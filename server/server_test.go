@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"math"
+	"math/rand/v2"
 	"net"
 	"sync"
 	"testing"
@@ -109,18 +110,18 @@ func fill(tg targets.Target, rows, dim int, points, vectors, grad, logd, hess, h
 // inProcess builds each kernel exactly as the engine does for a spec with
 // no curvature declared (friction 2, inverse mass 1).
 var inProcess = map[string]func(dim, chains int, h float64, start []float64, seed uint64) kernels.Kernel{
-	"lmc": func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
-		return kernels.NewLMC(d, c, h, x, kernels.NewSource(seed))
-	},
-	"kinetic": func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
-		return kernels.NewKinetic(d, c, h, 0, 0, x, nil, kernels.NewSource(seed))
-	},
-	"midpoint": func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
-		return kernels.NewMidpoint(d, c, h, 0, x, nil, kernels.NewSource(seed))
-	},
-	"midpoint-overdamped": func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
-		return kernels.NewOverdampedMidpoint(d, c, h, x, kernels.NewSource(seed))
-	},
+	"lmc": perChain(func(d int, h float64, x []float64, src *rand.PCG) kernels.Kernel {
+		return kernels.NewLMC(d, 1, h, x, src)
+	}),
+	"kinetic": perChain(func(d int, h float64, x []float64, src *rand.PCG) kernels.Kernel {
+		return kernels.NewKinetic(d, 1, h, 0, 0, x, nil, src)
+	}),
+	"midpoint": perChain(func(d int, h float64, x []float64, src *rand.PCG) kernels.Kernel {
+		return kernels.NewMidpoint(d, 1, h, 0, x, nil, src)
+	}),
+	"midpoint-overdamped": perChain(func(d int, h float64, x []float64, src *rand.PCG) kernels.Kernel {
+		return kernels.NewOverdampedMidpoint(d, 1, h, x, src)
+	}),
 	"mala": func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
 		return kernels.NewMALA(d, c, h, 0, x, kernels.NewSource(seed))
 	},
@@ -147,6 +148,23 @@ var inProcess = map[string]func(dim, chains int, h float64, start []float64, see
 	},
 }
 
+// perChain builds a kernel the way the engine builds its chainwise
+// kernels: one kernel per chain, chain c drawing from
+// kernels.ChainSource(seed, c), batched by kernels.NewBlocks.
+func perChain(one func(dim int, h float64, start []float64, src *rand.PCG) kernels.Kernel) func(int, int, float64, []float64, uint64) kernels.Kernel {
+	return func(d, c int, h float64, x []float64, seed uint64) kernels.Kernel {
+		ks := make([]kernels.Kernel, c)
+		for i := range ks {
+			row := x
+			if len(x) == c*d {
+				row = x[i*d : (i+1)*d]
+			}
+			ks[i] = one(d, h, row, kernels.ChainSource(seed, i))
+		}
+		return kernels.NewBlocks(ks)
+	}
+}
+
 // testEnvelope covers gaussian2D (mean (1, −1), precision [[2, .5], [.5, 1]],
 // normalised): with scale² ≥ 1/λ_min(Q) the ratio π/q peaks at the mean,
 // where log π − log q = ½ log det Q + p log scale (derived; det Q = 1.75),
@@ -166,14 +184,25 @@ func TestTransportIsTransparent(t *testing.T) {
 	tg := gaussian2D(t)
 	const chains, steps = 8, 300
 	for name, build := range inProcess {
-		for _, c := range []struct {
-			limit int64
-			full  bool
-		}{{0, false}, {0, true}, {1024 + 3*(8*(2*2+2+1)+16), false}, {1024 + 3*(8*(2*2+2+1)+16), true}} { // default, and 3 rows per message even with Hessians
+		cases := []struct {
+			limit  int64
+			full   bool
+			groups int
+		}{{0, false, 0}, {0, true, 0}, {1024 + 3*(8*(2*2+2+1)+16), false, 0}, {1024 + 3*(8*(2*2+2+1)+16), true, 0}} // default, and 3 rows per message even with Hessians
+		if pipelines[name] {
+			// Chains stepped in pipelined groups: one request at a time,
+			// two and four groups.
+			cases = append(cases, []struct {
+				limit  int64
+				full   bool
+				groups int
+			}{{0, false, 1}, {0, false, 2}, {0, true, 4}, {1024 + 3*(8*(2*2+2+1)+16), false, 4}}...)
+		}
+		for _, c := range cases {
 			limit := c.limit
 			seen.reset()
 			spec := client.Spec{Dim: 2, Chains: chains, Kernel: name, Start: []float64{0, 0}, Step: 0.2, Seed: 2024,
-				BurnIn: 0, DrawsPerChain: steps, MaxMessageBytes: limit}
+				BurnIn: 0, DrawsPerChain: steps, MaxMessageBytes: limit, ChainGroups: c.groups}
 			switch name {
 			case "rejection":
 				spec.Envelope, spec.Step = &testEnvelope, 0
@@ -244,7 +273,7 @@ func TestTransportIsTransparent(t *testing.T) {
 				t.Fatalf("%s: split run delivered %d draw frames for %d steps of %d chains: not split", name, seqs, steps, chains)
 			}
 			drawRows, refs := seen.counts()
-			t.Logf("%s, limit %d, full draws %v: %d of %d draws sent by reference", name, limit, c.full, refs, drawRows)
+			t.Logf("%s, limit %d, full draws %v, groups %d: %d of %d draws sent by reference", name, limit, c.full, c.groups, refs, drawRows)
 			switch {
 			case drawRows != chains*steps:
 				t.Fatalf("%s: the interceptor saw %d draws, want %d", name, drawRows, chains*steps)
@@ -259,6 +288,10 @@ func TestTransportIsTransparent(t *testing.T) {
 		}
 	}
 }
+
+// pipelines lists the kernels whose chains the server may step in
+// pipelined groups (Spec.ChainGroups).
+var pipelines = map[string]bool{"lmc": true, "kinetic": true}
 
 // drawsArePoints lists the kernels whose next request asks at the
 // positions a step reached, so every draw but the last is sent by
@@ -352,8 +385,10 @@ func floatBytes(v ...float64) []byte {
 	return b
 }
 
+// goodRegister is a valid session stepping its 3 chains in one request
+// at a time (chain_groups 1), so that every request has 3 rows.
 func goodRegister() *sluicev1.Register {
-	return &sluicev1.Register{Dim: 2, Chains: 3, Start: floatBytes(0, 0), StartRows: 1, Step: 0.1, Seed: 5}
+	return &sluicev1.Register{Dim: 2, Chains: 3, Start: floatBytes(0, 0), StartRows: 1, Step: 0.1, Seed: 5, ChainGroups: 1}
 }
 
 // badAnswer answers the first request correctly and then corrupts the
@@ -508,7 +543,8 @@ func TestEvaluatorErrorStopsSession(t *testing.T) {
 	conn, _ := start(t, server.Options{})
 	boom := errors.New("solver diverged")
 	n := 0
-	sum, err := client.Run(testCtx(t), conn, client.Spec{Dim: 2, Chains: 2, Start: []float64{0, 0}, Step: 0.1, Seed: 1},
+	// One request per step (ChainGroups 1): the tenth request is the tenth step's.
+	sum, err := client.Run(testCtx(t), conn, client.Spec{Dim: 2, Chains: 2, Start: []float64{0, 0}, Step: 0.1, Seed: 1, ChainGroups: 1},
 		func(ctx context.Context, b *client.Batch) error {
 			if n++; n == 10 {
 				return boom

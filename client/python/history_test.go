@@ -63,7 +63,11 @@ func TestPythonWritesFilesTheReportReads(t *testing.T) {
 		}
 	}
 	last := h[5]
-	if last.Kind != "finish" || last.Reason != "draws collected" || last.State != "finished" || last.DrawsSent != 400 ||
+	// A run of 100 draws per chain may end with a failed check of the
+	// verdict (R-hat over 1.1 at a bulk ESS near 10 per chain is a matter
+	// of chance); every draw still arrives, and the files are what is
+	// checked here.
+	if last.Kind != "finish" || (last.Reason != "draws collected" && last.Reason != "check failed") || last.State != "finished" || last.DrawsSent != 400 ||
 		len(last.Params) != 2 || last.Params[1].Name != "right" || !last.WorstRhat.Valid() || !last.SmallestESS.Valid() {
 		t.Fatalf("finish record %+v", last)
 	}

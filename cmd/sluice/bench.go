@@ -27,6 +27,7 @@ func bench(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	python := fs.String("python", benchkit.Python, "Python interpreter with grpc and numpy")
 	pyDir := fs.String("python-dir", "", "directory of the Python client (bench.py, sluice_client); default: client/python of the source tree around the working directory")
 	quiet := fs.Bool("quiet", false, "do not report on stderr what is being measured")
+	groups := fs.Int("groups", 0, "chain groups of the measured sessions (0: the server chooses; 1: one request at a time)")
 	setHelp(fs, help{
 		usage: "sluice bench [--quick] [--json] [--no-python] [flags]",
 		about: "Measures, in one run on loopback, what sluice costs next to the least it could cost, each figure beside " +
@@ -55,6 +56,9 @@ func bench(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	if *rounds < 0 {
 		return usagef("--rounds must be ≥ 1 (0: the default)")
 	}
+	if *groups < 0 {
+		return usagef("--groups must be ≥ 0 (0: the server chooses)")
+	}
 	cfg := benchkit.DefaultConfig()
 	if *quick {
 		cfg = benchkit.QuickConfig()
@@ -63,6 +67,7 @@ func bench(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		cfg.Rounds = *rounds
 		cfg.Python.Rounds = *rounds
 	}
+	cfg.Groups = *groups
 	cfg.Python.Interpreter = *python
 	cfg.Python.Dir = *pyDir
 	if cfg.Python.Dir == "" {
@@ -131,7 +136,11 @@ func printBench(w io.Writer, r *benchkit.Report, quick bool) {
 		fmt.Fprintln(w, "--quick: tiny sizes and a handful of steps; these figures say nothing about speed")
 	}
 
-	fmt.Fprintln(w, "\nsession step (lmc, Go client, loopback TCP) vs bare gRPC echo of the same bytes, one message each way")
+	groups := "chain groups chosen by the server"
+	if len(r.Transport) > 0 && r.Transport[0].Groups > 0 {
+		groups = fmt.Sprintf("%d chain groups", r.Transport[0].Groups)
+	}
+	fmt.Fprintf(w, "\nsession step (lmc, Go client, loopback TCP) vs bare gRPC echo of the same bytes, one message each way; %s\n", groups)
 	fmt.Fprintf(w, "  %-12s %7s %15s %15s %7s %13s %10s %13s %11s\n", "chains × dim", "steps", "session µs/step", "echo µs/step", "ratio", "middle half",
 		"CPU ratio", "middle half", "summary ms")
 	for _, t := range r.Transport {

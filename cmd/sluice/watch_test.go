@@ -41,9 +41,10 @@ func heldSession(t *testing.T, ctx context.Context, buffer int) (addr, id, token
 	var once sync.Once
 	release = func() { once.Do(func() { close(gate) }) }
 	t.Cleanup(release)
-	// 50 burn-in steps and 200 kept: 250 steps, a report every 25.
+	// 50 burn-in steps and 200 kept: 250 steps, a report every 25; one
+	// request per step (ChainGroups 1), so the 101st call is step 101's.
 	spec := client.Spec{Dim: 2, Chains: 4, Start: []float64{1, -1}, Step: 0.2, BurnIn: 50, DrawsPerChain: 200, Seed: 5,
-		ProgressEverySteps: 25, Names: []string{"left", "right"}, MaxEvaluations: 100000}
+		ProgressEverySteps: 25, Names: []string{"left", "right"}, MaxEvaluations: 100000, ChainGroups: 1}
 	calls := 0
 	eval := func(ctx context.Context, b *client.Batch) error {
 		calls++

@@ -162,7 +162,7 @@ func TestTransportRuns(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer srv.Close()
-	r, err := Transport(ctx, srv, Shape{Chains: 3, Dim: 4}, 7, 2)
+	r, err := Transport(ctx, srv, Shape{Chains: 3, Dim: 4}, 7, 2, 0)
 	if err != nil {
 		t.Fatal(err)
 	}

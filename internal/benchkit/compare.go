@@ -119,6 +119,8 @@ type TransportResult struct {
 	// Session is the time per step, from opening the session to the
 	// arrival of its last draw, over the steps; µs.
 	Session Measure `json:"session_us_per_step"`
+	// Groups is the session's Spec.ChainGroups (0: the server chose).
+	Groups int `json:"chain_groups"`
 	// Echo is the time per round trip of the echo; µs.
 	Echo Measure `json:"echo_us_per_step"`
 	// Ratio is the median of the rounds' Session/Echo, RatioRounds those
@@ -138,8 +140,8 @@ type TransportResult struct {
 // steps on srv (a server from ServeSluice) with steps round trips of an
 // echo server carrying chains × dim float64 each way. It checks that the
 // session's last draws equal an in-process run of the kernel bit for bit.
-func Transport(ctx context.Context, srv *Loopback, s Shape, steps, rounds int) (TransportResult, error) {
-	res := TransportResult{Shape: s, Steps: steps}
+func Transport(ctx context.Context, srv *Loopback, s Shape, steps, rounds, groups int) (TransportResult, error) {
+	res := TransportResult{Shape: s, Steps: steps, Groups: groups}
 	payload := make([]byte, 8*s.Chains*s.Dim)
 	echo, err := ServeEcho(len(payload), 1, max(steps, WarmSteps))
 	if err != nil {
@@ -148,7 +150,7 @@ func Transport(ctx context.Context, srv *Loopback, s Shape, steps, rounds int) (
 	defer echo.Close()
 	tg := NewDiagGaussian(s.Dim)
 	warm := min(steps, WarmSteps)
-	if _, err := RunSession(ctx, srv.Conn(), s, tg, warm); err != nil {
+	if _, err := RunSession(ctx, srv.Conn(), s, tg, warm, groups); err != nil {
 		return res, err
 	}
 	if err := RunEcho(ctx, echo.Conn(), warm, 1, payload); err != nil {
@@ -157,7 +159,7 @@ func Transport(ctx context.Context, srv *Loopback, s Shape, steps, rounds int) (
 	var last []float64
 	var summary []float64
 	as, bs, err := alternate(rounds, func() (sample, error) {
-		run, err := RunSession(ctx, srv.Conn(), s, tg, steps)
+		run, err := RunSession(ctx, srv.Conn(), s, tg, steps, groups)
 		last = run.Last
 		summary = append(summary, (run.Total-run.ToLastDraw).Seconds()*1e3)
 		return sample{wall: run.ToLastDraw, cpu: run.CPUToLastDraw, hasCPU: run.HasCPU}, err

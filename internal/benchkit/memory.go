@@ -65,7 +65,7 @@ func Memory(ctx context.Context, s Shape, draws int64) (MemoryResult, error) {
 	}
 	defer srv.Close()
 	tg := NewDiagGaussian(s.Dim)
-	if _, err := RunSession(ctx, srv.Conn(), s, tg, min(WarmSteps, int(every)/s.Chains)); err != nil {
+	if _, err := RunSession(ctx, srv.Conn(), s, tg, min(WarmSteps, int(every)/s.Chains), 0); err != nil {
 		return res, err
 	}
 

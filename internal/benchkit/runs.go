@@ -45,11 +45,12 @@ type SessionRun struct {
 }
 
 // RunSession runs one lmc session of steps steps (every step kept, from
-// a start at the origin) over conn, answering with tg's gradient, and
-// checks that it delivered chains × steps draws.
-func RunSession(ctx context.Context, conn grpc.ClientConnInterface, s Shape, tg targets.Target, steps int) (SessionRun, error) {
+// a start at the origin) over conn, its chains in groups chain groups (0:
+// the server chooses; Spec.ChainGroups), answering with tg's gradient,
+// and checks that it delivered chains × steps draws.
+func RunSession(ctx context.Context, conn grpc.ClientConnInterface, s Shape, tg targets.Target, steps, groups int) (SessionRun, error) {
 	spec := client.Spec{Dim: s.Dim, Chains: s.Chains, Kernel: "lmc", Start: make([]float64, s.Dim), Step: Step,
-		KeepEvery: 1, DrawsPerChain: int64(steps), Seed: Seed, MaxMessageBytes: MessageBytes}
+		KeepEvery: 1, DrawsPerChain: int64(steps), Seed: Seed, MaxMessageBytes: MessageBytes, ChainGroups: min(groups, s.Chains)}
 	run := SessionRun{Last: make([]float64, s.Chains*s.Dim)}
 	eval := func(_ context.Context, bt *client.Batch) error {
 		targets.EvalBatch(tg, bt.Points, bt.Rows, bt.Grad, nil)
@@ -80,9 +81,15 @@ func RunSession(ctx context.Context, conn grpc.ClientConnInterface, s Shape, tg 
 }
 
 // RunKernel drives a fresh lmc kernel in-process for steps steps from
-// the origin, with tg's gradient, and returns its final positions.
+// the origin, with tg's gradient, and returns its final positions. The
+// kernel is built as the engine builds it: one per chain, chain c on
+// kernels.ChainSource(Seed, c), batched by kernels.NewBlocks.
 func RunKernel(s Shape, tg targets.Target, steps int) []float64 {
-	k := kernels.NewLMC(s.Dim, s.Chains, Step, make([]float64, s.Dim), kernels.NewSource(Seed))
+	ks := make([]kernels.Kernel, s.Chains)
+	for c := range ks {
+		ks[c] = kernels.NewLMC(s.Dim, 1, Step, make([]float64, s.Dim), kernels.ChainSource(Seed, c))
+	}
+	k := kernels.NewBlocks(ks)
 	a := kernels.NewAnswer(s.Chains, s.Dim)
 	for range steps {
 		req := k.Next()
@@ -94,20 +101,24 @@ func RunKernel(s Shape, tg targets.Target, steps int) []float64 {
 
 // RunFused makes the steps of RunKernel in one plain loop: for every
 // chain and coordinate, the gradient of g and the update
-// x += h·∇log π(x) + √(2h)·ξ, with ξ from the same random stream in the
-// same order (chain by chain, coordinate by coordinate). It returns the
+// x += h·∇log π(x) + √(2h)·ξ, with ξ from the same random streams in the
+// same order (each chain's own, coordinate by coordinate). It returns the
 // final positions, equal to RunKernel's.
 func RunFused(s Shape, g *DiagGaussian, steps int) []float64 {
 	if g.Dim() != s.Dim {
 		panic(fmt.Sprintf("benchkit: RunFused: target of dimension %d for shape %v", g.Dim(), s))
 	}
 	x := make([]float64, s.Chains*s.Dim)
-	rng := rand.New(kernels.NewSource(Seed))
+	rngs := make([]*rand.Rand, s.Chains)
+	for c := range rngs {
+		rngs[c] = rand.New(kernels.ChainSource(Seed, c))
+	}
 	h, sc := Step, math.Sqrt(2*Step)
 	mean, q := g.Mean, g.Q
 	for range steps {
 		for c := range s.Chains {
 			row := x[c*s.Dim : (c+1)*s.Dim]
+			rng := rngs[c]
 			for i := range row {
 				gi := -(q[i] * (row[i] - mean[i]))
 				row[i] += h*gi + sc*rng.NormFloat64()

@@ -31,6 +31,9 @@ type Config struct {
 	// skips it and says why.
 	Python     PythonConfig
 	SkipPython string
+	// Groups is the sessions' Spec.ChainGroups (0: the server chooses; 1:
+	// one request at a time).
+	Groups int
 	// Log, if not nil, is told what is being measured as it starts.
 	Log func(format string, args ...any)
 }
@@ -120,7 +123,7 @@ func Run(ctx context.Context, c Config) (*Report, error) {
 	}
 	for _, t := range c.Transport {
 		logf("session step vs echo, %v, %d steps × %d rounds", t.Shape, t.Steps, c.Rounds)
-		r, err := Transport(ctx, srv, t.Shape, t.Steps, c.Rounds)
+		r, err := Transport(ctx, srv, t.Shape, t.Steps, c.Rounds, c.Groups)
 		if err != nil {
 			srv.Close()
 			return nil, err

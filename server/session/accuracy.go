@@ -216,9 +216,15 @@ type monitor struct {
 	// arrive; pendingScores says it is waiting.
 	keptX         []float64
 	pendingScores bool
-	requests      int // requests seen, for the pair cadence
-	lastKSD       float64
-	stein         *SteinReport
+	// keptS gathers the scores at keptX chain by chain when the chains are
+	// stepped in groups; scored marks the chains it holds, nScored counts
+	// them.
+	keptS    []float64
+	scored   []bool
+	nScored  int
+	requests int // requests seen, for the pair cadence
+	lastKSD  float64
+	stein    *SteinReport
 	// The last measured figures, for the targets and the verdict.
 	params   []ParameterDiagnostics
 	measured bool
@@ -324,6 +330,18 @@ func (m *monitor) answered(req *kernels.Request, a *kernels.Answer) {
 	if !req.Need.Has(kernels.NeedGradient) {
 		return
 	}
+	m.requests++
+	m.answeredAt(req, a, m.requests)
+}
+
+// answeredAt records the gradients of request number round of the chains
+// in req: a chain group's requests count their own rounds, so that each
+// chain's pairs are taken at the steps they would be taken at without
+// groups.
+func (m *monitor) answeredAt(req *kernels.Request, a *kernels.Answer, round int) {
+	if !req.Need.Has(kernels.NeedGradient) {
+		return
+	}
 	if m.stochastic {
 		m.pendingScores = false
 		return
@@ -332,8 +350,7 @@ func (m *monitor) answered(req *kernels.Request, a *kernels.Answer) {
 	// (one request when the state is small), so that certificates cost a
 	// bounded share of a step however many chains × dim values it has.
 	d := m.dim
-	m.requests++
-	phase := m.requests % m.pairPeriod()
+	phase := round % m.pairPeriod()
 	if phase <= 1 {
 		for r := range req.Rows {
 			c := req.Chain[r]
@@ -354,10 +371,39 @@ func (m *monitor) answered(req *kernels.Request, a *kernels.Answer) {
 	}
 	// Scores of the last kept draws: the kernel asked for the gradient at
 	// exactly those positions (as LMC does at the start of each step).
+	if m.pendingScores && req.Rows < m.chains {
+		m.groupScores(req, a)
+		return
+	}
 	if m.pendingScores && req.Rows == m.chains && slices.Equal(req.Points[:d*m.chains], m.keptX) {
 		m.addKSD(m.keptX, a.Grad[:d*m.chains])
 	}
 	m.pendingScores = false
+}
+
+// groupScores takes the scores at the kept draws of a chain group's
+// request: once every chain's has come, the Stein window gets them all,
+// as it would from one request; a row asked elsewhere ends the wait.
+func (m *monitor) groupScores(req *kernels.Request, a *kernels.Answer) {
+	d := m.dim
+	if m.keptS == nil {
+		m.keptS, m.scored = make([]float64, d*m.chains), make([]bool, m.chains)
+	}
+	for r, c := range req.Chain[:req.Rows] {
+		if !slices.Equal(req.Points[r*d:(r+1)*d], m.keptX[c*d:(c+1)*d]) {
+			m.pendingScores = false
+			return
+		}
+		copy(m.keptS[c*d:(c+1)*d], a.Grad[r*d:(r+1)*d])
+		if !m.scored[c] {
+			m.scored[c] = true
+			m.nScored++
+		}
+	}
+	if m.nScored == m.chains {
+		m.addKSD(m.keptX, m.keptS)
+		m.pendingScores = false
+	}
 }
 
 // pairPeriod is how many requests apart certificate pairs are taken: 1
@@ -378,6 +424,10 @@ func (m *monitor) kept(k kernels.Kernel) {
 	}
 	copy(m.keptX, k.Positions())
 	m.pendingScores = true
+	if m.nScored > 0 {
+		clear(m.scored)
+		m.nScored = 0
+	}
 }
 
 // report fills p with the figures of the last judgement.

@@ -121,3 +121,89 @@ func ringBytes(s *Session) int64 {
 	}
 	return s.log.Bytes()
 }
+
+// TestGroupStepAllocatesNothing does the same for chains stepped in two
+// pipelined groups (groups.go): after one step of every chain together,
+// the groups' requests, answers, Tells, completed steps and draws sent by
+// reference to each group's request allocate nothing once warm.
+func TestGroupStepAllocatesNothing(t *testing.T) {
+	spec := Spec{Dim: 10, Chains: 8, Kernel: "lmc", Start: make([]float64, 10), StartRows: 1, Step: 0.05, Seed: 7,
+		ProgressInterval: time.Hour, DrawReferences: true, ChainGroups: 2}
+	s, err := New("alloc", spec, Limits{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	in := make(chan Message, 16)
+	// One answer buffer per request id modulo 4: two requests are out at
+	// once, and each answer is read after the next one is made.
+	var evs [4]Evaluations
+	var grads [4][]float64
+	send := func(f Frame) error {
+		p, ok := f.(*Points)
+		if !ok {
+			return nil
+		}
+		i := p.RequestID % 4
+		grads[i] = grads[i][:0]
+		for _, x := range p.Points[:p.Rows*p.Dim] {
+			grads[i] = append(grads[i], -x) // N(0, I)
+		}
+		evs[i] = Evaluations{RequestID: p.RequestID, FirstRow: p.FirstRow, Rows: p.Rows, Dim: p.Dim, Grad: grads[i]}
+		in <- Message{Evaluations: &evs[i]}
+		return nil
+	}
+	r := s.begin(context.Background(), in, send)
+	defer r.stop()
+	req := s.next()
+	if err := s.request(r, req); err != nil {
+		t.Fatal(err)
+	}
+	if o, stop := s.await(r, req); stop {
+		t.Fatalf("await: %v", o.msg)
+	}
+	if err := s.complete(r, req); err != nil {
+		t.Fatal(err)
+	}
+	if s.groupsFor() != 2 {
+		t.Fatalf("groupsFor %d, want 2", s.groupsFor())
+	}
+	if o, stop, ok := s.startGroups(r, 2); stop || !ok {
+		t.Fatalf("startGroups: %v", o.msg)
+	}
+	step := func() {
+		k := s.kernel.Steps()
+		for s.kernel.Steps() == k {
+			if o, stop, leave := s.groupEvent(r); stop || leave {
+				t.Fatalf("group event: %v", o.msg)
+			}
+		}
+	}
+	for range 500 {
+		step()
+	}
+	var measured, grown int
+	for range 500 {
+		k := s.kernel.Steps()
+		if k+2 >= s.judgeNext || k+2 >= s.steinNext {
+			step()
+			continue
+		}
+		ring := ringBytes(s)
+		got := testing.AllocsPerRun(1, step)
+		if ringBytes(s) != ring {
+			continue
+		}
+		if got != 0 {
+			grown++
+			if grown > 2 {
+				t.Errorf("%v allocations at step %d (the %d-th allocating step), want 0", got, k, grown)
+				break
+			}
+			continue
+		}
+		measured++
+	}
+	if measured < 80 {
+		t.Errorf("only %d steps measured between judgements", measured)
+	}
+}

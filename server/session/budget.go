@@ -122,6 +122,13 @@ func budgetOf(s *Spec, k *kernelEntry, lim Limits) Budget {
 	}
 	dim, chains := float64(s.Dim), float64(s.Chains)
 	add("register.chains", fmt.Sprintf("chain state of %d chains × %d coordinates", s.Chains, s.Dim), stateCopies*8*chains*dim)
+	if k.chainwise {
+		// One kernel per chain (about 1 KiB each with its stream and
+		// request), the batch's gathered positions and points, and the
+		// chain groups' answers (groups.go).
+		add("register.chains", fmt.Sprintf("per-chain kernels of %d chains, their gathered positions and the groups' answers", s.Chains),
+			1024*chains+3*8*chains*dim)
+	}
 
 	// The largest request and its answer, over every kind the kernel (and
 	// an opt-in phase) may send.

@@ -67,7 +67,10 @@
 // It also owns the sharing of each request's rows among the session's
 // evaluators — the owner's stream and workers attached with
 // Session.Attach — and the reissue of a lost or late evaluator's rows
-// (pool.go); a transport gives each worker stream its own writer.
+// (pool.go); a transport gives each worker stream its own writer. After
+// burn-in it may step the chains in pipelined groups, each with a request
+// out, so the client always has points waiting (groups.go); the draws are
+// those of stepping every chain together.
 // Nothing here imports gRPC, protobuf or a logger; the server package
 // translates frames to and from the wire and maps errors to status codes.
 package session

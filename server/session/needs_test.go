@@ -134,8 +134,18 @@ func TestRowBytesCountsTheHessian(t *testing.T) {
 	}
 }
 
-func kernelsLMC(dim, chains int, h float64, start []float64, seed uint64) *kernels.LMC {
-	return kernels.NewLMC(dim, chains, h, start, kernels.NewSource(seed))
+// kernelsLMC builds LMC as the engine does: one kernel per chain, chain c
+// drawing from kernels.ChainSource(seed, c), batched by kernels.NewBlocks.
+func kernelsLMC(dim, chains int, h float64, start []float64, seed uint64) kernels.Kernel {
+	ks := make([]kernels.Kernel, chains)
+	for c := range ks {
+		row := start
+		if len(start) == chains*dim {
+			row = start[c*dim : (c+1)*dim]
+		}
+		ks[c] = kernels.NewLMC(dim, 1, h, row, kernels.ChainSource(seed, c))
+	}
+	return kernels.NewBlocks(ks)
 }
 
 // A kernel whose one row cannot fit the message limit (ozaki's dense

@@ -524,7 +524,7 @@ func (s *Session) issue(req *kernels.Request, k int, e *evaluator, now time.Time
 	e.out = append(e.out, outKey{req: s.requestID, first: pt.lo, rows: pt.hi - pt.lo})
 	e.backlog += pt.hi - pt.lo
 	p.setDeadline(e, e.since)
-	if err := e.send(s.pointsFrame(req, pt.lo, pt.hi)); err != nil {
+	if err := e.send(s.pointsFrame(req, s.requestID, pt.lo, pt.hi)); err != nil {
 		if e.owner() {
 			return err
 		}

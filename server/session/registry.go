@@ -66,6 +66,36 @@ type kernelEntry struct {
 	tuning tuneRule
 	// build constructs the kernel from a validated, tuned Spec.
 	build func(s *Spec, src *rand.PCG) kernels.Kernel
+	// chainwise is set for kernels whose chains never read each other:
+	// the session runs them as one kernel per chain, each with its own
+	// random stream (kernels.ChainSource), so that a chain's draws do not
+	// depend on how the chains are grouped into requests.
+	chainwise bool
+	// pipelines is set for chainwise kernels that ask one request per
+	// step: their chains may be stepped in groups, a group at a time, so
+	// that the client always has points to evaluate (Spec.Groups).
+	pipelines bool
+}
+
+// buildKernel constructs the session's kernel from a validated, tuned
+// Spec: for a chainwise entry one kernel per chain, chain c drawing from
+// kernels.ChainSource(seed, c), batched by kernels.NewBlocks; else one
+// kernel over every chain drawing from kernels.NewSource(seed).
+func (e *kernelEntry) buildKernel(s *Spec) kernels.Kernel {
+	if !e.chainwise {
+		return e.build(s, kernels.NewSource(s.Seed))
+	}
+	ks := make([]kernels.Kernel, s.Chains)
+	one := *s
+	one.Chains = 1
+	for c := range ks {
+		one.Start = s.Start
+		if len(s.Start) == s.Chains*s.Dim {
+			one.Start = s.Start[c*s.Dim : (c+1)*s.Dim]
+		}
+		ks[c] = e.build(&one, kernels.ChainSource(s.Seed, c))
+	}
+	return kernels.NewBlocks(ks)
 }
 
 // requestShape is one kind of request: what it needs, and at most how
@@ -104,25 +134,25 @@ var gradientRows = []requestShape{{kernels.NeedGradient, 1}}
 // registry holds every kernel, in the order the docs list them.
 var registry = []*kernelEntry{
 	{
-		name: "lmc", requests: gradientRows, guaranteed: true, tuning: ruleOverdamped,
+		name: "lmc", requests: gradientRows, guaranteed: true, tuning: ruleOverdamped, chainwise: true, pipelines: true,
 		build: func(s *Spec, src *rand.PCG) kernels.Kernel {
 			return kernels.NewLMC(s.Dim, s.Chains, s.Step, s.Start, src)
 		},
 	},
 	{
-		name: "kinetic", requests: gradientRows, tuning: ruleKinetic,
+		name: "kinetic", requests: gradientRows, tuning: ruleKinetic, chainwise: true, pipelines: true,
 		build: func(s *Spec, src *rand.PCG) kernels.Kernel {
 			return kernels.NewKinetic(s.Dim, s.Chains, s.Step, s.Friction, inverseMass(s), s.Start, nil, src)
 		},
 	},
 	{
-		name: "midpoint", requests: gradientRows, tuning: ruleMidpoint,
+		name: "midpoint", requests: gradientRows, tuning: ruleMidpoint, chainwise: true,
 		build: func(s *Spec, src *rand.PCG) kernels.Kernel {
 			return kernels.NewMidpoint(s.Dim, s.Chains, s.Step, inverseMass(s), s.Start, nil, src)
 		},
 	},
 	{
-		name: "midpoint-overdamped", requests: gradientRows, tuning: ruleOverdampedMidpoint,
+		name: "midpoint-overdamped", requests: gradientRows, tuning: ruleOverdampedMidpoint, chainwise: true,
 		build: func(s *Spec, src *rand.PCG) kernels.Kernel {
 			return kernels.NewOverdampedMidpoint(s.Dim, s.Chains, s.Step, s.Start, src)
 		},

@@ -61,7 +61,8 @@ type Session struct {
 	budget     Budget    // the most memory the session may need
 	pointRow   []int     // per chain: the row of the last request holding its draw, or −1
 	refValues  []float64 // the draws not sent by reference
-	trimmed    Draws     // a resumed client's first draws, less those it has (skipSent)
+	srcs       []drawSource
+	trimmed    Draws // a resumed client's first draws, less those it has (skipSent)
 
 	// The verdict's state, in plain fields: the divergence watch, the
 	// step at which the figures are next judged (stepped), and the
@@ -73,6 +74,7 @@ type Session struct {
 	// mode is the mode search that starts a TV guarantee's chains
 	// (modesearch.go); nil when none runs.
 	mode *modeSearchPhase
+	grp  groups // pipelined chain groups (groups.go)
 }
 
 // Result is what Run reports when it returns.
@@ -125,7 +127,7 @@ func New(id string, spec Spec, lim Limits) (*Session, error) {
 	if build.Step == 0 && tn.auto {
 		build.Step = 1 // a placeholder: the probe's choice replaces it before the first step
 	}
-	s.kernel = entry.build(&build, kernels.NewSource(s.spec.Seed))
+	s.kernel = entry.buildKernel(&build)
 	if tn.metric != nil {
 		s.kernel.(kernels.MetricUser).SetMetric(tn.metric)
 	}
@@ -270,6 +272,11 @@ func (s *Session) loop(r *run) outcome {
 		if o, stop := s.shouldStop(r); stop {
 			return o
 		}
+		if n := s.groupsFor(); n > 1 {
+			if o, stop := s.pipeline(r, n); stop {
+				return o
+			}
+		}
 		req := s.next()
 		if o, stop := s.overBudget(req); stop {
 			return o
@@ -411,14 +418,33 @@ func (s *Session) end(r *run, o outcome) (Result, error) {
 }
 
 // flush sends the draws and progress of the last completed step, if they
-// are still pending. sent is the request whose Points frames were just
-// sent, or nil: draws equal to its points may be sent by reference.
-func (s *Session) flush(r *run, sent *kernels.Request) error {
+// are still pending. srcs are the requests whose Points frames the client
+// holds, each for a range of chains, or nil: draws equal to their points
+// may be sent by reference.
+func (s *Session) flush(r *run, srcs []drawSource) error {
 	if !r.pending {
 		return nil
 	}
 	r.pending = false
-	return s.afterStep(r.send, sent)
+	return s.afterStep(r.send, srcs)
+}
+
+// drawSource is a request whose points the client holds, for the draws of
+// chains [lo, hi): the current request, or a chain group's latest.
+type drawSource struct {
+	lo, hi int
+	id     uint64
+	req    *kernels.Request // nil: the client holds none for these chains
+}
+
+// sentSource is the one source of a session stepping every chain in one
+// request: req, just sent (nil: none).
+func (s *Session) sentSource(req *kernels.Request) []drawSource {
+	if req == nil {
+		return nil
+	}
+	s.srcs = append(s.srcs[:0], drawSource{lo: 0, hi: s.spec.Chains, id: s.requestID, req: req})
+	return s.srcs
 }
 
 // maxTime is the session's wall-time limit: the smaller of the client's
@@ -466,10 +492,13 @@ func (s *Session) next() *kernels.Request {
 // kernel work while the client evaluates.
 func (s *Session) request(r *run, req *kernels.Request) error {
 	s.requestID++
+	if s.phase == len(s.phases) {
+		s.grp.timeSent(time.Now())
+	}
 	if err := s.sendPoints(req, r.send); err != nil {
 		return err
 	}
-	if err := s.flush(r, req); err != nil {
+	if err := s.flush(r, s.sentSource(req)); err != nil {
 		return err
 	}
 	if prep, ok := s.kernel.(kernels.Preparer); ok && s.phase == len(s.phases) {
@@ -523,6 +552,9 @@ func (s *Session) await(r *run, req *kernels.Request) (outcome, bool) {
 		case msg.Evaluations == nil:
 			return failed(BadField("frame", "expected evaluations or stop")), true
 		}
+		if s.abandonedAnswer(msg.Evaluations) {
+			continue // a pipelined request the session no longer waits for
+		}
 		if err := s.ownerAnswer(req, msg.Evaluations); err != nil {
 			return s.poolFailure(err), true
 		}
@@ -550,6 +582,7 @@ func (s *Session) complete(r *run, req *kernels.Request) *Error {
 		}
 		return nil
 	}
+	s.grp.timeAnswered(time.Now())
 	if s.kernel.Steps() == 0 {
 		s.certifyStart(req)
 	}
@@ -681,11 +714,11 @@ func (s *Session) sendPoints(req *kernels.Request, send func(Frame) error) error
 	return s.assign(req, send)
 }
 
-// pointsFrame is the Points frame of rows [lo, hi) of req.
-func (s *Session) pointsFrame(req *kernels.Request, lo, hi int) *Points {
+// pointsFrame is the Points frame of rows [lo, hi) of req, request id.
+func (s *Session) pointsFrame(req *kernels.Request, id uint64, lo, hi int) *Points {
 	dim := s.spec.Dim
 	f := &s.points // reused: a frame is valid only during its send (or encoding) call
-	*f = Points{RequestID: s.requestID, FirstRow: lo, Rows: hi - lo, TotalRows: req.Rows, Dim: dim,
+	*f = Points{RequestID: id, FirstRow: lo, Rows: hi - lo, TotalRows: req.Rows, Dim: dim,
 		Points: req.Points[lo*dim : hi*dim], Chains: req.Chain[lo:hi], Need: req.Need}
 	if req.Need.Has(kernels.NeedHessianVector) {
 		f.Vectors = req.Vectors[lo*dim : hi*dim]
@@ -702,7 +735,12 @@ func (s *Session) pointsFrame(req *kernels.Request, lo, hi int) *Points {
 // pool has matched it to the part) and copies it into s.answer.
 func (s *Session) accept(req *kernels.Request, ev *Evaluations, k int) *Error {
 	pt := s.pool.parts[k]
-	rows := pt.hi - pt.lo
+	return s.acceptRows(req, s.answer, ev, pt.hi-pt.lo)
+}
+
+// acceptRows validates ev, the answer to rows rows of req from row
+// ev.FirstRow on, and copies it into ans.
+func (s *Session) acceptRows(req *kernels.Request, ans *kernels.Answer, ev *Evaluations, rows int) *Error {
 	if ev.Rows != rows {
 		return BadField("evaluations.rows", "is %d, the part has %d rows", ev.Rows, rows)
 	}
@@ -718,7 +756,7 @@ func (s *Session) accept(req *kernels.Request, ev *Evaluations, k int) *Error {
 		if reps == 1 {
 			// Check and copy in one pass; on a bad value the session fails,
 			// so a partial copy does not matter.
-			dst := s.answer.Grad[ev.FirstRow*dim : (ev.FirstRow+rows)*dim]
+			dst := ans.Grad[ev.FirstRow*dim : (ev.FirstRow+rows)*dim]
 			for i, v := range ev.Grad {
 				if math.IsNaN(v) || math.IsInf(v, 0) {
 					return badValue("evaluations.gradients", req.Chain[ev.FirstRow+i/dim], i%dim, "value %v is not finite", v)
@@ -731,7 +769,7 @@ func (s *Session) accept(req *kernels.Request, ev *Evaluations, k int) *Error {
 					return badValue("evaluations.gradients", req.Chain[ev.FirstRow+i/(dim*reps)], i%dim, "value %v is not finite", v)
 				}
 			}
-			s.noise.replicates(s.answer.Grad[ev.FirstRow*dim:(ev.FirstRow+rows)*dim], ev.Grad, rows, reps, dim)
+			s.noise.replicates(ans.Grad[ev.FirstRow*dim:(ev.FirstRow+rows)*dim], ev.Grad, rows, reps, dim)
 		}
 	} else if len(ev.Grad) != 0 {
 		return BadField("evaluations.gradients", "must be empty: gradients were not asked for")
@@ -745,7 +783,7 @@ func (s *Session) accept(req *kernels.Request, ev *Evaluations, k int) *Error {
 				return badValue("evaluations.log_densities", req.Chain[ev.FirstRow+i], -1, "value %v is not finite", v)
 			}
 		}
-		copy(s.answer.LogDensity[ev.FirstRow:], ev.LogDensity)
+		copy(ans.LogDensity[ev.FirstRow:], ev.LogDensity)
 	} else if len(ev.LogDensity) != 0 {
 		return BadField("evaluations.log_densities", "must be empty: log densities were not asked for")
 	}
@@ -753,7 +791,7 @@ func (s *Session) accept(req *kernels.Request, ev *Evaluations, k int) *Error {
 		if err := checkHessians(ev.Hessian, rows, dim, req.Chain[ev.FirstRow:]); err != nil {
 			return err
 		}
-		copy(s.answer.Hessian[ev.FirstRow*dim*dim:], ev.Hessian)
+		copy(ans.Hessian[ev.FirstRow*dim*dim:], ev.Hessian)
 	} else if len(ev.Hessian) != 0 {
 		return BadField("evaluations.hessians", "must be empty: Hessians were not asked for")
 	}
@@ -766,7 +804,7 @@ func (s *Session) accept(req *kernels.Request, ev *Evaluations, k int) *Error {
 				return badValue("evaluations.hessian_vectors", req.Chain[ev.FirstRow+i/dim], i%dim, "value %v is not finite", v)
 			}
 		}
-		copy(s.answer.HessVec[ev.FirstRow*dim:], ev.HessVec)
+		copy(ans.HessVec[ev.FirstRow*dim:], ev.HessVec)
 	} else if len(ev.HessVec) != 0 {
 		return BadField("evaluations.hessian_vectors", "must be empty: Hessian-vector products were not asked for")
 	}
@@ -799,12 +837,12 @@ func checkHessians(h []float64, rows, dim int, chains []int) *Error {
 	return nil
 }
 
-// afterStep keeps draws and sends progress after a completed step; sent
+// afterStep keeps draws and sends progress after a completed step; srcs
 // is as for flush.
-func (s *Session) afterStep(send func(Frame) error, sent *kernels.Request) error {
+func (s *Session) afterStep(send func(Frame) error, srcs []drawSource) error {
 	step := int64(s.kernel.Steps())
 	if s.keeps(step) {
-		if err := s.sendDraws(step, send, sent); err != nil {
+		if err := s.sendDraws(step, send, srcs); err != nil {
 			return err
 		}
 	}
@@ -832,8 +870,10 @@ func (s *Session) progressInterval() time.Duration {
 }
 
 // sendDraws sends the draws of a kept step, by reference to the rows of
-// sent that hold them when the client accepts references.
-func (s *Session) sendDraws(step int64, send func(Frame) error, sent *kernels.Request) error {
+// the requests in srcs that hold them when the client accepts references:
+// one run of frames per source, each source's frames referring to its
+// request.
+func (s *Session) sendDraws(step int64, send func(Frame) error, srcs []drawSource) error {
 	x := s.kernel.Positions()
 	dim, chains := s.spec.Dim, s.spec.Chains
 	s.accumulate(x, dim, chains)
@@ -841,7 +881,20 @@ func (s *Session) sendDraws(step int64, send func(Frame) error, sent *kernels.Re
 	// may be trimmed (skipSent), and a resumed client holds no points.
 	// Nor once workers share the rows: the owner's stream may not hold the
 	// request's points.
-	refs := s.spec.DrawReferences && sent != nil && s.seq >= s.persist.nextSeq && !s.pool.everWorkers && s.matchPoints(sent, x)
+	refs := s.spec.DrawReferences && len(srcs) > 0 && s.seq >= s.persist.nextSeq && !s.pool.everWorkers
+	if refs {
+		s.clearPointRows()
+		refs = false
+		for _, src := range srcs {
+			if src.req != nil && s.matchPoints(src.req, x) {
+				refs = true
+			}
+		}
+	}
+	if !refs {
+		s.srcs = append(s.srcs[:0], drawSource{lo: 0, hi: chains})
+		srcs = s.srcs
+	}
 	if s.drawChains == nil {
 		s.drawChains = make([]int, chains)
 		s.drawIters = make([]int64, chains)
@@ -853,42 +906,38 @@ func (s *Session) sendDraws(step int64, send func(Frame) error, sent *kernels.Re
 		s.drawIters[c] = step
 	}
 	per := max(1, wire.RowsPerMessage(s.msgBytes, dim))
-	for lo := 0; lo < chains; lo += per {
-		hi := min(lo+per, chains)
-		s.draws = Draws{Seq: s.seq, Rows: hi - lo, Dim: dim, Values: x[lo*dim : hi*dim],
-			Chains: s.drawChains[lo:hi], Iterations: s.drawIters[lo:hi]}
-		if s.log != nil {
-			s.log.append(&s.draws) // full values
-		}
-		if refs {
-			s.refValues = s.refValues[:0]
-			for c := lo; c < hi; c++ {
-				if s.pointRow[c] < 0 {
-					s.refValues = append(s.refValues, x[c*dim:(c+1)*dim]...)
+	for _, src := range srcs {
+		for lo := src.lo; lo < src.hi; lo += per {
+			hi := min(lo+per, src.hi)
+			s.draws = Draws{Seq: s.seq, Rows: hi - lo, Dim: dim, Values: x[lo*dim : hi*dim],
+				Chains: s.drawChains[lo:hi], Iterations: s.drawIters[lo:hi]}
+			if s.log != nil {
+				s.log.append(&s.draws) // full values
+			}
+			if refs && src.req != nil && s.anyPointRow(lo, hi) {
+				s.refValues = s.refValues[:0]
+				for c := lo; c < hi; c++ {
+					if s.pointRow[c] < 0 {
+						s.refValues = append(s.refValues, x[c*dim:(c+1)*dim]...)
+					}
+				}
+				s.draws.Values, s.draws.FromRequestID, s.draws.PointRows = s.refValues, src.id, s.pointRow[lo:hi]
+			}
+			if d, ok := s.skipSent(&s.draws); ok {
+				if err := send(d); err != nil {
+					return err
 				}
 			}
-			s.draws.Values, s.draws.FromRequestID, s.draws.PointRows = s.refValues, s.requestID, s.pointRow[lo:hi]
+			s.seq += uint64(hi - lo)
 		}
-		if d, ok := s.skipSent(&s.draws); ok {
-			if err := send(d); err != nil {
-				return err
-			}
-		}
-		s.seq += uint64(hi - lo)
 	}
 	return nil
 }
 
-// matchPoints finds, for each chain, a row of req (the request just sent)
-// whose point is bit for bit the chain's position in x, and records it in
-// s.pointRow (−1 where none is); it reports whether any chain has one.
-// Kernels whose requests ask at their positions (LMC, kinetic Langevin,
-// SGLD) hand out the position slice itself, and such rows match without
-// a comparison; any other row is compared value by value, which stops at
-// the first difference, so a kernel asking elsewhere (MALA's proposals)
-// pays little.
-func (s *Session) matchPoints(req *kernels.Request, x []float64) bool {
-	dim, chains := s.spec.Dim, s.spec.Chains
+// clearPointRows sizes s.pointRow to the chains and sets every entry to
+// −1 (no row holds the chain's draw).
+func (s *Session) clearPointRows() {
+	chains := s.spec.Chains
 	if cap(s.pointRow) < chains {
 		s.pointRow = make([]int, chains)
 	}
@@ -896,6 +945,30 @@ func (s *Session) matchPoints(req *kernels.Request, x []float64) bool {
 	for c := range s.pointRow {
 		s.pointRow[c] = -1
 	}
+}
+
+// anyPointRow reports whether a chain in [lo, hi) has a row holding its
+// draw.
+func (s *Session) anyPointRow(lo, hi int) bool {
+	for _, r := range s.pointRow[lo:hi] {
+		if r >= 0 {
+			return true
+		}
+	}
+	return false
+}
+
+// matchPoints finds, for each chain of req (a request the client holds),
+// a row of req whose point is bit for bit the chain's position in x, and
+// records it in s.pointRow (cleared by clearPointRows; −1 where none is);
+// it reports whether any chain of req has one.
+// Kernels whose requests ask at their positions (LMC, kinetic Langevin,
+// SGLD) hand out the position slice itself, and such rows match without
+// a comparison; any other row is compared value by value, which stops at
+// the first difference, so a kernel asking elsewhere (MALA's proposals)
+// pays little.
+func (s *Session) matchPoints(req *kernels.Request, x []float64) bool {
+	dim, chains := s.spec.Dim, s.spec.Chains
 	found := false
 	for r := range req.Rows {
 		c := req.Chain[r]

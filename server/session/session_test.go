@@ -163,7 +163,7 @@ func TestSessionDrawsEqualInProcessKernel(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	k := kernels.NewLMC(2, 4, 0.1, []float64{0.5, -0.5}, kernels.NewSource(7))
+	k := kernelsLMC(2, 4, 0.1, []float64{0.5, -0.5}, 7)
 	a := kernels.NewAnswer(4, 2)
 	for _, d := range tr.draws {
 		req := k.Next()
@@ -185,6 +185,7 @@ func TestSplitRequestsGiveSameDraws(t *testing.T) {
 	spec := baseSpec()
 	spec.Chains, spec.Dim, spec.Start = 64, 20, make([]float64, 20)
 	spec.DrawsPerChain = 3
+	spec.ChainGroups = 1 // one request per step: the frames counted below
 	whole, _, err := drive(t, mustNew(t, spec, Limits{}), gaussian(1))
 	if err != nil {
 		t.Fatal(err)

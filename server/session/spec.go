@@ -104,6 +104,13 @@ type Spec struct {
 	// for kernels that ask for log densities anyway and none for the
 	// others; −1 means none.
 	GradientCheckPoints int
+	// ChainGroups is how many groups of consecutive chains step
+	// independently once burn-in is over (pipelined requests: the client
+	// has another group's points to evaluate while the server handles one
+	// group's answers): 0 lets the engine choose, 1 is one request at a
+	// time; at most Chains. Kernels whose registry entry does not pipeline
+	// run as one group whatever it says.
+	ChainGroups int
 }
 
 // Envelope is q = N(Mean, Scale²I) with π̃ ≤ exp(LogBound)·q.
@@ -321,6 +328,9 @@ func (s *Spec) validateFields(k *kernelEntry) error {
 	}
 	if err := s.validateNoise(k); err != nil {
 		return err
+	}
+	if s.ChainGroups < 0 || s.ChainGroups > s.Chains {
+		return bad("chain_groups", "must be between 0 (the server chooses) and chains = %d, got %d", s.Chains, s.ChainGroups)
 	}
 	if s.GradientCheckPoints < -1 || s.GradientCheckPoints > 64 {
 		return bad("gradient_check_points", "must be between -1 (none) and 64, got %d", s.GradientCheckPoints)

@@ -8,7 +8,7 @@ import concurrent.futures as cf
 import queue
 import threading
 from dataclasses import dataclass
-from typing import Callable, Iterator, Optional, Sequence, Tuple, Union
+from typing import Callable, Dict, Iterator, Optional, Sequence, Tuple, Union
 
 import grpc
 import numpy as np
@@ -74,6 +74,10 @@ def connect(
 
 def _request(**frame: object) -> pb.SessionRequest:
     return pb.SessionRequest(**frame)  # type: ignore[arg-type]
+
+
+#: The most requests whose points a client holds for Draws frames to refer to.
+_MAX_HELD = 256
 
 
 class Session:
@@ -203,9 +207,10 @@ class Session:
         self._store: Optional[DrawStore] = DrawStore(spec.dim) if keep_draws else None
         self._last_progress: Optional[Progress] = None
         self._next_seq = 0
-        # The points of the request received last (id, rows x dim), which
-        # Draws frames may refer to instead of repeating them.
-        self._held: Optional[Tuple[int, np.ndarray]] = None
+        # The points of the latest requests, request id -> (the chain of
+        # its first row, rows x dim points), which Draws frames may refer to
+        # instead of repeating them (_hold).
+        self._held: Dict[int, Tuple[int, np.ndarray]] = {}
         self._started = False
         self._lock = threading.Lock()
         self._outbox: "queue.SimpleQueue[Optional[Union[pb.SessionRequest, bytes]]]" = queue.SimpleQueue()
@@ -540,17 +545,31 @@ class Session:
         if first < 0 or first + rows > total:
             raise ProtocolError(f"sluice_client: malformed points frame: rows {first} to {first + rows} of {total}")
         part = from_wire(pts, rows, dim)
+        held = self._held
+        if first == 0 and rows > 0:
+            # A server stepping its chains in groups (chain_groups) sends
+            # each group's requests in turn: a request starting at the same
+            # chain as a held one replaces it, so about one step's points
+            # are held.
+            c0 = int(p.chains[0])
+            for rid in [rid for rid, (c, _) in held.items() if c == c0 and rid != p.request_id]:
+                del held[rid]
+        else:
+            c0 = held[p.request_id][0] if p.request_id in held else -1
+        if len(held) >= _MAX_HELD and p.request_id not in held:
+            del held[next(iter(held))]  # the oldest
         if first == 0 and rows == total:
-            self._held = (p.request_id, part)  # the common case: no copy
+            held[p.request_id] = (c0, part)  # the common case: no copy
             return
-        if self._held is None or self._held[0] != p.request_id or self._held[1].shape != (total, dim):
-            self._held = (p.request_id, np.empty((total, dim), dtype=part.dtype))
-        self._held[1][first : first + rows] = part
+        h = held.get(p.request_id)
+        if h is None or h[1].shape != (total, dim):
+            h = (c0, np.empty((total, dim), dtype=part.dtype))
+        held[p.request_id] = (c0, h[1])
+        h[1][first : first + rows] = part
 
     def _part(self, p: pb.Points) -> np.ndarray:
         """Returns the points of a Points frame kept by _hold, read-only."""
-        assert self._held is not None
-        v = self._held[1][p.first_row : p.first_row + p.rows]
+        v = self._held[p.request_id][1][p.first_row : p.first_row + p.rows]
         if v.flags.writeable:
             v = v.view()
             v.flags.writeable = False
@@ -598,11 +617,14 @@ def _encode(outer: int, p: pb.Points, ans: Answer, want: _Wanted, rows: int, dim
     return _frames.evaluations(outer, p.request_id, p.first_row, rows, dim, g, ld, h, hv)
 
 
-def decode_draws(w: pb.Draws, expected_seq: int, held: Optional[Tuple[int, np.ndarray]] = None) -> Draws:
+def decode_draws(
+    w: pb.Draws, expected_seq: int, held: "Optional[Dict[int, Tuple[int, np.ndarray]]]" = None
+) -> Draws:
     """Returns a Draws frame as :class:`Draws`, or raises DrawsLostError
     when it does not start at expected_seq and ProtocolError when it is
     malformed. Draws sent by reference (``point_rows``) are rebuilt from
-    held, the request id and points of the last Points frames received."""
+    held, request id -> (first chain, points) of the latest Points frames
+    received."""
     if w.seq != expected_seq:
         raise DrawsLostError(expected_seq, w.seq)
     rows, dim = w.rows, w.dim
@@ -613,14 +635,17 @@ def decode_draws(w: pb.Draws, expected_seq: int, held: Optional[Tuple[int, np.nd
             raise ProtocolError(f"sluice_client: malformed draws frame at sequence {w.seq}")
         values = from_wire(w.values, rows, dim)
     else:
-        if held is None or held[0] != w.from_request_id or held[1].shape[1] != dim or len(w.point_rows) != rows:
+        h = None if held is None else held.get(w.from_request_id)
+        if h is None or h[1].shape[1] != dim or len(w.point_rows) != rows:
             raise ProtocolError(
                 f"sluice_client: draws frame at sequence {w.seq} refers to request {w.from_request_id}, "
-                f"whose points were not the last received"
+                f"whose points are not among those held"
             )
+        pts = h[1]
         pr = np.array(w.point_rows, dtype=np.int64)
         sent = pr < 0
         n = int(sent.sum())
+<<<<<<< HEAD
         vals = w.values
         if len(vals) != 8 * n * dim or int(pr.max()) >= held[1].shape[0]:
             raise ProtocolError(f"sluice_client: malformed draws frame at sequence {w.seq}")
@@ -637,6 +662,14 @@ def decode_draws(w: pb.Draws, expected_seq: int, held: Optional[Tuple[int, np.nd
             values[~sent] = held[1][pr[~sent]]
             values[sent] = from_wire(vals, n, dim)
             values.flags.writeable = False
+=======
+        if len(w.values) != 8 * n * dim or int(pr.max()) >= pts.shape[0]:
+            raise ProtocolError(f"sluice_client: malformed draws frame at sequence {w.seq}")
+        values = np.empty((rows, dim), dtype=pts.dtype)
+        values[~sent] = pts[pr[~sent]]
+        values[sent] = from_wire(w.values, n, dim)
+        values.flags.writeable = False
+>>>>>>> chain-groups
     return Draws(
         seq=w.seq,
         values=values,

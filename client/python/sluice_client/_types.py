@@ -269,6 +269,12 @@ class Spec:
     #: asked for then, counted in the budget): 0 means 3 for kernels that
     #: ask for log densities anyway and none for the others; -1 means none.
     gradient_check_points: int = 0
+    #: Groups of consecutive chains that step independently once burn-in is
+    #: over, so that the server sends one group's next points while this
+    #: client evaluates another's (several requests outstanding, answered
+    #: in the order they come): 0 lets the server choose, 1 asks for one
+    #: request at a time; at most chains. The draws do not depend on it.
+    chain_groups: int = 0
     #: "hit-and-run": initial slice width on each line in units of theta (0
     #: means 1) and the most stepping-out expansions per step (0 means 64).
     slice_width: float = 0.0
@@ -336,6 +342,7 @@ class Spec:
             fixed_point_iterations=self.fixed_point_iterations,
             curvature_probe_iterations=self.curvature_probe_iterations,
             gradient_check_points=self.gradient_check_points,
+            chain_groups=self.chain_groups,
             slice_width=self.slice_width,
             slice_max_expansions=self.slice_max_expansions,
         )

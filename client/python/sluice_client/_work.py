@@ -7,9 +7,10 @@ from __future__ import annotations
 import os
 import queue
 import socket
-from typing import Callable, Optional, Union
+from typing import Callable, Dict, Optional, Tuple, Union
 
 import grpc
+import numpy as np
 
 from . import _frames
 from ._errors import SessionError
@@ -51,7 +52,7 @@ class _Worker:
         self._log_density = log_density
         self._batch = batch
         self._spec = _Spec()
-        self._held = None  # the points of the current request (_hold)
+        self._held: Dict[int, Tuple[int, np.ndarray]] = {}  # the points of the latest requests (_hold)
         self._executor = None  # a worker evaluates its rows itself
         self._split = 1
         self.outbox: "queue.SimpleQueue[Optional[Union[pb.AttachRequest, bytes]]]" = queue.SimpleQueue()

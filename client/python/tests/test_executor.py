@@ -208,7 +208,9 @@ class LiveExecutorTests(unittest.TestCase):
     def test_process_pool_worker_error_ends_session(self) -> None:
         pool = process_pool(2)
         try:
-            spec = sc.Spec(dim=4, chains=6, start=np.zeros(4), step=0.2, draws_per_chain=100, seed=5)
+            # One request of every chain at a time (chain_groups=1), so that
+            # split=2 cuts each into rows 0..2 and 3..5.
+            spec = sc.Spec(dim=4, chains=6, start=np.zeros(4), step=0.2, draws_per_chain=100, seed=5, chain_groups=1)
             session = sc.Session(require_target(), spec, batch=em.failing_answer, executor=pool, split=2,
                                  timeout=DEADLINE_SECONDS)
             with self.assertRaises(em.ModelFailure) as ctx:

@@ -447,7 +447,9 @@ class LiveServerTests(unittest.TestCase):
                 raise ModelBroke("solver diverged")
             return -x
 
-        spec = sc.Spec(dim=2, chains=4, start=[0.0, 0.0], step=0.1, draws_per_chain=100, seed=5)
+        # One request at a time (chain_groups=1), so that the fifth request
+        # is the fifth step's.
+        spec = sc.Spec(dim=2, chains=4, start=[0.0, 0.0], step=0.1, draws_per_chain=100, seed=5, chain_groups=1)
         session = sc.Session(self.target, spec, grad, timeout=DEADLINE_SECONDS)
         events = []
         with self.assertRaises(ModelBroke):

@@ -1459,8 +1459,19 @@ type Register struct {
 	// ask for log densities anyway and none for the others; -1 means none.
 	// A gradient that disagrees fails the session on evaluations.gradients.
 	GradientCheckPoints int32 `protobuf:"varint,37,opt,name=gradient_check_points,json=gradientCheckPoints,proto3" json:"gradient_check_points,omitempty"`
-	unknownFields       protoimpl.UnknownFields
-	sizeCache           protoimpl.SizeCache
+	// Pipelined chain groups: the chains are split into this many groups of
+	// consecutive chains that step independently once burn-in is over, so
+	// that while the client evaluates one group's points the server takes
+	// another group's answers and sends its next points (the client then
+	// has several requests outstanding and may answer them in any order, by
+	// request_id). Every chain draws its noise from a stream of its own, so
+	// the groups never change the draws a chain gets. 0: the server chooses
+	// (from the measured evaluation and transport times); 1: no groups, one
+	// request at a time. At most chains. Kernels that ask more than one
+	// request per step, or whose chains read each other, run as one group.
+	ChainGroups   int32 `protobuf:"varint,38,opt,name=chain_groups,json=chainGroups,proto3" json:"chain_groups,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *Register) Reset() {
@@ -1748,6 +1759,13 @@ func (x *Register) GetMetricForm() MetricForm {
 func (x *Register) GetGradientCheckPoints() int32 {
 	if x != nil {
 		return x.GradientCheckPoints
+	}
+	return 0
+}
+
+func (x *Register) GetChainGroups() int32 {
+	if x != nil {
+		return x.ChainGroups
 	}
 	return 0
 }
@@ -4851,7 +4869,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x05draws\x18\x03 \x01(\v2\x10.sluice.v1.DrawsH\x00R\x05draws\x121\n" +
 	"\bprogress\x18\x04 \x01(\v2\x13.sluice.v1.ProgressH\x00R\bprogress\x121\n" +
 	"\bfinished\x18\x05 \x01(\v2\x13.sluice.v1.FinishedH\x00R\bfinishedB\a\n" +
-	"\x05frame\"\xe5\v\n" +
+	"\x05frame\"\x88\f\n" +
 	"\bRegister\x12\x10\n" +
 	"\x03dim\x18\x01 \x01(\x05R\x03dim\x12\x16\n" +
 	"\x06chains\x18\x02 \x01(\x05R\x06chains\x12\x16\n" +
@@ -4895,7 +4913,8 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x06metric\x18# \x01(\fR\x06metric\x126\n" +
 	"\vmetric_form\x18$ \x01(\x0e2\x15.sluice.v1.MetricFormR\n" +
 	"metricForm\x122\n" +
-	"\x15gradient_check_points\x18% \x01(\x05R\x13gradientCheckPointsB\x12\n" +
+	"\x15gradient_check_points\x18% \x01(\x05R\x13gradientCheckPoints\x12!\n" +
+	"\fchain_groups\x18& \x01(\x05R\vchainGroupsB\x12\n" +
 	"\x10_owner_evaluates\"\xf5\x01\n" +
 	"\fMetricReport\x12\x12\n" +
 	"\x04kind\x18\x01 \x01(\tR\x04kind\x12\x16\n" +
