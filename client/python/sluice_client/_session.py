@@ -645,31 +645,22 @@ def decode_draws(
         pr = np.array(w.point_rows, dtype=np.int64)
         sent = pr < 0
         n = int(sent.sum())
-<<<<<<< HEAD
         vals = w.values
-        if len(vals) != 8 * n * dim or int(pr.max()) >= held[1].shape[0]:
+        if len(vals) != 8 * n * dim or int(pr.max()) >= pts.shape[0]:
             raise ProtocolError(f"sluice_client: malformed draws frame at sequence {w.seq}")
-        if n == 0 and rows == held[1].shape[0] and not held[1].flags.writeable and np.array_equal(pr, np.arange(rows)):
+        if n == 0 and rows == pts.shape[0] and not pts.flags.writeable and np.array_equal(pr, np.arange(rows)):
             # Every row of the request, in order (lmc, kinetic): the held
             # points are the draws. They are a read-only view of the
             # request's bytes, which nothing changes: no copy.
-            values = held[1]
+            values = pts
         elif n == 0:
-            values = held[1][pr]
+            values = pts[pr]
             values.flags.writeable = False
         else:
-            values = np.empty((rows, dim), dtype=held[1].dtype)
-            values[~sent] = held[1][pr[~sent]]
+            values = np.empty((rows, dim), dtype=pts.dtype)
+            values[~sent] = pts[pr[~sent]]
             values[sent] = from_wire(vals, n, dim)
             values.flags.writeable = False
-=======
-        if len(w.values) != 8 * n * dim or int(pr.max()) >= pts.shape[0]:
-            raise ProtocolError(f"sluice_client: malformed draws frame at sequence {w.seq}")
-        values = np.empty((rows, dim), dtype=pts.dtype)
-        values[~sent] = pts[pr[~sent]]
-        values[sent] = from_wire(w.values, n, dim)
-        values.flags.writeable = False
->>>>>>> chain-groups
     return Draws(
         seq=w.seq,
         values=values,
