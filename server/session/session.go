@@ -1015,8 +1015,9 @@ func (s *Session) plannedSteps() int {
 
 // startAtMode restarts the kernel, which has taken no step, from the
 // starts the mode search drew: the kernel is built again as New built
-// it, from those starts, with the same seed (its stream has drawn
-// nothing yet), step and metric.
+// it (per-chain streams for the chainwise kernels), from those starts,
+// with the same seed (its streams have drawn nothing yet), step and
+// metric.
 func (s *Session) startAtMode() {
 	old := s.kernel
 	b := s.spec
@@ -1024,7 +1025,7 @@ func (s *Session) startAtMode() {
 	if h := stepOf(old); h > 0 {
 		b.Step = h
 	}
-	k := s.entry.build(&b, kernels.NewSource(s.spec.Seed))
+	k := s.entry.buildKernel(&b)
 	if s.tune.metric != nil {
 		k.(kernels.MetricUser).SetMetric(s.tune.metric)
 	}
