@@ -8,8 +8,8 @@ the scripted tests need no server.
 """
 
 from __future__ import annotations
-import math
 
+import math
 import os
 import queue
 import threading
