@@ -30,20 +30,23 @@ func TestGoClientAgainstServer(t *testing.T) {
 
 	t.Run("plan", func(t *testing.T) {
 		// The total-variation rule of Dalalyan (2017) for unadjusted
-		// Langevin with a Gaussian start (recalled from memory): for
-		// m = 1, M = 4, p = 2, eps = 0.1, T = (4 log(1/eps) + p log(M/m)) /
-		// (2m) = 5.991464547107983, h = eps^2 / (M^2 p T) =
-		// 5.215753135864595e-05 and K = ceil(T/h) = 114873.
+		// Langevin with a Gaussian start (recalled from memory): T =
+		// (4 log(1/e) + p log(M/m)) / (2m), h = e^2 / (M^2 p T), K =
+		// ceil(T/h). The server plans for e = 0.9·eps, keeping a tenth of
+		// eps for the shift of its mode search's start: for m = 1, M = 4,
+		// p = 2, eps = 0.1, e = 0.09, T = 6.202185578423634,
+		// h = 4.081222607730081e-05 and K = 151969.
 		p, err := client.Plan(ctx, cc, client.PlanSpec{Curvature: client.Curvature{StrongConvexity: 1, Smoothness: 4},
 			Dim: 2, Eps: 0.1, Metric: client.TV})
 		if err != nil {
 			t.Fatal(err)
 		}
-		T := (4*math.Log(10) + 2*math.Log(4)) / 2
-		h := 0.01 / (16 * 2 * T)
+		e := 0.09
+		T := (4*math.Log(1/e) + 2*math.Log(4)) / 2
+		h := e * e / (16 * 2 * T)
 		if math.Abs(p.Horizon-T) > 1e-9*T || math.Abs(p.Step-h) > 1e-9*h || p.Iterations != int64(math.Ceil(T/h)) ||
-			p.Iterations != 114873 || p.Seconds != -1 || !p.ConstantsRecalled || p.Bound.Metric != client.TV {
-			t.Fatalf("plan %+v; want T %v, h %v, K 114873", p, T, h)
+			p.Iterations != 151969 || p.Seconds != -1 || !p.ConstantsRecalled || p.Bound.Metric != client.TV || p.Bound.Value > 0.1 {
+			t.Fatalf("plan %+v; want T %v, h %v, K 151969", p, T, h)
 		}
 		_, err = client.Plan(ctx, cc, client.PlanSpec{Curvature: client.Curvature{StrongConvexity: 1, Smoothness: 4},
 			Dim: 2, Eps: 0.7, Metric: client.TV})

@@ -9,6 +9,7 @@ the scripted tests need no server.
 
 from __future__ import annotations
 
+import math
 import os
 import queue
 import threading
@@ -516,14 +517,20 @@ class LiveTargetAndPlanTests(unittest.TestCase):
 
     def test_plan_matches_the_tv_test_vector(self) -> None:
         # The TV rule of Dalalyan (2017), total-variation theorem with a
-        # Gaussian start and its corollary (from memory): m = 1, M = 4, p = 2, eps = 0.1 gives
-        # T = 5.991464547107983, h = 5.215753135864595e-05, K = 114873, each
-        # term of the bound eps/2.
+        # Gaussian start and its corollary (from memory): T = (4 log(1/e) +
+        # p log(M/m)) / (2m), h = e^2 / (M^2 p T), K = ceil(T/h). The server
+        # plans for e = 0.9 eps, keeping a tenth of eps for the shift of its
+        # mode search's start: m = 1, M = 4, p = 2, eps = 0.1 gives
+        # T = 6.202185578423634, h = 4.081222607730081e-05, K = 151969.
         res = sc.plan(self.target, sc.Curvature(strong_convexity=1.0, smoothness=4.0), 2, 0.1, "tv", timeout=DEADLINE_SECONDS)
-        self.assertAlmostEqual(res.step / 5.215753135864595e-05, 1.0, delta=1e-8)
-        self.assertAlmostEqual(res.horizon / 5.991464547107983, 1.0, delta=1e-8)
-        self.assertEqual(res.iterations, 114873)
-        self.assertEqual((res.evaluations_per_chain, res.evaluations, res.seconds), (114873, 114873, -1.0))
+        e = 0.09
+        T = (4 * math.log(1 / e) + 2 * math.log(4)) / 2
+        h = e * e / (16 * 2 * T)
+        self.assertAlmostEqual(res.step / h, 1.0, delta=1e-8)
+        self.assertAlmostEqual(res.horizon / T, 1.0, delta=1e-8)
+        self.assertAlmostEqual(h / 4.081222607730081e-05, 1.0, delta=1e-12)
+        self.assertEqual(res.iterations, 151969)
+        self.assertEqual((res.evaluations_per_chain, res.evaluations, res.seconds), (151969, 151969, -1.0))
         self.assertTrue(res.constants_recalled)
         self.assertEqual((res.bound.metric, res.bound.source, res.penalty), ("tv", "declared", 0.0))
         self.assertTrue(res.bound.guaranteed)
