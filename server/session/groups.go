@@ -275,8 +275,8 @@ func (s *Session) groupEvent(r *run) (o outcome, stop, leave bool) {
 	case <-r.deadline:
 		return outcome{reason: TimeSpent}, true, false
 	case <-r.answerTimer.C:
-		return failed(&Error{Kind: Timeout, Field: "evaluations", Chain: -1, Coord: -1,
-			Reason: fmt.Sprintf("no answer to request %d within %v", s.requestID, s.lim.AnswerTimeout)}), true, false
+		// As with one group: suspended when checkpointed, else failed.
+		return s.silent(), true, false
 	case msg = <-r.in:
 	}
 	switch {
