@@ -79,7 +79,8 @@ func newLogger(level string, w io.Writer) (*zap.Logger, error) {
 	}
 	enc := zap.NewProductionEncoderConfig()
 	enc.EncodeTime = zapcore.ISO8601TimeEncoder
-	core := zapcore.NewCore(zapcore.NewJSONEncoder(enc), zapcore.AddSync(w), lvl)
+	// Locked: handlers on many goroutines log through one writer.
+	core := zapcore.NewCore(zapcore.NewJSONEncoder(enc), zapcore.Lock(zapcore.AddSync(w)), lvl)
 	return zap.New(core), nil
 }
 

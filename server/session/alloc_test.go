@@ -17,6 +17,9 @@ import (
 // diagnostics, a per-report cost. A regression that allocates per step
 // (a frame, a slice, a boxed value) fails here.
 func TestStepAllocatesNothing(t *testing.T) {
+	if raceEnabled {
+		t.Skip("allocation counts are taken without the race detector, whose instrumentation allocates (scripts/go-tests runs this test in a plain run)")
+	}
 	for _, c := range []struct {
 		kernel     string
 		dim        int
@@ -127,6 +130,9 @@ func ringBytes(s *Session) int64 {
 // the groups' requests, answers, Tells, completed steps and draws sent by
 // reference to each group's request allocate nothing once warm.
 func TestGroupStepAllocatesNothing(t *testing.T) {
+	if raceEnabled {
+		t.Skip("allocation counts are taken without the race detector, whose instrumentation allocates (scripts/go-tests runs this test in a plain run)")
+	}
 	spec := Spec{Dim: 10, Chains: 8, Kernel: "lmc", Start: make([]float64, 10), StartRows: 1, Step: 0.05, Seed: 7,
 		ProgressInterval: time.Hour, DrawReferences: true, ChainGroups: 2}
 	s, err := New("alloc", spec, Limits{})
