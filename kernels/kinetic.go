@@ -250,6 +250,23 @@ type kineticCoef struct {
 	l11, l21, l22   float64
 }
 
+// KineticCoefficients are the coefficients of one frozen-gradient kinetic
+// step as the kinetic kernel computes them (see newKineticCoef): the
+// position and velocity maps E, C, AX, AV and the noise covariance VarX,
+// Cov, VarV. Exported for planners that predict the kernel's behaviour
+// (the engine's tuner) so that the formula has one home.
+type KineticCoefficients struct {
+	E, C, AX, AV    float64
+	VarX, Cov, VarV float64
+}
+
+// KineticStepCoefficients returns the coefficients of one step of
+// duration h ≥ 0 with friction gamma and inverse mass u.
+func KineticStepCoefficients(gamma, u, h float64) KineticCoefficients {
+	c := newKineticCoef(gamma, u, h)
+	return KineticCoefficients{E: c.e, C: c.c, AX: c.ax, AV: c.av, VarX: c.varX, Cov: c.cov, VarV: c.varV}
+}
+
 // newKineticCoef computes the step's coefficients for friction gamma,
 // inverse mass u and duration h ≥ 0. With y = γh, the two differences that
 // lose digits to cancellation for small y,

@@ -332,37 +332,11 @@ func midpointScheme(h, u float64) scheme {
 // formulas: Cheng et al. 2018, integrated exactly with G frozen).
 type kineticCoef struct{ e, c, ax, av, varX, cov, varV float64 }
 
-// kineticCoefficients mirrors kernels.Kinetic's coefficients for
-// friction gamma, inverse mass u and duration h (the series below y = 1/8
-// keep the differences accurate).
+// kineticCoefficients are kernels.Kinetic's coefficients for friction
+// gamma, inverse mass u and duration h, from the kernel's own code.
 func kineticCoefficients(gamma, u, h float64) kineticCoef {
-	y := gamma * h
-	if y == 0 {
-		return kineticCoef{e: 1}
-	}
-	omE := -math.Expm1(-y)
-	omE2 := omE * (2 - omE)
-	var psi, phi float64
-	if y < 0.125 {
-		t, t2 := y, 2*y
-		for n := 2; n <= 16; n++ {
-			t *= y / float64(n)
-			t2 *= 2 * y / float64(n)
-			if n%2 == 0 {
-				psi += t
-				phi -= t2 - 4*t
-			} else {
-				psi -= t
-				phi += t2 - 4*t
-			}
-		}
-	} else {
-		psi = y - omE
-		phi = 2*y - 4*omE + omE2
-	}
-	g2 := gamma * gamma
-	return kineticCoef{e: 1 - omE, c: omE / gamma, ax: u * psi / g2, av: u * omE / gamma,
-		varX: u * phi / g2, cov: u / gamma * omE * omE, varV: u * omE2}
+	k := kernels.KineticStepCoefficients(gamma, u, h)
+	return kineticCoef{e: k.E, c: k.C, ax: k.AX, av: k.AV, varX: k.VarX, cov: k.Cov, varV: k.VarV}
 }
 
 // worstError is the largest relative error of the stationary position
