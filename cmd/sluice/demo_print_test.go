@@ -12,8 +12,8 @@ import (
 func TestDemoWordsFollowTheLabels(t *testing.T) {
 	for _, c := range []struct {
 		label, ksdState, wantBound, notBound string
-		ksd                                   float64
-		wantKSD                               string
+		ksd                                  float64
+		wantKSD                              string
 	}{
 		{"estimated, not guaranteed; the metric was adapted", "not distinguishable from 0 at this sample size",
 			"estimated:  W2 ≤", "guaranteed:", 0, "Stein discrepancy not distinguishable from 0 at this sample size (upper 95% bound 0.0386)"},
