@@ -17,6 +17,9 @@ var blockKinds = map[string]func(dim int, start []float64, src *rand.PCG) Kernel
 	"midpoint-overdamped": func(d int, x []float64, src *rand.PCG) Kernel {
 		return NewOverdampedMidpoint(d, 1, 0.05, x, src)
 	},
+	"baoab": func(d int, x []float64, src *rand.PCG) Kernel {
+		return NewBAOAB(d, 1, 0.2, 0.5, 1, x, nil, src)
+	},
 }
 
 // batchOf builds a batch of chains chains, chain c started at (c, −c, …)

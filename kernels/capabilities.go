@@ -35,6 +35,7 @@ var (
 	_ Checkpointer = (*SVRG)(nil)
 	_ Checkpointer = (*HitAndRun)(nil)
 	_ Checkpointer = (*Rejection)(nil)
+	_ Checkpointer = (*BAOAB)(nil)
 
 	_ StepSetter = (*LMC)(nil)
 	_ CostMeter  = (*HitAndRun)(nil)

@@ -54,6 +54,9 @@ func TestSetStepEqualsConstruction(t *testing.T) {
 		},
 		"svrg": func(h float64, s uint64) setter { return NewSVRG(p, chains, h, 5, start, NewSource(s)) },
 		"mala": func(h float64, s uint64) setter { return NewMALA(p, chains, h, 0, start, NewSource(s)) },
+		"baoab": func(h float64, s uint64) setter {
+			return NewBAOAB(p, chains, h, 0.7, 0.5, start, nil, NewSource(s))
+		},
 	}
 	eval := gaussEval(p)
 	for name, build := range builds {
@@ -157,6 +160,7 @@ func TestSetStepRejects(t *testing.T) {
 		NewSGLDCV(1, 1, 0.1, SGLDCVOptions{}, start, NewSource(1)),
 		NewSVRG(1, 1, 0.1, 3, start, NewSource(1)),
 		NewMALA(1, 1, 0.1, 0, start, NewSource(1)),
+		NewBAOAB(1, 1, 0.1, 0, 0, start, nil, NewSource(1)),
 	} {
 		for _, h := range []float64{0, -1, math.Inf(1), math.NaN()} {
 			func() {

@@ -201,6 +201,7 @@ func fuzzKernels() []Kernel {
 		NewOzakiKrylov(p, c, 0.1, x0, 1e-8, 3, NewSource(10)),
 		NewHitAndRun(p, c, x0, HitAndRunOptions{}, NewSource(11)),
 		NewRejection(p, c, make([]float64, p), 1.5, float64(p)*math.Log(1.5)+1, NewSource(12)),
+		NewBAOAB(p, c, 0.1, 0, 0, x0, nil, NewSource(13)),
 	}
 }
 
