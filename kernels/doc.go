@@ -26,6 +26,10 @@
 //	          frozen-gradient step (Cheng, Chatterji, Bartlett & Jordan,
 //	          COLT 2018); friction γ, inverse mass u; velocities kept in
 //	          state; one gradient per chain per step.
+//	baoab     underdamped Langevin by the BAOAB splitting (Leimkuhler &
+//	          Matthews 2013): half kick, half drift, exact friction and
+//	          noise, half drift, half kick; exact position law on Gaussian
+//	          targets at every stable step; one gradient per chain per step.
 //	midpoint  randomised midpoint for underdamped Langevin, γ = 2 (Shen &
 //	          Lee, NeurIPS 2019); two gradients per chain per step
 //	          (position, then midpoint).
@@ -66,7 +70,7 @@
 // References: Dalalyan, JRSS B 79 (2017) 651–676; Durmus & Moulines,
 // Ann. Appl. Probab. 27 (2017).
 //
-// Preconditioning: lmc, kinetic, midpoint, midpoint-overdamped, mala, sgld,
+// Preconditioning: lmc, kinetic, baoab, midpoint, midpoint-overdamped, mala, sgld,
 // sgld-cv and svrg take an optional Metric C (MetricUser), with which they
 // sample the same π (Roberts & Stramer 2002 for MALA; a change of variables
 // y = L⁻¹x, C = LLᵀ, for the others). Every kernel's state goes through one

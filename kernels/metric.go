@@ -289,8 +289,8 @@ func (m *Metric) move(x, g, z []float64, h, s float64, tmp []float64) {
 }
 
 // MetricUser is implemented by the kernels that accept a preconditioner
-// (lmc, kinetic, midpoint, midpoint-overdamped, mala, sgld, sgld-cv and
-// svrg). SetMetric takes effect at the next step: the single-request
+// (lmc, kinetic, baoab, midpoint, midpoint-overdamped, mala, sgld, sgld-cv
+// and svrg). SetMetric takes effect at the next step: the single-request
 // kernels use it from the next Tell; the midpoint kernels, given it
 // between the two requests of a step, finish that step with the old one;
 // MALA keeps the old one for the proposals already out (and their

@@ -116,6 +116,9 @@ var inProcess = map[string]func(dim, chains int, h float64, start []float64, see
 	"kinetic": perChain(func(d int, h float64, x []float64, src *rand.PCG) kernels.Kernel {
 		return kernels.NewKinetic(d, 1, h, 0, 0, x, nil, src)
 	}),
+	"baoab": perChain(func(d int, h float64, x []float64, src *rand.PCG) kernels.Kernel {
+		return kernels.NewBAOAB(d, 1, h, 0, 0, x, nil, src)
+	}),
 	"midpoint": perChain(func(d int, h float64, x []float64, src *rand.PCG) kernels.Kernel {
 		return kernels.NewMidpoint(d, 1, h, 0, x, nil, src)
 	}),
@@ -291,12 +294,12 @@ func TestTransportIsTransparent(t *testing.T) {
 
 // pipelines lists the kernels whose chains the server may step in
 // pipelined groups (Spec.ChainGroups).
-var pipelines = map[string]bool{"lmc": true, "kinetic": true}
+var pipelines = map[string]bool{"lmc": true, "kinetic": true, "baoab": true}
 
 // drawsArePoints lists the kernels whose next request asks at the
 // positions a step reached, so every draw but the last is sent by
 // reference.
-var drawsArePoints = map[string]bool{"lmc": true, "kinetic": true, "sgld": true, "midpoint": true, "midpoint-overdamped": true,
+var drawsArePoints = map[string]bool{"lmc": true, "kinetic": true, "baoab": true, "sgld": true, "midpoint": true, "midpoint-overdamped": true,
 	"ozaki": true, "ozaki-krylov": true, "sgld-cv": true, "svrg": true}
 
 // drawCounter counts the draws a client receives and those sent by

@@ -224,10 +224,10 @@ func (t *tuner) registered(s *Spec) []Choice {
 		when += fmt.Sprintf(", again after each of the %d metric updates", len(t.ends))
 	}
 	out := []Choice{{"step", 0, "automatic: " + when}}
-	if t.rule == ruleKinetic && s.Friction == 0 {
+	if (t.rule == ruleKinetic || t.rule == ruleSplitting) && s.Friction == 0 {
 		out = append(out, Choice{"friction", 0, "automatic: critical damping of the slowest direction"})
 	}
-	if (t.rule == ruleKinetic || t.rule == ruleMidpoint) && s.InverseMass == 0 {
+	if (t.rule == ruleKinetic || t.rule == ruleSplitting || t.rule == ruleMidpoint) && s.InverseMass == 0 {
 		out = append(out, Choice{"inverse_mass", 0, "automatic"})
 	}
 	return out

@@ -271,6 +271,17 @@ func TestStepStability(t *testing.T) {
 	if v := StepStability("kinetic", 50, 0.1, 1, 100); !v.Unstable {
 		t.Fatalf("kinetic at h = 50, u·M = 100 found stable: %+v", v)
 	}
+	// BAOAB on a direction of angular frequency ω = √(u·M) is stable
+	// exactly below ω·h = 2, whatever γ (derived here: its 2×2 map has
+	// trace (1 + e)(1 − (ωh)²/2) and determinant e = e^{−γh} < 1, and
+	// a real 2×2 map is stable iff |trace| < 1 + det, which is
+	// |1 − (ωh)²/2| < 1); here ω = 10.
+	if v := StepStability("baoab", 0.199, 0.5, 1, 100); v.Unstable {
+		t.Fatalf("baoab at ω·h = 1.99 found unstable: %+v", v)
+	}
+	if v := StepStability("baoab", 0.201, 0.5, 1, 100); !v.Unstable {
+		t.Fatalf("baoab at ω·h = 2.01 found stable: %+v", v)
+	}
 	if v := StepStability("midpoint-overdamped", 1, 0, 0, 100); !v.Unstable {
 		t.Fatalf("overdamped midpoint at h·M = 100 found stable: %+v", v)
 	}
@@ -361,7 +372,7 @@ func TestGivenFrictionWins(t *testing.T) {
 // reported choices.
 func TestChoicesReachTheKernel(t *testing.T) {
 	g, _ := correlated3(t)
-	for _, k := range []string{"lmc", "kinetic", "midpoint", "midpoint-overdamped", "sgld", "sgld-cv", "svrg"} {
+	for _, k := range []string{"lmc", "kinetic", "baoab", "midpoint", "midpoint-overdamped", "sgld", "sgld-cv", "svrg"} {
 		spec := Spec{Dim: 3, Chains: 2, Kernel: k, Start: []float64{0.5, -5, 0.05}, StartRows: 1, Seed: 34, BurnIn: 20, DrawsPerChain: 5}
 		r := runTarget(t, spec, g, false, nil)
 		if r.err != nil {
@@ -435,32 +446,6 @@ func TestKineticIsLMCAtItsEffectiveStep(t *testing.T) {
 		if tau := worstTau(mk(st), lo, hi); tau < 0.85*lmcTau {
 			t.Fatalf("γ = %v: worst τ %v at step %v, below 0.85 × lmc's %v", gg, tau, st, lmcTau)
 		}
-	}
-}
-
-// baoabScheme is one step of the BAOAB splitting of the kinetic diffusion
-// (half kick, half drift, exact friction and noise, half drift, half
-// kick; Leimkuhler and Matthews 2013) on a direction of curvature λ, for
-// the comparison in docs/methods.md. sluice has no such kernel.
-func baoabScheme(h, g, u float64) scheme {
-	mul := func(a, b [2][2]float64) (c [2][2]float64) {
-		for i := range 2 {
-			for j := range 2 {
-				c[i][j] = a[i][0]*b[0][j] + a[i][1]*b[1][j]
-			}
-		}
-		return c
-	}
-	return func(l float64) ([3][3]float64, [3]float64, [2][2]float64) {
-		e := math.Exp(-g * h)
-		kick := [2][2]float64{{1, 0}, {-(h / 2) * u * l, 1}}
-		drift := [2][2]float64{{1, h / 2}, {0, 1}}
-		fric := [2][2]float64{{1, 0}, {0, e}}
-		after := mul(kick, drift) // what follows the noise
-		m := mul(after, mul(fric, mul(drift, kick)))
-		s := u * (1 - e*e)
-		q := [3]float64{after[0][1] * after[0][1] * s, after[0][1] * after[1][1] * s, after[1][1] * after[1][1] * s}
-		return lyapunovMap(m[0][0], m[0][1], m[1][0], m[1][1]), q, m
 	}
 }
 

@@ -352,7 +352,7 @@ func refRun(tb testing.TB, bt *benchTarget) {
 // regression (κ ≈ 1 500) the identity rows of lmc and kinetic would need
 // about 1.5·10⁷ (measured: bulk-ESS 81 and 90 at the cap) and stop there. A row whose smallest bulk-ESS is
 // below 400 (on any seed) is listed apart as "below 400, not ranked".
-// By default it runs lmc, kinetic, midpoint and mala;
+// By default it runs lmc, kinetic, baoab, midpoint and mala;
 // SLUICE_ESSBENCH_ALL=1 adds midpoint-overdamped, and sgld, sgld-cv and
 // svrg (with exact gradients) with the adapted metric;
 // SLUICE_ESSBENCH_TARGETS, SLUICE_ESSBENCH_KERNELS and
@@ -402,13 +402,13 @@ func BenchmarkESSPerEvaluation(b *testing.B) {
 	}
 	variants := []variant{{"adapted", MetricDefault}, {"identity", MetricIdentity}}
 	kernelsOf := map[string][]string{
-		"identity": {"lmc", "kinetic", "midpoint", "mala"},
-		"adapted":  {"lmc", "kinetic", "midpoint", "mala"},
+		"identity": {"lmc", "kinetic", "baoab", "midpoint", "mala"},
+		"adapted":  {"lmc", "kinetic", "baoab", "midpoint", "mala"},
 	}
 	if os.Getenv("SLUICE_ESSBENCH_ALL") != "" {
 		kernelsOf = map[string][]string{
-			"identity": {"lmc", "kinetic", "midpoint", "midpoint-overdamped", "mala"},
-			"adapted":  {"lmc", "kinetic", "midpoint", "midpoint-overdamped", "mala", "sgld", "sgld-cv", "svrg"},
+			"identity": {"lmc", "kinetic", "baoab", "midpoint", "midpoint-overdamped", "mala"},
+			"adapted":  {"lmc", "kinetic", "baoab", "midpoint", "midpoint-overdamped", "mala", "sgld", "sgld-cv", "svrg"},
 		}
 	}
 	var rows []benchRow

@@ -146,6 +146,12 @@ var registry = []*kernelEntry{
 		},
 	},
 	{
+		name: "baoab", requests: gradientRows, tuning: ruleSplitting, chainwise: true, pipelines: true,
+		build: func(s *Spec, src *rand.PCG) kernels.Kernel {
+			return kernels.NewBAOAB(s.Dim, s.Chains, s.Step, s.Friction, inverseMass(s), s.Start, nil, src)
+		},
+	},
+	{
 		name: "midpoint", requests: gradientRows, tuning: ruleMidpoint, chainwise: true,
 		build: func(s *Spec, src *rand.PCG) kernels.Kernel {
 			return kernels.NewMidpoint(s.Dim, s.Chains, s.Step, inverseMass(s), s.Start, nil, src)

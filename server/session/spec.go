@@ -56,9 +56,9 @@ type Spec struct {
 	Curvature *Curvature
 	// Wants are accuracy targets; zero fields are not targets.
 	Wants Wants
-	// Friction γ of the kinetic kernel (0: 2); InverseMass u of the
-	// kinetic and midpoint kernels (0: 1/M when Curvature is declared,
-	// else 1).
+	// Friction γ of the kinetic and baoab kernels (0: 2); InverseMass u
+	// of the kinetic, baoab and midpoint kernels (0: 1/M when Curvature is
+	// declared, else 1).
 	Friction, InverseMass float64
 	// Noise describes the client's gradients; the zero value means exact.
 	Noise Noise

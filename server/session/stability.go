@@ -21,6 +21,7 @@ import (
 //	lmc, sgld, svrg, sgld-cv: A = 1 − hλ                 (stable iff hλ < 2)
 //	midpoint-overdamped:      A = 1 − hλ + α(hλ)²,  α ~ U[0, 1)
 //	kinetic:                  A from Kinetic's step with G = −λx (friction γ, inverse mass u)
+//	baoab:                    A from the BAOAB step with G = −λx (stable iff ω·h < 2, ω = √(uλ))
 //	midpoint:                 A(α) from Midpoint's step with G = −λx (γ = 2, inverse mass u)
 //
 // MALA and the Ozaki kernels are exempt (MALA's accept/reject step keeps
@@ -71,6 +72,12 @@ func stabilityRuleFor(r tuneRule, gamma, u float64) (stabilityRule, bool) {
 				lu := l * u
 				a[0], a[1] = 1-(lu/gamma)*(h-c), c
 				a[2], a[3] = -lu*c, e
+			}}, true
+	case ruleSplitting:
+		return stabilityRule{n: 2, source: fmt.Sprintf("the BAOAB step's growth with friction %.3g and inverse mass %.3g, stable only for ω·h < 2 with ω = √(u·M)", gamma, u),
+			matrix: func(h, l, _ float64, a []float64) {
+				_, _, m := baoabScheme(h, gamma, u)(l)
+				a[0], a[1], a[2], a[3] = m[0][0], m[0][1], m[1][0], m[1][1]
 			}}, true
 	case ruleMidpoint:
 		return stabilityRule{n: 2, random: true, source: fmt.Sprintf("the randomised midpoint step's mean-square growth with inverse mass %.3g", u),

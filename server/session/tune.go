@@ -50,6 +50,13 @@ import (
 //     range (which is h < 2γ/(uM) for small γh, not ω·h < 2), and a step
 //     near the stability limit would buy speed with a variance error of
 //     order one on the stiff directions.
+//   - baoab: the same u and friction grid, but the splitting's stationary
+//     position variance on a Gaussian is exact at every stable step
+//     (Leimkuhler and Matthews 2013), so the criterion never binds and the
+//     step is capped at ω_max·h = 1, half its stability limit ω·h < 2;
+//     the friction that critically damps the slowest direction then makes
+//     the slowest direction about √κ times faster than lmc
+//     (TestSplittingIntegratorPrediction).
 //   - midpoint: its friction is 2, so the inverse mass critically damps
 //     the slowest direction, u = 1/m̂, and h meets the criterion in mean
 //     square over the random midpoint (the expectation over α by
@@ -92,6 +99,7 @@ const (
 	ruleNone tuneRule = iota
 	ruleOverdamped
 	ruleKinetic
+	ruleSplitting
 	ruleMidpoint
 	ruleOverdampedMidpoint
 	ruleMALA
@@ -262,6 +270,32 @@ func kineticScheme(h, gamma, u float64) scheme {
 	return func(l float64) ([3][3]float64, [3]float64, [2][2]float64) {
 		a := [2][2]float64{{1 - c.ax*l, c.c}, {-c.av * l, c.e}}
 		return lyapunovMap(a[0][0], a[0][1], a[1][0], a[1][1]), [3]float64{c.varX, c.cov, c.varV}, a
+	}
+}
+
+// baoabScheme is one step of the BAOAB splitting (kernels.BAOAB: half
+// kick, half drift, exact friction and noise, half drift, half kick;
+// Leimkuhler and Matthews 2013) on a direction of curvature λ, in the
+// full-step state (x, v).
+func baoabScheme(h, g, u float64) scheme {
+	mul := func(a, b [2][2]float64) (c [2][2]float64) {
+		for i := range 2 {
+			for j := range 2 {
+				c[i][j] = a[i][0]*b[0][j] + a[i][1]*b[1][j]
+			}
+		}
+		return c
+	}
+	e := math.Exp(-g * h)
+	s := u * -math.Expm1(-2*g*h) // u(1 − e^{−2γh})
+	drift := [2][2]float64{{1, h / 2}, {0, 1}}
+	fric := [2][2]float64{{1, 0}, {0, e}}
+	return func(l float64) ([3][3]float64, [3]float64, [2][2]float64) {
+		kick := [2][2]float64{{1, 0}, {-(h / 2) * u * l, 1}}
+		after := mul(kick, drift) // what follows the noise
+		m := mul(after, mul(fric, mul(drift, kick)))
+		q := [3]float64{after[0][1] * after[0][1] * s, after[0][1] * after[1][1] * s, after[1][1] * after[1][1] * s}
+		return lyapunovMap(m[0][0], m[0][1], m[1][0], m[1][1]), q, m
 	}
 }
 
@@ -489,6 +523,41 @@ func choose(rule tuneRule, m, bigM float64, prev, prevM float64, tol float64, gi
 			Choice{"inverse_mass", s.inverseMass, uWhy},
 			Choice{"friction", s.friction, gWhy},
 			Choice{"step", s.step, "largest step with the " + tolText})
+	case ruleSplitting:
+		// As for kinetic, u = 1/(1.1·M̂) fixes the time unit (the stiffest
+		// direction oscillates at ω = 1) and γ is searched on the same
+		// grid. BAOAB's stationary position variance on a Gaussian is
+		// exact at every stable step, so the tolerance never binds and the
+		// step is the cap ω_max·h = 1: half the stability limit ω·h < 2, so
+		// an M̂ underestimated up to fourfold still leaves the chains
+		// stable (the verdict's stability check watches the curvature seen
+		// as the run goes on). On a non-Gaussian target the error is of
+		// order h², which the bias and mixing checks watch.
+		s.inverseMass = 1 / hi
+		uWhy := "1/(1.1·M̂): the stiffest direction oscillates at ω = 1"
+		if given.inverseMass > 0 {
+			s.inverseMass, uWhy = given.inverseMass, "given by the client"
+		}
+		crit := 2 * math.Sqrt(s.inverseMass*lo)
+		ceil := func(float64) float64 { return 1 / math.Sqrt(s.inverseMass*hi) }
+		family := func(g float64) func(h float64) scheme {
+			return func(h float64) scheme { return baoabScheme(h, g, s.inverseMass) }
+		}
+		gWhy := fmt.Sprintf("the friction, on a grid from critical damping of the slowest direction 2√(u·m̂) = %.4g (%s) to that of the stiffest, 2√(u·1.1M̂), with the smallest worst-case autocorrelation time at the step below", crit, mText)
+		if given.friction > 0 {
+			s.friction, gWhy = given.friction, "given by the client"
+			s.step = largestStep(family(s.friction), lo, hi, ceil(0), tol)
+		} else {
+			s.friction, s.step = bestFree(crit, 2*math.Sqrt(s.inverseMass*hi), family, lo, hi, ceil, tol)
+		}
+		stepWhy := "ω_max·h = 1 with ω_max = √(u·1.1M̂), half the splitting's stability limit ω·h < 2 (its stationary position variance on a Gaussian is exact at every stable step)"
+		if s.step < ceil(0) {
+			stepWhy = "largest step with the " + tolText
+		}
+		out = append(out,
+			Choice{"inverse_mass", s.inverseMass, uWhy},
+			Choice{"friction", s.friction, gWhy},
+			Choice{"step", s.step, stepWhy})
 	case ruleMidpoint:
 		// The friction is 2, so the inverse mass sets both the time unit
 		// and the damping: u is the value on a grid from critical damping

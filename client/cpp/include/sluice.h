@@ -109,7 +109,7 @@ typedef struct sluice_spec {
   int32_t start_rows;
   int32_t curvature_declared; /* non-zero: the four curvature fields count */
   /* Sampling method, NUL-terminated: "lmc" (NULL or ""), "kinetic",
-   * "midpoint", "midpoint-overdamped", "mala", "ozaki", "ozaki-krylov",
+   * "baoab", "midpoint", "midpoint-overdamped", "mala", "ozaki", "ozaki-krylov",
    * "sgld", "hit-and-run", ... (see the README's kernel table). */
   const char *kernel;
   /* Parameter names, NUL-terminated, separated by commas (so a name

@@ -202,7 +202,7 @@ class Spec:
 
     dim: int
     chains: int = 1
-    #: Sampling method: "lmc" (unadjusted Langevin), "kinetic", "midpoint",
+    #: Sampling method: "lmc" (unadjusted Langevin), "kinetic", "baoab", "midpoint",
     #: "midpoint-overdamped", "mala" (needs log densities), "ozaki" (needs
     #: Hessians), "ozaki-krylov" (needs Hessian-vector products), "sgld",
     #: "sgld-cv", "svrg", "hit-and-run" (needs log densities only),
@@ -238,7 +238,7 @@ class Spec:
     curvature: Optional[Curvature] = None
     #: Accuracy targets (reason TARGET_MET once all hold).
     wants: Optional[Wants] = None
-    #: Friction gamma of "kinetic" (0 means 2).
+    #: Friction gamma of "kinetic" and "baoab" (0 means 2).
     friction: float = 0.0
     #: Inverse mass of "kinetic" and "midpoint" (0 means 1/M with curvature,
     #: else 1).

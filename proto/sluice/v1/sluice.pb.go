@@ -1289,6 +1289,9 @@ type Register struct {
 	//	"kinetic"             underdamped Langevin, exact integration of the
 	//	                      frozen-gradient step; 1 gradient per chain per
 	//	                      step (velocities stay on the server)
+	//	"baoab"               underdamped Langevin by the BAOAB splitting;
+	//	                      1 gradient per chain per step; exact position
+	//	                      law on Gaussian targets at every stable step
 	//	"midpoint"            randomised midpoint for underdamped Langevin;
 	//	                      2 gradients per chain per step
 	//	"midpoint-overdamped" randomised midpoint for overdamped Langevin;
@@ -1382,11 +1385,11 @@ type Register struct {
 	// Accuracy targets: the session finishes with FINISH_REASON_TARGET_MET
 	// as soon as every target set here holds.
 	Wants *Wants `protobuf:"bytes,18,opt,name=wants,proto3" json:"wants,omitempty"`
-	// Friction gamma > 0 of the kinetic kernel, in 1/time (0 means 2; the
-	// midpoint kernel uses 2 always).
+	// Friction gamma > 0 of the kinetic and baoab kernels, in 1/time (0
+	// means 2; the midpoint kernel uses 2 always).
 	Friction float64 `protobuf:"fixed64,19,opt,name=friction,proto3" json:"friction,omitempty"`
-	// Inverse mass u > 0 of the kinetic and midpoint kernels (0 means 1/M
-	// when curvature is declared, else 1).
+	// Inverse mass u > 0 of the kinetic, baoab and midpoint kernels (0
+	// means 1/M when curvature is declared, else 1).
 	InverseMass float64 `protobuf:"fixed64,20,opt,name=inverse_mass,json=inverseMass,proto3" json:"inverse_mass,omitempty"`
 	// Accuracy of the "ozaki-krylov" kernel: relative tolerance of its
 	// Lanczos approximations (0 means 1e-8) and the most Lanczos iterations
