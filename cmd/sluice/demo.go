@@ -299,7 +299,7 @@ func runDemo(ctx context.Context, c demoConfig, stderr io.Writer) (*demoResult, 
 		// the Ozaki kernels have none: those get a fixed step.
 		_, bigM := target.Curvature()
 		switch c.kernel {
-		case "kinetic", "midpoint":
+		case "kinetic", "baoab", "midpoint":
 			// With inverse mass u = 1/M (the server's default when M is
 			// declared) the underdamped dynamics' frequencies are at most
 			// 1: a step of a quarter of that time unit.

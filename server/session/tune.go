@@ -522,7 +522,8 @@ func choose(rule tuneRule, m, bigM float64, prev, prevM float64, tol float64, gi
 		out = append(out,
 			Choice{"inverse_mass", s.inverseMass, uWhy},
 			Choice{"friction", s.friction, gWhy},
-			Choice{"step", s.step, "largest step with the " + tolText})
+			Choice{"step", s.step, "largest step with the " + tolText +
+				"; on a Gaussian this integrator is lmc at step u·h/γ, so it gains little over lmc: the baoab kernel samples the same dynamics with a step bound only by stability"})
 	case ruleSplitting:
 		// As for kinetic, u = 1/(1.1·M̂) fixes the time unit (the stiffest
 		// direction oscillates at ω = 1) and γ is searched on the same
