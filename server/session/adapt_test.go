@@ -9,6 +9,7 @@ import (
 	"gonum.org/v1/gonum/mat"
 
 	"sluice/kernels"
+	"sluice/kernels/diag"
 	"sluice/kernels/targets"
 )
 
@@ -466,5 +467,64 @@ func TestSplittingIntegratorPrediction(t *testing.T) {
 	t.Logf("worst τ: BAOAB %.1f, lmc %.1f (%.1f×)", tau, lmcTau, lmcTau/tau)
 	if tau > lmcTau/20 {
 		t.Fatalf("BAOAB worst τ %v, lmc %v", tau, lmcTau)
+	}
+}
+
+// The splitting rule on κ = 100: u = 1/(1.1·M̂), the step at ω_max·h = 1
+// (h = 1/√(u·1.1M̂) = 1), a friction on the grid between the critical
+// dampings of the slowest and stiffest directions, and a worst-case
+// autocorrelation time at least 20 times below lmc's at its automatic
+// step (TestSplittingIntegratorPrediction's figure). A friction the client
+// gives wins and keeps the same step.
+func TestSplittingRule(t *testing.T) {
+	lo, hi := 1.0, probeSafety*100
+	set, why := choose(ruleSplitting, lo, 100, 0, 0, varianceTolerance, settings{})
+	if set.inverseMass != 1/hi || math.Abs(set.step-1) > 1e-12 || len(why) != 3 {
+		t.Fatalf("u %v h %v (%d choices), want 1/%v and 1", set.inverseMass, set.step, len(why), hi)
+	}
+	crit := 2 * math.Sqrt(set.inverseMass*lo)
+	if set.friction < crit*(1-1e-12) || set.friction > 2*(1+1e-12) {
+		t.Fatalf("friction %v outside [%v, 2]", set.friction, crit)
+	}
+	tau := worstTau(baoabScheme(set.step, set.friction, set.inverseMass), lo, hi)
+	lmcTau := worstTau(lmcScheme(2*varianceTolerance/((1+varianceTolerance)*hi)), lo, hi)
+	if tau > lmcTau/20 {
+		t.Fatalf("worst τ %v at the chosen friction %v, lmc's %v", tau, set.friction, lmcTau)
+	}
+	given, why := choose(ruleSplitting, lo, 100, 0, 0, varianceTolerance, settings{friction: 0.7})
+	if given.friction != 0.7 || why[1].Reason != "given by the client" || given.step != set.step {
+		t.Fatalf("given friction: %+v (%q)", given, why[1].Reason)
+	}
+}
+
+// baoab through the engine with every tuning field at zero, on the
+// correlated Gaussian of condition number 2·10⁴: the draws' means and
+// variances match the target's within 4 MCSE (the variance's MCSE from
+// the ESS of the squared deviations), so the automatic step at half the
+// stability limit buys no visible bias on a Gaussian.
+func TestBAOABAutomaticSamplesTheTarget(t *testing.T) {
+	g, cov := correlated3(t)
+	spec := Spec{Dim: 3, Chains: 8, Kernel: "baoab", Start: []float64{0.5, -5, 0.05}, StartRows: 1, Seed: 35,
+		BurnIn: 1000, DrawsPerChain: 2000}
+	r := runTarget(t, spec, g, false, nil)
+	if r.err != nil {
+		t.Fatal(r.err)
+	}
+	for i := range 3 {
+		m, se := chainsMean(r.draws[i]), diag.MeanMCSE(r.draws[i])
+		if math.Abs(m) > 4*se {
+			t.Errorf("mean[%d] = %.4g ± %.2g, want 0", i, m, se)
+		}
+		sq := make([][]float64, len(r.draws[i]))
+		for c, ch := range r.draws[i] {
+			sq[c] = make([]float64, len(ch))
+			for k, v := range ch {
+				sq[c][k] = v * v
+			}
+		}
+		v, vse := chainsMean(sq), diag.MeanMCSE(sq)
+		if want := cov.At(i, i); math.Abs(v-want) > 4*vse {
+			t.Errorf("variance[%d] = %.4g ± %.2g, want %.4g", i, v, vse, want)
+		}
 	}
 }
