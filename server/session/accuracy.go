@@ -16,7 +16,9 @@ type ParameterDiagnostics struct {
 	Mean, SD, Rhat, BulkESS, TailESS, MCSE float64
 }
 
-// CurvatureEstimate holds one-sided certificates from gradient pairs.
+// CurvatureEstimate holds one-sided certificates from gradient pairs, in
+// the units of the declared metric when there is one (the units the
+// declared m and M are read in), else in the coordinates' own.
 type CurvatureEstimate struct {
 	Pairs int64
 	// SmoothnessAtLeast is a lower bound on M; StrongConvexityAtMost an
@@ -209,9 +211,14 @@ type monitor struct {
 	hist        *diag.History
 	ksd         *diag.StreamKSD
 	curv        diag.CurvatureBounds
-	// last evaluated point and gradient per chain, for the pairs.
+	// last evaluated point and gradient per chain, for the pairs, in the
+	// declared metric's units when metric is set: y = L⁻¹x and its score
+	// Lᵀ∇log π (C = L·Lᵀ), so that the secant ratios are the curvature of
+	// the target of y, which the declared m and M describe.
 	lastX, lastG []float64
 	haveLast     []bool
+	metric       *kernels.Metric
+	ty, tg       []float64 // scratch for the change of units
 	// keptX holds the positions of the last kept step until their scores
 	// arrive; pendingScores says it is waiting.
 	keptX         []float64
@@ -355,6 +362,14 @@ func (m *monitor) answeredAt(req *kernels.Request, a *kernels.Answer, round int)
 		for r := range req.Rows {
 			c := req.Chain[r]
 			x, g := req.Points[r*d:(r+1)*d], a.Grad[r*d:(r+1)*d]
+			if m.metric != nil {
+				if m.ty == nil {
+					m.ty, m.tg = make([]float64, d), make([]float64, d)
+				}
+				m.metric.SolveFactor(m.ty, x)
+				m.metric.ApplyFactorT(m.tg, g)
+				x, g = m.ty, m.tg
+			}
 			if m.haveLast[c] && phase == 1%m.pairPeriod() {
 				sec := m.curv.Add(m.lastX[c*d:(c+1)*d], x, m.lastG[c*d:(c+1)*d], g)
 				if !math.IsNaN(sec.In) {

@@ -422,9 +422,25 @@ func (s *Session) guaranteeChecks() []Check {
 	}
 	c := Check{Name: "guarantee", Status: CheckPass, Figure: b.Total,
 		Message: fmt.Sprintf("the %s bound %.4g rests on %s; %s", g.metric, b.Total, g.theorem(), g.startText())}
-	if g.metric != 0 && g.metric.String() == "W2" && s.mon.measured {
+	metric := s.declaredMetric()
+	if metric != nil {
+		// A W2 bound with a declared metric is a distance between the laws
+		// of y = L⁻¹x (C = L·Lᵀ).
+		c.Message = "in the declared metric's units (the distance ‖L⁻¹(x − x′)‖, C = L·Lᵀ): " + c.Message
+	}
+	if g.metric != 0 && g.metric.String() == "W2" && s.mon.measured && (metric == nil || metric.Kind() == kernels.DiagonalMetric) {
+		// The posterior's spread in the bound's units: with a diagonal
+		// metric y_i = x_i/√c_i.
 		var v float64
-		for _, p := range s.mon.params {
+		var cd []float64
+		if metric != nil {
+			cd = metric.Matrix()
+		}
+		for i, p := range s.mon.params {
+			if cd != nil {
+				v += p.SD * p.SD / cd[i*len(s.mon.params)+i]
+				continue
+			}
 			v += p.SD * p.SD
 		}
 		if spread := math.Sqrt(v); spread > 0 && b.Total > spread {
@@ -457,9 +473,13 @@ func (s *Session) guaranteeOnly() bool {
 //
 //	W2(δ_{x₀}, π) ≤ ‖∇log π(x₀)‖/m + √(p/m)
 //
-// per chain; the bound takes the worst chain. It runs on the kernel's
-// first request (steps = 0) when that asks the gradient at every chain's
-// start, as the unadjusted Langevin kernels do.
+// per chain; the bound takes the worst chain. With a declared metric
+// C = L·Lᵀ the theorem holds for the chains on y = L⁻¹x, whose score is
+// Lᵀ∇log π and whose m is the declared one (read in the metric's units),
+// so the norm is taken of Lᵀ∇log π(x₀) and the distance is in the
+// metric's units. It runs on the kernel's first request (steps = 0) when
+// that asks the gradient at every chain's start, as the unadjusted
+// Langevin kernels do.
 func (s *Session) certifyStart(req *kernels.Request) {
 	g := s.guarantee
 	c := s.spec.Curvature
@@ -473,6 +493,11 @@ func (s *Session) certifyStart(req *kernels.Request) {
 	d := s.spec.Dim
 	starts := s.spec.Start
 	worst := 0.0
+	metric := s.declaredMetric()
+	var score []float64
+	if metric != nil {
+		score = make([]float64, d)
+	}
 	for r := range req.Rows {
 		row := r % s.spec.StartRows
 		if s.spec.StartRows == 1 {
@@ -484,14 +509,22 @@ func (s *Session) certifyStart(req *kernels.Request) {
 				return // not the start points
 			}
 		}
+		gr := s.answer.Grad[r*d : (r+1)*d]
+		if metric != nil {
+			metric.ApplyFactorT(score, gr)
+			gr = score
+		}
 		var n2 float64
-		for _, v := range s.answer.Grad[r*d : (r+1)*d] {
+		for _, v := range gr {
 			n2 += v * v
 		}
 		worst = math.Max(worst, math.Sqrt(n2)/c.StrongConvexity)
 	}
 	g.setting.StartDistance = worst + math.Sqrt(float64(d)/c.StrongConvexity)
 	g.startSource = fmt.Sprintf("the start distance %.4g certified from the start gradients (‖∇log π(x₀)‖/m + √(p/m), worst chain; strong convexity, Durmus and Moulines 2019)", g.setting.StartDistance)
+	if metric != nil {
+		g.startSource = fmt.Sprintf("the start distance %.4g, in the declared metric's units, certified from the start gradients (‖Lᵀ∇log π(x₀)‖/m + √(p/m) with C = L·Lᵀ, worst chain; strong convexity, Durmus and Moulines 2019)", g.setting.StartDistance)
+	}
 	g.startPending = false
 	if s.spec.Wants.Eps > 0 {
 		s.epsSteps = g.stepsTo(s.spec.Wants.Eps, 0)
@@ -504,6 +537,15 @@ func (s *Session) certifyStart(req *kernels.Request) {
 			}
 		}
 	}
+}
+
+// declaredMetric returns the metric the client declared, nil when none
+// (or the identity).
+func (s *Session) declaredMetric() *kernels.Metric {
+	if s.tune == nil || s.tune.declare == nil || s.tune.declare.Kind() == kernels.IdentityMetric {
+		return nil
+	}
+	return s.tune.declare
 }
 
 // roundDown2 rounds x > 0 down to two significant digits, so that a step

@@ -204,6 +204,7 @@ func (s *Session) alloc() {
 	s.mon = newMonitor(spec.Dim, spec.Chains, spec.Names)
 	s.mon.stochastic = spec.Noise.Stochastic
 	s.mon.share = s.lim.DiagnosticsShare
+	s.mon.metric = s.declaredMetric()
 	s.answer = kernels.NewAnswer(spec.Chains, spec.Dim)
 	s.mean = make([]float64, spec.Dim)
 	s.m2 = make([]float64, spec.Dim)

@@ -228,6 +228,40 @@ func TestW2StartCertifiedFromGradient(t *testing.T) {
 	}
 }
 
+// With a declared metric C the W2 start certificate is taken in the
+// metric's units: on N(0, 100·I) with C = 100·I (so m = M = 1 in those
+// units, y = x/10 ~ N(0, I)), chains started at x₀ = (30, 30) have
+// y₀ = (3, 3) and the exact W2(δ_{y₀}, N(0, I)) = √(18 + 2) = 4.47. The
+// certificate ‖Lᵀ∇log π(x₀)‖/m + √(p/m) = √18 + √2 = 5.66 covers it
+// (the Euclidean gradient's norm, 0.42, would give 1.84, a bound below the
+// truth), and the reported bound dominates the exact W2, in y, of the
+// chains' law after K steps (lmcIsoLaw, since LMC with metric C on x is
+// plain LMC on y).
+func TestW2StartCertifiedInTheDeclaredMetric(t *testing.T) {
+	const h, K = 0.05, 40
+	prec := mat.NewSymDense(2, []float64{0.01, 0, 0, 0.01})
+	tg, err := targets.NewGaussian(make([]float64, 2), prec)
+	if err != nil {
+		t.Fatal(err)
+	}
+	spec := Spec{Dim: 2, Chains: 2, Start: []float64{30, 30}, StartRows: 1, Step: h, Seed: 4, DrawsPerChain: K,
+		Metric: []float64{100, 100}, Curvature: &Curvature{StrongConvexity: 1, Smoothness: 1}, Wants: Wants{Metric: bound.W2}}
+	r := runTarget(t, spec, tg, false, nil)
+	if r.err != nil {
+		t.Fatal(r.err)
+	}
+	b := r.finished.Progress.Bound
+	a, v := lmcIsoLaw(h, K, 0)
+	exact := math.Sqrt(2*9*a*a + 2*(math.Sqrt(v)-1)*(math.Sqrt(v)-1))
+	if b == nil || !(b.Total >= exact) {
+		t.Fatalf("bound %+v below the exact W2 %v (in the metric's units)", b, exact)
+	}
+	c, ok := checkNamed(r.finished.Checks, "guarantee")
+	if !ok || !strings.Contains(c.Message, "declared metric's units") || !strings.Contains(c.Message, "5.657") {
+		t.Fatalf("guarantee check %+v: want the start distance 5.657 in the declared metric's units", c)
+	}
+}
+
 // lmcIsoLaw is the law of one LMC chain on N(0, I) (gradient −x) after k
 // steps of size h from N(μ₀, v₀I): LMC's recursion x ← (1 − h)x + √(2h)ξ
 // is linear and Gaussian, so the law stays N(a·μ₀, v·I) with a = (1 − h)^k
