@@ -234,19 +234,62 @@ func (m *monitor) restorePending(p *pendingState) {
 	m.done = done
 }
 
+// The judgement's cost model, in nanoseconds of one core, measured on
+// the 2-core development machine (December 2026) with the windows of the
+// three shapes of `sluice bench` (8 × 10, 64 × 100, 64 × 1000; AR(0.9)
+// draws) and the bare gRPC echo of the same bytes: the summaries cost
+// about judgeValueNS per value of the kept window; the Stein assessment
+// about steinPairNS + steinPairDimNS·dim per pair of the window's draws
+// and steinBootNS per tested pair and bootstrap replicate; a step, with a
+// gradient that costs nothing, at least stepNS plus stepValueNS per value
+// sent each way. The model is a function of the windows' sizes only, so
+// the cadence it sets depends on the step count alone.
+const (
+	judgeValueNS   = 150
+	steinPairNS    = 40
+	steinPairDimNS = 1.5
+	steinBootNS    = 0.5
+	stepNS         = 20000
+	stepValueNS    = 10
+)
+
+// judgeWork is the model's cost of a judgement of the live windows, with
+// the Stein assessment when stein, with reps replicates.
+func (m *monitor) judgeWork(stein bool, reps int) float64 {
+	_, _, histChains, _ := monitorSizes(m.dim, m.chains)
+	w := judgeValueNS * float64(m.hist.Kept()) * float64(histChains*m.dim)
+	if n := float64(m.ksd.Kept()); stein && n >= 2 {
+		t := min(n, steinTestDraws)
+		w += (steinPairNS+steinPairDimNS*float64(m.dim))*n*(n-1)/2 + steinBootNS*t*t*float64(reps)
+	}
+	return w
+}
+
+// stepWork is the model's least cost of one step of the session.
+func (s *Session) stepWork() float64 {
+	return stepNS + stepValueNS*float64(s.spec.Chains*s.spec.Dim)
+}
+
 // judgeCadence returns the steps of the next judgement and of the next
 // Stein assessment after a judgement at step k (with one when stein).
 // With a negative Limits.DiagnosticsShare (tests), every step (every
 // ProgressEverySteps), the Stein assessment every quarter of growth. Else
-// after 20 steps, then: when a target rests on
-// the figures (every target does, through the verdict), whenever the
-// steps have grown by a tenth, so that a session stops within about a
-// tenth of the step where its targets first hold; with no target the
-// figures only inform the reports, and they are judged whenever the steps
-// have grown by a half. The Stein assessment decides a target only with
-// max_ksd (the bias check fails only then): every quarter of growth with
-// it, every doubling without. A run of K steps therefore pays for
-// O(log K) judgements, each bounded by the windows' sizes.
+// the next judgement comes after the latest of: 20 steps; the steps
+// having grown by a tenth when a target rests on the figures (every
+// target does, through the verdict), so that a session stops within about
+// a tenth of the step where its targets first hold, or by a half with no
+// target, when the figures only inform the reports; and enough steps for
+// the judgement just started to cost at most DiagnosticsShare of their
+// work, both by the cost model above (judgeWork, stepWork). The last
+// holds the judgements' cost per step to a bounded share of a step's
+// least work however large the windows are next to the steps (a short
+// session of many chains × dim values): it sets the cadence while the
+// windows grow with the run, and the growth rules take over once they
+// stop growing. The Stein assessment decides a target only with max_ksd
+// (the bias check fails only then): it joins a judgement once the steps
+// have grown by a quarter with it, by a doubling without. A run of K
+// steps therefore pays for O(log K) judgements, each bounded by the
+// windows' sizes.
 func (s *Session) judgeCadence(k int, stein bool) (judgeNext, steinNext int) {
 	w := s.spec.Wants
 	steinNext = s.steinNext
@@ -264,5 +307,11 @@ func (s *Session) judgeCadence(k int, stein bool) (judgeNext, steinNext int) {
 	if w.any() {
 		grow = 10
 	}
-	return k + max(20, k/grow), steinNext
+	reps := steinReplicates
+	paid := s.mon.judgeWork(stein, reps) / (s.lim.DiagnosticsShare * s.stepWork())
+	gap := max(20, k/grow)
+	if paid > float64(gap) {
+		gap = int(min(math.Ceil(paid), 1<<40))
+	}
+	return k + gap, steinNext
 }
