@@ -273,22 +273,24 @@ func (s *Session) stepWork() float64 {
 // judgeCadence returns the steps of the next judgement and of the next
 // Stein assessment after a judgement at step k (with one when stein).
 // With a negative Limits.DiagnosticsShare (tests), every step (every
-// ProgressEverySteps), the Stein assessment every quarter of growth. Else
-// the next judgement comes after the latest of: 20 steps; the steps
-// having grown by a tenth when a target rests on the figures (every
-// target does, through the verdict), so that a session stops within about
-// a tenth of the step where its targets first hold, or by a half with no
-// target, when the figures only inform the reports; and enough steps for
-// the judgement just started to cost at most DiagnosticsShare of their
-// work, both by the cost model above (judgeWork, stepWork). The last
-// holds the judgements' cost per step to a bounded share of a step's
-// least work however large the windows are next to the steps (a short
-// session of many chains × dim values): it sets the cadence while the
-// windows grow with the run, and the growth rules take over once they
-// stop growing. The Stein assessment decides a target only with max_ksd
-// (the bias check fails only then): it joins a judgement once the steps
-// have grown by a quarter with it, by a doubling without. A run of K
-// steps therefore pays for O(log K) judgements, each bounded by the
+// ProgressEverySteps), the Stein assessment every quarter of growth.
+// Else, when a target rests on the figures (every target does, through
+// the verdict), after 20 steps and then whenever the steps have grown by
+// a tenth, so that a session stops within about a tenth of the step where
+// its targets first hold. With no target the figures only inform the
+// reports and the verdict until the final judgement, which measures them
+// afresh: the next judgement comes after the latest of 20 steps, the
+// steps having grown by a half, and enough steps for the judgement just
+// started to cost at most DiagnosticsShare of their least work, by the
+// cost model above (judgeWork, stepWork). The last holds the judgements'
+// amortised cost to a bounded share of a step's least work (a gradient
+// that costs nothing) however large the windows are next to the steps (a
+// short session of many chains × dim values); it sets the cadence while
+// the windows grow with the run, and the growth rule takes over once
+// they stop growing. The Stein assessment decides a target only with
+// max_ksd (the bias check fails only then): it joins a judgement once the
+// steps have grown by a quarter with it, by a doubling without. A run of
+// K steps therefore pays for O(log K) judgements, each bounded by the
 // windows' sizes.
 func (s *Session) judgeCadence(k int, stein bool) (judgeNext, steinNext int) {
 	w := s.spec.Wants
@@ -303,14 +305,11 @@ func (s *Session) judgeCadence(k int, stein bool) (judgeNext, steinNext int) {
 	if s.lim.DiagnosticsShare < 0 {
 		return k + max(1, int(s.spec.ProgressEverySteps)), steinNext
 	}
-	grow := 2 // a half
 	if w.any() {
-		grow = 10
+		return k + max(20, k/10), steinNext // a tenth
 	}
-	reps := steinReplicates
-	paid := s.mon.judgeWork(stein, reps) / (s.lim.DiagnosticsShare * s.stepWork())
-	gap := max(20, k/grow)
-	if paid > float64(gap) {
+	gap := max(20, k/2) // a half
+	if paid := s.mon.judgeWork(stein, steinReplicates) / (s.lim.DiagnosticsShare * s.stepWork()); paid > float64(gap) {
 		gap = int(min(math.Ceil(paid), 1<<40))
 	}
 	return k + gap, steinNext
