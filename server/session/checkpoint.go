@@ -595,7 +595,7 @@ func (l *DrawLog) tail() followState {
 	fs := followState{First: l.first, Next: l.next, Values: make([]float64, n*l.dim), Chains: make([]int, n), Iterations: make([]int64, n)}
 	for r := range n {
 		i := int((l.first + uint64(r)) % uint64(len(l.chains)))
-		copy(fs.Values[r*l.dim:], l.vals[i*l.dim:(i+1)*l.dim])
+		copy(fs.Values[r*l.dim:], l.row(i))
 		fs.Chains[r], fs.Iterations[r] = l.chains[i], l.iters[i]
 	}
 	return fs
@@ -620,7 +620,7 @@ func (l *DrawLog) restore(fs *followState, seq uint64) error {
 	}
 	for r := skip; r < n; r++ {
 		i := int(l.next % uint64(len(l.chains)))
-		copy(l.vals[i*l.dim:(i+1)*l.dim], fs.Values[r*uint64(l.dim):(r+1)*uint64(l.dim)])
+		copy(l.row(i), fs.Values[r*uint64(l.dim):(r+1)*uint64(l.dim)])
 		l.chains[i], l.iters[i] = fs.Chains[r], fs.Iterations[r]
 		l.next++
 	}
@@ -705,7 +705,7 @@ func (l *DrawLog) readKept(from uint64, max int) (Draws, error) {
 	d := Draws{Seq: from, Rows: n, Dim: l.dim, Values: make([]float64, n*l.dim), Chains: make([]int, n), Iterations: make([]int64, n)}
 	for r := range n {
 		i := int((from + uint64(r)) % uint64(len(l.chains)))
-		copy(d.Values[r*l.dim:], l.vals[i*l.dim:(i+1)*l.dim])
+		copy(d.Values[r*l.dim:], l.row(i))
 		d.Chains[r], d.Iterations[r] = l.chains[i], l.iters[i]
 	}
 	return d, nil
