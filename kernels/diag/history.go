@@ -186,6 +186,13 @@ func (h *History) Kept() int { return h.kept }
 // on the kept draws (see the type's comment for what their ESS means), or
 // nil while fewer than 8 draws per chain are kept.
 func (h *History) Summarize() []Summary {
+	return h.SummarizeUntil(nil)
+}
+
+// SummarizeUntil is Summarize asking stop (when not nil) before each
+// coordinate; once it reports true it gives up and returns nil. For a
+// caller that no longer needs the figures.
+func (h *History) SummarizeUntil(stop func() bool) []Summary {
 	if h.kept < 2*minHalf {
 		return nil
 	}
@@ -196,6 +203,9 @@ func (h *History) Summarize() []Summary {
 	}
 	out := make([]Summary, h.dim)
 	for j := range out {
+		if stop != nil && stop() {
+			return nil
+		}
 		for c, v := range h.views {
 			for t := range v {
 				v[t] = h.buf[(t*h.chains+c)*h.dim+j]

@@ -292,3 +292,28 @@ func TestHistoryMillionSteps(t *testing.T) {
 			rho, full, run[j].ESS, run[j].Batches, run[j].Batch, sum[j].MeanESS, sum[j].BulkESS, want, kept)
 	}
 }
+
+// SummarizeUntil with a stop that never fires is Summarize; one that
+// fires gives up with nil.
+func TestSummarizeUntilStops(t *testing.T) {
+	h := NewHistory(2, 3, 64)
+	r := rand.New(rand.NewPCG(111, 113))
+	x := make([]float64, 6)
+	for range 100 {
+		for i := range x {
+			x[i] = 0.5*x[i] + r.NormFloat64()
+		}
+		h.Add(x)
+	}
+	want := h.Summarize()
+	got := h.SummarizeUntil(func() bool { return false })
+	for j := range want {
+		if got[j].Mean != want[j].Mean || got[j].BulkESS != want[j].BulkESS || got[j].Rhat.Reported != want[j].Rhat.Reported {
+			t.Errorf("coordinate %d: %+v, want %+v", j, got[j], want[j])
+		}
+	}
+	calls := 0
+	if s := h.SummarizeUntil(func() bool { calls++; return calls > 1 }); s != nil {
+		t.Errorf("stopped at the second coordinate: %d summaries, want none", len(s))
+	}
+}

@@ -3,6 +3,7 @@ package session
 import (
 	"math"
 	"math/rand/v2"
+	"sync/atomic"
 
 	"sluice/kernels/diag"
 )
@@ -54,6 +55,9 @@ type judgement struct {
 	params      []ParameterDiagnostics
 	spread      float64
 	spreadName  string
+	// dropped is set when the judgement's figures will never be applied
+	// (judge replaced them): it gives up at its next coordinate or row.
+	dropped atomic.Bool
 }
 
 // judgeScratch is the memory, in float64 values, a judgement needs beyond
@@ -71,7 +75,7 @@ func judgeScratch(dim, chains int) float64 {
 func (j *judgement) compute() {
 	j.assessed, j.measured = false, false
 	if j.stein && j.ksd.Kept() >= 2 {
-		r := j.ksd.Assess(j.reps, steinTestDraws, rand.New(rand.NewPCG(j.seed, uint64(j.step))))
+		r := j.ksd.AssessUntil(j.reps, steinTestDraws, rand.New(rand.NewPCG(j.seed, uint64(j.step))), j.dropped.Load)
 		j.steinRep = SteinReport{KSD: r.KSD, U2: r.U2, SE: r.SE, Upper95: r.Upper95, PValue: r.PValue, Draws: r.N, State: r.State}
 		j.lastKSD = -1
 		if r.State != diag.SteinUndefined {
@@ -79,7 +83,7 @@ func (j *judgement) compute() {
 		}
 		j.assessed = true
 	}
-	sum := j.hist.Summarize()
+	sum := j.hist.SummarizeUntil(j.dropped.Load)
 	if sum == nil {
 		return
 	}
@@ -134,8 +138,9 @@ func (m *monitor) apply(j *judgement) {
 // bootstrap replicates, the Stein assessment only when stein is set. A
 // pending judgement is applied first, as at a cadence point, unless this
 // one replaces every figure it would set: then it is dropped without
-// waiting for it (it goes on with its own snapshots and results; the
-// next start makes new ones), so the end does not pay for both.
+// waiting for it (it stops at its next coordinate or row of the Stein
+// matrix, with its own snapshots and results; the next start makes new
+// ones), so the end does not pay for both.
 func (m *monitor) judge(seed uint64, step int, stein bool, reps int) {
 	if m.now == nil {
 		m.now = &judgement{}
@@ -145,6 +150,7 @@ func (m *monitor) judge(seed uint64, step int, stein bool, reps int) {
 	j.hist, j.ksd, j.chainSum, j.chainN = m.hist, m.ksd, m.chainSum, m.chainN
 	j.compute()
 	if m.done != nil && j.assessed && j.measured {
+		m.bg.dropped.Store(true) // its goroutine stops at its next coordinate or row
 		m.done, m.bg = nil, nil
 	}
 	m.collect()
