@@ -243,7 +243,10 @@ func (m *monitor) restorePending(p *pendingState) {
 // The judgement's cost model, in nanoseconds of one core, measured on
 // the 2-core development machine (December 2026) with the windows of the
 // three shapes of `sluice bench` (8 × 10, 64 × 100, 64 × 1000; AR(0.9)
-// draws) and the bare gRPC echo of the same bytes: the summaries cost
+// draws; BenchmarkJudgeCostModel prints the model beside the measured
+// time, within a factor of 0.7 to 1.6 there) and the bare gRPC echo of
+// the same bytes (`sluice bench`: about 20–45 µs at 8 × 10, 170–300 µs at
+// 64 × 100, 750–1200 µs at 64 × 1000 per round trip): the summaries cost
 // about judgeValueNS per value of the kept window; the Stein assessment
 // about steinPairNS + steinPairDimNS·dim per pair of the window's draws
 // and steinBootNS per tested pair and bootstrap replicate; a step, with a
@@ -252,7 +255,7 @@ func (m *monitor) restorePending(p *pendingState) {
 // the cadence it sets depends on the step count alone.
 const (
 	judgeValueNS   = 150
-	steinPairNS    = 40
+	steinPairNS    = 10
 	steinPairDimNS = 1.5
 	steinBootNS    = 0.5
 	stepNS         = 20000
@@ -262,9 +265,11 @@ const (
 // judgeWork is the model's cost of a judgement of the live windows, with
 // the Stein assessment when stein, with reps replicates.
 func (m *monitor) judgeWork(stein bool, reps int) float64 {
-	_, _, histChains, _ := monitorSizes(m.dim, m.chains)
+	_, ksdChains, histChains, _ := monitorSizes(m.dim, m.chains)
 	w := judgeValueNS * float64(m.hist.Kept()) * float64(histChains*m.dim)
-	if n := float64(m.ksd.Kept()); stein && n >= 2 {
+	// The assessment needs 8 draws and 4 rounds of the chains
+	// (diag.AssessStein); with fewer it returns at once.
+	if n := float64(m.ksd.Kept()); stein && n >= 8 && m.ksd.Kept()/ksdChains >= 4 {
 		t := min(n, steinTestDraws)
 		w += (steinPairNS+steinPairDimNS*float64(m.dim))*n*(n-1)/2 + steinBootNS*t*t*float64(reps)
 	}
