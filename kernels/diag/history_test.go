@@ -317,3 +317,29 @@ func TestSummarizeUntilStops(t *testing.T) {
 		t.Errorf("stopped at the second coordinate: %d summaries, want none", len(s))
 	}
 }
+
+// Reserve sizes the summaries' scratch for a full buffer at once and
+// changes no figure: a reserved history summarises as an unreserved one,
+// bit for bit, and its scratch already holds chains·capacity values.
+func TestHistoryReserve(t *testing.T) {
+	a, b := NewHistory(3, 2, 64), NewHistory(3, 2, 64)
+	b.Reserve()
+	if n := 3 * 64; cap(b.ws.pool) < n || cap(b.ws.pairs) < n || cap(b.ws.spare) < n || cap(b.gather) < n {
+		t.Fatalf("reserved scratch: pool %d, pairs %d, spare %d, gather %d, want %d each", cap(b.ws.pool), cap(b.ws.pairs), cap(b.ws.spare), cap(b.gather), n)
+	}
+	r := rand.New(rand.NewPCG(115, 117))
+	x := make([]float64, 6)
+	for range 150 {
+		for i := range x {
+			x[i] = 0.7*x[i] + r.NormFloat64()
+		}
+		a.Add(x)
+		b.Add(x)
+	}
+	sa, sb := a.Summarize(), b.Summarize()
+	for j := range sa {
+		if sa[j] != sb[j] {
+			t.Errorf("coordinate %d: %+v reserved, %+v not", j, sb[j], sa[j])
+		}
+	}
+}

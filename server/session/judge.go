@@ -62,12 +62,13 @@ type judgement struct {
 
 // judgeScratch is the memory, in float64 values, a judgement needs beyond
 // the monitor's windows: the snapshots of the windows (the same sizes
-// again) and the Stein assessment's standardised draws and scores, its
-// tested matrix and the bootstrap's multipliers and products.
+// again) with the summaries' scratch (diag.History.Reserve), and the
+// Stein assessment's standardised draws and scores, its tested matrix and
+// the bootstrap's multipliers and products.
 func judgeScratch(dim, chains int) float64 {
 	ksdCap, _, histChains, histCap := monitorSizes(dim, chains)
 	m := float64(min(ksdCap, 2*steinTestDraws))
-	return 2*float64(ksdCap*dim) + 2*float64(histChains*histCap*dim) + // snapshots
+	return 2*float64(ksdCap*dim) + 2*float64(histChains*histCap*dim) + 11*float64(histChains*histCap) + // snapshots
 		2*float64(ksdCap*dim) + m*m + 2*m*steinFinalReplicates // assessment
 }
 
@@ -167,6 +168,7 @@ func (m *monitor) start(seed uint64, step int, stein bool) {
 	if m.bg.hist == nil { // the snapshots, made once
 		ksdCap, ksdChains, histChains, histCap := monitorSizes(m.dim, m.chains)
 		m.bg.hist, m.bg.ksd = diag.NewHistory(histChains, m.dim, histCap), diag.NewStreamKSD(diag.IMQ{}, m.dim, ksdChains, ksdCap)
+		m.bg.hist.Reserve() // the summaries' scratch at once, not as the judged windows grow
 		m.bg.chainSum = make([]float64, len(m.chainSum))
 	}
 	j := m.bg
