@@ -180,9 +180,11 @@ type sessionState struct {
 	Guarantee    *guaranteeState
 	Finished     *Finished
 	LastProgress time.Duration // since start
-	// The verdict's cadence and divergence watch.
-	JudgeNext, SteinNext int
-	Divergence           *divergence
+	// The verdict's cadence and divergence watch. JudgedAt is the step of
+	// the latest judgement (0 in states written before it was kept: the
+	// cadence then counts the steps since the start).
+	JudgeNext, SteinNext, JudgedAt int
+	Divergence                     *divergence
 }
 
 type noiseState struct {
@@ -281,7 +283,7 @@ func (s *Session) snapshot(fin *Finished) (Checkpoint, error) {
 	st := sessionState{ID: s.id, Token: s.persist.token, RequestID: s.requestID, Used: s.used, Seq: s.seq, Kept: s.kept,
 		Steps: s.kernel.Steps(), Phase: s.phase, Elapsed: time.Since(s.start), Count: s.count, Mean: s.mean, M2: s.m2,
 		EpsSteps: s.epsSteps, Finished: fin, LastProgress: s.lastProgress.Sub(s.start),
-		JudgeNext: s.judgeNext, SteinNext: s.steinNext, Divergence: s.div,
+		JudgeNext: s.judgeNext, SteinNext: s.steinNext, JudgedAt: s.judgedAt, Divergence: s.div,
 		Noise: noiseState{Sum: s.noise.sum, Count: s.noise.count, N: s.noise.n, Mean: s.noise.mean, M2: s.noise.m2, Touched: s.noise.touched}}
 	if g := s.guarantee; g != nil {
 		st.Guarantee = &guaranteeState{Noise: g.setting.Noise, H: g.h, K0: g.k0, Planned: g.planned, Replan: g.replan,
@@ -462,7 +464,7 @@ func Restore(state []byte, lim Limits) (*Session, error) {
 		}
 	}
 	s.persist.token = st.Token
-	s.judgeNext, s.steinNext = st.JudgeNext, st.SteinNext
+	s.judgeNext, s.steinNext, s.judgedAt = st.JudgeNext, st.SteinNext, st.JudgedAt
 	if st.Divergence != nil {
 		s.div = st.Divergence
 	}

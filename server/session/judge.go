@@ -254,7 +254,7 @@ func (m *monitor) restorePending(p *pendingState) {
 // and steinBootNS per tested pair and bootstrap replicate; a step, with a
 // gradient that costs nothing, at least stepNS plus stepValueNS per value
 // sent each way. The model is a function of the windows' sizes only, so
-// the cadence it sets depends on the step count alone.
+// the cadence it sets (paidFor) depends on the step count alone.
 const (
 	judgeValueNS   = 150
 	steinPairNS    = 10
@@ -268,7 +268,10 @@ const (
 // the Stein assessment when stein, with reps replicates.
 func (m *monitor) judgeWork(stein bool, reps int) float64 {
 	_, ksdChains, histChains, _ := monitorSizes(m.dim, m.chains)
-	w := judgeValueNS * float64(m.hist.Kept()) * float64(histChains*m.dim)
+	var w float64
+	if m.hist.Kept() >= 8 { // with fewer, Summarize returns at once
+		w = judgeValueNS * float64(m.hist.Kept()) * float64(histChains*m.dim)
+	}
 	// The assessment needs 8 draws and 4 rounds of the chains
 	// (diag.AssessStein); with fewer it returns at once.
 	if n := float64(m.ksd.Kept()); stein && n >= 8 && m.ksd.Kept()/ksdChains >= 4 {
@@ -283,28 +286,44 @@ func (s *Session) stepWork() float64 {
 	return stepNS + stepValueNS*float64(s.spec.Chains*s.spec.Dim)
 }
 
+// paidFor reports whether a judgement may start at step k of a session
+// that judges in the background, and whether it takes in the Stein
+// assessment (due when stein). With a target, always, as due: the
+// session's stopping rests on the figures. With no target the figures
+// only inform the reports and the verdict until the final judgement,
+// which measures them afresh, and a judgement starts only once the steps
+// since the latest one have paid for it: its modelled cost (judgeWork) is
+// at most Limits.DiagnosticsShare of their least work (stepWork). The
+// Stein assessment waits when only the summaries are paid for. So at
+// every step, the judgements started so far have cost at most that share
+// of the steps before them (by the model) however large the windows are
+// next to the steps, as in a short session of many chains × dim values,
+// which is then judged only at its end; and what starts when depends on
+// the step count alone.
+func (s *Session) paidFor(k int, stein bool) (withStein, ok bool) {
+	if s.spec.Wants.any() {
+		return stein, true
+	}
+	paid := s.lim.DiagnosticsShare * float64(k-s.judgedAt) * s.stepWork()
+	if stein && s.mon.judgeWork(true, steinReplicates) <= paid {
+		return true, true
+	}
+	return false, s.mon.judgeWork(false, 0) <= paid
+}
+
 // judgeCadence returns the steps of the next judgement and of the next
 // Stein assessment after a judgement at step k (with one when stein).
 // With a negative Limits.DiagnosticsShare (tests), every step (every
 // ProgressEverySteps), the Stein assessment every quarter of growth.
-// Else, when a target rests on the figures (every target does, through
-// the verdict), after 20 steps and then whenever the steps have grown by
-// a tenth, so that a session stops within about a tenth of the step where
-// its targets first hold. With no target the figures only inform the
-// reports and the verdict until the final judgement, which measures them
-// afresh: the next judgement comes after the latest of 20 steps, the
-// steps having grown by a half, and enough steps for the judgement just
-// started to cost at most DiagnosticsShare of their least work, by the
-// cost model above (judgeWork, stepWork). The last holds the judgements'
-// amortised cost to a bounded share of a step's least work (a gradient
-// that costs nothing) however large the windows are next to the steps (a
-// short session of many chains × dim values); it sets the cadence while
-// the windows grow with the run, and the growth rule takes over once
-// they stop growing. The Stein assessment decides a target only with
-// max_ksd (the bias check fails only then): it joins a judgement once the
-// steps have grown by a quarter with it, by a doubling without. A run of
-// K steps therefore pays for O(log K) judgements, each bounded by the
-// windows' sizes.
+// Else after 20 steps, then whenever the steps have grown by a tenth
+// when a target rests on the figures (every target does, through the
+// verdict), so that a session stops within about a tenth of the step
+// where its targets first hold; by a half with no target, and then once
+// the steps have paid for the judgement (paidFor). The Stein assessment
+// decides a target only with max_ksd (the bias check fails only then):
+// it is due once the steps have grown by a quarter with it, by a doubling
+// without. A run of K steps therefore pays for O(log K) judgements, each
+// bounded by the windows' sizes.
 func (s *Session) judgeCadence(k int, stein bool) (judgeNext, steinNext int) {
 	w := s.spec.Wants
 	steinNext = s.steinNext
@@ -321,9 +340,5 @@ func (s *Session) judgeCadence(k int, stein bool) (judgeNext, steinNext int) {
 	if w.any() {
 		return k + max(20, k/10), steinNext // a tenth
 	}
-	gap := max(20, k/2) // a half
-	if paid := s.mon.judgeWork(stein, steinReplicates) / (s.lim.DiagnosticsShare * s.stepWork()); paid > float64(gap) {
-		gap = int(min(math.Ceil(paid), 1<<40))
-	}
-	return k + gap, steinNext
+	return k + max(20, k/2), steinNext // a half
 }
