@@ -1,6 +1,7 @@
 package diag
 
 import (
+	"fmt"
 	"math/rand/v2"
 	"runtime"
 	"testing"
@@ -137,5 +138,29 @@ func BenchmarkHistorySummarize(b *testing.B) {
 	for b.Loop() {
 		h.Summarize()
 		h.RunMeans()
+	}
+}
+
+// Summarize of the windows a session judges in `sluice bench` (the
+// monitor's sizes for its three shapes, chains × dim × kept draws per
+// chain): AR(0.9) chains, every coordinate its own.
+func BenchmarkHistorySummarizeWindows(b *testing.B) {
+	for _, c := range []struct{ chains, dim, kept int }{{8, 10, 2000}, {64, 100, 164}, {64, 1000, 16}} {
+		b.Run(fmt.Sprintf("%dx%dx%d", c.chains, c.dim, c.kept), func(b *testing.B) {
+			h := NewHistory(c.chains, c.dim, max(16, c.kept))
+			r := rand.New(rand.NewPCG(11, 12))
+			x := make([]float64, c.chains*c.dim)
+			for range c.kept {
+				for i := range x {
+					x[i] = 0.9*x[i] + r.NormFloat64()
+				}
+				h.Add(x)
+			}
+			b.ReportAllocs()
+			for b.Loop() {
+				h.Summarize()
+			}
+			b.ReportMetric(float64(b.Elapsed().Nanoseconds())/float64(b.N)/float64(c.chains*c.dim*c.kept), "ns/value")
+		})
 	}
 }

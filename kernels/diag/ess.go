@@ -65,13 +65,18 @@ type geyerTrace struct {
 func geyerESS(chains [][]float64, s *acovScratch, tr *geyerTrace) float64 {
 	n := len(chains[0])
 	m := len(chains)
-	var big float64
+	var big float64 // max |v|
+	nan := false
 	for _, c := range chains {
 		for _, v := range c {
-			big = math.Max(big, math.Abs(v))
+			if a := math.Abs(v); a > big {
+				big = a
+			} else if a != a {
+				nan = true
+			}
 		}
 	}
-	if math.IsNaN(big) || math.IsInf(big, 0) {
+	if nan || math.IsInf(big, 0) {
 		return math.NaN()
 	}
 	if big > 1e100 || (big > 0 && big < 1e-100) {
@@ -179,6 +184,8 @@ type acovScratch struct {
 	scaled      []float64 // rescaled copy of huge or tiny chains
 	scaledViews [][]float64
 	have        bool
+	dev         []float64 // the chains' deviations from their means, flat, when centred
+	centred     bool
 	fft         *fourier.FFT
 	buf         []float64
 	coef        []complex128
@@ -187,22 +194,69 @@ type acovScratch struct {
 
 // reset points s at new chains whose means are already in s.means.
 func (s *acovScratch) reset(chains [][]float64) {
-	s.chains, s.have = chains, false
+	s.chains, s.have, s.centred = chains, false, false
 }
 
 // at returns the chain-averaged autocovariance at lag t.
 func (s *acovScratch) at(t int) float64 {
 	if !s.have && t < directLags {
-		var g float64
-		for j, c := range s.chains {
-			g += autocov(c, s.means[j], t)
-		}
-		return g / float64(len(s.chains))
+		return s.direct(t)
 	}
 	if !s.have {
 		s.allLags()
 	}
 	return s.full[t]
+}
+
+// direct is the chain-averaged autocovariance at lag t by direct sums:
+// the mean over chains, in chain order, of autocov(c, mean, t). The
+// chains' deviations from their means are computed once per reset (the
+// same differences autocov takes), and four chains are summed side by
+// side, each in its own accumulator in autocov's order, so the result is
+// autocov's bit for bit while the additions of different chains overlap.
+func (s *acovScratch) direct(t int) float64 {
+	n, m := len(s.chains[0]), len(s.chains)
+	if !s.centred {
+		s.dev = growFloats(s.dev, n*m)
+		for j, c := range s.chains {
+			mu := s.means[j]
+			for i, v := range c {
+				s.dev[j*n+i] = v - mu
+			}
+		}
+		s.centred = true
+	}
+	var g float64
+	fn := float64(n)
+	j := 0
+	for ; j+4 <= m; j += 4 {
+		a0, b0 := s.dev[j*n:j*n+n-t], s.dev[j*n+t:j*n+n]
+		a1, b1 := s.dev[(j+1)*n:(j+1)*n+n-t], s.dev[(j+1)*n+t:(j+1)*n+n]
+		a2, b2 := s.dev[(j+2)*n:(j+2)*n+n-t], s.dev[(j+2)*n+t:(j+2)*n+n]
+		a3, b3 := s.dev[(j+3)*n:(j+3)*n+n-t], s.dev[(j+3)*n+t:(j+3)*n+n]
+		b0, a1, b1, a2, b2, a3, b3 = b0[:len(a0)], a1[:len(a0)], b1[:len(a0)], a2[:len(a0)], b2[:len(a0)], a3[:len(a0)], b3[:len(a0)]
+		var s0, s1, s2, s3 float64
+		for i, x := range a0 {
+			s0 += x * b0[i]
+			s1 += a1[i] * b1[i]
+			s2 += a2[i] * b2[i]
+			s3 += a3[i] * b3[i]
+		}
+		g += s0 / fn
+		g += s1 / fn
+		g += s2 / fn
+		g += s3 / fn
+	}
+	for ; j < m; j++ {
+		a, b := s.dev[j*n:j*n+n-t], s.dev[j*n+t:j*n+n]
+		b = b[:len(a)]
+		var s0 float64
+		for i, x := range a {
+			s0 += x * b[i]
+		}
+		g += s0 / fn
+	}
+	return g / float64(m)
 }
 
 // allLags fills s.full with the chain-averaged autocovariance at every lag

@@ -299,3 +299,30 @@ func TestESSBounds(t *testing.T) {
 		}
 	}
 }
+
+// The direct sums of acovScratch give, bit for bit, the mean over chains
+// of autocov (the autocovariance with divisor N, written out one chain at
+// a time) at every lag, for 1 to 9 chains (four summed side by side, and
+// the rest).
+func TestDirectAutocovMatchesOneChainAtATime(t *testing.T) {
+	r := rand.New(rand.NewPCG(25, 26))
+	for m := 1; m <= 9; m++ {
+		chains := ar1Chains(r, m, 37, 0.8)
+		var s acovScratch
+		s.means = make([]float64, m)
+		for j, c := range chains {
+			s.means[j] = mean(c)
+		}
+		s.reset(chains)
+		for lag := range 37 {
+			var want float64
+			for j, c := range chains {
+				want += autocov(c, s.means[j], lag)
+			}
+			want /= float64(m)
+			if got := s.at(lag); math.Float64bits(got) != math.Float64bits(want) {
+				t.Fatalf("%d chains, lag %d: %v, one chain at a time %v", m, lag, got, want)
+			}
+		}
+	}
+}

@@ -79,7 +79,7 @@ const minCapacity = 16
 // coordinates keeping at most capacity draws and capacity batch sums per
 // chain (an odd capacity is rounded up; at least 16). Its memory is about
 // 2·capacity·chains·dim float64 values, plus the scratch of Summarize
-// (about 8·capacity·chains values once called).
+// (about 11·capacity·chains values once called; Reserve).
 func NewHistory(chains, dim, capacity int) *History {
 	if chains < 1 || dim < 1 || capacity < minCapacity {
 		panic(fmt.Sprintf("diag: NewHistory(%d, %d, %d) needs chains, dim ≥ 1 and capacity ≥ %d", chains, dim, capacity, minCapacity))
@@ -173,6 +173,25 @@ func (h *History) CopyFrom(src *History) {
 	h.batch, h.batches, h.curN = src.batch, src.batches, src.curN
 }
 
+// Reserve sizes the scratch of Summarize for a full buffer now (about
+// 11·capacity·chains values), so that summarising never needs more later:
+// a history's memory then stays flat from the start instead of growing
+// with the kept draws until the first summary of a full buffer.
+func (h *History) Reserve() {
+	n := h.chains * h.capacity
+	h.gather = growFloats(h.gather, n)
+	ws := &h.ws
+	for _, b := range []*[]float64{&ws.pool, &ws.sorted, &ws.z, &ws.fold, &ws.ind, &ws.scores, &ws.acov.dev} {
+		*b = growFloats(*b, n)
+	}
+	if cap(ws.pairs) < n {
+		ws.pairs = make([]rankPair, 0, n)
+	}
+	if cap(ws.spare) < n {
+		ws.spare = make([]rankPair, n)
+	}
+}
+
 // Steps is the number of steps added so far.
 func (h *History) Steps() int { return h.steps }
 
@@ -186,6 +205,13 @@ func (h *History) Kept() int { return h.kept }
 // on the kept draws (see the type's comment for what their ESS means), or
 // nil while fewer than 8 draws per chain are kept.
 func (h *History) Summarize() []Summary {
+	return h.SummarizeUntil(nil)
+}
+
+// SummarizeUntil is Summarize asking stop (when not nil) before each
+// coordinate; once it reports true it gives up and returns nil. For a
+// caller that no longer needs the figures.
+func (h *History) SummarizeUntil(stop func() bool) []Summary {
 	if h.kept < 2*minHalf {
 		return nil
 	}
@@ -196,6 +222,9 @@ func (h *History) Summarize() []Summary {
 	}
 	out := make([]Summary, h.dim)
 	for j := range out {
+		if stop != nil && stop() {
+			return nil
+		}
 		for c, v := range h.views {
 			for t := range v {
 				v[t] = h.buf[(t*h.chains+c)*h.dim+j]

@@ -292,3 +292,54 @@ func TestHistoryMillionSteps(t *testing.T) {
 			rho, full, run[j].ESS, run[j].Batches, run[j].Batch, sum[j].MeanESS, sum[j].BulkESS, want, kept)
 	}
 }
+
+// SummarizeUntil with a stop that never fires is Summarize; one that
+// fires gives up with nil.
+func TestSummarizeUntilStops(t *testing.T) {
+	h := NewHistory(2, 3, 64)
+	r := rand.New(rand.NewPCG(111, 113))
+	x := make([]float64, 6)
+	for range 100 {
+		for i := range x {
+			x[i] = 0.5*x[i] + r.NormFloat64()
+		}
+		h.Add(x)
+	}
+	want := h.Summarize()
+	got := h.SummarizeUntil(func() bool { return false })
+	for j := range want {
+		if got[j].Mean != want[j].Mean || got[j].BulkESS != want[j].BulkESS || got[j].Rhat.Reported != want[j].Rhat.Reported {
+			t.Errorf("coordinate %d: %+v, want %+v", j, got[j], want[j])
+		}
+	}
+	calls := 0
+	if s := h.SummarizeUntil(func() bool { calls++; return calls > 1 }); s != nil {
+		t.Errorf("stopped at the second coordinate: %d summaries, want none", len(s))
+	}
+}
+
+// Reserve sizes the summaries' scratch for a full buffer at once and
+// changes no figure: a reserved history summarises as an unreserved one,
+// bit for bit, and its scratch already holds chains·capacity values.
+func TestHistoryReserve(t *testing.T) {
+	a, b := NewHistory(3, 2, 64), NewHistory(3, 2, 64)
+	b.Reserve()
+	if n := 3 * 64; cap(b.ws.pool) < n || cap(b.ws.pairs) < n || cap(b.ws.spare) < n || cap(b.gather) < n {
+		t.Fatalf("reserved scratch: pool %d, pairs %d, spare %d, gather %d, want %d each", cap(b.ws.pool), cap(b.ws.pairs), cap(b.ws.spare), cap(b.gather), n)
+	}
+	r := rand.New(rand.NewPCG(115, 117))
+	x := make([]float64, 6)
+	for range 150 {
+		for i := range x {
+			x[i] = 0.7*x[i] + r.NormFloat64()
+		}
+		a.Add(x)
+		b.Add(x)
+	}
+	sa, sb := a.Summarize(), b.Summarize()
+	for j := range sa {
+		if sa[j] != sb[j] {
+			t.Errorf("coordinate %d: %+v reserved, %+v not", j, sb[j], sa[j])
+		}
+	}
+}

@@ -181,6 +181,6 @@ func (ws *workspace) summary(chains [][]float64) Summary {
 	s.Q05MCSE = ws.quantileMCSE(0.05, e05).mcse
 	s.Q95MCSE = ws.quantileMCSE(0.95, e95).mcse
 	s.MedianMCSE = ws.quantileMCSE(0.5, ws.indicatorESS(s.Median)).mcse
-	s.Rhat = ws.rhat() // last: it reorders ws.pairs
+	s.Rhat = ws.rhat()
 	return s
 }

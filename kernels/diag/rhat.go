@@ -49,9 +49,10 @@ type workspace struct {
 	pool   []float64   // split draws, flattened in split order
 	sorted []float64   // pool, ascending
 	pairs  []rankPair
-	z      []float64 // rank-normalised pool
-	fold   []float64 // |pool − median|, then its rank normalisation
-	ind    []float64 // indicator 1[pool ≤ q]
+	spare  []rankPair // sortPairs' scratch, then the folded draws' order
+	z      []float64  // rank-normalised pool
+	fold   []float64  // |pool − median|, then its rank normalisation
+	ind    []float64  // indicator 1[pool ≤ q]
 	views  [][]float64
 	scores []float64 // Φ⁻¹((r − 3/8)/(S_tot + 1/4)) for r = 1..S_tot
 	acov   acovScratch
@@ -99,24 +100,26 @@ func (ws *workspace) chainsOf(flat []float64) [][]float64 {
 //
 //	z = Φ⁻¹((r − 3/8) / (S_tot + 1/4)),
 //
-// tied values sharing the mean of their ranks. dst may be src.
+// tied values sharing the mean of their ranks. dst may be src. It leaves
+// ws.pairs holding src's values in ascending order with their positions.
 func (ws *workspace) rankNormal(dst, src []float64) []float64 {
-	tot := len(src)
-	dst = growFloats(dst, tot)
+	dst = growFloats(dst, len(src))
 	ws.pairs = ws.pairs[:0]
 	for i, v := range src {
 		ws.pairs = append(ws.pairs, rankPair{v, i})
 	}
 	// No NaN here (load refuses them), so < is a total order.
-	slices.SortFunc(ws.pairs, func(a, b rankPair) int {
-		if a.v < b.v {
-			return -1
-		}
-		if a.v > b.v {
-			return 1
-		}
-		return 0
-	})
+	ws.spare = sortPairs(ws.pairs, ws.spare)
+	ws.assignScores(dst, ws.pairs)
+	return dst
+}
+
+// assignScores writes into dst[p.i] the normal score of every pair's
+// average rank in sorted, which holds every value in ascending order
+// (equal values, ±0 among them, next to each other). The scores depend
+// only on the values, so any such order gives the same dst.
+func (ws *workspace) assignScores(dst []float64, sorted []rankPair) {
+	tot := len(sorted)
 	den := float64(tot) + 0.25
 	if len(ws.scores) != tot {
 		// Scores of the untied ranks 1..S_tot, shared by every call with
@@ -128,7 +131,7 @@ func (ws *workspace) rankNormal(dst, src []float64) []float64 {
 	}
 	for lo := 0; lo < tot; {
 		hi := lo + 1
-		for hi < tot && ws.pairs[hi].v == ws.pairs[lo].v {
+		for hi < tot && sorted[hi].v == sorted[lo].v {
 			hi++
 		}
 		z := ws.scores[lo]
@@ -136,12 +139,81 @@ func (ws *workspace) rankNormal(dst, src []float64) []float64 {
 			r := float64(lo+1+hi) / 2 // mean of ranks lo+1..hi
 			z = distuv.UnitNormal.Quantile((r - 0.375) / den)
 		}
-		for _, p := range ws.pairs[lo:hi] {
+		for _, p := range sorted[lo:hi] {
 			dst[p.i] = z
 		}
 		lo = hi
 	}
-	return dst
+}
+
+// radixMin is the fewest values sortPairs sorts by radix; shorter inputs
+// go to a comparison sort, cheaper there than the radix passes' counts.
+const radixMin = 256
+
+// sortPairs sorts ps by value, ascending (no NaN), and returns the
+// scratch it used (len(ps) pairs, for the next call). Above radixMin
+// values it is a least-significant-digit radix sort, one byte per pass,
+// on the order-preserving key of each value's bits (floatKey); a pass
+// whose byte is the same for every value is skipped. Equal keys keep
+// their order, and −0 comes before +0 (their keys differ; < ties them):
+// the values come out ascending as by <, so the ranks are the same as
+// any comparison sort's.
+func sortPairs(ps, spare []rankPair) []rankPair {
+	n := len(ps)
+	if n < radixMin {
+		slices.SortFunc(ps, func(a, b rankPair) int {
+			if a.v < b.v {
+				return -1
+			}
+			if a.v > b.v {
+				return 1
+			}
+			return 0
+		})
+		return spare
+	}
+	if cap(spare) < n {
+		spare = make([]rankPair, n)
+	}
+	spare = spare[:n]
+	var counts [8][256]int
+	for _, p := range ps {
+		k := floatKey(p.v)
+		for d := range counts {
+			counts[d][byte(k>>(8*d))]++
+		}
+	}
+	src, dst := ps, spare
+	for d := range counts {
+		c := &counts[d]
+		if c[byte(floatKey(ps[0].v)>>(8*d))] == n {
+			continue // every value has this byte
+		}
+		sum := 0
+		for b, v := range c {
+			c[b] = sum
+			sum += v
+		}
+		shift := uint(8 * d)
+		for _, p := range src {
+			b := byte(floatKey(p.v) >> shift)
+			dst[c[b]] = p
+			c[b]++
+		}
+		src, dst = dst, src
+	}
+	if &src[0] != &ps[0] {
+		copy(ps, src)
+	}
+	return spare
+}
+
+// floatKey maps a float64 to a uint64 whose unsigned order is the
+// float's order (−0 just below +0): the sign bit set on non-negative
+// values, every bit flipped on negative ones.
+func floatKey(v float64) uint64 {
+	b := math.Float64bits(v)
+	return b ^ (uint64(int64(b)>>63) | 1<<63)
 }
 
 // rhat computes the figures of steps 2–4 on a loaded workspace.
@@ -150,17 +222,50 @@ func (ws *workspace) rhat() RhatResult {
 	r.Classic = classicRhat(ws.split)
 	r.Bulk = classicRhat(ws.chainsOf(ws.z))
 	med := quantile7(ws.sorted, 0.5)
-	ws.fold = growFloats(ws.fold, len(ws.pool))
-	for i, v := range ws.pool {
-		ws.fold[i] = math.Abs(v - med)
+	if math.IsInf(med, 0) || math.IsNaN(med) {
+		// |θ − median| is not defined at the draws equal to an
+		// infinite median (NaN: halfway between −∞ and +∞).
+		r.Folded = math.NaN()
+	} else {
+		ws.fold = growFloats(ws.fold, len(ws.pool))
+		ws.assignScores(ws.fold, ws.foldOrder(med))
+		r.Folded = classicRhat(ws.chainsOf(ws.fold))
 	}
-	ws.fold = ws.rankNormal(ws.fold, ws.fold)
-	r.Folded = classicRhat(ws.chainsOf(ws.fold))
 	r.Reported = math.Max(r.Bulk, r.Folded)
 	if math.IsNaN(r.Bulk) || math.IsNaN(r.Folded) {
 		r.Reported = math.NaN()
 	}
 	return r
+}
+
+// foldOrder returns the pairs (|v − med|, position) of the pooled draws
+// in ascending order of |v − med|, from ws.pairs (the draws ascending, as
+// load leaves them) without sorting again: v − med is non-decreasing
+// along ws.pairs (rounding is monotone), so |v − med| falls over the
+// draws below med and rises over the rest, and merging the two runs
+// sorts them.
+func (ws *workspace) foldOrder(med float64) []rankPair {
+	ps := ws.pairs
+	n := len(ps)
+	if cap(ws.spare) < n {
+		ws.spare = make([]rankPair, n)
+	}
+	out := ws.spare[:n]
+	p := 0 // first draw ≥ med
+	for p < n && ps[p].v < med {
+		p++
+	}
+	lo, hi := p-1, p
+	for k := range out {
+		if hi == n || (lo >= 0 && med-ps[lo].v <= ps[hi].v-med) {
+			out[k] = rankPair{math.Abs(ps[lo].v - med), ps[lo].i}
+			lo--
+		} else {
+			out[k] = rankPair{math.Abs(ps[hi].v - med), ps[hi].i}
+			hi++
+		}
+	}
+	return out
 }
 
 // classicStats returns W, B and var⁺ of an M×N array (Vehtari et al. 2021, split-R̂):

@@ -3,6 +3,8 @@ package diag
 import (
 	"math"
 	"math/rand/v2"
+	"slices"
+	"sort"
 	"testing"
 
 	"gonum.org/v1/gonum/stat/distuv"
@@ -98,5 +100,121 @@ func TestRhatDetectsLocationAndScale(t *testing.T) {
 	sc := Rhat(draw(0, 3))
 	if sc.Folded < 1.05 || sc.Reported != sc.Folded {
 		t.Errorf("one chain with 3× the sd: %+v, want folded R̂ > 1.05 and reported", sc)
+	}
+}
+
+// referenceRankNormal is rankNormal as first written: a comparison sort of
+// (value, position) pairs by <, then the scores of the average ranks
+// (Vehtari et al. 2021, rank normalisation, Blom's offsets).
+func referenceRankNormal(src []float64) []float64 {
+	tot := len(src)
+	ps := make([]rankPair, tot)
+	for i, v := range src {
+		ps[i] = rankPair{v, i}
+	}
+	slices.SortFunc(ps, func(a, b rankPair) int {
+		if a.v < b.v {
+			return -1
+		}
+		if a.v > b.v {
+			return 1
+		}
+		return 0
+	})
+	den := float64(tot) + 0.25
+	dst := make([]float64, tot)
+	for lo := 0; lo < tot; {
+		hi := lo + 1
+		for hi < tot && ps[hi].v == ps[lo].v {
+			hi++
+		}
+		r := float64(lo+1+hi) / 2
+		z := distuv.UnitNormal.Quantile((r - 0.375) / den)
+		for _, p := range ps[lo:hi] {
+			dst[p.i] = z
+		}
+		lo = hi
+	}
+	return dst
+}
+
+// rankTestData draws n values with many ties, both zeros, infinities,
+// subnormals and values of every magnitude and sign.
+func rankTestData(r *rand.Rand, n int) []float64 {
+	x := make([]float64, n)
+	for i := range x {
+		switch r.IntN(8) {
+		case 0:
+			x[i] = float64(r.IntN(5) - 2) // ties among small integers
+		case 1:
+			x[i] = []float64{0, math.Copysign(0, -1), math.Inf(1), math.Inf(-1), 5e-324, -5e-324}[r.IntN(6)]
+		case 2:
+			x[i] = math.Float64frombits(r.Uint64()&^(0x7ff<<52) | uint64(r.IntN(0x7ff))<<52) // any finite bits
+		default:
+			x[i] = r.NormFloat64()
+		}
+	}
+	return x
+}
+
+// The radix sort behind rankNormal orders values as < does: the sorted
+// values equal sort.Float64s' (±0 compare equal), and the scores equal a
+// comparison sort's bit for bit, on random data with ties, ±0, infinities
+// and sizes on both sides of radixMin, up to 2·10⁵ values.
+func TestRankNormalMatchesComparisonSort(t *testing.T) {
+	r := rand.New(rand.NewPCG(21, 22))
+	var ws workspace
+	for _, n := range []int{1, 2, 7, radixMin - 1, radixMin, radixMin + 1, 1000, 4097, 200000} {
+		x := rankTestData(r, n)
+		want := referenceRankNormal(x)
+		got := ws.rankNormal(nil, x)
+		for i := range want {
+			if math.Float64bits(got[i]) != math.Float64bits(want[i]) {
+				t.Fatalf("n = %d, value %d (%v): score %v, comparison sort gives %v", n, i, x[i], got[i], want[i])
+			}
+		}
+		sorted := slices.Clone(x)
+		sort.Float64s(sorted)
+		for k, p := range ws.pairs {
+			if p.v != sorted[k] || x[p.i] != p.v {
+				t.Fatalf("n = %d, place %d: %v (from position %d), sort.Float64s has %v", n, k, p.v, p.i, sorted[k])
+			}
+		}
+	}
+}
+
+// The folded R̂ from merging the sorted draws' two runs equals the one from
+// rank-normalising |θ − median| afresh (Vehtari et al. 2021, folded R̂),
+// bit for bit, on draws with ties and both zeros.
+func TestFoldedRhatMatchesSortedFold(t *testing.T) {
+	r := rand.New(rand.NewPCG(23, 24))
+	for _, n := range []int{8, 100, 2000} {
+		chains := make([][]float64, 4)
+		for c := range chains {
+			chains[c] = make([]float64, n)
+			for i := range chains[c] {
+				chains[c][i] = float64(r.IntN(7)-3) * 0.5 // ties, and 0 at the median
+				if r.IntN(3) == 0 {
+					chains[c][i] = r.NormFloat64()
+				}
+				if chains[c][i] == 0 && r.IntN(2) == 0 {
+					chains[c][i] = math.Copysign(0, -1)
+				}
+			}
+		}
+		var ws workspace
+		if !ws.load(chains, 2) {
+			t.Fatal("load refused finite draws")
+		}
+		got := ws.rhat()
+		med := quantile7(ws.sorted, 0.5)
+		fold := make([]float64, len(ws.pool))
+		for i, v := range ws.pool {
+			fold[i] = math.Abs(v - med)
+		}
+		want := classicRhat(ws.chainsOf(referenceRankNormal(fold)))
+		if math.Float64bits(got.Folded) != math.Float64bits(want) {
+			t.Errorf("n = %d: folded R̂ %v, from a fresh sort %v", n, got.Folded, want)
+		}
 	}
 }

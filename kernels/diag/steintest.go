@@ -57,6 +57,11 @@ type SteinOptions struct {
 	// them; see AssessStein); U2, SE and Upper95 still use every draw.
 	// 0 tests on every draw.
 	BootstrapDraws int
+	// Stop, when set, is asked between rows of the Stein matrix and
+	// before the bootstrap; once it reports true the assessment gives up
+	// and returns the undefined result (State SteinUndefined, every
+	// figure NaN). For a caller that no longer needs the figures.
+	Stop func() bool
 }
 
 // SteinResult is a kernel Stein discrepancy with its uncertainty and what
@@ -210,7 +215,10 @@ func AssessStein(dim int, draws, scores []float64, opt SteinOptions, rng *rand.R
 	z, sz, scale := standardise(dim, draws, scores)
 	out.Scale = scale
 	keep, pos := testRows(n, opt.Chains, opt.BootstrapDraws)
-	k, h, q, dlog := steinMatrix(c2, beta, dim, z, sz, pos)
+	k, h, q, dlog := steinMatrixUntil(c2, beta, dim, z, sz, pos, opt.Stop)
+	if k == nil {
+		return out
+	}
 	u, psi := steinInfluence(dim, z, h, dlog)
 	se := steinSE(psi, q)
 	var acov acovScratch
@@ -227,6 +235,10 @@ func AssessStein(dim int, draws, scores []float64, opt SteinOptions, rng *rand.R
 	out.U2, out.SE, out.Block, out.TestDraws = u, se, block, k.SymmetricDim()
 	out.KSD = math.Sqrt(math.Max(u, 0))
 	out.Upper95 = math.Sqrt(math.Max(u, 0) + steinZ*se)
+	if opt.Stop != nil && opt.Stop() {
+		return SteinResult{N: n, U2: math.NaN(), SE: math.NaN(), KSD: math.NaN(), Upper95: math.NaN(), PValue: math.NaN(),
+			Kernel: out.Kernel, Block: math.NaN()}
+	}
 	out.PValue = wildBootstrapP(k, ut, opt.Chains, block, reps, rng)
 	out.State = SteinIndistinguishable
 	if out.PValue <= steinAlpha {
@@ -320,9 +332,15 @@ func offDiagonalMean(k *mat.SymDense) float64 {
 // SteinOptions.BootstrapDraws). The stream's kernel is applied in
 // standardised coordinates.
 func (st *StreamKSD) Assess(replicates, bootstrapDraws int, rng *rand.Rand) SteinResult {
+	return st.AssessUntil(replicates, bootstrapDraws, rng, nil)
+}
+
+// AssessUntil is Assess giving up once stop reports true
+// (SteinOptions.Stop); a nil stop never does.
+func (st *StreamKSD) AssessUntil(replicates, bootstrapDraws int, rng *rand.Rand, stop func() bool) SteinResult {
 	k := st.kept * st.rows * st.dim
 	return AssessStein(st.dim, st.x[:k], st.s[:k], SteinOptions{Kernel: st.kern, Chains: st.rows, Replicates: replicates,
-		BootstrapDraws: bootstrapDraws}, rng)
+		BootstrapDraws: bootstrapDraws, Stop: stop}, rng)
 }
 
 func allFinite(x []float64) bool {
@@ -365,6 +383,12 @@ func standardise(dim int, x, s []float64) (z, sz, scale []float64) {
 // variances q_i = (1/(N−1))·Σ_{j≠i} k₀(z_i, z_j)² − ĥ_i², and
 // D_l = ∂U/∂log σ_l for every coordinate l (see steinScaleDerivative).
 func steinMatrix(c2, beta float64, dim int, z, sz []float64, pos []int) (k *mat.SymDense, h, q, dlog []float64) {
+	return steinMatrixUntil(c2, beta, dim, z, sz, pos, nil)
+}
+
+// steinMatrixUntil is steinMatrix asking stop (when not nil) before each
+// row; it returns nil values once stop reports true.
+func steinMatrixUntil(c2, beta float64, dim int, z, sz []float64, pos []int, stop func() bool) (k *mat.SymDense, h, q, dlog []float64) {
 	n := len(z) / dim
 	d := float64(dim)
 	m := n
@@ -380,6 +404,9 @@ func steinMatrix(c2, beta float64, dim int, z, sz []float64, pos []int) (k *mat.
 	raw := k.RawSymmetric()
 	h, q, dlog = make([]float64, n), make([]float64, n), make([]float64, dim)
 	for i := range n {
+		if stop != nil && stop() {
+			return nil, nil, nil, nil
+		}
 		zi, si := z[i*dim:(i+1)*dim], sz[i*dim:(i+1)*dim]
 		for j := i + 1; j < n; j++ {
 			zj, sj := z[j*dim:(j+1)*dim], sz[j*dim:(j+1)*dim]

@@ -417,3 +417,28 @@ func TestWindowCopies(t *testing.T) {
 	cp.Add(make([]float64, rows*dim), make([]float64, rows*dim)) // the copy works on its own
 	hc.Add(make([]float64, rows*dim))
 }
+
+// A stop that never fires changes nothing (the same figures, bit for bit);
+// one that fires gives up with the undefined result, whether it fires at
+// the first row of the Stein matrix or only before the bootstrap.
+func TestAssessUntilStops(t *testing.T) {
+	const dim, rows = 2, 3
+	r := rand.New(rand.NewPCG(107, 109))
+	st := NewStreamKSD(IMQ{}, dim, rows, 60)
+	for range 20 {
+		x, s := normalSample(r, rows, dim, 0.2, 1)
+		st.Add(x, s)
+	}
+	want := st.Assess(49, 0, rand.New(rand.NewPCG(5, 5)))
+	got := st.AssessUntil(49, 0, rand.New(rand.NewPCG(5, 5)), func() bool { return false })
+	if got.U2 != want.U2 || got.SE != want.SE || got.PValue != want.PValue || got.State != want.State {
+		t.Errorf("with a stop that never fires: %+v, want %+v", got, want)
+	}
+	for _, after := range []int{0, 60} { // asked once per row (60), then before the bootstrap
+		calls := 0
+		stopped := st.AssessUntil(49, 0, rand.New(rand.NewPCG(5, 5)), func() bool { calls++; return calls > after })
+		if stopped.State != SteinUndefined || !math.IsNaN(stopped.U2) || !math.IsNaN(stopped.PValue) || stopped.Below(math.Inf(1)) {
+			t.Errorf("stopped after %d calls: %+v, want the undefined result", after, stopped)
+		}
+	}
+}

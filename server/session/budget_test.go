@@ -208,3 +208,41 @@ func TestDrawLogGrowsAsItFills(t *testing.T) {
 		t.Fatal("reading a dropped row succeeded")
 	}
 }
+
+// A ring restored part-way (its first row at sequence number 1000, not at
+// an index of its own) still grows without losing or moving a row: every
+// row read back after growing past two sizes equals the row appended with
+// that sequence number.
+func TestDrawLogGrowsAfterARestore(t *testing.T) {
+	const dim, capacity = 2, 1000
+	row := func(q uint64) []float64 { return []float64{float64(q), float64(q) / 3} }
+	fs := followState{First: 1000, Next: 1300}
+	for q := fs.First; q < fs.Next; q++ {
+		fs.Values = append(fs.Values, row(q)...)
+		fs.Chains = append(fs.Chains, int(q%4))
+		fs.Iterations = append(fs.Iterations, int64(q))
+	}
+	l := NewDrawLog(dim, capacity)
+	if err := l.restore(&fs, fs.Next); err != nil {
+		t.Fatal(err)
+	}
+	seq := fs.Next
+	for seq < 2200 { // 512 rows held → 1000
+		d := Draws{Seq: seq, Rows: 1, Dim: dim, Values: row(seq), Chains: []int{int(seq % 4)}, Iterations: []int64{int64(seq)}}
+		l.append(&d)
+		seq++
+	}
+	first, next := l.Span()
+	if next != seq || next-first != capacity {
+		t.Fatalf("span [%d, %d), want the last %d of %d", first, next, capacity, seq)
+	}
+	for q := first; q < next; q++ {
+		d, err := l.Read(context.Background(), q, 1)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if want := row(q); d.Values[0] != want[0] || d.Values[1] != want[1] || d.Iterations[0] != int64(q) || d.Chains[0] != int(q%4) {
+			t.Fatalf("row %d: %v (iteration %d, chain %d), want %v", q, d.Values, d.Iterations[0], d.Chains[0], want)
+		}
+	}
+}

@@ -180,9 +180,11 @@ type sessionState struct {
 	Guarantee    *guaranteeState
 	Finished     *Finished
 	LastProgress time.Duration // since start
-	// The verdict's cadence and divergence watch.
-	JudgeNext, SteinNext int
-	Divergence           *divergence
+	// The verdict's cadence and divergence watch. JudgedAt is the step of
+	// the latest judgement (0 in states written before it was kept: the
+	// cadence then counts the steps since the start).
+	JudgeNext, SteinNext, JudgedAt int
+	Divergence                     *divergence
 }
 
 type noiseState struct {
@@ -281,7 +283,7 @@ func (s *Session) snapshot(fin *Finished) (Checkpoint, error) {
 	st := sessionState{ID: s.id, Token: s.persist.token, RequestID: s.requestID, Used: s.used, Seq: s.seq, Kept: s.kept,
 		Steps: s.kernel.Steps(), Phase: s.phase, Elapsed: time.Since(s.start), Count: s.count, Mean: s.mean, M2: s.m2,
 		EpsSteps: s.epsSteps, Finished: fin, LastProgress: s.lastProgress.Sub(s.start),
-		JudgeNext: s.judgeNext, SteinNext: s.steinNext, Divergence: s.div,
+		JudgeNext: s.judgeNext, SteinNext: s.steinNext, JudgedAt: s.judgedAt, Divergence: s.div,
 		Noise: noiseState{Sum: s.noise.sum, Count: s.noise.count, N: s.noise.n, Mean: s.noise.mean, M2: s.noise.m2, Touched: s.noise.touched}}
 	if g := s.guarantee; g != nil {
 		st.Guarantee = &guaranteeState{Noise: g.setting.Noise, H: g.h, K0: g.k0, Planned: g.planned, Replan: g.replan,
@@ -462,7 +464,7 @@ func Restore(state []byte, lim Limits) (*Session, error) {
 		}
 	}
 	s.persist.token = st.Token
-	s.judgeNext, s.steinNext = st.JudgeNext, st.SteinNext
+	s.judgeNext, s.steinNext, s.judgedAt = st.JudgeNext, st.SteinNext, st.JudgedAt
 	if st.Divergence != nil {
 		s.div = st.Divergence
 	}
@@ -595,7 +597,7 @@ func (l *DrawLog) tail() followState {
 	fs := followState{First: l.first, Next: l.next, Values: make([]float64, n*l.dim), Chains: make([]int, n), Iterations: make([]int64, n)}
 	for r := range n {
 		i := int((l.first + uint64(r)) % uint64(len(l.chains)))
-		copy(fs.Values[r*l.dim:], l.vals[i*l.dim:(i+1)*l.dim])
+		copy(fs.Values[r*l.dim:], l.row(i))
 		fs.Chains[r], fs.Iterations[r] = l.chains[i], l.iters[i]
 	}
 	return fs
@@ -620,7 +622,7 @@ func (l *DrawLog) restore(fs *followState, seq uint64) error {
 	}
 	for r := skip; r < n; r++ {
 		i := int(l.next % uint64(len(l.chains)))
-		copy(l.vals[i*l.dim:(i+1)*l.dim], fs.Values[r*uint64(l.dim):(r+1)*uint64(l.dim)])
+		copy(l.row(i), fs.Values[r*uint64(l.dim):(r+1)*uint64(l.dim)])
 		l.chains[i], l.iters[i] = fs.Chains[r], fs.Iterations[r]
 		l.next++
 	}
@@ -705,7 +707,7 @@ func (l *DrawLog) readKept(from uint64, max int) (Draws, error) {
 	d := Draws{Seq: from, Rows: n, Dim: l.dim, Values: make([]float64, n*l.dim), Chains: make([]int, n), Iterations: make([]int64, n)}
 	for r := range n {
 		i := int((from + uint64(r)) % uint64(len(l.chains)))
-		copy(d.Values[r*l.dim:], l.vals[i*l.dim:(i+1)*l.dim])
+		copy(d.Values[r*l.dim:], l.row(i))
 		d.Chains[r], d.Iterations[r] = l.chains[i], l.iters[i]
 	}
 	return d, nil

@@ -28,8 +28,8 @@ type DrawLog struct {
 	head         Header
 
 	mu     sync.Mutex
-	vals   []float64 // size×dim ring, size = len(chains) ≤ capRows
-	chains []int
+	vals   [][]float64 // the ring's values, size×dim, in chunks of logChunkRows rows (the last may be shorter)
+	chains []int       // size = len(chains) ≤ capRows rows
 	iters  []int64
 	first  uint64 // sequence number of the oldest row kept
 	next   uint64 // sequence number of the next row appended
@@ -101,12 +101,24 @@ func NewDrawLog(dim, capacity int) *DrawLog {
 		panic(fmt.Sprintf("session: DrawLog of dim %d, capacity %d", dim, capacity))
 	}
 	n := min(capacity, initialLogRows)
-	return &DrawLog{dim: dim, capRows: capacity, vals: make([]float64, n*dim),
+	return &DrawLog{dim: dim, capRows: capacity, vals: [][]float64{make([]float64, n*dim)},
 		chains: make([]int, n), iters: make([]int64, n), wake: make(chan struct{})}
 }
 
-// initialLogRows is the ring's first size.
-const initialLogRows = 256
+// initialLogRows is the ring's first size; logChunkRows the rows of one
+// chunk of its values (the first size, so that the ring's sizes before
+// the capacity are whole chunks).
+const (
+	initialLogRows = 256
+	logChunkRows   = initialLogRows
+)
+
+// row is the values of ring row i.
+func (l *DrawLog) row(i int) []float64 {
+	c := l.vals[i/logChunkRows]
+	j := (i % logChunkRows) * l.dim
+	return c[j : j+l.dim]
+}
 
 // Bytes is the memory the ring holds now.
 func (l *DrawLog) Bytes() int64 {
@@ -116,17 +128,36 @@ func (l *DrawLog) Bytes() int64 {
 }
 
 // grow doubles the ring (within the capacity), keeping every row at the
-// index its sequence number maps to in the new size.
+// index its sequence number maps to in the new size. While the ring has
+// dropped nothing since the start, every row kept is at the index of its
+// sequence number in both sizes: the values stay where they are, in their
+// chunks, the new rows' chunks are added, and only the small per-row
+// arrays are copied. After a restore that started the ring part-way, the
+// rows are moved to their new indices.
 func (l *DrawLog) grow() {
 	old := len(l.chains)
 	n := min(2*old, l.capRows)
-	vals, chains, iters := make([]float64, n*l.dim), make([]int, n), make([]int64, n)
+	chains, iters := make([]int, n), make([]int64, n)
+	if l.first == l.next || l.next <= uint64(old) {
+		for lo := old; lo < n; lo += logChunkRows {
+			l.vals = append(l.vals, make([]float64, (min(n, lo+logChunkRows)-lo)*l.dim))
+		}
+		copy(chains, l.chains)
+		copy(iters, l.iters)
+		l.chains, l.iters = chains, iters
+		return
+	}
+	prev := &DrawLog{dim: l.dim, vals: l.vals}
+	l.vals = nil
+	for lo := 0; lo < n; lo += logChunkRows {
+		l.vals = append(l.vals, make([]float64, (min(n, lo+logChunkRows)-lo)*l.dim))
+	}
 	for q := l.first; q < l.next; q++ {
 		i, j := int(q%uint64(old)), int(q%uint64(n))
-		copy(vals[j*l.dim:(j+1)*l.dim], l.vals[i*l.dim:(i+1)*l.dim])
+		copy(l.row(j), prev.row(i))
 		chains[j], iters[j] = l.chains[i], l.iters[i]
 	}
-	l.vals, l.chains, l.iters = vals, chains, iters
+	l.chains, l.iters = chains, iters
 }
 
 // Capacity is the most rows the log keeps.
@@ -145,7 +176,7 @@ func (l *DrawLog) append(d *Draws) {
 			l.grow()
 		}
 		i := int(l.next % uint64(len(l.chains)))
-		copy(l.vals[i*l.dim:(i+1)*l.dim], d.Values[r*l.dim:(r+1)*l.dim])
+		copy(l.row(i), d.Values[r*l.dim:(r+1)*l.dim])
 		l.chains[i] = d.Chains[r]
 		l.iters[i] = d.Iterations[r]
 		l.next++
@@ -227,7 +258,7 @@ func (l *DrawLog) Read(ctx context.Context, from uint64, max int) (Draws, error)
 			d := Draws{Seq: from, Rows: n, Dim: l.dim, Values: make([]float64, n*l.dim), Chains: make([]int, n), Iterations: make([]int64, n)}
 			for r := range n {
 				i := int((from + uint64(r)) % uint64(len(l.chains)))
-				copy(d.Values[r*l.dim:], l.vals[i*l.dim:(i+1)*l.dim])
+				copy(d.Values[r*l.dim:], l.row(i))
 				d.Chains[r], d.Iterations[r] = l.chains[i], l.iters[i]
 			}
 			l.mu.Unlock()

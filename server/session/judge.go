@@ -3,6 +3,7 @@ package session
 import (
 	"math"
 	"math/rand/v2"
+	"sync/atomic"
 
 	"sluice/kernels/diag"
 )
@@ -54,16 +55,20 @@ type judgement struct {
 	params      []ParameterDiagnostics
 	spread      float64
 	spreadName  string
+	// dropped is set when the judgement's figures will never be applied
+	// (judge replaced them): it gives up at its next coordinate or row.
+	dropped atomic.Bool
 }
 
 // judgeScratch is the memory, in float64 values, a judgement needs beyond
 // the monitor's windows: the snapshots of the windows (the same sizes
-// again) and the Stein assessment's standardised draws and scores, its
-// tested matrix and the bootstrap's multipliers and products.
+// again) with the summaries' scratch (diag.History.Reserve), and the
+// Stein assessment's standardised draws and scores, its tested matrix and
+// the bootstrap's multipliers and products.
 func judgeScratch(dim, chains int) float64 {
 	ksdCap, _, histChains, histCap := monitorSizes(dim, chains)
 	m := float64(min(ksdCap, 2*steinTestDraws))
-	return 2*float64(ksdCap*dim) + 2*float64(histChains*histCap*dim) + // snapshots
+	return 2*float64(ksdCap*dim) + 2*float64(histChains*histCap*dim) + 11*float64(histChains*histCap) + // snapshots
 		2*float64(ksdCap*dim) + m*m + 2*m*steinFinalReplicates // assessment
 }
 
@@ -71,7 +76,7 @@ func judgeScratch(dim, chains int) float64 {
 func (j *judgement) compute() {
 	j.assessed, j.measured = false, false
 	if j.stein && j.ksd.Kept() >= 2 {
-		r := j.ksd.Assess(j.reps, steinTestDraws, rand.New(rand.NewPCG(j.seed, uint64(j.step))))
+		r := j.ksd.AssessUntil(j.reps, steinTestDraws, rand.New(rand.NewPCG(j.seed, uint64(j.step))), j.dropped.Load)
 		j.steinRep = SteinReport{KSD: r.KSD, U2: r.U2, SE: r.SE, Upper95: r.Upper95, PValue: r.PValue, Draws: r.N, State: r.State}
 		j.lastKSD = -1
 		if r.State != diag.SteinUndefined {
@@ -79,7 +84,7 @@ func (j *judgement) compute() {
 		}
 		j.assessed = true
 	}
-	sum := j.hist.Summarize()
+	sum := j.hist.SummarizeUntil(j.dropped.Load)
 	if sum == nil {
 		return
 	}
@@ -134,8 +139,9 @@ func (m *monitor) apply(j *judgement) {
 // bootstrap replicates, the Stein assessment only when stein is set. A
 // pending judgement is applied first, as at a cadence point, unless this
 // one replaces every figure it would set: then it is dropped without
-// waiting for it (it goes on with its own snapshots and results; the
-// next start makes new ones), so the end does not pay for both.
+// waiting for it (it stops at its next coordinate or row of the Stein
+// matrix, with its own snapshots and results; the next start makes new
+// ones), so the end does not pay for both.
 func (m *monitor) judge(seed uint64, step int, stein bool, reps int) {
 	if m.now == nil {
 		m.now = &judgement{}
@@ -145,6 +151,7 @@ func (m *monitor) judge(seed uint64, step int, stein bool, reps int) {
 	j.hist, j.ksd, j.chainSum, j.chainN = m.hist, m.ksd, m.chainSum, m.chainN
 	j.compute()
 	if m.done != nil && j.assessed && j.measured {
+		m.bg.dropped.Store(true) // its goroutine stops at its next coordinate or row
 		m.done, m.bg = nil, nil
 	}
 	m.collect()
@@ -161,6 +168,7 @@ func (m *monitor) start(seed uint64, step int, stein bool) {
 	if m.bg.hist == nil { // the snapshots, made once
 		ksdCap, ksdChains, histChains, histCap := monitorSizes(m.dim, m.chains)
 		m.bg.hist, m.bg.ksd = diag.NewHistory(histChains, m.dim, histCap), diag.NewStreamKSD(diag.IMQ{}, m.dim, ksdChains, ksdCap)
+		m.bg.hist.Reserve() // the summaries' scratch at once, not as the judged windows grow
 		m.bg.chainSum = make([]float64, len(m.chainSum))
 	}
 	j := m.bg
@@ -234,19 +242,88 @@ func (m *monitor) restorePending(p *pendingState) {
 	m.done = done
 }
 
+// The judgement's cost model, in nanoseconds of one core, measured on
+// the 2-core development machine (December 2026) with the windows of the
+// three shapes of `sluice bench` (8 × 10, 64 × 100, 64 × 1000; AR(0.9)
+// draws; BenchmarkJudgeCostModel prints the model beside the measured
+// time, within a factor of 0.7 to 1.6 there) and the bare gRPC echo of
+// the same bytes (`sluice bench`: about 20–45 µs at 8 × 10, 170–300 µs at
+// 64 × 100, 750–1200 µs at 64 × 1000 per round trip): the summaries cost
+// about judgeValueNS per value of the kept window; the Stein assessment
+// about steinPairNS + steinPairDimNS·dim per pair of the window's draws
+// and steinBootNS per tested pair and bootstrap replicate; a step, with a
+// gradient that costs nothing, at least stepNS plus stepValueNS per value
+// sent each way. The model is a function of the windows' sizes only, so
+// the cadence it sets (paidFor) depends on the step count alone.
+const (
+	judgeValueNS   = 150
+	steinPairNS    = 10
+	steinPairDimNS = 1.5
+	steinBootNS    = 0.5
+	stepNS         = 20000
+	stepValueNS    = 10
+)
+
+// judgeWork is the model's cost of a judgement of the live windows, with
+// the Stein assessment when stein, with reps replicates.
+func (m *monitor) judgeWork(stein bool, reps int) float64 {
+	_, ksdChains, histChains, _ := monitorSizes(m.dim, m.chains)
+	var w float64
+	if m.hist.Kept() >= 8 { // with fewer, Summarize returns at once
+		w = judgeValueNS * float64(m.hist.Kept()) * float64(histChains*m.dim)
+	}
+	// The assessment needs 8 draws and 4 rounds of the chains
+	// (diag.AssessStein); with fewer it returns at once.
+	if n := float64(m.ksd.Kept()); stein && n >= 8 && m.ksd.Kept()/ksdChains >= 4 {
+		t := min(n, steinTestDraws)
+		w += (steinPairNS+steinPairDimNS*float64(m.dim))*n*(n-1)/2 + steinBootNS*t*t*float64(reps)
+	}
+	return w
+}
+
+// stepWork is the model's least cost of one step of the session.
+func (s *Session) stepWork() float64 {
+	return stepNS + stepValueNS*float64(s.spec.Chains*s.spec.Dim)
+}
+
+// paidFor reports whether a judgement may start at step k of a session
+// that judges in the background, and whether it takes in the Stein
+// assessment (due when stein). With a target, always, as due: the
+// session's stopping rests on the figures. With no target the figures
+// only inform the reports and the verdict until the final judgement,
+// which measures them afresh, and a judgement starts only once the steps
+// since the latest one have paid for it: its modelled cost (judgeWork) is
+// at most Limits.DiagnosticsShare of their least work (stepWork). The
+// Stein assessment waits when only the summaries are paid for. So at
+// every step, the judgements started so far have cost at most that share
+// of the steps before them (by the model) however large the windows are
+// next to the steps, as in a short session of many chains × dim values,
+// which is then judged only at its end; and what starts when depends on
+// the step count alone.
+func (s *Session) paidFor(k int, stein bool) (withStein, ok bool) {
+	if s.spec.Wants.any() {
+		return stein, true
+	}
+	paid := s.lim.DiagnosticsShare * float64(k-s.judgedAt) * s.stepWork()
+	if stein && s.mon.judgeWork(true, steinReplicates) <= paid {
+		return true, true
+	}
+	return false, s.mon.judgeWork(false, 0) <= paid
+}
+
 // judgeCadence returns the steps of the next judgement and of the next
 // Stein assessment after a judgement at step k (with one when stein).
 // With a negative Limits.DiagnosticsShare (tests), every step (every
-// ProgressEverySteps), the Stein assessment every quarter of growth. Else
-// after 20 steps, then: when a target rests on
-// the figures (every target does, through the verdict), whenever the
-// steps have grown by a tenth, so that a session stops within about a
-// tenth of the step where its targets first hold; with no target the
-// figures only inform the reports, and they are judged whenever the steps
-// have grown by a half. The Stein assessment decides a target only with
-// max_ksd (the bias check fails only then): every quarter of growth with
-// it, every doubling without. A run of K steps therefore pays for
-// O(log K) judgements, each bounded by the windows' sizes.
+// ProgressEverySteps), the Stein assessment every quarter of growth.
+// Else after 20 steps, then whenever the steps have grown by a tenth
+// when a target rests on the figures (every target does, through the
+// verdict), so that a session stops within about a tenth of the step
+// where its targets first hold; by a half with no target, and then once
+// the steps have paid for the judgement (paidFor). The Stein assessment
+// decides a target only with max_ksd (the bias check fails only then):
+// it is due once the steps have grown by a quarter with it, by a doubling
+// without. A run of K steps therefore pays for O(log K) judgements, each
+// bounded by the windows' sizes.
 func (s *Session) judgeCadence(k int, stein bool) (judgeNext, steinNext int) {
 	w := s.spec.Wants
 	steinNext = s.steinNext
@@ -260,9 +337,8 @@ func (s *Session) judgeCadence(k int, stein bool) (judgeNext, steinNext int) {
 	if s.lim.DiagnosticsShare < 0 {
 		return k + max(1, int(s.spec.ProgressEverySteps)), steinNext
 	}
-	grow := 2 // a half
 	if w.any() {
-		grow = 10
+		return k + max(20, k/10), steinNext // a tenth
 	}
-	return k + max(20, k/grow), steinNext
+	return k + max(20, k/2), steinNext // a half
 }

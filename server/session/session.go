@@ -70,6 +70,7 @@ type Session struct {
 	div       *divergence
 	judgeNext int
 	steinNext int
+	judgedAt  int // the step of the latest judgement
 	gradCheck *gradientCheckPhase
 	// mode is the mode search that starts a TV guarantee's chains
 	// (modesearch.go); nil when none runs.
@@ -627,7 +628,9 @@ func (s *Session) complete(r *run, req *kernels.Request) *Error {
 // while Limits.DiagnosticsShare is negative (tests); else pipelined
 // (judge.go: judged in the background on snapshots, applied at the next
 // cadence point), after 20 steps, then whenever the steps have grown by a
-// tenth when a target rests on the figures, by half otherwise.
+// tenth when a target rests on the figures, by half otherwise, and then,
+// with no target, once the steps since the latest judgement have paid for
+// the next (paidFor).
 func (s *Session) stepped() {
 	k := s.kernel.Steps()
 	if s.spec.Noise.Stochastic {
@@ -640,8 +643,13 @@ func (s *Session) stepped() {
 	if s.lim.DiagnosticsShare < 0 {
 		s.mon.judge(s.spec.Seed, k, stein, steinReplicates)
 	} else {
+		var ok bool
+		if stein, ok = s.paidFor(k, stein); !ok {
+			return // not yet: asked again after the next step
+		}
 		s.mon.start(s.spec.Seed, k, stein)
 	}
+	s.judgedAt = k
 	s.judgeNext, s.steinNext = s.judgeCadence(k, stein)
 }
 

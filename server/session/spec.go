@@ -181,9 +181,11 @@ type Limits struct {
 	AnswerTimeout time.Duration
 	// ProgressInterval is the default Progress cadence (default 1 s).
 	ProgressInterval time.Duration
-	// DiagnosticsShare is the largest share of a session's wall time its
-	// measured diagnostics may take (default 0.1); negative means no cap
-	// (tests that need every report measured).
+	// DiagnosticsShare is the largest share of a session's least work
+	// (its steps with a gradient that costs nothing, by the cost model of
+	// judge.go) its measured diagnostics may take when no target rests on
+	// them (default 0.1; judgeCadence); negative means every step is
+	// judged at once (tests that need every report measured).
 	DiagnosticsShare float64
 	// FollowBuffer is how many of its latest draws (rows) each session
 	// keeps for followers, capped at 64 MiB of values per session; 0 means
