@@ -4,6 +4,7 @@ import (
 	"math"
 	"math/rand/v2"
 	"sync/atomic"
+	"time"
 
 	"sluice/kernels/diag"
 )
@@ -17,10 +18,13 @@ import (
 // to 2048 draws), so on the cadence it is pipelined: at a cadence point
 // the windows are copied into reused snapshots and judged in a goroutine,
 // and the figures are applied at the next cadence point, waiting for the
-// goroutine if it has not finished. What is applied, and when, depends
-// only on the step count, so the figures and every decision taken on them
-// are the same however fast the client answers; the cost hides behind the
-// client's evaluations when they are slow, the case the service is for.
+// goroutine if it has not finished. With a target, what is applied, and
+// when, depends only on the step count, so the figures and every decision
+// taken on them are the same however fast the client answers; with none,
+// no decision rests on the mid-run figures, and a client slow enough to
+// pay for judgements by wall time gets them sooner (paidFor). The cost
+// hides behind the client's evaluations when they are slow, the case the
+// service is for.
 
 // Bootstrap sizes of the Stein test (diag.AssessStein): 199 replicates on
 // the cadence (p-values in steps of 1/200, enough for a test at 5 %), 499
@@ -291,20 +295,28 @@ func (s *Session) stepWork() float64 {
 // assessment (due when stein). With a target, always, as due: the
 // session's stopping rests on the figures. With no target the figures
 // only inform the reports and the verdict until the final judgement,
-// which measures them afresh, and a judgement starts only once the steps
-// since the latest one have paid for it: its modelled cost (judgeWork) is
-// at most Limits.DiagnosticsShare of their least work (stepWork). The
-// Stein assessment waits when only the summaries are paid for. So at
-// every step, the judgements started so far have cost at most that share
-// of the steps before them (by the model) however large the windows are
-// next to the steps, as in a short session of many chains × dim values,
-// which is then judged only at its end; and what starts when depends on
-// the step count alone.
+// which measures them afresh, and a judgement starts only once it is paid
+// for: its modelled cost (judgeWork) is at most Limits.DiagnosticsShare
+// of the steps since the latest one, counted as the larger of their least
+// work by the model (stepWork) and the wall time they took. The first
+// measure depends on the step count alone and bounds the judgements'
+// share of a server whose client answers at once (a short session of many
+// chains × dim values is then judged only at its end); the second lets a
+// session whose gradients cost seconds, the case the service is for, see
+// its figures at the growth cadence from its first steps, since its steps
+// pay for any judgement many times over. So with no target which steps
+// a mid-run judgement falls on may depend on the client's speed; the
+// draws, the ending and the final figures never do. The Stein assessment
+// waits when only the summaries are paid for.
 func (s *Session) paidFor(k int, stein bool) (withStein, ok bool) {
 	if s.spec.Wants.any() {
 		return stein, true
 	}
-	paid := s.lim.DiagnosticsShare * float64(k-s.judgedAt) * s.stepWork()
+	work := float64(k-s.judgedAt) * s.stepWork()
+	if !s.judgedTime.IsZero() {
+		work = math.Max(work, float64(time.Since(s.judgedTime).Nanoseconds()))
+	}
+	paid := s.lim.DiagnosticsShare * work
 	if stein && s.mon.judgeWork(true, steinReplicates) <= paid {
 		return true, true
 	}

@@ -3,6 +3,7 @@ package session
 import (
 	"fmt"
 	"math/rand/v2"
+	"slices"
 	"testing"
 	"time"
 )
@@ -46,5 +47,49 @@ func BenchmarkJudgeCostModel(b *testing.B) {
 				})
 			}
 		}
+	}
+}
+
+// A session with no target whose client takes at least 2 ms per answer
+// (an expensive gradient, the case the service is for) sees measured
+// figures in its progress from early on: its steps pay for the
+// judgements by wall time (paidFor), where the step-count model alone,
+// which assumes a gradient that costs nothing, would wait about 16 000
+// steps at 8 × 10. A slower machine only makes the steps dearer, so the
+// check cannot fail for load. The draws equal those of a client that
+// answers at once (the figures' cadence is all that differs).
+func TestSlowClientSeesFiguresEarly(t *testing.T) {
+	const dim, chains = 10, 8
+	spec := Spec{Dim: dim, Chains: chains, Start: make([]float64, dim), StartRows: 1, Step: 0.1, Seed: 21,
+		BurnIn: 10, DrawsPerChain: 150, ProgressEverySteps: 10}
+	var first int64 = -1
+	var draws [2][]float64
+	for i, delay := range []time.Duration{2 * time.Millisecond, 0} {
+		o := gaussian(1)
+		slow := func(p *Points, ev *Evaluations) {
+			time.Sleep(delay)
+			o(p, ev)
+		}
+		tr, _, err := drive(t, mustNew(t, spec, Limits{}), slow)
+		if err != nil {
+			t.Fatal(err)
+		}
+		for _, d := range tr.draws {
+			draws[i] = append(draws[i], d.Values...)
+		}
+		if i == 0 {
+			for _, p := range tr.progress {
+				if len(p.Parameters) > 0 && p.Parameters[0].BulkESS > 0 {
+					first = p.Steps
+					break
+				}
+			}
+		}
+	}
+	if first < 0 || first > 120 {
+		t.Fatalf("first measured progress at step %d, want by step 120 of 160", first)
+	}
+	if len(draws[0]) == 0 || !slices.Equal(draws[0], draws[1]) {
+		t.Fatal("draws depend on the client's speed")
 	}
 }

@@ -71,7 +71,10 @@ type Session struct {
 	judgeNext int
 	steinNext int
 	judgedAt  int // the step of the latest judgement
-	gradCheck *gradientCheckPhase
+	// judgedTime is when the latest judgement started (or the sampling,
+	// before the first); zero until then.
+	judgedTime time.Time
+	gradCheck  *gradientCheckPhase
 	// mode is the mode search that starts a TV guarantee's chains
 	// (modesearch.go); nil when none runs.
 	mode *modeSearchPhase
@@ -345,6 +348,7 @@ func broken(err error) outcome {
 func (s *Session) begin(ctx context.Context, in <-chan Message, send func(Frame) error) *run {
 	s.start = time.Now()
 	s.lastProgress = s.start
+	s.judgedTime = s.start
 	var before time.Duration // wall time spent before a restore
 	if st := s.persist.restored; st != nil {
 		before = st.Elapsed
@@ -630,7 +634,7 @@ func (s *Session) complete(r *run, req *kernels.Request) *Error {
 // cadence point), after 20 steps, then whenever the steps have grown by a
 // tenth when a target rests on the figures, by half otherwise, and then,
 // with no target, once the steps since the latest judgement have paid for
-// the next (paidFor).
+// the next, by the cost model or by wall time (paidFor).
 func (s *Session) stepped() {
 	k := s.kernel.Steps()
 	if s.spec.Noise.Stochastic {
@@ -649,7 +653,7 @@ func (s *Session) stepped() {
 		}
 		s.mon.start(s.spec.Seed, k, stein)
 	}
-	s.judgedAt = k
+	s.judgedAt, s.judgedTime = k, time.Now()
 	s.judgeNext, s.steinNext = s.judgeCadence(k, stein)
 }
 
