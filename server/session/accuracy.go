@@ -270,10 +270,15 @@ const maxKSDPoints = 2048
 // evenly spaced chains.
 func monitorSizes(dim, chains int) (ksdCap, ksdChains, histChains, histCap int) {
 	// The U-statistic costs O(K²·dim) on K kept draws: keep K near
-	// √(5·10⁷/dim), at most maxKSDPoints, and at least two rounds of the
-	// chains it follows (at most half of maxKSDPoints of them).
-	ksdChains = min(chains, maxKSDPoints/2)
-	ksdCap = max(2*ksdChains, min(int(math.Sqrt(5e7/float64(dim))), maxKSDPoints))
+	// √(5·10⁷/dim), at most maxKSDPoints, and room for at least eight
+	// rounds of the chains it follows: the window halves its rounds when
+	// full (diag.StreamKSD), so it then still holds four, the fewest
+	// diag.AssessStein assesses (its dependence correction needs them).
+	// So it follows at most an eighth of K chains (evenly spread), and at
+	// least two.
+	base := min(int(math.Sqrt(5e7/float64(dim))), maxKSDPoints)
+	ksdChains = min(chains, max(2, base/8))
+	ksdCap = max(8*ksdChains, base)
 	// The rank-normalised figures of Vehtari et al. (2021) sort every
 	// coordinate's kept draws: keep about 10⁶ values in all (about 0.3 s
 	// to summarise), between 16 and 4096 draws per chain, from at most

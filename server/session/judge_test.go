@@ -6,6 +6,8 @@ import (
 	"slices"
 	"testing"
 	"time"
+
+	"sluice/kernels/diag"
 )
 
 // BenchmarkJudgeCostModel times judgements of the monitor's windows at
@@ -91,5 +93,30 @@ func TestSlowClientSeesFiguresEarly(t *testing.T) {
 	}
 	if len(draws[0]) == 0 || !slices.Equal(draws[0], draws[1]) {
 		t.Fatal("draws depend on the client's speed")
+	}
+}
+
+// The Stein window has room for eight rounds of the chains it follows, so
+// that after it halves its rounds (diag.StreamKSD) it holds four, the
+// fewest diag.AssessStein assesses, at every shape: before, 64 chains ×
+// dim 1000 had room for 3.5 rounds and the assessment was never defined.
+// And such a session's final report carries a defined one.
+func TestSteinWindowHoldsFourRounds(t *testing.T) {
+	for _, c := range [][2]int{{1, 1}, {8, 10}, {64, 100}, {64, 1000}, {512, 1000}, {4, 100000}, {2048, 3}} {
+		ksdCap, ksdChains, _, _ := monitorSizes(c[1], c[0])
+		if ksdChains < 1 || ksdChains > c[0] || ksdCap < 8*ksdChains || ksdCap > max(maxKSDPoints, 16) {
+			t.Errorf("chains %d dim %d: window of %d draws from %d chains", c[0], c[1], ksdCap, ksdChains)
+		}
+	}
+	const dim, chains = 1000, 64
+	spec := Spec{Dim: dim, Chains: chains, Start: make([]float64, dim), StartRows: 1, Step: 0.1, Seed: 22,
+		BurnIn: 20, DrawsPerChain: 300}
+	_, res, err := drive(t, mustNew(t, spec, Limits{}), gaussian(1))
+	if err != nil {
+		t.Fatal(err)
+	}
+	st := res.Finished.Progress.Stein
+	if st == nil || st.State == diag.SteinUndefined {
+		t.Fatalf("final Stein assessment at %d × %d: %+v, want a defined one", chains, dim, st)
 	}
 }
