@@ -215,7 +215,7 @@ func (s *Server) resume(stream sluicev1.SluiceService_SessionServer, r *sluicev1
 		s.mu.Lock()
 		s.unsuspendLocked(id)
 		s.mu.Unlock()
-		s.dropExpired(ctx, id)
+		s.dropExpired(ctx, id, rec.Updated)
 		return notFound()
 	}
 	sess, err := session.Restore(rec.State, s.opts.Limits)

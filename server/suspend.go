@@ -239,23 +239,24 @@ func (s *Server) expire(id string, sp *suspension) {
 	if running {
 		return
 	}
-	st := s.opts.State.withDefaults()
 	ctx, cancel := context.WithTimeout(context.Background(), storeTimeout)
 	defer cancel()
-	rec, err := st.Store.Get(ctx, id)
-	if err != nil || !rec.LeaseUntil.IsZero() || !rec.Updated.Equal(sp.updated) {
-		return // gone, or resumed since the release
-	}
-	s.dropExpired(ctx, id)
+	s.dropExpired(ctx, id, sp.updated)
 }
 
 // dropExpired deletes the record of a suspended session whose grace
-// passed.
-func (s *Server) dropExpired(ctx context.Context, id string) {
+// passed, written at updated, only if it is still that record with its
+// lease released (store.DeleteReleased, one step): a replica that resumed
+// or wrote it since keeps it.
+func (s *Server) dropExpired(ctx context.Context, id string, updated time.Time) {
 	st := s.opts.State.withDefaults()
-	if err := st.Store.Delete(ctx, id); err != nil {
+	done, err := st.Store.DeleteReleased(ctx, id, updated)
+	if err != nil {
 		s.log.Warn("expired session's checkpoint not deleted", zap.String("session", id), zap.Error(err))
 		return
+	}
+	if !done {
+		return // gone, or resumed or written since the release
 	}
 	s.log.Info("suspended session expired: its client did not resume it within the grace; state deleted",
 		zap.String("session", id), zap.Duration("grace", st.SuspendGrace))

@@ -205,6 +205,44 @@ func testConformance(t *testing.T, newReplicas replicas) {
 		mustGet(t, s, "t", "y", 1, "")
 	})
 
+	// DeleteReleased removes a record only with its lease released and
+	// only as it was read: a replica that took or wrote the record since
+	// keeps it (the expiry of a suspended session).
+	t.Run("delete released", func(t *testing.T) {
+		s := fresh(t)
+		get := func() store.Record {
+			t.Helper()
+			r, err := s.Get(ctx, "s")
+			if err != nil {
+				t.Fatal(err)
+			}
+			return r
+		}
+		if done, err := s.DeleteReleased(ctx, "nobody", time.Now()); done || err != nil {
+			t.Fatalf("DeleteReleased of a missing id: %v, %v", done, err)
+		}
+		mustPut(t, s, "s", store.Record{State: []byte("x"), Seq: 1, Owner: "a", LeaseUntil: time.Now().Add(hour)})
+		if done, err := s.DeleteReleased(ctx, "s", get().Updated); done || err != nil {
+			t.Fatalf("DeleteReleased under a live lease: %v, %v", done, err)
+		}
+		if err := s.Renew(ctx, "s", "a", time.Time{}); err != nil { // released
+			t.Fatal(err)
+		}
+		read := get().Updated
+		time.Sleep(2 * time.Millisecond) // the store's clock moves past read (microseconds)
+		mustPut(t, s, "s", store.Record{State: []byte("y"), Seq: 2}) // written since the read
+		if done, err := s.DeleteReleased(ctx, "s", read); done || err != nil {
+			t.Fatalf("DeleteReleased of a record written since it was read: %v, %v", done, err)
+		}
+		mustGet(t, s, "s", "y", 2, "")
+		if done, err := s.DeleteReleased(ctx, "s", get().Updated); !done || err != nil {
+			t.Fatalf("DeleteReleased of a released record as read: %v, %v", done, err)
+		}
+		if _, err := s.Get(ctx, "s"); !errors.Is(err, store.ErrNotFound) {
+			t.Fatalf("Get after DeleteReleased: %v, want ErrNotFound", err)
+		}
+	})
+
 	t.Run("sweep", func(t *testing.T) {
 		s := fresh(t)
 		past, future := time.Now().Add(-time.Minute), time.Now().Add(hour)

@@ -139,6 +139,34 @@ func (f *File) Delete(ctx context.Context, id string) error {
 	return f.db.Update(func(tx *bolt.Tx) error { return tx.Bucket(bucket).Delete([]byte(id)) })
 }
 
+// DeleteReleased implements Store.
+func (f *File) DeleteReleased(ctx context.Context, id string, updated time.Time) (bool, error) {
+	if err := checkID(id); err != nil {
+		return false, err
+	}
+	if err := ctx.Err(); err != nil {
+		return false, err
+	}
+	done := false
+	err := f.db.Update(func(tx *bolt.Tx) error {
+		b := tx.Bucket(bucket)
+		v := b.Get([]byte(id))
+		if v == nil {
+			return nil
+		}
+		cur, err := decode(v, false)
+		if err != nil {
+			return fmt.Errorf("store: record %q: %w", id, err)
+		}
+		if !cur.LeaseUntil.IsZero() || !cur.Updated.Equal(micro(updated)) {
+			return nil
+		}
+		done = true
+		return b.Delete([]byte(id))
+	})
+	return done, err
+}
+
 // Sweep implements Store. It reads every record's header in one
 // transaction.
 func (f *File) Sweep(ctx context.Context, before time.Time) (int, error) {

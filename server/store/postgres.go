@@ -178,6 +178,19 @@ func (p *Postgres) Delete(ctx context.Context, id string) error {
 	return nil
 }
 
+// DeleteReleased implements Store.
+func (p *Postgres) DeleteReleased(ctx context.Context, id string, updated time.Time) (bool, error) {
+	if err := checkID(id); err != nil {
+		return false, err
+	}
+	tag, err := p.pool.Exec(ctx, `DELETE FROM `+Table+` WHERE id = $1 AND lease_until IS NULL AND updated = $2`,
+		id, updated.Truncate(time.Microsecond))
+	if err != nil {
+		return false, fmt.Errorf("store: postgres delete: %w", err)
+	}
+	return tag.RowsAffected() == 1, nil
+}
+
 // Sweep implements Store.
 func (p *Postgres) Sweep(ctx context.Context, before time.Time) (int, error) {
 	tag, err := p.pool.Exec(ctx, `DELETE FROM `+Table+` WHERE updated < $1

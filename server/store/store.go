@@ -28,6 +28,11 @@ type Store interface {
 	// Delete removes the record under id; deleting a missing id is not an
 	// error.
 	Delete(ctx context.Context, id string) error
+	// DeleteReleased removes the record under id only if its lease is
+	// released (LeaseUntil zero) and it was last written at updated, in one
+	// step, so that a session another replica took or wrote since it was
+	// read is never removed. It reports whether it removed the record.
+	DeleteReleased(ctx context.Context, id string, updated time.Time) (bool, error)
 	// Sweep deletes every record written before the given time whose lease
 	// has expired, and returns how many it deleted.
 	Sweep(ctx context.Context, before time.Time) (int, error)
