@@ -229,7 +229,7 @@ func testConformance(t *testing.T, newReplicas replicas) {
 			t.Fatal(err)
 		}
 		read := get().Updated
-		time.Sleep(2 * time.Millisecond) // the store's clock moves past read (microseconds)
+		time.Sleep(2 * time.Millisecond)                             // the store's clock moves past read (microseconds)
 		mustPut(t, s, "s", store.Record{State: []byte("y"), Seq: 2}) // written since the read
 		if done, err := s.DeleteReleased(ctx, "s", read); done || err != nil {
 			t.Fatalf("DeleteReleased of a record written since it was read: %v, %v", done, err)
