@@ -47,6 +47,7 @@ from __future__ import annotations
 
 import argparse
 import asyncio
+import concurrent.futures as cf
 import importlib.util
 import json
 import queue
@@ -97,7 +98,8 @@ def load_baseline(directory: str) -> Any:
 
 
 def through_sluice(target: str, grad: Callable[[np.ndarray], np.ndarray], dim: int, chains: int,
-                   step: float, steps: int, keep_every: int, limit: int, client: Any = sc) -> Dict[str, float]:
+                   step: float, steps: int, keep_every: int, limit: int, client: Any = sc,
+                   executor: Any = None) -> Dict[str, float]:
     spec = client.Spec(dim=dim, chains=chains, start=np.zeros(dim), step=step, keep_every=keep_every,
                    draws_per_chain=steps // keep_every, seed=1, max_message_bytes=limit)
     got = [0]
@@ -106,7 +108,8 @@ def through_sluice(target: str, grad: Callable[[np.ndarray], np.ndarray], dim: i
         got[0] += d.rows
 
     t0, c0, s0 = time.perf_counter(), time.process_time(), server_cpu()
-    summary = client.run(target, spec, grad, on_draws=on_draws, timeout=600, keep_draws=False)
+    extra: Dict[str, Any] = {} if executor is None else {"executor": executor, "split": 1}
+    summary = client.run(target, spec, grad, on_draws=on_draws, timeout=600, keep_draws=False, **extra)
     seconds, cpu, server = time.perf_counter() - t0, time.process_time() - c0, server_cpu() - s0
     done = (client.FinishReason.DRAWS_COLLECTED, client.FinishReason.CHECK_FAILED)
     if summary.reason not in done or got[0] != chains * (steps // keep_every):
@@ -234,6 +237,9 @@ def main() -> int:
                     help="also measure bare loops on other grpcio request paths")
     ap.add_argument("--baseline", default="",
                     help="directory holding another sluice_client package, measured in the same rounds")
+    ap.add_argument("--threads", type=int, default=0,
+                    help="also measure the client with executor=ThreadPoolExecutor(N), split=1 (frames of "
+                         "pipelined chain groups evaluated at the same time), in the same rounds")
     ap.add_argument("--server-pid", type=int, default=0,
                     help="the server's process id: also report its CPU time per step (Linux /proc)")
     ap.add_argument("--json", action="store_true")
@@ -265,10 +271,14 @@ def main() -> int:
     if base is not None:
         through_sluice(args.target, grad, args.dim, args.chains, args.step, 20, 1, args.max_message_bytes, base)
     in_process(grad, args.dim, args.chains, args.step, 20, 1)
+    pool = cf.ThreadPoolExecutor(args.threads) if args.threads > 0 else None
+    if pool is not None:
+        through_sluice(args.target, grad, args.dim, args.chains, args.step, 20, 1, args.max_message_bytes,
+                       executor=pool)
     paths = {"sync_queue": bare_sync_queue, "aio": bare_aio} if args.request_paths else {}
     for run in paths.values():
         run(args.target, grad, args.dim, args.chains, args.step, 20, args.max_message_bytes)
-    remote, local, baseline = [], [], []
+    remote, local, baseline, threaded = [], [], [], []
     bare: Dict[str, list] = {name: [] for name in paths}
     for _ in range(args.repeats):
         if base is not None:
@@ -277,6 +287,9 @@ def main() -> int:
         remote.append(through_sluice(args.target, grad, args.dim, args.chains, args.step, args.steps,
                                      args.keep_every, args.max_message_bytes))
         local.append(in_process(grad, args.dim, args.chains, args.step, args.local_steps, args.keep_every))
+        if pool is not None:
+            threaded.append(through_sluice(args.target, grad, args.dim, args.chains, args.step, args.steps,
+                                           args.keep_every, args.max_message_bytes, executor=pool))
         for name, run in paths.items():
             bare[name].append(run(args.target, grad, args.dim, args.chains, args.step, args.steps,
                                   args.max_message_bytes))
@@ -323,6 +336,14 @@ def main() -> int:
         out["baseline_client_fraction"] = float(np.median([b / a for a, b in zip(base_ms, local_ms)]))
         # How much faster this client is than the baseline, per round.
         out["speedup_over_baseline"] = float(np.median([a / b for a, b in zip(base_ms, remote_ms)]))
+    if pool is not None:
+        pool.shutdown()
+        thr_ms = [r["seconds"] / r["steps"] * 1e3 for r in threaded]
+        out["threads"] = args.threads
+        out["threads_ms_per_step"] = float(np.median(thr_ms))
+        out["threads_ms_per_step_rounds"] = thr_ms
+        out["threads_cpu_ms_per_step"] = cpu_ms(threaded)
+        out["threads_client_fraction"] = float(np.median([b / a for a, b in zip(thr_ms, local_ms)]))
     if args.json:
         print(json.dumps(out))
     else:
@@ -338,6 +359,10 @@ def main() -> int:
         print(f"  CPU per step: client process {out['sluice_cpu_ms_per_step']:.3f} ms, numpy loop "
               f"{out['numpy_cpu_ms_per_step']:.3f} ms"
               + (f", server {out['server_cpu_ms_per_step']:.3f} ms" if SERVER_PID else ""))
+        if pool is not None:
+            print(f"  through sluice, executor=ThreadPoolExecutor({args.threads}), split=1: "
+                  f"{out['threads_ms_per_step']:.3f} ms per step (client at {out['threads_client_fraction']:.2f} "
+                  f"of in-process), CPU {out['threads_cpu_ms_per_step']:.3f} ms")
         for name in bare:
             print(f"  bare loop, {name:10s}: {out[f'bare_{name}_ms_per_step']:.3f} ms per step")
         if base is not None:

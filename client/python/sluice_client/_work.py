@@ -42,6 +42,7 @@ class _Worker:
     on the Attach stream."""
 
     _answer = Session._answer
+    _evaluate = Session._evaluate
     _simple = Session._simple
     _split_batch = Session._split_batch
     _hold = Session._hold

@@ -19,8 +19,9 @@ import os
 import shutil
 import subprocess
 import sys
+import threading
 import unittest
-from typing import List, Optional, Tuple
+from typing import Callable, Iterator, List, Optional, Tuple
 
 import numpy as np
 
@@ -259,3 +260,143 @@ class MPIExecutorTests(unittest.TestCase):
 
 if __name__ == "__main__":
     unittest.main()
+
+
+class _PipelinedCall:
+    """Stands in for a gRPC stream whose server has several requests out
+    at once (pipelined chain groups, Register.chain_groups): it plays
+    every frame without waiting for answers, and collects the client's
+    answers (one per Points frame, in the order the client sends them, or
+    up to its Stop) before the Finished frame."""
+
+    def __init__(self, requests: Iterator[object], script: List[pb.SessionResponse], serialize: Callable[[object], bytes]) -> None:
+        self._requests = requests
+        self._script = script
+        self._serialize = serialize
+        self.sent: List[pb.SessionRequest] = []
+
+    def _next(self) -> pb.SessionRequest:
+        return pb.SessionRequest.FromString(self._serialize(next(self._requests)))
+
+    def __iter__(self) -> Iterator[pb.SessionResponse]:
+        self.sent.append(self._next())
+        out = 0
+        for frame in self._script:
+            kind = frame.WhichOneof("frame")
+            if kind == "finished":
+                # Every answer, or up to the client's Stop.
+                while out > 0:
+                    m = self._next()
+                    self.sent.append(m)
+                    if m.WhichOneof("frame") == "stop":
+                        break
+                    out -= 1
+                out = 0
+            yield frame
+            if kind == "points":
+                out += 1
+
+    def cancel(self) -> bool:
+        return True
+
+
+class _PipelinedChannel(_ScriptedChannel):
+    def stream_stream(self, method: str, request_serializer: Callable[[object], bytes],
+                      response_deserializer: object) -> object:
+        def start(requests: Iterator[object], timeout: Optional[float] = None) -> _PipelinedCall:
+            self.call = _PipelinedCall(requests, self.script, request_serializer)  # type: ignore[assignment]
+            return self.call  # type: ignore[return-value]
+
+        return start
+
+
+def two_groups() -> List[pb.SessionResponse]:
+    """Two requests out at once: chains 0-1 (request 1) and 2-4 (request 2)."""
+    frames = [_REGISTERED, _points(X[:2], [pb.QUANTITY_GRADIENT]), _points(X[2:], [pb.QUANTITY_GRADIENT]), _FINISHED]
+    frames[1].points.request_id, frames[2].points.request_id = 1, 2
+    frames[2].points.chains[:] = [2, 3, 4]
+    return frames
+
+
+class FrameOverlapTests(unittest.TestCase):
+    """With an executor the session evaluates the requests of pipelined
+    chain groups at the same time, and sends the answers in the order of
+    their frames, the bytes of the same frames answered one at a time."""
+
+    def reference(self) -> List[bytes]:
+        ch = _PipelinedChannel(two_groups())
+        sc.run(ch, spec4(), em.grad)  # type: ignore[arg-type]
+        return sent(ch)
+
+    def test_two_frames_in_evaluation_at_once(self) -> None:
+        want = self.reference()
+        self.assertEqual([pb.SessionRequest.FromString(m).evaluations.request_id for m in want], [1, 2])
+        # Each call waits at a barrier for the other: the session passes
+        # only if both frames are being evaluated at the same time (a
+        # session that answers one frame at a time breaks the barrier
+        # after its timeout, which raises).
+        meet = threading.Barrier(2, timeout=60)
+
+        def grad(x: np.ndarray) -> np.ndarray:
+            meet.wait()
+            return em.grad(x)
+
+        ch = _PipelinedChannel(two_groups())
+        with cf.ThreadPoolExecutor(2) as threads:
+            sc.run(ch, spec4(), grad, executor=threads, split=1)  # type: ignore[arg-type]
+        self.assertEqual(sent(ch), want)
+
+    def test_answers_go_in_frame_order(self) -> None:
+        want = self.reference()
+        # The first frame's evaluation ends only after the second's has
+        # returned: its answer is still sent first.
+        second_done = threading.Event()
+
+        def grad(x: np.ndarray) -> np.ndarray:
+            if x.shape[0] == 2:
+                if not second_done.wait(60):
+                    raise AssertionError("the second frame was not evaluated while the first waited")
+                return em.grad(x)
+            g = em.grad(x)
+            second_done.set()
+            return g
+
+        ch = _PipelinedChannel(two_groups())
+        with cf.ThreadPoolExecutor(2) as threads:
+            sc.run(ch, spec4(), grad, executor=threads, split=1)  # type: ignore[arg-type]
+        self.assertEqual(sent(ch), want)
+
+    def test_error_in_one_frame_stops_and_raises(self) -> None:
+        def grad(x: np.ndarray) -> np.ndarray:
+            if x.shape[0] == 3:
+                raise em.ModelFailure("solver diverged")
+            return em.grad(x)
+
+        ch = _PipelinedChannel(two_groups())
+        with cf.ThreadPoolExecutor(2) as threads, self.assertRaises(em.ModelFailure):
+            sc.run(ch, spec4(), grad, executor=threads, split=1)  # type: ignore[arg-type]
+        kinds = [m.WhichOneof("frame") for m in ch.call.sent[1:]]  # type: ignore[union-attr]
+        self.assertIn("stop", kinds)
+
+    def test_live_two_groups_identical_draws(self) -> None:
+        # The live server with two chain groups: the draws with frames
+        # evaluated at the same time on a thread pool equal those of the
+        # session answering one frame at a time, bit for bit.
+        target = require_target()
+
+        def session(executor: Optional[cf.Executor]) -> Tuple[np.ndarray, np.ndarray]:
+            spec = sc.Spec(dim=4, chains=6, start=np.full(4, 0.5), step=0.2, burn_in=10, draws_per_chain=60,
+                           seed=99, chain_groups=2)
+            kw = {} if executor is None else {"executor": executor, "split": 1}
+            s = sc.run(target, spec, em.grad, timeout=DEADLINE_SECONDS, **kw)  # type: ignore[arg-type]
+            if s.reason not in (sc.FinishReason.DRAWS_COLLECTED, sc.FinishReason.CHECK_FAILED):
+                raise AssertionError(f"{s.reason} {s.message}")
+            assert s.draws is not None and s.draw_chains is not None
+            return s.draws, s.draw_chains
+
+        wd, wc = session(None)
+        with cf.ThreadPoolExecutor(2) as threads:
+            gd, gc = session(threads)
+        self.assertEqual(wd.shape, (6 * 60, 4))
+        np.testing.assert_array_equal(gc, wc)
+        np.testing.assert_array_equal(gd, wd)  # bit for bit
