@@ -438,7 +438,7 @@ func (s *Session) guaranteeChecks() []Check {
 		}
 		for i, p := range s.mon.params {
 			if cd != nil {
-				v += p.SD * p.SD / cd[i*len(s.mon.params)+i]
+				v += p.SD * p.SD / cd[i*s.spec.Dim+i]
 				continue
 			}
 			v += p.SD * p.SD
