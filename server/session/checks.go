@@ -423,9 +423,9 @@ func (s *Session) guaranteeChecks() []Check {
 	c := Check{Name: "guarantee", Status: CheckPass, Figure: b.Total,
 		Message: fmt.Sprintf("the %s bound %.4g rests on %s; %s", g.metric, b.Total, g.theorem(), g.startText())}
 	metric := s.declaredMetric()
-	if metric != nil {
+	if metric != nil && g.metric == bound.W2 {
 		// A W2 bound with a declared metric is a distance between the laws
-		// of y = L⁻¹x (C = L·Lᵀ).
+		// of y = L⁻¹x (C = L·Lᵀ); TV is the same in any coordinates.
 		c.Message = "in the declared metric's units (the distance ‖L⁻¹(x − x′)‖, C = L·Lᵀ): " + c.Message
 	}
 	if g.metric != 0 && g.metric.String() == "W2" && s.mon.measured && (metric == nil || metric.Kind() == kernels.DiagonalMetric) {
