@@ -502,26 +502,11 @@ func choose(rule tuneRule, m, bigM float64, prev, prevM float64, tol float64, gi
 		// (derived here: as γ → 0 its trace is 2 − (ωh)², stable only
 		// below ωh = 2), so that an M̂ the probe underestimates leaves a
 		// margin.
-		s.inverseMass = 1 / hi
-		uWhy := "1/(1.1·M̂): the stiffest direction oscillates at ω = 1"
-		if given.inverseMass > 0 {
-			s.inverseMass, uWhy = given.inverseMass, "given by the client"
-		}
-		crit := 2 * math.Sqrt(s.inverseMass*lo)
-		ceil := func(float64) float64 { return 1 / math.Sqrt(s.inverseMass*hi) }
-		family := func(g float64) func(h float64) scheme {
-			return func(h float64) scheme { return kineticScheme(h, g, s.inverseMass) }
-		}
-		gWhy := fmt.Sprintf("the friction, on a grid from critical damping of the slowest direction 2√(u·m̂) = %.4g (%s) to that of the stiffest, 2√(u·1.1M̂), with the smallest worst-case autocorrelation time at its largest step meeting the tolerance", crit, mText)
-		if given.friction > 0 {
-			s.friction, gWhy = given.friction, "given by the client"
-			s.step = largestStep(family(s.friction), lo, hi, ceil(0), tol)
-		} else {
-			s.friction, s.step = bestFree(crit, 2*math.Sqrt(s.inverseMass*hi), family, lo, hi, ceil, tol)
-		}
+		var why [2]string
+		s, why = dampedSettings(kineticScheme, lo, hi, mText, "at its largest step meeting the tolerance", tol, given)
 		out = append(out,
-			Choice{"inverse_mass", s.inverseMass, uWhy},
-			Choice{"friction", s.friction, gWhy},
+			Choice{"inverse_mass", s.inverseMass, why[0]},
+			Choice{"friction", s.friction, why[1]},
 			Choice{"step", s.step, "largest step with the " + tolText +
 				"; on a Gaussian this integrator is lmc at step u·h/γ, so it gains little over lmc: the baoab kernel samples the same dynamics with a step bound only by stability"})
 	case ruleSplitting:
@@ -534,30 +519,16 @@ func choose(rule tuneRule, m, bigM float64, prev, prevM float64, tol float64, gi
 		// stable (the verdict's stability check watches the curvature seen
 		// as the run goes on). On a non-Gaussian target the error is of
 		// order h², which the bias and mixing checks watch.
-		s.inverseMass = 1 / hi
-		uWhy := "1/(1.1·M̂): the stiffest direction oscillates at ω = 1"
-		if given.inverseMass > 0 {
-			s.inverseMass, uWhy = given.inverseMass, "given by the client"
-		}
-		crit := 2 * math.Sqrt(s.inverseMass*lo)
-		ceil := func(float64) float64 { return 1 / math.Sqrt(s.inverseMass*hi) }
-		family := func(g float64) func(h float64) scheme {
-			return func(h float64) scheme { return baoabScheme(h, g, s.inverseMass) }
-		}
-		gWhy := fmt.Sprintf("the friction, on a grid from critical damping of the slowest direction 2√(u·m̂) = %.4g (%s) to that of the stiffest, 2√(u·1.1M̂), with the smallest worst-case autocorrelation time at the step below", crit, mText)
-		if given.friction > 0 {
-			s.friction, gWhy = given.friction, "given by the client"
-			s.step = largestStep(family(s.friction), lo, hi, ceil(0), tol)
-		} else {
-			s.friction, s.step = bestFree(crit, 2*math.Sqrt(s.inverseMass*hi), family, lo, hi, ceil, tol)
-		}
+		var why [2]string
+		s, why = dampedSettings(baoabScheme, lo, hi, mText, "at the step below", tol, given)
+		ceil := 1 / math.Sqrt(s.inverseMass*hi)
 		stepWhy := "ω_max·h = 1 with ω_max = √(u·1.1M̂), half the splitting's stability limit ω·h < 2 (its stationary position variance on a Gaussian is exact at every stable step)"
-		if s.step < ceil(0) {
+		if s.step < ceil {
 			stepWhy = "largest step with the " + tolText
 		}
 		out = append(out,
-			Choice{"inverse_mass", s.inverseMass, uWhy},
-			Choice{"friction", s.friction, gWhy},
+			Choice{"inverse_mass", s.inverseMass, why[0]},
+			Choice{"friction", s.friction, why[1]},
 			Choice{"step", s.step, stepWhy})
 	case ruleMidpoint:
 		// The friction is 2, so the inverse mass sets both the time unit
@@ -591,6 +562,38 @@ func choose(rule tuneRule, m, bigM float64, prev, prevM float64, tol float64, gi
 		out = append(out, Choice{"step", s.step, reason})
 	}
 	return s, out
+}
+
+// dampedSettings chooses the inverse mass, friction and step of a kinetic
+// integrator whose step on a Gaussian direction is step(h, γ, u): u =
+// 1/(1.1·M̂) unless given (the stiffest direction then oscillates at
+// ω = 1), and γ on a grid from critical damping of the slowest direction,
+// 2√(u·m̂), to that of the stiffest, 2√(u·1.1M̂), the value with the
+// smallest worst-case autocorrelation time at its largest step meeting
+// the tolerance, capped at ω_max·h = 1 (unless given). stepText says in
+// the friction's reason which step it was scored at. It returns the
+// settings and the reasons for u and γ.
+func dampedSettings(step func(h, g, u float64) scheme, lo, hi float64, mText, stepText string, tol float64, given settings) (settings, [2]string) {
+	var s settings
+	var why [2]string
+	s.inverseMass, why[0] = 1/hi, "1/(1.1·M̂): the stiffest direction oscillates at ω = 1"
+	if given.inverseMass > 0 {
+		s.inverseMass, why[0] = given.inverseMass, "given by the client"
+	}
+	u := s.inverseMass
+	crit := 2 * math.Sqrt(u*lo)
+	ceil := func(float64) float64 { return 1 / math.Sqrt(u*hi) }
+	family := func(g float64) func(h float64) scheme {
+		return func(h float64) scheme { return step(h, g, u) }
+	}
+	why[1] = fmt.Sprintf("the friction, on a grid from critical damping of the slowest direction 2√(u·m̂) = %.4g (%s) to that of the stiffest, 2√(u·1.1M̂), with the smallest worst-case autocorrelation time %s", crit, mText, stepText)
+	if given.friction > 0 {
+		s.friction, why[1] = given.friction, "given by the client"
+		s.step = largestStep(family(s.friction), lo, hi, ceil(0), tol)
+	} else {
+		s.friction, s.step = bestFree(crit, 2*math.Sqrt(u*hi), family, lo, hi, ceil, tol)
+	}
+	return s, why
 }
 
 // Verdict says whether a step is unstable for the curvature seen.
