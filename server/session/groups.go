@@ -52,7 +52,8 @@ type groups struct {
 	// open is the last step whose requests may go out.
 	open int
 	// leave is set when the session must step every chain together again
-	// (a worker attached): no step is opened any more.
+	// (a worker attached, or the automatic choice found lock step faster:
+	// review): no step is opened any more.
 	leave bool
 	srcs  []drawSource
 	// abandoned holds the ids of requests out when the pipeline ended;
@@ -65,6 +66,14 @@ type groups struct {
 	sentAt, answeredAt time.Time
 	wait, work         time.Duration
 	timed              int
+	// Timing of whole steps in groups (from one step every chain has
+	// completed to the next), for the automatic choice's second look:
+	// lastStep is when the latest completed, stepped the time since the
+	// first, steps how many; judged is set once the choice was reviewed.
+	lastStep time.Time
+	stepped  time.Duration
+	steps    int
+	judged   bool
 }
 
 // groupsFor is the number of groups the session steps its chains in from
@@ -102,6 +111,36 @@ func (g *groups) auto() int {
 		return 1
 	}
 	return 2
+}
+
+// groupedReviewSteps is how many whole steps in groups, and lock-step
+// steps before them, the automatic choice times before it reviews itself;
+// groupedSlower is how much slower a step in groups must be than one in
+// lock step for the session to go back to lock step.
+const (
+	groupedReviewSteps = 16
+	groupedSlower      = 1.1
+)
+
+// review is the automatic choice's second look, after groupedReviewSteps
+// whole steps in groups: when a step in groups took groupedSlower times a
+// lock-step one or more, pipelining does not pay here (the client's cost
+// per request does not shrink with its rows, or client and server share
+// the cores), and the session steps every chain together again. Groups
+// never change the draws a chain gets, so this choice, unlike the
+// sampling's decisions, may rest on wall time.
+func (g *groups) review(now time.Time) (back bool) {
+	if !g.lastStep.IsZero() {
+		g.stepped += now.Sub(g.lastStep)
+		g.steps++
+	}
+	g.lastStep = now
+	if g.judged || g.steps < groupedReviewSteps || g.timed < groupedReviewSteps {
+		return false
+	}
+	g.judged = true
+	lock := float64(g.wait+g.work) / float64(g.timed)
+	return float64(g.stepped)/float64(g.steps) >= groupedSlower*lock
 }
 
 // timeSent and timeAnswered measure the lock-step requests of kernel
@@ -410,6 +449,9 @@ func (s *Session) tellGroup(g *chainGroup) *Error {
 // the step's draws, which refer to each group's latest request.
 func (s *Session) groupsStepped(r *run) (outcome, bool, bool) {
 	k := s.kernel.Steps()
+	if s.spec.ChainGroups == 0 && s.grp.review(time.Now()) {
+		s.grp.leave = true // the automatic choice's second look: lock step is faster
+	}
 	if s.div.observe(s.kernel.Positions(), k) {
 		return failed(s.divergedError(k)), true, false
 	}

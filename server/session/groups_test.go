@@ -280,3 +280,39 @@ func TestChainGroupsCheckpointAndResume(t *testing.T) {
 		}
 	}
 }
+
+// The automatic choice's second look (groups.review), on synthetic
+// times: after 16 lock-step steps of 1 ms (wait 0.8, work 0.2) and 16
+// whole steps in groups, it goes back to lock step when a step in groups
+// took 2 ms (a client whose cost per request does not shrink with its
+// rows pays it once per group), and stays in groups at 0.6 ms; it looks
+// once, and not before it has timed both.
+func TestGroupsReviewTheirChoice(t *testing.T) {
+	for _, c := range []struct {
+		grouped time.Duration
+		back    bool
+	}{{2 * time.Millisecond, true}, {600 * time.Microsecond, false}, {1090 * time.Microsecond, false}} {
+		var g groups
+		g.wait, g.work, g.timed = 16*800*time.Microsecond, 16*200*time.Microsecond, 16
+		t0 := time.Unix(0, 0)
+		var back bool
+		for i := 0; i <= groupedReviewSteps; i++ {
+			if i < groupedReviewSteps && g.judged {
+				t.Fatalf("reviewed after %d steps", i)
+			}
+			back = g.review(t0.Add(time.Duration(i) * c.grouped))
+		}
+		if back != c.back || !g.judged {
+			t.Fatalf("grouped step %v against lock step 1 ms: back %v (judged %v), want %v", c.grouped, back, g.judged, c.back)
+		}
+		if g.review(t0.Add(time.Hour)) {
+			t.Fatal("reviewed twice")
+		}
+	}
+	var g groups // no lock-step timing: no review
+	for i := 0; i <= 2*groupedReviewSteps; i++ {
+		if g.review(time.Unix(int64(i), 0)) || g.judged {
+			t.Fatal("reviewed without lock-step timing")
+		}
+	}
+}
