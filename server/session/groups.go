@@ -101,13 +101,14 @@ func (s *Session) groupsFor() int {
 // time pipelining could hide is smaller than what the extra messages cost.
 const autoGroupShare = 0.05
 
-// auto chooses the number of groups from the measured times: 2 when the
-// engine's work between an answer and the next points is at least
-// autoGroupShare of the time the client takes to answer (two groups hide
-// the shorter of the two behind the longer; more only add messages), and
-// when nothing was measured yet; else 1.
+// auto chooses the number of groups from the measured times: 1 until
+// groupedReviewSteps lock-step steps were timed (the review compares the
+// groups against them); then 2 when the engine's work between an answer
+// and the next points is at least autoGroupShare of the time the client
+// takes to answer (two groups hide the shorter of the two behind the
+// longer; more only add messages), else 1.
 func (g *groups) auto() int {
-	if g.timed > 0 && float64(g.work) < autoGroupShare*float64(g.wait) {
+	if g.timed < groupedReviewSteps || float64(g.work) < autoGroupShare*float64(g.wait) {
 		return 1
 	}
 	return 2
