@@ -56,6 +56,11 @@ func TestStepAllocatesNothing(t *testing.T) {
 			in <- Message{Evaluations: ev}
 			return nil
 		}
+		// The cadence of judgements with no target counts wall time too
+		// (paidFor): frozen here, so that a slow machine cannot start a
+		// judgement inside a measured step.
+		frozen := time.Now()
+		s.judgeClock = func() time.Time { return frozen }
 		r := s.begin(context.Background(), in, send)
 		step := func() {
 			if _, stop := s.shouldStop(r); stop {
@@ -158,6 +163,8 @@ func TestGroupStepAllocatesNothing(t *testing.T) {
 		in <- Message{Evaluations: &evs[i]}
 		return nil
 	}
+	frozen := time.Now()
+	s.judgeClock = func() time.Time { return frozen }
 	r := s.begin(context.Background(), in, send)
 	defer r.stop()
 	req := s.next()

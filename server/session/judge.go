@@ -290,6 +290,14 @@ func (s *Session) stepWork() float64 {
 	return stepNS + stepValueNS*float64(s.spec.Chains*s.spec.Dim)
 }
 
+// judgeNow is the wall time the judgement cadence counts.
+func (s *Session) judgeNow() time.Time {
+	if s.judgeClock != nil {
+		return s.judgeClock()
+	}
+	return time.Now()
+}
+
 // paidFor reports whether a judgement may start at step k of a session
 // that judges in the background, and whether it takes in the Stein
 // assessment (due when stein). With a target, always, as due: the
@@ -314,7 +322,7 @@ func (s *Session) paidFor(k int, stein bool) (withStein, ok bool) {
 	}
 	work := float64(k-s.judgedAt) * s.stepWork()
 	if !s.judgedTime.IsZero() {
-		work = math.Max(work, float64(time.Since(s.judgedTime).Nanoseconds()))
+		work = math.Max(work, float64(s.judgeNow().Sub(s.judgedTime).Nanoseconds()))
 	}
 	paid := s.lim.DiagnosticsShare * work
 	if stein && s.mon.judgeWork(true, steinReplicates) <= paid {

@@ -74,6 +74,11 @@ type Session struct {
 	// judgedTime is when the latest judgement started (or the sampling,
 	// before the first); zero until then.
 	judgedTime time.Time
+	// judgeClock reads the wall time the judgement cadence counts
+	// (paidFor); nil reads time.Now. Tests that count a step's
+	// allocations freeze it, so that a slow machine does not start a
+	// judgement inside a measured step.
+	judgeClock func() time.Time
 	gradCheck  *gradientCheckPhase
 	// mode is the mode search that starts a TV guarantee's chains
 	// (modesearch.go); nil when none runs.
@@ -348,7 +353,7 @@ func broken(err error) outcome {
 func (s *Session) begin(ctx context.Context, in <-chan Message, send func(Frame) error) *run {
 	s.start = time.Now()
 	s.lastProgress = s.start
-	s.judgedTime = s.start
+	s.judgedTime = s.judgeNow()
 	var before time.Duration // wall time spent before a restore
 	if st := s.persist.restored; st != nil {
 		before = st.Elapsed
@@ -653,7 +658,7 @@ func (s *Session) stepped() {
 		}
 		s.mon.start(s.spec.Seed, k, stein)
 	}
-	s.judgedAt, s.judgedTime = k, time.Now()
+	s.judgedAt, s.judgedTime = k, s.judgeNow()
 	s.judgeNext, s.steinNext = s.judgeCadence(k, stein)
 }
 
