@@ -1472,7 +1472,15 @@ type Register struct {
 	// (from the measured evaluation and transport times); 1: no groups, one
 	// request at a time. At most chains. Kernels that ask more than one
 	// request per step, or whose chains read each other, run as one group.
-	ChainGroups   int32 `protobuf:"varint,38,opt,name=chain_groups,json=chainGroups,proto3" json:"chain_groups,omitempty"`
+	ChainGroups int32 `protobuf:"varint,38,opt,name=chain_groups,json=chainGroups,proto3" json:"chain_groups,omitempty"`
+	// The client reads draws carried inside Points frames (Points.draws):
+	// the draws of a completed step then ride in the next request's last
+	// Points frame, one frame less per step, instead of a Draws frame after
+	// it. Frames the server cannot carry that way (draws split over several
+	// frames, a step with no request after it) still come as Draws frames,
+	// in sequence order. When false (the default), draws come only as Draws
+	// frames.
+	DrawsInPoints bool `protobuf:"varint,39,opt,name=draws_in_points,json=drawsInPoints,proto3" json:"draws_in_points,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -1771,6 +1779,13 @@ func (x *Register) GetChainGroups() int32 {
 		return x.ChainGroups
 	}
 	return 0
+}
+
+func (x *Register) GetDrawsInPoints() bool {
+	if x != nil {
+		return x.DrawsInPoints
+	}
+	return false
 }
 
 // MetricReport says which metric the kernel uses.
@@ -2548,7 +2563,13 @@ type Points struct {
 	FullData bool `protobuf:"varint,11,opt,name=full_data,json=fullData,proto3" json:"full_data,omitempty"`
 	// Gradient replicates per row the answer must carry (1 unless the client
 	// registered replicates >= 2 and full_data is false).
-	Replicates    int32 `protobuf:"varint,12,opt,name=replicates,proto3" json:"replicates,omitempty"`
+	Replicates int32 `protobuf:"varint,12,opt,name=replicates,proto3" json:"replicates,omitempty"`
+	// Draws the server sends with these points, only to a client that set
+	// Register.draws_in_points, and only in a request's last Points frame:
+	// the same as a Draws frame received right after this one (sequence
+	// numbers, references to this request's rows, everything). A client
+	// answers the points first and then hands on the draws.
+	Draws         *Draws `protobuf:"bytes,13,opt,name=draws,proto3" json:"draws,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -2665,6 +2686,13 @@ func (x *Points) GetReplicates() int32 {
 		return x.Replicates
 	}
 	return 0
+}
+
+func (x *Points) GetDraws() *Draws {
+	if x != nil {
+		return x.Draws
+	}
+	return nil
 }
 
 // Evaluations answers one Points frame.
@@ -4872,7 +4900,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\x05draws\x18\x03 \x01(\v2\x10.sluice.v1.DrawsH\x00R\x05draws\x121\n" +
 	"\bprogress\x18\x04 \x01(\v2\x13.sluice.v1.ProgressH\x00R\bprogress\x121\n" +
 	"\bfinished\x18\x05 \x01(\v2\x13.sluice.v1.FinishedH\x00R\bfinishedB\a\n" +
-	"\x05frame\"\x88\f\n" +
+	"\x05frame\"\xb0\f\n" +
 	"\bRegister\x12\x10\n" +
 	"\x03dim\x18\x01 \x01(\x05R\x03dim\x12\x16\n" +
 	"\x06chains\x18\x02 \x01(\x05R\x06chains\x12\x16\n" +
@@ -4917,7 +4945,8 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\vmetric_form\x18$ \x01(\x0e2\x15.sluice.v1.MetricFormR\n" +
 	"metricForm\x122\n" +
 	"\x15gradient_check_points\x18% \x01(\x05R\x13gradientCheckPoints\x12!\n" +
-	"\fchain_groups\x18& \x01(\x05R\vchainGroupsB\x12\n" +
+	"\fchain_groups\x18& \x01(\x05R\vchainGroups\x12&\n" +
+	"\x0fdraws_in_points\x18' \x01(\bR\rdrawsInPointsB\x12\n" +
 	"\x10_owner_evaluates\"\xf5\x01\n" +
 	"\fMetricReport\x12\x12\n" +
 	"\x04kind\x18\x01 \x01(\tR\x04kind\x12\x16\n" +
@@ -4982,7 +5011,7 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\aresumed\x18\n" +
 	" \x01(\bR\aresumed\x12/\n" +
 	"\x06metric\x18\v \x01(\v2\x17.sluice.v1.MetricReportR\x06metric\x12/\n" +
-	"\x06tuning\x18\f \x03(\v2\x17.sluice.v1.TuningChoiceR\x06tuning\"\xf0\x02\n" +
+	"\x06tuning\x18\f \x03(\v2\x17.sluice.v1.TuningChoiceR\x06tuning\"\x98\x03\n" +
 	"\x06Points\x12\x1d\n" +
 	"\n" +
 	"request_id\x18\x01 \x01(\x04R\trequestId\x12\x1b\n" +
@@ -5002,7 +5031,8 @@ const file_sluice_v1_sluice_proto_rawDesc = "" +
 	"\tfull_data\x18\v \x01(\bR\bfullData\x12\x1e\n" +
 	"\n" +
 	"replicates\x18\f \x01(\x05R\n" +
-	"replicates\"\xf7\x01\n" +
+	"replicates\x12&\n" +
+	"\x05draws\x18\r \x01(\v2\x10.sluice.v1.DrawsR\x05draws\"\xf7\x01\n" +
 	"\vEvaluations\x12\x1d\n" +
 	"\n" +
 	"request_id\x18\x01 \x01(\x04R\trequestId\x12\x1b\n" +
@@ -5335,44 +5365,45 @@ var file_sluice_v1_sluice_proto_depIdxs = []int32{
 	16, // 24: sluice.v1.Registered.metric:type_name -> sluice.v1.MetricReport
 	17, // 25: sluice.v1.Registered.tuning:type_name -> sluice.v1.TuningChoice
 	3,  // 26: sluice.v1.Points.quantities:type_name -> sluice.v1.Quantity
-	4,  // 27: sluice.v1.Progress.state:type_name -> sluice.v1.State
-	33, // 28: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
-	34, // 29: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
-	35, // 30: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
-	36, // 31: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
-	32, // 32: sluice.v1.Progress.noise:type_name -> sluice.v1.NoiseEstimate
-	31, // 33: sluice.v1.Progress.kernel:type_name -> sluice.v1.KernelReport
-	41, // 34: sluice.v1.Progress.workers:type_name -> sluice.v1.WorkerReport
-	16, // 35: sluice.v1.Progress.metric:type_name -> sluice.v1.MetricReport
-	17, // 36: sluice.v1.Progress.tuning:type_name -> sluice.v1.TuningChoice
-	29, // 37: sluice.v1.Progress.stein:type_name -> sluice.v1.SteinAssessment
-	30, // 38: sluice.v1.Progress.checks:type_name -> sluice.v1.Check
-	5,  // 39: sluice.v1.SteinAssessment.state:type_name -> sluice.v1.SteinState
-	6,  // 40: sluice.v1.Check.status:type_name -> sluice.v1.CheckStatus
-	2,  // 41: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
-	7,  // 42: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
-	8,  // 43: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
-	28, // 44: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
-	38, // 45: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
-	30, // 46: sluice.v1.Finished.checks:type_name -> sluice.v1.Check
-	22, // 47: sluice.v1.FollowHeader.wants:type_name -> sluice.v1.Wants
-	43, // 48: sluice.v1.AttachRequest.attach:type_name -> sluice.v1.Attach
-	25, // 49: sluice.v1.AttachRequest.evaluations:type_name -> sluice.v1.Evaluations
-	45, // 50: sluice.v1.AttachResponse.attached:type_name -> sluice.v1.Attached
-	24, // 51: sluice.v1.AttachResponse.points:type_name -> sluice.v1.Points
-	13, // 52: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
-	11, // 53: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
-	9,  // 54: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
-	42, // 55: sluice.v1.SluiceService.Attach:input_type -> sluice.v1.AttachRequest
-	14, // 56: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
-	12, // 57: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
-	10, // 58: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
-	44, // 59: sluice.v1.SluiceService.Attach:output_type -> sluice.v1.AttachResponse
-	56, // [56:60] is the sub-list for method output_type
-	52, // [52:56] is the sub-list for method input_type
-	52, // [52:52] is the sub-list for extension type_name
-	52, // [52:52] is the sub-list for extension extendee
-	0,  // [0:52] is the sub-list for field type_name
+	27, // 27: sluice.v1.Points.draws:type_name -> sluice.v1.Draws
+	4,  // 28: sluice.v1.Progress.state:type_name -> sluice.v1.State
+	33, // 29: sluice.v1.Progress.parameters:type_name -> sluice.v1.ParameterDiagnostics
+	34, // 30: sluice.v1.Progress.bound:type_name -> sluice.v1.Bound
+	35, // 31: sluice.v1.Progress.curvature:type_name -> sluice.v1.CurvatureEstimate
+	36, // 32: sluice.v1.Progress.targets:type_name -> sluice.v1.TargetStatus
+	32, // 33: sluice.v1.Progress.noise:type_name -> sluice.v1.NoiseEstimate
+	31, // 34: sluice.v1.Progress.kernel:type_name -> sluice.v1.KernelReport
+	41, // 35: sluice.v1.Progress.workers:type_name -> sluice.v1.WorkerReport
+	16, // 36: sluice.v1.Progress.metric:type_name -> sluice.v1.MetricReport
+	17, // 37: sluice.v1.Progress.tuning:type_name -> sluice.v1.TuningChoice
+	29, // 38: sluice.v1.Progress.stein:type_name -> sluice.v1.SteinAssessment
+	30, // 39: sluice.v1.Progress.checks:type_name -> sluice.v1.Check
+	5,  // 40: sluice.v1.SteinAssessment.state:type_name -> sluice.v1.SteinState
+	6,  // 41: sluice.v1.Check.status:type_name -> sluice.v1.CheckStatus
+	2,  // 42: sluice.v1.Bound.metric:type_name -> sluice.v1.Metric
+	7,  // 43: sluice.v1.Bound.source:type_name -> sluice.v1.BoundSource
+	8,  // 44: sluice.v1.Finished.reason:type_name -> sluice.v1.FinishReason
+	28, // 45: sluice.v1.Finished.progress:type_name -> sluice.v1.Progress
+	38, // 46: sluice.v1.Finished.parameters:type_name -> sluice.v1.ParameterSummary
+	30, // 47: sluice.v1.Finished.checks:type_name -> sluice.v1.Check
+	22, // 48: sluice.v1.FollowHeader.wants:type_name -> sluice.v1.Wants
+	43, // 49: sluice.v1.AttachRequest.attach:type_name -> sluice.v1.Attach
+	25, // 50: sluice.v1.AttachRequest.evaluations:type_name -> sluice.v1.Evaluations
+	45, // 51: sluice.v1.AttachResponse.attached:type_name -> sluice.v1.Attached
+	24, // 52: sluice.v1.AttachResponse.points:type_name -> sluice.v1.Points
+	13, // 53: sluice.v1.SluiceService.Session:input_type -> sluice.v1.SessionRequest
+	11, // 54: sluice.v1.SluiceService.Follow:input_type -> sluice.v1.FollowRequest
+	9,  // 55: sluice.v1.SluiceService.Plan:input_type -> sluice.v1.PlanRequest
+	42, // 56: sluice.v1.SluiceService.Attach:input_type -> sluice.v1.AttachRequest
+	14, // 57: sluice.v1.SluiceService.Session:output_type -> sluice.v1.SessionResponse
+	12, // 58: sluice.v1.SluiceService.Follow:output_type -> sluice.v1.FollowResponse
+	10, // 59: sluice.v1.SluiceService.Plan:output_type -> sluice.v1.PlanResponse
+	44, // 60: sluice.v1.SluiceService.Attach:output_type -> sluice.v1.AttachResponse
+	57, // [57:61] is the sub-list for method output_type
+	53, // [53:57] is the sub-list for method input_type
+	53, // [53:53] is the sub-list for extension type_name
+	53, // [53:53] is the sub-list for extension extendee
+	0,  // [0:53] is the sub-list for field type_name
 }
 
 func init() { file_sluice_v1_sluice_proto_init() }

@@ -422,9 +422,10 @@ class PlanResponse(_message.Message):
     def __init__(self, step: _Optional[float] = ..., horizon: _Optional[float] = ..., iterations: _Optional[int] = ..., evaluations_per_chain: _Optional[int] = ..., evaluations: _Optional[int] = ..., seconds: _Optional[float] = ..., bound: _Optional[_Union[Bound, _Mapping]] = ..., assumptions: _Optional[_Iterable[str]] = ..., constants_recalled: bool = ..., penalty: _Optional[float] = ...) -> None: ...
 
 class Points(_message.Message):
-    __slots__ = ["chains", "dim", "first_row", "full_data", "minibatch_groups", "points", "quantities", "replicates", "request_id", "rows", "total_rows", "vectors"]
+    __slots__ = ["chains", "dim", "draws", "first_row", "full_data", "minibatch_groups", "points", "quantities", "replicates", "request_id", "rows", "total_rows", "vectors"]
     CHAINS_FIELD_NUMBER: _ClassVar[int]
     DIM_FIELD_NUMBER: _ClassVar[int]
+    DRAWS_FIELD_NUMBER: _ClassVar[int]
     FIRST_ROW_FIELD_NUMBER: _ClassVar[int]
     FULL_DATA_FIELD_NUMBER: _ClassVar[int]
     MINIBATCH_GROUPS_FIELD_NUMBER: _ClassVar[int]
@@ -437,6 +438,7 @@ class Points(_message.Message):
     VECTORS_FIELD_NUMBER: _ClassVar[int]
     chains: _containers.RepeatedScalarFieldContainer[int]
     dim: int
+    draws: Draws
     first_row: int
     full_data: bool
     minibatch_groups: _containers.RepeatedScalarFieldContainer[int]
@@ -447,7 +449,7 @@ class Points(_message.Message):
     rows: int
     total_rows: int
     vectors: bytes
-    def __init__(self, request_id: _Optional[int] = ..., first_row: _Optional[int] = ..., rows: _Optional[int] = ..., dim: _Optional[int] = ..., points: _Optional[bytes] = ..., chains: _Optional[_Iterable[int]] = ..., quantities: _Optional[_Iterable[_Union[Quantity, str]]] = ..., total_rows: _Optional[int] = ..., vectors: _Optional[bytes] = ..., minibatch_groups: _Optional[_Iterable[int]] = ..., full_data: bool = ..., replicates: _Optional[int] = ...) -> None: ...
+    def __init__(self, request_id: _Optional[int] = ..., first_row: _Optional[int] = ..., rows: _Optional[int] = ..., dim: _Optional[int] = ..., points: _Optional[bytes] = ..., chains: _Optional[_Iterable[int]] = ..., quantities: _Optional[_Iterable[_Union[Quantity, str]]] = ..., total_rows: _Optional[int] = ..., vectors: _Optional[bytes] = ..., minibatch_groups: _Optional[_Iterable[int]] = ..., full_data: bool = ..., replicates: _Optional[int] = ..., draws: _Optional[_Union[Draws, _Mapping]] = ...) -> None: ...
 
 class Progress(_message.Message):
     __slots__ = ["answers_late", "bound", "checks", "curvature", "draws_sent", "evaluations_left", "evaluations_per_second", "evaluations_used", "kernel", "ksd", "metric", "noise", "parameters", "parameters_omitted", "rows_reissued", "seconds_left", "seconds_used", "state", "stein", "steps", "targets", "tuning", "tuning_evaluations", "workers"]
@@ -502,7 +504,7 @@ class Progress(_message.Message):
     def __init__(self, state: _Optional[_Union[State, str]] = ..., steps: _Optional[int] = ..., evaluations_used: _Optional[int] = ..., evaluations_left: _Optional[int] = ..., seconds_used: _Optional[float] = ..., seconds_left: _Optional[float] = ..., draws_sent: _Optional[int] = ..., evaluations_per_second: _Optional[float] = ..., parameters: _Optional[_Iterable[_Union[ParameterDiagnostics, _Mapping]]] = ..., ksd: _Optional[float] = ..., bound: _Optional[_Union[Bound, _Mapping]] = ..., curvature: _Optional[_Union[CurvatureEstimate, _Mapping]] = ..., targets: _Optional[_Iterable[_Union[TargetStatus, _Mapping]]] = ..., noise: _Optional[_Union[NoiseEstimate, _Mapping]] = ..., kernel: _Optional[_Union[KernelReport, _Mapping]] = ..., parameters_omitted: _Optional[int] = ..., workers: _Optional[_Iterable[_Union[WorkerReport, _Mapping]]] = ..., rows_reissued: _Optional[int] = ..., answers_late: _Optional[int] = ..., metric: _Optional[_Union[MetricReport, _Mapping]] = ..., tuning: _Optional[_Iterable[_Union[TuningChoice, _Mapping]]] = ..., tuning_evaluations: _Optional[int] = ..., stein: _Optional[_Union[SteinAssessment, _Mapping]] = ..., checks: _Optional[_Iterable[_Union[Check, _Mapping]]] = ...) -> None: ...
 
 class Register(_message.Message):
-    __slots__ = ["accepts_draw_references", "anchor_every", "burn_in", "chain_groups", "chains", "checkpoint_every_steps", "curvature", "curvature_probe_iterations", "dim", "draws_per_chain", "envelope", "fixed_point_iterations", "fixed_point_tolerance", "friction", "gradient_check_points", "inverse_mass", "keep_every", "kernel", "krylov_max_iterations", "krylov_tolerance", "max_evaluations", "max_message_bytes", "max_seconds", "metric", "metric_form", "names", "noise", "owner_evaluates", "progress_every_steps", "progress_interval_seconds", "schedule", "seed", "slice_max_expansions", "slice_width", "start", "start_rows", "step", "wants"]
+    __slots__ = ["accepts_draw_references", "anchor_every", "burn_in", "chain_groups", "chains", "checkpoint_every_steps", "curvature", "curvature_probe_iterations", "dim", "draws_in_points", "draws_per_chain", "envelope", "fixed_point_iterations", "fixed_point_tolerance", "friction", "gradient_check_points", "inverse_mass", "keep_every", "kernel", "krylov_max_iterations", "krylov_tolerance", "max_evaluations", "max_message_bytes", "max_seconds", "metric", "metric_form", "names", "noise", "owner_evaluates", "progress_every_steps", "progress_interval_seconds", "schedule", "seed", "slice_max_expansions", "slice_width", "start", "start_rows", "step", "wants"]
     ACCEPTS_DRAW_REFERENCES_FIELD_NUMBER: _ClassVar[int]
     ANCHOR_EVERY_FIELD_NUMBER: _ClassVar[int]
     BURN_IN_FIELD_NUMBER: _ClassVar[int]
@@ -512,6 +514,7 @@ class Register(_message.Message):
     CURVATURE_FIELD_NUMBER: _ClassVar[int]
     CURVATURE_PROBE_ITERATIONS_FIELD_NUMBER: _ClassVar[int]
     DIM_FIELD_NUMBER: _ClassVar[int]
+    DRAWS_IN_POINTS_FIELD_NUMBER: _ClassVar[int]
     DRAWS_PER_CHAIN_FIELD_NUMBER: _ClassVar[int]
     ENVELOPE_FIELD_NUMBER: _ClassVar[int]
     FIXED_POINT_ITERATIONS_FIELD_NUMBER: _ClassVar[int]
@@ -550,6 +553,7 @@ class Register(_message.Message):
     curvature: Curvature
     curvature_probe_iterations: int
     dim: int
+    draws_in_points: bool
     draws_per_chain: int
     envelope: Envelope
     fixed_point_iterations: int
@@ -579,7 +583,7 @@ class Register(_message.Message):
     start_rows: int
     step: float
     wants: Wants
-    def __init__(self, dim: _Optional[int] = ..., chains: _Optional[int] = ..., kernel: _Optional[str] = ..., start: _Optional[bytes] = ..., start_rows: _Optional[int] = ..., step: _Optional[float] = ..., burn_in: _Optional[int] = ..., keep_every: _Optional[int] = ..., draws_per_chain: _Optional[int] = ..., max_evaluations: _Optional[int] = ..., max_seconds: _Optional[float] = ..., progress_every_steps: _Optional[int] = ..., progress_interval_seconds: _Optional[float] = ..., seed: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., max_message_bytes: _Optional[int] = ..., curvature: _Optional[_Union[Curvature, _Mapping]] = ..., wants: _Optional[_Union[Wants, _Mapping]] = ..., friction: _Optional[float] = ..., inverse_mass: _Optional[float] = ..., krylov_tolerance: _Optional[float] = ..., krylov_max_iterations: _Optional[int] = ..., schedule: _Optional[_Union[StepSchedule, _Mapping]] = ..., anchor_every: _Optional[int] = ..., fixed_point_tolerance: _Optional[float] = ..., fixed_point_iterations: _Optional[int] = ..., curvature_probe_iterations: _Optional[int] = ..., slice_width: _Optional[float] = ..., slice_max_expansions: _Optional[int] = ..., envelope: _Optional[_Union[Envelope, _Mapping]] = ..., owner_evaluates: bool = ..., noise: _Optional[_Union[GradientNoise, _Mapping]] = ..., checkpoint_every_steps: _Optional[int] = ..., accepts_draw_references: bool = ..., metric: _Optional[bytes] = ..., metric_form: _Optional[_Union[MetricForm, str]] = ..., gradient_check_points: _Optional[int] = ..., chain_groups: _Optional[int] = ...) -> None: ...
+    def __init__(self, dim: _Optional[int] = ..., chains: _Optional[int] = ..., kernel: _Optional[str] = ..., start: _Optional[bytes] = ..., start_rows: _Optional[int] = ..., step: _Optional[float] = ..., burn_in: _Optional[int] = ..., keep_every: _Optional[int] = ..., draws_per_chain: _Optional[int] = ..., max_evaluations: _Optional[int] = ..., max_seconds: _Optional[float] = ..., progress_every_steps: _Optional[int] = ..., progress_interval_seconds: _Optional[float] = ..., seed: _Optional[int] = ..., names: _Optional[_Iterable[str]] = ..., max_message_bytes: _Optional[int] = ..., curvature: _Optional[_Union[Curvature, _Mapping]] = ..., wants: _Optional[_Union[Wants, _Mapping]] = ..., friction: _Optional[float] = ..., inverse_mass: _Optional[float] = ..., krylov_tolerance: _Optional[float] = ..., krylov_max_iterations: _Optional[int] = ..., schedule: _Optional[_Union[StepSchedule, _Mapping]] = ..., anchor_every: _Optional[int] = ..., fixed_point_tolerance: _Optional[float] = ..., fixed_point_iterations: _Optional[int] = ..., curvature_probe_iterations: _Optional[int] = ..., slice_width: _Optional[float] = ..., slice_max_expansions: _Optional[int] = ..., envelope: _Optional[_Union[Envelope, _Mapping]] = ..., owner_evaluates: bool = ..., noise: _Optional[_Union[GradientNoise, _Mapping]] = ..., checkpoint_every_steps: _Optional[int] = ..., accepts_draw_references: bool = ..., metric: _Optional[bytes] = ..., metric_form: _Optional[_Union[MetricForm, str]] = ..., gradient_check_points: _Optional[int] = ..., chain_groups: _Optional[int] = ..., draws_in_points: bool = ...) -> None: ...
 
 class Registered(_message.Message):
     __slots__ = ["evaluations_per_step", "kernel", "max_message_bytes", "metric", "names", "planned_steps", "resume_token", "resumed", "seed", "session_id", "step", "tuning"]
