@@ -512,10 +512,12 @@ func OnDraws(f func(*Draws)) Option { return func(c *config) { c.onDraws = f } }
 // OnProgress calls f for every progress report.
 func OnProgress(f func(*Progress)) Option { return func(c *config) { c.onProgress = f } }
 
-// FullDraws asks the server to send every draw's values. By default the
-// client lets the server name draws that equal points it has just sent
-// (most kernels' next request asks at the positions just reached) and
-// rebuilds them; OnDraws and the Summary see the same values either way.
+// FullDraws asks the server to send every draw's values, in Draws frames
+// of their own. By default the client lets the server name draws that
+// equal points it has just sent (most kernels' next request asks at the
+// positions just reached) and rebuilds them, and reads a step's draws
+// carried in the next request's Points frame (one frame fewer per step);
+// OnDraws and the Summary see the same values either way.
 func FullDraws() Option { return func(c *config) { c.fullDraws = true } }
 
 // WithCallOptions adds gRPC call options to the session's stream.
@@ -561,6 +563,7 @@ func Run(ctx context.Context, cc grpc.ClientConnInterface, spec Spec, eval Evalu
 	pol := cfg.resume.withDefaults()
 	reg := registerFrame(spec, limit)
 	reg.GetRegister().AcceptsDrawReferences = !cfg.fullDraws
+	reg.GetRegister().DrawsInPoints = !cfg.fullDraws
 	for tries := 0; ; {
 		err := r.open(ctx, sluicev1.NewSluiceServiceClient(cc), reg, callOpts)
 		var sum *Summary
@@ -738,16 +741,24 @@ func (r *runner) loop(ctx context.Context) (*Summary, error) {
 			if err != nil {
 				return r.result(err)
 			}
-			if r.evalErr != nil || r.sendClosed {
-				continue // Stop already sent, or the server is finishing
+			if r.evalErr == nil && !r.sendClosed { // else Stop already sent, or the server is finishing
+				err = r.answer(ctx, f.Points, h)
+				if errors.Is(err, io.EOF) {
+					// The server ended the stream: Recv delivers what it
+					// sent before (the Finished frame) and then its status.
+					r.sendClosed = true
+				} else if err != nil {
+					return r.result(err)
+				}
 			}
-			err = r.answer(ctx, f.Points, h)
-			if errors.Is(err, io.EOF) {
-				// The server ended the stream: Recv delivers what it
-				// sent before (the Finished frame) and then its status.
-				r.sendClosed = true
-			} else if err != nil {
-				return r.result(err)
+			// Draws carried in the frame (Register.draws_in_points): as
+			// a Draws frame right after it, handed on once the answer
+			// is out, so that the server steps while the caller takes
+			// them.
+			if d := f.Points.GetDraws(); d != nil {
+				if err := r.deliver(d); err != nil {
+					return r.result(err)
+				}
 			}
 		case *sluicev1.SessionResponse_Draws:
 			if err := r.deliver(f.Draws); err != nil {

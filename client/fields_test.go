@@ -24,10 +24,10 @@ import (
 // registerNotFromSpec lists Register leaves that no Spec field sets on
 // purpose (start_rows is derived from the length of Start and noise.kind
 // from the presence of Noise, and both are checked here):
-// accepts_draw_references says what this client can do, not what the
-// session is; Run sets it unless given the FullDraws option
-// (TestDrawReferencesAreRebuilt).
-var registerNotFromSpec = []string{"accepts_draw_references"}
+// accepts_draw_references and draws_in_points say what this client can
+// do, not what the session is; Run sets them unless given the FullDraws
+// option (TestDrawReferencesAreRebuilt).
+var registerNotFromSpec = []string{"accepts_draw_references", "draws_in_points"}
 
 // planRequestNotFromSpec lists PlanRequest leaves that Plan leaves unset on
 // purpose: the request carries the start distance and second moment as

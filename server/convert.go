@@ -80,6 +80,7 @@ func specFromWire(r *sluicev1.Register) (session.Spec, error) {
 		KeepEvery:          r.GetKeepEvery(),
 		DrawsPerChain:      r.GetDrawsPerChain(),
 		DrawReferences:     r.GetAcceptsDrawReferences(),
+		DrawsInPoints:      r.GetDrawsInPoints(),
 		MaxEvaluations:     r.GetMaxEvaluations(),
 		MaxTime:            maxTime,
 		ProgressEverySteps: r.GetProgressEverySteps(), CheckpointEverySteps: r.GetCheckpointEverySteps(),
@@ -148,8 +149,11 @@ func messageFromWire(f *sluicev1.SessionRequest, gradBuf *[]float64) session.Mes
 type encoder struct {
 	buf []byte
 	i32 []int32
-	// rows holds a Draws frame's point rows (i32 holds its chains).
-	rows []int32
+	// dbuf, dchains and rows hold a Draws frame's values, chains and
+	// point rows.
+	dbuf    []byte
+	dchains []int32
+	rows    []int32
 	// maxParams is how many per-parameter entries a Progress or Finished
 	// frame may carry within the message limit (0: no cap).
 	maxParams int
@@ -183,6 +187,20 @@ func paramCap(limit int64) int { return int(max(1, limit/2/128)) }
 func (e *encoder) floats(v []float64) []byte {
 	e.buf = wire.AppendFloats(e.buf[:0], v)
 	return e.buf
+}
+
+// draws is a Draws frame on the wire, in buffers of its own (it may ride
+// in a Points frame, whose points and chains use e.buf and e.i32).
+func (e *encoder) draws(f *session.Draws) *sluicev1.Draws {
+	e.dbuf = wire.AppendFloats(e.dbuf[:0], f.Values)
+	e.dchains = appendInt32(e.dchains[:0], f.Chains)
+	d := &sluicev1.Draws{Seq: f.Seq, Rows: int32(f.Rows), Dim: int32(f.Dim), Values: e.dbuf,
+		Chains: e.dchains, Iterations: f.Iterations}
+	if f.PointRows != nil {
+		e.rows = appendInt32(e.rows[:0], f.PointRows)
+		d.FromRequestId, d.PointRows = f.FromRequestID, e.rows
+	}
+	return d
 }
 
 func (e *encoder) ints(v []int) []int32 {
@@ -231,15 +249,12 @@ func (e *encoder) frame(f session.Frame) *sluicev1.SessionResponse {
 		}
 		p.FullData, p.Replicates = f.FullData, int32(f.Replicates)
 		p.Quantities = q
+		if f.Draws != nil {
+			p.Draws = e.draws(f.Draws)
+		}
 		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Points{Points: p}}
 	case *session.Draws:
-		d := &sluicev1.Draws{Seq: f.Seq, Rows: int32(f.Rows), Dim: int32(f.Dim), Values: e.floats(f.Values),
-			Chains: e.ints(f.Chains), Iterations: f.Iterations}
-		if f.PointRows != nil {
-			e.rows = appendInt32(e.rows[:0], f.PointRows)
-			d.FromRequestId, d.PointRows = f.FromRequestID, e.rows
-		}
-		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Draws{Draws: d}}
+		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Draws{Draws: e.draws(f)}}
 	case *session.Progress:
 		return &sluicev1.SessionResponse{Frame: &sluicev1.SessionResponse_Progress{Progress: e.progress(f)}}
 	case *session.Finished:

@@ -276,12 +276,24 @@ func TestTransportIsTransparent(t *testing.T) {
 				t.Fatalf("%s: split run delivered %d draw frames for %d steps of %d chains: not split", name, seqs, steps, chains)
 			}
 			drawRows, refs := seen.counts()
-			t.Logf("%s, limit %d, full draws %v, groups %d: %d of %d draws sent by reference", name, limit, c.full, c.groups, refs, drawRows)
+			carried := seen.carriedRows()
+			t.Logf("%s, limit %d, full draws %v, groups %d: %d of %d draws sent by reference, %d carried in Points frames", name, limit, c.full, c.groups, refs, drawRows, carried)
 			switch {
 			case drawRows != chains*steps:
 				t.Fatalf("%s: the interceptor saw %d draws, want %d", name, drawRows, chains*steps)
 			case c.full && refs != 0:
 				t.Fatalf("%s: %d draws sent by reference to a client that asked for full draws", name, refs)
+			case c.full && carried != 0:
+				t.Fatalf("%s: %d draws carried in Points frames to a client that asked for Draws frames of their own", name, carried)
+			case !c.full && limit == 0 && (c.groups == 1 || !pipelines[name]) && carried != chains*(steps-1):
+				// Lock step: every step's draws but the last ride in the
+				// next request's Points frame.
+				t.Fatalf("%s: %d draws carried in Points frames, want %d", name, carried, chains*(steps-1))
+			case !c.full && limit == 0 && c.groups == 2 && carried != chains*(steps-1)/2:
+				// Two groups: the first group's draws ride in the second
+				// group's Points frame; the second's follow in a frame of
+				// their own (a frame carries one Draws).
+				t.Fatalf("%s, 2 groups: %d draws carried in Points frames, want %d", name, carried, chains*(steps-1)/2)
 			case !c.full && drawsArePoints[name] && refs != chains*(steps-1):
 				// Every step's draws but the last go out after the next
 				// request, which asks at them; the last go out with
@@ -307,14 +319,22 @@ var drawsArePoints = map[string]bool{"lmc": true, "kinetic": true, "baoab": true
 type drawCounter struct {
 	mu         sync.Mutex
 	rows, refs int
+	// carried counts the draws that came inside Points frames.
+	carried int
 }
 
-func (d *drawCounter) reset() { d.mu.Lock(); d.rows, d.refs = 0, 0; d.mu.Unlock() }
+func (d *drawCounter) reset() { d.mu.Lock(); d.rows, d.refs, d.carried = 0, 0, 0; d.mu.Unlock() }
 
 func (d *drawCounter) counts() (rows, refs int) {
 	d.mu.Lock()
 	defer d.mu.Unlock()
 	return d.rows, d.refs
+}
+
+func (d *drawCounter) carriedRows() int {
+	d.mu.Lock()
+	defer d.mu.Unlock()
+	return d.carried
 }
 
 func (d *drawCounter) intercept(ctx context.Context, desc *grpc.StreamDesc, cc *grpc.ClientConn, method string,
@@ -330,8 +350,18 @@ type countingStream struct {
 
 func (s *countingStream) RecvMsg(m any) error {
 	err := s.ClientStream.RecvMsg(m)
-	if r, ok := m.(*sluicev1.SessionResponse); ok && err == nil && r.GetDraws() != nil {
-		w := r.GetDraws()
+	r, ok := m.(*sluicev1.SessionResponse)
+	if !ok || err != nil {
+		return err
+	}
+	w := r.GetDraws()
+	if c := r.GetPoints().GetDraws(); c != nil {
+		w = c
+		s.d.mu.Lock()
+		s.d.carried += int(c.GetRows())
+		s.d.mu.Unlock()
+	}
+	if w != nil {
 		s.d.mu.Lock()
 		s.d.rows += int(w.GetRows())
 		for _, row := range w.GetPointRows() {

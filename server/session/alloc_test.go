@@ -21,12 +21,12 @@ func TestStepAllocatesNothing(t *testing.T) {
 		t.Skip("allocation counts are taken without the race detector, whose instrumentation allocates (scripts/go-tests runs this test in a plain run)")
 	}
 	for _, c := range []struct {
-		kernel     string
-		dim        int
-		references bool
-	}{{"lmc", 10, true}, {"lmc", 10, false}, {"kinetic", 100, true}, {"mala", 10, true}} {
+		kernel            string
+		dim               int
+		references, carry bool
+	}{{"lmc", 10, true, false}, {"lmc", 10, false, false}, {"lmc", 10, true, true}, {"kinetic", 100, true, true}, {"mala", 10, true, true}} {
 		spec := Spec{Dim: c.dim, Chains: 8, Kernel: c.kernel, Start: make([]float64, c.dim), StartRows: 1, Step: 0.05, Seed: 7,
-			ProgressInterval: time.Hour, DrawReferences: c.references}
+			ProgressInterval: time.Hour, DrawReferences: c.references, DrawsInPoints: c.carry}
 		s, err := New("alloc", spec, Limits{})
 		if err != nil {
 			t.Fatal(err)
@@ -86,7 +86,8 @@ func TestStepAllocatesNothing(t *testing.T) {
 		// The figures the verdict rests on are judged on a cadence that
 		// thins out (judgeCadence): that work allocates, and is not a
 		// step's. Measure the steps in between.
-		var measured, grown int
+		var measured, grown, lastGrown int
+		var lastGot float64
 		for range 500 {
 			k := s.kernel.Steps()
 			if judgeDue(s, k) { // AllocsPerRun(1) runs two steps; a Stein assessment comes only with a judgement (stepped)
@@ -104,23 +105,34 @@ func TestStepAllocatesNothing(t *testing.T) {
 			}
 			if got != 0 {
 				// A reused buffer may still grow once to a size this run
-				// had not needed before (amortised); anything more is a
-				// step that allocates.
+				// had not needed before (amortised), and the runtime
+				// itself allocates now and then (a garbage collector's
+				// worker goroutine started during a step, on a loaded
+				// machine); a step that allocates does so at every step,
+				// or at a fixed fraction of them.
 				grown++
-				if grown > 2 {
-					t.Errorf("%s, dim %d, references %v: %v allocations at step %d (the %d-th allocating step), want 0", c.kernel, c.dim, c.references, got, k, grown)
-					break
-				}
+				lastGrown, lastGot = k, got
 				continue
 			}
 			measured++
 		}
+		if grown > maxAllocatingSteps {
+			t.Errorf("%s, dim %d, references %v, carried %v: %d of %d steps allocated (the last, step %d, %v times); want at most %d",
+				c.kernel, c.dim, c.references, c.carry, grown, grown+measured, lastGrown, lastGot, maxAllocatingSteps)
+		}
+		s.mon.settle()
 		r.stop()
 		if measured < 80 {
 			t.Errorf("%s: only %d steps measured between judgements", c.kernel, measured)
 		}
 	}
 }
+
+// maxAllocatingSteps is how many of the measured steps may allocate: a
+// buffer growing to a size not needed before, or the runtime's own
+// occasional allocation (see TestStepAllocatesNothing). A step that
+// allocates does so at every step, hundreds of times here.
+const maxAllocatingSteps = 8
 
 // ringBytes is what the session's follow ring holds (0 without one).
 func ringBytes(s *Session) int64 {
@@ -139,7 +151,7 @@ func TestGroupStepAllocatesNothing(t *testing.T) {
 		t.Skip("allocation counts are taken without the race detector, whose instrumentation allocates (scripts/go-tests runs this test in a plain run)")
 	}
 	spec := Spec{Dim: 10, Chains: 8, Kernel: "lmc", Start: make([]float64, 10), StartRows: 1, Step: 0.05, Seed: 7,
-		ProgressInterval: time.Hour, DrawReferences: true, ChainGroups: 2}
+		ProgressInterval: time.Hour, DrawReferences: true, DrawsInPoints: true, ChainGroups: 2}
 	s, err := New("alloc", spec, Limits{})
 	if err != nil {
 		t.Fatal(err)
@@ -194,11 +206,13 @@ func TestGroupStepAllocatesNothing(t *testing.T) {
 	for range 500 {
 		step()
 	}
-	var measured, grown int
+	var measured, grown, lastGrown int
+	var lastGot float64
 	for range 500 {
 		k := s.kernel.Steps()
 		if judgeDue(s, k) {
 			step()
+			s.mon.settle() // a judgement runs in the background, and allocates
 			continue
 		}
 		ring := ringBytes(s)
@@ -208,14 +222,15 @@ func TestGroupStepAllocatesNothing(t *testing.T) {
 		}
 		if got != 0 {
 			grown++
-			if grown > 2 {
-				t.Errorf("%v allocations at step %d (the %d-th allocating step), want 0", got, k, grown)
-				break
-			}
+			lastGrown, lastGot = k, got
 			continue
 		}
 		measured++
 	}
+	if grown > maxAllocatingSteps {
+		t.Errorf("%d of %d steps allocated (the last, step %d, %v times); want at most %d", grown, grown+measured, lastGrown, lastGot, maxAllocatingSteps)
+	}
+	s.mon.settle()
 	if measured < 80 {
 		t.Errorf("only %d steps measured between judgements", measured)
 	}

@@ -58,6 +58,10 @@ type Points struct {
 	FullData bool
 	// Replicates is the gradient replicates per row the answer carries.
 	Replicates int
+	// Draws, when not nil, are draws carried in this frame (only for a
+	// session whose Spec.DrawsInPoints is set, and only in the last part
+	// of a request): the same as a Draws frame sent right after it.
+	Draws *Draws
 }
 
 // Draws carries kept draws numbered Seq, Seq+1, ..., Seq+Rows−1.

@@ -194,16 +194,25 @@ func (s *Session) startGroups(r *run, n int) (o outcome, stop, ok bool) {
 	if !s.opens(s.grp.open+1, s.grp.g[0].k.Next().Need) {
 		return outcome{}, false, false
 	}
-	s.ownerEvaluator(r.send)
+	s.ownerEvaluator()
+	send := r.send
+	if s.carrying(r) {
+		send = r.hold // the step's draws may ride in the last Points frame (carry.go)
+	}
 	for i := range s.grp.g {
-		if err := s.sendGroup(r, &s.grp.g[i]); err != nil {
+		if err := s.sendGroup(r, send, &s.grp.g[i]); err != nil {
 			return s.groupFailure(err), true, false
 		}
 	}
 	// The last lock-step step's draws, by reference to the groups' first
 	// requests, which ask at its positions.
-	if err := s.flush(r, s.groupSources()); err != nil {
+	if err := s.flushTo(r, send, s.groupSources()); err != nil {
 		return broken(err), true, false
+	}
+	if s.carry.on {
+		if err := s.release(r.send); err != nil {
+			return broken(err), true, false
+		}
 	}
 	return outcome{}, false, true
 }
@@ -266,7 +275,7 @@ func (s *Session) opens(j int, need kernels.Need) bool {
 
 // sendGroup sends g's next request when its step is open, and lets its
 // kernels prepare while the client evaluates.
-func (s *Session) sendGroup(r *run, g *chainGroup) error {
+func (s *Session) sendGroup(r *run, send func(Frame) error, g *chainGroup) error {
 	if g.req != nil {
 		return nil
 	}
@@ -285,7 +294,7 @@ func (s *Session) sendGroup(r *run, g *chainGroup) error {
 	g.parts = g.parts[:0]
 	for lo := 0; lo < req.Rows; lo += per {
 		g.parts = append(g.parts, false)
-		if err := r.send(s.pointsFrame(req, g.id, lo, min(lo+per, req.Rows))); err != nil {
+		if err := send(s.pointsFrame(req, g.id, lo, min(lo+per, req.Rows))); err != nil {
 			return err
 		}
 	}
@@ -393,7 +402,7 @@ func (s *Session) advance(r *run) (outcome, bool, bool) {
 				if o, stop, leave := s.groupsStepped(r); stop || leave {
 					return o, stop, leave
 				}
-			} else if err := s.sendGroup(r, g); err != nil {
+			} else if err := s.sendGroup(r, r.send, g); err != nil {
 				return s.groupFailure(err), true, false
 			}
 		}
@@ -468,17 +477,32 @@ func (s *Session) groupsStepped(r *run) (outcome, bool, bool) {
 	if o, stop := s.shouldStop(r); stop {
 		return o, true, false
 	}
+	send := r.send
+	if s.carrying(r) {
+		send = r.hold // the step's draws may ride in the last Points frame (carry.go)
+	}
 	for i := range s.grp.g {
-		if err := s.sendGroup(r, &s.grp.g[i]); err != nil {
+		if err := s.sendGroup(r, send, &s.grp.g[i]); err != nil {
 			return s.groupFailure(err), true, false
 		}
 	}
 	if s.idle() {
-		// The next step does not fit: the lock-step loop says why.
+		// The next step does not fit: the lock-step loop says why (and
+		// sends what is held first).
+		if s.carry.on {
+			if err := s.release(r.send); err != nil {
+				return broken(err), true, false
+			}
+		}
 		return outcome{}, false, true
 	}
-	if err := s.flush(r, s.groupSources()); err != nil {
+	if err := s.flushTo(r, send, s.groupSources()); err != nil {
 		return broken(err), true, false
+	}
+	if s.carry.on {
+		if err := s.release(r.send); err != nil {
+			return broken(err), true, false
+		}
 	}
 	return outcome{}, false, false
 }

@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"math"
 	"math/rand/v2"
+	"strings"
 	"testing"
 	"time"
 )
@@ -19,6 +20,7 @@ type groupRun struct {
 	draws       []Draws // values rebuilt
 	finished    *Finished
 	points      int // Points frames
+	carried     int // Draws carried in Points frames (Spec.DrawsInPoints)
 	mostPending int // the most requests outstanding at once
 	err         error
 }
@@ -34,20 +36,31 @@ func runGroups(t *testing.T, spec Spec, lim Limits, shuffle uint64, setup func(*
 	}
 	frames := make(chan Frame, 1<<16)
 	in := make(chan Message, 1<<16)
+	copyDraws := func(f *Draws) *Draws {
+		c := *f
+		c.Values = append([]float64(nil), f.Values...)
+		c.Chains = append([]int(nil), f.Chains...)
+		c.Iterations = append([]int64(nil), f.Iterations...)
+		c.PointRows = append([]int(nil), f.PointRows...)
+		return &c
+	}
+	var carried int
 	send := func(f Frame) error {
 		switch f := f.(type) {
 		case *Points:
 			c := *f
 			c.Points = append([]float64(nil), f.Points...)
 			c.Chains = append([]int(nil), f.Chains...)
+			c.Draws = nil
 			frames <- &c
+			if f.Draws != nil {
+				// As the protocol says: the same as a Draws frame right
+				// after this one.
+				carried++
+				frames <- copyDraws(f.Draws)
+			}
 		case *Draws:
-			c := *f
-			c.Values = append([]float64(nil), f.Values...)
-			c.Chains = append([]int(nil), f.Chains...)
-			c.Iterations = append([]int64(nil), f.Iterations...)
-			c.PointRows = append([]int(nil), f.PointRows...)
-			frames <- &c
+			frames <- copyDraws(f)
 		case *Finished:
 			c := *f
 			frames <- &c
@@ -131,6 +144,7 @@ func runGroups(t *testing.T, spec Spec, lim Limits, shuffle uint64, setup func(*
 	_, out.err = s.Run(ctx, in, send)
 	close(frames)
 	<-done
+	out.carried = carried
 	return out
 }
 
@@ -210,14 +224,24 @@ func TestChainGroupsGiveTheSameDraws(t *testing.T) {
 			{"budget", func(s *Spec) { s.DrawsPerChain, s.MaxEvaluations = 0, 7*37+4 }},
 			{"split", func(s *Spec) { s.MaxMessageBytes = 1024 + 2*(8*4+16) }},
 			{"full draws", func(s *Spec) { s.DrawReferences = false }},
+			{"carried", func(s *Spec) { s.DrawsInPoints = true }},
+			{"carried in full", func(s *Spec) { s.DrawsInPoints, s.DrawReferences = true, false }},
+			{"carried, split", func(s *Spec) { s.DrawsInPoints, s.MaxMessageBytes = true, 1024+2*(8*4+16) }},
 		} {
 			spec := Spec{Dim: 3, Chains: 7, Kernel: kernel, Start: []float64{1, -1, 0.5}, StartRows: 1, Step: 0.1, Seed: 21,
 				BurnIn: 6, KeepEvery: 2, DrawsPerChain: 25, DrawReferences: true, ProgressEverySteps: 5, ChainGroups: 1}
 			c.modify(&spec)
 			lim := Limits{DiagnosticsShare: -1}
 			want := runGroups(t, spec, lim, 0, nil)
-			if want.mostPending != 1 && c.name != "split" {
+			if want.mostPending != 1 && !strings.Contains(c.name, "split") {
 				t.Fatalf("%s %s: one group had %d requests out at once", kernel, c.name, want.mostPending)
+			}
+			// Kept draws every other step after 6 of burn-in: 25 kept
+			// steps, all but the last carried in lock step (the last go
+			// out with Finished); none where the draws do not fit beside
+			// the points.
+			if wantCarried := map[string]int{"carried": 24, "carried in full": 24}[c.name]; want.carried != wantCarried {
+				t.Fatalf("%s %s: %d Draws frames carried in Points frames, want %d", kernel, c.name, want.carried, wantCarried)
 			}
 			for _, g := range []int{2, 3, 7} {
 				for _, shuffle := range []uint64{0, 5} {

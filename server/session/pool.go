@@ -427,12 +427,12 @@ func (p *pool) covered(k int) bool {
 
 // ownerEvaluator adds the owner's stream as an evaluator when the spec
 // lets it evaluate; it is called once, at the first request.
-func (s *Session) ownerEvaluator(send func(Frame) error) {
+func (s *Session) ownerEvaluator() {
 	if s.pool.ownerAdded || s.spec.WorkersOnly {
 		return
 	}
 	s.pool.ownerAdded = true
-	e := &evaluator{name: "owner", send: func(f *Points) error { return send(f) }}
+	e := &evaluator{name: "owner", send: func(f *Points) error { return s.ownerOut(f) }}
 	e.st = WorkerStatus{Name: e.name, Owner: true}
 	s.pool.evals = append([]*evaluator{e}, s.pool.evals...)
 }
@@ -441,7 +441,12 @@ func (s *Session) ownerEvaluator(send func(Frame) error) {
 // table; send is the owner's.
 func (s *Session) assign(req *kernels.Request, send func(Frame) error) error {
 	p := s.pool
-	s.ownerEvaluator(send)
+	s.ownerEvaluator()
+	// The owner's parts of this request go out through send (which may
+	// hold them, carry.go); anything sent to the owner later, through
+	// the run's own send.
+	s.ownerOut = send
+	defer func() { s.ownerOut = s.ownerBase }()
 	if err := s.drainPool(nil); err != nil {
 		return err
 	}

@@ -62,7 +62,12 @@ type Session struct {
 	pointRow   []int     // per chain: the row of the last request holding its draw, or −1
 	refValues  []float64 // the draws not sent by reference
 	srcs       []drawSource
-	trimmed    Draws // a resumed client's first draws, less those it has (skipSent)
+	carry      carrier // a burst of frames held to carry draws in a Points frame (carry.go)
+	// ownerBase is the run's send; ownerOut is where the owner's Points
+	// frames go (ownerBase, or a held burst's send while assign issues a
+	// request).
+	ownerBase, ownerOut func(Frame) error
+	trimmed             Draws // a resumed client's first draws, less those it has (skipSent)
 
 	// The verdict's state, in plain fields: the divergence watch, the
 	// step at which the figures are next judged (stepped), and the
@@ -324,6 +329,9 @@ type run struct {
 	// checkpoint may follow); suspend when the server asked the session
 	// to stop at its next checkpoint.
 	stepDone, suspend bool
+	// hold is Session.hold, bound once: the send function of a burst of
+	// frames held to carry draws in a Points frame (carry.go).
+	hold func(Frame) error
 }
 
 // outcome is how a session ends.
@@ -361,7 +369,8 @@ func (s *Session) begin(ctx context.Context, in <-chan Message, send func(Frame)
 		s.lastProgress = s.start.Add(st.LastProgress)
 	}
 	s.persist.lastSave = time.Now()
-	r := &run{ctx: ctx, in: in, send: send, maxTime: s.maxTime(), answerTimer: time.NewTimer(s.lim.AnswerTimeout)}
+	s.ownerBase, s.ownerOut = send, send
+	r := &run{ctx: ctx, in: in, send: send, maxTime: s.maxTime(), answerTimer: time.NewTimer(s.lim.AnswerTimeout), hold: s.hold}
 	if r.maxTime > 0 {
 		r.timer = time.NewTimer(max(0, r.maxTime-before))
 		r.deadline = r.timer.C
@@ -433,11 +442,16 @@ func (s *Session) end(r *run, o outcome) (Result, error) {
 // holds, each for a range of chains, or nil: draws equal to their points
 // may be sent by reference.
 func (s *Session) flush(r *run, srcs []drawSource) error {
+	return s.flushTo(r, r.send, srcs)
+}
+
+// flushTo is flush sending through send.
+func (s *Session) flushTo(r *run, send func(Frame) error, srcs []drawSource) error {
 	if !r.pending {
 		return nil
 	}
 	r.pending = false
-	return s.afterStep(r.send, srcs)
+	return s.afterStep(send, srcs)
 }
 
 // drawSource is a request whose points the client holds, for the draws of
@@ -506,11 +520,20 @@ func (s *Session) request(r *run, req *kernels.Request) error {
 	if s.phase == len(s.phases) {
 		s.grp.timeSent(time.Now())
 	}
-	if err := s.sendPoints(req, r.send); err != nil {
+	send := r.send
+	if s.carrying(r) {
+		send = r.hold // the step's draws may ride in the last Points frame (carry.go)
+	}
+	if err := s.sendPoints(req, send); err != nil {
 		return err
 	}
-	if err := s.flush(r, s.sentSource(req)); err != nil {
+	if err := s.flushTo(r, send, s.sentSource(req)); err != nil {
 		return err
+	}
+	if s.carry.on {
+		if err := s.release(r.send); err != nil {
+			return err
+		}
 	}
 	if prep, ok := s.kernel.(kernels.Preparer); ok && s.phase == len(s.phases) {
 		prep.Prepare()

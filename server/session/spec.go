@@ -51,6 +51,10 @@ type Spec struct {
 	// DrawReferences says the client rebuilds draws sent by reference to
 	// the points of the request it received last (Draws.PointRows).
 	DrawReferences bool
+	// DrawsInPoints says the client reads draws carried in Points frames
+	// (Points.Draws): a completed step's first Draws frame then rides in
+	// the Points frame sent just before it when both fit one message.
+	DrawsInPoints bool
 	// Curvature is what the client declares of the potential's curvature;
 	// nil when nothing is declared.
 	Curvature *Curvature

@@ -197,6 +197,9 @@ class Session:
         self._executor = executor
         self._split = split if split is not None else (_parallel.default_split(executor) if executor else 1)
         self._register.accepts_draw_references = not full_draws
+        # A step's draws may ride in the next request's Points frame (one
+        # frame fewer per step); full_draws keeps them in Draws frames.
+        self._register.draws_in_points = not full_draws
         self._grad = grad
         self._log_density = log_density
         self._batch = batch
@@ -347,11 +350,16 @@ class Session:
                     for frame in _read_ahead(call):
                         kind = frame.WhichOneof("frame")
                         if kind == "points":
-                            self._hold(frame.points)
+                            p = frame.points
+                            self._hold(p)
                             if eval_error is None and not self._stopped:
-                                eval_error = self._answer(frame.points)
+                                eval_error = self._answer(p)
                             if eval_error is None and self._frame_error is not None:
                                 eval_error = self._frame_error
+                            if p.HasField("draws"):
+                                # As a Draws frame right after this one,
+                                # handed on once the answer is out.
+                                yield self._deliver(p.draws)
                         elif kind == "draws":
                             yield self._deliver(frame.draws)
                         elif kind == "progress":

@@ -45,10 +45,10 @@ Path_ = Tuple[FieldDescriptor, ...]
 #: Leaf fields of Register that no Spec field sets on purpose (the others
 #: are filled from a Spec field or derived from one: start_rows from the
 #: shape of start, noise.kind from the presence of noise):
-#: accepts_draw_references says what this client can do, not what the
-#: session is; Session sets it unless given full_draws=True
-#: (test_draw_references_are_rebuilt).
-REGISTER_NOT_FROM_SPEC: "set[str]" = {"accepts_draw_references"}
+#: accepts_draw_references and draws_in_points say what this client can
+#: do, not what the session is; Session sets them unless given
+#: full_draws=True (test_draw_references_are_rebuilt).
+REGISTER_NOT_FROM_SPEC: "set[str]" = {"accepts_draw_references", "draws_in_points"}
 
 
 def leaf_paths(desc: Descriptor, prefix: Path_ = ()) -> Iterator[Path_]:

@@ -273,6 +273,21 @@ class ScriptedProtocolTests(unittest.TestCase):
         self.assertEqual(np.asarray(summary.draws).reshape(-1, 2).tobytes(), want.tobytes())
         assert ch.call is not None
         self.assertTrue(ch.call.sent[0].register.accepts_draw_references)
+        self.assertTrue(ch.call.sent[0].register.draws_in_points)
+        # The same draws carried in the request's last Points frame
+        # (Points.draws, register.draws_in_points): handed on as if a
+        # Draws frame came right after it.
+        carrying = pb.SessionResponse()
+        carrying.CopyFrom(parts[1])
+        carrying.points.draws.CopyFrom(draws(9).draws)
+        got.clear()
+        ch = _ScriptedChannel([_REGISTERED, parts[0], carrying, _FINISHED])
+        summary = sc.run(ch, self.spec(), lambda p: -p, on_draws=lambda d: got.append(d.values))  # type: ignore[arg-type]
+        self.assertEqual(len(got), 1)
+        self.assertEqual(got[0].tobytes(), want.tobytes())
+        self.assertEqual(summary.draws_received, 3)
+        assert ch.call is not None
+        self.assertEqual(len(ch.call.sent), 3)  # register, then both parts answered
         # A reference to another request than the last one is a protocol
         # error, never silently wrong draws.
         ch = _ScriptedChannel([_REGISTERED, *parts, draws(8), _FINISHED])
@@ -283,6 +298,7 @@ class ScriptedProtocolTests(unittest.TestCase):
         sc.run(ch, self.spec(), lambda p: -p, full_draws=True)  # type: ignore[arg-type]
         assert ch.call is not None
         self.assertFalse(ch.call.sent[0].register.accepts_draw_references)
+        self.assertFalse(ch.call.sent[0].register.draws_in_points)
 
 
 class UnreachableServerTests(unittest.TestCase):
