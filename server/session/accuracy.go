@@ -235,9 +235,8 @@ type monitor struct {
 	// The last measured figures, for the targets and the verdict.
 	params   []ParameterDiagnostics
 	measured bool
-	// The chains the windows follow (nil: all) and their gather buffers.
-	ksdIdx, histIdx   []int
-	ksdX, ksdS, histX []float64
+	// The chains the windows follow (nil: all).
+	ksdIdx, histIdx []int
 	// ksdEvaluations counts the Stein kernel evaluations of every
 	// discrepancy computed, the work the windows bound.
 	ksdEvaluations int64
@@ -302,24 +301,9 @@ func spread(n, chains int) []int {
 	return idx
 }
 
-// pick gathers the rows idx of x (rows of dim values) into *buf; with a
-// nil idx it returns x itself.
-func pick(idx []int, dim int, x []float64, buf *[]float64) []float64 {
-	if idx == nil {
-		return x
-	}
-	if len(*buf) != len(idx)*dim {
-		*buf = make([]float64, len(idx)*dim)
-	}
-	for i, c := range idx {
-		copy((*buf)[i*dim:(i+1)*dim], x[c*dim:(c+1)*dim])
-	}
-	return *buf
-}
-
 func newMonitor(dim, chains int, names []string) *monitor {
 	ksdCap, ksdChains, histChains, histCap := monitorSizes(dim, chains)
-	return &monitor{dim: dim, chains: chains, names: names, hist: diag.NewHistory(histChains, dim, histCap),
+	return &monitor{dim: dim, chains: chains, names: names, hist: diag.NewDrawHistory(histChains, dim, histCap),
 		ksd:     diag.NewStreamKSD(diag.IMQ{}, dim, ksdChains, ksdCap),
 		ksdIdx:  spread(ksdChains, chains),
 		histIdx: spread(histChains, chains),
@@ -330,7 +314,7 @@ func newMonitor(dim, chains int, names []string) *monitor {
 // addKSD offers the kept positions x and their scores sc (every chain) to
 // the Stein discrepancy's window, thinned to its chains.
 func (m *monitor) addKSD(x, sc []float64) {
-	m.ksd.Add(pick(m.ksdIdx, m.dim, x, &m.ksdX), pick(m.ksdIdx, m.dim, sc, &m.ksdS))
+	m.ksd.AddRows(x, sc, m.ksdIdx)
 }
 
 // answered records the gradients of one completed request (before Tell).
@@ -433,16 +417,23 @@ func (m *monitor) pairPeriod() int { return max(1, m.chains*m.dim/8192) }
 // kept records the positions of a kept step; k is the kernel, which may
 // know the scores there already.
 func (m *monitor) kept(k kernels.Kernel) {
-	m.hist.Add(pick(m.histIdx, m.dim, k.Positions(), &m.histX))
-	for i, v := range k.Positions() {
-		m.chainSum[i] += v
-	}
+	x := k.Positions()
+	m.hist.AddRows(x, m.histIdx)
 	m.chainN++
+	sum := m.chainSum[:len(x)]
 	if sc, ok := k.(kernels.Scorer); ok {
-		m.addKSD(k.Positions(), sc.Scores())
+		for i, v := range x {
+			sum[i] += v
+		}
+		m.addKSD(x, sc.Scores())
 		return
 	}
-	copy(m.keptX, k.Positions())
+	// The sums and the copy waiting for the scores, in one pass.
+	kx := m.keptX[:len(x)]
+	for i, v := range x {
+		sum[i] += v
+		kx[i] = v
+	}
 	m.pendingScores = true
 	if m.nScored > 0 {
 		clear(m.scored)
