@@ -479,3 +479,50 @@ func TestDivergenceNamesTheStep(t *testing.T) {
 		t.Fatalf("got %v (%v)", err, res.Finished.Reason)
 	}
 }
+
+// The divergence watch's pass over the positions finds what its
+// definition says (reference: the definition, evaluated directly below):
+// the largest |x − centre| over every chain and coordinate and the first
+// chain reaching it, or the chain of the first value that is not finite,
+// on positions with ties, excursions that overflow, infinities and NaNs.
+func TestDivergenceObserveMatchesDefinition(t *testing.T) {
+	const dim, chains = 3, 4
+	special := []float64{0, 1, -1, 2, math.Inf(1), math.Inf(-1), math.NaN(), math.MaxFloat64, -math.MaxFloat64, 1e-300}
+	r := rand.New(rand.NewPCG(4, 4))
+	for n := range 20000 {
+		spec := &Spec{Dim: dim, Chains: chains, Start: []float64{0, 1, -math.MaxFloat64}, StartRows: 1}
+		d := newDivergence(spec)
+		x := make([]float64, dim*chains)
+		for i := range x {
+			x[i] = special[r.IntN(len(special))]
+			if r.IntN(3) == 0 { // mostly finite
+				x[i] = special[r.IntN(4)]
+			}
+		}
+		// The definition.
+		var e float64
+		chain, notFinite := 0, false
+		for i, v := range x {
+			if math.IsNaN(v) || math.IsInf(v, 0) {
+				chain, notFinite = i/dim, true
+				break
+			}
+			if a := math.Abs(v - d.Centre[i%dim]); a > e {
+				e, chain = a, i/dim
+			}
+		}
+		d.observe(x, 1)
+		if d.NotFinite != notFinite || notFinite && d.Chain != chain || !notFinite && (d.Last != e) {
+			t.Fatalf("case %d, x = %v: not finite %v, chain %d, excursion %v; want %v, %d, %v", n, x, d.NotFinite, d.Chain, d.Last, notFinite, chain, e)
+		}
+		if !notFinite {
+			// The chain reaching the largest excursion is reported when
+			// the step diverges: check it through a step past the window.
+			d2 := newDivergence(spec)
+			d2.Ref = math.SmallestNonzeroFloat64
+			if d2.observe(x, d2.Window+1) && e > 0 && d2.Chain != chain {
+				t.Fatalf("case %d, x = %v: chain %d, want %d", n, x, d2.Chain, chain)
+			}
+		}
+	}
+}

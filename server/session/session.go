@@ -773,10 +773,11 @@ func (s *Session) acceptRows(req *kernels.Request, ans *kernels.Answer, ev *Eval
 		}
 		if reps == 1 {
 			// Check and copy in one pass; on a bad value the session fails,
-			// so a partial copy does not matter.
+			// so a partial copy does not matter. v−v is 0 for a finite v
+			// and NaN for ±Inf and NaN: one comparison per value.
 			dst := ans.Grad[ev.FirstRow*dim : (ev.FirstRow+rows)*dim]
 			for i, v := range ev.Grad {
-				if math.IsNaN(v) || math.IsInf(v, 0) {
+				if v-v != 0 {
 					return badValue("evaluations.gradients", req.Chain[ev.FirstRow+i/dim], i%dim, "value %v is not finite", v)
 				}
 				dst[i] = v
