@@ -220,9 +220,10 @@ type monitor struct {
 	metric       *kernels.Metric
 	ty, tg       []float64 // scratch for the change of units
 	// keptX holds the positions of the last kept step until their scores
-	// arrive; pendingScores says it is waiting.
-	keptX         []float64
-	pendingScores bool
+	// arrive; pendingScores says it is waiting. keptRef is the kernel's
+	// own positions slice they were copied from (nil after a restore).
+	keptX, keptRef []float64
+	pendingScores  bool
 	// keptS gathers the scores at keptX chain by chain when the chains are
 	// stepped in groups; scored marks the chains it holds, nScored counts
 	// them.
@@ -339,7 +340,7 @@ func (m *monitor) answeredAt(req *kernels.Request, a *kernels.Answer, round int)
 		return
 	}
 	if m.stochastic {
-		m.pendingScores = false
+		m.pendingScores, m.keptRef = false, nil
 		return
 	}
 	// Pairs are taken from two consecutive requests out of every period
@@ -379,10 +380,23 @@ func (m *monitor) answeredAt(req *kernels.Request, a *kernels.Answer, round int)
 		m.groupScores(req, a)
 		return
 	}
-	if m.pendingScores && req.Rows == m.chains && slices.Equal(req.Points[:d*m.chains], m.keptX) {
+	if m.pendingScores && req.Rows == m.chains && m.atKept(req.Points[:d*m.chains]) {
 		m.addKSD(m.keptX, a.Grad[:d*m.chains])
 	}
-	m.pendingScores = false
+	m.pendingScores, m.keptRef = false, nil
+}
+
+// atKept reports whether the points of a request of every chain are the
+// kept positions, value for value. A request asking at the kernel's own
+// positions slice, the one the kept draws were copied from, asks there
+// without a comparison: this is the first gradient request answered
+// since the kept step (answers are recorded before the kernel is told),
+// so no Tell has moved the positions since.
+func (m *monitor) atKept(p []float64) bool {
+	if len(p) > 0 && len(p) == len(m.keptRef) && &p[0] == &m.keptRef[0] {
+		return true
+	}
+	return slices.Equal(p, m.keptX)
 }
 
 // groupScores takes the scores at the kept draws of a chain group's
@@ -395,7 +409,7 @@ func (m *monitor) groupScores(req *kernels.Request, a *kernels.Answer) {
 	}
 	for r, c := range req.Chain[:req.Rows] {
 		if !slices.Equal(req.Points[r*d:(r+1)*d], m.keptX[c*d:(c+1)*d]) {
-			m.pendingScores = false
+			m.pendingScores, m.keptRef = false, nil
 			return
 		}
 		copy(m.keptS[c*d:(c+1)*d], a.Grad[r*d:(r+1)*d])
@@ -406,7 +420,7 @@ func (m *monitor) groupScores(req *kernels.Request, a *kernels.Answer) {
 	}
 	if m.nScored == m.chains {
 		m.addKSD(m.keptX, m.keptS)
-		m.pendingScores = false
+		m.pendingScores, m.keptRef = false, nil
 	}
 }
 
@@ -434,7 +448,7 @@ func (m *monitor) kept(k kernels.Kernel) {
 		sum[i] += v
 		kx[i] = v
 	}
-	m.pendingScores = true
+	m.pendingScores, m.keptRef = true, x
 	if m.nScored > 0 {
 		clear(m.scored)
 		m.nScored = 0

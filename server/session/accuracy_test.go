@@ -3,6 +3,7 @@ package session
 import (
 	"math"
 	"math/rand/v2"
+	"slices"
 	"strings"
 	"testing"
 
@@ -524,5 +525,47 @@ func TestDivergenceObserveMatchesDefinition(t *testing.T) {
 				t.Fatalf("case %d, x = %v: chain %d, want %d", n, x, d2.Chain, chain)
 			}
 		}
+	}
+}
+
+// The Stein window takes the scores of the kept draws from the first
+// gradient request after a kept step when, and only when, that request
+// asks at the kept draws (reference: that definition): a request asking
+// at the kernel's own positions slice (taken without a comparison), a
+// copy of it (compared value by value) and a request elsewhere give two
+// identical windows and an empty one.
+func TestScoresOfKeptDrawsByReferenceOrValue(t *testing.T) {
+	const dim, chains = 3, 4
+	spec := Spec{Dim: dim, Chains: chains, Kernel: "lmc", Start: make([]float64, dim), StartRows: 1, Step: 0.1, Seed: 5}
+	entry, ok := lookupKernel("lmc")
+	if !ok {
+		t.Fatal("no lmc kernel")
+	}
+	k := entry.buildKernel(&spec)
+	ref, cp, off := newMonitor(dim, chains, nil), newMonitor(dim, chains, nil), newMonitor(dim, chains, nil)
+	a := kernels.NewAnswer(chains, dim)
+	for range 50 {
+		req := k.Next()
+		for i, x := range req.Points[:chains*dim] {
+			a.Grad[i] = -x // N(0, I)
+		}
+		copied := *req
+		copied.Points = slices.Clone(req.Points)
+		moved := copied
+		moved.Points = slices.Clone(req.Points)
+		moved.Points[len(moved.Points)-1] += 1e-9
+		ref.answered(req, a)
+		cp.answered(&copied, a)
+		off.answered(&moved, a)
+		k.Tell(a)
+		for _, m := range []*monitor{ref, cp, off} {
+			m.kept(k)
+		}
+	}
+	if ref.ksd.Seen() == 0 || ref.ksd.Seen() != cp.ksd.Seen() || off.ksd.Seen() != 0 {
+		t.Fatalf("rounds offered: by reference %d, by value %d, elsewhere %d (want equal, nonzero, and 0)", ref.ksd.Seen(), cp.ksd.Seen(), off.ksd.Seen())
+	}
+	if r, c := ref.ksd.Result(), cp.ksd.Result(); r != c {
+		t.Errorf("discrepancy by reference %+v, by value %+v", r, c)
 	}
 }
