@@ -45,18 +45,31 @@ type historyState struct {
 	Steps, Interval, Kept, Batch, Batches int
 	CurN                                  int
 	Buf, Sums, Cur, Mu, M2                []float64
+	// DrawsOnly marks the state of a History made by NewDrawHistory: its
+	// Cur, Mu and M2 are zeros and it has no batches, so that a decoder
+	// that predates the field reads a consistent state (whose running
+	// moments mean nothing), and a History that keeps them refuses it.
+	DrawsOnly bool
 }
 
 // MarshalBinary saves the History's kept draws, batch sums and running
-// moments.
+// moments (the kept draws only, for one made by NewDrawHistory).
 func (h *History) MarshalBinary() ([]byte, error) {
-	return encodeState(historyState{Chains: h.chains, Dim: h.dim, Capacity: h.capacity, Steps: h.steps,
+	st := historyState{Chains: h.chains, Dim: h.dim, Capacity: h.capacity, Steps: h.steps,
 		Interval: h.interval, Kept: h.kept, Batch: h.batch, Batches: h.batches, CurN: h.curN,
-		Buf: h.buf[:h.kept*h.row], Sums: h.sums[:h.batches*h.row], Cur: h.cur, Mu: h.mu, M2: h.m2})
+		Buf: h.buf[:h.kept*h.row], Sums: h.sums[:h.batches*h.row], Cur: h.cur, Mu: h.mu, M2: h.m2}
+	if h.drawsOnly {
+		zero := make([]float64, h.row)
+		st.Batch, st.Batches, st.CurN, st.Sums, st.Cur, st.Mu, st.M2, st.DrawsOnly = 1, 0, 0, nil, zero, zero, zero, true
+	}
+	return encodeState(st)
 }
 
 // UnmarshalBinary restores a state saved by MarshalBinary into a History
-// of the same chains, dimension and capacity.
+// of the same chains, dimension and capacity. A History made by
+// NewDrawHistory takes the kept draws of either kind of state; one made
+// by NewHistory refuses the state of a NewDrawHistory one, which has no
+// running moments.
 func (h *History) UnmarshalBinary(data []byte) error {
 	var st historyState
 	if err := decodeState(data, &st); err != nil {
@@ -67,14 +80,20 @@ func (h *History) UnmarshalBinary(data []byte) error {
 	case st.Chains != h.chains || st.Dim != h.dim || st.Capacity != h.capacity:
 		return fmt.Errorf("diag: History state for %d chains × %d of capacity %d, this one is %d × %d of %d",
 			st.Chains, st.Dim, st.Capacity, h.chains, h.dim, h.capacity)
+	case st.DrawsOnly && !h.drawsOnly:
+		return errors.New("diag: History state holds no running moments (NewDrawHistory), this History keeps them")
 	case st.Kept < 0 || st.Kept > h.capacity || st.Batches < 0 || st.Batches > h.capacity ||
 		len(st.Buf) != st.Kept*r || len(st.Sums) != st.Batches*r ||
 		len(st.Cur) != r || len(st.Mu) != r || len(st.M2) != r ||
 		st.Interval < 1 || st.Batch < 1 || st.Steps < 0 || st.CurN < 0:
 		return errors.New("diag: History state is inconsistent")
 	}
-	h.steps, h.interval, h.kept, h.batch, h.batches, h.curN = st.Steps, st.Interval, st.Kept, st.Batch, st.Batches, st.CurN
+	h.steps, h.interval, h.kept = st.Steps, st.Interval, st.Kept
 	copy(h.buf, st.Buf)
+	if h.drawsOnly {
+		return nil
+	}
+	h.batch, h.batches, h.curN = st.Batch, st.Batches, st.CurN
 	copy(h.sums, st.Sums)
 	copy(h.cur, st.Cur)
 	copy(h.mu, st.Mu)

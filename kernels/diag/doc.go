@@ -53,7 +53,8 @@
 // evenly thinned subsequence of every chain (the univariate figures are
 // computed on it) and batch sums with b ≈ √n (the ESS and MCSE of the
 // whole run's mean); its comment says what the thinned ESS does and does
-// not estimate.
+// not estimate. NewDrawHistory keeps the thinned subsequence alone, for a
+// caller that never asks for the whole run's mean.
 //
 // Kernel Stein discrepancy (Liu, Lee and Jordan, ICML 2016; Gorham and
 // Mackey, ICML 2017) measures how far draws x_i are from π using only

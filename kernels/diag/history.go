@@ -48,11 +48,17 @@ import (
 // RunMeans is the estimate to use; well above 1 means k ≪ τ, and the
 // thinned ESS estimates the whole run's.
 //
-// The zero value is not usable; call NewHistory. Add does not allocate. A
-// History is not safe for concurrent use.
+// A History made by NewDrawHistory keeps the thinned draws only: no batch
+// sums and no running moments, so that Add costs nothing between kept
+// steps (a copy of the step at kept ones), for a caller that summarises
+// the thinned draws and never asks for RunMeans.
+//
+// The zero value is not usable; call NewHistory or NewDrawHistory. Add
+// does not allocate. A History is not safe for concurrent use.
 type History struct {
 	chains, dim, capacity int
-	row                   int // chains·dim values per step
+	row                   int  // chains·dim values per step
+	drawsOnly             bool // NewDrawHistory: no batch sums, no running moments
 
 	steps    int
 	interval int
@@ -66,9 +72,10 @@ type History struct {
 	curN    int
 	mu, m2  []float64 // one row each: running mean and sum of squared deviations (Welford)
 
-	ws     workspace
-	gather []float64
-	views  [][]float64
+	ws        workspace
+	gather    []float64
+	gatherRow []float64 // AddRows' gathered step, for the running moments
+	views     [][]float64
 }
 
 // minCapacity is the least capacity NewHistory accepts: after a
@@ -103,20 +110,13 @@ func (h *History) Add(step []float64) {
 	if len(step) != h.row {
 		panic(fmt.Sprintf("diag: History.Add got %d values, want chains·dim = %d", len(step), h.row))
 	}
-	if h.steps%h.interval == 0 {
-		if h.kept == h.capacity {
-			for i := 1; i < h.capacity/2; i++ {
-				copy(h.buf[i*h.row:(i+1)*h.row], h.buf[2*i*h.row:(2*i+1)*h.row])
-			}
-			h.kept = h.capacity / 2
-			h.interval *= 2
-		}
-		// The step is a multiple of the doubled interval too: the full
-		// buffer ended at step (capacity−1)·k and capacity is even.
-		copy(h.buf[h.kept*h.row:], step)
-		h.kept++
+	if dst := h.keep(); dst != nil {
+		copy(dst, step)
 	}
 	h.steps++
+	if h.drawsOnly {
+		return
+	}
 	inv := 1 / float64(h.steps) // one division per step, not per value
 	for i, x := range step {
 		d := x - h.mu[i]
@@ -135,6 +135,63 @@ func (h *History) Add(step []float64) {
 	if h.batches == h.capacity || 4*h.batch*h.batch <= h.steps {
 		h.mergeBatches()
 	}
+}
+
+// keep returns the row of buf the current step's draws go to, making
+// room when the buffer is full, or nil when the step's draws are not kept.
+func (h *History) keep() []float64 {
+	if h.steps%h.interval != 0 {
+		return nil
+	}
+	if h.kept == h.capacity {
+		for i := 1; i < h.capacity/2; i++ {
+			copy(h.buf[i*h.row:(i+1)*h.row], h.buf[2*i*h.row:(2*i+1)*h.row])
+		}
+		h.kept = h.capacity / 2
+		h.interval *= 2
+	}
+	// The step is a multiple of the doubled interval too: the full buffer
+	// ended at step (capacity−1)·k and capacity is even.
+	h.kept++
+	return h.buf[(h.kept-1)*h.row : h.kept*h.row]
+}
+
+// AddRows records one step made of the rows idx of step (rows of dim
+// values), in that order: Add of those rows gathered, without gathering
+// them at the steps whose draws are not kept (for a History made by
+// NewDrawHistory, every step but one in Interval). A nil idx adds every
+// row, as Add. It panics when idx does not name one row per chain or
+// names a row outside step.
+func (h *History) AddRows(step []float64, idx []int) {
+	if idx == nil {
+		h.Add(step)
+		return
+	}
+	if len(idx) != h.chains {
+		panic(fmt.Sprintf("diag: History.AddRows got %d rows, want chains = %d", len(idx), h.chains))
+	}
+	d := h.dim
+	for _, r := range idx {
+		if r < 0 || r >= len(step)/d {
+			panic(fmt.Sprintf("diag: History.AddRows row %d of a step of %d rows", r, len(step)/d))
+		}
+	}
+	if !h.drawsOnly { // the running moments need the whole step
+		if h.gatherRow == nil {
+			h.gatherRow = make([]float64, h.row)
+		}
+		for i, r := range idx {
+			copy(h.gatherRow[i*d:(i+1)*d], step[r*d:(r+1)*d])
+		}
+		h.Add(h.gatherRow)
+		return
+	}
+	if dst := h.keep(); dst != nil {
+		for i, r := range idx {
+			copy(dst[i*d:(i+1)*d], step[r*d:(r+1)*d])
+		}
+	}
+	h.steps++
 }
 
 // mergeBatches adds adjacent pairs of batch sums, doubling b. An unpaired
@@ -157,11 +214,12 @@ func (h *History) mergeBatches() {
 }
 
 // CopyFrom makes h a copy of src, which must have the same chains, dim
-// and capacity (it panics otherwise), reusing h's memory: a snapshot that
-// another goroutine may summarise while src goes on. It copies only the
-// rows in use, O(kept·chains·dim).
+// and capacity and keep the same (both made by NewHistory, or both by
+// NewDrawHistory; it panics otherwise), reusing h's memory: a snapshot
+// that another goroutine may summarise while src goes on. It copies only
+// the rows in use, O(kept·chains·dim).
 func (h *History) CopyFrom(src *History) {
-	if h.chains != src.chains || h.dim != src.dim || h.capacity != src.capacity {
+	if h.chains != src.chains || h.dim != src.dim || h.capacity != src.capacity || h.drawsOnly != src.drawsOnly {
 		panic("diag: History.CopyFrom of a history of other sizes")
 	}
 	copy(h.buf, src.buf[:src.kept*src.row])
@@ -190,6 +248,20 @@ func (h *History) Reserve() {
 	if cap(ws.spare) < n {
 		ws.spare = make([]rankPair, n)
 	}
+}
+
+// NewDrawHistory returns a History that keeps the thinned draws only, as
+// NewHistory's does (the same draws, the same Summarize), without the
+// batch sums and running moments: its memory is about
+// capacity·chains·dim values plus the scratch of Summarize, and its
+// RunMeans panics.
+func NewDrawHistory(chains, dim, capacity int) *History {
+	if chains < 1 || dim < 1 || capacity < minCapacity {
+		panic(fmt.Sprintf("diag: NewDrawHistory(%d, %d, %d) needs chains, dim ≥ 1 and capacity ≥ %d", chains, dim, capacity, minCapacity))
+	}
+	capacity += capacity % 2
+	return &History{chains: chains, dim: dim, capacity: capacity, row: chains * dim, drawsOnly: true,
+		interval: 1, batch: 1, buf: make([]float64, capacity*chains*dim)}
 }
 
 // Steps is the number of steps added so far.
@@ -256,7 +328,13 @@ type RunMean struct {
 // are complete or when a coordinate is constant. The relative standard error of σ̂² is about √(2/(a·M − 1))
 // and its relative bias about −(Σ_{t≠0}|t|ρ_t)/(τ·b) (common practice for
 // batch means), small when b ≫ τ.
+//
+// It panics on a History made by NewDrawHistory, which keeps no running
+// moments.
 func (h *History) RunMeans() []RunMean {
+	if h.drawsOnly {
+		panic("diag: RunMeans of a History made by NewDrawHistory")
+	}
 	out := make([]RunMean, h.dim)
 	n := float64(h.steps)
 	tot := n * float64(h.chains)

@@ -267,10 +267,53 @@ func (st *StreamKSD) Add(draws, scores []float64) {
 	if len(draws) != w || len(scores) != w {
 		panic(fmt.Sprintf("diag: StreamKSD round of %d draw values and %d score values, want %d", len(draws), len(scores), w))
 	}
+	if st.offer() {
+		copy(st.x[st.kept*w:], draws)
+		copy(st.s[st.kept*w:], scores)
+		st.kept++
+	}
+}
+
+// AddRows offers one round made of the rows idx of draws and scores (rows
+// of dim values, row-major, same layout), in that order: Add of those rows
+// gathered, without gathering them when the round is not kept. A nil idx
+// offers every row, as Add. It panics when idx does not name as many rows
+// as a round has or names a row outside draws or scores.
+func (st *StreamKSD) AddRows(draws, scores []float64, idx []int) {
+	if idx == nil {
+		st.Add(draws, scores)
+		return
+	}
+	d := st.dim
+	if len(idx) != st.rows {
+		panic(fmt.Sprintf("diag: StreamKSD round of %d rows, want %d", len(idx), st.rows))
+	}
+	n := min(len(draws), len(scores)) / d
+	for _, r := range idx {
+		if r < 0 || r >= n {
+			panic(fmt.Sprintf("diag: StreamKSD row %d of a round of %d rows", r, n))
+		}
+	}
+	if !st.offer() {
+		return
+	}
+	x, s := st.x[st.kept*st.rows*d:], st.s[st.kept*st.rows*d:]
+	for i, r := range idx {
+		copy(x[i*d:(i+1)*d], draws[r*d:(r+1)*d])
+		copy(s[i*d:(i+1)*d], scores[r*d:(r+1)*d])
+	}
+	st.kept++
+}
+
+// offer counts a round offered and reports whether it is kept, making
+// room for it (the halving) when it is: the caller then copies it to
+// round st.kept and increments st.kept.
+func (st *StreamKSD) offer() bool {
+	w := st.rows * st.dim
 	r := st.rounds
 	st.rounds++
 	if r%st.stride != 0 {
-		return
+		return false
 	}
 	if st.kept == st.maxRounds {
 		for j := 1; 2*j < st.kept; j++ {
@@ -281,12 +324,10 @@ func (st *StreamKSD) Add(draws, scores []float64) {
 		st.stride *= 2
 		st.cacheRounds = -1
 		if r%st.stride != 0 {
-			return
+			return false
 		}
 	}
-	copy(st.x[st.kept*w:], draws)
-	copy(st.s[st.kept*w:], scores)
-	st.kept++
+	return true
 }
 
 // Result returns the kernel Stein discrepancy of the kept draws (N = Kept)

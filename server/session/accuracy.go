@@ -220,9 +220,10 @@ type monitor struct {
 	metric       *kernels.Metric
 	ty, tg       []float64 // scratch for the change of units
 	// keptX holds the positions of the last kept step until their scores
-	// arrive; pendingScores says it is waiting.
-	keptX         []float64
-	pendingScores bool
+	// arrive; pendingScores says it is waiting. keptRef is the kernel's
+	// own positions slice they were copied from (nil after a restore).
+	keptX, keptRef []float64
+	pendingScores  bool
 	// keptS gathers the scores at keptX chain by chain when the chains are
 	// stepped in groups; scored marks the chains it holds, nScored counts
 	// them.
@@ -235,9 +236,8 @@ type monitor struct {
 	// The last measured figures, for the targets and the verdict.
 	params   []ParameterDiagnostics
 	measured bool
-	// The chains the windows follow (nil: all) and their gather buffers.
-	ksdIdx, histIdx   []int
-	ksdX, ksdS, histX []float64
+	// The chains the windows follow (nil: all).
+	ksdIdx, histIdx []int
 	// ksdEvaluations counts the Stein kernel evaluations of every
 	// discrepancy computed, the work the windows bound.
 	ksdEvaluations int64
@@ -302,24 +302,9 @@ func spread(n, chains int) []int {
 	return idx
 }
 
-// pick gathers the rows idx of x (rows of dim values) into *buf; with a
-// nil idx it returns x itself.
-func pick(idx []int, dim int, x []float64, buf *[]float64) []float64 {
-	if idx == nil {
-		return x
-	}
-	if len(*buf) != len(idx)*dim {
-		*buf = make([]float64, len(idx)*dim)
-	}
-	for i, c := range idx {
-		copy((*buf)[i*dim:(i+1)*dim], x[c*dim:(c+1)*dim])
-	}
-	return *buf
-}
-
 func newMonitor(dim, chains int, names []string) *monitor {
 	ksdCap, ksdChains, histChains, histCap := monitorSizes(dim, chains)
-	return &monitor{dim: dim, chains: chains, names: names, hist: diag.NewHistory(histChains, dim, histCap),
+	return &monitor{dim: dim, chains: chains, names: names, hist: diag.NewDrawHistory(histChains, dim, histCap),
 		ksd:     diag.NewStreamKSD(diag.IMQ{}, dim, ksdChains, ksdCap),
 		ksdIdx:  spread(ksdChains, chains),
 		histIdx: spread(histChains, chains),
@@ -330,7 +315,7 @@ func newMonitor(dim, chains int, names []string) *monitor {
 // addKSD offers the kept positions x and their scores sc (every chain) to
 // the Stein discrepancy's window, thinned to its chains.
 func (m *monitor) addKSD(x, sc []float64) {
-	m.ksd.Add(pick(m.ksdIdx, m.dim, x, &m.ksdX), pick(m.ksdIdx, m.dim, sc, &m.ksdS))
+	m.ksd.AddRows(x, sc, m.ksdIdx)
 }
 
 // answered records the gradients of one completed request (before Tell).
@@ -355,7 +340,7 @@ func (m *monitor) answeredAt(req *kernels.Request, a *kernels.Answer, round int)
 		return
 	}
 	if m.stochastic {
-		m.pendingScores = false
+		m.pendingScores, m.keptRef = false, nil
 		return
 	}
 	// Pairs are taken from two consecutive requests out of every period
@@ -395,10 +380,23 @@ func (m *monitor) answeredAt(req *kernels.Request, a *kernels.Answer, round int)
 		m.groupScores(req, a)
 		return
 	}
-	if m.pendingScores && req.Rows == m.chains && slices.Equal(req.Points[:d*m.chains], m.keptX) {
+	if m.pendingScores && req.Rows == m.chains && m.atKept(req.Points[:d*m.chains]) {
 		m.addKSD(m.keptX, a.Grad[:d*m.chains])
 	}
-	m.pendingScores = false
+	m.pendingScores, m.keptRef = false, nil
+}
+
+// atKept reports whether the points of a request of every chain are the
+// kept positions, value for value. A request asking at the kernel's own
+// positions slice, the one the kept draws were copied from, asks there
+// without a comparison: this is the first gradient request answered
+// since the kept step (answers are recorded before the kernel is told),
+// so no Tell has moved the positions since.
+func (m *monitor) atKept(p []float64) bool {
+	if len(p) > 0 && len(p) == len(m.keptRef) && &p[0] == &m.keptRef[0] {
+		return true
+	}
+	return slices.Equal(p, m.keptX)
 }
 
 // groupScores takes the scores at the kept draws of a chain group's
@@ -411,7 +409,7 @@ func (m *monitor) groupScores(req *kernels.Request, a *kernels.Answer) {
 	}
 	for r, c := range req.Chain[:req.Rows] {
 		if !slices.Equal(req.Points[r*d:(r+1)*d], m.keptX[c*d:(c+1)*d]) {
-			m.pendingScores = false
+			m.pendingScores, m.keptRef = false, nil
 			return
 		}
 		copy(m.keptS[c*d:(c+1)*d], a.Grad[r*d:(r+1)*d])
@@ -422,7 +420,7 @@ func (m *monitor) groupScores(req *kernels.Request, a *kernels.Answer) {
 	}
 	if m.nScored == m.chains {
 		m.addKSD(m.keptX, m.keptS)
-		m.pendingScores = false
+		m.pendingScores, m.keptRef = false, nil
 	}
 }
 
@@ -433,17 +431,24 @@ func (m *monitor) pairPeriod() int { return max(1, m.chains*m.dim/8192) }
 // kept records the positions of a kept step; k is the kernel, which may
 // know the scores there already.
 func (m *monitor) kept(k kernels.Kernel) {
-	m.hist.Add(pick(m.histIdx, m.dim, k.Positions(), &m.histX))
-	for i, v := range k.Positions() {
-		m.chainSum[i] += v
-	}
+	x := k.Positions()
+	m.hist.AddRows(x, m.histIdx)
 	m.chainN++
+	sum := m.chainSum[:len(x)]
 	if sc, ok := k.(kernels.Scorer); ok {
-		m.addKSD(k.Positions(), sc.Scores())
+		for i, v := range x {
+			sum[i] += v
+		}
+		m.addKSD(x, sc.Scores())
 		return
 	}
-	copy(m.keptX, k.Positions())
-	m.pendingScores = true
+	// The sums and the copy waiting for the scores, in one pass.
+	kx := m.keptX[:len(x)]
+	for i, v := range x {
+		sum[i] += v
+		kx[i] = v
+	}
+	m.pendingScores, m.keptRef = true, x
 	if m.nScored > 0 {
 		clear(m.scored)
 		m.nScored = 0

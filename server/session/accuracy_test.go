@@ -3,6 +3,7 @@ package session
 import (
 	"math"
 	"math/rand/v2"
+	"slices"
 	"strings"
 	"testing"
 
@@ -477,5 +478,94 @@ func TestDivergenceNamesTheStep(t *testing.T) {
 	e, ok := AsError(err)
 	if !ok || e.Field != "register.step" || e.Chain < 0 || !strings.Contains(e.Reason, "diverged") || res.Finished.Reason != Failed {
 		t.Fatalf("got %v (%v)", err, res.Finished.Reason)
+	}
+}
+
+// The divergence watch's pass over the positions finds what its
+// definition says (reference: the definition, evaluated directly below):
+// the largest |x − centre| over every chain and coordinate and the first
+// chain reaching it, or the chain of the first value that is not finite,
+// on positions with ties, excursions that overflow, infinities and NaNs.
+func TestDivergenceObserveMatchesDefinition(t *testing.T) {
+	const dim, chains = 3, 4
+	special := []float64{0, 1, -1, 2, math.Inf(1), math.Inf(-1), math.NaN(), math.MaxFloat64, -math.MaxFloat64, 1e-300}
+	r := rand.New(rand.NewPCG(4, 4))
+	for n := range 20000 {
+		spec := &Spec{Dim: dim, Chains: chains, Start: []float64{0, 1, -math.MaxFloat64}, StartRows: 1}
+		d := newDivergence(spec)
+		x := make([]float64, dim*chains)
+		for i := range x {
+			x[i] = special[r.IntN(len(special))]
+			if r.IntN(3) == 0 { // mostly finite
+				x[i] = special[r.IntN(4)]
+			}
+		}
+		// The definition.
+		var e float64
+		chain, notFinite := 0, false
+		for i, v := range x {
+			if math.IsNaN(v) || math.IsInf(v, 0) {
+				chain, notFinite = i/dim, true
+				break
+			}
+			if a := math.Abs(v - d.Centre[i%dim]); a > e {
+				e, chain = a, i/dim
+			}
+		}
+		d.observe(x, 1)
+		if d.NotFinite != notFinite || notFinite && d.Chain != chain || !notFinite && (d.Last != e) {
+			t.Fatalf("case %d, x = %v: not finite %v, chain %d, excursion %v; want %v, %d, %v", n, x, d.NotFinite, d.Chain, d.Last, notFinite, chain, e)
+		}
+		if !notFinite {
+			// The chain reaching the largest excursion is reported when
+			// the step diverges: check it through a step past the window.
+			d2 := newDivergence(spec)
+			d2.Ref = math.SmallestNonzeroFloat64
+			if d2.observe(x, d2.Window+1) && e > 0 && d2.Chain != chain {
+				t.Fatalf("case %d, x = %v: chain %d, want %d", n, x, d2.Chain, chain)
+			}
+		}
+	}
+}
+
+// The Stein window takes the scores of the kept draws from the first
+// gradient request after a kept step when, and only when, that request
+// asks at the kept draws (reference: that definition): a request asking
+// at the kernel's own positions slice (taken without a comparison), a
+// copy of it (compared value by value) and a request elsewhere give two
+// identical windows and an empty one.
+func TestScoresOfKeptDrawsByReferenceOrValue(t *testing.T) {
+	const dim, chains = 3, 4
+	spec := Spec{Dim: dim, Chains: chains, Kernel: "lmc", Start: make([]float64, dim), StartRows: 1, Step: 0.1, Seed: 5}
+	entry, ok := lookupKernel("lmc")
+	if !ok {
+		t.Fatal("no lmc kernel")
+	}
+	k := entry.buildKernel(&spec)
+	ref, cp, off := newMonitor(dim, chains, nil), newMonitor(dim, chains, nil), newMonitor(dim, chains, nil)
+	a := kernels.NewAnswer(chains, dim)
+	for range 50 {
+		req := k.Next()
+		for i, x := range req.Points[:chains*dim] {
+			a.Grad[i] = -x // N(0, I)
+		}
+		copied := *req
+		copied.Points = slices.Clone(req.Points)
+		moved := copied
+		moved.Points = slices.Clone(req.Points)
+		moved.Points[len(moved.Points)-1] += 1e-9
+		ref.answered(req, a)
+		cp.answered(&copied, a)
+		off.answered(&moved, a)
+		k.Tell(a)
+		for _, m := range []*monitor{ref, cp, off} {
+			m.kept(k)
+		}
+	}
+	if ref.ksd.Seen() == 0 || ref.ksd.Seen() != cp.ksd.Seen() || off.ksd.Seen() != 0 {
+		t.Fatalf("rounds offered: by reference %d, by value %d, elsewhere %d (want equal, nonzero, and 0)", ref.ksd.Seen(), cp.ksd.Seen(), off.ksd.Seen())
+	}
+	if r, c := ref.ksd.Result(), cp.ksd.Result(); r != c {
+		t.Errorf("discrepancy by reference %+v, by value %+v", r, c)
 	}
 }

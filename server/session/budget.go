@@ -177,10 +177,10 @@ func budgetOf(s *Spec, k *kernelEntry, lim Limits) Budget {
 
 	// Diagnostics: the thinned windows of the monitor (see newMonitor).
 	ksdRows, _, histChains, histCap := monitorSizes(s.Dim, s.Chains)
-	// The Stein window keeps draws and scores; the history keeps draws and
-	// batch sums, and its summaries a scratch of about 11 values per kept
-	// draw and chain (diag.NewHistory).
-	add("register.dim", "diagnostics windows", (2*float64(ksdRows)*dim+float64(histChains*histCap)*(2*dim+11))*8)
+	// The Stein window keeps draws and scores; the history keeps draws
+	// (diag.NewDrawHistory), and its summaries a scratch of about 11
+	// values per kept draw and chain.
+	add("register.dim", "diagnostics windows", (2*float64(ksdRows)*dim+float64(histChains*histCap)*(dim+11))*8)
 	// A judgement's snapshots of them and the Stein assessment's scratch
 	// (judge.go).
 	add("register.dim", "diagnostics judgement", judgeScratch(s.Dim, s.Chains)*8)

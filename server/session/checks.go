@@ -314,13 +314,23 @@ func (d *divergence) observe(x []float64, k int) bool {
 	dim := len(d.Centre)
 	var e float64
 	chain := 0
-	for i, v := range x {
-		if math.IsNaN(v) || math.IsInf(v, 0) {
-			d.At, d.NotFinite, d.AtExcursion, d.Chain = k, true, math.Inf(1), i/dim
-			return true
-		}
-		if a := math.Abs(v - d.Centre[i%dim]); a > e {
-			e, chain = a, i/dim
+	// Chain by chain, so that the centre is indexed without a division
+	// per value, and one comparison per value in the common case: a value
+	// that is not finite makes its excursion NaN or +Inf, which fails
+	// a < e (as a new largest one does), so only those are looked at
+	// further (v−v is 0 for a finite v, NaN for ±Inf and NaN).
+	for c := range len(x) / dim {
+		centre := d.Centre[:dim]
+		for j, v := range x[c*dim : (c+1)*dim] {
+			if a := math.Abs(v - centre[j]); !(a < e) {
+				if v-v != 0 {
+					d.At, d.NotFinite, d.AtExcursion, d.Chain = k, true, math.Inf(1), c
+					return true
+				}
+				if a > e {
+					e, chain = a, c
+				}
+			}
 		}
 	}
 	if d.Last > 0 && e >= divergenceGrowth*d.Last {

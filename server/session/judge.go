@@ -72,7 +72,7 @@ type judgement struct {
 func judgeScratch(dim, chains int) float64 {
 	ksdCap, _, histChains, histCap := monitorSizes(dim, chains)
 	m := float64(min(ksdCap, 2*steinTestDraws))
-	return 2*float64(ksdCap*dim) + 2*float64(histChains*histCap*dim) + 11*float64(histChains*histCap) + // snapshots
+	return 2*float64(ksdCap*dim) + float64(histChains*histCap*dim) + 11*float64(histChains*histCap) + // snapshots
 		2*float64(ksdCap*dim) + m*m + 2*m*steinFinalReplicates // assessment
 }
 
@@ -171,7 +171,7 @@ func (m *monitor) start(seed uint64, step int, stein bool) {
 	}
 	if m.bg.hist == nil { // the snapshots, made once
 		ksdCap, ksdChains, histChains, histCap := monitorSizes(m.dim, m.chains)
-		m.bg.hist, m.bg.ksd = diag.NewHistory(histChains, m.dim, histCap), diag.NewStreamKSD(diag.IMQ{}, m.dim, ksdChains, ksdCap)
+		m.bg.hist, m.bg.ksd = diag.NewDrawHistory(histChains, m.dim, histCap), diag.NewStreamKSD(diag.IMQ{}, m.dim, ksdChains, ksdCap)
 		m.bg.hist.Reserve() // the summaries' scratch at once, not as the judged windows grow
 		m.bg.chainSum = make([]float64, len(m.chainSum))
 	}

@@ -33,7 +33,7 @@ func BenchmarkJudgeCostModel(b *testing.B) {
 							x[i] = 0.9*x[i] + r.NormFloat64()
 							g[i] = -x[i]
 						}
-						m.hist.Add(pick(m.histIdx, m.dim, x, &m.histX))
+						m.hist.AddRows(x, m.histIdx)
 						m.addKSD(x, g)
 					}
 					model := m.judgeWork(stein, steinReplicates)

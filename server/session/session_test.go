@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"math"
+	"math/rand/v2"
 	"strings"
 	"testing"
 	"time"
@@ -413,6 +414,56 @@ func TestSummaryMatchesDraws(t *testing.T) {
 		sd := math.Sqrt((s2[i] - n*mean*mean) / (n - 1))
 		if p.Name != spec.Names[i] || p.Count != 800 || math.Abs(p.Mean-mean) > 1e-12 || math.Abs(p.SD-sd) > 1e-9 {
 			t.Fatalf("summary %+v, want mean %v sd %v count 800", p, mean, sd)
+		}
+	}
+}
+
+// The running per-coordinate mean and sum of squared deviations that the
+// final summaries report are, bit for bit, those of the definition
+// evaluated one chain at a time (reference: the step's mean, its squared
+// deviations, then the pairwise update of Chan, Golub & LeVeque 1979,
+// written out below), for numbers of chains on either side of a multiple
+// of four.
+func TestAccumulateIsTheDefinition(t *testing.T) {
+	r := rand.New(rand.NewPCG(8, 9))
+	for _, chains := range []int{1, 2, 3, 4, 5, 7, 8, 9, 64} {
+		for _, dim := range []int{1, 3, 10} {
+			s := &Session{mean: make([]float64, dim), m2: make([]float64, dim)}
+			mean, m2, count := make([]float64, dim), make([]float64, dim), 0.0
+			for range 20 {
+				x := make([]float64, chains*dim)
+				for i := range x {
+					x[i] = 1e3 + r.NormFloat64()*r.Float64()
+				}
+				s.accumulate(x, dim, chains)
+				sm, s2 := make([]float64, dim), make([]float64, dim)
+				for c := range chains {
+					for i := range dim {
+						sm[i] += x[c*dim+i]
+					}
+				}
+				for i := range sm {
+					sm[i] *= 1 / float64(chains)
+				}
+				for c := range chains {
+					for i := range dim {
+						d := x[c*dim+i] - sm[i]
+						s2[i] += d * d
+					}
+				}
+				n := count + float64(chains)
+				for i := range sm {
+					d := sm[i] - mean[i]
+					mean[i] += d * (float64(chains) / n)
+					m2[i] += s2[i] + d*d*(count*float64(chains)/n)
+				}
+				count = n
+			}
+			for i := range dim {
+				if s.mean[i] != mean[i] || s.m2[i] != m2[i] || s.count != int64(count) {
+					t.Fatalf("%d chains, dim %d, coordinate %d: mean %v, m2 %v; want %v, %v", chains, dim, i, s.mean[i], s.m2[i], mean[i], m2[i])
+				}
+			}
 		}
 	}
 }
