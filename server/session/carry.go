@@ -32,6 +32,16 @@ type carrier struct {
 	frames []heldFrame
 	points []Points
 	draws  []Draws
+	// book is set when a kept step's bookkeeping (the final summaries'
+	// running moments, the follow log) waits for the burst to go out:
+	// the draws are x (the kernel's positions, unchanged until the next
+	// step), numbered from bookSeq.
+	book    bool
+	bookSeq uint64
+	x       []float64
+	logged  Draws
+	// progress is a Progress frame of the burst, logged after its draws.
+	progress *Progress
 }
 
 // hold is the send function of a held burst.
@@ -57,6 +67,7 @@ func (s *Session) carrying(r *run) bool {
 	c := &s.carry
 	c.on = s.spec.DrawsInPoints && r.pending
 	c.frames, c.points, c.draws = c.frames[:0], c.points[:0], c.draws[:0]
+	c.book, c.progress = false, nil
 	return c.on
 }
 
@@ -98,7 +109,28 @@ func (s *Session) release(send func(Frame) error) error {
 			return err
 		}
 	}
+	s.bookCarried()
 	return nil
+}
+
+// bookCarried does the bookkeeping of the draws sent in the burst just
+// released: what sendDraws does before it sends when nothing is held.
+func (s *Session) bookCarried() {
+	c := &s.carry
+	if c.book {
+		c.book = false
+		dim, chains := s.spec.Dim, s.spec.Chains
+		s.accumulate(c.x, dim, chains)
+		if s.log != nil {
+			c.logged = Draws{Seq: c.bookSeq, Rows: chains, Dim: dim, Values: c.x[:chains*dim],
+				Chains: s.drawChains[:chains], Iterations: s.drawIters[:chains]}
+			s.log.append(&c.logged) // full values
+		}
+	}
+	if c.progress != nil {
+		s.log.progress(c.progress)
+		c.progress = nil
+	}
 }
 
 // fitsWith reports whether Draws frame d may ride in Points frame p: p is

@@ -419,6 +419,7 @@ func (s *Session) end(r *run, o outcome) (Result, error) {
 		p := s.progress(time.Now(), false)
 		return Result{Finished: Finished{Reason: o.reason, Message: o.msg, Progress: p}, Kernel: s.kernel}, o.err
 	}
+	s.carry.on = false // a burst cut short by an error: what is pending goes out below
 	if !o.quiet {
 		if err := s.flush(r, nil); err != nil {
 			o = broken(err)
@@ -897,7 +898,11 @@ func (s *Session) afterStep(send func(Frame) error, srcs []drawSource) error {
 		s.lastProgress = now
 		p := s.progress(now, false)
 		if s.log != nil {
-			s.log.progress(&p)
+			if s.carry.on {
+				s.carry.progress = &p // logged after the draws held with it (bookCarried)
+			} else {
+				s.log.progress(&p)
+			}
 		}
 		return send(&p)
 	}
@@ -918,7 +923,14 @@ func (s *Session) progressInterval() time.Duration {
 func (s *Session) sendDraws(step int64, send func(Frame) error, srcs []drawSource) error {
 	x := s.kernel.Positions()
 	dim, chains := s.spec.Dim, s.spec.Chains
-	s.accumulate(x, dim, chains)
+	if s.carry.on {
+		// The frames are held until the request's Points frames go out:
+		// the bookkeeping waits for them (carry.go, bookCarried), so that
+		// it overlaps the client's evaluation instead of delaying it.
+		s.carry.book, s.carry.bookSeq, s.carry.x = true, s.seq, x
+	} else {
+		s.accumulate(x, dim, chains)
+	}
 	// No references while a resumed client has not caught up: those draws
 	// may be trimmed (skipSent), and a resumed client holds no points.
 	// Nor once workers share the rows: the owner's stream may not hold the
@@ -953,7 +965,7 @@ func (s *Session) sendDraws(step int64, send func(Frame) error, srcs []drawSourc
 			hi := min(lo+per, src.hi)
 			s.draws = Draws{Seq: s.seq, Rows: hi - lo, Dim: dim, Values: x[lo*dim : hi*dim],
 				Chains: s.drawChains[lo:hi], Iterations: s.drawIters[lo:hi]}
-			if s.log != nil {
+			if s.log != nil && !s.carry.on {
 				s.log.append(&s.draws) // full values
 			}
 			if refs && src.req != nil && s.anyPointRow(lo, hi) {
