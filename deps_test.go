@@ -54,13 +54,14 @@ var kernelForbid = []string{
 // layerRules encodes the layering of DEVELOPERS.md, "Import rules":
 //
 //	cmd/sluice ───────────────▶ server, client, kernels/...
-//	server (gRPC adapter) ────▶ server/session, proto, kernels/..., internal/wire   (grpc, zap)
+//	server (gRPC adapter) ────▶ server/session, proto, kernels/..., internal/wire, internal/codec   (grpc, zap)
 //	server/session (engine) ──▶ kernels, kernels/diag, kernels/bound, internal/wire (no grpc, no proto, no zap)
 //	server/store ─────────────▶ std, bbolt, pgx                                  (no grpc, no proto, no zap)
 //	kernels/diag, kernels/bound, kernels/targets ─▶ std, gonum
 //	kernels ──────────────────▶ std, gonum
-//	client ───────────────────▶ proto, internal/wire, client/history (grpc; never server or kernels)
+//	client ───────────────────▶ proto, internal/wire, internal/codec, client/history (grpc; never server or kernels)
 //	internal/wire ────────────▶ std                                 (the wire's array layout and frame sizing)
+//	internal/codec ───────────▶ internal/wire                       (grpc, protobuf: the hot frames' codec)
 //	deploy ───────────────────▶ nothing of ours                         (Kubernetes API types, yaml)
 //	client/history ───────────▶ std                                 (the progress history file)
 //	internal/report ──────────▶ client/history, kernels/diag             (gonum, gonum/plot)
@@ -81,6 +82,14 @@ var layerRules = []layerRule{
 		// shared by client, adapter and engine: the standard library only
 		pkgs:   "sluice/internal/wire",
 		forbid: []string{"..."},
+	},
+	{
+		// The codec of the hot frames, shared by client and adapter: gRPC
+		// and protobuf, the wire's array layout, no message of ours.
+		pkgs:          "sluice/internal/codec",
+		allowProject:  []string{"sluice/internal/wire"},
+		allowExternal: []string{"google.golang.org/grpc/...", "google.golang.org/protobuf/..."},
+		forbid:        []string{"sluice/proto/...", "sluice/server/...", "sluice/client/...", "sluice/kernels/...", "sluice/cmd/..."},
 	},
 	{
 		pkgs:          "sluice/server/session/...",
@@ -104,13 +113,13 @@ var layerRules = []layerRule{
 	},
 	{
 		pkgs:          "sluice/server",
-		allowProject:  []string{"sluice/server/...", "sluice/proto/...", "sluice/kernels/...", "sluice/internal/wire"},
+		allowProject:  []string{"sluice/server/...", "sluice/proto/...", "sluice/kernels/...", "sluice/internal/wire", "sluice/internal/codec"},
 		allowExternal: []string{"..."},
 		forbid:        []string{"sluice/client/...", "sluice/cmd/..."},
 	},
 	{
 		pkgs:          "sluice/client/...",
-		allowProject:  []string{"sluice/client/...", "sluice/proto/...", "sluice/internal/wire"},
+		allowProject:  []string{"sluice/client/...", "sluice/proto/...", "sluice/internal/wire", "sluice/internal/codec"},
 		allowExternal: []string{"..."},
 		forbid:        []string{"sluice/server/...", "sluice/kernels/...", "sluice/cmd/..."},
 	},

@@ -5,7 +5,6 @@ import (
 	"errors"
 	"fmt"
 	"math"
-	"math/bits"
 	"net"
 	"runtime/debug"
 	"sync"
@@ -23,6 +22,7 @@ import (
 	"google.golang.org/grpc/status"
 	"google.golang.org/protobuf/proto"
 
+	"sluice/internal/codec"
 	sluicev1 "sluice/proto/sluice/v1"
 	"sluice/server/metrics"
 	"sluice/server/session"
@@ -201,65 +201,10 @@ const (
 	ConnWindowBytes   = 16 << 20
 )
 
-// BufferPool returns gRPC buffers in power-of-two sizes from 256 B to
-// 64 MiB, without clearing them. gRPC's default pool jumps from 32 KiB to
-// 1 MiB and clears the whole buffer it hands out, so a 51 KB message (64
-// chains × 100 float64) cleared 1 MiB per frame; measured, clearing was a
-// sixth of a session's CPU time. gRPC fills every buffer it gets before
-// reading it (a received message is read in full, an encoded one written
-// in full), which is why it keeps such dirty pools itself for its framer;
-// TestTransportIsTransparent checks bit-identical draws through this pool
-// at several message sizes. Clients dialling sluice benefit from the same
-// pool (experimental.WithBufferPool(server.BufferPool())).
-func BufferPool() mem.BufferPool { return bufferPool }
-
-var bufferPool = newPowerPool(8, 26)
-
-// powerPool keeps one sync.Pool per power-of-two capacity.
-type powerPool struct {
-	lo, hi uint
-	pools  []sync.Pool
-}
-
-func newPowerPool(lo, hi uint) *powerPool {
-	return &powerPool{lo: lo, hi: hi, pools: make([]sync.Pool, hi-lo+1)}
-}
-
-// tier returns the index of the smallest tier holding n bytes, or -1.
-func (p *powerPool) tier(n int) int {
-	e := uint(bits.Len(uint(max(n, 1) - 1)))
-	if e < p.lo {
-		e = p.lo
-	}
-	if e > p.hi {
-		return -1
-	}
-	return int(e - p.lo)
-}
-
-// Get implements mem.BufferPool.
-func (p *powerPool) Get(n int) *[]byte {
-	t := p.tier(n)
-	if t < 0 {
-		b := make([]byte, n)
-		return &b
-	}
-	if b, ok := p.pools[t].Get().(*[]byte); ok {
-		*b = (*b)[:n]
-		return b
-	}
-	b := make([]byte, n, 1<<(uint(t)+p.lo))
-	return &b
-}
-
-// Put implements mem.BufferPool: buffers of a tier's exact capacity go
-// back to it, others to the collector.
-func (p *powerPool) Put(b *[]byte) {
-	c := cap(*b)
-	if t := p.tier(c); t >= 0 && c == 1<<(uint(t)+p.lo) {
-		p.pools[t].Put(b)
-	}
-}
+// BufferPool returns the buffer pool the server gives gRPC: power-of-two
+// sizes from 256 B to 64 MiB, not cleared (codec.Pool says why). Clients dialling sluice
+// benefit from the same pool (experimental.WithBufferPool(server.BufferPool())).
+func BufferPool() mem.BufferPool { return codec.Pool() }
 
 // Serve accepts connections on lis until Shutdown or Stop.
 func (s *Server) Serve(lis net.Listener) error { return s.grpc.Serve(lis) }
