@@ -111,25 +111,9 @@ func messageFromWire(f *sluicev1.SessionRequest, gradBuf *[]float64) session.Mes
 	switch f := f.GetFrame().(type) {
 	case *sluicev1.SessionRequest_Evaluations:
 		e := f.Evaluations
-		grad, err := floatsInto((*gradBuf)[:0], "evaluations.gradients", e.GetGradients())
-		if err != nil {
-			return session.Message{Err: err}
-		}
-		*gradBuf = grad
-		ld, err := floats("evaluations.log_densities", e.GetLogDensities())
-		if err != nil {
-			return session.Message{Err: err}
-		}
-		hess, err := floats("evaluations.hessians", e.GetHessians())
-		if err != nil {
-			return session.Message{Err: err}
-		}
-		hv, err := floats("evaluations.hessian_vectors", e.GetHessianVectors())
-		if err != nil {
-			return session.Message{Err: err}
-		}
-		return session.Message{Evaluations: &session.Evaluations{RequestID: e.GetRequestId(), FirstRow: int(e.GetFirstRow()),
-			Rows: int(e.GetRows()), Dim: int(e.GetDim()), Grad: grad, LogDensity: ld, Hessian: hess, HessVec: hv}}
+		return evaluationsMessage(e.GetRequestId(), e.GetFirstRow(), e.GetRows(), e.GetDim(), answerArrays{
+			grad: wireFloats{b: e.GetGradients()}, logDens: wireFloats{b: e.GetLogDensities()},
+			hess: wireFloats{b: e.GetHessians()}, hessVec: wireFloats{b: e.GetHessianVectors()}}, gradBuf)
 	case *sluicev1.SessionRequest_Stop:
 		if n := len(f.Stop.GetReason()); n > MaxStopReasonBytes {
 			return session.Message{Err: session.BadField("stop.reason", "is %d bytes long, the limit is %d", n, MaxStopReasonBytes)}
@@ -144,6 +128,34 @@ func messageFromWire(f *sluicev1.SessionRequest, gradBuf *[]float64) session.Mes
 	}
 }
 
+// answerArrays are an Evaluations frame's arrays, as received.
+type answerArrays struct{ grad, logDens, hess, hessVec wireFloats }
+
+// evaluationsMessage turns an Evaluations frame into an engine Message:
+// gradients are decoded into *gradBuf (grown as needed, see
+// messageFromWire), the other arrays into new slices.
+func evaluationsMessage(requestID uint64, firstRow, rows, dim int32, a answerArrays, gradBuf *[]float64) session.Message {
+	grad, err := a.grad.into(*gradBuf, "evaluations.gradients")
+	if err != nil {
+		return session.Message{Err: err}
+	}
+	*gradBuf = grad
+	ld, err := a.logDens.fresh("evaluations.log_densities")
+	if err != nil {
+		return session.Message{Err: err}
+	}
+	hess, err := a.hess.fresh("evaluations.hessians")
+	if err != nil {
+		return session.Message{Err: err}
+	}
+	hv, err := a.hessVec.fresh("evaluations.hessian_vectors")
+	if err != nil {
+		return session.Message{Err: err}
+	}
+	return session.Message{Evaluations: &session.Evaluations{RequestID: requestID, FirstRow: int(firstRow),
+		Rows: int(rows), Dim: int(dim), Grad: grad, LogDensity: ld, Hessian: hess, HessVec: hv}}
+}
+
 // encoder turns engine frames into wire frames, reusing its buffers: a
 // frame is fully serialised by Send before the next one is built.
 type encoder struct {
@@ -154,6 +166,9 @@ type encoder struct {
 	dbuf    []byte
 	dchains []int32
 	rows    []int32
+	// handPoints and handDraws send the hot frames by hand (message).
+	handPoints pointsFrame
+	handDraws  drawsFrame
 	// maxParams is how many per-parameter entries a Progress or Finished
 	// frame may carry within the message limit (0: no cap).
 	maxParams int
@@ -225,20 +240,10 @@ func (e *encoder) frame(f session.Frame) *sluicev1.SessionResponse {
 			PlannedSteps: int64(f.PlannedSteps), ResumeToken: f.Token, Resumed: f.Resumed,
 			Metric: metricReportToWire(f.Metric), Tuning: tuningToWire(f.Tuning)}}}
 	case *session.Points:
-		var q []sluicev1.Quantity
-		if f.Need.Has(kernels.NeedGradient) {
-			q = append(q, sluicev1.Quantity_QUANTITY_GRADIENT)
-		}
-		if f.Need.Has(kernels.NeedLogDensity) {
-			q = append(q, sluicev1.Quantity_QUANTITY_LOG_DENSITY)
-		}
-		if f.Need.Has(kernels.NeedHessian) {
-			q = append(q, sluicev1.Quantity_QUANTITY_HESSIAN)
-		}
 		p := &sluicev1.Points{RequestId: f.RequestID, FirstRow: int32(f.FirstRow), Rows: int32(f.Rows), Dim: int32(f.Dim),
-			Points: e.floats(f.Points), Chains: e.ints(f.Chains), TotalRows: int32(f.TotalRows)}
+			Points: e.floats(f.Points), Chains: e.ints(f.Chains), TotalRows: int32(f.TotalRows),
+			Quantities: quantities([]sluicev1.Quantity(nil), f.Need)}
 		if f.Need.Has(kernels.NeedHessianVector) {
-			q = append(q, sluicev1.Quantity_QUANTITY_HESSIAN_VECTOR)
 			p.Vectors = wire.AppendFloats(nil, f.Vectors)
 		}
 		if f.Groups != nil {
@@ -248,7 +253,6 @@ func (e *encoder) frame(f session.Frame) *sluicev1.SessionResponse {
 			}
 		}
 		p.FullData, p.Replicates = f.FullData, int32(f.Replicates)
-		p.Quantities = q
 		if f.Draws != nil {
 			p.Draws = e.draws(f.Draws)
 		}
@@ -271,6 +275,21 @@ func (e *encoder) frame(f session.Frame) *sluicev1.SessionResponse {
 			ParametersOmitted: int32(omitted), Checks: checksToWire(f.Checks, e.maxText)}}}
 	}
 	panic("server: unknown frame type")
+}
+
+// message returns what a session stream sends for f: the hot frames
+// (Points, Draws) as codec.Senders written straight from f, the others
+// as the messages of frame. It is valid while f is.
+func (e *encoder) message(f session.Frame) any {
+	switch f := f.(type) {
+	case *session.Points:
+		e.handPoints.set(f)
+		return &e.handPoints
+	case *session.Draws:
+		e.handDraws.set(f)
+		return &e.handDraws
+	}
+	return e.frame(f)
 }
 
 var stateToWire = map[session.State]sluicev1.State{

@@ -99,15 +99,26 @@ type observedSession struct {
 
 func (o *observedSession) RecvMsg(msg any) error {
 	err := o.ServerStream.RecvMsg(msg)
-	if r, ok := msg.(*sluicev1.SessionRequest); ok && err == nil {
+	if err != nil {
+		return err
+	}
+	switch r := msg.(type) {
+	case *request: // the session's reader (wireframes.go)
+		if rows, ok := r.evaluationRows(); ok {
+			o.m.Evaluations(int64(rows))
+		}
+	case *sluicev1.SessionRequest:
 		if e := r.GetEvaluations(); e != nil {
 			o.m.Evaluations(int64(e.GetRows()))
 		}
 	}
-	return err
+	return nil
 }
 
 func (o *observedSession) SendMsg(msg any) error {
+	if p, ok := msg.(*pointsFrame); ok && p.p.FirstRow == 0 { // sent by hand (wireframes.go)
+		o.step()
+	}
 	if r, ok := msg.(*sluicev1.SessionResponse); ok {
 		switch {
 		case r.GetRegistered() != nil:
@@ -116,11 +127,7 @@ func (o *observedSession) SendMsg(msg any) error {
 				o.m.AddSessions(metrics.Running, 1)
 			}
 		case r.GetPoints() != nil && r.GetPoints().GetFirstRow() == 0:
-			now := time.Now()
-			if !o.lastPoints.IsZero() {
-				o.m.Step(now.Sub(o.lastPoints))
-			}
-			o.lastPoints = now
+			o.step()
 		case r.GetFinished() != nil:
 			if !o.finished {
 				o.finished = true
@@ -130,6 +137,16 @@ func (o *observedSession) SendMsg(msg any) error {
 		}
 	}
 	return o.ServerStream.SendMsg(msg)
+}
+
+// step times a step: the time since the last request's first Points
+// frame.
+func (o *observedSession) step() {
+	now := time.Now()
+	if !o.lastPoints.IsZero() {
+		o.m.Step(now.Sub(o.lastPoints))
+	}
+	o.lastPoints = now
 }
 
 // byteCounter is a stats.Handler counting payload bytes on the wire.

@@ -3,7 +3,6 @@ package server
 import (
 	"context"
 	"errors"
-	"fmt"
 	"math"
 	"net"
 	"runtime/debug"
@@ -20,7 +19,6 @@ import (
 	"google.golang.org/grpc/mem"
 	"google.golang.org/grpc/reflection"
 	"google.golang.org/grpc/status"
-	"google.golang.org/protobuf/proto"
 
 	"sluice/internal/codec"
 	sluicev1 "sluice/proto/sluice/v1"
@@ -172,6 +170,10 @@ func New(o Options) *Server {
 		grpc.ChainUnaryInterceptor(s.recoverUnary),
 		grpc.ChainStreamInterceptor(s.recoverStream),
 		experimental.BufferPool(BufferPool()),
+		// Every message through the codec: a session's hot frames by
+		// hand, everything else (health and reflection included) by the
+		// standard proto codec (internal/codec).
+		grpc.ForceServerCodecV2(codec.New(BufferPool())),
 		grpc.InitialWindowSize(StreamWindowBytes), grpc.InitialConnWindowSize(ConnWindowBytes),
 	}, o.GRPCOptions...)
 	s.grpc = grpc.NewServer(gopts...)
@@ -325,29 +327,21 @@ func (s *Server) serveSession(stream sluicev1.SluiceService_SessionServer, sess 
 		// takes messages in order and has finished with message j (copied
 		// its values) before it takes j+1; the reader is at most inboxSize
 		// messages ahead of it, plus the one in hand, so a ring of
-		// inboxSize+2 buffers is never overwritten while in use.
+		// inboxSize+2 buffers is never overwritten while in use. A frame
+		// is received into req, in gRPC's own buffers, and an Evaluations
+		// frame is decoded from there (see request); the buffers go back
+		// to gRPC before the message goes to the engine.
 		var ring [inboxSize + 2][]float64
+		var req request
+		defer req.Release()
+		lim := answerLimits{limit: limit, maxFrame: maxFrame, maxGrad: maxGrad, replicates: sp0.Noise.Replicates}
 		for n := 0; ; n++ {
-			f, err := stream.Recv()
 			var m session.Message
-			switch {
-			case err != nil:
+			if err := stream.RecvMsg(&req); err != nil {
 				m = session.Message{Err: recvError("evaluations", err)}
-			case int64(proto.Size(f)) > limit:
-				m = session.Message{Err: &session.Error{Kind: session.TooLarge, Field: "evaluations", Chain: -1, Coord: -1,
-					Reason: fmt.Sprintf("message of %d bytes exceeds the session's limit of %d bytes", proto.Size(f), limit)}}
-			case len(f.GetEvaluations().GetGradients()) > 8*maxGrad:
-				// Decoded, it would grow the reader's buffers beyond what
-				// registration reserved.
-				m = session.Message{Err: session.BadField("evaluations.gradients",
-					"carries %d values, more than any answer part of this session holds (%d: rows × replicates declared at registration (%d) × dim)",
-					len(f.GetEvaluations().GetGradients())/8, maxGrad, sp0.Noise.Replicates)}
-			case int64(proto.Size(f)) > maxFrame:
-				m = session.Message{Err: &session.Error{Kind: session.TooLarge, Field: "evaluations", Chain: -1, Coord: -1,
-					Reason: fmt.Sprintf("message of %d bytes exceeds the largest answer this session needs (%d bytes; the message limit is %d)",
-						proto.Size(f), maxFrame, limit)}}
-			default:
-				m = messageFromWire(f, &ring[n%len(ring)])
+			} else {
+				m = req.message(lim, &ring[n%len(ring)])
+				req.Release()
 			}
 			select {
 			case in <- m:
@@ -365,7 +359,7 @@ func (s *Server) serveSession(stream sluicev1.SluiceService_SessionServer, sess 
 	log.Info("session started", zap.Int("dim", sp.Dim), zap.Int("chains", sp.Chains),
 		zap.String("kernel", sp.Kernel), zap.Float64("step", sp.Step), zap.Uint64("seed", sp.Seed))
 	enc := encoder{maxParams: paramCap(limit), maxText: textCap(limit)}
-	res, err := sess.Run(ctx, in, func(f session.Frame) error { return stream.Send(enc.frame(f)) })
+	res, err := sess.Run(ctx, in, func(f session.Frame) error { return stream.SendMsg(enc.message(f)) })
 	l.stop() // no renewal after the session stopped
 	if e, ok := session.AsError(err); ok && e.Kind == session.Timeout {
 		var wasSuspended bool

@@ -20,6 +20,7 @@ import (
 	reflectpb "google.golang.org/grpc/reflection/grpc_reflection_v1"
 	"google.golang.org/grpc/status"
 	"google.golang.org/grpc/test/bufconn"
+	"google.golang.org/protobuf/proto"
 
 	"sluice/client"
 	"sluice/kernels"
@@ -350,8 +351,21 @@ type countingStream struct {
 
 func (s *countingStream) RecvMsg(m any) error {
 	err := s.ClientStream.RecvMsg(m)
-	r, ok := m.(*sluicev1.SessionResponse)
-	if !ok || err != nil {
+	if err != nil {
+		return err
+	}
+	var r *sluicev1.SessionResponse
+	switch m := m.(type) {
+	case *sluicev1.SessionResponse:
+		r = m
+	case interface{ Bytes() []byte }:
+		// The Go client's session codec holds a frame as received
+		// (internal/codec.Frame): read it here as any client would.
+		r = new(sluicev1.SessionResponse)
+		if proto.Unmarshal(m.Bytes(), r) != nil {
+			return err
+		}
+	default:
 		return err
 	}
 	w := r.GetDraws()
