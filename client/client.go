@@ -520,7 +520,9 @@ func OnProgress(f func(*Progress)) Option { return func(c *config) { c.onProgres
 // OnDraws and the Summary see the same values either way.
 func FullDraws() Option { return func(c *config) { c.fullDraws = true } }
 
-// WithCallOptions adds gRPC call options to the session's stream.
+// WithCallOptions adds gRPC call options to the session's stream. The
+// stream keeps its own codec (internal/codec: protobuf, the hot frames
+// read and written by hand), whatever codec option is given.
 func WithCallOptions(o ...grpc.CallOption) Option {
 	return func(c *config) { c.callOpts = append(c.callOpts, o...) }
 }
@@ -553,10 +555,13 @@ func Run(ctx context.Context, cc grpc.ClientConnInterface, spec Spec, eval Evalu
 	if limit <= 0 {
 		limit = 4 << 20
 	}
+	// The session's codec (wireframes.go) comes last: it reads and writes
+	// the hot frames by hand, so no other may replace it on this stream.
 	callOpts := append([]grpc.CallOption{grpc.MaxCallRecvMsgSize(int(limit)), grpc.MaxCallSendMsgSize(int(limit))}, cfg.callOpts...)
+	callOpts = append(callOpts, withCodec())
 	ctx, cancel := context.WithCancel(ctx)
 	defer cancel()
-	r := runner{cfg: cfg, eval: eval, sum: &Summary{}}
+	r := runner{cfg: cfg, eval: eval, sum: &Summary{}, hand: true}
 	if cfg.keepDraws {
 		r.sum.Draws = &DrawSet{Dim: spec.Dim}
 	}
@@ -707,11 +712,28 @@ type runner struct {
 	// held holds the points of the latest requests, which Draws frames
 	// may refer to (heldRequests).
 	held heldRequests
+	// hand says the stream has the session codec: frames are received
+	// into rx and Evaluations sent as ev (wireframes.go).
+	hand bool
+	rx   response
+	ev   evalFrame
+}
+
+// recv receives the next frame (see response for how long it is valid).
+func (r *runner) recv() (*sluicev1.SessionResponse, error) {
+	if !r.hand {
+		return r.stream.Recv()
+	}
+	if err := r.stream.RecvMsg(&r.rx); err != nil {
+		return nil, err
+	}
+	return r.rx.message()
 }
 
 func (r *runner) loop(ctx context.Context) (*Summary, error) {
+	defer r.rx.Release()
 	for {
-		f, err := r.stream.Recv()
+		f, err := r.recv()
 		if errors.Is(err, io.EOF) {
 			if !r.finished {
 				return r.sum, errStreamEnded
@@ -830,6 +852,22 @@ func (r *runner) answer(ctx context.Context, p *sluicev1.Points, h *heldRequest)
 		r.evalErr = err
 		return r.stream.Send(&sluicev1.SessionRequest{Frame: &sluicev1.SessionRequest_Stop{Stop: &sluicev1.Stop{Reason: "evaluator failed: " + err.Error()}}})
 	}
+	if r.hand { // written straight from the batch (wireframes.go)
+		r.ev = evalFrame{requestID: ev.RequestId, firstRow: ev.FirstRow, rows: ev.Rows, dim: ev.Dim}
+		if b.WantGradient {
+			r.ev.grad = b.Grad
+		}
+		if b.WantLogDensity {
+			r.ev.logDens = b.LogDensity
+		}
+		if b.WantHessian {
+			r.ev.hess = b.Hessian
+		}
+		if b.WantHessianVector {
+			r.ev.hvecs = b.HessVec
+		}
+		return r.stream.SendMsg(&r.ev)
+	}
 	r.out = r.out[:0]
 	if b.WantGradient {
 		r.out = putFloats(r.out, b.Grad)
@@ -853,8 +891,9 @@ func (r *runner) answer(ctx context.Context, p *sluicev1.Points, h *heldRequest)
 func (r *runner) hold(p *sluicev1.Points) (*heldRequest, error) {
 	rows, dim, first, total := int(p.GetRows()), int(p.GetDim()), int(p.GetFirstRow()), int(p.GetTotalRows())
 	n := rows * dim
-	if len(p.GetPoints()) != 8*n || len(p.GetChains()) != rows {
-		return nil, fmt.Errorf("client: malformed points frame: %d bytes and %d chains for %d×%d", len(p.GetPoints()), len(p.GetChains()), rows, dim)
+	pts := r.rx.pointsOf(p) // where the frame was received, or p's bytes
+	if pts.size() != 8*n || len(p.GetChains()) != rows {
+		return nil, fmt.Errorf("client: malformed points frame: %d bytes and %d chains for %d×%d", pts.size(), len(p.GetChains()), rows, dim)
 	}
 	if dim < 1 || first < 0 || first+rows > total && first > 0 {
 		return nil, fmt.Errorf("client: malformed points frame: rows %d to %d of %d, dimension %d", first, first+rows, total, dim)
@@ -865,7 +904,7 @@ func (r *runner) hold(p *sluicev1.Points) (*heldRequest, error) {
 		firstChain = int(p.GetChains()[0])
 	}
 	h := r.held.take(p.GetRequestId(), total, dim, firstChain)
-	if _, err := wire.DecodeFloats(h.vals[first*dim:first*dim], p.GetPoints()); err != nil {
+	if _, err := pts.decode(h.vals[first*dim : first*dim]); err != nil {
 		return nil, fmt.Errorf("client: malformed points frame: %w", err)
 	}
 	return h, nil
