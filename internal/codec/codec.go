@@ -73,16 +73,16 @@ func (c *Codec) Marshal(v any) (mem.BufferSlice, error) {
 		return c.proto.Marshal(v)
 	}
 	n := s.WireSize()
-	if mem.IsBelowBufferPoolingThreshold(n) {
-		b := s.AppendWire(make([]byte, 0, n))
-		if len(b) != n {
-			return nil, fmt.Errorf("codec: %T wrote %d bytes, announced %d", v, len(b), n)
-		}
-		return mem.BufferSlice{mem.SliceBuffer(b)}, nil
+	// A buffer above gRPC's pooling threshold even for a small message,
+	// so that it goes back to the pool (mem.NewBuffer keeps smaller ones
+	// as plain slices, allocated anew every time).
+	size := max(n, 256)
+	for mem.IsBelowBufferPoolingThreshold(size) {
+		size *= 2
 	}
-	buf := c.pool.Get(n)
+	buf := c.pool.Get(size)
 	b := s.AppendWire((*buf)[:0])
-	if len(b) != n || &b[0] != &(*buf)[0] {
+	if len(b) != n || n > 0 && &b[0] != &(*buf)[0] {
 		c.pool.Put(buf)
 		return nil, fmt.Errorf("codec: %T wrote %d bytes, announced %d", v, len(b), n)
 	}
