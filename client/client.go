@@ -847,13 +847,12 @@ func (r *runner) answer(ctx context.Context, p *sluicev1.Points, h *heldRequest)
 		b.Vectors = getFloats(b.Vectors[:0], p.GetVectors())
 		b.HessVec = resize(b.HessVec, n)
 	}
-	ev := &sluicev1.Evaluations{RequestId: p.GetRequestId(), FirstRow: p.GetFirstRow(), Rows: p.GetRows(), Dim: p.GetDim()}
 	if err := r.eval(ctx, b); err != nil {
 		r.evalErr = err
 		return r.stream.Send(&sluicev1.SessionRequest{Frame: &sluicev1.SessionRequest_Stop{Stop: &sluicev1.Stop{Reason: "evaluator failed: " + err.Error()}}})
 	}
 	if r.hand { // written straight from the batch (wireframes.go)
-		r.ev = evalFrame{requestID: ev.RequestId, firstRow: ev.FirstRow, rows: ev.Rows, dim: ev.Dim}
+		r.ev = evalFrame{requestID: p.GetRequestId(), firstRow: p.GetFirstRow(), rows: p.GetRows(), dim: p.GetDim()}
 		if b.WantGradient {
 			r.ev.grad = b.Grad
 		}
@@ -868,6 +867,7 @@ func (r *runner) answer(ctx context.Context, p *sluicev1.Points, h *heldRequest)
 		}
 		return r.stream.SendMsg(&r.ev)
 	}
+	ev := &sluicev1.Evaluations{RequestId: p.GetRequestId(), FirstRow: p.GetFirstRow(), Rows: p.GetRows(), Dim: p.GetDim()}
 	r.out = r.out[:0]
 	if b.WantGradient {
 		r.out = putFloats(r.out, b.Grad)

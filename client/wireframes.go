@@ -82,14 +82,16 @@ const (
 // response is one frame received on a session stream, held where gRPC
 // received it (codec.Frame). A Points frame is read by hand into points,
 // whose Points field stays empty: its bytes are pts, read by hold; the
-// other arrays (vectors, a nested Draws frame's values) are copied out.
-// points and its slices are reused: valid until the next frame.
+// other arrays (vectors, a carried Draws frame's values) are copied out.
+// A Draws frame is read by hand into draws. msg, points, draws and their
+// slices are reused: valid until the next frame.
 type response struct {
 	codec.Frame
-	msg    sluicev1.SessionResponse
-	wrap   sluicev1.SessionResponse_Points
-	points sluicev1.Points
-	draws  sluicev1.Draws
+	msg        sluicev1.SessionResponse
+	wrapPoints sluicev1.SessionResponse_Points
+	wrapDraws  sluicev1.SessionResponse_Draws
+	points     sluicev1.Points
+	draws      sluicev1.Draws
 	// fast says points holds the frame; pts is where its points lie.
 	fast bool
 	pts  codec.Span
@@ -106,12 +108,18 @@ func (x *response) Hold(data mem.BufferSlice) {
 	x.fast = false
 }
 
+// Release implements codec.Frame's Release: the frame read by hand goes
+// with the buffers.
+func (x *response) Release() {
+	x.Frame.Release()
+	x.fast = false
+}
+
 // message returns the frame: read by hand when it is a Points frame,
 // else by proto.Unmarshal (into a new message, which the caller may keep).
 func (x *response) message() (*sluicev1.SessionResponse, error) {
-	if x.fast = x.parse(); x.fast {
-		x.wrap.Points = &x.points
-		x.msg.Frame = &x.wrap
+	if x.parse() {
+		x.fast = x.msg.GetPoints() != nil
 		return &x.msg, nil
 	}
 	m := new(sluicev1.SessionResponse)
@@ -133,18 +141,19 @@ func (x *response) pointsOf(p *sluicev1.Points) wireArray {
 	return wireArray{b: p.GetPoints()}
 }
 
-// parse reads a SessionResponse whose frame is points, as proto.Unmarshal
-// would (fields in any order, unknown ones skipped, the last occurrence
-// of a scalar or an array kept, repeated fields appended, messages given
-// twice merged); false for anything else, which proto.Unmarshal then
-// reads.
+// parse reads a SessionResponse whose frame is points or draws, as
+// proto.Unmarshal would (fields in any order, unknown ones skipped, the
+// last occurrence of a scalar or an array kept, repeated fields appended,
+// messages given twice merged), into x.msg; false for anything else
+// (another frame, both, none, input proto.Unmarshal may refuse), which
+// proto.Unmarshal then reads.
 func (x *response) parse() bool {
 	x.points = sluicev1.Points{}
 	x.draws = sluicev1.Draws{}
 	x.chains, x.groups, x.quantities = x.chains[:0], x.groups[:0], x.quantities[:0]
 	x.drawChains, x.pointRows, x.iterations = x.drawChains[:0], x.pointRows[:0], x.iterations[:0]
 	var p pointsParse
-	seen := false
+	var frame protowire.Number // the member of the oneof read
 	c := x.Cursor()
 	for !c.Done() {
 		num, typ, err := c.Tag()
@@ -152,14 +161,19 @@ func (x *response) parse() bool {
 			return false
 		}
 		switch {
-		case num == fieldResponsePoints && typ == protowire.BytesType:
+		case typ == protowire.BytesType && (num == fieldResponsePoints || num == fieldResponseDraws):
+			if frame != 0 && frame != num {
+				return false // the oneof set twice, to different frames
+			}
+			frame = num
 			s, err := c.Bytes()
-			if err != nil || !x.mergePoints(s, &p) {
+			if err != nil {
 				return false
 			}
-			seen = true
-		case typ == protowire.BytesType && (num == fieldResponseRegistered || num == fieldResponseDraws ||
-			num == fieldResponseProgress || num == fieldResponseFinished):
+			if num == fieldResponsePoints && !x.mergePoints(s, &p) || num == fieldResponseDraws && !x.mergeDraws(s, &p) {
+				return false
+			}
+		case typ == protowire.BytesType && (num == fieldResponseRegistered || num == fieldResponseProgress || num == fieldResponseFinished):
 			return false // another frame of the oneof
 		default:
 			if c.Skip(num, typ) != nil {
@@ -167,22 +181,29 @@ func (x *response) parse() bool {
 			}
 		}
 	}
-	if !seen {
+	switch frame {
+	case fieldResponsePoints:
+		x.pts = p.points
+		x.points.Chains, x.points.Quantities, x.points.MinibatchGroups = x.chains, x.quantities, x.groups
+		if p.vectors.Len > 0 {
+			x.vectors = x.AppendBytes(x.vectors[:0], p.vectors)
+			x.points.Vectors = x.vectors
+		}
+		if p.draws {
+			x.points.Draws = &x.draws
+		}
+		x.wrapPoints.Points = &x.points
+		x.msg.Frame = &x.wrapPoints
+	case fieldResponseDraws:
+		x.wrapDraws.Draws = &x.draws
+		x.msg.Frame = &x.wrapDraws
+	default:
 		return false
 	}
-	x.pts = p.points
-	x.points.Chains, x.points.Quantities, x.points.MinibatchGroups = x.chains, x.quantities, x.groups
-	if p.vectors.Len > 0 {
-		x.vectors = x.AppendBytes(x.vectors[:0], p.vectors)
-		x.points.Vectors = x.vectors
-	}
-	if p.draws {
-		x.draws.Chains, x.draws.Iterations, x.draws.PointRows = x.drawChains, x.iterations, x.pointRows
-		if p.values.Len > 0 {
-			x.values = x.AppendBytes(x.values[:0], p.values)
-			x.draws.Values = x.values
-		}
-		x.points.Draws = &x.draws
+	x.draws.Chains, x.draws.Iterations, x.draws.PointRows = x.drawChains, x.iterations, x.pointRows
+	if p.values.Len > 0 {
+		x.values = x.AppendBytes(x.values[:0], p.values)
+		x.draws.Values = x.values
 	}
 	return true
 }
