@@ -319,6 +319,12 @@ func (r *request) Hold(data mem.BufferSlice) {
 	r.parsed, r.fast, r.msg, r.err = false, false, nil, nil
 }
 
+// Release gives the buffers back to gRPC, and forgets what was read.
+func (r *request) Release() {
+	r.Frame.Release()
+	r.parsed, r.fast, r.msg, r.err = false, false, nil, nil
+}
+
 // parse reads the frame, once.
 func (r *request) parse() {
 	if r.parsed {
