@@ -4,6 +4,7 @@ import (
 	"context"
 	"fmt"
 	"math"
+	"runtime"
 	"slices"
 	"time"
 )
@@ -57,13 +58,18 @@ func timed(f func() error) (sample, error) {
 }
 
 // alternate runs a, then b, rounds times (A, B, A, B, …) and returns what
-// each cost per round.
+// each cost per round. The garbage is collected before each run, so that
+// neither side pays for a collection the other's garbage called for (at
+// 64 × 1000 a run of either side allocates tens of MB, and an echo run
+// right after a session ran up to 2× slower than one after an echo).
 func alternate(rounds int, a, b func() (sample, error)) (as, bs []sample, err error) {
 	for range rounds {
+		runtime.GC()
 		x, err := a()
 		if err != nil {
 			return nil, nil, err
 		}
+		runtime.GC()
 		y, err := b()
 		if err != nil {
 			return nil, nil, err
