@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"math"
 	"runtime"
+	"runtime/debug"
 	"slices"
 	"time"
 )
@@ -58,25 +59,35 @@ func timed(f func() error) (sample, error) {
 }
 
 // alternate runs a, then b, rounds times (A, B, A, B, …) and returns what
-// each cost per round. The garbage is collected before each run, so that
-// neither side pays for a collection the other's garbage called for (at
-// 64 × 1000 a run of either side allocates tens of MB, and an echo run
-// right after a session ran up to 2× slower than one after an echo).
+// each cost per round. Each run starts from collected garbage and runs
+// with the collector off (noGC), so that neither side pays for a
+// collection the other's garbage called for, nor for one its own garbage
+// calls for at a rate set by whatever else the process holds: a bare
+// echo at 64 × 1000 allocates about 1 MB per round trip (protobuf copies
+// every bytes field it decodes), and its time moved by 2× with the heap
+// the runs before it left. With the collector off the floor is the
+// transport alone, the strictest floor; what each side allocates is
+// reported by the Go benchmarks (B/op).
 func alternate(rounds int, a, b func() (sample, error)) (as, bs []sample, err error) {
 	for range rounds {
-		runtime.GC()
-		x, err := a()
+		x, err := noGC(a)
 		if err != nil {
 			return nil, nil, err
 		}
-		runtime.GC()
-		y, err := b()
+		y, err := noGC(b)
 		if err != nil {
 			return nil, nil, err
 		}
 		as, bs = append(as, x), append(bs, y)
 	}
 	return as, bs, nil
+}
+
+// noGC runs f after a collection, with the collector off.
+func noGC(f func() (sample, error)) (sample, error) {
+	runtime.GC()
+	defer debug.SetGCPercent(debug.SetGCPercent(-1))
+	return f()
 }
 
 // CPUComparison compares the CPU time of the whole process (every
