@@ -65,7 +65,7 @@ var kernelForbid = []string{
 //	deploy ───────────────────▶ nothing of ours                         (Kubernetes API types, yaml)
 //	client/history ───────────▶ std                                 (the progress history file)
 //	internal/report ──────────▶ client/history, kernels/diag             (gonum, gonum/plot)
-//	internal/benchkit ────────▶ server, server/session, client, proto, kernels/...
+//	internal/benchkit ────────▶ server, server/session, client, proto, kernels/..., internal/codec, internal/wire
 //
 // and the rule that nothing imports grpc's internal packages (they may change
 // without notice).
@@ -133,7 +133,7 @@ var layerRules = []layerRule{
 		// they drive a real server with a real client, so they may import
 		// both, but never the command.
 		pkgs:          "sluice/internal/benchkit",
-		allowProject:  []string{"sluice/server/...", "sluice/client/...", "sluice/proto/...", "sluice/kernels/..."},
+		allowProject:  []string{"sluice/server/...", "sluice/client/...", "sluice/proto/...", "sluice/kernels/...", "sluice/internal/codec", "sluice/internal/wire"},
 		allowExternal: []string{"..."},
 		forbid:        []string{"sluice/cmd/..."},
 	},

@@ -32,13 +32,15 @@ func bench(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		usage: "sluice bench [--quick] [--json] [--no-python] [flags]",
 		about: "Measures, in one run on loopback, what sluice costs next to the least it could cost, each figure beside " +
 			"its floor measured side by side: a session step of the lmc kernel (server and Go client in this process, " +
-			"over TCP) against a bare gRPC echo of the same bytes, one message each way per step, at 8 chains × dim 10, " +
+			"over TCP) against a bare gRPC echo of the same values, one message each way per step, its frames encoded and " +
+			"decoded as a session's are (no engine behind it), at 8 chains × dim 10, " +
 			"64 × 100 and 64 × 1000; the lmc kernel driven in-process against a plain fused Go loop doing the same " +
 			"arithmetic with the same random stream; the Python client against a numpy loop doing the same steps in its " +
 			"own process, at 64 × 1000, with a free gradient and with one that sleeps 5 ms per batch (needs " +
 			"/usr/bin/python3 with grpc and numpy and the client's sources); and the live heap of one session over " +
 			"10⁶ draws, at a tenth of the draws and at the end, to show whether it stays flat. Compared runs alternate " +
-			"in many short rounds; each time is the median of the rounds, each ratio the median of the rounds' own ratios, " +
+			"in many short rounds, each from collected garbage with the collector off; each time is the median of the " +
+			"rounds, each ratio the median of the rounds' own ratios, " +
 			"printed with their quartiles, so load that changes during the run weighs on both sides alike. Beside each Go " +
 			"ratio of wall times stands the ratio of the process's CPU time over the same runs, which leaves out the waits " +
 			"for a core on a busy machine. The target is a Gaussian with a diagonal " +
@@ -140,7 +142,7 @@ func printBench(w io.Writer, r *benchkit.Report, quick bool) {
 	if len(r.Transport) > 0 && r.Transport[0].Groups > 0 {
 		groups = fmt.Sprintf("%d chain groups", r.Transport[0].Groups)
 	}
-	fmt.Fprintf(w, "\nsession step (lmc, Go client, loopback TCP) vs bare gRPC echo of the same bytes, one message each way; %s\n", groups)
+	fmt.Fprintf(w, "\nsession step (lmc, Go client, loopback TCP) vs bare gRPC echo of the same values, one message each way, frames coded as a session's; %s\n", groups)
 	fmt.Fprintf(w, "  %-12s %7s %15s %15s %7s %13s %10s %13s %11s\n", "chains × dim", "steps", "session µs/step", "echo µs/step", "ratio", "middle half",
 		"CPU ratio", "middle half", "summary ms")
 	for _, t := range r.Transport {
