@@ -799,6 +799,18 @@ def _encode(outer: int, request_id: int, first_row: int, ans: Answer, want: _Wan
     return _frames.evaluations(outer, request_id, first_row, rows, dim, g, ld, h, hv)
 
 
+_ROWS = np.arange(0)
+
+
+def _rows(n: int) -> np.ndarray:
+    """0, 1, ..., n - 1 (a view of a cached range)."""
+    global _ROWS
+    if len(_ROWS) < n:
+        _ROWS = np.arange(max(n, 2 * len(_ROWS)))
+        _ROWS.flags.writeable = False
+    return _ROWS[:n]
+
+
 def decode_draws(
     w: "Union[pb.Draws, _wire.DrawsFrame]",
     expected_seq: int,
@@ -827,16 +839,18 @@ def decode_draws(
                 f"whose points are not among those held"
             )
         pts = h[1]
-        pr = np.array(w.point_rows, dtype=np.int64)
+        pr = np.asarray(w.point_rows, dtype=np.int64)
+        low = int(pr.min())
         sent = pr < 0
-        n = int(sent.sum())
+        n = int(sent.sum()) if low < 0 else 0
         vals = w.values
         if len(vals) != 8 * n * dim or int(pr.max()) >= pts.shape[0]:
             raise ProtocolError(f"sluice_client: malformed draws frame at sequence {w.seq}")
-        if n == 0 and rows == pts.shape[0] and not pts.flags.writeable and np.array_equal(pr, np.arange(rows)):
+        if n == 0 and rows == pts.shape[0] and not pts.flags.writeable and bool((pr == _rows(rows)).all()):
             # Every row of the request, in order (lmc, kinetic): the held
-            # points are the draws. They are a read-only view of the
-            # request's bytes, which nothing changes: no copy.
+            # points are the draws. They are a read-only array that
+            # nothing writes to while anything refers to it (the
+            # session's _Buffers): no copy.
             values = pts
         elif n == 0:
             values = pts[pr]

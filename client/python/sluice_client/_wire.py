@@ -69,15 +69,31 @@ def _int64(v: int) -> int:
     return v - (1 << 64) if v >> 63 else v
 
 
-def _packed(b: bytes, lo: int, hi: int) -> np.ndarray:
-    """The varints of b[lo:hi] as uint64 (their low 64 bits), vectorized."""
-    a = np.frombuffer(b, dtype=np.uint8, count=hi - lo, offset=lo)
-    more = a >= 0x80
-    if not more.any():
-        return a.astype(np.uint64)
-    ends = np.flatnonzero(~more)
-    if len(ends) == 0 or ends[-1] != len(a) - 1:
+_U64 = np.dtype(np.uint64)
+_I32 = np.dtype(np.int32)
+_I64 = np.dtype(np.int64)
+#: The shift of each byte of a varint of n bytes, for n = 0 ... 10.
+_SHIFTS = [np.arange(n, dtype=np.uint64) * np.uint64(7) for n in range(11)]
+
+
+def _packed(b: bytes, lo: int, hi: int, dtype: np.dtype) -> np.ndarray:
+    """The varints of b[lo:hi] as dtype: int32 (an int32 or enum field:
+    the low 32 bits, sign-extended) or int64 (the low 64 bits)."""
+    seg = b[lo:hi]
+    if seg.isascii():  # every varint one byte (chains, rows: the common case)
+        return np.frombuffer(seg, dtype=np.uint8).astype(dtype)
+    a = np.frombuffer(seg, dtype=np.uint8)
+    ends = np.flatnonzero(a < 0x80)
+    count = len(ends)
+    if count == 0 or ends[-1] != len(a) - 1:
         raise _Irregular("packed varints cut short")
+    n = int(ends[0]) + 1
+    if n <= 10 and n * count == len(a):
+        m = a.reshape(count, n)
+        if (m[:, -1] < 0x80).all():
+            # Every varint n bytes long (iterations, say): one row each.
+            u = ((m & 0x7F).astype(np.uint64) << _SHIFTS[n]).sum(axis=1, dtype=np.uint64)
+            return u.view(np.int64).astype(dtype)
     starts = np.empty_like(ends)
     starts[0] = 0
     starts[1:] = ends[:-1] + 1
@@ -86,24 +102,21 @@ def _packed(b: bytes, lo: int, hi: int) -> np.ndarray:
         raise _Irregular("varint longer than 10 bytes")
     pos = np.arange(len(a)) - np.repeat(starts, lens)
     vals = (a & 0x7F).astype(np.uint64) << (7 * pos).astype(np.uint64)
-    return np.add.reduceat(vals, starts)
+    return np.add.reduceat(vals, starts).view(np.int64).astype(dtype)
 
 
-def _repeated(b: bytes, pieces: List[Tuple[int, int, int]], kind: str) -> np.ndarray:
+def _repeated(b: bytes, pieces: List[Tuple[int, int, int]], dtype: np.dtype) -> np.ndarray:
     """A repeated varint field from its pieces (wire type, lo, hi): packed
-    runs b[lo:hi] and single values lo, concatenated in order. kind
-    "int32" (an int32 or enum field), "int64"."""
-    parts = []
-    for wt, lo, hi in pieces:
-        parts.append(_packed(b, lo, hi) if wt == 2 else np.array([lo], dtype=np.uint64))
-    if not parts:
-        u = np.zeros(0, dtype=np.uint64)
-    elif len(parts) == 1:
-        u = parts[0]
-    else:
-        u = np.concatenate(parts)
-    s = u.view(np.int64)
-    return s.astype(np.int32) if kind == "int32" else s.astype(np.int64)
+    runs b[lo:hi] (wire type 2) and single values lo (wire type 0),
+    concatenated in order, as dtype (see _packed)."""
+    if len(pieces) == 1 and pieces[0][0] == 2:
+        return _packed(b, pieces[0][1], pieces[0][2], dtype)
+    if not pieces:
+        return np.zeros(0, dtype=dtype)
+    one = _int32 if dtype == _I32 else _int64
+    return np.concatenate(
+        [_packed(b, lo, hi, dtype) if wt == 2 else np.array([one(lo)], dtype=dtype) for wt, lo, hi in pieces]
+    )
 
 
 class DrawsFrame:
@@ -249,9 +262,9 @@ def _draws(b: bytes, pieces: List[Tuple[int, int]]) -> DrawsFrame:
             elif field == _D_POINT_ROWS:
                 point_rows.append((2, x, y))
     d.values = memoryview(buf)[values[0] : values[1]]
-    d.chains = _repeated(buf, chains, "int32")
-    d.iterations = _repeated(buf, iterations, "int64")
-    d.point_rows = _repeated(buf, point_rows, "int32")
+    d.chains = _repeated(buf, chains, _I32)
+    d.iterations = _repeated(buf, iterations, _I64)
+    d.point_rows = _repeated(buf, point_rows, _I32)
     return d
 
 
@@ -300,9 +313,9 @@ def _points(b: bytes, lo: int, hi: int) -> PointsFrame:
     mv = memoryview(b)
     p.points = mv[points[0] : points[1]]
     p.vectors = mv[vectors[0] : vectors[1]]
-    p.chains = _repeated(b, chains, "int32")
-    p.quantities = _repeated(b, quantities, "int32")
-    p.minibatch_groups = _repeated(b, groups, "int32")
+    p.chains = _repeated(b, chains, _I32)
+    p.quantities = _repeated(b, quantities, _I32)
+    p.minibatch_groups = _repeated(b, groups, _I32)
     if draws:
         p.draws = _draws(b, draws)
     return p
