@@ -15,7 +15,7 @@ import grpc
 import numpy as np
 import numpy.typing as npt
 
-from . import _frames, _parallel, _wire
+from . import _alloc, _frames, _parallel, _wire
 from ._errors import DrawsLostError, ProtocolError, SessionError
 from ._proto.sluice.v1 import sluice_pb2 as pb
 from ._resume import ResumePolicy, resumable
@@ -231,6 +231,7 @@ class Session:
         self._spec = spec
         self._on_registered = on_registered
         self._register = spec.to_register()  # shapes start; raises ValueError early
+        _alloc.keep_frame_pages()
         if split is not None and (isinstance(split, bool) or not isinstance(split, int) or split < 1):
             raise ValueError(f"sluice_client: split must be an integer >= 1, not {split!r}")
         if split is not None and executor is None:

@@ -12,7 +12,7 @@ from typing import Callable, Dict, Optional, Tuple, Union
 import grpc
 import numpy as np
 
-from . import _frames, _wire
+from . import _alloc, _frames, _wire
 from ._errors import SessionError
 from ._proto.sluice.v1 import sluice_pb2 as pb
 from ._session import BatchFn, GradFn, LogDensityFn, Session, _Buffers, connect
@@ -107,6 +107,7 @@ def work(
     if (grad is None) == (batch is None):
         raise TypeError("sluice_client: give either grad (with log_density if needed) or batch")
     w = _Worker(grad, log_density, batch)
+    _alloc.keep_frame_pages()
     own = isinstance(channel_or_target, str)
     channel = connect(channel_or_target, DEFAULT_MAX_MESSAGE_BYTES) if own else channel_or_target
     assert isinstance(channel, grpc.Channel)
