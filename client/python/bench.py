@@ -41,6 +41,13 @@ after ratio from one run:
 
     git archive <commit> client/python/sluice_client | tar -x -C /tmp/base
     /usr/bin/python3 client/python/bench.py --baseline /tmp/base/client/python
+
+Both clients then share this process, and with it glibc's malloc
+thresholds, which the client raises when its first session starts
+(sluice_client._alloc): run with SLUICE_CLIENT_MALLOC=keep to compare the
+two without that, or run the other tree's own bench.py in a process of its
+own. --chain-groups N sets Register.chain_groups for the sessions through
+sluice (0, the default, lets the server choose; 1 is lock step).
 """
 
 from __future__ import annotations
@@ -97,11 +104,17 @@ def load_baseline(directory: str) -> Any:
     return mod
 
 
+#: Register.chain_groups for the sessions through sluice (--chain-groups):
+#: 0 lets the server choose.
+CHAIN_GROUPS = 0
+
+
 def through_sluice(target: str, grad: Callable[[np.ndarray], np.ndarray], dim: int, chains: int,
                    step: float, steps: int, keep_every: int, limit: int, client: Any = sc,
                    executor: Any = None) -> Dict[str, float]:
     spec = client.Spec(dim=dim, chains=chains, start=np.zeros(dim), step=step, keep_every=keep_every,
-                   draws_per_chain=steps // keep_every, seed=1, max_message_bytes=limit)
+                   draws_per_chain=steps // keep_every, seed=1, max_message_bytes=limit,
+                   chain_groups=CHAIN_GROUPS)
     got = [0]
 
     def on_draws(d: Any) -> None:
@@ -240,12 +253,15 @@ def main() -> int:
     ap.add_argument("--threads", type=int, default=0,
                     help="also measure the client with executor=ThreadPoolExecutor(N), split=1 (frames of "
                          "pipelined chain groups evaluated at the same time), in the same rounds")
+    ap.add_argument("--chain-groups", type=int, default=0,
+                    help="Register.chain_groups of the sessions through sluice (0: the server chooses; 1: lock step)")
     ap.add_argument("--server-pid", type=int, default=0,
                     help="the server's process id: also report its CPU time per step (Linux /proc)")
     ap.add_argument("--json", action="store_true")
     args = ap.parse_args()
-    global SERVER_PID
+    global SERVER_PID, CHAIN_GROUPS
     SERVER_PID = args.server_pid
+    CHAIN_GROUPS = args.chain_groups
 
     d = np.linspace(1.0, 10.0, args.dim)
     if not args.step * d.max() < 2.0:
@@ -308,6 +324,7 @@ def main() -> int:
         "numpy_ms_per_step_rounds": local_ms,
         "ratio": float(np.median([a / b for a, b in zip(remote_ms, local_ms)])),
         "grad_ms": args.grad_ms,
+        "chain_groups": args.chain_groups,
         "repeats": args.repeats,
         # The client's throughput as a fraction of the in-process loop's.
         "client_fraction": float(np.median([b / a for a, b in zip(remote_ms, local_ms)])),
@@ -348,7 +365,8 @@ def main() -> int:
         print(json.dumps(out))
     else:
         print(f"dim {args.dim}, {args.chains} chains, keep every {args.keep_every}, "
-              f"gradient sleep {args.grad_cost_ms:g} ms, busy {args.grad_ms:g} ms; "
+              f"gradient sleep {args.grad_cost_ms:g} ms, busy {args.grad_ms:g} ms, chain groups "
+              f"{args.chain_groups or 'automatic'}; "
               f"median of {args.repeats} alternating rounds")
         print(f"  through sluice:     {out['sluice_draws_per_second']:12.0f} draws/s  "
               f"({out['sluice_ms_per_step']:.3f} ms per step)")
