@@ -44,6 +44,10 @@ def _varint(v: int) -> bytes:
     two's complement, as protobuf encodes negative int32 and int64."""
     if 0 <= v < 0x80:
         return _SMALL[v]
+    if 0 < v < 0x4000:
+        return bytes((v & 0x7F | 0x80, v >> 7))
+    if 0 < v < 0x200000:
+        return bytes((v & 0x7F | 0x80, (v >> 7) & 0x7F | 0x80, v >> 14))
     v &= _MASK64
     out = bytearray()
     while v >= 0x80:
