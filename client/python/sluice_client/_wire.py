@@ -82,6 +82,11 @@ def _packed(b: bytes, lo: int, hi: int, dtype: np.dtype) -> np.ndarray:
     seg = b[lo:hi]
     if seg.isascii():  # every varint one byte (chains, rows: the common case)
         return np.frombuffer(seg, dtype=np.uint8).astype(dtype)
+    v, n = _varint(seg, 0)
+    count = len(seg) // n
+    if count * n == len(seg) and seg == seg[:n] * count:
+        # One value repeated (the iterations of the chains of one step).
+        return np.full(count, _int32(v) if dtype == _I32 else _int64(v), dtype=dtype)
     a = np.frombuffer(seg, dtype=np.uint8)
     ends = np.flatnonzero(a < 0x80)
     count = len(ends)
@@ -223,6 +228,90 @@ _P_VECTORS, _P_GROUPS, _P_FULL_DATA, _P_REPLICATES = _P["vectors"], _P["minibatc
 _P_DRAWS = _P["draws"]
 
 
+def _scan(b: bytes, lo: int, hi: int, listed: frozenset) -> Tuple[Dict[int, Any], Dict[int, List[Tuple[int, int, int]]]]:
+    """The fields of the message b[lo:hi] in one pass: ``last`` maps each
+    key (field number << 3 | wire type) to its last value (a varint's
+    value; the bounds (lo, hi) of a length-delimited or fixed field), and
+    ``pieces`` maps each field number in ``listed`` (repeated fields and
+    message fields, whose every occurrence counts) to its occurrences in
+    order: (0, value, 0) for a varint, (2, lo, hi) for a length-delimited
+    run. Raises _Irregular on groups, invalid wire types, field number 0
+    and anything cut short."""
+    last: Dict[int, Any] = {}
+    pieces: Dict[int, List[Tuple[int, int, int]]] = {}
+    i = lo
+    while i < hi:
+        key = b[i]
+        if key < 0x80:
+            i += 1
+        else:
+            key, i = _varint(b, i)
+            if key > 0xFFFFFFFF:
+                raise _Irregular("bad key")
+        wt = key & 7
+        field = key >> 3
+        if field == 0:
+            raise _Irregular("field number 0")
+        if wt == 0:
+            v = b[i]
+            if v < 0x80:
+                i += 1
+            else:
+                v, i = _varint(b, i)
+            if field in listed:
+                pieces.setdefault(field, []).append((0, v, 0))
+            else:
+                last[key] = v
+        elif wt == 2:
+            n = b[i]
+            if n < 0x80:
+                i += 1
+            else:
+                n, i = _varint(b, i)
+            j = i + n
+            if j > hi:
+                raise _Irregular("length past the end")
+            if field in listed:
+                pieces.setdefault(field, []).append((2, i, j))
+            else:
+                last[key] = (i, j)
+            i = j
+        elif wt == 1 or wt == 5:
+            i += 8 if wt == 1 else 4
+            if i > hi:
+                raise _Irregular("fixed field past the end")
+        else:  # groups (3, 4) and the invalid 6, 7
+            raise _Irregular("wire type")
+    return last, pieces
+
+
+def _varints(pieces: Dict[int, List[Tuple[int, int, int]]], field: int) -> List[Tuple[int, int, int]]:
+    """The occurrences of a repeated varint field: its packed runs and its
+    single values (a fixed-width occurrence is an unknown field)."""
+    return pieces.get(field, [])
+
+
+def _messages(pieces: Dict[int, List[Tuple[int, int, int]]], field: int) -> List[Tuple[int, int]]:
+    """The occurrences of a message field (a varint in its place is an
+    unknown field)."""
+    return [(lo, hi) for wt, lo, hi in pieces.get(field, ()) if wt == 2]
+
+
+def _key(field: int, wire_type: int) -> int:
+    return field << 3 | wire_type
+
+
+_D_LISTED = frozenset((_D_CHAINS, _D_ITERATIONS, _D_POINT_ROWS))
+_P_LISTED = frozenset((_P_CHAINS, _P_QUANTITIES, _P_GROUPS, _P_DRAWS))
+_DK_SEQ, _DK_ROWS, _DK_DIM, _DK_FROM = (_key(f, 0) for f in (_D_SEQ, _D_ROWS, _D_DIM, _D_FROM))
+_DK_VALUES = _key(_D_VALUES, 2)
+_PK_REQUEST_ID, _PK_FIRST_ROW, _PK_ROWS, _PK_DIM, _PK_TOTAL_ROWS, _PK_REPLICATES, _PK_FULL_DATA = (
+    _key(f, 0) for f in (_P_REQUEST_ID, _P_FIRST_ROW, _P_ROWS, _P_DIM, _P_TOTAL_ROWS, _P_REPLICATES, _P_FULL_DATA)
+)
+_PK_POINTS, _PK_VECTORS = _key(_P_POINTS, 2), _key(_P_VECTORS, 2)
+_NOWHERE = (0, 0)
+
+
 def _draws(b: bytes, pieces: List[Tuple[int, int]]) -> DrawsFrame:
     """The Draws message made of pieces (lo, hi) of b, merged as protobuf
     merges a message field given more than once."""
@@ -231,91 +320,39 @@ def _draws(b: bytes, pieces: List[Tuple[int, int]]) -> DrawsFrame:
     else:
         buf = b"".join(memoryview(b)[lo:hi] for lo, hi in pieces)
         lo, hi = 0, len(buf)
+    last, listed = _scan(buf, lo, hi, _D_LISTED)
     d = DrawsFrame()
-    chains: List[Tuple[int, int, int]] = []
-    iterations: List[Tuple[int, int, int]] = []
-    point_rows: List[Tuple[int, int, int]] = []
-    values = (0, 0)
-    for field, wt, x, y in _fields(buf, lo, hi):
-        if wt == 0:
-            if field == _D_SEQ:
-                d.seq = x
-            elif field == _D_ROWS:
-                d.rows = _int32(x)
-            elif field == _D_DIM:
-                d.dim = _int32(x)
-            elif field == _D_FROM:
-                d.from_request_id = x
-            elif field == _D_CHAINS:
-                chains.append((0, x, 0))
-            elif field == _D_ITERATIONS:
-                iterations.append((0, x, 0))
-            elif field == _D_POINT_ROWS:
-                point_rows.append((0, x, 0))
-        elif wt == 2:
-            if field == _D_VALUES:
-                values = (x, y)
-            elif field == _D_CHAINS:
-                chains.append((2, x, y))
-            elif field == _D_ITERATIONS:
-                iterations.append((2, x, y))
-            elif field == _D_POINT_ROWS:
-                point_rows.append((2, x, y))
+    d.seq = last.get(_DK_SEQ, 0)
+    d.rows = _int32(last.get(_DK_ROWS, 0))
+    d.dim = _int32(last.get(_DK_DIM, 0))
+    d.from_request_id = last.get(_DK_FROM, 0)
+    values = last.get(_DK_VALUES, _NOWHERE)
     d.values = memoryview(buf)[values[0] : values[1]]
-    d.chains = _repeated(buf, chains, _I32)
-    d.iterations = _repeated(buf, iterations, _I64)
-    d.point_rows = _repeated(buf, point_rows, _I32)
+    d.chains = _repeated(buf, _varints(listed, _D_CHAINS), _I32)
+    d.iterations = _repeated(buf, _varints(listed, _D_ITERATIONS), _I64)
+    d.point_rows = _repeated(buf, _varints(listed, _D_POINT_ROWS), _I32)
     return d
 
 
 def _points(b: bytes, lo: int, hi: int) -> PointsFrame:
+    last, listed = _scan(b, lo, hi, _P_LISTED)
     p = PointsFrame()
-    chains: List[Tuple[int, int, int]] = []
-    quantities: List[Tuple[int, int, int]] = []
-    groups: List[Tuple[int, int, int]] = []
-    draws: List[Tuple[int, int]] = []
-    points = vectors = (0, 0)
-    for field, wt, x, y in _fields(b, lo, hi):
-        if wt == 0:
-            if field == _P_REQUEST_ID:
-                p.request_id = x
-            elif field == _P_FIRST_ROW:
-                p.first_row = _int32(x)
-            elif field == _P_ROWS:
-                p.rows = _int32(x)
-            elif field == _P_DIM:
-                p.dim = _int32(x)
-            elif field == _P_TOTAL_ROWS:
-                p.total_rows = _int32(x)
-            elif field == _P_REPLICATES:
-                p.replicates = _int32(x)
-            elif field == _P_FULL_DATA:
-                p.full_data = x != 0
-            elif field == _P_CHAINS:
-                chains.append((0, x, 0))
-            elif field == _P_QUANTITIES:
-                quantities.append((0, x, 0))
-            elif field == _P_GROUPS:
-                groups.append((0, x, 0))
-        elif wt == 2:
-            if field == _P_POINTS:
-                points = (x, y)
-            elif field == _P_VECTORS:
-                vectors = (x, y)
-            elif field == _P_CHAINS:
-                chains.append((2, x, y))
-            elif field == _P_QUANTITIES:
-                quantities.append((2, x, y))
-            elif field == _P_GROUPS:
-                groups.append((2, x, y))
-            elif field == _P_DRAWS:
-                draws.append((x, y))
+    p.request_id = last.get(_PK_REQUEST_ID, 0)
+    p.first_row = _int32(last.get(_PK_FIRST_ROW, 0))
+    p.rows = _int32(last.get(_PK_ROWS, 0))
+    p.dim = _int32(last.get(_PK_DIM, 0))
+    p.total_rows = _int32(last.get(_PK_TOTAL_ROWS, 0))
+    p.replicates = _int32(last.get(_PK_REPLICATES, 0))
+    p.full_data = last.get(_PK_FULL_DATA, 0) != 0
     mv = memoryview(b)
+    points = last.get(_PK_POINTS, _NOWHERE)
     p.points = mv[points[0] : points[1]]
+    vectors = last.get(_PK_VECTORS, _NOWHERE)
     p.vectors = mv[vectors[0] : vectors[1]]
-    p.chains = _repeated(b, chains, _I32)
-    p.quantities = _repeated(b, quantities, _I32)
-    p.minibatch_groups = _repeated(b, groups, _I32)
+    p.chains = _repeated(b, _varints(listed, _P_CHAINS), _I32)
+    p.quantities = _repeated(b, _varints(listed, _P_QUANTITIES), _I32)
+    p.minibatch_groups = _repeated(b, _varints(listed, _P_GROUPS), _I32)
+    draws = _messages(listed, _P_DRAWS)
     if draws:
         p.draws = _draws(b, draws)
     return p
