@@ -31,8 +31,9 @@ remote model: the interpreter is free meanwhile); --grad-ms T adds a busy
 wait of T milliseconds instead (holding the interpreter lock like a model
 written in Python). Both apply to both loops. --request-paths also
 measures, alternating with the runs above, bare session loops on other
-request paths that grpcio allows (without the client package's checks,
-with its frame encoding), to show which is fastest: the synchronous stream
+request paths that grpcio allows (without the client package's checks
+and its read-ahead thread, with its frame reader and encoding, draws in
+Points frames; wall and CPU per step), to show which is fastest: the synchronous stream
 fed by an iterator over a queue.SimpleQueue (the path the client uses), and
 grpc.aio with call.write/call.read on one event loop. --baseline DIR also
 measures, in the same alternating rounds, the sluice_client package found
@@ -69,7 +70,7 @@ import numpy as np
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 
 import sluice_client as sc  # noqa: E402
-from sluice_client import _frames  # noqa: E402
+from sluice_client import _frames, _wire  # noqa: E402
 from sluice_client._proto.sluice.v1 import sluice_pb2 as pb  # noqa: E402
 
 
@@ -159,42 +160,55 @@ def _bare_spec(dim: int, chains: int, step: float, steps: int, limit: int) -> pb
     reg = sc.Spec(dim=dim, chains=chains, start=np.zeros(dim), step=step, draws_per_chain=steps, seed=1,
                   max_message_bytes=limit).to_register()
     reg.accepts_draw_references = True  # as the client does
+    reg.draws_in_points = True
     return reg
 
 
-def _bare_answer(grad: Callable[[np.ndarray], np.ndarray], p: pb.Points) -> bytes:
+#: The client's response deserializer (sluice_client._wire): (kind, frame).
+_bare_read = _wire.response_reader(pb.SessionResponse, "points", "draws")
+
+
+def _bare_answer(grad: Callable[[np.ndarray], np.ndarray], p: Any) -> bytes:
     """The answer as the client builds it (sluice_client._frames)."""
     x = np.frombuffer(p.points, dtype="<f8").reshape(p.rows, p.dim)
     g = np.asarray(grad(x), dtype="<f8")
     return _frames.evaluations(_frames.SESSION_EVALUATIONS, p.request_id, p.first_row, p.rows, p.dim, gradients=g)
 
 
+def _bare_rows(kind: Any, m: Any) -> int:
+    """Draw rows in a frame: a draws frame's, or those riding in Points."""
+    if kind == "draws":
+        return int(m.rows)
+    if kind == "points" and m.draws is not None:
+        return int(m.draws.rows)
+    return 0
+
+
 def bare_sync_queue(target: str, grad: Callable[[np.ndarray], np.ndarray], dim: int, chains: int,
                     step: float, steps: int, limit: int) -> Dict[str, float]:
     """A bare session loop on the synchronous stream, requests from an
-    iterator over a SimpleQueue (the client's path, without its checks)."""
+    iterator over a SimpleQueue (the client's path, without its checks and
+    without its read-ahead thread; the client's frame reader)."""
     opts = [("grpc.max_send_message_length", limit), ("grpc.max_receive_message_length", limit)]
     with grpc.insecure_channel(target, options=opts) as ch:
         rpc = ch.stream_stream(sc.SESSION_METHOD, request_serializer=_frames.serializer(pb.SessionRequest),
-                               response_deserializer=pb.SessionResponse.FromString)
+                               response_deserializer=_bare_read)
         q: "queue.SimpleQueue[object]" = queue.SimpleQueue()
         q.put(pb.SessionRequest(register=_bare_spec(dim, chains, step, steps, limit)))
         got = 0
-        t0 = time.perf_counter()
+        t0, c0 = time.perf_counter(), time.process_time()
         call = rpc(iter(q.get, None), timeout=600)
-        for f in call:
-            kind = f.WhichOneof("frame")
+        for kind, m in call:
             if kind == "points":
-                q.put(_bare_answer(grad, f.points))
-            elif kind == "draws":
-                got += f.draws.rows
-            elif kind == "finished":
+                q.put(_bare_answer(grad, m))
+            got += _bare_rows(kind, m)
+            if kind == "finished":
                 break
         q.put(None)
-        seconds = time.perf_counter() - t0
+        seconds, cpu = time.perf_counter() - t0, time.process_time() - c0
     if got != chains * steps:
         raise RuntimeError(f"bench: bare sync session ended after {got} draws")
-    return {"seconds": seconds, "draws": got, "steps": steps}
+    return {"seconds": seconds, "cpu": cpu, "draws": got, "steps": steps}
 
 
 def bare_aio(target: str, grad: Callable[[np.ndarray], np.ndarray], dim: int, chains: int,
@@ -206,27 +220,26 @@ def bare_aio(target: str, grad: Callable[[np.ndarray], np.ndarray], dim: int, ch
     async def go() -> Dict[str, float]:
         async with grpc.aio.insecure_channel(target, options=opts) as ch:
             rpc = ch.stream_stream(sc.SESSION_METHOD, request_serializer=_frames.serializer(pb.SessionRequest),
-                                   response_deserializer=pb.SessionResponse.FromString)
+                                   response_deserializer=_bare_read)
             call = rpc(timeout=600)
             got = 0
-            t0 = time.perf_counter()
+            t0, c0 = time.perf_counter(), time.process_time()
             await call.write(pb.SessionRequest(register=_bare_spec(dim, chains, step, steps, limit)))
             while True:
                 f = await call.read()
                 if f is grpc.aio.EOF:
                     break
-                kind = f.WhichOneof("frame")
+                kind, m = f
                 if kind == "points":
-                    await call.write(_bare_answer(grad, f.points))
-                elif kind == "draws":
-                    got += f.draws.rows
-                elif kind == "finished":
+                    await call.write(_bare_answer(grad, m))
+                got += _bare_rows(kind, m)
+                if kind == "finished":
                     break
             await call.done_writing()
-            seconds = time.perf_counter() - t0
+            seconds, cpu = time.perf_counter() - t0, time.process_time() - c0
         if got != chains * steps:
             raise RuntimeError(f"bench: bare aio session ended after {got} draws")
-        return {"seconds": seconds, "draws": got, "steps": steps}
+        return {"seconds": seconds, "cpu": cpu, "draws": got, "steps": steps}
 
     return asyncio.run(go())
 
@@ -331,6 +344,7 @@ def main() -> int:
     }
     for name, runs in bare.items():
         out[f"bare_{name}_ms_per_step"] = float(np.median([r["seconds"] / r["steps"] for r in runs])) * 1e3
+        out[f"bare_{name}_cpu_ms_per_step"] = float(np.median([r["cpu"] / r["steps"] for r in runs])) * 1e3
     # CPU time per step of this process (every thread: the interpreter
     # and gRPC's), which waits for a core on a busy machine do not
     # inflate, and of the server when its pid is known.
@@ -382,7 +396,8 @@ def main() -> int:
                   f"{out['threads_ms_per_step']:.3f} ms per step (client at {out['threads_client_fraction']:.2f} "
                   f"of in-process), CPU {out['threads_cpu_ms_per_step']:.3f} ms")
         for name in bare:
-            print(f"  bare loop, {name:10s}: {out[f'bare_{name}_ms_per_step']:.3f} ms per step")
+            print(f"  bare loop, {name:10s}: {out[f'bare_{name}_ms_per_step']:.3f} ms per step, "
+                  f"CPU {out[f'bare_{name}_cpu_ms_per_step']:.3f} ms")
         if base is not None:
             print(f"  baseline client ({out['baseline']}): {out['baseline_ms_per_step']:.3f} ms per step, "
                   f"{out['baseline_ratio']:.2f}x numpy (client at {out['baseline_client_fraction']:.2f} of "
