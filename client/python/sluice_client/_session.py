@@ -122,6 +122,7 @@ class _Buffers:
         a.flags.writeable = False
         return a
 
+
 #: With an executor, the most frames evaluated at the same time (one
 #: helper thread each, waiting on the executor); more queue in order.
 _MAX_FRAMES_AT_ONCE = 16
