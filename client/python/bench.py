@@ -31,8 +31,9 @@ remote model: the interpreter is free meanwhile); --grad-ms T adds a busy
 wait of T milliseconds instead (holding the interpreter lock like a model
 written in Python). Both apply to both loops. --request-paths also
 measures, alternating with the runs above, bare session loops on other
-request paths that grpcio allows (without the client package's checks,
-with its frame encoding), to show which is fastest: the synchronous stream
+request paths that grpcio allows (without the client package's checks
+and its read-ahead thread, with its frame reader and encoding, draws in
+Points frames; wall and CPU per step), to show which is fastest: the synchronous stream
 fed by an iterator over a queue.SimpleQueue (the path the client uses), and
 grpc.aio with call.write/call.read on one event loop. --baseline DIR also
 measures, in the same alternating rounds, the sluice_client package found
@@ -41,6 +42,13 @@ after ratio from one run:
 
     git archive <commit> client/python/sluice_client | tar -x -C /tmp/base
     /usr/bin/python3 client/python/bench.py --baseline /tmp/base/client/python
+
+Both clients then share this process, and with it glibc's malloc
+thresholds, which the client raises when its first session starts
+(sluice_client._alloc): run with SLUICE_CLIENT_MALLOC=keep to compare the
+two without that, or run the other tree's own bench.py in a process of its
+own. --chain-groups N sets Register.chain_groups for the sessions through
+sluice (0, the default, lets the server choose; 1 is lock step).
 """
 
 from __future__ import annotations
@@ -62,7 +70,7 @@ import numpy as np
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 
 import sluice_client as sc  # noqa: E402
-from sluice_client import _frames  # noqa: E402
+from sluice_client import _frames, _wire  # noqa: E402
 from sluice_client._proto.sluice.v1 import sluice_pb2 as pb  # noqa: E402
 
 
@@ -97,11 +105,17 @@ def load_baseline(directory: str) -> Any:
     return mod
 
 
+#: Register.chain_groups for the sessions through sluice (--chain-groups):
+#: 0 lets the server choose.
+CHAIN_GROUPS = 0
+
+
 def through_sluice(target: str, grad: Callable[[np.ndarray], np.ndarray], dim: int, chains: int,
                    step: float, steps: int, keep_every: int, limit: int, client: Any = sc,
                    executor: Any = None) -> Dict[str, float]:
     spec = client.Spec(dim=dim, chains=chains, start=np.zeros(dim), step=step, keep_every=keep_every,
-                   draws_per_chain=steps // keep_every, seed=1, max_message_bytes=limit)
+                   draws_per_chain=steps // keep_every, seed=1, max_message_bytes=limit,
+                   chain_groups=CHAIN_GROUPS)
     got = [0]
 
     def on_draws(d: Any) -> None:
@@ -146,42 +160,55 @@ def _bare_spec(dim: int, chains: int, step: float, steps: int, limit: int) -> pb
     reg = sc.Spec(dim=dim, chains=chains, start=np.zeros(dim), step=step, draws_per_chain=steps, seed=1,
                   max_message_bytes=limit).to_register()
     reg.accepts_draw_references = True  # as the client does
+    reg.draws_in_points = True
     return reg
 
 
-def _bare_answer(grad: Callable[[np.ndarray], np.ndarray], p: pb.Points) -> bytes:
+#: The client's response deserializer (sluice_client._wire): (kind, frame).
+_bare_read = _wire.response_reader(pb.SessionResponse, "points", "draws")
+
+
+def _bare_answer(grad: Callable[[np.ndarray], np.ndarray], p: Any) -> bytes:
     """The answer as the client builds it (sluice_client._frames)."""
     x = np.frombuffer(p.points, dtype="<f8").reshape(p.rows, p.dim)
     g = np.asarray(grad(x), dtype="<f8")
     return _frames.evaluations(_frames.SESSION_EVALUATIONS, p.request_id, p.first_row, p.rows, p.dim, gradients=g)
 
 
+def _bare_rows(kind: Any, m: Any) -> int:
+    """Draw rows in a frame: a draws frame's, or those riding in Points."""
+    if kind == "draws":
+        return int(m.rows)
+    if kind == "points" and m.draws is not None:
+        return int(m.draws.rows)
+    return 0
+
+
 def bare_sync_queue(target: str, grad: Callable[[np.ndarray], np.ndarray], dim: int, chains: int,
                     step: float, steps: int, limit: int) -> Dict[str, float]:
     """A bare session loop on the synchronous stream, requests from an
-    iterator over a SimpleQueue (the client's path, without its checks)."""
+    iterator over a SimpleQueue (the client's path, without its checks and
+    without its read-ahead thread; the client's frame reader)."""
     opts = [("grpc.max_send_message_length", limit), ("grpc.max_receive_message_length", limit)]
     with grpc.insecure_channel(target, options=opts) as ch:
         rpc = ch.stream_stream(sc.SESSION_METHOD, request_serializer=_frames.serializer(pb.SessionRequest),
-                               response_deserializer=pb.SessionResponse.FromString)
+                               response_deserializer=_bare_read)
         q: "queue.SimpleQueue[object]" = queue.SimpleQueue()
         q.put(pb.SessionRequest(register=_bare_spec(dim, chains, step, steps, limit)))
         got = 0
-        t0 = time.perf_counter()
+        t0, c0 = time.perf_counter(), time.process_time()
         call = rpc(iter(q.get, None), timeout=600)
-        for f in call:
-            kind = f.WhichOneof("frame")
+        for kind, m in call:
             if kind == "points":
-                q.put(_bare_answer(grad, f.points))
-            elif kind == "draws":
-                got += f.draws.rows
-            elif kind == "finished":
+                q.put(_bare_answer(grad, m))
+            got += _bare_rows(kind, m)
+            if kind == "finished":
                 break
         q.put(None)
-        seconds = time.perf_counter() - t0
+        seconds, cpu = time.perf_counter() - t0, time.process_time() - c0
     if got != chains * steps:
         raise RuntimeError(f"bench: bare sync session ended after {got} draws")
-    return {"seconds": seconds, "draws": got, "steps": steps}
+    return {"seconds": seconds, "cpu": cpu, "draws": got, "steps": steps}
 
 
 def bare_aio(target: str, grad: Callable[[np.ndarray], np.ndarray], dim: int, chains: int,
@@ -193,27 +220,26 @@ def bare_aio(target: str, grad: Callable[[np.ndarray], np.ndarray], dim: int, ch
     async def go() -> Dict[str, float]:
         async with grpc.aio.insecure_channel(target, options=opts) as ch:
             rpc = ch.stream_stream(sc.SESSION_METHOD, request_serializer=_frames.serializer(pb.SessionRequest),
-                                   response_deserializer=pb.SessionResponse.FromString)
+                                   response_deserializer=_bare_read)
             call = rpc(timeout=600)
             got = 0
-            t0 = time.perf_counter()
+            t0, c0 = time.perf_counter(), time.process_time()
             await call.write(pb.SessionRequest(register=_bare_spec(dim, chains, step, steps, limit)))
             while True:
                 f = await call.read()
                 if f is grpc.aio.EOF:
                     break
-                kind = f.WhichOneof("frame")
+                kind, m = f
                 if kind == "points":
-                    await call.write(_bare_answer(grad, f.points))
-                elif kind == "draws":
-                    got += f.draws.rows
-                elif kind == "finished":
+                    await call.write(_bare_answer(grad, m))
+                got += _bare_rows(kind, m)
+                if kind == "finished":
                     break
             await call.done_writing()
-            seconds = time.perf_counter() - t0
+            seconds, cpu = time.perf_counter() - t0, time.process_time() - c0
         if got != chains * steps:
             raise RuntimeError(f"bench: bare aio session ended after {got} draws")
-        return {"seconds": seconds, "draws": got, "steps": steps}
+        return {"seconds": seconds, "cpu": cpu, "draws": got, "steps": steps}
 
     return asyncio.run(go())
 
@@ -240,12 +266,15 @@ def main() -> int:
     ap.add_argument("--threads", type=int, default=0,
                     help="also measure the client with executor=ThreadPoolExecutor(N), split=1 (frames of "
                          "pipelined chain groups evaluated at the same time), in the same rounds")
+    ap.add_argument("--chain-groups", type=int, default=0,
+                    help="Register.chain_groups of the sessions through sluice (0: the server chooses; 1: lock step)")
     ap.add_argument("--server-pid", type=int, default=0,
                     help="the server's process id: also report its CPU time per step (Linux /proc)")
     ap.add_argument("--json", action="store_true")
     args = ap.parse_args()
-    global SERVER_PID
+    global SERVER_PID, CHAIN_GROUPS
     SERVER_PID = args.server_pid
+    CHAIN_GROUPS = args.chain_groups
 
     d = np.linspace(1.0, 10.0, args.dim)
     if not args.step * d.max() < 2.0:
@@ -308,12 +337,14 @@ def main() -> int:
         "numpy_ms_per_step_rounds": local_ms,
         "ratio": float(np.median([a / b for a, b in zip(remote_ms, local_ms)])),
         "grad_ms": args.grad_ms,
+        "chain_groups": args.chain_groups,
         "repeats": args.repeats,
         # The client's throughput as a fraction of the in-process loop's.
         "client_fraction": float(np.median([b / a for a, b in zip(remote_ms, local_ms)])),
     }
     for name, runs in bare.items():
         out[f"bare_{name}_ms_per_step"] = float(np.median([r["seconds"] / r["steps"] for r in runs])) * 1e3
+        out[f"bare_{name}_cpu_ms_per_step"] = float(np.median([r["cpu"] / r["steps"] for r in runs])) * 1e3
     # CPU time per step of this process (every thread: the interpreter
     # and gRPC's), which waits for a core on a busy machine do not
     # inflate, and of the server when its pid is known.
@@ -348,7 +379,8 @@ def main() -> int:
         print(json.dumps(out))
     else:
         print(f"dim {args.dim}, {args.chains} chains, keep every {args.keep_every}, "
-              f"gradient sleep {args.grad_cost_ms:g} ms, busy {args.grad_ms:g} ms; "
+              f"gradient sleep {args.grad_cost_ms:g} ms, busy {args.grad_ms:g} ms, chain groups "
+              f"{args.chain_groups or 'automatic'}; "
               f"median of {args.repeats} alternating rounds")
         print(f"  through sluice:     {out['sluice_draws_per_second']:12.0f} draws/s  "
               f"({out['sluice_ms_per_step']:.3f} ms per step)")
@@ -364,7 +396,8 @@ def main() -> int:
                   f"{out['threads_ms_per_step']:.3f} ms per step (client at {out['threads_client_fraction']:.2f} "
                   f"of in-process), CPU {out['threads_cpu_ms_per_step']:.3f} ms")
         for name in bare:
-            print(f"  bare loop, {name:10s}: {out[f'bare_{name}_ms_per_step']:.3f} ms per step")
+            print(f"  bare loop, {name:10s}: {out[f'bare_{name}_ms_per_step']:.3f} ms per step, "
+                  f"CPU {out[f'bare_{name}_cpu_ms_per_step']:.3f} ms")
         if base is not None:
             print(f"  baseline client ({out['baseline']}): {out['baseline_ms_per_step']:.3f} ms per step, "
                   f"{out['baseline_ratio']:.2f}x numpy (client at {out['baseline_client_fraction']:.2f} of "

@@ -11,6 +11,7 @@ from typing import Iterator, Optional, Tuple, Union
 
 import grpc
 
+from . import _alloc
 from ._errors import ProtocolError, SessionError
 from ._proto.sluice.v1 import sluice_pb2 as pb
 from ._resume import ResumePolicy, resumable
@@ -147,6 +148,7 @@ class Follower:
     ) -> None:
         if from_seq < 0:
             raise ValueError(f"sluice_client: from_seq {from_seq} is negative")
+        _alloc.keep_frame_pages()
         self.session_id = session_id
         self._token = token
         self._resume = resume

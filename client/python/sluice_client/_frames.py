@@ -35,9 +35,19 @@ ATTACH_EVALUATIONS = pb.AttachRequest.DESCRIPTOR.fields_by_name["evaluations"].n
 _MASK64 = (1 << 64) - 1
 
 
+#: The varints of 0 ... 127: one byte each.
+_SMALL = [bytes((v,)) for v in range(0x80)]
+
+
 def _varint(v: int) -> bytes:
     """The base-128 varint of v; a negative value is taken as its 64-bit
     two's complement, as protobuf encodes negative int32 and int64."""
+    if 0 <= v < 0x80:
+        return _SMALL[v]
+    if 0 < v < 0x4000:
+        return bytes((v & 0x7F | 0x80, v >> 7))
+    if 0 < v < 0x200000:
+        return bytes((v & 0x7F | 0x80, (v >> 7) & 0x7F | 0x80, v >> 14))
     v &= _MASK64
     out = bytearray()
     while v >= 0x80:
@@ -49,6 +59,12 @@ def _varint(v: int) -> bytes:
 
 def _key(field: int, wire_type: int) -> bytes:
     return _varint(field << 3 | wire_type)
+
+
+_K_REQUEST_ID, _K_FIRST_ROW, _K_ROWS, _K_DIM = (_key(f, 0) for f in (_REQUEST_ID, _FIRST_ROW, _ROWS, _DIM))
+_K_GRADIENTS, _K_LOG_DENSITIES, _K_HESSIANS, _K_HESSIAN_VECTORS = (
+    _key(f, 2) for f in (_GRADIENTS, _LOG_DENSITIES, _HESSIANS, _HESSIAN_VECTORS)
+)
 
 
 def wire_array(a: np.ndarray) -> np.ndarray:
@@ -74,26 +90,31 @@ def evaluations(
     message with these fields; each array (any shape) is sent as its
     little-endian float64 values in C order. Fields at their zero value
     are left out, as proto3 does."""
-    head = bytearray()
-    for field, v in ((_REQUEST_ID, request_id), (_FIRST_ROW, first_row), (_ROWS, rows), (_DIM, dim)):
-        if v:
-            head += _key(field, 0) + _varint(v)
-    parts: List[Union[bytes, bytearray, np.ndarray]] = [head]
+    head = b""
+    if request_id:
+        head += _K_REQUEST_ID + _varint(request_id)
+    if first_row:
+        head += _K_FIRST_ROW + _varint(first_row)
+    if rows:
+        head += _K_ROWS + _varint(rows)
+    if dim:
+        head += _K_DIM + _varint(dim)
+    parts: List[Union[bytes, np.ndarray]] = [b"", head]
     size = len(head)
-    for field, a in (
-        (_GRADIENTS, gradients),
-        (_LOG_DENSITIES, log_densities),
-        (_HESSIANS, hessians),
-        (_HESSIAN_VECTORS, hessian_vectors),
+    for k, a in (
+        (_K_GRADIENTS, gradients),
+        (_K_LOG_DENSITIES, log_densities),
+        (_K_HESSIANS, hessians),
+        (_K_HESSIAN_VECTORS, hessian_vectors),
     ):
         if a is None or a.size == 0:
             continue
         a = wire_array(a)
-        k = _key(field, 2) + _varint(a.nbytes)
+        k += _varint(a.nbytes)
         parts.append(k)
         parts.append(a)
         size += len(k) + a.nbytes
-    parts.insert(0, _key(outer, 2) + _varint(size))
+    parts[0] = _key(outer, 2) + _varint(size)
     return b"".join(parts)
 
 

@@ -6,20 +6,22 @@ from __future__ import annotations
 
 import concurrent.futures as cf
 import queue
+import sys
 import threading
 from dataclasses import dataclass
-from typing import Callable, Dict, Iterator, Optional, Sequence, Tuple, Union
+from typing import Callable, Dict, Iterator, List, Optional, Sequence, Tuple, Union
 
 import grpc
 import numpy as np
 import numpy.typing as npt
 
-from . import _frames, _parallel
+from . import _alloc, _frames, _parallel, _wire
 from ._errors import DrawsLostError, ProtocolError, SessionError
 from ._proto.sluice.v1 import sluice_pb2 as pb
 from ._resume import ResumePolicy, resumable
 from ._types import (
     DEFAULT_MAX_MESSAGE_BYTES,
+    WIRE_DTYPE,
     Answer,
     Batch,
     Draws,
@@ -78,6 +80,48 @@ def _request(**frame: object) -> pb.SessionRequest:
 
 #: The most requests whose points a client holds for Draws frames to refer to.
 _MAX_HELD = 256
+
+#: The SessionResponse deserializer: Points and Draws frames are read from
+#: the received bytes without copying their arrays (see _wire).
+_read_session_response = _wire.response_reader(pb.SessionResponse, "points", "draws")
+
+
+class _Buffers:
+    """Aligned float64 arrays that received points are copied into, each
+    reused once nothing outside this pool refers to it (CPython's
+    reference count: the held points of older requests, draws handed on
+    and kept, a Batch kept by the caller all count), so that a session
+    whose draws are not kept does not take fresh pages from the allocator
+    for every frame."""
+
+    def __init__(self, keep: int = 8) -> None:
+        self._bufs: List[np.ndarray] = []
+        self._keep = keep
+        self._next = 0
+
+    def copy(self, src: object, rows: int, dim: int) -> np.ndarray:
+        """A read-only rows x dim array holding the little-endian float64
+        values of src (bytes-like, 8 * rows * dim bytes)."""
+        n = rows * dim
+        bufs = self._bufs
+        b = None
+        for i in range(len(bufs)):
+            # Referred to by the list and the argument only: free.
+            if bufs[i].size == n and sys.getrefcount(bufs[i]) == 2:
+                b = bufs[i]
+                break
+        if b is None:
+            b = np.empty(n, dtype=WIRE_DTYPE)
+            if len(bufs) < self._keep:
+                bufs.append(b)
+            else:  # replace a buffer in use (it lives on where it is used)
+                bufs[self._next] = b
+                self._next = (self._next + 1) % self._keep
+        a = b.reshape(rows, dim)
+        np.copyto(a, np.frombuffer(src, dtype=WIRE_DTYPE, count=n).reshape(rows, dim))  # type: ignore[call-overload]
+        a.flags.writeable = False
+        return a
+
 
 #: With an executor, the most frames evaluated at the same time (one
 #: helper thread each, waiting on the executor); more queue in order.
@@ -188,6 +232,7 @@ class Session:
         self._spec = spec
         self._on_registered = on_registered
         self._register = spec.to_register()  # shapes start; raises ValueError early
+        _alloc.keep_frame_pages()
         if split is not None and (isinstance(split, bool) or not isinstance(split, int) or split < 1):
             raise ValueError(f"sluice_client: split must be an integer >= 1, not {split!r}")
         if split is not None and executor is None:
@@ -222,6 +267,7 @@ class Session:
         # its first row, rows x dim points), which Draws frames may refer to
         # instead of repeating them (_hold).
         self._held: Dict[int, Tuple[int, np.ndarray]] = {}
+        self._buffers = _Buffers()
         self._started = False
         self._lock = threading.Lock()
         self._outbox: "queue.SimpleQueue[Optional[Union[pb.SessionRequest, bytes]]]" = queue.SimpleQueue()
@@ -335,7 +381,7 @@ class Session:
             rpc = self._channel.stream_stream(
                 SESSION_METHOD,
                 request_serializer=_frames.serializer(pb.SessionRequest),
-                response_deserializer=pb.SessionResponse.FromString,
+                response_deserializer=_read_session_response,
             )
             tries = 0
             while True:
@@ -347,27 +393,26 @@ class Session:
                     self._call = call
                 got_registered = False
                 try:
-                    for frame in _read_ahead(call):
-                        kind = frame.WhichOneof("frame")
+                    for kind, m in _read_ahead(call):
                         if kind == "points":
-                            p = frame.points
+                            p = m
                             self._hold(p)
                             if eval_error is None and not self._stopped:
                                 eval_error = self._answer(p)
                             if eval_error is None and self._frame_error is not None:
                                 eval_error = self._frame_error
-                            if p.HasField("draws"):
+                            if p.draws is not None:
                                 # As a Draws frame right after this one,
                                 # handed on once the answer is out.
                                 yield self._deliver(p.draws)
                         elif kind == "draws":
-                            yield self._deliver(frame.draws)
+                            yield self._deliver(m)
                         elif kind == "progress":
-                            self._last_progress = Progress.from_wire(frame.progress)
+                            self._last_progress = Progress.from_wire(m)
                             yield self._last_progress
                         elif kind == "registered":
                             first = self.registered is None
-                            self.registered = Registered.from_wire(frame.registered)
+                            self.registered = Registered.from_wire(m)
                             got_registered = True
                             if not first:
                                 self.resumes += 1
@@ -375,7 +420,7 @@ class Session:
                                 self._on_registered(self.registered)
                         elif kind == "finished":
                             self.summary = Summary.from_wire(
-                                frame.finished,
+                                m,
                                 self.registered,
                                 self.draws_received,
                                 self._store.arrays() if self._store is not None else None,
@@ -415,13 +460,12 @@ class Session:
             if self._frame_pool is not None:
                 self._frame_pool.shutdown(wait=False, cancel_futures=True)
 
-    def _answer(self, p: pb.Points) -> Optional[BaseException]:
+    def _answer(self, p: _wire.PointsFrame) -> Optional[BaseException]:
         """Evaluates one Points frame and sends the answer; on an error of
         the caller's functions sends Stop instead and returns the error.
-        _hold has checked the frame's points and chains and kept the points
-        (each read of ``p.points`` copies the bytes, so it is read once)."""
+        _hold has checked the frame's points and chains and kept the points."""
         rows, dim = p.rows, p.dim
-        quantities = set(p.quantities)
+        quantities = set(p.quantities.tolist())
         want = _Wanted(
             gradient=pb.QUANTITY_GRADIENT in quantities,
             log_density=pb.QUANTITY_LOG_DENSITY in quantities,
@@ -628,11 +672,11 @@ class Session:
             ans.log_densities = ld
         return ans
 
-    def _hold(self, p: pb.Points) -> None:
+    def _hold(self, p: _wire.PointsFrame) -> None:
         """Keeps the points of a Points frame, at their rows within the
         request, for Draws frames that refer to them."""
         rows, dim, first = p.rows, p.dim, p.first_row
-        pts = p.points  # each read copies the bytes: read once
+        pts = p.points
         if len(pts) != 8 * rows * dim or len(p.chains) != rows:
             raise ProtocolError(
                 f"sluice_client: malformed points frame: {len(pts)} bytes and "
@@ -641,7 +685,6 @@ class Session:
         total = max(p.total_rows, rows)  # a frame without total_rows is a whole request
         if first < 0 or first + rows > total:
             raise ProtocolError(f"sluice_client: malformed points frame: rows {first} to {first + rows} of {total}")
-        part = from_wire(pts, rows, dim)
         held = self._held
         if first == 0 and rows > 0:
             # A server stepping its chains in groups (chain_groups) sends
@@ -656,15 +699,18 @@ class Session:
         if len(held) >= _MAX_HELD and p.request_id not in held:
             del held[next(iter(held))]  # the oldest
         if first == 0 and rows == total:
-            held[p.request_id] = (c0, part)  # the common case: no copy
+            # The common case: the points copied once, into an aligned
+            # array (the received bytes are a view of the frame, at any
+            # offset), read-only.
+            held[p.request_id] = (c0, self._buffers.copy(pts, rows, dim))
             return
         h = held.get(p.request_id)
         if h is None or h[1].shape != (total, dim):
-            h = (c0, np.empty((total, dim), dtype=part.dtype))
+            h = (c0, np.empty((total, dim), dtype=WIRE_DTYPE))
         held[p.request_id] = (c0, h[1])
-        h[1][first : first + rows] = part
+        h[1][first : first + rows] = from_wire(pts, rows, dim)
 
-    def _part(self, p: pb.Points) -> np.ndarray:
+    def _part(self, p: _wire.PointsFrame) -> np.ndarray:
         """Returns the points of a Points frame kept by _hold, read-only."""
         v = self._held[p.request_id][1][p.first_row : p.first_row + p.rows]
         if v.flags.writeable:
@@ -672,7 +718,7 @@ class Session:
             v.flags.writeable = False
         return v
 
-    def _deliver(self, w: pb.Draws) -> Draws:
+    def _deliver(self, w: _wire.DrawsFrame) -> Draws:
         d = decode_draws(w, self._next_seq, self._held)
         self._next_seq += d.rows
         self.draws_received += d.rows
@@ -685,7 +731,7 @@ class Session:
 _END = object()
 
 
-def _read_ahead(call: "Iterator[pb.SessionResponse]") -> Iterator[pb.SessionResponse]:
+def _read_ahead(call: "Iterator[_wire.Frame]") -> "Iterator[_wire.Frame]":
     """The frames of a call, in order, read by a thread of their own.
 
     grpcio's synchronous stream asks gRPC for the next message only when
@@ -755,10 +801,25 @@ def _encode(outer: int, request_id: int, first_row: int, ans: Answer, want: _Wan
     return _frames.evaluations(outer, request_id, first_row, rows, dim, g, ld, h, hv)
 
 
+_ROWS = np.arange(0)
+
+
+def _rows(n: int) -> np.ndarray:
+    """0, 1, ..., n - 1 (a view of a cached range)."""
+    global _ROWS
+    if len(_ROWS) < n:
+        _ROWS = np.arange(max(n, 2 * len(_ROWS)))
+        _ROWS.flags.writeable = False
+    return _ROWS[:n]
+
+
 def decode_draws(
-    w: pb.Draws, expected_seq: int, held: "Optional[Dict[int, Tuple[int, np.ndarray]]]" = None
+    w: "Union[pb.Draws, _wire.DrawsFrame]",
+    expected_seq: int,
+    held: "Optional[Dict[int, Tuple[int, np.ndarray]]]" = None,
 ) -> Draws:
-    """Returns a Draws frame as :class:`Draws`, or raises DrawsLostError
+    """Returns a Draws frame (a pb.Draws or the session's own reading of
+    one) as :class:`Draws`, or raises DrawsLostError
     when it does not start at expected_seq and ProtocolError when it is
     malformed. Draws sent by reference (``point_rows``) are rebuilt from
     held, request id -> (first chain, points) of the latest Points frames
@@ -780,16 +841,18 @@ def decode_draws(
                 f"whose points are not among those held"
             )
         pts = h[1]
-        pr = np.array(w.point_rows, dtype=np.int64)
+        pr = np.asarray(w.point_rows, dtype=np.int64)
+        low = int(pr.min())
         sent = pr < 0
-        n = int(sent.sum())
+        n = int(sent.sum()) if low < 0 else 0
         vals = w.values
         if len(vals) != 8 * n * dim or int(pr.max()) >= pts.shape[0]:
             raise ProtocolError(f"sluice_client: malformed draws frame at sequence {w.seq}")
-        if n == 0 and rows == pts.shape[0] and not pts.flags.writeable and np.array_equal(pr, np.arange(rows)):
+        if n == 0 and rows == pts.shape[0] and not pts.flags.writeable and bool((pr == _rows(rows)).all()):
             # Every row of the request, in order (lmc, kinetic): the held
-            # points are the draws. They are a read-only view of the
-            # request's bytes, which nothing changes: no copy.
+            # points are the draws. They are a read-only array that
+            # nothing writes to while anything refers to it (the
+            # session's _Buffers): no copy.
             values = pts
         elif n == 0:
             values = pts[pr]

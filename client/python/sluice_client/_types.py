@@ -35,9 +35,16 @@ def to_wire(a: npt.ArrayLike) -> bytes:
     return np.asarray(a).astype(WIRE_DTYPE, copy=False).tobytes(order="C")
 
 
-def from_wire(b: bytes, rows: int, cols: int) -> np.ndarray:
-    """Returns a read-only rows x cols float64 view of wire bytes."""
-    return np.frombuffer(b, dtype=WIRE_DTYPE).reshape(rows, cols)
+def from_wire(b: Union[bytes, memoryview], rows: int, cols: int) -> np.ndarray:
+    """Returns a read-only rows x cols float64 view of wire bytes, or an
+    aligned read-only copy when they do not start at a multiple of 8 bytes
+    (a field read in place from a received message: numpy and the
+    libraries it calls are slower on unaligned arrays, some refuse them)."""
+    a = np.frombuffer(b, dtype=WIRE_DTYPE).reshape(rows, cols)
+    if not a.flags.aligned:
+        a = a.copy()
+        a.flags.writeable = False
+    return a
 
 
 #: The distances a guaranteed bound is stated in: "tv" (total variation)

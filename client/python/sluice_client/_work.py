@@ -12,10 +12,10 @@ from typing import Callable, Dict, Optional, Tuple, Union
 import grpc
 import numpy as np
 
-from . import _frames
+from . import _alloc, _frames, _wire
 from ._errors import SessionError
 from ._proto.sluice.v1 import sluice_pb2 as pb
-from ._session import BatchFn, GradFn, LogDensityFn, Session, connect
+from ._session import BatchFn, GradFn, LogDensityFn, Session, _Buffers, connect
 from ._types import DEFAULT_MAX_MESSAGE_BYTES
 
 #: Full method name of the Attach rpc.
@@ -29,6 +29,11 @@ ENV_TOKEN = "SLUICE_TOKEN"
 ENV_TOKEN_FILE = "SLUICE_TOKEN_FILE"
 ENV_WORKER_INDEX = "SLUICE_WORKER_INDEX"
 ENV_CA_FILE = "SLUICE_CA_FILE"
+
+
+#: The AttachResponse deserializer: Points frames are read from the
+#: received bytes without copying their arrays (see _wire).
+_read_attach_response = _wire.response_reader(pb.AttachResponse, "points")
 
 
 class _Spec:
@@ -54,6 +59,7 @@ class _Worker:
         self._batch = batch
         self._spec = _Spec()
         self._held: Dict[int, Tuple[int, np.ndarray]] = {}  # the points of the latest requests (_hold)
+        self._buffers = _Buffers()
         self._executor = None  # a worker evaluates its rows itself
         self._split = 1
         self.outbox: "queue.SimpleQueue[Optional[Union[pb.AttachRequest, bytes]]]" = queue.SimpleQueue()
@@ -101,6 +107,7 @@ def work(
     if (grad is None) == (batch is None):
         raise TypeError("sluice_client: give either grad (with log_density if needed) or batch")
     w = _Worker(grad, log_density, batch)
+    _alloc.keep_frame_pages()
     own = isinstance(channel_or_target, str)
     channel = connect(channel_or_target, DEFAULT_MAX_MESSAGE_BYTES) if own else channel_or_target
     assert isinstance(channel, grpc.Channel)
@@ -108,15 +115,15 @@ def work(
     rpc = channel.stream_stream(
         ATTACH_METHOD,
         request_serializer=_frames.serializer(pb.AttachRequest),
-        response_deserializer=pb.AttachResponse.FromString,
+        response_deserializer=_read_attach_response,
     )
     call = rpc(iter(w.outbox.get, None), timeout=timeout)
     try:
-        for frame in call:
-            if frame.WhichOneof("frame") != "points":
+        for kind, p in call:
+            if kind != "points":
                 continue
-            w._hold(frame.points)
-            err = w._answer(frame.points)
+            w._hold(p)
+            err = w._answer(p)
             if err is not None:
                 call.cancel()
                 raise err

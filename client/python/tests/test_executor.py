@@ -269,10 +269,12 @@ class _PipelinedCall:
     answers (one per Points frame, in the order the client sends them, or
     up to its Stop) before the Finished frame."""
 
-    def __init__(self, requests: Iterator[object], script: List[pb.SessionResponse], serialize: Callable[[object], bytes]) -> None:
+    def __init__(self, requests: Iterator[object], script: List[pb.SessionResponse], serialize: Callable[[object], bytes],
+                 deserialize: Callable[[bytes], object]) -> None:
         self._requests = requests
         self._script = script
         self._serialize = serialize
+        self._deserialize = deserialize
         self.sent: List[pb.SessionRequest] = []
 
     def _next(self) -> pb.SessionRequest:
@@ -292,7 +294,7 @@ class _PipelinedCall:
                         break
                     out -= 1
                 out = 0
-            yield frame
+            yield self._deserialize(frame.SerializeToString())  # as gRPC hands frames over
             if kind == "points":
                 out += 1
 
@@ -302,9 +304,10 @@ class _PipelinedCall:
 
 class _PipelinedChannel(_ScriptedChannel):
     def stream_stream(self, method: str, request_serializer: Callable[[object], bytes],
-                      response_deserializer: object) -> object:
+                      response_deserializer: Callable[[bytes], object]) -> object:
         def start(requests: Iterator[object], timeout: Optional[float] = None) -> _PipelinedCall:
-            self.call = _PipelinedCall(requests, self.script, request_serializer)  # type: ignore[assignment]
+            self.call = _PipelinedCall(requests, self.script, request_serializer,  # type: ignore[assignment]
+                                       response_deserializer)
             return self.call  # type: ignore[return-value]
 
         return start

@@ -26,7 +26,7 @@ import struct
 import tempfile
 import typing
 from pathlib import Path
-from typing import Any, Iterator, List, Tuple
+from typing import Any, Callable, Iterator, List, Tuple
 
 import grpc
 import numpy as np
@@ -418,8 +418,8 @@ class _BrokenChannel:
     def __init__(self, frames: List[pb.SessionResponse]) -> None:
         self.frames = frames
 
-    def stream_stream(self, method: str, request_serializer: object, response_deserializer: object) -> object:
-        frames = self.frames
+    def stream_stream(self, method: str, request_serializer: object, response_deserializer: Callable[[bytes], object]) -> object:
+        frames = [response_deserializer(f.SerializeToString()) for f in self.frames]  # as gRPC hands them over
 
         class Call:
             def __init__(self, requests: Iterator[pb.SessionRequest]) -> None:

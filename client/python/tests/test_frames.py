@@ -28,9 +28,9 @@ _OUTER = {"session": _frames.SESSION_EVALUATIONS, "attach": _frames.ATTACH_EVALU
 @pytest.mark.parametrize("outer", ["session", "attach"])
 @pytest.mark.parametrize(
     "request_id,first_row",
-    # zero fields are left out; 127/128 and 2^35 cross varint byte lengths;
-    # 2^64 - 1 is the largest uint64.
-    [(0, 0), (1, 0), (127, 128), (2**35, 3), (2**64 - 1, 2**31 - 1)],
+    # zero fields are left out; 127/128, 2^14 - 1/2^14, 2^21 - 1/2^21 and 2^35
+    # cross varint byte lengths; 2^64 - 1 is the largest uint64.
+    [(0, 0), (1, 0), (127, 128), (2**14 - 1, 2**14), (2**21 - 1, 2**21), (2**35, 3), (2**64 - 1, 2**31 - 1)],
 )
 def test_frame_equals_protobuf(outer: str, request_id: int, first_row: int) -> None:
     rng = np.random.default_rng(7)

@@ -6,7 +6,7 @@ once; a Follower follows again from next_seq. No server needed."""
 from __future__ import annotations
 
 import unittest
-from typing import Iterator, List, Optional, Union
+from typing import Callable, Iterator, List, Optional, Union
 
 import grpc
 import numpy as np
@@ -38,15 +38,16 @@ Step = Union[pb.SessionResponse, pb.FollowResponse, _Broken]
 
 
 class _Call:
-    def __init__(self, first: object, script: List[Step]) -> None:
+    def __init__(self, first: object, script: List[Step], deserialize: Callable[[bytes], object]) -> None:
         self.first = first
         self._script = script
+        self._deserialize = deserialize
 
     def __iter__(self) -> Iterator[object]:
         for s in self._script:
             if isinstance(s, _Broken):
                 raise s
-            yield s
+            yield self._deserialize(s.SerializeToString())  # as gRPC hands frames over
 
     def cancel(self) -> bool:
         return True
@@ -59,18 +60,18 @@ class _Channel:
         self.scripts = scripts
         self.firsts: List[object] = []
 
-    def stream_stream(self, method: str, request_serializer: object, response_deserializer: object) -> object:
+    def stream_stream(self, method: str, request_serializer: object, response_deserializer: Callable[[bytes], object]) -> object:
         def start(requests: Iterator[pb.SessionRequest], timeout: Optional[float] = None) -> _Call:
             first = next(requests)
             self.firsts.append(first)
-            return _Call(first, self.scripts[len(self.firsts) - 1])
+            return _Call(first, self.scripts[len(self.firsts) - 1], response_deserializer)
 
         return start
 
-    def unary_stream(self, method: str, request_serializer: object, response_deserializer: object) -> object:
+    def unary_stream(self, method: str, request_serializer: object, response_deserializer: Callable[[bytes], object]) -> object:
         def start(request: pb.FollowRequest, timeout: Optional[float] = None) -> _Call:
             self.firsts.append(request)
-            return _Call(request, self.scripts[len(self.firsts) - 1])
+            return _Call(request, self.scripts[len(self.firsts) - 1], response_deserializer)
 
         return start
 

@@ -95,17 +95,21 @@ class _ScriptedCall:
     server frames, collecting the client's answer after every Points frame
     (the client answers before it reads on, as the protocol asks). Each
     request goes through the client's request serializer and is parsed
-    back by protobuf, as a server would read it."""
+    back by protobuf, as a server would read it; each frame is serialized
+    by protobuf and handed to the client's response deserializer, as gRPC
+    does."""
 
     def __init__(
         self,
         requests: Iterator[object],
         script: List[pb.SessionResponse],
         serialize: Callable[[object], bytes],
+        deserialize: Callable[[bytes], object] = pb.SessionResponse.FromString,
     ) -> None:
         self._requests = requests
         self._script = script
         self._serialize = serialize
+        self._deserialize = deserialize
         self.sent: List[pb.SessionRequest] = []
         self.cancelled = False
 
@@ -115,7 +119,7 @@ class _ScriptedCall:
     def __iter__(self) -> Iterator[pb.SessionResponse]:
         self.sent.append(self._next())
         for frame in self._script:
-            yield frame
+            yield self._deserialize(frame.SerializeToString())
             if frame.WhichOneof("frame") == "points":
                 self.sent.append(self._next())
 
@@ -133,12 +137,12 @@ class _ScriptedChannel:
         self.method = ""
 
     def stream_stream(
-        self, method: str, request_serializer: Callable[[object], bytes], response_deserializer: object
+        self, method: str, request_serializer: Callable[[object], bytes], response_deserializer: Callable[[bytes], object]
     ) -> object:
         self.method = method
 
         def start(requests: Iterator[object], timeout: Optional[float] = None) -> _ScriptedCall:
-            self.call = _ScriptedCall(requests, self.script, request_serializer)
+            self.call = _ScriptedCall(requests, self.script, request_serializer, response_deserializer)
             return self.call
 
         return start
